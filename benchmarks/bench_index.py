@@ -1,0 +1,145 @@
+"""Benchmark: index throughput against a hand-written pybids + nibabel baseline.
+
+Generates a tree of small valid statistic maps (10 studies), then measures in one run:
+
+* mapstore index, cold (fresh store) and warm (nothing changed);
+* the baseline: a pybids BIDSLayout per dataset + nibabel header of each map;
+* the floor: reading and gunzipping every file once.
+
+Prints maps/s, ratios and peak memory.  Usage::
+
+    python benchmarks/bench_index.py [--maps 10000] [--workdir DIR]
+"""
+
+from __future__ import annotations
+
+import argparse
+import gzip
+import json
+import os
+import resource
+import subprocess
+import sys
+import tempfile
+import time
+import zlib
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+
+
+def make_tree(root: Path, n_maps: int, n_studies: int = 10) -> list[Path]:
+    """Small valid maps (8x8x8 float32, gzipped), each with distinct bytes."""
+    img = nib.Nifti1Image(np.zeros((8, 8, 8), np.float32), np.diag([2.0, 2.0, 2.0, 1.0]))
+    img.header.set_sform(img.affine, code=4)
+    template = bytearray(img.header.binaryblock + b"\x00" * 4 + np.zeros(512, np.float32).tobytes())
+    per_study = n_maps // n_studies
+    files = []
+    for s in range(n_studies):
+        ds = root / f"study{s:02d}"
+        ds.mkdir(parents=True, exist_ok=True)
+        (ds / "dataset_description.json").write_text(json.dumps({
+            "Name": f"study{s:02d}", "BIDSVersion": "1.9.0", "DatasetType": "derivative",
+            "GeneratedBy": [{"Name": "bench"}]}))
+        (ds / "task-go_statmap.json").write_text(json.dumps({"DegreesOfFreedom": 50}))
+        for i in range(per_study):
+            sub, con = divmod(i, 20)
+            folder = ds / f"sub-{sub:03d}" / "func"
+            folder.mkdir(parents=True, exist_ok=True)
+            body = bytearray(template)
+            body[-8:] = np.array([s, i], np.float32).tobytes()
+            f = folder / f"sub-{sub:03d}_task-go_contrast-c{con:02d}_stat-t_statmap.nii.gz"
+            f.write_bytes(gzip.compress(bytes(body), compresslevel=1))
+            files.append(f)
+    return files
+
+
+def floor(files: list[Path]) -> float:
+    t0 = time.perf_counter()
+    for f in files:
+        with open(f, "rb") as fh:
+            zlib.decompress(fh.read(), 16 + zlib.MAX_WBITS)
+    return time.perf_counter() - t0
+
+
+def baseline(root: Path) -> tuple[float, int]:
+    from bids import BIDSLayout
+
+    cfg_file = root.parent / "statmaps-config.json"
+    cfg_file.write_text(json.dumps({"name": "statmaps", "entities": [
+        {"name": "contrast", "pattern": r"[_/\\]+contrast-([a-zA-Z0-9+]+)"},
+        {"name": "stat", "pattern": r"[_/\\]+stat-([a-zA-Z0-9+]+)"}]}))
+    stat_cfg = str(cfg_file)
+    t0 = time.perf_counter()
+    n = 0
+    for ds in sorted(root.iterdir()):
+        layout = BIDSLayout(str(ds), validate=False, is_derivative=True,
+                            config=["bids", "derivatives", stat_cfg])
+        for bf in layout.get(suffix="statmap", extension=[".nii", ".nii.gz"]):
+            ents = bf.get_entities()
+            meta = bf.get_metadata()
+            hdr = nib.load(bf.path).header
+            _ = (ents, meta, hdr.get_data_shape(), hdr.get_best_affine(), hdr.get_data_dtype())
+            n += 1
+    return time.perf_counter() - t0, n
+
+
+def ours(root: Path, store: Path, jobs: int | None) -> tuple[float, float, int, int]:
+    """Cold and warm index runs in a child process; returns times, maps and its peak RSS (kB)."""
+    code = (
+        # same footing as the baseline, whose imports (pybids pulls in pandas) are not timed
+        "import sys, time, mapstore, pandas, pyarrow.compute, concurrent.futures, multiprocessing\n"
+        f"t=time.perf_counter(); r=mapstore.index([{str(root)!r}], {str(store)!r}, jobs={jobs!r}, progress=False)\n"
+        "cold=time.perf_counter()-t\n"
+        f"t=time.perf_counter(); w=mapstore.index([{str(root)!r}], {str(store)!r}, jobs={jobs!r}, progress=False)\n"
+        "warm=time.perf_counter()-t\n"
+        "print(cold, warm, r.maps, w.unchanged)\n"
+    )
+    before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout
+    peak = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
+    cold, warm, n, unchanged = out.split()
+    assert int(unchanged) == int(n)
+    return float(cold), float(warm), int(n), max(peak, before)
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    ap.add_argument("--maps", type=int, default=10_000)
+    ap.add_argument("--jobs", type=int, default=None)
+    ap.add_argument("--workdir", type=Path, default=None)
+    ap.add_argument("--skip-baseline", action="store_true")
+    args = ap.parse_args()
+    work = Path(args.workdir or tempfile.mkdtemp(prefix="mapstore-bench-"))
+    root = work / "tree"
+    if not root.exists():
+        files = make_tree(root, args.maps)
+    else:
+        files = sorted(root.rglob("*.nii.gz"))
+    n = len(files)
+    print(f"tree: {n} maps in 10 studies under {root}")
+    store = work / "store"
+    if store.exists():
+        import shutil
+
+        shutil.rmtree(store)
+    t_floor = floor(files)
+    cold, warm, n_ours, peak = ours(root, store, args.jobs)
+    assert n_ours == n, (n_ours, n)
+    print(f"floor (read + gunzip every file once): {n / t_floor:10,.0f} maps/s  ({t_floor:.2f} s)")
+    print(f"mapstore index, cold:                  {n / cold:10,.0f} maps/s  ({cold:.2f} s)")
+    print(f"mapstore index, warm (no change):      {n / warm:10,.0f} maps/s  ({warm:.2f} s)")
+    print(f"mapstore peak RSS (largest process):   {peak / 1024:10,.0f} MB")
+    print(f"ratio cold / floor time:               {cold / t_floor:10.2f}x  (target <= 2x)")
+    if not args.skip_baseline:
+        t_base, n_base = baseline(root)
+        assert n_base == n, (n_base, n)
+        print(f"baseline (pybids layout + nibabel):    {n / t_base:10,.0f} maps/s  ({t_base:.2f} s)")
+        print(f"ratio mapstore cold / baseline speed:  {t_base / cold:10.1f}x  (target >= 50x)")
+    self_peak = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss
+    print(f"this script's own peak RSS (baseline): {self_peak / 1024:10,.0f} MB")
+
+
+if __name__ == "__main__":
+    main()

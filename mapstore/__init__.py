@@ -1,0 +1,25 @@
+"""mapstore: pool brain statistic maps from many BIDS derivative datasets.
+
+Index them into a Parquet + DuckDB catalog, resample them once onto a common grid,
+label them with concepts, and draw leakage-free train/test matrices.
+"""
+
+from __future__ import annotations
+
+__version__ = "0.1.0"
+
+from .api import Store, open_store as open  # noqa: A001  (mapstore.open mirrors the builtin on purpose)
+from .catalog import IndexReport, index
+from .errors import MapstoreError
+from .header import HeaderFacts, read_header
+
+__all__ = sorted([
+    "HeaderFacts",
+    "IndexReport",
+    "MapstoreError",
+    "Store",
+    "__version__",
+    "index",
+    "open",
+    "read_header",
+])

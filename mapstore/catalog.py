@@ -1,0 +1,477 @@
+"""Build the catalog: discover -> hash + header -> one atomic catalog snapshot.
+
+Re-indexing is incremental: a map whose size and mtime are unchanged keeps its
+hash and header facts from the previous snapshot; changed files are read again;
+files gone from disk leave the catalog.  A file that cannot be read never stops
+the crawl: it becomes a row of ``problems``.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import sys
+import time
+from concurrent.futures import ProcessPoolExecutor
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterable
+
+import pyarrow as pa
+
+from .discover import (
+    DatasetInfo,
+    EntityParser,
+    MapFile,
+    MetadataOverrides,
+    NameRules,
+    Problem,
+    SidecarResolver,
+    find_datasets,
+    read_participants,
+    top_folders,
+    walk_dataset,
+)
+from .errors import HeaderError, ParameterError
+from .hashing import digest_file
+from .header import NIFTI1_SIZE, NIFTI2_SIZE, HeaderFacts, header_prefix, parse_header
+from .store import (
+    DATASETS_SCHEMA,
+    MAPS_SCHEMA,
+    PROBLEMS_SCHEMA,
+    Catalog,
+    commit_head,
+    ensure_store,
+    new_snapshot_id,
+    read_head,
+    write_lock,
+    write_parquet_atomic,
+)
+
+__all__ = ["IndexReport", "index", "map_id_for", "probe_file"]
+
+_N1_SIZES = (NIFTI1_SIZE.to_bytes(4, "little"), NIFTI1_SIZE.to_bytes(4, "big"))
+
+_ENTITY_COLUMNS = ("sub", "ses", "task", "acq", "run", "rec", "space", "res", "desc", "contrast", "stat")
+_HEADER_COLUMNS = ("sha256", "nbytes", "mtime_ns", "nifti_version", "endianness", "shape", "n_volumes",
+                   "dtype", "bitpix", "vox_offset", "scl_slope", "scl_inter", "intent_code",
+                   "intent_name", "intent_p1", "qform_code", "sform_code", "affine_source", "affine",
+                   "voxel_size", "orientation", "grid_id", "header_warnings")
+
+
+@dataclass
+class IndexReport:
+    """What one ``index`` run did."""
+
+    store: str
+    datasets: int
+    maps: int
+    new: int
+    changed: int
+    unchanged: int
+    removed: int
+    problems: int
+    kept_datasets: int
+    seconds: float
+    problem_codes: dict[str, int] = field(default_factory=dict)
+
+    def summary(self) -> str:
+        rate = (self.new + self.changed) / self.seconds if self.seconds > 0 else 0.0
+        lines = [
+            f"store: {self.store}",
+            f"datasets: {self.datasets}   maps: {self.maps}   "
+            f"(new {self.new}, changed {self.changed}, unchanged {self.unchanged}, removed {self.removed})",
+            f"read {self.new + self.changed} files in {self.seconds:.2f} s ({rate:,.0f} maps/s)",
+        ]
+        if self.kept_datasets:
+            lines.append(f"kept {self.kept_datasets} dataset(s) from earlier runs, not under these roots")
+        if self.problems:
+            codes = ", ".join(f"{k} x{v}" for k, v in sorted(self.problem_codes.items()))
+            lines.append(f"problems: {self.problems} ({codes}); see: mapstore sql --store {self.store} "
+                         "\"SELECT * FROM problems\"")
+        return "\n".join(lines)
+
+
+def map_id_for(dataset_key: str, relpath: str) -> str:
+    """Stable id of a map: a hash of its dataset identity and its path in the dataset."""
+    return hashlib.sha256(f"{dataset_key}\n{relpath}".encode()).hexdigest()[:16]
+
+
+def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None
+               ) -> tuple[dict[str, Any], str, int] | Problem:
+    """Hash one file and parse its header from the same read.
+
+    Returns the header columns (shared between files with byte-identical headers
+    through ``cache``; do not modify), the SHA-256 and the size, or a Problem.
+    """
+    try:
+        dig = digest_file(path)
+    except FileNotFoundError:
+        return Problem(path, "missing-file", "file vanished during the crawl", "index again")
+    except OSError as exc:
+        return Problem(path, "unreadable", f"cannot read file ({exc.strerror})", "check permissions")
+    try:
+        prefix = header_prefix(path, dig.head)
+        # maps of one study usually share byte-identical headers: parse each header once
+        key = prefix[:NIFTI1_SIZE] if prefix[:4] in _N1_SIZES else prefix[:NIFTI2_SIZE]
+        cols = cache.get(key) if cache is not None else None
+        if cols is None:
+            cols = _header_columns(parse_header(path, prefix))
+            if cache is not None:
+                cache[key] = cols
+    except HeaderError as exc:
+        return Problem(path, exc.code, exc.reason, exc.remedy, stage="header")
+    if not path.endswith(".gz") and dig.nbytes < cols["vox_offset"] + cols["_data_nbytes"]:
+        return Problem(path, "truncated-data",
+                       f"file has {dig.nbytes} bytes, header promises {cols['vox_offset'] + cols['_data_nbytes']}",
+                       "the file was cut short; re-create or re-download it", stage="header")
+    return cols, dig.sha256, dig.nbytes
+
+
+def _probe_batch(paths: list[str]) -> list[tuple[dict[str, Any], str, int] | Problem]:
+    cache: dict[bytes, dict[str, Any]] = {}
+    return [probe_file(p, cache) for p in paths]
+
+
+def _header_columns(facts: HeaderFacts) -> dict[str, Any]:
+    return {
+        "nifti_version": facts.nifti_version, "endianness": facts.endianness,
+        "shape": list(facts.shape), "n_volumes": facts.n_volumes, "dtype": facts.dtype,
+        "bitpix": facts.bitpix, "vox_offset": facts.vox_offset,
+        "scl_slope": facts.scl_slope, "scl_inter": facts.scl_inter,
+        "intent_code": facts.intent_code, "intent_name": facts.intent_name,
+        "intent_p1": facts.intent_p1,
+        "qform_code": facts.qform_code, "sform_code": facts.sform_code,
+        "affine_source": facts.affine_source, "affine": list(facts.affine),
+        "voxel_size": list(facts.voxel_size), "orientation": facts.orientation,
+        "grid_id": facts.grid_id, "header_warnings": list(facts.warnings),
+        "_data_nbytes": facts.data_nbytes,
+    }
+
+
+def _to_float(v: Any) -> float | None:
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return None
+    return f
+
+
+def _participants_table(rows: list[dict[str, Any]]) -> pa.Table:
+    """Union of participants columns; a column is numeric when every value parses as a number."""
+    fixed = ["dataset", "participant_id", "sub", "participant"]
+    extra: list[str] = []
+    for r in rows:
+        for k in r:
+            if k not in fixed and k not in extra:
+                extra.append(k)
+    cols: dict[str, pa.Array] = {k: pa.array([r.get(k) for r in rows], pa.string()) for k in fixed}
+    for k in extra:
+        vals = [r.get(k) for r in rows]
+        present = [v for v in vals if v is not None]
+        if present and all(_to_float(v) is not None for v in present):
+            if all(float(v).is_integer() and "." not in str(v) for v in present):
+                cols[k] = pa.array([None if v is None else int(float(v)) for v in vals], pa.int64())
+            else:
+                cols[k] = pa.array([None if v is None else float(v) for v in vals], pa.float64())
+        else:
+            cols[k] = pa.array(vals, pa.string())
+    return pa.table(cols)
+
+
+def _resolve_jobs(jobs: int | None) -> int:
+    if jobs is None:
+        return os.cpu_count() or 1
+    if not isinstance(jobs, int) or jobs < 1:
+        raise ParameterError(f"jobs must be a positive integer, got {jobs!r}")
+    return jobs
+
+
+def _under(path: str, roots: list[Path]) -> bool:
+    p = Path(path)
+    return any(p == r or r in p.parents for r in roots)
+
+
+@dataclass
+class _Unit:
+    """One piece of crawl work: a dataset, or some of its top-level folders."""
+
+    ds: DatasetInfo
+    parser: EntityParser
+    top: list[str] | None
+    root_maps: bool
+    by_sub: dict[str, dict[str, Any]]
+    rules: NameRules
+    overrides: MetadataOverrides
+    prev: pa.Table | None  # this unit's rows of the previous snapshot, for incremental runs
+
+
+@dataclass
+class _UnitResult:
+    rows: pa.Table
+    problems: list[Problem]
+    new: int
+    changed: int
+    unchanged: int
+
+
+def _previous_subset(prev: pa.Table | None, dataset: str, top: list[str] | None,
+                     root_maps: bool) -> pa.Table | None:
+    """Rows of the previous snapshot that one unit of work may reuse."""
+    if prev is None:
+        return None
+    import pyarrow.compute as pc
+
+    t = prev.filter(pc.equal(prev["dataset"], dataset))
+    if top is not None:
+        first = pc.list_element(pc.split_pattern(t["relpath"], "/", max_splits=1), 0)
+        keep = pc.is_in(first, pa.array(top, pa.string()))
+        if root_maps:
+            keep = pc.or_(keep, pc.invert(pc.match_substring(t["relpath"], "/")))
+        t = t.filter(keep)
+    return t
+
+
+def _run_unit(unit: _Unit) -> _UnitResult:
+    ds = unit.ds
+    parser = unit.parser
+    maps, jsons, problems = walk_dataset(ds, parser, unit.rules, unit.top, unit.root_maps)
+    resolver = SidecarResolver(ds, jsons, parser)
+    prev = {r["relpath"]: r for r in unit.prev.to_pylist()} if unit.prev is not None else {}
+    cache: dict[bytes, dict[str, Any]] = {}
+    rows = []
+    new = changed = unchanged = 0
+    for m in maps:
+        old = prev.get(m.relpath)
+        if old is not None and old["nbytes"] == m.nbytes and old["mtime_ns"] == m.mtime_ns:
+            hdr = old
+            unchanged += 1
+        else:
+            res = probe_file(m.path, cache)
+            if isinstance(res, Problem):
+                problems.append(Problem(res.path, res.code, res.reason, res.remedy, res.level,
+                                        ds.key, res.stage))
+                continue
+            cols, sha, nbytes = res
+            hdr = {**cols, "sha256": sha, "nbytes": nbytes, "mtime_ns": m.mtime_ns}
+            if old is None:
+                new += 1
+            else:
+                changed += 1
+        rows.append(_map_row(ds, m, resolver, unit.by_sub, unit.overrides, hdr))
+    problems.extend(resolver.problems)
+    return _UnitResult(pa.Table.from_pylist(rows, schema=MAPS_SCHEMA), problems, new, changed, unchanged)
+
+
+def _units(ds: DatasetInfo, parser: EntityParser, by_sub: dict[str, dict[str, Any]], rules: NameRules,
+           over: MetadataOverrides, prev: pa.Table | None, jobs: int) -> list[_Unit]:
+    if jobs == 1:
+        return [_Unit(ds, parser, None, True, by_sub, rules, over,
+                      _previous_subset(prev, ds.key, None, True))]
+    tops = top_folders(ds)
+    n_parts = min(len(tops), 4 * jobs) or 1
+    parts = [tops[i::n_parts] for i in range(n_parts)]
+    return [_Unit(ds, parser, part, i == 0, by_sub, rules, over,
+                  _previous_subset(prev, ds.key, part, i == 0))
+            for i, part in enumerate(parts)]
+
+
+def index(
+    roots: Iterable[str | os.PathLike[str]],
+    store: str | os.PathLike[str],
+    *,
+    rules: str | os.PathLike[str] | None = None,
+    overrides: str | os.PathLike[str] | None = None,
+    jobs: int | None = None,
+    prune: bool = False,
+    progress: bool | None = None,
+) -> IndexReport:
+    """Crawl derivative datasets and publish a new catalog snapshot in ``store``.
+
+    Parameters
+    ----------
+    roots : iterable of path
+        Derivative datasets, raw datasets holding ``derivatives/``, or folders of them.
+    store : path
+        The store folder (created if missing).  Never inside the roots' datasets.
+    rules : path, optional
+        A name-rules file for statistic maps without BIDS ``_statmap`` names.
+    overrides : path, optional
+        A mapping file setting study, site and lab per dataset or subject.
+    jobs : int, optional
+        Processes for crawling, hashing and header reading (default: all cores).
+    prune : bool, default=False
+        Drop datasets indexed by earlier runs that are not under these roots.
+    progress : bool, optional
+        Show a progress bar (default: when standard error is a terminal).
+
+    Returns
+    -------
+    IndexReport
+    """
+    t0 = time.perf_counter()
+    roots = [Path(r).expanduser().absolute() for r in roots]
+    if not roots:
+        raise ParameterError("index needs at least one ROOT folder")
+    jobs = _resolve_jobs(jobs)
+    name_rules = NameRules.load(rules)
+    meta_over = MetadataOverrides.load(overrides)
+    store_path = Path(store).expanduser().absolute()
+    datasets, problems = find_datasets(roots)
+    for ds in datasets:
+        droot = Path(ds.root)
+        if store_path == droot or droot in store_path.parents:
+            raise ParameterError(f"--store {store_path} lies inside the dataset {droot}; keep the store "
+                                 "outside source datasets (mapstore never writes to them)")
+    store_path = ensure_store(store_path)
+    if progress is None:
+        progress = sys.stderr.isatty()
+
+    with write_lock(store_path):
+        head = read_head(store_path)
+        prev: pa.Table | None = None
+        prev_keys: set[tuple[str, str]] = set()
+        prev_datasets: list[dict[str, Any]] = []
+        prev_participants: list[dict[str, Any]] = []
+        prev_problems: list[dict[str, Any]] = []
+        found_keys = {d.key for d in datasets}
+        if head.catalog:
+            old = Catalog(store_path)
+            prev = old.table("maps").select(["relpath", "dataset", *_HEADER_COLUMNS])
+            prev_datasets = old.table("datasets").to_pylist()
+            prev_participants = old.table("participants").to_pylist()
+            prev_problems = old.table("problems").to_pylist()
+            prev_keys = set(zip(prev["dataset"].to_pylist(), prev["relpath"].to_pylist()))
+        kept = [] if prune else [d for d in prev_datasets if d["dataset"] not in found_keys
+                                 and not _under(d["root"], roots)]
+        kept_keys = {d["dataset"] for d in kept}
+        tables: list[pa.Table] = []
+        if kept_keys:
+            import pyarrow.compute as pc
+
+            old_maps = Catalog(store_path).table("maps")
+            tables.append(old_maps.filter(pc.is_in(old_maps["dataset"], pa.array(sorted(kept_keys)))))
+
+        participant_rows = [r for r in prev_participants if r["dataset"] in kept_keys]
+        parser = EntityParser()
+        units: list[_Unit] = []
+        pfiles: dict[str, str | None] = {}
+        for ds in datasets:
+            prows, pfile, pprobs = read_participants(ds)
+            problems.extend(pprobs)
+            pfiles[ds.key] = pfile
+            by_sub: dict[str, dict[str, Any]] = {}
+            for r in prows:
+                pid = r.get("participant_id") or ""
+                sub = pid[4:] if pid.startswith("sub-") else pid
+                rec = {"dataset": ds.key, "participant_id": pid, "sub": sub,
+                       "participant": f"{ds.study}/sub-{sub}",
+                       **{k: v for k, v in r.items() if k != "participant_id"}}
+                by_sub[sub] = rec
+                participant_rows.append(rec)
+            units += _units(ds, parser, by_sub, name_rules, meta_over, prev, jobs)
+
+        results: list[_UnitResult] = []
+        bar = None
+        if progress:
+            from tqdm import tqdm
+
+            bar = tqdm(total=len(units), unit="part", desc="indexing", file=sys.stderr)
+        if jobs > 1 and len(units) > 1:
+            import multiprocessing
+
+            ctx = multiprocessing.get_context("fork") if sys.platform == "linux" else None
+            with ProcessPoolExecutor(max_workers=min(jobs, len(units)), mp_context=ctx) as pool:
+                for res in pool.map(_run_unit, units):
+                    results.append(res)
+                    if bar:
+                        bar.update(1)
+        else:
+            for u in units:
+                results.append(_run_unit(u))
+                if bar:
+                    bar.update(1)
+        if bar:
+            bar.close()
+
+        n_maps_by_ds: dict[str, int] = {}
+        new = changed = unchanged = 0
+        for u, res in zip(units, results):
+            tables.append(res.rows)
+            problems.extend(res.problems)
+            new, changed, unchanged = new + res.new, changed + res.changed, unchanged + res.unchanged
+            n_maps_by_ds[u.ds.key] = n_maps_by_ds.get(u.ds.key, 0) + res.rows.num_rows
+        maps_table = pa.concat_tables(tables) if tables else MAPS_SCHEMA.empty_table()
+        maps_table = maps_table.sort_by([("dataset", "ascending"), ("relpath", "ascending")])
+        current_keys = set(zip(maps_table["dataset"].to_pylist(), maps_table["relpath"].to_pylist()))
+        removed = sum(1 for k in prev_keys if k not in current_keys)
+
+        ds_rows = list(kept)
+        for ds in datasets:
+            ds_rows.append({
+                "dataset": ds.key, "name": ds.name, "study": ds.study, "root": ds.root,
+                "dataset_type": ds.dataset_type, "generated_by": json.dumps(ds.generated_by),
+                "bids_version": ds.bids_version, "raw_root": ds.raw_root, "raw_name": ds.raw_name,
+                "participants_file": pfiles[ds.key], "n_maps": n_maps_by_ds.get(ds.key, 0),
+                "description": json.dumps(ds.description, sort_keys=True, default=str),
+            })
+        prob_rows = [r for r in prev_problems if r.get("dataset") in kept_keys]
+        prob_rows += [{"path": p.path, "dataset": p.dataset, "code": p.code, "level": p.level,
+                       "stage": p.stage, "reason": p.reason, "remedy": p.remedy} for p in problems]
+
+        snap = new_snapshot_id()
+        snap_dir = store_path / "catalog" / snap
+        snap_dir.mkdir(parents=True)
+        write_parquet_atomic(maps_table, snap_dir / "maps.parquet")
+        write_parquet_atomic(pa.Table.from_pylist(ds_rows, schema=DATASETS_SCHEMA), snap_dir / "datasets.parquet")
+        write_parquet_atomic(_participants_table(participant_rows), snap_dir / "participants.parquet")
+        write_parquet_atomic(pa.Table.from_pylist(prob_rows, schema=PROBLEMS_SCHEMA), snap_dir / "problems.parquet")
+        head.catalog = f"catalog/{snap}"
+        commit_head(store_path, head, {"event": "index", "roots": [str(r) for r in roots],
+                                       "maps": maps_table.num_rows, "snapshot": snap})
+
+    codes: dict[str, int] = {}
+    for p in prob_rows:
+        codes[p["code"]] = codes.get(p["code"], 0) + 1
+    return IndexReport(
+        store=str(store_path), datasets=len(ds_rows), maps=maps_table.num_rows, new=new, changed=changed,
+        unchanged=unchanged, removed=removed, problems=len(prob_rows), kept_datasets=len(kept),
+        seconds=time.perf_counter() - t0, problem_codes=codes,
+    )
+
+
+def _map_row(ds: DatasetInfo, m: MapFile, resolver: SidecarResolver, by_sub: dict[str, dict[str, Any]],
+             over: MetadataOverrides, hdr: dict[str, Any]) -> dict[str, Any]:
+    ents = m.entities
+    meta, used, meta_json = resolver.resolve_full(m.relpath, ents)
+    sub = ents.get("sub")
+    prow = by_sub.get(sub) if sub is not None else None
+    site = None
+    if prow:
+        for k in ("site", "Site", "site_id"):
+            if prow.get(k) is not None:
+                site = str(prow[k])
+                break
+    lab = meta.get("InstitutionName")
+    origin = over.apply(ds.key, sub, {"study": ds.study, "site": site,
+                                      "lab": str(lab) if lab is not None else None})
+    dof = _to_float(meta.get("DegreesOfFreedom"))
+    dof_source = "sidecar" if dof is not None else None
+    if dof is None and hdr["intent_code"] == 3 and hdr["intent_p1"] and hdr["intent_p1"] > 0:
+        dof, dof_source = float(hdr["intent_p1"]), "header"  # nifti1.h: t-test intent_p1 = DOF
+    row = {c: ents.get(c) for c in _ENTITY_COLUMNS}
+    row.update({
+        "map_id": map_id_for(ds.key, m.relpath), "dataset": ds.key, "relpath": m.relpath,
+        "suffix": ents.get("suffix"), "extension": ents.get("extension"),
+        "entities": json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")},
+                               sort_keys=True),
+        "named_by": m.named_by,
+        "participant": f"{origin['study']}/sub-{sub}" if sub is not None else None,
+        "study": origin["study"], "site": origin["site"], "lab": origin["lab"],
+        "dof": dof, "dof_source": dof_source,
+        "metadata": meta_json,
+        "sidecars": used,
+    })
+    row.update(hdr)
+    return row

@@ -1,0 +1,162 @@
+"""Command line: parse options, call the public API, print, map errors to exit codes.
+
+Exit codes: 0 success, 1 a failure reported by mapstore, 2 a usage error.
+A user error never prints a traceback.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+
+import click
+
+import mapstore
+
+STORE_OPTION = click.option("--store", "store", required=True, type=click.Path(file_okay=False),
+                            help="Store folder (created by 'mapstore index').")
+
+
+@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+@click.version_option(mapstore.__version__, prog_name="mapstore")
+def cli() -> None:
+    """Pool brain statistic maps from many BIDS derivative datasets into one store."""
+
+
+def _format_cell(v: object, width: int = 38) -> str:
+    if v is None:
+        return ""
+    if isinstance(v, float):
+        text = f"{v:.6g}"
+    elif isinstance(v, (list, tuple)):
+        text = "[" + ",".join(_format_cell(x, 12) for x in v) + "]"
+    else:
+        text = str(v)
+    text = text.replace("\n", " ")
+    return text if len(text) <= width else text[: width - 1] + "…"
+
+
+def render_table(table, max_rows: int | None = None) -> str:
+    """A plain-text table of an Arrow table (cells cut at 38 characters)."""
+    names = table.column_names
+    rows = table.to_pylist() if max_rows is None else table.slice(0, max_rows).to_pylist()
+    cells = [[_format_cell(r[n]) for n in names] for r in rows]
+    widths = [max([len(n)] + [len(c[i]) for c in cells]) for i, n in enumerate(names)]
+    out = ["  ".join(n.ljust(w) for n, w in zip(names, widths)),
+           "  ".join("-" * w for w in widths)]
+    out += ["  ".join(c.ljust(w) for c, w in zip(row, widths)) for row in cells]
+    shown = len(rows)
+    out.append(f"({table.num_rows} row{'s' if table.num_rows != 1 else ''}"
+               + (f", first {shown} shown" if shown < table.num_rows else "") + ")")
+    return "\n".join(out)
+
+
+def write_table(table, fmt: str, out: str | None) -> None:
+    import pyarrow.csv as pacsv
+    import pyarrow.parquet as pq
+
+    if fmt == "parquet":
+        if not out:
+            raise click.UsageError("--format parquet needs --out FILE")
+        pq.write_table(table, out)
+        click.echo(f"wrote {table.num_rows} rows to {out}", err=True)
+        return
+    if fmt == "csv":
+        import io
+
+        buf = io.BytesIO()
+        flat = table
+        for i, field in enumerate(table.schema):
+            if str(field.type).startswith(("list", "large_list", "fixed_size_list", "struct")):
+                flat = flat.set_column(i, field.name,
+                                       [[json.dumps(v) for v in table.column(i).to_pylist()]])
+        pacsv.write_csv(flat, buf)
+        text = buf.getvalue().decode()
+    elif fmt == "json":
+        text = json.dumps(table.to_pylist(), default=str, indent=1) + "\n"
+    else:
+        text = render_table(table) + "\n"
+    if out:
+        Path(out).write_text(text)
+        click.echo(f"wrote {table.num_rows} rows to {out}", err=True)
+    else:
+        click.echo(text, nl=False)
+
+
+@cli.command("index")
+@click.argument("roots", nargs=-1, required=True, type=click.Path(exists=False))
+@STORE_OPTION
+@click.option("--rules", type=click.Path(dir_okay=False), help="Name-rules file for legacy map names.")
+@click.option("--origins", type=click.Path(dir_okay=False),
+              help="Mapping file setting study, site and lab per dataset or subject.")
+@click.option("--jobs", type=click.IntRange(min=1), default=None, help="Processes (default: all cores).")
+@click.option("--prune", is_flag=True, help="Drop datasets from earlier runs not under these ROOTs.")
+def index_cmd(roots, store, rules, origins, jobs, prune) -> None:
+    """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them)."""
+    report = mapstore.index(roots, store, rules=rules, overrides=origins, jobs=jobs, prune=prune)
+    click.echo(report.summary())
+
+
+@cli.command("sql")
+@STORE_OPTION
+@click.argument("query")
+@click.option("--format", "fmt", type=click.Choice(["table", "csv", "json", "parquet"]), default="table",
+              show_default=True)
+@click.option("--out", type=click.Path(dir_okay=False), help="Write to FILE instead of standard output.")
+def sql_cmd(store, query, fmt, out) -> None:
+    """Run a read-only SQL QUERY over the views maps, datasets, participants, problems, labels."""
+    table = mapstore.open(store).sql(query)
+    write_table(table, fmt, out)
+
+
+@cli.command("demo")
+@click.argument("folder", type=click.Path(file_okay=False))
+@click.option("--scale", type=click.FloatRange(0.1, 1.0), default=1.0, show_default=True,
+              help="Fraction of the demo's subjects to generate.")
+def demo_cmd(folder, scale) -> None:
+    """Generate the invented demo consortium in FOLDER and run the whole job on it."""
+    from .demo import make_demo
+
+    base = Path(folder).absolute()
+    data, store = base / "data", base / "store"
+    click.echo(f"writing the invented consortium to {data} ...")
+    summary = make_demo(data, scale=scale)
+    click.echo(f"  {summary.studies} studies by {summary.labs} labs, {summary.maps} statistic maps, "
+               f"{len(summary.planted_problems)} planted problem files")
+    click.echo(f"indexing into {store} ...")
+    report = mapstore.index([data], store, rules=summary.rules, overrides=summary.overrides)
+    click.echo(report.summary())
+    st = mapstore.open(store)
+    click.echo("\nmaps per study, grid and stat:")
+    click.echo(render_table(st.sql(
+        "SELECT study, lab, count(DISTINCT site) AS sites, count(DISTINCT participant) AS subjects, "
+        "string_agg(DISTINCT stat, ',' ORDER BY stat) AS stats, orientation, "
+        "list_first(voxel_size) AS voxel_mm, count(*) AS maps FROM maps "
+        "GROUP BY ALL ORDER BY study")))
+    click.echo("\nproblems found:")
+    click.echo(render_table(st.sql("SELECT code, level, path, remedy FROM problems ORDER BY code")))
+    click.echo(f"\ntry: mapstore sql --store {store} \"SELECT sub, task, contrast, stat, dof FROM maps LIMIT 5\"")
+
+
+def main(argv: list[str] | None = None) -> int:
+    """Entry point: run the CLI and turn mapstore errors into messages and exit codes."""
+    try:
+        cli.main(args=argv, prog_name="mapstore", standalone_mode=False)
+    except click.exceptions.Abort:
+        click.echo("aborted", err=True)
+        return 1
+    except click.ClickException as exc:
+        exc.show()
+        return exc.exit_code
+    except mapstore.MapstoreError as exc:
+        click.echo(f"error: {exc}", err=True)
+        return getattr(exc, "exit_code", 1)
+    except KeyboardInterrupt:
+        click.echo("interrupted", err=True)
+        return 130
+    return 0
+
+
+if __name__ == "__main__":  # pragma: no cover
+    sys.exit(main())

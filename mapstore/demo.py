@@ -1,0 +1,326 @@
+"""A deterministic, invented consortium of statistic-map derivatives for the demo.
+
+Four invented labs (one with two sites) ran six invented studies.  Every contrast
+evokes one invented "concept" at a fixed place in MNI space, on top of smooth
+noise, so a decoder trained on some studies predicts the others above chance.
+Grids differ on purpose: 2 mm LAS 91x109x91, 3 mm RAS 61x73x61, 2 mm RAS on
+another (cut) bounding box, and 1.5 mm RAS.  Nothing here comes from real data.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+__all__ = ["CONCEPTS", "STUDIES", "GRIDS", "make_demo", "DemoSummary", "demo_vocabulary", "demo_rules"]
+
+# invented concepts and the MNI coordinates (mm) where the demo puts their activity
+CONCEPTS: dict[str, list[tuple[float, float, float]]] = {
+    "visual-motion": [(44, -68, 2), (-44, -70, 2)],
+    "hand-movement": [(-38, -22, 56), (4, -8, 60)],
+    "listening": [(54, -20, 6), (-52, -22, 6)],
+    "reading": [(-46, -56, -12), (-48, 14, 20)],
+    "arithmetic": [(32, -60, 48), (-30, -62, 46)],
+}
+
+
+@dataclass(frozen=True)
+class Grid:
+    name: str
+    shape: tuple[int, int, int]
+    affine: tuple[tuple[float, ...], ...]
+
+    @property
+    def matrix(self) -> np.ndarray:
+        return np.array(self.affine, dtype=np.float64)
+
+
+GRIDS = {
+    "las2": Grid("las2", (91, 109, 91), ((-2, 0, 0, 90), (0, 2, 0, -126), (0, 0, 2, -72), (0, 0, 0, 1))),
+    "ras3": Grid("ras3", (61, 73, 61), ((3, 0, 0, -90), (0, 3, 0, -126), (0, 0, 3, -72), (0, 0, 0, 1))),
+    "ras2cut": Grid("ras2cut", (95, 113, 56), ((2, 0, 0, -94), (0, 2, 0, -130), (0, 0, 2, -50), (0, 0, 0, 1))),
+    "ras15": Grid("ras15", (105, 129, 97), ((1.5, 0, 0, -78), (0, 1.5, 0, -114), (0, 0, 1.5, -60), (0, 0, 0, 1))),
+}
+
+
+@dataclass(frozen=True)
+class Study:
+    name: str
+    lab: str
+    sites: tuple[str, ...]
+    task: str
+    contrasts: dict[str, str]  # contrast label -> concept
+    stats: tuple[str, ...]
+    grid: str
+    n_subjects: int = 8
+    sessions: tuple[str, ...] = ()
+    runs: tuple[str, ...] = ()
+    nested_in_raw: bool = False
+    gzip: bool = True
+    legacy_names: bool = False
+    nan_outside: bool = True
+
+
+STUDIES: tuple[Study, ...] = (
+    Study("glowtrack", "Lantern Lab", ("lantern-north", "lantern-south"), "driftdots",
+          {"coherentMotion": "visual-motion", "buttonPress": "hand-movement"},
+          ("t", "effect"), "las2", n_subjects=10, sessions=("1", "2"), nested_in_raw=True, gzip=False),
+    Study("inkwell", "Lantern Lab", ("lantern-north",), "glyphread",
+          {"wordsVsConsonants": "reading", "sumsVsWords": "arithmetic", "tonesVsWords": "listening"},
+          ("t", "z"), "las2", gzip=False, nan_outside=False),
+    Study("gravelbeat", "Quarry Lab", ("quarry-main",), "tapsync",
+          {"tapVsRest": "hand-movement", "metronome": "listening"},
+          ("t",), "ras3", runs=("1", "2"), nested_in_raw=True),
+    Study("slatecount", "Quarry Lab", ("quarry-main",), "quickadd",
+          {"addVsRead": "arithmetic", "readDigits": "reading", "flowField": "visual-motion"},
+          ("t", "z"), "ras2cut", gzip=False),
+    Study("tidepool", "Meridian Lab", ("meridian-east",), "wavewatch",
+          {"rippleMotion": "visual-motion", "oceanSounds": "listening", "gripSqueeze": "hand-movement"},
+          ("t",), "ras15"),
+    Study("emberlight", "Fernhill Lab", ("fernhill-campus",), "storytime",
+          {"sentenceRead": "reading", "storyListen": "listening", "mentalSum": "arithmetic",
+           "fistClench": "hand-movement"},
+          ("t", "effect", "variance"), "ras3", legacy_names=True, nan_outside=False),
+)
+
+_STAT_INTENT = {"t": 3, "z": 5, "effect": 1001, "variance": 0}
+_LEGACY_STAT = {"t": "t", "effect": "beta", "variance": "variance"}
+
+
+@dataclass
+class DemoSummary:
+    root: str
+    studies: int
+    labs: int
+    maps: int
+    planted_problems: list[str]
+    vocabulary: str
+    rules: str
+    overrides: str
+
+
+def _rng(*parts: object) -> np.random.Generator:
+    seed = int.from_bytes(hashlib.sha256("|".join(map(str, parts)).encode()).digest()[:8], "little")
+    return np.random.default_rng(seed)
+
+
+def _axes(grid: Grid) -> list[np.ndarray]:
+    a = grid.matrix
+    return [a[i, i] * np.arange(grid.shape[i]) + a[i, 3] for i in range(3)]
+
+
+def _smooth_noise(rng: np.random.Generator, shape: tuple[int, int, int]) -> np.ndarray:
+    from scipy import ndimage
+
+    coarse = rng.standard_normal(tuple(max(2, s // 5) for s in shape)).astype(np.float32)
+    zoom = [s / c for s, c in zip(shape, coarse.shape)]
+    out = ndimage.zoom(coarse, zoom, order=1, grid_mode=False)
+    return out[: shape[0], : shape[1], : shape[2]]
+
+
+def _blob(axes: list[np.ndarray], centre: tuple[float, float, float], sigma: float) -> np.ndarray:
+    g = [np.exp(-((ax - c) ** 2) / (2 * sigma**2)).astype(np.float32) for ax, c in zip(axes, centre)]
+    return g[0][:, None, None] * g[1][None, :, None] * g[2][None, None, :]
+
+
+def _brain(axes: list[np.ndarray]) -> np.ndarray:
+    x, y, z = axes
+    r = ((x / 70.0) ** 2)[:, None, None] + (((y + 18) / 92.0) ** 2)[None, :, None] + \
+        (((z - 8) / 64.0) ** 2)[None, None, :]
+    return r <= 1.0
+
+
+def _map_volume(study: Study, sub: str, concept: str, grid: Grid, stat: str, key: str,
+                brain: np.ndarray, axes: list[np.ndarray]) -> np.ndarray:
+    rng = _rng(study.name, sub, key)
+    subj = _rng(study.name, sub)
+    signal = np.zeros(grid.shape, dtype=np.float32)
+    amp = 3.0 + 0.5 * subj.standard_normal()
+    for centre in CONCEPTS[concept]:
+        jitter = subj.normal(0, 3.0, 3)
+        signal += _blob(axes, tuple(np.add(centre, jitter)), 7.0)
+    noise = _smooth_noise(rng, grid.shape) * 1.2
+    t = amp * signal + noise
+    if stat == "t":
+        vol = t
+    elif stat == "z":
+        vol = t * 0.95
+    elif stat == "effect":
+        vol = t * 0.8 + 0.1 * _smooth_noise(rng, grid.shape)
+    elif stat == "variance":
+        vol = 0.5 + 0.2 * np.abs(_smooth_noise(rng, grid.shape))
+    else:  # pragma: no cover - STUDIES lists known stats only
+        raise ValueError(stat)
+    fill = np.nan if study.nan_outside else 0.0
+    return np.where(brain, vol, fill).astype(np.float32)
+
+
+def _save(vol: np.ndarray, grid: Grid, path: Path, stat: str, dof: int, int16: bool) -> None:
+    import nibabel as nib
+
+    aff = grid.matrix
+    if int16:
+        img = nib.Nifti1Image(vol, aff)
+        img.set_data_dtype(np.int16)  # nibabel picks scl_slope/inter on save
+    else:
+        img = nib.Nifti1Image(vol, aff)
+    img.header.set_xyzt_units("mm")
+    img.set_sform(aff, code=4)  # 4 = MNI152 (nifti1.h)
+    img.set_qform(aff, code=4)
+    img.header["intent_code"] = _STAT_INTENT[stat]
+    if stat == "t":
+        img.header["intent_p1"] = dof
+    path.parent.mkdir(parents=True, exist_ok=True)
+    nib.save(img, str(path))
+
+
+def _write_json(path: Path, doc: object) -> None:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(json.dumps(doc, indent=2, sort_keys=True) + "\n")
+
+
+def demo_vocabulary() -> dict:
+    """The demo's concept vocabulary: invented concepts, a small hierarchy, and rules."""
+    rules = []
+    for study in STUDIES:
+        for contrast, concept in study.contrasts.items():
+            rules.append({"task": study.task, "contrast": contrast, "concepts": [concept]})
+    return {
+        "vocabulary": "mapstore-demo-concepts",
+        "version": "1",
+        "concepts": {
+            "perception": {"description": "taking in the world through the senses"},
+            "action": {"description": "producing movement"},
+            "symbolic": {"description": "working with symbols"},
+            "visual-motion": {"broader": ["perception"], "description": "seeing things move"},
+            "listening": {"broader": ["perception"], "description": "hearing sounds or speech"},
+            "hand-movement": {"broader": ["action"], "description": "moving the fingers or hand"},
+            "reading": {"broader": ["symbolic"], "description": "reading words or digits"},
+            "arithmetic": {"broader": ["symbolic"], "description": "adding numbers in one's head"},
+        },
+        "rules": rules,
+    }
+
+
+def demo_rules() -> dict:
+    """Name rules for the one demo study that uses legacy (non-BIDS) statistic file names."""
+    return {"rules": [{
+        "datasets": ["emberlight*"],
+        "regex": r"sub-(?P<sub>[0-9]+)/glm/(?P<contrast>[A-Za-z]+)_beta\.nii\.gz",
+        "entities": {"task": "storytime", "stat": "effect", "space": "MNI152Lin"},
+    }, {
+        "datasets": ["emberlight*"],
+        "template": "sub-{sub}/glm/{contrast}_{stat}.nii.gz",
+        "entities": {"task": "storytime", "space": "MNI152Lin"},
+    }]}
+
+
+def make_demo(root: str | os.PathLike[str], *, scale: float = 1.0) -> DemoSummary:
+    """Write the invented consortium under ``root`` (deterministic; overwrites its own files).
+
+    Parameters
+    ----------
+    root : path
+        Folder to create; it receives one folder per study plus the demo's
+        vocabulary, name-rules and overrides files.
+    scale : float, default=1.0
+        Fraction of subjects per study to write (for quick tests), at least 2.
+    """
+    import nibabel  # noqa: F401  (fail early with a clear import error)
+
+    root = Path(root).expanduser().absolute()
+    root.mkdir(parents=True, exist_ok=True)
+    n_maps = 0
+    planted: list[str] = []
+    for study in STUDIES:
+        grid = GRIDS[study.grid]
+        axes = _axes(grid)
+        brain = _brain(axes)
+        if study.nested_in_raw:
+            raw = root / study.name
+            _write_json(raw / "dataset_description.json", {
+                "Name": study.name, "BIDSVersion": "1.9.0", "DatasetType": "raw",
+                "Authors": [f"{study.lab} members"]})
+            ds = raw / "derivatives" / "firstlevel"
+            ptsv = raw / "participants.tsv"
+        else:
+            ds = root / study.name
+            ptsv = ds / "participants.tsv"
+        desc = {"Name": study.name if not study.nested_in_raw else f"{study.name} first-level models",
+                "BIDSVersion": "1.9.0", "DatasetType": "derivative",
+                "GeneratedBy": [{"Name": "demo-glm", "Version": "0.3",
+                                 "Description": "invented first-level models"}]}
+        if study.nested_in_raw:
+            desc["SourceDatasets"] = [{"URL": "../.."}]
+        _write_json(ds / "dataset_description.json", desc)
+        n_sub = max(2, round(study.n_subjects * scale))
+        subjects = [f"{i + 1:02d}" for i in range(n_sub)]
+        prng = _rng(study.name, "participants")
+        lines = ["participant_id\tsite\tage\tsex"]
+        for i, sub in enumerate(subjects):
+            site = study.sites[i % len(study.sites)]
+            lines.append(f"sub-{sub}\t{site}\t{int(prng.integers(19, 41))}\t{'FM'[int(prng.integers(0, 2))]}")
+        ptsv.parent.mkdir(parents=True, exist_ok=True)
+        ptsv.write_text("\n".join(lines) + "\n")
+        dof = 140 if study.runs else 180
+        if not study.legacy_names:
+            _write_json(ds / f"task-{study.task}_statmap.json", {
+                "DegreesOfFreedom": dof, "InstitutionName": study.lab,
+                "Description": f"first-level contrasts of the {study.task} task"})
+        for sub in subjects:
+            sessions = study.sessions or (None,)
+            runs = study.runs or (None,)
+            if not study.legacy_names and sub == subjects[1]:
+                # one subject lost a run: a subject-level sidecar overrides the dataset one
+                _write_json(ds / f"sub-{sub}" / f"sub-{sub}_task-{study.task}_statmap.json",
+                            {"DegreesOfFreedom": dof - 40})
+            for ses in sessions:
+                for run in runs:
+                    for contrast, concept in study.contrasts.items():
+                        for stat in study.stats:
+                            key = (ses, run, contrast, stat)
+                            vol = _map_volume(study, sub, concept, grid, stat, str(key), brain, axes)
+                            if study.legacy_names:
+                                label = _LEGACY_STAT[stat]
+                                path = ds / f"sub-{sub}" / "glm" / f"{contrast}_{label}.nii.gz"
+                            else:
+                                parts = [f"sub-{sub}"]
+                                folder = ds / f"sub-{sub}"
+                                if ses:
+                                    parts.append(f"ses-{ses}")
+                                    folder = folder / f"ses-{ses}"
+                                parts.append(f"task-{study.task}")
+                                if run:
+                                    parts.append(f"run-{run}")
+                                parts += ["space-MNI152Lin", f"contrast-{contrast}", f"stat-{stat}", "statmap"]
+                                ext = ".nii.gz" if study.gzip else ".nii"
+                                path = folder / "func" / ("_".join(parts) + ext)
+                            _save(vol, grid, path, stat, dof, int16=(stat == "effect" and study.legacy_names))
+                            n_maps += 1
+        if study.legacy_names:
+            _write_json(ds / "task-storytime_statmap.json", {"InstitutionName": study.lab})
+    # planted problems, as real consortia have them
+    last = sorted((root / "tidepool").glob("sub-*"))[-1].name
+    tide = root / "tidepool" / last / "func"
+    if tide.is_dir():
+        link = tide / f"{last}_task-wavewatch_space-MNI152Lin_contrast-extraRipple_stat-t_statmap.nii.gz"
+        if not link.is_symlink():
+            os.symlink("../../.git/annex/objects/XX/missing.nii.gz", link)
+        planted.append(str(link.relative_to(root)))
+    bad = root / "slatecount" / "sub-01" / "func" / "sub-01_task-quickadd_space-MNI152Lin_contrast-broken_stat-t_statmap.nii"
+    if bad.parent.is_dir():
+        bad.write_bytes(b"\x00" * 100)
+        planted.append(str(bad.relative_to(root)))
+    vocab = root / "concepts.json"
+    _write_json(vocab, demo_vocabulary())
+    rules = root / "name-rules.json"
+    _write_json(rules, demo_rules())
+    overrides = root / "origins.json"
+    _write_json(overrides, {"datasets": {"emberlight": {"lab": "Fernhill Lab", "site": "fernhill-campus"}}})
+    return DemoSummary(str(root), len(STUDIES), len({s.lab for s in STUDIES}), n_maps, planted,
+                       str(vocab), str(rules), str(overrides))

@@ -1,0 +1,670 @@
+"""Walk BIDS derivative datasets: find datasets, statistic maps, entities, sidecars.
+
+Nothing here opens a NIfTI file.  Entities are parsed with the patterns of pybids'
+bundled configuration (read once from the installed package), extended with the
+statistical-derivative entities it lacks (``contrast``, ``stat``).  Sidecar
+metadata follows the BIDS inheritance principle: every JSON file in the map's
+folder or a parent folder whose entities are a subset of the map's and whose
+suffix matches applies, the deeper (more specific) overriding the shallower.
+"""
+
+from __future__ import annotations
+
+import csv
+import fnmatch
+import hashlib
+import json
+import os
+import re
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterable, Iterator
+
+from .errors import RulesError
+
+__all__ = [
+    "Problem",
+    "DatasetInfo",
+    "MapFile",
+    "EntityParser",
+    "NameRules",
+    "MetadataOverrides",
+    "find_datasets",
+    "walk_dataset",
+    "top_folders",
+    "SidecarResolver",
+    "read_participants",
+    "STAT_SUFFIX",
+]
+
+STAT_SUFFIX = "statmap"
+NIFTI_EXTENSIONS = (".nii.gz", ".nii")
+# Entities of the statistical-derivatives convention that pybids' bundled config lacks.
+EXTRA_ENTITIES = {
+    "contrast": r"[_/\\]+contrast-([a-zA-Z0-9+]+)",
+    "stat": r"[_/\\]+stat-([a-zA-Z0-9+]+)",
+}
+SKIP_DIRS = {"derivatives", "sourcedata", "code", "stimuli", "log", "logs"}
+
+
+@dataclass(frozen=True)
+class Problem:
+    """A file or folder that could not be used, or was used with a caveat (level 'warning')."""
+
+    path: str
+    code: str
+    reason: str
+    remedy: str
+    level: str = "error"
+    dataset: str | None = None
+    stage: str = "discover"
+
+
+@dataclass
+class DatasetInfo:
+    """One derivative dataset found under an index root."""
+
+    root: str  # absolute path
+    key: str  # stable identity, used in map ids
+    name: str
+    dataset_type: str | None
+    generated_by: list[dict[str, Any]]
+    bids_version: str | None
+    raw_root: str | None
+    raw_name: str | None
+    description: dict[str, Any]
+    has_description: bool
+
+    @property
+    def study(self) -> str:
+        return self.raw_name or self.name
+
+
+@dataclass
+class MapFile:
+    """A statistic map found on disk, before its header or bytes are read."""
+
+    dataset: DatasetInfo
+    relpath: str  # posix, relative to the dataset root
+    path: str  # absolute
+    entities: dict[str, str]
+    nbytes: int
+    mtime_ns: int
+    named_by: str  # "bids" or "rule:<n>"
+
+
+def _short_key(pattern: str) -> str | None:
+    m = re.search(r"([a-zA-Z]+)-\(", pattern)
+    return m.group(1) if m else None
+
+
+class EntityParser:
+    """Entity patterns from pybids' bundled config, compiled once.
+
+    Keys in the result are the BIDS entity keys as written in file names
+    (``sub``, ``ses``, ``task``, ``run``, ``contrast``, ``stat``, ...), plus
+    ``suffix``, ``extension`` and ``datatype``.
+    """
+
+    def __init__(self) -> None:
+        self.patterns: list[tuple[str, str, re.Pattern[str]]] = []
+        for long_name, pattern in self._config_patterns():
+            key = {"suffix": "suffix", "extension": "extension", "datatype": "datatype"}.get(
+                long_name) or _short_key(pattern)
+            if key is None:
+                continue
+            self.patterns.append((long_name, key, re.compile(pattern)))
+        for key, pattern in EXTRA_ENTITIES.items():
+            self.patterns.append((key, key, re.compile(pattern)))
+        self.long_to_short = {ln: k for ln, k, _ in self.patterns}
+        self._fast = [(None if key in ("suffix", "extension", "datatype") else f"{key}-", key, rx)
+                      for _, key, rx in self.patterns]
+
+    @staticmethod
+    def _config_patterns() -> list[tuple[str, str]]:
+        # locate pybids' bundled config without importing pybids (its import pulls in
+        # pandas and SQLAlchemy, a third of a second we do not need)
+        import importlib.util
+
+        spec = importlib.util.find_spec("bids")
+        if spec is None or not spec.submodule_search_locations:
+            raise ImportError("mapstore needs pybids (pip install pybids) for its entity definitions")
+        base = Path(list(spec.submodule_search_locations)[0]) / "layout" / "config"
+        out: list[tuple[str, str]] = []
+        for name in ("bids.json", "derivatives.json"):
+            cfg = json.loads((base / name).read_text())
+            for ent in cfg["entities"]:
+                if ent["name"] in ("scans", "fmap", "from", "to", "mode"):
+                    continue  # file-kind markers and transform entities, not map entities
+                out.append((ent["name"], ent["pattern"]))
+        return out
+
+    def parse(self, relpath: str) -> dict[str, str]:
+        """Entities of a path relative to its dataset root (posix separators)."""
+        probe = "/" + relpath
+        out: dict[str, str] = {}
+        for token, key, rx in self._fast:
+            # a key-value entity can only match where its "key-" text occurs
+            if token is None or token in probe:
+                m = rx.search(probe)
+                if m:
+                    out[key] = m.group(1)
+        return out
+
+
+@dataclass
+class NameRules:
+    """User rules that name legacy statistic maps (files without BIDS statmap names).
+
+    A rules file (JSON or YAML) holds ``rules``: a list of objects, each with either
+    ``regex`` (a Python regular expression with named groups) or ``template`` (a
+    path with ``{entity}`` placeholders and ``*`` wildcards), matched against the
+    path relative to the dataset root, and optional ``entities`` (fixed values)
+    and ``datasets`` (glob patterns over dataset keys the rule applies to).
+    """
+
+    rules: list[dict[str, Any]] = field(default_factory=list)
+    source: str | None = None
+
+    @classmethod
+    def load(cls, path: str | os.PathLike[str] | None) -> "NameRules":
+        if path is None:
+            return cls()
+        doc = _load_doc(path, RulesError)
+        if not isinstance(doc, dict) or not isinstance(doc.get("rules"), list):
+            raise RulesError(f"{path}: expected an object with a 'rules' list "
+                             "(see schemas/name-rules.schema.json)")
+        compiled = []
+        for i, rule in enumerate(doc["rules"]):
+            where = f"{path}: rules[{i}]"
+            if not isinstance(rule, dict):
+                raise RulesError(f"{where}: expected an object, got {type(rule).__name__}")
+            unknown = set(rule) - {"regex", "template", "entities", "datasets"}
+            if unknown:
+                raise RulesError(f"{where}: unknown key(s) {sorted(unknown)}; allowed: "
+                                 "regex, template, entities, datasets")
+            if ("regex" in rule) == ("template" in rule):
+                raise RulesError(f"{where}: give exactly one of 'regex' or 'template'")
+            if "regex" in rule:
+                try:
+                    rx = re.compile(rule["regex"])
+                except re.error as exc:
+                    raise RulesError(f"{where}: invalid regex ({exc})") from None
+            else:
+                rx = _template_regex(rule["template"], where)
+            fixed = rule.get("entities", {})
+            if not isinstance(fixed, dict) or not all(isinstance(v, str) for v in fixed.values()):
+                raise RulesError(f"{where}: 'entities' must map entity names to strings")
+            names = set(rx.groupindex) | set(fixed)
+            missing = {"contrast", "stat"} - names
+            if missing:
+                raise RulesError(f"{where}: the rule never sets {sorted(missing)}; every map "
+                                 "needs a contrast and a stat (capture them or fix them in 'entities')")
+            datasets = rule.get("datasets", ["*"])
+            if isinstance(datasets, str):
+                datasets = [datasets]
+            compiled.append({"rx": rx, "entities": dict(fixed), "datasets": list(datasets)})
+        return cls(compiled, str(path))
+
+    def match(self, dataset_key: str, relpath: str) -> tuple[int, dict[str, str]] | None:
+        for i, rule in enumerate(self.rules):
+            if not any(fnmatch.fnmatchcase(dataset_key, g) for g in rule["datasets"]):
+                continue
+            m = rule["rx"].fullmatch(relpath)
+            if m:
+                ents = {k: v for k, v in m.groupdict().items() if v is not None}
+                ents.update(rule["entities"])
+                return i, ents
+        return None
+
+
+def _template_regex(template: str, where: str) -> re.Pattern[str]:
+    parts = re.split(r"(\{[a-zA-Z]+\}|\*\*|\*)", template)
+    out = []
+    for p in parts:
+        if p.startswith("{") and p.endswith("}"):
+            out.append(f"(?P<{p[1:-1]}>[a-zA-Z0-9+]+)")
+        elif p == "**":
+            out.append(".*")
+        elif p == "*":
+            out.append("[^/]*")
+        else:
+            out.append(re.escape(p))
+    try:
+        return re.compile("".join(out))
+    except re.error as exc:
+        raise RulesError(f"{where}: invalid template ({exc})") from None
+
+
+def _load_doc(path: str | os.PathLike[str], error: type[Exception]) -> Any:
+    p = Path(path)
+    try:
+        text = p.read_text(encoding="utf-8")
+    except FileNotFoundError:
+        raise error(f"{p}: file not found") from None
+    except OSError as exc:
+        raise error(f"{p}: cannot read ({exc.strerror})") from None
+    if p.suffix.lower() in (".yaml", ".yml"):
+        import yaml
+
+        try:
+            return yaml.safe_load(text)
+        except yaml.YAMLError as exc:
+            mark = getattr(exc, "problem_mark", None)
+            where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
+            raise error(f"{p}: not valid YAML{where} ({getattr(exc, 'problem', exc)})") from None
+    try:
+        return json.loads(text)
+    except json.JSONDecodeError as exc:
+        raise error(f"{p}: not valid JSON at line {exc.lineno}, column {exc.colno} ({exc.msg})") from None
+
+
+@dataclass
+class MetadataOverrides:
+    """User mapping of datasets (and dataset-qualified subjects) to study, site and lab.
+
+    File format (JSON or YAML)::
+
+        datasets:
+          "<dataset key or glob>": {study: ..., site: ..., lab: ...}
+        subjects:
+          "<dataset key>/sub-<label>": {site: ..., lab: ...}
+    """
+
+    datasets: dict[str, dict[str, str]] = field(default_factory=dict)
+    subjects: dict[str, dict[str, str]] = field(default_factory=dict)
+    source: str | None = None
+
+    @classmethod
+    def load(cls, path: str | os.PathLike[str] | None) -> "MetadataOverrides":
+        if path is None:
+            return cls()
+        doc = _load_doc(path, RulesError)
+        if not isinstance(doc, dict):
+            raise RulesError(f"{path}: expected an object with 'datasets' and/or 'subjects'")
+        unknown = set(doc) - {"datasets", "subjects"}
+        if unknown:
+            raise RulesError(f"{path}: unknown top-level key(s) {sorted(unknown)}; "
+                             "allowed: datasets, subjects")
+        out = cls(source=str(path))
+        for section in ("datasets", "subjects"):
+            table = doc.get(section) or {}
+            if not isinstance(table, dict):
+                raise RulesError(f"{path}: '{section}' must be an object")
+            for key, val in table.items():
+                if not isinstance(val, dict):
+                    raise RulesError(f"{path}: {section}.{key} must be an object")
+                bad = set(val) - {"study", "site", "lab"}
+                if bad:
+                    raise RulesError(f"{path}: {section}.{key}: unknown key(s) {sorted(bad)}; "
+                                     "allowed: study, site, lab")
+                getattr(out, section)[str(key)] = {k: str(v) for k, v in val.items()}
+        return out
+
+    def apply(self, dataset_key: str, sub: str | None, values: dict[str, Any]) -> dict[str, Any]:
+        out = dict(values)
+        for pattern, over in self.datasets.items():
+            if fnmatch.fnmatchcase(dataset_key, pattern):
+                out.update(over)
+        if sub is not None:
+            over = self.subjects.get(f"{dataset_key}/sub-{sub}")
+            if over:
+                out.update(over)
+        return out
+
+
+def _slug(text: str) -> str:
+    s = re.sub(r"[^A-Za-z0-9._-]+", "-", text.strip()).strip("-")
+    return s or "unnamed"
+
+
+def _read_description(root: Path) -> tuple[dict[str, Any] | None, Problem | None]:
+    f = root / "dataset_description.json"
+    if not f.exists():
+        return None, None
+    try:
+        doc = json.loads(f.read_text(encoding="utf-8"))
+        if not isinstance(doc, dict):
+            raise ValueError("top level is not an object")
+        return doc, None
+    except (ValueError, OSError) as exc:
+        return {}, Problem(str(f), "bad-dataset-description", f"cannot parse JSON ({exc})",
+                           "fix the JSON syntax of dataset_description.json", "warning")
+
+
+def _looks_like_dataset(path: Path) -> bool:
+    try:
+        return any(e.name.startswith("sub-") and e.is_dir() for e in os.scandir(path))
+    except OSError:
+        return False
+
+
+def _make_dataset(root: Path, desc: dict[str, Any] | None, raw: tuple[Path, dict] | None) -> DatasetInfo:
+    desc = desc or {}
+    generated = desc.get("GeneratedBy")
+    if not generated and isinstance(desc.get("PipelineDescription"), dict):
+        generated = [desc["PipelineDescription"]]  # older BIDS derivative descriptions
+    if isinstance(generated, dict):
+        generated = [generated]
+    name = str(desc.get("Name") or root.name)
+    raw_name = None
+    if raw is not None:
+        raw_name = str(raw[1].get("Name") or raw[0].name)
+        key = f"{_slug(raw_name)}/{_slug(name)}"
+    else:
+        key = _slug(name)
+    return DatasetInfo(
+        root=str(root), key=key, name=name,
+        dataset_type=desc.get("DatasetType"),
+        generated_by=list(generated or []),
+        bids_version=desc.get("BIDSVersion"),
+        raw_root=str(raw[0]) if raw else None, raw_name=raw_name,
+        description=desc, has_description=bool(desc),
+    )
+
+
+def find_datasets(roots: Iterable[str | os.PathLike[str]], max_depth: int = 4
+                  ) -> tuple[list[DatasetInfo], list[Problem]]:
+    """Find every derivative dataset under the given roots.
+
+    A root may be a derivative dataset, a raw dataset holding ``derivatives/``
+    (nested derivative datasets are found too), or a folder of such datasets.
+    Dataset keys are made unique: two different folders with the same names get
+    a short hash of their path appended, with a warning.
+    """
+    found: list[DatasetInfo] = []
+    problems: list[Problem] = []
+    seen: set[str] = set()
+
+    def visit(path: Path, depth: int, raw: tuple[Path, dict] | None) -> None:
+        real = str(path.resolve())
+        if real in seen:
+            return
+        desc, prob = _read_description(path)
+        if prob:
+            problems.append(prob)
+        if desc is not None:
+            seen.add(real)
+            dtype = desc.get("DatasetType")
+            is_raw = dtype == "raw" or (dtype is None and (path / "derivatives").is_dir()
+                                        and raw is None)
+            if is_raw and raw is None:
+                deriv = path / "derivatives"
+                if deriv.is_dir():
+                    for child in sorted(deriv.iterdir()):
+                        if child.is_dir() and not child.name.startswith("."):
+                            visit(child, 0, (path, desc))
+                else:
+                    problems.append(Problem(str(path), "no-derivatives",
+                                            "raw BIDS dataset with no derivatives/ folder",
+                                            "index the derivative dataset that holds the statistic maps",
+                                            "warning"))
+                return
+            if dtype not in (None, "derivative"):
+                problems.append(Problem(str(path / "dataset_description.json"), "unexpected-dataset-type",
+                                        f"DatasetType is {dtype!r}, expected 'derivative'",
+                                        "set DatasetType to \"derivative\"", "warning"))
+            elif dtype is None:
+                problems.append(Problem(str(path / "dataset_description.json"), "no-dataset-type",
+                                        "dataset_description.json has no DatasetType",
+                                        "add \"DatasetType\": \"derivative\" and GeneratedBy", "warning"))
+            found.append(_make_dataset(path, desc, raw))
+            # derivative datasets may nest further derivatives
+            deriv = path / "derivatives"
+            if deriv.is_dir():
+                for child in sorted(deriv.iterdir()):
+                    if child.is_dir():
+                        visit(child, 0, raw)
+            return
+        if _looks_like_dataset(path):
+            seen.add(real)
+            problems.append(Problem(str(path), "missing-dataset-description",
+                                    "folder holds sub-* folders but no dataset_description.json; "
+                                    "indexed under its folder name",
+                                    "add dataset_description.json with DatasetType \"derivative\" "
+                                    "and GeneratedBy", "warning"))
+            found.append(_make_dataset(path, None, raw))
+            return
+        if depth >= max_depth:
+            return
+        try:
+            children = sorted(p for p in path.iterdir() if p.is_dir() and not p.name.startswith("."))
+        except OSError as exc:
+            problems.append(Problem(str(path), "unreadable-folder", f"cannot list folder ({exc.strerror})",
+                                    "check permissions"))
+            return
+        for child in children:
+            visit(child, depth + 1, raw)
+
+    for root in roots:
+        p = Path(root).expanduser().absolute()
+        if not p.exists():
+            problems.append(Problem(str(p), "missing-root", "the folder to index does not exist",
+                                    "check the path"))
+            continue
+        if not p.is_dir():
+            problems.append(Problem(str(p), "root-not-folder", "expected a folder, got a file",
+                                    "give the dataset folder, not a file in it"))
+            continue
+        before = len(found)
+        visit(p, 0, None)
+        if len(found) == before and not any(pr.path.startswith(str(p)) for pr in problems):
+            problems.append(Problem(str(p), "no-datasets", "no BIDS derivative dataset found",
+                                    "point at a derivative dataset, a raw dataset with derivatives/, "
+                                    "or a folder holding them"))
+
+    counts: dict[str, int] = {}
+    for ds in found:
+        counts[ds.key] = counts.get(ds.key, 0) + 1
+    for ds in found:
+        if counts[ds.key] > 1:
+            old = ds.key
+            ds.key = f"{old}~{hashlib.sha256(ds.root.encode()).hexdigest()[:6]}"
+            problems.append(Problem(ds.root, "dataset-name-clash",
+                                    f"several datasets are named {old!r}; this one is keyed {ds.key!r}",
+                                    "give each dataset a distinct Name in dataset_description.json",
+                                    "warning", ds.key))
+    return found, problems
+
+
+def top_folders(ds: DatasetInfo) -> list[str]:
+    """The dataset's top-level folders that a walk descends into."""
+    try:
+        return sorted(e.name for e in os.scandir(ds.root)
+                      if e.is_dir() and not e.name.startswith(".") and e.name not in SKIP_DIRS)
+    except OSError:
+        return []
+
+
+def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
+                 top: Iterable[str] | None = None, root_maps: bool = True
+                 ) -> tuple[list[MapFile], dict[str, list[str]], list[Problem]]:
+    """List the statistic maps and JSON sidecars of one dataset (or of part of it).
+
+    Returns the maps, a mapping of folder (relative, posix, "" for the root) to
+    the JSON file names in it, and problems (dangling links, names that look
+    like statistic maps but lack entities).  ``top`` limits the walk to some
+    top-level folders and ``root_maps`` says whether maps lying in the root
+    count; root-level sidecars are always collected, as inheritance needs them.
+    """
+    only = None if top is None else set(top)
+    maps: list[MapFile] = []
+    jsons: dict[str, list[str]] = {}
+    problems: list[Problem] = []
+    root = ds.root
+    stack = [""]
+    while stack:
+        rel = stack.pop()
+        folder = os.path.join(root, rel) if rel else root
+        try:
+            entries = list(os.scandir(folder))
+        except OSError as exc:
+            problems.append(Problem(folder, "unreadable-folder", f"cannot list folder ({exc.strerror})",
+                                    "check permissions", "error", ds.key))
+            continue
+        for e in entries:
+            name = e.name
+            if name.startswith("."):
+                continue
+            relpath = f"{rel}/{name}" if rel else name
+            try:
+                is_dir = e.is_dir()
+            except OSError:
+                is_dir = False
+            if is_dir:
+                if not rel and (name in SKIP_DIRS or (only is not None and name not in only)):
+                    continue
+                stack.append(relpath)
+                continue
+            if name.endswith(".json"):
+                jsons.setdefault(rel, []).append(name)
+                continue
+            if not (name.endswith(".nii.gz") or name.endswith(".nii")) or (not rel and not root_maps):
+                continue
+            try:
+                st = e.stat()
+            except FileNotFoundError:
+                problems.append(Problem(e.path, "dangling-symlink",
+                                        "symbolic link to a file that is not there (an unfetched annexed file?)",
+                                        "fetch the file content (for example 'datalad get' or "
+                                        "'git annex get' on it), then index again", "error", ds.key))
+                continue
+            except OSError as exc:
+                problems.append(Problem(e.path, "unreadable", f"cannot stat file ({exc.strerror})",
+                                        "check permissions", "error", ds.key))
+                continue
+            stem = name[:-7] if name.endswith(".nii.gz") else name[:-4]
+            if stem.endswith("_" + STAT_SUFFIX):
+                ents = parser.parse(relpath)
+                missing = [k for k in ("contrast", "stat") if k not in ents]
+                if missing:
+                    problems.append(Problem(e.path, "missing-entity",
+                                            f"statmap file name lacks {' and '.join(missing)}",
+                                            "name it ..._contrast-<label>_stat-<label>_statmap.nii.gz, "
+                                            "or add a rule in a name-rules file", "error", ds.key))
+                    continue
+                maps.append(MapFile(ds, relpath, e.path, ents, st.st_size, st.st_mtime_ns, "bids"))
+                continue
+            hit = rules.match(ds.key, relpath) if rules.rules else None
+            if hit is not None:
+                idx, ents = hit
+                base = parser.parse(relpath)
+                base.update(ents)
+                base["suffix"] = STAT_SUFFIX
+                base["extension"] = ".nii.gz" if name.endswith(".nii.gz") else ".nii"
+                maps.append(MapFile(ds, relpath, e.path, base, st.st_size, st.st_mtime_ns, f"rule:{idx}"))
+    maps.sort(key=lambda m: m.relpath)
+    return maps, jsons, problems
+
+
+class SidecarResolver:
+    """Metadata of a data file by the BIDS inheritance principle, with parsed files cached."""
+
+    def __init__(self, ds: DatasetInfo, jsons: dict[str, list[str]], parser: EntityParser) -> None:
+        self.ds = ds
+        self.parser = parser
+        self.problems: list[Problem] = []
+        self._content: dict[str, dict[str, Any] | None] = {}
+        self._index: dict[str, list[tuple[str, str | None, dict[str, str]]]] = {}
+        self._chains: dict[str, list[tuple[str, str | None, dict[str, str]]]] = {}
+        self._merged: dict[tuple[str, ...], tuple[dict[str, Any], list[str], str]] = {}
+        for folder, names in jsons.items():
+            items = []
+            for n in names:
+                if not folder and n in ("dataset_description.json", "participants.json"):
+                    continue
+                relpath = f"{folder}/{n}" if folder else n
+                ents = parser.parse(relpath)
+                suffix = ents.pop("suffix", None)
+                for k in ("extension", "datatype"):
+                    ents.pop(k, None)
+                items.append((relpath, suffix, ents))
+            self._index[folder] = items
+
+    def _load(self, relpath: str) -> dict[str, Any] | None:
+        if relpath not in self._content:
+            path = os.path.join(self.ds.root, relpath)
+            try:
+                with open(path, "rb") as fh:
+                    doc = json.loads(fh.read())
+                if not isinstance(doc, dict):
+                    raise ValueError("top level is not an object")
+                self._content[relpath] = doc
+            except (ValueError, OSError) as exc:
+                self._content[relpath] = None
+                self.problems.append(Problem(path, "bad-sidecar", f"cannot parse JSON sidecar ({exc})",
+                                             "fix the JSON syntax; its metadata was ignored",
+                                             "warning", self.ds.key))
+        return self._content[relpath]
+
+    def _chain(self, folder: str) -> list[tuple[str, str | None, dict[str, str]]]:
+        """Candidate sidecars for files in ``folder``: root first, each level by specificity."""
+        chain = self._chains.get(folder)
+        if chain is None:
+            levels = [""]
+            parts = folder.split("/") if folder else []
+            for i in range(len(parts)):
+                levels.append("/".join(parts[: i + 1]))
+            chain = []
+            for level in levels:
+                chain += sorted(self._index.get(level, ()), key=lambda c: (len(c[2]), c[0]))
+            self._chains[folder] = chain
+        return chain
+
+    def resolve_full(self, relpath: str, entities: dict[str, str]
+                     ) -> tuple[dict[str, Any], list[str], str]:
+        """Merged metadata (shared, do not modify), sidecars used, and the metadata as JSON."""
+        suffix = entities.get("suffix")
+        folder = relpath.rsplit("/", 1)[0] if "/" in relpath else ""
+        used = [rp for rp, suf, ents in self._chain(folder)
+                if suf == suffix and all(entities.get(k) == v for k, v in ents.items())]
+        key = tuple(used)
+        hit = self._merged.get(key)
+        if hit is None:
+            merged: dict[str, Any] = {}
+            for rp in used:
+                doc = self._load(rp)
+                if doc is not None:
+                    merged.update(doc)
+            hit = (merged, [rp for rp in used if self._content.get(rp) is not None],
+                   json.dumps(merged, sort_keys=True, default=str))
+            self._merged[key] = hit
+        return hit
+
+    def resolve(self, relpath: str, entities: dict[str, str]) -> tuple[dict[str, Any], list[str]]:
+        """Merged metadata for a data file and the sidecars used, shallowest first."""
+        merged, used, _ = self.resolve_full(relpath, entities)
+        return dict(merged), list(used)
+
+
+def read_participants(ds: DatasetInfo) -> tuple[list[dict[str, Any]], str | None, list[Problem]]:
+    """Rows of participants.tsv (from the dataset, else its raw parent), 'n/a' as None."""
+    candidates = [Path(ds.root) / "participants.tsv"]
+    if ds.raw_root:
+        candidates.append(Path(ds.raw_root) / "participants.tsv")
+    for f in candidates:
+        if not f.exists():
+            continue
+        try:
+            with open(f, newline="", encoding="utf-8") as fh:
+                reader = csv.DictReader(fh, delimiter="\t")
+                if not reader.fieldnames or "participant_id" not in reader.fieldnames:
+                    return [], str(f), [Problem(str(f), "bad-participants",
+                                                "participants.tsv has no participant_id column",
+                                                "add a participant_id column (sub-<label>)",
+                                                "warning", ds.key)]
+                rows = []
+                for row in reader:
+                    clean = {k.strip(): (None if v is None or v.strip() in ("", "n/a") else v.strip())
+                             for k, v in row.items() if k is not None}
+                    rows.append(clean)
+                return rows, str(f), []
+        except (OSError, UnicodeDecodeError, csv.Error) as exc:
+            return [], str(f), [Problem(str(f), "bad-participants", f"cannot read participants.tsv ({exc})",
+                                        "save it as UTF-8, tab-separated", "warning", ds.key)]
+    return [], None, []
+
+
+def iter_chunks(items: list, size: int) -> Iterator[list]:
+    for i in range(0, len(items), size):
+        yield items[i: i + size]

@@ -1,0 +1,96 @@
+"""One error tree for mapstore.
+
+Every error the tool raises on purpose derives from :class:`MapstoreError`, so the
+CLI can turn it into a clean message with no traceback.  Leaves also inherit the
+matching builtin (a missing store is a ``FileNotFoundError``), so callers can catch
+either.  Messages name the file or store concerned and, where one exists, the remedy.
+"""
+
+from __future__ import annotations
+
+__all__ = [
+    "MapstoreError",
+    "ParameterError",
+    "HeaderError",
+    "StoreNotFound",
+    "StoreBusy",
+    "StoreCorrupt",
+    "QueryError",
+    "RulesError",
+    "VocabularyError",
+    "GridError",
+    "FeatureError",
+    "ConversionError",
+    "LeakageError",
+    "ExportError",
+]
+
+
+class MapstoreError(Exception):
+    """Root of every error mapstore raises on purpose."""
+
+    exit_code = 1
+
+
+class ParameterError(MapstoreError, ValueError):
+    """A public function or CLI option received a value it does not accept."""
+
+    exit_code = 2
+
+
+class HeaderError(MapstoreError, ValueError):
+    """A file is not a readable NIfTI-1/NIfTI-2 image header."""
+
+    def __init__(self, path: str, code: str, reason: str, remedy: str = "") -> None:
+        self.path = str(path)
+        self.code = code
+        self.reason = reason
+        self.remedy = remedy
+        text = f"{self.path}: {reason}"
+        if remedy:
+            text += f" ({remedy})"
+        super().__init__(text)
+
+
+class StoreNotFound(MapstoreError, FileNotFoundError):
+    """No mapstore store exists at the given path."""
+
+
+class StoreBusy(MapstoreError, BlockingIOError):
+    """Another process is writing to the store."""
+
+
+class StoreCorrupt(MapstoreError, OSError):
+    """The store's files are inconsistent (a file is missing or unreadable)."""
+
+
+class QueryError(MapstoreError, ValueError):
+    """An SQL query or selection could not be run."""
+
+
+class RulesError(MapstoreError, ValueError):
+    """A legacy-name rules file or a metadata mapping file is invalid."""
+
+
+class VocabularyError(MapstoreError, ValueError):
+    """A concept vocabulary file is invalid."""
+
+
+class GridError(MapstoreError, ValueError):
+    """A target grid or mask is invalid or cannot be built."""
+
+
+class FeatureError(MapstoreError, ValueError):
+    """A feature set could not be built or read."""
+
+
+class ConversionError(MapstoreError, ValueError):
+    """A statistic could not be converted (for example t to z without degrees of freedom)."""
+
+
+class LeakageError(MapstoreError, ValueError):
+    """A split would put one subject or one identical map on both sides."""
+
+
+class ExportError(MapstoreError, OSError):
+    """An export could not be written or verified."""

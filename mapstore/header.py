@@ -1,0 +1,366 @@
+"""NIfTI-1 and NIfTI-2 header facts, read from the first bytes of a file.
+
+This stage never touches voxel data: a ``.nii`` needs its first 348 (NIfTI-1) or
+540 (NIfTI-2) bytes, a ``.nii.gz`` only enough of its first compressed block to
+inflate those bytes.  The layouts below follow the published ``nifti1.h`` and
+``nifti2.h`` headers field by field.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import math
+import zlib
+from dataclasses import dataclass, field
+
+import numpy as np
+
+from .errors import HeaderError
+
+__all__ = [
+    "HeaderFacts",
+    "read_header",
+    "parse_header",
+    "header_prefix",
+    "grid_fingerprint",
+    "orientation_code",
+    "NIFTI_DTYPES",
+    "INTENT_NAMES",
+]
+
+NIFTI1_SIZE = 348
+NIFTI2_SIZE = 540
+# enough compressed bytes to inflate a NIfTI-2 header plus the extension flag
+PREFIX_BYTES = 4096
+
+_N1_FIELDS = [
+    ("sizeof_hdr", "i4"), ("data_type", "S10"), ("db_name", "S18"), ("extents", "i4"),
+    ("session_error", "i2"), ("regular", "S1"), ("dim_info", "u1"), ("dim", "i2", (8,)),
+    ("intent_p1", "f4"), ("intent_p2", "f4"), ("intent_p3", "f4"), ("intent_code", "i2"),
+    ("datatype", "i2"), ("bitpix", "i2"), ("slice_start", "i2"), ("pixdim", "f4", (8,)),
+    ("vox_offset", "f4"), ("scl_slope", "f4"), ("scl_inter", "f4"), ("slice_end", "i2"),
+    ("slice_code", "u1"), ("xyzt_units", "u1"), ("cal_max", "f4"), ("cal_min", "f4"),
+    ("slice_duration", "f4"), ("toffset", "f4"), ("glmax", "i4"), ("glmin", "i4"),
+    ("descrip", "S80"), ("aux_file", "S24"), ("qform_code", "i2"), ("sform_code", "i2"),
+    ("quatern_b", "f4"), ("quatern_c", "f4"), ("quatern_d", "f4"),
+    ("qoffset_x", "f4"), ("qoffset_y", "f4"), ("qoffset_z", "f4"),
+    ("srow_x", "f4", (4,)), ("srow_y", "f4", (4,)), ("srow_z", "f4", (4,)),
+    ("intent_name", "S16"), ("magic", "S4"),
+]
+_N2_FIELDS = [
+    ("sizeof_hdr", "i4"), ("magic", "S8"), ("datatype", "i2"), ("bitpix", "i2"),
+    ("dim", "i8", (8,)), ("intent_p1", "f8"), ("intent_p2", "f8"), ("intent_p3", "f8"),
+    ("pixdim", "f8", (8,)), ("vox_offset", "i8"), ("scl_slope", "f8"), ("scl_inter", "f8"),
+    ("cal_max", "f8"), ("cal_min", "f8"), ("slice_duration", "f8"), ("toffset", "f8"),
+    ("slice_start", "i8"), ("slice_end", "i8"), ("descrip", "S80"), ("aux_file", "S24"),
+    ("qform_code", "i4"), ("sform_code", "i4"),
+    ("quatern_b", "f8"), ("quatern_c", "f8"), ("quatern_d", "f8"),
+    ("qoffset_x", "f8"), ("qoffset_y", "f8"), ("qoffset_z", "f8"),
+    ("srow_x", "f8", (4,)), ("srow_y", "f8", (4,)), ("srow_z", "f8", (4,)),
+    ("slice_code", "i4"), ("xyzt_units", "i4"), ("intent_code", "i4"),
+    ("intent_name", "S16"), ("dim_info", "u1"), ("unused_str", "S15"),
+]
+
+
+def _dtypes(fields: list) -> dict[str, np.dtype]:
+    little = np.dtype([(f[0], "<" + f[1] if f[1][0] != "S" else f[1], *f[2:]) for f in fields])
+    big = little.newbyteorder(">")
+    return {"<": little, ">": big}
+
+
+_N1 = _dtypes(_N1_FIELDS)
+_N2 = _dtypes(_N2_FIELDS)
+assert _N1["<"].itemsize == NIFTI1_SIZE and _N2["<"].itemsize == NIFTI2_SIZE
+
+# nifti1.h datatype codes -> numpy dtype names
+NIFTI_DTYPES: dict[int, str] = {
+    2: "uint8", 4: "int16", 8: "int32", 16: "float32", 32: "complex64", 64: "float64",
+    128: "rgb24", 256: "int8", 512: "uint16", 768: "uint32", 1024: "int64",
+    1280: "uint64", 1536: "float128", 1792: "complex128", 2048: "complex256",
+    2304: "rgba32",
+}
+# nifti1.h NIFTI_INTENT_* codes
+INTENT_NAMES: dict[int, str] = {
+    0: "none", 2: "correlation", 3: "t test", 4: "f test", 5: "z score", 6: "chi2",
+    7: "beta", 8: "binomial", 9: "gamma", 10: "poisson", 11: "normal",
+    12: "non central f test", 13: "non central chi2", 14: "logistic", 15: "laplace",
+    16: "uniform", 17: "non central t test", 18: "weibull", 19: "chi", 20: "inverse gaussian",
+    21: "extreme value curve", 22: "p value", 23: "log p value", 24: "log10 p value",
+    1001: "estimate", 1002: "label", 1003: "neuroname", 1004: "general matrix",
+    1005: "symmetric matrix", 1006: "displacement vector", 1007: "vector",
+    1008: "pointset", 1009: "triangle", 1010: "quaternion", 1011: "dimensionless",
+    2001: "time series", 2002: "node index", 2003: "rgb vector", 2004: "rgba vector",
+    2005: "shape",
+}
+
+
+@dataclass(frozen=True)
+class HeaderFacts:
+    """What the header of one NIfTI file says, with no voxel read.
+
+    ``affine`` is the voxel-to-world matrix chosen as ``nifti1.h`` describes:
+    the sform (method 3) when ``sform_code > 0``, else the qform (method 2) when
+    ``qform_code > 0``, else pixdim scaling (method 1).
+    """
+
+    nifti_version: int
+    endianness: str
+    shape: tuple[int, ...]
+    dtype: str
+    bitpix: int
+    vox_offset: int
+    scl_slope: float
+    scl_inter: float
+    intent_code: int
+    intent_name: str
+    intent_p1: float
+    qform_code: int
+    sform_code: int
+    affine_source: str
+    affine: tuple[float, ...]  # 16 values, row-major
+    qform_affine: tuple[float, ...] | None
+    sform_affine: tuple[float, ...] | None
+    voxel_size: tuple[float, float, float]
+    xyzt_units: int
+    descrip: str
+    warnings: tuple[str, ...] = field(default_factory=tuple)
+
+    @property
+    def affine_array(self) -> np.ndarray:
+        return np.array(self.affine, dtype=np.float64).reshape(4, 4)
+
+    @property
+    def spatial_shape(self) -> tuple[int, int, int]:
+        s = tuple(self.shape[:3]) + (1,) * max(0, 3 - len(self.shape))
+        return (int(s[0]), int(s[1]), int(s[2]))
+
+    @property
+    def n_volumes(self) -> int:
+        return int(np.prod(self.shape[3:])) if len(self.shape) > 3 else 1
+
+    @property
+    def orientation(self) -> str:
+        return orientation_code(self.affine_array)
+
+    @property
+    def grid_id(self) -> str:
+        return grid_fingerprint(self.spatial_shape, self.affine_array)
+
+    @property
+    def data_nbytes(self) -> int:
+        return int(np.prod(self.shape, dtype=np.int64)) * max(self.bitpix, 8) // 8
+
+
+def _quaternion_affine(b: float, c: float, d: float, pixdim: np.ndarray,
+                       offsets: tuple[float, float, float]) -> np.ndarray:
+    # nifti1.h "METHOD 2"; as nifti1_io.c's nifti_quatern_to_mat44 does (from memory of that
+    # reference code), a = sqrt(1 - b^2 - c^2 - d^2) unless that is below 1e-7: then (b, c, d)
+    # is renormalised and a = 0 (a 180 degree rotation)
+    a2 = 1.0 - (b * b + c * c + d * d)
+    if a2 < 1e-7:
+        norm = math.sqrt(b * b + c * c + d * d)
+        b, c, d = b / norm, c / norm, d / norm
+        a2 = 0.0
+    a = math.sqrt(a2)
+    rot = np.array([
+        [a * a + b * b - c * c - d * d, 2 * b * c - 2 * a * d, 2 * b * d + 2 * a * c],
+        [2 * b * c + 2 * a * d, a * a + c * c - b * b - d * d, 2 * c * d - 2 * a * b],
+        [2 * b * d - 2 * a * c, 2 * c * d + 2 * a * b, a * a + d * d - c * c - b * b],
+    ])
+    qfac = -1.0 if pixdim[0] < 0 else 1.0
+    scale = np.array([pixdim[1], pixdim[2], pixdim[3] * qfac], dtype=np.float64)
+    out = np.eye(4)
+    out[:3, :3] = rot * scale
+    out[:3, 3] = offsets
+    return out
+
+
+def _is_usable(aff: np.ndarray) -> bool:
+    m = aff[:3, :3]
+    return bool(np.all(np.isfinite(aff)) and abs(np.linalg.det(m)) > 1e-12)
+
+
+def _text(raw: bytes) -> str:
+    return raw.split(b"\x00", 1)[0].decode("latin-1").strip()
+
+
+def header_prefix(path: str, raw: bytes) -> bytes:
+    """Return the uncompressed first bytes of a file given its first raw bytes.
+
+    ``raw`` is the start of the file as stored.  Gzip streams are recognised by
+    their magic bytes, not by the file name, so a mislabelled file is read right.
+    """
+    if raw[:2] == b"\x1f\x8b":
+        inflater = zlib.decompressobj(16 + zlib.MAX_WBITS)
+        try:
+            out = inflater.decompress(raw, NIFTI2_SIZE + 4)
+        except zlib.error as exc:
+            raise HeaderError(path, "bad-gzip", f"gzip stream is corrupt ({exc})",
+                              "re-create or re-download the file") from None
+        return out
+    return raw[: NIFTI2_SIZE + 4]
+
+
+def parse_header(path: str, data: bytes) -> HeaderFacts:
+    """Parse the uncompressed first bytes of a NIfTI file into :class:`HeaderFacts`."""
+    if len(data) == 0:
+        raise HeaderError(path, "empty-file", "file is empty", "re-create the file")
+    if len(data) < NIFTI1_SIZE:
+        raise HeaderError(path, "truncated-header",
+                          f"only {len(data)} header bytes, a NIfTI header needs at least 348",
+                          "the file was cut short; re-create or re-download it")
+    size_le = int.from_bytes(data[:4], "little")
+    size_be = int.from_bytes(data[:4], "big")
+    if NIFTI1_SIZE in (size_le, size_be):
+        version = 1
+        order = "<" if size_le == NIFTI1_SIZE else ">"
+        hdr = np.frombuffer(data[:NIFTI1_SIZE], dtype=_N1[order])[0]
+        magic = bytes(hdr["magic"])
+        if magic not in (b"n+1\x00", b"ni1\x00", b"n+1", b"ni1"):
+            raise HeaderError(path, "not-nifti",
+                              "348-byte header without the NIfTI-1 magic (an ANALYZE 7.5 image?)",
+                              "convert it to NIfTI, for example with nibabel")
+    elif NIFTI2_SIZE in (size_le, size_be):
+        version = 2
+        if len(data) < NIFTI2_SIZE:
+            raise HeaderError(path, "truncated-header",
+                              f"only {len(data)} header bytes, a NIfTI-2 header needs 540",
+                              "the file was cut short; re-create or re-download it")
+        order = "<" if size_le == NIFTI2_SIZE else ">"
+        hdr = np.frombuffer(data[:NIFTI2_SIZE], dtype=_N2[order])[0]
+        if bytes(hdr["magic"])[:3] not in (b"n+2", b"ni2"):
+            raise HeaderError(path, "not-nifti", "540-byte header without the NIfTI-2 magic",
+                              "check that the file is a NIfTI-2 image")
+    else:
+        raise HeaderError(path, "not-nifti",
+                          "first 4 bytes are neither 348 nor 540 (not a NIfTI header)",
+                          "check that the file is a NIfTI image")
+
+    dim = [int(x) for x in hdr["dim"]]
+    ndim = dim[0]
+    if not 1 <= ndim <= 7:
+        raise HeaderError(path, "bad-dim", f"dim[0] is {ndim}, NIfTI allows 1 to 7",
+                          "the header is damaged; re-create the file")
+    shape = tuple(dim[1: ndim + 1])
+    if any(s < 1 for s in shape):
+        raise HeaderError(path, "bad-dim", f"dimensions {shape} contain a value below 1",
+                          "the header is damaged; re-create the file")
+    code = int(hdr["datatype"])
+    if code not in NIFTI_DTYPES:
+        raise HeaderError(path, "bad-datatype", f"unknown NIfTI datatype code {code}",
+                          "re-save the image with a standard data type")
+    pixdim = np.array(hdr["pixdim"], dtype=np.float64)
+    warnings: list[str] = []
+
+    def srow() -> np.ndarray:
+        m = np.eye(4)
+        m[0], m[1], m[2] = hdr["srow_x"], hdr["srow_y"], hdr["srow_z"]
+        return m
+
+    qcode, scode = int(hdr["qform_code"]), int(hdr["sform_code"])
+    q_aff = _quaternion_affine(float(hdr["quatern_b"]), float(hdr["quatern_c"]),
+                               float(hdr["quatern_d"]), pixdim,
+                               (float(hdr["qoffset_x"]), float(hdr["qoffset_y"]),
+                                float(hdr["qoffset_z"]))) if qcode > 0 else None
+    s_aff = srow() if scode > 0 else None
+    if s_aff is not None and _is_usable(s_aff):
+        affine, source = s_aff, "sform"
+    elif q_aff is not None and _is_usable(q_aff):
+        affine, source = q_aff, "qform"
+        if s_aff is not None:
+            warnings.append("sform_code is set but the sform is singular; used the qform")
+    elif s_aff is None and q_aff is None:
+        # nifti1.h "METHOD 1" (ANALYZE compatibility): scaling by pixdim only
+        affine = np.diag([pixdim[1], pixdim[2], pixdim[3], 1.0])
+        source = "pixdim"
+        warnings.append("neither sform nor qform is set; the affine is pixdim scaling only")
+        if not _is_usable(affine):
+            raise HeaderError(path, "singular-affine",
+                              "no sform or qform and pixdim has zero voxel sizes",
+                              "set a valid sform or qform in the header")
+    else:
+        raise HeaderError(path, "singular-affine",
+                          "the voxel-to-world affine is singular (zero or non-finite rows)",
+                          "fix the sform/qform of the image, for example with nibabel's set_sform")
+    vox = tuple(float(np.linalg.norm(affine[:3, j])) for j in range(3))
+    slope = float(hdr["scl_slope"])
+    inter = float(hdr["scl_inter"])
+    intent = int(hdr["intent_code"])
+
+    def tup(a: np.ndarray | None) -> tuple[float, ...] | None:
+        return None if a is None else tuple(float(x) for x in a.ravel())
+
+    return HeaderFacts(
+        nifti_version=version,
+        endianness=order,
+        shape=shape,
+        dtype=NIFTI_DTYPES[code],
+        bitpix=int(hdr["bitpix"]),
+        vox_offset=int(hdr["vox_offset"]),
+        scl_slope=slope,
+        scl_inter=inter,
+        intent_code=intent,
+        intent_name=INTENT_NAMES.get(intent, f"code {intent}"),
+        intent_p1=float(hdr["intent_p1"]),
+        qform_code=qcode,
+        sform_code=scode,
+        affine_source=source,
+        affine=tup(affine),
+        qform_affine=tup(q_aff),
+        sform_affine=tup(s_aff),
+        voxel_size=(vox[0], vox[1], vox[2]),
+        xyzt_units=int(hdr["xyzt_units"]),
+        descrip=_text(bytes(hdr["descrip"])),
+        warnings=tuple(warnings),
+    )
+
+
+def read_header(path: str) -> HeaderFacts:
+    """Read the header of one NIfTI file, touching only its first bytes.
+
+    Parameters
+    ----------
+    path : str
+        A ``.nii`` or ``.nii.gz`` file (NIfTI-1 or NIfTI-2, either byte order).
+
+    Raises
+    ------
+    HeaderError
+        With a stable ``code`` and a remedy, when the file is not a usable header.
+    """
+    try:
+        with open(path, "rb") as fh:
+            raw = fh.read(PREFIX_BYTES)
+    except FileNotFoundError:
+        raise HeaderError(path, "missing-file", "file does not exist",
+                          "check the path; an unfetched annexed file must be fetched first") from None
+    except OSError as exc:
+        raise HeaderError(path, "unreadable", f"cannot read the file ({exc.strerror})",
+                          "check the file's permissions") from None
+    return parse_header(path, header_prefix(path, raw))
+
+
+def grid_fingerprint(shape: tuple[int, int, int], affine: np.ndarray) -> str:
+    """A short id equal for images on the same voxel grid (shape + affine to 1e-4 mm)."""
+    aff = np.round(np.asarray(affine, dtype=np.float64)[:3, :4], 4) + 0.0  # folds -0.0
+    text = ",".join(str(int(s)) for s in shape[:3]) + "|" + ",".join(f"{x:.4f}" for x in aff.ravel())
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def orientation_code(affine: np.ndarray) -> str:
+    """Axis codes such as ``"RAS"`` or ``"LAS"``: where each voxel axis points in world space."""
+    m = np.asarray(affine, dtype=np.float64)[:3, :3]
+    norms = np.linalg.norm(m, axis=0)
+    norms[norms == 0] = 1.0
+    r = np.abs(m / norms)
+    letters = (("L", "R"), ("P", "A"), ("I", "S"))
+    out = [""] * 3
+    used: set[int] = set()
+    # assign the strongest voxel-axis/world-axis pairs first
+    for flat in np.argsort(-r, axis=None):
+        world, vox = divmod(int(flat), 3)
+        if out[vox] or world in used:
+            continue
+        used.add(world)
+        out[vox] = letters[world][1 if m[world, vox] > 0 else 0]
+    return "".join(out)

@@ -1,0 +1,178 @@
+"""JSON Schemas of the catalog tables and of every file mapstore reads or writes.
+
+The copies in the repository's ``schemas/`` folder are generated from this module
+(``python -m mapstore.schemas schemas``); a test keeps them in sync.
+"""
+
+from __future__ import annotations
+
+import json
+import sys
+from pathlib import Path
+from typing import Any
+
+import pyarrow as pa
+
+__all__ = ["all_schemas", "arrow_to_json_schema", "write_all"]
+
+_BASE = "https://mapstore.invalid/schemas/"
+
+
+def _arrow_type(t: pa.DataType) -> dict[str, Any]:
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        return {"type": ["string", "null"]}
+    if pa.types.is_integer(t):
+        return {"type": ["integer", "null"]}
+    if pa.types.is_floating(t):
+        return {"type": ["number", "null"]}
+    if pa.types.is_boolean(t):
+        return {"type": ["boolean", "null"]}
+    if pa.types.is_list(t) or pa.types.is_large_list(t) or pa.types.is_fixed_size_list(t):
+        return {"type": ["array", "null"], "items": _arrow_type(t.value_type)}
+    return {}
+
+
+def arrow_to_json_schema(name: str, schema: pa.Schema, description: str,
+                         docs: dict[str, str] | None = None) -> dict[str, Any]:
+    """JSON Schema of one row of a catalog table."""
+    props = {}
+    for f in schema:
+        p = dict(_arrow_type(f.type))
+        if docs and f.name in docs:
+            p["description"] = docs[f.name]
+        props[f.name] = p
+    return {
+        "$schema": "https://json-schema.org/draft/2020-12/schema",
+        "$id": _BASE + f"{name}.schema.json",
+        "title": f"mapstore catalog table '{name}' (one row)",
+        "description": description,
+        "type": "object",
+        "properties": props,
+        "required": [schema[0].name],
+    }
+
+
+MAPS_DOCS = {
+    "map_id": "stable id: hash of the dataset key and relpath (never of row order)",
+    "dataset": "dataset key: raw dataset name / derivative name, or the derivative name alone",
+    "relpath": "path of the map relative to its derivative dataset root (posix)",
+    "participant": "study-qualified subject, '<study>/sub-<label>'",
+    "entities": "every parsed BIDS entity, JSON object",
+    "named_by": "'bids' for statmap file names, 'rule:<n>' when a name rule matched",
+    "sha256": "SHA-256 of the file's bytes as stored",
+    "mtime_ns": "modification time in ns since the epoch, at index time",
+    "affine": "voxel-to-world affine, 16 values, row-major (sform, else qform, else pixdim)",
+    "affine_source": "which header form gave the affine: sform, qform or pixdim",
+    "voxel_size": "voxel size in mm from the affine's column norms",
+    "orientation": "axis codes such as RAS or LAS",
+    "grid_id": "fingerprint of the spatial shape and affine (to 1e-4 mm)",
+    "dof": "degrees of freedom: sidecar DegreesOfFreedom, else intent_p1 of a t-test header",
+    "metadata": "merged sidecar metadata (BIDS inheritance), JSON object",
+    "sidecars": "sidecar files used, shallowest first",
+}
+
+
+def _rules_schema() -> dict[str, Any]:
+    return {
+        "$schema": "https://json-schema.org/draft/2020-12/schema",
+        "$id": _BASE + "name-rules.schema.json",
+        "title": "mapstore name rules",
+        "description": "Rules naming statistic maps whose file names do not follow the BIDS statmap "
+                       "convention. The first rule that matches a path (relative to its dataset "
+                       "root, full match) sets its entities; every map needs contrast and stat.",
+        "type": "object",
+        "required": ["rules"],
+        "additionalProperties": False,
+        "properties": {"rules": {"type": "array", "items": {
+            "type": "object",
+            "additionalProperties": False,
+            "oneOf": [{"required": ["regex"]}, {"required": ["template"]}],
+            "properties": {
+                "regex": {"type": "string", "description": "Python regular expression; named groups "
+                                                          "set entities"},
+                "template": {"type": "string", "description": "path with {entity} placeholders, * (one "
+                                                             "folder level) and ** (any depth)"},
+                "entities": {"type": "object", "additionalProperties": {"type": "string"},
+                             "description": "fixed entity values"},
+                "datasets": {"oneOf": [{"type": "string"}, {"type": "array", "items": {"type": "string"}}],
+                             "description": "glob patterns over dataset keys (default: all)"},
+            }}}},
+    }
+
+
+def _origins_schema() -> dict[str, Any]:
+    entry = {"type": "object", "additionalProperties": False,
+             "properties": {k: {"type": "string"} for k in ("study", "site", "lab")}}
+    return {
+        "$schema": "https://json-schema.org/draft/2020-12/schema",
+        "$id": _BASE + "origins.schema.json",
+        "title": "mapstore origins mapping",
+        "description": "Sets study, site and lab per dataset (keys are dataset keys or globs) and per "
+                       "study-qualified subject ('<dataset key>/sub-<label>'); overrides what BIDS "
+                       "metadata says.",
+        "type": "object",
+        "additionalProperties": False,
+        "properties": {"datasets": {"type": "object", "additionalProperties": entry},
+                       "subjects": {"type": "object", "additionalProperties": entry}},
+    }
+
+
+def _head_schema() -> dict[str, Any]:
+    return {
+        "$schema": "https://json-schema.org/draft/2020-12/schema",
+        "$id": _BASE + "store-head.schema.json",
+        "title": "mapstore store HEAD",
+        "description": "The one pointer a store's writers replace atomically: the current catalog "
+                       "snapshot, feature sets and labels, and a short history of writes.",
+        "type": "object",
+        "properties": {
+            "catalog": {"type": ["string", "null"]},
+            "features": {"type": "object"},
+            "default_features": {"type": ["string", "null"]},
+            "labels": {"type": ["object", "null"]},
+            "history": {"type": "array", "items": {"type": "object"}},
+        },
+    }
+
+
+def all_schemas() -> dict[str, dict[str, Any]]:
+    """Every schema by file name."""
+    from .store import DATASETS_SCHEMA, MAPS_SCHEMA, PROBLEMS_SCHEMA
+
+    out = {
+        "maps.schema.json": arrow_to_json_schema("maps", MAPS_SCHEMA, "One statistic map.", MAPS_DOCS),
+        "datasets.schema.json": arrow_to_json_schema("datasets", DATASETS_SCHEMA,
+                                                     "One derivative dataset."),
+        "problems.schema.json": arrow_to_json_schema(
+            "problems", PROBLEMS_SCHEMA,
+            "One file or folder that could not be used (level 'error') or was used with a caveat "
+            "(level 'warning'); code is stable, remedy says what to do."),
+        "name-rules.schema.json": _rules_schema(),
+        "origins.schema.json": _origins_schema(),
+        "store-head.schema.json": _head_schema(),
+    }
+    import importlib
+
+    for module in _PROVIDERS:
+        out.update(importlib.import_module(module).json_schemas())
+    return out
+
+
+# later stages that define file formats, each with a json_schemas() function
+_PROVIDERS: tuple[str, ...] = ()
+
+
+def write_all(folder: str | Path) -> list[Path]:
+    folder = Path(folder)
+    folder.mkdir(parents=True, exist_ok=True)
+    written = []
+    for name, doc in sorted(all_schemas().items()):
+        p = folder / name
+        p.write_text(json.dumps(doc, indent=2, sort_keys=True) + "\n")
+        written.append(p)
+    return written
+
+
+if __name__ == "__main__":  # pragma: no cover
+    for p in write_all(sys.argv[1] if len(sys.argv) > 1 else "schemas"):
+        print(p)

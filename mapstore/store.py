@@ -1,0 +1,299 @@
+"""The store on disk: Parquet catalog snapshots, feature shards, one atomic pointer.
+
+Layout of a store folder::
+
+    store.json                 marker: format name and version
+    HEAD                       JSON pointer to the current snapshot of everything
+    catalog/<snapshot>/        maps, datasets, participants, problems[, labels] .parquet
+    features/<set>/            set.json, mask.npy, shard-*.npy, rows-<snapshot>.parquet
+    .lock                      advisory lock held by the one writer
+
+A writer creates new files only, then replaces ``HEAD`` with one ``os.replace``:
+a reader (or a crash) sees the old snapshot or the new one, never half of one.
+Source datasets are never written to.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import fcntl
+import json
+import os
+import shutil
+import time
+import uuid
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterator
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from .errors import QueryError, StoreBusy, StoreCorrupt, StoreNotFound
+
+__all__ = [
+    "STORE_FORMAT",
+    "MAPS_SCHEMA",
+    "DATASETS_SCHEMA",
+    "PROBLEMS_SCHEMA",
+    "Head",
+    "write_lock",
+    "read_head",
+    "commit_head",
+    "new_snapshot_id",
+    "write_parquet_atomic",
+    "write_json_atomic",
+    "Catalog",
+    "ensure_store",
+]
+
+STORE_FORMAT = {"format": "mapstore-store", "version": 1}
+
+_s, _i32, _i64, _f64 = pa.string(), pa.int32(), pa.int64(), pa.float64()
+MAPS_SCHEMA = pa.schema([
+    ("map_id", _s), ("dataset", _s), ("relpath", _s),
+    ("sub", _s), ("ses", _s), ("task", _s), ("acq", _s), ("run", _s), ("rec", _s),
+    ("space", _s), ("res", _s), ("desc", _s), ("contrast", _s), ("stat", _s),
+    ("suffix", _s), ("extension", _s), ("entities", _s), ("named_by", _s),
+    ("participant", _s), ("study", _s), ("site", _s), ("lab", _s),
+    ("sha256", _s), ("nbytes", _i64), ("mtime_ns", _i64),
+    ("nifti_version", _i32), ("endianness", _s), ("shape", pa.list_(_i64)), ("n_volumes", _i64),
+    ("dtype", _s), ("bitpix", _i32), ("vox_offset", _i64),
+    ("scl_slope", _f64), ("scl_inter", _f64), ("intent_code", _i32), ("intent_name", _s), ("intent_p1", _f64),
+    ("qform_code", _i32), ("sform_code", _i32), ("affine_source", _s),
+    ("affine", pa.list_(_f64)), ("voxel_size", pa.list_(_f64)), ("orientation", _s),
+    ("grid_id", _s), ("dof", _f64), ("dof_source", _s), ("metadata", _s), ("sidecars", pa.list_(_s)),
+    ("header_warnings", pa.list_(_s)),
+])
+DATASETS_SCHEMA = pa.schema([
+    ("dataset", _s), ("name", _s), ("study", _s), ("root", _s), ("dataset_type", _s),
+    ("generated_by", _s), ("bids_version", _s), ("raw_root", _s), ("raw_name", _s),
+    ("participants_file", _s), ("n_maps", _i64), ("description", _s),
+])
+PROBLEMS_SCHEMA = pa.schema([
+    ("path", _s), ("dataset", _s), ("code", _s), ("level", _s), ("stage", _s),
+    ("reason", _s), ("remedy", _s),
+])
+
+
+@dataclass
+class Head:
+    """What the store currently serves: one catalog snapshot and the feature sets."""
+
+    catalog: str | None = None
+    features: dict[str, dict[str, Any]] = field(default_factory=dict)
+    default_features: str | None = None
+    labels: dict[str, Any] | None = None
+    history: list[dict[str, Any]] = field(default_factory=list)
+
+    def to_json(self) -> dict[str, Any]:
+        return {"catalog": self.catalog, "features": self.features,
+                "default_features": self.default_features, "labels": self.labels,
+                "history": self.history[-50:]}
+
+    @classmethod
+    def from_json(cls, doc: dict[str, Any]) -> "Head":
+        return cls(doc.get("catalog"), dict(doc.get("features") or {}), doc.get("default_features"),
+                   doc.get("labels"), list(doc.get("history") or []))
+
+
+def new_snapshot_id() -> str:
+    return time.strftime("%Y%m%dT%H%M%S") + "-" + uuid.uuid4().hex[:8]
+
+
+def ensure_store(path: str | os.PathLike[str]) -> Path:
+    """Create an empty store folder (or check an existing one) and return its path."""
+    p = Path(path).expanduser().absolute()
+    marker = p / "store.json"
+    if p.exists() and not p.is_dir():
+        raise StoreCorrupt(f"{p}: exists and is not a folder; choose another --store path")
+    if p.is_dir() and any(p.iterdir()) and not marker.exists():
+        raise StoreCorrupt(f"{p}: folder exists, is not empty and is not a mapstore store; "
+                           "choose an empty or new folder for --store")
+    p.mkdir(parents=True, exist_ok=True)
+    if not marker.exists():
+        write_json_atomic(marker, STORE_FORMAT)
+    return p
+
+
+def _check_store(p: Path) -> None:
+    marker = p / "store.json"
+    if not marker.exists():
+        raise StoreNotFound(f"{p}: no mapstore store here (no store.json); run 'mapstore index ROOT "
+                            f"--store {p}' first")
+    try:
+        doc = json.loads(marker.read_text())
+    except (OSError, ValueError) as exc:
+        raise StoreCorrupt(f"{marker}: unreadable store marker ({exc})") from None
+    if doc.get("format") != STORE_FORMAT["format"] or doc.get("version", 0) > STORE_FORMAT["version"]:
+        raise StoreCorrupt(f"{marker}: store format {doc} is not one this mapstore reads "
+                           f"({STORE_FORMAT}); upgrade mapstore")
+
+
+@contextlib.contextmanager
+def write_lock(path: Path) -> Iterator[None]:
+    """Hold the store's single-writer lock, failing at once if another process has it."""
+    lock = open(path / ".lock", "a+")
+    try:
+        try:
+            fcntl.flock(lock.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError:
+            raise StoreBusy(f"{path}: another mapstore process is writing to this store; "
+                            "wait for it to finish and run the command again") from None
+        yield
+    finally:
+        with contextlib.suppress(OSError):
+            fcntl.flock(lock.fileno(), fcntl.LOCK_UN)
+        lock.close()
+
+
+def read_head(path: Path) -> Head:
+    _check_store(path)
+    f = path / "HEAD"
+    if not f.exists():
+        return Head()
+    try:
+        return Head.from_json(json.loads(f.read_text()))
+    except (OSError, ValueError) as exc:
+        raise StoreCorrupt(f"{f}: unreadable ({exc}); restore it from a backup or re-index") from None
+
+
+def _fsync_dir(path: Path) -> None:
+    with contextlib.suppress(OSError):
+        fd = os.open(path, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def write_json_atomic(path: Path, doc: Any) -> None:
+    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}.tmp")
+    with open(tmp, "w") as fh:
+        json.dump(doc, fh, indent=1, sort_keys=True, default=str)
+        fh.flush()
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+    _fsync_dir(path.parent)
+
+
+def write_parquet_atomic(table: pa.Table, path: Path) -> None:
+    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}.tmp")
+    pq.write_table(table, tmp, compression="zstd")
+    with open(tmp, "rb") as fh:
+        os.fsync(fh.fileno())
+    os.replace(tmp, path)
+
+
+def commit_head(path: Path, head: Head, event: dict[str, Any]) -> None:
+    """Publish ``head`` as the store's current state (the one atomic step of a write)."""
+    head.history.append({"time": time.strftime("%Y-%m-%dT%H:%M:%S"), **event})
+    write_json_atomic(path / "HEAD", head.to_json())
+    _collect_garbage(path, head)
+
+
+def _collect_garbage(path: Path, head: Head) -> None:
+    # keep the current and the previous catalog snapshot, for readers still on it
+    cat = path / "catalog"
+    if not cat.is_dir():
+        return
+    snaps = sorted((p for p in cat.iterdir() if p.is_dir() and not p.name.startswith(".")),
+                   key=lambda p: p.name)
+    current = Path(head.catalog).name if head.catalog else None
+    keep = {current}
+    older = [p.name for p in snaps if p.name != current]
+    if older:
+        keep.add(older[-1])
+    for p in snaps:
+        if p.name not in keep:
+            shutil.rmtree(p, ignore_errors=True)
+
+
+class Catalog:
+    """Read side of the catalog: Arrow tables and a read-only DuckDB over them."""
+
+    TABLES = ("maps", "datasets", "participants", "problems", "labels")
+
+    def __init__(self, path: str | os.PathLike[str]) -> None:
+        self.path = Path(path).expanduser().absolute()
+        if not self.path.exists():
+            raise StoreNotFound(f"{self.path}: no such store; run 'mapstore index ROOT --store "
+                                f"{self.path}' first")
+        self.head = read_head(self.path)
+        self._tables: dict[str, pa.Table] = {}
+        self._con = None
+
+    def table_path(self, name: str) -> Path | None:
+        if name == "labels":
+            if not self.head.labels:
+                return None
+            return self.path / self.head.labels["table"]
+        if not self.head.catalog:
+            return None
+        return self.path / self.head.catalog / f"{name}.parquet"
+
+    def table(self, name: str) -> pa.Table:
+        if name not in self._tables:
+            p = self.table_path(name)
+            if p is None or not p.exists():
+                if p is not None and self.head.catalog:
+                    if name != "participants":
+                        raise StoreCorrupt(f"{p}: catalog file missing; re-run 'mapstore index'")
+                self._tables[name] = _empty(name)
+            else:
+                try:
+                    self._tables[name] = pq.read_table(p, memory_map=True)
+                except (OSError, pa.ArrowException) as exc:
+                    raise StoreCorrupt(f"{p}: cannot read ({exc}); re-run 'mapstore index'") from None
+        return self._tables[name]
+
+    def connection(self):
+        """A DuckDB connection with one view per catalog table, no file access beyond them."""
+        if self._con is None:
+            import duckdb
+
+            con = duckdb.connect(":memory:")
+            for name in self.TABLES:
+                con.register(f"_t_{name}", self.table(name))
+                con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM "_t_{name}"')
+            extra = getattr(self, "_extra_views", None)
+            if extra:
+                extra(con)
+            con.execute("SET enable_external_access = false")
+            con.execute("SET lock_configuration = true")
+            self._con = con
+        return self._con
+
+    def sql(self, query: str) -> pa.Table:
+        """Run one read-only SQL statement over the catalog views and return an Arrow table."""
+        import duckdb
+
+        con = self.connection()
+        try:
+            statements = con.extract_statements(query)
+        except duckdb.Error as exc:
+            raise QueryError(f"SQL does not parse: {exc}") from None
+        if len(statements) != 1:
+            raise QueryError(f"give exactly one SQL statement, got {len(statements)}")
+        kind = statements[0].type
+        if kind not in (duckdb.StatementType.SELECT, duckdb.StatementType.EXPLAIN):
+            raise QueryError(f"only read-only queries (SELECT, WITH ... SELECT) are allowed, "
+                             f"got a {kind.name} statement; the catalog is changed by "
+                             "'mapstore index', 'features' and 'labels'")
+        try:
+            return con.sql(query).to_arrow_table()
+        except duckdb.Error as exc:
+            raise QueryError(f"{exc}\n(views: {', '.join(self.TABLES)}; see 'mapstore sql --store "
+                             f"{self.path} \"DESCRIBE maps\"')") from None
+
+
+def _empty(name: str) -> pa.Table:
+    schema = {"maps": MAPS_SCHEMA, "datasets": DATASETS_SCHEMA, "problems": PROBLEMS_SCHEMA}.get(name)
+    if schema is None:
+        if name == "labels":
+            schema = pa.schema([("map_id", _s), ("concept", _s), ("direct", pa.bool_()),
+                                ("rule", _i32), ("vocabulary_sha256", _s)])
+        else:
+            schema = pa.schema([("dataset", _s), ("participant_id", _s), ("sub", _s),
+                                ("participant", _s)])
+    return schema.empty_table()

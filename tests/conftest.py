@@ -1,0 +1,68 @@
+"""Shared fixtures: a small invented demo tree and store, and tiny NIfTI writers."""
+
+from __future__ import annotations
+
+import json
+import os
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+import mapstore
+from mapstore.demo import make_demo
+
+NIBABEL_DATA = Path(nib.__file__).parent / "tests" / "data"
+
+
+@pytest.fixture(scope="session")
+def demo_tree(tmp_path_factory) -> Path:
+    root = tmp_path_factory.mktemp("demo") / "data"
+    make_demo(root, scale=0.25)
+    return root
+
+
+@pytest.fixture(scope="session")
+def demo_store(demo_tree, tmp_path_factory) -> Path:
+    store = tmp_path_factory.mktemp("demostore") / "store"
+    mapstore.index([demo_tree], store, rules=demo_tree / "name-rules.json",
+                   overrides=demo_tree / "origins.json", progress=False)
+    return store
+
+
+@pytest.fixture
+def rng() -> np.random.Generator:
+    return np.random.default_rng(20261202)
+
+
+def write_json(path: Path, doc: object) -> Path:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    path.write_text(json.dumps(doc))
+    return path
+
+
+def write_map(path: Path, data: np.ndarray | None = None, affine: np.ndarray | None = None,
+              shape=(4, 5, 6)) -> Path:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    if data is None:
+        data = np.arange(np.prod(shape), dtype=np.float32).reshape(shape)
+    img = nib.Nifti1Image(data, np.diag([2.0, 2.0, 2.0, 1.0]) if affine is None else affine)
+    nib.save(img, str(path))
+    return path
+
+
+def make_derivative(root: Path, name: str = "study", raw: bool = False) -> Path:
+    """A minimal derivative dataset (optionally nested in a raw dataset); returns its root."""
+    if raw:
+        write_json(root / "dataset_description.json", {"Name": name, "BIDSVersion": "1.9.0",
+                                                        "DatasetType": "raw"})
+        ds = root / "derivatives" / "glm"
+        write_json(ds / "dataset_description.json", {"Name": f"{name} glm", "BIDSVersion": "1.9.0",
+                                                      "DatasetType": "derivative",
+                                                      "GeneratedBy": [{"Name": "x"}]})
+        return ds
+    write_json(root / "dataset_description.json", {"Name": name, "BIDSVersion": "1.9.0",
+                                                    "DatasetType": "derivative",
+                                                    "GeneratedBy": [{"Name": "x"}]})
+    return root

@@ -1,0 +1,237 @@
+"""Index runs end to end: Parquet read back with pyarrow and DuckDB directly."""
+
+from __future__ import annotations
+
+import json
+import os
+import shutil
+import subprocess
+import time
+
+import duckdb
+import nibabel as nib
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+
+import mapstore
+from mapstore.catalog import map_id_for
+from mapstore.errors import ParameterError, QueryError, StoreBusy, StoreNotFound
+from mapstore.store import write_lock
+
+from .conftest import NIBABEL_DATA, make_derivative, write_json, write_map
+
+
+def _maps_file(store):
+    head = json.loads((store / "HEAD").read_text())
+    return store / head["catalog"] / "maps.parquet"
+
+
+def test_demo_index_contents(demo_store, demo_tree):
+    st = mapstore.open(demo_store)
+    maps = st.sql("SELECT * FROM maps").to_pandas()
+    on_disk = [p for p in demo_tree.rglob("*.nii*") if not p.is_symlink() and p.stat().st_size > 1000]
+    assert len(maps) == len(on_disk)
+    assert set(maps.stat) == {"t", "z", "effect", "variance"}
+    assert maps.map_id.is_unique
+    assert maps.study.nunique() == 6 and maps.lab.nunique() == 4
+    # the two-site lab
+    assert sorted(maps[maps.study == "glowtrack"].site.unique()) == ["lantern-north", "lantern-south"]
+    assert maps.grid_id.nunique() == 4
+    # subject-level sidecar override (BIDS inheritance): sub-02 has fewer DOF than sub-01
+    glow = maps[(maps.study == "glowtrack") & (maps.stat == "t")]
+    assert set(glow[glow["sub"] == "02"].dof) == {140.0} and set(glow[glow["sub"] == "01"].dof) == {180.0}
+    # legacy names via rules
+    ember = maps[maps.study == "emberlight"]
+    assert set(ember.named_by) == {"rule:0", "rule:1"} and set(ember.stat) == {"t", "effect", "variance"}
+    assert (ember[ember.stat == "effect"].dtype == "int16").all()
+    # relpaths are relative to the dataset root
+    roots = dict(st.sql("SELECT dataset, root FROM datasets").to_pandas().values)
+    for _, row in maps.head(20).iterrows():
+        assert (demo_tree / roots[row.dataset] / row.relpath).exists()
+        assert not os.path.isabs(row.relpath)
+
+
+def test_header_columns_agree_with_nibabel(demo_store):
+    # reference: nibabel reading the same files
+    st = mapstore.open(demo_store)
+    rows = st.sql("SELECT m.*, d.root FROM maps m JOIN datasets d USING (dataset) USING SAMPLE 12 ROWS").to_pylist()
+    for r in rows:
+        img = nib.load(os.path.join(r["root"], r["relpath"]))
+        assert tuple(r["shape"]) == img.shape
+        np.testing.assert_allclose(np.reshape(r["affine"], (4, 4)), img.affine, atol=1e-5)
+        assert r["dtype"] == img.get_data_dtype().name
+
+
+def test_catalog_readable_by_pyarrow_and_duckdb_directly(demo_store):
+    f = _maps_file(demo_store)
+    t = pq.read_table(f)
+    n = duckdb.connect().execute(f"SELECT count(*) FROM read_parquet('{f}')").fetchone()[0]
+    assert t.num_rows == n == mapstore.open(demo_store).sql("SELECT count(*) n FROM maps")["n"][0].as_py()
+
+
+def test_problems_table(demo_store):
+    probs = mapstore.open(demo_store).sql("SELECT * FROM problems").to_pandas()
+    assert set(probs.code) >= {"dangling-symlink", "truncated-header"}
+    assert probs.remedy.str.len().min() > 10 and probs.reason.str.len().min() > 5
+
+
+def test_sql_is_read_only(demo_store):
+    st = mapstore.open(demo_store)
+    for q in ("DROP VIEW maps", "CREATE TABLE x AS SELECT 1", "COPY maps TO '/tmp/x.csv'",
+              "SELECT 1; SELECT 2"):
+        with pytest.raises(QueryError):
+            st.sql(q)
+    with pytest.raises(QueryError, match="Permission"):
+        st.sql("SELECT * FROM read_csv('/etc/hostname')")
+    with pytest.raises(QueryError, match="views"):
+        st.sql("SELECT nope FROM maps")
+
+
+def test_open_missing_store(tmp_path):
+    with pytest.raises(StoreNotFound):
+        mapstore.open(tmp_path / "none")
+    with pytest.raises(FileNotFoundError):  # leaves inherit the builtin
+        mapstore.open(tmp_path / "none")
+
+
+def _small_tree(tmp_path):
+    ds = make_derivative(tmp_path / "src" / "alpha", name="alpha")
+    write_json(ds / "task-go_statmap.json", {"DegreesOfFreedom": 30})
+    (ds / "participants.tsv").write_text("participant_id\tsite\tage\nsub-01\tS1\t25\nsub-02\tS2\tn/a\n")
+    for sub in ("01", "02"):
+        for c in ("a", "b"):
+            write_map(ds / f"sub-{sub}" / "func" / f"sub-{sub}_task-go_contrast-{c}_stat-t_statmap.nii.gz")
+    return ds
+
+
+def test_incremental_reindex(tmp_path):
+    ds = _small_tree(tmp_path)
+    store = tmp_path / "store"
+    r1 = mapstore.index([tmp_path / "src"], store, progress=False)
+    assert (r1.new, r1.maps) == (4, 4)
+    ids1 = mapstore.open(store).sql("SELECT map_id, relpath, sha256 FROM maps ORDER BY relpath").to_pylist()
+    r2 = mapstore.index([tmp_path / "src"], store, progress=False)
+    assert (r2.new, r2.changed, r2.unchanged, r2.removed) == (0, 0, 4, 0)
+    ids2 = mapstore.open(store).sql("SELECT map_id, relpath, sha256 FROM maps ORDER BY relpath").to_pylist()
+    assert ids1 == ids2
+    # change one file's content, remove one, add one
+    f = ds / "sub-01" / "func" / "sub-01_task-go_contrast-a_stat-t_statmap.nii.gz"
+    write_map(f, data=np.ones((4, 5, 6), np.float32))
+    st = os.stat(f)
+    os.utime(f, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))
+    (ds / "sub-02" / "func" / "sub-02_task-go_contrast-b_stat-t_statmap.nii.gz").unlink()
+    write_map(ds / "sub-03" / "func" / "sub-03_task-go_contrast-a_stat-t_statmap.nii.gz")
+    r3 = mapstore.index([tmp_path / "src"], store, progress=False)
+    assert (r3.new, r3.changed, r3.unchanged, r3.removed, r3.maps) == (1, 1, 2, 1, 4)
+    rows = {r["relpath"]: r for r in mapstore.open(store).sql("SELECT * FROM maps").to_pylist()}
+    changed = rows[f.relative_to(ds).as_posix()]
+    assert changed["sha256"] != next(r for r in ids1 if r["relpath"] == changed["relpath"])["sha256"]
+    assert changed["map_id"] == map_id_for("alpha", changed["relpath"])  # id survives the change
+    assert rows["sub-01/func/sub-01_task-go_contrast-a_stat-t_statmap.nii.gz"]["site"] == "S1"
+
+
+def test_map_ids_survive_moving_the_data(tmp_path):
+    _small_tree(tmp_path)
+    mapstore.index([tmp_path / "src"], tmp_path / "s1", progress=False)
+    shutil.move(tmp_path / "src", tmp_path / "moved")
+    mapstore.index([tmp_path / "moved" / "alpha"], tmp_path / "s2", progress=False)
+    q = "SELECT map_id, sha256 FROM maps ORDER BY map_id"
+    assert mapstore.open(tmp_path / "s1").sql(q) == mapstore.open(tmp_path / "s2").sql(q)
+
+
+def test_other_roots_kept_unless_pruned(tmp_path):
+    _small_tree(tmp_path)
+    other = make_derivative(tmp_path / "src2" / "beta", name="beta")
+    write_map(other / "sub-01" / "sub-01_task-x_contrast-c_stat-z_statmap.nii")
+    store = tmp_path / "store"
+    mapstore.index([tmp_path / "src"], store, progress=False)
+    r = mapstore.index([tmp_path / "src2"], store, progress=False)
+    assert r.maps == 5 and r.kept_datasets == 1
+    r = mapstore.index([tmp_path / "src2"], store, prune=True, progress=False)
+    assert r.maps == 1
+
+
+def test_unreadable_file_does_not_stop_the_crawl(tmp_path):
+    ds = _small_tree(tmp_path)
+    bad = ds / "sub-01" / "func" / "sub-01_task-go_contrast-z_stat-t_statmap.nii.gz"
+    bad.write_bytes(b"\x1f\x8b\x08\x00garbage" * 20)
+    short = ds / "sub-01" / "func" / "sub-01_task-go_contrast-y_stat-t_statmap.nii"
+    write_map(short)
+    short.write_bytes(short.read_bytes()[:400])
+    r = mapstore.index([tmp_path / "src"], tmp_path / "store", progress=False)
+    assert r.maps == 4
+    probs = {p["path"]: p for p in mapstore.open(tmp_path / "store").sql("SELECT * FROM problems").to_pylist()}
+    assert probs[str(bad)]["code"] == "bad-gzip" and probs[str(short)]["code"] == "truncated-data"
+
+
+def test_store_inside_dataset_refused(tmp_path):
+    ds = _small_tree(tmp_path)
+    with pytest.raises(ParameterError, match="outside source datasets"):
+        mapstore.index([ds], ds / "store", progress=False)
+    assert not (ds / "store").exists()
+
+
+def test_source_datasets_are_not_written(tmp_path):
+    _small_tree(tmp_path)
+    before = {p: p.stat().st_mtime_ns for p in (tmp_path / "src").rglob("*")}
+    mapstore.index([tmp_path / "src"], tmp_path / "store", progress=False)
+    after = {p: p.stat().st_mtime_ns for p in (tmp_path / "src").rglob("*")}
+    assert before == after
+
+
+def test_busy_store_fails_fast_and_keeps_old_snapshot(tmp_path):
+    _small_tree(tmp_path)
+    store = tmp_path / "store"
+    mapstore.index([tmp_path / "src"], store, progress=False)
+    head = (store / "HEAD").read_text()
+    # a second process holds the writer lock
+    proc = subprocess.Popen(["python", "-c", (
+        "import sys, time, pathlib; from mapstore.store import write_lock\n"
+        f"with write_lock(pathlib.Path({str(store)!r})):\n print('locked', flush=True); time.sleep(30)")],
+        stdout=subprocess.PIPE, text=True)
+    try:
+        assert proc.stdout.readline().strip() == "locked"
+        with pytest.raises(StoreBusy, match="another mapstore process"):
+            mapstore.index([tmp_path / "src"], store, progress=False)
+    finally:
+        proc.kill()
+        proc.wait()
+    assert (store / "HEAD").read_text() == head
+    assert mapstore.open(store).sql("SELECT count(*) n FROM maps")["n"][0].as_py() == 4
+
+
+def test_nibabel_reference_images_indexed(tmp_path):
+    # nibabel's bundled NIfTI-1, NIfTI-2 and big-endian images, named as statistic maps
+    ds = make_derivative(tmp_path / "ref", name="ref")
+    names = {"example4d.nii.gz": "n1", "example_nifti2.nii.gz": "n2", "anatomical.nii": "be"}
+    for src, c in names.items():
+        ext = ".nii.gz" if src.endswith(".gz") else ".nii"
+        dst = ds / "sub-01" / f"sub-01_task-ref_contrast-{c}_stat-t_statmap{ext}"
+        dst.parent.mkdir(parents=True, exist_ok=True)
+        shutil.copy(NIBABEL_DATA / src, dst)
+    from nilearn.datasets import load_sample_motor_activation_image
+
+    shutil.copy(load_sample_motor_activation_image(), ds / "sub-01" / "sub-01_task-ref_contrast-motor_stat-z_statmap.nii.gz")
+    mapstore.index([ds], tmp_path / "store", progress=False)
+    rows = {r["contrast"]: r for r in mapstore.open(tmp_path / "store").sql("SELECT * FROM maps").to_pylist()}
+    assert rows["n1"]["nifti_version"] == 1 and rows["n2"]["nifti_version"] == 2
+    assert rows["be"]["endianness"] == ">"
+    for c, r in rows.items():
+        img = nib.load(os.path.join(ds, r["relpath"]))
+        assert tuple(r["shape"]) == img.shape
+        np.testing.assert_allclose(np.reshape(r["affine"], (4, 4)), img.affine, atol=2e-4)
+    motor = nib.load(load_sample_motor_activation_image())
+    assert rows["motor"]["grid_id"] != rows["n1"]["grid_id"] and tuple(rows["motor"]["shape"]) == motor.shape
+
+
+def test_parallel_index_equals_serial(tmp_path):
+    ds = make_derivative(tmp_path / "src" / "many", name="many")
+    for i in range(600):
+        write_map(ds / f"sub-{i % 30:02d}" / f"sub-{i % 30:02d}_task-t_contrast-c{i}_stat-t_statmap.nii",
+                  shape=(3, 3, 3))
+    a = mapstore.index([tmp_path / "src"], tmp_path / "a", jobs=1, progress=False)
+    b = mapstore.index([tmp_path / "src"], tmp_path / "b", jobs=2, progress=False)
+    assert a.maps == b.maps == 600
+    q = "SELECT map_id, sha256, grid_id FROM maps ORDER BY map_id"
+    assert mapstore.open(tmp_path / "a").sql(q) == mapstore.open(tmp_path / "b").sql(q)

@@ -1,0 +1,41 @@
+"""The CLI is a thin layer: exit codes, formats, no tracebacks for user errors."""
+
+from __future__ import annotations
+
+import json
+
+import pyarrow.parquet as pq
+from click.testing import CliRunner
+
+from mapstore.cli import cli, main
+
+
+def test_sql_formats(demo_store, tmp_path):
+    runner = CliRunner()
+    q = "SELECT map_id, stat, shape FROM maps ORDER BY map_id LIMIT 3"
+    r = runner.invoke(cli, ["sql", "--store", str(demo_store), q])
+    assert r.exit_code == 0 and "map_id" in r.output and "(3 rows)" in r.output
+    r = runner.invoke(cli, ["sql", "--store", str(demo_store), q, "--format", "json"])
+    rows = json.loads(r.output)
+    assert len(rows) == 3 and isinstance(rows[0]["shape"], list)
+    r = runner.invoke(cli, ["sql", "--store", str(demo_store), q, "--format", "csv"])
+    assert r.output.splitlines()[0] == '"map_id","stat","shape"'
+    out = tmp_path / "x.parquet"
+    r = runner.invoke(cli, ["sql", "--store", str(demo_store), q, "--format", "parquet", "--out", str(out)])
+    assert r.exit_code == 0 and pq.read_table(out).num_rows == 3
+
+
+def test_user_errors_exit_cleanly(tmp_path, capsys):
+    assert main(["sql", "--store", str(tmp_path / "nothing"), "SELECT 1"]) == 1
+    err = capsys.readouterr().err
+    assert "no such store" in err and "Traceback" not in err
+    assert main(["index", str(tmp_path), "--store", str(tmp_path / "s"), "--rules", str(tmp_path / "no.json")]) == 1
+    assert "file not found" in capsys.readouterr().err
+    assert main(["sql"]) == 2  # usage error
+
+
+def test_index_command(demo_tree, tmp_path):
+    r = CliRunner().invoke(cli, ["index", str(demo_tree), "--store", str(tmp_path / "s"),
+                                 "--rules", str(demo_tree / "name-rules.json"), "--jobs", "1"])
+    assert r.exit_code == 0, r.output
+    assert "maps:" in r.output and "problems:" in r.output

@@ -1,0 +1,33 @@
+"""The schemas/ folder matches what the package generates, and the schemas validate real files."""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import jsonschema
+import pyarrow.parquet as pq
+
+from mapstore.schemas import all_schemas
+
+REPO = Path(__file__).resolve().parents[1]
+
+
+def test_schema_files_in_sync():
+    generated = all_schemas()
+    on_disk = {p.name: json.loads(p.read_text()) for p in (REPO / "schemas").glob("*.json")}
+    assert on_disk == generated, "run: python -m mapstore.schemas schemas"
+
+
+def test_schemas_are_valid_and_validate_demo_files(demo_store, demo_tree):
+    schemas = all_schemas()
+    for doc in schemas.values():
+        jsonschema.Draft202012Validator.check_schema(doc)
+    head = json.loads((demo_store / "HEAD").read_text())
+    jsonschema.validate(head, schemas["store-head.schema.json"])
+    jsonschema.validate(json.loads((demo_tree / "name-rules.json").read_text()), schemas["name-rules.schema.json"])
+    jsonschema.validate(json.loads((demo_tree / "origins.json").read_text()), schemas["origins.schema.json"])
+    for table in ("maps", "datasets", "problems"):
+        rows = pq.read_table(demo_store / head["catalog"] / f"{table}.parquet").to_pylist()
+        for row in rows[:50]:
+            jsonschema.validate(row, schemas[f"{table}.schema.json"])
