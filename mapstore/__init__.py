@@ -11,14 +11,18 @@ __version__ = "0.1.0"
 from .api import Store, open_store as open  # noqa: A001  (mapstore.open mirrors the builtin on purpose)
 from .catalog import IndexReport, index
 from .errors import MapstoreError
+from .features import FeatureReport, FeatureSet, build_features
 from .header import HeaderFacts, read_header
 
 __all__ = sorted([
+    "FeatureReport",
+    "FeatureSet",
     "HeaderFacts",
     "IndexReport",
     "MapstoreError",
     "Store",
     "__version__",
+    "build_features",
     "index",
     "open",
     "read_header",

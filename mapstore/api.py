@@ -7,6 +7,8 @@ from pathlib import Path
 
 import pyarrow as pa
 
+from .errors import FeatureError
+from .features import FeatureSet
 from .store import Catalog
 
 __all__ = ["Store", "open_store"]
@@ -45,6 +47,26 @@ class Store:
     def table(self, name: str) -> pa.Table:
         """A whole catalog table as Arrow (``maps``, ``datasets``, ``participants``, ...)."""
         return self.catalog.table(name)
+
+    def feature_sets(self) -> list[str]:
+        """Names of the feature sets in the store (``SELECT * FROM feature_sets`` for details)."""
+        return sorted(self.catalog.head.features)
+
+    def features(self, name: str | None = None) -> FeatureSet:
+        """A feature set by name; with no name, the default (or only) set."""
+        head = self.catalog.head
+        if name is None:
+            name = head.default_features
+            if name is None:
+                raise FeatureError(f"{self.path}: no feature set yet; run 'mapstore features --store "
+                                   f"{self.path}'")
+        if name not in head.features:
+            raise FeatureError(f"{self.path}: no feature set {name!r}; sets: {self.feature_sets() or 'none'}")
+        return FeatureSet(self.path, name, head.features[name])
+
+    def to_image(self, vector, name: str | None = None):
+        """A NIfTI image (nibabel) of a feature vector or decoder coefficients on a set's grid."""
+        return self.features(name).to_image(vector)
 
 
 def open_store(path: str | os.PathLike[str]) -> Store:

@@ -110,6 +110,35 @@ def sql_cmd(store, query, fmt, out) -> None:
     write_table(table, fmt, out)
 
 
+@cli.command("features")
+@STORE_OPTION
+@click.option("--name", help="Feature set name (default: 'default' for the default settings).")
+@click.option("--grid", default="MNI152-2mm", show_default=True,
+              help="MNI152-1mm|MNI152-2mm|MNI152-3mm, a reference image, or a JSON {shape, affine} file.")
+@click.option("--mask", default="brain", show_default=True,
+              help="brain (MNI152 brain mask), intersection, coverage:FRACTION, or a mask image.")
+@click.option("--method", type=click.Choice(["linear", "nearest", "cubic"]), default="linear", show_default=True)
+@click.option("--stat", type=click.Choice(["native", "z"]), default="native", show_default=True,
+              help="Keep each map's stat, or convert t and p maps to z.")
+@click.option("--p-sided", type=click.Choice(["one", "two"]), default="one", show_default=True,
+              help="How p maps were computed (for --stat z).")
+@click.option("--zero-as-missing", is_flag=True, help="Treat exact zeros in the maps as missing values.")
+@click.option("--where", help="SQL predicate over maps (alias m) choosing the maps, e.g. \"m.stat = 't'\".")
+@click.option("--jobs", type=click.IntRange(min=1), default=None, help="Processes (default: all cores).")
+@click.option("--dask", "dask_address", help="Run on this Dask scheduler (e.g. tcp://host:8786).")
+@click.option("--list", "list_only", is_flag=True, help="List the store's feature sets and stop.")
+def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing, where, jobs,
+                 dask_address, list_only) -> None:
+    """Resample every map once onto one grid and mask (a named feature set)."""
+    if list_only:
+        click.echo(render_table(mapstore.open(store).sql("SELECT * FROM feature_sets")))
+        return
+    report = mapstore.build_features(store, name, grid=grid, mask=mask, method=method, stat=stat,
+                                     p_sided=p_sided, zero_as_missing=zero_as_missing, where=where,
+                                     jobs=jobs, scheduler=dask_address)
+    click.echo(report.summary())
+
+
 @cli.command("demo")
 @click.argument("folder", type=click.Path(file_okay=False))
 @click.option("--scale", type=click.FloatRange(0.1, 1.0), default=1.0, show_default=True,
@@ -136,6 +165,14 @@ def demo_cmd(folder, scale) -> None:
         "GROUP BY ALL ORDER BY study")))
     click.echo("\nproblems found:")
     click.echo(render_table(st.sql("SELECT code, level, path, remedy FROM problems ORDER BY code")))
+    click.echo("\nresampling every map onto the MNI152 2 mm grid and brain mask ...")
+    freport = mapstore.build_features(store)
+    click.echo(freport.summary())
+    st = mapstore.open(store)
+    click.echo(render_table(st.sql(
+        "SELECT m.study, m.orientation, list_first(m.voxel_size) AS voxel_mm, any_value(f.resample_path) AS path, "
+        "round(min(f.coverage), 3) AS min_coverage, round(avg(f.coverage), 3) AS mean_coverage, count(*) AS rows "
+        "FROM features f JOIN maps m USING (map_id) GROUP BY ALL ORDER BY m.study")))
     click.echo(f"\ntry: mapstore sql --store {store} \"SELECT sub, task, contrast, stat, dof FROM maps LIMIT 5\"")
 
 

@@ -36,6 +36,8 @@ __all__ = [
     "MAPS_SCHEMA",
     "DATASETS_SCHEMA",
     "PROBLEMS_SCHEMA",
+    "ROWS_SCHEMA",
+    "FPROBLEMS_SCHEMA",
     "Head",
     "write_lock",
     "read_head",
@@ -70,6 +72,18 @@ DATASETS_SCHEMA = pa.schema([
     ("generated_by", _s), ("bids_version", _s), ("raw_root", _s), ("raw_name", _s),
     ("participants_file", _s), ("n_maps", _i64), ("description", _s),
 ])
+ROWS_SCHEMA = pa.schema([
+    ("map_id", _s), ("feature_key", _s), ("sha256", _s),
+    ("shard", _s), ("row", _i64), ("coverage", _f64),
+    ("stat_in", _s), ("stat_out", _s), ("conversion", _s),
+    ("resample_path", _s), ("built_at", _s),
+])
+FPROBLEMS_SCHEMA = pa.schema([
+    ("map_id", _s), ("path", _s), ("code", _s), ("reason", _s),
+    ("remedy", _s),
+])
+
+
 PROBLEMS_SCHEMA = pa.schema([
     ("path", _s), ("dataset", _s), ("code", _s), ("level", _s), ("stage", _s),
     ("reason", _s), ("remedy", _s),
@@ -256,13 +270,42 @@ class Catalog:
             for name in self.TABLES:
                 con.register(f"_t_{name}", self.table(name))
                 con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM "_t_{name}"')
-            extra = getattr(self, "_extra_views", None)
-            if extra:
-                extra(con)
+            for view, table in self._feature_tables().items():
+                con.register(f"_t_{view}", table)
+                con.execute(f'CREATE VIEW "{view}" AS SELECT * FROM "_t_{view}"')
             con.execute("SET enable_external_access = false")
             con.execute("SET lock_configuration = true")
             self._con = con
         return self._con
+
+    def _feature_tables(self) -> dict[str, pa.Table]:
+        """Views over every feature set: rows (``features``), failures, and one row per set."""
+        rows, probs, sets = [], [], []
+        for name, entry in sorted(self.head.features.items()):
+            try:
+                r = pq.read_table(self.path / entry["rows"])
+                p = pq.read_table(self.path / entry["problems"])
+                spec = json.loads((self.path / entry["dir"] / "set.json").read_text())
+            except (OSError, ValueError, pa.ArrowException) as exc:
+                raise StoreCorrupt(f"{self.path / entry['dir']}: feature set {name!r} unreadable ({exc}); "
+                                   f"rebuild it with 'mapstore features --name {name}'") from None
+            rows.append(r.add_column(0, "feature_set", pa.array([name] * r.num_rows, pa.string())))
+            probs.append(p.add_column(0, "feature_set", pa.array([name] * p.num_rows, pa.string())))
+            sets.append({"feature_set": name, "default": name == self.head.default_features,
+                         "rows": r.num_rows, "grid": spec["grid"]["name"], "grid_id": spec["grid_id"],
+                         "shape": spec["grid"]["shape"], "mask": spec["mask"]["name"],
+                         "n_voxels": spec["mask"]["n_voxels"], "method": spec["method"],
+                         "stat": spec["stat"], "spec_id": spec["spec_id"]})
+        def union(parts: list[pa.Table], schema: pa.Schema) -> pa.Table:
+            if parts:
+                return pa.concat_tables(parts)
+            return pa.schema([("feature_set", pa.string()), *schema]).empty_table()
+
+        sets_schema = pa.schema([("feature_set", _s), ("default", pa.bool_()), ("rows", _i64), ("grid", _s),
+                                 ("grid_id", _s), ("shape", pa.list_(_i64)), ("mask", _s), ("n_voxels", _i64),
+                                 ("method", _s), ("stat", _s), ("spec_id", _s)])
+        return {"features": union(rows, ROWS_SCHEMA), "feature_problems": union(probs, FPROBLEMS_SCHEMA),
+                "feature_sets": pa.Table.from_pylist(sets, schema=sets_schema)}
 
     def sql(self, query: str) -> pa.Table:
         """Run one read-only SQL statement over the catalog views and return an Arrow table."""
@@ -283,7 +326,8 @@ class Catalog:
         try:
             return con.sql(query).to_arrow_table()
         except duckdb.Error as exc:
-            raise QueryError(f"{exc}\n(views: {', '.join(self.TABLES)}; see 'mapstore sql --store "
+            raise QueryError(f"{exc}\n(views: {', '.join(self.TABLES)}, features, feature_sets, "
+                             f"feature_problems; see 'mapstore sql --store "
                              f"{self.path} \"DESCRIBE maps\"')") from None
 
 

@@ -1,0 +1,598 @@
+"""Feature sets: every map resampled once onto one grid and mask, provenance-linked.
+
+A feature set is a folder in the store::
+
+    features/<name>/set.json            grid, mask, method, stat conversion, versions
+    features/<name>/mask.npy            flat C-order voxel indices of the mask on the grid
+    features/<name>/shards/*.npy        float32 rows (maps x mask voxels), C order, memory-mappable
+    features/<name>/rows-<snap>.parquet one row per served map: map_id, feature_key, shard, row, ...
+
+Each row's ``feature_key`` hashes the source's SHA-256 with everything that made
+the vector (grid, mask, method, conversion and its DOF, mapstore version), so a
+re-run skips rows whose key exists and a changed source gets a new row.
+Workers write new shard files only; the new rows table is published with the
+store's atomic HEAD replacement.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import sys
+import time
+import uuid
+from concurrent.futures import ProcessPoolExecutor, as_completed
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from . import __version__
+from .errors import FeatureError, MapstoreError, ParameterError, QueryError
+from .grid import (
+    METHODS,
+    Mask,
+    TargetGrid,
+    builtin_grid,
+    grid_from_image,
+    grid_from_spec,
+    mask_from_array,
+    mask_from_image,
+    mni152_brain_mask,
+    read_volume,
+    resample,
+)
+from .stats import convert
+from .store import (
+    FPROBLEMS_SCHEMA,
+    ROWS_SCHEMA,
+    Catalog,
+    commit_head,
+    new_snapshot_id,
+    read_head,
+    write_json_atomic,
+    write_lock,
+    write_parquet_atomic,
+)
+
+__all__ = ["FeatureReport", "FeatureSet", "build_features", "ROWS_SCHEMA", "DEFAULT_SET"]
+
+DEFAULT_SET = "default"
+@dataclass
+class FeatureReport:
+    """What one ``features`` run did."""
+
+    name: str
+    n_voxels: int
+    grid: str
+    mask: str
+    built: int
+    skipped: int
+    dropped: int
+    failed: int
+    seconds: float
+    paths: dict[str, int] = field(default_factory=dict)
+    problems: list[dict[str, Any]] = field(default_factory=list)
+
+    def summary(self) -> str:
+        rate = self.built / self.seconds if self.seconds > 0 else 0.0
+        lines = [f"feature set {self.name!r}: grid {self.grid}, mask {self.mask} ({self.n_voxels:,} voxels)",
+                 f"built {self.built} rows ({rate:,.1f} maps/s), kept {self.skipped} unchanged, "
+                 f"dropped {self.dropped} stale, {self.failed} failed in {self.seconds:.1f} s"]
+        if self.paths:
+            lines.append("resampling paths: " + ", ".join(f"{k} x{v}" for k, v in sorted(self.paths.items())))
+        for p in self.problems[:5]:
+            lines.append(f"  failed: {p['path']}: {p['reason']}")
+        if len(self.problems) > 5:
+            lines.append(f"  ... and {len(self.problems) - 5} more (SELECT * FROM feature_problems)")
+        return "\n".join(lines)
+
+
+def _library_versions() -> dict[str, str]:
+    import nibabel
+    import scipy
+
+    return {"mapstore": __version__, "numpy": np.__version__, "scipy": scipy.__version__,
+            "nibabel": nibabel.__version__}
+
+
+def _resolve_grid(grid: str | TargetGrid | dict) -> TargetGrid:
+    if isinstance(grid, TargetGrid):
+        return grid
+    if isinstance(grid, dict):
+        return grid_from_spec(grid["shape"], grid["affine"], grid.get("name", "custom"))
+    if not isinstance(grid, str):
+        raise ParameterError(f"grid must be a built-in name, an image path, a JSON spec path or a "
+                             f"TargetGrid, got {type(grid).__name__}")
+    if grid.endswith(".json"):
+        try:
+            doc = json.loads(Path(grid).read_text())
+        except (OSError, ValueError) as exc:
+            raise ParameterError(f"grid spec {grid}: cannot read ({exc}); expected JSON "
+                                 '{"shape": [x, y, z], "affine": [[...4x4...]]}') from None
+        return grid_from_spec(doc["shape"], doc["affine"], doc.get("name", Path(grid).stem))
+    if grid.endswith((".nii", ".nii.gz")):
+        return grid_from_image(grid)
+    return builtin_grid(grid)
+
+
+def _spec_id(doc: dict[str, Any]) -> str:
+    keep = {k: doc[k] for k in ("grid_id", "mask_sha256", "method", "stat", "p_sided", "zero_as_missing")}
+    return hashlib.sha256(json.dumps(keep, sort_keys=True).encode()).hexdigest()[:16]
+
+
+def feature_key(sha256: str, spec: dict[str, Any], dof: float | None) -> str:
+    text = "|".join([sha256, spec["grid_id"], spec["mask_sha256"], spec["method"], spec["stat"],
+                     spec["p_sided"], str(spec["zero_as_missing"]),
+                     "" if dof is None or spec["stat"] == "native" else f"{dof:.6g}", __version__])
+    return hashlib.sha256(text.encode()).hexdigest()[:32]
+
+
+@dataclass
+class _Item:
+    map_id: str
+    path: str
+    sha256: str
+    stat: str
+    dof: float | None
+    key: str
+
+
+@dataclass
+class _Batch:
+    set_dir: str
+    shard: str
+    items: list[_Item]
+    grid: TargetGrid
+    method: str
+    stat: str
+    p_sided: str
+    zero_as_missing: bool
+    coverage_only: bool = False
+
+
+def _vector(item: _Item, b: _Batch, indices: np.ndarray | None) -> tuple[np.ndarray, str, str]:
+    vol, facts = read_volume(item.path, expect_sha256=item.sha256)
+    if b.zero_as_missing:
+        vol[vol == 0] = np.nan
+    out, path = resample(vol, facts.affine_array, b.grid, b.method, return_path=True)
+    flat = out.reshape(-1)
+    vec = flat if indices is None else flat[indices]
+    vec, conversion = convert(vec, item.stat, b.stat, dof=item.dof, sided=b.p_sided, where=item.path)
+    return np.asarray(vec, dtype=np.float32), conversion, path
+
+
+def _run_batch(b: _Batch) -> dict[str, Any]:
+    """Resample a batch of maps into one new shard file (or, for coverage masks, count coverage)."""
+    problems: list[dict[str, Any]] = []
+    if b.coverage_only:
+        counts = np.zeros(b.grid.n_voxels, dtype=np.int32)
+        done = 0
+        for it in b.items:
+            try:
+                vec, _, _ = _vector(it, b, None)
+            except MapstoreError as exc:
+                problems.append(_problem(it, exc))
+                continue
+            counts += np.isfinite(vec)
+            done += 1
+        return {"counts": counts, "n": done, "problems": problems}
+    indices = np.load(os.path.join(b.set_dir, "mask.npy"))
+    shard_path = os.path.join(b.set_dir, "shards", b.shard)
+    tmp = shard_path + f".{uuid.uuid4().hex}.tmp"
+    arr = np.lib.format.open_memmap(tmp, mode="w+", dtype=np.float32, shape=(len(b.items), indices.size))
+    rows: list[dict[str, Any]] = []
+    now = time.strftime("%Y-%m-%dT%H:%M:%S")
+    for i, it in enumerate(b.items):
+        try:
+            vec, conversion, path = _vector(it, b, indices)
+        except MapstoreError as exc:
+            arr[i] = np.nan
+            problems.append(_problem(it, exc))
+            continue
+        arr[i] = vec
+        finite = np.isfinite(vec)
+        rows.append({"map_id": it.map_id, "feature_key": it.key, "sha256": it.sha256, "shard": b.shard,
+                     "row": i, "coverage": float(finite.mean()), "stat_in": it.stat,
+                     "stat_out": it.stat if b.stat == "native" else b.stat, "conversion": conversion,
+                     "resample_path": path, "built_at": now})
+    arr.flush()
+    del arr
+    os.replace(tmp, shard_path)
+    return {"rows": rows, "problems": problems}
+
+
+def _problem(it: _Item, exc: Exception) -> dict[str, Any]:
+    code = type(exc).__name__.replace("Error", "").lower() or "error"
+    remedy = "re-run 'mapstore index' if the file changed" if "index" in str(exc) else \
+        "fix or exclude the map (see the reason)"
+    return {"map_id": it.map_id, "path": it.path, "code": code, "reason": str(exc), "remedy": remedy}
+
+
+def _resolve_jobs(jobs: int | None) -> int:
+    if jobs is None:
+        return os.cpu_count() or 1
+    if not isinstance(jobs, int) or jobs < 1:
+        raise ParameterError(f"jobs must be a positive integer, got {jobs!r}")
+    return jobs
+
+
+def _execute(batches: list[_Batch], jobs: int, scheduler: Any, progress: bool, desc: str):
+    """Run batches on a local process pool, in process, or on a Dask cluster; yield results."""
+    bar = None
+    if progress and batches:
+        from tqdm import tqdm
+
+        bar = tqdm(total=sum(len(b.items) for b in batches), unit="map", desc=desc, file=sys.stderr)
+    try:
+        if scheduler is not None:
+            client = _dask_client(scheduler)
+            futures = client.map(_run_batch, batches, pure=False)
+            from distributed import as_completed as dask_completed
+
+            for fut, b in zip(dask_completed(futures), batches):
+                res = fut.result()
+                if bar:
+                    bar.update(len(b.items))
+                yield res
+        elif jobs > 1 and len(batches) > 1:
+            import multiprocessing
+
+            ctx = multiprocessing.get_context("fork") if sys.platform == "linux" else None
+            with ProcessPoolExecutor(max_workers=min(jobs, len(batches)), mp_context=ctx) as pool:
+                futs = {pool.submit(_run_batch, b): b for b in batches}
+                for fut in as_completed(futs):
+                    if bar:
+                        bar.update(len(futs[fut].items))
+                    yield fut.result()
+        else:
+            for b in batches:
+                res = _run_batch(b)
+                if bar:
+                    bar.update(len(b.items))
+                yield res
+    finally:
+        if bar:
+            bar.close()
+
+
+def _dask_client(scheduler: Any):
+    try:
+        from distributed import Client
+    except ImportError:
+        raise FeatureError("a Dask scheduler was given but dask.distributed is not installed; "
+                           "pip install 'mapstore[dask]'") from None
+    if isinstance(scheduler, Client):
+        return scheduler
+    if isinstance(scheduler, str):
+        try:
+            return Client(scheduler, timeout=30)
+        except OSError as exc:
+            raise FeatureError(f"cannot reach the Dask scheduler at {scheduler} ({exc})") from None
+    raise ParameterError(f"scheduler must be a dask.distributed Client or an address, got {scheduler!r}")
+
+
+def _select_maps(cat: Catalog, where: str | None) -> list[dict[str, Any]]:
+    q = "SELECT m.map_id, m.stat, m.sha256, m.dof, m.relpath, d.root FROM maps m JOIN datasets d USING (dataset)"
+    if where:
+        q += f" WHERE {where}"
+    q += " ORDER BY m.map_id"
+    try:
+        return cat.sql(q).to_pylist()
+    except QueryError as exc:
+        raise QueryError(f"--where {where!r}: {exc}") from None
+
+
+def _make_mask(mask: str | os.PathLike[str] | np.ndarray, grid: TargetGrid) -> Mask | float:
+    """A Mask, or a coverage fraction (float) when the mask comes from the maps themselves."""
+    if isinstance(mask, np.ndarray):
+        return mask_from_array(grid, mask, "array")
+    m = str(mask)
+    if m in ("brain", "MNI152-brain"):
+        return mni152_brain_mask(grid)
+    if m == "intersection":
+        return 1.0
+    if m.startswith("coverage:"):
+        try:
+            frac = float(m.split(":", 1)[1])
+        except ValueError:
+            frac = -1.0
+        if not 0 < frac <= 1:
+            raise ParameterError(f"mask {m!r}: the coverage fraction must be in (0, 1], e.g. coverage:0.9")
+        return frac
+    if os.path.exists(m):
+        return mask_from_image(m, grid)
+    raise ParameterError(f"mask must be 'brain', 'intersection', 'coverage:FRACTION' or a mask file; got "
+                         f"{m!r} (no such file)")
+
+
+def build_features(
+    store: str | os.PathLike[str],
+    name: str | None = None,
+    *,
+    grid: str | TargetGrid | dict = "MNI152-2mm",
+    mask: str | os.PathLike[str] | np.ndarray = "brain",
+    method: str = "linear",
+    stat: str = "native",
+    p_sided: str = "one",
+    zero_as_missing: bool = False,
+    where: str | None = None,
+    jobs: int | None = None,
+    scheduler: Any = None,
+    batch_size: int | None = None,
+    progress: bool | None = None,
+) -> FeatureReport:
+    """Resample the catalog's maps onto one grid and mask into a named feature set.
+
+    Parameters
+    ----------
+    store : path
+        A store with a catalog (``mapstore index``).
+    name : str, optional
+        Feature set name; default ``"default"`` for the default settings, else one made
+        from the settings.
+    grid : str, TargetGrid or dict, default="MNI152-2mm"
+        ``MNI152-1mm``/``MNI152-2mm``/``MNI152-3mm`` (nilearn's template grids), a
+        reference image path, a JSON file ``{"shape": ..., "affine": ...}``, or a grid.
+    mask : str, path or ndarray, default="brain"
+        ``brain`` (nilearn's MNI152 brain mask on the grid), ``intersection`` (voxels
+        every selected map covers), ``coverage:F`` (covered by at least a fraction F of
+        the maps), a mask image, or a boolean array of the grid's shape.
+    method : {"linear", "nearest", "cubic"}, default="linear"
+    stat : {"native", "z"}, default="native"
+        Keep each map's own statistic, or convert t and p maps to z (z maps pass).
+    p_sided : {"one", "two"}, default="one"
+        How p maps were computed, for p to z.
+    zero_as_missing : bool, default=False
+        Treat exact zeros in the sources as missing (for tools that write 0 outside
+        their analysis mask).
+    where : str, optional
+        SQL predicate over ``maps`` (aliased ``m``) choosing which maps to include.
+    jobs : int, optional
+        Local worker processes (default: all cores).
+    scheduler : dask.distributed.Client or str, optional
+        Run the batches on this Dask cluster instead (workers must see the same files).
+    batch_size : int, optional
+        Maps per task and per shard file.
+    progress : bool, optional
+        Progress bar (default: when standard error is a terminal).
+    """
+    t0 = time.perf_counter()
+    if method not in METHODS:
+        raise ParameterError(f"method must be one of {list(METHODS)}, got {method!r}")
+    if stat not in ("native", "z"):
+        raise ParameterError(f"stat must be 'native' or 'z', got {stat!r}")
+    if p_sided not in ("one", "two"):
+        raise ParameterError(f"p_sided must be 'one' or 'two', got {p_sided!r}")
+    if batch_size is not None and (not isinstance(batch_size, int) or batch_size < 1):
+        raise ParameterError(f"batch_size must be a positive integer, got {batch_size!r}")
+    jobs = _resolve_jobs(jobs)
+    if progress is None:
+        progress = sys.stderr.isatty()
+    target = _resolve_grid(grid)
+    cat = Catalog(store)
+    if not cat.head.catalog:
+        raise FeatureError(f"{cat.path}: the store has no catalog yet; run 'mapstore index ROOT --store "
+                           f"{cat.path}' first")
+    default_settings = (grid == "MNI152-2mm" and str(mask) == "brain" and method == "linear"
+                        and stat == "native" and not zero_as_missing)
+    if name is None:
+        name = DEFAULT_SET if default_settings else \
+            f"{target.name}-{Path(str(mask)).name if not isinstance(mask, np.ndarray) else 'array'}-{method}-{stat}"
+    name = "".join(c if c.isalnum() or c in "-_.:" else "_" for c in name).replace(":", "_")
+    store_path = cat.path
+    set_dir = store_path / "features" / name
+
+    with write_lock(store_path):
+        head = read_head(store_path)
+        cat = Catalog(store_path)
+        rows_sel = _select_maps(cat, where)
+        if not rows_sel:
+            raise FeatureError(f"no maps selected{' by ' + repr(where) if where else ''}; check the "
+                               "catalog with 'mapstore sql'")
+        batch_n = batch_size or max(4, min(64, len(rows_sel) // (jobs * 4) + 1))
+        mk = _make_mask(mask, target)
+        common = dict(grid=target, method=method, stat=stat, p_sided=p_sided, zero_as_missing=zero_as_missing)
+        coverage_problems: list[dict[str, Any]] = []
+        if isinstance(mk, float):
+            items = [_Item(r["map_id"], os.path.join(r["root"], r["relpath"]), r["sha256"], r["stat"],
+                           r["dof"], "") for r in rows_sel]
+            batches = [_Batch(str(set_dir), "", items[i:i + batch_n], coverage_only=True, **common)
+                       for i in range(0, len(items), batch_n)]
+            counts = np.zeros(target.n_voxels, dtype=np.int64)
+            n_ok = 0
+            for res in _execute(batches, jobs, scheduler, progress, "coverage"):
+                counts += res["counts"]
+                n_ok += res["n"]
+                coverage_problems += res["problems"]
+            if n_ok == 0:
+                raise FeatureError("no selected map could be read to compute a coverage mask")
+            need = int(np.ceil(mk * n_ok - 1e-9))
+            label = "intersection" if mk == 1.0 else f"coverage>={mk:g}"
+            mk = mask_from_array(target, (counts >= max(need, 1)).reshape(target.shape), label)
+
+        spec = {
+            "name": name, "grid": target.to_json(), "grid_id": target.grid_id,
+            "mask": {"name": mk.name, "n_voxels": mk.n_voxels, "sha256": mk.sha256},
+            "mask_sha256": mk.sha256, "method": method, "stat": stat, "p_sided": p_sided,
+            "zero_as_missing": zero_as_missing, "where": where, "versions": _library_versions(),
+        }
+        spec["spec_id"] = _spec_id(spec)
+        existing = head.features.get(name)
+        old_rows = pa.Table.from_pylist([], schema=ROWS_SCHEMA)
+        if existing:
+            old_spec = json.loads((store_path / existing["dir"] / "set.json").read_text())
+            if old_spec.get("spec_id") != spec["spec_id"]:
+                raise FeatureError(f"feature set {name!r} exists with other settings (grid "
+                                   f"{old_spec['grid']['name']}, mask {old_spec['mask']['name']}, method "
+                                   f"{old_spec['method']}, stat {old_spec['stat']}); choose another name")
+            old_rows = pq.read_table(store_path / existing["rows"])
+        (set_dir / "shards").mkdir(parents=True, exist_ok=True)
+        if not existing or not (set_dir / "mask.npy").exists():
+            tmp = set_dir / f".mask.{uuid.uuid4().hex}.npy"
+            np.save(tmp, mk.indices)
+            os.replace(tmp, set_dir / "mask.npy")
+        write_json_atomic(set_dir / "set.json", spec)
+
+        wanted: dict[str, _Item] = {}
+        for r in rows_sel:
+            key = feature_key(r["sha256"], spec, r["dof"])
+            wanted[r["map_id"]] = _Item(r["map_id"], os.path.join(r["root"], r["relpath"]), r["sha256"],
+                                        r["stat"], r["dof"], key)
+        have = {k: i for i, k in enumerate(old_rows["feature_key"].to_pylist())}
+        keep_idx = [have[it.key] for it in wanted.values() if it.key in have]
+        todo = [it for it in wanted.values() if it.key not in have]
+        kept = old_rows.take(pa.array(sorted(keep_idx), pa.int64())) if keep_idx else old_rows.slice(0, 0)
+        dropped = old_rows.num_rows - kept.num_rows
+
+        batches = [_Batch(str(set_dir), f"shard-{new_snapshot_id()}-{i:05d}.npy", todo[i:i + batch_n], **common)
+                   for i in range(0, len(todo), batch_n)]
+        new_rows: list[dict[str, Any]] = []
+        problems: list[dict[str, Any]] = list(coverage_problems)
+        paths: dict[str, int] = {}
+        for res in _execute(batches, jobs, scheduler, progress, f"features {name}"):
+            new_rows += res["rows"]
+            problems += res["problems"]
+            for r in res["rows"]:
+                paths[r["resample_path"]] = paths.get(r["resample_path"], 0) + 1
+        rows_table = pa.concat_tables([kept, pa.Table.from_pylist(new_rows, schema=ROWS_SCHEMA)])
+        rows_table = rows_table.sort_by([("map_id", "ascending")])
+        snap = new_snapshot_id()
+        rows_rel = f"features/{name}/rows-{snap}.parquet"
+        probs_rel = f"features/{name}/problems-{snap}.parquet"
+        write_parquet_atomic(rows_table, store_path / rows_rel)
+        write_parquet_atomic(pa.Table.from_pylist(problems, schema=FPROBLEMS_SCHEMA), store_path / probs_rel)
+        head.features[name] = {"dir": f"features/{name}", "rows": rows_rel, "problems": probs_rel,
+                               "n_rows": rows_table.num_rows, "spec_id": spec["spec_id"],
+                               "catalog": head.catalog}
+        if head.default_features is None or name == DEFAULT_SET:
+            head.default_features = name
+        previous_rows = existing["rows"] if existing else None
+        commit_head(store_path, head, {"event": "features", "set": name, "built": len(new_rows),
+                                       "rows": rows_table.num_rows})
+        _collect_feature_garbage(store_path, set_dir, rows_rel, previous_rows)
+
+    return FeatureReport(name=name, n_voxels=mk.n_voxels, grid=target.name, mask=mk.name,
+                         built=len(new_rows), skipped=kept.num_rows, dropped=dropped, failed=len(problems),
+                         seconds=time.perf_counter() - t0, paths=paths, problems=problems)
+
+
+def _collect_feature_garbage(store: Path, set_dir: Path, current: str, previous: str | None) -> None:
+    """Delete shards and rows tables neither the current nor the previous rows table uses."""
+    keep_tables = {Path(current).name} | ({Path(previous).name} if previous else set())
+    used: set[str] = set()
+    for t in keep_tables:
+        used |= set(pq.read_table(set_dir / t, columns=["shard"])["shard"].to_pylist())
+    for p in set_dir.glob("rows-*.parquet"):
+        if p.name not in keep_tables:
+            p.unlink(missing_ok=True)
+            prob = set_dir / p.name.replace("rows-", "problems-")
+            prob.unlink(missing_ok=True)
+    for p in (set_dir / "shards").glob("shard-*.npy"):
+        if p.name not in used:
+            p.unlink(missing_ok=True)
+    for p in (set_dir / "shards").glob("*.tmp"):
+        if time.time() - p.stat().st_mtime > 3600:  # left by a crashed run
+            p.unlink(missing_ok=True)
+
+
+class FeatureSet:
+    """A feature set opened for reading: rows linked to maps, and their vectors.
+
+    Obtained from :meth:`mapstore.Store.features`.
+    """
+
+    def __init__(self, store_path: Path, name: str, entry: dict[str, Any]) -> None:
+        self.name = name
+        self.path = store_path / entry["dir"]
+        try:
+            self.spec: dict[str, Any] = json.loads((self.path / "set.json").read_text())
+            self.rows: pa.Table = pq.read_table(store_path / entry["rows"])
+        except (OSError, ValueError, pa.ArrowException) as exc:
+            raise FeatureError(f"{self.path}: feature set {name!r} is unreadable ({exc})") from None
+        self.grid = grid_from_spec(self.spec["grid"]["shape"],
+                                   np.reshape(self.spec["grid"]["affine"], (4, 4)), self.spec["grid"]["name"])
+        self._indices: np.ndarray | None = None
+        self._shards: dict[str, np.ndarray] = {}
+        ids = self.rows["map_id"].to_pylist()
+        self._pos = {m: i for i, m in enumerate(ids)}
+
+    def __repr__(self) -> str:
+        return (f"FeatureSet({self.name!r}, rows={self.rows.num_rows}, voxels={self.n_voxels}, "
+                f"grid={self.grid.name}, mask={self.spec['mask']['name']})")
+
+    @property
+    def n_voxels(self) -> int:
+        return int(self.spec["mask"]["n_voxels"])
+
+    @property
+    def map_ids(self) -> list[str]:
+        return self.rows["map_id"].to_pylist()
+
+    @property
+    def mask_indices(self) -> np.ndarray:
+        if self._indices is None:
+            self._indices = np.load(self.path / "mask.npy")
+        return self._indices
+
+    def _shard(self, name: str) -> np.ndarray:
+        if name not in self._shards:
+            try:
+                self._shards[name] = np.load(self.path / "shards" / name, mmap_mode="r")
+            except OSError as exc:
+                raise FeatureError(f"{self.path / 'shards' / name}: shard unreadable ({exc}); rebuild with "
+                                   f"'mapstore features --name {self.name}'") from None
+        return self._shards[name]
+
+    def matrix(self, map_ids=None) -> np.ndarray:
+        """An (n_maps, n_voxels) float32 array of the given maps' rows, in the given order.
+
+        Reads only the requested rows from the memory-mapped shards.
+        """
+        if map_ids is None:
+            map_ids = self.map_ids
+        map_ids = list(map_ids)
+        missing = [m for m in map_ids if m not in self._pos]
+        if missing:
+            raise FeatureError(f"{len(missing)} map(s) have no row in feature set {self.name!r} (first: "
+                               f"{missing[0]}); build it with 'mapstore features --name {self.name}' or "
+                               "select maps that have rows")
+        pos = np.array([self._pos[m] for m in map_ids], dtype=np.int64)
+        shard_col = self.rows["shard"].to_numpy(zero_copy_only=False)[pos] if len(pos) else np.array([])
+        row_col = self.rows["row"].to_numpy()[pos] if len(pos) else np.array([], dtype=np.int64)
+        out = np.empty((len(map_ids), self.n_voxels), dtype=np.float32)
+        for shard in dict.fromkeys(shard_col):
+            sel = np.flatnonzero(shard_col == shard)
+            rows = row_col[sel]
+            order = np.argsort(rows, kind="stable")
+            out[sel[order]] = self._shard(shard)[rows[order]]
+        return out
+
+    def coverage(self, map_ids=None) -> np.ndarray:
+        """Fraction of mask voxels with a finite value, per map."""
+        cov = self.rows["coverage"].to_numpy()
+        if map_ids is None:
+            return cov
+        return np.array([cov[self._pos[m]] for m in map_ids])
+
+    def unmask(self, vector: np.ndarray) -> np.ndarray:
+        """A grid-shaped float32 volume from a mask-length vector (NaN outside the mask)."""
+        v = np.asarray(vector, dtype=np.float32).reshape(-1)
+        if v.size != self.n_voxels:
+            raise FeatureError(f"vector has {v.size} values, feature set {self.name!r} has "
+                               f"{self.n_voxels} mask voxels")
+        vol = np.full(self.grid.n_voxels, np.nan, dtype=np.float32)
+        vol[self.mask_indices] = v
+        return vol.reshape(self.grid.shape)
+
+    def to_image(self, vector: np.ndarray):
+        """A nibabel NIfTI image of a row (or of a decoder's coefficients) on the set's grid."""
+        import nibabel as nib
+
+        img = nib.Nifti1Image(self.unmask(vector), self.grid.affine_array)
+        img.header.set_xyzt_units("mm")
+        return img

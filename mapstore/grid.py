@@ -1,0 +1,378 @@
+"""Target grids, masks, voxel reading and pure resampling of arrays.
+
+Resampling keeps "not measured" apart from "no effect": target voxels outside a
+map's field of view are NaN, never 0, and a NaN in the source reaches only the
+target voxels whose interpolation gives it a non-zero weight.
+
+Paths, fastest first:
+
+* ``same``: the source grid is the target grid (a copy);
+* ``reindex``: the grids differ only by axis flips/permutations and an integer
+  voxel shift (e.g. LAS vs RAS at the same spacing): exact, by indexing;
+* ``separable``: axis-aligned grids (permutation x scaling + shift) with linear or
+  nearest interpolation: three sparse 1-D interpolations, exactly trilinear;
+* ``general``: anything else, and cubic: ``scipy.ndimage.affine_transform``.
+"""
+
+from __future__ import annotations
+
+import gzip
+import hashlib
+import os
+from dataclasses import dataclass
+from pathlib import Path
+
+import numpy as np
+
+from .errors import GridError
+from .header import HeaderFacts, grid_fingerprint, parse_header, header_prefix
+
+__all__ = [
+    "TargetGrid",
+    "builtin_grid",
+    "BUILTIN_GRIDS",
+    "grid_from_image",
+    "grid_from_spec",
+    "Mask",
+    "mni152_brain_mask",
+    "mask_from_image",
+    "mask_from_array",
+    "read_volume",
+    "resample",
+    "resample_path",
+    "METHODS",
+]
+
+METHODS = ("linear", "nearest", "cubic")
+_ORDER = {"nearest": 0, "linear": 1, "cubic": 3}
+BUILTIN_GRIDS = {"MNI152-2mm": 2, "MNI152-3mm": 3, "MNI152-1mm": 1}
+
+
+@dataclass(frozen=True)
+class TargetGrid:
+    """A voxel grid: spatial shape and voxel-to-world affine (mm)."""
+
+    shape: tuple[int, int, int]
+    affine: tuple[float, ...]  # 16 values, row-major
+    name: str = "custom"
+
+    @property
+    def affine_array(self) -> np.ndarray:
+        return np.array(self.affine, dtype=np.float64).reshape(4, 4)
+
+    @property
+    def grid_id(self) -> str:
+        return grid_fingerprint(self.shape, self.affine_array)
+
+    @property
+    def n_voxels(self) -> int:
+        return int(np.prod(self.shape))
+
+    def to_json(self) -> dict:
+        return {"name": self.name, "shape": list(self.shape), "affine": list(self.affine),
+                "grid_id": self.grid_id}
+
+
+def grid_from_spec(shape, affine, name: str = "custom") -> TargetGrid:
+    """A grid from an explicit shape (3 ints) and a 4x4 affine."""
+    shape = tuple(int(s) for s in shape)
+    aff = np.asarray(affine, dtype=np.float64)
+    if len(shape) != 3 or any(s < 1 for s in shape):
+        raise GridError(f"grid shape must be 3 positive integers, got {shape}")
+    if aff.shape != (4, 4) or not np.all(np.isfinite(aff)) or abs(np.linalg.det(aff[:3, :3])) < 1e-12:
+        raise GridError(f"grid affine must be a finite, invertible 4x4 matrix, got {aff.tolist()}")
+    return TargetGrid(shape, tuple(float(x) for x in aff.ravel()), name)
+
+
+def builtin_grid(name: str) -> TargetGrid:
+    """A grid of the MNI152 template nilearn ships, at 1, 2 or 3 mm (``MNI152-2mm``, ...)."""
+    if name not in BUILTIN_GRIDS:
+        raise GridError(f"unknown built-in grid {name!r}; choose one of {sorted(BUILTIN_GRIDS)} or give "
+                        "a reference image path")
+    from nilearn.datasets import load_mni152_template
+
+    img = load_mni152_template(resolution=BUILTIN_GRIDS[name])
+    return grid_from_spec(img.shape[:3], img.affine, name)
+
+
+def grid_from_image(path: str | os.PathLike[str]) -> TargetGrid:
+    """The grid of a reference image (its header only is read)."""
+    from .header import read_header
+
+    facts = read_header(str(path))
+    return grid_from_spec(facts.spatial_shape, facts.affine_array, f"image:{Path(path).name}")
+
+
+@dataclass(frozen=True)
+class Mask:
+    """A boolean mask on a grid, with the flat (C-order) indices of its voxels."""
+
+    grid: TargetGrid
+    indices: np.ndarray  # int64, flat C-order indices into grid.shape
+    name: str
+
+    @property
+    def n_voxels(self) -> int:
+        return int(self.indices.size)
+
+    @property
+    def sha256(self) -> str:
+        h = hashlib.sha256(self.grid.grid_id.encode())
+        h.update(np.ascontiguousarray(self.indices, dtype=np.int64).tobytes())
+        return h.hexdigest()
+
+    def to_volume(self) -> np.ndarray:
+        vol = np.zeros(self.grid.n_voxels, dtype=bool)
+        vol[self.indices] = True
+        return vol.reshape(self.grid.shape)
+
+
+def mask_from_array(grid: TargetGrid, volume: np.ndarray, name: str) -> Mask:
+    vol = np.asarray(volume)
+    if vol.shape[:3] != grid.shape:
+        raise GridError(f"mask {name!r} has shape {vol.shape}, the grid has {grid.shape}")
+    idx = np.flatnonzero(vol.reshape(grid.shape) > 0)
+    if idx.size == 0:
+        raise GridError(f"mask {name!r} is empty (no voxel above 0); give a mask with brain voxels")
+    return Mask(grid, idx.astype(np.int64), name)
+
+
+def mni152_brain_mask(grid: TargetGrid) -> Mask:
+    """nilearn's MNI152 brain mask, on the grid (resampled by nearest neighbour if needed)."""
+    from nilearn.datasets import load_mni152_brain_mask
+
+    res = BUILTIN_GRIDS.get(grid.name, 2)
+    img = load_mni152_brain_mask(resolution=res)
+    data = np.asarray(img.dataobj, dtype=np.float32)
+    if img.shape[:3] != grid.shape or not np.allclose(img.affine, grid.affine_array, atol=1e-4):
+        data = resample(data, img.affine, grid, "nearest")
+        data = np.nan_to_num(data, nan=0.0)
+    return mask_from_array(grid, data > 0.5, "MNI152-brain")
+
+
+def mask_from_image(path: str | os.PathLike[str], grid: TargetGrid) -> Mask:
+    """A mask file (non-zero voxels), resampled onto the grid by nearest neighbour if needed."""
+    try:
+        data, facts = read_volume(str(path))
+    except GridError as exc:
+        raise GridError(f"mask file {path}: {exc}") from None
+    if facts.spatial_shape != grid.shape or not np.allclose(facts.affine_array, grid.affine_array, atol=1e-4):
+        data = resample(data, facts.affine_array, grid, "nearest")
+    data = np.nan_to_num(data, nan=0.0)
+    return mask_from_array(grid, data != 0, f"file:{Path(path).name}")
+
+
+def read_volume(path: str, expect_sha256: str | None = None) -> tuple[np.ndarray, HeaderFacts]:
+    """Read a 3-D NIfTI volume as scaled float32, optionally checking the file's SHA-256.
+
+    The file is read once; its bytes are hashed, inflated if gzipped, and viewed
+    with the header's dtype, byte order and Fortran (x-fastest) layout.
+    """
+    try:
+        with open(path, "rb") as fh:
+            raw = fh.read()
+    except FileNotFoundError:
+        raise GridError(f"{path}: file is gone since it was indexed; re-run 'mapstore index'") from None
+    except OSError as exc:
+        raise GridError(f"{path}: cannot read ({exc.strerror})") from None
+    if expect_sha256 is not None:
+        got = hashlib.sha256(raw).hexdigest()
+        if got != expect_sha256:
+            raise GridError(f"{path}: content changed since it was indexed (sha256 {got[:12]}... != "
+                            f"{expect_sha256[:12]}...); re-run 'mapstore index'")
+    from .errors import HeaderError
+
+    try:
+        facts = parse_header(path, header_prefix(path, raw[:4096]))
+        body = gzip.decompress(raw) if raw[:2] == b"\x1f\x8b" else raw
+    except HeaderError as exc:
+        raise GridError(str(exc)) from None
+    except (OSError, EOFError, ValueError) as exc:
+        raise GridError(f"{path}: gzip stream is corrupt ({exc}); re-create the file") from None
+    if facts.n_volumes != 1:
+        raise GridError(f"{path}: has {facts.n_volumes} volumes; a statistic map must be one 3-D volume "
+                        "(split it, or keep only the map you need)")
+    kind = {"uint8": "u1", "int8": "i1", "int16": "i2", "uint16": "u2", "int32": "i4", "uint32": "u4",
+            "int64": "i8", "uint64": "u8", "float32": "f4", "float64": "f8"}.get(facts.dtype)
+    if kind is None:
+        raise GridError(f"{path}: voxel type {facts.dtype} is not a real scalar; save the map as float32")
+    dt = np.dtype(kind).newbyteorder(facts.endianness)
+    count = int(np.prod(facts.spatial_shape))
+    need = facts.vox_offset + count * dt.itemsize
+    if len(body) < need:
+        raise GridError(f"{path}: data is truncated ({len(body)} bytes, header needs {need}); re-create the file")
+    arr = np.frombuffer(body, dtype=dt, count=count, offset=facts.vox_offset)
+    vol = arr.reshape(facts.spatial_shape, order="F").astype(np.float32)
+    slope, inter = facts.scl_slope, facts.scl_inter
+    # nifti1.h: scaling applies when scl_slope is non-zero (and finite)
+    if np.isfinite(slope) and slope != 0 and (slope != 1 or inter != 0):
+        vol = vol * np.float32(slope) + np.float32(inter if np.isfinite(inter) else 0)
+    return vol, facts
+
+
+def _target_to_source(src_affine: np.ndarray, grid: TargetGrid) -> np.ndarray:
+    return np.linalg.inv(np.asarray(src_affine, dtype=np.float64)) @ grid.affine_array
+
+
+def _axis_aligned(m: np.ndarray, tol: float = 1e-6) -> np.ndarray | None:
+    """perm[t] = source axis fed by target axis t, if each row/column has one non-zero."""
+    r = m[:3, :3]
+    nz = np.abs(r) > tol
+    if not (nz.sum(axis=0) == 1).all() or not (nz.sum(axis=1) == 1).all():
+        return None
+    return np.argmax(nz, axis=0)  # for target axis t (column), the source axis (row)
+
+
+def _weights_1d(coord: np.ndarray, n: int, method: str):
+    """Sparse (len(coord) x n) interpolation matrix along one axis, and the in-FOV flags."""
+    from scipy import sparse
+
+    eps = 1e-6
+    m = coord.size
+    if method == "nearest":
+        valid = (coord >= -0.5 - eps) & (coord < n - 0.5 + eps)
+        idx = np.clip(np.floor(coord + 0.5).astype(np.int64), 0, n - 1)
+        rows = np.arange(m)[valid]
+        w = sparse.csr_matrix((np.ones(rows.size), (rows, idx[valid])), shape=(m, n))
+        return w, valid
+    valid = (coord >= -eps) & (coord <= n - 1 + eps)
+    c = np.clip(coord, 0, n - 1)
+    i0 = np.floor(c).astype(np.int64)
+    i0 = np.minimum(i0, n - 1)
+    f = c - i0
+    i1 = np.minimum(i0 + 1, n - 1)
+    rows = np.arange(m)
+    data = np.concatenate([1.0 - f, f])
+    cols = np.concatenate([i0, i1])
+    rr = np.concatenate([rows, rows])
+    keep = (data != 0) & np.concatenate([valid, valid])
+    w = sparse.csr_matrix((data[keep], (rr[keep], cols[keep])), shape=(m, n))
+    w.sum_duplicates()
+    w.eliminate_zeros()
+    return w, valid
+
+
+def _apply_axis(w, x: np.ndarray, axis: int) -> np.ndarray:
+    moved = np.moveaxis(x, axis, 0)
+    shp = moved.shape
+    out = w @ moved.reshape(shp[0], -1)
+    return np.moveaxis(np.asarray(out).reshape((w.shape[0],) + shp[1:]), 0, axis)
+
+
+def resample(data: np.ndarray, src_affine: np.ndarray, grid: TargetGrid, method: str = "linear",
+             return_path: bool = False):
+    """Resample a 3-D array (voxel-to-world ``src_affine``) onto ``grid``.
+
+    Parameters
+    ----------
+    data : ndarray of shape (X, Y, Z)
+        Source values; NaN marks voxels without a value.
+    src_affine : ndarray of shape (4, 4)
+    grid : TargetGrid
+    method : {"linear", "nearest", "cubic"}, default="linear"
+    return_path : bool, default=False
+        Also return which path was taken (``same``, ``reindex``, ``separable``, ``general``).
+
+    Returns
+    -------
+    ndarray of shape ``grid.shape``, float32, NaN outside the source's field of view.
+    """
+    if method not in _ORDER:
+        raise GridError(f"method must be one of {list(METHODS)}, got {method!r}")
+    data = np.asarray(data)
+    if data.ndim != 3:
+        raise GridError(f"expected a 3-D volume, got shape {data.shape}")
+    m = _target_to_source(src_affine, grid)
+    out, path = _resample(data, m, grid, method)
+    return (out, path) if return_path else out
+
+
+def _plan(m: np.ndarray, src_shape: tuple[int, ...], grid: TargetGrid, method: str):
+    """The resampling path for a target-to-source voxel matrix, with its axis parameters."""
+    perm = _axis_aligned(m)
+    if perm is None:
+        return "general", None, None, None
+    scale = m[perm, np.arange(3)]
+    offset = m[perm, 3]
+    if np.allclose(np.abs(scale), 1.0, atol=1e-6) and np.allclose(offset, np.round(offset), atol=1e-5):
+        if (perm == np.arange(3)).all() and (scale > 0).all() and np.allclose(offset, 0, atol=1e-5) \
+                and tuple(src_shape) == grid.shape:
+            return "same", perm, scale, offset
+        return "reindex", perm, np.round(scale).astype(int), np.round(offset).astype(int)
+    if method in ("linear", "nearest"):
+        return "separable", perm, scale, offset
+    return "general", None, None, None
+
+
+def _resample(data: np.ndarray, m: np.ndarray, grid: TargetGrid, method: str):
+    path, perm, scale, offset = _plan(m, data.shape, grid, method)
+    if path == "same":
+        return data.astype(np.float32, copy=True), path
+    if path == "reindex":
+        return _reindex(data, perm, scale, offset, grid), path
+    if path == "separable":
+        return _separable(data, perm, scale, offset, grid, method), path
+    return _general(data, m, grid, method), path
+
+
+def _reindex(data, perm, sign, offset, grid):
+    src = np.transpose(data, perm)  # src axis t now fed by target axis t
+    idx, valid = [], []
+    for t in range(3):
+        c = sign[t] * np.arange(grid.shape[t]) + offset[t]
+        v = (c >= 0) & (c < src.shape[t])
+        idx.append(np.where(v, c, 0))
+        valid.append(v)
+    out = src[np.ix_(*idx)].astype(np.float32)
+    out[~(valid[0][:, None, None] & valid[1][None, :, None] & valid[2][None, None, :])] = np.nan
+    return out
+
+
+def _separable(data, perm, scale, offset, grid, method):
+    src = np.transpose(data, perm).astype(np.float64)
+    valid = []
+    x = src
+    for t in range(3):
+        coord = scale[t] * np.arange(grid.shape[t]) + offset[t]
+        w, v = _weights_1d(coord, src.shape[t], method)
+        x = _apply_axis(w, x, t)
+        valid.append(v)
+    out = x.astype(np.float32)
+    out[~(valid[0][:, None, None] & valid[1][None, :, None] & valid[2][None, None, :])] = np.nan
+    return out
+
+
+def _general(data, m, grid, method):
+    from scipy import ndimage
+
+    order = _ORDER[method]
+    nan = ~np.isfinite(data)
+    clean = np.where(nan, 0.0, data).astype(np.float64)
+    mat, off = m[:3, :3], m[:3, 3]
+    out = ndimage.affine_transform(clean, mat, off, output_shape=grid.shape, order=order,
+                                   mode="constant", cval=0.0, prefilter=order > 1)
+    # field of view, from the source coordinates of every target voxel
+    ii = [np.arange(s, dtype=np.float64) for s in grid.shape]
+    inside = np.ones(grid.shape, dtype=bool)
+    lo, hi = (-0.5, 0.5) if order == 0 else (0.0, 0.0)
+    for a in range(3):
+        c = (mat[a, 0] * ii[0][:, None, None] + mat[a, 1] * ii[1][None, :, None]
+             + mat[a, 2] * ii[2][None, None, :] + off[a])
+        inside &= (c >= lo - 1e-6) & (c <= data.shape[a] - 1 + hi + 1e-6)
+    if nan.any():
+        ind = nan.astype(np.float64)
+        if order == 3:
+            # the cubic B-spline kernel reaches two voxels out: widen the NaN region by its support
+            ind = ndimage.binary_dilation(nan, iterations=1).astype(np.float64)
+        reach = ndimage.affine_transform(ind, mat, off, output_shape=grid.shape, order=min(order, 1),
+                                         mode="constant", cval=0.0, prefilter=False)
+        out[reach > 1e-7] = np.nan
+    out = out.astype(np.float32)
+    out[~inside] = np.nan
+    return out
+
+
+def resample_path(src_shape: tuple[int, int, int], src_affine: np.ndarray, grid: TargetGrid,
+                  method: str) -> str:
+    """Which resampling path a source grid would take (without resampling)."""
+    return _plan(_target_to_source(src_affine, grid), src_shape, grid, method)[0]
