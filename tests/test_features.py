@@ -1,0 +1,214 @@
+"""Feature sets end to end: provenance, incremental rebuilds, matrices, images, Dask."""
+
+from __future__ import annotations
+
+import os
+import shutil
+
+import nibabel as nib
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+
+import mapstore
+from mapstore.errors import FeatureError, ParameterError
+from mapstore.grid import builtin_grid, mni152_brain_mask, read_volume, resample
+
+from .conftest import make_derivative, write_json, write_map
+
+
+@pytest.fixture(scope="module")
+def featured_store(demo_store, tmp_path_factory):
+    store = tmp_path_factory.mktemp("feat") / "store"
+    shutil.copytree(demo_store, store)
+    report = mapstore.build_features(store, jobs=2, progress=False)
+    assert report.failed == 0
+    return store
+
+
+def test_default_set_links_rows_to_maps(featured_store):
+    st = mapstore.open(featured_store)
+    fs = st.features()
+    assert fs.name == "default" and st.feature_sets() == ["default"]
+    n_maps = st.sql("SELECT count(*) n FROM maps")["n"][0].as_py()
+    assert fs.rows.num_rows == n_maps
+    joined = st.sql("SELECT f.sha256 = m.sha256 AS same FROM features f JOIN maps m USING (map_id)")
+    assert all(joined["same"].to_pylist())
+    sets = st.sql("SELECT * FROM feature_sets").to_pylist()[0]
+    assert sets["grid"] == "MNI152-2mm" and sets["mask"] == "MNI152-brain" and sets["method"] == "linear"
+    assert fs.n_voxels == mni152_brain_mask(builtin_grid("MNI152-2mm")).n_voxels
+
+
+@pytest.mark.filterwarnings("ignore:NaNs or infinite values:RuntimeWarning")
+def test_rows_equal_direct_resampling_and_nilearn(featured_store):
+    # reference: nilearn.image.resample_img of the same file onto the same grid, then masked
+    from nilearn.image import resample_img
+
+    st = mapstore.open(featured_store)
+    fs = st.features()
+    grid = builtin_grid("MNI152-2mm")
+    mask = mni152_brain_mask(grid)
+    rows = st.sql("SELECT m.map_id, d.root || '/' || m.relpath AS path, m.study FROM maps m "
+                  "JOIN datasets d USING (dataset) ORDER BY m.study, m.map_id").to_pylist()
+    picks = {r["study"]: r for r in rows}.values()  # one per study: every grid and path
+    X = fs.matrix([r["map_id"] for r in picks])
+    for x, r in zip(X, picks):
+        vol, facts = read_volume(r["path"])
+        direct = resample(vol, facts.affine_array, grid, "linear").reshape(-1)[mask.indices]
+        np.testing.assert_array_equal(x, direct)
+        img = nib.load(r["path"])
+        ref = resample_img(img, target_affine=grid.affine_array, target_shape=grid.shape,
+                           interpolation="linear", force_resample=True, copy_header=True)
+        ref_vec = ref.get_fdata().reshape(-1)[mask.indices]
+        ok = np.isfinite(x) & np.isfinite(ref_vec)
+        assert ok.mean() > 0.5
+        np.testing.assert_allclose(x[ok], ref_vec[ok], atol=1e-4)
+
+
+def test_matrix_order_and_subset(featured_store):
+    fs = mapstore.open(featured_store).features()
+    ids = fs.map_ids
+    full = fs.matrix()
+    assert full.shape == (len(ids), fs.n_voxels) and full.dtype == np.float32
+    pick = [ids[5], ids[0], ids[3], ids[5]]
+    np.testing.assert_array_equal(fs.matrix(pick), full[[5, 0, 3, 5]])
+    with pytest.raises(FeatureError, match="no row"):
+        fs.matrix(["nope"])
+
+
+def test_to_image_round_trip(featured_store):
+    st = mapstore.open(featured_store)
+    fs = st.features()
+    x = fs.matrix(fs.map_ids[:1])[0]
+    img = st.to_image(x)
+    assert isinstance(img, nib.Nifti1Image) and img.shape == fs.grid.shape
+    np.testing.assert_array_equal(img.affine, fs.grid.affine_array)
+    back = img.get_fdata(dtype=np.float32).reshape(-1)[fs.mask_indices]
+    np.testing.assert_array_equal(back, x)
+    with pytest.raises(FeatureError, match="mask voxels"):
+        st.to_image(np.zeros(3))
+
+
+def test_warm_rerun_skips_everything(featured_store):
+    r = mapstore.build_features(featured_store, jobs=1, progress=False)
+    assert r.built == 0 and r.skipped == mapstore.open(featured_store).features().rows.num_rows
+
+
+def test_coverage_column(featured_store):
+    st = mapstore.open(featured_store)
+    cov = st.sql("SELECT m.study, avg(f.coverage) c FROM features f JOIN maps m USING (map_id) "
+                 "GROUP BY ALL").to_pandas().set_index("study")["c"]
+    # zero-filled maps cover the whole mask; NaN-outside-brain maps do not
+    assert cov["inkwell"] == 1.0 and 0.5 < cov["glowtrack"] < 1.0
+
+
+def _tree(tmp_path, n=4):
+    ds = make_derivative(tmp_path / "src" / "alpha", name="alpha")
+    write_json(ds / "task-go_statmap.json", {"DegreesOfFreedom": 25})
+    aff = np.diag([4.0, 4, 4, 1])
+    aff[:3, 3] = [-80, -112, -60]
+    rng = np.random.default_rng(3)
+    for i in range(n):
+        data = rng.standard_normal((41, 48, 40)).astype(np.float32)
+        write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-go_contrast-a_stat-t_statmap.nii.gz", data, aff)
+    write_map(ds / "sub-00" / "sub-00_task-go_contrast-a_stat-effect_statmap.nii.gz",
+              np.ones((41, 48, 40), np.float32), aff)
+    store = tmp_path / "store"
+    mapstore.index([tmp_path / "src"], store, progress=False)
+    return ds, store
+
+
+def test_changed_source_gets_a_new_row(tmp_path):
+    ds, store = _tree(tmp_path)
+    r1 = mapstore.build_features(store, grid="MNI152-3mm", jobs=1, progress=False)
+    fs1 = mapstore.open(store).features(r1.name)
+    f = ds / "sub-01" / "sub-01_task-go_contrast-a_stat-t_statmap.nii.gz"
+    mid = mapstore.open(store).sql(f"SELECT map_id FROM maps WHERE relpath LIKE '%sub-01_task%'")["map_id"][0].as_py()
+    old_key = fs1.rows.to_pandas().set_index("map_id").loc[mid, "feature_key"]
+    aff = nib.load(f).affine
+    write_map(f, np.full((41, 48, 40), 7.0, np.float32), aff)
+    st_ = os.stat(f)
+    os.utime(f, ns=(st_.st_atime_ns, st_.st_mtime_ns + 10**9))
+    mapstore.index([tmp_path / "src"], store, progress=False)
+    r2 = mapstore.build_features(store, grid="MNI152-3mm", jobs=1, progress=False)
+    assert (r2.built, r2.dropped) == (1, 1)
+    fs2 = mapstore.open(store).features(r2.name)
+    rows = fs2.rows.to_pandas().set_index("map_id")
+    assert rows.loc[mid, "feature_key"] != old_key and len(rows) == 5
+    x = fs2.matrix([mid])[0]
+    assert np.nanmax(x) == 7.0 and np.nanmin(x) == 7.0
+    # old shard rows are no longer served; unused shards are collected
+    shards = set(rows["shard"])
+    on_disk = {p.name for p in (store / "features" / r2.name / "shards").glob("*.npy")}
+    assert shards <= on_disk
+
+
+def test_file_changed_after_index_is_a_feature_problem(tmp_path):
+    ds, store = _tree(tmp_path)
+    f = ds / "sub-02" / "sub-02_task-go_contrast-a_stat-t_statmap.nii.gz"
+    write_map(f, np.zeros((41, 48, 40), np.float32), nib.load(f).affine)
+    r = mapstore.build_features(store, grid="MNI152-3mm", jobs=1, progress=False)
+    assert r.failed == 1 and r.built == 4
+    probs = mapstore.open(store).sql("SELECT * FROM feature_problems").to_pylist()
+    assert "changed since it was indexed" in probs[0]["reason"] and probs[0]["path"] == str(f)
+
+
+def test_z_set_converts_t_and_refuses_effect(tmp_path):
+    ds, store = _tree(tmp_path)
+    r = mapstore.build_features(store, "zset", grid="MNI152-3mm", stat="z", jobs=1, progress=False)
+    assert r.built == 4 and r.failed == 1 and "cannot be converted" in r.problems[0]["reason"]
+    fs = mapstore.open(store).features("zset")
+    assert set(fs.rows["conversion"].to_pylist()) == {"t->z(dof=25)"}
+    # the z values are the t values mapped through the t(25) -> normal transform
+    from mapstore.stats import t_to_z
+
+    native = mapstore.build_features(store, "tset", grid="MNI152-3mm", where="m.stat = 't'", jobs=1,
+                                     progress=False)
+    assert native.built == 4
+    t = mapstore.open(store).features("tset").matrix(fs.map_ids)
+    z = fs.matrix(fs.map_ids)
+    ok = np.isfinite(t)
+    np.testing.assert_allclose(z[ok], t_to_z(t[ok], 25), rtol=1e-5, atol=1e-5)
+
+
+def test_coverage_masks(tmp_path):
+    ds, store = _tree(tmp_path)
+    r = mapstore.build_features(store, "inter", grid="MNI152-3mm", mask="intersection", jobs=1, progress=False)
+    fs = mapstore.open(store).features("inter")
+    assert r.mask == "intersection" and np.isfinite(fs.matrix()).all()
+    r2 = mapstore.build_features(store, "cov", grid="MNI152-3mm", mask="coverage:0.5", jobs=1, progress=False)
+    assert r2.n_voxels >= r.n_voxels
+    with pytest.raises(ParameterError, match="coverage fraction"):
+        mapstore.build_features(store, "bad", mask="coverage:2", progress=False)
+
+
+def test_same_name_other_settings_refused(tmp_path):
+    ds, store = _tree(tmp_path)
+    mapstore.build_features(store, "s", grid="MNI152-3mm", jobs=1, progress=False)
+    with pytest.raises(FeatureError, match="other settings"):
+        mapstore.build_features(store, "s", grid="MNI152-3mm", method="nearest", jobs=1, progress=False)
+
+
+def test_reference_image_grid_and_mask_file(tmp_path):
+    ds, store = _tree(tmp_path)
+    ref = ds / "sub-00" / "sub-00_task-go_contrast-a_stat-t_statmap.nii.gz"
+    mask = np.zeros((41, 48, 40), np.uint8)
+    mask[10:30, 10:30, 10:30] = 1
+    mpath = tmp_path / "mask.nii.gz"
+    nib.save(nib.Nifti1Image(mask, nib.load(ref).affine), str(mpath))
+    r = mapstore.build_features(store, "native", grid=str(ref), mask=str(mpath), jobs=1, progress=False)
+    assert r.n_voxels == 20**3 and r.paths == {"same": 5}
+
+
+def test_dask_local_cluster_matches_local_pool(tmp_path):
+    distributed = pytest.importorskip("distributed")
+    ds, store = _tree(tmp_path, n=6)
+    mapstore.build_features(store, "local", grid="MNI152-3mm", jobs=2, progress=False)
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+        r = mapstore.build_features(store, "dask", grid="MNI152-3mm", scheduler=client, batch_size=2,
+                                    progress=False)
+    assert r.built == 7
+    st = mapstore.open(store)
+    ids = st.features("local").map_ids
+    np.testing.assert_array_equal(st.features("local").matrix(ids), st.features("dask").matrix(ids))
