@@ -11,10 +11,20 @@ __version__ = "0.1.0"
 from .api import Store, open_store as open  # noqa: A001  (mapstore.open mirrors the builtin on purpose)
 from .catalog import IndexReport, index
 from .errors import MapstoreError
+from .export import ExportReport, VerifyReport, verify
 from .features import FeatureReport, FeatureSet, build_features
+from .labels import LabelReport, label_store as label, load_vocabulary
+from .query import Selection
 from .header import HeaderFacts, read_header
 
 __all__ = sorted([
+    "ExportReport",
+    "LabelReport",
+    "Selection",
+    "VerifyReport",
+    "label",
+    "load_vocabulary",
+    "verify",
     "FeatureReport",
     "FeatureSet",
     "HeaderFacts",

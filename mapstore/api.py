@@ -8,7 +8,10 @@ from pathlib import Path
 import pyarrow as pa
 
 from .errors import FeatureError
+from .export import ExportReport, VerifyReport, export_selection, verify
 from .features import FeatureSet
+from .labels import refresh_labels
+from .query import Selection, select
 from .store import Catalog
 
 __all__ = ["Store", "open_store"]
@@ -32,6 +35,10 @@ class Store:
     def __init__(self, path: str | os.PathLike[str]) -> None:
         self.catalog = Catalog(path)
         self.path: Path = self.catalog.path
+        entry = self.catalog.head.labels
+        if entry and entry.get("catalog") != self.catalog.head.catalog and entry.get("copy"):
+            # the catalog was re-indexed after labelling: derive labels for it from the stored vocabulary
+            self.catalog._tables["labels"] = refresh_labels(self.catalog, entry)
 
     def __repr__(self) -> str:
         return f"Store({str(self.path)!r}, maps={self.catalog.table('maps').num_rows})"
@@ -63,6 +70,46 @@ class Store:
         if name not in head.features:
             raise FeatureError(f"{self.path}: no feature set {name!r}; sets: {self.feature_sets() or 'none'}")
         return FeatureSet(self.path, name, head.features[name])
+
+    def select(self, where: str | None = None, *, concepts: list[str] | None = None,
+               task: list[str] | None = None, stat: list[str] | None = None, features: str | None = None,
+               min_coverage: float | None = None, target: str = "contrast", group_by: str = "study",
+               with_broader: bool = False) -> Selection:
+        """Choose maps for a decoder: returns a :class:`~mapstore.query.Selection`.
+
+        Parameters
+        ----------
+        where : str, optional
+            SQL predicate over ``maps`` joined with participants' columns
+            (e.g. ``"stat = 't' AND age >= 20"``).
+        concepts, task, stat : list of str, optional
+            Keep maps labelled with one of these concepts / of these tasks / stats.
+        features : str, optional
+            Feature set name (default: the store's default set).
+        min_coverage : float, optional
+            Drop maps covering less than this fraction of the mask (reported in ``dropped``).
+        target : {"contrast", "concept", "concepts"} or a maps column, default="contrast"
+            ``concept``: one concept per map (``y``); ``concepts``: multi-label ``Y``.
+        group_by : {"study", "site", "lab", "subject", "dataset"}, default="study"
+        with_broader : bool, default=False
+            Count inherited broader concepts as labels too.
+
+        Examples
+        --------
+        >>> sel = store.select(concepts=["reading", "listening"], target="concept")  # doctest: +SKIP
+        >>> from sklearn.model_selection import cross_val_score                     # doctest: +SKIP
+        >>> cross_val_score(model, sel.X, sel.y, cv=sel.splits("leave-one-group-out"))  # doctest: +SKIP
+        """
+        return select(self, where, concepts=concepts, task=task, stat=stat, features=features,
+                      min_coverage=min_coverage, target=target, group_by=group_by, with_broader=with_broader)
+
+    def export(self, out, selection: Selection | None = None, *, scheme: str = "leave-one-group-out",
+               seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False,
+               **select_options) -> ExportReport:
+        """Export a selection (made from ``select_options`` if not given) with its manifest."""
+        sel = selection if selection is not None else self.select(**select_options)
+        return export_selection(sel, out, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt,
+                                overwrite=overwrite)
 
     def to_image(self, vector, name: str | None = None):
         """A NIfTI image (nibabel) of a feature vector or decoder coefficients on a set's grid."""

@@ -159,7 +159,7 @@ def all_schemas() -> dict[str, dict[str, Any]]:
 
 
 # later stages that define file formats, each with a json_schemas() function
-_PROVIDERS: tuple[str, ...] = ()
+_PROVIDERS: tuple[str, ...] = ("mapstore.labels", "mapstore.export")
 
 
 def write_all(folder: str | Path) -> list[Path]:

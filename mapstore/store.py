@@ -336,7 +336,7 @@ def _empty(name: str) -> pa.Table:
     if schema is None:
         if name == "labels":
             schema = pa.schema([("map_id", _s), ("concept", _s), ("direct", pa.bool_()),
-                                ("rule", _i32), ("vocabulary_sha256", _s)])
+                                ("rule", _i32), ("vocabulary_sha256", _s)])  # = labels.LABELS_SCHEMA
         else:
             schema = pa.schema([("dataset", _s), ("participant_id", _s), ("sub", _s),
                                 ("participant", _s)])

@@ -1,0 +1,329 @@
+"""Export a selection (X, y, groups, splits, metadata) with a manifest, and verify it later.
+
+Output folder::
+
+    X.npy             float32 (n_maps, n_voxels), memory-mappable   (or table.parquet with --format parquet)
+    y.npy / Y.npy     targets: class names, or a 0/1 matrix over concepts (with concepts.json)
+    groups.npy        group label per row
+    meta.parquet      one row per map: ids, entities, origin, concepts, coverage, fold / split
+    manifest.json     query, feature set (grid, mask hashes), every source sha256 and row hash,
+                      vocabulary hash, versions, scheme and seed, hashes of the files above
+
+The folder is written under a temporary name and renamed into place at the end.
+``verify`` re-hashes the sources, the store's rows and the exported files.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import shutil
+import time
+import uuid
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from . import __version__
+from .errors import ExportError, ParameterError
+from .query import Selection, parse_scheme
+
+__all__ = ["ExportReport", "VerifyReport", "export_selection", "verify", "json_schemas"]
+
+MANIFEST_FORMAT = "mapstore-export"
+BLOCK_ROWS = 256
+
+
+@dataclass
+class ExportReport:
+    out: str
+    n_maps: int
+    n_voxels: int
+    scheme: str
+    n_splits: int
+    dropped: dict[str, int]
+    seconds: float
+    leaks: list[str] = field(default_factory=list)
+
+    def summary(self) -> str:
+        d = ", ".join(f"{v} ({k})" for k, v in self.dropped.items()) or "none"
+        return (f"exported {self.n_maps} maps x {self.n_voxels:,} voxels to {self.out} in {self.seconds:.1f} s\n"
+                f"scheme {self.scheme}: {self.n_splits} split(s); dropped: {d}"
+                + (f"\nWARNING: {len(self.leaks)} leak(s) accepted with --allow-leak" if self.leaks else ""))
+
+
+def _sha256_file(path: Path) -> str:
+    h = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 22), b""):
+            h.update(block)
+    return h.hexdigest()
+
+
+def _row_hash(row: np.ndarray) -> str:
+    return hashlib.sha256(np.ascontiguousarray(row, dtype=np.float32).tobytes()).hexdigest()
+
+
+def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str = "leave-one-group-out",
+                     seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False
+                     ) -> ExportReport:
+    """Write a selection to ``out`` with its manifest (see the module docstring)."""
+    import warnings
+
+    t0 = time.perf_counter()
+    if fmt not in ("npy", "parquet"):
+        raise ParameterError(f"fmt must be 'npy' or 'parquet', got {fmt!r}")
+    parse_scheme(scheme)
+    out = Path(out).expanduser().absolute()
+    if out.exists() and any(out.iterdir()) and not overwrite:
+        raise ExportError(f"{out}: folder exists and is not empty; choose a new --out or pass --overwrite")
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        splits = sel.splits(scheme, seed, allow_leak)
+    leaks = [str(w.message) for w in caught if "leaky split" in str(w.message)]
+    fold = np.full(len(sel), -1, dtype=np.int64)
+    for i, (_, te) in enumerate(splits):
+        fold[te] = i
+    kind, _ = parse_scheme(scheme)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.tmp"
+    tmp.mkdir()
+    try:
+        fs = sel.feature_set
+        ids = sel.map_ids
+        n, nv = len(ids), fs.n_voxels
+        row_hashes: list[str] = []
+        meta = sel.meta.copy()
+        meta["row"] = np.arange(n)
+        meta["group"] = sel.groups
+        meta["fold"] = fold
+        if kind == "holdout":
+            meta["split"] = np.where(fold >= 0, "test", "train")
+        keep_cols = [c for c in ("row", "map_id", "dataset", "study", "site", "lab", "participant", "sub", "ses",
+                                 "run", "task", "contrast", "stat", "space", "concepts", "group", "fold", "split",
+                                 "coverage", "sha256", "feature_key", "conversion", "relpath") if c in meta.columns]
+        meta_t = pa.Table.from_pandas(meta[keep_cols], preserve_index=False)
+        if fmt == "npy":
+            X = np.lib.format.open_memmap(tmp / "X.npy", mode="w+", dtype=np.float32, shape=(n, nv))
+            for i in range(0, n, BLOCK_ROWS):
+                block = fs.matrix(ids[i:i + BLOCK_ROWS])
+                X[i:i + len(block)] = block
+                row_hashes += [_row_hash(r) for r in block]
+            X.flush()
+            del X
+            if sel.y is not None:
+                np.save(tmp / "y.npy", np.asarray(sel.y, dtype=str))
+            if sel.Y is not None:
+                np.save(tmp / "Y.npy", sel.Y)
+            np.save(tmp / "groups.npy", np.asarray(sel.groups, dtype=str))
+            pq.write_table(meta_t, tmp / "meta.parquet")
+        else:
+            writer = None
+            try:
+                for i in range(0, n, BLOCK_ROWS):
+                    block = fs.matrix(ids[i:i + BLOCK_ROWS])
+                    row_hashes += [_row_hash(r) for r in block]
+                    part = meta_t.slice(i, len(block))
+                    if sel.y is not None:
+                        part = part.append_column("y", pa.array(np.asarray(sel.y[i:i + len(block)], dtype=str)))
+                    flat = pa.array(block.reshape(-1), pa.float32())
+                    part = part.append_column("x", pa.FixedSizeListArray.from_arrays(flat, nv))
+                    if writer is None:
+                        writer = pq.ParquetWriter(tmp / "table.parquet", part.schema, compression="zstd")
+                    writer.write_table(part, row_group_size=64)
+            finally:
+                if writer is not None:
+                    writer.close()
+        if sel.concepts:
+            (tmp / "concepts.json").write_text(json.dumps(sel.concepts))
+        manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, row_hashes, fmt)
+        manifest["files"] = {p.name: _sha256_file(p) for p in sorted(tmp.iterdir())}
+        (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1, sort_keys=True, default=str))
+        if out.exists():
+            old = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.old"
+            os.replace(out, old)
+            os.replace(tmp, out)
+            shutil.rmtree(old, ignore_errors=True)
+        else:
+            os.replace(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return ExportReport(str(out), n, nv, scheme, len(splits), dict(sel.dropped), time.perf_counter() - t0, leaks)
+
+
+def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: list[str], splits,
+              row_hashes: list[str], fmt: str) -> dict[str, Any]:
+    import nibabel
+    import scipy
+    import sklearn
+
+    store = sel.store
+    fs = sel.feature_set
+    head = store.catalog.head
+    ds = {r["dataset"]: r["root"] for r in store.sql("SELECT dataset, root FROM datasets").to_pylist()}
+    sources = []
+    for r, h in zip(sel.meta.itertuples(index=False), row_hashes):
+        sources.append({"map_id": r.map_id, "dataset": r.dataset, "relpath": r.relpath,
+                        "path": os.path.join(ds.get(r.dataset, ""), r.relpath), "sha256": r.sha256,
+                        "feature_key": r.feature_key, "row_sha256": h})
+    return {
+        "format": MANIFEST_FORMAT, "format_version": 1,
+        "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+        "mapstore_version": __version__,
+        "versions": {"numpy": np.__version__, "scipy": scipy.__version__, "nibabel": nibabel.__version__,
+                     "scikit-learn": sklearn.__version__},
+        "store": str(store.path), "catalog_snapshot": head.catalog,
+        "query": sel.query, "dropped": sel.dropped,
+        "feature_set": {"name": fs.name, "spec_id": fs.spec["spec_id"], "grid": fs.spec["grid"],
+                        "grid_id": fs.spec["grid_id"], "mask": fs.spec["mask"], "method": fs.spec["method"],
+                        "stat": fs.spec["stat"], "versions": fs.spec.get("versions")},
+        "vocabulary": ({k: head.labels.get(k) for k in ("vocabulary", "sha256", "version", "inherit_broader")}
+                       if head.labels else None),
+        "target": sel.target, "concepts": sel.concepts, "group_by": sel.group_by,
+        "scheme": scheme, "seed": seed, "allow_leak": allow_leak, "leaks": leaks,
+        "splits": [{"train": len(tr), "test": len(te),
+                    "test_groups": sorted(map(str, set(sel.groups[te])))} for tr, te in splits],
+        "shape": [len(sel), fs.n_voxels], "dtype": "float32", "layout": fmt,
+        "sources": sources,
+    }
+
+
+@dataclass
+class VerifyReport:
+    """What ``verify`` found: an empty ``changes`` list means everything still matches."""
+
+    manifest: str
+    checked_sources: int
+    checked_rows: int
+    changes: list[str]
+
+    @property
+    def ok(self) -> bool:
+        return not self.changes
+
+    def summary(self) -> str:
+        head = (f"{self.manifest}: {self.checked_sources} source files, {self.checked_rows} store rows and "
+                "the exported files checked")
+        if self.ok:
+            return head + "\nall hashes match: the export is reproducible from these sources and this store"
+        shown = "\n  ".join(self.changes[:30])
+        more = f"\n  ... and {len(self.changes) - 30} more" if len(self.changes) > 30 else ""
+        return head + f"\n{len(self.changes)} change(s):\n  {shown}{more}"
+
+
+def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
+    """Re-check an export: source file hashes, the store's rows, and the exported files."""
+    from .features import FeatureSet
+    from .store import Catalog
+
+    mpath = Path(manifest_path)
+    if mpath.is_dir():
+        mpath = mpath / "manifest.json"
+    try:
+        man = json.loads(mpath.read_text())
+    except FileNotFoundError:
+        raise ExportError(f"{mpath}: manifest not found; give the export folder or its manifest.json") from None
+    except (OSError, ValueError) as exc:
+        raise ExportError(f"{mpath}: unreadable manifest ({exc})") from None
+    if man.get("format") != MANIFEST_FORMAT:
+        raise ExportError(f"{mpath}: not a mapstore export manifest")
+    changes: list[str] = []
+    folder = mpath.parent
+    for name, sha in man.get("files", {}).items():
+        p = folder / name
+        if not p.exists():
+            changes.append(f"export file missing: {name}")
+        elif _sha256_file(p) != sha:
+            changes.append(f"export file changed: {name}")
+    for s in man["sources"]:
+        p = Path(s["path"])
+        if not p.exists():
+            changes.append(f"source missing: {p}")
+            continue
+        got = _sha256_file(p)
+        if got != s["sha256"]:
+            changes.append(f"source changed: {p} (sha256 {s['sha256'][:12]}... -> {got[:12]}...)")
+    n_rows = 0
+    try:
+        cat = Catalog(man["store"])
+        name = man["feature_set"]["name"]
+        if name not in cat.head.features:
+            raise ExportError(f"no feature set {name!r} in {cat.path}")
+        fs = FeatureSet(cat.path, name, cat.head.features[name])
+    except Exception as exc:  # noqa: BLE001 - any failure to open is reported, not raised
+        changes.append(f"store or feature set unavailable: {exc}")
+        return VerifyReport(str(mpath), len(man["sources"]), 0, changes)
+    if fs.spec["spec_id"] != man["feature_set"]["spec_id"]:
+        changes.append(f"feature set {fs.name!r} now has other settings (spec {fs.spec['spec_id']} != "
+                       f"{man['feature_set']['spec_id']})")
+    rows = {r["map_id"]: r for r in fs.rows.to_pylist()}
+    present = [s for s in man["sources"] if s["map_id"] in rows and rows[s["map_id"]]["feature_key"] == s["feature_key"]]
+    for s in man["sources"]:
+        r = rows.get(s["map_id"])
+        if r is None:
+            changes.append(f"store row gone: {s['map_id']} ({s['relpath']})")
+        elif r["feature_key"] != s["feature_key"]:
+            changes.append(f"store row rebuilt from other inputs: {s['map_id']} ({s['relpath']})")
+    for i in range(0, len(present), BLOCK_ROWS):
+        part = present[i:i + BLOCK_ROWS]
+        block = fs.matrix([s["map_id"] for s in part])
+        for s, row in zip(part, block):
+            n_rows += 1
+            if _row_hash(row) != s["row_sha256"]:
+                changes.append(f"store row changed: {s['map_id']} ({s['relpath']})")
+    xfile = folder / "X.npy"
+    if man.get("layout") == "npy" and xfile.exists():
+        X = np.load(xfile, mmap_mode="r")
+        for i, s in enumerate(man["sources"]):
+            if _row_hash(X[i]) != s["row_sha256"]:
+                changes.append(f"exported row changed: X.npy row {i} ({s['map_id']})")
+    return VerifyReport(str(mpath), len(man["sources"]), n_rows, changes)
+
+
+def json_schemas() -> dict[str, dict[str, Any]]:
+    return {"export-manifest.schema.json": {
+        "$schema": "https://json-schema.org/draft/2020-12/schema",
+        "$id": "https://mapstore.invalid/schemas/export-manifest.schema.json",
+        "title": "mapstore export manifest",
+        "description": "Everything needed to reproduce and verify an export: query, feature set, every "
+                       "source file's sha256 and row hash, vocabulary hash, versions, scheme and seed.",
+        "type": "object",
+        "required": ["format", "format_version", "mapstore_version", "store", "query", "feature_set",
+                     "scheme", "seed", "sources", "files", "shape"],
+        "properties": {
+            "format": {"const": MANIFEST_FORMAT},
+            "format_version": {"type": "integer"},
+            "mapstore_version": {"type": "string"},
+            "created": {"type": "string"},
+            "versions": {"type": "object"},
+            "store": {"type": "string"},
+            "catalog_snapshot": {"type": ["string", "null"]},
+            "query": {"type": "object"},
+            "dropped": {"type": "object"},
+            "feature_set": {"type": "object", "required": ["name", "spec_id", "grid_id", "mask"]},
+            "vocabulary": {"type": ["object", "null"]},
+            "target": {"type": "string"},
+            "concepts": {"type": "array", "items": {"type": "string"}},
+            "group_by": {"type": "string"},
+            "scheme": {"type": "string"},
+            "seed": {"type": "integer"},
+            "allow_leak": {"type": "boolean"},
+            "leaks": {"type": "array", "items": {"type": "string"}},
+            "splits": {"type": "array"},
+            "shape": {"type": "array", "items": {"type": "integer"}, "minItems": 2, "maxItems": 2},
+            "dtype": {"const": "float32"},
+            "layout": {"enum": ["npy", "parquet"]},
+            "files": {"type": "object", "additionalProperties": {"type": "string"}},
+            "sources": {"type": "array", "items": {
+                "type": "object",
+                "required": ["map_id", "dataset", "relpath", "path", "sha256", "feature_key", "row_sha256"],
+                "properties": {k: {"type": "string"} for k in
+                               ("map_id", "dataset", "relpath", "path", "sha256", "feature_key", "row_sha256")}}},
+        },
+    }}

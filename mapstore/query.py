@@ -1,0 +1,271 @@
+"""Selections over the catalog: which maps, their targets, groups and leakage-free splits.
+
+A :class:`Selection` holds the rows chosen by SQL (pushed down into DuckDB) and
+gives decoders what they need: ``X`` (read from the feature set only when
+asked), ``y`` (or a multi-label ``Y``), ``groups`` and ``splits()``, which plug
+into scikit-learn's ``cv=`` unchanged.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field
+from typing import Any, Iterator
+
+import numpy as np
+
+from .errors import LeakageError, ParameterError, QueryError
+
+__all__ = ["Selection", "select", "parse_scheme", "GROUP_COLUMNS", "assign_folds"]
+
+GROUP_COLUMNS = {"study": "study", "site": "site", "lab": "lab", "subject": "participant",
+                 "participant": "participant", "dataset": "dataset"}
+_TARGET_KINDS = ("contrast", "concept", "concepts")
+
+
+def parse_scheme(scheme: str) -> tuple[str, float | int | None]:
+    """``leave-one-group-out``, ``group-kfold:K`` or ``holdout:FRACTION`` -> (kind, parameter)."""
+    if not isinstance(scheme, str):
+        raise ParameterError(f"scheme must be a string, got {type(scheme).__name__}")
+    if scheme in ("leave-one-group-out", "logo"):
+        return "leave-one-group-out", None
+    kind, _, arg = scheme.partition(":")
+    if kind == "group-kfold":
+        try:
+            k = int(arg)
+        except ValueError:
+            k = 0
+        if k < 2:
+            raise ParameterError(f"scheme {scheme!r}: group-kfold needs K >= 2, e.g. group-kfold:5")
+        return kind, k
+    if kind == "holdout":
+        try:
+            f = float(arg)
+        except ValueError:
+            f = -1.0
+        if not 0 < f < 1:
+            raise ParameterError(f"scheme {scheme!r}: holdout needs a test fraction in (0, 1), e.g. holdout:0.2")
+        return kind, f
+    raise ParameterError(f"unknown scheme {scheme!r}; use leave-one-group-out, group-kfold:K or holdout:FRACTION")
+
+
+def assign_folds(groups: np.ndarray, scheme: str, seed: int = 0) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Train/test index pairs for ``groups`` under a scheme, as scikit-learn's splitters make them.
+
+    ``leave-one-group-out`` is ``LeaveOneGroupOut``, ``group-kfold:K`` is ``GroupKFold(K)``
+    and ``holdout:F`` is ``GroupShuffleSplit(n_splits=1, test_size=F, random_state=seed)``.
+    """
+    from sklearn.model_selection import GroupKFold, GroupShuffleSplit, LeaveOneGroupOut
+
+    kind, arg = parse_scheme(scheme)
+    groups = np.asarray(groups)
+    n_groups = len(np.unique(groups))
+    dummy = np.zeros((len(groups), 1))
+    if kind == "leave-one-group-out":
+        if n_groups < 2:
+            raise ParameterError(f"leave-one-group-out needs at least 2 groups, the selection has {n_groups}")
+        splitter = LeaveOneGroupOut()
+    elif kind == "group-kfold":
+        if arg > n_groups:
+            raise ParameterError(f"group-kfold:{arg} needs at least {arg} groups, the selection has {n_groups}; "
+                                 f"use group-kfold:{max(2, n_groups)} or group by something finer")
+        splitter = GroupKFold(n_splits=arg)
+    else:
+        if n_groups < 2:
+            raise ParameterError(f"holdout needs at least 2 groups, the selection has {n_groups}")
+        splitter = GroupShuffleSplit(n_splits=1, test_size=arg, random_state=seed)
+    return [(np.asarray(tr), np.asarray(te)) for tr, te in splitter.split(dummy, groups=groups)]
+
+
+def check_leakage(splits, participants: np.ndarray, sha256: np.ndarray, map_ids: np.ndarray,
+                  allow_leak: bool = False) -> list[str]:
+    """Refuse splits that put one participant or one identical file (sha256) on both sides."""
+    problems: list[str] = []
+    for i, (tr, te) in enumerate(splits):
+        for what, col in (("subject", participants), ("identical map (sha256)", sha256)):
+            tr_set = {v for v in col[tr] if v is not None}
+            both = sorted({v for v in col[te] if v is not None} & tr_set)
+            if both:
+                ids = [str(map_ids[j]) for j in te if col[j] in both][:5]
+                problems.append(f"split {i}: {len(both)} {what}(s) on both sides, e.g. {both[0]} "
+                                f"(test map ids {', '.join(ids)})")
+    if problems and not allow_leak:
+        raise LeakageError("the split leaks:\n  " + "\n  ".join(problems[:10]) +
+                           "\ngroup by a coarser unit (study or subject), drop duplicated maps, or pass "
+                           "allow_leak=True (--allow-leak) to accept it")
+    if problems:
+        warnings.warn("leaky split accepted (allow_leak): " + "; ".join(problems[:3]), stacklevel=3)
+    return problems
+
+
+@dataclass
+class Selection:
+    """Maps chosen from a store, ready for a decoder.
+
+    Attributes
+    ----------
+    meta : pandas.DataFrame
+        One row per map (map_id, dataset, study, site, lab, participant, task, contrast, stat,
+        concepts, coverage, sha256, feature_key, ...), in the order of ``X``'s rows.
+    y : ndarray
+        Target per map (a class name), or None when ``target="concepts"``.
+    Y : ndarray of uint8, shape (n_maps, n_concepts)
+        Multi-label indicators when ``target="concepts"`` (columns: ``concepts``).
+    groups : ndarray
+        Group label per map (``group_by``).
+    dropped : dict
+        How many maps were left out, and why.
+    """
+
+    store: Any
+    feature_set: Any
+    meta: Any
+    y: np.ndarray | None
+    Y: np.ndarray | None
+    concepts: list[str]
+    groups: np.ndarray
+    group_by: str
+    target: str
+    query: dict[str, Any]
+    dropped: dict[str, int] = field(default_factory=dict)
+    _X: np.ndarray | None = field(default=None, repr=False)
+
+    def __len__(self) -> int:
+        return len(self.meta)
+
+    @property
+    def map_ids(self) -> list[str]:
+        return self.meta["map_id"].tolist()
+
+    @property
+    def X(self) -> np.ndarray:
+        """(n_maps, n_voxels) float32, read from the feature set's shards on first use."""
+        if self._X is None:
+            self._X = self.feature_set.matrix(self.map_ids)
+        return self._X
+
+    def splits(self, scheme: str = "leave-one-group-out", seed: int = 0,
+               allow_leak: bool = False) -> list[tuple[np.ndarray, np.ndarray]]:
+        """Train/test index pairs grouped by ``group_by``; pass them as ``cv=`` to scikit-learn.
+
+        Raises :class:`~mapstore.errors.LeakageError` if a participant or an identical
+        file would sit on both sides of a split, unless ``allow_leak``.
+        """
+        out = assign_folds(self.groups, scheme, seed)
+        check_leakage(out, self.meta["participant"].to_numpy(object), self.meta["sha256"].to_numpy(object),
+                      self.meta["map_id"].to_numpy(object), allow_leak)
+        return out
+
+    def folds(self, scheme: str = "leave-one-group-out", seed: int = 0, allow_leak: bool = False) -> np.ndarray:
+        """Per map: index of the split where it is in the test set (-1 if never: holdout train)."""
+        fold = np.full(len(self), -1, dtype=np.int64)
+        for i, (_, te) in enumerate(self.splits(scheme, seed, allow_leak)):
+            fold[te] = i
+        return fold
+
+    def iter_splits(self, scheme: str = "leave-one-group-out", seed: int = 0) -> Iterator[tuple[np.ndarray, np.ndarray]]:
+        yield from self.splits(scheme, seed)
+
+
+def _sql_list(values) -> str:
+    return ", ".join("'" + str(v).replace("'", "''") + "'" for v in values)
+
+
+def select(store, where: str | None = None, *, concepts: list[str] | None = None, task: list[str] | None = None,
+           stat: list[str] | None = None, features: str | None = None, min_coverage: float | None = None,
+           target: str = "contrast", group_by: str = "study", with_broader: bool = False) -> Selection:
+    """Choose maps and build a :class:`Selection` (see :meth:`mapstore.Store.select`)."""
+    import pandas as pd
+
+    if group_by not in GROUP_COLUMNS:
+        raise ParameterError(f"group_by must be one of {sorted(GROUP_COLUMNS)}, got {group_by!r}")
+    if min_coverage is not None and not 0 <= min_coverage <= 1:
+        raise ParameterError(f"min_coverage must be in [0, 1], got {min_coverage!r}")
+    for name, val in (("concepts", concepts), ("task", task), ("stat", stat)):
+        if val is not None and (isinstance(val, str) or not all(isinstance(v, str) for v in val)):
+            raise ParameterError(f"{name} must be a list of strings, got {val!r}")
+    fs = store.features(features)
+    cat = store.catalog
+    maps_cols = set(cat.sql("DESCRIBE maps")["column_name"].to_pylist())
+    p_cols = [c for c in cat.sql("DESCRIBE participants")["column_name"].to_pylist()
+              if c not in maps_cols and c != "participant_id"]
+    p_sel = "".join(f', p."{c}"' for c in p_cols)
+    conds = []
+    if where:
+        conds.append(f"({where})")
+    if task:
+        conds.append(f"task IN ({_sql_list(task)})")
+    if stat:
+        conds.append(f"stat IN ({_sql_list(stat)})")
+    label_filter = "" if with_broader else " AND direct"
+    if concepts:
+        known = set(cat.sql("SELECT DISTINCT concept FROM labels")["concept"].to_pylist())
+        if not known:
+            raise QueryError("the store has no labels; run 'mapstore labels --store DIR --vocab FILE' first")
+        unknown = sorted(set(concepts) - known)
+        if unknown:
+            raise QueryError(f"concept(s) {unknown} label no map; labelled concepts: {sorted(known)}")
+        conds.append(f"map_id IN (SELECT map_id FROM labels WHERE concept IN ({_sql_list(concepts)}){label_filter})")
+    inner = (f"SELECT m.*{p_sel} FROM maps m LEFT JOIN participants p "
+             "ON p.dataset = m.dataset AND p.sub = m.sub")
+    chosen = f"SELECT * FROM ({inner}) AS m" + (" WHERE " + " AND ".join(conds) if conds else "")
+    q = (f"WITH s AS ({chosen}) SELECT s.*, f.coverage, f.feature_key, f.conversion FROM s JOIN features f "
+         f"ON f.map_id = s.map_id AND f.feature_set = '{fs.name}' ORDER BY s.map_id")
+    base_q = f"SELECT count(*) FROM ({chosen})"
+    try:
+        df = cat.sql(q).to_pandas()
+        n_matching = cat.sql(base_q).column(0)[0].as_py()
+    except QueryError as exc:
+        raise QueryError(f"selection {where!r}: {exc}") from None
+    dropped = {}
+    if n_matching > len(df):
+        dropped["no feature row"] = int(n_matching - len(df))
+    if min_coverage is not None:
+        low = df["coverage"] < min_coverage
+        if low.any():
+            dropped[f"coverage < {min_coverage:g}"] = int(low.sum())
+        df = df[~low].reset_index(drop=True)
+    if df.empty:
+        raise QueryError(f"the selection is empty (dropped: {dropped or 'none'}); loosen the filters")
+    lab = cat.sql(f"SELECT map_id, concept, direct FROM labels WHERE true{label_filter}").to_pandas()
+    lab = lab[lab.map_id.isin(set(df.map_id))]
+    by_map = lab.groupby("map_id")["concept"].apply(lambda s: sorted(set(s))).to_dict()
+    df["concepts"] = [by_map.get(m, []) for m in df.map_id]
+    y = Y = None
+    concept_list: list[str] = []
+    if target == "contrast":
+        y = df["contrast"].to_numpy(object)
+    elif target == "concept":
+        keep = set(concepts) if concepts else None
+        chosen = [[c for c in cs if keep is None or c in keep] for cs in df["concepts"]]
+        bad = [(m, c) for m, c in zip(df.map_id, chosen) if len(c) != 1]
+        if bad:
+            ex = ", ".join(f"{m} {c or '(none)'}" for m, c in bad[:5])
+            raise QueryError(f"target 'concept' needs exactly one concept per map; {len(bad)} map(s) have "
+                             f"none or several (e.g. {ex}); choose concepts=[...] that do not overlap, or use "
+                             "target='concepts' for a multi-label indicator matrix")
+        y = np.array([c[0] for c in chosen], dtype=object)
+    elif target == "concepts":
+        concept_list = sorted(set(concepts) if concepts else {c for cs in df["concepts"] for c in cs})
+        idx = {c: i for i, c in enumerate(concept_list)}
+        Y = np.zeros((len(df), len(concept_list)), dtype=np.uint8)
+        for r, cs in enumerate(df["concepts"]):
+            for c in cs:
+                if c in idx:
+                    Y[r, idx[c]] = 1
+    elif target in df.columns:
+        y = df[target].to_numpy(object)
+        if pd.isna(df[target]).any():
+            raise QueryError(f"target column {target!r} is empty for {int(pd.isna(df[target]).sum())} map(s)")
+    else:
+        raise ParameterError(f"target must be one of {list(_TARGET_KINDS)} or a column of maps, got {target!r}")
+    gcol = GROUP_COLUMNS[group_by]
+    if df[gcol].isna().any():
+        n = int(df[gcol].isna().sum())
+        raise QueryError(f"{n} selected map(s) have no {group_by} (e.g. {df.loc[df[gcol].isna(), 'map_id'].iloc[0]}); "
+                         f"set it with an origins file ('mapstore index --origins'), or group by study")
+    groups = df[gcol].to_numpy(object)
+    query = {"where": where, "concepts": concepts, "task": task, "stat": stat, "features": fs.name,
+             "min_coverage": min_coverage, "target": target, "group_by": group_by, "with_broader": with_broader,
+             "sql": q}
+    return Selection(store, fs, df, y, Y, concept_list, groups, group_by, target, query, dropped)
