@@ -167,6 +167,26 @@ class Selection:
         yield from self.splits(scheme, seed)
 
 
+def _labels(cat, with_broader: bool):
+    """The labels table as a DataFrame: direct labels, plus broader concepts when asked."""
+    import pandas as pd
+
+    lab = cat.sql("SELECT map_id, concept, direct FROM labels").to_pandas()
+    if not with_broader:
+        return lab[lab["direct"]]
+    entry = cat.head.labels
+    if not entry or not entry.get("copy"):
+        return lab
+    from .labels import load_vocabulary
+
+    vocab = load_vocabulary(cat.path / entry["copy"])
+    extra = [(m, b) for m, c in zip(lab["map_id"], lab["concept"]) if c in vocab.concepts
+             for b in vocab.broader_closure(c)]
+    if extra:
+        lab = pd.concat([lab, pd.DataFrame(extra, columns=["map_id", "concept"]).assign(direct=False)])
+    return lab.drop_duplicates(["map_id", "concept"])
+
+
 def _sql_list(values) -> str:
     return ", ".join("'" + str(v).replace("'", "''") + "'" for v in values)
 
@@ -197,15 +217,17 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
         conds.append(f"task IN ({_sql_list(task)})")
     if stat:
         conds.append(f"stat IN ({_sql_list(stat)})")
-    label_filter = "" if with_broader else " AND direct"
+    lab = _labels(cat, with_broader)
     if concepts:
-        known = set(cat.sql("SELECT DISTINCT concept FROM labels")["concept"].to_pylist())
+        known = set(lab["concept"])
         if not known:
             raise QueryError("the store has no labels; run 'mapstore labels --store DIR --vocab FILE' first")
         unknown = sorted(set(concepts) - known)
         if unknown:
-            raise QueryError(f"concept(s) {unknown} label no map; labelled concepts: {sorted(known)}")
-        conds.append(f"map_id IN (SELECT map_id FROM labels WHERE concept IN ({_sql_list(concepts)}){label_filter})")
+            raise QueryError(f"concept(s) {unknown} label no map; labelled concepts: {sorted(known)}"
+                             + ("" if with_broader else " (broader concepts count with with_broader=True)"))
+        ids = sorted(set(lab.loc[lab["concept"].isin(concepts), "map_id"]))
+        conds.append(f"map_id IN ({_sql_list(ids)})")
     inner = (f"SELECT m.*{p_sel} FROM maps m LEFT JOIN participants p "
              "ON p.dataset = m.dataset AND p.sub = m.sub")
     chosen = f"SELECT * FROM ({inner}) AS m" + (" WHERE " + " AND ".join(conds) if conds else "")
@@ -227,7 +249,6 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
         df = df[~low].reset_index(drop=True)
     if df.empty:
         raise QueryError(f"the selection is empty (dropped: {dropped or 'none'}); loosen the filters")
-    lab = cat.sql(f"SELECT map_id, concept, direct FROM labels WHERE true{label_filter}").to_pandas()
     lab = lab[lab.map_id.isin(set(df.map_id))]
     by_map = lab.groupby("map_id")["concept"].apply(lambda s: sorted(set(s))).to_dict()
     df["concepts"] = [by_map.get(m, []) for m in df.map_id]

@@ -1,0 +1,149 @@
+"""Selections from a labelled store, export round trips, manifest and verify."""
+
+from __future__ import annotations
+
+import json
+import shutil
+
+import jsonschema
+import numpy as np
+import pyarrow.parquet as pq
+import pytest
+
+import mapstore
+from mapstore.cli import main
+from mapstore.errors import ExportError, QueryError
+from mapstore.schemas import all_schemas
+
+
+@pytest.fixture(scope="module")
+def labelled_store(demo_store, demo_tree, tmp_path_factory):
+    store = tmp_path_factory.mktemp("lab") / "store"
+    shutil.copytree(demo_store, store)
+    mapstore.build_features(store, jobs=2, progress=False)
+    mapstore.label(store, demo_tree / "concepts.json")
+    return store
+
+
+def test_default_target_is_contrast_and_works_without_labels(demo_store, tmp_path):
+    store = tmp_path / "s"
+    shutil.copytree(demo_store, store)
+    mapstore.build_features(store, grid="MNI152-3mm", name="three", jobs=2, progress=False)
+    sel = mapstore.open(store).select(features="three", stat=["t"])
+    assert set(sel.y) == set(sel.meta.contrast) and len(sel) == (sel.meta.stat == "t").sum()
+
+
+def test_select_where_targets_groups(labelled_store):
+    st = mapstore.open(labelled_store)
+    sel = st.select("stat = 't' AND age >= 18", concepts=["reading", "listening"], target="concept")
+    assert set(sel.y) == {"reading", "listening"}
+    assert (sel.meta.stat == "t").all()
+    assert sel.X.shape == (len(sel), st.features().n_voxels)
+    multi = st.select(concepts=["reading", "listening", "visual-motion"], target="concepts")
+    assert multi.Y.shape == (len(multi), 3) and multi.concepts == ["listening", "reading", "visual-motion"]
+    assert (multi.Y.sum(axis=1) >= 1).all()
+    broad = st.select(concepts=["perception"], with_broader=True, target="concepts")
+    assert "perception" in broad.concepts and broad.Y[:, broad.concepts.index("perception")].all()
+    subj = st.select(group_by="subject")
+    # subjects are study-qualified: sub-01 of two studies are two groups
+    assert len(set(subj.groups)) == subj.meta.participant.nunique() > subj.meta["sub"].nunique()
+
+
+def test_coverage_threshold_reports_dropped(labelled_store):
+    st = mapstore.open(labelled_store)
+    sel = st.select(min_coverage=0.9)
+    assert sel.dropped and list(sel.dropped.values())[0] > 0
+    assert (sel.meta.coverage >= 0.9).all()
+
+
+def test_concept_target_refuses_overlaps(labelled_store):
+    st = mapstore.open(labelled_store)
+    with pytest.raises(QueryError, match="exactly one concept"):
+        st.select(concepts=["perception", "listening"], with_broader=True, target="concept")
+    with pytest.raises(QueryError, match="label no map"):
+        st.select(concepts=["juggling"])
+
+
+def test_splits_plug_into_scikit_learn(labelled_store):
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.model_selection import cross_val_score
+
+    st = mapstore.open(labelled_store)
+    sel = st.select(concepts=["reading", "hand-movement"], target="concept", stat=["t", "z"])
+    X = np.nan_to_num(sel.X[:, ::50])
+    scores = cross_val_score(LogisticRegression(max_iter=200), X, sel.y, cv=sel.splits("group-kfold:2"))
+    assert len(scores) == 2
+
+
+def test_export_round_trip_and_verify(labelled_store, tmp_path):
+    st = mapstore.open(labelled_store)
+    sel = st.select(concepts=["reading", "listening", "arithmetic"], target="concept")
+    out = tmp_path / "exp"
+    rep = st.export(out, sel, scheme="leave-one-group-out", seed=3)
+    assert rep.n_maps == len(sel) and rep.n_splits == sel.meta.study.nunique()
+    X = np.load(out / "X.npy", mmap_mode="r")
+    np.testing.assert_array_equal(X, st.features().matrix(sel.map_ids))
+    meta = pq.read_table(out / "meta.parquet").to_pandas()
+    assert list(meta.map_id) == sel.map_ids
+    assert list(np.load(out / "y.npy")) == list(sel.y) and list(np.load(out / "groups.npy")) == list(sel.groups)
+    # fold = index of the held-out study
+    for f, part in meta.groupby("fold"):
+        assert part.study.nunique() == 1
+    man = json.loads((out / "manifest.json").read_text())
+    jsonschema.validate(man, all_schemas()["export-manifest.schema.json"])
+    assert man["seed"] == 3 and man["vocabulary"]["sha256"] and len(man["sources"]) == len(sel)
+    assert man["feature_set"]["mask"]["sha256"] and man["feature_set"]["grid_id"]
+    assert mapstore.verify(out).ok
+
+    # a modified source file is caught
+    src = man["sources"][0]["path"]
+    data = bytearray(open(src, "rb").read())
+    data[-1] ^= 0xFF
+    backup = open(src, "rb").read()
+    open(src, "wb").write(bytes(data))
+    try:
+        rep = mapstore.verify(out / "manifest.json")
+        assert not rep.ok and any("source changed" in c and src in c for c in rep.changes)
+    finally:
+        open(src, "wb").write(backup)
+    assert mapstore.verify(out).ok
+
+    # a modified store row is caught
+    fs = st.features()
+    row = fs.rows.to_pylist()[fs.map_ids.index(man["sources"][1]["map_id"])]
+    shard = np.load(fs.path / "shards" / row["shard"], mmap_mode="r+")
+    keep = shard[row["row"]].copy()
+    shard[row["row"], 0] = 123.0
+    shard.flush()
+    try:
+        rep = mapstore.verify(out)
+        assert any(c.startswith("store row changed") and man["sources"][1]["map_id"] in c for c in rep.changes)
+    finally:
+        shard[row["row"]] = keep
+        shard.flush()
+    # and the CLI exits 1 on a change, 0 when all matches
+    assert main(["verify", str(out)]) == 0
+
+
+def test_export_refuses_to_overwrite_and_parquet_format(labelled_store, tmp_path):
+    st = mapstore.open(labelled_store)
+    sel = st.select(stat=["z"])
+    out = tmp_path / "p"
+    st.export(out, sel, scheme="holdout:0.3", fmt="parquet")
+    t = pq.read_table(out / "table.parquet")
+    assert t.num_rows == len(sel) and set(t.column("y").to_pylist()) == set(sel.y)
+    x0 = np.asarray(t.column("x")[0].values)
+    np.testing.assert_array_equal(x0, st.features().matrix(sel.map_ids[:1])[0])
+    assert set(t.column("split").to_pylist()) == {"train", "test"}
+    assert mapstore.verify(out).ok
+    with pytest.raises(ExportError, match="not empty"):
+        st.export(out, sel)
+
+
+def test_export_cli(labelled_store, tmp_path):
+    out = tmp_path / "cli"
+    rc = main(["export", "--store", str(labelled_store), "--out", str(out), "--concept", "reading",
+               "--concept", "listening", "--group-by", "site", "--scheme", "group-kfold:2"])
+    assert rc == 0 and (out / "manifest.json").exists()
+    assert main(["export", "--store", str(labelled_store), "--out", str(tmp_path / "x"),
+                 "--scheme", "bogus"]) == 2
