@@ -38,6 +38,7 @@ from .grid import (
     Mask,
     TargetGrid,
     builtin_grid,
+    crop_grid,
     grid_from_image,
     grid_from_spec,
     mask_from_array,
@@ -155,11 +156,12 @@ class _Batch:
     coverage_only: bool = False
 
 
-def _vector(item: _Item, b: _Batch, indices: np.ndarray | None) -> tuple[np.ndarray, str, str]:
+def _vector(item: _Item, b: _Batch, indices: np.ndarray | None, grid: TargetGrid | None = None
+            ) -> tuple[np.ndarray, str, str]:
     vol, facts = read_volume(item.path, expect_sha256=item.sha256)
     if b.zero_as_missing:
         vol[vol == 0] = np.nan
-    out, path = resample(vol, facts.affine_array, b.grid, b.method, return_path=True)
+    out, path = resample(vol, facts.affine_array, grid or b.grid, b.method, return_path=True)
     flat = out.reshape(-1)
     vec = flat if indices is None else flat[indices]
     vec, conversion = convert(vec, item.stat, b.stat, dof=item.dof, sided=b.p_sided, where=item.path)
@@ -182,6 +184,7 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
             done += 1
         return {"counts": counts, "n": done, "problems": problems}
     indices = np.load(os.path.join(b.set_dir, "mask.npy"))
+    box, local = crop_grid(b.grid, indices)  # resample the mask's bounding box only
     shard_path = os.path.join(b.set_dir, "shards", b.shard)
     tmp = shard_path + f".{uuid.uuid4().hex}.tmp"
     arr = np.lib.format.open_memmap(tmp, mode="w+", dtype=np.float32, shape=(len(b.items), indices.size))
@@ -189,7 +192,7 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
     now = time.strftime("%Y-%m-%dT%H:%M:%S")
     for i, it in enumerate(b.items):
         try:
-            vec, conversion, path = _vector(it, b, indices)
+            vec, conversion, path = _vector(it, b, local, box)
         except MapstoreError as exc:
             arr[i] = np.nan
             problems.append(_problem(it, exc))
