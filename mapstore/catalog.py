@@ -467,7 +467,7 @@ def _map_row(ds: DatasetInfo, m: MapFile, resolver: SidecarResolver, by_sub: dic
         "entities": json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")},
                                sort_keys=True),
         "named_by": m.named_by,
-        "participant": f"{origin['study']}/sub-{sub}" if sub is not None else None,
+        "participant": origin.get("participant") or (f"{origin['study']}/sub-{sub}" if sub is not None else None),
         "study": origin["study"], "site": origin["site"], "lab": origin["lab"],
         "dof": dof, "dof_source": dof_source,
         "metadata": meta_json,

@@ -268,7 +268,10 @@ class MetadataOverrides:
         datasets:
           "<dataset key or glob>": {study: ..., site: ..., lab: ...}
         subjects:
-          "<dataset key>/sub-<label>": {site: ..., lab: ...}
+          "<dataset key>/sub-<label>": {site: ..., lab: ..., participant: "<study>/sub-<label>"}
+
+    ``participant`` declares that a subject is a person already known under another
+    study's id (the leakage guard then keeps both on one side of every split).
     """
 
     datasets: dict[str, dict[str, str]] = field(default_factory=dict)
@@ -294,10 +297,11 @@ class MetadataOverrides:
             for key, val in table.items():
                 if not isinstance(val, dict):
                     raise RulesError(f"{path}: {section}.{key} must be an object")
-                bad = set(val) - {"study", "site", "lab"}
+                allowed = {"study", "site", "lab"} | ({"participant"} if section == "subjects" else set())
+                bad = set(val) - allowed
                 if bad:
                     raise RulesError(f"{path}: {section}.{key}: unknown key(s) {sorted(bad)}; "
-                                     "allowed: study, site, lab")
+                                     f"allowed: {', '.join(sorted(allowed))}")
                 getattr(out, section)[str(key)] = {k: str(v) for k, v in val.items()}
         return out
 

@@ -86,6 +86,8 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         warnings.simplefilter("always")
         splits = sel.splits(scheme, seed, allow_leak)
     leaks = [str(w.message) for w in caught if "leaky split" in str(w.message)]
+    for w in caught:  # recorded to keep them in the manifest; still shown to the caller
+        warnings.warn(w.message, w.category, stacklevel=2)
     fold = np.full(len(sel), -1, dtype=np.int64)
     for i, (_, te) in enumerate(splits):
         fold[te] = i

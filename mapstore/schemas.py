@@ -103,6 +103,8 @@ def _rules_schema() -> dict[str, Any]:
 def _origins_schema() -> dict[str, Any]:
     entry = {"type": "object", "additionalProperties": False,
              "properties": {k: {"type": "string"} for k in ("study", "site", "lab")}}
+    subject_entry = {"type": "object", "additionalProperties": False,
+                     "properties": {k: {"type": "string"} for k in ("study", "site", "lab", "participant")}}
     return {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
         "$id": _BASE + "origins.schema.json",
@@ -113,7 +115,7 @@ def _origins_schema() -> dict[str, Any]:
         "type": "object",
         "additionalProperties": False,
         "properties": {"datasets": {"type": "object", "additionalProperties": entry},
-                       "subjects": {"type": "object", "additionalProperties": entry}},
+                       "subjects": {"type": "object", "additionalProperties": subject_entry}},
     }
 
 

@@ -190,3 +190,29 @@ def test_participants_from_raw_parent(tmp_path):
     assert f.endswith("raw/participants.tsv") and not problems
     assert rows[1] == {"participant_id": "sub-02", "site": None, "age": "31"}
     assert ds_root == __import__("pathlib").Path(ds.root)
+
+
+def test_overrides_can_merge_participants(tmp_path):
+    f = write_json(tmp_path / "o.json", {"subjects": {"b/sub-07": {"participant": "a/sub-01"}}})
+    over = MetadataOverrides.load(f)
+    assert over.apply("b", "07", {"site": None})["participant"] == "a/sub-01"
+    bad = write_json(tmp_path / "b.json", {"datasets": {"b": {"participant": "x"}}})
+    with pytest.raises(RulesError, match="participant"):
+        MetadataOverrides.load(bad)
+
+
+def test_example_files_are_valid():
+    import jsonschema
+    import yaml
+
+    from mapstore.labels import load_vocabulary
+    from mapstore.schemas import all_schemas
+
+    ex = __import__("pathlib").Path(__file__).resolve().parents[1] / "examples"
+    schemas = all_schemas()
+    jsonschema.validate(yaml.safe_load((ex / "origins.yaml").read_text()), schemas["origins.schema.json"])
+    jsonschema.validate(yaml.safe_load((ex / "name-rules.yaml").read_text()), schemas["name-rules.schema.json"])
+    jsonschema.validate(yaml.safe_load((ex / "demo-concepts.yaml").read_text()), schemas["vocabulary.schema.json"])
+    NameRules.load(ex / "name-rules.yaml")
+    MetadataOverrides.load(ex / "origins.yaml")
+    assert len(load_vocabulary(ex / "demo-concepts.yaml").concepts) == 8

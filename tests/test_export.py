@@ -12,7 +12,7 @@ import pytest
 
 import mapstore
 from mapstore.cli import main
-from mapstore.errors import ExportError, QueryError
+from mapstore.errors import ExportError, LeakageError, QueryError
 from mapstore.schemas import all_schemas
 
 
@@ -147,3 +147,21 @@ def test_export_cli(labelled_store, tmp_path):
     assert rc == 0 and (out / "manifest.json").exists()
     assert main(["export", "--store", str(labelled_store), "--out", str(tmp_path / "x"),
                  "--scheme", "bogus"]) == 2
+
+
+def test_origins_mapping_one_person_in_two_studies_is_a_leak(demo_tree, tmp_path):
+    import yaml
+
+    origins = tmp_path / "origins.yaml"
+    origins.write_text(yaml.safe_dump({"datasets": {"emberlight": {"lab": "Fernhill Lab"}},
+                                       "subjects": {"inkwell/sub-01": {"participant": "glowtrack/sub-02"}}}))
+    store = tmp_path / "store"
+    mapstore.index([demo_tree], store, rules=demo_tree / "name-rules.json", overrides=origins, progress=False)
+    mapstore.build_features(store, grid="MNI152-3mm", jobs=2, progress=False)
+    st = mapstore.open(store)
+    sel = st.select(features=st.feature_sets()[0], group_by="study")
+    with pytest.raises(LeakageError, match="glowtrack/sub-02"):
+        sel.splits("leave-one-group-out")
+    with pytest.warns(UserWarning):
+        rep = st.export(tmp_path / "out", sel, allow_leak=True)
+    assert rep.leaks and json.loads((tmp_path / "out" / "manifest.json").read_text())["allow_leak"]
