@@ -551,10 +551,35 @@ class FeatureSet:
                                    f"'mapstore features --name {self.name}'") from None
         return self._shards[name]
 
+    def _read_rows(self, shard: str, rows: np.ndarray, out: np.ndarray, dest: np.ndarray) -> None:
+        """Read sorted ``rows`` of a shard into ``out[dest]`` with reads straight into ``out``.
+
+        Reading into the result (rather than copying through numpy) lets the kernel fill
+        fresh pages as it copies, several times faster than faulting them in from Python.
+        """
+        arr = self._shard(shard)  # validates the header; gives shape and data offset
+        if arr.dtype != np.float32 or arr.ndim != 2 or arr.shape[1] != self.n_voxels:
+            raise FeatureError(f"{self.path / 'shards' / shard}: shard has shape {arr.shape} {arr.dtype}, "
+                               f"expected (*, {self.n_voxels}) float32; rebuild the feature set")
+        offset = arr.offset
+        row_bytes = self.n_voxels * 4
+        with open(self.path / "shards" / shard, "rb", buffering=0) as fh:
+            i = 0
+            while i < len(rows):
+                j = i + 1  # extend while both the shard rows and their destinations run on
+                while j < len(rows) and rows[j] == rows[j - 1] + 1 and dest[j] == dest[j - 1] + 1:
+                    j += 1
+                fh.seek(offset + int(rows[i]) * row_bytes)
+                view = memoryview(out[dest[i]:dest[i] + (j - i)]).cast("B")
+                if fh.readinto(view) != len(view):
+                    raise FeatureError(f"{self.path / 'shards' / shard}: shard is truncated; rebuild the "
+                                       "feature set")
+                i = j
+
     def matrix(self, map_ids=None) -> np.ndarray:
         """An (n_maps, n_voxels) float32 array of the given maps' rows, in the given order.
 
-        Reads only the requested rows from the memory-mapped shards.
+        Reads only the requested rows from the shards, straight into the result.
         """
         if map_ids is None:
             map_ids = self.map_ids
@@ -570,9 +595,8 @@ class FeatureSet:
         out = np.empty((len(map_ids), self.n_voxels), dtype=np.float32)
         for shard in dict.fromkeys(shard_col):
             sel = np.flatnonzero(shard_col == shard)
-            rows = row_col[sel]
-            order = np.argsort(rows, kind="stable")
-            out[sel[order]] = self._shard(shard)[rows[order]]
+            order = np.argsort(row_col[sel], kind="stable")
+            self._read_rows(shard, row_col[sel][order], out, sel[order])
         return out
 
     def coverage(self, map_ids=None) -> np.ndarray:
