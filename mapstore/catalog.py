@@ -233,19 +233,42 @@ def _previous_subset(prev: pa.Table | None, dataset: str, top: list[str] | None,
     return t
 
 
+_STATIC_HEADER = tuple(c for c in _HEADER_COLUMNS if c not in ("sha256", "nbytes", "mtime_ns"))
+_PER_ROW = ("map_id", "dataset", "relpath", *_ENTITY_COLUMNS, "suffix", "extension", "entities", "named_by",
+            "participant", "study", "site", "lab", "sha256", "nbytes", "mtime_ns", "dof", "dof_source")
+_SIDECAR_COLUMNS = ("metadata", "sidecars")
+
+
+def _static_key(hdr: dict[str, Any]) -> tuple:
+    return tuple(tuple(v) if isinstance(v, list) else v for v in (hdr[c] for c in _STATIC_HEADER))
+
+
 def _run_unit(unit: _Unit) -> _UnitResult:
+    """Crawl one unit and build its rows column by column.
+
+    Header facts and sidecar metadata repeat across a study's maps, so each distinct
+    value is built once and the columns are gathered with one Arrow ``take``.
+    """
     ds = unit.ds
     parser = unit.parser
     maps, jsons, problems = walk_dataset(ds, parser, unit.rules, unit.top, unit.root_maps)
     resolver = SidecarResolver(ds, jsons, parser)
     prev = {r["relpath"]: r for r in unit.prev.to_pylist()} if unit.prev is not None else {}
     cache: dict[bytes, dict[str, Any]] = {}
-    rows = []
+    cols: dict[str, list[Any]] = {c: [] for c in _PER_ROW}
+    headers: list[dict[str, Any]] = []
+    header_pos: dict[Any, int] = {}
+    sidecars: list[dict[str, Any]] = []
+    sidecar_pos: dict[str, int] = {}
+    hidx: list[int] = []
+    sidx: list[int] = []
+    origins: dict[str | None, dict[str, Any]] = {}
     new = changed = unchanged = 0
     for m in maps:
         old = prev.get(m.relpath)
         if old is not None and old["nbytes"] == m.nbytes and old["mtime_ns"] == m.mtime_ns:
-            hdr = old
+            hdr, sha, nbytes = old, old["sha256"], old["nbytes"]
+            key: Any = _static_key(old)
             unchanged += 1
         else:
             res = probe_file(m.path, cache)
@@ -253,15 +276,92 @@ def _run_unit(unit: _Unit) -> _UnitResult:
                 problems.append(Problem(res.path, res.code, res.reason, res.remedy, res.level,
                                         ds.key, res.stage))
                 continue
-            cols, sha, nbytes = res
-            hdr = {**cols, "sha256": sha, "nbytes": nbytes, "mtime_ns": m.mtime_ns}
+            hdr, sha, nbytes = res
+            key = id(hdr)  # probe_file shares one dict per distinct header
             if old is None:
                 new += 1
             else:
                 changed += 1
-        rows.append(_map_row(ds, m, resolver, unit.by_sub, unit.overrides, hdr))
+        pos = header_pos.get(key)
+        if pos is None:
+            pos = header_pos[key] = len(headers)
+            headers.append(hdr)
+        hidx.append(pos)
+        ents = m.entities
+        meta, used, meta_json = resolver.resolve_full(m.relpath, ents)
+        spos = sidecar_pos.get(meta_json)
+        if spos is None:
+            spos = sidecar_pos[meta_json] = len(sidecars)
+            sidecars.append({"metadata": meta_json, "sidecars": used})
+        sidx.append(spos)
+        sub = ents.get("sub")
+        origin = origins.get(sub)
+        if origin is None:
+            origin = origins[sub] = _origin(ds, sub, unit.by_sub, unit.overrides, meta)
+        lab = origin["lab"]
+        if lab is None and meta.get("InstitutionName") is not None:
+            lab = str(meta["InstitutionName"])
+        dof = _to_float(meta.get("DegreesOfFreedom"))
+        dof_source = "sidecar" if dof is not None else None
+        if dof is None and hdr["intent_code"] == 3 and hdr["intent_p1"] and hdr["intent_p1"] > 0:
+            dof, dof_source = float(hdr["intent_p1"]), "header"  # nifti1.h: t-test intent_p1 = DOF
+        for c in _ENTITY_COLUMNS:
+            cols[c].append(ents.get(c))
+        cols["map_id"].append(map_id_for(ds.key, m.relpath))
+        cols["dataset"].append(ds.key)
+        cols["relpath"].append(m.relpath)
+        cols["suffix"].append(ents.get("suffix"))
+        cols["extension"].append(ents.get("extension"))
+        cols["entities"].append(json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")},
+                                           sort_keys=True))
+        cols["named_by"].append(m.named_by)
+        cols["participant"].append(origin["participant"])
+        cols["study"].append(origin["study"])
+        cols["site"].append(origin["site"])
+        cols["lab"].append(lab)
+        cols["sha256"].append(sha)
+        cols["nbytes"].append(nbytes)
+        cols["mtime_ns"].append(m.mtime_ns)
+        cols["dof"].append(dof)
+        cols["dof_source"].append(dof_source)
     problems.extend(resolver.problems)
-    return _UnitResult(pa.Table.from_pylist(rows, schema=MAPS_SCHEMA), problems, new, changed, unchanged)
+    return _UnitResult(_assemble(cols, headers, hidx, sidecars, sidx), problems, new, changed, unchanged)
+
+
+def _origin(ds: DatasetInfo, sub: str | None, by_sub: dict[str, dict[str, Any]], over: MetadataOverrides,
+            meta: dict[str, Any]) -> dict[str, Any]:
+    """study, site, lab (None: from each map's sidecar) and participant of one subject."""
+    prow = by_sub.get(sub) if sub is not None else None
+    site = None
+    if prow:
+        for k in ("site", "Site", "site_id"):
+            if prow.get(k) is not None:
+                site = str(prow[k])
+                break
+    base = {"study": ds.study, "site": site, "lab": None}
+    origin = over.apply(ds.key, sub, base)
+    origin["participant"] = origin.get("participant") or (
+        f"{origin['study']}/sub-{sub}" if sub is not None else None)
+    return origin
+
+
+def _assemble(cols: dict[str, list[Any]], headers: list[dict[str, Any]], hidx: list[int],
+              sidecars: list[dict[str, Any]], sidx: list[int]) -> pa.Table:
+    fields = {f.name: f for f in MAPS_SCHEMA}
+    arrays: dict[str, pa.Array] = {c: pa.array(v, fields[c].type) for c, v in cols.items()}
+    if hidx:
+        htab = pa.Table.from_pylist(headers, schema=pa.schema([fields[c] for c in _STATIC_HEADER]))
+        stab = pa.Table.from_pylist(sidecars, schema=pa.schema([fields[c] for c in _SIDECAR_COLUMNS]))
+        hi = pa.array(hidx, pa.int32())
+        si = pa.array(sidx, pa.int32())
+        for c in _STATIC_HEADER:
+            arrays[c] = htab[c].take(hi).combine_chunks()
+        for c in _SIDECAR_COLUMNS:
+            arrays[c] = stab[c].take(si).combine_chunks()
+    else:
+        for c in _STATIC_HEADER + _SIDECAR_COLUMNS:
+            arrays[c] = pa.array([], fields[c].type)
+    return pa.Table.from_arrays([arrays[f.name] for f in MAPS_SCHEMA], schema=MAPS_SCHEMA)
 
 
 def _units(ds: DatasetInfo, parser: EntityParser, by_sub: dict[str, dict[str, Any]], rules: NameRules,
@@ -270,7 +370,7 @@ def _units(ds: DatasetInfo, parser: EntityParser, by_sub: dict[str, dict[str, An
         return [_Unit(ds, parser, None, True, by_sub, rules, over,
                       _previous_subset(prev, ds.key, None, True))]
     tops = top_folders(ds)
-    n_parts = min(len(tops), 4 * jobs) or 1
+    n_parts = min(len(tops), jobs) or 1
     parts = [tops[i::n_parts] for i in range(n_parts)]
     return [_Unit(ds, parser, part, i == 0, by_sub, rules, over,
                   _previous_subset(prev, ds.key, part, i == 0))
@@ -439,39 +539,3 @@ def index(
         unchanged=unchanged, removed=removed, problems=len(prob_rows), kept_datasets=len(kept),
         seconds=time.perf_counter() - t0, problem_codes=codes,
     )
-
-
-def _map_row(ds: DatasetInfo, m: MapFile, resolver: SidecarResolver, by_sub: dict[str, dict[str, Any]],
-             over: MetadataOverrides, hdr: dict[str, Any]) -> dict[str, Any]:
-    ents = m.entities
-    meta, used, meta_json = resolver.resolve_full(m.relpath, ents)
-    sub = ents.get("sub")
-    prow = by_sub.get(sub) if sub is not None else None
-    site = None
-    if prow:
-        for k in ("site", "Site", "site_id"):
-            if prow.get(k) is not None:
-                site = str(prow[k])
-                break
-    lab = meta.get("InstitutionName")
-    origin = over.apply(ds.key, sub, {"study": ds.study, "site": site,
-                                      "lab": str(lab) if lab is not None else None})
-    dof = _to_float(meta.get("DegreesOfFreedom"))
-    dof_source = "sidecar" if dof is not None else None
-    if dof is None and hdr["intent_code"] == 3 and hdr["intent_p1"] and hdr["intent_p1"] > 0:
-        dof, dof_source = float(hdr["intent_p1"]), "header"  # nifti1.h: t-test intent_p1 = DOF
-    row = {c: ents.get(c) for c in _ENTITY_COLUMNS}
-    row.update({
-        "map_id": map_id_for(ds.key, m.relpath), "dataset": ds.key, "relpath": m.relpath,
-        "suffix": ents.get("suffix"), "extension": ents.get("extension"),
-        "entities": json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")},
-                               sort_keys=True),
-        "named_by": m.named_by,
-        "participant": origin.get("participant") or (f"{origin['study']}/sub-{sub}" if sub is not None else None),
-        "study": origin["study"], "site": origin["site"], "lab": origin["lab"],
-        "dof": dof, "dof_source": dof_source,
-        "metadata": meta_json,
-        "sidecars": used,
-    })
-    row.update(hdr)
-    return row

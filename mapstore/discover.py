@@ -119,6 +119,9 @@ class EntityParser:
         self.long_to_short = {ln: k for ln, k, _ in self.patterns}
         self._fast = [(None if key in ("suffix", "extension", "datatype") else f"{key}-", key, rx)
                       for _, key, rx in self.patterns]
+        # split() with two groups gives [text, key, value, text, key, value, ..., text]
+        self._varying = re.compile(r"(?<=[_/\\])(contrast|stat)-([a-zA-Z0-9+]+)")
+        self._cache: dict[str, dict[str, str]] = {}
 
     @staticmethod
     def _config_patterns() -> list[tuple[str, str]]:
@@ -140,7 +143,28 @@ class EntityParser:
         return out
 
     def parse(self, relpath: str) -> dict[str, str]:
-        """Entities of a path relative to its dataset root (posix separators)."""
+        """Entities of a path relative to its dataset root (posix separators).
+
+        Files of one folder usually differ only in their contrast and stat labels, so the
+        other entities are parsed once per "name with those two labels blanked" and cached.
+        """
+        parts = self._varying.split("/" + relpath)
+        if len(parts) == 1:
+            return self._parse(relpath)
+        key = "".join(parts[0::3]) + "|" + "".join(parts[1::3])
+        base = self._cache.get(key)
+        if base is None:
+            base = self._parse(relpath)
+            for k in ("contrast", "stat"):
+                base.pop(k, None)
+            if len(self._cache) < 100_000:
+                self._cache[key] = base
+        out = dict(base)
+        for k, v in zip(parts[1::3], parts[2::3]):
+            out.setdefault(k, v)  # first occurrence wins, as in a regex search
+        return out
+
+    def _parse(self, relpath: str) -> dict[str, str]:
         probe = "/" + relpath
         out: dict[str, str] = {}
         for token, key, rx in self._fast:
