@@ -8,7 +8,7 @@ Generates a tree of small valid statistic maps (10 studies), then measures in on
 
 Prints maps/s, ratios and peak memory.  Usage::
 
-    python benchmarks/bench_index.py [--maps 10000] [--workdir DIR]
+    python tests/benchmarks/bench_index.py [--maps 10000] [--workdir DIR]
 """
 
 from __future__ import annotations

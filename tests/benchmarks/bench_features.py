@@ -15,7 +15,7 @@ RSS of a build at two sizes (flat in N?).
 
 Usage::
 
-    python benchmarks/bench_features.py [--maps 180] [--rows 1000] [--rss 500,2000] [--workdir DIR]
+    python tests/benchmarks/bench_features.py [--maps 180] [--rows 1000] [--rss 500,2000] [--workdir DIR]
 """
 
 from __future__ import annotations
@@ -36,7 +36,7 @@ import nibabel as nib
 import numpy as np
 
 HERE = Path(__file__).resolve().parent
-sys.path.insert(0, str(HERE.parent))
+sys.path.insert(0, str(HERE.parent.parent))
 
 from mapstore.demo import GRIDS, _axes, _blob, _smooth_noise  # noqa: E402
 
@@ -115,7 +115,7 @@ def run_child(code: str) -> tuple[str, int]:
         "print('RSS', resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss)\n"
         "sys.exit(r.returncode)\n")
     proc = subprocess.run([sys.executable, "-c", launcher, code], capture_output=True, text=True,
-                          cwd=str(HERE.parent))
+                          cwd=str(HERE.parent.parent))
     if proc.returncode:
         raise RuntimeError(proc.stderr)
     lines = proc.stdout.strip().splitlines()
@@ -210,6 +210,21 @@ def time_x(store: Path, n_rows: int, b_per_map: float | None) -> None:
     print(f"\nX for a {n_rows}-row random selection: {X.shape} float32, {X.nbytes / 1e6:,.0f} MB")
     print(f"store.features().matrix(ids):        {t_x:8.2f} s")
     print(f"np.load of the same bytes:           {t_np:8.2f} s   ratio {t_x / t_np:.2f}x (target <= 1.5x)")
+    # export of the same selection (X.npy + y, groups, meta, manifest) against np.save of X
+    where = "map_id IN (" + ",".join(repr(str(m)) for m in ids) + ")"
+    sel = st.select(where, group_by="subject")
+    out = store.parent / "bench-export"
+    t0 = time.perf_counter()
+    rep = st.export(out, sel, scheme="group-kfold:2", overwrite=True)
+    t_exp = time.perf_counter() - t0
+    X = sel.X
+    t0 = time.perf_counter()
+    np.save(store.parent / "same-array.npy", X)
+    t_save = time.perf_counter() - t0
+    (store.parent / "same-array.npy").unlink()
+    print(f"export of {rep.n_maps} maps ({rep.n_maps * rep.n_voxels * 4 / 1e6:,.0f} MB X): {t_exp:8.2f} s")
+    print(f"np.save of the same array:           {t_save:8.2f} s   ratio {t_exp / t_save:.2f}x (target <= 1.5x)")
+    shutil.rmtree(out, ignore_errors=True)
     if b_per_map:
         tb = b_per_map * n_rows
         print(f"(b) hand loop for {n_rows} maps (from its per-map time): {tb:8.1f} s   "
