@@ -192,7 +192,7 @@ def verify_cmd(manifest) -> None:
     report = mapstore.verify(manifest)
     click.echo(report.summary())
     if not report.ok:
-        raise SystemExit(1)
+        raise click.exceptions.Exit(1)
 
 
 @cli.command("demo")
@@ -274,7 +274,7 @@ def _demo_decoder(export_dir: Path):
 def main(argv: list[str] | None = None) -> int:
     """Entry point: run the CLI and turn mapstore errors into messages and exit codes."""
     try:
-        cli.main(args=argv, prog_name="mapstore", standalone_mode=False)
+        rv = cli.main(args=argv, prog_name="mapstore", standalone_mode=False)
     except click.exceptions.Abort:
         click.echo("aborted", err=True)
         return 1
@@ -287,7 +287,7 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         click.echo("interrupted", err=True)
         return 130
-    return 0
+    return rv if isinstance(rv, int) else 0
 
 
 if __name__ == "__main__":  # pragma: no cover

@@ -39,3 +39,33 @@ def test_index_command(demo_tree, tmp_path):
                                  "--rules", str(demo_tree / "name-rules.json"), "--jobs", "1"])
     assert r.exit_code == 0, r.output
     assert "maps:" in r.output and "problems:" in r.output
+
+
+def test_features_labels_export_verify_commands(demo_store, demo_tree, tmp_path):
+    import shutil
+
+    store = tmp_path / "store"
+    shutil.copytree(demo_store, store)
+    runner = CliRunner()
+    r = runner.invoke(cli, ["features", "--store", str(store), "--grid", "MNI152-3mm", "--name", "three",
+                            "--jobs", "1"])
+    assert r.exit_code == 0, r.output
+    assert "feature set 'three'" in r.output and "resampling paths" in r.output
+    r = runner.invoke(cli, ["features", "--store", str(store), "--list"])
+    assert "three" in r.output and "MNI152-3mm" in r.output
+    r = runner.invoke(cli, ["labels", "--store", str(store), "--vocab", str(demo_tree / "concepts.json")])
+    assert r.exit_code == 0 and "maps labelled" in r.output
+    out = tmp_path / "exp"
+    assert main(["export", "--store", str(store), "--features", "three", "--out", str(out), "--concept",
+                 "reading", "--concept", "arithmetic", "--scheme", "group-kfold:2"]) == 0
+    assert main(["verify", str(out / "manifest.json")]) == 0
+    (out / "y.npy").write_bytes(b"changed")
+    assert main(["verify", str(out)]) == 1
+
+
+def test_bad_vocabulary_message_from_cli(demo_store, tmp_path, capsys):
+    vocab = tmp_path / "v.yaml"
+    vocab.write_text("concepts:\n  a: {}\nrules:\n  - task: x\n    concepts: [b]\n")
+    assert main(["labels", "--store", str(demo_store), "--vocab", str(vocab)]) == 1
+    err = capsys.readouterr().err
+    assert "rules[0].concepts[0] (line 5): unknown concept 'b'" in err and "Traceback" not in err
