@@ -8,7 +8,7 @@ from pathlib import Path
 import pyarrow as pa
 
 from .errors import FeatureError
-from .export import ExportReport, VerifyReport, export_selection, verify
+from .export import ExportReport, export_selection
 from .features import FeatureSet
 from .labels import refresh_labels
 from .query import Selection, select

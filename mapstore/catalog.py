@@ -23,7 +23,6 @@ import pyarrow as pa
 from .discover import (
     DatasetInfo,
     EntityParser,
-    MapFile,
     MetadataOverrides,
     NameRules,
     Problem,
@@ -33,6 +32,7 @@ from .discover import (
     top_folders,
     walk_dataset,
 )
+from .params import resolve_jobs
 from .errors import HeaderError, ParameterError
 from .hashing import digest_file
 from .header import NIFTI1_SIZE, NIFTI2_SIZE, HeaderFacts, header_prefix, parse_header
@@ -178,14 +178,6 @@ def _participants_table(rows: list[dict[str, Any]]) -> pa.Table:
         else:
             cols[k] = pa.array(vals, pa.string())
     return pa.table(cols)
-
-
-def _resolve_jobs(jobs: int | None) -> int:
-    if jobs is None:
-        return os.cpu_count() or 1
-    if not isinstance(jobs, int) or jobs < 1:
-        raise ParameterError(f"jobs must be a positive integer, got {jobs!r}")
-    return jobs
 
 
 def _under(path: str, roots: list[Path]) -> bool:
@@ -414,7 +406,7 @@ def index(
     roots = [Path(r).expanduser().absolute() for r in roots]
     if not roots:
         raise ParameterError("index needs at least one ROOT folder")
-    jobs = _resolve_jobs(jobs)
+    jobs = resolve_jobs(jobs)
     name_rules = NameRules.load(rules)
     meta_over = MetadataOverrides.load(overrides)
     store_path = Path(store).expanduser().absolute()

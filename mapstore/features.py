@@ -32,6 +32,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from . import __version__
+from .params import positive_int, resolve_jobs
 from .errors import FeatureError, MapstoreError, ParameterError, QueryError
 from .grid import (
     METHODS,
@@ -216,14 +217,6 @@ def _problem(it: _Item, exc: Exception) -> dict[str, Any]:
     return {"map_id": it.map_id, "path": it.path, "code": code, "reason": str(exc), "remedy": remedy}
 
 
-def _resolve_jobs(jobs: int | None) -> int:
-    if jobs is None:
-        return os.cpu_count() or 1
-    if not isinstance(jobs, int) or jobs < 1:
-        raise ParameterError(f"jobs must be a positive integer, got {jobs!r}")
-    return jobs
-
-
 def _execute(batches: list[_Batch], jobs: int, scheduler: Any, progress: bool, desc: str):
     """Run batches on a local process pool, in process, or on a Dask cluster; yield results."""
     bar = None
@@ -371,9 +364,9 @@ def build_features(
         raise ParameterError(f"stat must be 'native' or 'z', got {stat!r}")
     if p_sided not in ("one", "two"):
         raise ParameterError(f"p_sided must be 'one' or 'two', got {p_sided!r}")
-    if batch_size is not None and (not isinstance(batch_size, int) or batch_size < 1):
-        raise ParameterError(f"batch_size must be a positive integer, got {batch_size!r}")
-    jobs = _resolve_jobs(jobs)
+    if batch_size is not None:
+        positive_int("batch_size", batch_size)
+    jobs = resolve_jobs(jobs)
     if progress is None:
         progress = sys.stderr.isatty()
     target = _resolve_grid(grid)

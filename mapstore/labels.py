@@ -159,7 +159,7 @@ def load_vocabulary(path: str | os.PathLike[str]) -> Vocabulary:
         fail((), "expected an object with 'concepts' and 'rules'")
     unknown = set(doc) - {"vocabulary", "version", "description", "inherit_broader", "concepts", "rules"}
     if unknown:
-        fail((sorted(unknown)[0],), f"unknown key; allowed: vocabulary, version, description, "
+        fail((sorted(unknown)[0],), "unknown key; allowed: vocabulary, version, description, "
                                     "inherit_broader, concepts, rules")
     concepts = doc.get("concepts")
     if not isinstance(concepts, dict) or not concepts:
@@ -231,7 +231,7 @@ def load_vocabulary(path: str | os.PathLike[str]) -> Vocabulary:
             vals = rule[k] if isinstance(rule[k], list) else [rule[k]]
             pats = []
             for j, v in enumerate(vals):
-                pats.append(_pattern(v, lambda msg, k=k, j=j: fail(where + (k,), msg)))
+                pats.append(_pattern(v, lambda msg, k=k, w=where: fail(w + (k,), msg)))
             match[k] = pats
         compiled.append({"match": match, "concepts": list(cs), "index": i})
     inherit = doc.get("inherit_broader", False)

@@ -6,7 +6,6 @@ import json
 import os
 import shutil
 import subprocess
-import time
 
 import duckdb
 import nibabel as nib
@@ -17,7 +16,6 @@ import pytest
 import mapstore
 from mapstore.catalog import map_id_for
 from mapstore.errors import ParameterError, QueryError, StoreBusy, StoreNotFound
-from mapstore.store import write_lock
 
 from .conftest import NIBABEL_DATA, make_derivative, write_json, write_map
 

@@ -7,7 +7,6 @@ import shutil
 
 import nibabel as nib
 import numpy as np
-import pyarrow.parquet as pq
 import pytest
 
 import mapstore
@@ -125,7 +124,7 @@ def test_changed_source_gets_a_new_row(tmp_path):
     r1 = mapstore.build_features(store, grid="MNI152-3mm", jobs=1, progress=False)
     fs1 = mapstore.open(store).features(r1.name)
     f = ds / "sub-01" / "sub-01_task-go_contrast-a_stat-t_statmap.nii.gz"
-    mid = mapstore.open(store).sql(f"SELECT map_id FROM maps WHERE relpath LIKE '%sub-01_task%'")["map_id"][0].as_py()
+    mid = mapstore.open(store).sql("SELECT map_id FROM maps WHERE relpath LIKE '%sub-01_task%'")["map_id"][0].as_py()
     old_key = fs1.rows.to_pandas().set_index("map_id").loc[mid, "feature_key"]
     aff = nib.load(f).affine
     write_map(f, np.full((41, 48, 40), 7.0, np.float32), aff)

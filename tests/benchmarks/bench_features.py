@@ -21,9 +21,7 @@ Usage::
 from __future__ import annotations
 
 import argparse
-import gzip
 import json
-import os
 import resource
 import shutil
 import subprocess
@@ -37,6 +35,9 @@ import numpy as np
 
 HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent.parent))
+
+sys.path.insert(0, str(HERE))
+from _common import floor, pybids_stat_config  # noqa: E402
 
 from mapstore.demo import GRIDS, _axes, _blob, _smooth_noise  # noqa: E402
 
@@ -71,30 +72,18 @@ def make_tree(root: Path, n_maps: int, grids: list[str], gz: bool = True) -> lis
     return files
 
 
-def floor(files: list[Path]) -> float:
-    t0 = time.perf_counter()
-    for f in files:
-        data = f.read_bytes()
-        if data[:2] == b"\x1f\x8b":
-            gzip.decompress(data)
-    return time.perf_counter() - t0
-
-
 def hand_loop(root: Path) -> tuple[float, int]:
     from bids import BIDSLayout
     from nilearn.datasets import load_mni152_brain_mask
     from nilearn.maskers import NiftiMasker
 
-    cfg = root.parent / "statmaps-config.json"
-    cfg.write_text(json.dumps({"name": "statmaps", "entities": [
-        {"name": "contrast", "pattern": r"[_/\\]+contrast-([a-zA-Z0-9+]+)"},
-        {"name": "stat", "pattern": r"[_/\\]+stat-([a-zA-Z0-9+]+)"}]}))
+    cfg = pybids_stat_config(root.parent)
     t0 = time.perf_counter()
     masker = NiftiMasker(mask_img=load_mni152_brain_mask(resolution=2)).fit()
     rows = 0
     for ds in sorted(p for p in root.iterdir() if p.is_dir()):
         layout = BIDSLayout(str(ds), validate=False, is_derivative=True,
-                            config=["bids", "derivatives", str(cfg)])
+                            config=["bids", "derivatives", cfg])
         for f in layout.get(suffix="statmap", extension=[".nii", ".nii.gz"], return_type="filename"):
             out = masker.transform(f)
             rows += 1 if out.ndim == 1 else out.shape[0]

@@ -16,17 +16,18 @@ from __future__ import annotations
 import argparse
 import gzip
 import json
-import os
 import resource
 import subprocess
 import sys
 import tempfile
 import time
-import zlib
 from pathlib import Path
 
 import nibabel as nib
 import numpy as np
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from _common import floor, pybids_stat_config  # noqa: E402
 
 
 def make_tree(root: Path, n_maps: int, n_studies: int = 10) -> list[Path]:
@@ -55,22 +56,10 @@ def make_tree(root: Path, n_maps: int, n_studies: int = 10) -> list[Path]:
     return files
 
 
-def floor(files: list[Path]) -> float:
-    t0 = time.perf_counter()
-    for f in files:
-        with open(f, "rb") as fh:
-            zlib.decompress(fh.read(), 16 + zlib.MAX_WBITS)
-    return time.perf_counter() - t0
-
-
 def baseline(root: Path) -> tuple[float, int]:
     from bids import BIDSLayout
 
-    cfg_file = root.parent / "statmaps-config.json"
-    cfg_file.write_text(json.dumps({"name": "statmaps", "entities": [
-        {"name": "contrast", "pattern": r"[_/\\]+contrast-([a-zA-Z0-9+]+)"},
-        {"name": "stat", "pattern": r"[_/\\]+stat-([a-zA-Z0-9+]+)"}]}))
-    stat_cfg = str(cfg_file)
+    stat_cfg = pybids_stat_config(root.parent)
     t0 = time.perf_counter()
     n = 0
     for ds in sorted(root.iterdir()):
