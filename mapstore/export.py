@@ -36,7 +36,8 @@ from .query import Selection, parse_scheme
 __all__ = ["ExportReport", "VerifyReport", "export_selection", "verify", "json_schemas"]
 
 MANIFEST_FORMAT = "mapstore-export"
-BLOCK_ROWS = 256
+BLOCK_ROWS = 64
+DATA_FILES = ("X.npy", "table.parquet")
 
 
 @dataclass
@@ -99,7 +100,6 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         fs = sel.feature_set
         ids = sel.map_ids
         n, nv = len(ids), fs.n_voxels
-        row_hashes: list[str] = []
         meta = sel.meta.copy()
         meta["row"] = np.arange(n)
         meta["group"] = sel.groups
@@ -110,14 +110,17 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
                                  "run", "task", "contrast", "stat", "space", "concepts", "group", "fold", "split",
                                  "coverage", "sha256", "feature_key", "conversion", "relpath") if c in meta.columns]
         meta_t = pa.Table.from_pandas(meta[keep_cols], preserve_index=False)
+        row_hashes = fs.row_hashes(ids)
+        buf = np.empty((min(BLOCK_ROWS, max(n, 1)), nv), dtype=np.float32)  # one reused block buffer
         if fmt == "npy":
-            X = np.lib.format.open_memmap(tmp / "X.npy", mode="w+", dtype=np.float32, shape=(n, nv))
-            for i in range(0, n, BLOCK_ROWS):
-                block = fs.matrix(ids[i:i + BLOCK_ROWS])
-                X[i:i + len(block)] = block
-                row_hashes += [_row_hash(r) for r in block]
-            X.flush()
-            del X
+            # written as a plain file through a reused buffer: no fresh pages for all of X
+            with open(tmp / "X.npy", "wb") as fh:
+                np.lib.format.write_array_header_1_0(
+                    fh, {"descr": np.lib.format.dtype_to_descr(np.dtype(np.float32)), "fortran_order": False,
+                         "shape": (n, nv)})
+                for i in range(0, n, BLOCK_ROWS):
+                    block = fs.read_into(ids[i:i + BLOCK_ROWS], buf)
+                    fh.write(memoryview(block).cast("B"))
             if sel.y is not None:
                 np.save(tmp / "y.npy", np.asarray(sel.y, dtype=str))
             if sel.Y is not None:
@@ -128,8 +131,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
             writer = None
             try:
                 for i in range(0, n, BLOCK_ROWS):
-                    block = fs.matrix(ids[i:i + BLOCK_ROWS])
-                    row_hashes += [_row_hash(r) for r in block]
+                    block = fs.read_into(ids[i:i + BLOCK_ROWS], buf)
                     part = meta_t.slice(i, len(block))
                     if sel.y is not None:
                         part = part.append_column("y", pa.array(np.asarray(sel.y[i:i + len(block)], dtype=str)))
@@ -144,7 +146,9 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         if sel.concepts:
             (tmp / "concepts.json").write_text(json.dumps(sel.concepts))
         manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, row_hashes, fmt)
-        manifest["files"] = {p.name: _sha256_file(p) for p in sorted(tmp.iterdir())}
+        # the data files are checked row by row against row_sha256 instead of hashed whole
+        manifest["files"] = {p.name: _sha256_file(p) for p in sorted(tmp.iterdir())
+                             if p.name not in DATA_FILES}
         (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1, sort_keys=True, default=str))
         if out.exists():
             old = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.old"
@@ -279,13 +283,41 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
             n_rows += 1
             if _row_hash(row) != s["row_sha256"]:
                 changes.append(f"store row changed: {s['map_id']} ({s['relpath']})")
-    xfile = folder / "X.npy"
-    if man.get("layout") == "npy" and xfile.exists():
-        X = np.load(xfile, mmap_mode="r")
-        for i, s in enumerate(man["sources"]):
-            if _row_hash(X[i]) != s["row_sha256"]:
-                changes.append(f"exported row changed: X.npy row {i} ({s['map_id']})")
+    changes += _check_data_file(folder, man)
     return VerifyReport(str(mpath), len(man["sources"]), n_rows, changes)
+
+
+def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
+    """Compare every exported row with the row hash recorded for it."""
+    out: list[str] = []
+    sources = man["sources"]
+    if man.get("layout") == "parquet":
+        f = folder / "table.parquet"
+        if not f.exists():
+            return ["export file missing: table.parquet"]
+        i = 0
+        for batch in pq.ParquetFile(f).iter_batches(batch_size=BLOCK_ROWS, columns=["x"]):
+            values = batch.column(0).flatten().to_numpy(zero_copy_only=False).reshape(batch.num_rows, -1)
+            for row in values:
+                if i >= len(sources) or _row_hash(row) != sources[i]["row_sha256"]:
+                    out.append(f"exported row changed: table.parquet row {i}")
+                i += 1
+        if i != len(sources):
+            out.append(f"table.parquet has {i} rows, the manifest {len(sources)}")
+        return out
+    f = folder / "X.npy"
+    if not f.exists():
+        return ["export file missing: X.npy"]
+    try:
+        X = np.load(f, mmap_mode="r")
+    except (OSError, ValueError) as exc:
+        return [f"export file unreadable: X.npy ({exc})"]
+    if X.shape != tuple(man["shape"]) or X.dtype != np.float32:
+        return [f"export file changed: X.npy has shape {X.shape} {X.dtype}, the manifest {man['shape']} float32"]
+    for i, s in enumerate(sources):
+        if _row_hash(X[i]) != s["row_sha256"]:
+            out.append(f"exported row changed: X.npy row {i} ({s['map_id']})")
+    return out
 
 
 def json_schemas() -> dict[str, dict[str, Any]]:

@@ -203,7 +203,8 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
         rows.append({"map_id": it.map_id, "feature_key": it.key, "sha256": it.sha256, "shard": b.shard,
                      "row": i, "coverage": float(finite.mean()), "stat_in": it.stat,
                      "stat_out": it.stat if b.stat == "native" else b.stat, "conversion": conversion,
-                     "resample_path": path, "built_at": now})
+                     "resample_path": path, "built_at": now,
+                     "row_sha256": hashlib.sha256(vec.tobytes()).hexdigest()})
     arr.flush()
     del arr
     os.replace(tmp, shard_path)
@@ -582,15 +583,35 @@ class FeatureSet:
             raise FeatureError(f"{len(missing)} map(s) have no row in feature set {self.name!r} (first: "
                                f"{missing[0]}); build it with 'mapstore features --name {self.name}' or "
                                "select maps that have rows")
+        return self._fill(map_ids, np.empty((len(map_ids), self.n_voxels), dtype=np.float32))
+
+    def _fill(self, map_ids: list[str], out: np.ndarray) -> np.ndarray:
+        missing = [m for m in map_ids if m not in self._pos]
+        if missing:
+            raise FeatureError(f"{len(missing)} map(s) have no row in feature set {self.name!r} (first: "
+                               f"{missing[0]}); build it with 'mapstore features --name {self.name}'")
         pos = np.array([self._pos[m] for m in map_ids], dtype=np.int64)
         shard_col = self.rows["shard"].to_numpy(zero_copy_only=False)[pos] if len(pos) else np.array([])
         row_col = self.rows["row"].to_numpy()[pos] if len(pos) else np.array([], dtype=np.int64)
-        out = np.empty((len(map_ids), self.n_voxels), dtype=np.float32)
         for shard in dict.fromkeys(shard_col):
             sel = np.flatnonzero(shard_col == shard)
             order = np.argsort(row_col[sel], kind="stable")
             self._read_rows(shard, row_col[sel][order], out, sel[order])
         return out
+
+    def read_into(self, map_ids, out: np.ndarray) -> np.ndarray:
+        """Read the rows of ``map_ids`` into ``out[:len(map_ids)]`` (a reusable float32 buffer)."""
+        map_ids = list(map_ids)
+        if out.dtype != np.float32 or out.ndim != 2 or out.shape[1] != self.n_voxels or len(out) < len(map_ids):
+            raise FeatureError(f"buffer must be float32 of shape (>= {len(map_ids)}, {self.n_voxels})")
+        return self._fill(map_ids, out[: len(map_ids)])
+
+    def row_hashes(self, map_ids) -> list[str]:
+        """SHA-256 of each row's float32 bytes, recorded when the row was built."""
+        if "row_sha256" not in self.rows.column_names:  # rows built before hashes were recorded
+            return [hashlib.sha256(r.tobytes()).hexdigest() for r in self.matrix(map_ids)]
+        col = self.rows["row_sha256"].to_pylist()
+        return [col[self._pos[m]] for m in map_ids]
 
     def coverage(self, map_ids=None) -> np.ndarray:
         """Fraction of mask voxels with a finite value, per map."""

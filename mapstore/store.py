@@ -76,7 +76,7 @@ ROWS_SCHEMA = pa.schema([
     ("map_id", _s), ("feature_key", _s), ("sha256", _s),
     ("shard", _s), ("row", _i64), ("coverage", _f64),
     ("stat_in", _s), ("stat_out", _s), ("conversion", _s),
-    ("resample_path", _s), ("built_at", _s),
+    ("resample_path", _s), ("built_at", _s), ("row_sha256", _s),
 ])
 FPROBLEMS_SCHEMA = pa.schema([
     ("map_id", _s), ("path", _s), ("code", _s), ("reason", _s),
