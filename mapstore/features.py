@@ -427,7 +427,7 @@ def build_features(
                 raise FeatureError(f"feature set {name!r} exists with other settings (grid "
                                    f"{old_spec['grid']['name']}, mask {old_spec['mask']['name']}, method "
                                    f"{old_spec['method']}, stat {old_spec['stat']}); choose another name")
-            old_rows = pq.read_table(store_path / existing["rows"])
+            old_rows = _conform(pq.read_table(store_path / existing["rows"]), ROWS_SCHEMA)
         (set_dir / "shards").mkdir(parents=True, exist_ok=True)
         if not existing or not (set_dir / "mask.npy").exists():
             tmp = set_dir / f".mask.{uuid.uuid4().hex}.npy"
@@ -476,6 +476,13 @@ def build_features(
     return FeatureReport(name=name, n_voxels=mk.n_voxels, grid=target.name, mask=mk.name,
                          built=len(new_rows), skipped=kept.num_rows, dropped=dropped, failed=len(problems),
                          seconds=time.perf_counter() - t0, paths=paths, problems=problems)
+
+
+def _conform(table: pa.Table, schema: pa.Schema) -> pa.Table:
+    """A table with exactly ``schema``'s columns (columns added since it was written are null)."""
+    cols = [table[f.name] if f.name in table.column_names else pa.nulls(table.num_rows, f.type)
+            for f in schema]
+    return pa.Table.from_arrays(cols, schema=schema)
 
 
 def _collect_feature_garbage(store: Path, set_dir: Path, current: str, previous: str | None) -> None:
@@ -608,10 +615,14 @@ class FeatureSet:
 
     def row_hashes(self, map_ids) -> list[str]:
         """SHA-256 of each row's float32 bytes, recorded when the row was built."""
-        if "row_sha256" not in self.rows.column_names:  # rows built before hashes were recorded
-            return [hashlib.sha256(r.tobytes()).hexdigest() for r in self.matrix(map_ids)]
-        col = self.rows["row_sha256"].to_pylist()
-        return [col[self._pos[m]] for m in map_ids]
+        map_ids = list(map_ids)
+        col = self.rows["row_sha256"].to_pylist() if "row_sha256" in self.rows.column_names else \
+            [None] * self.rows.num_rows
+        out = [col[self._pos[m]] for m in map_ids]
+        todo = [i for i, h in enumerate(out) if h is None]  # rows built before hashes were recorded
+        for i, row in zip(todo, self.matrix([map_ids[i] for i in todo])):
+            out[i] = hashlib.sha256(row.tobytes()).hexdigest()
+        return out
 
     def coverage(self, map_ids=None) -> np.ndarray:
         """Fraction of mask voxels with a finite value, per map."""
