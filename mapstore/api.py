@@ -7,6 +7,7 @@ from pathlib import Path
 
 import pyarrow as pa
 
+from .check import CheckReport, check_store
 from .errors import FeatureError
 from .export import ExportReport, export_selection
 from .features import FeatureSet
@@ -110,6 +111,11 @@ class Store:
         sel = selection if selection is not None else self.select(**select_options)
         return export_selection(sel, out, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt,
                                 overwrite=overwrite)
+
+    def check(self, features: str | None = None, *, min_coverage: float = 0.8,
+              pictures: bool = True) -> CheckReport:
+        """Grid, space, coverage, stat-type and metadata consistency findings (see mapstore.check)."""
+        return check_store(self, features, min_coverage=min_coverage, pictures=pictures)
 
     def to_image(self, vector, name: str | None = None):
         """A NIfTI image (nibabel) of a feature vector or decoder coefficients on a set's grid."""

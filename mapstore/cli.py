@@ -195,6 +195,33 @@ def verify_cmd(manifest) -> None:
         raise click.exceptions.Exit(1)
 
 
+@cli.command("check")
+@STORE_OPTION
+@click.option("--features", "feature_set", help="Feature set for coverage and value checks (default set).")
+@click.option("--min-coverage", type=click.FloatRange(0, 1), default=0.8, show_default=True,
+              help="Report maps covering less of the mask.")
+@click.option("--html", "html_out", type=click.Path(dir_okay=False), help="Write an HTML report with pictures.")
+@click.option("--format", "fmt", type=click.Choice(["summary", "table", "json"]), default="summary",
+              show_default=True)
+@click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error", show_default=True,
+              help="Exit 1 when a finding is at this level or worse.")
+def check_cmd(store, feature_set, min_coverage, html_out, fmt, fail_on) -> None:
+    """Check grids, space, mask coverage, stat types and metadata of a store."""
+    from .check import report_json
+
+    report = mapstore.open(store).check(feature_set, min_coverage=min_coverage, pictures=bool(html_out))
+    if fmt == "json":
+        click.echo(report_json(report))
+    elif fmt == "table":
+        click.echo(render_table(report.to_table()))
+    else:
+        click.echo(report.summary())
+    if html_out:
+        click.echo(f"wrote {report.write_html(html_out)}", err=True)
+    if fail_on != "never" and report.fails(fail_on):
+        raise click.exceptions.Exit(1)
+
+
 @cli.command("demo")
 @click.argument("folder", type=click.Path(file_okay=False))
 @click.option("--scale", type=click.FloatRange(0.1, 1.0), default=1.0, show_default=True,
@@ -239,6 +266,11 @@ def demo_cmd(folder, scale) -> None:
     click.echo(st.export(out, sel, scheme="leave-one-group-out", overwrite=True).summary())
     click.echo("\ncross-study decoding (scikit-learn LogisticRegression, trained on the other studies):")
     click.echo(render_table(_demo_decoder(out)))
+    click.echo("\nchecking the store (grids, space, coverage, stat types, metadata) ...")
+    report = st.check()
+    html_path = report.write_html(base / "check-report.html")
+    click.echo(report.summary())
+    click.echo(f"report with pictures: {html_path}")
     click.echo(f"\ntry: mapstore sql --store {store} \"SELECT concept, count(*) FROM labels GROUP BY ALL\"")
     click.echo(f"     mapstore verify {out}")
 

@@ -200,11 +200,15 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
             continue
         arr[i] = vec
         finite = np.isfinite(vec)
+        vals = vec[finite]
         rows.append({"map_id": it.map_id, "feature_key": it.key, "sha256": it.sha256, "shard": b.shard,
                      "row": i, "coverage": float(finite.mean()), "stat_in": it.stat,
                      "stat_out": it.stat if b.stat == "native" else b.stat, "conversion": conversion,
                      "resample_path": path, "built_at": now,
-                     "row_sha256": hashlib.sha256(vec.tobytes()).hexdigest()})
+                     "row_sha256": hashlib.sha256(vec.tobytes()).hexdigest(),
+                     "vmin": float(vals.min()) if vals.size else None,
+                     "vmax": float(vals.max()) if vals.size else None,
+                     "vmean": float(vals.mean(dtype=np.float64)) if vals.size else None})
     arr.flush()
     del arr
     os.replace(tmp, shard_path)

@@ -77,6 +77,7 @@ ROWS_SCHEMA = pa.schema([
     ("shard", _s), ("row", _i64), ("coverage", _f64),
     ("stat_in", _s), ("stat_out", _s), ("conversion", _s),
     ("resample_path", _s), ("built_at", _s), ("row_sha256", _s),
+    ("vmin", _f64), ("vmax", _f64), ("vmean", _f64),
 ])
 FPROBLEMS_SCHEMA = pa.schema([
     ("map_id", _s), ("path", _s), ("code", _s), ("reason", _s),

@@ -1,0 +1,410 @@
+"""Consistency checks over an opened store: grids, space, coverage, stat types, metadata.
+
+Each check returns findings (level, code, subject, message, remedy), in the manner of
+a battery of header checks: the caller decides at which level to fail.  A report can
+also be written as one HTML page with pictures (coverage across the maps, per study).
+"""
+
+from __future__ import annotations
+
+import base64
+import html
+import json
+import struct
+import zlib
+from collections import Counter, defaultdict
+from dataclasses import dataclass, field
+from pathlib import Path
+
+import numpy as np
+import pyarrow as pa
+
+__all__ = ["Finding", "CheckReport", "check_store", "png_bytes", "report_json", "LEVELS"]
+
+LEVELS = ("info", "warning", "error")
+KNOWN_STATS = {"t", "z", "p", "F", "chi2", "effect", "variance", "std", "r", "logp"}
+# nifti1.h intent codes that name a statistic, and the stat labels they agree with
+INTENT_STATS = {3: {"t"}, 4: {"F"}, 5: {"z"}, 6: {"chi2"}, 22: {"p"}, 23: {"logp"}, 24: {"logp"},
+                2: {"r"}}
+
+
+@dataclass(frozen=True)
+class Finding:
+    level: str
+    check: str
+    code: str
+    subject: str
+    message: str
+    remedy: str = ""
+
+
+@dataclass
+class CheckReport:
+    """Findings of :func:`check_store`, plus summary tables and pictures for the HTML page."""
+
+    store: str
+    feature_set: str | None
+    findings: list[Finding] = field(default_factory=list)
+    tables: dict[str, pa.Table] = field(default_factory=dict)
+    pictures: dict[str, bytes] = field(default_factory=dict)
+
+    def count(self, level: str) -> int:
+        return sum(1 for f in self.findings if f.level == level)
+
+    def worst(self) -> str | None:
+        present = {f.level for f in self.findings}
+        for level in reversed(LEVELS):
+            if level in present:
+                return level
+        return None
+
+    def fails(self, level: str) -> bool:
+        """True if any finding is at ``level`` or worse."""
+        return any(LEVELS.index(f.level) >= LEVELS.index(level) for f in self.findings)
+
+    def to_table(self) -> pa.Table:
+        rows = [f.__dict__ for f in sorted(self.findings, key=lambda f: (-LEVELS.index(f.level), f.check,
+                                                                          f.code, f.subject))]
+        return pa.Table.from_pylist(rows, schema=pa.schema([(k, pa.string()) for k in
+                                                           ("level", "check", "code", "subject", "message",
+                                                            "remedy")]))
+
+    def summary(self) -> str:
+        c = Counter(f.level for f in self.findings)
+        by = Counter((f.level, f.check, f.code) for f in self.findings)
+        lines = [f"checked {self.store}" + (f" (feature set {self.feature_set!r})" if self.feature_set else ""),
+                 f"{c['error']} error(s), {c['warning']} warning(s), {c['info']} note(s)"]
+        for (level, check, code), n in sorted(by.items(), key=lambda kv: (-LEVELS.index(kv[0][0]), kv[0])):
+            example = next(f for f in self.findings if (f.level, f.check, f.code) == (level, check, code))
+            lines.append(f"  {level:7s} {check:9s} {code:26s} x{n:<4d} e.g. {example.message}")
+        return "\n".join(lines)
+
+    def write_html(self, path: str | Path) -> Path:
+        """One self-contained HTML page (pictures embedded)."""
+        path = Path(path)
+        parts = ["<!doctype html><html><head><meta charset='utf-8'><title>mapstore check</title>",
+                 "<style>body{font-family:sans-serif;margin:2em;max-width:80em}table{border-collapse:collapse}"
+                 "td,th{border:1px solid #ccc;padding:2px 6px;font-size:90%;text-align:left}"
+                 ".error{background:#fdd}.warning{background:#ffd}.info{background:#eef}"
+                 "img{image-rendering:pixelated;border:1px solid #999;margin:4px}</style></head><body>",
+                 f"<h1>mapstore check</h1><p>store <code>{html.escape(self.store)}</code>"
+                 + (f", feature set <code>{html.escape(self.feature_set)}</code>" if self.feature_set else "")
+                 + f"</p><p>{self.count('error')} errors, {self.count('warning')} warnings, "
+                 f"{self.count('info')} notes</p>"]
+        for name, png in self.pictures.items():
+            b64 = base64.b64encode(png).decode()
+            parts.append(f"<h2>{html.escape(name)}</h2><img alt='{html.escape(name)}' "
+                         f"src='data:image/png;base64,{b64}'>")
+        for name, table in self.tables.items():
+            parts.append(f"<h2>{html.escape(name)}</h2>" + _html_table(table))
+        parts.append("<h2>findings</h2>" + _html_table(self.to_table(), level_col="level"))
+        parts.append("</body></html>")
+        path.write_text("\n".join(parts), encoding="utf-8")
+        return path
+
+
+def _html_table(table: pa.Table, level_col: str | None = None) -> str:
+    head = "".join(f"<th>{html.escape(c)}</th>" for c in table.column_names)
+    rows = []
+    for r in table.to_pylist():
+        cls = f" class='{r[level_col]}'" if level_col else ""
+        cells = "".join(f"<td>{html.escape('' if v is None else str(v))}</td>" for v in r.values())
+        rows.append(f"<tr{cls}>{cells}</tr>")
+    return f"<table><tr>{head}</tr>{''.join(rows)}</table>"
+
+
+# --- pictures -----------------------------------------------------------------------------
+
+# 0 = red (no map has a value), 0.5 = yellow, 1 = blue (every map has one)
+_RAMP = np.array([[180, 20, 30], [235, 110, 40], [250, 200, 60], [150, 200, 150], [40, 130, 200]],
+                 dtype=np.float64)
+
+
+def _colour(values: np.ndarray, vmin: float, vmax: float) -> np.ndarray:
+    """RGB uint8 for values in [vmin, vmax]; NaN is grey."""
+    v = np.clip((values - vmin) / (vmax - vmin if vmax > vmin else 1.0), 0, 1)
+    pos = v * (len(_RAMP) - 1)
+    lo = np.floor(np.nan_to_num(pos)).astype(int).clip(0, len(_RAMP) - 2)
+    frac = (np.nan_to_num(pos) - lo)[..., None]
+    rgb = _RAMP[lo] * (1 - frac) + _RAMP[lo + 1] * frac
+    rgb[np.isnan(values)] = 200
+    return rgb.astype(np.uint8)
+
+
+def png_bytes(rgb: np.ndarray) -> bytes:
+    """Encode an (H, W, 3) uint8 array as a PNG (8-bit RGB, no interlace), per the PNG spec."""
+    rgb = np.ascontiguousarray(rgb, dtype=np.uint8)
+    if rgb.ndim != 3 or rgb.shape[2] != 3:
+        raise ValueError(f"expected an (H, W, 3) array, got {rgb.shape}")
+    h, w, _ = rgb.shape
+    raw = b"".join(b"\x00" + rgb[y].tobytes() for y in range(h))  # filter type 0 per scanline
+
+    def chunk(kind: bytes, data: bytes) -> bytes:
+        return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data) & 0xFFFFFFFF)
+
+    return (b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", struct.pack(">IIBBBBB", w, h, 8, 2, 0, 0, 0))
+            + chunk(b"IDAT", zlib.compress(raw, 6)) + chunk(b"IEND", b""))
+
+
+def _slices(vol: np.ndarray, affine: np.ndarray, scale: int = 2) -> np.ndarray:
+    """Axial, coronal and sagittal slices through the grid centre, side by side, RAS-up."""
+    ras = vol
+    # flip axes whose affine direction is negative, so pictures read left-right, posterior-anterior
+    for ax in range(3):
+        if affine[ax, ax] < 0:
+            ras = np.flip(ras, axis=ax)
+    cx, cy, cz = (s // 2 for s in ras.shape)
+    views = [ras[:, :, cz].T[::-1], ras[:, cy, :].T[::-1], ras[cx, :, :].T[::-1]]
+    height = max(v.shape[0] for v in views)
+    padded = [np.pad(v, ((0, height - v.shape[0]), (0, 2)), constant_values=np.nan) for v in views]
+    img = np.concatenate(padded, axis=1)
+    return np.kron(img, np.ones((scale, scale)))
+
+
+# --- checks -------------------------------------------------------------------------------
+
+def check_store(store, features: str | None = None, *, min_coverage: float = 0.8,
+                pictures: bool = True, max_rows_for_pictures: int = 400) -> CheckReport:
+    """Run every check on a :class:`mapstore.Store`.
+
+    Parameters
+    ----------
+    store : mapstore.Store
+    features : str, optional
+        Feature set for coverage and value checks (default: the default set, if any).
+    min_coverage : float, default=0.8
+        Maps covering less of the mask than this are reported.
+    pictures : bool, default=True
+        Make the coverage pictures (reads up to ``max_rows_for_pictures`` rows, spread
+        over the set).
+    """
+    maps = store.sql("SELECT * FROM maps").to_pylist()
+    fs = None
+    if store.feature_sets():
+        fs = store.features(features)
+    report = CheckReport(str(store.path), fs.name if fs else None)
+    add = report.findings.append
+    _check_problems(store, add)
+    _check_grids(maps, add, report)
+    _check_space(maps, add)
+    _check_stats(maps, add)
+    _check_metadata(store, maps, add)
+    if fs is not None:
+        _check_features(store, fs, maps, min_coverage, add, report, pictures, max_rows_for_pictures)
+    return report
+
+
+def _check_problems(store, add) -> None:
+    for p in store.sql("SELECT * FROM problems").to_pylist():
+        add(Finding(p["level"] if p["level"] in LEVELS else "error", "files", p["code"], p["path"],
+                    p["reason"], p["remedy"]))
+
+
+def _check_grids(maps, add, report) -> None:
+    by_grid: dict[str, list[dict]] = defaultdict(list)
+    for m in maps:
+        by_grid[m["grid_id"]].append(m)
+    rows = []
+    for gid, ms in sorted(by_grid.items(), key=lambda kv: -len(kv[1])):
+        m0 = ms[0]
+        rows.append({"grid_id": gid, "shape": "x".join(map(str, m0["shape"][:3])),
+                     "voxel_mm": "x".join(f"{v:g}" for v in np.round(m0["voxel_size"], 3)),
+                     "orientation": m0["orientation"], "maps": len(ms),
+                     "datasets": ", ".join(sorted({m["dataset"] for m in ms}))})
+        aff = np.reshape(m0["affine"], (4, 4))[:3, :3]
+        if (np.abs(aff) > 1e-6).sum() > 3:
+            add(Finding("info", "grid", "oblique-grid", gid, f"{len(ms)} map(s) on an oblique grid "
+                        f"({rows[-1]['shape']}); they take the general (slower) interpolation path"))
+        vs = np.asarray(m0["voxel_size"])
+        if vs.max() / vs.min() > 1.01:
+            add(Finding("info", "grid", "anisotropic-voxels", gid,
+                        f"{len(ms)} map(s) with voxels {rows[-1]['voxel_mm']} mm"))
+    report.tables["grids"] = pa.Table.from_pylist(rows)
+    per_ds: dict[str, Counter] = defaultdict(Counter)
+    for m in maps:
+        per_ds[m["dataset"]][m["grid_id"]] += 1
+    for ds, counts in per_ds.items():
+        if len(counts) > 1:
+            add(Finding("warning", "grid", "mixed-grids", ds,
+                        f"dataset {ds} mixes {len(counts)} grids ({', '.join(f'{g} x{n}' for g, n in counts.most_common())})",
+                        "fine for mapstore (every map is resampled), but check the models were fit alike"))
+    for m in maps:
+        if m["n_volumes"] and m["n_volumes"] > 1:
+            add(Finding("error", "grid", "not-one-volume", m["map_id"], f"{m['relpath']} has {m['n_volumes']} "
+                        "volumes; a statistic map must be one 3-D volume", "split the file into one map per file"))
+
+
+_MNI_BRAIN_BOX = (np.array([-78.0, -112.0, -72.0]), np.array([78.0, 76.0, 86.0]))  # mm, common practice
+
+
+def _check_space(maps, add) -> None:
+    spaces = Counter(m["space"] for m in maps)
+    named = {s for s in spaces if s}
+    if len(named) > 1:
+        add(Finding("warning", "space", "several-spaces", "catalog",
+                    f"maps in {len(named)} template spaces ({', '.join(f'{s} x{spaces[s]}' for s in sorted(named))})",
+                    "resampling aligns grids, not templates: MNI152 variants differ by a few mm; "
+                    "select one space, or accept the small misalignment"))
+    if spaces.get(None):
+        add(Finding("warning", "space", "no-space-entity", "catalog",
+                    f"{spaces[None]} map(s) have no space- entity; they are taken to be in the target's space",
+                    "add space-<label> to the file names, or a name rule that sets it"))
+    lo_b, hi_b = _MNI_BRAIN_BOX
+    seen: set[str] = set()
+    for m in maps:
+        if m["grid_id"] in seen:
+            continue
+        seen.add(m["grid_id"])
+        aff = np.reshape(m["affine"], (4, 4))
+        shape = np.asarray(m["shape"][:3])
+        corners = np.array([[i, j, k, 1] for i in (0, shape[0] - 1) for j in (0, shape[1] - 1)
+                            for k in (0, shape[2] - 1)]) @ aff.T
+        lo, hi = corners[:, :3].min(axis=0), corners[:, :3].max(axis=0)
+        overlap = np.prod(np.clip(np.minimum(hi, hi_b) - np.maximum(lo, lo_b), 0, None)) / np.prod(hi_b - lo_b)
+        n = sum(1 for x in maps if x["grid_id"] == m["grid_id"])
+        if overlap < 0.05:
+            add(Finding("error", "space", "outside-mni-brain", m["grid_id"],
+                        f"{n} map(s) (e.g. {m['relpath']}) have a field of view that misses the MNI brain "
+                        f"box: world x {lo[0]:.0f}..{hi[0]:.0f}, y {lo[1]:.0f}..{hi[1]:.0f}, z {lo[2]:.0f}..{hi[2]:.0f} mm",
+                        "the affine is probably wrong or the map is in native space; fix the header"))
+        elif overlap < 0.8:
+            add(Finding("warning", "space", "partial-field-of-view", m["grid_id"],
+                        f"{n} map(s) (e.g. {m['relpath']}) cover {overlap:.0%} of the MNI brain box",
+                        "expected for partial acquisitions; set a coverage threshold when exporting"))
+
+
+def _check_stats(maps, add) -> None:
+    for m in maps:
+        stat = m["stat"]
+        if stat not in KNOWN_STATS:
+            add(Finding("warning", "stat", "unknown-stat", m["map_id"],
+                        f"{m['relpath']}: stat-{stat} is not one of {', '.join(sorted(KNOWN_STATS))}",
+                        "rename the file, or treat it as an effect map"))
+        agree = INTENT_STATS.get(m["intent_code"])
+        if agree is not None and stat not in agree:
+            add(Finding("warning", "stat", "intent-disagrees", m["map_id"],
+                        f"{m['relpath']}: named stat-{stat} but the header intent is {m['intent_name']!r}",
+                        "check which statistic the file holds; fix the name or the header"))
+        if stat == "t" and m["dof"] is None:
+            add(Finding("warning", "stat", "t-without-dof", m["map_id"],
+                        f"{m['relpath']}: t map without DegreesOfFreedom (sidecar or header)",
+                        "add DegreesOfFreedom to the sidecar to allow t-to-z conversion"))
+
+
+def _check_metadata(store, maps, add) -> None:
+    parts = {(p["dataset"], p["sub"]) for p in store.sql("SELECT dataset, sub FROM participants").to_pylist()}
+    have_table = {d for d, _ in parts}
+    missing: dict[str, set[str]] = defaultdict(set)
+    for m in maps:
+        if m["sub"] is not None and m["dataset"] in have_table and (m["dataset"], m["sub"]) not in parts:
+            missing[m["dataset"]].add(m["sub"])
+    for ds, subs in missing.items():
+        add(Finding("warning", "metadata", "subject-not-in-participants", ds,
+                    f"{len(subs)} subject(s) with maps are missing from participants.tsv (e.g. sub-{sorted(subs)[0]})",
+                    "add them to participants.tsv"))
+    for field_, code in (("site", "no-site"), ("lab", "no-lab")):
+        n = Counter(m["dataset"] for m in maps if m[field_] is None)
+        for ds, k in n.items():
+            add(Finding("info", "metadata", code, ds, f"{k} map(s) of {ds} have no {field_}",
+                        f"set it with an origins file (mapstore index --origins) to group by {field_}"))
+    dofs: dict[tuple, set] = defaultdict(set)
+    for m in maps:
+        if m["stat"] == "t" and m["dof"] is not None:
+            dofs[(m["dataset"], m["task"])].add(m["dof"])
+    for (ds, task), vals in dofs.items():
+        if len(vals) > 1:
+            add(Finding("info", "metadata", "dof-varies", f"{ds}/{task}",
+                        f"t maps of task {task} have {len(vals)} different DOF ({', '.join(f'{v:g}' for v in sorted(vals))})",
+                        "expected when subjects lost runs; check if not"))
+    by_sha: dict[str, list[dict]] = defaultdict(list)
+    for m in maps:
+        by_sha[m["sha256"]].append(m)
+    for sha, ms in by_sha.items():
+        if len(ms) > 1:
+            where = ", ".join(f"{m['dataset']}:{m['relpath']}" for m in ms[:3])
+            add(Finding("warning", "provenance", "duplicate-file", sha[:16],
+                        f"{len(ms)} maps are byte-identical ({where})",
+                        "a map copied between studies leaks in splits; the export refuses such splits"))
+
+
+def _check_features(store, fs, maps, min_coverage, add, report, pictures, max_rows) -> None:
+    rows = fs.rows.to_pylist()
+    stat_of = {m["map_id"]: m for m in maps}
+    for r in rows:
+        m = stat_of.get(r["map_id"])
+        if m is None:
+            continue
+        name = m["relpath"]
+        if r["coverage"] == 0:
+            add(Finding("error", "coverage", "no-coverage", r["map_id"],
+                        f"{name}: no mask voxel has a value", "check the map's affine and space"))
+        elif r["coverage"] < min_coverage:
+            add(Finding("warning", "coverage", "low-coverage", r["map_id"],
+                        f"{name}: covers {r['coverage']:.0%} of the mask (threshold {min_coverage:.0%})",
+                        "drop it with --min-coverage, or choose a coverage-based mask"))
+        vmin, vmax = r.get("vmin"), r.get("vmax")
+        if vmin is None or vmax is None:
+            continue
+        stat = r["stat_out"]
+        if stat == "p" and (vmin < 0 or vmax > 1):
+            add(Finding("error", "stat", "p-out-of-range", r["map_id"],
+                        f"{name}: p values from {vmin:g} to {vmax:g}, outside [0, 1]",
+                        "the map is not a p map (a log p or 1-p map?); rename or fix it"))
+        if stat == "variance" and vmin < 0:
+            add(Finding("error", "stat", "negative-variance", r["map_id"],
+                        f"{name}: negative variance ({vmin:g})", "the map is not a variance map; rename it"))
+        if vmin == vmax:
+            add(Finding("error", "stat", "constant-map", r["map_id"],
+                        f"{name}: every covered voxel is {vmin:g}", "the model probably failed; re-run it"))
+    cov = np.array([r["coverage"] for r in rows])
+    if cov.size:
+        by_study: dict[str, list[float]] = defaultdict(list)
+        for r in rows:
+            if r["map_id"] in stat_of:
+                by_study[stat_of[r["map_id"]]["study"]].append(r["coverage"])
+        report.tables["coverage by study"] = pa.Table.from_pylist([
+            {"study": s, "maps": len(v), "min": round(min(v), 3), "mean": round(float(np.mean(v)), 3),
+             f"below {min_coverage:g}": int(sum(x < min_coverage for x in v))} for s, v in sorted(by_study.items())])
+    if pictures and rows:
+        _coverage_pictures(fs, rows, stat_of, report, max_rows)
+
+
+def _coverage_pictures(fs, rows, stat_of, report, max_rows) -> None:
+    """Fraction of maps with a value at each voxel: all maps, then each study."""
+    ids = [r["map_id"] for r in rows if r["map_id"] in stat_of]
+    pick = ids if len(ids) <= max_rows else [ids[i] for i in np.linspace(0, len(ids) - 1, max_rows).astype(int)]
+    counts = np.zeros(fs.n_voxels)
+    per_study: dict[str, np.ndarray] = {}
+    per_n: Counter = Counter()
+    block = 64
+    for i in range(0, len(pick), block):
+        part = pick[i:i + block]
+        finite = np.isfinite(fs.matrix(part))
+        counts += finite.sum(axis=0)
+        for mid, row in zip(part, finite):
+            s = stat_of[mid]["study"]
+            per_study.setdefault(s, np.zeros(fs.n_voxels))
+            per_study[s] += row
+            per_n[s] += 1
+    aff = fs.grid.affine_array
+    frac = fs.unmask(counts / max(len(pick), 1))
+    legend = np.kron(np.linspace(0, 1, 256)[None, :], np.ones((12, 1)))
+    report.pictures["colour scale: fraction of maps with a value, 0 (red) to 1 (blue); grey is outside "
+                    "the mask"] = png_bytes(_colour(legend, 0.0, 1.0))
+    report.pictures[f"coverage over {len(pick)} maps (axial, coronal, sagittal through the grid centre)"] = \
+        png_bytes(_colour(_slices(frac, aff), 0.0, 1.0))
+    tiles = []
+    for s in sorted(per_study):
+        tiles.append(_slices(fs.unmask(per_study[s] / per_n[s]), aff))
+    if tiles:
+        width = max(t.shape[1] for t in tiles)
+        stack = np.concatenate([np.pad(t, ((0, 4), (0, width - t.shape[1])), constant_values=np.nan)
+                                for t in tiles], axis=0)
+        report.pictures["coverage per study, one row each: " + ", ".join(sorted(per_study))] = \
+            png_bytes(_colour(stack, 0.0, 1.0))
+
+
+def report_json(report: CheckReport) -> str:
+    return json.dumps({"store": report.store, "feature_set": report.feature_set,
+                       "findings": [f.__dict__ for f in report.findings],
+                       "tables": {k: v.to_pylist() for k, v in report.tables.items()}}, indent=1, default=str)
