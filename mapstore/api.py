@@ -81,8 +81,9 @@ class Store:
         Parameters
         ----------
         where : str, optional
-            SQL predicate over ``maps`` joined with participants' columns
-            (e.g. ``"stat = 't' AND age >= 20"``).
+            SQL predicate over ``maps`` joined with participants' columns and a
+            ``concepts`` list of direct labels (e.g. ``"stat = 't' AND age >= 20"`` or
+            ``"list_contains(concepts, 'reading')"``).
         concepts, task, stat : list of str, optional
             Keep maps labelled with one of these concepts / of these tasks / stats.
         features : str, optional

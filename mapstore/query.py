@@ -228,8 +228,10 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
                              + ("" if with_broader else " (broader concepts count with with_broader=True)"))
         ids = sorted(set(lab.loc[lab["concept"].isin(concepts), "map_id"]))
         conds.append(f"map_id IN ({_sql_list(ids)})")
-    inner = (f"SELECT m.*{p_sel} FROM maps m LEFT JOIN participants p "
-             "ON p.dataset = m.dataset AND p.sub = m.sub")
+    # the WHERE predicate sees maps, participants' extra columns, and `concepts` (direct labels)
+    inner = (f"SELECT m.*{p_sel}, coalesce(l.concepts, []) AS concepts FROM maps m LEFT JOIN participants p "
+             "ON p.dataset = m.dataset AND p.sub = m.sub LEFT JOIN (SELECT map_id, list(concept ORDER BY concept) "
+             "AS concepts FROM labels WHERE direct GROUP BY map_id) l ON l.map_id = m.map_id")
     chosen = f"SELECT * FROM ({inner}) AS m" + (" WHERE " + " AND ".join(conds) if conds else "")
     q = (f"WITH s AS ({chosen}) SELECT s.*, f.coverage, f.feature_key, f.conversion FROM s JOIN features f "
          f"ON f.map_id = s.map_id AND f.feature_set = '{fs.name}' ORDER BY s.map_id")

@@ -44,6 +44,8 @@ def test_select_where_targets_groups(labelled_store):
     assert (multi.Y.sum(axis=1) >= 1).all()
     broad = st.select(concepts=["perception"], with_broader=True, target="concepts")
     assert "perception" in broad.concepts and broad.Y[:, broad.concepts.index("perception")].all()
+    by_sql = st.select("list_contains(concepts, 'reading') AND stat = 't'")
+    assert len(by_sql) == len(st.select(concepts=["reading"], stat=["t"]))
     subj = st.select(group_by="subject")
     # subjects are study-qualified: sub-01 of two studies are two groups
     assert len(set(subj.groups)) == subj.meta.participant.nunique() > subj.meta["sub"].nunique()
