@@ -42,6 +42,7 @@ from .store import (
     PROBLEMS_SCHEMA,
     Catalog,
     commit_head,
+    conform,
     ensure_store,
     new_snapshot_id,
     read_head,
@@ -430,7 +431,7 @@ def index(
         found_keys = {d.key for d in datasets}
         if head.catalog:
             old = Catalog(store_path)
-            prev = old.table("maps").select(["relpath", "dataset", *_HEADER_COLUMNS])
+            prev = conform(old.table("maps"), MAPS_SCHEMA).select(["relpath", "dataset", *_HEADER_COLUMNS])
             prev_datasets = old.table("datasets").to_pylist()
             prev_participants = old.table("participants").to_pylist()
             prev_problems = old.table("problems").to_pylist()
@@ -443,7 +444,8 @@ def index(
             import pyarrow.compute as pc
 
             old_maps = Catalog(store_path).table("maps")
-            tables.append(old_maps.filter(pc.is_in(old_maps["dataset"], pa.array(sorted(kept_keys)))))
+            kept_rows = old_maps.filter(pc.is_in(old_maps["dataset"], pa.array(sorted(kept_keys))))
+            tables.append(conform(kept_rows, MAPS_SCHEMA))
 
         participant_rows = [r for r in prev_participants if r["dataset"] in kept_keys]
         parser = EntityParser()

@@ -54,6 +54,7 @@ from .store import (
     ROWS_SCHEMA,
     Catalog,
     commit_head,
+    conform,
     new_snapshot_id,
     read_head,
     write_json_atomic,
@@ -431,7 +432,7 @@ def build_features(
                 raise FeatureError(f"feature set {name!r} exists with other settings (grid "
                                    f"{old_spec['grid']['name']}, mask {old_spec['mask']['name']}, method "
                                    f"{old_spec['method']}, stat {old_spec['stat']}); choose another name")
-            old_rows = _conform(pq.read_table(store_path / existing["rows"]), ROWS_SCHEMA)
+            old_rows = conform(pq.read_table(store_path / existing["rows"]), ROWS_SCHEMA)
         (set_dir / "shards").mkdir(parents=True, exist_ok=True)
         if not existing or not (set_dir / "mask.npy").exists():
             tmp = set_dir / f".mask.{uuid.uuid4().hex}.npy"
@@ -480,13 +481,6 @@ def build_features(
     return FeatureReport(name=name, n_voxels=mk.n_voxels, grid=target.name, mask=mk.name,
                          built=len(new_rows), skipped=kept.num_rows, dropped=dropped, failed=len(problems),
                          seconds=time.perf_counter() - t0, paths=paths, problems=problems)
-
-
-def _conform(table: pa.Table, schema: pa.Schema) -> pa.Table:
-    """A table with exactly ``schema``'s columns (columns added since it was written are null)."""
-    cols = [table[f.name] if f.name in table.column_names else pa.nulls(table.num_rows, f.type)
-            for f in schema]
-    return pa.Table.from_arrays(cols, schema=schema)
 
 
 def _collect_feature_garbage(store: Path, set_dir: Path, current: str, previous: str | None) -> None:

@@ -46,6 +46,7 @@ __all__ = [
     "write_parquet_atomic",
     "write_json_atomic",
     "Catalog",
+    "conform",
     "ensure_store",
 ]
 
@@ -330,6 +331,13 @@ class Catalog:
             raise QueryError(f"{exc}\n(views: {', '.join(self.TABLES)}, features, feature_sets, "
                              f"feature_problems; see 'mapstore sql --store "
                              f"{self.path} \"DESCRIBE maps\"')") from None
+
+
+def conform(table: pa.Table, schema: pa.Schema) -> pa.Table:
+    """A table with exactly ``schema``'s columns: ones added since it was written are null."""
+    cols = [table[f.name].cast(f.type) if f.name in table.column_names else pa.nulls(table.num_rows, f.type)
+            for f in schema]
+    return pa.Table.from_arrays(cols, schema=schema)
 
 
 def _empty(name: str) -> pa.Table:
