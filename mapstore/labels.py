@@ -344,12 +344,18 @@ def apply_vocabulary(vocab: Vocabulary, maps: pa.Table, inherit_broader: bool | 
 
 
 def json_schemas() -> dict[str, dict[str, Any]]:
+    from .schemas import arrow_to_json_schema
+
+    table = arrow_to_json_schema("labels", LABELS_SCHEMA, "One concept of one map (the 'labels' view).",
+                                 {"direct": "assigned by a rule (false: inherited from a narrower concept)",
+                                  "rule": "index of the rule in the vocabulary",
+                                  "vocabulary_sha256": "SHA-256 of the vocabulary file as given"})
     pattern = {"oneOf": [{"type": "string"}, {"type": "integer"},
                          {"type": "object", "required": ["regex"], "additionalProperties": False,
                           "properties": {"regex": {"type": "string"}}}]}
     patterns = {"oneOf": [pattern, {"type": "array", "items": pattern, "minItems": 1}]}
     names = {"oneOf": [{"type": "string"}, {"type": "array", "items": {"type": "string"}, "minItems": 1}]}
-    return {"vocabulary.schema.json": {
+    return {"labels.schema.json": table, "vocabulary.schema.json": {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
         "$id": "https://mapstore.invalid/schemas/vocabulary.schema.json",
         "title": "mapstore concept vocabulary",

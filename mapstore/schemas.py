@@ -153,6 +153,60 @@ def all_schemas() -> dict[str, dict[str, Any]]:
         "origins.schema.json": _origins_schema(),
         "store-head.schema.json": _head_schema(),
     }
+    from .store import FPROBLEMS_SCHEMA, ROWS_SCHEMA
+
+    out["feature-rows.schema.json"] = arrow_to_json_schema(
+        "feature-rows", ROWS_SCHEMA, "One row of a feature set (features/<set>/rows-*.parquet, the "
+        "'features' view adds feature_set): where a map's vector lives and how it was made.",
+        {"feature_key": "hash of source sha256, grid, mask, method, stat conversion (and DOF), mapstore version",
+         "shard": "file under features/<set>/shards/", "row": "row index in the shard",
+         "coverage": "fraction of mask voxels with a finite value",
+         "row_sha256": "SHA-256 of the row's float32 bytes", "vmin": "smallest finite value",
+         "vmax": "largest finite value", "vmean": "mean of the finite values"})
+    out["feature-problems.schema.json"] = arrow_to_json_schema(
+        "feature-problems", FPROBLEMS_SCHEMA, "A map that could not be turned into a feature row.")
+    participants = arrow_to_json_schema(
+        "participants", pa.schema([("dataset", pa.string()), ("participant_id", pa.string()),
+                                   ("sub", pa.string()), ("participant", pa.string())]),
+        "One row of participants.tsv, with the dataset key and the study-qualified participant id; "
+        "every other column of the file follows (numbers when all values are numbers, else text).")
+    participants["additionalProperties"] = {"type": ["string", "number", "integer", "null"]}
+    out["participants.schema.json"] = participants
+    out["feature-set.schema.json"] = {
+        "$schema": "https://json-schema.org/draft/2020-12/schema",
+        "$id": _BASE + "feature-set.schema.json",
+        "title": "mapstore feature set description (features/<set>/set.json)",
+        "type": "object",
+        "required": ["name", "grid", "grid_id", "mask", "mask_sha256", "method", "stat", "p_sided",
+                     "zero_as_missing", "spec_id", "versions"],
+        "properties": {
+            "name": {"type": "string"},
+            "grid": {"type": "object", "required": ["name", "shape", "affine", "grid_id"],
+                     "properties": {"name": {"type": "string"},
+                                    "shape": {"type": "array", "items": {"type": "integer"}, "minItems": 3,
+                                              "maxItems": 3},
+                                    "affine": {"type": "array", "items": {"type": "number"}, "minItems": 16,
+                                               "maxItems": 16},
+                                    "grid_id": {"type": "string"}}},
+            "grid_id": {"type": "string"},
+            "mask": {"type": "object", "required": ["name", "n_voxels", "sha256"]},
+            "mask_sha256": {"type": "string"},
+            "method": {"enum": ["linear", "nearest", "cubic"]},
+            "stat": {"enum": ["native", "z"]},
+            "p_sided": {"enum": ["one", "two"]},
+            "zero_as_missing": {"type": "boolean"},
+            "where": {"type": ["string", "null"]},
+            "spec_id": {"type": "string"},
+            "versions": {"type": "object", "additionalProperties": {"type": "string"}},
+        },
+    }
+    out["store-marker.schema.json"] = {
+        "$schema": "https://json-schema.org/draft/2020-12/schema",
+        "$id": _BASE + "store-marker.schema.json",
+        "title": "mapstore store marker (store.json)",
+        "type": "object", "required": ["format", "version"],
+        "properties": {"format": {"const": "mapstore-store"}, "version": {"type": "integer"}},
+    }
     import importlib
 
     for module in _PROVIDERS:

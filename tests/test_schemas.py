@@ -31,3 +31,26 @@ def test_schemas_are_valid_and_validate_demo_files(demo_store, demo_tree):
         rows = pq.read_table(demo_store / head["catalog"] / f"{table}.parquet").to_pylist()
         for row in rows[:50]:
             jsonschema.validate(row, schemas[f"{table}.schema.json"])
+
+
+def test_feature_and_label_files_validate(demo_store, demo_tree, tmp_path):
+    import shutil
+
+    import mapstore
+
+    store = tmp_path / "s"
+    shutil.copytree(demo_store, store)
+    mapstore.build_features(store, grid="MNI152-3mm", name="three", jobs=2, progress=False)
+    mapstore.label(store, demo_tree / "concepts.json")
+    schemas = all_schemas()
+    head = json.loads((store / "HEAD").read_text())
+    entry = head["features"]["three"]
+    jsonschema.validate(json.loads((store / entry["dir"] / "set.json").read_text()),
+                        schemas["feature-set.schema.json"])
+    for row in pq.read_table(store / entry["rows"]).to_pylist()[:20]:
+        jsonschema.validate(row, schemas["feature-rows.schema.json"])
+    for row in pq.read_table(store / head["labels"]["table"]).to_pylist()[:20]:
+        jsonschema.validate(row, schemas["labels.schema.json"])
+    for row in pq.read_table(store / head["catalog"] / "participants.parquet").to_pylist():
+        jsonschema.validate(row, schemas["participants.schema.json"])
+    jsonschema.validate(json.loads((store / "store.json").read_text()), schemas["store-marker.schema.json"])
