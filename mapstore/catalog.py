@@ -118,7 +118,12 @@ def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None
         key = prefix[:NIFTI1_SIZE] if prefix[:4] in _N1_SIZES else prefix[:NIFTI2_SIZE]
         cols = cache.get(key) if cache is not None else None
         if cols is None:
-            cols = _header_columns(parse_header(path, prefix))
+            facts = parse_header(path, prefix)
+            if not facts.single_file:
+                return Problem(path, "pair-header", "a NIfTI pair header (magic ni1/ni2): the voxels are in a "
+                               "separate .img file", "convert the .hdr/.img pair to a single .nii(.gz) file, "
+                               "for example with nibabel", stage="header")
+            cols = _header_columns(facts)
             if cache is not None:
                 cache[key] = cols
     except HeaderError as exc:

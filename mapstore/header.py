@@ -124,6 +124,7 @@ class HeaderFacts:
     xyzt_units: int
     descrip: str
     warnings: tuple[str, ...] = field(default_factory=tuple)
+    single_file: bool = True  # magic n+1 / n+2; False for a header whose data is in a separate .img
 
     @property
     def affine_array(self) -> np.ndarray:
@@ -216,6 +217,7 @@ def parse_header(path: str, data: bytes) -> HeaderFacts:
         order = "<" if size_le == NIFTI1_SIZE else ">"
         hdr = np.frombuffer(data[:NIFTI1_SIZE], dtype=_N1[order])[0]
         magic = bytes(hdr["magic"])
+        single = magic[:3] == b"n+1"
         if magic not in (b"n+1\x00", b"ni1\x00", b"n+1", b"ni1"):
             raise HeaderError(path, "not-nifti",
                               "348-byte header without the NIfTI-1 magic (an ANALYZE 7.5 image?)",
@@ -228,6 +230,7 @@ def parse_header(path: str, data: bytes) -> HeaderFacts:
                               "the file was cut short; re-create or re-download it")
         order = "<" if size_le == NIFTI2_SIZE else ">"
         hdr = np.frombuffer(data[:NIFTI2_SIZE], dtype=_N2[order])[0]
+        single = bytes(hdr["magic"])[:3] == b"n+2"
         if bytes(hdr["magic"])[:3] not in (b"n+2", b"ni2"):
             raise HeaderError(path, "not-nifti", "540-byte header without the NIfTI-2 magic",
                               "check that the file is a NIfTI-2 image")
@@ -312,6 +315,7 @@ def parse_header(path: str, data: bytes) -> HeaderFacts:
         xyzt_units=int(hdr["xyzt_units"]),
         descrip=_text(bytes(hdr["descrip"])),
         warnings=tuple(warnings),
+        single_file=single,
     )
 
 

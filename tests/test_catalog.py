@@ -233,3 +233,34 @@ def test_parallel_index_equals_serial(tmp_path):
     assert a.maps == b.maps == 600
     q = "SELECT map_id, sha256, grid_id FROM maps ORDER BY map_id"
     assert mapstore.open(tmp_path / "a").sql(q) == mapstore.open(tmp_path / "b").sql(q)
+
+
+def test_pair_header_named_nii_is_a_problem(tmp_path):
+    # nibabel ships a NIfTI-1 pair header (magic "ni1"): as a .nii its voxels would be missing
+    ds = make_derivative(tmp_path / "d", name="d")
+    dst = ds / "sub-01" / "sub-01_task-a_contrast-b_stat-t_statmap.nii"
+    dst.parent.mkdir(parents=True)
+    shutil.copy(NIBABEL_DATA / "nifti1.hdr", dst)
+    r = mapstore.index([ds], tmp_path / "store", progress=False)
+    assert r.maps == 0 and r.problem_codes == {"pair-header": 1}
+
+
+def test_crash_mid_index_keeps_the_served_catalog(tmp_path, monkeypatch):
+    _small_tree(tmp_path)
+    store = tmp_path / "store"
+    mapstore.index([tmp_path / "src"], store, progress=False)
+    head = (store / "HEAD").read_text()
+    before = mapstore.open(store).sql("SELECT * FROM maps ORDER BY map_id")
+    import mapstore.catalog as cat
+
+    def boom(*args, **kwargs):
+        raise RuntimeError("simulated crash")
+
+    monkeypatch.setattr(cat, "write_parquet_atomic", boom)
+    write_map(tmp_path / "src" / "alpha" / "sub-09" / "func" / "sub-09_task-go_contrast-a_stat-t_statmap.nii.gz")
+    with pytest.raises(RuntimeError):
+        mapstore.index([tmp_path / "src"], store, jobs=1, progress=False)
+    assert (store / "HEAD").read_text() == head
+    assert mapstore.open(store).sql("SELECT * FROM maps ORDER BY map_id") == before
+    monkeypatch.undo()
+    assert mapstore.index([tmp_path / "src"], store, jobs=1, progress=False).new == 1  # lock released

@@ -219,3 +219,27 @@ def test_dask_local_cluster_matches_local_pool(tmp_path):
     st = mapstore.open(store)
     ids = st.features("local").map_ids
     np.testing.assert_array_equal(st.features("local").matrix(ids), st.features("dask").matrix(ids))
+
+
+def test_crash_mid_build_keeps_the_served_set(tmp_path, monkeypatch):
+    ds, store = _tree(tmp_path)
+    mapstore.build_features(store, "s", grid="MNI152-3mm", jobs=1, progress=False)
+    before = mapstore.open(store).features("s")
+    X0 = before.matrix()
+    head0 = (store / "HEAD").read_text()
+    f = ds / "sub-03" / "sub-03_task-go_contrast-a_stat-t_statmap.nii.gz"
+    write_map(f, np.full((41, 48, 40), 3.0, np.float32), nib.load(f).affine)
+    mapstore.index([tmp_path / "src"], store, progress=False)
+    head1 = (store / "HEAD").read_text()
+
+    import mapstore.features as feat
+
+    def boom(*args, **kwargs):
+        raise RuntimeError("simulated crash")
+
+    monkeypatch.setattr(feat, "resample", boom)
+    with pytest.raises(RuntimeError, match="simulated crash"):
+        mapstore.build_features(store, "s", grid="MNI152-3mm", jobs=1, progress=False)
+    assert (store / "HEAD").read_text() == head1 != head0
+    after = mapstore.open(store).features("s")
+    np.testing.assert_array_equal(after.matrix(before.map_ids), X0)
