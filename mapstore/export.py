@@ -21,6 +21,7 @@ import os
 import shutil
 import time
 import uuid
+from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -113,14 +114,24 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         row_hashes = fs.row_hashes(ids)
         buf = np.empty((min(BLOCK_ROWS, max(n, 1)), nv), dtype=np.float32)  # one reused block buffer
         if fmt == "npy":
-            # written as a plain file through a reused buffer: no fresh pages for all of X
-            with open(tmp / "X.npy", "wb") as fh:
+            # a plain file written through two reused buffers, reading the next block while the
+            # last one is written (both system calls release the GIL): no fresh pages for all of X
+            spare = np.empty_like(buf)
+            with open(tmp / "X.npy", "wb", buffering=0) as fh, ThreadPoolExecutor(1) as reader:
                 np.lib.format.write_array_header_1_0(
                     fh, {"descr": np.lib.format.dtype_to_descr(np.dtype(np.float32)), "fortran_order": False,
                          "shape": (n, nv)})
-                for i in range(0, n, BLOCK_ROWS):
-                    block = fs.read_into(ids[i:i + BLOCK_ROWS], buf)
-                    fh.write(memoryview(block).cast("B"))
+                starts = list(range(0, n, BLOCK_ROWS))
+                pending = reader.submit(fs.read_into, ids[0:BLOCK_ROWS], buf) if starts else None
+                for k, i in enumerate(starts):
+                    block = pending.result()
+                    if k + 1 < len(starts):
+                        nxt = starts[k + 1]
+                        pending = reader.submit(fs.read_into, ids[nxt:nxt + BLOCK_ROWS], spare)
+                    view = memoryview(block).cast("B")
+                    while view:
+                        view = view[fh.write(view):]
+                    buf, spare = spare, buf
             if sel.y is not None:
                 np.save(tmp / "y.npy", np.asarray(sel.y, dtype=str))
             if sel.Y is not None:
