@@ -24,7 +24,7 @@ def cli() -> None:
     """Pool brain statistic maps from many BIDS derivative datasets into one store."""
 
 
-def _format_cell(v: object, width: int = 38) -> str:
+def _format_cell(v: object, width: int = 40) -> str:
     if v is None:
         return ""
     if isinstance(v, float):
@@ -37,11 +37,11 @@ def _format_cell(v: object, width: int = 38) -> str:
     return text if len(text) <= width else text[: width - 1] + "…"
 
 
-def render_table(table, max_rows: int | None = None) -> str:
-    """A plain-text table of an Arrow table (cells cut at 38 characters)."""
+def render_table(table, max_rows: int | None = None, width: int = 40) -> str:
+    """A plain-text table of an Arrow table (cells cut at ``width`` characters)."""
     names = table.column_names
     rows = table.to_pylist() if max_rows is None else table.slice(0, max_rows).to_pylist()
-    cells = [[_format_cell(r[n]) for n in names] for r in rows]
+    cells = [[_format_cell(r[n], width) for n in names] for r in rows]
     widths = [max([len(n)] + [len(c[i]) for c in cells]) for i, n in enumerate(names)]
     out = ["  ".join(n.ljust(w) for n, w in zip(names, widths)),
            "  ".join("-" * w for w in widths)]
@@ -247,7 +247,9 @@ def demo_cmd(folder, scale) -> None:
         "list_first(voxel_size) AS voxel_mm, count(*) AS maps FROM maps "
         "GROUP BY ALL ORDER BY study")))
     click.echo("\nproblems found:")
-    click.echo(render_table(st.sql("SELECT code, level, path, remedy FROM problems ORDER BY code")))
+    click.echo(render_table(st.sql(
+        f"SELECT code, level, replace(path, '{data}/', '') AS path, remedy FROM problems ORDER BY code"),
+        width=100))
     click.echo("\nresampling every map onto the MNI152 2 mm grid and brain mask ...")
     freport = mapstore.build_features(store)
     click.echo(freport.summary())
@@ -266,6 +268,8 @@ def demo_cmd(folder, scale) -> None:
     click.echo(st.export(out, sel, scheme="leave-one-group-out", overwrite=True).summary())
     click.echo("\ncross-study decoding (scikit-learn LogisticRegression, trained on the other studies):")
     click.echo(render_table(_demo_decoder(out)))
+    click.echo("(chance: 1 / the number of concepts trained on; majority: share of the held-out study's "
+               "most common concept)")
     click.echo("\nchecking the store (grids, space, coverage, stat types, metadata) ...")
     report = st.check()
     html_path = report.write_html(base / "check-report.html")
