@@ -445,9 +445,11 @@ def build_features(
             key = feature_key(r["sha256"], spec, r["dof"])
             wanted[r["map_id"]] = _Item(r["map_id"], os.path.join(r["root"], r["relpath"]), r["sha256"],
                                         r["stat"], r["dof"], key)
-        have = {k: i for i, k in enumerate(old_rows["feature_key"].to_pylist())}
-        keep_idx = [have[it.key] for it in wanted.values() if it.key in have]
-        todo = [it for it in wanted.values() if it.key not in have]
+        # keyed by map too: byte-identical copies of a file share a feature key, not a row
+        have = {mk_: i for i, mk_ in enumerate(zip(old_rows["map_id"].to_pylist(),
+                                                   old_rows["feature_key"].to_pylist()))}
+        keep_idx = [have[(m, it.key)] for m, it in wanted.items() if (m, it.key) in have]
+        todo = [it for m, it in wanted.items() if (m, it.key) not in have]
         kept = old_rows.take(pa.array(sorted(keep_idx), pa.int64())) if keep_idx else old_rows.slice(0, 0)
         dropped = old_rows.num_rows - kept.num_rows
 

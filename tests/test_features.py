@@ -243,3 +243,16 @@ def test_crash_mid_build_keeps_the_served_set(tmp_path, monkeypatch):
     assert (store / "HEAD").read_text() == head1 != head0
     after = mapstore.open(store).features("s")
     np.testing.assert_array_equal(after.matrix(before.map_ids), X0)
+
+
+def test_identical_copies_keep_one_row_each_across_rebuilds(tmp_path):
+    ds, store = _tree(tmp_path)
+    src = ds / "sub-00" / "sub-00_task-go_contrast-a_stat-t_statmap.nii.gz"
+    other = make_derivative(tmp_path / "src" / "beta", name="beta")
+    (other / "sub-00").mkdir(parents=True)
+    shutil.copy(src, other / "sub-00" / "sub-00_task-go_contrast-a_stat-t_statmap.nii.gz")
+    mapstore.index([tmp_path / "src"], store, progress=False)
+    for _ in range(2):
+        mapstore.build_features(store, "s", grid="MNI152-3mm", jobs=1, progress=False)
+        rows = mapstore.open(store).features("s").rows.to_pandas()
+        assert rows.map_id.is_unique and len(rows) == 6
