@@ -232,15 +232,20 @@ def _execute(batches: list[_Batch], jobs: int, scheduler: Any, progress: bool, d
         bar = tqdm(total=sum(len(b.items) for b in batches), unit="map", desc=desc, file=sys.stderr)
     try:
         if scheduler is not None:
-            client = _dask_client(scheduler)
-            futures = client.map(_run_batch, batches, pure=False)
-            from distributed import as_completed as dask_completed
+            client, owned = _dask_client(scheduler)
+            try:
+                from distributed import as_completed as dask_completed
 
-            for fut, b in zip(dask_completed(futures), batches):
-                res = fut.result()
-                if bar:
-                    bar.update(len(b.items))
-                yield res
+                futures = client.map(_run_batch, batches, pure=False)
+                sizes = {f.key: len(b.items) for f, b in zip(futures, batches)}
+                for fut in dask_completed(futures):
+                    res = fut.result()
+                    if bar:
+                        bar.update(sizes[fut.key])
+                    yield res
+            finally:
+                if owned:
+                    client.close()
         elif jobs > 1 and len(batches) > 1:
             import multiprocessing
 
@@ -269,10 +274,10 @@ def _dask_client(scheduler: Any):
         raise FeatureError("a Dask scheduler was given but dask.distributed is not installed; "
                            "pip install 'mapstore[dask]'") from None
     if isinstance(scheduler, Client):
-        return scheduler
+        return scheduler, False
     if isinstance(scheduler, str):
         try:
-            return Client(scheduler, timeout=30)
+            return Client(scheduler, timeout=30), True
         except OSError as exc:
             raise FeatureError(f"cannot reach the Dask scheduler at {scheduler} ({exc})") from None
     raise ParameterError(f"scheduler must be a dask.distributed Client or an address, got {scheduler!r}")

@@ -215,10 +215,16 @@ def test_dask_local_cluster_matches_local_pool(tmp_path):
                                   dashboard_address=None) as cluster, distributed.Client(cluster) as client:
         r = mapstore.build_features(store, "dask", grid="MNI152-3mm", scheduler=client, batch_size=2,
                                     progress=False)
+        # the CLI passes the scheduler's address
+        from mapstore.cli import main
+
+        assert main(["features", "--store", str(store), "--name", "addr", "--grid", "MNI152-3mm",
+                     "--dask", cluster.scheduler_address]) == 0
     assert r.built == 7
     st = mapstore.open(store)
     ids = st.features("local").map_ids
     np.testing.assert_array_equal(st.features("local").matrix(ids), st.features("dask").matrix(ids))
+    np.testing.assert_array_equal(st.features("local").matrix(ids), st.features("addr").matrix(ids))
 
 
 def test_crash_mid_build_keeps_the_served_set(tmp_path, monkeypatch):
