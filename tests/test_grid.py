@@ -201,3 +201,47 @@ def test_grid_and_mask_validation():
         mask_from_array(grid_from_spec((2, 2, 2), np.eye(4)), np.zeros((2, 2, 2)), "m")
     with pytest.raises(GridError, match="unknown built-in grid"):
         builtin_grid("MNI999")
+
+
+from hypothesis import given, settings  # noqa: E402
+from hypothesis import strategies as st  # noqa: E402
+
+
+@settings(max_examples=40, deadline=None)
+@given(st.lists(st.sampled_from([0.5, 0.75, 1.0, 1.5, 2.0, 3.0]), min_size=3, max_size=3),
+       st.lists(st.sampled_from([-1, 1]), min_size=3, max_size=3),
+       st.lists(st.floats(-6, 6), min_size=3, max_size=3),
+       st.permutations([0, 1, 2]), st.integers(0, 2**31 - 1))
+def test_nan_semantics_property_against_scipy(scales, signs, shifts, perm, seed):
+    # reference: scipy.ndimage.affine_transform (order 1) on the same, NaN-free inputs.
+    # A target voxel is NaN exactly when a NaN source voxel has non-zero weight (or it is outside
+    # the field of view); every finite value equals scipy's on the zero-filled source.
+    rng = np.random.default_rng(seed)
+    src = rng.standard_normal((9, 10, 11)).astype(np.float32)
+    src[rng.random(src.shape) < 0.03] = np.nan
+    m = np.zeros((4, 4))
+    for t, a in enumerate(perm):
+        m[a, t] = scales[t] * signs[t]
+    m[:3, 3] = shifts
+    m[3, 3] = 1
+    grid = grid_from_spec((8, 9, 10), m)  # target voxel -> world = source voxel space
+    out = resample(src, np.eye(4), grid, "linear")
+    clean = np.nan_to_num(src).astype(np.float64)
+    ref = ndimage.affine_transform(clean, m[:3, :3], m[:3, 3], output_shape=grid.shape, order=1,
+                                   mode="constant", cval=0.0)
+    reach = ndimage.affine_transform(np.isnan(src).astype(np.float64), m[:3, :3], m[:3, 3],
+                                     output_shape=grid.shape, order=1, mode="constant", cval=0.0)
+    # field of view: source coordinates within [0, n - 1] (to 1e-6 voxel) on every axis
+    coords = np.indices(grid.shape).reshape(3, -1)
+    srcc = (m[:3, :3] @ coords + m[:3, 3:4]).reshape((3,) + grid.shape)
+    inside = np.all([(srcc[a] >= -1e-6) & (srcc[a] <= src.shape[a] - 1 + 1e-6) for a in range(3)], axis=0)
+    assert np.all(np.isnan(out[~inside]))
+    # scipy decides "outside" without tolerance, we snap coordinates within 1e-9 of an integer:
+    # compare where the source coordinates lie in [0, n - 1] exactly
+    strict = np.all([(srcc[a] >= 0) & (srcc[a] <= src.shape[a] - 1) for a in range(3)], axis=0)
+    frac = np.abs(srcc - np.round(srcc))
+    snapped = np.any((frac > 0) & (frac < 1e-9), axis=0)  # we give these neighbours weight 0
+    ok = np.isfinite(out) & strict
+    np.testing.assert_allclose(out[ok], ref[ok], atol=1e-5)
+    sure = strict & ~snapped
+    assert np.all(np.isnan(out[sure]) == (reach[sure] > 0))
