@@ -237,10 +237,6 @@ _PER_ROW = ("map_id", "dataset", "relpath", *_ENTITY_COLUMNS, "suffix", "extensi
 _SIDECAR_COLUMNS = ("metadata", "sidecars")
 
 
-def _static_key(hdr: dict[str, Any]) -> tuple:
-    return tuple(tuple(v) if isinstance(v, list) else v for v in (hdr[c] for c in _STATIC_HEADER))
-
-
 def _run_unit(unit: _Unit) -> _UnitResult:
     """Crawl one unit and build its rows column by column.
 
@@ -251,7 +247,11 @@ def _run_unit(unit: _Unit) -> _UnitResult:
     parser = unit.parser
     maps, jsons, problems = walk_dataset(ds, parser, unit.rules, unit.top, unit.root_maps)
     resolver = SidecarResolver(ds, jsons, parser)
-    prev = {r["relpath"]: r for r in unit.prev.to_pylist()} if unit.prev is not None else {}
+    # previous rows: a few columns as lists; reused header columns are gathered from the table
+    pt = unit.prev
+    pcol = {c: pt[c].to_pylist() for c in ("relpath", "nbytes", "mtime_ns", "sha256", "intent_code",
+                                             "intent_p1")} if pt is not None and pt.num_rows else {}
+    prev = {r: i for i, r in enumerate(pcol.get("relpath", []))}
     cache: dict[bytes, dict[str, Any]] = {}
     cols: dict[str, list[Any]] = {c: [] for c in _PER_ROW}
     headers: list[dict[str, Any]] = []
@@ -264,9 +264,10 @@ def _run_unit(unit: _Unit) -> _UnitResult:
     new = changed = unchanged = 0
     for m in maps:
         old = prev.get(m.relpath)
-        if old is not None and old["nbytes"] == m.nbytes and old["mtime_ns"] == m.mtime_ns:
-            hdr, sha, nbytes = old, old["sha256"], old["nbytes"]
-            key: Any = _static_key(old)
+        if old is not None and pcol["nbytes"][old] == m.nbytes and pcol["mtime_ns"][old] == m.mtime_ns:
+            sha, nbytes = pcol["sha256"][old], pcol["nbytes"][old]
+            hdr = {"intent_code": pcol["intent_code"][old], "intent_p1": pcol["intent_p1"][old]}
+            hidx.append(-1 - old)  # a previous row: resolved against the previous table
             unchanged += 1
         else:
             res = probe_file(m.path, cache)
@@ -280,11 +281,11 @@ def _run_unit(unit: _Unit) -> _UnitResult:
                 new += 1
             else:
                 changed += 1
-        pos = header_pos.get(key)
-        if pos is None:
-            pos = header_pos[key] = len(headers)
-            headers.append(hdr)
-        hidx.append(pos)
+            pos = header_pos.get(key)
+            if pos is None:
+                pos = header_pos[key] = len(headers)
+                headers.append(hdr)
+            hidx.append(pos)
         ents = m.entities
         meta, used, meta_json = resolver.resolve_full(m.relpath, ents)
         spos = sidecar_pos.get(meta_json)
@@ -323,7 +324,7 @@ def _run_unit(unit: _Unit) -> _UnitResult:
         cols["dof"].append(dof)
         cols["dof_source"].append(dof_source)
     problems.extend(resolver.problems)
-    return _UnitResult(_assemble(cols, headers, hidx, sidecars, sidx), problems, new, changed, unchanged)
+    return _UnitResult(_assemble(cols, headers, hidx, sidecars, sidx, pt), problems, new, changed, unchanged)
 
 
 def _origin(ds: DatasetInfo, sub: str | None, by_sub: dict[str, dict[str, Any]], over: MetadataOverrides,
@@ -344,11 +345,16 @@ def _origin(ds: DatasetInfo, sub: str | None, by_sub: dict[str, dict[str, Any]],
 
 
 def _assemble(cols: dict[str, list[Any]], headers: list[dict[str, Any]], hidx: list[int],
-              sidecars: list[dict[str, Any]], sidx: list[int]) -> pa.Table:
+              sidecars: list[dict[str, Any]], sidx: list[int], prev: pa.Table | None) -> pa.Table:
+    """Columns in schema order; ``hidx`` >= 0 points into ``headers``, -1 - i at row i of ``prev``."""
     fields = {f.name: f for f in MAPS_SCHEMA}
     arrays: dict[str, pa.Array] = {c: pa.array(v, fields[c].type) for c, v in cols.items()}
     if hidx:
-        htab = pa.Table.from_pylist(headers, schema=pa.schema([fields[c] for c in _STATIC_HEADER]))
+        hschema = pa.schema([fields[c] for c in _STATIC_HEADER])
+        htab = pa.Table.from_pylist(headers, schema=hschema)
+        if prev is not None and any(i < 0 for i in hidx):
+            htab = pa.concat_tables([htab, prev.select(list(_STATIC_HEADER)).cast(hschema)])
+            hidx = [i if i >= 0 else len(headers) - 1 - i for i in hidx]
         stab = pa.Table.from_pylist(sidecars, schema=pa.schema([fields[c] for c in _SIDECAR_COLUMNS]))
         hi = pa.array(hidx, pa.int32())
         si = pa.array(sidx, pa.int32())
