@@ -253,7 +253,7 @@ def _run_unit(unit: _Unit) -> _UnitResult:
                                              "intent_p1")} if pt is not None and pt.num_rows else {}
     prev = {r: i for i, r in enumerate(pcol.get("relpath", []))}
     cache: dict[bytes, dict[str, Any]] = {}
-    cols: dict[str, list[Any]] = {c: [] for c in _PER_ROW}
+    rows: list[tuple] = []
     headers: list[dict[str, Any]] = []
     header_pos: dict[Any, int] = {}
     sidecars: list[dict[str, Any]] = []
@@ -304,26 +304,17 @@ def _run_unit(unit: _Unit) -> _UnitResult:
         dof_source = "sidecar" if dof is not None else None
         if dof is None and hdr["intent_code"] == 3 and hdr["intent_p1"] and hdr["intent_p1"] > 0:
             dof, dof_source = float(hdr["intent_p1"]), "header"  # nifti1.h: t-test intent_p1 = DOF
-        for c in _ENTITY_COLUMNS:
-            cols[c].append(ents.get(c))
-        cols["map_id"].append(map_id_for(ds.key, m.relpath))
-        cols["dataset"].append(ds.key)
-        cols["relpath"].append(m.relpath)
-        cols["suffix"].append(ents.get("suffix"))
-        cols["extension"].append(ents.get("extension"))
-        cols["entities"].append(json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")},
-                                           sort_keys=True))
-        cols["named_by"].append(m.named_by)
-        cols["participant"].append(origin["participant"])
-        cols["study"].append(origin["study"])
-        cols["site"].append(origin["site"])
-        cols["lab"].append(lab)
-        cols["sha256"].append(sha)
-        cols["nbytes"].append(nbytes)
-        cols["mtime_ns"].append(m.mtime_ns)
-        cols["dof"].append(dof)
-        cols["dof_source"].append(dof_source)
+        get = ents.get
+        rows.append((
+            map_id_for(ds.key, m.relpath), ds.key, m.relpath,
+            *[get(c) for c in _ENTITY_COLUMNS], get("suffix"), get("extension"),
+            json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")}, sort_keys=True),
+            m.named_by, origin["participant"], origin["study"], origin["site"], lab,
+            sha, nbytes, m.mtime_ns, dof, dof_source,
+        ))
     problems.extend(resolver.problems)
+    # one tuple per row while crawling, transposed into columns once
+    cols = dict(zip(_PER_ROW, (list(c) for c in zip(*rows)))) if rows else {c: [] for c in _PER_ROW}
     return _UnitResult(_assemble(cols, headers, hidx, sidecars, sidx, pt), problems, new, changed, unchanged)
 
 
