@@ -365,7 +365,8 @@ def _units(ds: DatasetInfo, parser: EntityParser, by_sub: dict[str, dict[str, An
         return [_Unit(ds, parser, None, True, by_sub, rules, over,
                       _previous_subset(prev, ds.key, None, True))]
     tops = top_folders(ds)
-    n_parts = min(len(tops), jobs) or 1
+    # one part per worker, finer for big datasets (progress, balance): ~25 top folders per part
+    n_parts = min(len(tops), max(jobs, len(tops) // 25)) or 1
     parts = [tops[i::n_parts] for i in range(n_parts)]
     return [_Unit(ds, parser, part, i == 0, by_sub, rules, over,
                   _previous_subset(prev, ds.key, part, i == 0))
