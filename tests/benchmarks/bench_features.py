@@ -22,6 +22,7 @@ from __future__ import annotations
 
 import argparse
 import json
+import os
 import resource
 import shutil
 import subprocess
@@ -207,12 +208,14 @@ def time_x(store: Path, n_rows: int, b_per_map: float | None) -> None:
 
     X = sel.X
     t_exps, t_saves = [], []
-    for _ in range(5):  # this VM's write timings vary several-fold: alternate and take medians
+    for _ in range(5):  # alternate and take medians
         shutil.rmtree(out, ignore_errors=True)  # like np.save below, write a new file each time
+        os.sync()  # both writers start with no dirty pages waiting to be flushed
         t0 = time.perf_counter()
         rep = st.export(out, sel, scheme="group-kfold:2")
         t_exps.append(time.perf_counter() - t0)
         same = store.parent / "same-array.npy"
+        os.sync()
         t0 = time.perf_counter()
         np.save(same, X)
         t_saves.append(time.perf_counter() - t0)
