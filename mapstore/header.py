@@ -352,7 +352,13 @@ def grid_fingerprint(shape: tuple[int, int, int], affine: np.ndarray) -> str:
 
 
 def orientation_code(affine: np.ndarray) -> str:
-    """Axis codes such as ``"RAS"`` or ``"LAS"``: where each voxel axis points in world space."""
+    """Axis codes such as ``"RAS"`` or ``"LAS"``: where each voxel axis points in world space.
+
+    Examples
+    --------
+    >>> orientation_code(np.diag([-2.0, 2.0, 2.0, 1.0]))
+    'LAS'
+    """
     m = np.asarray(affine, dtype=np.float64)[:3, :3]
     norms = np.linalg.norm(m, axis=0)
     norms[norms == 0] = 1.0

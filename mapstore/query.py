@@ -24,7 +24,15 @@ _TARGET_KINDS = ("contrast", "concept", "concepts")
 
 
 def parse_scheme(scheme: str) -> tuple[str, float | int | None]:
-    """``leave-one-group-out``, ``group-kfold:K`` or ``holdout:FRACTION`` -> (kind, parameter)."""
+    """``leave-one-group-out``, ``group-kfold:K`` or ``holdout:FRACTION`` -> (kind, parameter).
+
+    Examples
+    --------
+    >>> parse_scheme("group-kfold:5")
+    ('group-kfold', 5)
+    >>> parse_scheme("holdout:0.2")
+    ('holdout', 0.2)
+    """
     if not isinstance(scheme, str):
         raise ParameterError(f"scheme must be a string, got {type(scheme).__name__}")
     if scheme in ("leave-one-group-out", "logo"):
@@ -54,6 +62,12 @@ def assign_folds(groups: np.ndarray, scheme: str, seed: int = 0) -> list[tuple[n
 
     ``leave-one-group-out`` is ``LeaveOneGroupOut``, ``group-kfold:K`` is ``GroupKFold(K)``
     and ``holdout:F`` is ``GroupShuffleSplit(n_splits=1, test_size=F, random_state=seed)``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> [test.tolist() for _, test in assign_folds(np.array(["a", "a", "b", "c"]), "leave-one-group-out")]
+    [[0, 1], [2], [3]]
     """
     from sklearn.model_selection import GroupKFold, GroupShuffleSplit, LeaveOneGroupOut
 

@@ -43,6 +43,13 @@ def t_to_z(t, dof: float) -> np.ndarray:
     Returns
     -------
     ndarray of float64; NaN stays NaN, +-inf stays +-inf.
+
+    Examples
+    --------
+    >>> float(t_to_z(2.228, dof=10).round(2))   # two-sided p = 0.05 at 10 DOF
+    1.96
+    >>> bool(abs(t_to_z(40.0, dof=20) - 9.296) < 1e-3)
+    True
     """
     from scipy import special
 
@@ -60,6 +67,11 @@ def p_to_z(p, sided: str = "one") -> np.ndarray:
 
     p = 0 is taken as the smallest positive double (z ~ 37.5) and p = 1 as 1 - 2^-53, so no
     value is infinite.
+
+    Examples
+    --------
+    >>> [round(float(z), 3) for z in p_to_z([0.05, 0.01], "two")]
+    [1.96, 2.576]
     """
     from scipy import special
 
