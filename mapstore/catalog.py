@@ -257,7 +257,7 @@ def _run_unit(unit: _Unit) -> _UnitResult:
     headers: list[dict[str, Any]] = []
     header_pos: dict[Any, int] = {}
     sidecars: list[dict[str, Any]] = []
-    sidecar_pos: dict[str, int] = {}
+    sidecar_pos: dict[tuple, int] = {}
     hidx: list[int] = []
     sidx: list[int] = []
     origins: dict[str | None, dict[str, Any]] = {}
@@ -288,9 +288,10 @@ def _run_unit(unit: _Unit) -> _UnitResult:
             hidx.append(pos)
         ents = m.entities
         meta, used, meta_json = resolver.resolve_full(m.relpath, ents)
-        spos = sidecar_pos.get(meta_json)
+        skey = (meta_json, *used)
+        spos = sidecar_pos.get(skey)
         if spos is None:
-            spos = sidecar_pos[meta_json] = len(sidecars)
+            spos = sidecar_pos[skey] = len(sidecars)
             sidecars.append({"metadata": meta_json, "sidecars": used})
         sidx.append(spos)
         sub = ents.get("sub")

@@ -594,7 +594,7 @@ class SidecarResolver:
         self.problems: list[Problem] = []
         self._content: dict[str, dict[str, Any] | None] = {}
         self._index: dict[str, list[tuple[str, str | None, dict[str, str]]]] = {}
-        self._chains: dict[str, list[tuple[str, str | None, dict[str, str]]]] = {}
+        self._chains: dict[str, tuple] = {}
         self._merged: dict[tuple[str, ...], tuple[dict[str, Any], list[str], str]] = {}
         for folder, names in jsons.items():
             items = []
@@ -625,10 +625,15 @@ class SidecarResolver:
                                              "warning", self.ds.key))
         return self._content[relpath]
 
-    def _chain(self, folder: str) -> list[tuple[str, str | None, dict[str, str]]]:
-        """Candidate sidecars for files in ``folder``: root first, each level by specificity."""
-        chain = self._chains.get(folder)
-        if chain is None:
+    def _chain(self, folder: str):
+        """Candidate sidecars for files in ``folder``: root first, each level by specificity.
+
+        Returned as (generic, entity, buckets): with many candidates (a sidecar per map in a
+        flat folder), those carrying the most discriminating entity are bucketed by its value,
+        so a file looks only at the sidecars that can apply to it.
+        """
+        plan = self._chains.get(folder)
+        if plan is None:
             levels = [""]
             parts = folder.split("/") if folder else []
             for i in range(len(parts)):
@@ -636,15 +641,38 @@ class SidecarResolver:
             chain = []
             for level in levels:
                 chain += sorted(self._index.get(level, ()), key=lambda c: (len(c[2]), c[0]))
-            self._chains[folder] = chain
-        return chain
+            ranked = [(i,) + c for i, c in enumerate(chain)]
+            plan = (ranked, None, {})
+            if len(ranked) > 32:
+                values: dict[str, set[str]] = {}
+                for _, _, _, ents in ranked:
+                    for k, v in ents.items():
+                        values.setdefault(k, set()).add(v)
+                best = max(values, key=lambda k: len(values[k]), default=None)
+                if best is not None and len(values[best]) > 1:
+                    buckets: dict[str, list] = {}
+                    generic = []
+                    for c in ranked:
+                        if best in c[3]:
+                            buckets.setdefault(c[3][best], []).append(c)
+                        else:
+                            generic.append(c)
+                    plan = (generic, best, buckets)
+            self._chains[folder] = plan
+        return plan
 
     def resolve_full(self, relpath: str, entities: dict[str, str]
                      ) -> tuple[dict[str, Any], list[str], str]:
         """Merged metadata (shared, do not modify), sidecars used, and the metadata as JSON."""
         suffix = entities.get("suffix")
         folder = relpath.rsplit("/", 1)[0] if "/" in relpath else ""
-        used = [rp for rp, suf, ents in self._chain(folder)
+        generic, best, buckets = self._chain(folder)
+        cands = generic
+        if best is not None:
+            extra = buckets.get(entities.get(best), ())
+            if extra:
+                cands = sorted(generic + extra)  # back into chain order
+        used = [rp for _, rp, suf, ents in cands
                 if suf == suffix and all(entities.get(k) == v for k, v in ents.items())]
         key = tuple(used)
         hit = self._merged.get(key)

@@ -264,3 +264,20 @@ def test_crash_mid_index_keeps_the_served_catalog(tmp_path, monkeypatch):
     assert mapstore.open(store).sql("SELECT * FROM maps ORDER BY map_id") == before
     monkeypatch.undo()
     assert mapstore.index([tmp_path / "src"], store, jobs=1, progress=False).new == 1  # lock released
+
+
+def test_sidecar_per_map_in_a_flat_folder(tmp_path):
+    # one JSON sidecar per map, many maps in one folder, identical metadata in several
+    ds = make_derivative(tmp_path / "flat", name="flat")
+    f = ds / "sub-01" / "func"
+    for i in range(80):
+        stem = f"sub-01_task-t_contrast-c{i}_stat-t_statmap"
+        write_map(f / f"{stem}.nii", shape=(2, 2, 2))
+        write_json(f / f"{stem}.json", {"DegreesOfFreedom": 10 + i % 3})
+    mapstore.index([ds], tmp_path / "store", progress=False)
+    rows = mapstore.open(tmp_path / "store").sql("SELECT contrast, dof, sidecars FROM maps").to_pylist()
+    assert len(rows) == 80
+    for r in rows:
+        i = int(r["contrast"][1:])
+        assert r["dof"] == 10 + i % 3
+        assert r["sidecars"] == [f"sub-01/func/sub-01_task-t_contrast-c{i}_stat-t_statmap.json"]
