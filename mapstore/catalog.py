@@ -297,7 +297,7 @@ def _run_unit(unit: _Unit) -> _UnitResult:
         sub = ents.get("sub")
         origin = origins.get(sub)
         if origin is None:
-            origin = origins[sub] = _origin(ds, sub, unit.by_sub, unit.overrides, meta)
+            origin = origins[sub] = _origin(ds, sub, unit.by_sub, unit.overrides)
         lab = origin["lab"]
         if lab is None and meta.get("InstitutionName") is not None:
             lab = str(meta["InstitutionName"])
@@ -319,8 +319,8 @@ def _run_unit(unit: _Unit) -> _UnitResult:
     return _UnitResult(_assemble(cols, headers, hidx, sidecars, sidx, pt), problems, new, changed, unchanged)
 
 
-def _origin(ds: DatasetInfo, sub: str | None, by_sub: dict[str, dict[str, Any]], over: MetadataOverrides,
-            meta: dict[str, Any]) -> dict[str, Any]:
+def _origin(ds: DatasetInfo, sub: str | None, by_sub: dict[str, dict[str, Any]],
+            over: MetadataOverrides) -> dict[str, Any]:
     """study, site, lab (None: from each map's sidecar) and participant of one subject."""
     prow = by_sub.get(sub) if sub is not None else None
     site = None
