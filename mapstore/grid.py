@@ -305,13 +305,6 @@ def _weights_1d(coord: np.ndarray, n: int, method: str):
     return w, valid
 
 
-def _apply_axis(w, x: np.ndarray, axis: int) -> np.ndarray:
-    moved = np.moveaxis(x, axis, 0)
-    shp = moved.shape
-    out = w @ moved.reshape(shp[0], -1)
-    return np.moveaxis(np.asarray(out).reshape((w.shape[0],) + shp[1:]), 0, axis)
-
-
 def resample(data: np.ndarray, src_affine: np.ndarray, grid: TargetGrid, method: str = "linear",
              return_path: bool = False):
     """Resample a 3-D array (voxel-to-world ``src_affine``) onto ``grid``.
@@ -387,15 +380,25 @@ def _reindex(data, perm, sign, offset, grid):
 
 
 def _separable(data, perm, scale, offset, grid, method):
-    src = np.transpose(data, perm).astype(np.float64)
-    valid = []
-    x = src
+    """Three sparse 1-D interpolations in float32, each on a C-contiguous 2-D view.
+
+    Sparse products touch only stored (non-zero) weights, so a NaN reaches exactly the
+    targets that give it weight.
+    """
+    x = np.ascontiguousarray(np.transpose(data, perm), dtype=np.float32)
+    ws, valid = [], []
     for t in range(3):
         coord = scale[t] * np.arange(grid.shape[t]) + offset[t]
-        w, v = _weights_1d(coord, src.shape[t], method)
-        x = _apply_axis(w, x, t)
+        w, v = _weights_1d(coord, x.shape[t], method)
+        ws.append(w.astype(np.float32))
         valid.append(v)
-    out = x.astype(np.float32)
+    n0, n1, n2 = x.shape
+    m0, m1 = ws[0].shape[0], ws[1].shape[0]
+    x = (ws[0] @ x.reshape(n0, -1)).reshape(m0, n1, n2)                      # axis 0
+    x = np.ascontiguousarray(x.transpose(0, 2, 1)).reshape(-1, n1)            # (m0 * n2, n1)
+    x = np.asarray(x @ ws[1].T.tocsc()).reshape(m0, n2, m1)                   # axis 1
+    x = np.ascontiguousarray(x.transpose(0, 2, 1)).reshape(-1, n2)            # (m0 * m1, n2)
+    out = np.asarray(x @ ws[2].T.tocsc(), dtype=np.float32).reshape(m0, m1, -1)  # axis 2
     out[~(valid[0][:, None, None] & valid[1][None, :, None] & valid[2][None, None, :])] = np.nan
     return out
 

@@ -35,12 +35,15 @@ def digest_file(path: str, head_bytes: int = 4096) -> FileDigest:
         first = fh.read(want)
         h.update(first)
         n += len(first)
-        while len(first) == want:  # a short first read means end of file (regular files)
-            block = fh.read(BLOCK)
-            if not block:
-                break
-            h.update(block)
-            n += len(block)
+        if len(first) == want:  # a short first read means end of file (regular files)
+            buf = bytearray(BLOCK)  # reused: no fresh 1 MiB object per block
+            view = memoryview(buf)
+            while True:
+                got = fh.readinto(buf)
+                if not got:
+                    break
+                h.update(view[:got])
+                n += got
     return FileDigest(h.hexdigest(), n, first[:head_bytes])
 
 
