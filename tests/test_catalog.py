@@ -6,6 +6,7 @@ import json
 import os
 import shutil
 import subprocess
+import sys
 
 import duckdb
 import nibabel as nib
@@ -184,7 +185,7 @@ def test_busy_store_fails_fast_and_keeps_old_snapshot(tmp_path):
     mapstore.index([tmp_path / "src"], store, progress=False)
     head = (store / "HEAD").read_text()
     # a second process holds the writer lock
-    proc = subprocess.Popen(["python", "-c", (
+    proc = subprocess.Popen([sys.executable, "-c", (
         "import sys, time, pathlib; from mapstore.store import write_lock\n"
         f"with write_lock(pathlib.Path({str(store)!r})):\n print('locked', flush=True); time.sleep(30)")],
         stdout=subprocess.PIPE, text=True)
