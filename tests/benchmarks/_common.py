@@ -25,3 +25,13 @@ def pybids_stat_config(folder: Path) -> str:
         {"name": "contrast", "pattern": r"[_/\\]+contrast-([a-zA-Z0-9+]+)"},
         {"name": "stat", "pattern": r"[_/\\]+stat-([a-zA-Z0-9+]+)"}]}))
     return str(cfg)
+
+
+def bench_dataset(root: Path, name: str, dof: int) -> Path:
+    """An empty derivative dataset with a top-level t-map sidecar."""
+    ds = root / name
+    ds.mkdir(parents=True, exist_ok=True)
+    (ds / "dataset_description.json").write_text(json.dumps({
+        "Name": name, "BIDSVersion": "1.9.0", "DatasetType": "derivative", "GeneratedBy": [{"Name": "bench"}]}))
+    (ds / "task-go_statmap.json").write_text(json.dumps({"DegreesOfFreedom": dof}))
+    return ds

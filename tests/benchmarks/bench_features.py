@@ -21,7 +21,6 @@ Usage::
 from __future__ import annotations
 
 import argparse
-import json
 import os
 import resource
 import shutil
@@ -38,7 +37,7 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent.parent))
 
 sys.path.insert(0, str(HERE))
-from _common import floor, pybids_stat_config  # noqa: E402
+from _common import bench_dataset, floor, pybids_stat_config  # noqa: E402
 
 from mapstore.demo import GRIDS, _axes, _blob, _smooth_noise  # noqa: E402
 
@@ -50,12 +49,7 @@ def make_tree(root: Path, n_maps: int, grids: list[str], gz: bool = True) -> lis
     per = -(-n_maps // len(grids))
     for gi, gname in enumerate(grids):
         g = GRIDS[gname]
-        ds = root / f"study{gi}"
-        ds.mkdir(parents=True, exist_ok=True)
-        (ds / "dataset_description.json").write_text(json.dumps({
-            "Name": f"study{gi}", "BIDSVersion": "1.9.0", "DatasetType": "derivative",
-            "GeneratedBy": [{"Name": "bench"}]}))
-        (ds / "task-go_statmap.json").write_text(json.dumps({"DegreesOfFreedom": 40}))
+        ds = bench_dataset(root, f"study{gi}", 40)
         axes = _axes(g)
         base = _blob(axes, (30, -20, 10), 8.0) * 3
         for i in range(per):

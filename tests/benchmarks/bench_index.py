@@ -15,7 +15,6 @@ from __future__ import annotations
 
 import argparse
 import gzip
-import json
 import resource
 import subprocess
 import sys
@@ -27,7 +26,7 @@ import nibabel as nib
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _common import floor, pybids_stat_config  # noqa: E402
+from _common import bench_dataset, floor, pybids_stat_config  # noqa: E402
 
 
 def make_tree(root: Path, n_maps: int, n_studies: int = 10) -> list[Path]:
@@ -38,12 +37,7 @@ def make_tree(root: Path, n_maps: int, n_studies: int = 10) -> list[Path]:
     per_study = n_maps // n_studies
     files = []
     for s in range(n_studies):
-        ds = root / f"study{s:02d}"
-        ds.mkdir(parents=True, exist_ok=True)
-        (ds / "dataset_description.json").write_text(json.dumps({
-            "Name": f"study{s:02d}", "BIDSVersion": "1.9.0", "DatasetType": "derivative",
-            "GeneratedBy": [{"Name": "bench"}]}))
-        (ds / "task-go_statmap.json").write_text(json.dumps({"DegreesOfFreedom": 50}))
+        ds = bench_dataset(root, f"study{s:02d}", 50)
         for i in range(per_study):
             sub, con = divmod(i, 20)
             folder = ds / f"sub-{sub:03d}" / "func"
