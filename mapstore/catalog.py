@@ -33,7 +33,7 @@ from .discover import (
     walk_dataset,
 )
 from .params import resolve_jobs
-from .errors import HeaderError, ParameterError
+from .errors import HeaderError, NoDatasetsFound, ParameterError
 from .hashing import digest_file
 from .header import NIFTI1_SIZE, NIFTI2_SIZE, HeaderFacts, header_prefix, parse_header
 from .store import (
@@ -416,6 +416,12 @@ def index(
     meta_over = MetadataOverrides.load(overrides)
     store_path = Path(store).expanduser().absolute()
     datasets, problems = find_datasets(roots)
+    if not datasets:
+        why = "; ".join(f"{p.path}: {p.reason}" for p in problems if p.level == "error" or
+                        p.code == "no-derivatives") or "no dataset_description.json or sub-* folders"
+        raise NoDatasetsFound(f"no BIDS derivative dataset found under {', '.join(map(str, roots))} ({why}); "
+                             "give a derivative dataset, a raw dataset with derivatives/, or a folder of them. "
+                             "Nothing was written.")
     for ds in datasets:
         droot = Path(ds.root)
         if store_path == droot or droot in store_path.parents:

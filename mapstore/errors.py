@@ -13,6 +13,7 @@ __all__ = [
     "ParameterError",
     "HeaderError",
     "StoreNotFound",
+    "NoDatasetsFound",
     "StoreBusy",
     "StoreCorrupt",
     "QueryError",
@@ -54,6 +55,10 @@ class HeaderError(MapstoreError, ValueError):
 
 class StoreNotFound(MapstoreError, FileNotFoundError):
     """No mapstore store exists at the given path."""
+
+
+class NoDatasetsFound(MapstoreError, FileNotFoundError):
+    """No BIDS derivative dataset was found under the folders given to index."""
 
 
 class StoreBusy(MapstoreError, BlockingIOError):

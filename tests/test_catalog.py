@@ -282,3 +282,13 @@ def test_sidecar_per_map_in_a_flat_folder(tmp_path):
         i = int(r["contrast"][1:])
         assert r["dof"] == 10 + i % 3
         assert r["sidecars"] == [f"sub-01/func/sub-01_task-t_contrast-c{i}_stat-t_statmap.json"]
+
+
+def test_no_dataset_found_writes_nothing(tmp_path):
+    from mapstore.errors import NoDatasetsFound
+
+    (tmp_path / "empty").mkdir()
+    for root in (tmp_path / "missing", tmp_path / "empty"):
+        with pytest.raises(NoDatasetsFound, match="Nothing was written"):
+            mapstore.index([root], tmp_path / "store", progress=False)
+    assert not (tmp_path / "store").exists()
