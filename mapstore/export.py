@@ -82,6 +82,11 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         raise ParameterError(f"fmt must be 'npy' or 'parquet', got {fmt!r}")
     parse_scheme(scheme)
     out = Path(out).expanduser().absolute()
+    for root in sel.store.sql("SELECT root FROM datasets")["root"].to_pylist():
+        r = Path(root)
+        if out == r or r in out.parents:
+            raise ExportError(f"{out}: lies inside the source dataset {r}; mapstore never writes to source "
+                              "datasets, choose an --out folder elsewhere")
     if out.exists() and any(out.iterdir()) and not overwrite:
         raise ExportError(f"{out}: folder exists and is not empty; choose a new --out or pass --overwrite")
     with warnings.catch_warnings(record=True) as caught:

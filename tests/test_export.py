@@ -140,6 +140,9 @@ def test_export_refuses_to_overwrite_and_parquet_format(labelled_store, tmp_path
     assert mapstore.verify(out).ok
     with pytest.raises(ExportError, match="not empty"):
         st.export(out, sel)
+    root = st.sql("SELECT root FROM datasets LIMIT 1")["root"][0].as_py()
+    with pytest.raises(ExportError, match="source dataset"):
+        st.export(f"{root}/derivatives/export", sel)
 
 
 def test_export_cli(labelled_store, tmp_path):
