@@ -18,7 +18,7 @@ import os
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Any, Iterable, Iterator
+from typing import Any, Iterable
 
 from .errors import RulesError
 
@@ -721,6 +721,3 @@ def read_participants(ds: DatasetInfo) -> tuple[list[dict[str, Any]], str | None
     return [], None, []
 
 
-def iter_chunks(items: list, size: int) -> Iterator[list]:
-    for i in range(0, len(items), size):
-        yield items[i: i + size]

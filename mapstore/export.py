@@ -128,7 +128,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
                          "shape": (n, nv)})
                 starts = list(range(0, n, BLOCK_ROWS))
                 pending = reader.submit(fs.read_into, ids[0:BLOCK_ROWS], buf) if starts else None
-                for k, i in enumerate(starts):
+                for k in range(len(starts)):
                     block = pending.result()
                     if k + 1 < len(starts):
                         nxt = starts[k + 1]

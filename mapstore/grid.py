@@ -41,7 +41,6 @@ __all__ = [
     "gunzip",
     "crop_grid",
     "resample",
-    "resample_path",
     "METHODS",
 ]
 
@@ -431,12 +430,6 @@ def _general(data, m, grid, method):
     out = out.astype(np.float32)
     out[~inside] = np.nan
     return out
-
-
-def resample_path(src_shape: tuple[int, int, int], src_affine: np.ndarray, grid: TargetGrid,
-                  method: str) -> str:
-    """Which resampling path a source grid would take (without resampling)."""
-    return _plan(_target_to_source(src_affine, grid), src_shape, grid, method)[0]
 
 
 def crop_grid(grid: TargetGrid, indices: np.ndarray) -> tuple[TargetGrid, np.ndarray]:

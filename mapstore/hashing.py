@@ -5,7 +5,7 @@ from __future__ import annotations
 import hashlib
 from dataclasses import dataclass
 
-__all__ = ["FileDigest", "digest_file", "sha256_file", "sha256_bytes"]
+__all__ = ["FileDigest", "digest_file", "sha256_file"]
 
 BLOCK = 1 << 20
 # the first read is small: asking for 1 MiB makes Python allocate (and the kernel map) a 1 MiB
@@ -52,5 +52,3 @@ def sha256_file(path: str) -> str:
     return digest_file(path, 0).sha256
 
 
-def sha256_bytes(data: bytes) -> str:
-    return hashlib.sha256(data).hexdigest()

@@ -228,10 +228,12 @@ def load_vocabulary(path: str | os.PathLike[str]) -> Vocabulary:
         for k in RULE_FIELDS:
             if k not in rule:
                 continue
-            vals = rule[k] if isinstance(rule[k], list) else [rule[k]]
+            listed = isinstance(rule[k], list)
+            vals = rule[k] if listed else [rule[k]]
             pats = []
             for j, v in enumerate(vals):
-                pats.append(_pattern(v, lambda msg, k=k, w=where: fail(w + (k,), msg)))
+                at = where + ((k, j) if listed else (k,))
+                pats.append(_pattern(v, lambda msg, at=at: fail(at, msg)))
             match[k] = pats
         compiled.append({"match": match, "concepts": list(cs), "index": i})
     inherit = doc.get("inherit_broader", False)

@@ -10,7 +10,7 @@ from __future__ import annotations
 
 import warnings
 from dataclasses import dataclass, field
-from typing import Any, Iterator
+from typing import Any
 
 import numpy as np
 
@@ -177,8 +177,6 @@ class Selection:
             fold[te] = i
         return fold
 
-    def iter_splits(self, scheme: str = "leave-one-group-out", seed: int = 0) -> Iterator[tuple[np.ndarray, np.ndarray]]:
-        yield from self.splits(scheme, seed)
 
 
 def _labels(cat, with_broader: bool):
