@@ -441,7 +441,8 @@ def index(
         found_keys = {d.key for d in datasets}
         if head.catalog:
             old = Catalog(store_path)
-            prev = conform(old.table("maps"), MAPS_SCHEMA).select(["relpath", "dataset", *_HEADER_COLUMNS])
+            old_maps = conform(old.table("maps"), MAPS_SCHEMA)
+            prev = old_maps.select(["relpath", "dataset", *_HEADER_COLUMNS])
             prev_datasets = old.table("datasets").to_pylist()
             prev_participants = old.table("participants").to_pylist()
             prev_problems = old.table("problems").to_pylist()
@@ -453,9 +454,7 @@ def index(
         if kept_keys:
             import pyarrow.compute as pc
 
-            old_maps = Catalog(store_path).table("maps")
-            kept_rows = old_maps.filter(pc.is_in(old_maps["dataset"], pa.array(sorted(kept_keys))))
-            tables.append(conform(kept_rows, MAPS_SCHEMA))
+            tables.append(old_maps.filter(pc.is_in(old_maps["dataset"], pa.array(sorted(kept_keys)))))
 
         participant_rows = [r for r in prev_participants if r["dataset"] in kept_keys]
         parser = EntityParser()
