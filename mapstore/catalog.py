@@ -10,7 +10,9 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 import os
+import re
 import sys
 import time
 from concurrent.futures import ProcessPoolExecutor
@@ -24,6 +26,7 @@ from .discover import (
     DatasetInfo,
     EntityParser,
     MetadataOverrides,
+    ModelFiles,
     NameRules,
     Problem,
     SidecarResolver,
@@ -58,7 +61,7 @@ _ENTITY_COLUMNS = ("sub", "ses", "task", "acq", "run", "rec", "space", "res", "d
 _HEADER_COLUMNS = ("sha256", "nbytes", "mtime_ns", "nifti_version", "endianness", "shape", "n_volumes",
                    "dtype", "bitpix", "vox_offset", "scl_slope", "scl_inter", "intent_code",
                    "intent_name", "intent_p1", "qform_code", "sform_code", "affine_source", "affine",
-                   "voxel_size", "orientation", "grid_id", "header_warnings")
+                   "voxel_size", "orientation", "grid_id", "descrip", "header_warnings")
 
 
 @dataclass
@@ -151,7 +154,7 @@ def _header_columns(facts: HeaderFacts) -> dict[str, Any]:
         "qform_code": facts.qform_code, "sform_code": facts.sform_code,
         "affine_source": facts.affine_source, "affine": list(facts.affine),
         "voxel_size": list(facts.voxel_size), "orientation": facts.orientation,
-        "grid_id": facts.grid_id, "header_warnings": list(facts.warnings),
+        "grid_id": facts.grid_id, "descrip": facts.descrip, "header_warnings": list(facts.warnings),
         "_data_nbytes": facts.data_nbytes,
     }
 
@@ -232,8 +235,9 @@ def _previous_subset(prev: pa.Table | None, dataset: str, top: list[str] | None,
 
 
 _STATIC_HEADER = tuple(c for c in _HEADER_COLUMNS if c not in ("sha256", "nbytes", "mtime_ns"))
-_PER_ROW = ("map_id", "dataset", "relpath", *_ENTITY_COLUMNS, "suffix", "extension", "entities", "named_by",
-            "participant", "study", "site", "lab", "sha256", "nbytes", "mtime_ns", "dof", "dof_source")
+_PER_ROW = ("map_id", "dataset", "relpath", *_ENTITY_COLUMNS, "map_kind", "suffix", "extension", "entities",
+            "named_by", "participant", "study", "site", "lab", "sha256", "nbytes", "mtime_ns", "dof", "dof_source",
+            "model_mask", "model_mask_sha256")
 _SIDECAR_COLUMNS = ("metadata", "sidecars")
 
 
@@ -247,10 +251,12 @@ def _run_unit(unit: _Unit) -> _UnitResult:
     parser = unit.parser
     maps, jsons, problems = walk_dataset(ds, parser, unit.rules, unit.top, unit.root_maps)
     resolver = SidecarResolver(ds, jsons, parser)
+    model = ModelFiles(ds, jsons, parser)
+    mask_sha: dict[str, str | None] = {}
     # previous rows: a few columns as lists; reused header columns are gathered from the table
     pt = unit.prev
     pcol = {c: pt[c].to_pylist() for c in ("relpath", "nbytes", "mtime_ns", "sha256", "intent_code",
-                                             "intent_p1")} if pt is not None and pt.num_rows else {}
+                                             "intent_p1", "descrip")} if pt is not None and pt.num_rows else {}
     prev = {r: i for i, r in enumerate(pcol.get("relpath", []))}
     cache: dict[bytes, dict[str, Any]] = {}
     rows: list[tuple] = []
@@ -266,7 +272,8 @@ def _run_unit(unit: _Unit) -> _UnitResult:
         old = prev.get(m.relpath)
         if old is not None and pcol["nbytes"][old] == m.nbytes and pcol["mtime_ns"][old] == m.mtime_ns:
             sha, nbytes = pcol["sha256"][old], pcol["nbytes"][old]
-            hdr = {"intent_code": pcol["intent_code"][old], "intent_p1": pcol["intent_p1"][old]}
+            hdr = {"intent_code": pcol["intent_code"][old], "intent_p1": pcol["intent_p1"][old],
+                   "descrip": pcol["descrip"][old]}
             hidx.append(-1 - old)  # a previous row: resolved against the previous table
             unchanged += 1
         else:
@@ -301,22 +308,87 @@ def _run_unit(unit: _Unit) -> _UnitResult:
         lab = origin["lab"]
         if lab is None and meta.get("InstitutionName") is not None:
             lab = str(meta["InstitutionName"])
-        dof = _to_float(meta.get("DegreesOfFreedom"))
-        dof_source = "sidecar" if dof is not None else None
-        if dof is None and hdr["intent_code"] == 3 and hdr["intent_p1"] and hdr["intent_p1"] > 0:
-            dof, dof_source = float(hdr["intent_p1"]), "header"  # nifti1.h: t-test intent_p1 = DOF
+        mask_rel = m.extras.get("mask") or model.mask_for(m.relpath, ents)
+        if mask_rel is not None and mask_rel not in mask_sha:
+            mask_sha[mask_rel] = _mask_digest(ds, mask_rel, problems)
+        msha = mask_sha.get(mask_rel) if mask_rel else None
+        if msha is None:
+            mask_rel = None
+        dof, dof_source = _degrees_of_freedom(m, meta, used, hdr, model, problems)
         get = ents.get
         rows.append((
             map_id_for(ds.key, m.relpath), ds.key, m.relpath,
-            *[get(c) for c in _ENTITY_COLUMNS], get("suffix"), get("extension"),
+            *[get(c) for c in _ENTITY_COLUMNS], "contrast" if get("contrast") else "model",
+            get("suffix"), get("extension"),
             json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")}, sort_keys=True),
             m.named_by, origin["participant"], origin["study"], origin["site"], lab,
-            sha, nbytes, m.mtime_ns, dof, dof_source,
+            sha, nbytes, m.mtime_ns, dof, dof_source, mask_rel, msha,
         ))
     problems.extend(resolver.problems)
     # one tuple per row while crawling, transposed into columns once
     cols = dict(zip(_PER_ROW, (list(c) for c in zip(*rows)))) if rows else {c: [] for c in _PER_ROW}
     return _UnitResult(_assemble(cols, headers, hidx, sidecars, sidx, pt), problems, new, changed, unchanged)
+
+
+# SPM writes the DOF of a T image into its header description: "SPM{T_[20.0]} - contrast 1: ..."
+_DESCRIP_DOF = re.compile(r"\{T_\[\s*([0-9]+(?:\.[0-9]*)?(?:[eE][+-]?[0-9]+)?)\s*\]\}")
+
+
+def _degrees_of_freedom(m, meta: dict[str, Any], sidecars: list[str], hdr: dict[str, Any], model: ModelFiles,
+                        problems: list[Problem]) -> tuple[float | None, str | None]:
+    """A map's DOF from what the software left, first found wins.
+
+    1. sidecar ``DegreesOfFreedom``; 2. header ``intent_p1`` of a t-test intent (nifti1.h);
+    3. the design matrices beside the map (rows - rank); 4. a header description
+    ``{T_[df]}`` (SPM); 5. a DOF text file named by a name rule (FSL's ``stats/dof``).
+    A value that is not a positive number is a warning naming the file, and the next source
+    is tried.
+    """
+    ds = m.dataset
+    raw = meta.get("DegreesOfFreedom")
+    if raw is not None:
+        dof = _to_float(raw)
+        if dof is not None and dof > 0 and math.isfinite(dof):
+            return dof, "sidecar"
+        where = os.path.join(ds.root, sidecars[-1]) if sidecars else m.path
+        problems.append(Problem(m.path, "bad-dof", f"DegreesOfFreedom {raw!r} (in {where}) is not a positive "
+                                "number; it was ignored", "write the number, e.g. \"DegreesOfFreedom\": 70",
+                                "warning", ds.key))
+    if hdr["intent_code"] == 3 and hdr["intent_p1"] and hdr["intent_p1"] > 0:
+        return float(hdr["intent_p1"]), "header"
+    dof, designs, why = model.design_dof(m.relpath, m.entities)
+    if why:
+        problems.append(Problem(m.path, "bad-design", why, "fix the design matrix (a TSV of numbers with a "
+                                "header row)", "warning", ds.key))
+    if dof is not None:
+        return dof, "design"
+    hit = _DESCRIP_DOF.search(hdr.get("descrip") or "")
+    if hit:
+        return float(hit.group(1)), "descrip"
+    dof_file = m.extras.get("dof_file")
+    if dof_file:
+        path = os.path.join(ds.root, dof_file)
+        try:
+            with open(path, encoding="utf-8") as fh:
+                text = fh.read().strip()
+        except OSError:
+            return None, None
+        dof = _to_float(text)
+        if dof is not None and dof > 0 and math.isfinite(dof):
+            return dof, "dof-file"
+        problems.append(Problem(m.path, "bad-dof", f"the DOF file {path} holds {text[:40]!r}, not a positive "
+                                "number; it was ignored", "write the number alone in the file", "warning", ds.key))
+    return None, None
+
+
+def _mask_digest(ds: DatasetInfo, rel: str, problems: list[Problem]) -> str | None:
+    path = os.path.join(ds.root, rel)
+    try:
+        return digest_file(path).sha256
+    except OSError as exc:
+        problems.append(Problem(path, "unreadable-mask", f"cannot read the model's mask ({exc.strerror}); its "
+                                "maps are used without it", "fix or fetch the mask file", "warning", ds.key))
+        return None
 
 
 def _origin(ds: DatasetInfo, sub: str | None, by_sub: dict[str, dict[str, Any]],

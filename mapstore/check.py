@@ -22,7 +22,10 @@ import pyarrow as pa
 __all__ = ["Finding", "CheckReport", "check_store", "png_bytes", "report_json", "LEVELS"]
 
 LEVELS = ("info", "warning", "error")
-KNOWN_STATS = {"t", "z", "p", "F", "chi2", "effect", "variance", "std", "r", "logp"}
+# BIDS statistical-derivatives stat labels, plus the model maps nilearn writes (errorts, rsquared)
+# and SPM's extra-sum-of-squares images (ess)
+KNOWN_STATS = {"t", "z", "p", "F", "chi2", "effect", "variance", "std", "r", "logp", "errorts", "rsquared",
+               "ess"}
 # nifti1.h intent codes that name a statistic, and the stat labels they agree with
 INTENT_STATS = {3: {"t"}, 4: {"F"}, 5: {"z"}, 6: {"chi2"}, 22: {"p"}, 23: {"logp"}, 24: {"logp"},
                 2: {"r"}}
@@ -228,10 +231,17 @@ def _check_grids(maps, add, report) -> None:
             add(Finding("warning", "grid", "mixed-grids", ds,
                         f"dataset {ds} mixes {len(counts)} grids ({', '.join(f'{g} x{n}' for g, n in counts.most_common())})",
                         "fine for mapstore (every map is resampled), but check the models were fit alike"))
+    multi: dict[str, list[dict]] = defaultdict(list)
     for m in maps:
         if m["n_volumes"] and m["n_volumes"] > 1:
-            add(Finding("error", "grid", "not-one-volume", m["map_id"], f"{m['relpath']} has {m['n_volumes']} "
-                        "volumes; a statistic map must be one 3-D volume", "split the file into one map per file"))
+            multi[m["dataset"]].append(m)
+    for ds, ms in sorted(multi.items()):
+        kinds = Counter(f"stat-{m['stat']}" for m in ms)
+        add(Finding("info", "grid", "multi-volume", ds,
+                    f"{len(ms)} map(s) hold several volumes ({', '.join(f'{k} x{n}' for k, n in sorted(kinds.items()))}"
+                    f"; e.g. {ms[0]['relpath']}, {ms[0]['n_volumes']} volumes): an F contrast's effect has one "
+                    "volume per contrast row, a residual map one per scan; they are indexed and left out of "
+                    "feature sets", "nothing to do; split a file into 3-D maps if you need its volumes"))
 
 
 _MNI_BRAIN_BOX = (np.array([-78.0, -112.0, -72.0]), np.array([78.0, 76.0, 86.0]))  # mm, common practice
@@ -287,7 +297,9 @@ def _check_stats(maps, add) -> None:
                         "check which statistic the file holds; fix the name or the header"))
         if stat == "t" and m["dof"] is None:
             add(Finding("warning", "stat", "t-without-dof", m["map_id"],
-                        f"{m['relpath']}: t map without DegreesOfFreedom (sidecar or header)",
+                        f"{m['relpath']}: t map without usable degrees of freedom (none of: sidecar "
+                        "DegreesOfFreedom, header intent_p1, a design matrix beside it, a header description "
+                        "{T_[df]}, a DOF file)",
                         "add DegreesOfFreedom to the sidecar to allow t-to-z conversion"))
 
 
@@ -330,6 +342,9 @@ def _check_metadata(store, maps, add) -> None:
 def _check_features(store, fs, maps, min_coverage, add, report, pictures, max_rows) -> None:
     rows = fs.rows.to_pylist()
     stat_of = {m["map_id"]: m for m in maps}
+    for p in store.sql(f"SELECT * FROM feature_problems WHERE feature_set = '{fs.name}'").to_pylist():
+        add(Finding("error", "features", f"feature-{p['code']}", p["map_id"], f"{p['path']}: {p['reason']}",
+                    p["remedy"]))
     for r in rows:
         m = stat_of.get(r["map_id"])
         if m is None:
@@ -342,6 +357,11 @@ def _check_features(store, fs, maps, min_coverage, add, report, pictures, max_ro
             add(Finding("warning", "coverage", "low-coverage", r["map_id"],
                         f"{name}: covers {r['coverage']:.0%} of the mask (threshold {min_coverage:.0%})",
                         "drop it with --min-coverage, or choose a coverage-based mask"))
+        if r.get("p_clipped"):
+            add(Finding("warning", "stat", "p-zero-clipped", r["map_id"],
+                        f"{name}: {r['p_clipped']} voxel(s) with p = 0 inside the model's mask were taken as the "
+                        "smallest positive p (z ~ 37.5)", "expected for very strong effects in float32 p maps; "
+                        "prefer the z or t map of the same contrast"))
         vmin, vmax = r.get("vmin"), r.get("vmax")
         if vmin is None or vmax is None:
             continue

@@ -34,11 +34,14 @@ __all__ = [
     "top_folders",
     "SidecarResolver",
     "read_participants",
+    "ModelFiles",
+    "label_problems",
     "STAT_SUFFIX",
 ]
 
 STAT_SUFFIX = "statmap"
-NIFTI_EXTENSIONS = (".nii.gz", ".nii")
+# files a GLM writer leaves beside its maps: the model's mask and its design matrix
+COMPANION_SUFFIXES = ("_mask.nii.gz", "_mask.nii", "_design.tsv")
 # Entities of the statistical-derivatives convention that pybids' bundled config lacks.
 EXTRA_ENTITIES = {
     "contrast": r"[_/\\]+contrast-([a-zA-Z0-9+]+)",
@@ -73,7 +76,7 @@ class DatasetInfo:
     raw_root: str | None
     raw_name: str | None
     description: dict[str, Any]
-    has_description: bool
+    source_roots: list[str] = field(default_factory=list)  # local raw datasets named by SourceDatasets
 
     @property
     def study(self) -> str:
@@ -91,6 +94,7 @@ class MapFile:
     nbytes: int
     mtime_ns: int
     named_by: str  # "bids" or "rule:<n>"
+    extras: dict[str, str] = field(default_factory=dict)  # from a name rule: mask, dof_file (relpaths)
 
 
 def _short_key(pattern: str) -> str | None:
@@ -220,10 +224,9 @@ class NameRules:
             if not isinstance(fixed, dict) or not all(isinstance(v, str) for v in fixed.values()):
                 raise RulesError(f"{where}: 'entities' must map entity names to strings")
             names = set(rx.groupindex) | set(fixed)
-            missing = {"contrast", "stat"} - names
-            if missing:
-                raise RulesError(f"{where}: the rule never sets {sorted(missing)}; every map "
-                                 "needs a contrast and a stat (capture them or fix them in 'entities')")
+            if "stat" not in names:
+                raise RulesError(f"{where}: the rule never sets 'stat'; every map needs a stat "
+                                 "(capture it or fix it in 'entities')")
             datasets = rule.get("datasets", ["*"])
             if isinstance(datasets, str):
                 datasets = [datasets]
@@ -367,14 +370,63 @@ def _looks_like_dataset(path: Path) -> bool:
         return False
 
 
-def _make_dataset(root: Path, desc: dict[str, Any] | None, raw: tuple[Path, dict] | None) -> DatasetInfo:
+def _source_raw(root: Path, desc: dict[str, Any]) -> tuple[Path, dict] | None:
+    """The first local dataset named by ``SourceDatasets`` (a relative path or a file: URL)."""
+    sources = desc.get("SourceDatasets")
+    if not isinstance(sources, list):
+        return None
+    for src in sources:
+        url = src.get("URL") if isinstance(src, dict) else src if isinstance(src, str) else None
+        if not isinstance(url, str) or not url.strip():
+            continue
+        url = url.strip()
+        if url.startswith("file://"):
+            cand = Path(url[len("file://"):])
+        elif "://" in url or url.startswith(("doi:", "bids:")):
+            continue  # remote: nothing local to read
+        else:
+            cand = root / url
+        cand = Path(os.path.normpath(cand))
+        if (cand / "dataset_description.json").is_file():
+            sdesc, _ = _read_description(cand)
+            return cand, sdesc or {}
+    return None
+
+
+def _enclosing_raw(root: Path) -> tuple[Path, dict] | None:
+    """The raw dataset whose ``derivatives/`` folder holds ``root`` (at any depth), if any."""
+    for parent in root.parents:
+        if parent.name == "derivatives" and (parent.parent / "dataset_description.json").is_file():
+            desc, _ = _read_description(parent.parent)
+            if desc is not None and desc.get("DatasetType") != "derivative":
+                return parent.parent, desc
+    return None
+
+
+def _make_dataset(root: Path, desc: dict[str, Any] | None, raw: tuple[Path, dict] | None,
+                  problems: list[Problem] | None = None) -> DatasetInfo:
+    described = desc is not None
     desc = desc or {}
     generated = desc.get("GeneratedBy")
     if not generated and isinstance(desc.get("PipelineDescription"), dict):
         generated = [desc["PipelineDescription"]]  # older BIDS derivative descriptions
     if isinstance(generated, dict):
         generated = [generated]
-    name = str(desc.get("Name") or root.name)
+    name = str(desc.get("Name") or "").strip() or root.name
+    if described and not str(desc.get("Name") or "").strip() and problems is not None:
+        problems.append(Problem(str(root / "dataset_description.json"), "no-dataset-name",
+                                f"dataset_description.json has no Name; the dataset is named after its "
+                                f"folder, {root.name!r}",
+                                "add a \"Name\" to dataset_description.json (the key of its maps follows it)",
+                                "warning"))
+    sources: list[str] = []
+    if raw is None:
+        raw = _enclosing_raw(root)
+    src = _source_raw(root, desc)
+    if src is not None:
+        sources.append(str(src[0]))
+        if raw is None and src[1].get("DatasetType") != "derivative":
+            raw = src
     raw_name = None
     if raw is not None:
         raw_name = str(raw[1].get("Name") or raw[0].name)
@@ -387,7 +439,7 @@ def _make_dataset(root: Path, desc: dict[str, Any] | None, raw: tuple[Path, dict
         generated_by=list(generated or []),
         bids_version=desc.get("BIDSVersion"),
         raw_root=str(raw[0]) if raw else None, raw_name=raw_name,
-        description=desc, has_description=bool(desc),
+        description=desc, source_roots=sources,
     )
 
 
@@ -436,7 +488,7 @@ def find_datasets(roots: Iterable[str | os.PathLike[str]], max_depth: int = 4
                 problems.append(Problem(str(path / "dataset_description.json"), "no-dataset-type",
                                         "dataset_description.json has no DatasetType",
                                         "add \"DatasetType\": \"derivative\" and GeneratedBy", "warning"))
-            found.append(_make_dataset(path, desc, raw))
+            found.append(_make_dataset(path, desc, raw, problems))
             # derivative datasets may nest further derivatives
             deriv = path / "derivatives"
             if deriv.is_dir():
@@ -451,7 +503,7 @@ def find_datasets(roots: Iterable[str | os.PathLike[str]], max_depth: int = 4
                                     "indexed under its folder name",
                                     "add dataset_description.json with DatasetType \"derivative\" "
                                     "and GeneratedBy", "warning"))
-            found.append(_make_dataset(path, None, raw))
+            found.append(_make_dataset(path, None, raw, problems))
             return
         if depth >= max_depth:
             return
@@ -481,6 +533,9 @@ def find_datasets(roots: Iterable[str | os.PathLike[str]], max_depth: int = 4
                                     "point at a derivative dataset, a raw dataset with derivatives/, "
                                     "or a folder holding them"))
 
+    # a raw dataset without derivatives/ is expected when a derivative names it in SourceDatasets
+    sourced = {str(Path(r).resolve()) for ds in found for r in ds.source_roots}
+    problems = [p for p in problems if not (p.code == "no-derivatives" and str(Path(p.path).resolve()) in sourced)]
     counts: dict[str, int] = {}
     for ds in found:
         counts[ds.key] = counts.get(ds.key, 0) + 1
@@ -544,13 +599,20 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
                     continue
                 stack.append(relpath)
                 continue
-            if name.endswith(".json"):
+            if name.endswith(".json") or name.endswith(COMPANION_SUFFIXES):
                 jsons.setdefault(rel, []).append(name)
                 continue
             if not (name.endswith(".nii.gz") or name.endswith(".nii")) or (not rel and not root_maps):
                 continue
+            stem = name[:-7] if name.endswith(".nii.gz") else name[:-4]
+            is_statmap = stem.endswith("_" + STAT_SUFFIX)
+            hit = None
+            if not is_statmap:
+                hit = rules.match(ds.key, relpath) if rules.rules else None
+                if hit is None:
+                    continue
             try:
-                st = e.stat()
+                st = _stat_entry(e)
             except FileNotFoundError:
                 problems.append(Problem(e.path, "dangling-symlink",
                                         "symbolic link to a file that is not there (an unfetched annexed file?)",
@@ -561,28 +623,74 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
                 problems.append(Problem(e.path, "unreadable", f"cannot stat file ({exc.strerror})",
                                         "check permissions", "error", ds.key))
                 continue
-            stem = name[:-7] if name.endswith(".nii.gz") else name[:-4]
-            if stem.endswith("_" + STAT_SUFFIX):
+            if is_statmap:
                 ents = parser.parse(relpath)
-                missing = [k for k in ("contrast", "stat") if k not in ents]
-                if missing:
-                    problems.append(Problem(e.path, "missing-entity",
-                                            f"statmap file name lacks {' and '.join(missing)}",
-                                            "name it ..._contrast-<label>_stat-<label>_statmap.nii.gz, "
-                                            "or add a rule in a name-rules file", "error", ds.key))
+                for prob in _fix_labels(stem, ents, e.path, ds.key):
+                    problems.append(prob)
+                if "stat" not in ents:
+                    problems.append(Problem(e.path, "missing-entity", "statmap file name lacks stat",
+                                            "name it ..._stat-<label>_statmap.nii.gz (with contrast-<label> "
+                                            "for a contrast's map), or add a rule in a name-rules file",
+                                            "error", ds.key))
                     continue
                 maps.append(MapFile(ds, relpath, e.path, ents, st.st_size, st.st_mtime_ns, "bids"))
                 continue
-            hit = rules.match(ds.key, relpath) if rules.rules else None
-            if hit is not None:
-                idx, ents = hit
-                base = parser.parse(relpath)
-                base.update(ents)
-                base["suffix"] = STAT_SUFFIX
-                base["extension"] = ".nii.gz" if name.endswith(".nii.gz") else ".nii"
-                maps.append(MapFile(ds, relpath, e.path, base, st.st_size, st.st_mtime_ns, f"rule:{idx}"))
+            idx, ents = hit
+            base = parser.parse(relpath)
+            base.update(ents)
+            base["suffix"] = STAT_SUFFIX
+            base["extension"] = ".nii.gz" if name.endswith(".nii.gz") else ".nii"
+            maps.append(MapFile(ds, relpath, e.path, base, st.st_size, st.st_mtime_ns, f"rule:{idx}"))
     maps.sort(key=lambda m: m.relpath)
     return maps, jsons, problems
+
+
+def _stat_entry(entry: os.DirEntry):
+    return entry.stat()
+
+
+_ENTITY_PART = re.compile(r"^([a-zA-Z0-9]+)-(.*)$")
+
+
+def label_problems(stem: str) -> list[tuple[str, str, str]]:
+    """Labels of a BIDS file name that hold a character BIDS forbids in a label.
+
+    Returns ``(kind, key, whole_label)`` with kind ``hyphen`` (``contrast-a-b``: the label
+    is ``a-b``) or ``underscore`` (``contrast-a_b``: ``b`` has no key, so it belongs to the
+    label before it).  The suffix (the last part) is not a key-value pair and is skipped.
+
+    Examples
+    --------
+    >>> label_problems("sub-01_contrast-sentences-words_stat-t_statmap")
+    [('hyphen', 'contrast', 'sentences-words')]
+    >>> label_problems("sub-01_contrast-faces_houses_stat-t_statmap")
+    [('underscore', 'contrast', 'faces_houses')]
+    """
+    entries: list[list[str]] = []  # [kind, key, label]; kind "" while the label is clean
+    for part in stem.split("_")[:-1]:
+        m = _ENTITY_PART.match(part)
+        if m is None:
+            if entries:  # a part with no key continues the label before it
+                entries[-1][2] += "_" + part
+                entries[-1][0] = "underscore"
+            continue
+        entries.append(["hyphen" if "-" in m.group(2) else "", m.group(1), m.group(2)])
+    return [(k, key, label) for k, key, label in entries if k]
+
+
+def _fix_labels(stem: str, ents: dict[str, str], path: str, dataset: str) -> list[Problem]:
+    """Keep forbidden labels whole (never cut at the hyphen or underscore) and say so."""
+    out = []
+    for kind, key, label in label_problems(stem):
+        if key in ents:
+            ents[key] = label
+        char = "a hyphen" if kind == "hyphen" else "an underscore"
+        clean = re.sub(r"[-_]+(.)", lambda m: m.group(1).upper(), label)
+        out.append(Problem(path, "label-not-alphanumeric",
+                           f"{key} label {label!r} holds {char}, which BIDS forbids inside a label; read "
+                           f"as {key} {label!r} (whole), not cut at the {kind}",
+                           f"rename the file with {key}-{clean}", "warning", dataset))
+    return out
 
 
 class SidecarResolver:
@@ -599,6 +707,8 @@ class SidecarResolver:
         for folder, names in jsons.items():
             items = []
             for n in names:
+                if not n.endswith(".json"):
+                    continue
                 if not folder and n in ("dataset_description.json", "participants.json"):
                     continue
                 relpath = f"{folder}/{n}" if folder else n
@@ -693,11 +803,97 @@ class SidecarResolver:
         return dict(merged), list(used)
 
 
+class ModelFiles:
+    """The files a map's model left beside it: its mask and its design matrices.
+
+    nilearn's writer puts ``<prefix>_mask.nii.gz`` and ``<prefix>_design.tsv`` next to the
+    maps of a model, where ``<prefix>`` holds the model's entities (sub, ses, task, ...);
+    a BIDS ``_mask`` with matching entities is read the same way.  A candidate applies to a
+    map when its entities are a subset of the map's (``run`` aside for designs: a model fit
+    on several runs writes one design per run); the deepest folder, then the most specific
+    candidates win.
+    """
+
+    def __init__(self, ds: DatasetInfo, listing: dict[str, list[str]], parser: EntityParser) -> None:
+        self.ds = ds
+        self._cands: dict[str, list[tuple[str, str, dict[str, str]]]] = {}
+        for folder, names in listing.items():
+            for n in names:
+                kind = "mask" if n.endswith(("_mask.nii.gz", "_mask.nii")) else \
+                    "design" if n.endswith("_design.tsv") else None
+                if kind is None:
+                    continue
+                rel = f"{folder}/{n}" if folder else n
+                ents = {k: v for k, v in parser.parse(rel).items()
+                        if k not in ("suffix", "extension", "datatype")}
+                self._cands.setdefault(folder, []).append((kind, rel, ents))
+        self._dof: dict[tuple[str, ...], tuple[float | None, str | None]] = {}
+
+    def _find(self, kind: str, relpath: str, entities: dict[str, str]) -> list[str]:
+        folder = relpath.rsplit("/", 1)[0] if "/" in relpath else ""
+        parts = folder.split("/") if folder else []
+        for depth in range(len(parts), -1, -1):
+            level = "/".join(parts[:depth])
+            hits = []
+            for k, rel, ents in self._cands.get(level, ()):
+                if k != kind:
+                    continue
+                own = dict(ents)
+                run = own.pop("run", None) if kind == "design" else None
+                if run is not None and entities.get("run") not in (None, run):
+                    continue
+                if all(entities.get(key) == v for key, v in own.items()):
+                    hits.append((len(own), rel))
+            if hits:
+                best = max(n for n, _ in hits)
+                return sorted(rel for n, rel in hits if n == best)
+        return []
+
+    def mask_for(self, relpath: str, entities: dict[str, str]) -> str | None:
+        """Relative path of the model's mask for a map, or None."""
+        found = self._find("mask", relpath, entities)
+        return found[0] if found else None
+
+    def design_dof(self, relpath: str, entities: dict[str, str]) -> tuple[float | None, str | None, str | None]:
+        """Residual degrees of freedom from the design matrices beside a map.
+
+        DOF = rows - rank(X), summed over the runs of a fixed-effects model: the ordinary
+        least-squares convention, and what nilearn computes (``RegressionResults.df_residuals``;
+        its fixed-effects contrasts add the runs' DOF).  Returns (dof, designs used, problem).
+        """
+        designs = tuple(self._find("design", relpath, entities))
+        if not designs:
+            return None, None, None
+        hit = self._dof.get(designs)
+        if hit is None:
+            total, why = 0.0, None
+            for rel in designs:
+                path = os.path.join(self.ds.root, rel)
+                try:
+                    import numpy as np
+
+                    x = np.loadtxt(path, delimiter="\t", skiprows=1, ndmin=2, dtype=np.float64)
+                    if x.size == 0 or not np.all(np.isfinite(x)):
+                        raise ValueError("empty, or a value that is not a finite number")
+                    total += x.shape[0] - int(np.linalg.matrix_rank(x))
+                except (OSError, ValueError) as exc:
+                    why = f"{path}: cannot read the design matrix ({exc})"
+                    break
+            hit = (None, why) if why else (total if total > 0 else None, None)
+            self._dof[designs] = hit
+        return hit[0], ",".join(designs), hit[1]
+
+
 def read_participants(ds: DatasetInfo) -> tuple[list[dict[str, Any]], str | None, list[Problem]]:
-    """Rows of participants.tsv (from the dataset, else its raw parent), 'n/a' as None."""
+    """Rows of participants.tsv, 'n/a' as None.
+
+    Looked up in the dataset, then its raw dataset (the one enclosing it, or the one its
+    ``SourceDatasets`` names), then the other datasets ``SourceDatasets`` names.
+    """
     candidates = [Path(ds.root) / "participants.tsv"]
-    if ds.raw_root:
-        candidates.append(Path(ds.raw_root) / "participants.tsv")
+    for other in [ds.raw_root, *ds.source_roots]:
+        if other and Path(other) / "participants.tsv" not in candidates:
+            candidates.append(Path(other) / "participants.tsv")
     for f in candidates:
         if not f.exists():
             continue

@@ -86,7 +86,15 @@ class GridError(MapstoreError, ValueError):
 
 
 class FeatureError(MapstoreError, ValueError):
-    """A feature set could not be built or read."""
+    """A feature set could not be built or read.
+
+    ``report`` holds the :class:`~mapstore.features.FeatureReport` when a build ran but
+    produced nothing usable (every selected map failed).
+    """
+
+    def __init__(self, message: str, report=None) -> None:
+        super().__init__(message)
+        self.report = report
 
 
 class ConversionError(MapstoreError, ValueError):

@@ -22,6 +22,7 @@ import os
 import sys
 import time
 import uuid
+from collections import Counter
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -33,7 +34,7 @@ import pyarrow.parquet as pq
 
 from . import __version__
 from .params import positive_int, resolve_jobs
-from .errors import FeatureError, MapstoreError, ParameterError, QueryError
+from .errors import FeatureError, GridError, MapstoreError, ParameterError, QueryError
 from .grid import (
     METHODS,
     Mask,
@@ -80,12 +81,15 @@ class FeatureReport:
     seconds: float
     paths: dict[str, int] = field(default_factory=dict)
     problems: list[dict[str, Any]] = field(default_factory=list)
+    left_out: dict[str, int] = field(default_factory=dict)
 
     def summary(self) -> str:
         rate = self.built / self.seconds if self.seconds > 0 else 0.0
         lines = [f"feature set {self.name!r}: grid {self.grid}, mask {self.mask} ({self.n_voxels:,} voxels)",
                  f"built {self.built} rows ({rate:,.1f} maps/s), kept {self.skipped} unchanged, "
                  f"dropped {self.dropped} stale, {self.failed} failed in {self.seconds:.1f} s"]
+        for why, n in self.left_out.items():
+            lines.append(f"left out {n} {why}")
         if self.paths:
             lines.append("resampling paths: " + ", ".join(f"{k} x{v}" for k, v in sorted(self.paths.items())))
         for p in self.problems[:5]:
@@ -124,13 +128,14 @@ def _resolve_grid(grid: str | TargetGrid | dict) -> TargetGrid:
 
 
 def _spec_id(doc: dict[str, Any]) -> str:
-    keep = {k: doc[k] for k in ("grid_id", "mask_sha256", "method", "stat", "p_sided", "zero_as_missing")}
+    keep = {k: doc.get(k) for k in ("grid_id", "mask_sha256", "method", "stat", "p_sided", "zero_as_missing",
+                                    "background", "kinds")}
     return hashlib.sha256(json.dumps(keep, sort_keys=True).encode()).hexdigest()[:16]
 
 
-def feature_key(sha256: str, spec: dict[str, Any], dof: float | None) -> str:
+def feature_key(sha256: str, spec: dict[str, Any], dof: float | None, model_mask_sha256: str | None = None) -> str:
     text = "|".join([sha256, spec["grid_id"], spec["mask_sha256"], spec["method"], spec["stat"],
-                     spec["p_sided"], str(spec["zero_as_missing"]),
+                     spec["p_sided"], str(spec["zero_as_missing"]), spec["background"], model_mask_sha256 or "",
                      "" if dof is None or spec["stat"] == "native" else f"{dof:.6g}", __version__])
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
@@ -143,6 +148,8 @@ class _Item:
     stat: str
     dof: float | None
     key: str
+    mask_path: str | None = None  # the model's own mask
+    mask_sha256: str | None = None
 
 
 @dataclass
@@ -155,19 +162,85 @@ class _Batch:
     stat: str
     p_sided: str
     zero_as_missing: bool
+    background: str = "auto"
     coverage_only: bool = False
 
 
-def _vector(item: _Item, b: _Batch, indices: np.ndarray | None, grid: TargetGrid | None = None
-            ) -> tuple[np.ndarray, str, str]:
+def zero_background(vol: np.ndarray, min_fraction: float = 0.01) -> np.ndarray | None:
+    """The voxels of a zero background: exact zeros that reach the edge of the volume.
+
+    GLM software writes exact 0 outside its analysis mask.  The rule: the exact zeros that
+    are connected, through voxel faces, to a face of the volume are background when they
+    make up at least ``min_fraction`` of it; zeros enclosed by data stay values (a true
+    zero effect).  Returns the background as booleans, or None when there is none.
+
+    Examples
+    --------
+    >>> vol = np.zeros((6, 6, 6), dtype=np.float32); vol[1:5, 1:5, 1:5] = 1.0; vol[2, 2, 2] = 0.0
+    >>> bg = zero_background(vol)
+    >>> int(bg.sum()), bool(bg[2, 2, 2])   # 216 - 64 voxels of border zeros; the enclosed zero is data
+    (152, False)
+    """
+    from scipy import ndimage
+
+    zero = vol == 0
+    if not zero.any():
+        return None
+    labels, _ = ndimage.label(zero)  # face connectivity
+    faces = np.concatenate([labels[0].ravel(), labels[-1].ravel(), labels[:, 0].ravel(), labels[:, -1].ravel(),
+                            labels[:, :, 0].ravel(), labels[:, :, -1].ravel()])
+    edge = np.unique(faces[faces > 0])
+    if edge.size == 0:
+        return None
+    bg = np.isin(labels, edge)
+    return bg if bg.sum() >= min_fraction * vol.size else None
+
+
+def _model_mask(path: str, sha256: str, facts, cache: dict[str, np.ndarray]) -> np.ndarray:
+    """The model's mask on a map's grid (nearest neighbour if its grid differs), as booleans."""
+    key = f"{sha256}|{facts.grid_id}"
+    hit = cache.get(key)
+    if hit is None:
+        try:
+            data, mfacts = read_volume(path, expect_sha256=sha256)
+        except GridError as exc:
+            raise FeatureError(f"the model's mask of this map is unusable: {exc}") from None
+        if mfacts.grid_id != facts.grid_id:
+            data = resample(data, mfacts.affine_array, grid_from_spec(facts.spatial_shape, facts.affine_array),
+                            "nearest")
+        hit = cache[key] = np.nan_to_num(data, nan=0.0) != 0
+    return hit
+
+
+def _vector(item: _Item, b: _Batch, indices: np.ndarray | None, grid: TargetGrid | None = None,
+            masks: dict[str, np.ndarray] | None = None) -> tuple[np.ndarray, str, str, str, int]:
+    """One map's feature vector: missing region, conversion on the source grid, resampling.
+
+    A statistic transform (t or p to z) is not linear, so it does not commute with
+    interpolation: it runs on the source voxels, before resampling.
+    """
     vol, facts = read_volume(item.path, expect_sha256=item.sha256)
+    missing_from = "none"
+    if item.mask_path and item.mask_sha256:
+        vol[~_model_mask(item.mask_path, item.mask_sha256, facts, {} if masks is None else masks)] = np.nan
+        missing_from = "model-mask"
+    elif b.background == "auto":
+        bg = zero_background(vol)
+        if bg is not None:
+            vol[bg] = np.nan
+            missing_from = "zero-background"
     if b.zero_as_missing:
         vol[vol == 0] = np.nan
-    out, path = resample(vol, facts.affine_array, grid or b.grid, b.method, return_path=True)
+        missing_from = "zeros" if missing_from == "none" else missing_from + "+zeros"
+    clipped = 0
+    if b.stat == "z" and item.stat == "p":
+        clipped = int(np.count_nonzero(vol == 0))  # p = 0 where the model has data: clipped, reported
+    vol, conversion = convert(vol, item.stat, b.stat, dof=item.dof, sided=b.p_sided, where=item.path)
+    out, path = resample(np.asarray(vol, dtype=np.float32), facts.affine_array, grid or b.grid, b.method,
+                         return_path=True)
     flat = out.reshape(-1)
     vec = flat if indices is None else flat[indices]
-    vec, conversion = convert(vec, item.stat, b.stat, dof=item.dof, sided=b.p_sided, where=item.path)
-    return np.asarray(vec, dtype=np.float32), conversion, path
+    return np.asarray(vec, dtype=np.float32), conversion, path, missing_from, clipped
 
 
 def _run_batch(b: _Batch) -> dict[str, Any]:
@@ -176,9 +249,10 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
     if b.coverage_only:
         counts = np.zeros(b.grid.n_voxels, dtype=np.int32)
         done = 0
+        masks: dict[str, np.ndarray] = {}
         for it in b.items:
             try:
-                vec, _, _ = _vector(it, b, None)
+                vec = _vector(it, b, None, masks=masks)[0]
             except MapstoreError as exc:
                 problems.append(_problem(it, exc))
                 continue
@@ -192,9 +266,10 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
     arr = np.lib.format.open_memmap(tmp, mode="w+", dtype=np.float32, shape=(len(b.items), indices.size))
     rows: list[dict[str, Any]] = []
     now = time.strftime("%Y-%m-%dT%H:%M:%S")
+    masks: dict[str, np.ndarray] = {}
     for i, it in enumerate(b.items):
         try:
-            vec, conversion, path = _vector(it, b, local, box)
+            vec, conversion, path, missing_from, clipped = _vector(it, b, local, box, masks)
         except MapstoreError as exc:
             arr[i] = np.nan
             problems.append(_problem(it, exc))
@@ -209,7 +284,8 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
                      "row_sha256": hashlib.sha256(vec.tobytes()).hexdigest(),
                      "vmin": float(vals.min()) if vals.size else None,
                      "vmax": float(vals.max()) if vals.size else None,
-                     "vmean": float(vals.mean(dtype=np.float64)) if vals.size else None})
+                     "vmean": float(vals.mean(dtype=np.float64)) if vals.size else None,
+                     "missing_from": missing_from, "p_clipped": clipped})
     arr.flush()
     del arr
     os.replace(tmp, shard_path)
@@ -218,9 +294,12 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
 
 def _problem(it: _Item, exc: Exception) -> dict[str, Any]:
     code = type(exc).__name__.replace("Error", "").lower() or "error"
-    remedy = "re-run 'mapstore index' if the file changed" if "index" in str(exc) else \
+    reason = str(exc)
+    if reason.startswith(it.path + ": "):
+        reason = reason[len(it.path) + 2:]  # the row names the file already
+    remedy = "re-run 'mapstore index' if the file changed" if "index" in reason else \
         "fix or exclude the map (see the reason)"
-    return {"map_id": it.map_id, "path": it.path, "code": code, "reason": str(exc), "remedy": remedy}
+    return {"map_id": it.map_id, "path": it.path, "code": code, "reason": reason, "remedy": remedy}
 
 
 def _execute(batches: list[_Batch], jobs: int, scheduler: Any, progress: bool, desc: str):
@@ -283,15 +362,36 @@ def _dask_client(scheduler: Any):
     raise ParameterError(f"scheduler must be a dask.distributed Client or an address, got {scheduler!r}")
 
 
-def _select_maps(cat: Catalog, where: str | None) -> list[dict[str, Any]]:
-    q = "SELECT m.map_id, m.stat, m.sha256, m.dof, m.relpath, d.root FROM maps m JOIN datasets d USING (dataset)"
+_Z_READY = ("t", "p", "z")
+
+
+def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], stat: str
+                 ) -> tuple[list[dict[str, Any]], dict[str, int]]:
+    """Maps the set takes, and how many the defaults left out (and why)."""
+    q = ("SELECT m.map_id, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, m.model_mask, "
+         "m.model_mask_sha256 FROM maps m JOIN datasets d USING (dataset)")
     if where:
         q += f" WHERE {where}"
     q += " ORDER BY m.map_id"
     try:
-        return cat.sql(q).to_pylist()
+        rows = cat.sql(q).to_pylist()
     except QueryError as exc:
         raise QueryError(f"--where {where!r}: {exc}") from None
+    left: dict[str, int] = {}
+    keep = []
+    for r in rows:
+        kind = r["map_kind"] or "contrast"  # tables from before map kinds were recorded
+        if kind not in kinds:
+            why = "model maps (no contrast: residuals, fit; --model-maps takes them)"
+        elif (r["n_volumes"] or 1) > 1:
+            why = "multi-volume maps (e.g. an F contrast's effect, one volume per contrast row)"
+        elif stat == "z" and r["stat"] not in _Z_READY:
+            why = "maps with no z equivalent (only t, p and z maps go into a z set)"
+        else:
+            keep.append(r)
+            continue
+        left[why] = left.get(why, 0) + 1
+    return keep, left
 
 
 def _make_mask(mask: str | os.PathLike[str] | np.ndarray, grid: TargetGrid) -> Mask | float:
@@ -327,6 +427,8 @@ def build_features(
     stat: str = "native",
     p_sided: str = "one",
     zero_as_missing: bool = False,
+    background: str = "auto",
+    model_maps: bool = False,
     where: str | None = None,
     jobs: int | None = None,
     scheduler: Any = None,
@@ -355,8 +457,16 @@ def build_features(
     p_sided : {"one", "two"}, default="one"
         How p maps were computed, for p to z.
     zero_as_missing : bool, default=False
-        Treat exact zeros in the sources as missing (for tools that write 0 outside
-        their analysis mask).
+        Treat every exact zero in the sources as missing (a manual switch; the model's
+        mask and ``background`` usually make it unnecessary).
+    background : {"auto", "keep"}, default="auto"
+        Where a map's model left no mask, ``auto`` treats a zero background (exact zeros
+        reaching the edge of the volume, see :func:`zero_background`) as missing; ``keep``
+        counts it as data.  A model's own mask (nilearn's ``_mask.nii.gz``, a BIDS ``_mask``
+        with the map's entities, a name rule's ``mask``) always applies.
+    model_maps : bool, default=False
+        Also take model maps (a stat without a contrast: residuals, R squared).  By default
+        a set holds contrast maps only.  Multi-volume maps are always left out (reported).
     where : str, optional
         SQL predicate over ``maps`` (aliased ``m``) choosing which maps to include.
     jobs : int, optional
@@ -375,6 +485,8 @@ def build_features(
         raise ParameterError(f"stat must be 'native' or 'z', got {stat!r}")
     if p_sided not in ("one", "two"):
         raise ParameterError(f"p_sided must be 'one' or 'two', got {p_sided!r}")
+    if background not in ("auto", "keep"):
+        raise ParameterError(f"background must be 'auto' or 'keep', got {background!r}")
     if batch_size is not None:
         positive_int("batch_size", batch_size)
     jobs = resolve_jobs(jobs)
@@ -386,7 +498,7 @@ def build_features(
         raise FeatureError(f"{cat.path}: the store has no catalog yet; run 'mapstore index ROOT --store "
                            f"{cat.path}' first")
     default_settings = (grid == "MNI152-2mm" and str(mask) == "brain" and method == "linear"
-                        and stat == "native" and not zero_as_missing)
+                        and stat == "native" and not zero_as_missing and background == "auto" and not model_maps)
     if name is None:
         name = DEFAULT_SET if default_settings else \
             f"{target.name}-{Path(str(mask)).name if not isinstance(mask, np.ndarray) else 'array'}-{method}-{stat}"
@@ -397,17 +509,20 @@ def build_features(
     with write_lock(store_path):
         head = read_head(store_path)
         cat = Catalog(store_path)
-        rows_sel = _select_maps(cat, where)
+        kinds = ("contrast", "model") if model_maps else ("contrast",)
+        rows_sel, left_out = _select_maps(cat, where, kinds, stat)
         if not rows_sel:
-            raise FeatureError(f"no maps selected{' by ' + repr(where) if where else ''}; check the "
-                               "catalog with 'mapstore sql'")
+            why = "; ".join(f"{n} {k}" for k, n in left_out.items())
+            raise FeatureError(f"no maps selected{' by ' + repr(where) if where else ''}"
+                               f"{' (left out: ' + why + ')' if why else ''}; check the catalog with "
+                               "'mapstore sql'")
         batch_n = batch_size or max(4, min(64, len(rows_sel) // (jobs * 4) + 1))
         mk = _make_mask(mask, target)
-        common = dict(grid=target, method=method, stat=stat, p_sided=p_sided, zero_as_missing=zero_as_missing)
+        common = dict(grid=target, method=method, stat=stat, p_sided=p_sided, zero_as_missing=zero_as_missing,
+                      background=background)
         coverage_problems: list[dict[str, Any]] = []
         if isinstance(mk, float):
-            items = [_Item(r["map_id"], os.path.join(r["root"], r["relpath"]), r["sha256"], r["stat"],
-                           r["dof"], "") for r in rows_sel]
+            items = [_item(r, "") for r in rows_sel]
             batches = [_Batch(str(set_dir), "", items[i:i + batch_n], coverage_only=True, **common)
                        for i in range(0, len(items), batch_n)]
             counts = np.zeros(target.n_voxels, dtype=np.int64)
@@ -420,13 +535,17 @@ def build_features(
                 raise FeatureError("no selected map could be read to compute a coverage mask")
             need = int(np.ceil(mk * n_ok - 1e-9))
             label = "intersection" if mk == 1.0 else f"coverage>={mk:g}"
-            mk = mask_from_array(target, (counts >= max(need, 1)).reshape(target.shape), label)
+            # within the brain: fields of view reach far outside it
+            inside = mni152_brain_mask(target).to_volume().reshape(-1)
+            mk = mask_from_array(target, ((counts >= max(need, 1)) & inside).reshape(target.shape),
+                                 f"MNI152-brain&{label}")
 
         spec = {
             "name": name, "grid": target.to_json(), "grid_id": target.grid_id,
             "mask": {"name": mk.name, "n_voxels": mk.n_voxels, "sha256": mk.sha256},
             "mask_sha256": mk.sha256, "method": method, "stat": stat, "p_sided": p_sided,
-            "zero_as_missing": zero_as_missing, "where": where, "versions": _library_versions(),
+            "zero_as_missing": zero_as_missing, "background": background, "kinds": list(kinds), "where": where,
+            "versions": _library_versions(),
         }
         spec["spec_id"] = _spec_id(spec)
         existing = head.features.get(name)
@@ -447,9 +566,7 @@ def build_features(
 
         wanted: dict[str, _Item] = {}
         for r in rows_sel:
-            key = feature_key(r["sha256"], spec, r["dof"])
-            wanted[r["map_id"]] = _Item(r["map_id"], os.path.join(r["root"], r["relpath"]), r["sha256"],
-                                        r["stat"], r["dof"], key)
+            wanted[r["map_id"]] = _item(r, feature_key(r["sha256"], spec, r["dof"], r["model_mask_sha256"]))
         # keyed by map too: byte-identical copies of a file share a feature key, not a row
         have = {mk_: i for i, mk_ in enumerate(zip(old_rows["map_id"].to_pylist(),
                                                    old_rows["feature_key"].to_pylist()))}
@@ -485,9 +602,23 @@ def build_features(
                                        "rows": rows_table.num_rows})
         _collect_feature_garbage(store_path, set_dir, rows_rel, previous_rows)
 
-    return FeatureReport(name=name, n_voxels=mk.n_voxels, grid=target.name, mask=mk.name,
-                         built=len(new_rows), skipped=kept.num_rows, dropped=dropped, failed=len(problems),
-                         seconds=time.perf_counter() - t0, paths=paths, problems=problems)
+    report = FeatureReport(name=name, n_voxels=mk.n_voxels, grid=target.name, mask=mk.name,
+                           built=len(new_rows), skipped=kept.num_rows, dropped=dropped, failed=len(problems),
+                           seconds=time.perf_counter() - t0, paths=paths, problems=problems, left_out=left_out)
+    if rows_table.num_rows == 0 and problems:
+        reasons = Counter(p["reason"] for p in problems).most_common(3)
+        raise FeatureError(f"feature set {name!r}: every selected map failed ({len(problems)}); most common "
+                           "reasons: " + "; ".join(f"{r} (x{n})" for r, n in reasons) +
+                           f". The failures are recorded: mapstore sql --store {store_path} "
+                           "\"SELECT * FROM feature_problems\"", report=report)
+    return report
+
+
+def _item(r: dict[str, Any], key: str) -> _Item:
+    root = r["root"]
+    mask = r.get("model_mask")
+    return _Item(r["map_id"], os.path.join(root, r["relpath"]), r["sha256"], r["stat"], r["dof"], key,
+                 os.path.join(root, mask) if mask else None, r.get("model_mask_sha256"))
 
 
 def _collect_feature_garbage(store: Path, set_dir: Path, current: str, previous: str | None) -> None:

@@ -66,7 +66,13 @@ MAPS_DOCS = {
     "voxel_size": "voxel size in mm from the affine's column norms",
     "orientation": "axis codes such as RAS or LAS",
     "grid_id": "fingerprint of the spatial shape and affine (to 1e-4 mm)",
-    "dof": "degrees of freedom: sidecar DegreesOfFreedom, else intent_p1 of a t-test header",
+    "dof": "degrees of freedom, first found of: sidecar DegreesOfFreedom, intent_p1 of a t-test header, "
+           "the design matrices beside the map (rows - rank), a header description {T_[df]}, a DOF file",
+    "dof_source": "where dof came from: sidecar, header, design, descrip, dof-file",
+    "map_kind": "contrast (a contrast's map) or model (a stat without a contrast: residuals, fit)",
+    "descrip": "the header's description field",
+    "model_mask": "the model's own mask beside the map (path relative to the dataset root)",
+    "model_mask_sha256": "SHA-256 of the model's mask file",
     "metadata": "merged sidecar metadata (BIDS inheritance), JSON object",
     "sidecars": "sidecar files used, shallowest first",
 }
@@ -162,7 +168,9 @@ def all_schemas() -> dict[str, dict[str, Any]]:
          "shard": "file under features/<set>/shards/", "row": "row index in the shard",
          "coverage": "fraction of mask voxels with a finite value",
          "row_sha256": "SHA-256 of the row's float32 bytes", "vmin": "smallest finite value",
-         "vmax": "largest finite value", "vmean": "mean of the finite values"})
+         "vmax": "largest finite value", "vmean": "mean of the finite values",
+         "missing_from": "what made voxels missing before resampling: model-mask, zero-background, zeros, none",
+         "p_clipped": "p = 0 voxels inside the model's mask taken as the smallest positive p (z sets)"})
     out["feature-problems.schema.json"] = arrow_to_json_schema(
         "feature-problems", FPROBLEMS_SCHEMA, "A map that could not be turned into a feature row.")
     participants = arrow_to_json_schema(
@@ -195,6 +203,8 @@ def all_schemas() -> dict[str, dict[str, Any]]:
             "stat": {"enum": ["native", "z"]},
             "p_sided": {"enum": ["one", "two"]},
             "zero_as_missing": {"type": "boolean"},
+            "background": {"enum": ["auto", "keep"]},
+            "kinds": {"type": "array", "items": {"enum": ["contrast", "model"]}},
             "where": {"type": ["string", "null"]},
             "spec_id": {"type": "string"},
             "versions": {"type": "object", "additionalProperties": {"type": "string"}},

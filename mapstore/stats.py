@@ -95,11 +95,18 @@ def convert(values: np.ndarray, stat: str, to: str, *, dof: float | None = None,
         raise ConversionError(f"cannot convert to {to!r}; choose 'native' or 'z'")
     if stat == "t":
         if dof is None or not np.isfinite(dof):
-            raise ConversionError(f"{where}: t to z needs DegreesOfFreedom, and neither the sidecar nor "
-                                  "the header (intent_p1) gives it; add DegreesOfFreedom to the map's JSON "
+            raise ConversionError(f"{where}: t to z needs degrees of freedom, and none was found (sidecar "
+                                  "DegreesOfFreedom, header intent_p1, a design matrix beside the map, a header "
+                                  "description {{T_[df]}}, a DOF file); add DegreesOfFreedom to the map's JSON "
                                   "sidecar, or build this feature set with the native stat")
         return t_to_z(values, dof).astype(np.float32), f"t->z(dof={dof:g})"
     if stat == "p":
-        return p_to_z(values, sided).astype(np.float32), f"p->z({sided}-sided)"
+        v = np.asarray(values)
+        bad = (v < 0) | (v > 1)
+        if np.any(bad):
+            raise ConversionError(f"{where}: {int(np.count_nonzero(bad))} value(s) outside [0, 1] (from "
+                                  f"{float(np.nanmin(v)):g} to {float(np.nanmax(v)):g}); this is not a p map "
+                                  "(a 1 - p or log p map?): rename it or leave it out of z sets")
+        return p_to_z(v, sided).astype(np.float32), f"p->z({sided}-sided)"
     raise ConversionError(f"{where}: a {stat!r} map cannot be converted to z (only t and p maps can); "
                           "select t, z or p maps for a z feature set")

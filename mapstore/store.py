@@ -56,7 +56,7 @@ _s, _i32, _i64, _f64 = pa.string(), pa.int32(), pa.int64(), pa.float64()
 MAPS_SCHEMA = pa.schema([
     ("map_id", _s), ("dataset", _s), ("relpath", _s),
     ("sub", _s), ("ses", _s), ("task", _s), ("acq", _s), ("run", _s), ("rec", _s),
-    ("space", _s), ("res", _s), ("desc", _s), ("contrast", _s), ("stat", _s),
+    ("space", _s), ("res", _s), ("desc", _s), ("contrast", _s), ("stat", _s), ("map_kind", _s),
     ("suffix", _s), ("extension", _s), ("entities", _s), ("named_by", _s),
     ("participant", _s), ("study", _s), ("site", _s), ("lab", _s),
     ("sha256", _s), ("nbytes", _i64), ("mtime_ns", _i64),
@@ -65,7 +65,8 @@ MAPS_SCHEMA = pa.schema([
     ("scl_slope", _f64), ("scl_inter", _f64), ("intent_code", _i32), ("intent_name", _s), ("intent_p1", _f64),
     ("qform_code", _i32), ("sform_code", _i32), ("affine_source", _s),
     ("affine", pa.list_(_f64)), ("voxel_size", pa.list_(_f64)), ("orientation", _s),
-    ("grid_id", _s), ("dof", _f64), ("dof_source", _s), ("metadata", _s), ("sidecars", pa.list_(_s)),
+    ("grid_id", _s), ("descrip", _s), ("dof", _f64), ("dof_source", _s), ("model_mask", _s),
+    ("model_mask_sha256", _s), ("metadata", _s), ("sidecars", pa.list_(_s)),
     ("header_warnings", pa.list_(_s)),
 ])
 DATASETS_SCHEMA = pa.schema([
@@ -79,6 +80,7 @@ ROWS_SCHEMA = pa.schema([
     ("stat_in", _s), ("stat_out", _s), ("conversion", _s),
     ("resample_path", _s), ("built_at", _s), ("row_sha256", _s),
     ("vmin", _f64), ("vmax", _f64), ("vmean", _f64),
+    ("missing_from", _s), ("p_clipped", _i64),
 ])
 FPROBLEMS_SCHEMA = pa.schema([
     ("map_id", _s), ("path", _s), ("code", _s), ("reason", _s),

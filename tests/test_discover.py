@@ -130,13 +130,13 @@ def test_dangling_symlink_and_missing_entities(tmp_path):
     f = ds_root / "sub-01" / "func"
     f.mkdir(parents=True)
     os.symlink("../.git/annex/objects/nothing", f / "sub-01_task-a_contrast-b_stat-t_statmap.nii.gz")
-    write_map(f / "sub-01_task-a_stat-t_statmap.nii")
+    write_map(f / "sub-01_task-a_contrast-b_statmap.nii")
     (ds,), _ = find_datasets([ds_root])
     maps, _, problems = walk_dataset(ds, EntityParser(), NameRules())
     assert not maps
     by_code = {p.code: p for p in problems}
     assert "annex" in by_code["dangling-symlink"].remedy
-    assert "contrast" in by_code["missing-entity"].reason
+    assert by_code["missing-entity"].reason == "statmap file name lacks stat"
 
 
 def test_name_rules_template_and_regex(tmp_path):
@@ -151,7 +151,7 @@ def test_name_rules_template_and_regex(tmp_path):
 
 
 @pytest.mark.parametrize("doc, message", [
-    ({"rules": [{"regex": "(?P<contrast>x)"}]}, "never sets ['stat']"),
+    ({"rules": [{"regex": "(?P<contrast>x)"}]}, "never sets 'stat'"),
     ({"rules": [{"regex": "(", "entities": {"stat": "t", "contrast": "c"}}]}, "invalid regex"),
     ({"rules": [{"template": "a", "regex": "b"}]}, "exactly one of"),
     ({"rules": [{"pattern": "a"}]}, "unknown key(s) ['pattern']"),

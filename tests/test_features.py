@@ -11,6 +11,7 @@ import pytest
 
 import mapstore
 from mapstore.errors import FeatureError, ParameterError
+from mapstore.features import zero_background
 from mapstore.grid import builtin_grid, mni152_brain_mask, read_volume, resample
 
 from .conftest import make_derivative, write_json, write_map
@@ -53,6 +54,9 @@ def test_rows_equal_direct_resampling_and_nilearn(featured_store):
     X = fs.matrix([r["map_id"] for r in picks])
     for x, r in zip(X, picks):
         vol, facts = read_volume(r["path"])
+        bg = zero_background(vol)  # zero-filled demo studies: their background is missing
+        if bg is not None:
+            vol[bg] = np.nan
         direct = resample(vol, facts.affine_array, grid, "linear").reshape(-1)[mask.indices]
         # the store resamples the mask's bounding box only: same values up to float rounding
         np.testing.assert_array_equal(np.isnan(x), np.isnan(direct))
@@ -99,8 +103,11 @@ def test_coverage_column(featured_store):
     st = mapstore.open(featured_store)
     cov = st.sql("SELECT m.study, avg(f.coverage) c FROM features f JOIN maps m USING (map_id) "
                  "GROUP BY ALL").to_pandas().set_index("study")["c"]
-    # zero-filled maps cover the whole mask; NaN-outside-brain maps do not
-    assert cov["inkwell"] == 1.0 and 0.5 < cov["glowtrack"] < 1.0
+    # zero-filled maps: their zero background is missing, as NaN-outside-brain maps' NaN is
+    assert 0.5 < cov["inkwell"] < 1.0 and 0.5 < cov["glowtrack"] < 1.0
+    kept = mapstore.open(featured_store).sql("SELECT DISTINCT missing_from FROM features f JOIN maps m "
+                                             "USING (map_id) WHERE m.study = 'inkwell'").column(0).to_pylist()
+    assert kept == ["zero-background"]
 
 
 def _tree(tmp_path, n=4):
@@ -154,29 +161,42 @@ def test_file_changed_after_index_is_a_feature_problem(tmp_path):
     assert "changed since it was indexed" in probs[0]["reason"] and probs[0]["path"] == str(f)
 
 
-def test_z_set_converts_t_and_refuses_effect(tmp_path):
+def test_z_set_converts_t_and_leaves_out_effect(tmp_path):
     ds, store = _tree(tmp_path)
     r = mapstore.build_features(store, "zset", grid="MNI152-3mm", stat="z", jobs=1, progress=False)
-    assert r.built == 4 and r.failed == 1 and "cannot be converted" in r.problems[0]["reason"]
+    assert r.built == 4 and r.failed == 0
+    assert r.left_out == {"maps with no z equivalent (only t, p and z maps go into a z set)": 1}
+    assert "left out 1 maps with no z equivalent" in r.summary()
     fs = mapstore.open(store).features("zset")
     assert set(fs.rows["conversion"].to_pylist()) == {"t->z(dof=25)"}
-    # the z values are the t values mapped through the t(25) -> normal transform
+    # the z values are the source t values mapped through the t(25) -> normal transform, then
+    # resampled: the transform is not linear, so it runs before interpolation
     from mapstore.stats import t_to_z
 
-    native = mapstore.build_features(store, "tset", grid="MNI152-3mm", where="m.stat = 't'", jobs=1,
-                                     progress=False)
-    assert native.built == 4
-    t = mapstore.open(store).features("tset").matrix(fs.map_ids)
+    st = mapstore.open(store)
+    paths = dict(zip(*st.sql("SELECT m.map_id, d.root || '/' || m.relpath FROM maps m JOIN datasets d "
+                             "USING (dataset)").to_pydict().values()))
+    grid = builtin_grid("MNI152-3mm")
+    brain = mni152_brain_mask(grid)
     z = fs.matrix(fs.map_ids)
-    ok = np.isfinite(t)
-    np.testing.assert_allclose(z[ok], t_to_z(t[ok], 25), rtol=1e-5, atol=1e-5)
+    for row, mid in zip(z, fs.map_ids):
+        vol, facts = read_volume(paths[mid])
+        want = resample(t_to_z(vol, 25).astype(np.float32), facts.affine_array, grid).reshape(-1)[brain.indices]
+        np.testing.assert_array_equal(np.isnan(row), np.isnan(want))
+        ok = np.isfinite(row)
+        np.testing.assert_allclose(row[ok], want[ok], rtol=1e-5, atol=1e-5)
+        after = t_to_z(resample(vol, facts.affine_array, grid).reshape(-1)[brain.indices], 25)
+        assert np.abs(after[ok] - row[ok]).max() > 1e-3  # converting after resampling differs
 
 
 def test_coverage_masks(tmp_path):
     ds, store = _tree(tmp_path)
     r = mapstore.build_features(store, "inter", grid="MNI152-3mm", mask="intersection", jobs=1, progress=False)
     fs = mapstore.open(store).features("inter")
-    assert r.mask == "intersection" and np.isfinite(fs.matrix()).all()
+    assert r.mask == "MNI152-brain&intersection" and np.isfinite(fs.matrix()).all()
+    # within the brain mask only
+    brain = mni152_brain_mask(builtin_grid("MNI152-3mm"))
+    assert set(fs.mask_indices.tolist()) <= set(brain.indices.tolist())
     r2 = mapstore.build_features(store, "cov", grid="MNI152-3mm", mask="coverage:0.5", jobs=1, progress=False)
     assert r2.n_voxels >= r.n_voxels
     with pytest.raises(ParameterError, match="coverage fraction"):
