@@ -450,7 +450,7 @@ def index(
     roots: Iterable[str | os.PathLike[str]],
     store: str | os.PathLike[str],
     *,
-    rules: str | os.PathLike[str] | None = None,
+    rules: str | os.PathLike[str] | list[str | os.PathLike[str]] | None = None,
     overrides: str | os.PathLike[str] | None = None,
     jobs: int | None = None,
     prune: bool = False,
@@ -464,8 +464,9 @@ def index(
         Derivative datasets, raw datasets holding ``derivatives/``, or folders of them.
     store : path
         The store folder (created if missing).  Never inside the roots' datasets.
-    rules : path, optional
-        A name-rules file for statistic maps without BIDS ``_statmap`` names.
+    rules : path, preset name, or a list of them, optional
+        Name rules for statistic maps without BIDS ``_statmap`` names: files, or built-in
+        presets (``fsl-feat``, ``spm``).
     overrides : path, optional
         A mapping file setting study, site and lab per dataset or subject.
     jobs : int, optional

@@ -87,14 +87,16 @@ def write_table(table, fmt: str, out: str | None) -> None:
 @cli.command("index")
 @click.argument("roots", nargs=-1, required=True, type=click.Path(exists=False))
 @STORE_OPTION
-@click.option("--rules", type=click.Path(dir_okay=False), help="Name-rules file for legacy map names.")
+@click.option("--rules", multiple=True,
+              help="Name-rules file for maps without BIDS statmap names, or a built-in preset: fsl-feat, spm "
+                   "(repeatable).")
 @click.option("--origins", type=click.Path(dir_okay=False),
               help="Mapping file setting study, site and lab per dataset or subject.")
 @click.option("--jobs", type=click.IntRange(min=1), default=None, help="Processes (default: all cores).")
 @click.option("--prune", is_flag=True, help="Drop datasets from earlier runs not under these ROOTs.")
 def index_cmd(roots, store, rules, origins, jobs, prune) -> None:
     """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them)."""
-    report = mapstore.index(roots, store, rules=rules, overrides=origins, jobs=jobs, prune=prune)
+    report = mapstore.index(roots, store, rules=list(rules) or None, overrides=origins, jobs=jobs, prune=prune)
     click.echo(report.summary())
 
 
@@ -122,19 +124,24 @@ def sql_cmd(store, query, fmt, out) -> None:
               help="Keep each map's stat, or convert t and p maps to z.")
 @click.option("--p-sided", type=click.Choice(["one", "two"]), default="one", show_default=True,
               help="How p maps were computed (for --stat z).")
-@click.option("--zero-as-missing", is_flag=True, help="Treat exact zeros in the maps as missing values.")
+@click.option("--zero-as-missing", is_flag=True, help="Treat every exact zero in the maps as missing.")
+@click.option("--background", type=click.Choice(["auto", "keep"]), default="auto", show_default=True,
+              help="Where a map's model left no mask: auto makes a zero background (exact zeros reaching "
+                   "the volume's edge) missing; keep counts it as data.")
+@click.option("--model-maps", is_flag=True, help="Also take model maps (a stat without a contrast).")
 @click.option("--where", help="SQL predicate over maps (alias m) choosing the maps, e.g. \"m.stat = 't'\".")
 @click.option("--jobs", type=click.IntRange(min=1), default=None, help="Processes (default: all cores).")
 @click.option("--dask", "dask_address", help="Run on this Dask scheduler (e.g. tcp://host:8786).")
 @click.option("--list", "list_only", is_flag=True, help="List the store's feature sets and stop.")
-def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing, where, jobs,
-                 dask_address, list_only) -> None:
+def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing, background, model_maps, where,
+                 jobs, dask_address, list_only) -> None:
     """Resample every map once onto one grid and mask (a named feature set)."""
     if list_only:
         click.echo(render_table(mapstore.open(store).sql("SELECT * FROM feature_sets")))
         return
     report = mapstore.build_features(store, name, grid=grid, mask=mask, method=method, stat=stat,
-                                     p_sided=p_sided, zero_as_missing=zero_as_missing, where=where,
+                                     p_sided=p_sided, zero_as_missing=zero_as_missing, background=background,
+                                     model_maps=model_maps, where=where,
                                      jobs=jobs, scheduler=dask_address)
     click.echo(report.summary())
 
@@ -318,6 +325,8 @@ def main(argv: list[str] | None = None) -> int:
         exc.show()
         return exc.exit_code
     except mapstore.MapstoreError as exc:
+        if getattr(exc, "report", None) is not None:
+            click.echo(exc.report.summary())
         click.echo(f"error: {exc}", err=True)
         return getattr(exc, "exit_code", 1)
     except KeyboardInterrupt:

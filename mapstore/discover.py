@@ -28,6 +28,7 @@ __all__ = [
     "MapFile",
     "EntityParser",
     "NameRules",
+    "builtin_rules",
     "MetadataOverrides",
     "find_datasets",
     "walk_dataset",
@@ -180,24 +181,65 @@ class EntityParser:
         return out
 
 
+_RULE_KEYS = ("regex", "template", "entities", "datasets", "translate", "contrast_names", "dof_file", "mask")
+
+
+def builtin_rules() -> dict[str, Path]:
+    """Name-rule presets shipped with mapstore, by name (``--rules fsl-feat``)."""
+    base = Path(__file__).parent / "presets"
+    return {p.stem: p for p in sorted(base.glob("*.yaml"))}
+
+
 @dataclass
 class NameRules:
-    """User rules that name legacy statistic maps (files without BIDS statmap names).
+    """User rules that name statistic maps whose file names are not BIDS statmap names.
 
     A rules file (JSON or YAML) holds ``rules``: a list of objects, each with either
     ``regex`` (a Python regular expression with named groups) or ``template`` (a
     path with ``{entity}`` placeholders and ``*`` wildcards), matched against the
-    path relative to the dataset root, and optional ``entities`` (fixed values)
-    and ``datasets`` (glob patterns over dataset keys the rule applies to).
+    path relative to the dataset root, and optional:
+
+    * ``entities``: fixed entity values; ``datasets``: globs over dataset keys;
+    * ``translate``: per entity, captured value -> entity value (``{stat: {zstat: z}}``);
+    * ``contrast_names``: where the captured contrast number finds its name, either
+      ``{file: TEMPLATE, line: REGEX}`` (a text file; the regex holds ``{contrast}`` and a
+      group ``name``) or ``{file: TEMPLATE, matlab: "SPM.xCon", field: "name"}`` (the
+      number-th element of a struct array in a MATLAB file, read with scipy.io.loadmat);
+    * ``dof_file``: a text file holding the map's degrees of freedom;
+    * ``mask``: the model's mask image.
+
+    TEMPLATEs are paths relative to the dataset root with ``{group}`` placeholders filled
+    from the match.  Groups whose names start with ``_`` are helpers, not entities.
+    Built-in presets (:func:`builtin_rules`) are given by name instead of a path.
     """
 
     rules: list[dict[str, Any]] = field(default_factory=list)
     source: str | None = None
+    _names: dict[str, Any] = field(default_factory=dict, repr=False)  # contrast-name files, read once
 
     @classmethod
-    def load(cls, path: str | os.PathLike[str] | None) -> "NameRules":
-        if path is None:
+    def load(cls, paths: str | os.PathLike[str] | Iterable[str | os.PathLike[str]] | None) -> "NameRules":
+        """Rules from files or preset names (one, or several whose rules are tried in order)."""
+        if paths is None:
             return cls()
+        if isinstance(paths, (str, os.PathLike)):
+            paths = [paths]
+        out = cls()
+        sources = []
+        for path in paths:
+            presets = builtin_rules()
+            if not os.path.exists(path) and str(path) in presets:
+                path = presets[str(path)]
+            elif not os.path.exists(path) and os.sep not in str(path) and "." not in str(path):
+                raise RulesError(f"{path}: no such rules file or built-in preset; presets: "
+                                 f"{', '.join(presets)}")
+            out.rules += cls._load_one(path)
+            sources.append(str(path))
+        out.source = ", ".join(sources)
+        return out
+
+    @staticmethod
+    def _load_one(path: str | os.PathLike[str]) -> list[dict[str, Any]]:
         doc = _load_doc(path, RulesError)
         if not isinstance(doc, dict) or not isinstance(doc.get("rules"), list):
             raise RulesError(f"{path}: expected an object with a 'rules' list "
@@ -207,10 +249,9 @@ class NameRules:
             where = f"{path}: rules[{i}]"
             if not isinstance(rule, dict):
                 raise RulesError(f"{where}: expected an object, got {type(rule).__name__}")
-            unknown = set(rule) - {"regex", "template", "entities", "datasets"}
+            unknown = set(rule) - set(_RULE_KEYS)
             if unknown:
-                raise RulesError(f"{where}: unknown key(s) {sorted(unknown)}; allowed: "
-                                 "regex, template, entities, datasets")
+                raise RulesError(f"{where}: unknown key(s) {sorted(unknown)}; allowed: {', '.join(_RULE_KEYS)}")
             if ("regex" in rule) == ("template" in rule):
                 raise RulesError(f"{where}: give exactly one of 'regex' or 'template'")
             if "regex" in rule:
@@ -227,22 +268,129 @@ class NameRules:
             if "stat" not in names:
                 raise RulesError(f"{where}: the rule never sets 'stat'; every map needs a stat "
                                  "(capture it or fix it in 'entities')")
+            translate = rule.get("translate", {})
+            if not isinstance(translate, dict) or not all(
+                    isinstance(v, dict) and all(isinstance(x, str) for x in v.values()) for v in translate.values()):
+                raise RulesError(f"{where}: 'translate' must map entity names to {{captured: value}} objects")
+            names_spec = rule.get("contrast_names")
+            if names_spec is not None:
+                if not isinstance(names_spec, dict) or "file" not in names_spec or \
+                        ("line" in names_spec) == ("matlab" in names_spec):
+                    raise RulesError(f"{where}: 'contrast_names' needs 'file' and one of 'line' (a regex) or "
+                                     "'matlab' (a struct array path such as SPM.xCon)")
+                if "line" in names_spec and "(?P<name>" not in names_spec["line"]:
+                    raise RulesError(f"{where}: contrast_names.line needs a group (?P<name>...)")
+            for key in ("dof_file", "mask"):
+                if key in rule and not isinstance(rule[key], str):
+                    raise RulesError(f"{where}: '{key}' must be a path template (a string)")
             datasets = rule.get("datasets", ["*"])
             if isinstance(datasets, str):
                 datasets = [datasets]
-            compiled.append({"rx": rx, "entities": dict(fixed), "datasets": list(datasets)})
-        return cls(compiled, str(path))
+            compiled.append({"rx": rx, "entities": dict(fixed), "datasets": list(datasets),
+                             "translate": translate, "contrast_names": names_spec,
+                             "dof_file": rule.get("dof_file"), "mask": rule.get("mask"), "where": where})
+        return compiled
 
     def match(self, dataset_key: str, relpath: str) -> tuple[int, dict[str, str]] | None:
+        hit = self.match_full(dataset_key, relpath)
+        return None if hit is None else (hit[0], hit[1])
+
+    def match_full(self, dataset_key: str, relpath: str
+                   ) -> tuple[int, dict[str, str], dict[str, str]] | None:
+        """(rule index, entities, all captured groups) of the first rule matching a path."""
         for i, rule in enumerate(self.rules):
             if not any(fnmatch.fnmatchcase(dataset_key, g) for g in rule["datasets"]):
                 continue
             m = rule["rx"].fullmatch(relpath)
             if m:
-                ents = {k: v for k, v in m.groupdict().items() if v is not None}
+                groups = {k: v for k, v in m.groupdict().items() if v is not None}
+                ents = {k: v for k, v in groups.items() if not k.startswith("_")}
+                for k, table in rule["translate"].items():
+                    if k in ents and ents[k] in table:
+                        ents[k] = table[ents[k]]
                 ents.update(rule["entities"])
-                return i, ents
+                return i, ents, groups
         return None
+
+    def extras(self, root: str, index: int, groups: dict[str, str], entities: dict[str, str],
+               path: str, dataset: str) -> tuple[dict[str, str], list[Problem]]:
+        """The rule's companions of one map: contrast name (set in ``entities``), mask, DOF file."""
+        rule = self.rules[index]
+        out: dict[str, str] = {}
+        problems: list[Problem] = []
+
+        def fill(template: str) -> str:
+            try:
+                return os.path.normpath(template.format(**groups)).replace(os.sep, "/")
+            except (KeyError, IndexError, ValueError) as exc:
+                raise RulesError(f"{rule['where']}: template {template!r} names a group the regex "
+                                 f"does not have ({exc})") from None
+
+        for key in ("mask", "dof_file"):
+            if rule[key]:
+                rel = fill(rule[key])
+                if os.path.isfile(os.path.join(root, rel)):
+                    out[key] = rel
+        spec = rule["contrast_names"]
+        if spec and "contrast" in entities:
+            number = entities["contrast"]
+            rel = fill(spec["file"])
+            name, why = self._contrast_name(os.path.join(root, rel), spec, number)
+            if name:
+                entities["contrast"] = name
+                entities["contrast_number"] = number
+            else:
+                problems.append(Problem(path, "contrast-name-not-found", f"contrast {number}: {why}; the "
+                                        "number is used as the contrast label", "keep the model's contrast "
+                                        "file beside its maps", "warning", dataset))
+        return out, problems
+
+    def _contrast_name(self, path: str, spec: dict[str, Any], number: str) -> tuple[str | None, str]:
+        key = path + "|" + spec.get("matlab", "") + "|" + spec.get("field", "")
+        if key not in self._names:
+            self._names[key] = _read_names_file(path, spec)
+        table, why = self._names[key]
+        if why:
+            return None, why
+        try:
+            n = int(number)
+        except ValueError:
+            return None, f"{number!r} is not a contrast number"
+        if "line" in spec:
+            rx = re.compile(spec["line"].replace("{contrast}", str(n)), re.M)
+            m = rx.search(table)
+            return (m.group("name").strip(), "") if m else (None, f"no line for it in {path}")
+        if 1 <= n <= len(table) and table[n - 1]:
+            return str(table[n - 1]).strip(), ""
+        return None, f"{path} lists {len(table)} contrast(s)"
+
+
+def _read_names_file(path: str, spec: dict[str, Any]) -> tuple[Any, str]:
+    """The text of a contrast-name file or the names of a MATLAB struct array, and why not."""
+    if "line" in spec:
+        try:
+            with open(path, encoding="utf-8", errors="replace") as fh:
+                return fh.read(), ""
+        except OSError as exc:
+            return None, f"cannot read {path} ({exc.strerror})"
+    try:
+        from scipy.io import loadmat
+
+        doc = loadmat(path, simplify_cells=True)
+    except FileNotFoundError:
+        return None, f"{path} is missing"
+    except NotImplementedError:
+        return None, f"{path} is a MATLAB v7.3 (HDF5) file; save it with -v7 to have its contrast names read"
+    except (OSError, ValueError, TypeError) as exc:
+        return None, f"cannot read {path} ({exc})"
+    node: Any = doc
+    for part in spec["matlab"].split("."):
+        node = node.get(part) if isinstance(node, dict) else None
+        if node is None:
+            return None, f"{path} has no {spec['matlab']}"
+    items = list(node) if isinstance(node, (list, tuple)) or hasattr(node, "tolist") else [node]
+    field_ = spec.get("field", "name")
+    return [it.get(field_) if isinstance(it, dict) else None for it in items], ""
 
 
 def _template_regex(template: str, where: str) -> re.Pattern[str]:
@@ -608,7 +756,7 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
             is_statmap = stem.endswith("_" + STAT_SUFFIX)
             hit = None
             if not is_statmap:
-                hit = rules.match(ds.key, relpath) if rules.rules else None
+                hit = rules.match_full(ds.key, relpath) if rules.rules else None
                 if hit is None:
                     continue
             try:
@@ -635,12 +783,14 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
                     continue
                 maps.append(MapFile(ds, relpath, e.path, ents, st.st_size, st.st_mtime_ns, "bids"))
                 continue
-            idx, ents = hit
+            idx, ents, groups = hit
             base = parser.parse(relpath)
             base.update(ents)
             base["suffix"] = STAT_SUFFIX
             base["extension"] = ".nii.gz" if name.endswith(".nii.gz") else ".nii"
-            maps.append(MapFile(ds, relpath, e.path, base, st.st_size, st.st_mtime_ns, f"rule:{idx}"))
+            extras, probs = rules.extras(root, idx, groups, base, e.path, ds.key)
+            problems.extend(probs)
+            maps.append(MapFile(ds, relpath, e.path, base, st.st_size, st.st_mtime_ns, f"rule:{idx}", extras))
     maps.sort(key=lambda m: m.relpath)
     return maps, jsons, problems
 

@@ -219,7 +219,9 @@ def _vector(item: _Item, b: _Batch, indices: np.ndarray | None, grid: TargetGrid
     A statistic transform (t or p to z) is not linear, so it does not commute with
     interpolation: it runs on the source voxels, before resampling.
     """
-    vol, facts = read_volume(item.path, expect_sha256=item.sha256)
+    converting = b.stat == "z" and item.stat in ("t", "p")
+    # p close to 1 (z < -5) is not representable in float32: convert from the file's precision
+    vol, facts = read_volume(item.path, expect_sha256=item.sha256, dtype=np.float64 if converting else np.float32)
     missing_from = "none"
     if item.mask_path and item.mask_sha256:
         vol[~_model_mask(item.mask_path, item.mask_sha256, facts, {} if masks is None else masks)] = np.nan

@@ -210,8 +210,8 @@ def gunzip(raw: bytes) -> bytes:
     return gzip_ng.decompress(raw)
 
 
-def read_volume(path: str, expect_sha256: str | None = None) -> tuple[np.ndarray, HeaderFacts]:
-    """Read a 3-D NIfTI volume as scaled float32, optionally checking the file's SHA-256.
+def read_volume(path: str, expect_sha256: str | None = None, dtype=np.float32) -> tuple[np.ndarray, HeaderFacts]:
+    """Read a 3-D NIfTI volume as scaled float32 (or ``dtype``), optionally checking the file's SHA-256.
 
     The file is read once; its bytes are hashed, inflated if gzipped, and viewed
     with the header's dtype, byte order and Fortran (x-fastest) layout.
@@ -250,11 +250,11 @@ def read_volume(path: str, expect_sha256: str | None = None) -> tuple[np.ndarray
     if len(body) < need:
         raise GridError(f"{path}: data is truncated ({len(body)} bytes, header needs {need}); re-create the file")
     arr = np.frombuffer(body, dtype=dt, count=count, offset=facts.vox_offset)
-    vol = arr.reshape(facts.spatial_shape, order="F").astype(np.float32)
+    vol = arr.reshape(facts.spatial_shape, order="F").astype(dtype)
     slope, inter = facts.scl_slope, facts.scl_inter
     # nifti1.h: scaling applies when scl_slope is non-zero (and finite)
     if np.isfinite(slope) and slope != 0 and (slope != 1 or inter != 0):
-        vol = vol * np.float32(slope) + np.float32(inter if np.isfinite(inter) else 0)
+        vol = vol * vol.dtype.type(slope) + vol.dtype.type(inter if np.isfinite(inter) else 0)
     return vol, facts
 
 

@@ -290,8 +290,16 @@ class LabelReport:
 
 def apply_vocabulary(vocab: Vocabulary, maps: pa.Table, inherit_broader: bool | None = None
                      ) -> tuple[pa.Table, LabelReport]:
-    """Label the maps of a catalog table; returns the labels table and a report."""
+    """Label the contrast maps of a catalog table; returns the labels table and a report.
+
+    Model maps (a stat without a contrast: residuals, fit) describe a model, not a condition,
+    and are not labelled.
+    """
     inherit = vocab.inherit_broader if inherit_broader is None else inherit_broader
+    if "map_kind" in maps.column_names:
+        import pyarrow.compute as pc
+
+        maps = maps.filter(pc.fill_null(pc.not_equal(maps["map_kind"], "model"), True))
     cols = {k: maps[k].to_pylist() for k in ("map_id", "dataset", "study", "task", "contrast", "stat")}
     # rules look at a handful of columns: decide once per distinct combination
     combos: dict[tuple, list[int]] = {}

@@ -199,6 +199,17 @@ def _labels(cat, with_broader: bool):
     return lab.drop_duplicates(["map_id", "concept"])
 
 
+def _present_values(cat, feature_set: str) -> str:
+    """What the feature set holds, so an empty selection can say what would match."""
+    q = ("SELECT list(DISTINCT m.task ORDER BY m.task) FILTER (WHERE m.task IS NOT NULL) AS task, "
+         "list(DISTINCT m.stat ORDER BY m.stat) AS stat, count(DISTINCT m.contrast) AS n_contrasts, "
+         "count(*) AS n FROM maps m JOIN features f ON f.map_id = m.map_id "
+         f"AND f.feature_set = '{feature_set}'")
+    r = cat.sql(q).to_pylist()[0]
+    return (f"Feature set {feature_set!r} holds {r['n']} map(s): task {', '.join(r['task'] or []) or '(none)'}; "
+            f"stat {', '.join(r['stat'] or []) or '(none)'}; {r['n_contrasts']} contrast(s)")
+
+
 def _sql_list(values) -> str:
     return ", ".join("'" + str(v).replace("'", "''") + "'" for v in values)
 
@@ -228,7 +239,8 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
     if task:
         conds.append(f"task IN ({_sql_list(task)})")
     if stat:
-        conds.append(f"stat IN ({_sql_list(stat)})")
+        # stat labels are matched case-insensitively: a user's T is nilearn's t, f is F
+        conds.append(f"lower(stat) IN ({_sql_list(v.lower() for v in stat)})")
     lab = _labels(cat, with_broader)
     if concepts:
         known = set(lab["concept"])
@@ -262,7 +274,8 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
             dropped[f"coverage < {min_coverage:g}"] = int(low.sum())
         df = df[~low].reset_index(drop=True)
     if df.empty:
-        raise QueryError(f"the selection is empty (dropped: {dropped or 'none'}); loosen the filters")
+        raise QueryError(f"the selection is empty (dropped: {dropped or 'none'}); loosen the filters. "
+                         + _present_values(cat, fs.name))
     lab = lab[lab.map_id.isin(set(df.map_id))]
     by_map = lab.groupby("map_id")["concept"].apply(lambda s: sorted(set(s))).to_dict()
     df["concepts"] = [by_map.get(m, []) for m in df.map_id]
