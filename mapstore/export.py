@@ -151,6 +151,10 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
                     part = meta_t.slice(i, len(block))
                     if sel.y is not None:
                         part = part.append_column("y", pa.array(np.asarray(sel.y[i:i + len(block)], dtype=str)))
+                    if sel.Y is not None:  # multi-label indicators, columns as in concepts.json
+                        ind = np.ascontiguousarray(sel.Y[i:i + len(block)], dtype=np.uint8).reshape(-1)
+                        part = part.append_column("Y", pa.FixedSizeListArray.from_arrays(
+                            pa.array(ind, pa.uint8()), len(sel.concepts)))
                     flat = pa.array(block.reshape(-1), pa.float32())
                     part = part.append_column("x", pa.FixedSizeListArray.from_arrays(flat, nv))
                     if writer is None:

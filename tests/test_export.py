@@ -138,6 +138,12 @@ def test_export_refuses_to_overwrite_and_parquet_format(labelled_store, tmp_path
     np.testing.assert_array_equal(x0, st.features().matrix(sel.map_ids[:1])[0])
     assert set(t.column("split").to_pylist()) == {"train", "test"}
     assert mapstore.verify(out).ok
+    # a multi-label target keeps its indicator matrix in the parquet layout too
+    multi = st.select(concepts=["reading", "listening", "visual-motion"], target="concepts")
+    st.export(tmp_path / "pm", multi, fmt="parquet")
+    tm = pq.read_table(tmp_path / "pm" / "table.parquet")
+    np.testing.assert_array_equal(np.array(tm.column("Y").to_pylist(), dtype=np.uint8), multi.Y)
+    assert json.loads((tmp_path / "pm" / "concepts.json").read_text()) == multi.concepts
     with pytest.raises(ExportError, match="not empty"):
         st.export(out, sel)
     root = st.sql("SELECT root FROM datasets LIMIT 1")["root"][0].as_py()
