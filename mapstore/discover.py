@@ -800,6 +800,7 @@ def _stat_entry(entry: os.DirEntry):
 
 
 _ENTITY_PART = re.compile(r"^([a-zA-Z0-9]+)-(.*)$")
+_CLEAN_STEM = re.compile(r"(?:[a-zA-Z0-9]+-[a-zA-Z0-9+]+_)*[a-zA-Z0-9]+")
 
 
 def label_problems(stem: str) -> list[tuple[str, str, str]]:
@@ -816,6 +817,8 @@ def label_problems(stem: str) -> list[tuple[str, str, str]]:
     >>> label_problems("sub-01_contrast-faces_houses_stat-t_statmap")
     [('underscore', 'contrast', 'faces_houses')]
     """
+    if _CLEAN_STEM.fullmatch(stem):
+        return []  # the usual case, in one regex call
     entries: list[list[str]] = []  # [kind, key, label]; kind "" while the label is clean
     for part in stem.split("_")[:-1]:
         m = _ENTITY_PART.match(part)
@@ -980,6 +983,8 @@ class ModelFiles:
         self._dof: dict[tuple[str, ...], tuple[float | None, str | None]] = {}
 
     def _find(self, kind: str, relpath: str, entities: dict[str, str]) -> list[str]:
+        if not self._cands:
+            return []
         folder = relpath.rsplit("/", 1)[0] if "/" in relpath else ""
         parts = folder.split("/") if folder else []
         for depth in range(len(parts), -1, -1):
