@@ -5,7 +5,6 @@
 
 import sys
 
-import numpy as np
 from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import cross_val_score
 from sklearn.pipeline import make_pipeline
@@ -17,9 +16,10 @@ store = mapstore.open(sys.argv[1])
 sel = store.select(concepts=["visual-motion", "hand-movement", "listening", "reading", "arithmetic"],
                    target="concept", stat=["t", "z"], group_by="study", min_coverage=0.5)
 print(f"{len(sel)} maps, {sel.X.shape[1]} voxels, dropped: {sel.dropped or 'none'}")
+print(sel.missing_report)  # X keeps the voxels every selected map covers (missing="common")
 
-# missing voxels (outside a map's field of view) count as no effect; each map is z-scored
-prep = FunctionTransformer(lambda a: StandardScaler().fit_transform(np.nan_to_num(a).T).T)
+# each map is z-scored on its own (no statistic is learned across maps, so nothing leaks)
+prep = FunctionTransformer(lambda a: StandardScaler().fit_transform(np.asarray(a).T).T)
 model = make_pipeline(prep, LogisticRegression(max_iter=300, C=0.01))
 scores = cross_val_score(model, sel.X, sel.y, cv=sel.splits("leave-one-group-out"))
 for study, s in zip(sorted(set(sel.groups)), scores):
@@ -28,6 +28,6 @@ for study, s in zip(sorted(set(sel.groups)), scores):
 # the coefficients of a model trained on everything, as a brain image for nilearn plotting
 model.fit(sel.X, sel.y)
 coef = model[-1].coef_[list(model[-1].classes_).index("reading")]
-img = store.to_image(coef)
+img = sel.to_image(coef)  # back onto the grid; voxels outside X's columns are NaN
 img.to_filename("reading-weights.nii.gz")
 print("wrote reading-weights.nii.gz")

@@ -75,7 +75,7 @@ class Store:
     def select(self, where: str | None = None, *, concepts: list[str] | None = None,
                task: list[str] | None = None, stat: list[str] | None = None, features: str | None = None,
                min_coverage: float | None = None, target: str = "contrast", group_by: str = "study",
-               with_broader: bool = False) -> Selection:
+               with_broader: bool = False, missing: str = "common", min_voxels: int | None = None) -> Selection:
         """Choose maps for a decoder: returns a :class:`~mapstore.query.Selection`.
 
         Parameters
@@ -95,6 +95,14 @@ class Store:
         group_by : {"study", "site", "lab", "subject", "dataset"}, default="study"
         with_broader : bool, default=False
             Count inherited broader concepts as labels too.
+        missing : {"common", "zero", "keep"}, default="common"
+            Voxels some selected map has no value for: ``common`` keeps only the voxels with a
+            value in every map (``sel.voxels``; ``sel.missing_report`` says how many were
+            dropped), ``zero`` fills 0, ``keep`` leaves NaN (for a pipeline with an imputer,
+            fitted inside each fold).  Nothing is imputed from data across folds.
+        min_voxels : int, optional
+            With ``common``, refuse (naming the maps covering least) when fewer voxels remain;
+            default 1% of the mask.
 
         Examples
         --------
@@ -103,7 +111,8 @@ class Store:
         >>> cross_val_score(model, sel.X, sel.y, cv=sel.splits("leave-one-group-out"))  # doctest: +SKIP
         """
         return select(self, where, concepts=concepts, task=task, stat=stat, features=features,
-                      min_coverage=min_coverage, target=target, group_by=group_by, with_broader=with_broader)
+                      min_coverage=min_coverage, target=target, group_by=group_by, with_broader=with_broader,
+                      missing=missing, min_voxels=min_voxels)
 
     def export(self, out, selection: Selection | None = None, *, scheme: str = "leave-one-group-out",
                seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False,

@@ -15,7 +15,6 @@ import os
 import re
 import sys
 import time
-from concurrent.futures import ProcessPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable
@@ -36,6 +35,7 @@ from .discover import (
     walk_dataset,
 )
 from .params import resolve_jobs
+from .pool import process_pool
 from .errors import HeaderError, NoDatasetsFound, ParameterError
 from .hashing import digest_file
 from .header import NIFTI1_SIZE, NIFTI2_SIZE, HeaderFacts, header_prefix, parse_header
@@ -555,10 +555,7 @@ def index(
 
             bar = tqdm(total=len(units), unit="part", desc="indexing", file=sys.stderr)
         if jobs > 1 and len(units) > 1:
-            import multiprocessing
-
-            ctx = multiprocessing.get_context("fork") if sys.platform == "linux" else None
-            with ProcessPoolExecutor(max_workers=min(jobs, len(units)), mp_context=ctx) as pool:
+            with process_pool(min(jobs, len(units))) as pool:
                 for res in pool.map(_run_unit, units):
                     results.append(res)
                     if bar:

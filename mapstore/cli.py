@@ -177,17 +177,22 @@ def labels_cmd(store, vocab, inherit) -> None:
 @click.option("--seed", type=int, default=0, show_default=True)
 @click.option("--allow-leak", is_flag=True, help="Accept a split that leaks (with a warning).")
 @click.option("--with-broader", is_flag=True, help="Count inherited broader concepts as labels.")
+@click.option("--missing", type=click.Choice(["common", "zero", "keep"]), default="common", show_default=True,
+              help="Voxels some selected map has no value for: keep only voxels every map covers (common), "
+                   "fill 0, or keep NaN.")
+@click.option("--min-voxels", type=click.IntRange(min=1), help="With --missing common, refuse when fewer remain "
+              "(default: 1% of the mask).")
 @click.option("--format", "fmt", type=click.Choice(["npy", "parquet"]), default="npy", show_default=True)
 @click.option("--overwrite", is_flag=True, help="Replace an existing export folder.")
 def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_coverage, target, group_by, scheme,
-               seed, allow_leak, with_broader, fmt, overwrite) -> None:
+               seed, allow_leak, with_broader, missing, min_voxels, fmt, overwrite) -> None:
     """Export X, y, groups, splits and metadata of a selection, with a manifest."""
     st = mapstore.open(store)
     if target is None:
         target = "concept" if concepts else "contrast"
     sel = st.select(where, concepts=list(concepts) or None, task=list(tasks) or None, stat=list(stats) or None,
                     features=feature_set, min_coverage=min_coverage, target=target, group_by=group_by,
-                    with_broader=with_broader)
+                    with_broader=with_broader, missing=missing, min_voxels=min_voxels)
     report = st.export(out, sel, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt, overwrite=overwrite)
     click.echo(report.summary())
 
@@ -301,8 +306,8 @@ def _demo_decoder(export_dir: Path):
     rows = []
     for fold in sorted(meta["fold"].unique()):
         test = (meta["fold"] == fold).to_numpy()
-        # missing voxels count as no effect for this plain model; maps are z-scored one by one
-        prep = FunctionTransformer(lambda a: StandardScaler().fit_transform(np.nan_to_num(np.asarray(a)).T).T)
+        # X holds the voxels every map covers (missing="common"); maps are z-scored one by one
+        prep = FunctionTransformer(lambda a: StandardScaler().fit_transform(np.asarray(a).T).T)
         model = make_pipeline(prep, LogisticRegression(max_iter=300, C=0.01))
         model.fit(X[~test], y[~test])
         acc = float((model.predict(X[test]) == y[test]).mean())

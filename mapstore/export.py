@@ -2,11 +2,14 @@
 
 Output folder::
 
-    X.npy             float32 (n_maps, n_voxels), memory-mappable   (or table.parquet with --format parquet)
+    X.npy             float32 (n_maps, n_voxels), memory-mappable   (or table.parquet with --format parquet);
+                      columns as the selection's missing-value policy keeps them
+    voxels.npy        flat C-order grid index of each column of X (paints a row back onto the grid)
     y.npy / Y.npy     targets: class names, or a 0/1 matrix over concepts (with concepts.json)
     groups.npy        group label per row
     meta.parquet      one row per map: ids, entities, origin, concepts, coverage, fold / split
-    manifest.json     query, feature set (grid, mask hashes), every source sha256 and row hash,
+    manifest.json     query, feature set (grid, mask hashes), missing-value policy, every source
+                      sha256, store row hash and exported row hash,
                       vocabulary hash, versions, scheme and seed, hashes of the files above
 
 The folder is written under a temporary name and renamed into place at the end.
@@ -51,11 +54,17 @@ class ExportReport:
     dropped: dict[str, int]
     seconds: float
     leaks: list[str] = field(default_factory=list)
+    missing: dict[str, Any] = field(default_factory=dict)
 
     def summary(self) -> str:
         d = ", ".join(f"{v} ({k})" for k, v in self.dropped.items()) or "none"
+        m = self.missing
+        voxel_line = (f"\nmissing values: {m['policy']}; {m['dropped_voxels']:,} of {m['mask_voxels']:,} mask voxels "
+                      f"dropped ({m['reason']})" if m.get("dropped_voxels") else
+                      f"\nmissing values: {m['policy']} ({m['reason']})" if m else "")
         return (f"exported {self.n_maps} maps x {self.n_voxels:,} voxels to {self.out} in {self.seconds:.1f} s\n"
                 f"scheme {self.scheme}: {self.n_splits} split(s); dropped: {d}"
+                + voxel_line
                 + (f"\nWARNING: {len(self.leaks)} leak(s) accepted with --allow-leak" if self.leaks else ""))
 
 
@@ -117,6 +126,18 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
                                  "coverage", "sha256", "feature_key", "conversion", "relpath") if c in meta.columns]
         meta_t = pa.Table.from_pandas(meta[keep_cols], preserve_index=False)
         row_hashes = fs.row_hashes(ids)
+        voxels = sel.voxels  # X's columns, by the selection's missing-value policy
+        subset = len(voxels) != fs.n_voxels
+        x_hashes: list[str] = []
+
+        def shape(block: np.ndarray) -> np.ndarray:
+            """A block of store rows as X rows (policy applied), their hashes recorded."""
+            out_block = np.ascontiguousarray(block[:, voxels]) if subset else block
+            if sel.missing == "zero":
+                np.nan_to_num(out_block, copy=False, nan=0.0)
+            x_hashes.extend(_row_hash(r) for r in out_block)
+            return out_block
+
         buf = np.empty((min(BLOCK_ROWS, max(n, 1)), nv), dtype=np.float32)  # one reused block buffer
         if fmt == "npy":
             # a plain file written through two reused buffers, reading the next block while the
@@ -125,7 +146,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
             with open(tmp / "X.npy", "wb", buffering=0) as fh, ThreadPoolExecutor(1) as reader:
                 np.lib.format.write_array_header_1_0(
                     fh, {"descr": np.lib.format.dtype_to_descr(np.dtype(np.float32)), "fortran_order": False,
-                         "shape": (n, nv)})
+                         "shape": (n, len(voxels))})
                 starts = list(range(0, n, BLOCK_ROWS))
                 pending = reader.submit(fs.read_into, ids[0:BLOCK_ROWS], buf) if starts else None
                 for k in range(len(starts)):
@@ -133,7 +154,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
                     if k + 1 < len(starts):
                         nxt = starts[k + 1]
                         pending = reader.submit(fs.read_into, ids[nxt:nxt + BLOCK_ROWS], spare)
-                    view = memoryview(block).cast("B")
+                    view = memoryview(shape(block)).cast("B")
                     while view:
                         view = view[fh.write(view):]
                     buf, spare = spare, buf
@@ -147,7 +168,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
             writer = None
             try:
                 for i in range(0, n, BLOCK_ROWS):
-                    block = fs.read_into(ids[i:i + BLOCK_ROWS], buf)
+                    block = shape(fs.read_into(ids[i:i + BLOCK_ROWS], buf))
                     part = meta_t.slice(i, len(block))
                     if sel.y is not None:
                         part = part.append_column("y", pa.array(np.asarray(sel.y[i:i + len(block)], dtype=str)))
@@ -156,7 +177,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
                         part = part.append_column("Y", pa.FixedSizeListArray.from_arrays(
                             pa.array(ind, pa.uint8()), len(sel.concepts)))
                     flat = pa.array(block.reshape(-1), pa.float32())
-                    part = part.append_column("x", pa.FixedSizeListArray.from_arrays(flat, nv))
+                    part = part.append_column("x", pa.FixedSizeListArray.from_arrays(flat, len(voxels)))
                     if writer is None:
                         writer = pq.ParquetWriter(tmp / "table.parquet", part.schema, compression="zstd")
                     writer.write_table(part, row_group_size=64)
@@ -165,7 +186,9 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
                     writer.close()
         if sel.concepts:
             (tmp / "concepts.json").write_text(json.dumps(sel.concepts))
-        manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, row_hashes, fmt)
+        # flat C-order grid index of each column of X: enough to paint a row back onto the grid
+        np.save(tmp / "voxels.npy", fs.mask_indices[voxels].astype(np.int64))
+        manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, row_hashes, x_hashes, fmt)
         # the data files are checked row by row against row_sha256 instead of hashed whole
         manifest["files"] = {p.name: _sha256_file(p) for p in sorted(tmp.iterdir())
                              if p.name not in DATA_FILES}
@@ -180,11 +203,12 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
-    return ExportReport(str(out), n, nv, scheme, len(splits), dict(sel.dropped), time.perf_counter() - t0, leaks)
+    return ExportReport(str(out), n, len(voxels), scheme, len(splits), dict(sel.dropped), time.perf_counter() - t0,
+                        leaks, sel.missing_report)
 
 
 def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: list[str], splits,
-              row_hashes: list[str], fmt: str) -> dict[str, Any]:
+              row_hashes: list[str], x_hashes: list[str], fmt: str) -> dict[str, Any]:
     import nibabel
     import scipy
     import sklearn
@@ -194,10 +218,10 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
     head = store.catalog.head
     ds = {r["dataset"]: r["root"] for r in store.sql("SELECT dataset, root FROM datasets").to_pylist()}
     sources = []
-    for r, h in zip(sel.meta.itertuples(index=False), row_hashes):
+    for r, h, xh in zip(sel.meta.itertuples(index=False), row_hashes, x_hashes):
         sources.append({"map_id": r.map_id, "dataset": r.dataset, "relpath": r.relpath,
                         "path": os.path.join(ds.get(r.dataset, ""), r.relpath), "sha256": r.sha256,
-                        "feature_key": r.feature_key, "row_sha256": h})
+                        "feature_key": r.feature_key, "row_sha256": h, "x_sha256": xh})
     return {
         "format": MANIFEST_FORMAT, "format_version": 1,
         "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
@@ -215,7 +239,8 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
         "scheme": scheme, "seed": seed, "allow_leak": allow_leak, "leaks": leaks,
         "splits": [{"train": len(tr), "test": len(te),
                     "test_groups": sorted(map(str, set(sel.groups[te])))} for tr, te in splits],
-        "shape": [len(sel), fs.n_voxels], "dtype": "float32", "layout": fmt,
+        "missing": {**sel.missing_report, "voxels_file": "voxels.npy"},
+        "shape": [len(sel), len(sel.voxels)], "dtype": "float32", "layout": fmt,
         "sources": sources,
     }
 
@@ -307,6 +332,11 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
     return VerifyReport(str(mpath), len(man["sources"]), n_rows, changes)
 
 
+def _x_hash(source: dict[str, Any]) -> str:
+    # manifests before missing-value policies exported whole store rows
+    return source.get("x_sha256") or source["row_sha256"]
+
+
 def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
     """Compare every exported row with the row hash recorded for it."""
     out: list[str] = []
@@ -319,7 +349,7 @@ def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
         for batch in pq.ParquetFile(f).iter_batches(batch_size=BLOCK_ROWS, columns=["x"]):
             values = batch.column(0).flatten().to_numpy(zero_copy_only=False).reshape(batch.num_rows, -1)
             for row in values:
-                if i >= len(sources) or _row_hash(row) != sources[i]["row_sha256"]:
+                if i >= len(sources) or _row_hash(row) != _x_hash(sources[i]):
                     out.append(f"exported row changed: table.parquet row {i}")
                 i += 1
         if i != len(sources):
@@ -335,7 +365,7 @@ def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
     if X.shape != tuple(man["shape"]) or X.dtype != np.float32:
         return [f"export file changed: X.npy has shape {X.shape} {X.dtype}, the manifest {man['shape']} float32"]
     for i, s in enumerate(sources):
-        if _row_hash(X[i]) != s["row_sha256"]:
+        if _row_hash(X[i]) != _x_hash(s):
             out.append(f"exported row changed: X.npy row {i} ({s['map_id']})")
     return out
 
@@ -378,6 +408,12 @@ def json_schemas() -> dict[str, dict[str, Any]]:
                 "type": "object",
                 "required": ["map_id", "dataset", "relpath", "path", "sha256", "feature_key", "row_sha256"],
                 "properties": {k: {"type": "string"} for k in
-                               ("map_id", "dataset", "relpath", "path", "sha256", "feature_key", "row_sha256")}}},
+                               ("map_id", "dataset", "relpath", "path", "sha256", "feature_key", "row_sha256",
+                                "x_sha256")}}},
+            "missing": {"type": "object", "required": ["policy", "mask_voxels", "kept_voxels"],
+                        "properties": {"policy": {"enum": ["common", "zero", "keep"]},
+                                       "mask_voxels": {"type": "integer"}, "kept_voxels": {"type": "integer"},
+                                       "dropped_voxels": {"type": "integer"}, "reason": {"type": "string"},
+                                       "voxels_file": {"type": "string"}}},
         },
     }}

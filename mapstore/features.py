@@ -23,7 +23,7 @@ import sys
 import time
 import uuid
 from collections import Counter
-from concurrent.futures import ProcessPoolExecutor, as_completed
+from concurrent.futures import as_completed
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -34,6 +34,7 @@ import pyarrow.parquet as pq
 
 from . import __version__
 from .params import positive_int, resolve_jobs
+from .pool import process_pool
 from .errors import FeatureError, GridError, MapstoreError, ParameterError, QueryError
 from .grid import (
     METHODS,
@@ -328,10 +329,7 @@ def _execute(batches: list[_Batch], jobs: int, scheduler: Any, progress: bool, d
                 if owned:
                     client.close()
         elif jobs > 1 and len(batches) > 1:
-            import multiprocessing
-
-            ctx = multiprocessing.get_context("fork") if sys.platform == "linux" else None
-            with ProcessPoolExecutor(max_workers=min(jobs, len(batches)), mp_context=ctx) as pool:
+            with process_pool(min(jobs, len(batches))) as pool:
                 futs = {pool.submit(_run_batch, b): b for b in batches}
                 for fut in as_completed(futs):
                     if bar:

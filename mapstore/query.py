@@ -16,7 +16,10 @@ import numpy as np
 
 from .errors import LeakageError, ParameterError, QueryError
 
-__all__ = ["Selection", "select", "parse_scheme", "GROUP_COLUMNS", "assign_folds"]
+__all__ = ["Selection", "select", "parse_scheme", "GROUP_COLUMNS", "assign_folds", "MISSING_POLICIES"]
+
+# what X does with voxels some selected map has no value for (NaN in the feature set)
+MISSING_POLICIES = ("common", "zero", "keep")
 
 GROUP_COLUMNS = {"study": "study", "site": "site", "lab": "lab", "subject": "participant",
                  "participant": "participant", "dataset": "dataset"}
@@ -142,7 +145,10 @@ class Selection:
     target: str
     query: dict[str, Any]
     dropped: dict[str, int] = field(default_factory=dict)
+    missing: str = "common"
+    min_voxels: int | None = None
     _X: np.ndarray | None = field(default=None, repr=False)
+    _voxels: np.ndarray | None = field(default=None, repr=False)
 
     def __len__(self) -> int:
         return len(self.meta)
@@ -152,11 +158,83 @@ class Selection:
         return self.meta["map_id"].tolist()
 
     @property
+    def voxels(self) -> np.ndarray:
+        """Columns of ``X``: positions in the feature set's mask vector (see ``missing``).
+
+        ``common`` keeps the voxels finite in every selected map (found in one streamed
+        pass over the rows); ``zero`` and ``keep`` keep every mask voxel.
+        """
+        if self._voxels is None:
+            fs = self.feature_set
+            if self.missing != "common":
+                self._voxels = np.arange(fs.n_voxels)
+            else:
+                finite = np.ones(fs.n_voxels, dtype=bool)
+                ids = self.map_ids
+                buf = np.empty((min(64, max(len(ids), 1)), fs.n_voxels), dtype=np.float32)
+                for i in range(0, len(ids), len(buf)):
+                    block = fs.read_into(ids[i:i + len(buf)], buf)
+                    finite &= np.isfinite(block).all(axis=0)
+                self._voxels = np.flatnonzero(finite)
+                self._refuse_if_too_few()
+        return self._voxels
+
+    def _refuse_if_too_few(self) -> None:
+        fs = self.feature_set
+        need = self.min_voxels if self.min_voxels is not None else max(1, int(np.ceil(0.01 * fs.n_voxels)))
+        kept = len(self._voxels)
+        if kept >= need:
+            return
+        worst = self.meta.sort_values("coverage").head(5)
+        names = ", ".join(f"{r.dataset}:{r.relpath} ({r.coverage:.0%})" for r in worst.itertuples())
+        self._voxels = None
+        raise QueryError(f"only {kept:,} of the feature set's {fs.n_voxels:,} voxels have a value in every one of "
+                         f"the {len(self)} selected maps (need {need:,}); the maps covering least: {names}. Drop "
+                         "them (min_coverage=..., --min-coverage), select fewer studies, or choose missing='zero' "
+                         "or missing='keep' with an imputer in your pipeline")
+
+    @property
+    def missing_report(self) -> dict[str, Any]:
+        """The missing-value policy and what it did to the columns."""
+        n = self.feature_set.n_voxels
+        kept = len(self.voxels)
+        why = {"common": "voxels without a value in at least one selected map were dropped",
+               "zero": "missing values are 0 in X", "keep": "missing values are NaN in X"}[self.missing]
+        return {"policy": self.missing, "mask_voxels": n, "kept_voxels": kept, "dropped_voxels": n - kept,
+                "reason": why}
+
+    @property
     def X(self) -> np.ndarray:
-        """(n_maps, n_voxels) float32, read from the feature set's shards on first use."""
+        """(n_maps, n_voxels) float32, read from the feature set's shards on first use.
+
+        Columns follow ``missing``: with ``common`` (the default) only voxels with a value in
+        every selected map (``voxels``), so any decoder takes X as it is; ``zero`` fills
+        missing values with 0; ``keep`` leaves them NaN.  Nothing is imputed from the data:
+        an imputer fitted on all maps would see the test folds.
+        """
         if self._X is None:
-            self._X = self.feature_set.matrix(self.map_ids)
+            full = self.feature_set.matrix(self.map_ids)
+            if self.missing == "common":
+                voxels = self.voxels
+                self._X = full if len(voxels) == full.shape[1] else np.ascontiguousarray(full[:, voxels])
+            elif self.missing == "zero":
+                self._X = np.nan_to_num(full, nan=0.0, copy=False)
+            else:
+                self._X = full
         return self._X
+
+    def to_image(self, vector):
+        """A NIfTI image of a row of ``X`` or of a decoder's weights (one per column of ``X``).
+
+        Values go back to their voxels on the feature set's grid; every other voxel is NaN.
+        """
+        v = np.asarray(vector, dtype=np.float32).reshape(-1)
+        voxels = self.voxels
+        if v.size != len(voxels):
+            raise ParameterError(f"vector has {v.size} values, X has {len(voxels)} columns")
+        full = np.full(self.feature_set.n_voxels, np.nan, dtype=np.float32)
+        full[voxels] = v
+        return self.feature_set.to_image(full)
 
     def splits(self, scheme: str = "leave-one-group-out", seed: int = 0,
                allow_leak: bool = False) -> list[tuple[np.ndarray, np.ndarray]]:
@@ -216,10 +294,15 @@ def _sql_list(values) -> str:
 
 def select(store, where: str | None = None, *, concepts: list[str] | None = None, task: list[str] | None = None,
            stat: list[str] | None = None, features: str | None = None, min_coverage: float | None = None,
-           target: str = "contrast", group_by: str = "study", with_broader: bool = False) -> Selection:
+           target: str = "contrast", group_by: str = "study", with_broader: bool = False,
+           missing: str = "common", min_voxels: int | None = None) -> Selection:
     """Choose maps and build a :class:`Selection` (see :meth:`mapstore.Store.select`)."""
     import pandas as pd
 
+    if missing not in MISSING_POLICIES:
+        raise ParameterError(f"missing must be one of {list(MISSING_POLICIES)}, got {missing!r}")
+    if min_voxels is not None and (not isinstance(min_voxels, int) or min_voxels < 1):
+        raise ParameterError(f"min_voxels must be a positive integer, got {min_voxels!r}")
     if group_by not in GROUP_COLUMNS:
         raise ParameterError(f"group_by must be one of {sorted(GROUP_COLUMNS)}, got {group_by!r}")
     if min_coverage is not None and not 0 <= min_coverage <= 1:
@@ -315,5 +398,6 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
     groups = df[gcol].to_numpy(object)
     query = {"where": where, "concepts": concepts, "task": task, "stat": stat, "features": fs.name,
              "min_coverage": min_coverage, "target": target, "group_by": group_by, "with_broader": with_broader,
-             "sql": q}
-    return Selection(store, fs, df, y, Y, concept_list, groups, group_by, target, query, dropped)
+             "missing": missing, "min_voxels": min_voxels, "sql": q}
+    return Selection(store, fs, df, y, Y, concept_list, groups, group_by, target, query, dropped, missing,
+                     min_voxels)

@@ -56,8 +56,9 @@ def test_a_decoder_trained_on_some_studies_predicts_the_others(demo_store, demo_
     mapstore.label(store, demo_tree / "concepts.json")
     st = mapstore.open(store)
     sel = st.select(concepts=["visual-motion", "hand-movement", "listening", "reading", "arithmetic"],
-                    target="concept", stat=["t", "z"], features="three")
-    prep = FunctionTransformer(lambda a: StandardScaler().fit_transform(np.nan_to_num(a).T).T)
+                    target="concept", stat=["t", "z"], features="three", missing="zero")
+    # missing voxels as 0 ("no effect"), every voxel kept; maps z-scored one by one
+    prep = FunctionTransformer(lambda a: StandardScaler().fit_transform(np.asarray(a).T).T)
     model = make_pipeline(prep, LogisticRegression(max_iter=300, C=0.01))
     scores = cross_val_score(model, sel.X, sel.y, cv=sel.splits("leave-one-group-out"))
     chance = 1 / len(set(sel.y))

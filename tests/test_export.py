@@ -38,7 +38,7 @@ def test_select_where_targets_groups(labelled_store):
     sel = st.select("stat = 't' AND age >= 18", concepts=["reading", "listening"], target="concept")
     assert set(sel.y) == {"reading", "listening"}
     assert (sel.meta.stat == "t").all()
-    assert sel.X.shape == (len(sel), st.features().n_voxels)
+    assert sel.X.shape == (len(sel), len(sel.voxels)) and np.isfinite(sel.X).all()
     multi = st.select(concepts=["reading", "listening", "visual-motion"], target="concepts")
     assert multi.Y.shape == (len(multi), 3) and multi.concepts == ["listening", "reading", "visual-motion"]
     assert (multi.Y.sum(axis=1) >= 1).all()
@@ -84,7 +84,9 @@ def test_export_round_trip_and_verify(labelled_store, tmp_path):
     rep = st.export(out, sel, scheme="leave-one-group-out", seed=3)
     assert rep.n_maps == len(sel) and rep.n_splits == sel.meta.study.nunique()
     X = np.load(out / "X.npy", mmap_mode="r")
-    np.testing.assert_array_equal(X, st.features().matrix(sel.map_ids))
+    np.testing.assert_array_equal(X, st.features().matrix(sel.map_ids)[:, sel.voxels])
+    cols = np.load(out / "voxels.npy")
+    np.testing.assert_array_equal(cols, st.features().mask_indices[sel.voxels])
     meta = pq.read_table(out / "meta.parquet").to_pandas()
     assert list(meta.map_id) == sel.map_ids
     assert list(np.load(out / "y.npy")) == list(sel.y) and list(np.load(out / "groups.npy")) == list(sel.groups)
@@ -135,7 +137,7 @@ def test_export_refuses_to_overwrite_and_parquet_format(labelled_store, tmp_path
     t = pq.read_table(out / "table.parquet")
     assert t.num_rows == len(sel) and set(t.column("y").to_pylist()) == set(sel.y)
     x0 = np.asarray(t.column("x")[0].values)
-    np.testing.assert_array_equal(x0, st.features().matrix(sel.map_ids[:1])[0])
+    np.testing.assert_array_equal(x0, st.features().matrix(sel.map_ids[:1])[0][sel.voxels])
     assert set(t.column("split").to_pylist()) == {"train", "test"}
     assert mapstore.verify(out).ok
     # a multi-label target keeps its indicator matrix in the parquet layout too
@@ -176,3 +178,77 @@ def test_origins_mapping_one_person_in_two_studies_is_a_leak(demo_tree, tmp_path
     with pytest.warns(UserWarning):
         rep = st.export(tmp_path / "out", sel, allow_leak=True)
     assert rep.leaks and json.loads((tmp_path / "out" / "manifest.json").read_text())["allow_leak"]
+
+
+def test_missing_policies_against_numpy(labelled_store):
+    st = mapstore.open(labelled_store)
+    full = st.features().matrix(st.select(concepts=["reading", "listening"], target="concept",
+                                          missing="keep").map_ids)
+    assert np.isnan(full).any()  # the demo has partial fields of view
+    common = st.select(concepts=["reading", "listening"], target="concept")
+    # reference: numpy on the same rows
+    want = np.flatnonzero(np.isfinite(full).all(axis=0))
+    np.testing.assert_array_equal(common.voxels, want)
+    np.testing.assert_array_equal(common.X, full[:, want])
+    rep = common.missing_report
+    assert rep == {"policy": "common", "mask_voxels": full.shape[1], "kept_voxels": want.size,
+                   "dropped_voxels": full.shape[1] - want.size,
+                   "reason": "voxels without a value in at least one selected map were dropped"}
+    zero = st.select(concepts=["reading", "listening"], target="concept", missing="zero")
+    np.testing.assert_array_equal(zero.X, np.nan_to_num(full))
+    keep = st.select(concepts=["reading", "listening"], target="concept", missing="keep")
+    np.testing.assert_array_equal(np.isnan(keep.X), np.isnan(full))
+    # a row (or decoder weights) goes back onto the grid: values at their voxels, NaN elsewhere
+    img = common.to_image(common.X[0])
+    fs = st.features()
+    vol = np.asarray(img.dataobj).reshape(-1)
+    np.testing.assert_array_equal(vol[fs.mask_indices[want]], common.X[0])
+    assert np.isnan(np.delete(vol, fs.mask_indices[want])).all()
+    np.testing.assert_array_equal(img.affine, fs.grid.affine_array)
+    with pytest.raises(mapstore.MapstoreError, match="missing must be one of"):
+        st.select(missing="impute")
+
+
+def test_too_few_common_voxels_is_refused_naming_the_maps(labelled_store):
+    st = mapstore.open(labelled_store)
+    sel = st.select(concepts=["reading", "listening"], target="concept", min_voxels=10 ** 6)
+    with pytest.raises(QueryError) as err:
+        sel.X
+    msg = str(err.value)
+    worst = sel.meta.sort_values("coverage").iloc[0]
+    assert msg.startswith(f"only {len(np.flatnonzero(np.isfinite(st.features().matrix(sel.map_ids)).all(0))):,} of "
+                          f"the feature set's {st.features().n_voxels:,} voxels have a value in every one of the "
+                          f"{len(sel)} selected maps (need 1,000,000); the maps covering least: "
+                          f"{worst.dataset}:{worst.relpath} ({worst.coverage:.0%})")
+    assert msg.endswith("or missing='keep' with an imputer in your pipeline")
+
+
+def test_export_records_the_policy_and_verify_catches_changed_rows(labelled_store, tmp_path):
+    st = mapstore.open(labelled_store)
+    multi = st.select(concepts=["reading", "listening", "visual-motion"], target="concepts")
+    for fmt in ("npy", "parquet"):
+        out = tmp_path / fmt
+        rep = st.export(out, multi, fmt=fmt)
+        man = json.loads((out / "manifest.json").read_text())
+        assert man["missing"]["policy"] == "common" and man["missing"]["kept_voxels"] == len(multi.voxels)
+        assert man["shape"] == [len(multi), len(multi.voxels)] and rep.n_voxels == len(multi.voxels)
+        assert "mask voxels dropped" in rep.summary()
+        assert mapstore.verify(out).ok
+        if fmt == "npy":
+            np.testing.assert_array_equal(np.load(out / "Y.npy"), multi.Y)
+            X = np.load(out / "X.npy", mmap_mode="r+")
+            X[2, 5] += 1.0
+            X.flush()
+            del X
+        else:
+            t = pq.read_table(out / "table.parquet")
+            np.testing.assert_array_equal(np.array(t.column("Y").to_pylist(), dtype=np.uint8), multi.Y)
+            x = np.array(t.column("x").to_pylist(), dtype=np.float32)
+            x[2, 5] += 1.0
+            import pyarrow as pa
+
+            flat = pa.FixedSizeListArray.from_arrays(pa.array(x.reshape(-1), pa.float32()), x.shape[1])
+            pq.write_table(t.set_column(t.column_names.index("x"), "x", flat), out / "table.parquet")
+        changes = mapstore.verify(out).changes
+        assert changes == [f"exported row changed: {'X.npy' if fmt == 'npy' else 'table.parquet'} row 2"
+                           + (f" ({multi.map_ids[2]})" if fmt == "npy" else "")]
