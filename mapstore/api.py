@@ -116,16 +116,17 @@ class Store:
 
     def export(self, out, selection: Selection | None = None, *, scheme: str = "leave-one-group-out",
                seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False,
-               **select_options) -> ExportReport:
+               near_copy_r: float | None = None, **select_options) -> ExportReport:
         """Export a selection (made from ``select_options`` if not given) with its manifest."""
         sel = selection if selection is not None else self.select(**select_options)
         return export_selection(sel, out, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt,
-                                overwrite=overwrite)
+                                overwrite=overwrite, near_copy_r=near_copy_r)
 
     def check(self, features: str | None = None, *, min_coverage: float = 0.8,
-              pictures: bool = True) -> CheckReport:
-        """Grid, space, coverage, stat-type and metadata consistency findings (see mapstore.check)."""
-        return check_store(self, features, min_coverage=min_coverage, pictures=pictures)
+              pictures: bool = True, min_agreement: float = 0.2) -> CheckReport:
+        """Grid, space, coverage, stat-type, metadata, copy and concept-agreement findings (mapstore.check)."""
+        return check_store(self, features, min_coverage=min_coverage, pictures=pictures,
+                           min_agreement=min_agreement)
 
     def to_image(self, vector, name: str | None = None):
         """A NIfTI image (nibabel) of a feature vector or decoder coefficients on a set's grid."""

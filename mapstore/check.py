@@ -11,6 +11,7 @@ import base64
 import html
 import json
 import struct
+import warnings
 import zlib
 from collections import Counter, defaultdict
 from dataclasses import dataclass, field
@@ -22,6 +23,7 @@ import pyarrow as pa
 __all__ = ["Finding", "CheckReport", "check_store", "png_bytes", "report_json", "LEVELS"]
 
 LEVELS = ("info", "warning", "error")
+CONCEPT_AGREEMENT = 0.2  # mean cross-study r of a concept's study means below which check flags it
 # BIDS statistical-derivatives stat labels, plus the model maps nilearn writes (errorts, rsquared)
 # and SPM's extra-sum-of-squares images (ess)
 KNOWN_STATS = {"t", "z", "p", "F", "chi2", "effect", "variance", "std", "r", "logp", "errorts", "rsquared",
@@ -167,7 +169,8 @@ def _slices(vol: np.ndarray, affine: np.ndarray, scale: int = 2) -> np.ndarray:
 # --- checks -------------------------------------------------------------------------------
 
 def check_store(store, features: str | None = None, *, min_coverage: float = 0.8,
-                pictures: bool = True, max_rows_for_pictures: int = 400) -> CheckReport:
+                pictures: bool = True, max_rows_for_pictures: int = 400,
+                min_agreement: float = CONCEPT_AGREEMENT) -> CheckReport:
     """Run every check on a :class:`mapstore.Store`.
 
     Parameters
@@ -177,6 +180,10 @@ def check_store(store, features: str | None = None, *, min_coverage: float = 0.8
         Feature set for coverage and value checks (default: the default set, if any).
     min_coverage : float, default=0.8
         Maps covering less of the mask than this are reported.
+    min_agreement : float, default=0.2
+        Concepts whose per-study mean maps correlate less than this across studies (on
+        average) are flagged: a decoder trained across studies can only work where the
+        studies agree.
     pictures : bool, default=True
         Make the coverage pictures (reads up to ``max_rows_for_pictures`` rows, spread
         over the set).
@@ -194,6 +201,8 @@ def check_store(store, features: str | None = None, *, min_coverage: float = 0.8
     _check_metadata(store, maps, add)
     if fs is not None:
         _check_features(store, fs, maps, min_coverage, add, report, pictures, max_rows_for_pictures)
+        _check_copies(fs, maps, add, report)
+        _check_concepts(store, fs, maps, add, report, pictures, min_agreement)
     return report
 
 
@@ -337,6 +346,159 @@ def _check_metadata(store, maps, add) -> None:
             add(Finding("warning", "provenance", "duplicate-file", sha[:16],
                         f"{len(ms)} maps are byte-identical ({where})",
                         "a map copied between studies leaks in splits; the export refuses such splits"))
+
+
+_MAPS_PER_STUDY = 200  # rows read per study and concept for the means
+
+
+def _standardised(x: np.ndarray) -> np.ndarray:
+    """Rows centred and scaled over their finite voxels (so t, z and effect maps average alike)."""
+    x = x.astype(np.float64)
+    mu = np.nanmean(x, axis=1, keepdims=True)
+    sd = np.nanstd(x, axis=1, keepdims=True)
+    return (x - mu) / np.where(sd > 0, sd, 1.0)
+
+
+def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement: float) -> None:
+    """Per concept: each study's mean map, and how well those means agree across studies."""
+    from .copies import pair_correlation
+
+    if not store.catalog.head.labels:
+        return
+    in_set = set(fs.map_ids)
+    study_of = {m["map_id"]: m["study"] for m in maps}
+    by: dict[str, dict[str, list[str]]] = defaultdict(lambda: defaultdict(list))
+    for r in store.sql("SELECT map_id, concept FROM labels WHERE direct ORDER BY map_id").to_pylist():
+        if r["map_id"] in in_set and r["map_id"] in study_of:
+            by[r["concept"]][study_of[r["map_id"]]].append(r["map_id"])
+    rows, summary = [], []
+    tiles: dict[str, list[tuple[str, np.ndarray]]] = {}
+    for concept in sorted(by):
+        studies = {s: ids for s, ids in by[concept].items()}
+        if len(studies) < 2:
+            continue
+        means = {}
+        for s, ids in sorted(studies.items()):
+            pick = ids if len(ids) <= _MAPS_PER_STUDY else \
+                [ids[i] for i in np.linspace(0, len(ids) - 1, _MAPS_PER_STUDY).astype(int)]
+            with np.errstate(invalid="ignore"), warnings.catch_warnings():
+                warnings.simplefilter("ignore", RuntimeWarning)  # voxels no map of the study covers
+                means[s] = np.nanmean(_standardised(fs.matrix(pick)), axis=0).astype(np.float32)
+        names = sorted(means)
+        rs = []
+        for i, a in enumerate(names):
+            for b in names[i + 1:]:
+                r, n = pair_correlation(means[a], means[b])
+                rs.append(r)
+                rows.append({"concept": concept, "study_a": a, "study_b": b, "maps_a": len(studies[a]),
+                             "maps_b": len(studies[b]), "r_of_means": round(r, 3), "common_voxels": n})
+        finite = [r for r in rs if np.isfinite(r)]
+        mean_r = float(np.mean(finite)) if finite else float("nan")
+        summary.append({"concept": concept, "studies": len(names), "maps": sum(len(v) for v in studies.values()),
+                        "mean_cross_study_r": round(mean_r, 3), "min_r": round(min(finite), 3) if finite else None})
+        if not finite or mean_r < min_agreement:
+            add(Finding("warning", "concepts", "low-concept-agreement", concept,
+                        f"concept {concept!r}: the mean maps of its {len(names)} studies correlate at r = {mean_r:.2f} "
+                        f"on average (threshold {min_agreement:g}); a decoder trained on some studies is unlikely to "
+                        "recognise it in the others",
+                        "check the vocabulary's rules for this concept (are the contrasts alike?) and the maps' "
+                        "stat types and signs"))
+        tiles[concept] = [(s, means[s]) for s in names]
+    if summary:
+        report.tables["concept agreement across studies (mean of each study's standardised maps)"] = \
+            pa.Table.from_pylist(summary)
+        report.tables["concept agreement, study x study (r of the study means)"] = pa.Table.from_pylist(rows)
+    if pictures and tiles:
+        _concept_pictures(fs, tiles, report)
+
+
+def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report) -> None:
+    """Each study's mean map over the MNI152 template: red positive, blue negative, one row per study."""
+    from .grid import mni152_template
+
+    aff = fs.grid.affine_array
+    bg = _slices(mni152_template(fs.grid), aff)
+    lo, hi = np.nanpercentile(bg, [2, 99.5]) if np.nanmax(bg) > 0 else (0.0, 1.0)
+    grey = np.clip((np.nan_to_num(bg, nan=hi) - lo) / (hi - lo if hi > lo else 1.0), 0, 1)[..., None] \
+        * np.array([235.0, 235, 235])  # the gaps between slices come out white
+    for concept, items in tiles.items():
+        vmax = max(float(np.nanpercentile(np.abs(m), 99)) for _, m in items) or 1.0
+        strips = []
+        for _, mean in items:
+            v = _slices(fs.unmask(mean), aff) / vmax
+            alpha = np.clip(np.abs(np.nan_to_num(v)) * 1.5 - 0.3, 0, 1)[..., None]  # faint values fade out
+            colour = np.where((np.nan_to_num(v) >= 0)[..., None], np.array([220.0, 40, 30]), np.array([30.0, 90, 220]))
+            strips.append(grey * (1 - alpha) + colour * alpha)
+            strips.append(np.full((4, grey.shape[1], 3), 255.0))
+        report.pictures[f"concept {concept!r}: mean standardised map per study, one row each ("
+                        + ", ".join(s for s, _ in items) + "); red positive, blue negative, over the MNI152 "
+                        "template"] = png_bytes(np.concatenate(strips[:-1], axis=0).astype(np.uint8))
+
+
+def _model_key(m: dict) -> tuple:
+    """The model a map comes from: its dataset and entities but contrast and stat."""
+    ents = json.loads(m["entities"] or "{}")
+    return (m["dataset"],) + tuple(sorted((k, v) for k, v in ents.items()
+                                          if k not in ("contrast", "stat", "contrast_number")))
+
+
+def _check_copies(fs, maps, add, report) -> None:
+    """Groups of maps whose feature rows are identical or near-copies (the set's copies table)."""
+    table = fs.copies()
+    if table is None:
+        return
+    by_id = {m["map_id"]: m for m in maps}
+    pairs, same_model = [], 0
+    for c in table.to_pylist():
+        a, b = by_id.get(c["map_a"]), by_id.get(c["map_b"])
+        if a is None or b is None:
+            continue
+        if _model_key(a) == _model_key(b):
+            same_model += 1  # one model's t, z, p and effect maps of a contrast, or its variance maps
+            continue
+        pairs.append((c, a, b))
+    if same_model:
+        add(Finding("info", "provenance", "copies-within-model", "catalog",
+                    f"{same_model} pair(s) of maps of one model correlate at |r| >= 0.9 (a contrast's t, z, p and "
+                    "effect maps; a model's variance maps): expected, and they stay on one side of any split",
+                    "nothing to do"))
+    # groups: connected components over the pairs
+    parent: dict[str, str] = {}
+
+    def find(x: str) -> str:
+        while parent.setdefault(x, x) != x:
+            parent[x] = parent[parent[x]]
+            x = parent[x]
+        return x
+
+    for c, _, _ in pairs:
+        parent[find(c["map_a"])] = find(c["map_b"])
+    groups: dict[str, list] = defaultdict(list)
+    for c, a, b in pairs:
+        groups[find(c["map_a"])].append((c, a, b))
+    rows = []
+    for members in groups.values():
+        ids = sorted({x for c, _, _ in members for x in (c["map_a"], c["map_b"])})
+        studies = {by_id[i]["study"] for i in ids}
+        people = {by_id[i]["participant"] for i in ids}
+        kinds = {c["kind"] for c, _, _ in members}
+        worst = min(members, key=lambda t: -abs(t[0]["r"]))[0]
+        where = "across studies" if len(studies) > 1 else "within one study"
+        who = "one subject" if len(people) == 1 and None not in people else "different subjects"
+        listing = "; ".join(f"{by_id[i]['dataset']}:{by_id[i]['relpath']}" for i in ids[:4])
+        add(Finding("warning", "provenance", "identical-rows" if kinds == {"identical"} else "near-copies",
+                    ids[0], f"{len(ids)} maps {where}, {who}, are "
+                    + ("identical feature rows" if kinds == {"identical"} else
+                       f"copies (|r| up to {abs(worst['r']):.3f}{', sign-flipped' if worst['r'] < 0 else ''})")
+                    + f": {listing}" + (" ..." if len(ids) > 4 else ""),
+                    "keep one of them, or group the splits so that they stay on one side (the export refuses "
+                    "splits across them); SELECT * FROM feature_copies lists the pairs"))
+        for c, a, b in members:
+            rows.append({"map_a": f"{a['dataset']}:{a['relpath']}", "map_b": f"{b['dataset']}:{b['relpath']}",
+                         "kind": c["kind"], "r": round(c["r"], 4), "same_study": a["study"] == b["study"],
+                         "same_subject": a["participant"] is not None and a["participant"] == b["participant"]})
+    if rows:
+        report.tables["copies (identical and near-identical maps)"] = pa.Table.from_pylist(rows)
 
 
 def _check_features(store, fs, maps, min_coverage, add, report, pictures, max_rows) -> None:

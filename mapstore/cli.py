@@ -176,6 +176,8 @@ def labels_cmd(store, vocab, inherit) -> None:
               help="leave-one-group-out | group-kfold:K | holdout:FRACTION")
 @click.option("--seed", type=int, default=0, show_default=True)
 @click.option("--allow-leak", is_flag=True, help="Accept a split that leaks (with a warning).")
+@click.option("--near-copy-r", type=click.FloatRange(0, 1, min_open=True), default=None,
+              help="Refuse maps on both sides whose rows correlate at least this much (default 0.9).")
 @click.option("--with-broader", is_flag=True, help="Count inherited broader concepts as labels.")
 @click.option("--missing", type=click.Choice(["common", "zero", "keep"]), default="common", show_default=True,
               help="Voxels some selected map has no value for: keep only voxels every map covers (common), "
@@ -185,7 +187,7 @@ def labels_cmd(store, vocab, inherit) -> None:
 @click.option("--format", "fmt", type=click.Choice(["npy", "parquet"]), default="npy", show_default=True)
 @click.option("--overwrite", is_flag=True, help="Replace an existing export folder.")
 def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_coverage, target, group_by, scheme,
-               seed, allow_leak, with_broader, missing, min_voxels, fmt, overwrite) -> None:
+               seed, allow_leak, near_copy_r, with_broader, missing, min_voxels, fmt, overwrite) -> None:
     """Export X, y, groups, splits and metadata of a selection, with a manifest."""
     st = mapstore.open(store)
     if target is None:
@@ -193,7 +195,8 @@ def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_cover
     sel = st.select(where, concepts=list(concepts) or None, task=list(tasks) or None, stat=list(stats) or None,
                     features=feature_set, min_coverage=min_coverage, target=target, group_by=group_by,
                     with_broader=with_broader, missing=missing, min_voxels=min_voxels)
-    report = st.export(out, sel, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt, overwrite=overwrite)
+    report = st.export(out, sel, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt, overwrite=overwrite,
+                       near_copy_r=near_copy_r)
     click.echo(report.summary())
 
 
@@ -212,16 +215,19 @@ def verify_cmd(manifest) -> None:
 @click.option("--features", "feature_set", help="Feature set for coverage and value checks (default set).")
 @click.option("--min-coverage", type=click.FloatRange(0, 1), default=0.8, show_default=True,
               help="Report maps covering less of the mask.")
+@click.option("--min-agreement", type=click.FloatRange(-1, 1), default=0.2, show_default=True,
+              help="Flag concepts whose per-study mean maps correlate less across studies.")
 @click.option("--html", "html_out", type=click.Path(dir_okay=False), help="Write an HTML report with pictures.")
 @click.option("--format", "fmt", type=click.Choice(["summary", "table", "json"]), default="summary",
               show_default=True)
 @click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error", show_default=True,
               help="Exit 1 when a finding is at this level or worse.")
-def check_cmd(store, feature_set, min_coverage, html_out, fmt, fail_on) -> None:
-    """Check grids, space, mask coverage, stat types and metadata of a store."""
+def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fail_on) -> None:
+    """Check grids, space, coverage, stat types, metadata, copies and concept agreement of a store."""
     from .check import report_json
 
-    report = mapstore.open(store).check(feature_set, min_coverage=min_coverage, pictures=bool(html_out))
+    report = mapstore.open(store).check(feature_set, min_coverage=min_coverage, pictures=bool(html_out),
+                                        min_agreement=min_agreement)
     if fmt == "json":
         click.echo(report_json(report))
     elif fmt == "table":

@@ -34,6 +34,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from . import __version__
+from .copies import NEAR_COPY_R
 from .errors import ExportError, ParameterError
 from .query import Selection, parse_scheme
 
@@ -81,8 +82,8 @@ def _row_hash(row: np.ndarray) -> str:
 
 
 def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str = "leave-one-group-out",
-                     seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False
-                     ) -> ExportReport:
+                     seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False,
+                     near_copy_r: float | None = None) -> ExportReport:
     """Write a selection to ``out`` with its manifest (see the module docstring)."""
     import warnings
 
@@ -100,7 +101,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         raise ExportError(f"{out}: folder exists and is not empty; choose a new --out or pass --overwrite")
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        splits = sel.splits(scheme, seed, allow_leak)
+        splits = sel.splits(scheme, seed, allow_leak, near_copy_r)
     leaks = [str(w.message) for w in caught if "leaky split" in str(w.message)]
     for w in caught:  # recorded to keep them in the manifest; still shown to the caller
         warnings.warn(w.message, w.category, stacklevel=2)
@@ -189,6 +190,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         # flat C-order grid index of each column of X: enough to paint a row back onto the grid
         np.save(tmp / "voxels.npy", fs.mask_indices[voxels].astype(np.int64))
         manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, row_hashes, x_hashes, fmt)
+        manifest["near_copy_r"] = NEAR_COPY_R if near_copy_r is None else near_copy_r
         # the data files are checked row by row against row_sha256 instead of hashed whole
         manifest["files"] = {p.name: _sha256_file(p) for p in sorted(tmp.iterdir())
                              if p.name not in DATA_FILES}

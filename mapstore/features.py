@@ -50,6 +50,7 @@ from .grid import (
     read_volume,
     resample,
 )
+from .copies import Sketcher, find_copies
 from .stats import convert
 from .store import (
     FPROBLEMS_SCHEMA,
@@ -165,6 +166,7 @@ class _Batch:
     zero_as_missing: bool
     background: str = "auto"
     coverage_only: bool = False
+    sketch_seed: int = 0
 
 
 def zero_background(vol: np.ndarray, min_fraction: float = 0.01) -> np.ndarray | None:
@@ -270,6 +272,7 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
     rows: list[dict[str, Any]] = []
     now = time.strftime("%Y-%m-%dT%H:%M:%S")
     masks: dict[str, np.ndarray] = {}
+    sketcher = Sketcher(b.sketch_seed, indices.size)
     for i, it in enumerate(b.items):
         try:
             vec, conversion, path, missing_from, clipped = _vector(it, b, local, box, masks)
@@ -288,7 +291,8 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
                      "vmin": float(vals.min()) if vals.size else None,
                      "vmax": float(vals.max()) if vals.size else None,
                      "vmean": float(vals.mean(dtype=np.float64)) if vals.size else None,
-                     "missing_from": missing_from, "p_clipped": clipped})
+                     "missing_from": missing_from, "p_clipped": clipped,
+                     "sketch": sketcher.sketch(vec[None, :])[0].tobytes()})
     arr.flush()
     del arr
     os.replace(tmp, shard_path)
@@ -575,7 +579,9 @@ def build_features(
         kept = old_rows.take(pa.array(sorted(keep_idx), pa.int64())) if keep_idx else old_rows.slice(0, 0)
         dropped = old_rows.num_rows - kept.num_rows
 
-        batches = [_Batch(str(set_dir), f"shard-{new_snapshot_id()}-{i:05d}.npy", todo[i:i + batch_n], **common)
+        seed = Sketcher.for_set(mk.sha256, mk.n_voxels).seed
+        batches = [_Batch(str(set_dir), f"shard-{new_snapshot_id()}-{i:05d}.npy", todo[i:i + batch_n],
+                          sketch_seed=seed, **common)
                    for i in range(0, len(todo), batch_n)]
         new_rows: list[dict[str, Any]] = []
         problems: list[dict[str, Any]] = list(coverage_problems)
@@ -592,9 +598,12 @@ def build_features(
         probs_rel = f"features/{name}/problems-{snap}.parquet"
         write_parquet_atomic(rows_table, store_path / rows_rel)
         write_parquet_atomic(pa.Table.from_pylist(problems, schema=FPROBLEMS_SCHEMA), store_path / probs_rel)
-        head.features[name] = {"dir": f"features/{name}", "rows": rows_rel, "problems": probs_rel,
-                               "n_rows": rows_table.num_rows, "spec_id": spec["spec_id"],
-                               "catalog": head.catalog}
+        # copies among all the set's rows, from the sketches (new shards are in place already)
+        copies_rel = f"features/{name}/copies-{snap}.parquet"
+        entry = {"dir": f"features/{name}", "rows": rows_rel, "problems": probs_rel}
+        write_parquet_atomic(find_copies(FeatureSet(store_path, name, entry)), store_path / copies_rel)
+        head.features[name] = {**entry, "copies": copies_rel, "n_rows": rows_table.num_rows,
+                               "spec_id": spec["spec_id"], "catalog": head.catalog}
         if head.default_features is None or name == DEFAULT_SET:
             head.default_features = name
         previous_rows = existing["rows"] if existing else None
@@ -630,8 +639,8 @@ def _collect_feature_garbage(store: Path, set_dir: Path, current: str, previous:
     for p in set_dir.glob("rows-*.parquet"):
         if p.name not in keep_tables:
             p.unlink(missing_ok=True)
-            prob = set_dir / p.name.replace("rows-", "problems-")
-            prob.unlink(missing_ok=True)
+            for kind in ("problems-", "copies-"):
+                (set_dir / p.name.replace("rows-", kind)).unlink(missing_ok=True)
     for p in (set_dir / "shards").glob("shard-*.npy"):
         if p.name not in used:
             p.unlink(missing_ok=True)
@@ -649,6 +658,7 @@ class FeatureSet:
     def __init__(self, store_path: Path, name: str, entry: dict[str, Any]) -> None:
         self.name = name
         self.path = store_path / entry["dir"]
+        self._copies_path = store_path / entry["copies"] if entry.get("copies") else None
         try:
             self.spec: dict[str, Any] = json.loads((self.path / "set.json").read_text())
             self.rows: pa.Table = pq.read_table(store_path / entry["rows"])
@@ -758,6 +768,34 @@ class FeatureSet:
         todo = [i for i, h in enumerate(out) if h is None]  # rows built before hashes were recorded
         for i, row in zip(todo, self.matrix([map_ids[i] for i in todo])):
             out[i] = hashlib.sha256(row.tobytes()).hexdigest()
+        return out
+
+    def copies(self) -> pa.Table | None:
+        """Pairs of this set's rows that are copies (``feature_copies``), or None for older sets."""
+        if self._copies_path is None:
+            return None
+        try:
+            return pq.read_table(self._copies_path)
+        except (OSError, pa.ArrowException) as exc:
+            raise FeatureError(f"{self._copies_path}: unreadable ({exc}); rebuild with 'mapstore features "
+                               f"--name {self.name}'") from None
+
+    def sketches(self, map_ids) -> np.ndarray:
+        """(n, 64) uint8 sign sketches of rows (see :mod:`mapstore.copies`), recorded at build time."""
+        map_ids = list(map_ids)
+        col = self.rows["sketch"].to_pylist() if "sketch" in self.rows.column_names else \
+            [None] * self.rows.num_rows
+        got = [col[self._pos[m]] for m in map_ids]
+        out = np.zeros((len(map_ids), 64), dtype=np.uint8)
+        todo = [i for i, g in enumerate(got) if g is None]  # rows built before sketches were recorded
+        for i, g in enumerate(got):
+            if g is not None:
+                out[i] = np.frombuffer(g, dtype=np.uint8)
+        if todo:
+            sk = Sketcher.for_set(self.spec["mask"]["sha256"], self.n_voxels)
+            for k in range(0, len(todo), 64):
+                part = todo[k:k + 64]
+                out[part] = sk.sketch(self.matrix([map_ids[i] for i in part]))
         return out
 
     def coverage(self, map_ids=None) -> np.ndarray:

@@ -35,6 +35,7 @@ __all__ = [
     "grid_from_spec",
     "Mask",
     "mni152_brain_mask",
+    "mni152_template",
     "mask_from_image",
     "mask_from_array",
     "read_volume",
@@ -122,6 +123,30 @@ def _mni152(resolution: int) -> tuple[tuple[int, int, int], np.ndarray, np.ndarr
     except OSError:
         pass
     return shape, affine, mask
+
+
+def mni152_template(grid: TargetGrid) -> np.ndarray:
+    """nilearn's MNI152 T1 template on a grid (linear), for picture backgrounds; cached per machine."""
+    import importlib.metadata
+
+    version = importlib.metadata.version("nilearn")
+    f = _cache_dir() / f"mni152-template-2mm-nilearn{version}.npz"
+    try:
+        with np.load(f) as z:
+            data, affine = z["data"], z["affine"]
+    except (OSError, KeyError, ValueError):
+        from nilearn.datasets import load_mni152_template
+
+        tpl = load_mni152_template(resolution=2)
+        data, affine = np.asarray(tpl.dataobj, dtype=np.float32), np.asarray(tpl.affine, float)
+        try:
+            f.parent.mkdir(parents=True, exist_ok=True)
+            tmp = f.with_name(f".{f.name}.{os.getpid()}.npz")
+            np.savez(tmp, data=data, affine=affine)
+            os.replace(tmp, f)
+        except OSError:
+            pass
+    return np.nan_to_num(resample(data, affine, grid, "linear"), nan=0.0)
 
 
 def builtin_grid(name: str) -> TargetGrid:

@@ -95,8 +95,12 @@ def assign_folds(groups: np.ndarray, scheme: str, seed: int = 0) -> list[tuple[n
 
 
 def check_leakage(splits, participants: np.ndarray, sha256: np.ndarray, map_ids: np.ndarray,
-                  allow_leak: bool = False) -> list[str]:
-    """Refuse splits that put one participant or one identical file (sha256) on both sides."""
+                  allow_leak: bool = False, copies: list[tuple[int, int, str, float]] | None = None) -> list[str]:
+    """Refuse splits that put one participant, one identical file or two copies of a map on both sides.
+
+    ``copies`` are (i, j, kind, r) pairs of positions whose feature rows are identical or
+    near-copies (see :mod:`mapstore.copies`).
+    """
     problems: list[str] = []
     for i, (tr, te) in enumerate(splits):
         for what, col in (("subject", participants), ("identical map (sha256)", sha256)):
@@ -106,10 +110,19 @@ def check_leakage(splits, participants: np.ndarray, sha256: np.ndarray, map_ids:
                 ids = [str(map_ids[j]) for j in te if col[j] in both][:5]
                 problems.append(f"split {i}: {len(both)} {what}(s) on both sides, e.g. {both[0]} "
                                 f"(test map ids {', '.join(ids)})")
+        if copies:
+            side = np.zeros(len(map_ids), dtype=np.int8)
+            side[tr], side[te] = 1, 2
+            across = [(a, b, k, r) for a, b, k, r in copies if {side[a], side[b]} == {1, 2}]
+            if across:
+                a, b, k, r = max(across, key=lambda c: abs(c[3]))
+                what = "identical feature rows" if k == "identical" else f"near-copies (r = {r:+.3f})"
+                problems.append(f"split {i}: {len(across)} pair(s) of copies on both sides, e.g. {map_ids[a]} and "
+                                f"{map_ids[b]}: {what}")
     if problems and not allow_leak:
         raise LeakageError("the split leaks:\n  " + "\n  ".join(problems[:10]) +
-                           "\ngroup by a coarser unit (study or subject), drop duplicated maps, or pass "
-                           "allow_leak=True (--allow-leak) to accept it")
+                           "\ngroup by a coarser unit (study or subject), drop duplicated maps (SELECT * FROM "
+                           "feature_copies lists them), or pass allow_leak=True (--allow-leak) to accept it")
     if problems:
         warnings.warn("leaky split accepted (allow_leak): " + "; ".join(problems[:3]), stacklevel=3)
     return problems
@@ -237,21 +250,43 @@ class Selection:
         return self.feature_set.to_image(full)
 
     def splits(self, scheme: str = "leave-one-group-out", seed: int = 0,
-               allow_leak: bool = False) -> list[tuple[np.ndarray, np.ndarray]]:
+               allow_leak: bool = False, near_copy_r: float | None = None) -> list[tuple[np.ndarray, np.ndarray]]:
         """Train/test index pairs grouped by ``group_by``; pass them as ``cv=`` to scikit-learn.
 
-        Raises :class:`~mapstore.errors.LeakageError` if a participant or an identical
-        file would sit on both sides of a split, unless ``allow_leak``.
+        Raises :class:`~mapstore.errors.LeakageError` if a participant, an identical file, an
+        identical feature row or a near-copy (|r| >= ``near_copy_r`` on the voxels both maps
+        cover; default :data:`mapstore.copies.NEAR_COPY_R`) would sit on both sides of a
+        split, unless ``allow_leak`` (then a warning).
         """
         out = assign_folds(self.groups, scheme, seed)
         check_leakage(out, self.meta["participant"].to_numpy(object), self.meta["sha256"].to_numpy(object),
-                      self.meta["map_id"].to_numpy(object), allow_leak)
+                      self.meta["map_id"].to_numpy(object), allow_leak, self.copy_pairs(near_copy_r))
         return out
 
-    def folds(self, scheme: str = "leave-one-group-out", seed: int = 0, allow_leak: bool = False) -> np.ndarray:
+    def copy_pairs(self, near_copy_r: float | None = None) -> list[tuple[int, int, str, float]]:
+        """Positions (i, j, kind, r) of selected maps whose rows are identical or |r| >= ``near_copy_r``."""
+        from .copies import NEAR_COPY_R, find_copies
+
+        thr = NEAR_COPY_R if near_copy_r is None else near_copy_r
+        if not 0 < thr <= 1:
+            raise ParameterError(f"near_copy_r must be in (0, 1], got {thr!r}")
+        table = self.feature_set.copies()
+        ids = self.map_ids
+        if table is None:  # a set built before copies were recorded
+            table = find_copies(self.feature_set, ids, floor=min(thr, 0.9))
+        pos = {m: i for i, m in enumerate(ids)}
+        out = []
+        for r in table.to_pylist():
+            a, b = pos.get(r["map_a"]), pos.get(r["map_b"])
+            if a is not None and b is not None and (r["kind"] == "identical" or abs(r["r"]) >= thr):
+                out.append((a, b, r["kind"], r["r"]))
+        return out
+
+    def folds(self, scheme: str = "leave-one-group-out", seed: int = 0, allow_leak: bool = False,
+              near_copy_r: float | None = None) -> np.ndarray:
         """Per map: index of the split where it is in the test set (-1 if never: holdout train)."""
         fold = np.full(len(self), -1, dtype=np.int64)
-        for i, (_, te) in enumerate(self.splits(scheme, seed, allow_leak)):
+        for i, (_, te) in enumerate(self.splits(scheme, seed, allow_leak, near_copy_r)):
             fold[te] = i
         return fold
 

@@ -80,8 +80,11 @@ ROWS_SCHEMA = pa.schema([
     ("stat_in", _s), ("stat_out", _s), ("conversion", _s),
     ("resample_path", _s), ("built_at", _s), ("row_sha256", _s),
     ("vmin", _f64), ("vmax", _f64), ("vmean", _f64),
-    ("missing_from", _s), ("p_clipped", _i64),
+    ("missing_from", _s), ("p_clipped", _i64), ("sketch", pa.binary()),
 ])
+_ROWS_VIEW_SCHEMA = pa.schema([f for f in ROWS_SCHEMA if f.name != "sketch"])
+# pairs of rows of one feature set that are copies (written by features, read by check and export)
+COPIES_SCHEMA = pa.schema([("map_a", _s), ("map_b", _s), ("kind", _s), ("r", _f64), ("n_common", _i64)])
 FPROBLEMS_SCHEMA = pa.schema([
     ("map_id", _s), ("path", _s), ("code", _s), ("reason", _s),
     ("remedy", _s),
@@ -284,11 +287,15 @@ class Catalog:
 
     def _feature_tables(self) -> dict[str, pa.Table]:
         """Views over every feature set: rows (``features``), failures, and one row per set."""
-        rows, probs, sets = [], [], []
+        rows, probs, sets, copies = [], [], [], []
         for name, entry in sorted(self.head.features.items()):
             try:
-                r = pq.read_table(self.path / entry["rows"])
+                # the sketch bytes are for the copy scan, not for SQL
+                r = conform(pq.read_table(self.path / entry["rows"]), _ROWS_VIEW_SCHEMA)
                 p = pq.read_table(self.path / entry["problems"])
+                if entry.get("copies"):
+                    c = pq.read_table(self.path / entry["copies"])
+                    copies.append(c.add_column(0, "feature_set", pa.array([name] * c.num_rows, pa.string())))
                 spec = json.loads((self.path / entry["dir"] / "set.json").read_text())
             except (OSError, ValueError, pa.ArrowException) as exc:
                 raise StoreCorrupt(f"{self.path / entry['dir']}: feature set {name!r} unreadable ({exc}); "
@@ -308,8 +315,10 @@ class Catalog:
         sets_schema = pa.schema([("feature_set", _s), ("default", pa.bool_()), ("rows", _i64), ("grid", _s),
                                  ("grid_id", _s), ("shape", pa.list_(_i64)), ("mask", _s), ("n_voxels", _i64),
                                  ("method", _s), ("stat", _s), ("spec_id", _s)])
-        return {"features": union(rows, ROWS_SCHEMA), "feature_problems": union(probs, FPROBLEMS_SCHEMA),
-                "feature_sets": pa.Table.from_pylist(sets, schema=sets_schema)}
+        return {"features": union(rows, _ROWS_VIEW_SCHEMA),
+                "feature_problems": union(probs, FPROBLEMS_SCHEMA),
+                "feature_sets": pa.Table.from_pylist(sets, schema=sets_schema),
+                "feature_copies": union(copies, COPIES_SCHEMA)}
 
     def sql(self, query: str) -> pa.Table:
         """Run one read-only SQL statement over the catalog views and return an Arrow table."""
@@ -331,7 +340,7 @@ class Catalog:
             return con.sql(query).to_arrow_table()
         except duckdb.Error as exc:
             raise QueryError(f"{exc}\n(views: {', '.join(self.TABLES)}, features, feature_sets, "
-                             f"feature_problems; see 'mapstore sql --store "
+                             f"feature_problems, feature_copies; see 'mapstore sql --store "
                              f"{self.path} \"DESCRIBE maps\"')") from None
 
 

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import shutil
+import warnings
 
 import nibabel as nib
 import numpy as np
@@ -96,3 +97,61 @@ def test_check_cli_exit_codes(tmp_path, capsys):
     assert main(["check", "--store", str(store), "--fail-on", "never", "--format", "json",
                  "--html", str(tmp_path / "c.html")]) == 0
     assert (tmp_path / "c.html").exists()
+
+
+@pytest.fixture(scope="module")
+def labelled_three(demo_store, demo_tree, tmp_path_factory):
+    store = tmp_path_factory.mktemp("concepts") / "store"
+    shutil.copytree(demo_store, store)
+    mapstore.build_features(store, grid="MNI152-3mm", name="three", progress=False)
+    mapstore.label(store, demo_tree / "concepts.json")
+    return store
+
+
+def test_concepts_agree_across_the_demo_studies(labelled_three):
+    from mapstore.copies import pair_correlation
+
+    # the quarter-size demo has ~4 maps per study and concept, so its study means are noisy: its
+    # concepts agree at r 0.09-0.13 (0.30-0.35 in the full demo); a concept mixing unlike contrasts at -0.03
+    st = mapstore.open(labelled_three)
+    rep = st.check(features="three", min_agreement=0.05)
+    assert not [f for f in rep.findings if f.code == "low-concept-agreement"]
+    summary = rep.tables["concept agreement across studies (mean of each study's standardised maps)"].to_pylist()
+    assert {r["concept"] for r in summary} == {"arithmetic", "hand-movement", "listening", "reading", "visual-motion"}
+    assert all(r["mean_cross_study_r"] >= 0.05 for r in summary)
+    # one cell of the study x study table, recomputed with numpy from the rows
+    cell = rep.tables["concept agreement, study x study (r of the study means)"].to_pylist()[0]
+    fs = st.features("three")
+    ids = {s: [r["map_id"] for r in st.sql(
+        f"SELECT l.map_id FROM labels l JOIN maps m USING (map_id) WHERE l.direct AND l.concept = "
+        f"'{cell['concept']}' AND m.study = '{s}' ORDER BY l.map_id").to_pylist()] for s in (cell["study_a"], cell["study_b"])}
+    means = []
+    for s in (cell["study_a"], cell["study_b"]):
+        x = fs.matrix(ids[s]).astype(np.float64)
+        x = (x - np.nanmean(x, 1, keepdims=True)) / np.nanstd(x, 1, keepdims=True)
+        with np.errstate(invalid="ignore"), warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # voxels no map of the study covers
+            means.append(np.nanmean(x, 0))
+    both = np.isfinite(means[0]) & np.isfinite(means[1])
+    assert abs(np.corrcoef(means[0][both], means[1][both])[0, 1] - cell["r_of_means"]) < 1e-3
+    assert abs(pair_correlation(means[0], means[1])[0] - cell["r_of_means"]) < 1e-3
+    pics = [k for k in rep.pictures if k.startswith("concept 'reading'")]
+    from PIL import Image
+    import io
+
+    img = Image.open(io.BytesIO(rep.pictures[pics[0]]))
+    assert img.size[0] > 100 and img.mode == "RGB"
+
+
+def test_a_concept_the_studies_disagree_on_is_flagged(labelled_three, tmp_path):
+    store = tmp_path / "store"
+    shutil.copytree(labelled_three, store)
+    vocab = write_json(tmp_path / "mixed.json", {
+        "vocabulary": "mixed", "version": "1", "concepts": {"mixed": {"description": "unlike things"}},
+        "rules": [{"study": "inkwell", "contrast": "wordsVsConsonants", "concepts": ["mixed"]},
+                  {"study": "tidepool", "contrast": "rippleMotion", "concepts": ["mixed"]}]})
+    mapstore.label(store, vocab)
+    rep = mapstore.open(store).check(features="three", pictures=False, min_agreement=0.05)
+    low = [f for f in rep.findings if f.code == "low-concept-agreement"]
+    assert len(low) == 1 and low[0].subject == "mixed" and low[0].level == "warning"
+    assert low[0].message.startswith("concept 'mixed': the mean maps of its 2 studies correlate at r = ")
