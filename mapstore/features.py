@@ -601,7 +601,12 @@ def build_features(
         # copies among all the set's rows, from the sketches (new shards are in place already)
         copies_rel = f"features/{name}/copies-{snap}.parquet"
         entry = {"dir": f"features/{name}", "rows": rows_rel, "problems": probs_rel}
-        write_parquet_atomic(find_copies(FeatureSet(store_path, name, entry)), store_path / copies_rel)
+        if not new_rows and not dropped and existing and existing.get("copies") and \
+                (store_path / existing["copies"]).exists():
+            copies = pq.read_table(store_path / existing["copies"])  # same rows: same pairs
+        else:
+            copies = find_copies(FeatureSet(store_path, name, entry))
+        write_parquet_atomic(copies, store_path / copies_rel)
         head.features[name] = {**entry, "copies": copies_rel, "n_rows": rows_table.num_rows,
                                "spec_id": spec["spec_id"], "catalog": head.catalog}
         if head.default_features is None or name == DEFAULT_SET:

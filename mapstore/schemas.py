@@ -25,6 +25,8 @@ def _arrow_type(t: pa.DataType) -> dict[str, Any]:
         return {"type": ["integer", "null"]}
     if pa.types.is_floating(t):
         return {"type": ["number", "null"]}
+    if pa.types.is_binary(t) or pa.types.is_large_binary(t):
+        return {}  # raw bytes: JSON has no type for them (Parquet stores them as they are)
     if pa.types.is_boolean(t):
         return {"type": ["boolean", "null"]}
     if pa.types.is_list(t) or pa.types.is_large_list(t) or pa.types.is_fixed_size_list(t):
@@ -170,7 +172,8 @@ def all_schemas() -> dict[str, dict[str, Any]]:
          "row_sha256": "SHA-256 of the row's float32 bytes", "vmin": "smallest finite value",
          "vmax": "largest finite value", "vmean": "mean of the finite values",
          "missing_from": "what made voxels missing before resampling: model-mask, zero-background, zeros, none",
-         "p_clipped": "p = 0 voxels inside the model's mask taken as the smallest positive p (z sets)"})
+         "p_clipped": "p = 0 voxels inside the model's mask taken as the smallest positive p (z sets)",
+         "sketch": "512 sign bits (64 bytes) of the row's sparse random projections, for the copy scan"})
     out["feature-problems.schema.json"] = arrow_to_json_schema(
         "feature-problems", FPROBLEMS_SCHEMA, "A map that could not be turned into a feature row.")
     participants = arrow_to_json_schema(
