@@ -4,13 +4,13 @@ A consortium holds the same map several times: a subject reprocessed by two pipe
 public dataset folded into a lab's own, a contrast saved as ``A-B`` and as ``B-A``, a map
 re-saved in another format or on another grid.  On both sides of a split such copies leak.
 
-Each feature row carries a 512-bit *sketch* made when it is built: the row is centred and
-scaled over its finite voxels (missing voxels count 0), projected on 512 sparse random
+Each feature row carries a 1,024-bit *sketch* made when it is built: the row is centred
+over its finite voxels (missing voxels count 0), projected on 1,024 sparse random
 directions (each voxel feeds 3 of them with a random sign, a count sketch), and the signs of
 the projections are kept.  Two rows whose signs disagree on a fraction h of the bits have
 an angle of about pi * h (sign random projections), so the sketch estimates their
 correlation; a sign-flipped copy disagrees on nearly every bit.  Candidates come from
-banding (21 bands of 24 bits; a band and its complement hash alike, so sign flips meet),
+banding (51 bands of 20 bits; a band and its complement hash alike, so sign flips meet),
 are kept when the whole sketch says |r| >= ``ESTIMATE_FLOOR``, and only those pairs are
 read from the shards to compute the exact correlation on the voxels both rows cover.
 """
@@ -26,11 +26,11 @@ from .store import COPIES_SCHEMA
 
 __all__ = ["Sketcher", "SKETCH_BITS", "find_copies", "COPIES_SCHEMA", "NEAR_COPY_R", "pair_correlation"]
 
-SKETCH_BITS = 512
-_BAND = 24
-_N_BANDS = SKETCH_BITS // _BAND  # 21 bands (504 bits); the last 8 bits count only in the estimate
+SKETCH_BITS = 1024
+_BAND = 20
+_N_BANDS = SKETCH_BITS // _BAND  # 51 bands (1,020 bits); the last 4 bits count only in the estimate
 _FEEDS = 3  # projections each voxel feeds
-ESTIMATE_FLOOR = 0.8  # sketch estimate below which a candidate pair is not read (r >= 0.9 pairs sit far above)
+ESTIMATE_FLOOR = 0.8  # sketch estimate below which a candidate is not read (r = 0.9 estimates 0.9 +- 0.03)
 STORE_FLOOR = 0.9  # pairs stored in the copies table
 # default refusal threshold for near-copies across a split, from a measurement (exact r on common
 # voxels, MNI152 2 mm brain mask; DEVELOPERS.md): independent maps of one concept in different studies
@@ -67,7 +67,7 @@ class Sketcher:
         return self._proj
 
     def sketch(self, rows: np.ndarray) -> np.ndarray:
-        """(n, 64) uint8 packed sign bits of (n, n_voxels) float32 rows (NaN = missing)."""
+        """(n, 128) uint8 packed sign bits of (n, n_voxels) float32 rows (NaN = missing)."""
         x = np.array(rows, dtype=np.float32, copy=True, ndmin=2)
         finite = np.isfinite(x)
         n_fin = finite.sum(axis=1, keepdims=True)
@@ -75,45 +75,45 @@ class Sketcher:
         mean = x.sum(axis=1, keepdims=True) / np.maximum(n_fin, 1)
         x -= mean
         x[~finite] = 0
-        proj = np.asarray(self._projection() @ x.T).T  # (n, 512)
+        proj = np.asarray(self._projection() @ x.T).T  # (n, SKETCH_BITS)
         return np.packbits(proj > 0, axis=1)
+
+
+_POPCOUNT = np.array([bin(i).count("1") for i in range(256)], dtype=np.uint16)
 
 
 def _estimate(a: np.ndarray, b: np.ndarray) -> np.ndarray:
     """Sketch estimate of the correlation between packed sketches, pair by pair."""
-    h = np.unpackbits(np.bitwise_xor(a, b), axis=1).sum(axis=1)
+    h = _POPCOUNT[np.bitwise_xor(a, b)].sum(axis=1)  # differing bits, byte by byte
     return np.cos(np.pi * h / SKETCH_BITS)
 
 
-def _band_keys(sketches: np.ndarray, band: int) -> np.ndarray:
-    """Values of one band of every sketch, a band and its complement mapped to one key (sign flips meet)."""
-    bits = np.unpackbits(sketches[:, band * _BAND // 8:(band + 1) * _BAND // 8], axis=1)  # 24 bits = 3 bytes
-    keys = bits.astype(np.int64) @ (1 << np.arange(_BAND, dtype=np.int64))
-    full = (1 << _BAND) - 1
-    return np.minimum(keys, full - keys)
+def _band_keys(bits: np.ndarray, band: int) -> np.ndarray:
+    """Values of one band of unpacked sketches, a band and its complement mapped to one key."""
+    keys = bits[:, band * _BAND:(band + 1) * _BAND].astype(np.int64) @ (1 << np.arange(_BAND, dtype=np.int64))
+    return np.minimum(keys, ((1 << _BAND) - 1) - keys)  # sign flips complement every bit: they meet
 
 
 def _candidates(sketches: np.ndarray) -> np.ndarray:
     """Pairs (i < j) sharing at least one band key, as an (m, 2) int64 array."""
     n = len(sketches)
-    found: set[int] = set()
+    bits = np.unpackbits(sketches, axis=1)
+    found: list[np.ndarray] = []
     for b in range(_N_BANDS):
-        col = _band_keys(sketches, b)
+        col = _band_keys(bits, b)
         order = np.argsort(col, kind="stable")
         sorted_keys = col[order]
-        starts = np.flatnonzero(np.diff(sorted_keys)) + 1
-        bounds = np.concatenate([[0], starts, [n]])
+        bounds = np.concatenate([[0], np.flatnonzero(np.diff(sorted_keys)) + 1, [n]])
         sizes = np.diff(bounds)
         for s, size in zip(bounds[:-1][sizes > 1], sizes[sizes > 1]):
             if size > _MAX_GROUP:
                 continue
             members = np.sort(order[s:s + size])
             ii, jj = np.triu_indices(size, 1)
-            found.update((members[ii] * n + members[jj]).tolist())
+            found.append(members[ii] * n + members[jj])
     if not found:
         return np.empty((0, 2), dtype=np.int64)
-    flat = np.fromiter(found, dtype=np.int64, count=len(found))
-    flat.sort()
+    flat = np.unique(np.concatenate(found))
     return np.stack([flat // n, flat % n], axis=1)
 
 
@@ -162,8 +162,9 @@ def find_copies(fs, map_ids: list[str] | None = None, *, floor: float = STORE_FL
                 out[(a, b)] = ("identical", 1.0, fs.n_voxels)
     pairs = _candidates(sketches)
     if len(pairs):
-        est = np.abs(_estimate(sketches[pairs[:, 0]], sketches[pairs[:, 1]]))
-        pairs = pairs[est >= ESTIMATE_FLOOR]
+        est = np.concatenate([np.abs(_estimate(sketches[p[:, 0]], sketches[p[:, 1]]))
+                              for p in np.array_split(pairs, max(1, len(pairs) // 100_000))])
+        pairs = pairs[est >= min(ESTIMATE_FLOOR, floor - 0.1)]
     # exact r on the candidates, reading each involved row once per block of pairs
     for start in range(0, len(pairs), 512):
         block = pairs[start:start + 512]

@@ -50,7 +50,7 @@ from .grid import (
     read_volume,
     resample,
 )
-from .copies import Sketcher, find_copies
+from .copies import SKETCH_BITS, Sketcher, find_copies
 from .stats import convert
 from .store import (
     FPROBLEMS_SCHEMA,
@@ -786,16 +786,18 @@ class FeatureSet:
                                f"--name {self.name}'") from None
 
     def sketches(self, map_ids) -> np.ndarray:
-        """(n, 64) uint8 sign sketches of rows (see :mod:`mapstore.copies`), recorded at build time."""
+        """(n, SKETCH_BITS / 8) uint8 sign sketches of rows (:mod:`mapstore.copies`), recorded at build time."""
         map_ids = list(map_ids)
         col = self.rows["sketch"].to_pylist() if "sketch" in self.rows.column_names else \
             [None] * self.rows.num_rows
         got = [col[self._pos[m]] for m in map_ids]
-        out = np.zeros((len(map_ids), 64), dtype=np.uint8)
+        out = np.zeros((len(map_ids), SKETCH_BITS // 8), dtype=np.uint8)
         todo = [i for i, g in enumerate(got) if g is None]  # rows built before sketches were recorded
         for i, g in enumerate(got):
-            if g is not None:
+            if g is not None and len(g) == out.shape[1]:
                 out[i] = np.frombuffer(g, dtype=np.uint8)
+            elif g is not None:
+                todo.append(i)  # a sketch of another size (an earlier version): made again
         if todo:
             sk = Sketcher.for_set(self.spec["mask"]["sha256"], self.n_voxels)
             for k in range(0, len(todo), 64):

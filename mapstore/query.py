@@ -265,15 +265,15 @@ class Selection:
 
     def copy_pairs(self, near_copy_r: float | None = None) -> list[tuple[int, int, str, float]]:
         """Positions (i, j, kind, r) of selected maps whose rows are identical or |r| >= ``near_copy_r``."""
-        from .copies import NEAR_COPY_R, find_copies
+        from .copies import NEAR_COPY_R, STORE_FLOOR, find_copies
 
         thr = NEAR_COPY_R if near_copy_r is None else near_copy_r
         if not 0 < thr <= 1:
             raise ParameterError(f"near_copy_r must be in (0, 1], got {thr!r}")
-        table = self.feature_set.copies()
         ids = self.map_ids
-        if table is None:  # a set built before copies were recorded
-            table = find_copies(self.feature_set, ids, floor=min(thr, 0.9))
+        table = self.feature_set.copies() if thr >= STORE_FLOOR else None
+        if table is None:  # a set built before copies were recorded, or a threshold below the stored pairs'
+            table = find_copies(self.feature_set, ids, floor=thr)
         pos = {m: i for i, m in enumerate(ids)}
         out = []
         for r in table.to_pylist():

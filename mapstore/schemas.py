@@ -173,7 +173,7 @@ def all_schemas() -> dict[str, dict[str, Any]]:
          "vmax": "largest finite value", "vmean": "mean of the finite values",
          "missing_from": "what made voxels missing before resampling: model-mask, zero-background, zeros, none",
          "p_clipped": "p = 0 voxels inside the model's mask taken as the smallest positive p (z sets)",
-         "sketch": "512 sign bits (64 bytes) of the row's sparse random projections, for the copy scan"})
+         "sketch": "1,024 sign bits (128 bytes) of the row's sparse random projections, for the copy scan"})
     out["feature-problems.schema.json"] = arrow_to_json_schema(
         "feature-problems", FPROBLEMS_SCHEMA, "A map that could not be turned into a feature row.")
     participants = arrow_to_json_schema(
