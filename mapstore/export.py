@@ -131,12 +131,17 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         subset = len(voxels) != fs.n_voxels
         x_hashes: list[str] = []
 
+        same_rows = not subset and (sel.missing != "zero" or sel.meta["coverage"].ge(1.0).all())
+
         def shape(block: np.ndarray) -> np.ndarray:
             """A block of store rows as X rows (policy applied), their hashes recorded."""
             out_block = np.ascontiguousarray(block[:, voxels]) if subset else block
             if sel.missing == "zero":
                 np.nan_to_num(out_block, copy=False, nan=0.0)
-            x_hashes.extend(_row_hash(r) for r in out_block)
+            if same_rows:  # X rows are the store rows: their hashes are known
+                x_hashes.extend(row_hashes[len(x_hashes):len(x_hashes) + len(out_block)])
+            else:
+                x_hashes.extend(_row_hash(r) for r in out_block)
             return out_block
 
         buf = np.empty((min(BLOCK_ROWS, max(n, 1)), nv), dtype=np.float32)  # one reused block buffer

@@ -179,8 +179,8 @@ class Selection:
         """
         if self._voxels is None:
             fs = self.feature_set
-            if self.missing != "common":
-                self._voxels = np.arange(fs.n_voxels)
+            if self.missing != "common" or bool((self.meta["coverage"] >= 1.0).all()):
+                self._voxels = np.arange(fs.n_voxels)  # every row covers the whole mask: nothing to read
             else:
                 finite = np.ones(fs.n_voxels, dtype=bool)
                 ids = self.map_ids

@@ -330,3 +330,27 @@ def test_unknown_preset_is_refused_with_the_list(tmp_path):
     with pytest.raises(mapstore.MapstoreError) as err:
         mapstore.index([ds], tmp_path / "store", rules="afni", progress=False)
     assert str(err.value) == "afni: no such rules file or built-in preset; presets: fsl-feat, spm"
+
+
+def test_the_readme_decoding_runs_on_nilearn_outputs(glm, tmp_path):
+    # the README's decoding lines, on real nilearn outputs (a cut field of view included): X has no NaN
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.model_selection import cross_val_score
+
+    store = tmp_path / "store"
+    shutil.copytree(glm["store"], store)
+    vocab = write_json(tmp_path / "vocab.json", {
+        "vocabulary": "glm-test", "version": "1",
+        "concepts": {"reading": {"description": "words"}, "listening": {"description": "sounds"}},
+        "rules": [{"contrast": "words*", "concepts": ["reading"]}, {"contrast": "tones*", "concepts": ["listening"]}]})
+    mapstore.label(store, vocab)
+    st = mapstore.open(store)
+    sel = st.select("sub IS NOT NULL", concepts=["reading", "listening"], target="concept", group_by="subject",
+                    stat=["t"])
+    assert sel.meta.study.nunique() == 2 and np.isfinite(sel.X).all()
+    assert sel.missing_report["dropped_voxels"] > 0  # beta's cut field of view
+    scores = cross_val_score(LogisticRegression(max_iter=1000), sel.X, sel.y, cv=sel.splits("leave-one-group-out"))
+    assert len(scores) == 5 and np.isfinite(scores).all()
+    weights = LogisticRegression(max_iter=1000).fit(sel.X, sel.y).coef_[0]
+    img = sel.to_image(weights)
+    assert np.isfinite(np.asarray(img.dataobj)).sum() == sel.X.shape[1]
