@@ -188,6 +188,7 @@ def check_store(store, features: str | None = None, *, min_coverage: float = 0.8
         Make the coverage pictures (reads up to ``max_rows_for_pictures`` rows, spread
         over the set).
     """
+    store.catalog.require_catalog()
     maps = store.sql("SELECT * FROM maps").to_pylist()
     fs = None
     if store.feature_sets():

@@ -1,7 +1,8 @@
 """Command line: parse options, call the public API, print, map errors to exit codes.
 
-Exit codes: 0 success, 1 a failure reported by mapstore, 2 a usage error.
-A user error never prints a traceback.
+Exit codes: 0 success, 1 a failure (mapstore could not do what was asked: bad input, a file it
+cannot read or write), 2 a usage error, 3 ``check`` or ``verify`` ran and found something at the
+``--fail-on`` level (check) or a change (verify).  A user error never prints a traceback.
 """
 
 from __future__ import annotations
@@ -13,6 +14,16 @@ from pathlib import Path
 import click
 
 import mapstore
+
+FINDINGS_EXIT = 3  # check found something at --fail-on, or verify found a change (1 is a failure to run)
+
+
+def _target(path: str | None, option: str) -> None:
+    """Refuse an output path whose folder does not exist, before any work is done."""
+    if path and not Path(path).expanduser().absolute().parent.is_dir():
+        raise click.BadParameter(f"{path}: the folder {Path(path).expanduser().absolute().parent} does not "
+                                 "exist; create it first", param_hint=option)
+
 
 STORE_OPTION = click.option("--store", "store", required=True, type=click.Path(file_okay=False),
                             help="Store folder (created by 'mapstore index').")
@@ -108,6 +119,7 @@ def index_cmd(roots, store, rules, origins, jobs, prune) -> None:
 @click.option("--out", type=click.Path(dir_okay=False), help="Write to FILE instead of standard output.")
 def sql_cmd(store, query, fmt, out) -> None:
     """Run a read-only SQL QUERY over the views maps, datasets, participants, problems, labels."""
+    _target(out, "--out")
     table = mapstore.open(store).sql(query)
     write_table(table, fmt, out)
 
@@ -203,11 +215,11 @@ def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_cover
 @cli.command("verify")
 @click.argument("manifest", type=click.Path(exists=True))
 def verify_cmd(manifest) -> None:
-    """Re-check an export's MANIFEST against its sources and store; exit 1 if anything changed."""
+    """Re-check an export's MANIFEST against its sources and store; exit 3 if anything changed."""
     report = mapstore.verify(manifest)
     click.echo(report.summary())
     if not report.ok:
-        raise click.exceptions.Exit(1)
+        raise click.exceptions.Exit(FINDINGS_EXIT)
 
 
 @cli.command("check")
@@ -226,6 +238,7 @@ def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fa
     """Check grids, space, coverage, stat types, metadata, copies and concept agreement of a store."""
     from .check import report_json
 
+    _target(html_out, "--html")
     report = mapstore.open(store).check(feature_set, min_coverage=min_coverage, pictures=bool(html_out),
                                         min_agreement=min_agreement)
     if fmt == "json":
@@ -237,7 +250,7 @@ def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fa
     if html_out:
         click.echo(f"wrote {report.write_html(html_out)}", err=True)
     if fail_on != "never" and report.fails(fail_on):
-        raise click.exceptions.Exit(1)
+        raise click.exceptions.Exit(FINDINGS_EXIT)
 
 
 @cli.command("demo")
@@ -343,6 +356,11 @@ def main(argv: list[str] | None = None) -> int:
     except KeyboardInterrupt:
         click.echo("interrupted", err=True)
         return 130
+    except OSError as exc:  # an operating-system failure mapstore did not foresee: still one line
+        where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
+        click.echo(f"error: {where}{exc.strerror or exc} (check the path, its permissions and free space)",
+                   err=True)
+        return 1
     return rv if isinstance(rv, int) else 0
 
 

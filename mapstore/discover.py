@@ -11,11 +11,13 @@ suffix matches applies, the deeper (more specific) overriding the shallower.
 from __future__ import annotations
 
 import csv
+import errno
 import fnmatch
 import hashlib
 import json
 import os
 import re
+import stat
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable
@@ -329,7 +331,7 @@ class NameRules:
         for key in ("mask", "dof_file"):
             if rule[key]:
                 rel = fill(rule[key])
-                if os.path.isfile(os.path.join(root, rel)):
+                if is_regular(os.path.join(root, rel)):
                     out[key] = rel
         spec = rule["contrast_names"]
         if spec and "contrast" in entities:
@@ -367,6 +369,8 @@ class NameRules:
 
 def _read_names_file(path: str, spec: dict[str, Any]) -> tuple[Any, str]:
     """The text of a contrast-name file or the names of a MATLAB struct array, and why not."""
+    if os.path.exists(path) and not is_regular(path):
+        return None, f"{path} is not a regular file (not opened)"
     if "line" in spec:
         try:
             with open(path, encoding="utf-8", errors="replace") as fh:
@@ -501,6 +505,9 @@ def _read_description(root: Path) -> tuple[dict[str, Any] | None, Problem | None
     f = root / "dataset_description.json"
     if not f.exists():
         return None, None
+    if not is_regular(f):
+        return {}, Problem(str(f), "not-a-regular-file", "dataset_description.json is not a regular file; it was "
+                           "not opened", "replace it with the JSON file itself", "warning")
     try:
         doc = json.loads(f.read_text(encoding="utf-8"))
         if not isinstance(doc, dict):
@@ -742,12 +749,26 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
                 is_dir = e.is_dir()
             except OSError:
                 is_dir = False
+            if is_dir and (name.endswith(".nii.gz") or name.endswith(".nii")) and "_stat-" in name:
+                problems.append(Problem(e.path, "not-a-regular-file", "a folder named like a statistic map; it "
+                                        "was not opened", "rename the folder, or put the map file itself here",
+                                        "error", ds.key))
+                continue
             if is_dir:
                 if not rel and (name in SKIP_DIRS or (only is not None and name not in only)):
                     continue
                 stack.append(relpath)
                 continue
             if name.endswith(".json") or name.endswith(COMPANION_SUFFIXES):
+                try:
+                    _stat_entry(e)
+                except _NotRegular as exc:
+                    problems.append(Problem(e.path, "not-a-regular-file", f"a {exc}, not a regular file; it was "
+                                            "not opened (opening it could block)", "replace it with the file "
+                                            "itself", "warning", ds.key))
+                    continue
+                except OSError:
+                    continue  # a dangling or looping link to a sidecar: nothing to read
                 jsons.setdefault(rel, []).append(name)
                 continue
             if not (name.endswith(".nii.gz") or name.endswith(".nii")) or (not rel and not root_maps):
@@ -761,6 +782,11 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
                     continue
             try:
                 st = _stat_entry(e)
+            except _NotRegular as exc:
+                problems.append(Problem(e.path, "not-a-regular-file", f"a {exc} named like a statistic map; it was "
+                                        "not opened (opening it could block the crawl)", "replace it with the map "
+                                        "file itself, or remove it", "error", ds.key))
+                continue
             except FileNotFoundError:
                 problems.append(Problem(e.path, "dangling-symlink",
                                         "symbolic link to a file that is not there (an unfetched annexed file?)",
@@ -768,8 +794,12 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
                                         "'git annex get' on it), then index again", "error", ds.key))
                 continue
             except OSError as exc:
-                problems.append(Problem(e.path, "unreadable", f"cannot stat file ({exc.strerror})",
-                                        "check permissions", "error", ds.key))
+                if exc.errno == errno.ELOOP:
+                    problems.append(Problem(e.path, "symlink-loop", "symbolic links that point at each other "
+                                            "in a loop", "point the link at the map file", "error", ds.key))
+                else:
+                    problems.append(Problem(e.path, "unreadable", f"cannot stat file ({exc.strerror})",
+                                            "check permissions", "error", ds.key))
                 continue
             if is_statmap:
                 ents = parser.parse(relpath)
@@ -795,8 +825,32 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
     return maps, jsons, problems
 
 
-def _stat_entry(entry: os.DirEntry):
-    return entry.stat()
+_KINDS = ((stat.S_ISFIFO, "named pipe (FIFO)"), (stat.S_ISSOCK, "socket"), (stat.S_ISCHR, "character device"),
+          (stat.S_ISBLK, "block device"), (stat.S_ISDIR, "folder"))
+
+
+def _kind(mode: int) -> str:
+    return next((name for test, name in _KINDS if test(mode)), "special file")
+
+
+def _stat_entry(entry: os.DirEntry) -> os.stat_result:
+    """The entry's stat (through symlinks); only regular files pass, as opening anything else can block."""
+    st = entry.stat()
+    if not stat.S_ISREG(st.st_mode):
+        raise _NotRegular(_kind(st.st_mode))
+    return st
+
+
+class _NotRegular(OSError):
+    """A path that is not a regular file (a FIFO, a socket, a device or a folder)."""
+
+
+def is_regular(path: str | os.PathLike[str]) -> bool:
+    """True for a regular file (symlinks followed); never opens the path."""
+    try:
+        return stat.S_ISREG(os.stat(path).st_mode)
+    except OSError:
+        return False
 
 
 _ENTITY_PART = re.compile(r"^([a-zA-Z0-9]+)-(.*)$")
@@ -1052,6 +1106,9 @@ def read_participants(ds: DatasetInfo) -> tuple[list[dict[str, Any]], str | None
     for f in candidates:
         if not f.exists():
             continue
+        if not is_regular(f):
+            return [], str(f), [Problem(str(f), "not-a-regular-file", "participants.tsv is not a regular file; it "
+                                        "was not opened", "replace it with the TSV file itself", "warning", ds.key)]
         try:
             with open(f, newline="", encoding="utf-8") as fh:
                 reader = csv.DictReader(fh, delimiter="\t")

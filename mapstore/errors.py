@@ -14,8 +14,10 @@ __all__ = [
     "HeaderError",
     "StoreNotFound",
     "NoDatasetsFound",
+    "NoCatalog",
     "StoreBusy",
     "StoreCorrupt",
+    "StoreUnwritable",
     "QueryError",
     "RulesError",
     "VocabularyError",
@@ -57,6 +59,10 @@ class StoreNotFound(MapstoreError, FileNotFoundError):
     """No mapstore store exists at the given path."""
 
 
+class NoCatalog(StoreNotFound):
+    """The store exists but nothing has been indexed into it yet."""
+
+
 class NoDatasetsFound(MapstoreError, FileNotFoundError):
     """No BIDS derivative dataset was found under the folders given to index."""
 
@@ -67,6 +73,10 @@ class StoreBusy(MapstoreError, BlockingIOError):
 
 class StoreCorrupt(MapstoreError, OSError):
     """The store's files are inconsistent (a file is missing or unreadable)."""
+
+
+class StoreUnwritable(MapstoreError, PermissionError):
+    """The store folder cannot be created or written."""
 
 
 class QueryError(MapstoreError, ValueError):

@@ -118,12 +118,18 @@ def _resolve_grid(grid: str | TargetGrid | dict) -> TargetGrid:
         raise ParameterError(f"grid must be a built-in name, an image path, a JSON spec path or a "
                              f"TargetGrid, got {type(grid).__name__}")
     if grid.endswith(".json"):
+        want = '{"shape": [x, y, z], "affine": [[...4x4...]]}'
         try:
             doc = json.loads(Path(grid).read_text())
         except (OSError, ValueError) as exc:
-            raise ParameterError(f"grid spec {grid}: cannot read ({exc}); expected JSON "
-                                 '{"shape": [x, y, z], "affine": [[...4x4...]]}') from None
-        return grid_from_spec(doc["shape"], doc["affine"], doc.get("name", Path(grid).stem))
+            raise ParameterError(f"grid spec {grid}: cannot read ({exc}); expected JSON {want}") from None
+        missing = [k for k in ("shape", "affine") if not isinstance(doc, dict) or k not in doc]
+        if missing:
+            raise ParameterError(f"grid spec {grid}: no {' and no '.join(missing)}; expected JSON {want}")
+        try:
+            return grid_from_spec(doc["shape"], doc["affine"], doc.get("name", Path(grid).stem))
+        except (TypeError, ValueError) as exc:
+            raise ParameterError(f"grid spec {grid}: {exc}; expected JSON {want}") from None
     if grid.endswith((".nii", ".nii.gz")):
         return grid_from_image(grid)
     return builtin_grid(grid)
@@ -498,9 +504,7 @@ def build_features(
         progress = sys.stderr.isatty()
     target = _resolve_grid(grid)
     cat = Catalog(store)
-    if not cat.head.catalog:
-        raise FeatureError(f"{cat.path}: the store has no catalog yet; run 'mapstore index ROOT --store "
-                           f"{cat.path}' first")
+    cat.require_catalog()
     default_settings = (grid == "MNI152-2mm" and str(mask) == "brain" and method == "linear"
                         and stat == "native" and not zero_as_missing and background == "auto" and not model_maps)
     if name is None:

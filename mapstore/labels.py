@@ -403,10 +403,9 @@ def label_store(store: str | os.PathLike[str], vocabulary: str | os.PathLike[str
     from .store import (Catalog, commit_head, new_snapshot_id, read_head, write_lock,
                         write_parquet_atomic)
 
-    vocab = load_vocabulary(vocabulary)
     cat = Catalog(store)
-    if not cat.head.catalog:
-        raise VocabularyError(f"{cat.path}: the store has no catalog yet; run 'mapstore index' first")
+    cat.require_catalog()  # the store first: a vocabulary cannot help an empty store
+    vocab = load_vocabulary(vocabulary)
     with write_lock(cat.path):
         head = read_head(cat.path)
         cat = Catalog(cat.path)

@@ -29,7 +29,7 @@ from typing import Any, Iterator
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .errors import QueryError, StoreBusy, StoreCorrupt, StoreNotFound
+from .errors import NoCatalog, QueryError, StoreBusy, StoreCorrupt, StoreNotFound, StoreUnwritable
 
 __all__ = [
     "STORE_FORMAT",
@@ -131,9 +131,13 @@ def ensure_store(path: str | os.PathLike[str]) -> Path:
     if p.is_dir() and any(p.iterdir()) and not marker.exists():
         raise StoreCorrupt(f"{p}: folder exists, is not empty and is not a mapstore store; "
                            "choose an empty or new folder for --store")
-    p.mkdir(parents=True, exist_ok=True)
-    if not marker.exists():
-        write_json_atomic(marker, STORE_FORMAT)
+    try:
+        p.mkdir(parents=True, exist_ok=True)
+        if not marker.exists():
+            write_json_atomic(marker, STORE_FORMAT)
+    except OSError as exc:
+        raise StoreUnwritable(f"{p}: cannot create the store here ({exc.strerror}); choose a folder you can "
+                              "write (--store)") from None
     return p
 
 
@@ -243,6 +247,12 @@ class Catalog:
         self.head = read_head(self.path)
         self._tables: dict[str, pa.Table] = {}
         self._con = None
+
+    def require_catalog(self) -> None:
+        """Raise :class:`~mapstore.errors.NoCatalog` when nothing has been indexed into the store."""
+        if not self.head.catalog:
+            raise NoCatalog(f"{self.path}: the store has no catalog yet; run 'mapstore index ROOT --store "
+                            f"{self.path}' first")
 
     def table_path(self, name: str) -> Path | None:
         if name == "labels":

@@ -7,6 +7,7 @@ import os
 import shutil
 import subprocess
 import sys
+from pathlib import Path
 
 import duckdb
 import nibabel as nib
@@ -292,3 +293,45 @@ def test_no_dataset_found_writes_nothing(tmp_path):
         with pytest.raises(NoDatasetsFound, match="Nothing was written"):
             mapstore.index([root], tmp_path / "store", progress=False)
     assert not (tmp_path / "store").exists()
+
+
+def test_special_files_are_reported_not_opened(tmp_path):
+    # a FIFO, a socket, a device and a folder named like maps, a looping link, FIFO sidecar and
+    # participants.tsv: each would block or fail an open(); the crawl must finish and report them
+    import socket
+
+    ds = make_derivative(tmp_path / "d")
+    good = write_map(ds / "sub-01" / "sub-01_task-go_contrast-a_stat-t_statmap.nii.gz")
+    f = ds / "sub-01"
+    os.mkfifo(f / "sub-01_task-go_contrast-fifo_stat-t_statmap.nii.gz")
+    sock = socket.socket(socket.AF_UNIX)
+    here = os.getcwd()
+    os.chdir(f)  # a socket path must be short: bind relative to its folder
+    try:
+        sock.bind("sub-01_task-go_contrast-sock_stat-t_statmap.nii")
+    finally:
+        os.chdir(here)
+    os.symlink("/dev/zero", f / "sub-01_task-go_contrast-dev_stat-t_statmap.nii")
+    (f / "sub-01_task-go_contrast-dir_stat-t_statmap.nii.gz").mkdir()
+    os.symlink("loop-b.nii", f / "sub-01_task-go_contrast-loop_stat-t_statmap.nii")
+    os.symlink("sub-01_task-go_contrast-loop_stat-t_statmap.nii", f / "loop-b.nii")
+    os.mkfifo(f / "sub-01_task-go_statmap.json")
+    os.mkfifo(ds / "participants.tsv")
+    store = tmp_path / "store"
+    code = (f"import mapstore; r = mapstore.index([{str(ds)!r}], {str(store)!r}, jobs=2, progress=False); "
+            "print(r.maps)")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
+    sock.close()
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip() == "1"
+    probs = {Path(r["path"]).name: r for r in mapstore.open(store).sql("SELECT * FROM problems").to_pylist()}
+    assert probs["sub-01_task-go_contrast-fifo_stat-t_statmap.nii.gz"]["reason"] == (
+        "a named pipe (FIFO) named like a statistic map; it was not opened (opening it could block the crawl)")
+    assert probs["sub-01_task-go_contrast-sock_stat-t_statmap.nii"]["reason"].startswith("a socket named like")
+    assert probs["sub-01_task-go_contrast-dev_stat-t_statmap.nii"]["reason"].startswith("a character device")
+    assert probs["sub-01_task-go_contrast-dir_stat-t_statmap.nii.gz"]["code"] == "not-a-regular-file"
+    assert probs["sub-01_task-go_contrast-loop_stat-t_statmap.nii"]["code"] == "symlink-loop"
+    assert probs["sub-01_task-go_statmap.json"]["level"] == "warning"
+    assert probs["participants.tsv"]["code"] == "not-a-regular-file"
+    assert mapstore.open(store).sql("SELECT relpath FROM maps").column(0).to_pylist() == [
+        str(good.relative_to(ds))]

@@ -92,7 +92,7 @@ def test_png_decodes_with_pillow(rng):
 
 def test_check_cli_exit_codes(tmp_path, capsys):
     store = _faulty_store(tmp_path)
-    assert main(["check", "--store", str(store)]) == 1
+    assert main(["check", "--store", str(store)]) == 3  # findings: 3, a failure to run: 1
     assert "p-out-of-range" in capsys.readouterr().out
     assert main(["check", "--store", str(store), "--fail-on", "never", "--format", "json",
                  "--html", str(tmp_path / "c.html")]) == 0

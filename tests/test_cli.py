@@ -9,6 +9,8 @@ from click.testing import CliRunner
 
 from mapstore.cli import cli, main
 
+from .conftest import make_derivative, write_map
+
 
 def test_sql_formats(demo_store, tmp_path):
     runner = CliRunner()
@@ -60,7 +62,7 @@ def test_features_labels_export_verify_commands(demo_store, demo_tree, tmp_path)
                  "reading", "--concept", "arithmetic", "--scheme", "group-kfold:2"]) == 0
     assert main(["verify", str(out / "manifest.json")]) == 0
     (out / "y.npy").write_bytes(b"changed")
-    assert main(["verify", str(out)]) == 1
+    assert main(["verify", str(out)]) == 3  # a change found: 3; a failure to run: 1
 
 
 def test_bad_vocabulary_message_from_cli(demo_store, tmp_path, capsys):
@@ -69,3 +71,30 @@ def test_bad_vocabulary_message_from_cli(demo_store, tmp_path, capsys):
     assert main(["labels", "--store", str(demo_store), "--vocab", str(vocab)]) == 1
     err = capsys.readouterr().err
     assert "rules[0].concepts[0] (line 5): unknown concept 'b'" in err and "Traceback" not in err
+
+
+def test_ordinary_mistakes_are_one_line_without_traceback(demo_store, tmp_path, capsys):
+    grid = tmp_path / "grid.json"
+    grid.write_text('{"affine": [[2, 0, 0, 0], [0, 2, 0, 0], [0, 0, 2, 0], [0, 0, 0, 1]]}')
+    src = make_derivative(tmp_path / "src")
+    write_map(src / "sub-01" / "sub-01_task-go_contrast-a_stat-t_statmap.nii.gz")
+    empty = tmp_path / "empty"
+    empty.mkdir()
+    (empty / "store.json").write_text('{"format": "mapstore-store", "version": 1}')
+    cases = [
+        (["features", "--store", str(demo_store), "--grid", str(grid)], 2,
+         f'error: grid spec {grid}: no shape; expected JSON {{"shape": [x, y, z], "affine": [[...4x4...]]}}'),
+        (["sql", "--store", str(demo_store), "--out", str(tmp_path / "no" / "x.csv"), "--format", "csv",
+          "SELECT 1"], 2, f"folder {tmp_path / 'no'} does not exist; create it first"),
+        (["check", "--store", str(demo_store), "--html", str(tmp_path / "no" / "r.html")], 2,
+         f"folder {tmp_path / 'no'} does not exist; create it first"),
+        (["index", str(src), "--store", "/proc/mapstore-store"], 1,
+         "error: /proc/mapstore-store: cannot create the store here"),
+        (["check", "--store", str(empty)], 1, "the store has no catalog yet; run 'mapstore index ROOT --store"),
+        (["labels", "--store", str(empty), "--vocab", str(grid)], 1, "the store has no catalog yet"),
+        (["features", "--store", str(empty)], 1, "the store has no catalog yet"),
+    ]
+    for argv, code, text in cases:
+        assert main(argv) == code, argv
+        err = capsys.readouterr().err
+        assert text in err and "Traceback" not in err, (argv, err)
