@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import os
+import weakref
 from pathlib import Path
 
 import pyarrow as pa
@@ -13,7 +14,7 @@ from .export import ExportReport, export_selection
 from .features import FeatureSet
 from .labels import refresh_labels
 from .query import Selection, select
-from .store import Catalog
+from .store import Catalog, release_lease, take_lease
 
 __all__ = ["Store", "open_store"]
 
@@ -36,10 +37,23 @@ class Store:
     def __init__(self, path: str | os.PathLike[str]) -> None:
         self.catalog = Catalog(path)
         self.path: Path = self.catalog.path
+        # a lease keeps this snapshot's files from being collected by writers while the store is open
+        lease = take_lease(self.path, self.catalog.head) if self.catalog.head.catalog else None
+        self._finalizer = weakref.finalize(self, release_lease, lease)
         entry = self.catalog.head.labels
         if entry and entry.get("catalog") != self.catalog.head.catalog and entry.get("copy"):
             # the catalog was re-indexed after labelling: derive labels for it from the stored vocabulary
             self.catalog._tables["labels"] = refresh_labels(self.catalog, entry)
+
+    def close(self) -> None:
+        """Let writers collect this snapshot's files (also done when the Store is garbage-collected)."""
+        self._finalizer()
+
+    def __enter__(self) -> "Store":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
 
     def __repr__(self) -> str:
         return f"Store({str(self.path)!r}, maps={self.catalog.table('maps').num_rows})"

@@ -18,6 +18,7 @@ __all__ = [
     "StoreBusy",
     "StoreCorrupt",
     "StoreUnwritable",
+    "StaleSnapshot",
     "QueryError",
     "RulesError",
     "VocabularyError",
@@ -73,6 +74,10 @@ class StoreBusy(MapstoreError, BlockingIOError):
 
 class StoreCorrupt(MapstoreError, OSError):
     """The store's files are inconsistent (a file is missing or unreadable)."""
+
+
+class StaleSnapshot(MapstoreError, FileNotFoundError):
+    """A reader's snapshot was collected after the store moved on (reopen the store)."""
 
 
 class StoreUnwritable(MapstoreError, PermissionError):

@@ -58,6 +58,7 @@ from .store import (
     Catalog,
     commit_head,
     conform,
+    leased_files,
     new_snapshot_id,
     read_head,
     write_json_atomic,
@@ -640,8 +641,13 @@ def _item(r: dict[str, Any], key: str) -> _Item:
 
 
 def _collect_feature_garbage(store: Path, set_dir: Path, current: str, previous: str | None) -> None:
-    """Delete shards and rows tables neither the current nor the previous rows table uses."""
+    """Delete shards and rows tables that neither the current, the previous, nor a live reader's uses."""
     keep_tables = {Path(current).name} | ({Path(previous).name} if previous else set())
+    for lease in leased_files(store):
+        entry = (lease.get("features") or {}).get(set_dir.name) or {}
+        if entry.get("rows"):
+            keep_tables.add(Path(entry["rows"]).name)
+    keep_tables = {t for t in keep_tables if (set_dir / t).exists()}
     used: set[str] = set()
     for t in keep_tables:
         used |= set(pq.read_table(set_dir / t, columns=["shard"])["shard"].to_pylist())

@@ -400,7 +400,7 @@ def label_store(store: str | os.PathLike[str], vocabulary: str | os.PathLike[str
     The vocabulary file is copied into the store, so the labels stay reproducible
     (and are re-derived for a newer catalog) even if the file changes later.
     """
-    from .store import (Catalog, commit_head, new_snapshot_id, read_head, write_lock,
+    from .store import (Catalog, commit_head, leased_files, new_snapshot_id, read_head, write_lock,
                         write_parquet_atomic)
 
     cat = Catalog(store)
@@ -425,7 +425,8 @@ def label_store(store: str | os.PathLike[str], vocabulary: str | os.PathLike[str
                        "catalog": head.catalog, "concepts": sorted(vocab.concepts)}
         commit_head(cat.path, head, {"event": "labels", "vocabulary": vocab.name, "sha256": vocab.sha256,
                                      "labels": table.num_rows})
-        if old and old.get("table") and old["table"] != rel:
+        if old and old.get("table") and old["table"] != rel and \
+                old["table"] not in {d.get("labels") for d in leased_files(cat.path)}:
             (cat.path / old["table"]).unlink(missing_ok=True)
     return report
 

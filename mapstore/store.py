@@ -29,7 +29,8 @@ from typing import Any, Iterator
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from .errors import NoCatalog, QueryError, StoreBusy, StoreCorrupt, StoreNotFound, StoreUnwritable
+from .errors import (MapstoreError, NoCatalog, QueryError, StaleSnapshot, StoreBusy, StoreCorrupt, StoreNotFound,
+                     StoreUnwritable)
 
 __all__ = [
     "STORE_FORMAT",
@@ -119,7 +120,10 @@ class Head:
 
 
 def new_snapshot_id() -> str:
-    return time.strftime("%Y%m%dT%H%M%S") + "-" + uuid.uuid4().hex[:8]
+    """Ids sort in creation order (to the microsecond), which garbage collection relies on."""
+    now = time.time_ns()
+    return time.strftime("%Y%m%dT%H%M%S", time.gmtime(now // 10 ** 9)) + f".{now // 1000 % 10 ** 6:06d}-" + \
+        uuid.uuid4().hex[:8]
 
 
 def ensure_store(path: str | os.PathLike[str]) -> Path:
@@ -210,6 +214,79 @@ def write_parquet_atomic(table: pa.Table, path: Path) -> None:
     os.replace(tmp, path)
 
 
+# --- reader leases --------------------------------------------------------------------------
+# A reader (mapstore.open) records which snapshot files it serves in STORE/.readers/; writers'
+# garbage collection keeps every file a live lease names.  A lease is live while its process runs
+# (same host: pid and process start time; another host: for a day).
+
+_LEASES = ".readers"
+_OTHER_HOST_LEASE_S = 24 * 3600
+
+
+def _start_time(pid: int) -> str | None:
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            return fh.read().rsplit(b")", 1)[1].split()[19].decode()  # field 22: start time in ticks
+    except (OSError, IndexError):
+        return None
+
+
+def head_files(head: Head) -> dict[str, Any]:
+    """The files a reader of ``head`` may open later (relative to the store)."""
+    return {"catalog": head.catalog, "labels": (head.labels or {}).get("table"),
+            "features": {n: {k: e.get(k) for k in ("rows", "problems", "copies")} for n, e in head.features.items()}}
+
+
+def take_lease(path: Path, head: Head) -> Path | None:
+    """Record that this process reads ``head``; None when the store cannot be written (read-only)."""
+    import socket
+
+    doc = {"pid": os.getpid(), "start": _start_time(os.getpid()), "host": socket.gethostname(),
+           "time": time.time(), **head_files(head)}
+    folder = path / _LEASES
+    f = folder / f"{os.getpid()}-{uuid.uuid4().hex[:12]}.json"
+    try:
+        folder.mkdir(exist_ok=True)
+        tmp = folder / f".{f.name}.tmp"
+        tmp.write_text(json.dumps(doc))
+        os.replace(tmp, f)
+    except OSError:
+        return None
+    return f
+
+
+def release_lease(lease: Path | None) -> None:
+    if lease is not None:
+        with contextlib.suppress(OSError):
+            lease.unlink()
+
+
+def leased_files(path: Path) -> list[dict[str, Any]]:
+    """The file sets of live leases; leases of ended processes are removed on the way."""
+    import socket
+
+    host = socket.gethostname()
+    out = []
+    folder = path / _LEASES
+    if not folder.is_dir():
+        return out
+    for f in folder.glob("*.json"):
+        try:
+            doc = json.loads(f.read_text())
+        except (OSError, ValueError):
+            continue
+        if doc.get("host") == host:
+            live = doc.get("start") is not None and _start_time(int(doc.get("pid", -1))) == doc.get("start")
+        else:
+            live = time.time() - float(doc.get("time", 0)) < _OTHER_HOST_LEASE_S
+        if live:
+            out.append(doc)
+        else:
+            with contextlib.suppress(OSError):
+                f.unlink()
+    return out
+
+
 def commit_head(path: Path, head: Head, event: dict[str, Any]) -> None:
     """Publish ``head`` as the store's current state (the one atomic step of a write)."""
     head.history.append({"time": time.strftime("%Y-%m-%dT%H:%M:%S"), **event})
@@ -225,7 +302,7 @@ def _collect_garbage(path: Path, head: Head) -> None:
     snaps = sorted((p for p in cat.iterdir() if p.is_dir() and not p.name.startswith(".")),
                    key=lambda p: p.name)
     current = Path(head.catalog).name if head.catalog else None
-    keep = {current}
+    keep = {current} | {Path(d["catalog"]).name for d in leased_files(path) if d.get("catalog")}
     older = [p.name for p in snaps if p.name != current]
     if older:
         keep.add(older[-1])
@@ -269,7 +346,7 @@ class Catalog:
             if p is None or not p.exists():
                 if p is not None and self.head.catalog:
                     if name != "participants":
-                        raise StoreCorrupt(f"{p}: catalog file missing; re-run 'mapstore index'")
+                        self._raise_missing(p)
                 self._tables[name] = _empty(name)
             else:
                 try:
@@ -277,6 +354,18 @@ class Catalog:
                 except (OSError, pa.ArrowException) as exc:
                     raise StoreCorrupt(f"{p}: cannot read ({exc}); re-run 'mapstore index'") from None
         return self._tables[name]
+
+    def _raise_missing(self, p: Path) -> None:
+        """A file of the opened snapshot is gone: stale (the store moved on) or corrupt."""
+        try:
+            now = read_head(self.path)
+        except MapstoreError:
+            now = None
+        if now is not None and now.to_json() != self.head.to_json():
+            raise StaleSnapshot(f"{self.path}: the store changed since it was opened (index, features or labels "
+                                f"ran) and the snapshot this reader serves was collected ({p.name}); open it "
+                                "again with mapstore.open()")
+        raise StoreCorrupt(f"{p}: catalog file missing; re-run 'mapstore index'")
 
     def connection(self):
         """A DuckDB connection with one view per catalog table, no file access beyond them."""
@@ -307,6 +396,8 @@ class Catalog:
                     c = pq.read_table(self.path / entry["copies"])
                     copies.append(c.add_column(0, "feature_set", pa.array([name] * c.num_rows, pa.string())))
                 spec = json.loads((self.path / entry["dir"] / "set.json").read_text())
+            except FileNotFoundError as exc:
+                self._raise_missing(Path(exc.filename or entry["rows"]))
             except (OSError, ValueError, pa.ArrowException) as exc:
                 raise StoreCorrupt(f"{self.path / entry['dir']}: feature set {name!r} unreadable ({exc}); "
                                    f"rebuild it with 'mapstore features --name {name}'") from None

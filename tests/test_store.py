@@ -1,0 +1,91 @@
+"""Readers are never broken by writers: a Store opened before any number of writes keeps answering."""
+
+from __future__ import annotations
+
+import json
+import subprocess
+import sys
+
+import numpy as np
+import pytest
+
+import mapstore
+from mapstore.errors import StaleSnapshot
+
+from .conftest import make_derivative, write_json, write_map
+
+
+def _tree(tmp_path):
+    ds = make_derivative(tmp_path / "src" / "alpha", name="alpha")
+    write_json(ds / "task-go_statmap.json", {"DegreesOfFreedom": 25})
+    aff = np.diag([4.0, 4, 4, 1])
+    aff[:3, 3] = [-80, -112, -60]
+    rng = np.random.default_rng(5)
+    for i in range(4):
+        write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-go_contrast-a_stat-t_statmap.nii.gz",
+                  rng.normal(size=(41, 48, 40)).astype(np.float32), aff)
+    vocab = write_json(tmp_path / "v.json", {"vocabulary": "v", "version": "1", "concepts": {"x": {}, "y": {}},
+                                             "rules": [{"contrast": "a", "concepts": ["x"]}]})
+    vocab2 = write_json(tmp_path / "v2.json", {"vocabulary": "v", "version": "2", "concepts": {"x": {}, "y": {}},
+                                               "rules": [{"contrast": "a", "concepts": ["y"]}]})
+    store = tmp_path / "store"
+    mapstore.index([ds], store, progress=False)
+    mapstore.build_features(store, grid="MNI152-3mm", name="s", progress=False)
+    mapstore.label(store, vocab)
+    return ds, store, vocab, vocab2
+
+
+def test_an_open_reader_survives_many_writes(tmp_path):
+    ds, store, vocab, vocab2 = _tree(tmp_path)
+    reader = mapstore.open(store)
+    ids = reader.features("s").map_ids
+    want_X = reader.features("s").matrix(ids)
+    # the writers move on three times: new maps, rebuilt rows, new labels
+    for k in range(3):
+        write_map(ds / f"sub-1{k}" / f"sub-1{k}_task-go_contrast-a_stat-t_statmap.nii.gz",
+                  np.full((41, 48, 40), float(k), np.float32), np.diag([4.0, 4, 4, 1]))
+        f = ds / "sub-00" / "sub-00_task-go_contrast-a_stat-t_statmap.nii.gz"
+        write_map(f, np.full((41, 48, 40), 10.0 + k, np.float32), np.diag([4.0, 4, 4, 1]))
+        mapstore.index([ds], store, progress=False)
+        mapstore.build_features(store, grid="MNI152-3mm", name="s", progress=False)
+        mapstore.label(store, vocab2 if k % 2 == 0 else vocab)
+    # the old reader still answers from what it opened: 4 maps, its labels, its rows' bytes
+    assert reader.sql("SELECT count(*) FROM maps").column(0)[0].as_py() == 4
+    assert reader.sql("SELECT DISTINCT concept FROM labels").column(0).to_pylist() == ["x"]
+    changed = reader.sql("SELECT map_id FROM maps WHERE sub = '00'").column(0)[0].as_py()
+    same = [i for i, m in enumerate(ids) if m != changed]
+    np.testing.assert_array_equal(mapstore.open(store).features("s").matrix([ids[i] for i in same]), want_X[same])
+    np.testing.assert_array_equal(reader.features("s").matrix(ids), want_X)  # the rebuilt row too, as it was
+    fresh = mapstore.open(store)
+    assert fresh.sql("SELECT count(*) FROM maps").column(0)[0].as_py() == 7
+    assert fresh.sql("SELECT DISTINCT concept FROM labels").column(0).to_pylist() == ["y"]
+    # once closed, the next write collects what only that reader held
+    old_catalog = reader.catalog.head.catalog
+    reader.close()
+    fresh.close()
+    mapstore.label(store, vocab2)
+    mapstore.index([ds], store, progress=False)
+    mapstore.index([ds], store, progress=False)
+    assert not (store / old_catalog).exists()
+
+
+def test_a_reader_of_a_process_that_ended_holds_nothing(tmp_path):
+    ds, store, vocab, vocab2 = _tree(tmp_path)
+    code = f"import mapstore, os; s = mapstore.open({str(store)!r}); os._exit(0)"  # dies without cleanup
+    subprocess.run([sys.executable, "-c", code], check=True)
+    leases = list((store / ".readers").glob("*.json"))
+    assert len(leases) == 1 and json.loads(leases[0].read_text())["catalog"]
+    mapstore.label(store, vocab2)
+    assert not list((store / ".readers").glob("*.json"))  # the dead process's lease is gone
+
+
+def test_a_reader_without_a_lease_gets_a_clear_stale_error(tmp_path):
+    ds, store, vocab, vocab2 = _tree(tmp_path)
+    reader = mapstore.open(store)
+    reader.close()  # as on a read-only store, where no lease can be written
+    for k in range(2):
+        write_map(ds / f"sub-1{k}" / f"sub-1{k}_task-go_contrast-a_stat-t_statmap.nii.gz")
+        mapstore.index([ds], store, progress=False)
+    with pytest.raises(StaleSnapshot, match=r"the store changed since it was opened .* open it again with "
+                                             r"mapstore.open\(\)"):
+        reader.sql("SELECT count(*) FROM maps")
