@@ -8,11 +8,13 @@ the crawl: it becomes a row of ``problems``.
 
 from __future__ import annotations
 
+import errno
 import hashlib
 import json
 import math
 import os
 import re
+import shutil
 import sys
 import time
 from dataclasses import dataclass, field
@@ -36,7 +38,7 @@ from .discover import (
 )
 from .params import resolve_jobs
 from .pool import process_pool
-from .errors import HeaderError, NoDatasetsFound, ParameterError
+from .errors import HeaderError, NoDatasetsFound, ParameterError, StoreFull
 from .hashing import digest_file
 from .header import NIFTI1_SIZE, NIFTI2_SIZE, HeaderFacts, header_prefix, parse_header
 from .store import (
@@ -595,11 +597,21 @@ def index(
 
         snap = new_snapshot_id()
         snap_dir = store_path / "catalog" / snap
-        snap_dir.mkdir(parents=True)
-        write_parquet_atomic(maps_table, snap_dir / "maps.parquet")
-        write_parquet_atomic(pa.Table.from_pylist(ds_rows, schema=DATASETS_SCHEMA), snap_dir / "datasets.parquet")
-        write_parquet_atomic(_participants_table(participant_rows), snap_dir / "participants.parquet")
-        write_parquet_atomic(pa.Table.from_pylist(prob_rows, schema=PROBLEMS_SCHEMA), snap_dir / "problems.parquet")
+        try:
+            snap_dir.mkdir(parents=True)
+            write_parquet_atomic(maps_table, snap_dir / "maps.parquet")
+            write_parquet_atomic(pa.Table.from_pylist(ds_rows, schema=DATASETS_SCHEMA),
+                                 snap_dir / "datasets.parquet")
+            write_parquet_atomic(_participants_table(participant_rows), snap_dir / "participants.parquet")
+            write_parquet_atomic(pa.Table.from_pylist(prob_rows, schema=PROBLEMS_SCHEMA),
+                                 snap_dir / "problems.parquet")
+        except OSError as exc:
+            shutil.rmtree(snap_dir, ignore_errors=True)
+            if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+                raise StoreFull(f"{store_path}: no space left on the device (while writing the catalog); the "
+                                "store still serves what it served before. Free space, or move the store, and "
+                                "run the command again") from None
+            raise
         head.catalog = f"catalog/{snap}"
         commit_head(store_path, head, {"event": "index", "roots": [str(r) for r in roots],
                                        "maps": maps_table.num_rows, "snapshot": snap})

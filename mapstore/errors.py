@@ -19,6 +19,7 @@ __all__ = [
     "StoreCorrupt",
     "StoreUnwritable",
     "StaleSnapshot",
+    "StoreFull",
     "QueryError",
     "RulesError",
     "VocabularyError",
@@ -74,6 +75,10 @@ class StoreBusy(MapstoreError, BlockingIOError):
 
 class StoreCorrupt(MapstoreError, OSError):
     """The store's files are inconsistent (a file is missing or unreadable)."""
+
+
+class StoreFull(MapstoreError, OSError):
+    """The store's device is full; the write was undone and the store serves its previous state."""
 
 
 class StaleSnapshot(MapstoreError, FileNotFoundError):

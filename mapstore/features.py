@@ -16,6 +16,8 @@ store's atomic HEAD replacement.
 
 from __future__ import annotations
 
+import contextlib
+import errno
 import hashlib
 import json
 import os
@@ -35,7 +37,7 @@ import pyarrow.parquet as pq
 from . import __version__
 from .params import positive_int, resolve_jobs
 from .pool import process_pool
-from .errors import FeatureError, GridError, MapstoreError, ParameterError, QueryError
+from .errors import FeatureError, GridError, MapstoreError, ParameterError, QueryError, StoreFull
 from .grid import (
     METHODS,
     Mask,
@@ -275,7 +277,9 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
     box, local = crop_grid(b.grid, indices)  # resample the mask's bounding box only
     shard_path = os.path.join(b.set_dir, "shards", b.shard)
     tmp = shard_path + f".{uuid.uuid4().hex}.tmp"
-    arr = np.lib.format.open_memmap(tmp, mode="w+", dtype=np.float32, shape=(len(b.items), indices.size))
+    # built in memory and written with write(): a full disk is then an OSError (ENOSPC), where
+    # writing through a memory map would kill the process with SIGBUS
+    arr = np.empty((len(b.items), indices.size), dtype=np.float32)
     rows: list[dict[str, Any]] = []
     now = time.strftime("%Y-%m-%dT%H:%M:%S")
     masks: dict[str, np.ndarray] = {}
@@ -300,9 +304,18 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
                      "vmean": float(vals.mean(dtype=np.float64)) if vals.size else None,
                      "missing_from": missing_from, "p_clipped": clipped,
                      "sketch": sketcher.sketch(vec[None, :])[0].tobytes()})
-    arr.flush()
-    del arr
-    os.replace(tmp, shard_path)
+    try:
+        with open(tmp, "wb", buffering=0) as fh:
+            np.lib.format.write_array_header_1_0(fh, {"descr": "<f4", "fortran_order": False, "shape": arr.shape})
+            view = memoryview(arr).cast("B")
+            while view:  # plain writes: a full disk raises ENOSPC (numpy's tofile loses the errno)
+                view = view[fh.write(view):]
+            os.fsync(fh.fileno())
+        os.replace(tmp, shard_path)
+    except BaseException:
+        with contextlib.suppress(OSError):
+            os.unlink(tmp)
+        raise
     return {"rows": rows, "problems": problems}
 
 
@@ -591,18 +604,28 @@ def build_features(
         new_rows: list[dict[str, Any]] = []
         problems: list[dict[str, Any]] = list(coverage_problems)
         paths: dict[str, int] = {}
-        for res in _execute(batches, jobs, scheduler, progress, f"features {name}"):
-            new_rows += res["rows"]
-            problems += res["problems"]
-            for r in res["rows"]:
-                paths[r["resample_path"]] = paths.get(r["resample_path"], 0) + 1
+        snap = new_snapshot_id()
+        created = [set_dir / "shards" / b.shard for b in batches] + \
+            [set_dir / f"{kind}-{snap}.parquet" for kind in ("rows", "problems", "copies")]
+        try:
+            for res in _execute(batches, jobs, scheduler, progress, f"features {name}"):
+                new_rows += res["rows"]
+                problems += res["problems"]
+                for r in res["rows"]:
+                    paths[r["resample_path"]] = paths.get(r["resample_path"], 0) + 1
+        except OSError as exc:
+            _raise_if_full(exc, store_path, created)
+            raise
         rows_table = pa.concat_tables([kept, pa.Table.from_pylist(new_rows, schema=ROWS_SCHEMA)])
         rows_table = rows_table.sort_by([("map_id", "ascending")])
-        snap = new_snapshot_id()
         rows_rel = f"features/{name}/rows-{snap}.parquet"
         probs_rel = f"features/{name}/problems-{snap}.parquet"
-        write_parquet_atomic(rows_table, store_path / rows_rel)
-        write_parquet_atomic(pa.Table.from_pylist(problems, schema=FPROBLEMS_SCHEMA), store_path / probs_rel)
+        try:
+            write_parquet_atomic(rows_table, store_path / rows_rel)
+            write_parquet_atomic(pa.Table.from_pylist(problems, schema=FPROBLEMS_SCHEMA), store_path / probs_rel)
+        except OSError as exc:
+            _raise_if_full(exc, store_path, created)
+            raise
         # copies among all the set's rows, from the sketches (new shards are in place already)
         copies_rel = f"features/{name}/copies-{snap}.parquet"
         entry = {"dir": f"features/{name}", "rows": rows_rel, "problems": probs_rel}
@@ -611,7 +634,11 @@ def build_features(
             copies = pq.read_table(store_path / existing["copies"])  # same rows: same pairs
         else:
             copies = find_copies(FeatureSet(store_path, name, entry))
-        write_parquet_atomic(copies, store_path / copies_rel)
+        try:
+            write_parquet_atomic(copies, store_path / copies_rel)
+        except OSError as exc:
+            _raise_if_full(exc, store_path, created)
+            raise
         head.features[name] = {**entry, "copies": copies_rel, "n_rows": rows_table.num_rows,
                                "spec_id": spec["spec_id"], "catalog": head.catalog}
         if head.default_features is None or name == DEFAULT_SET:
@@ -631,6 +658,18 @@ def build_features(
                            f". The failures are recorded: mapstore sql --store {store_path} "
                            "\"SELECT * FROM feature_problems\"", report=report)
     return report
+
+
+def _raise_if_full(exc: OSError, store: Path, created: list[Path]) -> None:
+    """On a full disk, remove what this run wrote and say so (the store still serves its last state)."""
+    if exc.errno not in (errno.ENOSPC, errno.EDQUOT):
+        return
+    for p in created:
+        with contextlib.suppress(OSError):
+            p.unlink()
+    raise StoreFull(f"{store}: no space left on the device (while building features); the store still serves "
+                    "what it served before, and nothing of this run was kept. Free space, or move the store, "
+                    "and run the command again") from None
 
 
 def _item(r: dict[str, Any], key: str) -> _Item:

@@ -279,7 +279,8 @@ def read_volume(path: str, expect_sha256: str | None = None, dtype=np.float32) -
     slope, inter = facts.scl_slope, facts.scl_inter
     # nifti1.h: scaling applies when scl_slope is non-zero (and finite)
     if np.isfinite(slope) and slope != 0 and (slope != 1 or inter != 0):
-        vol = vol * vol.dtype.type(slope) + vol.dtype.type(inter if np.isfinite(inter) else 0)
+        with np.errstate(over="ignore", invalid="ignore"):  # a wild slope gives inf, as the header says
+            vol = vol * vol.dtype.type(slope) + vol.dtype.type(inter if np.isfinite(inter) else 0)
     return vol, facts
 
 

@@ -89,3 +89,54 @@ def test_a_reader_without_a_lease_gets_a_clear_stale_error(tmp_path):
     with pytest.raises(StaleSnapshot, match=r"the store changed since it was opened .* open it again with "
                                              r"mapstore.open\(\)"):
         reader.sql("SELECT count(*) FROM maps")
+
+
+def _mount_tmpfs(where, size: str) -> bool:
+    import os
+
+    if os.geteuid() != 0:
+        return False
+    where.mkdir(parents=True, exist_ok=True)
+    return subprocess.run(["mount", "-t", "tmpfs", "-o", f"size={size}", "tmpfs", str(where)],
+                          capture_output=True).returncode == 0
+
+
+def test_a_full_disk_during_features_is_clear_and_undone(tmp_path):
+    from mapstore.errors import StoreFull
+
+    mnt = tmp_path / "small"
+    if not _mount_tmpfs(mnt, "12m"):
+        pytest.skip("needs root and a tmpfs mount (CI runs as root)")
+    try:
+        ds, _, _, _ = _tree(tmp_path)
+        rng = np.random.default_rng(9)
+        aff = np.diag([4.0, 4, 4, 1])
+        aff[:3, 3] = [-80, -112, -60]
+        for i in range(4, 24):  # 24 maps x 69,765 voxels x 4 bytes: ~6.7 MB of shards
+            write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-go_contrast-a_stat-t_statmap.nii.gz",
+                      rng.normal(size=(41, 48, 40)).astype(np.float32), aff)
+        store = mnt / "store"
+        mapstore.index([ds], store, progress=False)
+        mapstore.build_features(store, grid="MNI152-3mm", name="small", where="m.sub < '03'", jobs=1,
+                                progress=False)
+        head_before = (store / "HEAD").read_text()
+        filler = mnt / "filler"
+        filler.write_bytes(b"\0" * (8 * 2 ** 20))  # leaves less than the new set needs
+        with pytest.raises(StoreFull) as err:
+            mapstore.build_features(store, grid="MNI152-3mm", name="big", jobs=1, progress=False)
+        assert str(err.value).startswith(f"{store}: no space left on the device (while building features)")
+        assert (store / "HEAD").read_text() == head_before  # the previous state is still served
+        assert not list((store / "features" / "big" / "shards").glob("*"))  # nothing partial kept
+        st = mapstore.open(store)
+        assert st.feature_sets() == ["small"] and st.features("small").matrix().shape[0] == 3
+        st.close()
+        filler.unlink()
+        r = mapstore.build_features(store, grid="MNI152-3mm", name="big", jobs=1, progress=False)
+        assert r.built == 24 and r.failed == 0
+        clean = tmp_path / "clean"
+        mapstore.index([ds], clean, progress=False)
+        mapstore.build_features(clean, grid="MNI152-3mm", name="big", jobs=1, progress=False)
+        a, b = mapstore.open(store).features("big"), mapstore.open(clean).features("big")
+        np.testing.assert_array_equal(a.matrix(a.map_ids), b.matrix(a.map_ids))
+    finally:
+        subprocess.run(["umount", "-l", str(mnt)], capture_output=True)
