@@ -162,7 +162,12 @@ def _check_store(p: Path) -> None:
 @contextlib.contextmanager
 def write_lock(path: Path) -> Iterator[None]:
     """Hold the store's single-writer lock, failing at once if another process has it."""
-    lock = open(path / ".lock", "a+")
+    try:
+        lock = open(path / ".lock", "a+")
+    except OSError as exc:
+        raise StoreUnwritable(f"{path}: this store cannot be written from here ({exc.strerror}); reading it "
+                              "(sql, check, export to a folder of yours, verify) works. Ask whoever owns it to "
+                              "run this, or copy the store to a folder you can write") from None
     try:
         try:
             fcntl.flock(lock.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)

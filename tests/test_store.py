@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import os
 import subprocess
 import sys
 
@@ -140,3 +141,31 @@ def test_a_full_disk_during_features_is_clear_and_undone(tmp_path):
         np.testing.assert_array_equal(a.matrix(a.map_ids), b.matrix(a.map_ids))
     finally:
         subprocess.run(["umount", "-l", str(mnt)], capture_output=True)
+
+
+def test_a_read_only_store_can_be_read_and_refuses_writers_in_one_line(tmp_path, capsys):
+    from mapstore.cli import main
+
+    ds, store, vocab, vocab2 = _tree(tmp_path)
+    ro = tmp_path / "ro"
+    ro.mkdir()
+    if os.geteuid() != 0 or subprocess.run(["mount", "--bind", str(store), str(ro)], capture_output=True).returncode:
+        pytest.skip("needs root to bind-mount the store read-only (CI runs as root)")
+    try:
+        assert subprocess.run(["mount", "-o", "remount,bind,ro", str(ro)], capture_output=True).returncode == 0
+        assert main(["sql", "--store", str(ro), "SELECT count(*) AS n FROM maps"]) == 0
+        assert main(["check", "--store", str(ro), "--features", "s"]) in (0, 3)
+        out = tmp_path / "mine" / "export"
+        out.parent.mkdir()
+        assert main(["export", "--store", str(ro), "--features", "s", "--out", str(out), "--group-by", "subject",
+                     "--scheme", "group-kfold:2"]) == 0
+        assert main(["verify", str(out)]) == 0
+        capsys.readouterr()
+        for argv in (["index", str(ds), "--store", str(ro)], ["features", "--store", str(ro)],
+                     ["labels", "--store", str(ro), "--vocab", str(vocab2)]):
+            assert main(argv) == 1
+            err = capsys.readouterr().err
+            assert err.startswith(f"error: {ro}: this store cannot be written from here (Read-only file system)")
+            assert err.count("\n") == 1 and "Traceback" not in err
+    finally:
+        subprocess.run(["umount", "-l", str(ro)], capture_output=True)
