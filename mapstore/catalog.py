@@ -39,7 +39,7 @@ from .discover import (
 from .params import resolve_jobs
 from .pool import process_pool
 from .errors import HeaderError, NoDatasetsFound, ParameterError, StoreFull
-from .hashing import digest_file
+from .hashing import ReadDeadline, ReadTimeout, digest_file
 from .header import NIFTI1_SIZE, NIFTI2_SIZE, HeaderFacts, header_prefix, parse_header
 from .store import (
     DATASETS_SCHEMA,
@@ -208,6 +208,7 @@ class _Unit:
     rules: NameRules
     overrides: MetadataOverrides
     prev: pa.Table | None  # this unit's rows of the previous snapshot, for incremental runs
+    read_timeout: float | None = None
 
 
 @dataclass
@@ -249,6 +250,11 @@ def _run_unit(unit: _Unit) -> _UnitResult:
     Header facts and sidecar metadata repeat across a study's maps, so each distinct
     value is built once and the columns are gathered with one Arrow ``take``.
     """
+    with ReadDeadline(unit.read_timeout) as deadline:
+        return _crawl_unit(unit, deadline)
+
+
+def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
     ds = unit.ds
     parser = unit.parser
     maps, jsons, problems = walk_dataset(ds, parser, unit.rules, unit.top, unit.root_maps)
@@ -279,7 +285,14 @@ def _run_unit(unit: _Unit) -> _UnitResult:
             hidx.append(-1 - old)  # a previous row: resolved against the previous table
             unchanged += 1
         else:
-            res = probe_file(m.path, cache)
+            try:
+                with deadline.armed():
+                    res = probe_file(m.path, cache)
+            except ReadTimeout:
+                res = Problem(m.path, "read-timeout", f"reading the file did not finish within {unit.read_timeout:g} s "
+                              "(a stalled network or FUSE mount, or a file fetched on access?); it was skipped",
+                              "make the file readable (fetch it, check the mount), then index again; "
+                              "--read-timeout sets the deadline")
             if isinstance(res, Problem):
                 problems.append(Problem(res.path, res.code, res.reason, res.remedy, res.level,
                                         ds.key, res.stage))
@@ -435,16 +448,17 @@ def _assemble(cols: dict[str, list[Any]], headers: list[dict[str, Any]], hidx: l
 
 
 def _units(ds: DatasetInfo, parser: EntityParser, by_sub: dict[str, dict[str, Any]], rules: NameRules,
-           over: MetadataOverrides, prev: pa.Table | None, jobs: int) -> list[_Unit]:
+           over: MetadataOverrides, prev: pa.Table | None, jobs: int, read_timeout: float | None = None
+           ) -> list[_Unit]:
     if jobs == 1:
         return [_Unit(ds, parser, None, True, by_sub, rules, over,
-                      _previous_subset(prev, ds.key, None, True))]
+                      _previous_subset(prev, ds.key, None, True), read_timeout)]
     tops = top_folders(ds)
     # one part per worker, finer for big datasets (progress, balance): ~25 top folders per part
     n_parts = min(len(tops), max(jobs, len(tops) // 25)) or 1
     parts = [tops[i::n_parts] for i in range(n_parts)]
     return [_Unit(ds, parser, part, i == 0, by_sub, rules, over,
-                  _previous_subset(prev, ds.key, part, i == 0))
+                  _previous_subset(prev, ds.key, part, i == 0), read_timeout)
             for i, part in enumerate(parts)]
 
 
@@ -457,6 +471,7 @@ def index(
     jobs: int | None = None,
     prune: bool = False,
     progress: bool | None = None,
+    read_timeout: float | None = 60.0,
 ) -> IndexReport:
     """Crawl derivative datasets and publish a new catalog snapshot in ``store``.
 
@@ -477,6 +492,10 @@ def index(
         Drop datasets indexed by earlier runs that are not under these roots.
     progress : bool, optional
         Show a progress bar (default: when standard error is a terminal).
+    read_timeout : float or None, default=60
+        Seconds reading one file may take before it is skipped as a ``read-timeout`` problem (a
+        stalled mount must not stall the crawl); None waits forever.  Enforced in the
+        main thread of the crawling processes.
 
     Returns
     -------
@@ -487,6 +506,8 @@ def index(
     if not roots:
         raise ParameterError("index needs at least one ROOT folder")
     jobs = resolve_jobs(jobs)
+    if read_timeout is not None and not (isinstance(read_timeout, (int, float)) and read_timeout > 0):
+        raise ParameterError(f"read_timeout must be a positive number of seconds or None, got {read_timeout!r}")
     name_rules = NameRules.load(rules)
     meta_over = MetadataOverrides.load(overrides)
     store_path = Path(store).expanduser().absolute()
@@ -548,7 +569,7 @@ def index(
                        **{k: v for k, v in r.items() if k != "participant_id"}}
                 by_sub[sub] = rec
                 participant_rows.append(rec)
-            units += _units(ds, parser, by_sub, name_rules, meta_over, prev, jobs)
+            units += _units(ds, parser, by_sub, name_rules, meta_over, prev, jobs, read_timeout)
 
         results: list[_UnitResult] = []
         bar = None

@@ -105,9 +105,12 @@ def write_table(table, fmt: str, out: str | None) -> None:
               help="Mapping file setting study, site and lab per dataset or subject.")
 @click.option("--jobs", type=click.IntRange(min=1), default=None, help="Processes (default: all cores).")
 @click.option("--prune", is_flag=True, help="Drop datasets from earlier runs not under these ROOTs.")
-def index_cmd(roots, store, rules, origins, jobs, prune) -> None:
+@click.option("--read-timeout", type=click.FloatRange(min=0, min_open=True), default=60.0, show_default=True,
+              help="Seconds reading one file may take before it is skipped (reported as read-timeout).")
+def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout) -> None:
     """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them)."""
-    report = mapstore.index(roots, store, rules=list(rules) or None, overrides=origins, jobs=jobs, prune=prune)
+    report = mapstore.index(roots, store, rules=list(rules) or None, overrides=origins, jobs=jobs, prune=prune,
+                            read_timeout=read_timeout)
     click.echo(report.summary())
 
 

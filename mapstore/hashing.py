@@ -2,10 +2,19 @@
 
 from __future__ import annotations
 
+import contextlib
 import hashlib
+import os
+import signal
+import threading
+import time
 from dataclasses import dataclass
+from typing import Iterator
 
-__all__ = ["FileDigest", "digest_file", "sha256_file"]
+__all__ = ["FileDigest", "digest_file", "sha256_file", "ReadDeadline", "ReadTimeout"]
+
+# test hook: a read of this exact path blocks (as on a stalled network or FUSE mount)
+_STALL_ENV = "MAPSTORE_TEST_STALL_READ"
 
 BLOCK = 1 << 20
 # the first read is small: asking for 1 MiB makes Python allocate (and the kernel map) a 1 MiB
@@ -31,6 +40,8 @@ def digest_file(path: str, head_bytes: int = 4096) -> FileDigest:
     h = hashlib.sha256()
     n = 0
     want = max(head_bytes, FIRST)
+    if os.environ.get(_STALL_ENV) == path:
+        time.sleep(10 ** 7)
     with open(path, "rb", buffering=0) as fh:
         first = fh.read(want)
         h.update(first)
@@ -52,3 +63,49 @@ def sha256_file(path: str) -> str:
     return digest_file(path, 0).sha256
 
 
+
+
+class ReadTimeout(Exception):
+    """A read did not finish before its deadline (raised by :class:`ReadDeadline`)."""
+
+
+class ReadDeadline:
+    """Deadlines for reads in this process's main thread, by ``SIGALRM``.
+
+    A read that blocks (a stalled network or FUSE mount, a file fetched on access) is
+    interrupted after ``seconds`` and :class:`ReadTimeout` raised in its place, so one such
+    file cannot stall a crawl.  Installed once per unit of work (``with ReadDeadline(s) as
+    dl``), armed per file (``with dl.armed(): ...``): two ``setitimer`` calls a file.  Outside
+    the main thread (where signals cannot be delivered) it does nothing.
+    """
+
+    def __init__(self, seconds: float | None) -> None:
+        self.seconds = seconds
+        self._active = bool(seconds) and hasattr(signal, "setitimer") and \
+            threading.current_thread() is threading.main_thread()
+        self._old = None
+
+    def __enter__(self) -> "ReadDeadline":
+        if self._active:
+            self._old = signal.signal(signal.SIGALRM, self._fire)
+        return self
+
+    def __exit__(self, *exc) -> None:
+        if self._active:
+            signal.setitimer(signal.ITIMER_REAL, 0)
+            signal.signal(signal.SIGALRM, self._old or signal.SIG_DFL)
+
+    @staticmethod
+    def _fire(signum, frame) -> None:
+        raise ReadTimeout()
+
+    @contextlib.contextmanager
+    def armed(self) -> Iterator[None]:
+        if not self._active:
+            yield
+            return
+        signal.setitimer(signal.ITIMER_REAL, self.seconds)
+        try:
+            yield
+        finally:
+            signal.setitimer(signal.ITIMER_REAL, 0)

@@ -335,3 +335,25 @@ def test_special_files_are_reported_not_opened(tmp_path):
     assert probs["participants.tsv"]["code"] == "not-a-regular-file"
     assert mapstore.open(store).sql("SELECT relpath FROM maps").column(0).to_pylist() == [
         str(good.relative_to(ds))]
+
+
+@pytest.mark.parametrize("jobs", [1, 2])
+def test_a_read_that_stalls_does_not_stall_the_crawl(tmp_path, jobs):
+    # test hook: the read of one chosen regular file blocks (as on a stalled network or FUSE mount)
+    import time
+
+    ds = make_derivative(tmp_path / "d")
+    paths = [write_map(ds / f"sub-0{i}" / f"sub-0{i}_task-go_contrast-a_stat-t_statmap.nii.gz") for i in range(3)]
+    store = tmp_path / "store"
+    env = {**os.environ, "MAPSTORE_TEST_STALL_READ": str(paths[1])}
+    t0 = time.perf_counter()
+    out = subprocess.run([sys.executable, "-m", "mapstore.cli", "index", str(ds), "--store", str(store),
+                          "--jobs", str(jobs), "--read-timeout", "2"], env=env, capture_output=True, text=True,
+                         timeout=120)
+    took = time.perf_counter() - t0
+    assert out.returncode == 0, out.stderr
+    probs = mapstore.open(store).sql("SELECT * FROM problems WHERE code = 'read-timeout'").to_pylist()
+    assert [p["path"] for p in probs] == [str(paths[1])]
+    assert probs[0]["reason"].startswith("reading the file did not finish within 2 s")
+    assert sorted(mapstore.open(store).sql("SELECT sub FROM maps").column(0).to_pylist()) == ["00", "02"]
+    assert took < 60
