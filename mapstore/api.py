@@ -76,6 +76,7 @@ class Store:
 
     def features(self, name: str | None = None) -> FeatureSet:
         """A feature set by name; with no name, the default (or only) set."""
+        self.catalog.require_catalog()
         head = self.catalog.head
         if name is None:
             name = head.default_features

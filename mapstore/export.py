@@ -37,6 +37,7 @@ from . import __version__
 from .copies import NEAR_COPY_R
 from .errors import ExportError, ParameterError
 from .query import Selection, parse_scheme
+from .store import checkpoint
 
 __all__ = ["ExportReport", "VerifyReport", "export_selection", "verify", "json_schemas"]
 
@@ -112,6 +113,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.tmp"
     tmp.mkdir()
+    checkpoint()
     try:
         fs = sel.feature_set
         ids = sel.map_ids
@@ -144,6 +146,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
                 x_hashes.extend(_row_hash(r) for r in out_block)
             return out_block
 
+        checkpoint()
         buf = np.empty((min(BLOCK_ROWS, max(n, 1)), nv), dtype=np.float32)  # one reused block buffer
         if fmt == "npy":
             # a plain file written through two reused buffers, reading the next block while the
@@ -160,16 +163,22 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
                     if k + 1 < len(starts):
                         nxt = starts[k + 1]
                         pending = reader.submit(fs.read_into, ids[nxt:nxt + BLOCK_ROWS], spare)
+                    checkpoint()
                     view = memoryview(shape(block)).cast("B")
                     while view:
                         view = view[fh.write(view):]
                     buf, spare = spare, buf
+            checkpoint()
             if sel.y is not None:
                 np.save(tmp / "y.npy", np.asarray(sel.y, dtype=str))
+                checkpoint()
             if sel.Y is not None:
                 np.save(tmp / "Y.npy", sel.Y)
+                checkpoint()
             np.save(tmp / "groups.npy", np.asarray(sel.groups, dtype=str))
+            checkpoint()
             pq.write_table(meta_t, tmp / "meta.parquet")
+            checkpoint()
         else:
             writer = None
             try:
@@ -194,19 +203,23 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
             (tmp / "concepts.json").write_text(json.dumps(sel.concepts))
         # flat C-order grid index of each column of X: enough to paint a row back onto the grid
         np.save(tmp / "voxels.npy", fs.mask_indices[voxels].astype(np.int64))
+        checkpoint()
         manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, row_hashes, x_hashes, fmt)
         manifest["near_copy_r"] = NEAR_COPY_R if near_copy_r is None else near_copy_r
         # the data files are checked row by row against row_sha256 instead of hashed whole
         manifest["files"] = {p.name: _sha256_file(p) for p in sorted(tmp.iterdir())
                              if p.name not in DATA_FILES}
         (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1, sort_keys=True, default=str))
+        checkpoint()
         if out.exists():
             old = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.old"
             os.replace(out, old)
+            checkpoint()
             os.replace(tmp, out)
             shutil.rmtree(old, ignore_errors=True)
         else:
             os.replace(tmp, out)
+        checkpoint()
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise

@@ -58,6 +58,7 @@ from .store import (
     FPROBLEMS_SCHEMA,
     ROWS_SCHEMA,
     Catalog,
+    checkpoint,
     commit_head,
     conform,
     leased_files,
@@ -311,7 +312,9 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
             while view:  # plain writes: a full disk raises ENOSPC (numpy's tofile loses the errno)
                 view = view[fh.write(view):]
             os.fsync(fh.fileno())
+        checkpoint()
         os.replace(tmp, shard_path)
+        checkpoint()
     except BaseException:
         with contextlib.suppress(OSError):
             os.unlink(tmp)

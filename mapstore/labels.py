@@ -400,8 +400,8 @@ def label_store(store: str | os.PathLike[str], vocabulary: str | os.PathLike[str
     The vocabulary file is copied into the store, so the labels stay reproducible
     (and are re-derived for a newer catalog) even if the file changes later.
     """
-    from .store import (Catalog, commit_head, leased_files, new_snapshot_id, read_head, write_lock,
-                        write_parquet_atomic)
+    from .store import (Catalog, commit_head, leased_files, new_snapshot_id, read_head, write_json_atomic,
+                        write_lock, write_parquet_atomic)
 
     cat = Catalog(store)
     cat.require_catalog()  # the store first: a vocabulary cannot help an empty store
@@ -416,8 +416,8 @@ def label_store(store: str | os.PathLike[str], vocabulary: str | os.PathLike[str
         rel = f"labels/labels-{snap}.parquet"
         write_parquet_atomic(table, cat.path / rel)
         copy = folder / f"vocabulary-{vocab.sha256[:16]}.json"
-        if not copy.exists():
-            copy.write_text(json.dumps(vocab.document, indent=1, sort_keys=True))
+        if not copy.exists():  # written atomically: a crash must not leave half a vocabulary behind
+            write_json_atomic(copy, vocab.document)
         old = head.labels
         head.labels = {"table": rel, "vocabulary": vocab.name, "version": vocab.version, "sha256": vocab.sha256,
                        "source": vocab.source, "copy": str(copy.relative_to(cat.path)),

@@ -46,6 +46,7 @@ __all__ = [
     "new_snapshot_id",
     "write_parquet_atomic",
     "write_json_atomic",
+    "checkpoint",
     "Catalog",
     "conform",
     "ensure_store",
@@ -132,9 +133,14 @@ def ensure_store(path: str | os.PathLike[str]) -> Path:
     marker = p / "store.json"
     if p.exists() and not p.is_dir():
         raise StoreCorrupt(f"{p}: exists and is not a folder; choose another --store path")
-    if p.is_dir() and any(p.iterdir()) and not marker.exists():
-        raise StoreCorrupt(f"{p}: folder exists, is not empty and is not a mapstore store; "
-                           "choose an empty or new folder for --store")
+    if p.is_dir() and not marker.exists():
+        # a creation killed before its marker was in place leaves only its temporary marker
+        for left in p.glob(".store.json.*.tmp"):
+            with contextlib.suppress(OSError):
+                left.unlink()
+        if any(p.iterdir()):
+            raise StoreCorrupt(f"{p}: folder exists, is not empty and is not a mapstore store; "
+                               "choose an empty or new folder for --store")
     try:
         p.mkdir(parents=True, exist_ok=True)
         if not marker.exists():
@@ -201,22 +207,46 @@ def _fsync_dir(path: Path) -> None:
             os.close(fd)
 
 
+def checkpoint() -> None:
+    """A point where a crash must leave the store consistent; a test hook can kill the process here.
+
+    With ``MAPSTORE_TEST_KILL_COUNTER=FILE`` and ``MAPSTORE_TEST_KILL_AFTER=N`` set, every
+    checkpoint (in any process) adds a byte to FILE and the N-th one sends this process SIGKILL.
+    Unset, it costs one environment lookup.
+    """
+    counter = os.environ.get("MAPSTORE_TEST_KILL_COUNTER")
+    if not counter:
+        return
+    with open(counter, "ab") as fh:
+        fh.write(b".")
+    if os.path.getsize(counter) >= int(os.environ.get("MAPSTORE_TEST_KILL_AFTER", "0") or 0) > 0:
+        import signal
+
+        os.kill(os.getpid(), signal.SIGKILL)
+
+
 def write_json_atomic(path: Path, doc: Any) -> None:
+    checkpoint()
     tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}.tmp")
     with open(tmp, "w") as fh:
         json.dump(doc, fh, indent=1, sort_keys=True, default=str)
         fh.flush()
         os.fsync(fh.fileno())
+    checkpoint()
     os.replace(tmp, path)
     _fsync_dir(path.parent)
+    checkpoint()
 
 
 def write_parquet_atomic(table: pa.Table, path: Path) -> None:
+    checkpoint()
     tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}.tmp")
     pq.write_table(table, tmp, compression="zstd")
     with open(tmp, "rb") as fh:
         os.fsync(fh.fileno())
+    checkpoint()
     os.replace(tmp, path)
+    checkpoint()
 
 
 # --- reader leases --------------------------------------------------------------------------
@@ -297,6 +327,7 @@ def commit_head(path: Path, head: Head, event: dict[str, Any]) -> None:
     head.history.append({"time": time.strftime("%Y-%m-%dT%H:%M:%S"), **event})
     write_json_atomic(path / "HEAD", head.to_json())
     _collect_garbage(path, head)
+    checkpoint()
 
 
 def _collect_garbage(path: Path, head: Head) -> None:

@@ -93,6 +93,17 @@ def test_ordinary_mistakes_are_one_line_without_traceback(demo_store, tmp_path, 
         (["check", "--store", str(empty)], 1, "the store has no catalog yet; run 'mapstore index ROOT --store"),
         (["labels", "--store", str(empty), "--vocab", str(grid)], 1, "the store has no catalog yet"),
         (["features", "--store", str(empty)], 1, "the store has no catalog yet"),
+        (["export", "--store", str(empty), "--out", str(tmp_path / "e")], 1, "the store has no catalog yet"),
+        (["sql", "--store", str(tmp_path / "nowhere"), "SELECT 1"], 1, "no such store"),
+        (["export", "--store", str(tmp_path / "nowhere"), "--out", str(tmp_path / "e")], 1, "no such store"),
+        (["check", "--store", str(tmp_path / "nowhere")], 1, "no such store"),
+        (["verify", str(tmp_path / "nothing")], 2, "does not exist"),
+        (["index", str(tmp_path / "missing-root"), "--store", str(tmp_path / "s2")], 1,
+         "no BIDS derivative dataset found"),
+        (["sql", "--store", str(demo_store), "SELEC nonsense"], 1, "SQL does not parse"),
+        (["labels", "--store", str(demo_store), "--vocab", str(tmp_path / "none.yaml")], 1, "file not found"),
+        (["index", str(src), "--store", str(tmp_path / "s3"), "--rules", str(grid)], 1,
+         "expected an object with a 'rules' list"),
     ]
     for argv, code, text in cases:
         assert main(argv) == code, argv
