@@ -104,7 +104,7 @@ def map_id_for(dataset_key: str, relpath: str) -> str:
     return hashlib.sha256(f"{dataset_key}\n{relpath}".encode()).hexdigest()[:16]
 
 
-def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None
+def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None, progress=None
                ) -> tuple[dict[str, Any], str, int] | Problem:
     """Hash one file and parse its header from the same read.
 
@@ -112,7 +112,7 @@ def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None
     through ``cache``; do not modify), the SHA-256 and the size, or a Problem.
     """
     try:
-        dig = digest_file(path)
+        dig = digest_file(path, progress=progress)
     except FileNotFoundError:
         return Problem(path, "missing-file", "file vanished during the crawl", "index again")
     except OSError as exc:
@@ -287,9 +287,9 @@ def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
         else:
             try:
                 with deadline.armed():
-                    res = probe_file(m.path, cache)
+                    res = probe_file(m.path, cache, deadline.progress)
             except ReadTimeout:
-                res = Problem(m.path, "read-timeout", f"reading the file did not finish within {unit.read_timeout:g} s "
+                res = Problem(m.path, "read-timeout", f"reading the file made no progress for {unit.read_timeout:g} s "
                               "(a stalled network or FUSE mount, or a file fetched on access?); it was skipped",
                               "make the file readable (fetch it, check the mount), then index again; "
                               "--read-timeout sets the deadline")
@@ -493,8 +493,9 @@ def index(
     progress : bool, optional
         Show a progress bar (default: when standard error is a terminal).
     read_timeout : float or None, default=60
-        Seconds reading one file may take before it is skipped as a ``read-timeout`` problem (a
-        stalled mount must not stall the crawl); None waits forever.  Enforced in the
+        Seconds a file's read may make no progress before the file is skipped as a
+        ``read-timeout`` problem (a stalled mount must not stall the crawl); each block read
+        restarts the deadline; None waits forever.  Enforced in the
         main thread of the crawling processes.
 
     Returns

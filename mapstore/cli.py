@@ -106,7 +106,7 @@ def write_table(table, fmt: str, out: str | None) -> None:
 @click.option("--jobs", type=click.IntRange(min=1), default=None, help="Processes (default: all cores).")
 @click.option("--prune", is_flag=True, help="Drop datasets from earlier runs not under these ROOTs.")
 @click.option("--read-timeout", type=click.FloatRange(min=0, min_open=True), default=60.0, show_default=True,
-              help="Seconds reading one file may take before it is skipped (reported as read-timeout).")
+              help="Seconds a file's read may make no progress before the file is skipped (read-timeout).")
 def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout) -> None:
     """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them)."""
     report = mapstore.index(roots, store, rules=list(rules) or None, overrides=origins, jobs=jobs, prune=prune,

@@ -35,8 +35,12 @@ class FileDigest:
     head: bytes
 
 
-def digest_file(path: str, head_bytes: int = 4096) -> FileDigest:
-    """Hash a file in one streamed pass and keep its first ``head_bytes`` bytes."""
+def digest_file(path: str, head_bytes: int = 4096, progress=None) -> FileDigest:
+    """Hash a file in one streamed pass and keep its first ``head_bytes`` bytes.
+
+    ``progress`` (optional) is called after every block read: a read deadline restarts there,
+    so a large file read slowly but steadily is not taken for a stalled one.
+    """
     h = hashlib.sha256()
     n = 0
     want = max(head_bytes, FIRST)
@@ -53,6 +57,8 @@ def digest_file(path: str, head_bytes: int = 4096) -> FileDigest:
                 got = fh.readinto(buf)
                 if not got:
                     break
+                if progress is not None:
+                    progress()
                 h.update(view[:got])
                 n += got
     return FileDigest(h.hexdigest(), n, first[:head_bytes])
@@ -66,15 +72,17 @@ def sha256_file(path: str) -> str:
 
 
 class ReadTimeout(Exception):
-    """A read did not finish before its deadline (raised by :class:`ReadDeadline`)."""
+    """A read made no progress before its deadline (raised by :class:`ReadDeadline`)."""
 
 
 class ReadDeadline:
     """Deadlines for reads in this process's main thread, by ``SIGALRM``.
 
-    A read that blocks (a stalled network or FUSE mount, a file fetched on access) is
-    interrupted after ``seconds`` and :class:`ReadTimeout` raised in its place, so one such
-    file cannot stall a crawl.  Installed once per unit of work (``with ReadDeadline(s) as
+    A read that makes no progress for ``seconds`` (a stalled network or FUSE mount, a file
+    fetched on access) is interrupted and :class:`ReadTimeout` raised in its place, so one such
+    file cannot stall a crawl; each block read restarts the deadline (``progress``).  A read
+    the kernel will not interrupt (an uninterruptible wait on some hard network mounts) is not
+    covered.  Installed once per unit of work (``with ReadDeadline(s) as
     dl``), armed per file (``with dl.armed(): ...``): two ``setitimer`` calls a file.  Outside
     the main thread (where signals cannot be delivered) it does nothing.
     """
@@ -98,6 +106,11 @@ class ReadDeadline:
     @staticmethod
     def _fire(signum, frame) -> None:
         raise ReadTimeout()
+
+    def progress(self) -> None:
+        """The armed read made progress: restart its deadline."""
+        if self._active:
+            signal.setitimer(signal.ITIMER_REAL, self.seconds)
 
     @contextlib.contextmanager
     def armed(self) -> Iterator[None]:

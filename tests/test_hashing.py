@@ -27,3 +27,21 @@ def test_sha256_of_known_string(tmp_path):
     f = tmp_path / "abc"
     f.write_bytes(b"abc")
     assert sha256_file(str(f)) == "ba7816bf8f01cfea414140de5dae2223b00361a396177a9cb410ff61f20015ad"
+
+
+def test_read_deadline_restarts_on_progress_and_fires_without_it():
+    import time
+
+    import pytest
+
+    from mapstore.hashing import ReadDeadline, ReadTimeout
+
+    with ReadDeadline(0.3) as dl:
+        with dl.armed():
+            for _ in range(6):  # 0.6 s in all, never 0.3 s without progress
+                time.sleep(0.1)
+                dl.progress()
+        with pytest.raises(ReadTimeout), dl.armed():
+            time.sleep(2)  # no progress: interrupted after 0.3 s
+    with ReadDeadline(None) as off, off.armed():
+        time.sleep(0.01)  # no deadline: nothing fires
