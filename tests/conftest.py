@@ -65,3 +65,21 @@ def make_derivative(root: Path, name: str = "study", raw: bool = False) -> Path:
                                                     "DatasetType": "derivative",
                                                     "GeneratedBy": [{"Name": "x"}]})
     return root
+
+
+def box_4mm() -> np.ndarray:
+    """A 4 mm grid of 41 x 48 x 40 voxels that covers the MNI brain (the affine)."""
+    aff = np.diag([4.0, 4.0, 4.0, 1.0])
+    aff[:3, 3] = [-80, -112, -60]
+    return aff
+
+
+def noise_maps(ds: Path, subjects, tasks=("go",), seed: int = 0) -> list[Path]:
+    """t maps of random noise on ``box_4mm``, one per subject, tasks taken in turn."""
+    rng = np.random.default_rng(seed)
+    out = []
+    for k, i in enumerate(subjects):
+        task = tasks[k % len(tasks)]
+        out.append(write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-{task}_contrast-a_stat-t_statmap.nii.gz",
+                             rng.normal(size=(41, 48, 40)).astype(np.float32), box_4mm()))
+    return out

@@ -21,7 +21,7 @@ import pytest
 import mapstore
 from mapstore.errors import StoreNotFound
 
-from .conftest import make_derivative, write_json, write_map
+from .conftest import make_derivative, noise_maps, write_json
 
 EXPORT_FILES = ("X.npy", "y.npy", "groups.npy", "voxels.npy", "meta.parquet")
 
@@ -45,13 +45,7 @@ def world(tmp_path_factory):
     tmp = tmp_path_factory.mktemp("kill")
     ds = make_derivative(tmp / "src" / "alpha", name="alpha")
     write_json(ds / "task-go_statmap.json", {"DegreesOfFreedom": 25})
-    aff = np.diag([4.0, 4, 4, 1])
-    aff[:3, 3] = [-80, -112, -60]
-    rng = np.random.default_rng(3)
-    for i in range(6):
-        task = "go" if i % 2 else "stop"
-        write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-{task}_contrast-a_stat-t_statmap.nii.gz",
-                  rng.normal(size=(41, 48, 40)).astype(np.float32), aff)
+    noise_maps(ds, range(6), tasks=("stop", "go"), seed=3)
     vocab = write_json(tmp / "v.json", {"vocabulary": "v", "version": "1", "concepts": {"go": {}, "stop": {}},
                                         "rules": [{"task": "go", "concepts": ["go"]},
                                                   {"task": "stop", "concepts": ["stop"]}]})

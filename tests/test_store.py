@@ -13,18 +13,13 @@ import pytest
 import mapstore
 from mapstore.errors import StaleSnapshot
 
-from .conftest import make_derivative, write_json, write_map
+from .conftest import make_derivative, noise_maps, write_json, write_map
 
 
 def _tree(tmp_path):
     ds = make_derivative(tmp_path / "src" / "alpha", name="alpha")
     write_json(ds / "task-go_statmap.json", {"DegreesOfFreedom": 25})
-    aff = np.diag([4.0, 4, 4, 1])
-    aff[:3, 3] = [-80, -112, -60]
-    rng = np.random.default_rng(5)
-    for i in range(4):
-        write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-go_contrast-a_stat-t_statmap.nii.gz",
-                  rng.normal(size=(41, 48, 40)).astype(np.float32), aff)
+    noise_maps(ds, range(4), seed=5)
     vocab = write_json(tmp_path / "v.json", {"vocabulary": "v", "version": "1", "concepts": {"x": {}, "y": {}},
                                              "rules": [{"contrast": "a", "concepts": ["x"]}]})
     vocab2 = write_json(tmp_path / "v2.json", {"vocabulary": "v", "version": "2", "concepts": {"x": {}, "y": {}},
@@ -110,12 +105,7 @@ def test_a_full_disk_during_features_is_clear_and_undone(tmp_path):
         pytest.skip("needs root and a tmpfs mount (CI runs as root)")
     try:
         ds, _, _, _ = _tree(tmp_path)
-        rng = np.random.default_rng(9)
-        aff = np.diag([4.0, 4, 4, 1])
-        aff[:3, 3] = [-80, -112, -60]
-        for i in range(4, 24):  # 24 maps x 69,765 voxels x 4 bytes: ~6.7 MB of shards
-            write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-go_contrast-a_stat-t_statmap.nii.gz",
-                      rng.normal(size=(41, 48, 40)).astype(np.float32), aff)
+        noise_maps(ds, range(4, 24), seed=9)  # 24 maps x 69,765 voxels x 4 bytes: ~6.7 MB of shards
         store = mnt / "store"
         mapstore.index([ds], store, progress=False)
         mapstore.build_features(store, grid="MNI152-3mm", name="small", where="m.sub < '03'", jobs=1,
