@@ -49,7 +49,13 @@ def world(tmp_path_factory):
     vocab = write_json(tmp / "v.json", {"vocabulary": "v", "version": "1", "concepts": {"go": {}, "stop": {}},
                                         "rules": [{"task": "go", "concepts": ["go"]},
                                                   {"task": "stop", "concepts": ["stop"]}]})
-    return {"tmp": tmp, "ds": ds, "vocab": vocab}
+    return {"tmp": tmp, "ds": ds, "vocab": vocab, "tree": _tree(tmp / "src")}
+
+
+def _tree(root):
+    """Every path under ``root`` with its bytes and mtime: a write into a source changes it."""
+    return {str(p.relative_to(root)): (p.read_bytes() if p.is_file() else None, p.lstat().st_mtime_ns)
+            for p in sorted(root.rglob("*"))}
 
 
 def _stage_args(stage, w, store, out=None):
@@ -128,3 +134,4 @@ def test_kill_at_any_point_then_resume(world, stage):
         assert _state(stage, run / "store", run / "out") == want, (stage, n)
         shutil.rmtree(run)
     assert killed >= 10
+    assert _tree(w["tmp"] / "src") == w["tree"]  # nothing written into the source dataset
