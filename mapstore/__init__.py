@@ -6,7 +6,7 @@ label them with concepts, and draw leakage-free train/test matrices.
 
 from __future__ import annotations
 
-__version__ = "0.1.0"
+from ._version import __version__
 
 from .api import Store, open_store as open  # noqa: A001  (mapstore.open mirrors the builtin on purpose)
 from .catalog import IndexReport, index

@@ -43,7 +43,7 @@ class Store:
         entry = self.catalog.head.labels
         if entry and entry.get("catalog") != self.catalog.head.catalog and entry.get("copy"):
             # the catalog was re-indexed after labelling: derive labels for it from the stored vocabulary
-            self.catalog._tables["labels"] = refresh_labels(self.catalog, entry)
+            self.catalog.use_table("labels", refresh_labels(self.catalog, entry))
 
     def close(self) -> None:
         """Let writers collect this snapshot's files (also done when the Store is garbage-collected)."""
@@ -56,7 +56,7 @@ class Store:
         self.close()
 
     def __repr__(self) -> str:
-        return f"Store({str(self.path)!r}, maps={self.catalog.table('maps').num_rows})"
+        return f"Store({str(self.path)!r}, maps={self.sql('SELECT count(*) FROM maps').column(0)[0].as_py()})"
 
     def sql(self, query: str) -> pa.Table:
         """Run one read-only SQL query over the catalog views; returns an Arrow table.

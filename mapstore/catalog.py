@@ -9,6 +9,7 @@ the crawl: it becomes a row of ``problems``.
 from __future__ import annotations
 
 import errno
+import gc
 import hashlib
 import json
 import math
@@ -22,6 +23,7 @@ from pathlib import Path
 from typing import Any, Iterable
 
 import pyarrow as pa
+import pyarrow.parquet as pq
 
 from .discover import (
     DatasetInfo,
@@ -36,21 +38,28 @@ from .discover import (
     top_folders,
     walk_dataset,
 )
+from ._version import __version__
 from .params import resolve_jobs
-from .pool import process_pool
+from .runner import run as run_units
 from .errors import HeaderError, NoDatasetsFound, ParameterError, StoreFull
+from .labels import refresh_labels
 from .hashing import ReadDeadline, ReadTimeout, digest_file
 from .header import NIFTI1_SIZE, NIFTI2_SIZE, HeaderFacts, header_prefix, parse_header
 from .store import (
     DATASETS_SCHEMA,
     MAPS_SCHEMA,
+    MAPS_SCHEMA_ID,
+    PARTS_DIR,
     PROBLEMS_SCHEMA,
     Catalog,
+    CatalogManifest,
+    CatalogPart,
+    Head,
     commit_head,
-    conform,
     ensure_store,
     new_snapshot_id,
     read_head,
+    write_json_atomic,
     write_lock,
     write_parquet_atomic,
 )
@@ -140,11 +149,6 @@ def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None, prog
     return cols, dig.sha256, dig.nbytes
 
 
-def _probe_batch(paths: list[str]) -> list[tuple[dict[str, Any], str, int] | Problem]:
-    cache: dict[bytes, dict[str, Any]] = {}
-    return [probe_file(p, cache) for p in paths]
-
-
 def _header_columns(facts: HeaderFacts) -> dict[str, Any]:
     return {
         "nifti_version": facts.nifti_version, "endianness": facts.endianness,
@@ -198,7 +202,7 @@ def _under(path: str, roots: list[Path]) -> bool:
 
 @dataclass
 class _Unit:
-    """One piece of crawl work: a dataset, or some of its top-level folders."""
+    """One piece of crawl work: a dataset, or some of its top-level folders; it writes one part."""
 
     ds: DatasetInfo
     parser: EntityParser
@@ -207,34 +211,61 @@ class _Unit:
     by_sub: dict[str, dict[str, Any]]
     rules: NameRules
     overrides: MetadataOverrides
-    prev: pa.Table | None  # this unit's rows of the previous snapshot, for incremental runs
+    key: str  # stable across runs while the dataset's top folders stay the same
+    inputs: str  # digest of what the rows depend on beyond the unit's files
+    store: str
+    prev_part: CatalogPart | None = None  # this unit's part in the previous snapshot
+    prev_files: list[str] = field(default_factory=list)  # the dataset's previous parts, for reusing headers
     read_timeout: float | None = None
 
 
 @dataclass
 class _UnitResult:
-    rows: pa.Table
+    part: CatalogPart | None  # None: the unit found no maps
     problems: list[Problem]
     new: int
     changed: int
     unchanged: int
+    reused: bool
 
 
-def _previous_subset(prev: pa.Table | None, dataset: str, top: list[str] | None,
-                     root_maps: bool) -> pa.Table | None:
-    """Rows of the previous snapshot that one unit of work may reuse."""
-    if prev is None:
+# problems that may go away without a file changing: a unit that had one is always crawled again
+_NOT_REUSED_LEVEL = "error"
+
+
+def _previous_rows(unit: _Unit) -> pa.Table | None:
+    """Rows of the previous snapshot this unit may reuse (header facts of unchanged files)."""
+    if unit.prev_part is not None and unit.prev_part.schema:
+        files = [os.path.join(unit.store, unit.prev_part.maps)]
+    else:
+        files = unit.prev_files
+    if not files:
         return None
     import pyarrow.compute as pc
 
-    t = prev.filter(pc.equal(prev["dataset"], dataset))
-    if top is not None:
+    cols = ["relpath", "dataset", *_HEADER_COLUMNS]
+    try:
+        t = pa.concat_tables([_read_columns(f, cols) for f in files])
+    except (OSError, pa.ArrowException):
+        return None  # not reusable: the files are read again
+    t = t.filter(pc.equal(t["dataset"], unit.ds.key))
+    if unit.top is not None and unit.prev_part is None:
         first = pc.list_element(pc.split_pattern(t["relpath"], "/", max_splits=1), 0)
-        keep = pc.is_in(first, pa.array(top, pa.string()))
-        if root_maps:
+        keep = pc.is_in(first, pa.array(unit.top, pa.string()))
+        if unit.root_maps:
             keep = pc.or_(keep, pc.invert(pc.match_substring(t["relpath"], "/")))
         t = t.filter(keep)
     return t
+
+
+def _read_columns(path: str, cols: list[str]) -> pa.Table:
+    """``cols`` of a maps part; columns it predates are null."""
+    f = pq.ParquetFile(path)
+    have = [c for c in cols if c in f.schema_arrow.names]
+    t = f.read(columns=have)
+    fields = {x.name: x for x in MAPS_SCHEMA}
+    return pa.Table.from_arrays([t[c].cast(fields[c].type) if c in have else pa.nulls(t.num_rows, fields[c].type)
+                                 for c in cols], names=cols)
 
 
 _STATIC_HEADER = tuple(c for c in _HEADER_COLUMNS if c not in ("sha256", "nbytes", "mtime_ns"))
@@ -245,24 +276,36 @@ _SIDECAR_COLUMNS = ("metadata", "sidecars")
 
 
 def _run_unit(unit: _Unit) -> _UnitResult:
-    """Crawl one unit and build its rows column by column.
+    """Crawl one unit and write its part (or keep the previous one when nothing it reads changed).
 
     Header facts and sidecar metadata repeat across a study's maps, so each distinct
     value is built once and the columns are gathered with one Arrow ``take``.
     """
     with ReadDeadline(unit.read_timeout) as deadline:
-        return _crawl_unit(unit, deadline)
+        enabled = gc.isenabled()
+        gc.disable()  # rows are tuples of strings (no cycles); collections over a growing heap cost O(n^2)
+        try:
+            return _crawl_unit(unit, deadline)
+        finally:
+            if enabled:
+                gc.enable()
 
 
 def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
     ds = unit.ds
     parser = unit.parser
-    maps, jsons, problems = walk_dataset(ds, parser, unit.rules, unit.top, unit.root_maps)
+    fingerprint = hashlib.sha256(unit.inputs.encode())
+    maps, jsons, problems = walk_dataset(ds, parser, unit.rules, unit.top, unit.root_maps, fingerprint)
+    digest = None if unit.rules.rules or any(p.level == _NOT_REUSED_LEVEL for p in problems) \
+        else fingerprint.hexdigest()
+    prev_part = unit.prev_part
+    if digest is not None and prev_part is not None and prev_part.digest == digest:
+        return _UnitResult(prev_part, _read_problems(unit.store, prev_part), 0, 0, prev_part.rows, True)
     resolver = SidecarResolver(ds, jsons, parser)
     model = ModelFiles(ds, jsons, parser)
     mask_sha: dict[str, str | None] = {}
     # previous rows: a few columns as lists; reused header columns are gathered from the table
-    pt = unit.prev
+    pt = _previous_rows(unit)
     pcol = {c: pt[c].to_pylist() for c in ("relpath", "nbytes", "mtime_ns", "sha256", "intent_code",
                                              "intent_p1", "descrip")} if pt is not None and pt.num_rows else {}
     prev = {r: i for i, r in enumerate(pcol.get("relpath", []))}
@@ -340,9 +383,55 @@ def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
             sha, nbytes, m.mtime_ns, dof, dof_source, mask_rel, msha,
         ))
     problems.extend(resolver.problems)
+    problems = [p if p.dataset else Problem(p.path, p.code, p.reason, p.remedy, p.level, ds.key, p.stage)
+                for p in problems]
+    if any(p.level == _NOT_REUSED_LEVEL for p in problems):
+        digest = None
     # one tuple per row while crawling, transposed into columns once
     cols = dict(zip(_PER_ROW, (list(c) for c in zip(*rows)))) if rows else {c: [] for c in _PER_ROW}
-    return _UnitResult(_assemble(cols, headers, hidx, sidecars, sidx, pt), problems, new, changed, unchanged)
+    table = _assemble(cols, headers, hidx, sidecars, sidx, pt)
+    del rows, cols, pt
+    part = _write_part(unit, table, problems, digest)
+    return _UnitResult(part, problems, new, changed, unchanged, False)
+
+
+def _part_name(unit: _Unit) -> str:
+    slug = re.sub(r"[^A-Za-z0-9._-]+", "_", unit.ds.key)[:40]
+    return f"{PARTS_DIR}/{slug}-{new_snapshot_id()}"
+
+
+def _write_part(unit: _Unit, table: pa.Table, problems: list[Problem], digest: str | None) -> CatalogPart | None:
+    """Write the unit's maps (sorted by path) and problems as new part files."""
+    if table.num_rows == 0 and not problems:
+        return None
+    base = _part_name(unit)
+    folder = Path(unit.store) / PARTS_DIR
+    folder.mkdir(parents=True, exist_ok=True)
+    table = table.sort_by([("relpath", "ascending")])
+    write_parquet_atomic(table, Path(unit.store) / f"{base}.parquet", row_group_size=_ROW_GROUP)
+    prob = None
+    if problems:
+        prob = f"{base}.problems.parquet"
+        write_parquet_atomic(_problems_table(problems), Path(unit.store) / prob)
+    return CatalogPart(unit.ds.key, unit.key, f"{base}.parquet", table.num_rows, prob, digest)
+
+
+# row groups of this many rows: DuckDB skips a group whose statistics rule it out
+_ROW_GROUP = 32768
+
+
+def _problems_table(problems: list[Problem]) -> pa.Table:
+    return pa.Table.from_pylist([{"path": p.path, "dataset": p.dataset, "code": p.code, "level": p.level,
+                                  "stage": p.stage, "reason": p.reason, "remedy": p.remedy} for p in problems],
+                                schema=PROBLEMS_SCHEMA)
+
+
+def _read_problems(store: str, part: CatalogPart) -> list[Problem]:
+    if not part.problems:
+        return []
+    rows = pq.read_table(os.path.join(store, part.problems)).to_pylist()
+    return [Problem(r["path"], r["code"], r["reason"], r["remedy"], r["level"], r["dataset"], r["stage"])
+            for r in rows]
 
 
 # SPM writes the DOF of a T image into its header description: "SPM{T_[20.0]} - contrast 1: ..."
@@ -447,19 +536,60 @@ def _assemble(cols: dict[str, list[Any]], headers: list[dict[str, Any]], hidx: l
     return pa.Table.from_arrays([arrays[f.name] for f in MAPS_SCHEMA], schema=MAPS_SCHEMA)
 
 
+# a unit covers at most this many top-level folders (subjects): parts stay big enough for DuckDB to
+# read few files, and small enough for a worker to hold
+_TOPS_PER_UNIT = 500
+
+
 def _units(ds: DatasetInfo, parser: EntityParser, by_sub: dict[str, dict[str, Any]], rules: NameRules,
-           over: MetadataOverrides, prev: pa.Table | None, jobs: int, read_timeout: float | None = None
+           over: MetadataOverrides, prev: "_Previous", store: Path, split: int, read_timeout: float | None
            ) -> list[_Unit]:
-    if jobs == 1:
-        return [_Unit(ds, parser, None, True, by_sub, rules, over,
-                      _previous_subset(prev, ds.key, None, True), read_timeout)]
+    """The units of one dataset: contiguous runs of its top folders (unit 0 also takes root maps).
+
+    Their boundaries depend on the folders alone (and ``split``, raised when there are fewer
+    datasets than workers), so a re-index finds each unit's previous part by its key.
+    """
     tops = top_folders(ds)
-    # one part per worker, finer for big datasets (progress, balance): ~25 top folders per part
-    n_parts = min(len(tops), max(jobs, len(tops) // 25)) or 1
-    parts = [tops[i::n_parts] for i in range(n_parts)]
-    return [_Unit(ds, parser, part, i == 0, by_sub, rules, over,
-                  _previous_subset(prev, ds.key, part, i == 0), read_timeout)
-            for i, part in enumerate(parts)]
+    n = min(len(tops), max(math.ceil(len(tops) / _TOPS_PER_UNIT), split)) or 1
+    size = math.ceil(len(tops) / n) if tops else 0
+    chunks: list[list[str] | None] = [None] if n == 1 else [tops[i:i + size] for i in range(0, len(tops), size)]
+    inputs = json.dumps([__version__, MAPS_SCHEMA_ID, ds.__dict__, by_sub, over.datasets, over.subjects],
+                        sort_keys=True, default=str)
+    prev_files = prev.files_of(ds.key)
+    units = []
+    for i, top in enumerate(chunks):
+        key = f"{ds.key}|*" if top is None else \
+            f"{ds.key}|{hashlib.sha256(chr(0).join(top).encode()).hexdigest()[:16]}"
+        units.append(_Unit(ds, parser, top, i == 0, by_sub, rules, over, key, inputs, str(store),
+                           prev.by_unit.get(key), prev_files, read_timeout))
+    return units
+
+
+@dataclass
+class _Previous:
+    """What a re-index needs of the last snapshot: its parts list and small tables, never all maps."""
+
+    parts: list[CatalogPart] = field(default_factory=list)
+    datasets: list[dict[str, Any]] = field(default_factory=list)
+    participants: list[dict[str, Any]] = field(default_factory=list)
+    problems: list[dict[str, Any]] = field(default_factory=list)
+    store: Path | None = None
+
+    @property
+    def by_unit(self) -> dict[str, CatalogPart]:
+        return {p.unit: p for p in self.parts if p.unit}
+
+    def files_of(self, dataset: str) -> list[str]:
+        assert self.store is not None or not self.parts
+        return [str(self.store / p.maps) for p in self.parts if p.dataset in (dataset, "")]
+
+    @classmethod
+    def load(cls, store: Path, head: Head) -> "_Previous":
+        if not head.catalog:
+            return cls()
+        cat = Catalog(store, head)
+        tables = {n: cat.sql(f"SELECT * FROM {n}").to_pylist() for n in ("datasets", "participants", "problems")}
+        return cls(cat.manifest().parts, tables["datasets"], tables["participants"], tables["problems"], store)
 
 
 def index(
@@ -472,6 +602,7 @@ def index(
     prune: bool = False,
     progress: bool | None = None,
     read_timeout: float | None = 60.0,
+    scheduler: Any = None,
 ) -> IndexReport:
     """Crawl derivative datasets and publish a new catalog snapshot in ``store``.
 
@@ -496,7 +627,10 @@ def index(
         Seconds a file's read may make no progress before the file is skipped as a
         ``read-timeout`` problem (a stalled mount must not stall the crawl); each block read
         restarts the deadline; None waits forever.  Enforced in the
-        main thread of the crawling processes.
+        main thread of the crawling processes (not on Dask workers, whose tasks run in threads).
+    scheduler : dask.distributed.Client or str, optional
+        Send the units of work to this Dask cluster instead of local processes.  Workers must
+        see the datasets and the store at the same paths; each unit writes its own part.
 
     Returns
     -------
@@ -512,137 +646,161 @@ def index(
     name_rules = NameRules.load(rules)
     meta_over = MetadataOverrides.load(overrides)
     store_path = Path(store).expanduser().absolute()
-    datasets, problems = find_datasets(roots)
-    if not datasets:
-        why = "; ".join(f"{p.path}: {p.reason}" for p in problems if p.level == "error" or
-                        p.code == "no-derivatives") or "no dataset_description.json or sub-* folders"
-        raise NoDatasetsFound(f"no BIDS derivative dataset found under {', '.join(map(str, roots))} ({why}); "
-                             "give a derivative dataset, a raw dataset with derivatives/, or a folder of them. "
-                             "Nothing was written.")
-    for ds in datasets:
-        droot = Path(ds.root)
-        if store_path == droot or droot in store_path.parents:
-            raise ParameterError(f"--store {store_path} lies inside the dataset {droot}; keep the store "
-                                 "outside source datasets (mapstore never writes to them)")
+    datasets, problems = _find(roots, store_path)
     store_path = ensure_store(store_path)
     if progress is None:
         progress = sys.stderr.isatty()
-
     with write_lock(store_path):
         head = read_head(store_path)
-        prev: pa.Table | None = None
-        prev_keys: set[tuple[str, str]] = set()
-        prev_datasets: list[dict[str, Any]] = []
-        prev_participants: list[dict[str, Any]] = []
-        prev_problems: list[dict[str, Any]] = []
-        found_keys = {d.key for d in datasets}
-        if head.catalog:
-            old = Catalog(store_path)
-            old_maps = conform(old.table("maps"), MAPS_SCHEMA)
-            prev = old_maps.select(["relpath", "dataset", *_HEADER_COLUMNS])
-            prev_datasets = old.table("datasets").to_pylist()
-            prev_participants = old.table("participants").to_pylist()
-            prev_problems = old.table("problems").to_pylist()
-            prev_keys = set(zip(prev["dataset"].to_pylist(), prev["relpath"].to_pylist()))
-        kept = [] if prune else [d for d in prev_datasets if d["dataset"] not in found_keys
-                                 and not _under(d["root"], roots)]
-        kept_keys = {d["dataset"] for d in kept}
-        tables: list[pa.Table] = []
-        if kept_keys:
-            import pyarrow.compute as pc
-
-            tables.append(old_maps.filter(pc.is_in(old_maps["dataset"], pa.array(sorted(kept_keys)))))
-
-        participant_rows = [r for r in prev_participants if r["dataset"] in kept_keys]
-        parser = EntityParser()
-        units: list[_Unit] = []
-        pfiles: dict[str, str | None] = {}
-        for ds in datasets:
-            prows, pfile, pprobs = read_participants(ds)
-            problems.extend(pprobs)
-            pfiles[ds.key] = pfile
-            by_sub: dict[str, dict[str, Any]] = {}
-            for r in prows:
-                pid = r.get("participant_id") or ""
-                sub = pid[4:] if pid.startswith("sub-") else pid
-                rec = {"dataset": ds.key, "participant_id": pid, "sub": sub,
-                       "participant": f"{ds.study}/sub-{sub}",
-                       **{k: v for k, v in r.items() if k != "participant_id"}}
-                by_sub[sub] = rec
-                participant_rows.append(rec)
-            units += _units(ds, parser, by_sub, name_rules, meta_over, prev, jobs, read_timeout)
-
-        results: list[_UnitResult] = []
-        bar = None
-        if progress:
-            from tqdm import tqdm
-
-            bar = tqdm(total=len(units), unit="part", desc="indexing", file=sys.stderr)
-        if jobs > 1 and len(units) > 1:
-            with process_pool(min(jobs, len(units))) as pool:
-                for res in pool.map(_run_unit, units):
-                    results.append(res)
-                    if bar:
-                        bar.update(1)
-        else:
-            for u in units:
-                results.append(_run_unit(u))
-                if bar:
-                    bar.update(1)
-        if bar:
-            bar.close()
-
-        n_maps_by_ds: dict[str, int] = {}
-        new = changed = unchanged = 0
-        for u, res in zip(units, results):
-            tables.append(res.rows)
-            problems.extend(res.problems)
-            new, changed, unchanged = new + res.new, changed + res.changed, unchanged + res.unchanged
-            n_maps_by_ds[u.ds.key] = n_maps_by_ds.get(u.ds.key, 0) + res.rows.num_rows
-        maps_table = pa.concat_tables(tables) if tables else MAPS_SCHEMA.empty_table()
-        maps_table = maps_table.sort_by([("dataset", "ascending"), ("relpath", "ascending")])
-        current_keys = set(zip(maps_table["dataset"].to_pylist(), maps_table["relpath"].to_pylist()))
-        removed = sum(1 for k in prev_keys if k not in current_keys)
-
-        ds_rows = list(kept)
-        for ds in datasets:
-            ds_rows.append({
-                "dataset": ds.key, "name": ds.name, "study": ds.study, "root": ds.root,
-                "dataset_type": ds.dataset_type, "generated_by": json.dumps(ds.generated_by),
-                "bids_version": ds.bids_version, "raw_root": ds.raw_root, "raw_name": ds.raw_name,
-                "participants_file": pfiles[ds.key], "n_maps": n_maps_by_ds.get(ds.key, 0),
-                "description": json.dumps(ds.description, sort_keys=True, default=str),
-            })
-        prob_rows = [r for r in prev_problems if r.get("dataset") in kept_keys]
-        prob_rows += [{"path": p.path, "dataset": p.dataset, "code": p.code, "level": p.level,
-                       "stage": p.stage, "reason": p.reason, "remedy": p.remedy} for p in problems]
-
-        snap = new_snapshot_id()
-        snap_dir = store_path / "catalog" / snap
+        prev = _Previous.load(store_path, head)
+        plan = _plan(datasets, prev, roots, prune, name_rules, meta_over, store_path, jobs, scheduler, read_timeout)
+        problems += plan.problems
         try:
-            snap_dir.mkdir(parents=True)
-            write_parquet_atomic(maps_table, snap_dir / "maps.parquet")
-            write_parquet_atomic(pa.Table.from_pylist(ds_rows, schema=DATASETS_SCHEMA),
-                                 snap_dir / "datasets.parquet")
-            write_parquet_atomic(_participants_table(participant_rows), snap_dir / "participants.parquet")
-            write_parquet_atomic(pa.Table.from_pylist(prob_rows, schema=PROBLEMS_SCHEMA),
-                                 snap_dir / "problems.parquet")
+            results = list(run_units(_run_unit, plan.units, jobs=jobs, scheduler=scheduler, progress=progress,
+                                     desc="indexing", ordered=True, unit="part"))
+            report = _publish(store_path, head, prev, plan, results, problems, roots)
         except OSError as exc:
-            shutil.rmtree(snap_dir, ignore_errors=True)
             if exc.errno in (errno.ENOSPC, errno.EDQUOT):
                 raise StoreFull(f"{store_path}: no space left on the device (while writing the catalog); the "
                                 "store still serves what it served before. Free space, or move the store, and "
                                 "run the command again") from None
             raise
-        head.catalog = f"catalog/{snap}"
-        commit_head(store_path, head, {"event": "index", "roots": [str(r) for r in roots],
-                                       "maps": maps_table.num_rows, "snapshot": snap})
+    report.seconds = time.perf_counter() - t0
+    return report
 
+
+def _find(roots: list[Path], store_path: Path) -> tuple[list[DatasetInfo], list[Problem]]:
+    """The datasets under ``roots``; refuses a store inside one of them."""
+    datasets, problems = find_datasets(roots)
+    if not datasets:
+        why = "; ".join(f"{p.path}: {p.reason}" for p in problems if p.level == "error" or
+                        p.code == "no-derivatives") or "no dataset_description.json or sub-* folders"
+        raise NoDatasetsFound(f"no BIDS derivative dataset found under {', '.join(map(str, roots))} ({why}); "
+                              "give a derivative dataset, a raw dataset with derivatives/, or a folder of them. "
+                              "Nothing was written.")
+    for ds in datasets:
+        droot = Path(ds.root)
+        if store_path == droot or droot in store_path.parents:
+            raise ParameterError(f"--store {store_path} lies inside the dataset {droot}; keep the store "
+                                 "outside source datasets (mapstore never writes to them)")
+    return datasets, problems
+
+
+@dataclass
+class _Plan:
+    datasets: list[DatasetInfo]
+    units: list[_Unit]
+    kept: list[dict[str, Any]]  # datasets rows of earlier runs kept as they are
+    participants: list[dict[str, Any]]
+    participant_files: dict[str, str | None]
+    problems: list[Problem]
+
+
+def _plan(datasets: list[DatasetInfo], prev: _Previous, roots: list[Path], prune: bool, rules: NameRules,
+          over: MetadataOverrides, store: Path, jobs: int, scheduler: Any, read_timeout: float | None) -> _Plan:
+    """Participants of every dataset, and the units of work (each knowing its previous part)."""
+    found = {d.key for d in datasets}
+    kept = [] if prune else [d for d in prev.datasets if d["dataset"] not in found and not _under(d["root"], roots)]
+    kept_keys = {d["dataset"] for d in kept}
+    participants = [r for r in prev.participants if r["dataset"] in kept_keys]
+    parser = EntityParser()
+    split = 1 if scheduler is None and len(datasets) >= jobs else jobs
+    units: list[_Unit] = []
+    files: dict[str, str | None] = {}
+    problems: list[Problem] = []
+    for ds in datasets:
+        prows, files[ds.key], pprobs = read_participants(ds)
+        problems.extend(pprobs)
+        by_sub: dict[str, dict[str, Any]] = {}
+        for r in prows:
+            pid = r.get("participant_id") or ""
+            sub = pid[4:] if pid.startswith("sub-") else pid
+            rec = {"dataset": ds.key, "participant_id": pid, "sub": sub, "participant": f"{ds.study}/sub-{sub}",
+                   **{k: v for k, v in r.items() if k != "participant_id"}}
+            by_sub[sub] = rec
+            participants.append(rec)
+        units += _units(ds, parser, by_sub, rules, over, prev, store, split, read_timeout)
+    return _Plan(datasets, units, kept, participants, files, problems)
+
+
+def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: list[_UnitResult],
+             problems: list[Problem], roots: list[Path]) -> IndexReport:
+    """Write the snapshot (parts list and small tables) and replace HEAD: the one atomic step."""
+    kept_keys = {d["dataset"] for d in plan.kept}
+    parts = [p for p in prev.parts if p.dataset in kept_keys]
+    if any(p.dataset == "" for p in prev.parts) and kept_keys:  # a store older than parts: split off the kept
+        parts += _split_legacy(store, prev, sorted(kept_keys))
+    for res in results:
+        problems.extend(res.problems)
+        if res.part is not None:
+            parts.append(res.part)
+    n_maps: dict[str, int] = {}
+    for p in parts:
+        n_maps[p.dataset] = n_maps.get(p.dataset, 0) + p.rows
+    ds_rows = list(plan.kept)
+    for ds in plan.datasets:
+        ds_rows.append({
+            "dataset": ds.key, "name": ds.name, "study": ds.study, "root": ds.root,
+            "dataset_type": ds.dataset_type, "generated_by": json.dumps(ds.generated_by),
+            "bids_version": ds.bids_version, "raw_root": ds.raw_root, "raw_name": ds.raw_name,
+            "participants_file": plan.participant_files[ds.key], "n_maps": n_maps.get(ds.key, 0),
+            "description": json.dumps(ds.description, sort_keys=True, default=str),
+        })
+    prob_rows = [r for r in prev.problems if r.get("dataset") in kept_keys]
+    prob_rows += _problems_table(problems).to_pylist()
+    snap = new_snapshot_id()
+    snap_dir = store / "catalog" / snap
+    try:
+        snap_dir.mkdir(parents=True)
+        write_parquet_atomic(pa.Table.from_pylist(ds_rows, schema=DATASETS_SCHEMA), snap_dir / "datasets.parquet")
+        write_parquet_atomic(_participants_table(plan.participants), snap_dir / "participants.parquet")
+        write_parquet_atomic(pa.Table.from_pylist(prob_rows, schema=PROBLEMS_SCHEMA), snap_dir / "problems.parquet")
+        write_json_atomic(snap_dir / CatalogManifest.FILE, CatalogManifest(parts).to_json())
+        head.catalog = f"catalog/{snap}"
+        _relabel(store, head)
+    except OSError:
+        shutil.rmtree(snap_dir, ignore_errors=True)
+        raise
+    total = sum(n_maps.values())
+    commit_head(store, head, {"event": "index", "roots": [str(r) for r in roots], "maps": total, "snapshot": snap})
     codes: dict[str, int] = {}
     for p in prob_rows:
         codes[p["code"]] = codes.get(p["code"], 0) + 1
-    return IndexReport(
-        store=str(store_path), datasets=len(ds_rows), maps=maps_table.num_rows, new=new, changed=changed,
-        unchanged=unchanged, removed=removed, problems=len(prob_rows), kept_datasets=len(kept),
-        seconds=time.perf_counter() - t0, problem_codes=codes,
-    )
+    new = sum(r.new for r in results)
+    changed = sum(r.changed for r in results)
+    unchanged = sum(r.unchanged for r in results)
+    before = sum(d.get("n_maps") or 0 for d in prev.datasets if d["dataset"] not in kept_keys)
+    return IndexReport(store=str(store), datasets=len(ds_rows), maps=total, new=new, changed=changed,
+                       unchanged=unchanged, removed=max(0, before - changed - unchanged),
+                       problems=len(prob_rows), kept_datasets=len(plan.kept), seconds=0.0, problem_codes=codes)
+
+
+def _split_legacy(store: Path, prev: _Previous, keys: list[str]) -> list[CatalogPart]:
+    """Parts for datasets kept from a one-file catalog (written before parts existed)."""
+    import pyarrow.compute as pc
+
+    out = []
+    for f in prev.files_of(""):
+        t = pq.read_table(f)
+        for key in keys:
+            sub = t.filter(pc.equal(t["dataset"], key))
+            if sub.num_rows:
+                cols = [sub[c] if c in sub.column_names else pa.nulls(sub.num_rows, fld.type) for c, fld in
+                        ((fld.name, fld) for fld in MAPS_SCHEMA)]
+                sub = pa.Table.from_arrays(cols, schema=MAPS_SCHEMA)
+                name = f"{PARTS_DIR}/kept-{new_snapshot_id()}.parquet"
+                (store / PARTS_DIR).mkdir(parents=True, exist_ok=True)
+                write_parquet_atomic(sub, store / name, row_group_size=_ROW_GROUP)
+                out.append(CatalogPart(key, f"{key}|kept", name, sub.num_rows))
+    return out
+
+
+def _relabel(store: Path, head: Head) -> None:
+    """Labels for the new catalog from the stored vocabulary, so readers never derive them."""
+    entry = head.labels
+    if not entry or not entry.get("copy"):
+        return
+    table = refresh_labels(Catalog(store, head), entry)
+    rel = f"labels/labels-{Path(head.catalog).name}.parquet"
+    write_parquet_atomic(table, store / rel)
+    head.labels = {**entry, "table": rel, "catalog": head.catalog}

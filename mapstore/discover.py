@@ -715,7 +715,7 @@ def top_folders(ds: DatasetInfo) -> list[str]:
 
 
 def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
-                 top: Iterable[str] | None = None, root_maps: bool = True
+                 top: Iterable[str] | None = None, root_maps: bool = True, fingerprint: Any = None
                  ) -> tuple[list[MapFile], dict[str, list[str]], list[Problem]]:
     """List the statistic maps and JSON sidecars of one dataset (or of part of it).
 
@@ -724,6 +724,8 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
     like statistic maps but lack entities).  ``top`` limits the walk to some
     top-level folders and ``root_maps`` says whether maps lying in the root
     count; root-level sidecars are always collected, as inheritance needs them.
+    ``fingerprint`` (a hashlib object) is fed the path, size and mtime of every map, sidecar
+    and model file found: equal digests mean the walk found the same files unchanged.
     """
     only = None if top is None else set(top)
     maps: list[MapFile] = []
@@ -761,7 +763,7 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
                 continue
             if name.endswith(".json") or name.endswith(COMPANION_SUFFIXES):
                 try:
-                    _stat_entry(e)
+                    st = _stat_entry(e)
                 except _NotRegular as exc:
                     problems.append(Problem(e.path, "not-a-regular-file", f"a {exc}, not a regular file; it was "
                                             "not opened (opening it could block)", "replace it with the file "
@@ -770,6 +772,8 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
                 except OSError:
                     continue  # a dangling or looping link to a sidecar: nothing to read
                 jsons.setdefault(rel, []).append(name)
+                if fingerprint is not None:
+                    fingerprint.update(f"{relpath}\0{st.st_size}\0{st.st_mtime_ns}\n".encode())
                 continue
             if not (name.endswith(".nii.gz") or name.endswith(".nii")) or (not rel and not root_maps):
                 continue
@@ -822,6 +826,8 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
             problems.extend(probs)
             maps.append(MapFile(ds, relpath, e.path, base, st.st_size, st.st_mtime_ns, f"rule:{idx}", extras))
     maps.sort(key=lambda m: m.relpath)
+    if fingerprint is not None:
+        fingerprint.update("".join(f"{m.relpath}\0{m.nbytes}\0{m.mtime_ns}\n" for m in maps).encode())
     return maps, jsons, problems
 
 

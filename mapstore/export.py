@@ -33,7 +33,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from . import __version__
+from ._version import __version__
 from .copies import NEAR_COPY_R
 from .errors import ExportError, ParameterError
 from .query import Selection, parse_scheme

@@ -25,7 +25,6 @@ import sys
 import time
 import uuid
 from collections import Counter
-from concurrent.futures import as_completed
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -34,9 +33,9 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from . import __version__
+from ._version import __version__
 from .params import positive_int, resolve_jobs
-from .pool import process_pool
+from .runner import run as run_units
 from .errors import FeatureError, GridError, MapstoreError, ParameterError, QueryError, StoreFull
 from .grid import (
     METHODS,
@@ -322,6 +321,10 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
     return {"rows": rows, "problems": problems}
 
 
+def _n_items(b: _Batch) -> int:
+    return len(b.items)
+
+
 def _problem(it: _Item, exc: Exception) -> dict[str, Any]:
     code = type(exc).__name__.replace("Error", "").lower() or "error"
     reason = str(exc)
@@ -330,63 +333,6 @@ def _problem(it: _Item, exc: Exception) -> dict[str, Any]:
     remedy = "re-run 'mapstore index' if the file changed" if "index" in reason else \
         "fix or exclude the map (see the reason)"
     return {"map_id": it.map_id, "path": it.path, "code": code, "reason": reason, "remedy": remedy}
-
-
-def _execute(batches: list[_Batch], jobs: int, scheduler: Any, progress: bool, desc: str):
-    """Run batches on a local process pool, in process, or on a Dask cluster; yield results."""
-    bar = None
-    if progress and batches:
-        from tqdm import tqdm
-
-        bar = tqdm(total=sum(len(b.items) for b in batches), unit="map", desc=desc, file=sys.stderr)
-    try:
-        if scheduler is not None:
-            client, owned = _dask_client(scheduler)
-            try:
-                from distributed import as_completed as dask_completed
-
-                futures = client.map(_run_batch, batches, pure=False)
-                sizes = {f.key: len(b.items) for f, b in zip(futures, batches)}
-                for fut in dask_completed(futures):
-                    res = fut.result()
-                    if bar:
-                        bar.update(sizes[fut.key])
-                    yield res
-            finally:
-                if owned:
-                    client.close()
-        elif jobs > 1 and len(batches) > 1:
-            with process_pool(min(jobs, len(batches))) as pool:
-                futs = {pool.submit(_run_batch, b): b for b in batches}
-                for fut in as_completed(futs):
-                    if bar:
-                        bar.update(len(futs[fut].items))
-                    yield fut.result()
-        else:
-            for b in batches:
-                res = _run_batch(b)
-                if bar:
-                    bar.update(len(b.items))
-                yield res
-    finally:
-        if bar:
-            bar.close()
-
-
-def _dask_client(scheduler: Any):
-    try:
-        from distributed import Client
-    except ImportError:
-        raise FeatureError("a Dask scheduler was given but dask.distributed is not installed; "
-                           "pip install 'mapstore[dask]'") from None
-    if isinstance(scheduler, Client):
-        return scheduler, False
-    if isinstance(scheduler, str):
-        try:
-            return Client(scheduler, timeout=30), True
-        except OSError as exc:
-            raise FeatureError(f"cannot reach the Dask scheduler at {scheduler} ({exc})") from None
-    raise ParameterError(f"scheduler must be a dask.distributed Client or an address, got {scheduler!r}")
 
 
 _Z_READY = ("t", "p", "z")
@@ -552,7 +498,7 @@ def build_features(
                        for i in range(0, len(items), batch_n)]
             counts = np.zeros(target.n_voxels, dtype=np.int64)
             n_ok = 0
-            for res in _execute(batches, jobs, scheduler, progress, "coverage"):
+            for res in run_units(_run_batch, batches, jobs=jobs, scheduler=scheduler, progress=progress, desc="coverage", weight=_n_items, unit="map"):
                 counts += res["counts"]
                 n_ok += res["n"]
                 coverage_problems += res["problems"]
@@ -611,7 +557,7 @@ def build_features(
         created = [set_dir / "shards" / b.shard for b in batches] + \
             [set_dir / f"{kind}-{snap}.parquet" for kind in ("rows", "problems", "copies")]
         try:
-            for res in _execute(batches, jobs, scheduler, progress, f"features {name}"):
+            for res in run_units(_run_batch, batches, jobs=jobs, scheduler=scheduler, progress=progress, desc=f"features {name}", weight=_n_items, unit="map"):
                 new_rows += res["rows"]
                 problems += res["problems"]
                 for r in res["rows"]:

@@ -35,12 +35,12 @@ from typing import Any
 import pyarrow as pa
 
 from .errors import VocabularyError
+from .store import (LABELS_SCHEMA, Catalog, commit_head, leased_files, new_snapshot_id, read_head, write_json_atomic,
+                    write_lock, write_parquet_atomic)
 
 __all__ = ["Vocabulary", "LabelReport", "load_vocabulary", "apply_vocabulary", "label_store",
            "refresh_labels", "LABELS_SCHEMA", "json_schemas"]
 
-LABELS_SCHEMA = pa.schema([("map_id", pa.string()), ("concept", pa.string()), ("direct", pa.bool_()),
-                           ("rule", pa.int32()), ("vocabulary_sha256", pa.string())])
 RULE_FIELDS = ("dataset", "study", "task", "contrast", "stat")
 
 
@@ -400,16 +400,13 @@ def label_store(store: str | os.PathLike[str], vocabulary: str | os.PathLike[str
     The vocabulary file is copied into the store, so the labels stay reproducible
     (and are re-derived for a newer catalog) even if the file changes later.
     """
-    from .store import (Catalog, commit_head, leased_files, new_snapshot_id, read_head, write_json_atomic,
-                        write_lock, write_parquet_atomic)
-
     cat = Catalog(store)
     cat.require_catalog()  # the store first: a vocabulary cannot help an empty store
     vocab = load_vocabulary(vocabulary)
     with write_lock(cat.path):
         head = read_head(cat.path)
         cat = Catalog(cat.path)
-        table, report = apply_vocabulary(vocab, cat.table("maps"), inherit_broader)
+        table, report = apply_vocabulary(vocab, _label_columns(cat), inherit_broader)
         snap = new_snapshot_id()
         folder = cat.path / "labels"
         folder.mkdir(exist_ok=True)
@@ -431,10 +428,14 @@ def label_store(store: str | os.PathLike[str], vocabulary: str | os.PathLike[str
     return report
 
 
-def refresh_labels(cat, entry: dict[str, Any]) -> pa.Table:
+def _label_columns(cat: Catalog) -> pa.Table:
+    return cat.sql(f"SELECT map_id, map_kind, {', '.join(RULE_FIELDS)} FROM maps")
+
+
+def refresh_labels(cat: Catalog, entry: dict[str, Any]) -> pa.Table:
     """Labels for the current catalog from the stored vocabulary copy (when the catalog is newer)."""
     doc_path = cat.path / entry["copy"]
     vocab = load_vocabulary(doc_path)
     vocab.sha256 = entry["sha256"]  # the hash of the file as the user gave it
-    table, _ = apply_vocabulary(vocab, cat.table("maps"), entry.get("inherit_broader"))
+    table, _ = apply_vocabulary(vocab, _label_columns(cat), entry.get("inherit_broader"))
     return table

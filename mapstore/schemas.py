@@ -161,7 +161,7 @@ def all_schemas() -> dict[str, dict[str, Any]]:
         "origins.schema.json": _origins_schema(),
         "store-head.schema.json": _head_schema(),
     }
-    from .store import FPROBLEMS_SCHEMA, ROWS_SCHEMA
+    from .store import FPROBLEMS_SCHEMA, PARTICIPANTS_SCHEMA, ROWS_SCHEMA
 
     out["feature-rows.schema.json"] = arrow_to_json_schema(
         "feature-rows", ROWS_SCHEMA, "One row of a feature set (features/<set>/rows-*.parquet, the "
@@ -177,8 +177,7 @@ def all_schemas() -> dict[str, dict[str, Any]]:
     out["feature-problems.schema.json"] = arrow_to_json_schema(
         "feature-problems", FPROBLEMS_SCHEMA, "A map that could not be turned into a feature row.")
     participants = arrow_to_json_schema(
-        "participants", pa.schema([("dataset", pa.string()), ("participant_id", pa.string()),
-                                   ("sub", pa.string()), ("participant", pa.string())]),
+        "participants", PARTICIPANTS_SCHEMA,
         "One row of participants.tsv, with the dataset key and the study-qualified participant id; "
         "every other column of the file follows (numbers when all values are numbers, else text).")
     participants["additionalProperties"] = {"type": ["string", "number", "integer", "null"]}
@@ -212,6 +211,21 @@ def all_schemas() -> dict[str, dict[str, Any]]:
             "spec_id": {"type": "string"},
             "versions": {"type": "object", "additionalProperties": {"type": "string"}},
         },
+    }
+    part = {"type": "object", "required": ["dataset", "unit", "maps", "rows"], "additionalProperties": False,
+            "properties": {"dataset": {"type": "string"}, "unit": {"type": "string"},
+                           "maps": {"type": "string"}, "rows": {"type": "integer"},
+                           "problems": {"type": ["string", "null"]}, "digest": {"type": ["string", "null"]},
+                           "schema": {"type": "string"}}}
+    out["catalog-parts.schema.json"] = {
+        "$schema": "https://json-schema.org/draft/2020-12/schema",
+        "$id": _BASE + "catalog-parts.schema.json",
+        "title": "mapstore catalog snapshot parts (catalog/<snapshot>/parts.json)",
+        "description": "The Parquet parts the maps table of one snapshot is made of, in dataset order: one "
+                       "or more per dataset (unit: the dataset key and a hash of the top-level folders it "
+                       "covers), with the unit's problems and a digest of every input its rows were made from.",
+        "type": "object", "required": ["format", "parts"],
+        "properties": {"format": {"const": 2}, "parts": {"type": "array", "items": part}},
     }
     out["store-marker.schema.json"] = {
         "$schema": "https://json-schema.org/draft/2020-12/schema",

@@ -17,6 +17,7 @@ from __future__ import annotations
 
 import contextlib
 import fcntl
+import hashlib
 import json
 import os
 import shutil
@@ -35,6 +36,8 @@ from .errors import (MapstoreError, NoCatalog, QueryError, StaleSnapshot, StoreB
 __all__ = [
     "STORE_FORMAT",
     "MAPS_SCHEMA",
+    "MAPS_SCHEMA_ID",
+    "PARTS_DIR",
     "DATASETS_SCHEMA",
     "PROBLEMS_SCHEMA",
     "ROWS_SCHEMA",
@@ -48,6 +51,8 @@ __all__ = [
     "write_json_atomic",
     "checkpoint",
     "Catalog",
+    "CatalogManifest",
+    "CatalogPart",
     "conform",
     "ensure_store",
 ]
@@ -84,7 +89,6 @@ ROWS_SCHEMA = pa.schema([
     ("vmin", _f64), ("vmax", _f64), ("vmean", _f64),
     ("missing_from", _s), ("p_clipped", _i64), ("sketch", pa.binary()),
 ])
-_ROWS_VIEW_SCHEMA = pa.schema([f for f in ROWS_SCHEMA if f.name != "sketch"])
 # pairs of rows of one feature set that are copies (written by features, read by check and export)
 COPIES_SCHEMA = pa.schema([("map_a", _s), ("map_b", _s), ("kind", _s), ("r", _f64), ("n_common", _i64)])
 FPROBLEMS_SCHEMA = pa.schema([
@@ -92,6 +96,14 @@ FPROBLEMS_SCHEMA = pa.schema([
     ("remedy", _s),
 ])
 
+
+# the fixed columns; participants.tsv adds its own
+PARTICIPANTS_SCHEMA = pa.schema([("dataset", _s), ("participant_id", _s), ("sub", _s), ("participant", _s)])
+LABELS_SCHEMA = pa.schema([("map_id", _s), ("concept", _s), ("direct", pa.bool_()), ("rule", _i32),
+                           ("vocabulary_sha256", _s)])
+FEATURE_SETS_SCHEMA = pa.schema([("feature_set", _s), ("default", pa.bool_()), ("rows", _i64), ("grid", _s),
+                                 ("grid_id", _s), ("shape", pa.list_(_i64)), ("mask", _s), ("n_voxels", _i64),
+                                 ("method", _s), ("stat", _s), ("spec_id", _s)])
 
 PROBLEMS_SCHEMA = pa.schema([
     ("path", _s), ("dataset", _s), ("code", _s), ("level", _s), ("stage", _s),
@@ -118,6 +130,62 @@ class Head:
     def from_json(cls, doc: dict[str, Any]) -> "Head":
         return cls(doc.get("catalog"), dict(doc.get("features") or {}), doc.get("default_features"),
                    doc.get("labels"), list(doc.get("history") or []))
+
+
+MAPS_SCHEMA_ID = hashlib.sha256(MAPS_SCHEMA.to_string().encode()).hexdigest()[:16]
+PARTS_DIR = "catalog/parts"
+
+
+@dataclass
+class CatalogPart:
+    """One Parquet part of the maps table: the rows one unit of work (a dataset, or some of its
+    top-level folders) wrote.  Parts are shared between snapshots until their unit changes."""
+
+    dataset: str
+    unit: str  # stable key of the unit of work (dataset + its top folders)
+    maps: str  # path relative to the store
+    rows: int
+    problems: str | None = None  # the unit's problems (Parquet, PROBLEMS_SCHEMA), if it had any
+    digest: str | None = None  # fingerprint of everything the rows were made from; None: never reused
+    schema: str = MAPS_SCHEMA_ID  # MAPS_SCHEMA when written ("" for stores older than parts)
+
+    def to_json(self) -> dict[str, Any]:
+        return dict(self.__dict__)
+
+    @classmethod
+    def from_json(cls, doc: dict[str, Any]) -> "CatalogPart":
+        return cls(**{k: doc.get(k) for k in ("dataset", "unit", "maps", "rows", "problems", "digest")},
+                   schema=doc.get("schema", ""))
+
+
+@dataclass
+class CatalogManifest:
+    """``catalog/<snapshot>/parts.json``: the maps parts a snapshot is made of, in dataset order."""
+
+    parts: list[CatalogPart] = field(default_factory=list)
+
+    FILE = "parts.json"
+
+    def to_json(self) -> dict[str, Any]:
+        return {"format": 2, "parts": [p.to_json() for p in self.parts]}
+
+    @classmethod
+    def from_json(cls, doc: dict[str, Any]) -> "CatalogManifest":
+        return cls([CatalogPart.from_json(d) for d in doc.get("parts") or []])
+
+    @classmethod
+    def read(cls, store: Path, snapshot: str) -> "CatalogManifest":
+        """The manifest of ``snapshot`` (a store-relative folder); a pre-parts snapshot is one part."""
+        folder = store / snapshot
+        f = folder / cls.FILE
+        try:
+            return cls.from_json(json.loads(f.read_text()))
+        except FileNotFoundError:
+            if (folder / "maps.parquet").exists():
+                return cls([CatalogPart("", "", f"{snapshot}/maps.parquet", -1, None, None, "")])
+            raise
+        except (OSError, ValueError) as exc:
+            raise StoreCorrupt(f"{f}: unreadable ({exc}); re-run 'mapstore index'") from None
 
 
 def new_snapshot_id() -> str:
@@ -238,10 +306,10 @@ def write_json_atomic(path: Path, doc: Any) -> None:
     checkpoint()
 
 
-def write_parquet_atomic(table: pa.Table, path: Path) -> None:
+def write_parquet_atomic(table: pa.Table, path: Path, row_group_size: int | None = None) -> None:
     checkpoint()
     tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}.tmp")
-    pq.write_table(table, tmp, compression="zstd")
+    pq.write_table(table, tmp, compression="zstd", row_group_size=row_group_size)
     with open(tmp, "rb") as fh:
         os.fsync(fh.fileno())
     checkpoint()
@@ -331,11 +399,12 @@ def commit_head(path: Path, head: Head, event: dict[str, Any]) -> None:
 
 
 def _collect_garbage(path: Path, head: Head) -> None:
-    # keep the current and the previous catalog snapshot, for readers still on it
+    # keep the current and the previous catalog snapshot (for readers still on it), every snapshot a
+    # live lease names, and the maps parts those snapshots are made of
     cat = path / "catalog"
     if not cat.is_dir():
         return
-    snaps = sorted((p for p in cat.iterdir() if p.is_dir() and not p.name.startswith(".")),
+    snaps = sorted((p for p in cat.iterdir() if p.is_dir() and not p.name.startswith(".") and p.name != "parts"),
                    key=lambda p: p.name)
     current = Path(head.catalog).name if head.catalog else None
     keep = {current} | {Path(d["catalog"]).name for d in leased_files(path) if d.get("catalog")}
@@ -345,20 +414,43 @@ def _collect_garbage(path: Path, head: Head) -> None:
     for p in snaps:
         if p.name not in keep:
             shutil.rmtree(p, ignore_errors=True)
+    parts = path / PARTS_DIR
+    if not parts.is_dir():
+        return
+    used: set[str] = set()
+    for name in keep:
+        if not (cat / name).is_dir():
+            continue
+        try:
+            manifest = CatalogManifest.read(path, f"catalog/{name}")
+        except (OSError, MapstoreError):
+            return  # not sure what is in use: collect nothing
+        for part in manifest.parts:
+            used.update(Path(f).name for f in (part.maps, part.problems) if f)
+    # only the writer (holding the lock) creates parts, so an unlisted one is left by a run that died
+    for f in parts.iterdir():
+        if f.name not in used:
+            with contextlib.suppress(OSError):
+                f.unlink()
 
 
 class Catalog:
-    """Read side of the catalog: Arrow tables and a read-only DuckDB over them."""
+    """Read side of the catalog: a read-only DuckDB whose views read the snapshot's Parquet files.
+
+    Nothing is loaded at open: each query reads the columns and row groups it needs
+    (projection and filter pushdown), so opening a store of a million maps costs what
+    reading its small HEAD costs.
+    """
 
     TABLES = ("maps", "datasets", "participants", "problems", "labels")
 
-    def __init__(self, path: str | os.PathLike[str]) -> None:
+    def __init__(self, path: str | os.PathLike[str], head: Head | None = None) -> None:
         self.path = Path(path).expanduser().absolute()
         if not self.path.exists():
             raise StoreNotFound(f"{self.path}: no such store; run 'mapstore index ROOT --store "
                                 f"{self.path}' first")
-        self.head = read_head(self.path)
-        self._tables: dict[str, pa.Table] = {}
+        self.head = head if head is not None else read_head(self.path)
+        self._given: dict[str, pa.Table] = {}
         self._con = None
 
     def require_catalog(self) -> None:
@@ -367,29 +459,25 @@ class Catalog:
             raise NoCatalog(f"{self.path}: the store has no catalog yet; run 'mapstore index ROOT --store "
                             f"{self.path}' first")
 
-    def table_path(self, name: str) -> Path | None:
-        if name == "labels":
-            if not self.head.labels:
-                return None
-            return self.path / self.head.labels["table"]
+    def manifest(self) -> CatalogManifest:
+        """The maps parts of the opened snapshot."""
         if not self.head.catalog:
-            return None
-        return self.path / self.head.catalog / f"{name}.parquet"
+            return CatalogManifest()
+        try:
+            return CatalogManifest.read(self.path, self.head.catalog)
+        except FileNotFoundError as exc:
+            self._raise_missing(Path(exc.filename or self.head.catalog))
+            raise
+
+    def use_table(self, name: str, table: pa.Table) -> None:
+        """Serve ``name`` from ``table`` instead of its file (labels derived for a newer catalog)."""
+        if self._con is not None:
+            raise RuntimeError("use_table must be called before the first query")
+        self._given[name] = table
 
     def table(self, name: str) -> pa.Table:
-        if name not in self._tables:
-            p = self.table_path(name)
-            if p is None or not p.exists():
-                if p is not None and self.head.catalog:
-                    if name != "participants":
-                        self._raise_missing(p)
-                self._tables[name] = _empty(name)
-            else:
-                try:
-                    self._tables[name] = pq.read_table(p, memory_map=True)
-                except (OSError, pa.ArrowException) as exc:
-                    raise StoreCorrupt(f"{p}: cannot read ({exc}); re-run 'mapstore index'") from None
-        return self._tables[name]
+        """A whole catalog table (all rows, all columns): prefer :meth:`sql` with a WHERE."""
+        return self.sql(f'SELECT * FROM "{name}"')
 
     def _raise_missing(self, p: Path) -> None:
         """A file of the opened snapshot is gone: stale (the store moved on) or corrupt."""
@@ -404,61 +492,74 @@ class Catalog:
         raise StoreCorrupt(f"{p}: catalog file missing; re-run 'mapstore index'")
 
     def connection(self):
-        """A DuckDB connection with one view per catalog table, no file access beyond them."""
+        """A DuckDB connection with one view per table; file access limited to this store."""
         if self._con is None:
             import duckdb
 
             con = duckdb.connect(":memory:")
-            for name in self.TABLES:
-                con.register(f"_t_{name}", self.table(name))
-                con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM "_t_{name}"')
-            for view, table in self._feature_tables().items():
-                con.register(f"_t_{view}", table)
-                con.execute(f'CREATE VIEW "{view}" AS SELECT * FROM "_t_{view}"')
+            con.execute("SET parquet_metadata_cache = true")
+            views = _ViewBuilder(con, self)
+            manifest = self.manifest()
+            views.files("maps", MAPS_SCHEMA, [self.path / p.maps for p in manifest.parts],
+                        current=all(p.schema == MAPS_SCHEMA_ID for p in manifest.parts))
+            snap = self.path / self.head.catalog if self.head.catalog else None
+            for name, schema in (("datasets", DATASETS_SCHEMA), ("problems", PROBLEMS_SCHEMA),
+                                 ("participants", PARTICIPANTS_SCHEMA)):
+                f = snap / f"{name}.parquet" if snap else None
+                if f is not None and not f.exists() and name != "participants":
+                    self._raise_missing(f)
+                views.files(name, schema, [f] if f is not None and f.exists() else [],
+                            current=name != "participants", loose=name == "participants")
+            labels = self.head.labels and self.path / self.head.labels["table"]
+            views.files("labels", LABELS_SCHEMA, [labels] if labels else [])
+            self._feature_views(views)
+            con.execute(f"SET allowed_directories = [{_sql_str(str(self.path) + os.sep)}]")
             con.execute("SET enable_external_access = false")
             con.execute("SET lock_configuration = true")
             self._con = con
         return self._con
 
-    def _feature_tables(self) -> dict[str, pa.Table]:
-        """Views over every feature set: rows (``features``), failures, and one row per set."""
-        rows, probs, sets, copies = [], [], [], []
+    def _feature_views(self, views: "_ViewBuilder") -> None:
+        """Views over every feature set: rows (``features``), failures, copies, and one row per set."""
+        rows, probs, copies, sets = [], [], [], []
         for name, entry in sorted(self.head.features.items()):
             try:
-                # the sketch bytes are for the copy scan, not for SQL
-                r = conform(pq.read_table(self.path / entry["rows"]), _ROWS_VIEW_SCHEMA)
-                p = pq.read_table(self.path / entry["problems"])
-                if entry.get("copies"):
-                    c = pq.read_table(self.path / entry["copies"])
-                    copies.append(c.add_column(0, "feature_set", pa.array([name] * c.num_rows, pa.string())))
                 spec = json.loads((self.path / entry["dir"] / "set.json").read_text())
             except FileNotFoundError as exc:
-                self._raise_missing(Path(exc.filename or entry["rows"]))
-            except (OSError, ValueError, pa.ArrowException) as exc:
+                self._raise_missing(Path(exc.filename or entry["dir"]))
+            except (OSError, ValueError) as exc:
                 raise StoreCorrupt(f"{self.path / entry['dir']}: feature set {name!r} unreadable ({exc}); "
                                    f"rebuild it with 'mapstore features --name {name}'") from None
-            rows.append(r.add_column(0, "feature_set", pa.array([name] * r.num_rows, pa.string())))
-            probs.append(p.add_column(0, "feature_set", pa.array([name] * p.num_rows, pa.string())))
+            for kind, out in (("rows", rows), ("problems", probs), ("copies", copies)):
+                if entry.get(kind):
+                    f = self.path / entry[kind]
+                    if not f.exists():
+                        self._raise_missing(f)
+                    out.append((name, f))
             sets.append({"feature_set": name, "default": name == self.head.default_features,
-                         "rows": r.num_rows, "grid": spec["grid"]["name"], "grid_id": spec["grid_id"],
+                         "rows": entry.get("n_rows"), "grid": spec["grid"]["name"], "grid_id": spec["grid_id"],
                          "shape": spec["grid"]["shape"], "mask": spec["mask"]["name"],
                          "n_voxels": spec["mask"]["n_voxels"], "method": spec["method"],
                          "stat": spec["stat"], "spec_id": spec["spec_id"]})
-        def union(parts: list[pa.Table], schema: pa.Schema) -> pa.Table:
-            if parts:
-                return pa.concat_tables(parts)
-            return pa.schema([("feature_set", pa.string()), *schema]).empty_table()
-
-        sets_schema = pa.schema([("feature_set", _s), ("default", pa.bool_()), ("rows", _i64), ("grid", _s),
-                                 ("grid_id", _s), ("shape", pa.list_(_i64)), ("mask", _s), ("n_voxels", _i64),
-                                 ("method", _s), ("stat", _s), ("spec_id", _s)])
-        return {"features": union(rows, _ROWS_VIEW_SCHEMA),
-                "feature_problems": union(probs, FPROBLEMS_SCHEMA),
-                "feature_sets": pa.Table.from_pylist(sets, schema=sets_schema),
-                "feature_copies": union(copies, COPIES_SCHEMA)}
+        # the sketch bytes are for the copy scan, not for SQL
+        views.per_set("features", ROWS_SCHEMA, rows, exclude=("sketch",))
+        views.per_set("feature_problems", FPROBLEMS_SCHEMA, probs)
+        views.per_set("feature_copies", COPIES_SCHEMA, copies)
+        table = pa.Table.from_pylist(sets, schema=FEATURE_SETS_SCHEMA)
+        if any(s["rows"] is None for s in sets):  # sets written before HEAD counted their rows
+            counts = dict(views.con.sql("SELECT feature_set, count(*) FROM features GROUP BY ALL").fetchall())
+            table = table.set_column(2, "rows", pa.array([counts.get(s["feature_set"], 0) for s in sets], _i64))
+        views.arrow("feature_sets", table)
 
     def sql(self, query: str) -> pa.Table:
         """Run one read-only SQL statement over the catalog views and return an Arrow table."""
+        return self._run(query).to_arrow_table()
+
+    def stream(self, query: str, batch_rows: int = 65536) -> pa.RecordBatchReader:
+        """Like :meth:`sql`, as a stream of Arrow record batches (for results larger than memory)."""
+        return self._run(query).to_arrow_reader(batch_rows)
+
+    def _run(self, query: str):
         import duckdb
 
         con = self.connection()
@@ -474,11 +575,72 @@ class Catalog:
                              f"got a {kind.name} statement; the catalog is changed by "
                              "'mapstore index', 'features' and 'labels'")
         try:
-            return con.sql(query).to_arrow_table()
+            return con.sql(query)
+        except duckdb.IOException as exc:
+            missing = _missing_file(str(exc))
+            if missing is not None:
+                self._raise_missing(Path(missing))
+            raise StoreCorrupt(f"{self.path}: cannot read the catalog ({exc}); re-run 'mapstore index'") from None
         except duckdb.Error as exc:
             raise QueryError(f"{exc}\n(views: {', '.join(self.TABLES)}, features, feature_sets, "
                              f"feature_problems, feature_copies; see 'mapstore sql --store "
                              f"{self.path} \"DESCRIBE maps\"')") from None
+
+
+def _missing_file(message: str) -> str | None:
+    import re
+
+    hit = re.search(r'(?:No files found that match the pattern|[Cc]annot open file) "([^"]+)"', message)
+    return hit.group(1) if hit else None
+
+
+def _sql_str(text: str) -> str:
+    return "'" + text.replace("'", "''") + "'"
+
+
+class _ViewBuilder:
+    """Creates the catalog's views: over Parquet files (read at query time) or small Arrow tables."""
+
+    def __init__(self, con, cat: Catalog) -> None:
+        self.con = con
+        self.cat = cat
+
+    def arrow(self, name: str, table: pa.Table) -> None:
+        self.con.register(f"_t_{name}", table)
+        self.con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM "_t_{name}"')
+
+    def _source(self, name: str, schema: pa.Schema, files: list[Path], current: bool, loose: bool) -> str:
+        """A FROM clause with exactly ``schema``'s columns (files of older versions lack some)."""
+        lst = "[" + ", ".join(_sql_str(str(f)) for f in files) + "]"
+        if loose:  # participants: columns vary by store; every file's columns, whatever they are
+            return f"read_parquet({lst}, union_by_name = true)"
+        if current:
+            return f"read_parquet({lst})"
+        self.con.register(f"_e_{name}", schema.empty_table())
+        cols = ", ".join(f'"{f.name}"' for f in schema)
+        return f'(SELECT {cols} FROM (FROM "_e_{name}" UNION ALL BY NAME FROM read_parquet({lst}, union_by_name = ' \
+               "true)))"
+
+    def files(self, name: str, schema: pa.Schema, files: list[Path], current: bool = True,
+              loose: bool = False) -> None:
+        if name in self.cat._given:
+            self.arrow(name, self.cat._given[name])
+        elif not files:
+            self.arrow(name, schema.empty_table())
+        else:
+            self.con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM {self._source(name, schema, files, current, loose)}')
+
+    def per_set(self, name: str, schema: pa.Schema, files: list[tuple[str, Path]], exclude: tuple[str, ...] = ()
+                ) -> None:
+        """One view over a table of every feature set, with a ``feature_set`` column first."""
+        if not files:
+            self.arrow(name, pa.schema([("feature_set", _s),
+                                        *[f for f in schema if f.name not in exclude]]).empty_table())
+            return
+        drop = f" EXCLUDE ({', '.join(exclude)})" if exclude else ""
+        parts = [f"SELECT {_sql_str(set_name)} AS feature_set, *{drop} FROM "
+                 f"{self._source(f'{name}_{i}', schema, [f], False, False)}" for i, (set_name, f) in enumerate(files)]
+        self.con.execute(f'CREATE VIEW "{name}" AS ' + " UNION ALL ".join(parts))
 
 
 def conform(table: pa.Table, schema: pa.Schema) -> pa.Table:
@@ -486,15 +648,3 @@ def conform(table: pa.Table, schema: pa.Schema) -> pa.Table:
     cols = [table[f.name].cast(f.type) if f.name in table.column_names else pa.nulls(table.num_rows, f.type)
             for f in schema]
     return pa.Table.from_arrays(cols, schema=schema)
-
-
-def _empty(name: str) -> pa.Table:
-    schema = {"maps": MAPS_SCHEMA, "datasets": DATASETS_SCHEMA, "problems": PROBLEMS_SCHEMA}.get(name)
-    if schema is None:
-        if name == "labels":
-            schema = pa.schema([("map_id", _s), ("concept", _s), ("direct", pa.bool_()),
-                                ("rule", _i32), ("vocabulary_sha256", _s)])  # = labels.LABELS_SCHEMA
-        else:
-            schema = pa.schema([("dataset", _s), ("participant_id", _s), ("sub", _s),
-                                ("participant", _s)])
-    return schema.empty_table()

@@ -12,6 +12,7 @@ from pathlib import Path
 import duckdb
 import nibabel as nib
 import numpy as np
+import pyarrow as pa
 import pyarrow.parquet as pq
 import pytest
 
@@ -22,9 +23,11 @@ from mapstore.errors import ParameterError, QueryError, StoreBusy, StoreNotFound
 from .conftest import NIBABEL_DATA, make_derivative, write_json, write_map
 
 
-def _maps_file(store):
+def _maps_files(store):
+    """The maps parts of the current snapshot, from its parts list (plain Parquet files)."""
     head = json.loads((store / "HEAD").read_text())
-    return store / head["catalog"] / "maps.parquet"
+    parts = json.loads((store / head["catalog"] / "parts.json").read_text())["parts"]
+    return [str(store / p["maps"]) for p in parts]
 
 
 def test_demo_index_contents(demo_store, demo_tree):
@@ -64,9 +67,10 @@ def test_header_columns_agree_with_nibabel(demo_store):
 
 
 def test_catalog_readable_by_pyarrow_and_duckdb_directly(demo_store):
-    f = _maps_file(demo_store)
-    t = pq.read_table(f)
-    n = duckdb.connect().execute(f"SELECT count(*) FROM read_parquet('{f}')").fetchone()[0]
+    files = _maps_files(demo_store)
+    assert len(files) == 6  # one part per demo dataset
+    t = pa.concat_tables([pq.read_table(f) for f in files])
+    n = duckdb.connect().execute(f"SELECT count(*) FROM read_parquet({files})").fetchone()[0]
     assert t.num_rows == n == mapstore.open(demo_store).sql("SELECT count(*) n FROM maps")["n"][0].as_py()
 
 

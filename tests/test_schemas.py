@@ -27,8 +27,11 @@ def test_schemas_are_valid_and_validate_demo_files(demo_store, demo_tree):
     jsonschema.validate(head, schemas["store-head.schema.json"])
     jsonschema.validate(json.loads((demo_tree / "name-rules.json").read_text()), schemas["name-rules.schema.json"])
     jsonschema.validate(json.loads((demo_tree / "origins.json").read_text()), schemas["origins.schema.json"])
+    parts = json.loads((demo_store / head["catalog"] / "parts.json").read_text())
+    jsonschema.validate(parts, schemas["catalog-parts.schema.json"])
     for table in ("maps", "datasets", "problems"):
-        rows = pq.read_table(demo_store / head["catalog"] / f"{table}.parquet").to_pylist()
+        f = demo_store / (parts["parts"][0]["maps"] if table == "maps" else f"{head['catalog']}/{table}.parquet")
+        rows = pq.read_table(f).to_pylist()
         for row in rows[:50]:
             jsonschema.validate(row, schemas[f"{table}.schema.json"])
 
