@@ -40,7 +40,7 @@ from .discover import (
 )
 from ._version import __version__
 from .params import resolve_jobs
-from .runner import run as run_units
+from .runner import die_once_for_tests, run as run_units
 from .errors import HeaderError, NoDatasetsFound, ParameterError, StoreFull
 from .labels import refresh_labels
 from .hashing import ReadDeadline, ReadTimeout, digest_file
@@ -285,10 +285,12 @@ def _run_unit(unit: _Unit) -> _UnitResult:
         enabled = gc.isenabled()
         gc.disable()  # rows are tuples of strings (no cycles); collections over a growing heap cost O(n^2)
         try:
-            return _crawl_unit(unit, deadline)
+            result = _crawl_unit(unit, deadline)
         finally:
             if enabled:
                 gc.enable()
+    die_once_for_tests()  # a worker lost after writing its part: the part is an orphan, the unit runs again
+    return result
 
 
 def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:

@@ -107,9 +107,12 @@ def write_table(table, fmt: str, out: str | None) -> None:
 @click.option("--prune", is_flag=True, help="Drop datasets from earlier runs not under these ROOTs.")
 @click.option("--read-timeout", type=click.FloatRange(min=0, min_open=True), default=60.0, show_default=True,
               help="Seconds a file's read may make no progress before the file is skipped (read-timeout).")
-def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout) -> None:
+@click.option("--dask", "dask_address", help="Run the crawl on this Dask scheduler (e.g. tcp://host:8786); "
+              "workers must see the datasets and the store at the same paths.")
+def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_address) -> None:
     """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them)."""
     report = mapstore.index(roots, store, rules=list(rules) or None, overrides=origins, jobs=jobs, prune=prune,
+                            scheduler=dask_address,
                             read_timeout=read_timeout)
     click.echo(report.summary())
 

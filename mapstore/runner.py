@@ -14,7 +14,7 @@ from typing import Any, Callable, Iterator, Sequence, TypeVar
 
 from .errors import MapstoreError, ParameterError
 
-__all__ = ["process_pool", "run", "dask_client"]
+__all__ = ["process_pool", "run", "dask_client", "die_once_for_tests"]
 
 T = TypeVar("T")
 R = TypeVar("R")
@@ -43,6 +43,23 @@ def process_pool(workers: int) -> Iterator[ProcessPoolExecutor]:
             yield pool
     finally:
         gc.unfreeze()
+
+
+def die_once_for_tests() -> None:
+    """Test hook: with ``MAPSTORE_TEST_DIE_ONCE=FILE`` set, the first unit of work to reach this
+    point (in any process) SIGKILLs its process, as a cluster worker lost mid-run; FILE marks it done."""
+    import os
+
+    flag = os.environ.get("MAPSTORE_TEST_DIE_ONCE")
+    if not flag:
+        return
+    try:
+        os.close(os.open(flag, os.O_CREAT | os.O_EXCL))
+    except FileExistsError:
+        return
+    import signal
+
+    os.kill(os.getpid(), signal.SIGKILL)
 
 
 def dask_client(scheduler: Any):
