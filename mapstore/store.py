@@ -545,11 +545,11 @@ class Catalog:
         views.per_set("features", ROWS_SCHEMA, rows, exclude=("sketch",))
         views.per_set("feature_problems", FPROBLEMS_SCHEMA, probs)
         views.per_set("feature_copies", COPIES_SCHEMA, copies)
-        table = pa.Table.from_pylist(sets, schema=FEATURE_SETS_SCHEMA)
         if any(s["rows"] is None for s in sets):  # sets written before HEAD counted their rows
             counts = dict(views.con.sql("SELECT feature_set, count(*) FROM features GROUP BY ALL").fetchall())
-            table = table.set_column(2, "rows", pa.array([counts.get(s["feature_set"], 0) for s in sets], _i64))
-        views.arrow("feature_sets", table)
+            for s in sets:
+                s["rows"] = counts.get(s["feature_set"], 0)
+        views.literal("feature_sets", FEATURE_SETS_SCHEMA, sets)
 
     def sql(self, query: str) -> pa.Table:
         """Run one read-only SQL statement over the catalog views and return an Arrow table."""
@@ -598,48 +598,87 @@ def _sql_str(text: str) -> str:
     return "'" + text.replace("'", "''") + "'"
 
 
+_DUCK_TYPES = {pa.string(): "VARCHAR", pa.int32(): "INTEGER", pa.int64(): "BIGINT", pa.float64(): "DOUBLE",
+               pa.bool_(): "BOOLEAN", pa.binary(): "BLOB"}
+
+
+def _duck_type(t: pa.DataType) -> str:
+    if pa.types.is_list(t):
+        return _duck_type(t.value_type) + "[]"
+    return _DUCK_TYPES[t]
+
+
+def _sql_value(v: Any, t: pa.DataType) -> str:
+    if v is None:
+        return f"NULL::{_duck_type(t)}"
+    if pa.types.is_list(t):
+        return "[" + ", ".join(_sql_value(x, t.value_type) for x in v) + f"]::{_duck_type(t)}"
+    if pa.types.is_boolean(t):
+        return "true" if v else "false"
+    if pa.types.is_string(t):
+        return _sql_str(str(v))
+    return f"{v!r}::{_duck_type(t)}"
+
+
 class _ViewBuilder:
-    """Creates the catalog's views: over Parquet files (read at query time) or small Arrow tables."""
+    """Creates the catalog's views: over Parquet files (read at query time) or small literal tables.
+
+    Views are plain SQL: registering an Arrow table with DuckDB imports pandas (~0.2 s), which
+    would be most of the cost of opening a store.
+    """
 
     def __init__(self, con, cat: Catalog) -> None:
         self.con = con
         self.cat = cat
 
+    @staticmethod
+    def _empty(schema: pa.Schema) -> str:
+        return "SELECT " + ", ".join(f'NULL::{_duck_type(f.type)} AS "{f.name}"' for f in schema) + " WHERE false"
+
+    def literal(self, name: str, schema: pa.Schema, rows: list[dict[str, Any]]) -> None:
+        """A view holding ``rows`` (a few: one per feature set)."""
+        if not rows:
+            body = self._empty(schema)
+        else:
+            values = ", ".join("(" + ", ".join(_sql_value(r.get(f.name), f.type) for f in schema) + ")" for r in rows)
+            names = ", ".join(f'"{f.name}"' for f in schema)
+            body = f"SELECT * FROM (VALUES {values}) AS t({names})"
+        self.con.execute(f'CREATE VIEW "{name}" AS {body}')
+
     def arrow(self, name: str, table: pa.Table) -> None:
         self.con.register(f"_t_{name}", table)
         self.con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM "_t_{name}"')
 
-    def _source(self, name: str, schema: pa.Schema, files: list[Path], current: bool, loose: bool) -> str:
+    def _source(self, schema: pa.Schema, files: list[Path], current: bool, loose: bool) -> str:
         """A FROM clause with exactly ``schema``'s columns (files of older versions lack some)."""
         lst = "[" + ", ".join(_sql_str(str(f)) for f in files) + "]"
         if loose:  # participants: columns vary by store; every file's columns, whatever they are
             return f"read_parquet({lst}, union_by_name = true)"
         if current:
             return f"read_parquet({lst})"
-        self.con.register(f"_e_{name}", schema.empty_table())
         cols = ", ".join(f'"{f.name}"' for f in schema)
-        return f'(SELECT {cols} FROM (FROM "_e_{name}" UNION ALL BY NAME FROM read_parquet({lst}, union_by_name = ' \
-               "true)))"
+        return f"(SELECT {cols} FROM ({self._empty(schema)} UNION ALL BY NAME " \
+               f"FROM read_parquet({lst}, union_by_name = true)))"
 
     def files(self, name: str, schema: pa.Schema, files: list[Path], current: bool = True,
               loose: bool = False) -> None:
         if name in self.cat._given:
             self.arrow(name, self.cat._given[name])
         elif not files:
-            self.arrow(name, schema.empty_table())
+            self.con.execute(f'CREATE VIEW "{name}" AS {self._empty(schema)}')
         else:
-            self.con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM {self._source(name, schema, files, current, loose)}')
+            self.con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM {self._source(schema, files, current, loose)}')
 
     def per_set(self, name: str, schema: pa.Schema, files: list[tuple[str, Path]], exclude: tuple[str, ...] = ()
                 ) -> None:
         """One view over a table of every feature set, with a ``feature_set`` column first."""
         if not files:
-            self.arrow(name, pa.schema([("feature_set", _s),
-                                        *[f for f in schema if f.name not in exclude]]).empty_table())
+            empty = pa.schema([("feature_set", _s), *[f for f in schema if f.name not in exclude]])
+            self.con.execute(f'CREATE VIEW "{name}" AS {self._empty(empty)}')
             return
         drop = f" EXCLUDE ({', '.join(exclude)})" if exclude else ""
-        parts = [f"SELECT {_sql_str(set_name)} AS feature_set, *{drop} FROM "
-                 f"{self._source(f'{name}_{i}', schema, [f], False, False)}" for i, (set_name, f) in enumerate(files)]
+        parts = [f"SELECT {_sql_str(set_name)} AS feature_set, *{drop} FROM {self._source(schema, [f], False, False)}"
+                 for set_name, f in files]
         self.con.execute(f'CREATE VIEW "{name}" AS ' + " UNION ALL ".join(parts))
 
 
