@@ -34,6 +34,7 @@ from .discover import (
     Problem,
     SidecarResolver,
     find_datasets,
+    inside,
     read_participants,
     top_folders,
     walk_dataset,
@@ -57,6 +58,7 @@ from .store import (
     Head,
     commit_head,
     ensure_store,
+    file_slug,
     new_snapshot_id,
     read_head,
     write_json_atomic,
@@ -196,8 +198,7 @@ def _participants_table(rows: list[dict[str, Any]]) -> pa.Table:
 
 
 def _under(path: str, roots: list[Path]) -> bool:
-    p = Path(path)
-    return any(p == r or r in p.parents for r in roots)
+    return any(inside(path, r) for r in roots)
 
 
 @dataclass
@@ -398,8 +399,7 @@ def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
 
 
 def _part_name(unit: _Unit) -> str:
-    slug = re.sub(r"[^A-Za-z0-9._-]+", "_", unit.ds.key)[:40]
-    return f"{PARTS_DIR}/{slug}-{new_snapshot_id()}"
+    return f"{PARTS_DIR}/{file_slug(unit.ds.key)}-{new_snapshot_id()}"
 
 
 def _write_part(unit: _Unit, table: pa.Table, problems: list[Problem], digest: str | None) -> CatalogPart | None:
@@ -681,9 +681,8 @@ def _find(roots: list[Path], store_path: Path) -> tuple[list[DatasetInfo], list[
                               "give a derivative dataset, a raw dataset with derivatives/, or a folder of them. "
                               "Nothing was written.")
     for ds in datasets:
-        droot = Path(ds.root)
-        if store_path == droot or droot in store_path.parents:
-            raise ParameterError(f"--store {store_path} lies inside the dataset {droot}; keep the store "
+        if inside(store_path, ds.root):
+            raise ParameterError(f"--store {store_path} lies inside the dataset {ds.root}; keep the store "
                                  "outside source datasets (mapstore never writes to them)")
     return datasets, problems
 

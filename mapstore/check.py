@@ -20,6 +20,9 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
+from .copies import pair_correlation
+from .grid import mni152_template
+
 __all__ = ["Finding", "CheckReport", "check_store", "png_bytes", "report_json", "LEVELS"]
 
 LEVELS = ("info", "warning", "error")
@@ -362,8 +365,6 @@ def _standardised(x: np.ndarray) -> np.ndarray:
 
 def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement: float) -> None:
     """Per concept: each study's mean map, and how well those means agree across studies."""
-    from .copies import pair_correlation
-
     if not store.catalog.head.labels:
         return
     in_set = set(fs.map_ids)
@@ -415,8 +416,6 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
 
 def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report) -> None:
     """Each study's mean map over the MNI152 template: red positive, blue negative, one row per study."""
-    from .grid import mni152_template
-
     aff = fs.grid.affine_array
     bg = _slices(mni152_template(fs.grid), aff)
     lo, hi = np.nanpercentile(bg, [2, 99.5]) if np.nanmax(bg) > 0 else (0.0, 1.0)

@@ -15,6 +15,9 @@ import click
 
 import mapstore
 
+from .check import report_json
+from .demo import make_demo
+
 FINDINGS_EXIT = 3  # check found something at --fail-on, or verify found a change (1 is a failure to run)
 
 
@@ -242,8 +245,6 @@ def verify_cmd(manifest) -> None:
               help="Exit 1 when a finding is at this level or worse.")
 def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fail_on) -> None:
     """Check grids, space, coverage, stat types, metadata, copies and concept agreement of a store."""
-    from .check import report_json
-
     _target(html_out, "--html")
     report = mapstore.open(store).check(feature_set, min_coverage=min_coverage, pictures=bool(html_out),
                                         min_agreement=min_agreement)
@@ -265,8 +266,6 @@ def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fa
               help="Fraction of the demo's subjects to generate.")
 def demo_cmd(folder, scale) -> None:
     """Generate the invented demo consortium in FOLDER and run the whole job on it."""
-    from .demo import make_demo
-
     base = Path(folder).absolute()
     data, store = base / "data", base / "store"
     click.echo(f"writing the invented consortium to {data} ...")

@@ -34,6 +34,7 @@ __all__ = [
     "MetadataOverrides",
     "find_datasets",
     "walk_dataset",
+    "inside",
     "top_folders",
     "SidecarResolver",
     "read_participants",
@@ -703,6 +704,12 @@ def find_datasets(roots: Iterable[str | os.PathLike[str]], max_depth: int = 4
                                     "give each dataset a distinct Name in dataset_description.json",
                                     "warning", ds.key))
     return found, problems
+
+
+def inside(path: str | os.PathLike[str], folder: str | os.PathLike[str]) -> bool:
+    """True when ``path`` is ``folder`` or lies under it (both absolute; no file is touched)."""
+    p, f = Path(path), Path(folder)
+    return p == f or f in p.parents
 
 
 def top_folders(ds: DatasetInfo) -> list[str]:

@@ -36,8 +36,11 @@ import pyarrow.parquet as pq
 from ._version import __version__
 from .copies import NEAR_COPY_R
 from .errors import ExportError, ParameterError
-from .query import Selection, parse_scheme
-from .store import checkpoint
+from .discover import inside
+from .hashing import sha256_file
+from .features import FeatureSet
+from .query import Selection, fold_vector, parse_scheme
+from .store import Catalog, checkpoint
 
 __all__ = ["ExportReport", "VerifyReport", "export_selection", "verify", "json_schemas"]
 
@@ -70,14 +73,6 @@ class ExportReport:
                 + (f"\nWARNING: {len(self.leaks)} leak(s) accepted with --allow-leak" if self.leaks else ""))
 
 
-def _sha256_file(path: Path) -> str:
-    h = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 22), b""):
-            h.update(block)
-    return h.hexdigest()
-
-
 def _row_hash(row: np.ndarray) -> str:
     return hashlib.sha256(np.ascontiguousarray(row, dtype=np.float32).tobytes()).hexdigest()
 
@@ -94,9 +89,8 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
     parse_scheme(scheme)
     out = Path(out).expanduser().absolute()
     for root in sel.store.sql("SELECT root FROM datasets")["root"].to_pylist():
-        r = Path(root)
-        if out == r or r in out.parents:
-            raise ExportError(f"{out}: lies inside the source dataset {r}; mapstore never writes to source "
+        if inside(out, root):
+            raise ExportError(f"{out}: lies inside the source dataset {root}; mapstore never writes to source "
                               "datasets, choose an --out folder elsewhere")
     if out.exists() and any(out.iterdir()) and not overwrite:
         raise ExportError(f"{out}: folder exists and is not empty; choose a new --out or pass --overwrite")
@@ -106,9 +100,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
     leaks = [str(w.message) for w in caught if "leaky split" in str(w.message)]
     for w in caught:  # recorded to keep them in the manifest; still shown to the caller
         warnings.warn(w.message, w.category, stacklevel=2)
-    fold = np.full(len(sel), -1, dtype=np.int64)
-    for i, (_, te) in enumerate(splits):
-        fold[te] = i
+    fold = fold_vector(splits, len(sel))
     kind, _ = parse_scheme(scheme)
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.tmp"
@@ -207,7 +199,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, row_hashes, x_hashes, fmt)
         manifest["near_copy_r"] = NEAR_COPY_R if near_copy_r is None else near_copy_r
         # the data files are checked row by row against row_sha256 instead of hashed whole
-        manifest["files"] = {p.name: _sha256_file(p) for p in sorted(tmp.iterdir())
+        manifest["files"] = {p.name: sha256_file(str(p)) for p in sorted(tmp.iterdir())
                              if p.name not in DATA_FILES}
         (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1, sort_keys=True, default=str))
         checkpoint()
@@ -290,9 +282,6 @@ class VerifyReport:
 
 def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
     """Re-check an export: source file hashes, the store's rows, and the exported files."""
-    from .features import FeatureSet
-    from .store import Catalog
-
     mpath = Path(manifest_path)
     if mpath.is_dir():
         mpath = mpath / "manifest.json"
@@ -310,14 +299,14 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
         p = folder / name
         if not p.exists():
             changes.append(f"export file missing: {name}")
-        elif _sha256_file(p) != sha:
+        elif sha256_file(str(p)) != sha:
             changes.append(f"export file changed: {name}")
     for s in man["sources"]:
         p = Path(s["path"])
         if not p.exists():
             changes.append(f"source missing: {p}")
             continue
-        got = _sha256_file(p)
+        got = sha256_file(str(p))
         if got != s["sha256"]:
             changes.append(f"source changed: {p} (sha256 {s['sha256'][:12]}... -> {got[:12]}...)")
     n_rows = 0

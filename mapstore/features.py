@@ -60,6 +60,7 @@ from .store import (
     checkpoint,
     commit_head,
     conform,
+    file_slug,
     leased_files,
     new_snapshot_id,
     read_head,
@@ -321,6 +322,18 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
     return {"rows": rows, "problems": problems}
 
 
+def _per_dataset(items: list[_Item], dataset_of: dict[str, str], n: int):
+    """Batches of at most ``n`` items of one dataset each: a study's rows live in its own shards."""
+    groups: dict[str, list[_Item]] = {}
+    for it in items:
+        groups.setdefault(dataset_of[it.map_id], []).append(it)
+    k = 0
+    for ds, group in groups.items():
+        for i in range(0, len(group), n):
+            yield ds, group[i:i + n], k
+            k += 1
+
+
 def _n_items(b: _Batch) -> int:
     return len(b.items)
 
@@ -341,11 +354,11 @@ _Z_READY = ("t", "p", "z")
 def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], stat: str
                  ) -> tuple[list[dict[str, Any]], dict[str, int]]:
     """Maps the set takes, and how many the defaults left out (and why)."""
-    q = ("SELECT m.map_id, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, m.model_mask, "
-         "m.model_mask_sha256 FROM maps m JOIN datasets d USING (dataset)")
+    q = ("SELECT m.map_id, m.dataset, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, "
+         "m.model_mask, m.model_mask_sha256 FROM maps m JOIN datasets d USING (dataset)")
     if where:
         q += f" WHERE {where}"
-    q += " ORDER BY m.map_id"
+    q += " ORDER BY m.dataset, m.relpath"  # batches (and so shards) hold one dataset's maps
     try:
         rows = cat.sql(q).to_pylist()
     except QueryError as exc:
@@ -536,8 +549,10 @@ def build_features(
         write_json_atomic(set_dir / "set.json", spec)
 
         wanted: dict[str, _Item] = {}
+        dataset_of: dict[str, str] = {}
         for r in rows_sel:
             wanted[r["map_id"]] = _item(r, feature_key(r["sha256"], spec, r["dof"], r["model_mask_sha256"]))
+            dataset_of[r["map_id"]] = r["dataset"]
         # keyed by map too: byte-identical copies of a file share a feature key, not a row
         have = {mk_: i for i, mk_ in enumerate(zip(old_rows["map_id"].to_pylist(),
                                                    old_rows["feature_key"].to_pylist()))}
@@ -547,9 +562,9 @@ def build_features(
         dropped = old_rows.num_rows - kept.num_rows
 
         seed = Sketcher.for_set(mk.sha256, mk.n_voxels).seed
-        batches = [_Batch(str(set_dir), f"shard-{new_snapshot_id()}-{i:05d}.npy", todo[i:i + batch_n],
+        batches = [_Batch(str(set_dir), f"shard-{file_slug(ds)}-{new_snapshot_id()}-{i:05d}.npy", items,
                           sketch_seed=seed, **common)
-                   for i in range(0, len(todo), batch_n)]
+                   for ds, items, i in _per_dataset(todo, dataset_of, batch_n)]
         new_rows: list[dict[str, Any]] = []
         problems: list[dict[str, Any]] = list(coverage_problems)
         paths: dict[str, int] = {}
@@ -662,20 +677,53 @@ class FeatureSet:
         self.name = name
         self.path = store_path / entry["dir"]
         self._copies_path = store_path / entry["copies"] if entry.get("copies") else None
+        self._rows_path = store_path / entry["rows"]
         try:
             self.spec: dict[str, Any] = json.loads((self.path / "set.json").read_text())
-            self.rows: pa.Table = pq.read_table(store_path / entry["rows"])
+            self._rows_file = pq.ParquetFile(self._rows_path)  # the footer only: columns are read when needed
         except (OSError, ValueError, pa.ArrowException) as exc:
             raise FeatureError(f"{self.path}: feature set {name!r} is unreadable ({exc})") from None
         self.grid = grid_from_spec(self.spec["grid"]["shape"],
                                    np.reshape(self.spec["grid"]["affine"], (4, 4)), self.spec["grid"]["name"])
         self._indices: np.ndarray | None = None
         self._shards: dict[str, np.ndarray] = {}
-        ids = self.rows["map_id"].to_pylist()
-        self._pos = {m: i for i, m in enumerate(ids)}
+        self._columns: dict[str, pa.ChunkedArray | None] = {}
+        self._rows: pa.Table | None = None
+        self._pos_map: dict[str, int] | None = None
+
+    @property
+    def rows(self) -> pa.Table:
+        """The whole rows table (every column; prefer the methods, which read only what they need)."""
+        if self._rows is None:
+            self._rows = self._rows_file.read()
+        return self._rows
+
+    def _column(self, name: str) -> pa.ChunkedArray | None:
+        """One column of the rows table (None when the set predates it), read once."""
+        if name not in self._columns:
+            if self._rows is not None:
+                self._columns[name] = self._rows[name] if name in self._rows.column_names else None
+            elif name in self._rows_file.schema_arrow.names:
+                try:
+                    self._columns[name] = self._rows_file.read(columns=[name])[name]
+                except (OSError, pa.ArrowException) as exc:
+                    raise FeatureError(f"{self._rows_path}: unreadable ({exc}); rebuild with 'mapstore "
+                                       f"features --name {self.name}'") from None
+            else:
+                self._columns[name] = None
+        return self._columns[name]
+
+    @property
+    def _pos(self) -> dict[str, int]:
+        if self._pos_map is None:
+            self._pos_map = {m: i for i, m in enumerate(self._column("map_id").to_pylist())}
+        return self._pos_map
+
+    def __len__(self) -> int:
+        return self._rows_file.metadata.num_rows
 
     def __repr__(self) -> str:
-        return (f"FeatureSet({self.name!r}, rows={self.rows.num_rows}, voxels={self.n_voxels}, "
+        return (f"FeatureSet({self.name!r}, rows={len(self)}, voxels={self.n_voxels}, "
                 f"grid={self.grid.name}, mask={self.spec['mask']['name']})")
 
     @property
@@ -684,7 +732,7 @@ class FeatureSet:
 
     @property
     def map_ids(self) -> list[str]:
-        return self.rows["map_id"].to_pylist()
+        return self._column("map_id").to_pylist()
 
     @property
     def mask_indices(self) -> np.ndarray:
@@ -747,8 +795,8 @@ class FeatureSet:
             raise FeatureError(f"{len(missing)} map(s) have no row in feature set {self.name!r} (first: "
                                f"{missing[0]}); build it with 'mapstore features --name {self.name}'")
         pos = np.array([self._pos[m] for m in map_ids], dtype=np.int64)
-        shard_col = self.rows["shard"].to_numpy(zero_copy_only=False)[pos] if len(pos) else np.array([])
-        row_col = self.rows["row"].to_numpy()[pos] if len(pos) else np.array([], dtype=np.int64)
+        shard_col = self._column("shard").to_numpy()[pos] if len(pos) else np.array([])
+        row_col = self._column("row").to_numpy()[pos] if len(pos) else np.array([], dtype=np.int64)
         for shard in dict.fromkeys(shard_col):
             sel = np.flatnonzero(shard_col == shard)
             order = np.argsort(row_col[sel], kind="stable")
@@ -765,8 +813,8 @@ class FeatureSet:
     def row_hashes(self, map_ids) -> list[str]:
         """SHA-256 of each row's float32 bytes, recorded when the row was built."""
         map_ids = list(map_ids)
-        col = self.rows["row_sha256"].to_pylist() if "row_sha256" in self.rows.column_names else \
-            [None] * self.rows.num_rows
+        hashes = self._column("row_sha256")
+        col = hashes.to_pylist() if hashes is not None else [None] * len(self)
         out = [col[self._pos[m]] for m in map_ids]
         todo = [i for i, h in enumerate(out) if h is None]  # rows built before hashes were recorded
         for i, row in zip(todo, self.matrix([map_ids[i] for i in todo])):
@@ -786,8 +834,8 @@ class FeatureSet:
     def sketches(self, map_ids) -> np.ndarray:
         """(n, SKETCH_BITS / 8) uint8 sign sketches of rows (:mod:`mapstore.copies`), recorded at build time."""
         map_ids = list(map_ids)
-        col = self.rows["sketch"].to_pylist() if "sketch" in self.rows.column_names else \
-            [None] * self.rows.num_rows
+        sketches = self._column("sketch")
+        col = sketches.to_pylist() if sketches is not None else [None] * len(self)
         got = [col[self._pos[m]] for m in map_ids]
         out = np.zeros((len(map_ids), SKETCH_BITS // 8), dtype=np.uint8)
         todo = [i for i, g in enumerate(got) if g is None]  # rows built before sketches were recorded
@@ -805,7 +853,7 @@ class FeatureSet:
 
     def coverage(self, map_ids=None) -> np.ndarray:
         """Fraction of mask voxels with a finite value, per map."""
-        cov = self.rows["coverage"].to_numpy()
+        cov = self._column("coverage").to_numpy()
         if map_ids is None:
             return cov
         return np.array([cov[self._pos[m]] for m in map_ids])

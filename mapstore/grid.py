@@ -24,8 +24,8 @@ from pathlib import Path
 
 import numpy as np
 
-from .errors import GridError
-from .header import HeaderFacts, grid_fingerprint, parse_header, header_prefix
+from .errors import GridError, HeaderError
+from .header import REAL_SCALAR_DTYPES, HeaderFacts, grid_fingerprint, header_prefix, parse_header, read_header
 
 __all__ = [
     "TargetGrid",
@@ -160,8 +160,6 @@ def builtin_grid(name: str) -> TargetGrid:
 
 def grid_from_image(path: str | os.PathLike[str]) -> TargetGrid:
     """The grid of a reference image (its header only is read)."""
-    from .header import read_header
-
     facts = read_header(str(path))
     return grid_from_spec(facts.spatial_shape, facts.affine_array, f"image:{Path(path).name}")
 
@@ -253,8 +251,6 @@ def read_volume(path: str, expect_sha256: str | None = None, dtype=np.float32) -
         if got != expect_sha256:
             raise GridError(f"{path}: content changed since it was indexed (sha256 {got[:12]}... != "
                             f"{expect_sha256[:12]}...); re-run 'mapstore index'")
-    from .errors import HeaderError
-
     try:
         facts = parse_header(path, header_prefix(path, raw[:4096]))
         body = gunzip(raw) if raw[:2] == b"\x1f\x8b" else raw
@@ -265,11 +261,9 @@ def read_volume(path: str, expect_sha256: str | None = None, dtype=np.float32) -
     if facts.n_volumes != 1:
         raise GridError(f"{path}: has {facts.n_volumes} volumes; a statistic map must be one 3-D volume "
                         "(split it, or keep only the map you need)")
-    kind = {"uint8": "u1", "int8": "i1", "int16": "i2", "uint16": "u2", "int32": "i4", "uint32": "u4",
-            "int64": "i8", "uint64": "u8", "float32": "f4", "float64": "f8"}.get(facts.dtype)
-    if kind is None:
+    if facts.dtype not in REAL_SCALAR_DTYPES:
         raise GridError(f"{path}: voxel type {facts.dtype} is not a real scalar; save the map as float32")
-    dt = np.dtype(kind).newbyteorder(facts.endianness)
+    dt = np.dtype(facts.dtype).newbyteorder(facts.endianness)
     count = int(np.prod(facts.spatial_shape))
     need = facts.vox_offset + count * dt.itemsize
     if len(body) < need:

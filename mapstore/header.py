@@ -79,13 +79,16 @@ NIFTI_DTYPES: dict[int, str] = {
     1280: "uint64", 1536: "float128", 1792: "complex128", 2048: "complex256",
     2304: "rgba32",
 }
-# nifti1.h NIFTI_INTENT_* codes
+# the voxel types a statistic map can hold (real scalars), by numpy name
+REAL_SCALAR_DTYPES = frozenset({"uint8", "int8", "int16", "uint16", "int32", "uint32", "int64", "uint64",
+                                "float32", "float64"})
+# nifti1.h NIFTI_INTENT_* codes (names as nibabel's nifti1.intent_codes labels them)
 INTENT_NAMES: dict[int, str] = {
     0: "none", 2: "correlation", 3: "t test", 4: "f test", 5: "z score", 6: "chi2",
     7: "beta", 8: "binomial", 9: "gamma", 10: "poisson", 11: "normal",
     12: "non central f test", 13: "non central chi2", 14: "logistic", 15: "laplace",
     16: "uniform", 17: "non central t test", 18: "weibull", 19: "chi", 20: "inverse gaussian",
-    21: "extreme value curve", 22: "p value", 23: "log p value", 24: "log10 p value",
+    21: "extreme value 1", 22: "p value", 23: "log p value", 24: "log10 p value",
     1001: "estimate", 1002: "label", 1003: "neuroname", 1004: "general matrix",
     1005: "symmetric matrix", 1006: "displacement vector", 1007: "vector",
     1008: "pointset", 1009: "triangle", 1010: "quaternion", 1011: "dimensionless",

@@ -35,7 +35,8 @@ from typing import Any
 import pyarrow as pa
 
 from .errors import VocabularyError
-from .store import (LABELS_SCHEMA, Catalog, commit_head, leased_files, new_snapshot_id, read_head, write_json_atomic,
+from .tables import LABELS_SCHEMA, arrow_to_json_schema
+from .store import (Catalog, commit_head, leased_files, new_snapshot_id, read_head, write_json_atomic,
                     write_lock, write_parquet_atomic)
 
 __all__ = ["Vocabulary", "LabelReport", "load_vocabulary", "apply_vocabulary", "label_store",
@@ -354,8 +355,6 @@ def apply_vocabulary(vocab: Vocabulary, maps: pa.Table, inherit_broader: bool | 
 
 
 def json_schemas() -> dict[str, dict[str, Any]]:
-    from .schemas import arrow_to_json_schema
-
     table = arrow_to_json_schema("labels", LABELS_SCHEMA, "One concept of one map (the 'labels' view).",
                                  {"direct": "assigned by a rule (false: inherited from a narrower concept)",
                                   "rule": "index of the rule in the vocabulary",

@@ -15,6 +15,8 @@ from typing import Any
 import numpy as np
 
 from .errors import LeakageError, ParameterError, QueryError
+from .copies import NEAR_COPY_R, STORE_FLOOR, find_copies
+from .labels import load_vocabulary
 
 __all__ = ["Selection", "select", "parse_scheme", "GROUP_COLUMNS", "assign_folds", "MISSING_POLICIES"]
 
@@ -72,6 +74,7 @@ def assign_folds(groups: np.ndarray, scheme: str, seed: int = 0) -> list[tuple[n
     >>> [test.tolist() for _, test in assign_folds(np.array(["a", "a", "b", "c"]), "leave-one-group-out")]
     [[0, 1], [2], [3]]
     """
+    # imported here: scikit-learn takes ~0.5 s to import, and only splitting needs it
     from sklearn.model_selection import GroupKFold, GroupShuffleSplit, LeaveOneGroupOut
 
     kind, arg = parse_scheme(scheme)
@@ -92,6 +95,14 @@ def assign_folds(groups: np.ndarray, scheme: str, seed: int = 0) -> list[tuple[n
             raise ParameterError(f"holdout needs at least 2 groups, the selection has {n_groups}")
         splitter = GroupShuffleSplit(n_splits=1, test_size=arg, random_state=seed)
     return [(np.asarray(tr), np.asarray(te)) for tr, te in splitter.split(dummy, groups=groups)]
+
+
+def fold_vector(splits, n: int) -> np.ndarray:
+    """Per item: index of the split whose test side holds it (-1 if none: holdout's train side)."""
+    fold = np.full(n, -1, dtype=np.int64)
+    for i, (_, te) in enumerate(splits):
+        fold[te] = i
+    return fold
 
 
 def check_leakage(splits, participants: np.ndarray, sha256: np.ndarray, map_ids: np.ndarray,
@@ -265,8 +276,6 @@ class Selection:
 
     def copy_pairs(self, near_copy_r: float | None = None) -> list[tuple[int, int, str, float]]:
         """Positions (i, j, kind, r) of selected maps whose rows are identical or |r| >= ``near_copy_r``."""
-        from .copies import NEAR_COPY_R, STORE_FLOOR, find_copies
-
         thr = NEAR_COPY_R if near_copy_r is None else near_copy_r
         if not 0 < thr <= 1:
             raise ParameterError(f"near_copy_r must be in (0, 1], got {thr!r}")
@@ -285,10 +294,7 @@ class Selection:
     def folds(self, scheme: str = "leave-one-group-out", seed: int = 0, allow_leak: bool = False,
               near_copy_r: float | None = None) -> np.ndarray:
         """Per map: index of the split where it is in the test set (-1 if never: holdout train)."""
-        fold = np.full(len(self), -1, dtype=np.int64)
-        for i, (_, te) in enumerate(self.splits(scheme, seed, allow_leak, near_copy_r)):
-            fold[te] = i
-        return fold
+        return fold_vector(self.splits(scheme, seed, allow_leak, near_copy_r), len(self))
 
 
 
@@ -302,8 +308,6 @@ def _labels(cat, with_broader: bool):
     entry = cat.head.labels
     if not entry or not entry.get("copy"):
         return lab
-    from .labels import load_vocabulary
-
     vocab = load_vocabulary(cat.path / entry["copy"])
     extra = [(m, b) for m, c in zip(lab["map_id"], lab["concept"]) if c in vocab.concepts
              for b in vocab.broader_closure(c)]

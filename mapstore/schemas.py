@@ -11,47 +11,12 @@ import sys
 from pathlib import Path
 from typing import Any
 
-import pyarrow as pa
+from . import export, labels
+from .tables import (DATASETS_SCHEMA, FPROBLEMS_SCHEMA, MAPS_SCHEMA, PARTICIPANTS_SCHEMA, PROBLEMS_SCHEMA,
+                     ROWS_SCHEMA, SCHEMA_BASE, arrow_to_json_schema)
 
-__all__ = ["all_schemas", "arrow_to_json_schema", "write_all"]
+__all__ = ["all_schemas", "write_all"]
 
-_BASE = "https://mapstore.invalid/schemas/"
-
-
-def _arrow_type(t: pa.DataType) -> dict[str, Any]:
-    if pa.types.is_string(t) or pa.types.is_large_string(t):
-        return {"type": ["string", "null"]}
-    if pa.types.is_integer(t):
-        return {"type": ["integer", "null"]}
-    if pa.types.is_floating(t):
-        return {"type": ["number", "null"]}
-    if pa.types.is_binary(t) or pa.types.is_large_binary(t):
-        return {}  # raw bytes: JSON has no type for them (Parquet stores them as they are)
-    if pa.types.is_boolean(t):
-        return {"type": ["boolean", "null"]}
-    if pa.types.is_list(t) or pa.types.is_large_list(t) or pa.types.is_fixed_size_list(t):
-        return {"type": ["array", "null"], "items": _arrow_type(t.value_type)}
-    return {}
-
-
-def arrow_to_json_schema(name: str, schema: pa.Schema, description: str,
-                         docs: dict[str, str] | None = None) -> dict[str, Any]:
-    """JSON Schema of one row of a catalog table."""
-    props = {}
-    for f in schema:
-        p = dict(_arrow_type(f.type))
-        if docs and f.name in docs:
-            p["description"] = docs[f.name]
-        props[f.name] = p
-    return {
-        "$schema": "https://json-schema.org/draft/2020-12/schema",
-        "$id": _BASE + f"{name}.schema.json",
-        "title": f"mapstore catalog table '{name}' (one row)",
-        "description": description,
-        "type": "object",
-        "properties": props,
-        "required": [schema[0].name],
-    }
 
 
 MAPS_DOCS = {
@@ -83,7 +48,7 @@ MAPS_DOCS = {
 def _rules_schema() -> dict[str, Any]:
     return {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
-        "$id": _BASE + "name-rules.schema.json",
+        "$id": SCHEMA_BASE + "name-rules.schema.json",
         "title": "mapstore name rules",
         "description": "Rules naming statistic maps whose file names do not follow the BIDS statmap "
                        "convention. The first rule that matches a path (relative to its dataset "
@@ -115,7 +80,7 @@ def _origins_schema() -> dict[str, Any]:
                      "properties": {k: {"type": "string"} for k in ("study", "site", "lab", "participant")}}
     return {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
-        "$id": _BASE + "origins.schema.json",
+        "$id": SCHEMA_BASE + "origins.schema.json",
         "title": "mapstore origins mapping",
         "description": "Sets study, site and lab per dataset (keys are dataset keys or globs) and per "
                        "study-qualified subject ('<dataset key>/sub-<label>'); overrides what BIDS "
@@ -130,7 +95,7 @@ def _origins_schema() -> dict[str, Any]:
 def _head_schema() -> dict[str, Any]:
     return {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
-        "$id": _BASE + "store-head.schema.json",
+        "$id": SCHEMA_BASE + "store-head.schema.json",
         "title": "mapstore store HEAD",
         "description": "The one pointer a store's writers replace atomically: the current catalog "
                        "snapshot, feature sets and labels, and a short history of writes.",
@@ -147,8 +112,6 @@ def _head_schema() -> dict[str, Any]:
 
 def all_schemas() -> dict[str, dict[str, Any]]:
     """Every schema by file name."""
-    from .store import DATASETS_SCHEMA, MAPS_SCHEMA, PROBLEMS_SCHEMA
-
     out = {
         "maps.schema.json": arrow_to_json_schema("maps", MAPS_SCHEMA, "One statistic map.", MAPS_DOCS),
         "datasets.schema.json": arrow_to_json_schema("datasets", DATASETS_SCHEMA,
@@ -161,8 +124,6 @@ def all_schemas() -> dict[str, dict[str, Any]]:
         "origins.schema.json": _origins_schema(),
         "store-head.schema.json": _head_schema(),
     }
-    from .store import FPROBLEMS_SCHEMA, PARTICIPANTS_SCHEMA, ROWS_SCHEMA
-
     out["feature-rows.schema.json"] = arrow_to_json_schema(
         "feature-rows", ROWS_SCHEMA, "One row of a feature set (features/<set>/rows-*.parquet, the "
         "'features' view adds feature_set): where a map's vector lives and how it was made.",
@@ -184,7 +145,7 @@ def all_schemas() -> dict[str, dict[str, Any]]:
     out["participants.schema.json"] = participants
     out["feature-set.schema.json"] = {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
-        "$id": _BASE + "feature-set.schema.json",
+        "$id": SCHEMA_BASE + "feature-set.schema.json",
         "title": "mapstore feature set description (features/<set>/set.json)",
         "type": "object",
         "required": ["name", "grid", "grid_id", "mask", "mask_sha256", "method", "stat", "p_sided",
@@ -219,7 +180,7 @@ def all_schemas() -> dict[str, dict[str, Any]]:
                            "schema": {"type": "string"}}}
     out["catalog-parts.schema.json"] = {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
-        "$id": _BASE + "catalog-parts.schema.json",
+        "$id": SCHEMA_BASE + "catalog-parts.schema.json",
         "title": "mapstore catalog snapshot parts (catalog/<snapshot>/parts.json)",
         "description": "The Parquet parts the maps table of one snapshot is made of, in dataset order: one "
                        "or more per dataset (unit: the dataset key and a hash of the top-level folders it "
@@ -229,20 +190,14 @@ def all_schemas() -> dict[str, dict[str, Any]]:
     }
     out["store-marker.schema.json"] = {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
-        "$id": _BASE + "store-marker.schema.json",
+        "$id": SCHEMA_BASE + "store-marker.schema.json",
         "title": "mapstore store marker (store.json)",
         "type": "object", "required": ["format", "version"],
         "properties": {"format": {"const": "mapstore-store"}, "version": {"type": "integer"}},
     }
-    import importlib
-
-    for module in _PROVIDERS:
-        out.update(importlib.import_module(module).json_schemas())
+    for stage in (labels, export):  # the stages that define file formats of their own
+        out.update(stage.json_schemas())
     return out
-
-
-# later stages that define file formats, each with a json_schemas() function
-_PROVIDERS: tuple[str, ...] = ("mapstore.labels", "mapstore.export")
 
 
 def write_all(folder: str | Path) -> list[Path]:

@@ -11,9 +11,8 @@ import numpy as np
 
 from .errors import ConversionError
 
-__all__ = ["t_to_z", "p_to_z", "convert", "CONVERTIBLE"]
+__all__ = ["t_to_z", "p_to_z", "convert"]
 
-CONVERTIBLE = {"t", "p", "z"}
 
 
 def _t_logsf(t: np.ndarray, dof: float) -> np.ndarray:

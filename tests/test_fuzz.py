@@ -3,9 +3,6 @@
 from __future__ import annotations
 
 import gzip
-import io
-import json
-import shutil
 import tempfile
 from pathlib import Path
 

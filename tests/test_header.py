@@ -75,8 +75,11 @@ def test_intent_names_match_nibabel_table():
     # reference: nibabel's copy of the nifti1.h NIFTI_INTENT_* table
     from nibabel.nifti1 import intent_codes
 
-    for code in INTENT_NAMES:
+    for code, name in INTENT_NAMES.items():
         assert code in intent_codes.value_set(), code
+        assert name == intent_codes.label[code], (code, name)  # names too, not only codes
+    # and no nifti1.h code is missing (nibabel adds FSL's codes 2006-2018 and CIFTI-2's from 3000)
+    assert set(INTENT_NAMES) == {c for c in intent_codes.value_set() if c < 2006}
 
 
 def _nifti_tool(path: Path) -> dict[str, list[str]]:

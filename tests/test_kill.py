@@ -15,7 +15,6 @@ import subprocess
 import sys
 
 import numpy as np
-import pyarrow.parquet as pq
 import pytest
 
 import mapstore
