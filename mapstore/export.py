@@ -81,12 +81,46 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
                      seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False,
                      near_copy_r: float | None = None) -> ExportReport:
     """Write a selection to ``out`` with its manifest (see the module docstring)."""
-    import warnings
-
     t0 = time.perf_counter()
     if fmt not in ("npy", "parquet"):
         raise ParameterError(f"fmt must be 'npy' or 'parquet', got {fmt!r}")
-    parse_scheme(scheme)
+    kind, _ = parse_scheme(scheme)
+    out = _check_out(sel, out, overwrite)
+    splits, leaks = _splits(sel, scheme, seed, allow_leak, near_copy_r)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.tmp"
+    tmp.mkdir()
+    checkpoint()
+    try:
+        fs = sel.feature_set
+        meta_t = _meta_table(sel, fold_vector(splits, len(sel)), kind)
+        rows = _Rows(sel)
+        checkpoint()
+        if fmt == "npy":
+            _write_npy(tmp, sel, rows, meta_t)
+        else:
+            _write_parquet(tmp, sel, rows, meta_t)
+        if sel.concepts:
+            (tmp / "concepts.json").write_text(json.dumps(sel.concepts))
+        # flat C-order grid index of each column of X: enough to paint a row back onto the grid
+        np.save(tmp / "voxels.npy", fs.mask_indices[rows.voxels].astype(np.int64))
+        checkpoint()
+        manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, rows.row_hashes, rows.x_hashes, fmt)
+        manifest["near_copy_r"] = NEAR_COPY_R if near_copy_r is None else near_copy_r
+        # the data files are checked row by row against row_sha256 instead of hashed whole
+        manifest["files"] = {p.name: sha256_file(str(p)) for p in sorted(tmp.iterdir())
+                             if p.name not in DATA_FILES}
+        (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1, sort_keys=True, default=str))
+        checkpoint()
+        _put_in_place(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return ExportReport(str(out), len(sel), len(rows.voxels), scheme, len(splits), dict(sel.dropped),
+                        time.perf_counter() - t0, leaks, sel.missing_report)
+
+
+def _check_out(sel: Selection, out: str | os.PathLike[str], overwrite: bool) -> Path:
     out = Path(out).expanduser().absolute()
     for root in sel.store.sql("SELECT root FROM datasets")["root"].to_pylist():
         if inside(out, root):
@@ -94,129 +128,130 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
                               "datasets, choose an --out folder elsewhere")
     if out.exists() and any(out.iterdir()) and not overwrite:
         raise ExportError(f"{out}: folder exists and is not empty; choose a new --out or pass --overwrite")
+    return out
+
+
+def _splits(sel: Selection, scheme: str, seed: int, allow_leak: bool, near_copy_r: float | None):
+    """The splits, and the leaks accepted with ``allow_leak`` (recorded in the manifest, still warned)."""
+    import warnings
+
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
         splits = sel.splits(scheme, seed, allow_leak, near_copy_r)
     leaks = [str(w.message) for w in caught if "leaky split" in str(w.message)]
-    for w in caught:  # recorded to keep them in the manifest; still shown to the caller
-        warnings.warn(w.message, w.category, stacklevel=2)
-    fold = fold_vector(splits, len(sel))
-    kind, _ = parse_scheme(scheme)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.tmp"
-    tmp.mkdir()
+    for w in caught:
+        warnings.warn(w.message, w.category, stacklevel=3)
+    return splits, leaks
+
+
+def _meta_table(sel: Selection, fold: np.ndarray, kind: str) -> pa.Table:
+    meta = sel.meta.copy()
+    meta["row"] = np.arange(len(sel))
+    meta["group"] = sel.groups
+    meta["fold"] = fold
+    if kind == "holdout":
+        meta["split"] = np.where(fold >= 0, "test", "train")
+    keep_cols = [c for c in ("row", "map_id", "dataset", "study", "site", "lab", "participant", "sub", "ses",
+                             "run", "task", "contrast", "stat", "space", "concepts", "group", "fold", "split",
+                             "coverage", "sha256", "feature_key", "conversion", "relpath") if c in meta.columns]
+    return pa.Table.from_pandas(meta[keep_cols], preserve_index=False)
+
+
+class _Rows:
+    """Store rows turned into X rows (the selection's missing-value policy), their hashes recorded."""
+
+    def __init__(self, sel: Selection) -> None:
+        self.sel = sel
+        self.fs = sel.feature_set
+        self.ids = sel.map_ids
+        self.row_hashes = self.fs.row_hashes(self.ids)
+        self.voxels = sel.voxels  # X's columns
+        self.subset = len(self.voxels) != self.fs.n_voxels
+        self.same = not self.subset and (sel.missing != "zero" or sel.meta["coverage"].ge(1.0).all())
+        self.x_hashes: list[str] = []
+
+    def buffer(self) -> np.ndarray:
+        return np.empty((min(BLOCK_ROWS, max(len(self.ids), 1)), self.fs.n_voxels), dtype=np.float32)
+
+    def shape(self, block: np.ndarray) -> np.ndarray:
+        out = np.ascontiguousarray(block[:, self.voxels]) if self.subset else block
+        if self.sel.missing == "zero":
+            np.nan_to_num(out, copy=False, nan=0.0)
+        if self.same:  # X rows are the store rows: their hashes are known
+            self.x_hashes.extend(self.row_hashes[len(self.x_hashes):len(self.x_hashes) + len(out)])
+        else:
+            self.x_hashes.extend(_row_hash(r) for r in out)
+        return out
+
+
+def _write_npy(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None:
+    """X.npy through two reused buffers, reading the next block while the last one is written
+    (both system calls release the GIL): no fresh pages for all of X; then y, Y, groups, meta."""
+    ids, fs, n = rows.ids, rows.fs, len(rows.ids)
+    buf, spare = rows.buffer(), rows.buffer()
+    with open(tmp / "X.npy", "wb", buffering=0) as fh, ThreadPoolExecutor(1) as reader:
+        np.lib.format.write_array_header_1_0(
+            fh, {"descr": np.lib.format.dtype_to_descr(np.dtype(np.float32)), "fortran_order": False,
+                 "shape": (n, len(rows.voxels))})
+        starts = list(range(0, n, BLOCK_ROWS))
+        pending = reader.submit(fs.read_into, ids[0:BLOCK_ROWS], buf) if starts else None
+        for k in range(len(starts)):
+            block = pending.result()
+            if k + 1 < len(starts):
+                nxt = starts[k + 1]
+                pending = reader.submit(fs.read_into, ids[nxt:nxt + BLOCK_ROWS], spare)
+            checkpoint()
+            view = memoryview(rows.shape(block)).cast("B")
+            while view:
+                view = view[fh.write(view):]
+            buf, spare = spare, buf
     checkpoint()
+    if sel.y is not None:
+        np.save(tmp / "y.npy", np.asarray(sel.y, dtype=str))
+        checkpoint()
+    if sel.Y is not None:
+        np.save(tmp / "Y.npy", sel.Y)
+        checkpoint()
+    np.save(tmp / "groups.npy", np.asarray(sel.groups, dtype=str))
+    checkpoint()
+    pq.write_table(meta_t, tmp / "meta.parquet")
+    checkpoint()
+
+
+def _write_parquet(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None:
+    """One table.parquet: meta columns, y / Y, and x as a fixed-size list per row."""
+    buf = rows.buffer()
+    writer = None
     try:
-        fs = sel.feature_set
-        ids = sel.map_ids
-        n, nv = len(ids), fs.n_voxels
-        meta = sel.meta.copy()
-        meta["row"] = np.arange(n)
-        meta["group"] = sel.groups
-        meta["fold"] = fold
-        if kind == "holdout":
-            meta["split"] = np.where(fold >= 0, "test", "train")
-        keep_cols = [c for c in ("row", "map_id", "dataset", "study", "site", "lab", "participant", "sub", "ses",
-                                 "run", "task", "contrast", "stat", "space", "concepts", "group", "fold", "split",
-                                 "coverage", "sha256", "feature_key", "conversion", "relpath") if c in meta.columns]
-        meta_t = pa.Table.from_pandas(meta[keep_cols], preserve_index=False)
-        row_hashes = fs.row_hashes(ids)
-        voxels = sel.voxels  # X's columns, by the selection's missing-value policy
-        subset = len(voxels) != fs.n_voxels
-        x_hashes: list[str] = []
-
-        same_rows = not subset and (sel.missing != "zero" or sel.meta["coverage"].ge(1.0).all())
-
-        def shape(block: np.ndarray) -> np.ndarray:
-            """A block of store rows as X rows (policy applied), their hashes recorded."""
-            out_block = np.ascontiguousarray(block[:, voxels]) if subset else block
-            if sel.missing == "zero":
-                np.nan_to_num(out_block, copy=False, nan=0.0)
-            if same_rows:  # X rows are the store rows: their hashes are known
-                x_hashes.extend(row_hashes[len(x_hashes):len(x_hashes) + len(out_block)])
-            else:
-                x_hashes.extend(_row_hash(r) for r in out_block)
-            return out_block
-
-        checkpoint()
-        buf = np.empty((min(BLOCK_ROWS, max(n, 1)), nv), dtype=np.float32)  # one reused block buffer
-        if fmt == "npy":
-            # a plain file written through two reused buffers, reading the next block while the
-            # last one is written (both system calls release the GIL): no fresh pages for all of X
-            spare = np.empty_like(buf)
-            with open(tmp / "X.npy", "wb", buffering=0) as fh, ThreadPoolExecutor(1) as reader:
-                np.lib.format.write_array_header_1_0(
-                    fh, {"descr": np.lib.format.dtype_to_descr(np.dtype(np.float32)), "fortran_order": False,
-                         "shape": (n, len(voxels))})
-                starts = list(range(0, n, BLOCK_ROWS))
-                pending = reader.submit(fs.read_into, ids[0:BLOCK_ROWS], buf) if starts else None
-                for k in range(len(starts)):
-                    block = pending.result()
-                    if k + 1 < len(starts):
-                        nxt = starts[k + 1]
-                        pending = reader.submit(fs.read_into, ids[nxt:nxt + BLOCK_ROWS], spare)
-                    checkpoint()
-                    view = memoryview(shape(block)).cast("B")
-                    while view:
-                        view = view[fh.write(view):]
-                    buf, spare = spare, buf
-            checkpoint()
+        for i in range(0, len(rows.ids), BLOCK_ROWS):
+            block = rows.shape(rows.fs.read_into(rows.ids[i:i + BLOCK_ROWS], buf))
+            part = meta_t.slice(i, len(block))
             if sel.y is not None:
-                np.save(tmp / "y.npy", np.asarray(sel.y, dtype=str))
-                checkpoint()
-            if sel.Y is not None:
-                np.save(tmp / "Y.npy", sel.Y)
-                checkpoint()
-            np.save(tmp / "groups.npy", np.asarray(sel.groups, dtype=str))
-            checkpoint()
-            pq.write_table(meta_t, tmp / "meta.parquet")
-            checkpoint()
-        else:
-            writer = None
-            try:
-                for i in range(0, n, BLOCK_ROWS):
-                    block = shape(fs.read_into(ids[i:i + BLOCK_ROWS], buf))
-                    part = meta_t.slice(i, len(block))
-                    if sel.y is not None:
-                        part = part.append_column("y", pa.array(np.asarray(sel.y[i:i + len(block)], dtype=str)))
-                    if sel.Y is not None:  # multi-label indicators, columns as in concepts.json
-                        ind = np.ascontiguousarray(sel.Y[i:i + len(block)], dtype=np.uint8).reshape(-1)
-                        part = part.append_column("Y", pa.FixedSizeListArray.from_arrays(
-                            pa.array(ind, pa.uint8()), len(sel.concepts)))
-                    flat = pa.array(block.reshape(-1), pa.float32())
-                    part = part.append_column("x", pa.FixedSizeListArray.from_arrays(flat, len(voxels)))
-                    if writer is None:
-                        writer = pq.ParquetWriter(tmp / "table.parquet", part.schema, compression="zstd")
-                    writer.write_table(part, row_group_size=64)
-            finally:
-                if writer is not None:
-                    writer.close()
-        if sel.concepts:
-            (tmp / "concepts.json").write_text(json.dumps(sel.concepts))
-        # flat C-order grid index of each column of X: enough to paint a row back onto the grid
-        np.save(tmp / "voxels.npy", fs.mask_indices[voxels].astype(np.int64))
+                part = part.append_column("y", pa.array(np.asarray(sel.y[i:i + len(block)], dtype=str)))
+            if sel.Y is not None:  # multi-label indicators, columns as in concepts.json
+                ind = np.ascontiguousarray(sel.Y[i:i + len(block)], dtype=np.uint8).reshape(-1)
+                part = part.append_column("Y", pa.FixedSizeListArray.from_arrays(
+                    pa.array(ind, pa.uint8()), len(sel.concepts)))
+            flat = pa.array(block.reshape(-1), pa.float32())
+            part = part.append_column("x", pa.FixedSizeListArray.from_arrays(flat, len(rows.voxels)))
+            if writer is None:
+                writer = pq.ParquetWriter(tmp / "table.parquet", part.schema, compression="zstd")
+            writer.write_table(part, row_group_size=64)
+    finally:
+        if writer is not None:
+            writer.close()
+
+
+def _put_in_place(tmp: Path, out: Path) -> None:
+    if out.exists():
+        old = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.old"
+        os.replace(out, old)
         checkpoint()
-        manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, row_hashes, x_hashes, fmt)
-        manifest["near_copy_r"] = NEAR_COPY_R if near_copy_r is None else near_copy_r
-        # the data files are checked row by row against row_sha256 instead of hashed whole
-        manifest["files"] = {p.name: sha256_file(str(p)) for p in sorted(tmp.iterdir())
-                             if p.name not in DATA_FILES}
-        (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1, sort_keys=True, default=str))
-        checkpoint()
-        if out.exists():
-            old = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.old"
-            os.replace(out, old)
-            checkpoint()
-            os.replace(tmp, out)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(tmp, out)
-        checkpoint()
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
-    return ExportReport(str(out), n, len(voxels), scheme, len(splits), dict(sel.dropped), time.perf_counter() - t0,
-                        leaks, sel.missing_report)
+        os.replace(tmp, out)
+        shutil.rmtree(old, ignore_errors=True)
+    else:
+        os.replace(tmp, out)
+    checkpoint()
 
 
 def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: list[str], splits,

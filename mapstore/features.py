@@ -465,6 +465,56 @@ def build_features(
         Progress bar (default: when standard error is a terminal).
     """
     t0 = time.perf_counter()
+    _check_options(method, stat, p_sided, background, batch_size)
+    jobs = resolve_jobs(jobs)
+    if progress is None:
+        progress = sys.stderr.isatty()
+    target = _resolve_grid(grid)
+    cat = Catalog(store)
+    cat.require_catalog()
+    default_settings = (grid == "MNI152-2mm" and str(mask) == "brain" and method == "linear"
+                        and stat == "native" and not zero_as_missing and background == "auto" and not model_maps)
+    name = _set_name(name, default_settings, target, mask, method, stat)
+    store_path = cat.path
+    set_dir = store_path / "features" / name
+    run = dict(jobs=jobs, scheduler=scheduler, progress=progress)
+    with write_lock(store_path):
+        head = read_head(store_path)
+        kinds = ("contrast", "model") if model_maps else ("contrast",)
+        rows_sel, left_out = _select_maps(Catalog(store_path), where, kinds, stat)
+        batch_n = batch_size or max(4, min(64, len(rows_sel) // (jobs * 4) + 1))
+        common = dict(grid=target, method=method, stat=stat, p_sided=p_sided, zero_as_missing=zero_as_missing,
+                      background=background)
+        mk, coverage_problems = _resolve_mask(mask, target, rows_sel, set_dir, batch_n, common, run)
+        spec = _set_spec(name, target, mk, method, stat, p_sided, zero_as_missing, background, kinds, where)
+        existing = head.features.get(name)
+        old_rows = _previous_rows(store_path, name, existing, spec)
+        _write_set_files(set_dir, spec, mk, fresh=not existing)
+        kept, todo, dropped = _plan_rows(rows_sel, spec, old_rows, batch_n, set_dir, mk, common)
+        built = _run_batches(todo, run, store_path, set_dir, name)
+        new_rows, problems = built.rows, coverage_problems + built.problems
+        rows_table, entry = _write_tables(store_path, name, kept, built, problems, dropped, existing)
+        head.features[name] = {**entry, "n_rows": rows_table.num_rows, "spec_id": spec["spec_id"],
+                               "catalog": head.catalog}
+        if head.default_features is None or name == DEFAULT_SET:
+            head.default_features = name
+        commit_head(store_path, head, {"event": "features", "set": name, "built": len(new_rows),
+                                       "rows": rows_table.num_rows})
+        _collect_feature_garbage(store_path, set_dir, entry["rows"], existing["rows"] if existing else None)
+
+    report = FeatureReport(name=name, n_voxels=mk.n_voxels, grid=target.name, mask=mk.name,
+                           built=len(new_rows), skipped=kept.num_rows, dropped=dropped, failed=len(problems),
+                           seconds=time.perf_counter() - t0, paths=built.paths, problems=problems, left_out=left_out)
+    if rows_table.num_rows == 0 and problems:
+        reasons = Counter(p["reason"] for p in problems).most_common(3)
+        raise FeatureError(f"feature set {name!r}: every selected map failed ({len(problems)}); most common "
+                           "reasons: " + "; ".join(f"{r} (x{n})" for r, n in reasons) +
+                           f". The failures are recorded: mapstore sql --store {store_path} "
+                           "\"SELECT * FROM feature_problems\"", report=report)
+    return report
+
+
+def _check_options(method: str, stat: str, p_sided: str, background: str, batch_size: int | None) -> None:
     if method not in METHODS:
         raise ParameterError(f"method must be one of {list(METHODS)}, got {method!r}")
     if stat not in ("native", "z"):
@@ -475,153 +525,145 @@ def build_features(
         raise ParameterError(f"background must be 'auto' or 'keep', got {background!r}")
     if batch_size is not None:
         positive_int("batch_size", batch_size)
-    jobs = resolve_jobs(jobs)
-    if progress is None:
-        progress = sys.stderr.isatty()
-    target = _resolve_grid(grid)
-    cat = Catalog(store)
-    cat.require_catalog()
-    default_settings = (grid == "MNI152-2mm" and str(mask) == "brain" and method == "linear"
-                        and stat == "native" and not zero_as_missing and background == "auto" and not model_maps)
+
+
+def _set_name(name: str | None, default_settings: bool, target: TargetGrid, mask: Any, method: str,
+              stat: str) -> str:
     if name is None:
         name = DEFAULT_SET if default_settings else \
             f"{target.name}-{Path(str(mask)).name if not isinstance(mask, np.ndarray) else 'array'}-{method}-{stat}"
-    name = "".join(c if c.isalnum() or c in "-_.:" else "_" for c in name).replace(":", "_")
-    store_path = cat.path
-    set_dir = store_path / "features" / name
+    return "".join(c if c.isalnum() or c in "-_.:" else "_" for c in name).replace(":", "_")
 
-    with write_lock(store_path):
-        head = read_head(store_path)
-        cat = Catalog(store_path)
-        kinds = ("contrast", "model") if model_maps else ("contrast",)
-        rows_sel, left_out = _select_maps(cat, where, kinds, stat)
-        if not rows_sel:
-            why = "; ".join(f"{n} {k}" for k, n in left_out.items())
-            raise FeatureError(f"no maps selected{' by ' + repr(where) if where else ''}"
-                               f"{' (left out: ' + why + ')' if why else ''}; check the catalog with "
-                               "'mapstore sql'")
-        batch_n = batch_size or max(4, min(64, len(rows_sel) // (jobs * 4) + 1))
-        mk = _make_mask(mask, target)
-        common = dict(grid=target, method=method, stat=stat, p_sided=p_sided, zero_as_missing=zero_as_missing,
-                      background=background)
-        coverage_problems: list[dict[str, Any]] = []
-        if isinstance(mk, float):
-            items = [_item(r, "") for r in rows_sel]
-            batches = [_Batch(str(set_dir), "", items[i:i + batch_n], coverage_only=True, **common)
-                       for i in range(0, len(items), batch_n)]
-            counts = np.zeros(target.n_voxels, dtype=np.int64)
-            n_ok = 0
-            for res in run_units(_run_batch, batches, jobs=jobs, scheduler=scheduler, progress=progress, desc="coverage", weight=_n_items, unit="map"):
-                counts += res["counts"]
-                n_ok += res["n"]
-                coverage_problems += res["problems"]
-            if n_ok == 0:
-                raise FeatureError("no selected map could be read to compute a coverage mask")
-            need = int(np.ceil(mk * n_ok - 1e-9))
-            label = "intersection" if mk == 1.0 else f"coverage>={mk:g}"
-            # within the brain: fields of view reach far outside it
-            inside = mni152_brain_mask(target).to_volume().reshape(-1)
-            mk = mask_from_array(target, ((counts >= max(need, 1)) & inside).reshape(target.shape),
-                                 f"MNI152-brain&{label}")
 
-        spec = {
-            "name": name, "grid": target.to_json(), "grid_id": target.grid_id,
-            "mask": {"name": mk.name, "n_voxels": mk.n_voxels, "sha256": mk.sha256},
-            "mask_sha256": mk.sha256, "method": method, "stat": stat, "p_sided": p_sided,
-            "zero_as_missing": zero_as_missing, "background": background, "kinds": list(kinds), "where": where,
-            "versions": _library_versions(),
-        }
-        spec["spec_id"] = _spec_id(spec)
-        existing = head.features.get(name)
-        old_rows = pa.Table.from_pylist([], schema=ROWS_SCHEMA)
-        if existing:
-            old_spec = json.loads((store_path / existing["dir"] / "set.json").read_text())
-            if old_spec.get("spec_id") != spec["spec_id"]:
-                raise FeatureError(f"feature set {name!r} exists with other settings (grid "
-                                   f"{old_spec['grid']['name']}, mask {old_spec['mask']['name']}, method "
-                                   f"{old_spec['method']}, stat {old_spec['stat']}); choose another name")
-            old_rows = conform(pq.read_table(store_path / existing["rows"]), ROWS_SCHEMA)
-        (set_dir / "shards").mkdir(parents=True, exist_ok=True)
-        if not existing or not (set_dir / "mask.npy").exists():
-            tmp = set_dir / f".mask.{uuid.uuid4().hex}.npy"
-            np.save(tmp, mk.indices)
-            os.replace(tmp, set_dir / "mask.npy")
-        write_json_atomic(set_dir / "set.json", spec)
+def _resolve_mask(mask: Any, target: TargetGrid, rows_sel: list[dict[str, Any]], set_dir: Path, batch_n: int,
+                  common: dict[str, Any], run: dict[str, Any]) -> tuple[Mask, list[dict[str, Any]]]:
+    """The set's mask; a coverage mask (``intersection``, ``coverage:F``) reads every selected map once."""
+    mk = _make_mask(mask, target)
+    if not isinstance(mk, float):
+        return mk, []
+    items = [_item(r, "") for r in rows_sel]
+    batches = [_Batch(str(set_dir), "", items[i:i + batch_n], coverage_only=True, **common)
+               for i in range(0, len(items), batch_n)]
+    counts = np.zeros(target.n_voxels, dtype=np.int64)
+    n_ok = 0
+    problems: list[dict[str, Any]] = []
+    for res in run_units(_run_batch, batches, desc="coverage", weight=_n_items, unit="map", **run):
+        counts += res["counts"]
+        n_ok += res["n"]
+        problems += res["problems"]
+    if n_ok == 0:
+        raise FeatureError("no selected map could be read to compute a coverage mask")
+    need = int(np.ceil(mk * n_ok - 1e-9))
+    label = "intersection" if mk == 1.0 else f"coverage>={mk:g}"
+    # within the brain: fields of view reach far outside it
+    inside = mni152_brain_mask(target).to_volume().reshape(-1)
+    return mask_from_array(target, ((counts >= max(need, 1)) & inside).reshape(target.shape),
+                           f"MNI152-brain&{label}"), problems
 
-        wanted: dict[str, _Item] = {}
-        dataset_of: dict[str, str] = {}
-        for r in rows_sel:
-            wanted[r["map_id"]] = _item(r, feature_key(r["sha256"], spec, r["dof"], r["model_mask_sha256"]))
-            dataset_of[r["map_id"]] = r["dataset"]
-        # keyed by map too: byte-identical copies of a file share a feature key, not a row
-        have = {mk_: i for i, mk_ in enumerate(zip(old_rows["map_id"].to_pylist(),
-                                                   old_rows["feature_key"].to_pylist()))}
-        keep_idx = [have[(m, it.key)] for m, it in wanted.items() if (m, it.key) in have]
-        todo = [it for m, it in wanted.items() if (m, it.key) not in have]
-        kept = old_rows.take(pa.array(sorted(keep_idx), pa.int64())) if keep_idx else old_rows.slice(0, 0)
-        dropped = old_rows.num_rows - kept.num_rows
 
-        seed = Sketcher.for_set(mk.sha256, mk.n_voxels).seed
-        batches = [_Batch(str(set_dir), f"shard-{file_slug(ds)}-{new_snapshot_id()}-{i:05d}.npy", items,
-                          sketch_seed=seed, **common)
-                   for ds, items, i in _per_dataset(todo, dataset_of, batch_n)]
-        new_rows: list[dict[str, Any]] = []
-        problems: list[dict[str, Any]] = list(coverage_problems)
-        paths: dict[str, int] = {}
-        snap = new_snapshot_id()
-        created = [set_dir / "shards" / b.shard for b in batches] + \
-            [set_dir / f"{kind}-{snap}.parquet" for kind in ("rows", "problems", "copies")]
-        try:
-            for res in run_units(_run_batch, batches, jobs=jobs, scheduler=scheduler, progress=progress, desc=f"features {name}", weight=_n_items, unit="map"):
-                new_rows += res["rows"]
-                problems += res["problems"]
-                for r in res["rows"]:
-                    paths[r["resample_path"]] = paths.get(r["resample_path"], 0) + 1
-        except OSError as exc:
-            _raise_if_full(exc, store_path, created)
-            raise
-        rows_table = pa.concat_tables([kept, pa.Table.from_pylist(new_rows, schema=ROWS_SCHEMA)])
-        rows_table = rows_table.sort_by([("map_id", "ascending")])
-        rows_rel = f"features/{name}/rows-{snap}.parquet"
-        probs_rel = f"features/{name}/problems-{snap}.parquet"
-        try:
-            write_parquet_atomic(rows_table, store_path / rows_rel)
-            write_parquet_atomic(pa.Table.from_pylist(problems, schema=FPROBLEMS_SCHEMA), store_path / probs_rel)
-        except OSError as exc:
-            _raise_if_full(exc, store_path, created)
-            raise
+def _set_spec(name: str, target: TargetGrid, mk: Mask, method: str, stat: str, p_sided: str,
+              zero_as_missing: bool, background: str, kinds: tuple[str, ...], where: str | None) -> dict[str, Any]:
+    """``set.json``: everything a row's value depends on, and its id."""
+    spec = {
+        "name": name, "grid": target.to_json(), "grid_id": target.grid_id,
+        "mask": {"name": mk.name, "n_voxels": mk.n_voxels, "sha256": mk.sha256},
+        "mask_sha256": mk.sha256, "method": method, "stat": stat, "p_sided": p_sided,
+        "zero_as_missing": zero_as_missing, "background": background, "kinds": list(kinds), "where": where,
+        "versions": _library_versions(),
+    }
+    spec["spec_id"] = _spec_id(spec)
+    return spec
+
+
+def _previous_rows(store_path: Path, name: str, existing: dict[str, Any] | None, spec: dict[str, Any]) -> pa.Table:
+    """The set's current rows; a set of this name with other settings is refused."""
+    if not existing:
+        return ROWS_SCHEMA.empty_table()
+    old_spec = json.loads((store_path / existing["dir"] / "set.json").read_text())
+    if old_spec.get("spec_id") != spec["spec_id"]:
+        raise FeatureError(f"feature set {name!r} exists with other settings (grid "
+                           f"{old_spec['grid']['name']}, mask {old_spec['mask']['name']}, method "
+                           f"{old_spec['method']}, stat {old_spec['stat']}); choose another name")
+    return conform(pq.read_table(store_path / existing["rows"]), ROWS_SCHEMA)
+
+
+def _write_set_files(set_dir: Path, spec: dict[str, Any], mk: Mask, fresh: bool) -> None:
+    (set_dir / "shards").mkdir(parents=True, exist_ok=True)
+    if fresh or not (set_dir / "mask.npy").exists():
+        tmp = set_dir / f".mask.{uuid.uuid4().hex}.npy"
+        np.save(tmp, mk.indices)
+        os.replace(tmp, set_dir / "mask.npy")
+    write_json_atomic(set_dir / "set.json", spec)
+
+
+def _plan_rows(rows_sel: list[dict[str, Any]], spec: dict[str, Any], old_rows: pa.Table, batch_n: int,
+               set_dir: Path, mk: Mask, common: dict[str, Any]) -> tuple[pa.Table, list[_Batch], int]:
+    """Rows kept as they are, batches of maps to build (one dataset each), and how many rows go."""
+    wanted: dict[str, _Item] = {}
+    dataset_of: dict[str, str] = {}
+    for r in rows_sel:
+        wanted[r["map_id"]] = _item(r, feature_key(r["sha256"], spec, r["dof"], r["model_mask_sha256"]))
+        dataset_of[r["map_id"]] = r["dataset"]
+    # keyed by map too: byte-identical copies of a file share a feature key, not a row
+    have = {mk_: i for i, mk_ in enumerate(zip(old_rows["map_id"].to_pylist(),
+                                               old_rows["feature_key"].to_pylist()))}
+    keep_idx = [have[(m, it.key)] for m, it in wanted.items() if (m, it.key) in have]
+    todo = [it for m, it in wanted.items() if (m, it.key) not in have]
+    kept = old_rows.take(pa.array(sorted(keep_idx), pa.int64())) if keep_idx else old_rows.slice(0, 0)
+    seed = Sketcher.for_set(mk.sha256, mk.n_voxels).seed
+    batches = [_Batch(str(set_dir), f"shard-{file_slug(ds)}-{new_snapshot_id()}-{i:05d}.npy", items,
+                      sketch_seed=seed, **common)
+               for ds, items, i in _per_dataset(todo, dataset_of, batch_n)]
+    return kept, batches, old_rows.num_rows - kept.num_rows
+
+
+@dataclass
+class _Built:
+    rows: list[dict[str, Any]]
+    problems: list[dict[str, Any]]
+    paths: dict[str, int]
+    created: list[Path]  # what this run wrote, removed if the disk fills
+    snap: str  # names this run's rows, problems and copies tables
+
+
+def _run_batches(batches: list[_Batch], run: dict[str, Any], store_path: Path, set_dir: Path, name: str) -> _Built:
+    snap = new_snapshot_id()
+    built = _Built([], [], {}, [set_dir / "shards" / b.shard for b in batches] +
+                   [set_dir / f"{kind}-{snap}.parquet" for kind in ("rows", "problems", "copies")], snap)
+    try:
+        for res in run_units(_run_batch, batches, desc=f"features {name}", weight=_n_items, unit="map", **run):
+            built.rows += res["rows"]
+            built.problems += res["problems"]
+            for r in res["rows"]:
+                built.paths[r["resample_path"]] = built.paths.get(r["resample_path"], 0) + 1
+    except OSError as exc:
+        _raise_if_full(exc, store_path, built.created)
+        raise
+    return built
+
+
+def _write_tables(store_path: Path, name: str, kept: pa.Table, built: _Built, problems: list[dict[str, Any]],
+                  dropped: int, existing: dict[str, Any] | None) -> tuple[pa.Table, dict[str, Any]]:
+    """The rows, problems and copies tables of the new state of the set; returns rows and its HEAD entry."""
+    new_rows, created, snap = built.rows, built.created, built.snap
+    rows_table = pa.concat_tables([kept, pa.Table.from_pylist(new_rows, schema=ROWS_SCHEMA)])
+    rows_table = rows_table.sort_by([("map_id", "ascending")])
+    rel = {kind: f"features/{name}/{kind}-{snap}.parquet" for kind in ("rows", "problems", "copies")}
+    entry = {"dir": f"features/{name}", "rows": rel["rows"], "problems": rel["problems"]}
+    try:
+        write_parquet_atomic(rows_table, store_path / rel["rows"])
+        write_parquet_atomic(pa.Table.from_pylist(problems, schema=FPROBLEMS_SCHEMA), store_path / rel["problems"])
         # copies among all the set's rows, from the sketches (new shards are in place already)
-        copies_rel = f"features/{name}/copies-{snap}.parquet"
-        entry = {"dir": f"features/{name}", "rows": rows_rel, "problems": probs_rel}
         if not new_rows and not dropped and existing and existing.get("copies") and \
                 (store_path / existing["copies"]).exists():
             copies = pq.read_table(store_path / existing["copies"])  # same rows: same pairs
         else:
             copies = find_copies(FeatureSet(store_path, name, entry))
-        try:
-            write_parquet_atomic(copies, store_path / copies_rel)
-        except OSError as exc:
-            _raise_if_full(exc, store_path, created)
-            raise
-        head.features[name] = {**entry, "copies": copies_rel, "n_rows": rows_table.num_rows,
-                               "spec_id": spec["spec_id"], "catalog": head.catalog}
-        if head.default_features is None or name == DEFAULT_SET:
-            head.default_features = name
-        previous_rows = existing["rows"] if existing else None
-        commit_head(store_path, head, {"event": "features", "set": name, "built": len(new_rows),
-                                       "rows": rows_table.num_rows})
-        _collect_feature_garbage(store_path, set_dir, rows_rel, previous_rows)
-
-    report = FeatureReport(name=name, n_voxels=mk.n_voxels, grid=target.name, mask=mk.name,
-                           built=len(new_rows), skipped=kept.num_rows, dropped=dropped, failed=len(problems),
-                           seconds=time.perf_counter() - t0, paths=paths, problems=problems, left_out=left_out)
-    if rows_table.num_rows == 0 and problems:
-        reasons = Counter(p["reason"] for p in problems).most_common(3)
-        raise FeatureError(f"feature set {name!r}: every selected map failed ({len(problems)}); most common "
-                           "reasons: " + "; ".join(f"{r} (x{n})" for r, n in reasons) +
-                           f". The failures are recorded: mapstore sql --store {store_path} "
-                           "\"SELECT * FROM feature_problems\"", report=report)
-    return report
+        write_parquet_atomic(copies, store_path / rel["copies"])
+    except OSError as exc:
+        _raise_if_full(exc, store_path, created)
+        raise
+    return rows_table, {**entry, "copies": rel["copies"]}
 
 
 def _raise_if_full(exc: OSError, store: Path, created: list[Path]) -> None:

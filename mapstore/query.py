@@ -336,52 +336,11 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
            target: str = "contrast", group_by: str = "study", with_broader: bool = False,
            missing: str = "common", min_voxels: int | None = None) -> Selection:
     """Choose maps and build a :class:`Selection` (see :meth:`mapstore.Store.select`)."""
-    import pandas as pd
-
-    if missing not in MISSING_POLICIES:
-        raise ParameterError(f"missing must be one of {list(MISSING_POLICIES)}, got {missing!r}")
-    if min_voxels is not None and (not isinstance(min_voxels, int) or min_voxels < 1):
-        raise ParameterError(f"min_voxels must be a positive integer, got {min_voxels!r}")
-    if group_by not in GROUP_COLUMNS:
-        raise ParameterError(f"group_by must be one of {sorted(GROUP_COLUMNS)}, got {group_by!r}")
-    if min_coverage is not None and not 0 <= min_coverage <= 1:
-        raise ParameterError(f"min_coverage must be in [0, 1], got {min_coverage!r}")
-    for name, val in (("concepts", concepts), ("task", task), ("stat", stat)):
-        if val is not None and (isinstance(val, str) or not all(isinstance(v, str) for v in val)):
-            raise ParameterError(f"{name} must be a list of strings, got {val!r}")
+    _check_select_options(missing, min_voxels, group_by, min_coverage, concepts=concepts, task=task, stat=stat)
     fs = store.features(features)
     cat = store.catalog
-    maps_cols = set(cat.sql("DESCRIBE maps")["column_name"].to_pylist())
-    p_cols = [c for c in cat.sql("DESCRIBE participants")["column_name"].to_pylist()
-              if c not in maps_cols and c != "participant_id"]
-    p_sel = "".join(f', p."{c}"' for c in p_cols)
-    conds = []
-    if where:
-        conds.append(f"({where})")
-    if task:
-        conds.append(f"task IN ({_sql_list(task)})")
-    if stat:
-        # stat labels are matched case-insensitively: a user's T is nilearn's t, f is F
-        conds.append(f"lower(stat) IN ({_sql_list(v.lower() for v in stat)})")
     lab = _labels(cat, with_broader)
-    if concepts:
-        known = set(lab["concept"])
-        if not known:
-            raise QueryError("the store has no labels; run 'mapstore labels --store DIR --vocab FILE' first")
-        unknown = sorted(set(concepts) - known)
-        if unknown:
-            raise QueryError(f"concept(s) {unknown} label no map; labelled concepts: {sorted(known)}"
-                             + ("" if with_broader else " (broader concepts count with with_broader=True)"))
-        ids = sorted(set(lab.loc[lab["concept"].isin(concepts), "map_id"]))
-        conds.append(f"map_id IN ({_sql_list(ids)})")
-    # the WHERE predicate sees maps, participants' extra columns, and `concepts` (direct labels)
-    inner = (f"SELECT m.*{p_sel}, coalesce(l.concepts, []) AS concepts FROM maps m LEFT JOIN participants p "
-             "ON p.dataset = m.dataset AND p.sub = m.sub LEFT JOIN (SELECT map_id, list(concept ORDER BY concept) "
-             "AS concepts FROM labels WHERE direct GROUP BY map_id) l ON l.map_id = m.map_id")
-    chosen = f"SELECT * FROM ({inner}) AS m" + (" WHERE " + " AND ".join(conds) if conds else "")
-    q = (f"WITH s AS ({chosen}) SELECT s.*, f.coverage, f.feature_key, f.conversion FROM s JOIN features f "
-         f"ON f.map_id = s.map_id AND f.feature_set = '{fs.name}' ORDER BY s.map_id")
-    base_q = f"SELECT count(*) FROM ({chosen})"
+    q, base_q = _selection_sql(cat, fs.name, where, task, stat, _concept_ids(lab, concepts, with_broader))
     try:
         df = cat.sql(q).to_pandas()
         n_matching = cat.sql(base_q).column(0)[0].as_py()
@@ -401,6 +360,75 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
     lab = lab[lab.map_id.isin(set(df.map_id))]
     by_map = lab.groupby("map_id")["concept"].apply(lambda s: sorted(set(s))).to_dict()
     df["concepts"] = [by_map.get(m, []) for m in df.map_id]
+    y, Y, concept_list = _targets(df, target, concepts)
+    groups = _groups(df, group_by)
+    query = {"where": where, "concepts": concepts, "task": task, "stat": stat, "features": fs.name,
+             "min_coverage": min_coverage, "target": target, "group_by": group_by, "with_broader": with_broader,
+             "missing": missing, "min_voxels": min_voxels, "sql": q}
+    return Selection(store, fs, df, y, Y, concept_list, groups, group_by, target, query, dropped, missing,
+                     min_voxels)
+
+
+def _check_select_options(missing: str, min_voxels: int | None, group_by: str, min_coverage: float | None,
+                          **lists: list[str] | None) -> None:
+    if missing not in MISSING_POLICIES:
+        raise ParameterError(f"missing must be one of {list(MISSING_POLICIES)}, got {missing!r}")
+    if min_voxels is not None and (not isinstance(min_voxels, int) or min_voxels < 1):
+        raise ParameterError(f"min_voxels must be a positive integer, got {min_voxels!r}")
+    if group_by not in GROUP_COLUMNS:
+        raise ParameterError(f"group_by must be one of {sorted(GROUP_COLUMNS)}, got {group_by!r}")
+    if min_coverage is not None and not 0 <= min_coverage <= 1:
+        raise ParameterError(f"min_coverage must be in [0, 1], got {min_coverage!r}")
+    for name, val in lists.items():
+        if val is not None and (isinstance(val, str) or not all(isinstance(v, str) for v in val)):
+            raise ParameterError(f"{name} must be a list of strings, got {val!r}")
+
+
+def _concept_ids(lab, concepts: list[str] | None, with_broader: bool) -> list[str] | None:
+    """Ids of the maps labelled with one of ``concepts`` (None: no concept filter)."""
+    if not concepts:
+        return None
+    known = set(lab["concept"])
+    if not known:
+        raise QueryError("the store has no labels; run 'mapstore labels --store DIR --vocab FILE' first")
+    unknown = sorted(set(concepts) - known)
+    if unknown:
+        raise QueryError(f"concept(s) {unknown} label no map; labelled concepts: {sorted(known)}"
+                         + ("" if with_broader else " (broader concepts count with with_broader=True)"))
+    return sorted(set(lab.loc[lab["concept"].isin(concepts), "map_id"]))
+
+
+def _selection_sql(cat, feature_set: str, where: str | None, task: list[str] | None, stat: list[str] | None,
+                   ids: list[str] | None) -> tuple[str, str]:
+    """The query of the selected maps with their feature rows, and the count of maps matching at all."""
+    maps_cols = set(cat.sql("DESCRIBE maps")["column_name"].to_pylist())
+    p_cols = [c for c in cat.sql("DESCRIBE participants")["column_name"].to_pylist()
+              if c not in maps_cols and c != "participant_id"]
+    p_sel = "".join(f', p."{c}"' for c in p_cols)
+    conds = []
+    if where:
+        conds.append(f"({where})")
+    if task:
+        conds.append(f"task IN ({_sql_list(task)})")
+    if stat:
+        # stat labels are matched case-insensitively: a user's T is nilearn's t, f is F
+        conds.append(f"lower(stat) IN ({_sql_list(v.lower() for v in stat)})")
+    if ids is not None:
+        conds.append(f"map_id IN ({_sql_list(ids)})")
+    # the WHERE predicate sees maps, participants' extra columns, and `concepts` (direct labels)
+    inner = (f"SELECT m.*{p_sel}, coalesce(l.concepts, []) AS concepts FROM maps m LEFT JOIN participants p "
+             "ON p.dataset = m.dataset AND p.sub = m.sub LEFT JOIN (SELECT map_id, list(concept ORDER BY concept) "
+             "AS concepts FROM labels WHERE direct GROUP BY map_id) l ON l.map_id = m.map_id")
+    chosen = f"SELECT * FROM ({inner}) AS m" + (" WHERE " + " AND ".join(conds) if conds else "")
+    q = (f"WITH s AS ({chosen}) SELECT s.*, f.coverage, f.feature_key, f.conversion FROM s JOIN features f "
+         f"ON f.map_id = s.map_id AND f.feature_set = '{feature_set}' ORDER BY s.map_id")
+    return q, f"SELECT count(*) FROM ({chosen})"
+
+
+def _targets(df, target: str, concepts: list[str] | None):
+    """``y`` (one label per map) or ``Y`` (multi-label indicators, with their concept list)."""
+    import pandas as pd
+
     y = Y = None
     concept_list: list[str] = []
     if target == "contrast":
@@ -429,14 +457,13 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
             raise QueryError(f"target column {target!r} is empty for {int(pd.isna(df[target]).sum())} map(s)")
     else:
         raise ParameterError(f"target must be one of {list(_TARGET_KINDS)} or a column of maps, got {target!r}")
+    return y, Y, concept_list
+
+
+def _groups(df, group_by: str) -> np.ndarray:
     gcol = GROUP_COLUMNS[group_by]
     if df[gcol].isna().any():
         n = int(df[gcol].isna().sum())
         raise QueryError(f"{n} selected map(s) have no {group_by} (e.g. {df.loc[df[gcol].isna(), 'map_id'].iloc[0]}); "
                          f"set it with an origins file ('mapstore index --origins'), or group by study")
-    groups = df[gcol].to_numpy(object)
-    query = {"where": where, "concepts": concepts, "task": task, "stat": stat, "features": fs.name,
-             "min_coverage": min_coverage, "target": target, "group_by": group_by, "with_broader": with_broader,
-             "missing": missing, "min_voxels": min_voxels, "sql": q}
-    return Selection(store, fs, df, y, Y, concept_list, groups, group_by, target, query, dropped, missing,
-                     min_voxels)
+    return df[gcol].to_numpy(object)
