@@ -295,89 +295,121 @@ def _run_unit(unit: _Unit) -> _UnitResult:
 
 
 def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
-    ds = unit.ds
-    parser = unit.parser
     fingerprint = hashlib.sha256(unit.inputs.encode())
-    maps, jsons, problems = walk_dataset(ds, parser, unit.rules, unit.top, unit.root_maps, fingerprint)
+    maps, jsons, problems = walk_dataset(unit.ds, unit.parser, unit.rules, unit.top, unit.root_maps, fingerprint)
     digest = None if unit.rules.rules or any(p.level == _NOT_REUSED_LEVEL for p in problems) \
         else fingerprint.hexdigest()
     prev_part = unit.prev_part
     if digest is not None and prev_part is not None and prev_part.digest == digest:
         return _UnitResult(prev_part, _read_problems(unit.store, prev_part), 0, 0, prev_part.rows, True)
-    resolver = SidecarResolver(ds, jsons, parser)
-    model = ModelFiles(ds, jsons, parser)
-    mask_sha: dict[str, str | None] = {}
-    # previous rows: a few columns as lists; reused header columns are gathered from the table
-    pt = _previous_rows(unit)
-    pcol = {c: pt[c].to_pylist() for c in ("relpath", "nbytes", "mtime_ns", "sha256", "intent_code",
-                                             "intent_p1", "descrip")} if pt is not None and pt.num_rows else {}
-    prev = {r: i for i, r in enumerate(pcol.get("relpath", []))}
-    cache: dict[bytes, dict[str, Any]] = {}
-    rows: list[tuple] = []
-    headers: list[dict[str, Any]] = []
-    header_pos: dict[Any, int] = {}
-    sidecars: list[dict[str, Any]] = []
-    sidecar_pos: dict[tuple, int] = {}
-    hidx: list[int] = []
-    sidx: list[int] = []
-    origins: dict[str | None, dict[str, Any]] = {}
-    new = changed = unchanged = 0
+    rows = _RowBuilder(unit, jsons, problems, deadline)
     for m in maps:
-        old = prev.get(m.relpath)
+        rows.add(m)
+    table = rows.table()
+    problems = rows.all_problems()
+    if any(p.level == _NOT_REUSED_LEVEL for p in problems):
+        digest = None
+    part = _write_part(unit, table, problems, digest)
+    return _UnitResult(part, problems, rows.new, rows.changed, rows.unchanged, False)
+
+
+class _RowBuilder:
+    """The maps rows of one unit, one tuple per map, with repeated values built once.
+
+    Header facts and sidecar metadata repeat across a study's maps: each distinct value is
+    kept once (``headers``, ``sidecars``) and rows point at it (``hidx``, ``sidx``), so the
+    columns are gathered with one Arrow ``take`` at the end.  Unchanged files (same size and
+    mtime as in the previous part) take their hash and header from it.
+    """
+
+    def __init__(self, unit: _Unit, jsons: dict[str, list[str]], problems: list[Problem],
+                 deadline: ReadDeadline) -> None:
+        self.unit, self.ds, self.deadline = unit, unit.ds, deadline
+        self.problems = problems
+        self.resolver = SidecarResolver(unit.ds, jsons, unit.parser)
+        self.model = ModelFiles(unit.ds, jsons, unit.parser)
+        self.prev_table = _previous_rows(unit)
+        pt = self.prev_table
+        self.pcol = {c: pt[c].to_pylist() for c in ("relpath", "nbytes", "mtime_ns", "sha256", "intent_code",
+                                                    "intent_p1", "descrip")} if pt is not None and pt.num_rows else {}
+        self.prev = {r: i for i, r in enumerate(self.pcol.get("relpath", []))}
+        self.cache: dict[bytes, dict[str, Any]] = {}
+        self.rows: list[tuple] = []
+        self.headers: list[dict[str, Any]] = []
+        self.header_pos: dict[Any, int] = {}
+        self.sidecars: list[dict[str, Any]] = []
+        self.sidecar_pos: dict[tuple, int] = {}
+        self.hidx: list[int] = []
+        self.sidx: list[int] = []
+        self.origins: dict[str | None, dict[str, Any]] = {}
+        self.mask_sha: dict[str, str | None] = {}
+        self.new = self.changed = self.unchanged = 0
+
+    def _header(self, m) -> tuple[dict[str, Any], str, int] | None:
+        """Header columns, sha256 and size of a map (None, with a problem, when it cannot be read)."""
+        pcol = self.pcol
+        old = self.prev.get(m.relpath)
         if old is not None and pcol["nbytes"][old] == m.nbytes and pcol["mtime_ns"][old] == m.mtime_ns:
-            sha, nbytes = pcol["sha256"][old], pcol["nbytes"][old]
-            hdr = {"intent_code": pcol["intent_code"][old], "intent_p1": pcol["intent_p1"][old],
-                   "descrip": pcol["descrip"][old]}
-            hidx.append(-1 - old)  # a previous row: resolved against the previous table
-            unchanged += 1
+            self.hidx.append(-1 - old)  # a previous row: resolved against the previous table
+            self.unchanged += 1
+            return ({"intent_code": pcol["intent_code"][old], "intent_p1": pcol["intent_p1"][old],
+                     "descrip": pcol["descrip"][old]}, pcol["sha256"][old], pcol["nbytes"][old])
+        try:
+            with self.deadline.armed():
+                res = probe_file(m.path, self.cache, self.deadline.progress)
+        except ReadTimeout:
+            res = Problem(m.path, "read-timeout", f"reading the file made no progress for "
+                          f"{self.unit.read_timeout:g} s (a stalled network or FUSE mount, or a file fetched on "
+                          "access?); it was skipped", "make the file readable (fetch it, check the mount), then "
+                          "index again; --read-timeout sets the deadline")
+        if isinstance(res, Problem):
+            self.problems.append(Problem(res.path, res.code, res.reason, res.remedy, res.level, self.ds.key,
+                                         res.stage))
+            return None
+        hdr = res[0]
+        if old is None:
+            self.new += 1
         else:
-            try:
-                with deadline.armed():
-                    res = probe_file(m.path, cache, deadline.progress)
-            except ReadTimeout:
-                res = Problem(m.path, "read-timeout", f"reading the file made no progress for {unit.read_timeout:g} s "
-                              "(a stalled network or FUSE mount, or a file fetched on access?); it was skipped",
-                              "make the file readable (fetch it, check the mount), then index again; "
-                              "--read-timeout sets the deadline")
-            if isinstance(res, Problem):
-                problems.append(Problem(res.path, res.code, res.reason, res.remedy, res.level,
-                                        ds.key, res.stage))
-                continue
-            hdr, sha, nbytes = res
-            key = id(hdr)  # probe_file shares one dict per distinct header
-            if old is None:
-                new += 1
-            else:
-                changed += 1
-            pos = header_pos.get(key)
-            if pos is None:
-                pos = header_pos[key] = len(headers)
-                headers.append(hdr)
-            hidx.append(pos)
-        ents = m.entities
-        meta, used, meta_json = resolver.resolve_full(m.relpath, ents)
+            self.changed += 1
+        key = id(hdr)  # probe_file shares one dict per distinct header
+        pos = self.header_pos.get(key)
+        if pos is None:
+            pos = self.header_pos[key] = len(self.headers)
+            self.headers.append(hdr)
+        self.hidx.append(pos)
+        return res
+
+    def _model_mask(self, m) -> tuple[str | None, str | None]:
+        rel = m.extras.get("mask") or self.model.mask_for(m.relpath, m.entities)
+        if rel is not None and rel not in self.mask_sha:
+            self.mask_sha[rel] = _mask_digest(self.ds, rel, self.problems)
+        sha = self.mask_sha.get(rel) if rel else None
+        return (rel, sha) if sha is not None else (None, None)
+
+    def add(self, m) -> None:
+        got = self._header(m)
+        if got is None:
+            return
+        hdr, sha, nbytes = got
+        ds, ents = self.ds, m.entities
+        meta, used, meta_json = self.resolver.resolve_full(m.relpath, ents)
         skey = (meta_json, *used)
-        spos = sidecar_pos.get(skey)
+        spos = self.sidecar_pos.get(skey)
         if spos is None:
-            spos = sidecar_pos[skey] = len(sidecars)
-            sidecars.append({"metadata": meta_json, "sidecars": used})
-        sidx.append(spos)
+            spos = self.sidecar_pos[skey] = len(self.sidecars)
+            self.sidecars.append({"metadata": meta_json, "sidecars": used})
+        self.sidx.append(spos)
         sub = ents.get("sub")
-        origin = origins.get(sub)
+        origin = self.origins.get(sub)
         if origin is None:
-            origin = origins[sub] = _origin(ds, sub, unit.by_sub, unit.overrides)
+            origin = self.origins[sub] = _origin(ds, sub, self.unit.by_sub, self.unit.overrides)
         lab = origin["lab"]
         if lab is None and meta.get("InstitutionName") is not None:
             lab = str(meta["InstitutionName"])
-        mask_rel = m.extras.get("mask") or model.mask_for(m.relpath, ents)
-        if mask_rel is not None and mask_rel not in mask_sha:
-            mask_sha[mask_rel] = _mask_digest(ds, mask_rel, problems)
-        msha = mask_sha.get(mask_rel) if mask_rel else None
-        if msha is None:
-            mask_rel = None
-        dof, dof_source = _degrees_of_freedom(m, meta, used, hdr, model, problems)
+        mask_rel, msha = self._model_mask(m)
+        dof, dof_source = _degrees_of_freedom(m, meta, used, hdr, self.model, self.problems)
         get = ents.get
-        rows.append((
+        self.rows.append((
             map_id_for(ds.key, m.relpath), ds.key, m.relpath,
             *[get(c) for c in _ENTITY_COLUMNS], "contrast" if get("contrast") else "model",
             get("suffix"), get("extension"),
@@ -385,17 +417,18 @@ def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
             m.named_by, origin["participant"], origin["study"], origin["site"], lab,
             sha, nbytes, m.mtime_ns, dof, dof_source, mask_rel, msha,
         ))
-    problems.extend(resolver.problems)
-    problems = [p if p.dataset else Problem(p.path, p.code, p.reason, p.remedy, p.level, ds.key, p.stage)
-                for p in problems]
-    if any(p.level == _NOT_REUSED_LEVEL for p in problems):
-        digest = None
-    # one tuple per row while crawling, transposed into columns once
-    cols = dict(zip(_PER_ROW, (list(c) for c in zip(*rows)))) if rows else {c: [] for c in _PER_ROW}
-    table = _assemble(cols, headers, hidx, sidecars, sidx, pt)
-    del rows, cols, pt
-    part = _write_part(unit, table, problems, digest)
-    return _UnitResult(part, problems, new, changed, unchanged, False)
+
+    def table(self) -> pa.Table:
+        # one tuple per row while crawling, transposed into columns once
+        rows = self.rows
+        cols = dict(zip(_PER_ROW, (list(c) for c in zip(*rows)))) if rows else {c: [] for c in _PER_ROW}
+        self.rows = []
+        return _assemble(cols, self.headers, self.hidx, self.sidecars, self.sidx, self.prev_table)
+
+    def all_problems(self) -> list[Problem]:
+        key = self.ds.key
+        return [p if p.dataset else Problem(p.path, p.code, p.reason, p.remedy, p.level, key, p.stage)
+                for p in self.problems + self.resolver.problems]
 
 
 def _part_name(unit: _Unit) -> str:

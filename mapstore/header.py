@@ -207,90 +207,15 @@ def header_prefix(path: str, raw: bytes) -> bytes:
 
 def parse_header(path: str, data: bytes) -> HeaderFacts:
     """Parse the uncompressed first bytes of a NIfTI file into :class:`HeaderFacts`."""
-    if len(data) == 0:
-        raise HeaderError(path, "empty-file", "file is empty", "re-create the file")
-    if len(data) < NIFTI1_SIZE:
-        raise HeaderError(path, "truncated-header",
-                          f"only {len(data)} header bytes, a NIfTI header needs at least 348",
-                          "the file was cut short; re-create or re-download it")
-    size_le = int.from_bytes(data[:4], "little")
-    size_be = int.from_bytes(data[:4], "big")
-    if NIFTI1_SIZE in (size_le, size_be):
-        version = 1
-        order = "<" if size_le == NIFTI1_SIZE else ">"
-        hdr = np.frombuffer(data[:NIFTI1_SIZE], dtype=_N1[order])[0]
-        magic = bytes(hdr["magic"])
-        single = magic[:3] == b"n+1"
-        if magic not in (b"n+1\x00", b"ni1\x00", b"n+1", b"ni1"):
-            raise HeaderError(path, "not-nifti",
-                              "348-byte header without the NIfTI-1 magic (an ANALYZE 7.5 image?)",
-                              "convert it to NIfTI, for example with nibabel")
-    elif NIFTI2_SIZE in (size_le, size_be):
-        version = 2
-        if len(data) < NIFTI2_SIZE:
-            raise HeaderError(path, "truncated-header",
-                              f"only {len(data)} header bytes, a NIfTI-2 header needs 540",
-                              "the file was cut short; re-create or re-download it")
-        order = "<" if size_le == NIFTI2_SIZE else ">"
-        hdr = np.frombuffer(data[:NIFTI2_SIZE], dtype=_N2[order])[0]
-        single = bytes(hdr["magic"])[:3] == b"n+2"
-        if bytes(hdr["magic"])[:3] not in (b"n+2", b"ni2"):
-            raise HeaderError(path, "not-nifti", "540-byte header without the NIfTI-2 magic",
-                              "check that the file is a NIfTI-2 image")
-    else:
-        raise HeaderError(path, "not-nifti",
-                          "first 4 bytes are neither 348 nor 540 (not a NIfTI header)",
-                          "check that the file is a NIfTI image")
-
-    dim = [int(x) for x in hdr["dim"]]
-    ndim = dim[0]
-    if not 1 <= ndim <= 7:
-        raise HeaderError(path, "bad-dim", f"dim[0] is {ndim}, NIfTI allows 1 to 7",
-                          "the header is damaged; re-create the file")
-    shape = tuple(dim[1: ndim + 1])
-    if any(s < 1 for s in shape):
-        raise HeaderError(path, "bad-dim", f"dimensions {shape} contain a value below 1",
-                          "the header is damaged; re-create the file")
+    version, order, hdr, single = _decode(path, data)
+    shape = _checked_shape(path, hdr)
     code = int(hdr["datatype"])
     if code not in NIFTI_DTYPES:
         raise HeaderError(path, "bad-datatype", f"unknown NIfTI datatype code {code}",
                           "re-save the image with a standard data type")
     pixdim = np.array(hdr["pixdim"], dtype=np.float64)
-    warnings: list[str] = []
-
-    def srow() -> np.ndarray:
-        m = np.eye(4)
-        m[0], m[1], m[2] = hdr["srow_x"], hdr["srow_y"], hdr["srow_z"]
-        return m
-
-    qcode, scode = int(hdr["qform_code"]), int(hdr["sform_code"])
-    q_aff = _quaternion_affine(float(hdr["quatern_b"]), float(hdr["quatern_c"]),
-                               float(hdr["quatern_d"]), pixdim,
-                               (float(hdr["qoffset_x"]), float(hdr["qoffset_y"]),
-                                float(hdr["qoffset_z"]))) if qcode > 0 else None
-    s_aff = srow() if scode > 0 else None
-    if s_aff is not None and _is_usable(s_aff):
-        affine, source = s_aff, "sform"
-    elif q_aff is not None and _is_usable(q_aff):
-        affine, source = q_aff, "qform"
-        if s_aff is not None:
-            warnings.append("sform_code is set but the sform is singular; used the qform")
-    elif s_aff is None and q_aff is None:
-        # nifti1.h "METHOD 1" (ANALYZE compatibility): scaling by pixdim only
-        affine = np.diag([pixdim[1], pixdim[2], pixdim[3], 1.0])
-        source = "pixdim"
-        warnings.append("neither sform nor qform is set; the affine is pixdim scaling only")
-        if not _is_usable(affine):
-            raise HeaderError(path, "singular-affine",
-                              "no sform or qform and pixdim has zero voxel sizes",
-                              "set a valid sform or qform in the header")
-    else:
-        raise HeaderError(path, "singular-affine",
-                          "the voxel-to-world affine is singular (zero or non-finite rows)",
-                          "fix the sform/qform of the image, for example with nibabel's set_sform")
+    affine, source, q_aff, s_aff, warnings = _best_affine(path, hdr, pixdim)
     vox = tuple(float(np.linalg.norm(affine[:3, j])) for j in range(3))
-    slope = float(hdr["scl_slope"])
-    inter = float(hdr["scl_inter"])
     intent = int(hdr["intent_code"])
 
     def tup(a: np.ndarray | None) -> tuple[float, ...] | None:
@@ -303,13 +228,13 @@ def parse_header(path: str, data: bytes) -> HeaderFacts:
         dtype=NIFTI_DTYPES[code],
         bitpix=int(hdr["bitpix"]),
         vox_offset=int(hdr["vox_offset"]),
-        scl_slope=slope,
-        scl_inter=inter,
+        scl_slope=float(hdr["scl_slope"]),
+        scl_inter=float(hdr["scl_inter"]),
         intent_code=intent,
         intent_name=INTENT_NAMES.get(intent, f"code {intent}"),
         intent_p1=float(hdr["intent_p1"]),
-        qform_code=qcode,
-        sform_code=scode,
+        qform_code=int(hdr["qform_code"]),
+        sform_code=int(hdr["sform_code"]),
         affine_source=source,
         affine=tup(affine),
         qform_affine=tup(q_aff),
@@ -320,6 +245,87 @@ def parse_header(path: str, data: bytes) -> HeaderFacts:
         warnings=tuple(warnings),
         single_file=single,
     )
+
+
+def _decode(path: str, data: bytes):
+    """(version, byte order, header record, single-file magic) from the first bytes."""
+    if len(data) == 0:
+        raise HeaderError(path, "empty-file", "file is empty", "re-create the file")
+    if len(data) < NIFTI1_SIZE:
+        raise HeaderError(path, "truncated-header",
+                          f"only {len(data)} header bytes, a NIfTI header needs at least 348",
+                          "the file was cut short; re-create or re-download it")
+    size_le = int.from_bytes(data[:4], "little")
+    size_be = int.from_bytes(data[:4], "big")
+    if NIFTI1_SIZE in (size_le, size_be):
+        order = "<" if size_le == NIFTI1_SIZE else ">"
+        hdr = np.frombuffer(data[:NIFTI1_SIZE], dtype=_N1[order])[0]
+        magic = bytes(hdr["magic"])
+        if magic not in (b"n+1\x00", b"ni1\x00", b"n+1", b"ni1"):
+            raise HeaderError(path, "not-nifti",
+                              "348-byte header without the NIfTI-1 magic (an ANALYZE 7.5 image?)",
+                              "convert it to NIfTI, for example with nibabel")
+        return 1, order, hdr, magic[:3] == b"n+1"
+    if NIFTI2_SIZE in (size_le, size_be):
+        if len(data) < NIFTI2_SIZE:
+            raise HeaderError(path, "truncated-header",
+                              f"only {len(data)} header bytes, a NIfTI-2 header needs 540",
+                              "the file was cut short; re-create or re-download it")
+        order = "<" if size_le == NIFTI2_SIZE else ">"
+        hdr = np.frombuffer(data[:NIFTI2_SIZE], dtype=_N2[order])[0]
+        magic = bytes(hdr["magic"])[:3]
+        if magic not in (b"n+2", b"ni2"):
+            raise HeaderError(path, "not-nifti", "540-byte header without the NIfTI-2 magic",
+                              "check that the file is a NIfTI-2 image")
+        return 2, order, hdr, magic == b"n+2"
+    raise HeaderError(path, "not-nifti", "first 4 bytes are neither 348 nor 540 (not a NIfTI header)",
+                      "check that the file is a NIfTI image")
+
+
+def _checked_shape(path: str, hdr) -> tuple[int, ...]:
+    dim = [int(x) for x in hdr["dim"]]
+    ndim = dim[0]
+    if not 1 <= ndim <= 7:
+        raise HeaderError(path, "bad-dim", f"dim[0] is {ndim}, NIfTI allows 1 to 7",
+                          "the header is damaged; re-create the file")
+    shape = tuple(dim[1: ndim + 1])
+    if any(s < 1 for s in shape):
+        raise HeaderError(path, "bad-dim", f"dimensions {shape} contain a value below 1",
+                          "the header is damaged; re-create the file")
+    return shape
+
+
+def _best_affine(path: str, hdr, pixdim: np.ndarray):
+    """The voxel-to-world affine by nifti1.h's methods: sform (3), else qform (2), else pixdim (1).
+
+    Returns (affine, source, qform affine, sform affine, warnings).
+    """
+    warnings: list[str] = []
+    qcode, scode = int(hdr["qform_code"]), int(hdr["sform_code"])
+    q_aff = _quaternion_affine(float(hdr["quatern_b"]), float(hdr["quatern_c"]),
+                               float(hdr["quatern_d"]), pixdim,
+                               (float(hdr["qoffset_x"]), float(hdr["qoffset_y"]),
+                                float(hdr["qoffset_z"]))) if qcode > 0 else None
+    s_aff = None
+    if scode > 0:
+        s_aff = np.eye(4)
+        s_aff[0], s_aff[1], s_aff[2] = hdr["srow_x"], hdr["srow_y"], hdr["srow_z"]
+    if s_aff is not None and _is_usable(s_aff):
+        return s_aff, "sform", q_aff, s_aff, warnings
+    if q_aff is not None and _is_usable(q_aff):
+        if s_aff is not None:
+            warnings.append("sform_code is set but the sform is singular; used the qform")
+        return q_aff, "qform", q_aff, s_aff, warnings
+    if s_aff is None and q_aff is None:
+        # nifti1.h "METHOD 1" (ANALYZE compatibility): scaling by pixdim only
+        affine = np.diag([pixdim[1], pixdim[2], pixdim[3], 1.0])
+        warnings.append("neither sform nor qform is set; the affine is pixdim scaling only")
+        if not _is_usable(affine):
+            raise HeaderError(path, "singular-affine", "no sform or qform and pixdim has zero voxel sizes",
+                              "set a valid sform or qform in the header")
+        return affine, "pixdim", q_aff, s_aff, warnings
+    raise HeaderError(path, "singular-affine", "the voxel-to-world affine is singular (zero or non-finite rows)",
+                      "fix the sform/qform of the image, for example with nibabel's set_sform")
 
 
 def read_header(path: str) -> HeaderFacts:
