@@ -13,10 +13,15 @@ from pathlib import Path
 
 import click
 
-import mapstore
-
+from ._version import __version__
+from .api import open_store
+from .catalog import index as run_index
 from .check import report_json
 from .demo import make_demo
+from .errors import MapstoreError
+from .export import verify as verify_export
+from .features import build_features
+from .labels import label_store
 
 FINDINGS_EXIT = 3  # check found something at --fail-on, or verify found a change (1 is a failure to run)
 
@@ -33,7 +38,7 @@ STORE_OPTION = click.option("--store", "store", required=True, type=click.Path(f
 
 
 @click.group(context_settings={"help_option_names": ["-h", "--help"]})
-@click.version_option(mapstore.__version__, prog_name="mapstore")
+@click.version_option(__version__, prog_name="mapstore")
 def cli() -> None:
     """Pool brain statistic maps from many BIDS derivative datasets into one store."""
 
@@ -114,7 +119,7 @@ def write_table(table, fmt: str, out: str | None) -> None:
               "workers must see the datasets and the store at the same paths.")
 def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_address) -> None:
     """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them)."""
-    report = mapstore.index(roots, store, rules=list(rules) or None, overrides=origins, jobs=jobs, prune=prune,
+    report = run_index(roots, store, rules=list(rules) or None, overrides=origins, jobs=jobs, prune=prune,
                             scheduler=dask_address,
                             read_timeout=read_timeout)
     click.echo(report.summary())
@@ -129,7 +134,7 @@ def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_addr
 def sql_cmd(store, query, fmt, out) -> None:
     """Run a read-only SQL QUERY over the views maps, datasets, participants, problems, labels."""
     _target(out, "--out")
-    table = mapstore.open(store).sql(query)
+    table = open_store(store).sql(query)
     write_table(table, fmt, out)
 
 
@@ -158,9 +163,9 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
                  jobs, dask_address, list_only) -> None:
     """Resample every map once onto one grid and mask (a named feature set)."""
     if list_only:
-        click.echo(render_table(mapstore.open(store).sql("SELECT * FROM feature_sets")))
+        click.echo(render_table(open_store(store).sql("SELECT * FROM feature_sets")))
         return
-    report = mapstore.build_features(store, name, grid=grid, mask=mask, method=method, stat=stat,
+    report = build_features(store, name, grid=grid, mask=mask, method=method, stat=stat,
                                      p_sided=p_sided, zero_as_missing=zero_as_missing, background=background,
                                      model_maps=model_maps, where=where,
                                      jobs=jobs, scheduler=dask_address)
@@ -175,7 +180,7 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
               help="Also label maps with broader concepts (default: as the vocabulary says).")
 def labels_cmd(store, vocab, inherit) -> None:
     """Label the store's maps with concepts from a vocabulary."""
-    report = mapstore.label(store, vocab, inherit_broader=inherit)
+    report = label_store(store, vocab, inherit_broader=inherit)
     click.echo(report.summary())
 
 
@@ -210,7 +215,7 @@ def labels_cmd(store, vocab, inherit) -> None:
 def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_coverage, target, group_by, scheme,
                seed, allow_leak, near_copy_r, with_broader, missing, min_voxels, fmt, overwrite) -> None:
     """Export X, y, groups, splits and metadata of a selection, with a manifest."""
-    st = mapstore.open(store)
+    st = open_store(store)
     if target is None:
         target = "concept" if concepts else "contrast"
     sel = st.select(where, concepts=list(concepts) or None, task=list(tasks) or None, stat=list(stats) or None,
@@ -225,7 +230,7 @@ def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_cover
 @click.argument("manifest", type=click.Path(exists=True))
 def verify_cmd(manifest) -> None:
     """Re-check an export's MANIFEST against its sources and store; exit 3 if anything changed."""
-    report = mapstore.verify(manifest)
+    report = verify_export(manifest)
     click.echo(report.summary())
     if not report.ok:
         raise click.exceptions.Exit(FINDINGS_EXIT)
@@ -246,7 +251,7 @@ def verify_cmd(manifest) -> None:
 def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fail_on) -> None:
     """Check grids, space, coverage, stat types, metadata, copies and concept agreement of a store."""
     _target(html_out, "--html")
-    report = mapstore.open(store).check(feature_set, min_coverage=min_coverage, pictures=bool(html_out),
+    report = open_store(store).check(feature_set, min_coverage=min_coverage, pictures=bool(html_out),
                                         min_agreement=min_agreement)
     if fmt == "json":
         click.echo(report_json(report))
@@ -273,9 +278,9 @@ def demo_cmd(folder, scale) -> None:
     click.echo(f"  {summary.studies} studies by {summary.labs} labs, {summary.maps} statistic maps, "
                f"{len(summary.planted_problems)} planted problem files")
     click.echo(f"indexing into {store} ...")
-    report = mapstore.index([data], store, rules=summary.rules, overrides=summary.overrides)
+    report = run_index([data], store, rules=summary.rules, overrides=summary.overrides)
     click.echo(report.summary())
-    st = mapstore.open(store)
+    st = open_store(store)
     click.echo("\nmaps per study, grid and stat:")
     click.echo(render_table(st.sql(
         "SELECT study, lab, count(DISTINCT site) AS sites, count(DISTINCT participant) AS subjects, "
@@ -287,16 +292,16 @@ def demo_cmd(folder, scale) -> None:
         f"SELECT code, level, replace(path, '{data}/', '') AS path, remedy FROM problems ORDER BY code"),
         width=100))
     click.echo("\nresampling every map onto the MNI152 2 mm grid and brain mask ...")
-    freport = mapstore.build_features(store)
+    freport = build_features(store)
     click.echo(freport.summary())
-    st = mapstore.open(store)
+    st = open_store(store)
     click.echo(render_table(st.sql(
         "SELECT m.study, m.orientation, list_first(m.voxel_size) AS voxel_mm, any_value(f.resample_path) AS path, "
         "round(min(f.coverage), 3) AS min_coverage, round(avg(f.coverage), 3) AS mean_coverage, count(*) AS rows "
         "FROM features f JOIN maps m USING (map_id) GROUP BY ALL ORDER BY m.study")))
     click.echo("\nlabelling maps with the demo's concept vocabulary ...")
-    click.echo(mapstore.label(store, summary.vocabulary).summary())
-    st = mapstore.open(store)
+    click.echo(label_store(store, summary.vocabulary).summary())
+    st = open_store(store)
     concepts = ["visual-motion", "hand-movement", "listening", "reading", "arithmetic"]
     sel = st.select(concepts=concepts, target="concept", stat=["t", "z"], group_by="study")
     out = base / "export-leave-one-study-out"
@@ -353,7 +358,7 @@ def main(argv: list[str] | None = None) -> int:
     except click.ClickException as exc:
         exc.show()
         return exc.exit_code
-    except mapstore.MapstoreError as exc:
+    except MapstoreError as exc:
         if getattr(exc, "report", None) is not None:
             click.echo(exc.report.summary())
         click.echo(f"error: {exc}", err=True)

@@ -220,6 +220,94 @@ def demo_rules() -> dict:
     }]}
 
 
+def _write_study(root: Path, study, scale: float) -> int:
+    """One invented study: its dataset (nested in a raw one, or not), participants, sidecars, maps."""
+    grid = GRIDS[study.grid]
+    axes = _axes(grid)
+    brain = _brain(axes)
+    if study.nested_in_raw:
+        raw = root / study.name
+        _write_json(raw / "dataset_description.json", {
+            "Name": study.name, "BIDSVersion": "1.9.0", "DatasetType": "raw",
+            "Authors": [f"{study.lab} members"]})
+        ds = raw / "derivatives" / "firstlevel"
+        ptsv = raw / "participants.tsv"
+    else:
+        ds = root / study.name
+        ptsv = ds / "participants.tsv"
+    desc = {"Name": study.name if not study.nested_in_raw else f"{study.name} first-level models",
+            "BIDSVersion": "1.9.0", "DatasetType": "derivative",
+            "GeneratedBy": [{"Name": "demo-glm", "Version": "0.3",
+                             "Description": "invented first-level models"}]}
+    if study.nested_in_raw:
+        desc["SourceDatasets"] = [{"URL": "../.."}]
+    _write_json(ds / "dataset_description.json", desc)
+    n_sub = max(2, round(study.n_subjects * scale))
+    subjects = [f"{i + 1:02d}" for i in range(n_sub)]
+    prng = _rng(study.name, "participants")
+    lines = ["participant_id\tsite\tage\tsex"]
+    for i, sub in enumerate(subjects):
+        site = study.sites[i % len(study.sites)]
+        lines.append(f"sub-{sub}\t{site}\t{int(prng.integers(19, 41))}\t{'FM'[int(prng.integers(0, 2))]}")
+    ptsv.parent.mkdir(parents=True, exist_ok=True)
+    ptsv.write_text("\n".join(lines) + "\n")
+    dof = 140 if study.runs else 180
+    if not study.legacy_names:
+        _write_json(ds / f"task-{study.task}_statmap.json", {
+            "DegreesOfFreedom": dof, "InstitutionName": study.lab,
+            "Description": f"first-level contrasts of the {study.task} task"})
+    n_maps = 0
+    for sub in subjects:
+        if not study.legacy_names and sub == subjects[1]:
+            # one subject lost a run: a subject-level sidecar overrides the dataset one
+            _write_json(ds / f"sub-{sub}" / f"sub-{sub}_task-{study.task}_statmap.json",
+                        {"DegreesOfFreedom": dof - 40})
+        for ses in study.sessions or (None,):
+            for run in study.runs or (None,):
+                for contrast, concept in study.contrasts.items():
+                    for stat in study.stats:
+                        key = (ses, run, contrast, stat)
+                        vol = _map_volume(study, sub, concept, grid, stat, str(key), brain, axes)
+                        path = _map_path(ds, study, sub, ses, run, contrast, stat)
+                        _save(vol, grid, path, stat, dof, int16=(stat == "effect" and study.legacy_names))
+                        n_maps += 1
+    if study.legacy_names:
+        _write_json(ds / "task-storytime_statmap.json", {"InstitutionName": study.lab})
+    return n_maps
+
+
+def _map_path(ds: Path, study, sub: str, ses: str | None, run: str | None, contrast: str, stat: str) -> Path:
+    if study.legacy_names:
+        return ds / f"sub-{sub}" / "glm" / f"{contrast}_{_LEGACY_STAT[stat]}.nii.gz"
+    parts = [f"sub-{sub}"]
+    folder = ds / f"sub-{sub}"
+    if ses:
+        parts.append(f"ses-{ses}")
+        folder = folder / f"ses-{ses}"
+    parts.append(f"task-{study.task}")
+    if run:
+        parts.append(f"run-{run}")
+    parts += ["space-MNI152Lin", f"contrast-{contrast}", f"stat-{stat}", "statmap"]
+    return folder / "func" / ("_".join(parts) + (".nii.gz" if study.gzip else ".nii"))
+
+
+def _plant_problems(root: Path) -> list[str]:
+    """Problems real consortia have: an unfetched annexed file, a truncated map."""
+    planted = []
+    last = sorted((root / "tidepool").glob("sub-*"))[-1].name
+    tide = root / "tidepool" / last / "func"
+    if tide.is_dir():
+        link = tide / f"{last}_task-wavewatch_space-MNI152Lin_contrast-extraRipple_stat-t_statmap.nii.gz"
+        if not link.is_symlink():
+            os.symlink("../../.git/annex/objects/XX/missing.nii.gz", link)
+        planted.append(str(link.relative_to(root)))
+    bad = root / "slatecount" / "sub-01" / "func" / "sub-01_task-quickadd_space-MNI152Lin_contrast-broken_stat-t_statmap.nii"
+    if bad.parent.is_dir():
+        bad.write_bytes(b"\x00" * 100)
+        planted.append(str(bad.relative_to(root)))
+    return planted
+
+
 def make_demo(root: str | os.PathLike[str], *, scale: float = 1.0) -> DemoSummary:
     """Write the invented consortium under ``root`` (deterministic; overwrites its own files).
 
@@ -235,87 +323,8 @@ def make_demo(root: str | os.PathLike[str], *, scale: float = 1.0) -> DemoSummar
 
     root = Path(root).expanduser().absolute()
     root.mkdir(parents=True, exist_ok=True)
-    n_maps = 0
-    planted: list[str] = []
-    for study in STUDIES:
-        grid = GRIDS[study.grid]
-        axes = _axes(grid)
-        brain = _brain(axes)
-        if study.nested_in_raw:
-            raw = root / study.name
-            _write_json(raw / "dataset_description.json", {
-                "Name": study.name, "BIDSVersion": "1.9.0", "DatasetType": "raw",
-                "Authors": [f"{study.lab} members"]})
-            ds = raw / "derivatives" / "firstlevel"
-            ptsv = raw / "participants.tsv"
-        else:
-            ds = root / study.name
-            ptsv = ds / "participants.tsv"
-        desc = {"Name": study.name if not study.nested_in_raw else f"{study.name} first-level models",
-                "BIDSVersion": "1.9.0", "DatasetType": "derivative",
-                "GeneratedBy": [{"Name": "demo-glm", "Version": "0.3",
-                                 "Description": "invented first-level models"}]}
-        if study.nested_in_raw:
-            desc["SourceDatasets"] = [{"URL": "../.."}]
-        _write_json(ds / "dataset_description.json", desc)
-        n_sub = max(2, round(study.n_subjects * scale))
-        subjects = [f"{i + 1:02d}" for i in range(n_sub)]
-        prng = _rng(study.name, "participants")
-        lines = ["participant_id\tsite\tage\tsex"]
-        for i, sub in enumerate(subjects):
-            site = study.sites[i % len(study.sites)]
-            lines.append(f"sub-{sub}\t{site}\t{int(prng.integers(19, 41))}\t{'FM'[int(prng.integers(0, 2))]}")
-        ptsv.parent.mkdir(parents=True, exist_ok=True)
-        ptsv.write_text("\n".join(lines) + "\n")
-        dof = 140 if study.runs else 180
-        if not study.legacy_names:
-            _write_json(ds / f"task-{study.task}_statmap.json", {
-                "DegreesOfFreedom": dof, "InstitutionName": study.lab,
-                "Description": f"first-level contrasts of the {study.task} task"})
-        for sub in subjects:
-            sessions = study.sessions or (None,)
-            runs = study.runs or (None,)
-            if not study.legacy_names and sub == subjects[1]:
-                # one subject lost a run: a subject-level sidecar overrides the dataset one
-                _write_json(ds / f"sub-{sub}" / f"sub-{sub}_task-{study.task}_statmap.json",
-                            {"DegreesOfFreedom": dof - 40})
-            for ses in sessions:
-                for run in runs:
-                    for contrast, concept in study.contrasts.items():
-                        for stat in study.stats:
-                            key = (ses, run, contrast, stat)
-                            vol = _map_volume(study, sub, concept, grid, stat, str(key), brain, axes)
-                            if study.legacy_names:
-                                label = _LEGACY_STAT[stat]
-                                path = ds / f"sub-{sub}" / "glm" / f"{contrast}_{label}.nii.gz"
-                            else:
-                                parts = [f"sub-{sub}"]
-                                folder = ds / f"sub-{sub}"
-                                if ses:
-                                    parts.append(f"ses-{ses}")
-                                    folder = folder / f"ses-{ses}"
-                                parts.append(f"task-{study.task}")
-                                if run:
-                                    parts.append(f"run-{run}")
-                                parts += ["space-MNI152Lin", f"contrast-{contrast}", f"stat-{stat}", "statmap"]
-                                ext = ".nii.gz" if study.gzip else ".nii"
-                                path = folder / "func" / ("_".join(parts) + ext)
-                            _save(vol, grid, path, stat, dof, int16=(stat == "effect" and study.legacy_names))
-                            n_maps += 1
-        if study.legacy_names:
-            _write_json(ds / "task-storytime_statmap.json", {"InstitutionName": study.lab})
-    # planted problems, as real consortia have them
-    last = sorted((root / "tidepool").glob("sub-*"))[-1].name
-    tide = root / "tidepool" / last / "func"
-    if tide.is_dir():
-        link = tide / f"{last}_task-wavewatch_space-MNI152Lin_contrast-extraRipple_stat-t_statmap.nii.gz"
-        if not link.is_symlink():
-            os.symlink("../../.git/annex/objects/XX/missing.nii.gz", link)
-        planted.append(str(link.relative_to(root)))
-    bad = root / "slatecount" / "sub-01" / "func" / "sub-01_task-quickadd_space-MNI152Lin_contrast-broken_stat-t_statmap.nii"
-    if bad.parent.is_dir():
-        bad.write_bytes(b"\x00" * 100)
-        planted.append(str(bad.relative_to(root)))
+    n_maps = sum(_write_study(root, study, scale) for study in STUDIES)
+    planted = _plant_problems(root)
     vocab = root / "concepts.json"
     _write_json(vocab, demo_vocabulary())
     rules = root / "name-rules.json"

@@ -34,6 +34,8 @@ __all__ = [
     "MetadataOverrides",
     "find_datasets",
     "walk_dataset",
+    "load_user_file",
+    "UserFile",
     "inside",
     "top_folders",
     "SidecarResolver",
@@ -243,7 +245,7 @@ class NameRules:
 
     @staticmethod
     def _load_one(path: str | os.PathLike[str]) -> list[dict[str, Any]]:
-        doc = _load_doc(path, RulesError)
+        doc = load_user_file(path, RulesError).doc
         if not isinstance(doc, dict) or not isinstance(doc.get("rules"), list):
             raise RulesError(f"{path}: expected an object with a 'rules' list "
                              "(see schemas/name-rules.schema.json)")
@@ -416,27 +418,64 @@ def _template_regex(template: str, where: str) -> re.Pattern[str]:
         raise RulesError(f"{where}: invalid template ({exc})") from None
 
 
-def _load_doc(path: str | os.PathLike[str], error: type[Exception]) -> Any:
+@dataclass
+class UserFile:
+    """A YAML or JSON file a user wrote (vocabulary, name rules, origins), as read."""
+
+    path: Path
+    raw: bytes
+    doc: Any
+    lines: dict[tuple, int]  # YAML: 1-based line of each key path, for messages (empty for JSON)
+
+
+def load_user_file(path: str | os.PathLike[str], error: type[Exception], what: str = "file") -> UserFile:
+    """Read a YAML (``.yaml``/``.yml``) or JSON file; a failure is ``error`` naming the file and line."""
     p = Path(path)
     try:
-        text = p.read_text(encoding="utf-8")
+        raw = p.read_bytes()
     except FileNotFoundError:
-        raise error(f"{p}: file not found") from None
+        raise error(f"{p}: {what} not found") from None
     except OSError as exc:
         raise error(f"{p}: cannot read ({exc.strerror})") from None
+    text = raw.decode("utf-8", errors="replace")
     if p.suffix.lower() in (".yaml", ".yml"):
-        import yaml
+        import yaml  # a few users need YAML; importing it costs ~40 ms
 
         try:
-            return yaml.safe_load(text)
+            doc = yaml.safe_load(text)
         except yaml.YAMLError as exc:
             mark = getattr(exc, "problem_mark", None)
             where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
             raise error(f"{p}: not valid YAML{where} ({getattr(exc, 'problem', exc)})") from None
+        return UserFile(p, raw, doc, _line_index(text))
     try:
-        return json.loads(text)
+        return UserFile(p, raw, json.loads(text), {})
     except json.JSONDecodeError as exc:
         raise error(f"{p}: not valid JSON at line {exc.lineno}, column {exc.colno} ({exc.msg})") from None
+
+
+def _line_index(text: str) -> dict[tuple, int]:
+    """Line numbers (1-based) of YAML nodes by key path, for error messages."""
+    import yaml
+
+    lines: dict[tuple, int] = {}
+    try:
+        root = yaml.compose(text)
+    except yaml.YAMLError:
+        return lines
+
+    def walk(node, path: tuple) -> None:
+        lines[path] = node.start_mark.line + 1
+        if isinstance(node, yaml.MappingNode):
+            for k, v in node.value:
+                walk(v, path + (k.value,))
+        elif isinstance(node, yaml.SequenceNode):
+            for i, v in enumerate(node.value):
+                walk(v, path + (i,))
+
+    if root is not None:
+        walk(root, ())
+    return lines
 
 
 @dataclass
@@ -462,7 +501,7 @@ class MetadataOverrides:
     def load(cls, path: str | os.PathLike[str] | None) -> "MetadataOverrides":
         if path is None:
             return cls()
-        doc = _load_doc(path, RulesError)
+        doc = load_user_file(path, RulesError).doc
         if not isinstance(doc, dict):
             raise RulesError(f"{path}: expected an object with 'datasets' and/or 'subjects'")
         unknown = set(doc) - {"datasets", "subjects"}
@@ -608,93 +647,37 @@ def find_datasets(roots: Iterable[str | os.PathLike[str]], max_depth: int = 4
     Dataset keys are made unique: two different folders with the same names get
     a short hash of their path appended, with a warning.
     """
-    found: list[DatasetInfo] = []
-    problems: list[Problem] = []
-    seen: set[str] = set()
-
-    def visit(path: Path, depth: int, raw: tuple[Path, dict] | None) -> None:
-        real = str(path.resolve())
-        if real in seen:
-            return
-        desc, prob = _read_description(path)
-        if prob:
-            problems.append(prob)
-        if desc is not None:
-            seen.add(real)
-            dtype = desc.get("DatasetType")
-            is_raw = dtype == "raw" or (dtype is None and (path / "derivatives").is_dir()
-                                        and raw is None)
-            if is_raw and raw is None:
-                deriv = path / "derivatives"
-                if deriv.is_dir():
-                    for child in sorted(deriv.iterdir()):
-                        if child.is_dir() and not child.name.startswith("."):
-                            visit(child, 0, (path, desc))
-                else:
-                    problems.append(Problem(str(path), "no-derivatives",
-                                            "raw BIDS dataset with no derivatives/ folder",
-                                            "index the derivative dataset that holds the statistic maps",
-                                            "warning"))
-                return
-            if dtype not in (None, "derivative"):
-                problems.append(Problem(str(path / "dataset_description.json"), "unexpected-dataset-type",
-                                        f"DatasetType is {dtype!r}, expected 'derivative'",
-                                        "set DatasetType to \"derivative\"", "warning"))
-            elif dtype is None:
-                problems.append(Problem(str(path / "dataset_description.json"), "no-dataset-type",
-                                        "dataset_description.json has no DatasetType",
-                                        "add \"DatasetType\": \"derivative\" and GeneratedBy", "warning"))
-            found.append(_make_dataset(path, desc, raw, problems))
-            # derivative datasets may nest further derivatives
-            deriv = path / "derivatives"
-            if deriv.is_dir():
-                for child in sorted(deriv.iterdir()):
-                    if child.is_dir():
-                        visit(child, 0, raw)
-            return
-        if _looks_like_dataset(path):
-            seen.add(real)
-            problems.append(Problem(str(path), "missing-dataset-description",
-                                    "folder holds sub-* folders but no dataset_description.json; "
-                                    "indexed under its folder name",
-                                    "add dataset_description.json with DatasetType \"derivative\" "
-                                    "and GeneratedBy", "warning"))
-            found.append(_make_dataset(path, None, raw, problems))
-            return
-        if depth >= max_depth:
-            return
-        try:
-            children = sorted(p for p in path.iterdir() if p.is_dir() and not p.name.startswith("."))
-        except OSError as exc:
-            problems.append(Problem(str(path), "unreadable-folder", f"cannot list folder ({exc.strerror})",
-                                    "check permissions"))
-            return
-        for child in children:
-            visit(child, depth + 1, raw)
-
+    finder = _DatasetFinder(max_depth)
     for root in roots:
         p = Path(root).expanduser().absolute()
         if not p.exists():
-            problems.append(Problem(str(p), "missing-root", "the folder to index does not exist",
-                                    "check the path"))
+            finder.problems.append(Problem(str(p), "missing-root", "the folder to index does not exist",
+                                           "check the path"))
             continue
         if not p.is_dir():
-            problems.append(Problem(str(p), "root-not-folder", "expected a folder, got a file",
-                                    "give the dataset folder, not a file in it"))
+            finder.problems.append(Problem(str(p), "root-not-folder", "expected a folder, got a file",
+                                           "give the dataset folder, not a file in it"))
             continue
-        before = len(found)
-        visit(p, 0, None)
-        if len(found) == before and not any(pr.path.startswith(str(p)) for pr in problems):
-            problems.append(Problem(str(p), "no-datasets", "no BIDS derivative dataset found",
-                                    "point at a derivative dataset, a raw dataset with derivatives/, "
-                                    "or a folder holding them"))
-
+        before = len(finder.found)
+        finder.visit(p, 0, None)
+        if len(finder.found) == before and not any(pr.path.startswith(str(p)) for pr in finder.problems):
+            finder.problems.append(Problem(str(p), "no-datasets", "no BIDS derivative dataset found",
+                                           "point at a derivative dataset, a raw dataset with derivatives/, "
+                                           "or a folder holding them"))
+    found = finder.found
     # a raw dataset without derivatives/ is expected when a derivative names it in SourceDatasets
     sourced = {str(Path(r).resolve()) for ds in found for r in ds.source_roots}
-    problems = [p for p in problems if not (p.code == "no-derivatives" and str(Path(p.path).resolve()) in sourced)]
+    problems = [p for p in finder.problems
+                if not (p.code == "no-derivatives" and str(Path(p.path).resolve()) in sourced)]
+    return found, problems + _unique_keys(found)
+
+
+def _unique_keys(found: list[DatasetInfo]) -> list[Problem]:
+    """Give datasets that share a key a short hash of their path (a warning each)."""
     counts: dict[str, int] = {}
     for ds in found:
         counts[ds.key] = counts.get(ds.key, 0) + 1
+    problems = []
     for ds in found:
         if counts[ds.key] > 1:
             old = ds.key
@@ -703,7 +686,80 @@ def find_datasets(roots: Iterable[str | os.PathLike[str]], max_depth: int = 4
                                     f"several datasets are named {old!r}; this one is keyed {ds.key!r}",
                                     "give each dataset a distinct Name in dataset_description.json",
                                     "warning", ds.key))
-    return found, problems
+    return problems
+
+
+class _DatasetFinder:
+    """The walk of :func:`find_datasets`: raw datasets, their derivatives, folders of datasets."""
+
+    def __init__(self, max_depth: int) -> None:
+        self.max_depth = max_depth
+        self.found: list[DatasetInfo] = []
+        self.problems: list[Problem] = []
+        self.seen: set[str] = set()
+
+    def visit(self, path: Path, depth: int, raw: tuple[Path, dict] | None) -> None:
+        real = str(path.resolve())
+        if real in self.seen:
+            return
+        desc, prob = _read_description(path)
+        if prob:
+            self.problems.append(prob)
+        if desc is not None:
+            self.seen.add(real)
+            dtype = desc.get("DatasetType")
+            is_raw = dtype == "raw" or (dtype is None and (path / "derivatives").is_dir() and raw is None)
+            if is_raw and raw is None:
+                self._raw(path, desc)
+            else:
+                self._derivative(path, desc, dtype, raw)
+            return
+        if _looks_like_dataset(path):
+            self.seen.add(real)
+            self.problems.append(Problem(str(path), "missing-dataset-description",
+                                         "folder holds sub-* folders but no dataset_description.json; "
+                                         "indexed under its folder name",
+                                         "add dataset_description.json with DatasetType \"derivative\" "
+                                         "and GeneratedBy", "warning"))
+            self.found.append(_make_dataset(path, None, raw, self.problems))
+            return
+        if depth >= self.max_depth:
+            return
+        try:
+            children = sorted(p for p in path.iterdir() if p.is_dir() and not p.name.startswith("."))
+        except OSError as exc:
+            self.problems.append(Problem(str(path), "unreadable-folder", f"cannot list folder ({exc.strerror})",
+                                         "check permissions"))
+            return
+        for child in children:
+            self.visit(child, depth + 1, raw)
+
+    def _raw(self, path: Path, desc: dict[str, Any]) -> None:
+        deriv = path / "derivatives"
+        if not deriv.is_dir():
+            self.problems.append(Problem(str(path), "no-derivatives", "raw BIDS dataset with no derivatives/ folder",
+                                         "index the derivative dataset that holds the statistic maps", "warning"))
+            return
+        for child in sorted(deriv.iterdir()):
+            if child.is_dir() and not child.name.startswith("."):
+                self.visit(child, 0, (path, desc))
+
+    def _derivative(self, path: Path, desc: dict[str, Any], dtype: Any, raw: tuple[Path, dict] | None) -> None:
+        if dtype not in (None, "derivative"):
+            self.problems.append(Problem(str(path / "dataset_description.json"), "unexpected-dataset-type",
+                                         f"DatasetType is {dtype!r}, expected 'derivative'",
+                                         "set DatasetType to \"derivative\"", "warning"))
+        elif dtype is None:
+            self.problems.append(Problem(str(path / "dataset_description.json"), "no-dataset-type",
+                                         "dataset_description.json has no DatasetType",
+                                         "add \"DatasetType\": \"derivative\" and GeneratedBy", "warning"))
+        self.found.append(_make_dataset(path, desc, raw, self.problems))
+        # derivative datasets may nest further derivatives
+        deriv = path / "derivatives"
+        if deriv.is_dir():
+            for child in sorted(deriv.iterdir()):
+                if child.is_dir():
+                    self.visit(child, 0, raw)
 
 
 def inside(path: str | os.PathLike[str], folder: str | os.PathLike[str]) -> bool:
@@ -734,20 +790,17 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
     ``fingerprint`` (a hashlib object) is fed the path, size and mtime of every map, sidecar
     and model file found: equal digests mean the walk found the same files unchanged.
     """
+    w = _Walk(ds, parser, rules, root_maps, fingerprint)
     only = None if top is None else set(top)
-    maps: list[MapFile] = []
-    jsons: dict[str, list[str]] = {}
-    problems: list[Problem] = []
-    root = ds.root
     stack = [""]
     while stack:
         rel = stack.pop()
-        folder = os.path.join(root, rel) if rel else root
+        folder = os.path.join(ds.root, rel) if rel else ds.root
         try:
             entries = list(os.scandir(folder))
         except OSError as exc:
-            problems.append(Problem(folder, "unreadable-folder", f"cannot list folder ({exc.strerror})",
-                                    "check permissions", "error", ds.key))
+            w.problems.append(Problem(folder, "unreadable-folder", f"cannot list folder ({exc.strerror})",
+                                      "check permissions", "error", ds.key))
             continue
         for e in entries:
             name = e.name
@@ -759,83 +812,102 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
             except OSError:
                 is_dir = False
             if is_dir and (name.endswith(".nii.gz") or name.endswith(".nii")) and "_stat-" in name:
-                problems.append(Problem(e.path, "not-a-regular-file", "a folder named like a statistic map; it "
-                                        "was not opened", "rename the folder, or put the map file itself here",
-                                        "error", ds.key))
-                continue
-            if is_dir:
-                if not rel and (name in SKIP_DIRS or (only is not None and name not in only)):
-                    continue
-                stack.append(relpath)
-                continue
-            if name.endswith(".json") or name.endswith(COMPANION_SUFFIXES):
-                try:
-                    st = _stat_entry(e)
-                except _NotRegular as exc:
-                    problems.append(Problem(e.path, "not-a-regular-file", f"a {exc}, not a regular file; it was "
-                                            "not opened (opening it could block)", "replace it with the file "
-                                            "itself", "warning", ds.key))
-                    continue
-                except OSError:
-                    continue  # a dangling or looping link to a sidecar: nothing to read
-                jsons.setdefault(rel, []).append(name)
-                if fingerprint is not None:
-                    fingerprint.update(f"{relpath}\0{st.st_size}\0{st.st_mtime_ns}\n".encode())
-                continue
-            if not (name.endswith(".nii.gz") or name.endswith(".nii")) or (not rel and not root_maps):
-                continue
-            stem = name[:-7] if name.endswith(".nii.gz") else name[:-4]
-            is_statmap = stem.endswith("_" + STAT_SUFFIX)
-            hit = None
-            if not is_statmap:
-                hit = rules.match_full(ds.key, relpath) if rules.rules else None
-                if hit is None:
-                    continue
-            try:
-                st = _stat_entry(e)
-            except _NotRegular as exc:
-                problems.append(Problem(e.path, "not-a-regular-file", f"a {exc} named like a statistic map; it was "
-                                        "not opened (opening it could block the crawl)", "replace it with the map "
-                                        "file itself, or remove it", "error", ds.key))
-                continue
-            except FileNotFoundError:
-                problems.append(Problem(e.path, "dangling-symlink",
-                                        "symbolic link to a file that is not there (an unfetched annexed file?)",
-                                        "fetch the file content (for example 'datalad get' or "
-                                        "'git annex get' on it), then index again", "error", ds.key))
-                continue
-            except OSError as exc:
-                if exc.errno == errno.ELOOP:
-                    problems.append(Problem(e.path, "symlink-loop", "symbolic links that point at each other "
-                                            "in a loop", "point the link at the map file", "error", ds.key))
-                else:
-                    problems.append(Problem(e.path, "unreadable", f"cannot stat file ({exc.strerror})",
-                                            "check permissions", "error", ds.key))
-                continue
-            if is_statmap:
-                ents = parser.parse(relpath)
-                for prob in _fix_labels(stem, ents, e.path, ds.key):
-                    problems.append(prob)
-                if "stat" not in ents:
-                    problems.append(Problem(e.path, "missing-entity", "statmap file name lacks stat",
-                                            "name it ..._stat-<label>_statmap.nii.gz (with contrast-<label> "
-                                            "for a contrast's map), or add a rule in a name-rules file",
-                                            "error", ds.key))
-                    continue
-                maps.append(MapFile(ds, relpath, e.path, ents, st.st_size, st.st_mtime_ns, "bids"))
-                continue
-            idx, ents, groups = hit
-            base = parser.parse(relpath)
-            base.update(ents)
-            base["suffix"] = STAT_SUFFIX
-            base["extension"] = ".nii.gz" if name.endswith(".nii.gz") else ".nii"
-            extras, probs = rules.extras(root, idx, groups, base, e.path, ds.key)
-            problems.extend(probs)
-            maps.append(MapFile(ds, relpath, e.path, base, st.st_size, st.st_mtime_ns, f"rule:{idx}", extras))
-    maps.sort(key=lambda m: m.relpath)
+                w.problems.append(Problem(e.path, "not-a-regular-file", "a folder named like a statistic map; it "
+                                          "was not opened", "rename the folder, or put the map file itself here",
+                                          "error", ds.key))
+            elif is_dir:
+                if rel or (name not in SKIP_DIRS and (only is None or name in only)):
+                    stack.append(relpath)
+            elif name.endswith(".json") or name.endswith(COMPANION_SUFFIXES):
+                w.companion(e, rel, relpath)
+            elif (name.endswith(".nii.gz") or name.endswith(".nii")) and (rel or root_maps):
+                w.map(e, relpath)
+    w.maps.sort(key=lambda m: m.relpath)
     if fingerprint is not None:
-        fingerprint.update("".join(f"{m.relpath}\0{m.nbytes}\0{m.mtime_ns}\n" for m in maps).encode())
-    return maps, jsons, problems
+        fingerprint.update("".join(f"{m.relpath}\0{m.nbytes}\0{m.mtime_ns}\n" for m in w.maps).encode())
+    return w.maps, w.jsons, w.problems
+
+
+class _Walk:
+    """What :func:`walk_dataset` collects, entry by entry."""
+
+    def __init__(self, ds: DatasetInfo, parser: EntityParser, rules: NameRules, root_maps: bool,
+                 fingerprint: Any) -> None:
+        self.ds, self.parser, self.rules, self.fingerprint = ds, parser, rules, fingerprint
+        self.maps: list[MapFile] = []
+        self.jsons: dict[str, list[str]] = {}
+        self.problems: list[Problem] = []
+
+    def companion(self, e: os.DirEntry, rel: str, relpath: str) -> None:
+        """A sidecar or a model file (mask, design): listed for inheritance and model lookups."""
+        try:
+            st = _stat_entry(e)
+        except _NotRegular as exc:
+            self.problems.append(Problem(e.path, "not-a-regular-file", f"a {exc}, not a regular file; it was "
+                                         "not opened (opening it could block)", "replace it with the file itself",
+                                         "warning", self.ds.key))
+            return
+        except OSError:
+            return  # a dangling or looping link to a sidecar: nothing to read
+        self.jsons.setdefault(rel, []).append(e.name)
+        if self.fingerprint is not None:
+            self.fingerprint.update(f"{relpath}\0{st.st_size}\0{st.st_mtime_ns}\n".encode())
+
+    def map(self, e: os.DirEntry, relpath: str) -> None:
+        """A NIfTI file: a statistic map by its BIDS name or by a name rule, or nothing."""
+        ds, name = self.ds, e.name
+        stem = name[:-7] if name.endswith(".nii.gz") else name[:-4]
+        is_statmap = stem.endswith("_" + STAT_SUFFIX)
+        hit = None
+        if not is_statmap:
+            hit = self.rules.match_full(ds.key, relpath) if self.rules.rules else None
+            if hit is None:
+                return
+        st = self._stat(e)
+        if st is None:
+            return
+        if is_statmap:
+            ents = self.parser.parse(relpath)
+            self.problems.extend(_fix_labels(stem, ents, e.path, ds.key))
+            if "stat" not in ents:
+                self.problems.append(Problem(e.path, "missing-entity", "statmap file name lacks stat",
+                                             "name it ..._stat-<label>_statmap.nii.gz (with contrast-<label> "
+                                             "for a contrast's map), or add a rule in a name-rules file",
+                                             "error", ds.key))
+                return
+            self.maps.append(MapFile(ds, relpath, e.path, ents, st.st_size, st.st_mtime_ns, "bids"))
+            return
+        idx, ents, groups = hit
+        base = self.parser.parse(relpath)
+        base.update(ents)
+        base["suffix"] = STAT_SUFFIX
+        base["extension"] = ".nii.gz" if name.endswith(".nii.gz") else ".nii"
+        extras, probs = self.rules.extras(ds.root, idx, groups, base, e.path, ds.key)
+        self.problems.extend(probs)
+        self.maps.append(MapFile(ds, relpath, e.path, base, st.st_size, st.st_mtime_ns, f"rule:{idx}", extras))
+
+    def _stat(self, e: os.DirEntry) -> os.stat_result | None:
+        """The map's stat; only a regular file passes (anything else becomes a problem, unopened)."""
+        key = self.ds.key
+        try:
+            return _stat_entry(e)
+        except _NotRegular as exc:
+            self.problems.append(Problem(e.path, "not-a-regular-file", f"a {exc} named like a statistic map; it was "
+                                         "not opened (opening it could block the crawl)", "replace it with the map "
+                                         "file itself, or remove it", "error", key))
+        except FileNotFoundError:
+            self.problems.append(Problem(e.path, "dangling-symlink",
+                                         "symbolic link to a file that is not there (an unfetched annexed file?)",
+                                         "fetch the file content (for example 'datalad get' or "
+                                         "'git annex get' on it), then index again", "error", key))
+        except OSError as exc:
+            if exc.errno == errno.ELOOP:
+                self.problems.append(Problem(e.path, "symlink-loop", "symbolic links that point at each other "
+                                             "in a loop", "point the link at the map file", "error", key))
+            else:
+                self.problems.append(Problem(e.path, "unreadable", f"cannot stat file ({exc.strerror})",
+                                             "check permissions", "error", key))
+        return None
 
 
 _KINDS = ((stat.S_ISFIFO, "named pipe (FIFO)"), (stat.S_ISSOCK, "socket"), (stat.S_ISCHR, "character device"),

@@ -25,15 +25,14 @@ from __future__ import annotations
 
 import fnmatch
 import hashlib
-import json
 import os
 import re
 from dataclasses import dataclass, field
-from pathlib import Path
 from typing import Any
 
 import pyarrow as pa
 
+from .discover import load_user_file
 from .errors import VocabularyError
 from .tables import LABELS_SCHEMA, arrow_to_json_schema
 from .store import (Catalog, commit_head, leased_files, new_snapshot_id, read_head, write_json_atomic,
@@ -86,30 +85,6 @@ class Vocabulary:
         return out
 
 
-def _line_index(text: str) -> dict[tuple, int]:
-    """Line numbers (1-based) of YAML nodes by key path, for error messages."""
-    import yaml
-
-    lines: dict[tuple, int] = {}
-    try:
-        root = yaml.compose(text)
-    except yaml.YAMLError:
-        return lines
-
-    def walk(node, path: tuple) -> None:
-        lines[path] = node.start_mark.line + 1
-        if isinstance(node, yaml.MappingNode):
-            for k, v in node.value:
-                walk(v, path + (k.value,))
-        elif isinstance(node, yaml.SequenceNode):
-            for i, v in enumerate(node.value):
-                walk(v, path + (i,))
-
-    if root is not None:
-        walk(root, ())
-    return lines
-
-
 def _fmt_path(path: tuple) -> str:
     out = ""
     for p in path:
@@ -125,34 +100,11 @@ def load_vocabulary(path: str | os.PathLike[str]) -> Vocabulary:
     VocabularyError
         Naming the file, the key (and line, for YAML), what is wrong and what is allowed.
     """
-    p = Path(path)
-    try:
-        raw = p.read_bytes()
-    except FileNotFoundError:
-        raise VocabularyError(f"{p}: vocabulary file not found") from None
-    except OSError as exc:
-        raise VocabularyError(f"{p}: cannot read ({exc.strerror})") from None
-    text = raw.decode("utf-8", errors="replace")
-    lines: dict[tuple, int] = {}
-    if p.suffix.lower() in (".yaml", ".yml"):
-        import yaml
-
-        try:
-            doc = yaml.safe_load(text)
-        except yaml.YAMLError as exc:
-            mark = getattr(exc, "problem_mark", None)
-            where = f" at line {mark.line + 1}, column {mark.column + 1}" if mark else ""
-            raise VocabularyError(f"{p}: not valid YAML{where} ({getattr(exc, 'problem', exc)})") from None
-        lines = _line_index(text)
-    else:
-        try:
-            doc = json.loads(text)
-        except json.JSONDecodeError as exc:
-            raise VocabularyError(f"{p}: not valid JSON at line {exc.lineno}, column {exc.colno} "
-                                  f"({exc.msg})") from None
+    f = load_user_file(path, VocabularyError, "vocabulary file")
+    p, doc = f.path, f.doc
 
     def fail(path_: tuple, msg: str) -> None:
-        line = lines.get(path_)
+        line = f.lines.get(path_)
         where = f" (line {line})" if line else ""
         raise VocabularyError(f"{p}: {_fmt_path(path_)}{where}: {msg}")
 
@@ -162,7 +114,20 @@ def load_vocabulary(path: str | os.PathLike[str]) -> Vocabulary:
     if unknown:
         fail((sorted(unknown)[0],), "unknown key; allowed: vocabulary, version, description, "
                                     "inherit_broader, concepts, rules")
-    concepts = doc.get("concepts")
+    clean = _check_concepts(doc.get("concepts"), fail)
+    compiled = _check_rules(doc.get("rules"), clean, fail)
+    inherit = doc.get("inherit_broader", False)
+    if not isinstance(inherit, bool):
+        fail(("inherit_broader",), "expected true or false")
+    return Vocabulary(
+        name=str(doc.get("vocabulary") or p.stem), version=None if doc.get("version") is None else str(doc["version"]),
+        concepts=clean, rules=compiled, inherit_broader=inherit,
+        sha256=hashlib.sha256(f.raw).hexdigest(), source=str(p), document=doc,
+    )
+
+
+def _check_concepts(concepts: Any, fail) -> dict[str, dict[str, Any]]:
+    """The concepts with their broader lists; unknown broader concepts and cycles are refused."""
     if not isinstance(concepts, dict) or not concepts:
         fail(("concepts",), "expected a non-empty object of concept names")
     clean: dict[str, dict[str, Any]] = {}
@@ -201,8 +166,11 @@ def load_vocabulary(path: str | os.PathLike[str]) -> Vocabulary:
 
     for c in clean:
         visit(c, [])
+    return clean
 
-    rules = doc.get("rules")
+
+def _check_rules(rules: Any, clean: dict[str, dict[str, Any]], fail) -> list[dict[str, Any]]:
+    """The rules compiled to patterns per match field."""
     if not isinstance(rules, list) or not rules:
         fail(("rules",), "expected a non-empty list of rules")
     compiled = []
@@ -237,14 +205,7 @@ def load_vocabulary(path: str | os.PathLike[str]) -> Vocabulary:
                 pats.append(_pattern(v, lambda msg, at=at: fail(at, msg)))
             match[k] = pats
         compiled.append({"match": match, "concepts": list(cs), "index": i})
-    inherit = doc.get("inherit_broader", False)
-    if not isinstance(inherit, bool):
-        fail(("inherit_broader",), "expected true or false")
-    return Vocabulary(
-        name=str(doc.get("vocabulary") or p.stem), version=None if doc.get("version") is None else str(doc["version"]),
-        concepts=clean, rules=compiled, inherit_broader=inherit,
-        sha256=hashlib.sha256(raw).hexdigest(), source=str(p), document=doc,
-    )
+    return compiled
 
 
 def _pattern(v: Any, fail) -> _Pattern:

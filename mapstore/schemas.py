@@ -111,7 +111,7 @@ def _head_schema() -> dict[str, Any]:
 
 
 def all_schemas() -> dict[str, dict[str, Any]]:
-    """Every schema by file name."""
+    """Every schema by file name (long because the schemas are written out here as literals)."""
     out = {
         "maps.schema.json": arrow_to_json_schema("maps", MAPS_SCHEMA, "One statistic map.", MAPS_DOCS),
         "datasets.schema.json": arrow_to_json_schema("datasets", DATASETS_SCHEMA,

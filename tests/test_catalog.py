@@ -58,7 +58,8 @@ def test_demo_index_contents(demo_store, demo_tree):
 def test_header_columns_agree_with_nibabel(demo_store):
     # reference: nibabel reading the same files
     st = mapstore.open(demo_store)
-    rows = st.sql("SELECT m.*, d.root FROM maps m JOIN datasets d USING (dataset) USING SAMPLE 12 ROWS").to_pylist()
+    rows = st.sql("SELECT m.*, d.root FROM maps m JOIN datasets d USING (dataset) ORDER BY map_id").to_pylist()
+    rows = rows[::max(1, len(rows) // 12)]  # a dozen maps spread over the catalog, the same every run
     for r in rows:
         img = nib.load(os.path.join(r["root"], r["relpath"]))
         assert tuple(r["shape"]) == img.shape

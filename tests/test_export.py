@@ -35,8 +35,10 @@ def test_default_target_is_contrast_and_works_without_labels(demo_store, tmp_pat
 
 def test_select_where_targets_groups(labelled_store):
     st = mapstore.open(labelled_store)
-    sel = st.select("stat = 't' AND age >= 18", concepts=["reading", "listening"], target="concept")
+    sel = st.select("stat = 't' AND age >= 30", concepts=["reading", "listening"], target="concept")
+    everyone = st.select("stat = 't'", concepts=["reading", "listening"], target="concept")
     assert set(sel.y) == {"reading", "listening"}
+    assert 0 < len(sel) < len(everyone) and (sel.meta.age >= 30).all()  # the participants' column filters
     assert (sel.meta.stat == "t").all()
     assert sel.X.shape == (len(sel), len(sel.voxels)) and np.isfinite(sel.X).all()
     multi = st.select(concepts=["reading", "listening", "visual-motion"], target="concepts")
