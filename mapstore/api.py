@@ -41,7 +41,7 @@ class Store:
         lease = take_lease(self.path, self.catalog.head) if self.catalog.head.catalog else None
         self._finalizer = weakref.finalize(self, release_lease, lease)
         entry = self.catalog.head.labels
-        if entry and entry.get("catalog") != self.catalog.head.catalog and entry.get("copy"):
+        if entry and entry.catalog != self.catalog.head.catalog and entry.copy:
             # the catalog was re-indexed after labelling: derive labels for it from the stored vocabulary
             self.catalog.use_table("labels", refresh_labels(self.catalog, entry))
 

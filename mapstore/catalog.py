@@ -8,6 +8,7 @@ the crawl: it becomes a row of ``problems``.
 
 from __future__ import annotations
 
+import dataclasses
 import errno
 import gc
 import hashlib
@@ -59,6 +60,7 @@ from .store import (
     commit_head,
     ensure_store,
     file_slug,
+    leased_files,
     new_snapshot_id,
     read_head,
     write_json_atomic,
@@ -791,12 +793,16 @@ def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: lis
         write_parquet_atomic(pa.Table.from_pylist(prob_rows, schema=PROBLEMS_SCHEMA), snap_dir / "problems.parquet")
         write_json_atomic(snap_dir / CatalogManifest.FILE, CatalogManifest(parts).to_json())
         head.catalog = f"catalog/{snap}"
+        old_labels = head.labels.table if head.labels else None
         _relabel(store, head)
     except OSError:
         shutil.rmtree(snap_dir, ignore_errors=True)
         raise
     total = sum(n_maps.values())
     commit_head(store, head, {"event": "index", "roots": [str(r) for r in roots], "maps": total, "snapshot": snap})
+    if old_labels and head.labels and old_labels != head.labels.table and \
+            old_labels not in {d.get("labels") for d in leased_files(store)}:
+        (store / old_labels).unlink(missing_ok=True)  # re-derived for the new catalog; no reader holds it
     codes: dict[str, int] = {}
     for p in prob_rows:
         codes[p["code"]] = codes.get(p["code"], 0) + 1
@@ -832,9 +838,9 @@ def _split_legacy(store: Path, prev: _Previous, keys: list[str]) -> list[Catalog
 def _relabel(store: Path, head: Head) -> None:
     """Labels for the new catalog from the stored vocabulary, so readers never derive them."""
     entry = head.labels
-    if not entry or not entry.get("copy"):
+    if not entry or not entry.copy:
         return
     table = refresh_labels(Catalog(store, head), entry)
     rel = f"labels/labels-{Path(head.catalog).name}.parquet"
     write_parquet_atomic(table, store / rel)
-    head.labels = {**entry, "table": rel, "catalog": head.catalog}
+    head.labels = dataclasses.replace(entry, table=rel, catalog=head.catalog)

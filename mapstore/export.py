@@ -280,7 +280,7 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
         "feature_set": {"name": fs.name, "spec_id": fs.spec["spec_id"], "grid": fs.spec["grid"],
                         "grid_id": fs.spec["grid_id"], "mask": fs.spec["mask"], "method": fs.spec["method"],
                         "stat": fs.spec["stat"], "versions": fs.spec.get("versions")},
-        "vocabulary": ({k: head.labels.get(k) for k in ("vocabulary", "sha256", "version", "inherit_broader")}
+        "vocabulary": ({k: getattr(head.labels, k) for k in ("vocabulary", "sha256", "version", "inherit_broader")}
                        if head.labels else None),
         "target": sel.target, "concepts": sel.concepts, "group_by": sel.group_by,
         "scheme": scheme, "seed": seed, "allow_leak": allow_leak, "leaks": leaks,

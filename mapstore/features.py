@@ -17,6 +17,7 @@ store's atomic HEAD replacement.
 from __future__ import annotations
 
 import contextlib
+import dataclasses
 import errno
 import hashlib
 import json
@@ -53,6 +54,7 @@ from .grid import (
 )
 from .copies import SKETCH_BITS, Sketcher, find_copies
 from .stats import convert
+from .tables import FeatureEntry, FeatureSetSpec
 from .store import (
     FPROBLEMS_SCHEMA,
     ROWS_SCHEMA,
@@ -496,13 +498,13 @@ def build_features(
         built = _run_batches(todo, run, store_path, set_dir, name)
         new_rows, problems = built.rows, coverage_problems + built.problems
         rows_table, entry = _write_tables(store_path, name, kept, built, problems, dropped, existing)
-        head.features[name] = {**entry, "n_rows": rows_table.num_rows, "spec_id": spec["spec_id"],
-                               "catalog": head.catalog}
+        head.features[name] = dataclasses.replace(entry, n_rows=rows_table.num_rows, spec_id=spec["spec_id"],
+                                                  catalog=head.catalog)
         if head.default_features is None or name == DEFAULT_SET:
             head.default_features = name
         commit_head(store_path, head, {"event": "features", "set": name, "built": len(new_rows),
                                        "rows": rows_table.num_rows})
-        _collect_feature_garbage(store_path, set_dir, entry["rows"], existing["rows"] if existing else None)
+        _collect_feature_garbage(store_path, set_dir, entry.rows, existing.rows if existing else None)
 
     report = FeatureReport(name=name, n_voxels=mk.n_voxels, grid=target.name, mask=mk.name,
                            built=len(new_rows), skipped=kept.num_rows, dropped=dropped, failed=len(problems),
@@ -577,16 +579,16 @@ def _set_spec(name: str, target: TargetGrid, mk: Mask, method: str, stat: str, p
     return spec
 
 
-def _previous_rows(store_path: Path, name: str, existing: dict[str, Any] | None, spec: dict[str, Any]) -> pa.Table:
+def _previous_rows(store_path: Path, name: str, existing: FeatureEntry | None, spec: dict[str, Any]) -> pa.Table:
     """The set's current rows; a set of this name with other settings is refused."""
     if not existing:
         return ROWS_SCHEMA.empty_table()
-    old_spec = json.loads((store_path / existing["dir"] / "set.json").read_text())
-    if old_spec.get("spec_id") != spec["spec_id"]:
+    old = FeatureSetSpec.read(store_path / existing.dir)
+    if old.spec_id != spec["spec_id"]:
         raise FeatureError(f"feature set {name!r} exists with other settings (grid "
-                           f"{old_spec['grid']['name']}, mask {old_spec['mask']['name']}, method "
-                           f"{old_spec['method']}, stat {old_spec['stat']}); choose another name")
-    return conform(pq.read_table(store_path / existing["rows"]), ROWS_SCHEMA)
+                           f"{old.grid['name']}, mask {old.mask['name']}, method "
+                           f"{old.method}, stat {old.stat}); choose another name")
+    return conform(pq.read_table(store_path / existing.rows), ROWS_SCHEMA)
 
 
 def _write_set_files(set_dir: Path, spec: dict[str, Any], mk: Mask, fresh: bool) -> None:
@@ -645,27 +647,27 @@ def _run_batches(batches: list[_Batch], run: dict[str, Any], store_path: Path, s
 
 
 def _write_tables(store_path: Path, name: str, kept: pa.Table, built: _Built, problems: list[dict[str, Any]],
-                  dropped: int, existing: dict[str, Any] | None) -> tuple[pa.Table, dict[str, Any]]:
+                  dropped: int, existing: FeatureEntry | None) -> tuple[pa.Table, FeatureEntry]:
     """The rows, problems and copies tables of the new state of the set; returns rows and its HEAD entry."""
     new_rows, created, snap = built.rows, built.created, built.snap
     rows_table = pa.concat_tables([kept, pa.Table.from_pylist(new_rows, schema=ROWS_SCHEMA)])
     rows_table = rows_table.sort_by([("map_id", "ascending")])
     rel = {kind: f"features/{name}/{kind}-{snap}.parquet" for kind in ("rows", "problems", "copies")}
-    entry = {"dir": f"features/{name}", "rows": rel["rows"], "problems": rel["problems"]}
+    entry = FeatureEntry(f"features/{name}", rel["rows"], rel["problems"])
     try:
         write_parquet_atomic(rows_table, store_path / rel["rows"])
         write_parquet_atomic(pa.Table.from_pylist(problems, schema=FPROBLEMS_SCHEMA), store_path / rel["problems"])
         # copies among all the set's rows, from the sketches (new shards are in place already)
-        if not new_rows and not dropped and existing and existing.get("copies") and \
-                (store_path / existing["copies"]).exists():
-            copies = pq.read_table(store_path / existing["copies"])  # same rows: same pairs
+        if not new_rows and not dropped and existing and existing.copies and \
+                (store_path / existing.copies).exists():
+            copies = pq.read_table(store_path / existing.copies)  # same rows: same pairs
         else:
             copies = find_copies(FeatureSet(store_path, name, entry))
         write_parquet_atomic(copies, store_path / rel["copies"])
     except OSError as exc:
         _raise_if_full(exc, store_path, created)
         raise
-    return rows_table, {**entry, "copies": rel["copies"]}
+    return rows_table, dataclasses.replace(entry, copies=rel["copies"])
 
 
 def _raise_if_full(exc: OSError, store: Path, created: list[Path]) -> None:
@@ -717,13 +719,13 @@ class FeatureSet:
     Obtained from :meth:`mapstore.Store.features`.
     """
 
-    def __init__(self, store_path: Path, name: str, entry: dict[str, Any]) -> None:
+    def __init__(self, store_path: Path, name: str, entry: FeatureEntry) -> None:
         self.name = name
-        self.path = store_path / entry["dir"]
-        self._copies_path = store_path / entry["copies"] if entry.get("copies") else None
-        self._rows_path = store_path / entry["rows"]
+        self.path = store_path / entry.dir
+        self._copies_path = store_path / entry.copies if entry.copies else None
+        self._rows_path = store_path / entry.rows
         try:
-            self.spec: dict[str, Any] = json.loads((self.path / "set.json").read_text())
+            self.spec: dict[str, Any] = FeatureSetSpec.read(self.path).to_json()
             self._rows_file = pq.ParquetFile(self._rows_path)  # the footer only: columns are read when needed
         except (OSError, ValueError, pa.ArrowException) as exc:
             raise FeatureError(f"{self.path}: feature set {name!r} is unreadable ({exc})") from None

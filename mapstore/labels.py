@@ -34,7 +34,7 @@ import pyarrow as pa
 
 from .discover import load_user_file
 from .errors import VocabularyError
-from .tables import LABELS_SCHEMA, arrow_to_json_schema
+from .tables import LABELS_SCHEMA, LabelsEntry, arrow_to_json_schema
 from .store import (Catalog, commit_head, leased_files, new_snapshot_id, read_head, write_json_atomic,
                     write_lock, write_parquet_atomic)
 
@@ -376,15 +376,16 @@ def label_store(store: str | os.PathLike[str], vocabulary: str | os.PathLike[str
         if not copy.exists():  # written atomically: a crash must not leave half a vocabulary behind
             write_json_atomic(copy, vocab.document)
         old = head.labels
-        head.labels = {"table": rel, "vocabulary": vocab.name, "version": vocab.version, "sha256": vocab.sha256,
-                       "source": vocab.source, "copy": str(copy.relative_to(cat.path)),
-                       "inherit_broader": vocab.inherit_broader if inherit_broader is None else inherit_broader,
-                       "catalog": head.catalog, "concepts": sorted(vocab.concepts)}
+        head.labels = LabelsEntry(
+            table=rel, vocabulary=vocab.name, version=vocab.version, sha256=vocab.sha256, source=vocab.source,
+            copy=str(copy.relative_to(cat.path)),
+            inherit_broader=vocab.inherit_broader if inherit_broader is None else inherit_broader,
+            catalog=head.catalog, concepts=sorted(vocab.concepts))
         commit_head(cat.path, head, {"event": "labels", "vocabulary": vocab.name, "sha256": vocab.sha256,
                                      "labels": table.num_rows})
-        if old and old.get("table") and old["table"] != rel and \
-                old["table"] not in {d.get("labels") for d in leased_files(cat.path)}:
-            (cat.path / old["table"]).unlink(missing_ok=True)
+        if old and old.table and old.table != rel and \
+                old.table not in {d.get("labels") for d in leased_files(cat.path)}:
+            (cat.path / old.table).unlink(missing_ok=True)
     return report
 
 
@@ -394,8 +395,8 @@ def _label_columns(cat: Catalog) -> pa.Table:
 
 def refresh_labels(cat: Catalog, entry: dict[str, Any]) -> pa.Table:
     """Labels for the current catalog from the stored vocabulary copy (when the catalog is newer)."""
-    doc_path = cat.path / entry["copy"]
+    doc_path = cat.path / entry.copy
     vocab = load_vocabulary(doc_path)
-    vocab.sha256 = entry["sha256"]  # the hash of the file as the user gave it
-    table, _ = apply_vocabulary(vocab, _label_columns(cat), entry.get("inherit_broader"))
+    vocab.sha256 = entry.sha256  # the hash of the file as the user gave it
+    table, _ = apply_vocabulary(vocab, _label_columns(cat), entry.inherit_broader)
     return table

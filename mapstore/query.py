@@ -306,9 +306,9 @@ def _labels(cat, with_broader: bool):
     if not with_broader:
         return lab[lab["direct"]]
     entry = cat.head.labels
-    if not entry or not entry.get("copy"):
+    if not entry or not entry.copy:
         return lab
-    vocab = load_vocabulary(cat.path / entry["copy"])
+    vocab = load_vocabulary(cat.path / entry.copy)
     extra = [(m, b) for m, c in zip(lab["map_id"], lab["concept"]) if c in vocab.concepts
              for b in vocab.broader_closure(c)]
     if extra:

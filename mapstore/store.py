@@ -31,7 +31,7 @@ import pyarrow.parquet as pq
 
 from .tables import (COPIES_SCHEMA, DATASETS_SCHEMA, FEATURE_SETS_SCHEMA, FPROBLEMS_SCHEMA, LABELS_SCHEMA,
                      MAPS_SCHEMA, MAPS_SCHEMA_ID, PARTICIPANTS_SCHEMA, PARTS_DIR, PROBLEMS_SCHEMA, ROWS_SCHEMA,
-                     CatalogManifest, CatalogPart, Head, conform)
+                     CatalogManifest, CatalogPart, FeatureSetSpec, Head, conform)
 from .errors import (MapstoreError, NoCatalog, QueryError, StaleSnapshot, StoreBusy, StoreCorrupt, StoreNotFound,
                      StoreUnwritable)
 
@@ -215,8 +215,9 @@ def _start_time(pid: int) -> str | None:
 
 def head_files(head: Head) -> dict[str, Any]:
     """The files a reader of ``head`` may open later (relative to the store)."""
-    return {"catalog": head.catalog, "labels": (head.labels or {}).get("table"),
-            "features": {n: {k: e.get(k) for k in ("rows", "problems", "copies")} for n, e in head.features.items()}}
+    return {"catalog": head.catalog, "labels": head.labels.table if head.labels else None,
+            "features": {n: {"rows": e.rows, "problems": e.problems, "copies": e.copies}
+                         for n, e in head.features.items()}}
 
 
 def take_lease(path: Path, head: Head) -> Path | None:
@@ -389,7 +390,7 @@ class Catalog:
                     self._raise_missing(f)
                 views.files(name, schema, [f] if f is not None and f.exists() else [],
                             current=name != "participants", loose=name == "participants")
-            labels = self.head.labels and self.path / self.head.labels["table"]
+            labels = self.head.labels and self.path / self.head.labels.table
             views.files("labels", LABELS_SCHEMA, [labels] if labels else [])
             self._feature_views(views)
             con.execute(f"SET allowed_directories = [{_sql_str(str(self.path) + os.sep)}]")
@@ -403,23 +404,22 @@ class Catalog:
         rows, probs, copies, sets = [], [], [], []
         for name, entry in sorted(self.head.features.items()):
             try:
-                spec = json.loads((self.path / entry["dir"] / "set.json").read_text())
+                spec = FeatureSetSpec.read(self.path / entry.dir)
             except FileNotFoundError as exc:
-                self._raise_missing(Path(exc.filename or entry["dir"]))
+                self._raise_missing(Path(exc.filename or entry.dir))
             except (OSError, ValueError) as exc:
-                raise StoreCorrupt(f"{self.path / entry['dir']}: feature set {name!r} unreadable ({exc}); "
+                raise StoreCorrupt(f"{self.path / entry.dir}: feature set {name!r} unreadable ({exc}); "
                                    f"rebuild it with 'mapstore features --name {name}'") from None
             for kind, out in (("rows", rows), ("problems", probs), ("copies", copies)):
-                if entry.get(kind):
-                    f = self.path / entry[kind]
+                if getattr(entry, kind):
+                    f = self.path / getattr(entry, kind)
                     if not f.exists():
                         self._raise_missing(f)
                     out.append((name, f))
             sets.append({"feature_set": name, "default": name == self.head.default_features,
-                         "rows": entry.get("n_rows"), "grid": spec["grid"]["name"], "grid_id": spec["grid_id"],
-                         "shape": spec["grid"]["shape"], "mask": spec["mask"]["name"],
-                         "n_voxels": spec["mask"]["n_voxels"], "method": spec["method"],
-                         "stat": spec["stat"], "spec_id": spec["spec_id"]})
+                         "rows": entry.n_rows, "grid": spec.grid["name"], "grid_id": spec.grid_id,
+                         "shape": spec.grid["shape"], "mask": spec.mask["name"], "n_voxels": spec.mask["n_voxels"],
+                         "method": spec.method, "stat": spec.stat, "spec_id": spec.spec_id})
         # the sketch bytes are for the copy scan, not for SQL
         views.per_set("features", ROWS_SCHEMA, rows, exclude=("sketch",))
         views.per_set("feature_problems", FPROBLEMS_SCHEMA, probs)

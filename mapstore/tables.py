@@ -8,7 +8,7 @@ from __future__ import annotations
 
 import hashlib
 import json
-from dataclasses import dataclass, field
+from dataclasses import dataclass, field, fields
 from pathlib import Path
 from typing import Any
 
@@ -19,7 +19,7 @@ from .errors import StoreCorrupt
 __all__ = [
     "MAPS_SCHEMA", "MAPS_SCHEMA_ID", "DATASETS_SCHEMA", "PROBLEMS_SCHEMA", "PARTICIPANTS_SCHEMA", "LABELS_SCHEMA",
     "ROWS_SCHEMA", "FPROBLEMS_SCHEMA", "COPIES_SCHEMA", "FEATURE_SETS_SCHEMA", "PARTS_DIR",
-    "Head", "CatalogPart", "CatalogManifest", "conform", "arrow_to_json_schema", "SCHEMA_BASE",
+    "Head", "FeatureEntry", "LabelsEntry", "FeatureSetSpec", "CatalogPart", "CatalogManifest", "conform", "arrow_to_json_schema", "SCHEMA_BASE",
 ]
 
 SCHEMA_BASE = "https://mapstore.invalid/schemas/"
@@ -76,25 +76,107 @@ PROBLEMS_SCHEMA = pa.schema([
 ])
 
 
+def _record_from(cls, doc: dict[str, Any]):
+    """A record from its JSON object; keys it does not know (from newer versions) are ignored."""
+    names = {f.name for f in fields(cls)}
+    return cls(**{k: v for k, v in doc.items() if k in names})
+
+
+@dataclass
+class FeatureEntry:
+    """HEAD's record of one feature set: its folder and the tables of its current state."""
+
+    dir: str
+    rows: str
+    problems: str
+    copies: str | None = None
+    n_rows: int | None = None
+    spec_id: str | None = None
+    catalog: str | None = None  # the catalog snapshot it was built from
+
+    def to_json(self) -> dict[str, Any]:
+        return dict(self.__dict__)
+
+    @classmethod
+    def from_json(cls, doc: dict[str, Any]) -> "FeatureEntry":
+        return _record_from(cls, doc)
+
+
+@dataclass
+class LabelsEntry:
+    """HEAD's record of the labels: the table, and the vocabulary (its stored copy) that made it."""
+
+    table: str
+    vocabulary: str | None = None
+    version: str | None = None
+    sha256: str | None = None  # of the vocabulary file as the user gave it
+    source: str | None = None
+    copy: str | None = None  # the stored copy, relative to the store
+    inherit_broader: bool | None = None
+    catalog: str | None = None  # the catalog snapshot it labels
+    concepts: list[str] = field(default_factory=list)
+
+    def to_json(self) -> dict[str, Any]:
+        return dict(self.__dict__)
+
+    @classmethod
+    def from_json(cls, doc: dict[str, Any]) -> "LabelsEntry":
+        return _record_from(cls, doc)
+
+
+@dataclass
+class FeatureSetSpec:
+    """``features/<set>/set.json``: everything a set's rows depend on (written once per set)."""
+
+    name: str
+    grid: dict[str, Any]  # name, shape, affine, grid_id
+    grid_id: str
+    mask: dict[str, Any]  # name, n_voxels, sha256
+    mask_sha256: str
+    method: str
+    stat: str
+    p_sided: str
+    zero_as_missing: bool
+    background: str = "keep"
+    kinds: list[str] = field(default_factory=lambda: ["contrast", "model"])
+    where: str | None = None
+    versions: dict[str, str] = field(default_factory=dict)
+    spec_id: str = ""
+
+    def to_json(self) -> dict[str, Any]:
+        return dict(self.__dict__)
+
+    @classmethod
+    def from_json(cls, doc: dict[str, Any]) -> "FeatureSetSpec":
+        return _record_from(cls, doc)
+
+    @classmethod
+    def read(cls, folder: Path) -> "FeatureSetSpec":
+        """Read ``folder/set.json`` (OSError and ValueError pass to the caller)."""
+        return cls.from_json(json.loads((folder / "set.json").read_text()))
+
+
 @dataclass
 class Head:
-    """What the store currently serves: one catalog snapshot and the feature sets."""
+    """What the store currently serves: one catalog snapshot, the feature sets and the labels."""
 
     catalog: str | None = None
-    features: dict[str, dict[str, Any]] = field(default_factory=dict)
+    features: dict[str, FeatureEntry] = field(default_factory=dict)
     default_features: str | None = None
-    labels: dict[str, Any] | None = None
+    labels: LabelsEntry | None = None
     history: list[dict[str, Any]] = field(default_factory=list)
 
     def to_json(self) -> dict[str, Any]:
-        return {"catalog": self.catalog, "features": self.features,
-                "default_features": self.default_features, "labels": self.labels,
-                "history": self.history[-50:]}
+        return {"catalog": self.catalog, "features": {k: v.to_json() for k, v in self.features.items()},
+                "default_features": self.default_features,
+                "labels": self.labels.to_json() if self.labels else None, "history": self.history[-50:]}
 
     @classmethod
     def from_json(cls, doc: dict[str, Any]) -> "Head":
-        return cls(doc.get("catalog"), dict(doc.get("features") or {}), doc.get("default_features"),
-                   doc.get("labels"), list(doc.get("history") or []))
+        labels = doc.get("labels")
+        return cls(doc.get("catalog"), {k: FeatureEntry.from_json(v) for k, v in (doc.get("features") or {}).items()},
+                   doc.get("default_features"), LabelsEntry.from_json(labels) if labels else None,
+                   list(doc.get("history") or []))
 
 
 MAPS_SCHEMA_ID = hashlib.sha256(MAPS_SCHEMA.to_string().encode()).hexdigest()[:16]
