@@ -164,7 +164,9 @@ class _Rows:
         self.sel = sel
         self.fs = sel.feature_set
         self.ids = sel.map_ids
-        self.row_hashes = self.fs.row_hashes(self.ids)
+        known = sel.meta["feature_row_sha256"].tolist()
+        # recorded when the rows were built (the selection's query brought them); older sets: read
+        self.row_hashes = known if all(isinstance(h, str) for h in known) else self.fs.row_hashes(self.ids)
         self.voxels = sel.voxels  # X's columns
         self.subset = len(self.voxels) != self.fs.n_voxels
         self.same = not self.subset and (sel.missing != "zero" or sel.meta["coverage"].ge(1.0).all())
@@ -187,19 +189,19 @@ class _Rows:
 def _write_npy(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None:
     """X.npy through two reused buffers, reading the next block while the last one is written
     (both system calls release the GIL): no fresh pages for all of X; then y, Y, groups, meta."""
-    ids, fs, n = rows.ids, rows.fs, len(rows.ids)
+    n = len(rows.ids)
     buf, spare = rows.buffer(), rows.buffer()
     with open(tmp / "X.npy", "wb", buffering=0) as fh, ThreadPoolExecutor(1) as reader:
         np.lib.format.write_array_header_1_0(
             fh, {"descr": np.lib.format.dtype_to_descr(np.dtype(np.float32)), "fortran_order": False,
                  "shape": (n, len(rows.voxels))})
         starts = list(range(0, n, BLOCK_ROWS))
-        pending = reader.submit(fs.read_into, ids[0:BLOCK_ROWS], buf) if starts else None
+        pending = reader.submit(sel.read_rows, 0, buf) if starts else None
         for k in range(len(starts)):
             block = pending.result()
             if k + 1 < len(starts):
                 nxt = starts[k + 1]
-                pending = reader.submit(fs.read_into, ids[nxt:nxt + BLOCK_ROWS], spare)
+                pending = reader.submit(sel.read_rows, nxt, spare)
             checkpoint()
             view = memoryview(rows.shape(block)).cast("B")
             while view:
@@ -224,7 +226,7 @@ def _write_parquet(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> 
     writer = None
     try:
         for i in range(0, len(rows.ids), BLOCK_ROWS):
-            block = rows.shape(rows.fs.read_into(rows.ids[i:i + BLOCK_ROWS], buf))
+            block = rows.shape(sel.read_rows(i, buf))
             part = meta_t.slice(i, len(block))
             if sel.y is not None:
                 part = part.append_column("y", pa.array(np.asarray(sel.y[i:i + len(block)], dtype=str)))

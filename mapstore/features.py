@@ -835,7 +835,9 @@ class FeatureSet:
                                "select maps that have rows")
         return self._fill(map_ids, np.empty((len(map_ids), self.n_voxels), dtype=np.float32))
 
-    def _fill(self, map_ids: list[str], out: np.ndarray) -> np.ndarray:
+    def locate(self, map_ids) -> tuple[np.ndarray, np.ndarray]:
+        """(shard, row) of each map's row (reads the set's map_id, shard and row columns once)."""
+        map_ids = list(map_ids)
         missing = [m for m in map_ids if m not in self._pos]
         if missing:
             raise FeatureError(f"{len(missing)} map(s) have no row in feature set {self.name!r} (first: "
@@ -843,6 +845,19 @@ class FeatureSet:
         pos = np.array([self._pos[m] for m in map_ids], dtype=np.int64)
         shard_col = self._column("shard").to_numpy()[pos] if len(pos) else np.array([])
         row_col = self._column("row").to_numpy()[pos] if len(pos) else np.array([], dtype=np.int64)
+        return shard_col, row_col
+
+    def _fill(self, map_ids: list[str], out: np.ndarray) -> np.ndarray:
+        return self.read_at(*self.locate(map_ids), out)
+
+    def read_at(self, shards, rows, out: np.ndarray) -> np.ndarray:
+        """Read the rows at (``shards[i]``, ``rows[i]``) into ``out[i]``: no lookup by map id.
+
+        A selection knows where its rows are (its query joined the ``features`` view), so
+        reading X from a set of a million rows never loads the set's rows table.
+        """
+        shard_col = np.asarray(shards, dtype=object)
+        row_col = np.asarray(rows, dtype=np.int64)
         for shard in dict.fromkeys(shard_col):
             sel = np.flatnonzero(shard_col == shard)
             order = np.argsort(row_col[sel], kind="stable")

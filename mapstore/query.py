@@ -181,6 +181,13 @@ class Selection:
     def map_ids(self) -> list[str]:
         return self.meta["map_id"].tolist()
 
+    def read_rows(self, start: int, out: np.ndarray) -> np.ndarray:
+        """Store rows ``start .. start + len(out)`` of the selection into ``out`` (where the
+        selection's query found them: no lookup in the feature set's rows table)."""
+        stop = min(start + len(out), len(self))
+        return self.feature_set.read_at(self.meta["feature_shard"].to_numpy(object)[start:stop],
+                                        self.meta["feature_row"].to_numpy()[start:stop], out[:stop - start])
+
     @property
     def voxels(self) -> np.ndarray:
         """Columns of ``X``: positions in the feature set's mask vector (see ``missing``).
@@ -194,11 +201,9 @@ class Selection:
                 self._voxels = np.arange(fs.n_voxels)  # every row covers the whole mask: nothing to read
             else:
                 finite = np.ones(fs.n_voxels, dtype=bool)
-                ids = self.map_ids
-                buf = np.empty((min(64, max(len(ids), 1)), fs.n_voxels), dtype=np.float32)
-                for i in range(0, len(ids), len(buf)):
-                    block = fs.read_into(ids[i:i + len(buf)], buf)
-                    finite &= np.isfinite(block).all(axis=0)
+                buf = np.empty((min(64, max(len(self), 1)), fs.n_voxels), dtype=np.float32)
+                for i in range(0, len(self), len(buf)):
+                    finite &= np.isfinite(self.read_rows(i, buf)).all(axis=0)
                 self._voxels = np.flatnonzero(finite)
                 self._refuse_if_too_few()
         return self._voxels
@@ -237,7 +242,7 @@ class Selection:
         an imputer fitted on all maps would see the test folds.
         """
         if self._X is None:
-            full = self.feature_set.matrix(self.map_ids)
+            full = self.read_rows(0, np.empty((len(self), self.feature_set.n_voxels), dtype=np.float32))
             if self.missing == "common":
                 voxels = self.voxels
                 self._X = full if len(voxels) == full.shape[1] else np.ascontiguousarray(full[:, voxels])
@@ -420,7 +425,8 @@ def _selection_sql(cat, feature_set: str, where: str | None, task: list[str] | N
              "ON p.dataset = m.dataset AND p.sub = m.sub LEFT JOIN (SELECT map_id, list(concept ORDER BY concept) "
              "AS concepts FROM labels WHERE direct GROUP BY map_id) l ON l.map_id = m.map_id")
     chosen = f"SELECT * FROM ({inner}) AS m" + (" WHERE " + " AND ".join(conds) if conds else "")
-    q = (f"WITH s AS ({chosen}) SELECT s.*, f.coverage, f.feature_key, f.conversion FROM s JOIN features f "
+    q = (f"WITH s AS ({chosen}) SELECT s.*, f.coverage, f.feature_key, f.conversion, f.shard AS feature_shard, "
+         'f."row" AS feature_row, f.row_sha256 AS feature_row_sha256 FROM s JOIN features f '
          f"ON f.map_id = s.map_id AND f.feature_set = '{feature_set}' ORDER BY s.map_id")
     return q, f"SELECT count(*) FROM ({chosen})"
 

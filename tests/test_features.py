@@ -282,3 +282,18 @@ def test_identical_copies_keep_one_row_each_across_rebuilds(tmp_path):
         mapstore.build_features(store, "s", grid="MNI152-3mm", jobs=1, progress=False)
         rows = mapstore.open(store).features("s").rows.to_pandas()
         assert rows.map_id.is_unique and len(rows) == 6
+
+
+def test_a_selection_reads_its_rows_without_the_rows_table(featured_store):
+    # consistency test: X read where the selection's query found the rows equals matrix() by id,
+    # and drawing X (and exporting it) never loads the set's rows table or its map_id index
+    st = mapstore.open(featured_store)
+    sel = st.select(stat=["t"], missing="keep")
+    X = sel.X
+    fs = sel.feature_set
+    assert fs._pos_map is None and fs._rows is None and not fs._columns
+    np.testing.assert_array_equal(X, st.features().matrix(sel.map_ids))
+    # shards hold one dataset each: a study's rows never share a shard with another study's
+    shards = st.sql("SELECT f.shard, count(DISTINCT m.dataset) n FROM features f JOIN maps m USING (map_id) "
+                    "GROUP BY ALL").to_pylist()
+    assert shards and all(r["n"] == 1 for r in shards)
