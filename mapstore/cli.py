@@ -175,7 +175,7 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
 @cli.command("labels")
 @STORE_OPTION
 @click.option("--vocab", required=True, type=click.Path(dir_okay=False),
-              help="Concept vocabulary (YAML or JSON; schemas/vocabulary.schema.json).")
+              help="Concept vocabulary (YAML or JSON; its schema: 'mapstore schema vocabulary').")
 @click.option("--with-broader/--direct-only", "inherit", default=None,
               help="Also label maps with broader concepts (default: as the vocabulary says).")
 def labels_cmd(store, vocab, inherit) -> None:
@@ -224,6 +224,22 @@ def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_cover
     report = st.export(out, sel, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt, overwrite=overwrite,
                        near_copy_r=near_copy_r)
     click.echo(report.summary())
+
+
+@cli.command("schema")
+@click.argument("name", required=False)
+def schema_cmd(name) -> None:
+    """Print the JSON Schema of a file format (vocabulary, name-rules, origins, maps, ...); no NAME lists them."""
+    from importlib import resources
+
+    folder = resources.files("mapstore").joinpath("json_schemas")
+    names = sorted(p.name[: -len(".schema.json")] for p in folder.iterdir() if p.name.endswith(".schema.json"))
+    if name is None:
+        click.echo("\n".join(names))
+        return
+    if name not in names:
+        raise click.BadParameter(f"no schema {name!r}; schemas: {', '.join(names)}", param_hint="NAME")
+    click.echo(folder.joinpath(f"{name}.schema.json").read_text(), nl=False)
 
 
 @cli.command("verify")

@@ -18,6 +18,7 @@ import json
 import os
 import re
 import stat
+from importlib import resources
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any, Iterable
@@ -35,6 +36,8 @@ __all__ = [
     "find_datasets",
     "walk_dataset",
     "load_user_file",
+    "check_user_doc",
+    "format_key_path",
     "UserFile",
     "inside",
     "top_folders",
@@ -186,7 +189,6 @@ class EntityParser:
         return out
 
 
-_RULE_KEYS = ("regex", "template", "entities", "datasets", "translate", "contrast_names", "dof_file", "mask")
 
 
 def builtin_rules() -> dict[str, Path]:
@@ -245,20 +247,11 @@ class NameRules:
 
     @staticmethod
     def _load_one(path: str | os.PathLike[str]) -> list[dict[str, Any]]:
-        doc = load_user_file(path, RulesError).doc
-        if not isinstance(doc, dict) or not isinstance(doc.get("rules"), list):
-            raise RulesError(f"{path}: expected an object with a 'rules' list "
-                             "(see schemas/name-rules.schema.json)")
+        f = load_user_file(path, RulesError)
+        check_user_doc(f, "name-rules", RulesError)  # the structure; what a schema cannot say follows
         compiled = []
-        for i, rule in enumerate(doc["rules"]):
+        for i, rule in enumerate(f.doc["rules"]):
             where = f"{path}: rules[{i}]"
-            if not isinstance(rule, dict):
-                raise RulesError(f"{where}: expected an object, got {type(rule).__name__}")
-            unknown = set(rule) - set(_RULE_KEYS)
-            if unknown:
-                raise RulesError(f"{where}: unknown key(s) {sorted(unknown)}; allowed: {', '.join(_RULE_KEYS)}")
-            if ("regex" in rule) == ("template" in rule):
-                raise RulesError(f"{where}: give exactly one of 'regex' or 'template'")
             if "regex" in rule:
                 try:
                     rx = re.compile(rule["regex"])
@@ -267,27 +260,14 @@ class NameRules:
             else:
                 rx = _template_regex(rule["template"], where)
             fixed = rule.get("entities", {})
-            if not isinstance(fixed, dict) or not all(isinstance(v, str) for v in fixed.values()):
-                raise RulesError(f"{where}: 'entities' must map entity names to strings")
             names = set(rx.groupindex) | set(fixed)
             if "stat" not in names:
                 raise RulesError(f"{where}: the rule never sets 'stat'; every map needs a stat "
                                  "(capture it or fix it in 'entities')")
             translate = rule.get("translate", {})
-            if not isinstance(translate, dict) or not all(
-                    isinstance(v, dict) and all(isinstance(x, str) for x in v.values()) for v in translate.values()):
-                raise RulesError(f"{where}: 'translate' must map entity names to {{captured: value}} objects")
             names_spec = rule.get("contrast_names")
-            if names_spec is not None:
-                if not isinstance(names_spec, dict) or "file" not in names_spec or \
-                        ("line" in names_spec) == ("matlab" in names_spec):
-                    raise RulesError(f"{where}: 'contrast_names' needs 'file' and one of 'line' (a regex) or "
-                                     "'matlab' (a struct array path such as SPM.xCon)")
-                if "line" in names_spec and "(?P<name>" not in names_spec["line"]:
-                    raise RulesError(f"{where}: contrast_names.line needs a group (?P<name>...)")
-            for key in ("dof_file", "mask"):
-                if key in rule and not isinstance(rule[key], str):
-                    raise RulesError(f"{where}: '{key}' must be a path template (a string)")
+            if names_spec is not None and "line" in names_spec and "(?P<name>" not in names_spec["line"]:
+                raise RulesError(f"{where}: contrast_names.line needs a group (?P<name>...)")
             datasets = rule.get("datasets", ["*"])
             if isinstance(datasets, str):
                 datasets = [datasets]
@@ -454,6 +434,53 @@ def load_user_file(path: str | os.PathLike[str], error: type[Exception], what: s
         raise error(f"{p}: not valid JSON at line {exc.lineno}, column {exc.colno} ({exc.msg})") from None
 
 
+def check_user_doc(f: UserFile, schema: str, error: type[Exception]) -> None:
+    """Validate a user file against its JSON Schema as shipped in the package (``json_schemas/``).
+
+    The first violation becomes ``error``: ``FILE: KEY.PATH (line N): MESSAGE``, the message
+    taken from the schema's ``x-messages`` for the failed keyword when it has one.
+    """
+    import jsonschema  # ~0.1 s to import; only user files need it
+
+    doc = json.loads(resources.files("mapstore").joinpath("json_schemas", f"{schema}.schema.json").read_text())
+    validator = jsonschema.Draft202012Validator(doc)
+    errors = list(validator.iter_errors(f.doc))
+    if not errors:
+        return
+    # the first in document order, at the level where it failed (a oneOf's own message, not one of
+    # its branches')
+    err = min(errors, key=lambda e: [f"{x:09d}" if isinstance(x, int) else str(x) for x in e.absolute_path])
+    key, msg = _schema_message(err)
+    line = f.lines.get(key)
+    raise error(f"{f.path}: {format_key_path(key)}{f' (line {line})' if line else ''}: {msg}")
+
+
+def _schema_message(err) -> tuple[tuple, str]:
+    """(key path, message) of one jsonschema error, in mapstore's words."""
+    path = tuple(err.absolute_path)
+    schema = err.schema if isinstance(err.schema, dict) else {}
+    text = (schema.get("x-messages") or {}).get(err.validator)
+    if err.validator == "additionalProperties":
+        allowed = list(schema.get("properties", {}))
+        extra = sorted(set(err.instance) - set(allowed), key=str)
+        text = text or "unknown key; allowed: {allowed}"
+        return path + (extra[0],), text.format(extra=extra, allowed=", ".join(allowed))
+    if err.validator == "required":
+        missing = [k for k in err.validator_value if k not in err.instance]
+        sub = schema.get("properties", {}).get(missing[0], {}) if missing else {}
+        text = text or (sub.get("x-messages") or {}).get("required") or f"missing key {missing[0]!r}"
+        return (path + (missing[0],) if missing else path), text
+    return path, text or err.message
+
+
+def format_key_path(path: tuple) -> str:
+    """``rules[0].concepts[1]`` from ("rules", 0, "concepts", 1)."""
+    out = ""
+    for p in path:
+        out += f"[{p}]" if isinstance(p, int) else (f".{p}" if out else str(p))
+    return out or "(top level)"
+
+
 def _line_index(text: str) -> dict[tuple, int]:
     """Line numbers (1-based) of YAML nodes by key path, for error messages."""
     import yaml
@@ -501,26 +528,11 @@ class MetadataOverrides:
     def load(cls, path: str | os.PathLike[str] | None) -> "MetadataOverrides":
         if path is None:
             return cls()
-        doc = load_user_file(path, RulesError).doc
-        if not isinstance(doc, dict):
-            raise RulesError(f"{path}: expected an object with 'datasets' and/or 'subjects'")
-        unknown = set(doc) - {"datasets", "subjects"}
-        if unknown:
-            raise RulesError(f"{path}: unknown top-level key(s) {sorted(unknown)}; "
-                             "allowed: datasets, subjects")
+        f = load_user_file(path, RulesError)
+        check_user_doc(f, "origins", RulesError)
         out = cls(source=str(path))
         for section in ("datasets", "subjects"):
-            table = doc.get(section) or {}
-            if not isinstance(table, dict):
-                raise RulesError(f"{path}: '{section}' must be an object")
-            for key, val in table.items():
-                if not isinstance(val, dict):
-                    raise RulesError(f"{path}: {section}.{key} must be an object")
-                allowed = {"study", "site", "lab"} | ({"participant"} if section == "subjects" else set())
-                bad = set(val) - allowed
-                if bad:
-                    raise RulesError(f"{path}: {section}.{key}: unknown key(s) {sorted(bad)}; "
-                                     f"allowed: {', '.join(sorted(allowed))}")
+            for key, val in (f.doc.get(section) or {}).items():
                 getattr(out, section)[str(key)] = {k: str(v) for k, v in val.items()}
         return out
 

@@ -1,6 +1,6 @@
 """Concept vocabularies and the rules that label maps with concepts.
 
-A vocabulary file (YAML or JSON; ``schemas/vocabulary.schema.json``)::
+A vocabulary file (YAML or JSON; its schema: ``mapstore schema vocabulary``)::
 
     vocabulary: my-concepts            # a name
     version: "3"
@@ -32,7 +32,7 @@ from typing import Any
 
 import pyarrow as pa
 
-from .discover import load_user_file
+from .discover import check_user_doc, format_key_path, load_user_file
 from .errors import VocabularyError
 from .tables import LABELS_SCHEMA, LabelsEntry, arrow_to_json_schema
 from .store import (Catalog, commit_head, leased_files, new_snapshot_id, read_head, write_json_atomic,
@@ -85,15 +85,12 @@ class Vocabulary:
         return out
 
 
-def _fmt_path(path: tuple) -> str:
-    out = ""
-    for p in path:
-        out += f"[{p}]" if isinstance(p, int) else (f".{p}" if out else str(p))
-    return out or "(top level)"
-
-
 def load_vocabulary(path: str | os.PathLike[str]) -> Vocabulary:
     """Read and validate a vocabulary file.
+
+    The structure is checked against the shipped ``vocabulary.schema.json``; what a schema
+    cannot say (broader concepts that exist, no cycles, rules naming defined concepts,
+    regular expressions that compile) is checked here.
 
     Raises
     ------
@@ -101,57 +98,34 @@ def load_vocabulary(path: str | os.PathLike[str]) -> Vocabulary:
         Naming the file, the key (and line, for YAML), what is wrong and what is allowed.
     """
     f = load_user_file(path, VocabularyError, "vocabulary file")
+    check_user_doc(f, "vocabulary", VocabularyError)
     p, doc = f.path, f.doc
 
     def fail(path_: tuple, msg: str) -> None:
         line = f.lines.get(path_)
         where = f" (line {line})" if line else ""
-        raise VocabularyError(f"{p}: {_fmt_path(path_)}{where}: {msg}")
+        raise VocabularyError(f"{p}: {format_key_path(path_)}{where}: {msg}")
 
-    if not isinstance(doc, dict):
-        fail((), "expected an object with 'concepts' and 'rules'")
-    unknown = set(doc) - {"vocabulary", "version", "description", "inherit_broader", "concepts", "rules"}
-    if unknown:
-        fail((sorted(unknown)[0],), "unknown key; allowed: vocabulary, version, description, "
-                                    "inherit_broader, concepts, rules")
-    clean = _check_concepts(doc.get("concepts"), fail)
-    compiled = _check_rules(doc.get("rules"), clean, fail)
-    inherit = doc.get("inherit_broader", False)
-    if not isinstance(inherit, bool):
-        fail(("inherit_broader",), "expected true or false")
+    clean = _check_concepts(doc["concepts"], fail)
+    compiled = _check_rules(doc["rules"], clean, fail)
     return Vocabulary(
         name=str(doc.get("vocabulary") or p.stem), version=None if doc.get("version") is None else str(doc["version"]),
-        concepts=clean, rules=compiled, inherit_broader=inherit,
+        concepts=clean, rules=compiled, inherit_broader=doc.get("inherit_broader", False),
         sha256=hashlib.sha256(f.raw).hexdigest(), source=str(p), document=doc,
     )
 
 
-def _check_concepts(concepts: Any, fail) -> dict[str, dict[str, Any]]:
+def _check_concepts(concepts: dict[str, Any], fail) -> dict[str, dict[str, Any]]:
     """The concepts with their broader lists; unknown broader concepts and cycles are refused."""
-    if not isinstance(concepts, dict) or not concepts:
-        fail(("concepts",), "expected a non-empty object of concept names")
     clean: dict[str, dict[str, Any]] = {}
     for name, spec in concepts.items():
-        where = ("concepts", name)
-        if not isinstance(name, str) or not re.fullmatch(r"[A-Za-z0-9][A-Za-z0-9 _.:/+-]*", name):
-            fail(where, "concept names are letters, digits and - _ . : / + (starting with a letter or digit)")
         spec = spec or {}
-        if not isinstance(spec, dict):
-            fail(where, "expected an object (broader, description, label)")
-        bad = set(spec) - {"broader", "description", "label"}
-        if bad:
-            fail(where + (sorted(bad)[0],), "unknown key; allowed: broader, description, label")
         broader = spec.get("broader", [])
-        if isinstance(broader, str):
-            broader = [broader]
-        if not isinstance(broader, list) or not all(isinstance(b, str) for b in broader):
-            fail(where + ("broader",), "expected a concept name or a list of them")
-        clean[name] = {**spec, "broader": broader}
+        clean[name] = {**spec, "broader": [broader] if isinstance(broader, str) else list(broader)}
     for name, spec in clean.items():
         for i, b in enumerate(spec["broader"]):
             if b not in clean:
                 fail(("concepts", name, "broader", i), f"unknown concept {b!r}; define it under 'concepts'")
-    # cycles in the hierarchy
     state: dict[str, int] = {}
 
     def visit(c: str, trail: list[str]) -> None:
@@ -169,25 +143,13 @@ def _check_concepts(concepts: Any, fail) -> dict[str, dict[str, Any]]:
     return clean
 
 
-def _check_rules(rules: Any, clean: dict[str, dict[str, Any]], fail) -> list[dict[str, Any]]:
-    """The rules compiled to patterns per match field."""
-    if not isinstance(rules, list) or not rules:
-        fail(("rules",), "expected a non-empty list of rules")
+def _check_rules(rules: list[dict[str, Any]], clean: dict[str, dict[str, Any]], fail) -> list[dict[str, Any]]:
+    """The rules compiled to patterns per match field; concepts they name must be defined."""
     compiled = []
     for i, rule in enumerate(rules):
         where = ("rules", i)
-        if not isinstance(rule, dict):
-            fail(where, "expected an object with match fields and 'concepts'")
-        bad = set(rule) - set(RULE_FIELDS) - {"concepts", "note"}
-        if bad:
-            fail(where + (sorted(bad)[0],), f"unknown key; allowed: {', '.join(RULE_FIELDS)}, concepts, note")
-        if not any(k in rule for k in RULE_FIELDS):
-            fail(where, f"a rule must match on at least one of {', '.join(RULE_FIELDS)}")
-        cs = rule.get("concepts")
-        if isinstance(cs, str):
-            cs = [cs]
-        if not isinstance(cs, list) or not cs:
-            fail(where + ("concepts",), "expected a concept name or a non-empty list of them")
+        cs = rule["concepts"]
+        cs = [cs] if isinstance(cs, str) else cs
         for j, c in enumerate(cs):
             if c not in clean:
                 near = [k for k in clean if k.lower().startswith(str(c)[:3].lower())][:3]
@@ -322,12 +284,17 @@ def json_schemas() -> dict[str, dict[str, Any]]:
                                   "vocabulary_sha256": "SHA-256 of the vocabulary file as given"})
     pattern = {"oneOf": [{"type": "string"}, {"type": "integer"},
                          {"type": "object", "required": ["regex"], "additionalProperties": False,
-                          "properties": {"regex": {"type": "string"}}}]}
-    patterns = {"oneOf": [pattern, {"type": "array", "items": pattern, "minItems": 1}]}
+                          "properties": {"regex": {"type": "string"}}}],
+               "x-messages": {"oneOf": "expected a name, a glob or {regex: ...}"}}
+    patterns = {"oneOf": [pattern, {"type": "array", "items": pattern, "minItems": 1}],
+                "x-messages": {"oneOf": "expected a name, a glob or {regex: ...}, or a list of them"}}
     names = {"oneOf": [{"type": "string"}, {"type": "array", "items": {"type": "string"}, "minItems": 1}]}
+    concepts_msg = "expected a non-empty object of concept names"
+    rules_msg = "expected a non-empty list of rules"
     return {"labels.schema.json": table, "vocabulary.schema.json": {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
         "$id": "https://mapstore.invalid/schemas/vocabulary.schema.json",
+        "$comment": "x-messages: the message mapstore prints when the keyword named fails",
         "title": "mapstore concept vocabulary",
         "description": "Concepts (with optional broader concepts) and rules assigning them to maps by "
                        "dataset, study, task, contrast and stat. A pattern is an exact name, a glob "
@@ -335,20 +302,35 @@ def json_schemas() -> dict[str, dict[str, Any]]:
         "type": "object",
         "required": ["concepts", "rules"],
         "additionalProperties": False,
+        "x-messages": {"type": "expected an object with 'concepts' and 'rules'"},
         "properties": {
             "vocabulary": {"type": "string"},
             "version": {"type": ["string", "number"]},
             "description": {"type": "string"},
-            "inherit_broader": {"type": "boolean"},
-            "concepts": {"type": "object", "minProperties": 1, "additionalProperties": {
-                "type": ["object", "null"], "additionalProperties": False,
-                "properties": {"broader": names, "description": {"type": "string"},
-                               "label": {"type": "string"}}}},
-            "rules": {"type": "array", "minItems": 1, "items": {
-                "type": "object", "required": ["concepts"], "additionalProperties": False,
-                "anyOf": [{"required": [k]} for k in RULE_FIELDS],
-                "properties": {**{k: patterns for k in RULE_FIELDS}, "concepts": names,
-                               "note": {"type": "string"}}}},
+            "inherit_broader": {"type": "boolean", "x-messages": {"type": "expected true or false"}},
+            "concepts": {
+                "type": "object", "minProperties": 1,
+                "x-messages": {"type": concepts_msg, "minProperties": concepts_msg, "required": concepts_msg},
+                "propertyNames": {"pattern": "^[A-Za-z0-9][A-Za-z0-9 _.:/+-]*$", "x-messages": {
+                    "pattern": "concept names are letters, digits and - _ . : / + (starting with a letter or digit)"}},
+                "additionalProperties": {
+                    "type": ["object", "null"], "additionalProperties": False,
+                    "x-messages": {"type": "expected an object (broader, description, label)"},
+                    "properties": {"broader": {**names, "x-messages": {
+                                       "oneOf": "expected a concept name or a list of them"}},
+                                   "description": {"type": "string"}, "label": {"type": "string"}}}},
+            "rules": {"type": "array", "minItems": 1,
+                      "x-messages": {"type": rules_msg, "minItems": rules_msg, "required": rules_msg},
+                      "items": {
+                          "type": "object", "required": ["concepts"], "additionalProperties": False,
+                          "anyOf": [{"required": [k]} for k in RULE_FIELDS],
+                          "x-messages": {"type": "expected an object with match fields and 'concepts'",
+                                         "anyOf": f"a rule must match on at least one of {', '.join(RULE_FIELDS)}"},
+                          "properties": {**{k: patterns for k in RULE_FIELDS},
+                                         "concepts": {**names, "x-messages": {
+                                             "oneOf": "expected a concept name or a non-empty list of them",
+                                             "required": "expected a concept name or a non-empty list of them"}},
+                                         "note": {"type": "string"}}}},
         },
     }}
 

@@ -1,7 +1,8 @@
 """JSON Schemas of the catalog tables and of every file mapstore reads or writes.
 
-The copies in the repository's ``schemas/`` folder are generated from this module
-(``python -m mapstore.schemas schemas``); a test keeps them in sync.
+The files in ``mapstore/json_schemas/`` (shipped in the wheel; ``mapstore schema NAME`` prints
+one) are generated from this module (``python -m mapstore.schemas``); a test keeps them in sync,
+and the loaders of user files (vocabulary, name rules, origins) validate against them.
 """
 
 from __future__ import annotations
@@ -45,10 +46,19 @@ MAPS_DOCS = {
 }
 
 
+# "x-messages" (an annotation JSON Schema ignores): mapstore's message for a failed keyword
+_X = "x-messages"
+_MSG_NOTE = ("x-messages: the message mapstore prints when the keyword named fails; {extra} and "
+             "{allowed} are the unknown and the allowed keys")
+
+
 def _rules_schema() -> dict[str, Any]:
+    top = "expected an object with a 'rules' list (see 'mapstore schema name-rules')"
+    string_map = {"type": "object", "additionalProperties": {"type": "string"}}
     return {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
         "$id": SCHEMA_BASE + "name-rules.schema.json",
+        "$comment": _MSG_NOTE,
         "title": "mapstore name rules",
         "description": "Rules naming statistic maps whose file names do not follow the BIDS statmap "
                        "convention. The first rule that matches a path (relative to its dataset "
@@ -56,39 +66,67 @@ def _rules_schema() -> dict[str, Any]:
         "type": "object",
         "required": ["rules"],
         "additionalProperties": False,
-        "properties": {"rules": {"type": "array", "items": {
+        _X: {"type": top, "required": top, "additionalProperties": top},
+        "properties": {"rules": {"type": "array", _X: {"type": top}, "items": {
             "type": "object",
             "additionalProperties": False,
             "oneOf": [{"required": ["regex"]}, {"required": ["template"]}],
+            _X: {"type": "expected an object", "oneOf": "give exactly one of 'regex' or 'template'",
+                 "additionalProperties": "unknown key(s) {extra}; allowed: {allowed}"},
             "properties": {
                 "regex": {"type": "string", "description": "Python regular expression; named groups "
                                                           "set entities"},
                 "template": {"type": "string", "description": "path with {entity} placeholders, * (one "
                                                              "folder level) and ** (any depth)"},
-                "entities": {"type": "object", "additionalProperties": {"type": "string"},
-                             "description": "fixed entity values"},
+                "entities": {"type": "object", "description": "fixed entity values",
+                             "additionalProperties": {"type": "string", _X: {
+                                 "type": "'entities' must map entity names to strings"}},
+                             _X: {"type": "'entities' must map entity names to strings"}},
                 "datasets": {"oneOf": [{"type": "string"}, {"type": "array", "items": {"type": "string"}}],
                              "description": "glob patterns over dataset keys (default: all)"},
+                "translate": {"type": "object", "additionalProperties": string_map,
+                              "description": "per entity, captured text -> BIDS label",
+                              _X: {"type": "'translate' must map entity names to {captured: value} objects"}},
+                "contrast_names": {
+                    "type": "object", "required": ["file"], "additionalProperties": False,
+                    "oneOf": [{"required": ["line"]}, {"required": ["matlab"]}],
+                    "properties": {"file": {"type": "string"}, "line": {"type": "string"},
+                                   "matlab": {"type": "string"}, "field": {"type": "string"}},
+                    "description": "where contrast names are: a text file read with a line regex (a "
+                                   "group (?P<name>...)), or a MATLAB struct array (file, matlab, field)",
+                    _X: {k: "'contrast_names' needs 'file' and one of 'line' (a regex) or 'matlab' (a struct "
+                            "array path such as SPM.xCon)" for k in ("type", "required", "oneOf")}},
+                "dof_file": {"type": "string", "description": "path template of a text file holding the DOF",
+                             _X: {"type": "'dof_file' must be a path template (a string)"}},
+                "mask": {"type": "string", "description": "path template of the model's mask",
+                         _X: {"type": "'mask' must be a path template (a string)"}},
             }}}},
     }
 
 
 def _origins_schema() -> dict[str, Any]:
-    entry = {"type": "object", "additionalProperties": False,
-             "properties": {k: {"type": "string"} for k in ("study", "site", "lab")}}
-    subject_entry = {"type": "object", "additionalProperties": False,
-                     "properties": {k: {"type": "string"} for k in ("study", "site", "lab", "participant")}}
+    def entry(keys: tuple[str, ...]) -> dict[str, Any]:
+        return {"type": "object", "additionalProperties": False,
+                "properties": {k: {"type": "string"} for k in keys},
+                _X: {"type": "must be an object", "additionalProperties": "unknown key(s) {extra}; allowed: {allowed}"}}
+
     return {
         "$schema": "https://json-schema.org/draft/2020-12/schema",
         "$id": SCHEMA_BASE + "origins.schema.json",
+        "$comment": _MSG_NOTE,
         "title": "mapstore origins mapping",
         "description": "Sets study, site and lab per dataset (keys are dataset keys or globs) and per "
                        "study-qualified subject ('<dataset key>/sub-<label>'); overrides what BIDS "
                        "metadata says.",
         "type": "object",
         "additionalProperties": False,
-        "properties": {"datasets": {"type": "object", "additionalProperties": entry},
-                       "subjects": {"type": "object", "additionalProperties": subject_entry}},
+        _X: {"type": "expected an object with 'datasets' and/or 'subjects'",
+             "additionalProperties": "unknown top-level key(s) {extra}; allowed: {allowed}"},
+        "properties": {"datasets": {"type": ["object", "null"], "additionalProperties": entry(("study", "site", "lab")),
+                                    _X: {"type": "'datasets' must be an object"}},
+                       "subjects": {"type": ["object", "null"],
+                                    "additionalProperties": entry(("study", "site", "lab", "participant")),
+                                    _X: {"type": "'subjects' must be an object"}}},
     }
 
 
@@ -200,7 +238,10 @@ def all_schemas() -> dict[str, dict[str, Any]]:
     return out
 
 
-def write_all(folder: str | Path) -> list[Path]:
+SHIPPED = Path(__file__).resolve().parent / "json_schemas"
+
+
+def write_all(folder: str | Path = SHIPPED) -> list[Path]:
     folder = Path(folder)
     folder.mkdir(parents=True, exist_ok=True)
     written = []
@@ -212,5 +253,5 @@ def write_all(folder: str | Path) -> list[Path]:
 
 
 if __name__ == "__main__":  # pragma: no cover
-    for p in write_all(sys.argv[1] if len(sys.argv) > 1 else "schemas"):
+    for p in write_all(sys.argv[1] if len(sys.argv) > 1 else SHIPPED):
         print(p)

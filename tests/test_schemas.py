@@ -1,4 +1,4 @@
-"""The schemas/ folder matches what the package generates, and the schemas validate real files."""
+"""The shipped schemas (mapstore/json_schemas/) match what the package generates, and validate real files."""
 
 from __future__ import annotations
 
@@ -15,8 +15,8 @@ REPO = Path(__file__).resolve().parents[1]
 
 def test_schema_files_in_sync():
     generated = all_schemas()
-    on_disk = {p.name: json.loads(p.read_text()) for p in (REPO / "schemas").glob("*.json")}
-    assert on_disk == generated, "run: python -m mapstore.schemas schemas"
+    on_disk = {p.name: json.loads(p.read_text()) for p in (REPO / "mapstore" / "json_schemas").glob("*.json")}
+    assert on_disk == generated, "run: python -m mapstore.schemas"
 
 
 def test_schemas_are_valid_and_validate_demo_files(demo_store, demo_tree):
