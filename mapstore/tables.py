@@ -76,14 +76,21 @@ PROBLEMS_SCHEMA = pa.schema([
 ])
 
 
-def _record_from(cls, doc: dict[str, Any]):
-    """A record from its JSON object; keys it does not know (from newer versions) are ignored."""
-    names = {f.name for f in fields(cls)}
-    return cls(**{k: v for k, v in doc.items() if k in names})
+class _JsonRecord:
+    """to_json / from_json for the dataclass records of HEAD and set.json."""
+
+    def to_json(self) -> dict[str, Any]:
+        return dict(self.__dict__)
+
+    @classmethod
+    def from_json(cls, doc: dict[str, Any]):
+        """The record from its JSON object; keys it does not know (from newer versions) are ignored."""
+        names = {f.name for f in fields(cls)}
+        return cls(**{k: v for k, v in doc.items() if k in names})
 
 
 @dataclass
-class FeatureEntry:
+class FeatureEntry(_JsonRecord):
     """HEAD's record of one feature set: its folder and the tables of its current state."""
 
     dir: str
@@ -94,16 +101,9 @@ class FeatureEntry:
     spec_id: str | None = None
     catalog: str | None = None  # the catalog snapshot it was built from
 
-    def to_json(self) -> dict[str, Any]:
-        return dict(self.__dict__)
-
-    @classmethod
-    def from_json(cls, doc: dict[str, Any]) -> "FeatureEntry":
-        return _record_from(cls, doc)
-
 
 @dataclass
-class LabelsEntry:
+class LabelsEntry(_JsonRecord):
     """HEAD's record of the labels: the table, and the vocabulary (its stored copy) that made it."""
 
     table: str
@@ -116,16 +116,9 @@ class LabelsEntry:
     catalog: str | None = None  # the catalog snapshot it labels
     concepts: list[str] = field(default_factory=list)
 
-    def to_json(self) -> dict[str, Any]:
-        return dict(self.__dict__)
-
-    @classmethod
-    def from_json(cls, doc: dict[str, Any]) -> "LabelsEntry":
-        return _record_from(cls, doc)
-
 
 @dataclass
-class FeatureSetSpec:
+class FeatureSetSpec(_JsonRecord):
     """``features/<set>/set.json``: everything a set's rows depend on (written once per set)."""
 
     name: str
@@ -142,13 +135,6 @@ class FeatureSetSpec:
     where: str | None = None
     versions: dict[str, str] = field(default_factory=dict)
     spec_id: str = ""
-
-    def to_json(self) -> dict[str, Any]:
-        return dict(self.__dict__)
-
-    @classmethod
-    def from_json(cls, doc: dict[str, Any]) -> "FeatureSetSpec":
-        return _record_from(cls, doc)
 
     @classmethod
     def read(cls, folder: Path) -> "FeatureSetSpec":
