@@ -14,6 +14,7 @@ import gc
 import hashlib
 import json
 import math
+import operator
 import os
 import re
 import shutil
@@ -272,10 +273,11 @@ def _read_columns(path: str, cols: list[str]) -> pa.Table:
 
 
 _STATIC_HEADER = tuple(c for c in _HEADER_COLUMNS if c not in ("sha256", "nbytes", "mtime_ns"))
-_PER_ROW = ("map_id", "dataset", "relpath", *_ENTITY_COLUMNS, "map_kind", "suffix", "extension", "entities",
-            "named_by", "participant", "study", "site", "lab", "sha256", "nbytes", "mtime_ns", "dof", "dof_source",
-            "model_mask", "model_mask_sha256")
 _SIDECAR_COLUMNS = ("metadata", "sidecars")
+# every other maps column is set per row by _RowBuilder.add: a new column is one edit in tables.py
+# plus its value there (a column without one fails the first index loudly)
+_PER_ROW = tuple(f.name for f in MAPS_SCHEMA if f.name not in _STATIC_HEADER and f.name not in _SIDECAR_COLUMNS)
+_ROW_TUPLE = operator.itemgetter(*_PER_ROW)
 
 
 def _run_unit(unit: _Unit) -> _UnitResult:
@@ -411,14 +413,15 @@ class _RowBuilder:
         mask_rel, msha = self._model_mask(m)
         dof, dof_source = _degrees_of_freedom(m, meta, used, hdr, self.model, self.problems)
         get = ents.get
-        self.rows.append((
-            map_id_for(ds.key, m.relpath), ds.key, m.relpath,
-            *[get(c) for c in _ENTITY_COLUMNS], "contrast" if get("contrast") else "model",
-            get("suffix"), get("extension"),
-            json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")}, sort_keys=True),
-            m.named_by, origin["participant"], origin["study"], origin["site"], lab,
-            sha, nbytes, m.mtime_ns, dof, dof_source, mask_rel, msha,
-        ))
+        row = {c: get(c) for c in _ENTITY_COLUMNS}
+        row.update(
+            map_id=map_id_for(ds.key, m.relpath), dataset=ds.key, relpath=m.relpath,
+            map_kind="contrast" if get("contrast") else "model", suffix=get("suffix"), extension=get("extension"),
+            entities=json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")}, sort_keys=True),
+            named_by=m.named_by, participant=origin["participant"], study=origin["study"], site=origin["site"],
+            lab=lab, sha256=sha, nbytes=nbytes, mtime_ns=m.mtime_ns, dof=dof, dof_source=dof_source,
+            model_mask=mask_rel, model_mask_sha256=msha)
+        self.rows.append(_ROW_TUPLE(row))
 
     def table(self) -> pa.Table:
         # one tuple per row while crawling, transposed into columns once
