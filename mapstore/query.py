@@ -425,9 +425,12 @@ def _selection_sql(cat, feature_set: str, where: str | None, task: list[str] | N
              "ON p.dataset = m.dataset AND p.sub = m.sub LEFT JOIN (SELECT map_id, list(concept ORDER BY concept) "
              "AS concepts FROM labels WHERE direct GROUP BY map_id) l ON l.map_id = m.map_id")
     chosen = f"SELECT * FROM ({inner}) AS m" + (" WHERE " + " AND ".join(conds) if conds else "")
-    q = (f"WITH s AS ({chosen}) SELECT s.*, f.coverage, f.feature_key, f.conversion, f.shard AS feature_shard, "
-         'f."row" AS feature_row, f.row_sha256 AS feature_row_sha256 FROM s JOIN features f '
-         f"ON f.map_id = s.map_id AND f.feature_set = '{feature_set}' ORDER BY s.map_id")
+    # the set's rows are filtered by the selected ids first (a semi join built on the selection), so
+    # a million-row rows table is streamed, never held in a hash table
+    q = (f"WITH s AS MATERIALIZED ({chosen}), f AS (SELECT map_id, coverage, feature_key, conversion, shard, "
+         f"\"row\", row_sha256 FROM features WHERE feature_set = '{feature_set}' AND map_id IN (SELECT map_id FROM s)) "
+         "SELECT s.*, f.coverage, f.feature_key, f.conversion, f.shard AS feature_shard, f.\"row\" AS feature_row, "
+         "f.row_sha256 AS feature_row_sha256 FROM s JOIN f ON f.map_id = s.map_id ORDER BY s.map_id")
     return q, f"SELECT count(*) FROM ({chosen})"
 
 

@@ -172,10 +172,68 @@ def synthetic_catalog(store: Path, n_rows: int, n_datasets: int = 100) -> float:
     return time.perf_counter() - t0
 
 
+def synthetic_features(store: Path, n_voxels: int = 100, shard_rows: int = 65536) -> float:
+    """A feature set over every map of a synthetic catalog (random rows, one dataset per shard)."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+
+    from mapstore.store import commit_head, read_head
+    from mapstore.tables import ROWS_SCHEMA, FeatureEntry, FeatureSetSpec
+
+    t0 = time.perf_counter()
+    head = read_head(store)
+    parts = json.loads((store / head.catalog / "parts.json").read_text())["parts"]
+    folder = store / "features" / "synthetic"
+    (folder / "shards").mkdir(parents=True)
+    rng = np.random.default_rng(0)
+    tables = []
+    for k, part in enumerate(parts):
+        ids = pq.read_table(store / part["maps"], columns=["map_id"])["map_id"]
+        for start in range(0, len(ids), shard_rows):
+            chunk = ids.slice(start, shard_rows)
+            shard = f"shard-{part['dataset']}-{k:05d}-{start:08d}.npy"
+            np.save(folder / "shards" / shard, rng.standard_normal((len(chunk), n_voxels), dtype=np.float32))
+            n = len(chunk)
+            cols = {f.name: pa.nulls(n, f.type) for f in ROWS_SCHEMA}
+            cols.update(map_id=chunk, feature_key=chunk, shard=pa.array([shard] * n), row=pa.array(np.arange(n)),
+                        coverage=pa.array(np.ones(n)))
+            tables.append(pa.Table.from_arrays([cols[f.name].cast(f.type) for f in ROWS_SCHEMA], schema=ROWS_SCHEMA))
+    rows = pa.concat_tables(tables).sort_by([("map_id", "ascending")])
+    pq.write_table(rows, folder / "rows-0.parquet", compression="zstd")
+    pq.write_table(pa.schema([("map_id", pa.string()), ("path", pa.string()), ("code", pa.string()),
+                              ("reason", pa.string()), ("remedy", pa.string())]).empty_table(),
+                   folder / "problems-0.parquet")
+    np.save(folder / "mask.npy", np.arange(n_voxels, dtype=np.int64))
+    grid = {"name": "synthetic", "shape": [n_voxels, 1, 1], "affine": np.eye(4).tolist(), "grid_id": "synthetic"}
+    spec = FeatureSetSpec("synthetic", grid, "synthetic", {"name": "all", "n_voxels": n_voxels, "sha256": "x"},
+                          "x", "linear", "native", "one", False, spec_id="synthetic")
+    (folder / "set.json").write_text(json.dumps(spec.to_json()))
+    head.features["synthetic"] = FeatureEntry("features/synthetic", "features/synthetic/rows-0.parquet",
+                                              "features/synthetic/problems-0.parquet", n_rows=rows.num_rows)
+    head.default_features = "synthetic"
+    commit_head(store, head, {"event": "synthetic features", "rows": rows.num_rows})
+    return time.perf_counter() - t0
+
+
+def x_run(store: Path, where: str, by_id: bool) -> dict:
+    """X of a selection in a fresh process: as the selection reads it, or by map id through matrix()."""
+    code = ("import json, time, mapstore\n"
+            f"st = mapstore.open({str(store)!r})\n"
+            "t = time.perf_counter()\n"
+            f"sel = st.select({where!r}, missing='keep')\n"
+            + ("X = st.features().matrix(sel.map_ids)\n" if by_id else "X = sel.X\n") +
+            "took = time.perf_counter() - t\n"
+            "print(json.dumps({'seconds': took, 'rows': X.shape[0], 'peak': _peak()}))\n")
+    return _child(code)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--maps", default="10000,100000", help="comma-separated tree sizes (0: none)")
     ap.add_argument("--catalog-rows", type=int, default=0)
+    ap.add_argument("--feature-rows", type=int, default=0,
+                    help="a synthetic catalog and feature set of this many rows: X of one dataset's 1%%")
     ap.add_argument("--workdir", type=Path, default=None)
     args = ap.parse_args()
     work = Path(args.workdir or tempfile.mkdtemp(prefix="mapstore-scale-"))
@@ -197,6 +255,17 @@ def main() -> None:
                   f"{q['peak']:.0f} MB (after imports {q['after_import']:.0f} MB)")
             print(f"open + query across all datasets (task, contrast, subject): {q2['seconds']:.2f} s, "
                   f"{q2['rows']} rows, peak RSS {q2['peak']:.0f} MB")
+        if args.feature_rows:
+            store = work / "synthetic-features"
+            took = synthetic_catalog(store, args.feature_rows) + synthetic_features(store)
+            where = "dataset = 'study042'"
+            a = x_run(store, where, by_id=False)
+            b = x_run(store, where, by_id=True)
+            print(f"synthetic feature set: {args.feature_rows:,} rows (100 voxels) made in {took:.0f} s")
+            print(f"select + X of one dataset ({a['rows']:,} rows), rows located by the selection's query: "
+                  f"{a['seconds']:.2f} s, peak RSS {a['peak']:.0f} MB")
+            print(f"the same through matrix(map_ids) (reads the map_id, shard and row columns of every row): "
+                  f"{b['seconds']:.2f} s, peak RSS {b['peak']:.0f} MB")
     finally:
         if args.workdir is None:
             shutil.rmtree(work, ignore_errors=True)
