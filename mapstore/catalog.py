@@ -44,7 +44,7 @@ from .discover import (
 from ._version import __version__
 from .params import resolve_jobs
 from .runner import die_once_for_tests, run as run_units
-from .errors import HeaderError, NoDatasetsFound, ParameterError, StoreFull
+from .errors import HeaderError, MapstoreError, NoDatasetsFound, ParameterError, StoreFull
 from .labels import refresh_labels
 from .hashing import ReadDeadline, ReadTimeout, digest_file
 from .header import NIFTI1_SIZE, NIFTI2_SIZE, HeaderFacts, header_prefix, parse_header
@@ -304,7 +304,7 @@ def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
     digest = None if unit.rules.rules or any(p.level == _NOT_REUSED_LEVEL for p in problems) \
         else fingerprint.hexdigest()
     prev_part = unit.prev_part
-    if digest is not None and prev_part is not None and prev_part.digest == digest:
+    if digest is not None and prev_part is not None and prev_part.digest == digest and _part_files_exist(unit):
         return _UnitResult(prev_part, _read_problems(unit.store, prev_part), 0, 0, prev_part.rows, True)
     rows = _RowBuilder(unit, jsons, problems, deadline)
     for m in maps:
@@ -434,6 +434,12 @@ class _RowBuilder:
         key = self.ds.key
         return [p if p.dataset else Problem(p.path, p.code, p.reason, p.remedy, p.level, key, p.stage)
                 for p in self.problems + self.resolver.problems]
+
+
+def _part_files_exist(unit: _Unit) -> bool:
+    """The previous part can be kept only if its files are still there (someone may have deleted them)."""
+    part = unit.prev_part
+    return all(os.path.isfile(os.path.join(unit.store, f)) for f in (part.maps, part.problems) if f)
 
 
 def _part_name(unit: _Unit) -> str:
@@ -627,9 +633,21 @@ class _Previous:
     def load(cls, store: Path, head: Head) -> "_Previous":
         if not head.catalog:
             return cls()
-        cat = Catalog(store, head)
-        tables = {n: cat.sql(f"SELECT * FROM {n}").to_pylist() for n in ("datasets", "participants", "problems")}
-        return cls(cat.manifest().parts, tables["datasets"], tables["participants"], tables["problems"], store)
+        # the small tables straight from their files: no view over the parts, which may be damaged
+        # (a re-index is how a damaged store is mended)
+        snap = store / head.catalog
+        tables = {}
+        for name in ("datasets", "participants", "problems"):
+            f = snap / f"{name}.parquet"
+            try:
+                tables[name] = pq.read_table(f).to_pylist() if f.exists() else []
+            except (OSError, pa.ArrowException):
+                tables[name] = []  # unreadable: the crawl rebuilds what it covers
+        try:
+            parts = CatalogManifest.read(store, head.catalog).parts
+        except (OSError, MapstoreError):
+            parts = []
+        return cls(parts, tables["datasets"], tables["participants"], tables["problems"], store)
 
 
 def index(

@@ -378,26 +378,39 @@ class Catalog:
 
             con = duckdb.connect(":memory:")
             con.execute("SET parquet_metadata_cache = true")
-            views = _ViewBuilder(con, self)
-            manifest = self.manifest()
-            views.files("maps", MAPS_SCHEMA, [self.path / p.maps for p in manifest.parts],
-                        current=all(p.schema == MAPS_SCHEMA_ID for p in manifest.parts))
-            snap = self.path / self.head.catalog if self.head.catalog else None
-            for name, schema in (("datasets", DATASETS_SCHEMA), ("problems", PROBLEMS_SCHEMA),
-                                 ("participants", PARTICIPANTS_SCHEMA)):
-                f = snap / f"{name}.parquet" if snap else None
-                if f is not None and not f.exists() and name != "participants":
-                    self._raise_missing(f)
-                views.files(name, schema, [f] if f is not None and f.exists() else [],
-                            current=name != "participants", loose=name == "participants")
-            labels = self.head.labels and self.path / self.head.labels.table
-            views.files("labels", LABELS_SCHEMA, [labels] if labels else [])
-            self._feature_views(views)
+            try:
+                self._views(con)
+            except duckdb.IOException as exc:  # a view binds to its files: a part may be gone
+                self._io_error(exc)
             con.execute(f"SET allowed_directories = [{_sql_str(str(self.path) + os.sep)}]")
             con.execute("SET enable_external_access = false")
             con.execute("SET lock_configuration = true")
             self._con = con
         return self._con
+
+    def _io_error(self, exc: Exception) -> None:
+        missing = _missing_file(str(exc))
+        if missing is not None:
+            self._raise_missing(Path(missing))
+        raise StoreCorrupt(f"{self.path}: cannot read the catalog ({exc}); re-run 'mapstore index'") from None
+
+    def _views(self, con) -> None:
+        """One view per table, reading the snapshot's files at query time."""
+        views = _ViewBuilder(con, self)
+        manifest = self.manifest()
+        views.files("maps", MAPS_SCHEMA, [self.path / p.maps for p in manifest.parts],
+                    current=all(p.schema == MAPS_SCHEMA_ID for p in manifest.parts))
+        snap = self.path / self.head.catalog if self.head.catalog else None
+        for name, schema in (("datasets", DATASETS_SCHEMA), ("problems", PROBLEMS_SCHEMA),
+                             ("participants", PARTICIPANTS_SCHEMA)):
+            f = snap / f"{name}.parquet" if snap else None
+            if f is not None and not f.exists() and name != "participants":
+                self._raise_missing(f)
+            views.files(name, schema, [f] if f is not None and f.exists() else [],
+                        current=name != "participants", loose=name == "participants")
+        labels = self.head.labels and self.path / self.head.labels.table
+        views.files("labels", LABELS_SCHEMA, [labels] if labels else [])
+        self._feature_views(views)
 
     def _feature_views(self, views: "_ViewBuilder") -> None:
         """Views over every feature set: rows (``features``), failures, copies, and one row per set."""
@@ -432,13 +445,13 @@ class Catalog:
 
     def sql(self, query: str) -> pa.Table:
         """Run one read-only SQL statement over the catalog views and return an Arrow table."""
-        return self._run(query).to_arrow_table()
+        return self._run(query, lambda rel: rel.to_arrow_table())
 
     def stream(self, query: str, batch_rows: int = 65536) -> pa.RecordBatchReader:
         """Like :meth:`sql`, as a stream of Arrow record batches (for results larger than memory)."""
-        return self._run(query).to_arrow_reader(batch_rows)
+        return self._run(query, lambda rel: rel.to_arrow_reader(batch_rows))
 
-    def _run(self, query: str):
+    def _run(self, query: str, fetch):
         import duckdb
 
         con = self.connection()
@@ -454,12 +467,9 @@ class Catalog:
                              f"got a {kind.name} statement; the catalog is changed by "
                              "'mapstore index', 'features' and 'labels'")
         try:
-            return con.sql(query)
+            return fetch(con.sql(query))  # DuckDB runs the query (and opens the files) in fetch
         except duckdb.IOException as exc:
-            missing = _missing_file(str(exc))
-            if missing is not None:
-                self._raise_missing(Path(missing))
-            raise StoreCorrupt(f"{self.path}: cannot read the catalog ({exc}); re-run 'mapstore index'") from None
+            self._io_error(exc)
         except duckdb.Error as exc:
             raise QueryError(f"{exc}\n(views: {', '.join(self.TABLES)}, features, feature_sets, "
                              f"feature_problems, feature_copies; see 'mapstore sql --store "

@@ -178,3 +178,20 @@ def test_index_on_a_dask_cluster_equals_a_local_run_even_when_a_worker_dies(tmp_
     listed = {os.path.basename(p["maps"]) for p in _parts(store)} | \
         {os.path.basename(p["problems"]) for p in _parts(store) if p["problems"]}
     assert {f.name for f in (store / "catalog" / "parts").iterdir()} == listed
+
+
+def test_a_deleted_part_is_written_again_not_kept(tmp_path):
+    # someone removed a part file by hand: the store reports it, and a re-index rebuilds that part
+    root = _tree(tmp_path)
+    store = tmp_path / "store"
+    mapstore.index([root], store, jobs=1, progress=False)
+    want = _rows(store)
+    beta = [p for p in _parts(store) if p["dataset"] == "beta"][0]
+    (store / beta["maps"]).unlink()
+    from mapstore.errors import StoreCorrupt
+
+    with pytest.raises(StoreCorrupt, match="re-run 'mapstore index'"):
+        _rows(store)
+    r = mapstore.index([root], store, jobs=1, progress=False)
+    assert r.changed == 0 and r.new == 8  # beta's maps read again (their previous rows are gone)
+    assert _rows(store) == want
