@@ -508,7 +508,9 @@ def _check_copies(fs, maps, add, report) -> None:
 
 
 def _check_features(store, fs, maps, min_coverage, add, report, pictures, max_rows) -> None:
-    rows = fs.rows.to_pylist()
+    # the columns the checks read (not the sketches, which are most of a row's bytes)
+    rows = store.sql("SELECT map_id, coverage, p_clipped, vmin, vmax, stat_out FROM features "
+                     f"WHERE feature_set = '{fs.name}' ORDER BY map_id").to_pylist()
     stat_of = {m["map_id"]: m for m in maps}
     for p in store.sql(f"SELECT * FROM feature_problems WHERE feature_set = '{fs.name}'").to_pylist():
         add(Finding("error", "features", f"feature-{p['code']}", p["map_id"], f"{p['path']}: {p['reason']}",

@@ -179,9 +179,16 @@ def _quaternion_affine(b: float, c: float, d: float, pixdim: np.ndarray,
     return out
 
 
+# no entry of a brain map's affine comes near a kilometre: larger ones are damaged headers (and
+# overflow the voxel-size norms)
+_AFFINE_LIMIT_MM = 1e6
+
+
 def _is_usable(aff: np.ndarray) -> bool:
     m = aff[:3, :3]
-    return bool(np.all(np.isfinite(aff)) and abs(np.linalg.det(m)) > 1e-12)
+    if not (np.all(np.isfinite(aff)) and np.abs(aff).max() < _AFFINE_LIMIT_MM):
+        return False
+    return bool(abs(np.linalg.det(m)) > 1e-12)
 
 
 def _text(raw: bytes) -> str:
@@ -324,7 +331,8 @@ def _best_affine(path: str, hdr, pixdim: np.ndarray):
             raise HeaderError(path, "singular-affine", "no sform or qform and pixdim has zero voxel sizes",
                               "set a valid sform or qform in the header")
         return affine, "pixdim", q_aff, s_aff, warnings
-    raise HeaderError(path, "singular-affine", "the voxel-to-world affine is singular (zero or non-finite rows)",
+    raise HeaderError(path, "singular-affine", "the voxel-to-world affine is singular or out of range (zero or "
+                      "non-finite rows, or entries beyond 1e6 mm)",
                       "fix the sform/qform of the image, for example with nibabel's set_sform")
 
 
