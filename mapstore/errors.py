@@ -20,6 +20,7 @@ __all__ = [
     "StoreUnwritable",
     "StaleSnapshot",
     "StoreFull",
+    "SchedulerError",
     "QueryError",
     "RulesError",
     "VocabularyError",
@@ -103,6 +104,10 @@ class VocabularyError(MapstoreError, ValueError):
 
 class GridError(MapstoreError, ValueError):
     """A target grid or mask is invalid or cannot be built."""
+
+
+class SchedulerError(MapstoreError, ConnectionError):
+    """A Dask scheduler was given but cannot be used (not installed, or not reachable)."""
 
 
 class FeatureError(MapstoreError, ValueError):

@@ -12,16 +12,12 @@ import sys
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from typing import Any, Callable, Iterator, Sequence, TypeVar
 
-from .errors import MapstoreError, ParameterError
+from .errors import ParameterError, SchedulerError
 
 __all__ = ["process_pool", "run", "dask_client", "die_once_for_tests"]
 
 T = TypeVar("T")
 R = TypeVar("R")
-
-
-class SchedulerError(MapstoreError):
-    """The Dask scheduler could not be used."""
 
 
 @contextlib.contextmanager
