@@ -192,28 +192,32 @@ def check_store(store, features: str | None = None, *, min_coverage: float = 0.8
         over the set).
     """
     store.catalog.require_catalog()
-    # the columns the checks read (not the sidecar metadata, which is most of a row's bytes)
-    maps = store.sql(f"SELECT {', '.join(_CHECK_COLUMNS)} FROM maps").to_pylist()
     fs = None
     if store.feature_sets():
         fs = store.features(features)
     report = CheckReport(str(store.path), fs.name if fs else None)
     add = report.findings.append
     _check_problems(store, add)
-    _check_grids(maps, add, report)
-    _check_space(maps, add)
-    _check_stats(maps, add)
-    _check_metadata(store, maps, add)
+    # catalog-wide checks are SQL aggregates: the maps table is never read into Python whole
+    _check_grids(store, add, report)
+    _check_space(store, add)
+    _check_stats(store, add)
+    _check_metadata(store, add)
     if fs is not None:
+        # the few columns the feature checks need, of the set's maps only
+        maps = store.sql(f"SELECT {', '.join('m.' + c for c in _SET_COLUMNS)} FROM maps m JOIN features f "
+                         f"USING (map_id) WHERE f.feature_set = {_lit(fs.name)}").to_pylist()
         _check_features(store, fs, maps, min_coverage, add, report, pictures, max_rows_for_pictures)
         _check_copies(fs, maps, add, report)
         _check_concepts(store, fs, maps, add, report, pictures, min_agreement)
     return report
 
 
-_CHECK_COLUMNS = ("map_id", "dataset", "relpath", "sub", "task", "space", "stat", "study", "site", "lab",
-                  "participant", "sha256", "grid_id", "shape", "affine", "voxel_size", "orientation", "n_volumes",
-                  "intent_code", "intent_name", "dof", "entities")
+_SET_COLUMNS = ("map_id", "dataset", "relpath", "study", "participant", "entities", "stat")
+
+
+def _lit(text: str) -> str:
+    return "'" + str(text).replace("'", "''") + "'"
 
 
 def _check_problems(store, add) -> None:
@@ -222,43 +226,43 @@ def _check_problems(store, add) -> None:
                     p["reason"], p["remedy"]))
 
 
-def _check_grids(maps, add, report) -> None:
-    by_grid: dict[str, list[dict]] = defaultdict(list)
-    for m in maps:
-        by_grid[m["grid_id"]].append(m)
+def _check_grids(store, add, report) -> None:
+    grids = store.sql("SELECT grid_id, any_value(shape) AS shape, any_value(voxel_size) AS voxel_size, "
+                      "any_value(orientation) AS orientation, any_value(affine) AS affine, count(*) AS n, "
+                      "list(DISTINCT dataset ORDER BY dataset) AS datasets FROM maps GROUP BY grid_id "
+                      "ORDER BY n DESC, grid_id").to_pylist()
     rows = []
-    for gid, ms in sorted(by_grid.items(), key=lambda kv: -len(kv[1])):
-        m0 = ms[0]
-        rows.append({"grid_id": gid, "shape": "x".join(map(str, m0["shape"][:3])),
-                     "voxel_mm": "x".join(f"{v:g}" for v in np.round(m0["voxel_size"], 3)),
-                     "orientation": m0["orientation"], "maps": len(ms),
-                     "datasets": ", ".join(sorted({m["dataset"] for m in ms}))})
-        aff = np.reshape(m0["affine"], (4, 4))[:3, :3]
+    for g in grids:
+        gid, n = g["grid_id"], g["n"]
+        rows.append({"grid_id": gid, "shape": "x".join(map(str, g["shape"][:3])),
+                     "voxel_mm": "x".join(f"{v:g}" for v in np.round(g["voxel_size"], 3)),
+                     "orientation": g["orientation"], "maps": n, "datasets": ", ".join(g["datasets"])})
+        aff = np.reshape(g["affine"], (4, 4))[:3, :3]
         if (np.abs(aff) > 1e-6).sum() > 3:
-            add(Finding("info", "grid", "oblique-grid", gid, f"{len(ms)} map(s) on an oblique grid "
+            add(Finding("info", "grid", "oblique-grid", gid, f"{n} map(s) on an oblique grid "
                         f"({rows[-1]['shape']}); they take the general (slower) interpolation path"))
-        vs = np.asarray(m0["voxel_size"])
+        vs = np.asarray(g["voxel_size"])
         if vs.max() / vs.min() > 1.01:
             add(Finding("info", "grid", "anisotropic-voxels", gid,
-                        f"{len(ms)} map(s) with voxels {rows[-1]['voxel_mm']} mm"))
+                        f"{n} map(s) with voxels {rows[-1]['voxel_mm']} mm"))
     report.tables["grids"] = pa.Table.from_pylist(rows)
-    per_ds: dict[str, Counter] = defaultdict(Counter)
-    for m in maps:
-        per_ds[m["dataset"]][m["grid_id"]] += 1
-    for ds, counts in per_ds.items():
-        if len(counts) > 1:
-            add(Finding("warning", "grid", "mixed-grids", ds,
-                        f"dataset {ds} mixes {len(counts)} grids ({', '.join(f'{g} x{n}' for g, n in counts.most_common())})",
-                        "fine for mapstore (every map is resampled), but check the models were fit alike"))
-    multi: dict[str, list[dict]] = defaultdict(list)
-    for m in maps:
-        if m["n_volumes"] and m["n_volumes"] > 1:
-            multi[m["dataset"]].append(m)
-    for ds, ms in sorted(multi.items()):
-        kinds = Counter(f"stat-{m['stat']}" for m in ms)
-        add(Finding("info", "grid", "multi-volume", ds,
-                    f"{len(ms)} map(s) hold several volumes ({', '.join(f'{k} x{n}' for k, n in sorted(kinds.items()))}"
-                    f"; e.g. {ms[0]['relpath']}, {ms[0]['n_volumes']} volumes): an F contrast's effect has one "
+    mixed = store.sql("SELECT dataset, list(struct_pack(g := grid_id, n := n) ORDER BY n DESC, grid_id) AS grids "
+                      "FROM (SELECT dataset, grid_id, count(*) AS n FROM maps GROUP BY ALL) GROUP BY dataset "
+                      "HAVING count(*) > 1 ORDER BY dataset").to_pylist()
+    for r in mixed:
+        ds = r["dataset"]
+        listed = ", ".join(f"{x['g']} x{x['n']}" for x in r["grids"])
+        add(Finding("warning", "grid", "mixed-grids", ds,
+                    f"dataset {ds} mixes {len(r['grids'])} grids ({listed})",
+                    "fine for mapstore (every map is resampled), but check the models were fit alike"))
+    multi = store.sql("SELECT dataset, list(stat ORDER BY relpath) AS stats, min(relpath) AS example, "
+                      "arg_min(n_volumes, relpath) AS example_volumes, count(*) AS n FROM maps "
+                      "WHERE n_volumes > 1 GROUP BY dataset ORDER BY dataset").to_pylist()
+    for r in multi:
+        kinds = Counter(f"stat-{s}" for s in r["stats"])
+        add(Finding("info", "grid", "multi-volume", r["dataset"],
+                    f"{r['n']} map(s) hold several volumes ({', '.join(f'{k} x{n}' for k, n in sorted(kinds.items()))}"
+                    f"; e.g. {r['example']}, {r['example_volumes']} volumes): an F contrast's effect has one "
                     "volume per contrast row, a residual map one per scan; they are indexed and left out of "
                     "feature sets", "nothing to do; split a file into 3-D maps if you need its volumes"))
 
@@ -266,8 +270,8 @@ def _check_grids(maps, add, report) -> None:
 _MNI_BRAIN_BOX = (np.array([-78.0, -112.0, -72.0]), np.array([78.0, 76.0, 86.0]))  # mm, common practice
 
 
-def _check_space(maps, add) -> None:
-    spaces = Counter(m["space"] for m in maps)
+def _check_space(store, add) -> None:
+    spaces = {r["space"]: r["n"] for r in store.sql("SELECT space, count(*) AS n FROM maps GROUP BY space").to_pylist()}
     named = {s for s in spaces if s}
     if len(named) > 1:
         add(Finding("warning", "space", "several-spaces", "catalog",
@@ -279,31 +283,34 @@ def _check_space(maps, add) -> None:
                     f"{spaces[None]} map(s) have no space- entity; they are taken to be in the target's space",
                     "add space-<label> to the file names, or a name rule that sets it"))
     lo_b, hi_b = _MNI_BRAIN_BOX
-    seen: set[str] = set()
-    for m in maps:
-        if m["grid_id"] in seen:
-            continue
-        seen.add(m["grid_id"])
-        aff = np.reshape(m["affine"], (4, 4))
-        shape = np.asarray(m["shape"][:3])
+    grids = store.sql("SELECT grid_id, any_value(affine) AS affine, any_value(shape) AS shape, min(relpath) AS "
+                      "example, count(*) AS n FROM maps GROUP BY grid_id ORDER BY grid_id").to_pylist()
+    for g in grids:
+        aff = np.reshape(g["affine"], (4, 4))
+        shape = np.asarray(g["shape"][:3])
         corners = np.array([[i, j, k, 1] for i in (0, shape[0] - 1) for j in (0, shape[1] - 1)
                             for k in (0, shape[2] - 1)]) @ aff.T
         lo, hi = corners[:, :3].min(axis=0), corners[:, :3].max(axis=0)
         overlap = np.prod(np.clip(np.minimum(hi, hi_b) - np.maximum(lo, lo_b), 0, None)) / np.prod(hi_b - lo_b)
-        n = sum(1 for x in maps if x["grid_id"] == m["grid_id"])
+        n = g["n"]
         if overlap < 0.05:
-            add(Finding("error", "space", "outside-mni-brain", m["grid_id"],
-                        f"{n} map(s) (e.g. {m['relpath']}) have a field of view that misses the MNI brain "
+            add(Finding("error", "space", "outside-mni-brain", g["grid_id"],
+                        f"{n} map(s) (e.g. {g['example']}) have a field of view that misses the MNI brain "
                         f"box: world x {lo[0]:.0f}..{hi[0]:.0f}, y {lo[1]:.0f}..{hi[1]:.0f}, z {lo[2]:.0f}..{hi[2]:.0f} mm",
                         "the affine is probably wrong or the map is in native space; fix the header"))
         elif overlap < 0.8:
-            add(Finding("warning", "space", "partial-field-of-view", m["grid_id"],
-                        f"{n} map(s) (e.g. {m['relpath']}) cover {overlap:.0%} of the MNI brain box",
+            add(Finding("warning", "space", "partial-field-of-view", g["grid_id"],
+                        f"{n} map(s) (e.g. {g['example']}) cover {overlap:.0%} of the MNI brain box",
                         "expected for partial acquisitions; set a coverage threshold when exporting"))
 
 
-def _check_stats(maps, add) -> None:
-    for m in maps:
+def _check_stats(store, add) -> None:
+    known = ", ".join(_lit(k) for k in sorted(KNOWN_STATS))
+    intents = ", ".join(str(c) for c in INTENT_STATS)
+    # only the maps that may be flagged come back from the catalog
+    for m in store.sql("SELECT map_id, relpath, stat, intent_code, intent_name, dof FROM maps "
+                       f"WHERE stat NOT IN ({known}) OR intent_code IN ({intents}) OR (stat = 't' AND dof IS NULL) "
+                       "ORDER BY dataset, relpath").to_pylist():
         stat = m["stat"]
         if stat not in KNOWN_STATS:
             add(Finding("warning", "stat", "unknown-stat", m["map_id"],
@@ -322,40 +329,34 @@ def _check_stats(maps, add) -> None:
                         "add DegreesOfFreedom to the sidecar to allow t-to-z conversion"))
 
 
-def _check_metadata(store, maps, add) -> None:
-    parts = {(p["dataset"], p["sub"]) for p in store.sql("SELECT dataset, sub FROM participants").to_pylist()}
-    have_table = {d for d, _ in parts}
-    missing: dict[str, set[str]] = defaultdict(set)
-    for m in maps:
-        if m["sub"] is not None and m["dataset"] in have_table and (m["dataset"], m["sub"]) not in parts:
-            missing[m["dataset"]].add(m["sub"])
-    for ds, subs in missing.items():
-        add(Finding("warning", "metadata", "subject-not-in-participants", ds,
-                    f"{len(subs)} subject(s) with maps are missing from participants.tsv (e.g. sub-{sorted(subs)[0]})",
+def _check_metadata(store, add) -> None:
+    for r in store.sql("SELECT m.dataset, list(DISTINCT m.sub ORDER BY m.sub) AS subs FROM maps m "
+                       "WHERE m.sub IS NOT NULL AND m.dataset IN (SELECT dataset FROM participants) "
+                       "AND NOT EXISTS (SELECT 1 FROM participants p WHERE p.dataset = m.dataset AND p.sub = m.sub) "
+                       "GROUP BY m.dataset ORDER BY m.dataset").to_pylist():
+        subs = r["subs"]
+        add(Finding("warning", "metadata", "subject-not-in-participants", r["dataset"],
+                    f"{len(subs)} subject(s) with maps are missing from participants.tsv (e.g. sub-{subs[0]})",
                     "add them to participants.tsv"))
     for field_, code in (("site", "no-site"), ("lab", "no-lab")):
-        n = Counter(m["dataset"] for m in maps if m[field_] is None)
-        for ds, k in n.items():
+        for r in store.sql(f"SELECT dataset, count(*) AS k FROM maps WHERE {field_} IS NULL GROUP BY dataset "
+                           "ORDER BY dataset").to_pylist():
+            ds, k = r["dataset"], r["k"]
             add(Finding("info", "metadata", code, ds, f"{k} map(s) of {ds} have no {field_}",
                         f"set it with an origins file (mapstore index --origins) to group by {field_}"))
-    dofs: dict[tuple, set] = defaultdict(set)
-    for m in maps:
-        if m["stat"] == "t" and m["dof"] is not None:
-            dofs[(m["dataset"], m["task"])].add(m["dof"])
-    for (ds, task), vals in dofs.items():
-        if len(vals) > 1:
-            add(Finding("info", "metadata", "dof-varies", f"{ds}/{task}",
-                        f"t maps of task {task} have {len(vals)} different DOF ({', '.join(f'{v:g}' for v in sorted(vals))})",
-                        "expected when subjects lost runs; check if not"))
-    by_sha: dict[str, list[dict]] = defaultdict(list)
-    for m in maps:
-        by_sha[m["sha256"]].append(m)
-    for sha, ms in by_sha.items():
-        if len(ms) > 1:
-            where = ", ".join(f"{m['dataset']}:{m['relpath']}" for m in ms[:3])
-            add(Finding("warning", "provenance", "duplicate-file", sha[:16],
-                        f"{len(ms)} maps are byte-identical ({where})",
-                        "a map copied between studies leaks in splits; the export refuses such splits"))
+    for r in store.sql("SELECT dataset, task, list(DISTINCT dof ORDER BY dof) AS vals FROM maps "
+                       "WHERE stat = 't' AND dof IS NOT NULL GROUP BY dataset, task "
+                       "HAVING count(DISTINCT dof) > 1 ORDER BY dataset, task").to_pylist():
+        ds, task, vals = r["dataset"], r["task"], r["vals"]
+        add(Finding("info", "metadata", "dof-varies", f"{ds}/{task}",
+                    f"t maps of task {task} have {len(vals)} different DOF ({', '.join(f'{v:g}' for v in vals)})",
+                    "expected when subjects lost runs; check if not"))
+    for r in store.sql("SELECT sha256, count(*) AS n, list(dataset || ':' || relpath ORDER BY dataset, relpath) "
+                       "AS places FROM maps GROUP BY sha256 HAVING count(*) > 1 ORDER BY sha256").to_pylist():
+        where = ", ".join(r["places"][:3])
+        add(Finding("warning", "provenance", "duplicate-file", r["sha256"][:16],
+                    f"{r['n']} maps are byte-identical ({where})",
+                    "a map copied between studies leaks in splits; the export refuses such splits"))
 
 
 _MAPS_PER_STUDY = 200  # rows read per study and concept for the means
