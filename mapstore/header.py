@@ -179,7 +179,7 @@ def _quaternion_affine(b: float, c: float, d: float, pixdim: np.ndarray,
     return out
 
 
-# no entry of a brain map's affine comes near a kilometre: larger ones are damaged headers (and
+# no entry of a statistic map's affine comes near a kilometre: larger ones are damaged headers (and
 # overflow the voxel-size norms)
 _AFFINE_LIMIT_MM = 1e6
 
