@@ -828,11 +828,6 @@ class FeatureSet:
         if map_ids is None:
             map_ids = self.map_ids
         map_ids = list(map_ids)
-        missing = [m for m in map_ids if m not in self._pos]
-        if missing:
-            raise FeatureError(f"{len(missing)} map(s) have no row in feature set {self.name!r} (first: "
-                               f"{missing[0]}); build it with 'mapstore features --name {self.name}' or "
-                               "select maps that have rows")
         return self._fill(map_ids, np.empty((len(map_ids), self.n_voxels), dtype=np.float32))
 
     def locate(self, map_ids) -> tuple[np.ndarray, np.ndarray]:
@@ -841,7 +836,8 @@ class FeatureSet:
         missing = [m for m in map_ids if m not in self._pos]
         if missing:
             raise FeatureError(f"{len(missing)} map(s) have no row in feature set {self.name!r} (first: "
-                               f"{missing[0]}); build it with 'mapstore features --name {self.name}'")
+                               f"{missing[0]}); build it with 'mapstore features --name {self.name}' or "
+                               "select maps that have rows")
         pos = np.array([self._pos[m] for m in map_ids], dtype=np.int64)
         shard_col = self._column("shard").to_numpy()[pos] if len(pos) else np.array([])
         row_col = self._column("row").to_numpy()[pos] if len(pos) else np.array([], dtype=np.int64)
