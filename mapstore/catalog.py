@@ -47,7 +47,17 @@ from .runner import die_once_for_tests, run as run_units
 from .errors import HeaderError, MapstoreError, NoDatasetsFound, ParameterError, StoreFull
 from .labels import refresh_labels
 from .hashing import ReadDeadline, ReadTimeout, digest_file
-from .header import NIFTI1_SIZE, NIFTI2_SIZE, HeaderFacts, header_prefix, parse_header
+from .header import (
+    NIFTI1_SIZE,
+    NIFTI2_SIZE,
+    HeaderFacts,
+    expected_vertices,
+    header_prefix,
+    parse_header,
+    read_surface_header,
+    surface_format,
+    surface_grid_id,
+)
 from .store import (
     DATASETS_SCHEMA,
     MAPS_SCHEMA,
@@ -73,11 +83,13 @@ __all__ = ["IndexReport", "index", "map_id_for", "probe_file"]
 
 _N1_SIZES = (NIFTI1_SIZE.to_bytes(4, "little"), NIFTI1_SIZE.to_bytes(4, "big"))
 
-_ENTITY_COLUMNS = ("sub", "ses", "task", "acq", "run", "rec", "space", "res", "desc", "contrast", "stat")
+_ENTITY_COLUMNS = ("sub", "ses", "task", "acq", "run", "rec", "space", "res", "den", "hemi", "desc", "contrast",
+                   "stat")
 _HEADER_COLUMNS = ("sha256", "nbytes", "mtime_ns", "nifti_version", "endianness", "shape", "n_volumes",
                    "dtype", "bitpix", "vox_offset", "scl_slope", "scl_inter", "intent_code",
                    "intent_name", "intent_p1", "qform_code", "sform_code", "affine_source", "affine",
-                   "voxel_size", "orientation", "grid_id", "descrip", "header_warnings")
+                   "voxel_size", "orientation", "grid_id", "descrip", "header_warnings", "geometry",
+                   "n_vertices", "structures")
 
 
 @dataclass
@@ -166,8 +178,57 @@ def _header_columns(facts: HeaderFacts) -> dict[str, Any]:
         "affine_source": facts.affine_source, "affine": list(facts.affine),
         "voxel_size": list(facts.voxel_size), "orientation": facts.orientation,
         "grid_id": facts.grid_id, "descrip": facts.descrip, "header_warnings": list(facts.warnings),
-        "_data_nbytes": facts.data_nbytes,
+        "_data_nbytes": facts.data_nbytes, "geometry": "volume", "n_vertices": None, "structures": None,
     }
+
+
+_SIDE = {"CortexLeft": "L", "CortexRight": "R", "CORTEX_LEFT": "L", "CORTEX_RIGHT": "R"}
+
+
+def probe_surface_file(path: str, entities: dict[str, str], progress=None
+                       ) -> tuple[dict[str, Any], str, int] | Problem:
+    """Hash one GIFTI or CIFTI-2 file and read its header facts (no value decoded).
+
+    Returns header columns (with ``_hemi``, the hemisphere the file says it holds), the SHA-256
+    and the size, or a Problem.
+    """
+    try:
+        dig = digest_file(path, progress=progress)
+        facts = read_surface_header(path)
+    except FileNotFoundError:
+        return Problem(path, "missing-file", "file vanished during the crawl", "index again")
+    except HeaderError as exc:
+        return Problem(path, exc.code, exc.reason, exc.remedy, stage="header")
+    except OSError as exc:
+        return Problem(path, "unreadable", f"cannot read file ({exc.strerror})", "check permissions")
+    hemi, space, den = entities.get("hemi"), entities.get("space"), entities.get("den")
+    warnings = list(facts.warnings)
+    side = _SIDE.get(facts.structure or "")
+    if facts.format == "gifti":
+        want = expected_vertices(space, den)
+        if want is not None and facts.n_vertices != want:
+            warnings.append(f"{facts.n_vertices} vertices, but space-{space}{f'_den-{den}' if den else ''} "
+                            f"has {want} per hemisphere")
+        if hemi and side and hemi != side:
+            warnings.append(f"named hemi-{hemi}, but the file says AnatomicalStructurePrimary={facts.structure}")
+        if not hemi and side is None:
+            return Problem(path, "unknown-hemisphere", "a GIFTI map with no hemi entity and no "
+                           "AnatomicalStructurePrimary: its hemisphere is unknown",
+                           "name it with hemi-L or hemi-R (…_hemi-L_space-fsaverage5_…_statmap.func.gii)",
+                           stage="header")
+    cols = {
+        "nifti_version": facts.nifti_version, "endianness": facts.endianness, "shape": list(facts.shape),
+        "n_volumes": facts.n_volumes, "dtype": facts.dtype, "bitpix": facts.bitpix, "vox_offset": facts.vox_offset,
+        "scl_slope": facts.scl_slope, "scl_inter": facts.scl_inter, "intent_code": facts.intent_code,
+        "intent_name": facts.intent_name, "intent_p1": None, "qform_code": None, "sform_code": None,
+        "affine_source": None, "affine": None, "voxel_size": None, "orientation": None,
+        "grid_id": surface_grid_id(facts.geometry_key, space, den, None if facts.format == "cifti" else
+                                   hemi or side),
+        "descrip": facts.descrip, "header_warnings": warnings,
+        "geometry": "surface" if facts.format == "gifti" else "grayordinates",
+        "n_vertices": facts.n_vertices, "structures": facts.structure, "_hemi": side,
+    }
+    return cols, dig.sha256, dig.nbytes
 
 
 def _to_float(v: Any) -> float | None:
@@ -253,6 +314,8 @@ def _previous_rows(unit: _Unit) -> pa.Table | None:
     except (OSError, pa.ArrowException):
         return None  # not reusable: the files are read again
     t = t.filter(pc.equal(t["dataset"], unit.ds.key))
+    geo = t.schema.get_field_index("geometry")
+    t = t.set_column(geo, "geometry", pc.fill_null(t["geometry"], "volume"))  # parts from before surfaces
     if unit.top is not None and unit.prev_part is None:
         first = pc.list_element(pc.split_pattern(t["relpath"], "/", max_splits=1), 0)
         keep = pc.is_in(first, pa.array(unit.top, pa.string()))
@@ -335,7 +398,8 @@ class _RowBuilder:
         self.prev_table = _previous_rows(unit)
         pt = self.prev_table
         self.pcol = {c: pt[c].to_pylist() for c in ("relpath", "nbytes", "mtime_ns", "sha256", "intent_code",
-                                                    "intent_p1", "descrip")} if pt is not None and pt.num_rows else {}
+                                                    "intent_p1", "descrip", "geometry", "structures")
+                     } if pt is not None and pt.num_rows else {}
         self.prev = {r: i for i, r in enumerate(self.pcol.get("relpath", []))}
         self.cache: dict[bytes, dict[str, Any]] = {}
         self.rows: list[tuple] = []
@@ -357,10 +421,14 @@ class _RowBuilder:
             self.hidx.append(-1 - old)  # a previous row: resolved against the previous table
             self.unchanged += 1
             return ({"intent_code": pcol["intent_code"][old], "intent_p1": pcol["intent_p1"][old],
-                     "descrip": pcol["descrip"][old]}, pcol["sha256"][old], pcol["nbytes"][old])
+                     "descrip": pcol["descrip"][old], "geometry": pcol["geometry"][old],
+                     "_hemi": _SIDE.get(pcol["structures"][old] or "")}, pcol["sha256"][old], pcol["nbytes"][old])
         try:
             with self.deadline.armed():
-                res = probe_file(m.path, self.cache, self.deadline.progress)
+                if surface_format(m.path):
+                    res = probe_surface_file(m.path, m.entities, self.deadline.progress)
+                else:
+                    res = probe_file(m.path, self.cache, self.deadline.progress)
         except ReadTimeout:
             res = Problem(m.path, "read-timeout", f"reading the file made no progress for "
                           f"{self.unit.read_timeout:g} s (a stalled network or FUSE mount, or a file fetched on "
@@ -383,8 +451,8 @@ class _RowBuilder:
         self.hidx.append(pos)
         return res
 
-    def _model_mask(self, m) -> tuple[str | None, str | None]:
-        rel = m.extras.get("mask") or self.model.mask_for(m.relpath, m.entities)
+    def _model_mask(self, m, surface: bool = False) -> tuple[str | None, str | None]:
+        rel = m.extras.get("mask") or self.model.mask_for(m.relpath, m.entities, surface)
         if rel is not None and rel not in self.mask_sha:
             self.mask_sha[rel] = _mask_digest(self.ds, rel, self.problems)
         sha = self.mask_sha.get(rel) if rel else None
@@ -410,17 +478,21 @@ class _RowBuilder:
         lab = origin["lab"]
         if lab is None and meta.get("InstitutionName") is not None:
             lab = str(meta["InstitutionName"])
-        mask_rel, msha = self._model_mask(m)
+        volume = hdr.get("geometry") in (None, "volume")
+        # a volume's model mask is a NIfTI, a surface map's a GIFTI of its hemisphere (CIFTI: none)
+        mask_rel, msha = self._model_mask(m, not volume) if hdr.get("geometry") != "grayordinates" else (None, None)
         dof, dof_source = _degrees_of_freedom(m, meta, used, hdr, self.model, self.problems)
         get = ents.get
         row = {c: get(c) for c in _ENTITY_COLUMNS}
+        if not volume and row["hemi"] is None and hdr.get("_hemi"):
+            row["hemi"] = hdr["_hemi"]  # GIFTI's AnatomicalStructurePrimary, where the name has no hemi
         row.update(
             map_id=map_id_for(ds.key, m.relpath), dataset=ds.key, relpath=m.relpath,
             map_kind="contrast" if get("contrast") else "model", suffix=get("suffix"), extension=get("extension"),
             entities=json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")}, sort_keys=True),
             named_by=m.named_by, participant=origin["participant"], study=origin["study"], site=origin["site"],
             lab=lab, sha256=sha, nbytes=nbytes, mtime_ns=m.mtime_ns, dof=dof, dof_source=dof_source,
-            model_mask=mask_rel, model_mask_sha256=msha)
+            model_mask=mask_rel, model_mask_sha256=msha, linked_map=None)
         self.rows.append(_ROW_TUPLE(row))
 
     def table(self) -> pa.Table:
@@ -428,12 +500,33 @@ class _RowBuilder:
         rows = self.rows
         cols = dict(zip(_PER_ROW, (list(c) for c in zip(*rows)))) if rows else {c: [] for c in _PER_ROW}
         self.rows = []
+        cols["linked_map"] = link_hemispheres(cols["relpath"], cols["hemi"], cols["map_id"])
         return _assemble(cols, self.headers, self.hidx, self.sidecars, self.sidx, self.prev_table)
 
     def all_problems(self) -> list[Problem]:
         key = self.ds.key
         return [p if p.dataset else Problem(p.path, p.code, p.reason, p.remedy, p.level, key, p.stage)
                 for p in self.problems + self.resolver.problems]
+
+
+_HEMI_IN_NAME = re.compile(r"(?<=[_/])hemi-[LR](?=_)|^hemi-[LR](?=_)")
+
+
+def link_hemispheres(relpaths: list[str], hemis: list[str | None], map_ids: list[str]) -> list[str | None]:
+    """For each file, the map_id of the other hemisphere of the same map (names equal but for hemi-L/R).
+
+    >>> link_hemispheres(["s/a_hemi-L_x", "s/a_hemi-R_x", "s/b"], ["L", "R", None], ["1", "2", "3"])
+    ['2', '1', None]
+    """
+    by_key: dict[str, dict[str, int]] = {}
+    for i, (rel, hemi) in enumerate(zip(relpaths, hemis)):
+        if hemi in ("L", "R") and _HEMI_IN_NAME.search(rel):
+            by_key.setdefault(_HEMI_IN_NAME.sub("hemi-*", rel), {})[hemi] = i
+    out: list[str | None] = [None] * len(relpaths)
+    for pair in by_key.values():
+        if len(pair) == 2:
+            out[pair["L"]], out[pair["R"]] = map_ids[pair["R"]], map_ids[pair["L"]]
+    return out
 
 
 def _part_files_exist(unit: _Unit) -> bool:

@@ -201,6 +201,7 @@ def check_store(store, features: str | None = None, *, min_coverage: float = 0.8
     # catalog-wide checks are SQL aggregates: the maps table is never read into Python whole
     _check_grids(store, add, report)
     _check_space(store, add)
+    _check_surfaces(store, add, report)
     _check_stats(store, add)
     _check_metadata(store, add)
     if fs is not None:
@@ -229,7 +230,7 @@ def _check_problems(store, add) -> None:
 def _check_grids(store, add, report) -> None:
     grids = store.sql("SELECT grid_id, any_value(shape) AS shape, any_value(voxel_size) AS voxel_size, "
                       "any_value(orientation) AS orientation, any_value(affine) AS affine, count(*) AS n, "
-                      "list(DISTINCT dataset ORDER BY dataset) AS datasets FROM maps GROUP BY grid_id "
+                      f"list(DISTINCT dataset ORDER BY dataset) AS datasets FROM maps WHERE {_VOLUME} GROUP BY grid_id "
                       "ORDER BY n DESC, grid_id").to_pylist()
     rows = []
     for g in grids:
@@ -247,7 +248,7 @@ def _check_grids(store, add, report) -> None:
                         f"{n} map(s) with voxels {rows[-1]['voxel_mm']} mm"))
     report.tables["grids"] = pa.Table.from_pylist(rows)
     mixed = store.sql("SELECT dataset, list(struct_pack(g := grid_id, n := n) ORDER BY n DESC, grid_id) AS grids "
-                      "FROM (SELECT dataset, grid_id, count(*) AS n FROM maps GROUP BY ALL) GROUP BY dataset "
+                      f"FROM (SELECT dataset, grid_id, count(*) AS n FROM maps WHERE {_VOLUME} GROUP BY ALL) GROUP BY dataset "
                       "HAVING count(*) > 1 ORDER BY dataset").to_pylist()
     for r in mixed:
         ds = r["dataset"]
@@ -267,15 +268,49 @@ def _check_grids(store, add, report) -> None:
                     "feature sets", "nothing to do; split a file into 3-D maps if you need its volumes"))
 
 
+_VOLUME = "coalesce(geometry, 'volume') = 'volume'"  # rows indexed before surfaces have no geometry
+
+
+def _check_surfaces(store, add, report) -> None:
+    """Surface and grayordinate maps: their meshes, and hemispheres that have no partner."""
+    meshes = store.sql(f"SELECT grid_id, geometry, any_value(space) AS space, any_value(den) AS den, "
+                       "any_value(hemi) AS hemi, any_value(n_vertices) AS n_vertices, any_value(structures) AS "
+                       "structures, count(*) AS maps, string_agg(DISTINCT dataset, ', ' ORDER BY dataset) AS datasets "
+                       f"FROM maps WHERE NOT {_VOLUME} GROUP BY grid_id, geometry ORDER BY geometry, space, hemi, "
+                       "grid_id").to_pylist()
+    if not meshes:
+        return
+    report.tables["meshes"] = pa.Table.from_pylist(meshes)
+    for r in store.sql("SELECT dataset, hemi, count(*) AS n, min(relpath) AS example FROM maps WHERE geometry = "
+                       "'surface' AND linked_map IS NULL GROUP BY dataset, hemi ORDER BY dataset, hemi").to_pylist():
+        add(Finding("warning", "surface", "unpaired-hemisphere", r["dataset"],
+                    f"{r['n']} hemi-{r['hemi']} map(s) with no file for the other hemisphere (e.g. {r['example']}); "
+                    "in a surface set the other hemisphere is missing", "add the other hemisphere's file, named "
+                    "like this one but for hemi-L/hemi-R"))
+    for r in store.sql("SELECT hemi, count(DISTINCT grid_id) AS g, string_agg(DISTINCT coalesce(space, '?') || ' (' "
+                       "|| n_vertices || ' vertices)', ', ') AS meshes FROM maps WHERE geometry = 'surface' GROUP BY "
+                       "hemi HAVING count(DISTINCT grid_id) > 1 ORDER BY hemi").to_pylist():
+        add(Finding("info", "surface", "several-meshes", f"hemi-{r['hemi']}",
+                    f"hemi-{r['hemi']} maps on {r['g']} meshes ({r['meshes']})", "a surface set resamples "
+                    "fsaverage densities (nearest vertex on the sphere); other meshes need a mesh of their own"))
+    for r in store.sql("SELECT space, count(*) AS n, min(relpath) AS example FROM maps WHERE geometry = 'surface' "
+                       "AND ((space IS NULL AND n_vertices NOT IN (642, 2562, 10242, 40962, 163842)) OR NOT starts_with(space, "
+                       "'fsaverage')) GROUP BY space").to_pylist():
+        add(Finding("warning", "space", "surface-space", r["space"] or "(none)",
+                    f"{r['n']} surface map(s) in space {r['space'] or '(none)'} (e.g. {r['example']}): surface "
+                    "sets take fsaverage meshes", "resample them to fsaverage first, or give the mesh"))
+
+
 _MNI_BRAIN_BOX = (np.array([-78.0, -112.0, -72.0]), np.array([78.0, 76.0, 86.0]))  # mm, common practice
 
 
 def _check_space(store, add) -> None:
-    spaces = {r["space"]: r["n"] for r in store.sql("SELECT space, count(*) AS n FROM maps GROUP BY space").to_pylist()}
+    spaces = {r["space"]: r["n"] for r in store.sql(f"SELECT space, count(*) AS n FROM maps WHERE {_VOLUME} "
+                                                     "GROUP BY space").to_pylist()}
     named = {s for s in spaces if s}
     if len(named) > 1:
         add(Finding("warning", "space", "several-spaces", "catalog",
-                    f"maps in {len(named)} template spaces ({', '.join(f'{s} x{spaces[s]}' for s in sorted(named))})",
+                    f"volume maps in {len(named)} template spaces ({', '.join(f'{s} x{spaces[s]}' for s in sorted(named))})",
                     "resampling aligns grids, not templates: MNI152 variants differ by a few mm; "
                     "select one space, or accept the small misalignment"))
     if spaces.get(None):
@@ -284,7 +319,7 @@ def _check_space(store, add) -> None:
                     "add space-<label> to the file names, or a name rule that sets it"))
     lo_b, hi_b = _MNI_BRAIN_BOX
     grids = store.sql("SELECT grid_id, any_value(affine) AS affine, any_value(shape) AS shape, min(relpath) AS "
-                      "example, count(*) AS n FROM maps GROUP BY grid_id ORDER BY grid_id").to_pylist()
+                      f"example, count(*) AS n FROM maps WHERE {_VOLUME} GROUP BY grid_id ORDER BY grid_id").to_pylist()
     for g in grids:
         aff = np.reshape(g["affine"], (4, 4))
         shape = np.asarray(g["shape"][:3])

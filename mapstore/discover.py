@@ -46,11 +46,15 @@ __all__ = [
     "ModelFiles",
     "label_problems",
     "STAT_SUFFIX",
+    "MAP_EXTENSIONS",
+    "split_map_name",
 ]
 
 STAT_SUFFIX = "statmap"
+# file extensions of statistic maps: volumes, GIFTI per hemisphere, CIFTI-2 dense scalars (longest first)
+MAP_EXTENSIONS = (".dscalar.nii", ".func.gii", ".shape.gii", ".gii", ".nii.gz", ".nii")
 # files a GLM writer leaves beside its maps: the model's mask and its design matrix
-COMPANION_SUFFIXES = ("_mask.nii.gz", "_mask.nii", "_design.tsv")
+COMPANION_SUFFIXES = ("_mask.nii.gz", "_mask.nii", "_mask.gii", "_design.tsv")
 # Entities of the statistical-derivatives convention that pybids' bundled config lacks.
 EXTRA_ENTITIES = {
     "contrast": r"[_/\\]+contrast-([a-zA-Z0-9+]+)",
@@ -104,6 +108,18 @@ class MapFile:
     mtime_ns: int
     named_by: str  # "bids" or "rule:<n>"
     extras: dict[str, str] = field(default_factory=dict)  # from a name rule: mask, dof_file (relpaths)
+
+
+def split_map_name(name: str) -> tuple[str, str] | None:
+    """(stem, extension) of a file name in a statistic-map format, else None.
+
+    >>> split_map_name("sub-01_hemi-L_space-fsaverage5_stat-t_statmap.func.gii")
+    ('sub-01_hemi-L_space-fsaverage5_stat-t_statmap', '.func.gii')
+    """
+    for ext in MAP_EXTENSIONS:
+        if name.endswith(ext):
+            return name[:-len(ext)], ext
+    return None
 
 
 def _short_key(pattern: str) -> str | None:
@@ -823,7 +839,7 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
                 is_dir = e.is_dir()
             except OSError:
                 is_dir = False
-            if is_dir and (name.endswith(".nii.gz") or name.endswith(".nii")) and "_stat-" in name:
+            if is_dir and name.endswith(MAP_EXTENSIONS) and "_stat-" in name:
                 w.problems.append(Problem(e.path, "not-a-regular-file", "a folder named like a statistic map; it "
                                           "was not opened", "rename the folder, or put the map file itself here",
                                           "error", ds.key))
@@ -832,7 +848,7 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
                     stack.append(relpath)
             elif name.endswith(".json") or name.endswith(COMPANION_SUFFIXES):
                 w.companion(e, rel, relpath)
-            elif (name.endswith(".nii.gz") or name.endswith(".nii")) and (rel or root_maps):
+            elif name.endswith(MAP_EXTENSIONS) and (rel or root_maps):
                 w.map(e, relpath)
     w.maps.sort(key=lambda m: m.relpath)
     if fingerprint is not None:
@@ -866,9 +882,9 @@ class _Walk:
             self.fingerprint.update(f"{relpath}\0{st.st_size}\0{st.st_mtime_ns}\n".encode())
 
     def map(self, e: os.DirEntry, relpath: str) -> None:
-        """A NIfTI file: a statistic map by its BIDS name or by a name rule, or nothing."""
+        """A NIfTI, GIFTI or CIFTI file: a statistic map by its BIDS name or by a name rule, or nothing."""
         ds, name = self.ds, e.name
-        stem = name[:-7] if name.endswith(".nii.gz") else name[:-4]
+        stem, ext = split_map_name(name)  # type: ignore[misc]  # the walk passes map extensions only
         is_statmap = stem.endswith("_" + STAT_SUFFIX)
         hit = None
         if not is_statmap:
@@ -883,17 +899,18 @@ class _Walk:
             self.problems.extend(_fix_labels(stem, ents, e.path, ds.key))
             if "stat" not in ents:
                 self.problems.append(Problem(e.path, "missing-entity", "statmap file name lacks stat",
-                                             "name it ..._stat-<label>_statmap.nii.gz (with contrast-<label> "
+                                             f"name it ..._stat-<label>_statmap{ext} (with contrast-<label> "
                                              "for a contrast's map), or add a rule in a name-rules file",
                                              "error", ds.key))
                 return
+            ents["extension"] = ext
             self.maps.append(MapFile(ds, relpath, e.path, ents, st.st_size, st.st_mtime_ns, "bids"))
             return
         idx, ents, groups = hit
         base = self.parser.parse(relpath)
         base.update(ents)
         base["suffix"] = STAT_SUFFIX
-        base["extension"] = ".nii.gz" if name.endswith(".nii.gz") else ".nii"
+        base["extension"] = ext
         extras, probs = self.rules.extras(ds.root, idx, groups, base, e.path, ds.key)
         self.problems.extend(probs)
         self.maps.append(MapFile(ds, relpath, e.path, base, st.st_size, st.st_mtime_ns, f"rule:{idx}", extras))
@@ -1124,7 +1141,7 @@ class ModelFiles:
         for folder, names in listing.items():
             for n in names:
                 kind = "mask" if n.endswith(("_mask.nii.gz", "_mask.nii")) else \
-                    "design" if n.endswith("_design.tsv") else None
+                    "surface-mask" if n.endswith("_mask.gii") else "design" if n.endswith("_design.tsv") else None
                 if kind is None:
                     continue
                 rel = f"{folder}/{n}" if folder else n
@@ -1155,9 +1172,9 @@ class ModelFiles:
                 return sorted(rel for n, rel in hits if n == best)
         return []
 
-    def mask_for(self, relpath: str, entities: dict[str, str]) -> str | None:
-        """Relative path of the model's mask for a map, or None."""
-        found = self._find("mask", relpath, entities)
+    def mask_for(self, relpath: str, entities: dict[str, str], surface: bool = False) -> str | None:
+        """Relative path of the model's mask for a map (``_mask.gii`` of its hemisphere for a surface map)."""
+        found = self._find("surface-mask" if surface else "mask", relpath, entities)
         return found[0] if found else None
 
     def design_dof(self, relpath: str, entities: dict[str, str]) -> tuple[float | None, str | None, str | None]:

@@ -357,7 +357,8 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], stat: 
                  ) -> tuple[list[dict[str, Any]], dict[str, int]]:
     """Maps the set takes, and how many the defaults left out (and why)."""
     q = ("SELECT m.map_id, m.dataset, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, "
-         "m.model_mask, m.model_mask_sha256 FROM maps m JOIN datasets d USING (dataset)")
+         "m.model_mask, m.model_mask_sha256, coalesce(m.geometry, 'volume') AS geometry FROM maps m "
+         "JOIN datasets d USING (dataset)")
     if where:
         q += f" WHERE {where}"
     q += " ORDER BY m.dataset, m.relpath"  # batches (and so shards) hold one dataset's maps
@@ -369,7 +370,9 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], stat: 
     keep = []
     for r in rows:
         kind = r["map_kind"] or "contrast"  # tables from before map kinds were recorded
-        if kind not in kinds:
+        if r["geometry"] != "volume":
+            why = f"{r['geometry']} maps (a volume set takes volume maps only)"
+        elif kind not in kinds:
             why = "model maps (no contrast: residuals, fit; --model-maps takes them)"
         elif (r["n_volumes"] or 1) > 1:
             why = "multi-volume maps (e.g. an F contrast's effect, one volume per contrast row)"

@@ -1,4 +1,4 @@
-"""NIfTI-1 and NIfTI-2 header facts, read from the first bytes of a file.
+"""Header facts: NIfTI-1 and NIfTI-2 from the first bytes of a file; GIFTI and CIFTI-2 without decoding data.
 
 This stage never touches voxel data: a ``.nii`` needs its first 348 (NIfTI-1) or
 540 (NIfTI-2) bytes, a ``.nii.gz`` only enough of its first compressed block to
@@ -26,6 +26,13 @@ __all__ = [
     "orientation_code",
     "NIFTI_DTYPES",
     "INTENT_NAMES",
+    "SurfaceFacts",
+    "read_surface_header",
+    "surface_format",
+    "surface_grid_id",
+    "brain_models_key",
+    "expected_vertices",
+    "FSAVERAGE_VERTICES",
 ]
 
 NIFTI1_SIZE = 348
@@ -391,3 +398,265 @@ def orientation_code(affine: np.ndarray) -> str:
         used.add(world)
         out[vox] = letters[world][1 if m[world, vox] > 0 else 0]
     return "".join(out)
+
+
+# ---------------------------------------------------------------------------------------------
+# Surface formats: GIFTI (one hemisphere per file) and CIFTI-2 dense scalars (grayordinates)
+
+# GIFTI names NIfTI intents and types by their nifti1.h macro names (GIFTI 1.0 standard, section 2.3.4)
+GIFTI_INTENTS: dict[str, int] = {
+    "NIFTI_INTENT_NONE": 0, "NIFTI_INTENT_CORREL": 2, "NIFTI_INTENT_TTEST": 3, "NIFTI_INTENT_FTEST": 4,
+    "NIFTI_INTENT_ZSCORE": 5, "NIFTI_INTENT_CHISQ": 6, "NIFTI_INTENT_BETA": 7, "NIFTI_INTENT_BINOM": 8,
+    "NIFTI_INTENT_GAMMA": 9, "NIFTI_INTENT_POISSON": 10, "NIFTI_INTENT_NORMAL": 11, "NIFTI_INTENT_FTEST_NONC": 12,
+    "NIFTI_INTENT_CHISQ_NONC": 13, "NIFTI_INTENT_LOGISTIC": 14, "NIFTI_INTENT_LAPLACE": 15,
+    "NIFTI_INTENT_UNIFORM": 16, "NIFTI_INTENT_TTEST_NONC": 17, "NIFTI_INTENT_WEIBULL": 18, "NIFTI_INTENT_CHI": 19,
+    "NIFTI_INTENT_INVGAUSS": 20, "NIFTI_INTENT_EXTVAL": 21, "NIFTI_INTENT_PVAL": 22, "NIFTI_INTENT_LOGPVAL": 23,
+    "NIFTI_INTENT_LOG10PVAL": 24, "NIFTI_INTENT_ESTIMATE": 1001, "NIFTI_INTENT_LABEL": 1002,
+    "NIFTI_INTENT_NEURONAME": 1003, "NIFTI_INTENT_GENMATRIX": 1004, "NIFTI_INTENT_SYMMATRIX": 1005,
+    "NIFTI_INTENT_DISPVECT": 1006, "NIFTI_INTENT_VECTOR": 1007, "NIFTI_INTENT_POINTSET": 1008,
+    "NIFTI_INTENT_TRIANGLE": 1009, "NIFTI_INTENT_QUATERNION": 1010, "NIFTI_INTENT_DIMLESS": 1011,
+    "NIFTI_INTENT_TIME_SERIES": 2001, "NIFTI_INTENT_NODE_INDEX": 2002, "NIFTI_INTENT_RGB_VECTOR": 2003,
+    "NIFTI_INTENT_RGBA_VECTOR": 2004, "NIFTI_INTENT_SHAPE": 2005,
+}
+GIFTI_TYPES: dict[str, str] = {
+    "NIFTI_TYPE_UINT8": "uint8", "NIFTI_TYPE_INT8": "int8", "NIFTI_TYPE_INT16": "int16",
+    "NIFTI_TYPE_UINT16": "uint16", "NIFTI_TYPE_INT32": "int32", "NIFTI_TYPE_UINT32": "uint32",
+    "NIFTI_TYPE_INT64": "int64", "NIFTI_TYPE_UINT64": "uint64", "NIFTI_TYPE_FLOAT32": "float32",
+    "NIFTI_TYPE_FLOAT64": "float64",
+}
+# vertices per hemisphere of the FreeSurfer fsaverage family (icosahedron orders 3 to 7) and of the
+# HCP fsLR meshes by their BIDS den label (common practice; counts from memory, checked against nilearn's
+# bundled fsaverage5 in the tests)
+FSAVERAGE_VERTICES = {"fsaverage3": 642, "fsaverage4": 2562, "fsaverage5": 10242, "fsaverage6": 40962,
+                      "fsaverage7": 163842, "fsaverage": 163842}
+FSLR_VERTICES = {"32k": 32492, "59k": 59292, "164k": 163842}
+CIFTI_SCALAR_INTENT = 3006  # NIFTI_INTENT_CONNECTIVITY_DENSE_SCALARS (CIFTI-2 standard, appendix A)
+_GEOMETRY_LIMIT = 64 << 20  # a CIFTI header bigger than this is not a header
+
+
+@dataclass(frozen=True)
+class SurfaceFacts:
+    """What a GIFTI or CIFTI-2 file says about its data, with no value decoded.
+
+    ``n_vertices`` is the length of one map: the vertices of the hemisphere (GIFTI) or the
+    grayordinates (CIFTI-2: cortex vertices plus subcortical voxels); ``n_volumes`` the maps in it.
+    ``structure`` is GIFTI's ``AnatomicalStructurePrimary`` or the CIFTI brain structures.
+    ``geometry_key`` identifies the vertex/voxel layout (with the space, it makes the grid id).
+    """
+
+    format: str  # "gifti" | "cifti"
+    n_vertices: int
+    n_volumes: int
+    dtype: str
+    intent_code: int
+    intent_name: str
+    structure: str | None
+    geometry_key: str
+    descrip: str = ""
+    endianness: str | None = None
+    nifti_version: int | None = None
+    vox_offset: int | None = None
+    bitpix: int | None = None
+    scl_slope: float | None = None
+    scl_inter: float | None = None
+    warnings: tuple[str, ...] = field(default_factory=tuple)
+
+    @property
+    def shape(self) -> tuple[int, ...]:
+        return (self.n_vertices,) if self.n_volumes == 1 else (self.n_vertices, self.n_volumes)
+
+
+def surface_format(name: str) -> str | None:
+    """``"gifti"``, ``"cifti"`` or None (a volume, or not a map format), from a file name."""
+    if name.endswith(".gii"):  # nilearn's writer names its surface maps plain .gii
+        return "gifti"
+    if name.endswith(".dscalar.nii"):
+        return "cifti"
+    return None
+
+
+def read_surface_header(path: str) -> SurfaceFacts:
+    """Header facts of a GIFTI (``.func.gii``/``.shape.gii``) or CIFTI-2 dense scalar file.
+
+    GIFTI keeps its values inside the XML, so the whole file is parsed, but no data array is
+    decoded: only the ``DataArray`` attributes and the metadata are kept.  A CIFTI-2 file is read up
+    to its voxel offset only (NIfTI-2 header and the CIFTI XML extension).
+    """
+    kind = surface_format(path)
+    try:
+        if kind == "gifti":
+            return _gifti_facts(path)
+        if kind == "cifti":
+            return _cifti_facts(path)
+    except FileNotFoundError:
+        raise HeaderError(path, "missing-file", "file does not exist", "check the path") from None
+    except OSError as exc:
+        raise HeaderError(path, "unreadable", f"cannot read the file ({exc.strerror})",
+                          "check the file's permissions") from None
+    raise HeaderError(path, "not-surface", "not a GIFTI (.gii, .func.gii, .shape.gii) or CIFTI-2 dense scalar "
+                      "(.dscalar.nii) file name", "name the file with one of those extensions")
+
+
+def _gifti_facts(path: str) -> SurfaceFacts:
+    import gzip
+    import xml.etree.ElementTree as ET
+
+    with open(path, "rb") as fh:
+        magic = fh.read(2)
+    opener = gzip.open if magic == b"\x1f\x8b" else open
+    arrays: list[dict[str, str]] = []
+    meta: dict[str, str] = {}
+    depth = 0
+    name = None
+    try:
+        with opener(path, "rb") as fh:
+            for event, el in ET.iterparse(fh, events=("start", "end")):
+                if event == "start":
+                    depth += 1
+                    if el.tag == "DataArray":
+                        arrays.append(dict(el.attrib))
+                    continue
+                depth -= 1
+                if el.tag == "Data":
+                    el.clear()  # the encoded values: never decoded, dropped at once
+                elif depth == 3 and el.tag in ("Name", "Value"):  # GIFTI > MetaData > MD > Name|Value
+                    if el.tag == "Name":
+                        name = (el.text or "").strip()
+                    elif name is not None:
+                        meta[name] = (el.text or "").strip()
+                        name = None
+    except ET.ParseError as exc:
+        raise HeaderError(path, "bad-gifti", f"not well-formed GIFTI XML ({exc})",
+                          "re-create the file, for example with nibabel's GiftiImage") from None
+    except (EOFError, OSError, zlib.error) as exc:
+        raise HeaderError(path, "bad-gifti", f"the file is cut short or its compression is corrupt ({exc})",
+                          "re-create or re-download the file") from None
+    data = [a for a in arrays if a.get("Intent") not in ("NIFTI_INTENT_POINTSET", "NIFTI_INTENT_TRIANGLE")]
+    if not data:
+        what = "a mesh (coordinates and triangles)" if arrays else "no data array"
+        raise HeaderError(path, "no-surface-data", f"the GIFTI file holds {what}, not values per vertex",
+                          "index the statistic map (.func.gii or .shape.gii with one value per vertex)")
+    warnings: list[str] = []
+    n_vertices, n_volumes = _gifti_layout(path, data)
+    types = {a.get("DataType", "") for a in data}
+    if len(types) > 1:
+        warnings.append(f"data arrays of several types ({', '.join(sorted(types))})")
+    dtype = GIFTI_TYPES.get(data[0].get("DataType", ""))
+    if dtype is None:
+        raise HeaderError(path, "bad-datatype", f"GIFTI DataType {data[0].get('DataType')!r} is not a real "
+                          "scalar type", "re-save the map as NIFTI_TYPE_FLOAT32")
+    if any(a.get("Encoding") == "ExternalFileBinary" for a in data):
+        raise HeaderError(path, "external-gifti", "the values are in an external file (ExternalFileBinary)",
+                          "re-save the map with its values inside (GZipBase64Binary), for example with nibabel")
+    intent = data[0].get("Intent", "NIFTI_INTENT_NONE")
+    code = GIFTI_INTENTS.get(intent, -1)
+    structure = meta.get("AnatomicalStructurePrimary") or None
+    endian = {"LittleEndian": "<", "BigEndian": ">"}.get(data[0].get("Endian", ""), None)
+    return SurfaceFacts("gifti", n_vertices, n_volumes, dtype, code, INTENT_NAMES.get(code, intent), structure,
+                        f"gifti|{n_vertices}", meta.get("Description", "") or meta.get("Name", ""), endian,
+                        warnings=tuple(warnings))
+
+
+def _gifti_layout(path: str, data: list[dict[str, str]]) -> tuple[int, int]:
+    """(vertices, maps): one array per map, or one 2-D array of vertices x maps."""
+    try:
+        dims = [(int(a.get("Dimensionality", "1")), int(a.get("Dim0", "0")), int(a.get("Dim1", "1")))
+                for a in data]
+    except ValueError:
+        raise HeaderError(path, "bad-dim", "a DataArray has a non-integer Dim0 or Dim1",
+                          "the file is damaged; re-create it") from None
+    n = {d[1] for d in dims}
+    if len(n) != 1 or min(n) < 1:
+        raise HeaderError(path, "bad-dim", f"data arrays of different or zero lengths ({sorted(n)})",
+                          "write one value per vertex in every array")
+    if len(dims) == 1 and dims[0][0] == 2:
+        return dims[0][1], max(1, dims[0][2])
+    return dims[0][1], len(dims)
+
+
+def _cifti_facts(path: str) -> SurfaceFacts:
+    with open(path, "rb") as fh:
+        head = fh.read(NIFTI2_SIZE + 4)
+        facts = parse_header(path, header_prefix(path, head))
+        if facts.nifti_version != 2:
+            raise HeaderError(path, "not-cifti", "a .dscalar.nii file with a NIfTI-1 header (CIFTI-2 uses NIfTI-2)",
+                              "re-save it as CIFTI-2, for example with nibabel's Cifti2Image")
+        if facts.vox_offset > _GEOMETRY_LIMIT:
+            raise HeaderError(path, "bad-cifti", f"voxel offset {facts.vox_offset} is implausibly large",
+                              "the header is damaged; re-create the file")
+        ext = fh.read(max(0, facts.vox_offset - NIFTI2_SIZE - 4))
+    xml = _cifti_extension(path, head[NIFTI2_SIZE:NIFTI2_SIZE + 4] + ext, facts.endianness)
+    from nibabel.cifti2 import cifti2_axes
+    from nibabel.cifti2.parse_cifti2 import Cifti2Extension
+
+    try:
+        hdr = Cifti2Extension(code=32, content=xml).get_content()
+        rows = cifti2_axes.from_index_mapping(hdr.matrix.get_index_map(0))
+        cols = cifti2_axes.from_index_mapping(hdr.matrix.get_index_map(1))
+    except Exception as exc:  # nibabel's XML parser raises several unrelated types
+        raise HeaderError(path, "bad-cifti", f"the CIFTI-2 XML cannot be read ({type(exc).__name__}: {exc})",
+                          "re-create the file, for example with nibabel's Cifti2Image") from None
+    if not isinstance(cols, cifti2_axes.BrainModelAxis):
+        raise HeaderError(path, "not-dense", f"the second CIFTI axis is a {type(cols).__name__}, not brain models "
+                          "(a parcellated or connectivity file)", "index dense scalar maps (.dscalar.nii)")
+    warnings = [w for w in facts.warnings if "pixdim" not in w]  # CIFTI has no voxel affine in its header
+    if facts.intent_code != CIFTI_SCALAR_INTENT:
+        warnings.append(f"intent code {facts.intent_code}, not {CIFTI_SCALAR_INTENT} (dense scalars)")
+    structures = [str(s[0]).replace("CIFTI_STRUCTURE_", "") for s in cols.iter_structures()]
+    return SurfaceFacts("cifti", len(cols), len(rows), facts.dtype, facts.intent_code,
+                        "dense scalars" if facts.intent_code == CIFTI_SCALAR_INTENT else f"code {facts.intent_code}",
+                        ",".join(structures), brain_models_key(cols), facts.descrip, facts.endianness, 2,
+                        facts.vox_offset, facts.bitpix, facts.scl_slope, facts.scl_inter, tuple(warnings))
+
+
+def _cifti_extension(path: str, ext: bytes, order: str) -> bytes:
+    """The CIFTI-2 XML (extension code 32) from the bytes after a NIfTI-2 header (flag bytes first)."""
+    if len(ext) < 4 or ext[0] == 0:
+        raise HeaderError(path, "not-cifti", "a .dscalar.nii file with no header extension (no CIFTI XML)",
+                          "re-save it as CIFTI-2, for example with nibabel's Cifti2Image")
+    pos = 4
+    little = order == "<"
+    while pos + 8 <= len(ext):
+        size = int.from_bytes(ext[pos:pos + 4], "little" if little else "big")
+        code = int.from_bytes(ext[pos + 4:pos + 8], "little" if little else "big")
+        if size < 8 or pos + size > len(ext):
+            break
+        if code == 32:
+            return ext[pos + 8:pos + size].rstrip(b"\x00")
+        pos += size
+    raise HeaderError(path, "not-cifti", "no CIFTI-2 extension (code 32) before the data",
+                      "re-save it as CIFTI-2, for example with nibabel's Cifti2Image")
+
+
+def brain_models_key(axis) -> str:
+    """A short id of a CIFTI brain-model axis: structures, vertex and voxel indices, meshes, volume grid."""
+    h = hashlib.sha256()
+    for name, sl, _ in axis.iter_structures():
+        h.update(str(name).encode())
+        h.update(np.ascontiguousarray(axis.vertex[sl], dtype=np.int64).tobytes())
+        h.update(np.ascontiguousarray(axis.voxel[sl], dtype=np.int64).tobytes())
+    h.update(repr(sorted((str(k), int(v)) for k, v in axis.nvertices.items())).encode())
+    if axis.volume_shape is not None:
+        h.update(repr(tuple(axis.volume_shape)).encode())
+        h.update(np.round(np.asarray(axis.affine, dtype=np.float64), 4).tobytes())
+    return "cifti|" + h.hexdigest()[:16]
+
+
+def surface_grid_id(geometry_key: str, space: str | None, den: str | None, hemi: str | None) -> str:
+    """The grid id of a surface map: its vertex layout on a named mesh (space, density, hemisphere)."""
+    text = f"{geometry_key}|{space or ''}|{den or ''}|{hemi or ''}"
+    return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+
+def expected_vertices(space: str | None, den: str | None) -> int | None:
+    """Vertices per hemisphere a named mesh has (None when the name is not one we know).
+
+    A numeric ``den`` is the vertex count itself (nilearn's writer names fsaverage5 maps ``den-10242``).
+    """
+    if den and den.isdigit():
+        return int(den)
+    if space in FSAVERAGE_VERTICES and not den:
+        return FSAVERAGE_VERTICES[space]
+    if space and space.lower().startswith("fslr") and den in FSLR_VERTICES:
+        return FSLR_VERTICES[den]
+    return None

@@ -33,7 +33,14 @@ MAPS_DOCS = {
     "affine_source": "which header form gave the affine: sform, qform or pixdim",
     "voxel_size": "voxel size in mm from the affine's column norms",
     "orientation": "axis codes such as RAS or LAS",
-    "grid_id": "fingerprint of the spatial shape and affine (to 1e-4 mm)",
+    "grid_id": "volumes: fingerprint of the spatial shape and affine (to 1e-4 mm); surfaces: of the vertex "
+               "layout with space, den and hemi; CIFTI-2: of the brain models",
+    "hemi": "hemisphere of a GIFTI map (BIDS hemi entity, else the file's AnatomicalStructurePrimary)",
+    "den": "mesh density label (BIDS den entity, e.g. 32k or 91k)",
+    "geometry": "volume (NIfTI), surface (GIFTI, one hemisphere per file) or grayordinates (CIFTI-2 dense scalars)",
+    "n_vertices": "values per map of a surface file: vertices (GIFTI) or grayordinates (CIFTI-2)",
+    "structures": "GIFTI AnatomicalStructurePrimary, or the CIFTI-2 brain structures, comma-separated",
+    "linked_map": "map_id of the other hemisphere's file of the same map (names equal but for hemi-L/R)",
     "dof": "degrees of freedom, first found of: sidecar DegreesOfFreedom, intent_p1 of a t-test header, "
            "the design matrices beside the map (rows - rank), a header description {T_[df]}, a DOF file",
     "dof_source": "where dof came from: sidecar, header, design, descrip, dof-file",

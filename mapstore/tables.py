@@ -28,7 +28,7 @@ _s, _i32, _i64, _f64 = pa.string(), pa.int32(), pa.int64(), pa.float64()
 MAPS_SCHEMA = pa.schema([
     ("map_id", _s), ("dataset", _s), ("relpath", _s),
     ("sub", _s), ("ses", _s), ("task", _s), ("acq", _s), ("run", _s), ("rec", _s),
-    ("space", _s), ("res", _s), ("desc", _s), ("contrast", _s), ("stat", _s), ("map_kind", _s),
+    ("space", _s), ("res", _s), ("den", _s), ("hemi", _s), ("desc", _s), ("contrast", _s), ("stat", _s), ("map_kind", _s),
     ("suffix", _s), ("extension", _s), ("entities", _s), ("named_by", _s),
     ("participant", _s), ("study", _s), ("site", _s), ("lab", _s),
     ("sha256", _s), ("nbytes", _i64), ("mtime_ns", _i64),
@@ -40,6 +40,9 @@ MAPS_SCHEMA = pa.schema([
     ("grid_id", _s), ("descrip", _s), ("dof", _f64), ("dof_source", _s), ("model_mask", _s),
     ("model_mask_sha256", _s), ("metadata", _s), ("sidecars", pa.list_(_s)),
     ("header_warnings", pa.list_(_s)),
+    # surface maps: 'volume' (NIfTI), 'surface' (GIFTI, one hemisphere per file) or 'grayordinates'
+    # (CIFTI-2); the values per map; CIFTI structures; the map_id of the other hemisphere's file
+    ("geometry", _s), ("n_vertices", _i64), ("structures", _s), ("linked_map", _s),
 ])
 DATASETS_SCHEMA = pa.schema([
     ("dataset", _s), ("name", _s), ("study", _s), ("root", _s), ("dataset_type", _s),

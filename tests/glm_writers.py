@@ -235,3 +235,47 @@ def spm_folder(folder: Path, contrasts: list[tuple[str, str]], dof: float, rng: 
             nib.save(img, str(folder / fname))
     savemat(folder / "SPM.mat", {"SPM": {"xCon": xcon, "swd": str(folder)}})
     return folder
+
+
+# --- surface models ---------------------------------------------------------------------------
+
+def write_surface_first_level(root: Path, subjects: list[str], conds: tuple[str, str] = ("faces", "places"),
+                              seed: int = 5, n_scans: int = 40, task: str = "viewing",
+                              signal: dict[str, np.ndarray] | None = None) -> dict[str, float]:
+    """nilearn ``FirstLevelModel`` fits on fsaverage5 surface runs, saved with ``save_glm_to_bids``.
+
+    nilearn's writer names the maps ``<prefix>_hemi-L_den-10242_contrast-..._statmap.gii`` (and a
+    ``_mask.gii`` per hemisphere).  ``signal`` (hemisphere -> vertices) is added, scaled by the
+    first condition's regressor.  Returns the DOF of each model (``n_scans - rank(X)``).
+    """
+    from nilearn.datasets import load_fsaverage
+    from nilearn.glm import save_glm_to_bids
+    from nilearn.glm.first_level import FirstLevelModel
+    from nilearn.surface import SurfaceImage
+
+    mesh = load_fsaverage("fsaverage5")["pial"]
+    rng = np.random.default_rng(seed)
+    t_r = 2.0
+    dofs = {}
+    for sub in subjects:
+        events = _events(rng, list(conds), n_scans, t_r)
+        frames = np.arange(n_scans) * t_r
+        on = np.zeros(n_scans)
+        for o, d in zip(events.onset[events.trial_type == conds[0]], events.duration[events.trial_type == conds[0]]):
+            on[(frames >= o + 4) & (frames < o + d + 4)] = 1.0
+        data = {}
+        for part in ("left", "right"):
+            x = rng.normal(0, 1, size=(10242, n_scans)).astype(np.float32) + 100
+            if signal is not None:
+                x += signal[part][:, None].astype(np.float32) * on[None, :]
+            data[part] = x
+        model = FirstLevelModel(t_r=t_r, minimize_memory=False, smoothing_fwhm=None, drift_model="cosine",
+                                high_pass=0.01)
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore")
+            model.fit(SurfaceImage(mesh=mesh, data=data), events=events)
+            save_glm_to_bids(model, contrasts={f"{conds[0]}Minus{conds[1].capitalize()}": f"{conds[0]} - {conds[1]}"},
+                             out_dir=root, prefix=f"sub-{sub}_task-{task}")
+        x = np.asarray(model.design_matrices_[0], dtype=np.float64)
+        dofs[f"sub-{sub}"] = float(x.shape[0] - np.linalg.matrix_rank(x))
+    return dofs

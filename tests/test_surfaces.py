@@ -1,0 +1,199 @@
+"""Surface and grayordinate maps: indexing GIFTI and CIFTI-2 files, and surface feature sets.
+
+References: nibabel's own GIFTI and CIFTI-2 classes write the files and read them back (reference
+library); nilearn's bundled fsaverage5 gives the mesh and its vertex counts; nilearn's
+``save_glm_to_bids`` writes the surface GLM outputs that are indexed.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pytest
+from nibabel.gifti import GiftiDataArray, GiftiImage
+
+import mapstore
+from mapstore.errors import HeaderError
+from mapstore.header import FSAVERAGE_VERTICES, GIFTI_INTENTS, expected_vertices, read_surface_header
+
+from .conftest import write_map
+from .glm_writers import write_surface_first_level
+
+N5 = 10242
+
+
+def gifti(path: Path, arrays: list[np.ndarray], intent: str = "NIFTI_INTENT_TTEST", structure: str | None = None
+          ) -> Path:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    img = GiftiImage(darrays=[GiftiDataArray(np.asarray(a, np.float32), intent=intent,
+                                             datatype="NIFTI_TYPE_FLOAT32") for a in arrays])
+    if structure:
+        img.meta["AnatomicalStructurePrimary"] = structure
+    nib.save(img, str(path))
+    return path
+
+
+def brain_models(n_left: int = N5, n_right: int = N5, voxels: bool = True):
+    ax = nib.cifti2.BrainModelAxis.from_mask(np.ones(n_left, bool), name="CortexLeft") + \
+        nib.cifti2.BrainModelAxis.from_mask(np.ones(n_right, bool), name="CortexRight")
+    if voxels:
+        vm = np.zeros((91, 109, 91), bool)
+        vm[40:44, 50:53, 30:33] = True
+        ax = ax + nib.cifti2.BrainModelAxis.from_mask(vm, name="thalamus_left",
+                                                       affine=np.array([[-2.0, 0, 0, 90], [0, 2, 0, -126],
+                                                                        [0, 0, 2, -72], [0, 0, 0, 1]]))
+    return ax
+
+
+def cifti(path: Path, data: np.ndarray, axis) -> Path:
+    path.parent.mkdir(parents=True, exist_ok=True)
+    data = np.atleast_2d(np.asarray(data, np.float32))
+    img = nib.Cifti2Image(data, header=(nib.cifti2.ScalarAxis([f"m{i}" for i in range(len(data))]), axis))
+    img.nifti_header.set_intent("ConnDenseScalar")
+    nib.save(img, str(path))
+    return path
+
+
+def test_fsaverage5_vertex_counts_match_nilearn():
+    # nilearn's bundled fsaverage5 (reference data): 10242 vertices per hemisphere, icosahedron order 5
+    from nilearn.datasets import load_fsaverage
+
+    mesh = load_fsaverage("fsaverage5")["pial"]
+    assert mesh.parts["left"].n_vertices == mesh.parts["right"].n_vertices == FSAVERAGE_VERTICES["fsaverage5"]
+    assert expected_vertices("fsaverage5", None) == N5
+    assert expected_vertices(None, "10242") == N5  # nilearn's writer: den is the vertex count
+    # 10 * 4**k + 2 vertices for icosahedron order k (common practice)
+    assert all(FSAVERAGE_VERTICES[f"fsaverage{k}"] == 10 * 4 ** k + 2 for k in range(3, 8))
+
+
+def test_gifti_intent_names_match_nibabel():
+    # nibabel.nifti1.intent_codes (reference library) maps the nifti1.h macro names to codes
+    codes = nib.nifti1.intent_codes
+    for name, code in GIFTI_INTENTS.items():
+        assert codes.code[name] == code, name
+
+
+def test_gifti_header_facts_match_nibabel(tmp_path, rng):
+    one = gifti(tmp_path / "a.func.gii", [rng.normal(size=N5)], structure="CortexLeft")
+    three = gifti(tmp_path / "b.shape.gii", [rng.normal(size=642) for _ in range(3)], intent="NIFTI_INTENT_ZSCORE")
+    for path in (one, three):
+        ref = nib.load(str(path))  # nibabel decodes the arrays: the reference for the facts
+        facts = read_surface_header(str(path))
+        assert facts.n_vertices == ref.darrays[0].data.shape[0]
+        assert facts.n_volumes == len(ref.darrays)
+        assert facts.dtype == str(ref.darrays[0].data.dtype)
+        assert facts.intent_code == nib.nifti1.intent_codes.code[ref.darrays[0].intent]
+    assert read_surface_header(str(one)).structure == "CortexLeft"
+
+
+def test_gifti_values_are_not_decoded(tmp_path, rng):
+    # a well-formed file whose encoded values are garbage: its facts read, nibabel's decoding fails
+    path = gifti(tmp_path / "a.func.gii", [rng.normal(size=N5)])
+    text = path.read_text()
+    start = text.index("<Data>") + 6
+    path.write_text(text[:start] + "!!not base64!!" + text[text.index("</Data>"):])
+    assert read_surface_header(str(path)).n_vertices == N5
+    with pytest.raises(Exception):
+        nib.load(str(path)).darrays[0].data
+
+
+def test_bad_surface_files_name_the_file_and_the_remedy(tmp_path, rng):
+    from nilearn.datasets import load_fsaverage
+
+    mesh = load_fsaverage("fsaverage5")["pial"].parts["left"]
+    surf = tmp_path / "mesh.gii"
+    nib.save(GiftiImage(darrays=[GiftiDataArray(mesh.coordinates.astype(np.float32), intent="NIFTI_INTENT_POINTSET"),
+                                 GiftiDataArray(mesh.faces.astype(np.int32), intent="NIFTI_INTENT_TRIANGLE")]),
+             str(surf))
+    cut = gifti(tmp_path / "cut.func.gii", [rng.normal(size=N5)])
+    cut.write_bytes(cut.read_bytes()[:300])
+    vol = tmp_path / "x.dscalar.nii"
+    nib.save(nib.Nifti1Image(np.zeros((2, 2, 2), np.float32), np.eye(4)), str(vol))
+    for path, code in ((surf, "no-surface-data"), (cut, "bad-gifti"), (vol, "not-cifti")):
+        with pytest.raises(HeaderError) as err:
+            read_surface_header(str(path))
+        assert err.value.code == code and str(path) in str(err.value) and err.value.remedy
+
+
+def test_cifti_header_facts_match_nibabel(tmp_path, rng):
+    ax = brain_models()
+    a = cifti(tmp_path / "a.dscalar.nii", rng.normal(size=(2, len(ax))), ax)
+    b = cifti(tmp_path / "b.dscalar.nii", rng.normal(size=(1, len(ax))), ax)
+    other = brain_models(voxels=False)
+    c = cifti(tmp_path / "c.dscalar.nii", rng.normal(size=(1, len(other))), other)
+    ref = nib.load(str(a))  # nibabel's CIFTI-2 axes (reference library)
+    fa, fb, fc = (read_surface_header(str(p)) for p in (a, b, c))
+    assert (fa.n_volumes, fa.n_vertices) == ref.shape
+    assert fa.structure.split(",") == [str(s[0]).replace("CIFTI_STRUCTURE_", "")
+                                       for s in ref.header.get_axis(1).iter_structures()]
+    assert fa.intent_code == 3006 and not fa.warnings
+    assert fa.geometry_key == fb.geometry_key != fc.geometry_key
+
+
+@pytest.fixture(scope="module")
+def surface_study(tmp_path_factory) -> tuple[Path, dict[str, float]]:
+    """nilearn's own surface GLM outputs for two subjects, plus a CIFTI-2 map and a volume map beside them."""
+    root = tmp_path_factory.mktemp("surf") / "lateral-glm"
+    dofs = write_surface_first_level(root, ["01", "02"])
+    desc = json.loads((root / "dataset_description.json").read_text())
+    desc["Name"] = "lateral"
+    (root / "dataset_description.json").write_text(json.dumps(desc))
+    ax = brain_models()
+    cifti(root / "sub-01" / "sub-01_task-viewing_space-fsLR_den-91k_contrast-faces_stat-z_statmap.dscalar.nii",
+          np.random.default_rng(3).normal(size=(1, len(ax))), ax)
+    return root, dofs
+
+
+def test_nilearn_surface_outputs_are_indexed_with_linked_hemispheres(surface_study, tmp_path):
+    root, dofs = surface_study
+    store = tmp_path / "store"
+    mapstore.index([root], store, progress=False)
+    s = mapstore.open(store)
+    assert s.sql("SELECT count(*) AS n FROM problems WHERE level = 'error'").to_pylist()[0]["n"] == 0
+    rows = s.sql("SELECT * FROM maps WHERE geometry = 'surface' AND map_kind = 'contrast' ORDER BY relpath"
+                 ).to_pylist()
+    # nilearn writes 5 maps (effect, p, t, variance, z) per hemisphere and contrast
+    assert len(rows) == 2 * 2 * 5
+    by_id = {r["map_id"]: r for r in rows}
+    for r in rows:
+        other = by_id[r["linked_map"]]
+        assert other["linked_map"] == r["map_id"] and {r["hemi"], other["hemi"]} == {"L", "R"}
+        assert other["relpath"] == r["relpath"].replace(f"hemi-{r['hemi']}", f"hemi-{other['hemi']}")
+        assert r["n_vertices"] == N5 and r["den"] == "10242" and r["shape"] == [N5]
+        assert r["model_mask"].endswith(f"hemi-{r['hemi']}_den-10242_mask.gii")
+        assert r["dof"] == dofs[f"sub-{r['sub']}"] and r["dof_source"] == "design"
+        assert r["affine"] is None and not r["header_warnings"]
+    assert len({(r["grid_id"], r["hemi"]) for r in rows}) == 2  # one mesh per hemisphere
+    # model maps: nilearn writes residuals with one data array per scan
+    resid = s.sql("SELECT n_volumes, n_vertices FROM maps WHERE stat = 'errorts'").to_pylist()
+    assert len(resid) == 4 and all(r == {"n_volumes": 40, "n_vertices": N5} for r in resid)
+    (grey,) = s.sql("SELECT * FROM maps WHERE geometry = 'grayordinates'").to_pylist()
+    assert grey["n_vertices"] == len(brain_models()) and grey["structures"].startswith("CORTEX_LEFT,CORTEX_RIGHT")
+    assert grey["den"] == "91k" and grey["hemi"] is None
+
+
+def test_unpaired_hemisphere_is_reported_and_volume_sets_leave_surfaces_out(surface_study, tmp_path):
+    import shutil
+
+    root = tmp_path / "copy"
+    shutil.copytree(surface_study[0], root)
+    for p in root.glob("sub-02/*hemi-R*_stat-t_statmap.gii"):
+        p.unlink()
+    write_map(root / "sub-02" / "sub-02_task-viewing_space-MNI152NLin2009cAsym_contrast-faces_stat-t_statmap.nii.gz",
+              np.ones((91, 109, 91), np.float32), np.array([[-2.0, 0, 0, 90], [0, 2, 0, -126], [0, 0, 2, -72],
+                                                           [0, 0, 0, 1]]))
+    store = tmp_path / "store"
+    mapstore.index([root], store, progress=False)
+    s = mapstore.open(store)
+    findings = s.check(pictures=False).findings
+    found = [f for f in findings if f.code == "unpaired-hemisphere"]
+    assert len(found) == 1 and "1 hemi-L map(s)" in found[0].message
+    # the volume checks see the one volume map only: no mixed grids, no field of view outside the brain
+    assert {f.code for f in findings if f.check in ("grid", "space")} <= {"multi-volume", "surface-space"}
+    rep = mapstore.build_features(store, progress=False, jobs=1)
+    assert rep.built == 1
+    assert rep.left_out["surface maps (a volume set takes volume maps only)"] == 2 * (5 + 2) * 2 - 1  # (5 contrast + 2 model maps) x 2 hemispheres x 2 subjects, one removed
+    assert rep.left_out["grayordinates maps (a volume set takes volume maps only)"] == 1
