@@ -22,6 +22,7 @@ import pyarrow as pa
 
 from .copies import pair_correlation
 from .grid import mni152_template
+from .surface import sulcal_depth, surface_views
 
 __all__ = ["Finding", "CheckReport", "check_store", "png_bytes", "report_json", "LEVELS"]
 
@@ -456,10 +457,20 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
         _concept_pictures(fs, tiles, report)
 
 
+def _views(fs, vector: np.ndarray) -> np.ndarray:
+    """A set's row as a picture: three slices of a volume set, four views of a surface set's hemispheres."""
+    if fs.geometry == "surface":
+        return surface_views(fs.unmask(vector), fs.grid)
+    return _slices(fs.unmask(vector), fs.grid.affine_array)
+
+
 def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report) -> None:
-    """Each study's mean map over the MNI152 template: red positive, blue negative, one row per study."""
-    aff = fs.grid.affine_array
-    bg = _slices(mni152_template(fs.grid), aff)
+    """Each study's mean map over the MNI152 template (sulcal depth on a surface): red positive, blue negative."""
+    if fs.geometry == "surface":
+        bg = surface_views(sulcal_depth(fs.grid), fs.grid)
+        bg = -bg  # gyri light, sulci dark
+    else:
+        bg = _slices(mni152_template(fs.grid), fs.grid.affine_array)
     lo, hi = np.nanpercentile(bg, [2, 99.5]) if np.nanmax(bg) > 0 else (0.0, 1.0)
     grey = np.clip((np.nan_to_num(bg, nan=hi) - lo) / (hi - lo if hi > lo else 1.0), 0, 1)[..., None] \
         * np.array([235.0, 235, 235])  # the gaps between slices come out white
@@ -467,14 +478,15 @@ def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report
         vmax = max(float(np.nanpercentile(np.abs(m), 99)) for _, m in items) or 1.0
         strips = []
         for _, mean in items:
-            v = _slices(fs.unmask(mean), aff) / vmax
+            v = _views(fs, mean) / vmax
             alpha = np.clip(np.abs(np.nan_to_num(v)) * 1.5 - 0.3, 0, 1)[..., None]  # faint values fade out
             colour = np.where((np.nan_to_num(v) >= 0)[..., None], np.array([220.0, 40, 30]), np.array([30.0, 90, 220]))
             strips.append(grey * (1 - alpha) + colour * alpha)
             strips.append(np.full((4, grey.shape[1], 3), 255.0))
         report.pictures[f"concept {concept!r}: mean standardised map per study, one row each ("
-                        + ", ".join(s for s, _ in items) + "); red positive, blue negative, over the MNI152 "
-                        "template"] = png_bytes(np.concatenate(strips[:-1], axis=0).astype(np.uint8))
+                        + ", ".join(s for s, _ in items) + "); red positive, blue negative, over the "
+                        + ("sulcal depth" if fs.geometry == "surface" else "MNI152 template")] = \
+            png_bytes(np.concatenate(strips[:-1], axis=0).astype(np.uint8))
 
 
 def _model_key(m: dict) -> tuple:
@@ -612,16 +624,16 @@ def _coverage_pictures(fs, rows, stat_of, report, max_rows) -> None:
             per_study.setdefault(s, np.zeros(fs.n_voxels))
             per_study[s] += row
             per_n[s] += 1
-    aff = fs.grid.affine_array
-    frac = fs.unmask(counts / max(len(pick), 1))
+    frac = counts / max(len(pick), 1)
     legend = np.kron(np.linspace(0, 1, 256)[None, :], np.ones((12, 1)))
     report.pictures["colour scale: fraction of maps with a value, 0 (red) to 1 (blue); grey is outside "
                     "the mask"] = png_bytes(_colour(legend, 0.0, 1.0))
-    report.pictures[f"coverage over {len(pick)} maps (axial, coronal, sagittal through the grid centre)"] = \
-        png_bytes(_colour(_slices(frac, aff), 0.0, 1.0))
+    where = "left lateral, left medial, right lateral, right medial" if fs.geometry == "surface" else \
+        "axial, coronal, sagittal through the grid centre"
+    report.pictures[f"coverage over {len(pick)} maps ({where})"] = png_bytes(_colour(_views(fs, frac), 0.0, 1.0))
     tiles = []
     for s in sorted(per_study):
-        tiles.append(_slices(fs.unmask(per_study[s] / per_n[s]), aff))
+        tiles.append(_views(fs, per_study[s] / per_n[s]))
     if tiles:
         width = max(t.shape[1] for t in tiles)
         stack = np.concatenate([np.pad(t, ((0, 4), (0, width - t.shape[1])), constant_values=np.nan)

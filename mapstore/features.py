@@ -53,6 +53,19 @@ from .grid import (
     resample,
 )
 from .copies import SKETCH_BITS, Sketcher, find_copies
+from .surface import (
+    SurfaceTarget,
+    builtin_surface,
+    check_projection,
+    cifti_cortex,
+    cortex_mask,
+    density_index,
+    fsaverage_meshes,
+    project_volume,
+    read_surface_values,
+    surface_from_spec,
+    to_surface_image,
+)
 from .stats import convert
 from .tables import FeatureEntry, FeatureSetSpec
 from .store import (
@@ -115,9 +128,11 @@ def _library_versions() -> dict[str, str]:
             "nibabel": nibabel.__version__}
 
 
-def _resolve_grid(grid: str | TargetGrid | dict) -> TargetGrid:
-    if isinstance(grid, TargetGrid):
+def _resolve_grid(grid: str | TargetGrid | SurfaceTarget | dict) -> TargetGrid | SurfaceTarget:
+    if isinstance(grid, (TargetGrid, SurfaceTarget)):
         return grid
+    if isinstance(grid, str) and builtin_surface(grid):
+        return builtin_surface(grid)
     if isinstance(grid, dict):
         return grid_from_spec(grid["shape"], grid["affine"], grid.get("name", "custom"))
     if not isinstance(grid, str):
@@ -144,13 +159,20 @@ def _resolve_grid(grid: str | TargetGrid | dict) -> TargetGrid:
 def _spec_id(doc: dict[str, Any]) -> str:
     keep = {k: doc.get(k) for k in ("grid_id", "mask_sha256", "method", "stat", "p_sided", "zero_as_missing",
                                     "background", "kinds")}
+    if doc.get("projection") is not None:  # surface sets only: volume sets keep their ids
+        keep["projection"] = doc["projection"]
     return hashlib.sha256(json.dumps(keep, sort_keys=True).encode()).hexdigest()[:16]
 
 
-def feature_key(sha256: str, spec: dict[str, Any], dof: float | None, model_mask_sha256: str | None = None) -> str:
-    text = "|".join([sha256, spec["grid_id"], spec["mask_sha256"], spec["method"], spec["stat"],
-                     spec["p_sided"], str(spec["zero_as_missing"]), spec["background"], model_mask_sha256 or "",
-                     "" if dof is None or spec["stat"] == "native" else f"{dof:.6g}", __version__])
+def feature_key(sha256: str, spec: dict[str, Any], dof: float | None, model_mask_sha256: str | None = None,
+                more: str = "") -> str:
+    """Hash of everything a row's values depend on; ``more`` adds an item's other sources (a hemisphere)."""
+    parts = [sha256, spec["grid_id"], spec["mask_sha256"], spec["method"], spec["stat"],
+             spec["p_sided"], str(spec["zero_as_missing"]), spec["background"], model_mask_sha256 or "",
+             "" if dof is None or spec["stat"] == "native" else f"{dof:.6g}", __version__]
+    if spec.get("projection") is not None:
+        parts += [json.dumps(spec["projection"], sort_keys=True), more]
+    text = "|".join(parts)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
 
@@ -164,6 +186,12 @@ class _Item:
     key: str
     mask_path: str | None = None  # the model's own mask
     mask_sha256: str | None = None
+    geometry: str = "volume"  # of the source: volume, surface (a hemisphere pair) or grayordinates
+    hemi: str | None = None  # surface: the hemisphere of path
+    path_r: str | None = None  # surface: the right hemisphere's file (path is then the left's)
+    sha256_r: str | None = None
+    mask_path_r: str | None = None
+    mask_sha256_r: str | None = None
 
 
 @dataclass
@@ -179,6 +207,7 @@ class _Batch:
     background: str = "auto"
     coverage_only: bool = False
     sketch_seed: int = 0
+    projection: dict[str, Any] | None = None  # surface sets: how volume maps are projected
 
 
 def zero_background(vol: np.ndarray, min_fraction: float = 0.01) -> np.ndarray | None:
@@ -234,6 +263,18 @@ def _vector(item: _Item, b: _Batch, indices: np.ndarray | None, grid: TargetGrid
     A statistic transform (t or p to z) is not linear, so it does not commute with
     interpolation: it runs on the source voxels, before resampling.
     """
+    if isinstance(b.grid, SurfaceTarget):
+        return _surface_vector(item, b, indices, masks)
+    vol, facts, conversion, missing_from, clipped = _source_volume(item, b, masks)
+    out, path = resample(np.asarray(vol, dtype=np.float32), facts.affine_array, grid or b.grid, b.method,
+                         return_path=True)
+    flat = out.reshape(-1)
+    vec = flat if indices is None else flat[indices]
+    return np.asarray(vec, dtype=np.float32), conversion, path, missing_from, clipped
+
+
+def _source_volume(item: _Item, b: _Batch, masks: dict[str, np.ndarray] | None):
+    """A volume map's values on its own grid: missing region as NaN, statistic converted."""
     converting = b.stat == "z" and item.stat in ("t", "p")
     # p close to 1 (z < -5) is not representable in float32: convert from the file's precision
     vol, facts = read_volume(item.path, expect_sha256=item.sha256, dtype=np.float64 if converting else np.float32)
@@ -253,11 +294,60 @@ def _vector(item: _Item, b: _Batch, indices: np.ndarray | None, grid: TargetGrid
     if b.stat == "z" and item.stat == "p":
         clipped = int(np.count_nonzero(vol == 0))  # p = 0 where the model has data: clipped, reported
     vol, conversion = convert(vol, item.stat, b.stat, dof=item.dof, sided=b.p_sided, where=item.path)
-    out, path = resample(np.asarray(vol, dtype=np.float32), facts.affine_array, grid or b.grid, b.method,
-                         return_path=True)
-    flat = out.reshape(-1)
-    vec = flat if indices is None else flat[indices]
-    return np.asarray(vec, dtype=np.float32), conversion, path, missing_from, clipped
+    return vol, facts, conversion, missing_from, clipped
+
+
+def _surface_vector(item: _Item, b: _Batch, indices: np.ndarray | None, masks: dict[str, Any] | None
+                    ) -> tuple[np.ndarray, str, str, str, int]:
+    """One row of a surface set: both hemispheres on the target mesh (left, then right)."""
+    target: SurfaceTarget = b.grid  # type: ignore[assignment]
+    cache = {} if masks is None else masks
+    meshes = cache.get("_meshes")
+    if meshes is None:
+        meshes = cache["_meshes"] = fsaverage_meshes()
+    out = np.full(target.n_vertices, np.nan, dtype=np.float32)
+    if item.geometry == "volume":
+        vol, facts, conversion, missing_from, clipped = _source_volume(item, b, cache)
+        out[:] = project_volume(np.asarray(vol, dtype=np.float32), facts.affine_array, target, b.projection, meshes)
+        return (out if indices is None else out[indices]), conversion, "vol_to_surf", missing_from, 0
+    if item.geometry == "grayordinates":
+        halves = cifti_cortex(item.path, read_surface_values(item.path, item.sha256))
+        sources = {h: (v, None) for h, v in halves.items()}
+    else:
+        sources = {}
+        for hemi, path, sha, mpath, msha in (("L", item.path, item.sha256, item.mask_path, item.mask_sha256),
+                                             ("R", item.path_r, item.sha256_r, item.mask_path_r, item.mask_sha256_r)):
+            if path is not None:
+                sources[hemi] = (read_surface_values(path, sha), (mpath, msha) if mpath else None)
+    missing = ["model-mask"] if any(m for _, m in sources.values()) else []
+    conversion, paths, clipped = "none", set(), 0
+    for hemi in ("L", "R"):
+        if hemi not in sources:
+            missing.append(f"no-hemi-{hemi}")
+            continue
+        vals, model_mask = sources[hemi]
+        vals = vals.astype(np.float64 if b.stat == "z" and item.stat in ("t", "p") else np.float32)
+        if model_mask is not None:
+            mvals = read_surface_values(*model_mask)
+            if mvals.shape != vals.shape:
+                raise FeatureError(f"{model_mask[0]}: the model's mask has {mvals.size} vertices, the map "
+                                   f"{vals.size}")
+            vals[~(np.nan_to_num(mvals) != 0)] = np.nan
+        if b.zero_as_missing:
+            vals[vals == 0] = np.nan
+        if b.stat == "z" and item.stat == "p":
+            clipped += int(np.count_nonzero(vals == 0))
+        vals, conversion = convert(vals, item.stat, b.stat, dof=item.dof, sided=b.p_sided,
+                                   where=item.path or item.path_r or "")
+        n_target = target.n_left if hemi == "L" else target.n_right
+        idx = density_index(vals.size, n_target, hemi, meshes)
+        paths.add("surface" if idx is None else f"nearest-vertex:{vals.size}")
+        out[target.part(hemi)] = vals if idx is None else vals[idx]
+    if b.zero_as_missing:
+        missing.append("zeros")
+    missing_from = "+".join(missing) or "none"
+    return (out if indices is None else out[indices]), conversion, "+".join(sorted(paths)) or "none", \
+        missing_from, clipped
 
 
 def _run_batch(b: _Batch) -> dict[str, Any]:
@@ -277,7 +367,10 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
             done += 1
         return {"counts": counts, "n": done, "problems": problems}
     indices = np.load(os.path.join(b.set_dir, "mask.npy"))
-    box, local = crop_grid(b.grid, indices)  # resample the mask's bounding box only
+    if isinstance(b.grid, SurfaceTarget):
+        box, local = None, indices
+    else:
+        box, local = crop_grid(b.grid, indices)  # resample the mask's bounding box only
     shard_path = os.path.join(b.set_dir, "shards", b.shard)
     tmp = shard_path + f".{uuid.uuid4().hex}.tmp"
     # built in memory and written with write(): a full disk is then an OSError (ENOSPC), where
@@ -343,24 +436,35 @@ def _n_items(b: _Batch) -> int:
 def _problem(it: _Item, exc: Exception) -> dict[str, Any]:
     code = type(exc).__name__.replace("Error", "").lower() or "error"
     reason = str(exc)
-    if reason.startswith(it.path + ": "):
-        reason = reason[len(it.path) + 2:]  # the row names the file already
+    path = it.path or it.path_r or ""
+    if reason.startswith(path + ": "):
+        reason = reason[len(path) + 2:]  # the row names the file already
     remedy = "re-run 'mapstore index' if the file changed" if "index" in reason else \
         "fix or exclude the map (see the reason)"
-    return {"map_id": it.map_id, "path": it.path, "code": code, "reason": reason, "remedy": remedy}
+    return {"map_id": it.map_id, "path": path, "code": code, "reason": reason, "remedy": remedy}
 
 
 _Z_READY = ("t", "p", "z")
 
 
-def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], stat: str
-                 ) -> tuple[list[dict[str, Any]], dict[str, int]]:
-    """Maps the set takes, and how many the defaults left out (and why)."""
+def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], stat: str, surface: bool = False,
+                 volumes: bool = True) -> tuple[list[dict[str, Any]], dict[str, int]]:
+    """Maps the set takes, and how many the defaults left out (and why).
+
+    A surface set takes a hemisphere pair as one map, under the left file's id (the right file
+    is its ``linked_map``); an unpaired hemisphere comes alone, the other half missing.
+    """
     q = ("SELECT m.map_id, m.dataset, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, "
-         "m.model_mask, m.model_mask_sha256, coalesce(m.geometry, 'volume') AS geometry FROM maps m "
-         "JOIN datasets d USING (dataset)")
-    if where:
-        q += f" WHERE {where}"
+         "m.model_mask, m.model_mask_sha256, coalesce(m.geometry, 'volume') AS geometry, m.hemi, "
+         "r.relpath AS relpath_r, r.sha256 AS sha256_r, r.model_mask AS model_mask_r, "
+         "r.model_mask_sha256 AS model_mask_sha256_r, r.n_volumes AS n_volumes_r FROM maps m "
+         "JOIN datasets d USING (dataset) LEFT JOIN maps r ON r.map_id = m.linked_map AND m.hemi = 'L' "
+         "AND r.hemi = 'R'")
+    conds = [f"({where})"] if where else []
+    if surface:  # a pair comes once, as its left file
+        conds.append("NOT (coalesce(m.geometry, 'volume') = 'surface' AND m.hemi = 'R' AND m.linked_map IS NOT NULL)")
+    if conds:
+        q += " WHERE " + " AND ".join(conds)
     q += " ORDER BY m.dataset, m.relpath"  # batches (and so shards) hold one dataset's maps
     try:
         rows = cat.sql(q).to_pylist()
@@ -370,11 +474,13 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], stat: 
     keep = []
     for r in rows:
         kind = r["map_kind"] or "contrast"  # tables from before map kinds were recorded
-        if r["geometry"] != "volume":
+        if not surface and r["geometry"] != "volume":
             why = f"{r['geometry']} maps (a volume set takes volume maps only)"
+        elif surface and r["geometry"] == "volume" and not volumes:
+            why = "volume maps (projecting volumes onto the mesh was turned off)"
         elif kind not in kinds:
             why = "model maps (no contrast: residuals, fit; --model-maps takes them)"
-        elif (r["n_volumes"] or 1) > 1:
+        elif max(r["n_volumes"] or 1, r["n_volumes_r"] or 1) > 1:
             why = "multi-volume maps (e.g. an F contrast's effect, one volume per contrast row)"
         elif stat == "z" and r["stat"] not in _Z_READY:
             why = "maps with no z equivalent (only t, p and z maps go into a z set)"
@@ -385,11 +491,20 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], stat: 
     return keep, left
 
 
-def _make_mask(mask: str | os.PathLike[str] | np.ndarray, grid: TargetGrid) -> Mask | float:
+def _make_mask(mask: str | os.PathLike[str] | np.ndarray, grid: TargetGrid | SurfaceTarget) -> Mask | float:
     """A Mask, or a coverage fraction (float) when the mask comes from the maps themselves."""
     if isinstance(mask, np.ndarray):
         return mask_from_array(grid, mask, "array")
     m = str(mask)
+    if isinstance(grid, SurfaceTarget):
+        if m in ("brain", "cortex"):
+            return mask_from_array(grid, cortex_mask(grid), f"{grid.name}-cortex")
+        if m == "all":
+            return mask_from_array(grid, np.ones(grid.n_vertices, bool), f"{grid.name}-all")
+        if m not in ("intersection",) and not m.startswith("coverage:"):
+            raise ParameterError(f"a surface set's mask must be 'cortex' (the default), 'all', 'intersection', "
+                                 f"'coverage:FRACTION' or a boolean array of {grid.n_vertices} vertices (left, "
+                                 f"then right); got {m!r}")
     if m in ("brain", "MNI152-brain"):
         return mni152_brain_mask(grid)
     if m == "intersection":
@@ -421,6 +536,8 @@ def build_features(
     background: str = "auto",
     model_maps: bool = False,
     where: str | None = None,
+    projection: dict[str, Any] | None = None,
+    volumes: bool = True,
     jobs: int | None = None,
     scheduler: Any = None,
     batch_size: int | None = None,
@@ -440,6 +557,9 @@ def build_features(
     grid : str, TargetGrid or dict, default="MNI152-2mm"
         ``MNI152-1mm``/``MNI152-2mm``/``MNI152-3mm`` (nilearn's template grids), a
         reference image path, a JSON file ``{"shape": ..., "affine": ...}``, or a grid.
+        ``fsaverage5`` makes a surface set: both hemispheres of nilearn's fsaverage5 in one
+        row (left vertices, then right), surface maps resampled between fsaverage densities
+        by nearest vertex on the sphere, volume maps projected (``projection``).
     mask : str, path or ndarray, default="brain"
         ``brain`` (nilearn's MNI152 brain mask on the grid), ``intersection`` (voxels
         every selected map covers), ``coverage:F`` (covered by at least a fraction F of
@@ -462,6 +582,12 @@ def build_features(
         a set holds contrast maps only.  Multi-volume maps are always left out (reported).
     where : str, optional
         SQL predicate over ``maps`` (aliased ``m``) choosing which maps to include.
+    projection : dict, optional
+        Surface sets: ``nilearn.surface.vol_to_surf`` parameters for volume maps (default
+        :data:`mapstore.surface.DEFAULT_PROJECTION`: five depths between the white and pial
+        surfaces, linear interpolation); recorded in every row's feature key.
+    volumes : bool, default=True
+        Surface sets: project volume maps onto the mesh (False leaves them out).
     jobs : int, optional
         Local worker processes (default: all cores).
     scheduler : dask.distributed.Client or str, optional
@@ -482,18 +608,25 @@ def build_features(
     default_settings = (grid == "MNI152-2mm" and str(mask) == "brain" and method == "linear"
                         and stat == "native" and not zero_as_missing and background == "auto" and not model_maps)
     name = _set_name(name, default_settings, target, mask, method, stat)
+    surface = isinstance(target, SurfaceTarget)
+    proj = None
+    if surface:
+        method = "nearest-vertex"
+        proj = check_projection(projection) if volumes else {"volumes": "left out"}
+    elif projection is not None:
+        raise ParameterError("projection applies to surface sets (grid='fsaverage5') only")
     store_path = cat.path
     set_dir = store_path / "features" / name
     run = dict(jobs=jobs, scheduler=scheduler, progress=progress)
     with write_lock(store_path):
         head = read_head(store_path)
         kinds = ("contrast", "model") if model_maps else ("contrast",)
-        rows_sel, left_out = _select_maps(Catalog(store_path), where, kinds, stat)
+        rows_sel, left_out = _select_maps(Catalog(store_path), where, kinds, stat, surface, volumes)
         batch_n = batch_size or max(4, min(64, len(rows_sel) // (jobs * 4) + 1))
         common = dict(grid=target, method=method, stat=stat, p_sided=p_sided, zero_as_missing=zero_as_missing,
-                      background=background)
+                      background=background, projection=proj)
         mk, coverage_problems = _resolve_mask(mask, target, rows_sel, set_dir, batch_n, common, run)
-        spec = _set_spec(name, target, mk, method, stat, p_sided, zero_as_missing, background, kinds, where)
+        spec = _set_spec(name, target, mk, method, stat, p_sided, zero_as_missing, background, kinds, where, proj)
         existing = head.features.get(name)
         old_rows = _previous_rows(store_path, name, existing, spec)
         _write_set_files(set_dir, spec, mk, fresh=not existing)
@@ -536,6 +669,8 @@ def _check_options(method: str, stat: str, p_sided: str, background: str, batch_
 
 def _set_name(name: str | None, default_settings: bool, target: TargetGrid, mask: Any, method: str,
               stat: str) -> str:
+    if name is None and isinstance(target, SurfaceTarget):
+        name = f"{target.name}-{'cortex' if str(mask) == 'brain' else Path(str(mask)).name}-{stat}"
     if name is None:
         name = DEFAULT_SET if default_settings else \
             f"{target.name}-{Path(str(mask)).name if not isinstance(mask, np.ndarray) else 'array'}-{method}-{stat}"
@@ -548,7 +683,7 @@ def _resolve_mask(mask: Any, target: TargetGrid, rows_sel: list[dict[str, Any]],
     mk = _make_mask(mask, target)
     if not isinstance(mk, float):
         return mk, []
-    items = [_item(r, "") for r in rows_sel]
+    items = [_item(r, "", common.get("projection")) for r in rows_sel]
     batches = [_Batch(str(set_dir), "", items[i:i + batch_n], coverage_only=True, **common)
                for i in range(0, len(items), batch_n)]
     counts = np.zeros(target.n_voxels, dtype=np.int64)
@@ -562,14 +697,16 @@ def _resolve_mask(mask: Any, target: TargetGrid, rows_sel: list[dict[str, Any]],
         raise FeatureError("no selected map could be read to compute a coverage mask")
     need = int(np.ceil(mk * n_ok - 1e-9))
     label = "intersection" if mk == 1.0 else f"coverage>={mk:g}"
-    # within the brain: fields of view reach far outside it
-    inside = mni152_brain_mask(target).to_volume().reshape(-1)
+    # within the brain (the cortex): fields of view reach far outside it
+    base = _make_mask("brain", target)
+    inside = base.to_volume().reshape(-1)  # type: ignore[union-attr]
     return mask_from_array(target, ((counts >= max(need, 1)) & inside).reshape(target.shape),
-                           f"MNI152-brain&{label}"), problems
+                           f"{base.name}&{label}"), problems  # type: ignore[union-attr]
 
 
-def _set_spec(name: str, target: TargetGrid, mk: Mask, method: str, stat: str, p_sided: str,
-              zero_as_missing: bool, background: str, kinds: tuple[str, ...], where: str | None) -> dict[str, Any]:
+def _set_spec(name: str, target: TargetGrid | SurfaceTarget, mk: Mask, method: str, stat: str, p_sided: str,
+              zero_as_missing: bool, background: str, kinds: tuple[str, ...], where: str | None,
+              projection: dict[str, Any] | None = None) -> dict[str, Any]:
     """``set.json``: everything a row's value depends on, and its id."""
     spec = {
         "name": name, "grid": target.to_json(), "grid_id": target.grid_id,
@@ -578,6 +715,12 @@ def _set_spec(name: str, target: TargetGrid, mk: Mask, method: str, stat: str, p
         "zero_as_missing": zero_as_missing, "background": background, "kinds": list(kinds), "where": where,
         "versions": _library_versions(),
     }
+    if isinstance(target, SurfaceTarget):
+        import nilearn
+
+        spec["geometry"] = "surface"
+        spec["projection"] = projection
+        spec["versions"]["nilearn"] = nilearn.__version__
     spec["spec_id"] = _spec_id(spec)
     return spec
 
@@ -609,7 +752,9 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: dict[str, Any], old_rows: p
     wanted: dict[str, _Item] = {}
     dataset_of: dict[str, str] = {}
     for r in rows_sel:
-        wanted[r["map_id"]] = _item(r, feature_key(r["sha256"], spec, r["dof"], r["model_mask_sha256"]))
+        more = f"{r.get('sha256_r') or ''}|{r.get('model_mask_sha256_r') or ''}|{r.get('geometry')}"
+        wanted[r["map_id"]] = _item(r, feature_key(r["sha256"], spec, r["dof"], r["model_mask_sha256"], more),
+                                    common.get("projection"))
         dataset_of[r["map_id"]] = r["dataset"]
     # keyed by map too: byte-identical copies of a file share a feature key, not a row
     have = {mk_: i for i, mk_ in enumerate(zip(old_rows["map_id"].to_pylist(),
@@ -685,11 +830,22 @@ def _raise_if_full(exc: OSError, store: Path, created: list[Path]) -> None:
                     "and run the command again") from None
 
 
-def _item(r: dict[str, Any], key: str) -> _Item:
+def _item(r: dict[str, Any], key: str, projection: dict[str, Any] | None = None) -> _Item:
     root = r["root"]
-    mask = r.get("model_mask")
-    return _Item(r["map_id"], os.path.join(root, r["relpath"]), r["sha256"], r["stat"], r["dof"], key,
-                 os.path.join(root, mask) if mask else None, r.get("model_mask_sha256"))
+
+    def at(rel: str | None) -> str | None:
+        return os.path.join(root, rel) if rel else None
+
+    it = _Item(r["map_id"], at(r["relpath"]), r["sha256"], r["stat"], r["dof"], key, at(r.get("model_mask")),
+               r.get("model_mask_sha256"), r.get("geometry") or "volume", r.get("hemi"))
+    if it.geometry == "surface":
+        if r.get("hemi") == "R":  # an unpaired right hemisphere
+            it.path_r, it.sha256_r, it.mask_path_r, it.mask_sha256_r = it.path, it.sha256, it.mask_path, it.mask_sha256
+            it.path = it.sha256 = it.mask_path = it.mask_sha256 = None
+        else:
+            it.path_r, it.sha256_r = at(r.get("relpath_r")), r.get("sha256_r")
+            it.mask_path_r, it.mask_sha256_r = at(r.get("model_mask_r")), r.get("model_mask_sha256_r")
+    return it
 
 
 def _collect_feature_garbage(store: Path, set_dir: Path, current: str, previous: str | None) -> None:
@@ -732,8 +888,12 @@ class FeatureSet:
             self._rows_file = pq.ParquetFile(self._rows_path)  # the footer only: columns are read when needed
         except (OSError, ValueError, pa.ArrowException) as exc:
             raise FeatureError(f"{self.path}: feature set {name!r} is unreadable ({exc})") from None
-        self.grid = grid_from_spec(self.spec["grid"]["shape"],
-                                   np.reshape(self.spec["grid"]["affine"], (4, 4)), self.spec["grid"]["name"])
+        self.geometry: str = self.spec.get("geometry") or "volume"
+        if self.geometry == "surface":
+            self.grid: TargetGrid | SurfaceTarget = surface_from_spec(self.spec["grid"])
+        else:
+            self.grid = grid_from_spec(self.spec["grid"]["shape"],
+                                       np.reshape(self.spec["grid"]["affine"], (4, 4)), self.spec["grid"]["name"])
         self._indices: np.ndarray | None = None
         self._shards: dict[str, np.ndarray] = {}
         self._columns: dict[str, pa.ChunkedArray | None] = {}
@@ -929,9 +1089,12 @@ class FeatureSet:
         return vol.reshape(self.grid.shape)
 
     def to_image(self, vector: np.ndarray):
-        """A nibabel NIfTI image of a row (or of a decoder's coefficients) on the set's grid."""
+        """An image of a row (or of a decoder's coefficients): NIfTI (nibabel) on a volume set's grid,
+        a nilearn ``SurfaceImage`` on a surface set's mesh (NaN outside the mask: the medial wall)."""
         import nibabel as nib
 
+        if isinstance(self.grid, SurfaceTarget):
+            return to_surface_image(self.unmask(vector), self.grid)
         img = nib.Nifti1Image(self.unmask(vector), self.grid.affine_array)
         img.header.set_xyzt_units("mm")
         return img

@@ -253,9 +253,10 @@ class Selection:
         return self._X
 
     def to_image(self, vector):
-        """A NIfTI image of a row of ``X`` or of a decoder's weights (one per column of ``X``).
+        """An image of a row of ``X`` or of a decoder's weights (one per column of ``X``).
 
-        Values go back to their voxels on the feature set's grid; every other voxel is NaN.
+        Values go back to their voxels on the feature set's grid (a NIfTI image), or to their
+        vertices on a surface set's mesh (a nilearn ``SurfaceImage``); everything else is NaN.
         """
         v = np.asarray(vector, dtype=np.float32).reshape(-1)
         voxels = self.voxels
@@ -345,7 +346,8 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
     fs = store.features(features)
     cat = store.catalog
     lab = _labels(cat, with_broader)
-    q, base_q = _selection_sql(cat, fs.name, where, task, stat, _concept_ids(lab, concepts, with_broader))
+    q, base_q = _selection_sql(cat, fs.name, where, task, stat, _concept_ids(lab, concepts, with_broader),
+                               fs.geometry == "surface")
     try:
         df = cat.sql(q).to_pandas()
         n_matching = cat.sql(base_q).column(0)[0].as_py()
@@ -404,8 +406,12 @@ def _concept_ids(lab, concepts: list[str] | None, with_broader: bool) -> list[st
 
 
 def _selection_sql(cat, feature_set: str, where: str | None, task: list[str] | None, stat: list[str] | None,
-                   ids: list[str] | None) -> tuple[str, str]:
-    """The query of the selected maps with their feature rows, and the count of maps matching at all."""
+                   ids: list[str] | None, pairs: bool = False) -> tuple[str, str]:
+    """The query of the selected maps with their feature rows, and the count of maps matching at all.
+
+    In a surface set (``pairs``) a hemisphere pair is one row, under its left file's map_id: the
+    right file of a pair is not counted as a map without a row.
+    """
     maps_cols = set(cat.sql("DESCRIBE maps")["column_name"].to_pylist())
     p_cols = [c for c in cat.sql("DESCRIBE participants")["column_name"].to_pylist()
               if c not in maps_cols and c != "participant_id"]
@@ -431,7 +437,11 @@ def _selection_sql(cat, feature_set: str, where: str | None, task: list[str] | N
          f"\"row\", row_sha256 FROM features WHERE feature_set = '{feature_set}' AND map_id IN (SELECT map_id FROM s)) "
          "SELECT s.*, f.coverage, f.feature_key, f.conversion, f.shard AS feature_shard, f.\"row\" AS feature_row, "
          "f.row_sha256 AS feature_row_sha256 FROM s JOIN f ON f.map_id = s.map_id ORDER BY s.map_id")
-    return q, f"SELECT count(*) FROM ({chosen})"
+    count = f"SELECT count(*) FROM ({chosen})"
+    if pairs:
+        count += (" AS c WHERE NOT (coalesce(c.geometry, 'volume') = 'surface' AND c.hemi = 'R' AND c.linked_map "
+                  "IN (SELECT map_id FROM maps WHERE hemi = 'L'))")
+    return q, count
 
 
 def _targets(df, target: str, concepts: list[str] | None):

@@ -138,6 +138,9 @@ class FeatureSetSpec(_JsonRecord):
     where: str | None = None
     versions: dict[str, str] = field(default_factory=dict)
     spec_id: str = ""
+    geometry: str = "volume"  # volume, surface or parcels
+    projection: dict[str, Any] | None = None  # surface sets: how volume maps are projected onto the mesh
+    parcels: dict[str, Any] | None = None  # parcel sets: the atlas, the reducer and the source set
 
     @classmethod
     def read(cls, folder: Path) -> "FeatureSetSpec":

@@ -197,3 +197,143 @@ def test_unpaired_hemisphere_is_reported_and_volume_sets_leave_surfaces_out(surf
     assert rep.built == 1
     assert rep.left_out["surface maps (a volume set takes volume maps only)"] == 2 * (5 + 2) * 2 - 1  # (5 contrast + 2 model maps) x 2 hemispheres x 2 subjects, one removed
     assert rep.left_out["grayordinates maps (a volume set takes volume maps only)"] == 1
+
+
+MNI2 = np.array([[-2.0, 0, 0, 90], [0, 2, 0, -126], [0, 0, 2, -72], [0, 0, 0, 1]])
+
+
+def smooth_volume(seed: int) -> np.ndarray:
+    """A smooth random field on the MNI 2 mm grid, no zeros (no background)."""
+    from scipy import ndimage
+
+    r = np.random.default_rng(seed).normal(size=(91, 109, 91))
+    return (ndimage.gaussian_filter(r, 4) * 50 + 3).astype(np.float32)
+
+
+@pytest.fixture(scope="module")
+def pooled(surface_study, tmp_path_factory):
+    """The nilearn surface study, a volume study, an fsaverage4 pair and an unpaired hemisphere: one store."""
+    base = tmp_path_factory.mktemp("pooled")
+    vol = base / "volumetric"
+    (vol / "dataset_description.json").parent.mkdir(parents=True)
+    (vol / "dataset_description.json").write_text(json.dumps({"Name": "volumetric", "BIDSVersion": "1.9.0",
+                                                              "DatasetType": "derivative"}))
+    v1 = smooth_volume(1)
+    v2 = smooth_volume(2)
+    v2[:, :40] = np.nan  # a posterior part missing
+    for sub, data in (("01", v1), ("02", v2)):
+        write_map(vol / f"sub-{sub}" / f"sub-{sub}_task-viewing_space-MNI152NLin2009cAsym_contrast-faces_stat-t_"
+                  "statmap.nii.gz", data, MNI2)
+    coarse = base / "coarse"
+    (coarse / "dataset_description.json").parent.mkdir(parents=True)
+    (coarse / "dataset_description.json").write_text(json.dumps({"Name": "coarse", "BIDSVersion": "1.9.0",
+                                                                 "DatasetType": "derivative"}))
+    rng = np.random.default_rng(9)
+    field4 = {h: rng.normal(size=2562) for h in "LR"}
+    for h in "LR":
+        gifti(coarse / "sub-01" / f"sub-01_task-viewing_hemi-{h}_space-fsaverage4_contrast-faces_stat-t_statmap"
+              ".func.gii", [field4[h]])
+    field6 = rng.normal(size=40962)
+    gifti(coarse / "sub-02" / "sub-02_task-viewing_hemi-L_space-fsaverage6_contrast-faces_stat-t_statmap.func.gii",
+          [field6])
+    store = base / "store"
+    mapstore.index([surface_study[0], vol, coarse], store, progress=False)
+    rep = mapstore.build_features(store, grid="fsaverage5", progress=False, jobs=2)
+    return {"store": store, "vol": vol, "coarse": coarse, "v": (v1, v2), "field4": field4, "field6": field6,
+            "report": rep, "surface": surface_study[0]}
+
+
+def _row(store, relpath_like: str):
+    s = mapstore.open(store)
+    fs = s.features("fsaverage5-cortex-native")
+    (mid,) = [r["map_id"] for r in s.sql(f"SELECT map_id FROM maps WHERE relpath LIKE '{relpath_like}'").to_pylist()]
+    full = np.full(fs.grid.n_vertices, np.nan, np.float32)
+    full[fs.mask_indices] = fs.matrix([mid])[0]
+    return fs, mid, full
+
+
+def test_surface_set_joins_hemispheres_left_then_right(pooled):
+    from nilearn.datasets import load_fsaverage
+
+    assert pooled["report"].failed == 0
+    fs, mid, full = _row(pooled["store"], "%sub-01_task-viewing_hemi-L_den-10242_contrast-facesminusplaces_stat-z%")
+    assert fs.geometry == "surface" and full.size == 2 * N5
+    root = pooled["surface"] / "sub-01"
+    # nibabel reads the two files nilearn wrote (reference): the row is left's values, then right's
+    ref = np.concatenate([nib.load(str(root / f"sub-01_task-viewing_hemi-{h}_den-10242_contrast-facesminusplaces_"
+                                              "stat-z_statmap.gii")).darrays[0].data for h in "LR"])
+    keep = fs.mask_indices
+    np.testing.assert_array_equal(full[keep], ref[keep].astype(np.float32))
+    # the medial wall is missing: not in the mask, NaN in the image
+    assert fs.n_voxels < 2 * N5 and np.isnan(np.delete(full, keep)).all()
+    img = fs.to_image(fs.matrix([mid])[0])
+    mesh = load_fsaverage("fsaverage5")["pial"]
+    assert img.mesh.parts["left"].n_vertices == mesh.parts["left"].n_vertices == N5
+    np.testing.assert_array_equal(np.asarray(img.data.parts["right"]), full[N5:])
+
+
+def test_volume_map_row_equals_vol_to_surf_by_hand(pooled):
+    from nilearn.datasets import load_fsaverage
+    from nilearn.surface import vol_to_surf
+
+    fsa = load_fsaverage("fsaverage5")
+    fs = mapstore.open(pooled["store"]).features("fsaverage5-cortex-native")
+    proj = fs.spec["projection"]
+    for sub, data in zip(("01", "02"), pooled["v"]):
+        _, _, full = _row(pooled["store"], f"sub-{sub}/%space-MNI152%")
+        img = nib.Nifti1Image(np.nan_to_num(data, nan=0.0), MNI2)
+        mask = None if np.isfinite(data).all() else nib.Nifti1Image(np.isfinite(data).astype(np.uint8), MNI2)
+        # nilearn's vol_to_surf called by hand with the parameters the set records (reference library)
+        ref = np.concatenate([vol_to_surf(img, fsa["pial"].parts[p], inner_mesh=fsa["white_matter"].parts[p],
+                                          kind=proj["kind"], interpolation=proj["interpolation"],
+                                          depth=proj["depth"], mask_img=mask) for p in ("left", "right")])
+        keep = fs.mask_indices
+        np.testing.assert_allclose(full[keep], ref[keep], rtol=1e-5, atol=1e-4, equal_nan=True)
+        if sub == "02":
+            assert np.isnan(full[keep]).any() and np.isfinite(full[keep]).any()
+
+
+def test_densities_resample_by_nearest_vertex_on_the_sphere(pooled):
+    from nilearn.datasets import load_fsaverage
+    from scipy.spatial import cKDTree
+
+    sphere = load_fsaverage("fsaverage5")["sphere"]
+    _, _, full = _row(pooled["store"], "%hemi-L_space-fsaverage4%")
+    for h, part, sl in (("L", "left", slice(0, N5)), ("R", "right", slice(N5, 2 * N5))):
+        xyz = np.asarray(sphere.parts[part].coordinates)
+        # scipy's KD-tree nearest neighbour on nilearn's fsaverage5 sphere; fsaverage4 is its first 2562 vertices
+        _, idx = cKDTree(xyz[:2562]).query(xyz)
+        want = pooled["field4"][h][idx].astype(np.float32)
+        got = full[sl]
+        ok = np.isfinite(got)
+        np.testing.assert_array_equal(got[ok], want[ok])
+    # a finer density is subsampled (the coarser mesh's vertices come first); an unpaired left hemisphere
+    fs, mid, full6 = _row(pooled["store"], "%hemi-L_space-fsaverage6%")
+    ok = np.isfinite(full6[:N5])
+    np.testing.assert_array_equal(full6[:N5][ok], pooled["field6"][:N5][ok].astype(np.float32))
+    assert np.isnan(full6[N5:]).all()
+    s = mapstore.open(pooled["store"])
+    (row,) = s.sql(f"SELECT coverage, missing_from, resample_path FROM features WHERE map_id = '{mid}'").to_pylist()
+    assert row["missing_from"] == "no-hemi-R" and 0.45 < row["coverage"] < 0.55
+    assert row["resample_path"] == "nearest-vertex:40962"
+
+
+def test_surface_selection_export_and_leakage_guard(pooled, tmp_path):
+    s = mapstore.open(pooled["store"])
+    sel = s.select(features="fsaverage5-cortex-native", stat=["t", "z"], group_by="study", missing="zero")
+    # hemisphere pairs are one map each: no right-hemisphere file counted as missing a row
+    assert "no feature row" not in sel.dropped
+    assert set(sel.meta["study"]) == {"lateral", "volumetric", "coarse"}
+    assert sel.X.shape == (len(sel), s.features("fsaverage5-cortex-native").n_voxels)
+    img = sel.to_image(sel.X[0])
+    assert img.shape == (2 * N5,)
+    splits = sel.splits("leave-one-group-out")
+    for train, test in splits:
+        assert not set(sel.meta["participant"].iloc[train]) & set(sel.meta["participant"].iloc[test])
+    rep = s.export(tmp_path / "out", sel)
+    from mapstore.export import verify
+
+    assert verify(Path(rep.out) / "manifest.json").ok
+    man = json.loads((Path(rep.out) / "manifest.json").read_text())
+    assert man["feature_set"]["grid"]["kind"] == "surface"
+    assert s.check("fsaverage5-cortex-native").count("error") == 0
