@@ -17,7 +17,22 @@ from .labels import LabelReport, label_store as label, load_vocabulary
 from .query import Selection
 from .header import HeaderFacts, read_header
 
+_LAZY = {"build_parcels": "parcels", "fit_parcellation": "parcels", "ParcelReducer": "parcels"}
+
+
+def __getattr__(name: str):
+    # parcels imports scikit-learn: loaded on first use, not with the package
+    if name in _LAZY:
+        import importlib
+
+        return getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
+    raise AttributeError(f"module 'mapstore' has no attribute {name!r}")
+
+
 __all__ = sorted([
+    "build_parcels",
+    "fit_parcellation",
+    "ParcelReducer",
     "ExportReport",
     "LabelReport",
     "Selection",

@@ -459,18 +459,19 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
 
 def _views(fs, vector: np.ndarray) -> np.ndarray:
     """A set's row as a picture: three slices of a volume set, four views of a surface set's hemispheres."""
-    if fs.geometry == "surface":
-        return surface_views(fs.unmask(vector), fs.grid)
-    return _slices(fs.unmask(vector), fs.grid.affine_array)
+    geometry, grid = fs.base
+    if geometry == "surface":
+        return surface_views(fs.on_base(vector), grid)
+    return _slices(fs.on_base(vector), grid.affine_array)
 
 
 def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report) -> None:
     """Each study's mean map over the MNI152 template (sulcal depth on a surface): red positive, blue negative."""
-    if fs.geometry == "surface":
-        bg = surface_views(sulcal_depth(fs.grid), fs.grid)
-        bg = -bg  # gyri light, sulci dark
+    geometry, grid = fs.base
+    if geometry == "surface":
+        bg = -surface_views(sulcal_depth(grid), grid)  # gyri light, sulci dark
     else:
-        bg = _slices(mni152_template(fs.grid), fs.grid.affine_array)
+        bg = _slices(mni152_template(grid), grid.affine_array)
     lo, hi = np.nanpercentile(bg, [2, 99.5]) if np.nanmax(bg) > 0 else (0.0, 1.0)
     grey = np.clip((np.nan_to_num(bg, nan=hi) - lo) / (hi - lo if hi > lo else 1.0), 0, 1)[..., None] \
         * np.array([235.0, 235, 235])  # the gaps between slices come out white
@@ -485,7 +486,7 @@ def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report
             strips.append(np.full((4, grey.shape[1], 3), 255.0))
         report.pictures[f"concept {concept!r}: mean standardised map per study, one row each ("
                         + ", ".join(s for s, _ in items) + "); red positive, blue negative, over the "
-                        + ("sulcal depth" if fs.geometry == "surface" else "MNI152 template")] = \
+                        + ("sulcal depth" if geometry == "surface" else "MNI152 template")] = \
             png_bytes(np.concatenate(strips[:-1], axis=0).astype(np.uint8))
 
 
@@ -628,7 +629,7 @@ def _coverage_pictures(fs, rows, stat_of, report, max_rows) -> None:
     legend = np.kron(np.linspace(0, 1, 256)[None, :], np.ones((12, 1)))
     report.pictures["colour scale: fraction of maps with a value, 0 (red) to 1 (blue); grey is outside "
                     "the mask"] = png_bytes(_colour(legend, 0.0, 1.0))
-    where = "left lateral, left medial, right lateral, right medial" if fs.geometry == "surface" else \
+    where = "left lateral, left medial, right lateral, right medial" if fs.base[0] == "surface" else \
         "axial, coronal, sagittal through the grid centre"
     report.pictures[f"coverage over {len(pick)} maps ({where})"] = png_bytes(_colour(_views(fs, frac), 0.0, 1.0))
     tiles = []

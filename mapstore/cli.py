@@ -142,9 +142,11 @@ def sql_cmd(store, query, fmt, out) -> None:
 @STORE_OPTION
 @click.option("--name", help="Feature set name (default: 'default' for the default settings).")
 @click.option("--grid", default="MNI152-2mm", show_default=True,
-              help="MNI152-1mm|MNI152-2mm|MNI152-3mm, a reference image, or a JSON {shape, affine} file.")
+              help="MNI152-1mm|MNI152-2mm|MNI152-3mm, a reference image, or a JSON {shape, affine} file; "
+                   "fsaverage5 for a surface set (both hemispheres per row, volume maps projected).")
 @click.option("--mask", default="brain", show_default=True,
-              help="brain (MNI152 brain mask), intersection, coverage:FRACTION, or a mask image.")
+              help="brain (MNI152 brain mask; on a surface: the cortex, medial wall out), all (surfaces), "
+                   "intersection, coverage:FRACTION, or a mask image.")
 @click.option("--method", type=click.Choice(["linear", "nearest", "cubic"]), default="linear", show_default=True)
 @click.option("--stat", type=click.Choice(["native", "z"]), default="native", show_default=True,
               help="Keep each map's stat, or convert t and p maps to z.")
@@ -156,20 +158,45 @@ def sql_cmd(store, query, fmt, out) -> None:
                    "the volume's edge) missing; keep counts it as data.")
 @click.option("--model-maps", is_flag=True, help="Also take model maps (a stat without a contrast).")
 @click.option("--where", help="SQL predicate over maps (alias m) choosing the maps, e.g. \"m.stat = 't'\".")
+@click.option("--projection", help="Surface sets: vol_to_surf parameters for volume maps, as JSON "
+              "(e.g. '{\"kind\": \"line\", \"radius\": 3}'); default: five depths, white to pial.")
+@click.option("--no-volumes", is_flag=True, help="Surface sets: leave volume maps out (no projection).")
 @click.option("--jobs", type=click.IntRange(min=1), default=None, help="Processes (default: all cores).")
 @click.option("--dask", "dask_address", help="Run on this Dask scheduler (e.g. tcp://host:8786).")
 @click.option("--list", "list_only", is_flag=True, help="List the store's feature sets and stop.")
 def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing, background, model_maps, where,
-                 jobs, dask_address, list_only) -> None:
-    """Resample every map once onto one grid and mask (a named feature set)."""
+                 projection, no_volumes, jobs, dask_address, list_only) -> None:
+    """Resample every map once onto one grid or mesh and mask (a named feature set)."""
     if list_only:
         click.echo(render_table(open_store(store).sql("SELECT * FROM feature_sets")))
         return
+    proj = None
+    if projection:
+        try:
+            proj = json.loads(projection)
+        except ValueError as exc:
+            raise click.BadParameter(f"not JSON ({exc})", param_hint="--projection") from None
     report = build_features(store, name, grid=grid, mask=mask, method=method, stat=stat,
-                                     p_sided=p_sided, zero_as_missing=zero_as_missing, background=background,
-                                     model_maps=model_maps, where=where,
-                                     jobs=jobs, scheduler=dask_address)
+                            p_sided=p_sided, zero_as_missing=zero_as_missing, background=background,
+                            model_maps=model_maps, where=where, projection=proj, volumes=not no_volumes,
+                            jobs=jobs, scheduler=dask_address)
     click.echo(report.summary())
+
+
+@cli.command("parcels")
+@STORE_OPTION
+@click.option("--atlas", required=True, help="A label image or a 4-D probabilistic atlas (NIfTI) for a volume "
+              "set; LEFT.gii,RIGHT.gii label files for a surface set; store:NAME for a stored parcellation.")
+@click.option("--source", help="The voxel or surface set to reduce (default: the default set).")
+@click.option("--name", help="Name of the parcel set (default: SOURCE-ATLAS).")
+def parcels_cmd(store, atlas, source, name) -> None:
+    """Reduce a feature set to one value per parcel of an atlas (a new feature set)."""
+    from .parcels import build_parcels
+
+    if "," in atlas and not atlas.startswith("store:"):
+        left, right = atlas.split(",", 1)
+        atlas = {"left": left, "right": right}
+    click.echo(build_parcels(store, atlas, source=source, name=name).summary())
 
 
 @cli.command("labels")

@@ -52,6 +52,7 @@ from .grid import (
     read_volume,
     resample,
 )
+from .atlas import ParcelGrid, paint
 from .copies import SKETCH_BITS, Sketcher, find_copies
 from .surface import (
     SurfaceTarget,
@@ -372,7 +373,6 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
     else:
         box, local = crop_grid(b.grid, indices)  # resample the mask's bounding box only
     shard_path = os.path.join(b.set_dir, "shards", b.shard)
-    tmp = shard_path + f".{uuid.uuid4().hex}.tmp"
     # built in memory and written with write(): a full disk is then an OSError (ENOSPC), where
     # writing through a memory map would kill the process with SIGBUS
     arr = np.empty((len(b.items), indices.size), dtype=np.float32)
@@ -400,10 +400,17 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
                      "vmean": float(vals.mean(dtype=np.float64)) if vals.size else None,
                      "missing_from": missing_from, "p_clipped": clipped,
                      "sketch": sketcher.sketch(vec[None, :])[0].tobytes()})
+    write_shard(shard_path, arr)
+    return {"rows": rows, "problems": problems}
+
+
+def write_shard(shard_path: str, arr: np.ndarray) -> None:
+    """Write a float32 (rows x features) shard: a new file, then one atomic rename."""
+    tmp = shard_path + f".{uuid.uuid4().hex}.tmp"
     try:
         with open(tmp, "wb", buffering=0) as fh:
             np.lib.format.write_array_header_1_0(fh, {"descr": "<f4", "fortran_order": False, "shape": arr.shape})
-            view = memoryview(arr).cast("B")
+            view = memoryview(np.ascontiguousarray(arr, dtype=np.float32)).cast("B")
             while view:  # plain writes: a full disk raises ENOSPC (numpy's tofile loses the errno)
                 view = view[fh.write(view):]
             os.fsync(fh.fileno())
@@ -414,7 +421,6 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
         with contextlib.suppress(OSError):
             os.unlink(tmp)
         raise
-    return {"rows": rows, "problems": problems}
 
 
 def _per_dataset(items: list[_Item], dataset_of: dict[str, str], n: int):
@@ -890,7 +896,10 @@ class FeatureSet:
             raise FeatureError(f"{self.path}: feature set {name!r} is unreadable ({exc})") from None
         self.geometry: str = self.spec.get("geometry") or "volume"
         if self.geometry == "surface":
-            self.grid: TargetGrid | SurfaceTarget = surface_from_spec(self.spec["grid"])
+            self.grid: TargetGrid | SurfaceTarget | ParcelGrid = surface_from_spec(self.spec["grid"])
+        elif self.geometry == "parcels":
+            p = self.spec["parcels"]
+            self.grid = ParcelGrid(p["atlas_name"], len(p["labels"]), p["atlas_sha256"])
         else:
             self.grid = grid_from_spec(self.spec["grid"]["shape"],
                                        np.reshape(self.spec["grid"]["affine"], (4, 4)), self.spec["grid"]["name"])
@@ -1078,6 +1087,56 @@ class FeatureSet:
             return cov
         return np.array([cov[self._pos[m]] for m in map_ids])
 
+    @property
+    def base(self) -> tuple[str, Any]:
+        """(geometry, grid or mesh) the rows can be drawn on: a parcel set's are its source set's."""
+        if self.geometry != "parcels":
+            return self.geometry, self.grid
+        p = self.spec["parcels"]
+        if p["source_geometry"] == "surface":
+            return "surface", surface_from_spec(p["source_grid"])
+        return "volume", grid_from_spec(p["source_grid"]["shape"], np.reshape(p["source_grid"]["affine"], (4, 4)),
+                                        p["source_grid"]["name"])
+
+    def on_base(self, vector: np.ndarray) -> np.ndarray:
+        """A row as values over its base grid or mesh (volume-shaped, or both hemispheres' vertices)."""
+        if self.geometry != "parcels":
+            return self.unmask(vector)
+        img = self._paint(vector)
+        if hasattr(img, "mesh"):
+            return np.concatenate([np.asarray(img.data.parts["left"]), np.asarray(img.data.parts["right"])])
+        return np.asarray(img.dataobj)
+
+    def _paint(self, vector: np.ndarray):
+        """A parcel row painted back onto the source set's grid or mesh (NaN outside every parcel)."""
+        import scipy.sparse as sp
+
+        p = self.spec["parcels"]
+        v = np.asarray(vector, dtype=np.float32).reshape(-1)
+        if v.size != self.n_voxels:
+            raise FeatureError(f"vector has {v.size} values, parcel set {self.name!r} has {self.n_voxels} parcels")
+        try:
+            weights = sp.load_npz(self.path / "weights.npz")
+            src_mask = np.load(self.path / "source_mask.npy")
+        except OSError as exc:
+            raise FeatureError(f"{self.path}: the parcel set's atlas files are unreadable ({exc}); rebuild it "
+                               "with mapstore.build_parcels") from None
+        values = paint(v, weights, p["kind"])
+        if p["source_geometry"] == "surface":
+            grid = surface_from_spec(p["source_grid"])
+            full = np.full(grid.n_vertices, np.nan, dtype=np.float32)
+            full[src_mask] = values
+            return to_surface_image(full, grid)
+        import nibabel as nib
+
+        grid = grid_from_spec(p["source_grid"]["shape"], np.reshape(p["source_grid"]["affine"], (4, 4)),
+                              p["source_grid"]["name"])
+        full = np.full(grid.n_voxels, np.nan, dtype=np.float32)
+        full[src_mask] = values
+        img = nib.Nifti1Image(full.reshape(grid.shape), grid.affine_array)
+        img.header.set_xyzt_units("mm")
+        return img
+
     def unmask(self, vector: np.ndarray) -> np.ndarray:
         """A grid-shaped float32 volume from a mask-length vector (NaN outside the mask)."""
         v = np.asarray(vector, dtype=np.float32).reshape(-1)
@@ -1095,6 +1154,8 @@ class FeatureSet:
 
         if isinstance(self.grid, SurfaceTarget):
             return to_surface_image(self.unmask(vector), self.grid)
+        if isinstance(self.grid, ParcelGrid):
+            return self._paint(vector)
         img = nib.Nifti1Image(self.unmask(vector), self.grid.affine_array)
         img.header.set_xyzt_units("mm")
         return img

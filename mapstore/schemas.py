@@ -179,7 +179,8 @@ def all_schemas() -> dict[str, dict[str, Any]]:
          "vmax": "largest finite value", "vmean": "mean of the finite values",
          "missing_from": "what made voxels missing before resampling: model-mask, zero-background, zeros, none",
          "p_clipped": "p = 0 voxels inside the model's mask taken as the smallest positive p (z sets)",
-         "sketch": "1,024 sign bits (128 bytes) of the row's sparse random projections, for the copy scan"})
+         "sketch": "1,024 sign bits (128 bytes) of the row's sparse random projections, for the copy scan",
+         "source_key": "parcel sets: the feature_key of the source set's row the parcel values come from"})
     out["feature-problems.schema.json"] = arrow_to_json_schema(
         "feature-problems", FPROBLEMS_SCHEMA, "A map that could not be turned into a feature row.")
     participants = arrow_to_json_schema(

@@ -56,6 +56,7 @@ ROWS_SCHEMA = pa.schema([
     ("resample_path", _s), ("built_at", _s), ("row_sha256", _s),
     ("vmin", _f64), ("vmax", _f64), ("vmean", _f64),
     ("missing_from", _s), ("p_clipped", _i64), ("sketch", pa.binary()),
+    ("source_key", _s),  # parcel sets: the feature_key of the source set's row
 ])
 # pairs of rows of one feature set that are copies (written by features, read by check and export)
 COPIES_SCHEMA = pa.schema([("map_a", _s), ("map_b", _s), ("kind", _s), ("r", _f64), ("n_common", _i64)])

@@ -8,6 +8,7 @@ library); nilearn's bundled fsaverage5 gives the mesh and its vertex counts; nil
 from __future__ import annotations
 
 import json
+import warnings
 from pathlib import Path
 
 import nibabel as nib
@@ -337,3 +338,37 @@ def test_surface_selection_export_and_leakage_guard(pooled, tmp_path):
     man = json.loads((Path(rep.out) / "manifest.json").read_text())
     assert man["feature_set"]["grid"]["kind"] == "surface"
     assert s.check("fsaverage5-cortex-native").count("error") == 0
+
+
+def test_surface_parcels_equal_nilearn_surface_labels_masker(pooled):
+    from nilearn.datasets import load_fsaverage
+    from nilearn.maskers import SurfaceLabelsMasker
+    from nilearn.surface import SurfaceImage
+
+    fsa = load_fsaverage("fsaverage5")
+    # invented parcels: sphere octants, numbered per hemisphere (1..8 left, 11..18 right)
+    labels = []
+    for part, offset in (("left", 1), ("right", 11)):
+        xyz = np.asarray(fsa["sphere"].parts[part].coordinates)
+        labels.append(offset + (xyz[:, 0] > 0) * 4 + (xyz[:, 1] > 0) * 2 + (xyz[:, 2] > 0))
+    labels = np.concatenate(labels).astype(np.int64)
+    rep = mapstore.build_parcels(pooled["store"], labels, source="fsaverage5-cortex-native", name="octants")
+    assert rep.n_voxels == 16
+    s = mapstore.open(pooled["store"])
+    fs, src = s.features("octants"), s.features("fsaverage5-cortex-native")
+    cortex = np.zeros(2 * N5, bool)
+    cortex[src.mask_indices] = True
+    masker = SurfaceLabelsMasker(
+        labels_img=SurfaceImage(mesh=fsa["pial"], data={"left": labels[:N5], "right": labels[N5:]}),
+        mask_img=SurfaceImage(mesh=fsa["pial"], data={"left": cortex[:N5], "right": cortex[N5:]}))
+    ids = s.sql("SELECT map_id FROM features WHERE feature_set = 'octants' AND coverage = 1 AND map_id IN "
+                "(SELECT map_id FROM features WHERE feature_set = 'fsaverage5-cortex-native' AND coverage = 1)"
+                ).column(0).to_pylist()
+    assert ids
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        for mid in ids[:3]:
+            ref = np.ravel(masker.fit_transform(src.to_image(src.matrix([mid])[0])))
+            np.testing.assert_allclose(fs.matrix([mid])[0], ref, rtol=1e-5, atol=1e-5)
+    img = fs.to_image(fs.matrix([ids[0]])[0])  # painted back onto the mesh
+    assert img.shape == (2 * N5,)

@@ -1,0 +1,180 @@
+"""Parcel sets (label, probabilistic and surface atlases) and data-driven parcellations.
+
+References: nilearn's maskers on the same inputs -- ``NiftiLabelsMasker`` (strategy "mean"),
+``NiftiMapsMasker`` (least squares on the maps) and ``SurfaceLabelsMasker`` -- and nilearn's
+``Parcellations`` for the fitted parcellation.  The maps and atlases are invented.
+"""
+
+from __future__ import annotations
+
+import json
+import warnings
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+import mapstore
+from mapstore.errors import ParameterError
+
+from .conftest import write_map
+
+MNI2 = np.array([[-2.0, 0, 0, 90], [0, 2, 0, -126], [0, 0, 2, -72], [0, 0, 0, 1]])
+SET = "MNI152-3mm-brain-linear-native"
+
+
+def _field(rng: np.random.Generator, sign: float) -> np.ndarray:
+    from scipy import ndimage
+
+    r = ndimage.gaussian_filter(rng.normal(size=(91, 109, 91)), 5) * 80
+    r[20:45] += sign * 2.0  # a left-right difference the two contrasts share, opposite in sign
+    return (r + 1.0).astype(np.float32)
+
+
+@pytest.fixture(scope="module")
+def voxel_store(tmp_path_factory):
+    """Two invented studies x two subjects x two contrasts, on a 3 mm voxel set."""
+    base = tmp_path_factory.mktemp("parcels")
+    rng = np.random.default_rng(11)
+    for study in ("harbor", "meadow"):
+        root = base / study
+        root.mkdir()
+        (root / "dataset_description.json").write_text(json.dumps({"Name": study, "BIDSVersion": "1.9.0",
+                                                                   "DatasetType": "derivative"}))
+        for sub in ("01", "02"):
+            for contrast, sign in (("tools", 1.0), ("animals", -1.0)):
+                write_map(root / f"sub-{sub}" / f"sub-{sub}_task-naming_space-MNI152NLin2009cAsym_contrast-"
+                          f"{contrast}_stat-effect_statmap.nii.gz", _field(rng, sign), MNI2)
+    store = base / "store"
+    mapstore.index([base / "harbor", base / "meadow"], store, progress=False)
+    mapstore.build_features(store, grid="MNI152-3mm", progress=False, jobs=2)
+    return base, store
+
+
+def _mask_img(fs):
+    return nib.Nifti1Image(np.isfinite(fs.unmask(np.ones(fs.n_voxels))).astype(np.uint8), fs.grid.affine_array)
+
+
+def test_label_atlas_means_equal_nilearn_labels_masker(voxel_store):
+    from nilearn.maskers import NiftiLabelsMasker
+
+    base, store = voxel_store
+    # an invented atlas on another grid (4 mm): 3 x 3 x 3 blocks of the brain box
+    shape = (40, 48, 40)
+    aff = np.array([[4.0, 0, 0, -80], [0, 4, 0, -114], [0, 0, 4, -70], [0, 0, 0, 1]])
+    ijk = np.indices(shape)
+    lab = (ijk[0] // 14) * 9 + (ijk[1] // 16) * 3 + (ijk[2] // 14) + 1
+    atlas = base / "blocks.nii.gz"
+    nib.save(nib.Nifti1Image(lab.astype(np.int16), aff), str(atlas))
+    rep = mapstore.build_parcels(store, str(atlas), source=SET, name="blocks")
+    assert rep.built == 8 and rep.n_voxels == 27
+    s = mapstore.open(store)
+    fs, src = s.features("blocks"), s.features(SET)
+    masker = NiftiLabelsMasker(labels_img=str(atlas), mask_img=_mask_img(src), strategy="mean")
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        for mid in fs.map_ids[:3]:
+            ref = np.ravel(masker.fit_transform(src.to_image(src.matrix([mid])[0])))
+            np.testing.assert_allclose(fs.matrix([mid])[0], ref, rtol=1e-5, atol=1e-5)
+    # provenance: each parcel row names the source row it was reduced from
+    rows = s.sql("SELECT p.map_id, p.source_key, v.feature_key FROM features p JOIN features v USING (map_id) "
+                 f"WHERE p.feature_set = 'blocks' AND v.feature_set = '{SET}'").to_pylist()
+    assert len(rows) == 8 and all(r["source_key"] == r["feature_key"] for r in rows)
+    # painting back: every voxel of a parcel carries the parcel's value
+    vec = fs.matrix([fs.map_ids[0]])[0]
+    img = fs.to_image(vec)
+    vals = np.asarray(img.dataobj)
+    assert vals.shape == src.grid.shape
+    assert set(np.round(np.unique(vals[np.isfinite(vals)]), 4)) <= set(np.round(vec, 4))
+    # a second run keeps every row (same source rows, same atlas)
+    again = mapstore.build_parcels(store, str(atlas), source=SET, name="blocks")
+    assert again.built == 0 and again.skipped == 8
+
+
+def test_probabilistic_atlas_equals_nilearn_maps_masker(voxel_store):
+    from nilearn.maskers import NiftiMapsMasker
+
+    base, store = voxel_store
+    s = mapstore.open(store)
+    src = s.features(SET)
+    # five invented Gaussian blobs on the set's own grid
+    ijk = np.indices(src.grid.shape).reshape(3, -1).T
+    centres = [(20, 30, 25), (40, 30, 25), (30, 50, 30), (30, 20, 35), (30, 40, 15)]
+    maps = np.stack([np.exp(-((ijk - np.array(c)) ** 2).sum(axis=1) / (2 * 5.0 ** 2)).reshape(src.grid.shape)
+                     for c in centres], axis=-1).astype(np.float32)
+    atlas = base / "blobs.nii.gz"
+    nib.save(nib.Nifti1Image(maps, src.grid.affine_array), str(atlas))
+    mapstore.build_parcels(store, str(atlas), source=SET, name="blobs")
+    fs = mapstore.open(store).features("blobs")
+    assert fs.spec["method"] == "maps-regression" and fs.n_voxels == 5
+    masker = NiftiMapsMasker(maps_img=str(atlas), mask_img=_mask_img(src))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        for mid in fs.map_ids[:3]:
+            ref = np.ravel(masker.fit_transform(src.to_image(src.matrix([mid])[0])))
+            np.testing.assert_allclose(fs.matrix([mid])[0], ref, rtol=1e-4, atol=1e-4)
+
+
+def test_in_fold_parcellation_never_sees_test_maps(voxel_store):
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.model_selection import cross_validate
+    from sklearn.pipeline import make_pipeline
+
+    _, store = voxel_store
+    s = mapstore.open(store)
+    sel = s.select(features=SET, group_by="study")
+    pipe = make_pipeline(mapstore.ParcelReducer.for_selection(sel, n_parcels=12, method="kmeans"),
+                         LogisticRegression(max_iter=500))
+    splits = sel.splits("leave-one-group-out")
+    res = cross_validate(pipe, sel.X, sel.y, cv=splits, return_estimator=True)
+    assert len(res["estimator"]) == 2
+    for est, (train, test) in zip(res["estimator"], splits):
+        reducer = est.steps[0][1]
+        seen = set(reducer.fit_rows_)
+        test_rows = {__import__("hashlib").sha256(r.tobytes()).hexdigest() for r in np.asarray(sel.X[test], np.float32)}
+        assert len(seen) == len(train) and not seen & test_rows  # fitted on the training maps only
+        assert reducer.transform(sel.X[test]).shape == (len(test), int(reducer.labels_.max()) + 1)
+
+
+def test_fitted_parcellation_is_stored_with_provenance_and_makes_a_set(voxel_store):
+    from nilearn.regions import Parcellations
+
+    _, store = voxel_store
+    s = mapstore.open(store)
+    sel = s.select(features=SET, group_by="study")
+    path = mapstore.fit_parcellation(sel, "km10", n_parcels=10, method="kmeans")
+    prov = json.loads((path.parent / "atlas.json").read_text())
+    assert prov["maps"] == sel.map_ids and prov["method"] == "kmeans" and prov["feature_set"] == SET
+    lab = np.asarray(nib.load(str(path)).dataobj)
+    # nilearn's Parcellations on the same rows and mask (reference library): the same partition
+    from mapstore.parcels import _columns_image, _rows_image
+
+    mask = _columns_image(sel.feature_set, sel.voxels)
+    ref = Parcellations(method="kmeans", n_parcels=10, mask=mask, smoothing_fwhm=None, standardize=False,
+                        random_state=0)
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref.fit(_rows_image(sel.X, mask))
+    m = np.asarray(mask.dataobj) > 0
+    a, b = lab[m], np.asarray(ref.labels_img_.dataobj)[m]
+    assert len(set(zip(a.tolist(), b.tolist()))) == len(set(a.tolist())) == len(set(b.tolist()))
+    rep = mapstore.build_parcels(store, "store:km10", source=SET)
+    assert rep.n_voxels == len(set(a.tolist()))
+    with pytest.raises(ParameterError, match="no stored parcellation 'nope'"):
+        mapstore.build_parcels(store, "store:nope", source=SET)
+
+
+def test_parcel_sets_check_select_and_export(voxel_store, tmp_path):
+    from mapstore.export import verify
+
+    base, store = voxel_store
+    if "blocks" not in mapstore.open(store).feature_sets():
+        test_label_atlas_means_equal_nilearn_labels_masker(voxel_store)
+    s = mapstore.open(store)
+    rep = s.check("blocks")
+    assert rep.count("error") == 0 and any("coverage" in k for k in rep.pictures)
+    sel = s.select(features="blocks", group_by="study")
+    assert sel.X.shape == (8, 27)
+    out = s.export(tmp_path / "x", sel)
+    assert verify(tmp_path / "x" / "manifest.json").ok and out.n_voxels == 27
+    assert json.loads((tmp_path / "x" / "manifest.json").read_text())["feature_set"]["grid"]["kind"] == "parcels"
