@@ -467,6 +467,8 @@ def _views(fs, vector: np.ndarray) -> np.ndarray:
 
 def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report) -> None:
     """Each study's mean map over the MNI152 template (sulcal depth on a surface): red positive, blue negative."""
+    if fs.base[0] == "grayordinates":
+        return  # no picture of grayordinates yet: the template's meshes are not known
     geometry, grid = fs.base
     if geometry == "surface":
         bg = -surface_views(sulcal_depth(grid), grid)  # gyri light, sulci dark
@@ -610,6 +612,8 @@ def _check_features(store, fs, maps, min_coverage, add, report, pictures, max_ro
 
 def _coverage_pictures(fs, rows, stat_of, report, max_rows) -> None:
     """Fraction of maps with a value at each voxel: all maps, then each study."""
+    if fs.base[0] == "grayordinates":
+        return
     ids = [r["map_id"] for r in rows if r["map_id"] in stat_of]
     pick = ids if len(ids) <= max_rows else [ids[i] for i in np.linspace(0, len(ids) - 1, max_rows).astype(int)]
     counts = np.zeros(fs.n_voxels)

@@ -53,8 +53,18 @@ from .grid import (
     resample,
 )
 from .atlas import ParcelGrid, paint
+from .grayordinates import (
+    GrayordinateTarget,
+    cortex_positions,
+    grayordinate_target,
+    match,
+    target_from_spec as gray_from_spec,
+    to_cifti_image,
+    voxel_positions,
+)
 from .copies import SKETCH_BITS, Sketcher, find_copies
 from .surface import (
+    SURFACE_TARGETS,
     SurfaceTarget,
     builtin_surface,
     check_projection,
@@ -88,6 +98,7 @@ from .store import (
 __all__ = ["FeatureReport", "FeatureSet", "build_features", "ROWS_SCHEMA", "DEFAULT_SET"]
 
 DEFAULT_SET = "default"
+_MESHED = (SurfaceTarget, GrayordinateTarget)  # targets whose rows are vertices (and voxels), not a volume
 @dataclass
 class FeatureReport:
     """What one ``features`` run did."""
@@ -129,11 +140,13 @@ def _library_versions() -> dict[str, str]:
             "nibabel": nibabel.__version__}
 
 
-def _resolve_grid(grid: str | TargetGrid | SurfaceTarget | dict) -> TargetGrid | SurfaceTarget:
-    if isinstance(grid, (TargetGrid, SurfaceTarget)):
+def _resolve_grid(grid: Any) -> TargetGrid | SurfaceTarget | GrayordinateTarget:
+    if isinstance(grid, (TargetGrid, *_MESHED)):
         return grid
     if isinstance(grid, str) and builtin_surface(grid):
         return builtin_surface(grid)
+    if isinstance(grid, str) and (grid.startswith("cifti:") or grid.endswith((".dscalar.nii", ".dtseries.nii"))):
+        return grayordinate_target(grid[len("cifti:"):] if grid.startswith("cifti:") else grid)
     if isinstance(grid, dict):
         return grid_from_spec(grid["shape"], grid["affine"], grid.get("name", "custom"))
     if not isinstance(grid, str):
@@ -266,6 +279,8 @@ def _vector(item: _Item, b: _Batch, indices: np.ndarray | None, grid: TargetGrid
     """
     if isinstance(b.grid, SurfaceTarget):
         return _surface_vector(item, b, indices, masks)
+    if isinstance(b.grid, GrayordinateTarget):
+        return _grayordinate_vector(item, b, indices, masks)
     vol, facts, conversion, missing_from, clipped = _source_volume(item, b, masks)
     out, path = resample(np.asarray(vol, dtype=np.float32), facts.affine_array, grid or b.grid, b.method,
                          return_path=True)
@@ -303,14 +318,35 @@ def _surface_vector(item: _Item, b: _Batch, indices: np.ndarray | None, masks: d
     """One row of a surface set: both hemispheres on the target mesh (left, then right)."""
     target: SurfaceTarget = b.grid  # type: ignore[assignment]
     cache = {} if masks is None else masks
-    meshes = cache.get("_meshes")
-    if meshes is None:
-        meshes = cache["_meshes"] = fsaverage_meshes()
+    meshes = _meshes(cache)
     out = np.full(target.n_vertices, np.nan, dtype=np.float32)
     if item.geometry == "volume":
         vol, facts, conversion, missing_from, clipped = _source_volume(item, b, cache)
         out[:] = project_volume(np.asarray(vol, dtype=np.float32), facts.affine_array, target, b.projection, meshes)
         return (out if indices is None else out[indices]), conversion, "vol_to_surf", missing_from, 0
+    halves, conversion, clipped, missing = _hemispheres(item, b)
+    paths = set()
+    for hemi, vals in halves.items():
+        n_target = target.n_left if hemi == "L" else target.n_right
+        idx = density_index(vals.size, n_target, hemi, meshes)
+        paths.add("surface" if idx is None else f"nearest-vertex:{vals.size}")
+        out[target.part(hemi)] = vals if idx is None else vals[idx]
+    return (out if indices is None else out[indices]), conversion, "+".join(sorted(paths)) or "none", \
+        "+".join(missing) or "none", clipped
+
+
+def _meshes(cache: dict[str, Any]) -> dict[str, Any]:
+    meshes = cache.get("_meshes")
+    if meshes is None:
+        meshes = cache["_meshes"] = fsaverage_meshes()
+    return meshes
+
+
+def _hemispheres(item: _Item, b: _Batch) -> tuple[dict[str, np.ndarray], str, int, list[str]]:
+    """A surface map's hemispheres (GIFTI pair, or a CIFTI file's cortex), masked and converted.
+
+    Returns {hemi: values}, the conversion, p values clipped, and what made values missing.
+    """
     if item.geometry == "grayordinates":
         halves = cifti_cortex(item.path, read_surface_values(item.path, item.sha256))
         sources = {h: (v, None) for h, v in halves.items()}
@@ -321,7 +357,7 @@ def _surface_vector(item: _Item, b: _Batch, indices: np.ndarray | None, masks: d
             if path is not None:
                 sources[hemi] = (read_surface_values(path, sha), (mpath, msha) if mpath else None)
     missing = ["model-mask"] if any(m for _, m in sources.values()) else []
-    conversion, paths, clipped = "none", set(), 0
+    conversion, clipped, out = "none", 0, {}
     for hemi in ("L", "R"):
         if hemi not in sources:
             missing.append(f"no-hemi-{hemi}")
@@ -340,15 +376,70 @@ def _surface_vector(item: _Item, b: _Batch, indices: np.ndarray | None, masks: d
             clipped += int(np.count_nonzero(vals == 0))
         vals, conversion = convert(vals, item.stat, b.stat, dof=item.dof, sided=b.p_sided,
                                    where=item.path or item.path_r or "")
-        n_target = target.n_left if hemi == "L" else target.n_right
-        idx = density_index(vals.size, n_target, hemi, meshes)
-        paths.add("surface" if idx is None else f"nearest-vertex:{vals.size}")
-        out[target.part(hemi)] = vals if idx is None else vals[idx]
+        out[hemi] = np.asarray(vals, dtype=np.float32)
     if b.zero_as_missing:
         missing.append("zeros")
-    missing_from = "+".join(missing) or "none"
-    return (out if indices is None else out[indices]), conversion, "+".join(sorted(paths)) or "none", \
-        missing_from, clipped
+    return out, conversion, clipped, missing
+
+
+def _grayordinate_vector(item: _Item, b: _Batch, indices: np.ndarray | None, masks: dict[str, Any] | None
+                         ) -> tuple[np.ndarray, str, str, str, int]:
+    """One row of a grayordinate set, in the template's brain-model order.
+
+    CIFTI-2 maps are matched by structure and vertex (voxels by position, on the same volume);
+    GIFTI hemispheres fill the cortex; volume maps fill the voxels (sampled at the template's voxel
+    centres) and, on an fsaverage5 cortex, the vertices through ``vol_to_surf``.
+    """
+    target: GrayordinateTarget = b.grid  # type: ignore[assignment]
+    cache = {} if masks is None else masks
+    axis = cache.get("_axis")
+    if axis is None:
+        axis = cache["_axis"] = target.axis()
+    out = np.full(target.n_grayordinates, np.nan, dtype=np.float32)
+    missing: list[str] = []
+    clipped = 0
+    if item.geometry == "grayordinates":
+        import nibabel as nib
+
+        vals = read_surface_values(item.path, item.sha256).astype(np.float64)
+        if b.zero_as_missing:
+            vals[vals == 0] = np.nan
+        vals, conversion = convert(vals, item.stat, b.stat, dof=item.dof, sided=b.p_sided, where=item.path)
+        t_pos, s_pos = match(nib.load(item.path).header.get_axis(1), axis)
+        out[t_pos] = vals[s_pos]
+        path = "cifti"
+        if t_pos.size < out.size:
+            missing.append("not-in-source")
+    elif item.geometry == "surface":
+        halves, conversion, clipped, missing = _hemispheres(item, b)
+        meshes = _meshes(cache)
+        for hemi, (pos, vertex, n_mesh) in cortex_positions(axis).items():
+            if hemi in halves:
+                vals = halves[hemi]
+                idx = density_index(vals.size, n_mesh, hemi, meshes)
+                out[pos] = (vals if idx is None else vals[idx])[vertex]
+        path = "surface-cortex"
+        missing.append("volume-structures")
+    else:
+        vol, facts, conversion, missing_from, clipped = _source_volume(item, b, cache)
+        missing = [] if missing_from == "none" else [missing_from]
+        vox, flat, vshape, vaff = voxel_positions(axis)
+        if vox.size:
+            res = resample(np.asarray(vol, dtype=np.float32), facts.affine_array, grid_from_spec(vshape, vaff),
+                           b.method)
+            out[vox] = res.reshape(-1)[flat]
+        cortex = cortex_positions(axis)
+        path = "voxels"
+        if cortex and all(n == SURFACE_TARGETS["fsaverage5"] for _, _, n in cortex.values()):
+            fsa = builtin_surface("fsaverage5")
+            proj = project_volume(np.asarray(vol, dtype=np.float32), facts.affine_array, fsa, b.projection,
+                                  _meshes(cache))
+            for hemi, (pos, vertex, _) in cortex.items():
+                out[pos] = proj[fsa.part(hemi)][vertex]
+            path = "voxels+vol_to_surf"
+        elif cortex:
+            missing.append("no-cortex-mesh")
+    return (out if indices is None else out[indices]), conversion, path, "+".join(missing) or "none", clipped
 
 
 def _run_batch(b: _Batch) -> dict[str, Any]:
@@ -368,7 +459,7 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
             done += 1
         return {"counts": counts, "n": done, "problems": problems}
     indices = np.load(os.path.join(b.set_dir, "mask.npy"))
-    if isinstance(b.grid, SurfaceTarget):
+    if isinstance(b.grid, _MESHED):
         box, local = None, indices
     else:
         box, local = crop_grid(b.grid, indices)  # resample the mask's bounding box only
@@ -502,6 +593,12 @@ def _make_mask(mask: str | os.PathLike[str] | np.ndarray, grid: TargetGrid | Sur
     if isinstance(mask, np.ndarray):
         return mask_from_array(grid, mask, "array")
     m = str(mask)
+    if isinstance(grid, GrayordinateTarget):
+        if m in ("brain", "all"):
+            return mask_from_array(grid, np.ones(grid.n_grayordinates, bool), "all-grayordinates")
+        if m != "intersection" and not m.startswith("coverage:"):
+            raise ParameterError(f"a grayordinate set's mask must be 'all' (the default), 'intersection', "
+                                 f"'coverage:FRACTION' or a boolean array of {grid.n_grayordinates}; got {m!r}")
     if isinstance(grid, SurfaceTarget):
         if m in ("brain", "cortex"):
             return mask_from_array(grid, cortex_mask(grid), f"{grid.name}-cortex")
@@ -614,13 +711,14 @@ def build_features(
     default_settings = (grid == "MNI152-2mm" and str(mask) == "brain" and method == "linear"
                         and stat == "native" and not zero_as_missing and background == "auto" and not model_maps)
     name = _set_name(name, default_settings, target, mask, method, stat)
-    surface = isinstance(target, SurfaceTarget)
+    surface = isinstance(target, _MESHED)
     proj = None
-    if surface:
+    if isinstance(target, SurfaceTarget):
         method = "nearest-vertex"
+    if surface:
         proj = check_projection(projection) if volumes else {"volumes": "left out"}
     elif projection is not None:
-        raise ParameterError("projection applies to surface sets (grid='fsaverage5') only")
+        raise ParameterError("projection applies to surface and grayordinate sets only")
     store_path = cat.path
     set_dir = store_path / "features" / name
     run = dict(jobs=jobs, scheduler=scheduler, progress=progress)
@@ -675,6 +773,8 @@ def _check_options(method: str, stat: str, p_sided: str, background: str, batch_
 
 def _set_name(name: str | None, default_settings: bool, target: TargetGrid, mask: Any, method: str,
               stat: str) -> str:
+    if name is None and isinstance(target, GrayordinateTarget):
+        name = f"grayordinates-{Path(target.template).name.split('.')[0]}-{stat}"
     if name is None and isinstance(target, SurfaceTarget):
         name = f"{target.name}-{'cortex' if str(mask) == 'brain' else Path(str(mask)).name}-{stat}"
     if name is None:
@@ -721,10 +821,10 @@ def _set_spec(name: str, target: TargetGrid | SurfaceTarget, mk: Mask, method: s
         "zero_as_missing": zero_as_missing, "background": background, "kinds": list(kinds), "where": where,
         "versions": _library_versions(),
     }
-    if isinstance(target, SurfaceTarget):
+    if isinstance(target, _MESHED):
         import nilearn
 
-        spec["geometry"] = "surface"
+        spec["geometry"] = "surface" if isinstance(target, SurfaceTarget) else "grayordinates"
         spec["projection"] = projection
         spec["versions"]["nilearn"] = nilearn.__version__
     spec["spec_id"] = _spec_id(spec)
@@ -896,7 +996,9 @@ class FeatureSet:
             raise FeatureError(f"{self.path}: feature set {name!r} is unreadable ({exc})") from None
         self.geometry: str = self.spec.get("geometry") or "volume"
         if self.geometry == "surface":
-            self.grid: TargetGrid | SurfaceTarget | ParcelGrid = surface_from_spec(self.spec["grid"])
+            self.grid: Any = surface_from_spec(self.spec["grid"])
+        elif self.geometry == "grayordinates":
+            self.grid = gray_from_spec(self.spec["grid"])
         elif self.geometry == "parcels":
             p = self.spec["parcels"]
             self.grid = ParcelGrid(p["atlas_name"], len(p["labels"]), p["atlas_sha256"])
@@ -1095,6 +1197,8 @@ class FeatureSet:
         p = self.spec["parcels"]
         if p["source_geometry"] == "surface":
             return "surface", surface_from_spec(p["source_grid"])
+        if p["source_geometry"] == "grayordinates":
+            return "grayordinates", gray_from_spec(p["source_grid"])
         return "volume", grid_from_spec(p["source_grid"]["shape"], np.reshape(p["source_grid"]["affine"], (4, 4)),
                                         p["source_grid"]["name"])
 
@@ -1103,6 +1207,8 @@ class FeatureSet:
         if self.geometry != "parcels":
             return self.unmask(vector)
         img = self._paint(vector)
+        if self.base[0] == "grayordinates":
+            return np.asarray(img.get_fdata()).reshape(-1)
         if hasattr(img, "mesh"):
             return np.concatenate([np.asarray(img.data.parts["left"]), np.asarray(img.data.parts["right"])])
         return np.asarray(img.dataobj)
@@ -1122,11 +1228,12 @@ class FeatureSet:
             raise FeatureError(f"{self.path}: the parcel set's atlas files are unreadable ({exc}); rebuild it "
                                "with mapstore.build_parcels") from None
         values = paint(v, weights, p["kind"])
-        if p["source_geometry"] == "surface":
-            grid = surface_from_spec(p["source_grid"])
-            full = np.full(grid.n_vertices, np.nan, dtype=np.float32)
+        if p["source_geometry"] in ("surface", "grayordinates"):
+            mesh = surface_from_spec(p["source_grid"]) if p["source_geometry"] == "surface" else \
+                gray_from_spec(p["source_grid"])
+            full = np.full(mesh.n_vertices, np.nan, dtype=np.float32)
             full[src_mask] = values
-            return to_surface_image(full, grid)
+            return to_surface_image(full, mesh) if p["source_geometry"] == "surface" else to_cifti_image(full, mesh)
         import nibabel as nib
 
         grid = grid_from_spec(p["source_grid"]["shape"], np.reshape(p["source_grid"]["affine"], (4, 4)),
@@ -1154,6 +1261,8 @@ class FeatureSet:
 
         if isinstance(self.grid, SurfaceTarget):
             return to_surface_image(self.unmask(vector), self.grid)
+        if isinstance(self.grid, GrayordinateTarget):
+            return to_cifti_image(self.unmask(vector), self.grid)
         if isinstance(self.grid, ParcelGrid):
             return self._paint(vector)
         img = nib.Nifti1Image(self.unmask(vector), self.grid.affine_array)

@@ -347,7 +347,7 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
     cat = store.catalog
     lab = _labels(cat, with_broader)
     q, base_q = _selection_sql(cat, fs.name, where, task, stat, _concept_ids(lab, concepts, with_broader),
-                               fs.geometry == "surface")
+                               fs.geometry in ("surface", "grayordinates"))
     try:
         df = cat.sql(q).to_pandas()
         n_matching = cat.sql(base_q).column(0)[0].as_py()

@@ -372,3 +372,56 @@ def test_surface_parcels_equal_nilearn_surface_labels_masker(pooled):
             np.testing.assert_allclose(fs.matrix([mid])[0], ref, rtol=1e-5, atol=1e-5)
     img = fs.to_image(fs.matrix([ids[0]])[0])  # painted back onto the mesh
     assert img.shape == (2 * N5,)
+
+
+def test_grayordinate_set_pools_cifti_gifti_and_volume_maps(pooled, tmp_path):
+    from nilearn.datasets import load_fsaverage
+    from nilearn.surface import vol_to_surf
+
+    ax = brain_models()
+    template = cifti(tmp_path / "template.dscalar.nii", np.zeros((1, len(ax))), ax)
+    rep = mapstore.build_features(pooled["store"], grid=str(template), name="grey", progress=False, jobs=1)
+    assert rep.failed == 0
+    s = mapstore.open(pooled["store"])
+    fs = s.features("grey")
+    assert fs.geometry == "grayordinates" and fs.n_voxels == len(ax)
+
+    def row(like):
+        (mid,) = s.sql(f"SELECT map_id FROM maps WHERE relpath ILIKE '{like}'").column(0).to_pylist()
+        return fs.matrix([mid])[0]
+
+    # a CIFTI-2 map on the template's brain models: its values as nibabel reads them (reference)
+    cfile = next(pooled["surface"].glob("sub-01/*den-91k*.dscalar.nii"))
+    np.testing.assert_array_equal(row("%den-91k%"), nib.load(str(cfile)).get_fdata(dtype=np.float32)[0])
+    cortex_l = slice(0, N5)
+    vox = ~ax.surface_mask
+    # a volume map: voxels sampled at the template's voxel centres (the MNI 2 mm grid: the values
+    # themselves), cortex by vol_to_surf on fsaverage5 (nilearn, by hand)
+    v1 = pooled["v"][0]
+    got = row("sub-01/%space-MNI152%")
+    np.testing.assert_allclose(got[vox], v1[tuple(ax.voxel[vox].T)], rtol=1e-5)
+    fsa = load_fsaverage("fsaverage5")
+    proj = fs.spec["projection"]
+    ref = vol_to_surf(nib.Nifti1Image(v1, MNI2), fsa["pial"].parts["left"],
+                      inner_mesh=fsa["white_matter"].parts["left"], kind=proj["kind"],
+                      interpolation=proj["interpolation"], depth=proj["depth"])
+    np.testing.assert_allclose(got[cortex_l], ref, rtol=1e-5, atol=1e-4)
+    # a GIFTI pair fills the cortex only
+    g = row("%sub-01_task-viewing_hemi-L_den-10242_contrast-facesminusplaces_stat-z%")
+    left = nib.load(str(pooled["surface"] / "sub-01" / "sub-01_task-viewing_hemi-L_den-10242_contrast-"
+                        "facesminusplaces_stat-z_statmap.gii")).darrays[0].data
+    np.testing.assert_array_equal(g[cortex_l], left.astype(np.float32))
+    assert np.isnan(g[vox]).all()
+    img = fs.to_image(g)  # a CIFTI-2 image on the template's brain models
+    assert isinstance(img, nib.Cifti2Image) and img.header.get_axis(1) == ax
+    sel = s.select(features="grey", missing="zero", stat=["t", "z"])
+    assert "no feature row" not in sel.dropped and sel.X.shape[1] == len(ax)
+
+
+def test_grayordinates_match_by_structure_and_vertex():
+    from mapstore.grayordinates import match
+
+    full, cortex_only = brain_models(), brain_models(voxels=False)
+    t_pos, s_pos = match(cortex_only, full)
+    assert len(t_pos) == 2 * N5 and (np.asarray(full.name)[t_pos] == np.asarray(cortex_only.name)[s_pos]).all()
+    assert (full.vertex[t_pos] == cortex_only.vertex[s_pos]).all()
