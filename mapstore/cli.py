@@ -327,7 +327,7 @@ def demo_cmd(folder, scale) -> None:
     click.echo("\nmaps per study, grid and stat:")
     click.echo(render_table(st.sql(
         "SELECT study, lab, count(DISTINCT site) AS sites, count(DISTINCT participant) AS subjects, "
-        "string_agg(DISTINCT stat, ',' ORDER BY stat) AS stats, orientation, "
+        "string_agg(DISTINCT stat, ',' ORDER BY stat) AS stats, geometry, orientation, "
         "list_first(voxel_size) AS voxel_mm, count(*) AS maps FROM maps "
         "GROUP BY ALL ORDER BY study")))
     click.echo("\nproblems found:")
@@ -354,6 +354,17 @@ def demo_cmd(folder, scale) -> None:
     click.echo(render_table(_demo_decoder(out)))
     click.echo("(chance: 1 / the number of concepts trained on; majority: share of the held-out study's "
                "most common concept)")
+    click.echo("\npooling volume and surface studies on fsaverage5 (surface maps as they are, volume t and z maps "
+               "projected with nilearn's vol_to_surf) ...")
+    sreport = build_features(store, grid="fsaverage5", where="m.stat IN ('t', 'z')")
+    click.echo(sreport.summary())
+    st = open_store(store)
+    ssel = st.select(concepts=concepts, target="concept", stat=["t", "z"], group_by="study",
+                     features=sreport.name)
+    sout = base / "export-surface-leave-one-study-out"
+    click.echo(st.export(sout, ssel, scheme="leave-one-group-out", overwrite=True).summary())
+    click.echo("\ncross-study decoding on the cortical surface (every study, the surface one included):")
+    click.echo(render_table(_demo_decoder(sout)))
     click.echo("\nchecking the store (grids, space, coverage, stat types, metadata) ...")
     report = st.check()
     html_path = report.write_html(base / "check-report.html")

@@ -1,6 +1,7 @@
 """A deterministic, invented consortium of statistic-map derivatives for the demo.
 
-Four invented labs (one with two sites) ran six invented studies.  Every contrast
+Five invented labs (one with two sites) ran seven invented studies, one of them on the cortical
+surface (GIFTI per hemisphere on fsaverage5).  Every contrast
 evokes one invented "concept" at a fixed place in MNI space, on top of smooth
 noise, so a decoder trained on some studies predicts the others above chance.
 Grids differ on purpose: 2 mm LAS 91x109x91, 3 mm RAS 61x73x61, 2 mm RAS on
@@ -17,7 +18,8 @@ from pathlib import Path
 
 import numpy as np
 
-__all__ = ["CONCEPTS", "STUDIES", "GRIDS", "make_demo", "DemoSummary", "demo_vocabulary", "demo_rules"]
+__all__ = ["CONCEPTS", "STUDIES", "SURFACE_STUDIES", "GRIDS", "make_demo", "DemoSummary", "demo_vocabulary",
+           "demo_rules"]
 
 # invented concepts and the MNI coordinates (mm) where the demo puts their activity
 CONCEPTS: dict[str, list[tuple[float, float, float]]] = {
@@ -86,6 +88,24 @@ STUDIES: tuple[Study, ...] = (
           {"sentenceRead": "reading", "storyListen": "listening", "mentalSum": "arithmetic",
            "fistClench": "hand-movement"},
           ("t", "effect", "variance"), "ras3", legacy_names=True, nan_outside=False),
+)
+
+
+@dataclass(frozen=True)
+class SurfaceStudy:
+    """A study whose models ran on the cortical surface: GIFTI t maps per hemisphere on fsaverage5."""
+
+    name: str
+    lab: str
+    sites: tuple[str, ...]
+    task: str
+    contrasts: dict[str, str]
+    n_subjects: int = 8
+
+
+SURFACE_STUDIES: tuple[SurfaceStudy, ...] = (
+    SurfaceStudy("driftwood", "Cove Lab", ("cove-harbour",), "shoreline",
+                 {"driftingDots": "visual-motion", "bellTones": "listening", "thumbTap": "hand-movement"}),
 )
 
 _STAT_INTENT = {"t": 3, "z": 5, "effect": 1001, "variance": 0}
@@ -187,7 +207,7 @@ def _write_json(path: Path, doc: object) -> None:
 def demo_vocabulary() -> dict:
     """The demo's concept vocabulary: invented concepts, a small hierarchy, and rules."""
     rules = []
-    for study in STUDIES:
+    for study in (*STUDIES, *SURFACE_STUDIES):
         for contrast, concept in study.contrasts.items():
             rules.append({"task": study.task, "contrast": contrast, "concepts": [concept]})
     return {
@@ -276,6 +296,59 @@ def _write_study(root: Path, study, scale: float) -> int:
     return n_maps
 
 
+def _write_surface_study(root: Path, study: SurfaceStudy, scale: float) -> int:
+    """One invented surface study: t maps per hemisphere on nilearn's fsaverage5 (GIFTI), with sidecars.
+
+    The concepts sit where the volume studies put them: blobs around the same MNI points,
+    evaluated at the pial vertices, on smooth noise sampled from a volume.
+    """
+    import nibabel as nib
+    from nibabel.gifti import GiftiDataArray, GiftiImage
+    from nilearn.datasets import load_fsaverage
+
+    pial = load_fsaverage("fsaverage5")["pial"]
+    ds = root / study.name
+    _write_json(ds / "dataset_description.json", {
+        "Name": study.name, "BIDSVersion": "1.9.0", "DatasetType": "derivative",
+        "GeneratedBy": [{"Name": "demo-surface-glm", "Version": "0.1",
+                         "Description": "invented first-level models on the fsaverage5 surface"}]})
+    n_sub = max(2, round(study.n_subjects * scale))
+    subjects = [f"{i + 1:02d}" for i in range(n_sub)]
+    prng = _rng(study.name, "participants")
+    lines = ["participant_id\tsite\tage\tsex"]
+    for i, sub in enumerate(subjects):
+        lines.append(f"sub-{sub}\t{study.sites[i % len(study.sites)]}\t{int(prng.integers(19, 41))}\t"
+                     f"{'FM'[int(prng.integers(0, 2))]}")
+    (ds / "participants.tsv").write_text("\n".join(lines) + "\n")
+    _write_json(ds / f"task-{study.task}_statmap.json", {"DegreesOfFreedom": 160, "InstitutionName": study.lab,
+                                                          "Description": f"surface contrasts of {study.task}"})
+    grid = GRIDS["ras3"]
+    n_maps = 0
+    for sub in subjects:
+        subj = _rng(study.name, sub)
+        amp = 3.0 + 0.5 * subj.standard_normal()
+        for contrast, concept in study.contrasts.items():
+            noise = _smooth_noise(_rng(study.name, sub, contrast), grid.shape) * 1.2
+            jitters = [subj.normal(0, 3.0, 3) for _ in CONCEPTS[concept]]
+            for hemi, part in (("L", "left"), ("R", "right")):
+                xyz = np.asarray(pial.parts[part].coordinates, dtype=np.float64)
+                signal = np.zeros(len(xyz))
+                for centre, jitter in zip(CONCEPTS[concept], jitters):
+                    signal += np.exp(-((xyz - np.add(centre, jitter)) ** 2).sum(axis=1) / (2 * 7.0 ** 2))
+                ijk = np.round((xyz - grid.matrix[:3, 3]) / np.diag(grid.matrix)[:3]).astype(int)
+                ijk = np.clip(ijk, 0, np.array(grid.shape) - 1)
+                t = (amp * signal + noise[ijk[:, 0], ijk[:, 1], ijk[:, 2]]).astype(np.float32)
+                img = GiftiImage(darrays=[GiftiDataArray(t, intent="NIFTI_INTENT_TTEST",
+                                                         datatype="NIFTI_TYPE_FLOAT32")])
+                img.meta["AnatomicalStructurePrimary"] = "CortexLeft" if hemi == "L" else "CortexRight"
+                path = ds / f"sub-{sub}" / "func" / (f"sub-{sub}_task-{study.task}_hemi-{hemi}_space-fsaverage5_"
+                                                     f"contrast-{contrast}_stat-t_statmap.func.gii")
+                path.parent.mkdir(parents=True, exist_ok=True)
+                nib.save(img, str(path))
+                n_maps += 1
+    return n_maps
+
+
 def _map_path(ds: Path, study, sub: str, ses: str | None, run: str | None, contrast: str, stat: str) -> Path:
     if study.legacy_names:
         return ds / f"sub-{sub}" / "glm" / f"{contrast}_{_LEGACY_STAT[stat]}.nii.gz"
@@ -324,6 +397,7 @@ def make_demo(root: str | os.PathLike[str], *, scale: float = 1.0) -> DemoSummar
     root = Path(root).expanduser().absolute()
     root.mkdir(parents=True, exist_ok=True)
     n_maps = sum(_write_study(root, study, scale) for study in STUDIES)
+    n_maps += sum(_write_surface_study(root, study, scale) for study in SURFACE_STUDIES)
     planted = _plant_problems(root)
     vocab = root / "concepts.json"
     _write_json(vocab, demo_vocabulary())
@@ -331,5 +405,6 @@ def make_demo(root: str | os.PathLike[str], *, scale: float = 1.0) -> DemoSummar
     _write_json(rules, demo_rules())
     overrides = root / "origins.json"
     _write_json(overrides, {"datasets": {"emberlight": {"lab": "Fernhill Lab", "site": "fernhill-campus"}}})
-    return DemoSummary(str(root), len(STUDIES), len({s.lab for s in STUDIES}), n_maps, planted,
+    every = (*STUDIES, *SURFACE_STUDIES)
+    return DemoSummary(str(root), len(every), len({s.lab for s in every}), n_maps, planted,
                        str(vocab), str(rules), str(overrides))

@@ -60,14 +60,15 @@ class ExportReport:
     seconds: float
     leaks: list[str] = field(default_factory=list)
     missing: dict[str, Any] = field(default_factory=dict)
+    unit: str = "voxels"  # what X's columns are: voxels, vertices, grayordinates or parcels
 
     def summary(self) -> str:
         d = ", ".join(f"{v} ({k})" for k, v in self.dropped.items()) or "none"
         m = self.missing
-        voxel_line = (f"\nmissing values: {m['policy']}; {m['dropped_voxels']:,} of {m['mask_voxels']:,} mask voxels "
+        voxel_line = (f"\nmissing values: {m['policy']}; {m['dropped_voxels']:,} of {m['mask_voxels']:,} mask {self.unit} "
                       f"dropped ({m['reason']})" if m.get("dropped_voxels") else
                       f"\nmissing values: {m['policy']} ({m['reason']})" if m else "")
-        return (f"exported {self.n_maps} maps x {self.n_voxels:,} voxels to {self.out} in {self.seconds:.1f} s\n"
+        return (f"exported {self.n_maps} maps x {self.n_voxels:,} {self.unit} to {self.out} in {self.seconds:.1f} s\n"
                 f"scheme {self.scheme}: {self.n_splits} split(s); dropped: {d}"
                 + voxel_line
                 + (f"\nWARNING: {len(self.leaks)} leak(s) accepted with --allow-leak" if self.leaks else ""))
@@ -117,7 +118,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         shutil.rmtree(tmp, ignore_errors=True)
         raise
     return ExportReport(str(out), len(sel), len(rows.voxels), scheme, len(splits), dict(sel.dropped),
-                        time.perf_counter() - t0, leaks, sel.missing_report)
+                        time.perf_counter() - t0, leaks, sel.missing_report, fs.unit)
 
 
 def _check_out(sel: Selection, out: str | os.PathLike[str], overwrite: bool) -> Path:

@@ -98,7 +98,8 @@ from .store import (
 __all__ = ["FeatureReport", "FeatureSet", "build_features", "ROWS_SCHEMA", "DEFAULT_SET"]
 
 DEFAULT_SET = "default"
-_MESHED = (SurfaceTarget, GrayordinateTarget)  # targets whose rows are vertices (and voxels), not a volume
+_MESHED = (SurfaceTarget, GrayordinateTarget)
+UNITS = {"volume": "voxels", "surface": "vertices", "grayordinates": "grayordinates", "parcels": "parcels"}  # targets whose rows are vertices (and voxels), not a volume
 @dataclass
 class FeatureReport:
     """What one ``features`` run did."""
@@ -115,10 +116,11 @@ class FeatureReport:
     paths: dict[str, int] = field(default_factory=dict)
     problems: list[dict[str, Any]] = field(default_factory=list)
     left_out: dict[str, int] = field(default_factory=dict)
+    unit: str = "voxels"  # what a row's values are: voxels, vertices, grayordinates or parcels
 
     def summary(self) -> str:
         rate = self.built / self.seconds if self.seconds > 0 else 0.0
-        lines = [f"feature set {self.name!r}: grid {self.grid}, mask {self.mask} ({self.n_voxels:,} voxels)",
+        lines = [f"feature set {self.name!r}: grid {self.grid}, mask {self.mask} ({self.n_voxels:,} {self.unit})",
                  f"built {self.built} rows ({rate:,.1f} maps/s), kept {self.skipped} unchanged, "
                  f"dropped {self.dropped} stale, {self.failed} failed in {self.seconds:.1f} s"]
         for why, n in self.left_out.items():
@@ -748,7 +750,8 @@ def build_features(
 
     report = FeatureReport(name=name, n_voxels=mk.n_voxels, grid=target.name, mask=mk.name,
                            built=len(new_rows), skipped=kept.num_rows, dropped=dropped, failed=len(problems),
-                           seconds=time.perf_counter() - t0, paths=built.paths, problems=problems, left_out=left_out)
+                           seconds=time.perf_counter() - t0, paths=built.paths, problems=problems, left_out=left_out,
+                           unit=UNITS[spec.get("geometry", "volume")])
     if rows_table.num_rows == 0 and problems:
         reasons = Counter(p["reason"] for p in problems).most_common(3)
         raise FeatureError(f"feature set {name!r}: every selected map failed ({len(problems)}); most common "
@@ -1048,7 +1051,12 @@ class FeatureSet:
 
     @property
     def n_voxels(self) -> int:
+        """Features per row (voxels, vertices, grayordinates or parcels: see ``unit``)."""
         return int(self.spec["mask"]["n_voxels"])
+
+    @property
+    def unit(self) -> str:
+        return UNITS.get(self.geometry, "voxels")
 
     @property
     def map_ids(self) -> list[str]:

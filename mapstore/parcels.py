@@ -131,7 +131,8 @@ def build_parcels(store: str | os.PathLike[str], atlas: Any, *, source: str | No
         _collect_feature_garbage(store_path, set_dir, entry.rows, existing.rows if existing else None)
     return FeatureReport(name=name, n_voxels=at.n_parcels, grid=f"parcels of {at.name}", mask="all parcels",
                          built=len(built.rows), skipped=kept.num_rows, dropped=dropped, failed=0,
-                         seconds=time.perf_counter() - t0, paths={f"parcels:{at.reducer}": len(built.rows)})
+                         seconds=time.perf_counter() - t0, paths={f"parcels:{at.reducer}": len(built.rows)},
+                         unit="parcels")
 
 
 def _safe(name: str) -> str:

@@ -34,10 +34,13 @@ def test_demo_index_contents(demo_store, demo_tree):
     st = mapstore.open(demo_store)
     maps = st.sql("SELECT * FROM maps").to_pandas()
     on_disk = [p for p in demo_tree.rglob("*.nii*") if not p.is_symlink() and p.stat().st_size > 1000]
-    assert len(maps) == len(on_disk)
+    surface = list(demo_tree.rglob("*_statmap.func.gii"))
+    assert len(maps) == len(on_disk) + len(surface) and len(surface) == (maps.geometry == "surface").sum()
     assert set(maps.stat) == {"t", "z", "effect", "variance"}
     assert maps.map_id.is_unique
-    assert maps.study.nunique() == 6 and maps.lab.nunique() == 4
+    assert maps.study.nunique() == 7 and maps.lab.nunique() == 5
+    assert maps[maps.geometry == "surface"].linked_map.notna().all()  # every demo hemisphere has its pair
+    maps = maps[maps.geometry == "volume"]
     # the two-site lab
     assert sorted(maps[maps.study == "glowtrack"].site.unique()) == ["lantern-north", "lantern-south"]
     assert maps.grid_id.nunique() == 4
@@ -58,7 +61,7 @@ def test_demo_index_contents(demo_store, demo_tree):
 def test_header_columns_agree_with_nibabel(demo_store):
     # reference: nibabel reading the same files
     st = mapstore.open(demo_store)
-    rows = st.sql("SELECT m.*, d.root FROM maps m JOIN datasets d USING (dataset) ORDER BY map_id").to_pylist()
+    rows = st.sql("SELECT m.*, d.root FROM maps m JOIN datasets d USING (dataset) WHERE m.geometry = 'volume' ORDER BY map_id").to_pylist()
     rows = rows[::max(1, len(rows) // 12)]  # a dozen maps spread over the catalog, the same every run
     for r in rows:
         img = nib.load(os.path.join(r["root"], r["relpath"]))
@@ -69,7 +72,7 @@ def test_header_columns_agree_with_nibabel(demo_store):
 
 def test_catalog_readable_by_pyarrow_and_duckdb_directly(demo_store):
     files = _maps_files(demo_store)
-    assert len(files) == 6  # one part per demo dataset
+    assert len(files) == 7  # one part per demo dataset
     t = pa.concat_tables([pq.read_table(f) for f in files])
     n = duckdb.connect().execute(f"SELECT count(*) FROM read_parquet({files})").fetchone()[0]
     assert t.num_rows == n == mapstore.open(demo_store).sql("SELECT count(*) n FROM maps")["n"][0].as_py()

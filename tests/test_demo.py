@@ -63,3 +63,23 @@ def test_a_decoder_trained_on_some_studies_predicts_the_others(demo_store, demo_
     scores = cross_val_score(model, sel.X, sel.y, cv=sel.splits("leave-one-group-out"))
     chance = 1 / len(set(sel.y))
     assert len(scores) == 6 and scores.mean() > 2 * chance and scores.min() > chance
+
+
+def test_surface_study_pools_with_the_volume_studies(demo_store, demo_tree, tmp_path):
+    from mapstore.cli import _demo_decoder
+
+    store = tmp_path / "s"
+    shutil.copytree(demo_store, store)
+    mapstore.label(store, demo_tree / "concepts.json")
+    rep = mapstore.build_features(store, grid="fsaverage5", where="m.stat IN ('t', 'z')", jobs=2, progress=False)
+    assert rep.failed == 0 and rep.paths.get("surface") and rep.paths.get("vol_to_surf")
+    st = mapstore.open(store)
+    sel = st.select(concepts=["visual-motion", "hand-movement", "listening", "reading", "arithmetic"],
+                    target="concept", stat=["t", "z"], group_by="study", features=rep.name, missing="zero")
+    st.export(tmp_path / "x", sel)
+    table = _demo_decoder(tmp_path / "x").to_pylist()
+    by_study = {r["held_out_study"]: r for r in table}
+    assert "driftwood" in by_study and len(by_study) == 7  # the surface study is one of the held-out studies
+    assert by_study["driftwood"]["accuracy"] > by_study["driftwood"]["chance"]
+    mean = sum(r["accuracy"] for r in table) / len(table)
+    assert mean > 2 * sum(r["chance"] for r in table) / len(table)

@@ -30,7 +30,7 @@ def test_default_set_links_rows_to_maps(featured_store):
     st = mapstore.open(featured_store)
     fs = st.features()
     assert fs.name == "default" and st.feature_sets() == ["default"]
-    n_maps = st.sql("SELECT count(*) n FROM maps")["n"][0].as_py()
+    n_maps = st.sql("SELECT count(*) n FROM maps WHERE geometry = 'volume'")["n"][0].as_py()
     assert fs.rows.num_rows == n_maps
     joined = st.sql("SELECT f.sha256 = m.sha256 AS same FROM features f JOIN maps m USING (map_id)")
     assert all(joined["same"].to_pylist())
@@ -49,7 +49,7 @@ def test_rows_equal_direct_resampling_and_nilearn(featured_store):
     grid = builtin_grid("MNI152-2mm")
     mask = mni152_brain_mask(grid)
     rows = st.sql("SELECT m.map_id, d.root || '/' || m.relpath AS path, m.study FROM maps m "
-                  "JOIN datasets d USING (dataset) ORDER BY m.study, m.map_id").to_pylist()
+                  "JOIN datasets d USING (dataset) WHERE m.geometry = 'volume' ORDER BY m.study, m.map_id").to_pylist()
     picks = {r["study"]: r for r in rows}.values()  # one per study: every grid and path
     X = fs.matrix([r["map_id"] for r in picks])
     for x, r in zip(X, picks):
