@@ -188,13 +188,22 @@ def reduce_rows(x: np.ndarray, atlas: Atlas) -> np.ndarray:
     """
     w = atlas.weights
     finite = np.isfinite(x)
-    x0 = np.where(finite, x, 0.0).astype(np.float64)
     if atlas.reducer == "mean":
-        sums = np.asarray(w.T @ x0.T).T
-        counts = np.asarray(w.T @ finite.T.astype(np.float64)).T
+        # a dense float32 product is BLAS-fast while the weights stay small (features x parcels)
+        dense = atlas.n_parcels <= 512
+        wd = w.toarray().astype(np.float32) if dense else w
+        x0 = np.where(finite, x, np.float32(0)) if not finite.all() else np.asarray(x, dtype=np.float32)
+        sums = np.asarray(x0 @ wd, dtype=np.float64) if dense else np.asarray(w.T @ x0.T.astype(np.float64)).T
+        counts = np.broadcast_to(np.asarray(w.sum(axis=0), dtype=np.float64).reshape(1, -1), sums.shape)
+        partial = ~finite.all(axis=1)
+        if partial.any():  # rows with missing features: count what each parcel has
+            counts = np.array(counts)
+            fp = finite[partial].astype(np.float32)
+            counts[partial] = np.asarray(fp @ wd if dense else (w.T @ fp.T).T, dtype=np.float64)
         with np.errstate(invalid="ignore", divide="ignore"):
             out = np.where(counts > 0, sums / np.where(counts > 0, counts, 1), np.nan)
         return out.astype(np.float32)
+    x0 = np.where(finite, x, 0.0).astype(np.float64)
     m = w.toarray()
     support = np.flatnonzero(np.abs(m).sum(axis=1) > 0)
     ms = m[support]

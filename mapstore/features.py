@@ -320,17 +320,18 @@ def _surface_vector(item: _Item, b: _Batch, indices: np.ndarray | None, masks: d
     """One row of a surface set: both hemispheres on the target mesh (left, then right)."""
     target: SurfaceTarget = b.grid  # type: ignore[assignment]
     cache = {} if masks is None else masks
-    meshes = _meshes(cache)
     out = np.full(target.n_vertices, np.nan, dtype=np.float32)
     if item.geometry == "volume":
         vol, facts, conversion, missing_from, clipped = _source_volume(item, b, cache)
-        out[:] = project_volume(np.asarray(vol, dtype=np.float32), facts.affine_array, target, b.projection, meshes)
+        out[:] = project_volume(np.asarray(vol, dtype=np.float32), facts.affine_array, target, b.projection,
+                                _meshes(cache))
         return (out if indices is None else out[indices]), conversion, "vol_to_surf", missing_from, 0
     halves, conversion, clipped, missing = _hemispheres(item, b)
     paths = set()
     for hemi, vals in halves.items():
         n_target = target.n_left if hemi == "L" else target.n_right
-        idx = density_index(vals.size, n_target, hemi, meshes)
+        # the sphere is read only to resample a coarser mesh up
+        idx = density_index(vals.size, n_target, hemi, _meshes(cache) if vals.size < n_target else None)
         paths.add("surface" if idx is None else f"nearest-vertex:{vals.size}")
         out[target.part(hemi)] = vals if idx is None else vals[idx]
     return (out if indices is None else out[indices]), conversion, "+".join(sorted(paths)) or "none", \
@@ -414,11 +415,10 @@ def _grayordinate_vector(item: _Item, b: _Batch, indices: np.ndarray | None, mas
             missing.append("not-in-source")
     elif item.geometry == "surface":
         halves, conversion, clipped, missing = _hemispheres(item, b)
-        meshes = _meshes(cache)
         for hemi, (pos, vertex, n_mesh) in cortex_positions(axis).items():
             if hemi in halves:
                 vals = halves[hemi]
-                idx = density_index(vals.size, n_mesh, hemi, meshes)
+                idx = density_index(vals.size, n_mesh, hemi, _meshes(cache) if vals.size < n_mesh else None)
                 out[pos] = (vals if idx is None else vals[idx])[vertex]
         path = "surface-cortex"
         missing.append("volume-structures")
@@ -825,11 +825,11 @@ def _set_spec(name: str, target: TargetGrid | SurfaceTarget, mk: Mask, method: s
         "versions": _library_versions(),
     }
     if isinstance(target, _MESHED):
-        import nilearn
+        from importlib.metadata import version
 
         spec["geometry"] = "surface" if isinstance(target, SurfaceTarget) else "grayordinates"
         spec["projection"] = projection
-        spec["versions"]["nilearn"] = nilearn.__version__
+        spec["versions"]["nilearn"] = version("nilearn")  # the mesh and vol_to_surf are nilearn's
     spec["spec_id"] = _spec_id(spec)
     return spec
 
@@ -904,8 +904,12 @@ def _run_batches(batches: list[_Batch], run: dict[str, Any], store_path: Path, s
 
 
 def _write_tables(store_path: Path, name: str, kept: pa.Table, built: _Built, problems: list[dict[str, Any]],
-                  dropped: int, existing: FeatureEntry | None) -> tuple[pa.Table, FeatureEntry]:
-    """The rows, problems and copies tables of the new state of the set; returns rows and its HEAD entry."""
+                  dropped: int, existing: FeatureEntry | None, copies: pa.Table | None = None
+                  ) -> tuple[pa.Table, FeatureEntry]:
+    """The rows, problems and copies tables of the new state of the set; returns rows and its HEAD entry.
+
+    ``copies`` gives the copies table (a parcel set takes its source set's) instead of scanning the rows.
+    """
     new_rows, created, snap = built.rows, built.created, built.snap
     rows_table = pa.concat_tables([kept, pa.Table.from_pylist(new_rows, schema=ROWS_SCHEMA)])
     rows_table = rows_table.sort_by([("map_id", "ascending")])
@@ -915,7 +919,9 @@ def _write_tables(store_path: Path, name: str, kept: pa.Table, built: _Built, pr
         write_parquet_atomic(rows_table, store_path / rel["rows"])
         write_parquet_atomic(pa.Table.from_pylist(problems, schema=FPROBLEMS_SCHEMA), store_path / rel["problems"])
         # copies among all the set's rows, from the sketches (new shards are in place already)
-        if not new_rows and not dropped and existing and existing.copies and \
+        if copies is not None:
+            pass
+        elif not new_rows and not dropped and existing and existing.copies and \
                 (store_path / existing.copies).exists():
             copies = pq.read_table(store_path / existing.copies)  # same rows: same pairs
         else:

@@ -122,7 +122,8 @@ def build_parcels(store: str | os.PathLike[str], atlas: Any, *, source: str | No
         old = _previous(store_path, name, existing, spec)
         _write_set_files(set_dir, spec, at, fs)
         built, kept, dropped = _reduce(fs, at, spec, old, set_dir)
-        rows_table, entry = _write_tables(store_path, name, kept, built, [], dropped, existing)
+        rows_table, entry = _write_tables(store_path, name, kept, built, [], dropped, existing,
+                                          copies=_source_copies(fs))
         head = read_head(store_path)
         head.features[name] = dataclasses.replace(entry, n_rows=rows_table.num_rows, spec_id=spec["spec_id"],
                                                   catalog=head.catalog)
@@ -133,6 +134,18 @@ def build_parcels(store: str | os.PathLike[str], atlas: Any, *, source: str | No
                          built=len(built.rows), skipped=kept.num_rows, dropped=dropped, failed=0,
                          seconds=time.perf_counter() - t0, paths={f"parcels:{at.reducer}": len(built.rows)},
                          unit="parcels")
+
+
+def _source_copies(fs: FeatureSet) -> pa.Table:
+    """The source set's copies: whether two maps are copies is judged on their voxels (or vertices).
+
+    A few dozen parcel means of two different maps can correlate above the near-copy threshold
+    where their voxels do not, so the parcel set's own rows would make a poor copy test.
+    """
+    from .copies import find_copies
+
+    table = fs.copies()
+    return table if table is not None else find_copies(fs)
 
 
 def _safe(name: str) -> str:

@@ -10,6 +10,7 @@ densities, reads GIFTI and CIFTI-2 values, and projects volumes onto the mesh wi
 from __future__ import annotations
 
 import hashlib
+import os
 import warnings
 from dataclasses import dataclass
 from typing import Any
@@ -110,15 +111,33 @@ def cortex_mask(target: SurfaceTarget) -> np.ndarray:
     fsaverage.  This is the wall's core, an approximation; pass a mask of your own for an
     exact one.
     """
-    from nilearn.datasets import load_fsaverage_data
-
-    img = load_fsaverage_data(mesh="fsaverage5", mesh_type="pial", data_type="thickness")
     out = []
     for hemi, part in PARTS:
         n = target.n_left if hemi == "L" else target.n_right
-        thick = np.asarray(img.data.parts[part]).reshape(-1)[:n]
-        out.append(np.abs(thick) >= MEDIAL_WALL_THICKNESS)
+        thick = _bundled_values(f"thick_{part}.gii.gz")
+        if thick is None:  # not where nilearn keeps it: through its public loader (slower to import)
+            from nilearn.datasets import load_fsaverage_data
+
+            img = load_fsaverage_data(mesh="fsaverage5", mesh_type="pial", data_type="thickness")
+            thick = np.asarray(img.data.parts[part]).reshape(-1)
+        out.append(np.abs(thick[:n]) >= MEDIAL_WALL_THICKNESS)
     return np.concatenate(out)
+
+
+def _bundled_values(name: str) -> np.ndarray | None:
+    """A data file of nilearn's bundled fsaverage5, read with nibabel without importing nilearn
+    (its import costs seconds per process); None when the file is not there."""
+    import importlib.util
+
+    import nibabel as nib
+
+    spec = importlib.util.find_spec("nilearn")
+    if spec is None or not spec.submodule_search_locations:
+        return None
+    path = os.path.join(list(spec.submodule_search_locations)[0], "datasets", "data", "fsaverage5", name)
+    if not os.path.isfile(path):
+        return None
+    return np.asarray(nib.load(path).darrays[0].data).reshape(-1)
 
 
 def density_index(n_source: int, n_target: int, hemi: str, meshes: dict[str, Any] | None = None
@@ -170,6 +189,9 @@ def read_surface_values(path: str, expect_sha256: str | None = None) -> np.ndarr
             if data.shape[0] != 1:
                 raise GridError(f"{path}: holds {data.shape[0]} maps; a feature row takes one")
             return data[0]
+        fast = _gifti_one_array(raw)
+        if fast is not None:
+            return fast
         img = nib.GiftiImage.from_bytes(raw)
         arrays = [a.data for a in img.darrays if a.intent not in (1008, 1009)]
     except GridError:
@@ -180,6 +202,45 @@ def read_surface_values(path: str, expect_sha256: str | None = None) -> np.ndarr
     if len(arrays) != 1 or np.asarray(arrays[0]).ndim != 1:
         raise GridError(f"{path}: holds {len(arrays)} data arrays; a feature row takes a file with one map")
     return np.asarray(arrays[0], dtype=np.float32)
+
+
+_GIFTI_TYPES = {"NIFTI_TYPE_FLOAT32": "f4", "NIFTI_TYPE_FLOAT64": "f8", "NIFTI_TYPE_INT32": "i4",
+                "NIFTI_TYPE_INT16": "i2", "NIFTI_TYPE_UINT8": "u1", "NIFTI_TYPE_INT8": "i1"}
+
+
+def _gifti_one_array(raw: bytes) -> np.ndarray | None:
+    """The values of a GIFTI file with one 1-D base64 data array, decoded without an XML parse.
+
+    GIFTI 1.0 (section 2.3.4): ``Base64Binary`` is the array's bytes in base64,
+    ``GZipBase64Binary`` the same after zlib compression, in the ``Endian`` byte order.  Anything
+    else (several arrays, ASCII, external files, 2-D arrays) returns None: nibabel reads it.
+    """
+    import base64
+    import re
+    import zlib
+
+    if raw.count(b"<DataArray") != 1:
+        return None
+    tag = re.search(rb"<DataArray\b([^>]*)>", raw)
+    start, stop = raw.find(b"<Data>"), raw.find(b"</Data>")
+    if tag is None or start < 0 or stop < start:
+        return None
+    attrs = dict(re.findall(rb'(\w+)="([^"]*)"', tag.group(1)))
+    enc, kind = attrs.get(b"Encoding"), _GIFTI_TYPES.get(attrs.get(b"DataType", b"").decode())
+    if enc not in (b"Base64Binary", b"GZipBase64Binary") or kind is None or attrs.get(b"Dimensionality") != b"1" \
+            or attrs.get(b"Intent") in (b"NIFTI_INTENT_POINTSET", b"NIFTI_INTENT_TRIANGLE"):
+        return None
+    try:
+        data = base64.b64decode(raw[start + 6:stop])
+        if enc == b"GZipBase64Binary":
+            data = zlib.decompress(data)
+        order = ">" if attrs.get(b"Endian") == b"BigEndian" else "<"
+        values = np.frombuffer(data, dtype=order + kind)
+    except (ValueError, zlib.error):
+        return None  # let nibabel say what is wrong
+    if values.size != int(attrs.get(b"Dim0", b"-1")):
+        return None
+    return values.astype(np.float32)
 
 
 def cifti_cortex(path: str, values: np.ndarray) -> dict[str, np.ndarray]:

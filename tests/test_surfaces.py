@@ -425,3 +425,32 @@ def test_grayordinates_match_by_structure_and_vertex():
     t_pos, s_pos = match(cortex_only, full)
     assert len(t_pos) == 2 * N5 and (np.asarray(full.name)[t_pos] == np.asarray(cortex_only.name)[s_pos]).all()
     assert (full.vertex[t_pos] == cortex_only.vertex[s_pos]).all()
+
+
+def test_gifti_values_decode_as_nibabel_reads_them(tmp_path, rng):
+    from mapstore.surface import read_surface_values
+
+    vals = rng.normal(size=N5)
+    for enc in ("GZipBase64Binary", "Base64Binary", "ASCII"):
+        for dtype, endian in (("NIFTI_TYPE_FLOAT32", "LittleEndian"), ("NIFTI_TYPE_FLOAT32", "BigEndian"),
+                              ("NIFTI_TYPE_INT32", "LittleEndian")):
+            arr = (vals * 100).astype(np.float32 if dtype == "NIFTI_TYPE_FLOAT32" else np.int32)
+            da = GiftiDataArray(arr, intent="NIFTI_INTENT_ZSCORE", datatype=dtype, encoding=enc, endian=endian)
+            path = tmp_path / f"{enc}-{dtype}-{endian}.func.gii"
+            nib.save(GiftiImage(darrays=[da]), str(path))
+            # nibabel decodes the same file (reference)
+            np.testing.assert_array_equal(read_surface_values(str(path)),
+                                          nib.load(str(path)).darrays[0].data.astype(np.float32))
+
+
+def test_cortex_mask_read_directly_equals_nilearn_loader():
+    # nilearn's public loader of its bundled fsaverage5 thickness (reference) gives the same medial wall
+    from nilearn.datasets import load_fsaverage_data
+
+    from mapstore.surface import MEDIAL_WALL_THICKNESS, builtin_surface, cortex_mask
+
+    img = load_fsaverage_data(mesh="fsaverage5", mesh_type="pial", data_type="thickness")
+    ref = np.concatenate([np.abs(np.asarray(img.data.parts[p])) >= MEDIAL_WALL_THICKNESS for p in ("left", "right")])
+    got = cortex_mask(builtin_surface("fsaverage5"))
+    np.testing.assert_array_equal(got, ref)
+    assert 0.9 < got.mean() < 0.99  # the medial wall is a few percent of the vertices

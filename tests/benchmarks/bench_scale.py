@@ -172,8 +172,12 @@ def synthetic_catalog(store: Path, n_rows: int, n_datasets: int = 100) -> float:
     return time.perf_counter() - t0
 
 
-def synthetic_features(store: Path, n_voxels: int = 100, shard_rows: int = 65536) -> float:
-    """A feature set over every map of a synthetic catalog (random rows, one dataset per shard)."""
+def synthetic_features(store: Path, n_voxels: int = 100, shard_rows: int = 65536, grid: dict | None = None,
+                       mask=None) -> float:
+    """A feature set over every map of a synthetic catalog (random rows, one dataset per shard).
+
+    ``grid`` (set.json's grid record) and ``mask`` (flat indices into it) make a set on a real grid.
+    """
     import numpy as np
     import pyarrow as pa
     import pyarrow.parquet as pq
@@ -204,13 +208,18 @@ def synthetic_features(store: Path, n_voxels: int = 100, shard_rows: int = 65536
     pq.write_table(pa.schema([("map_id", pa.string()), ("path", pa.string()), ("code", pa.string()),
                               ("reason", pa.string()), ("remedy", pa.string())]).empty_table(),
                    folder / "problems-0.parquet")
-    np.save(folder / "mask.npy", np.arange(n_voxels, dtype=np.int64))
-    grid = {"name": "synthetic", "shape": [n_voxels, 1, 1], "affine": np.eye(4).tolist(), "grid_id": "synthetic"}
+    np.save(folder / "mask.npy", np.arange(n_voxels, dtype=np.int64) if mask is None else np.asarray(mask))
+    if grid is None:
+        grid = {"name": "synthetic", "shape": [n_voxels, 1, 1], "affine": np.eye(4).tolist(), "grid_id": "synthetic"}
     spec = FeatureSetSpec("synthetic", grid, "synthetic", {"name": "all", "n_voxels": n_voxels, "sha256": "x"},
                           "x", "linear", "native", "one", False, spec_id="synthetic")
     (folder / "set.json").write_text(json.dumps(spec.to_json()))
+    from mapstore.tables import COPIES_SCHEMA
+
+    pq.write_table(COPIES_SCHEMA.empty_table(), folder / "copies-0.parquet")  # random rows: no copies
     head.features["synthetic"] = FeatureEntry("features/synthetic", "features/synthetic/rows-0.parquet",
-                                              "features/synthetic/problems-0.parquet", n_rows=rows.num_rows)
+                                              "features/synthetic/problems-0.parquet",
+                                              "features/synthetic/copies-0.parquet", n_rows=rows.num_rows)
     head.default_features = "synthetic"
     commit_head(store, head, {"event": "synthetic features", "rows": rows.num_rows})
     return time.perf_counter() - t0

@@ -1,0 +1,168 @@
+"""Benchmark: surface sets and parcel sets, against the hand loops a user would write with nilearn.
+
+Part A, a surface set of N fsaverage5 maps (N hemisphere pairs, 2N GIFTI files):
+
+* mapstore: ``index`` then ``build_features(grid="fsaverage5")`` (hashes, header facts,
+  provenance, shards), each in a fresh process;
+* the hand loop: ``nilearn.surface.load_surf_data`` of both files of every map, joined and
+  cut to the same cortex mask, stacked into one array;
+* the floor: reading every file's bytes once.
+
+Part B, a parcel set from a voxel set of R rows (MNI152 3 mm brain mask, 69,765 voxels, an
+invented atlas of cubic blocks, 47 of them in the mask):
+
+* mapstore: ``build_parcels``;
+* the hand loop: the rows read in blocks of 500, painted into 4-D images, and
+  ``NiftiLabelsMasker(strategy="mean")`` on each block.
+
+Time and peak memory (VmHWM of each child process, workers included) are measured in the same
+run and printed as ratios.
+
+Usage::
+
+    python tests/benchmarks/bench_surfaces.py [--maps 1000] [--rows 10000] [--jobs 2] [--workdir DIR]
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import shutil
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+import numpy as np
+
+HERE = Path(__file__).resolve().parent
+sys.path.insert(0, str(HERE.parent.parent))
+sys.path.insert(0, str(HERE))
+from _common import bench_dataset, floor  # noqa: E402
+from bench_scale import _child, synthetic_catalog, synthetic_features  # noqa: E402
+
+N5 = 10242
+
+
+def make_surface_tree(root: Path, n_maps: int) -> list[Path]:
+    """n_maps hemisphere pairs of random t maps on fsaverage5 (GIFTI written by nibabel)."""
+    import nibabel as nib
+    from nibabel.gifti import GiftiDataArray, GiftiImage
+
+    ds = bench_dataset(root, "surfacestudy", 60)
+    rng = np.random.default_rng(0)
+    files = []
+    for i in range(n_maps):
+        sub, con = divmod(i, 10)
+        for hemi in "LR":
+            img = GiftiImage(darrays=[GiftiDataArray(rng.standard_normal(N5).astype(np.float32),
+                                                     intent="NIFTI_INTENT_TTEST", datatype="NIFTI_TYPE_FLOAT32")])
+            p = ds / f"sub-{sub:03d}" / f"sub-{sub:03d}_task-go_hemi-{hemi}_space-fsaverage5_contrast-c{con}_stat-t_" \
+                "statmap.func.gii"
+            p.parent.mkdir(parents=True, exist_ok=True)
+            nib.save(img, str(p))
+            files.append(p)
+    return files
+
+
+def surface_part(work: Path, n_maps: int, jobs: int) -> None:
+    tree, store = work / "surf-tree", work / "surf-store"
+    t0 = time.perf_counter()
+    files = make_surface_tree(tree, n_maps)
+    print(f"A. surface set: {n_maps} fsaverage5 maps ({len(files)} GIFTI files, "
+          f"{sum(f.stat().st_size for f in files) / 1e6:.0f} MB), written in {time.perf_counter() - t0:.1f} s")
+    fl = floor(files)
+    idx = _child(f"import json, time, mapstore\nt=time.perf_counter()\n"
+                 f"mapstore.index([{str(tree)!r}], {str(store)!r}, jobs={jobs}, progress=False)\n"
+                 "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak()}))")
+    feat = _child(f"import json, time, mapstore\nt=time.perf_counter()\n"
+                  f"r=mapstore.build_features({str(store)!r}, grid='fsaverage5', jobs={jobs}, progress=False)\n"
+                  "assert r.built == " + str(n_maps) + ", r.summary()\n"
+                  "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak()}))")
+    hand = _child(f"import json, time, glob, numpy as np\nt=time.perf_counter()\n"
+                  "from nilearn.surface import load_surf_data\n"
+                  "from mapstore.surface import builtin_surface, cortex_mask\n"
+                  "keep = cortex_mask(builtin_surface('fsaverage5'))\n"
+                  f"lefts = sorted(glob.glob({str(tree)!r} + '/*/sub-*/*hemi-L*.func.gii'))\n"
+                  "rows = [np.concatenate([load_surf_data(p), load_surf_data(p.replace('hemi-L', 'hemi-R'))])[keep]"
+                  " for p in lefts]\n"
+                  "X = np.stack(rows).astype(np.float32)\n"
+                  f"assert X.shape[0] == {n_maps}\n"
+                  "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak()}))")
+    ours = idx["s"] + feat["s"]
+    print(f"   read floor (bytes of every file once)        {fl:8.2f} s")
+    print(f"   mapstore index                               {idx['s']:8.2f} s   peak {idx['mb']:6.0f} MB")
+    print(f"   mapstore features --grid fsaverage5          {feat['s']:8.2f} s   peak {feat['mb']:6.0f} MB")
+    print(f"   hand loop (nilearn load_surf_data + stack)   {hand['s']:8.2f} s   peak {hand['mb']:6.0f} MB")
+    print(f"   ratios: index+features / hand loop = {ours / hand['s']:.2f}x, features alone / hand loop = "
+          f"{feat['s'] / hand['s']:.2f}x, features / floor = {feat['s'] / max(fl, 1e-9):.1f}x, "
+          f"peak features / hand loop = {feat['mb'] / hand['mb']:.2f}x")
+
+
+def parcel_part(work: Path, n_rows: int) -> None:
+    import nibabel as nib
+
+    from mapstore.grid import builtin_grid, mni152_brain_mask
+
+    store = work / "parcel-store"
+    grid = builtin_grid("MNI152-3mm")
+    mask = mni152_brain_mask(grid)
+    t0 = time.perf_counter()
+    synthetic_catalog(store, n_rows, n_datasets=max(1, n_rows // 500))
+    synthetic_features(store, mask.n_voxels, grid=grid.to_json(), mask=mask.indices)
+    print(f"\nB. parcel set from a voxel set of {n_rows:,} rows x {mask.n_voxels:,} voxels "
+          f"({n_rows * mask.n_voxels * 4 / 1e9:.1f} GB), made in {time.perf_counter() - t0:.1f} s")
+    ijk = np.indices(grid.shape)
+    lab = (ijk[0] // 16) * 16 + (ijk[1] // 19) * 4 + (ijk[2] // 16) + 1  # invented blocks
+    atlas = work / "blocks.nii.gz"
+    nib.save(nib.Nifti1Image(lab.astype(np.int16), grid.affine_array), str(atlas))
+    ours = _child(f"import json, time, mapstore\nt=time.perf_counter()\n"
+                  f"r=mapstore.build_parcels({str(store)!r}, {str(atlas)!r}, source='synthetic', name='blocks')\n"
+                  "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak(), 'p': r.n_voxels}))")
+    hand = _child(f"import json, time, warnings, numpy as np, nibabel as nib, mapstore\nt=time.perf_counter()\n"
+                  "from nilearn.maskers import NiftiLabelsMasker\nwarnings.simplefilter('ignore')\n"
+                  f"fs = mapstore.open({str(store)!r}).features('synthetic')\n"
+                  "m = fs.unmask(np.ones(fs.n_voxels)); mask_img = nib.Nifti1Image(np.isfinite(m).astype(np.uint8), "
+                  "fs.grid.affine_array)\n"
+                  f"masker = NiftiLabelsMasker({str(atlas)!r}, mask_img=mask_img, strategy='mean').fit()\n"
+                  "ids = fs.map_ids; out = []\n"
+                  "for i in range(0, len(ids), 500):\n"
+                  "    x = fs.matrix(ids[i:i+500])\n"
+                  "    vol = np.zeros(fs.grid.shape + (len(x),), np.float32)\n"
+                  "    vol.reshape(-1, len(x))[fs.mask_indices] = x.T\n"
+                  "    out.append(masker.transform(nib.Nifti1Image(vol, fs.grid.affine_array)))\n"
+                  "P = np.concatenate(out)\n"
+                  "np.save(" + repr(str(work / "hand.npy")) + ", P[:5])\n"
+                  "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak(), 'p': P.shape[1]}))")
+    import mapstore
+
+    fs = mapstore.open(store).features("blocks")
+    same = np.allclose(fs.matrix(fs.map_ids[:5]), np.load(work / "hand.npy"), rtol=1e-4, atol=1e-5)
+    print(f"   mapstore build_parcels ({ours['p']} parcels)       {ours['s']:8.2f} s   peak {ours['mb']:6.0f} MB")
+    print(f"   hand loop (NiftiLabelsMasker, 500-row blocks) {hand['s']:8.2f} s   peak {hand['mb']:6.0f} MB")
+    print(f"   ratios: time {ours['s'] / hand['s']:.2f}x, peak {ours['mb'] / hand['mb']:.2f}x; "
+          f"first rows equal to the masker's: {same}")
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
+    ap.add_argument("--maps", type=int, default=1000)
+    ap.add_argument("--rows", type=int, default=10000)
+    ap.add_argument("--jobs", type=int, default=2)
+    ap.add_argument("--workdir")
+    args = ap.parse_args()
+    work = Path(args.workdir or tempfile.mkdtemp(prefix="mapstore-bench-surf-"))
+    work.mkdir(parents=True, exist_ok=True)
+    try:
+        if args.maps:
+            surface_part(work, args.maps, args.jobs)
+        if args.rows:
+            parcel_part(work, args.rows)
+    finally:
+        if not args.workdir:
+            shutil.rmtree(work, ignore_errors=True)
+    print(json.dumps({"maps": args.maps, "rows": args.rows, "jobs": args.jobs}))
+
+
+if __name__ == "__main__":
+    main()
