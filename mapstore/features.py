@@ -554,11 +554,14 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], stat: 
     is its ``linked_map``); an unpaired hemisphere comes alone, the other half missing.
     """
     q = ("SELECT m.map_id, m.dataset, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, "
-         "m.model_mask, m.model_mask_sha256, coalesce(m.geometry, 'volume') AS geometry, m.hemi, "
-         "r.relpath AS relpath_r, r.sha256 AS sha256_r, r.model_mask AS model_mask_r, "
-         "r.model_mask_sha256 AS model_mask_sha256_r, r.n_volumes AS n_volumes_r FROM maps m "
-         "JOIN datasets d USING (dataset) LEFT JOIN maps r ON r.map_id = m.linked_map AND m.hemi = 'L' "
-         "AND r.hemi = 'R'")
+         "m.model_mask, m.model_mask_sha256, coalesce(m.geometry, 'volume') AS geometry, m.hemi, ")
+    if surface:  # the right hemisphere's file beside the left's
+        q += ("r.relpath AS relpath_r, r.sha256 AS sha256_r, r.model_mask AS model_mask_r, "
+              "r.model_mask_sha256 AS model_mask_sha256_r, r.n_volumes AS n_volumes_r FROM maps m "
+              "JOIN datasets d USING (dataset) LEFT JOIN maps r ON r.map_id = m.linked_map AND m.hemi = 'L' "
+              "AND r.hemi = 'R'")
+    else:  # a volume set: no second read of the maps table
+        q += ("NULL AS n_volumes_r FROM maps m JOIN datasets d USING (dataset)")
     conds = [f"({where})"] if where else []
     if surface:  # a pair comes once, as its left file
         conds.append("NOT (coalesce(m.geometry, 'volume') = 'surface' AND m.hemi = 'R' AND m.linked_map IS NOT NULL)")
