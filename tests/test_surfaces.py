@@ -416,6 +416,7 @@ def test_grayordinate_set_pools_cifti_gifti_and_volume_maps(pooled, tmp_path):
     assert isinstance(img, nib.Cifti2Image) and img.header.get_axis(1) == ax
     sel = s.select(features="grey", missing="zero", stat=["t", "z"])
     assert "no feature row" not in sel.dropped and sel.X.shape[1] == len(ax)
+    assert s.check("grey").count("error") == 0
 
 
 def test_grayordinates_match_by_structure_and_vertex():
