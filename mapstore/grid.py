@@ -18,6 +18,7 @@ from __future__ import annotations
 
 import gzip
 import hashlib
+import math
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -264,7 +265,7 @@ def read_volume(path: str, expect_sha256: str | None = None, dtype=np.float32) -
     if facts.dtype not in REAL_SCALAR_DTYPES:
         raise GridError(f"{path}: voxel type {facts.dtype} is not a real scalar; save the map as float32")
     dt = np.dtype(facts.dtype).newbyteorder(facts.endianness)
-    count = int(np.prod(facts.spatial_shape))
+    count = math.prod(facts.spatial_shape)  # Python ints: a damaged header's dims must not wrap around
     need = facts.vox_offset + count * dt.itemsize
     if len(body) < need:
         raise GridError(f"{path}: data is truncated ({len(body)} bytes, header needs {need}); re-create the file")

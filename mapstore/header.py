@@ -147,7 +147,7 @@ class HeaderFacts:
 
     @property
     def n_volumes(self) -> int:
-        return int(np.prod(self.shape[3:])) if len(self.shape) > 3 else 1
+        return math.prod(self.shape[3:]) if len(self.shape) > 3 else 1
 
     @property
     def orientation(self) -> str:
@@ -159,7 +159,7 @@ class HeaderFacts:
 
     @property
     def data_nbytes(self) -> int:
-        return int(np.prod(self.shape, dtype=np.int64)) * max(self.bitpix, 8) // 8
+        return math.prod(self.shape) * max(self.bitpix, 8) // 8  # Python ints: no int64 wrap-around
 
 
 def _quaternion_affine(b: float, c: float, d: float, pixdim: np.ndarray,
@@ -305,6 +305,9 @@ def _checked_shape(path: str, hdr) -> tuple[int, ...]:
     shape = tuple(dim[1: ndim + 1])
     if any(s < 1 for s in shape):
         raise HeaderError(path, "bad-dim", f"dimensions {shape} contain a value below 1",
+                          "the header is damaged; re-create the file")
+    if math.prod(shape) > 1 << 48:  # far beyond any image; products must also fit the catalog's int64 columns
+        raise HeaderError(path, "bad-dim", f"dimensions {shape} make {math.prod(shape):.3g} values",
                           "the header is damaged; re-create the file")
     return shape
 

@@ -200,3 +200,16 @@ def test_grid_fingerprint():
     assert grid_fingerprint((3, 4, 5), a) == grid_fingerprint((3, 4, 5), b)
     assert grid_fingerprint((3, 4, 5), a) != grid_fingerprint((3, 4, 5), c)
     assert grid_fingerprint((3, 4, 5), a) != grid_fingerprint((3, 4, 6), a)
+
+
+def test_dimensions_whose_product_wraps_int64_are_refused(tmp_path):
+    # found by the fuzz test: NIfTI-2 dims are int64 (nifti2.h); one damaged byte made a shape whose
+    # voxel count wrapped around in int64 to the file's real size, and the reshape crashed
+    path = tmp_path / "x.nii"
+    nib.save(nib.Nifti2Image(np.arange(120, dtype=np.float32).reshape(4, 5, 6), np.eye(4)), str(path))
+    raw = bytearray(path.read_bytes())
+    raw[39] = 6  # the top byte of dim[2]
+    path.write_bytes(bytes(raw))
+    with pytest.raises(HeaderError) as err:
+        read_header(str(path))
+    assert err.value.code == "bad-dim" and str(path) in str(err.value)
