@@ -182,6 +182,18 @@ def _header_columns(facts: HeaderFacts) -> dict[str, Any]:
     }
 
 
+_FSAVERAGE_BY_COUNT = {10 * 4 ** k + 2: f"fsaverage{k}" for k in range(3, 7)} | {163842: "fsaverage"}
+
+
+def _mesh_name(space: str | None, den: str | None, n_vertices: int, fmt: str) -> tuple[str | None, str | None]:
+    """(space, den) naming a GIFTI map's mesh: an fsaverage map named only by its vertex count (nilearn's
+    ``den-10242``, no space) and one named ``space-fsaverage5`` are on the same mesh."""
+    if fmt == "gifti" and n_vertices in _FSAVERAGE_BY_COUNT and (not space or space.startswith("fsaverage")) \
+            and (not den or den == str(n_vertices)):
+        return _FSAVERAGE_BY_COUNT[n_vertices], None
+    return space, den
+
+
 _SIDE = {"CortexLeft": "L", "CortexRight": "R", "CORTEX_LEFT": "L", "CORTEX_RIGHT": "R"}
 
 
@@ -222,8 +234,8 @@ def probe_surface_file(path: str, entities: dict[str, str], progress=None
         "scl_slope": facts.scl_slope, "scl_inter": facts.scl_inter, "intent_code": facts.intent_code,
         "intent_name": facts.intent_name, "intent_p1": None, "qform_code": None, "sform_code": None,
         "affine_source": None, "affine": None, "voxel_size": None, "orientation": None,
-        "grid_id": surface_grid_id(facts.geometry_key, space, den, None if facts.format == "cifti" else
-                                   hemi or side),
+        "grid_id": surface_grid_id(facts.geometry_key, *_mesh_name(space, den, facts.n_vertices, facts.format),
+                                   None if facts.format == "cifti" else hemi or side),
         "descrip": facts.descrip, "header_warnings": warnings,
         "geometry": "surface" if facts.format == "gifti" else "grayordinates",
         "n_vertices": facts.n_vertices, "structures": facts.structure, "_hemi": side,

@@ -455,3 +455,18 @@ def test_cortex_mask_read_directly_equals_nilearn_loader():
     got = cortex_mask(builtin_surface("fsaverage5"))
     np.testing.assert_array_equal(got, ref)
     assert 0.9 < got.mean() < 0.99  # the medial wall is a few percent of the vertices
+
+
+def test_an_fsaverage_map_named_by_vertex_count_is_on_the_named_mesh(tmp_path, rng):
+    # nilearn names fsaverage5 maps den-10242 without a space; others write space-fsaverage5: one mesh
+    root = tmp_path / "ds"
+    (root / "dataset_description.json").parent.mkdir(parents=True)
+    (root / "dataset_description.json").write_text(json.dumps({"Name": "two", "BIDSVersion": "1.9.0",
+                                                               "DatasetType": "derivative"}))
+    gifti(root / "sub-01" / "sub-01_task-a_hemi-L_den-10242_contrast-x_stat-t_statmap.gii", [rng.normal(size=N5)])
+    gifti(root / "sub-02" / "sub-02_task-a_hemi-L_space-fsaverage5_contrast-x_stat-t_statmap.func.gii",
+          [rng.normal(size=N5)])
+    mapstore.index([root], tmp_path / "s", progress=False)
+    s = mapstore.open(tmp_path / "s")
+    assert len(set(s.sql("SELECT grid_id FROM maps").column(0).to_pylist())) == 1
+    assert not [f for f in s.check(pictures=False).findings if f.code == "several-meshes"]
