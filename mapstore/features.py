@@ -922,12 +922,10 @@ def _write_tables(store_path: Path, name: str, kept: pa.Table, built: _Built, pr
         write_parquet_atomic(rows_table, store_path / rel["rows"])
         write_parquet_atomic(pa.Table.from_pylist(problems, schema=FPROBLEMS_SCHEMA), store_path / rel["problems"])
         # copies among all the set's rows, from the sketches (new shards are in place already)
-        if copies is not None:
-            pass
-        elif not new_rows and not dropped and existing and existing.copies and \
+        if copies is None and not new_rows and not dropped and existing and existing.copies and \
                 (store_path / existing.copies).exists():
             copies = pq.read_table(store_path / existing.copies)  # same rows: same pairs
-        else:
+        if copies is None:
             copies = find_copies(FeatureSet(store_path, name, entry))
         write_parquet_atomic(copies, store_path / rel["copies"])
     except OSError as exc:
