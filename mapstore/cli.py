@@ -143,7 +143,9 @@ def sql_cmd(store, query, fmt, out) -> None:
 @click.option("--name", help="Feature set name (default: 'default' for the default settings).")
 @click.option("--grid", default="MNI152-2mm", show_default=True,
               help="MNI152-1mm|MNI152-2mm|MNI152-3mm, a reference image, or a JSON {shape, affine} file; "
-                   "fsaverage5 for a surface set (both hemispheres per row, volume maps projected).")
+                   "fsaverage5 or a JSON mesh description (GIFTI surfaces per hemisphere) for a surface set "
+                   "(both hemispheres per row, volume maps projected); a .dscalar.nii template for "
+                   "grayordinates.")
 @click.option("--mask", default="brain", show_default=True,
               help="brain (MNI152 brain mask; on a surface: the cortex, medial wall out), all (surfaces), "
                    "intersection, coverage:FRACTION, or a mask image.")
@@ -161,11 +163,13 @@ def sql_cmd(store, query, fmt, out) -> None:
 @click.option("--projection", help="Surface sets: vol_to_surf parameters for volume maps, as JSON "
               "(e.g. '{\"kind\": \"line\", \"radius\": 3}'); default: five depths, white to pial.")
 @click.option("--no-volumes", is_flag=True, help="Surface sets: leave volume maps out (no projection).")
+@click.option("--mesh", type=click.Path(exists=True, dir_okay=False),
+              help="Grayordinate sets: a JSON mesh description of the template's cortex (to project volume maps).")
 @click.option("--jobs", type=click.IntRange(min=1), default=None, help="Processes (default: all cores).")
 @click.option("--dask", "dask_address", help="Run on this Dask scheduler (e.g. tcp://host:8786).")
 @click.option("--list", "list_only", is_flag=True, help="List the store's feature sets and stop.")
 def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing, background, model_maps, where,
-                 projection, no_volumes, jobs, dask_address, list_only) -> None:
+                 projection, no_volumes, mesh, jobs, dask_address, list_only) -> None:
     """Resample every map once onto one grid or mesh and mask (a named feature set)."""
     if list_only:
         click.echo(render_table(open_store(store).sql("SELECT * FROM feature_sets")))
@@ -179,7 +183,7 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
     report = build_features(store, name, grid=grid, mask=mask, method=method, stat=stat,
                             p_sided=p_sided, zero_as_missing=zero_as_missing, background=background,
                             model_maps=model_maps, where=where, projection=proj, volumes=not no_volumes,
-                            jobs=jobs, scheduler=dask_address)
+                            mesh=mesh, jobs=jobs, scheduler=dask_address)
     click.echo(report.summary())
 
 

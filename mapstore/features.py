@@ -70,8 +70,9 @@ from .surface import (
     check_projection,
     cifti_cortex,
     cortex_mask,
-    density_index,
-    fsaverage_meshes,
+    mesh_from_description,
+    missing_meshes,
+    vertex_index,
     project_volume,
     read_surface_values,
     surface_from_spec,
@@ -142,7 +143,16 @@ def _library_versions() -> dict[str, str]:
             "nibabel": nibabel.__version__}
 
 
-def _resolve_grid(grid: Any) -> TargetGrid | SurfaceTarget | GrayordinateTarget:
+def _resolve_grid(grid: Any, mesh: Any = None) -> TargetGrid | SurfaceTarget | GrayordinateTarget:
+    if mesh is not None:
+        if not (isinstance(grid, GrayordinateTarget) or (isinstance(grid, str) and (
+                grid.startswith("cifti:") or grid.endswith((".dscalar.nii", ".dtseries.nii"))))):
+            raise ParameterError("mesh applies to grayordinate sets (a CIFTI template as grid); a surface set's "
+                                 "mesh is its grid: pass the mesh description as grid")
+        surf = mesh if isinstance(mesh, SurfaceTarget) else mesh_from_description(mesh)
+        if isinstance(grid, GrayordinateTarget):
+            return grayordinate_target(grid.template, surf)
+        return grayordinate_target(grid[len("cifti:"):] if grid.startswith("cifti:") else grid, surf)
     if isinstance(grid, (TargetGrid, *_MESHED)):
         return grid
     if isinstance(grid, str) and builtin_surface(grid):
@@ -160,6 +170,8 @@ def _resolve_grid(grid: Any) -> TargetGrid | SurfaceTarget | GrayordinateTarget:
             doc = json.loads(Path(grid).read_text())
         except (OSError, ValueError) as exc:
             raise ParameterError(f"grid spec {grid}: cannot read ({exc}); expected JSON {want}") from None
+        if isinstance(doc, dict) and "hemispheres" in doc:  # a mesh description: a surface set on the user's mesh
+            return mesh_from_description(grid)
         missing = [k for k in ("shape", "affine") if not isinstance(doc, dict) or k not in doc]
         if missing:
             raise ParameterError(f"grid spec {grid}: no {' and no '.join(missing)}; expected JSON {want}")
@@ -208,6 +220,7 @@ class _Item:
     sha256_r: str | None = None
     mask_path_r: str | None = None
     mask_sha256_r: str | None = None
+    space: str | None = None  # surface: the map's space entity (chooses the resampling path)
 
 
 @dataclass
@@ -324,24 +337,23 @@ def _surface_vector(item: _Item, b: _Batch, indices: np.ndarray | None, masks: d
     if item.geometry == "volume":
         vol, facts, conversion, missing_from, clipped = _source_volume(item, b, cache)
         out[:] = project_volume(np.asarray(vol, dtype=np.float32), facts.affine_array, target, b.projection,
-                                _meshes(cache))
+                                _meshes(cache, target))
         return (out if indices is None else out[indices]), conversion, "vol_to_surf", missing_from, 0
     halves, conversion, clipped, missing = _hemispheres(item, b)
     paths = set()
     for hemi, vals in halves.items():
-        n_target = target.n_left if hemi == "L" else target.n_right
-        # the sphere is read only to resample a coarser mesh up
-        idx = density_index(vals.size, n_target, hemi, _meshes(cache) if vals.size < n_target else None)
-        paths.add("surface" if idx is None else f"nearest-vertex:{vals.size}")
+        idx, path = vertex_index(item.space, vals.size, hemi, target, cache)
+        paths.add(path)
         out[target.part(hemi)] = vals if idx is None else vals[idx]
     return (out if indices is None else out[indices]), conversion, "+".join(sorted(paths)) or "none", \
         "+".join(missing) or "none", clipped
 
 
-def _meshes(cache: dict[str, Any]) -> dict[str, Any]:
+def _meshes(cache: dict[str, Any], target: SurfaceTarget) -> dict[str, Any]:
+    """The target's surfaces, read once per batch."""
     meshes = cache.get("_meshes")
     if meshes is None:
-        meshes = cache["_meshes"] = fsaverage_meshes()
+        meshes = cache["_meshes"] = target.meshes()
     return meshes
 
 
@@ -415,10 +427,14 @@ def _grayordinate_vector(item: _Item, b: _Batch, indices: np.ndarray | None, mas
             missing.append("not-in-source")
     elif item.geometry == "surface":
         halves, conversion, clipped, missing = _hemispheres(item, b)
-        for hemi, (pos, vertex, n_mesh) in cortex_positions(axis).items():
+        cortex = cortex_positions(axis)
+        mesh = target.cortex_mesh() or SurfaceTarget(
+            "template-cortex", cortex["L"][2] if "L" in cortex else 0, cortex["R"][2] if "R" in cortex else 0,
+            item.space or "")  # no mesh given: the template's cortex is taken to be on the map's own mesh
+        for hemi, (pos, vertex, _) in cortex.items():
             if hemi in halves:
                 vals = halves[hemi]
-                idx = density_index(vals.size, n_mesh, hemi, _meshes(cache) if vals.size < n_mesh else None)
+                idx, _ = vertex_index(item.space, vals.size, hemi, mesh, cache)
                 out[pos] = (vals if idx is None else vals[idx])[vertex]
         path = "surface-cortex"
         missing.append("volume-structures")
@@ -432,12 +448,12 @@ def _grayordinate_vector(item: _Item, b: _Batch, indices: np.ndarray | None, mas
             out[vox] = res.reshape(-1)[flat]
         cortex = cortex_positions(axis)
         path = "voxels"
-        if cortex and all(n == SURFACE_TARGETS["fsaverage5"] for _, _, n in cortex.values()):
-            fsa = builtin_surface("fsaverage5")
-            proj = project_volume(np.asarray(vol, dtype=np.float32), facts.affine_array, fsa, b.projection,
-                                  _meshes(cache))
+        mesh = target.cortex_mesh()
+        if cortex and mesh is not None:
+            proj = project_volume(np.asarray(vol, dtype=np.float32), facts.affine_array, mesh, b.projection,
+                                  _meshes(cache, mesh))
             for hemi, (pos, vertex, _) in cortex.items():
-                out[pos] = proj[fsa.part(hemi)][vertex]
+                out[pos] = proj[mesh.part(hemi)][vertex]
             path = "voxels+vol_to_surf"
         elif cortex:
             missing.append("no-cortex-mesh")
@@ -547,14 +563,16 @@ _Z_READY = ("t", "p", "z")
 
 
 def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], stat: str, surface: bool = False,
-                 volumes: bool = True) -> tuple[list[dict[str, Any]], dict[str, int]]:
+                 volumes: bool | str = True) -> tuple[list[dict[str, Any]], dict[str, int]]:
     """Maps the set takes, and how many the defaults left out (and why).
+
+    ``volumes`` False (or the reason, a str) leaves volume maps out of a surface set.
 
     A surface set takes a hemisphere pair as one map, under the left file's id (the right file
     is its ``linked_map``); an unpaired hemisphere comes alone, the other half missing.
     """
     q = ("SELECT m.map_id, m.dataset, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, "
-         "m.model_mask, m.model_mask_sha256, coalesce(m.geometry, 'volume') AS geometry, m.hemi, ")
+         "m.model_mask, m.model_mask_sha256, coalesce(m.geometry, 'volume') AS geometry, m.hemi, m.space, ")
     if surface:  # the right hemisphere's file beside the left's
         q += ("r.relpath AS relpath_r, r.sha256 AS sha256_r, r.model_mask AS model_mask_r, "
               "r.model_mask_sha256 AS model_mask_sha256_r, r.n_volumes AS n_volumes_r FROM maps m "
@@ -578,8 +596,9 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], stat: 
         kind = r["map_kind"] or "contrast"  # tables from before map kinds were recorded
         if not surface and r["geometry"] != "volume":
             why = f"{r['geometry']} maps (a volume set takes volume maps only)"
-        elif surface and r["geometry"] == "volume" and not volumes:
-            why = "volume maps (projecting volumes onto the mesh was turned off)"
+        elif surface and r["geometry"] == "volume" and volumes is not True:
+            why = volumes if isinstance(volumes, str) else \
+                "volume maps (projecting volumes onto the mesh was turned off)"
         elif kind not in kinds:
             why = "model maps (no contrast: residuals, fit; --model-maps takes them)"
         elif max(r["n_volumes"] or 1, r["n_volumes_r"] or 1) > 1:
@@ -606,7 +625,13 @@ def _make_mask(mask: str | os.PathLike[str] | np.ndarray, grid: TargetGrid | Sur
                                  f"'coverage:FRACTION' or a boolean array of {grid.n_grayordinates}; got {m!r}")
     if isinstance(grid, SurfaceTarget):
         if m in ("brain", "cortex"):
-            return mask_from_array(grid, cortex_mask(grid), f"{grid.name}-cortex")
+            cortex = cortex_mask(grid)
+            if cortex is not None:
+                return mask_from_array(grid, cortex, f"{grid.name}-cortex")
+            if m == "cortex":
+                raise ParameterError(f"mesh {grid.name}: its description gives no 'cortex' files; add them (non-zero "
+                                     "on cortex) or use mask='all'")
+            return mask_from_array(grid, np.ones(grid.n_vertices, bool), f"{grid.name}-all")
         if m == "all":
             return mask_from_array(grid, np.ones(grid.n_vertices, bool), f"{grid.name}-all")
         if m not in ("intersection",) and not m.startswith("coverage:"):
@@ -646,6 +671,7 @@ def build_features(
     where: str | None = None,
     projection: dict[str, Any] | None = None,
     volumes: bool = True,
+    mesh: str | os.PathLike[str] | SurfaceTarget | None = None,
     jobs: int | None = None,
     scheduler: Any = None,
     batch_size: int | None = None,
@@ -667,7 +693,10 @@ def build_features(
         reference image path, a JSON file ``{"shape": ..., "affine": ...}``, or a grid.
         ``fsaverage5`` makes a surface set: both hemispheres of nilearn's fsaverage5 in one
         row (left vertices, then right), surface maps resampled between fsaverage densities
-        by nearest vertex on the sphere, volume maps projected (``projection``).
+        by nearest vertex on the sphere, volume maps projected (``projection``).  A JSON mesh
+        description (:func:`mapstore.surface.mesh_from_description`: GIFTI surfaces per
+        hemisphere, e.g. fsLR or another fsaverage density) makes a surface set on that mesh.
+        A CIFTI-2 file (``.dscalar.nii``) makes a grayordinate set on its brain models.
     mask : str, path or ndarray, default="brain"
         ``brain`` (nilearn's MNI152 brain mask on the grid), ``intersection`` (voxels
         every selected map covers), ``coverage:F`` (covered by at least a fraction F of
@@ -696,6 +725,10 @@ def build_features(
         surfaces, linear interpolation); recorded in every row's feature key.
     volumes : bool, default=True
         Surface sets: project volume maps onto the mesh (False leaves them out).
+    mesh : path or SurfaceTarget, optional
+        Grayordinate sets: a mesh description of the template's cortex (its vertex counts), to
+        project volume maps' cortex and resample GIFTI maps of other spaces onto it.  Without
+        it, a template on fsaverage5 uses nilearn's; others leave volume maps' cortex missing.
     jobs : int, optional
         Local worker processes (default: all cores).
     scheduler : dask.distributed.Client or str, optional
@@ -710,7 +743,7 @@ def build_features(
     jobs = resolve_jobs(jobs)
     if progress is None:
         progress = sys.stderr.isatty()
-    target = _resolve_grid(grid)
+    target = _resolve_grid(grid, mesh)
     cat = Catalog(store)
     cat.require_catalog()
     default_settings = (grid == "MNI152-2mm" and str(mask) == "brain" and method == "linear"
@@ -720,8 +753,19 @@ def build_features(
     proj = None
     if isinstance(target, SurfaceTarget):
         method = "nearest-vertex"
+    volumes_in: bool | str = volumes
     if surface:
         proj = check_projection(projection) if volumes else {"volumes": "left out"}
+        lacking = missing_meshes(target, proj) if volumes and isinstance(target, SurfaceTarget) else []
+        if lacking:
+            volumes_in = (f"volume maps (the mesh {target.name} has no {' and no '.join(lacking)} surface to project "
+                          "them onto: add it to the mesh description)")
+            proj = {"volumes": "left out"}
+        if volumes and isinstance(target, GrayordinateTarget) and target.mesh is not None \
+                and missing_meshes(target.mesh, proj):
+            raise ParameterError(f"mesh {target.mesh.name}: no {' and no '.join(missing_meshes(target.mesh, proj))} "
+                                 "surface to project volume maps onto; add it to the mesh description, or pass "
+                                 "volumes=False (--no-volumes)")
     elif projection is not None:
         raise ParameterError("projection applies to surface and grayordinate sets only")
     store_path = cat.path
@@ -730,7 +774,7 @@ def build_features(
     with write_lock(store_path):
         head = read_head(store_path)
         kinds = ("contrast", "model") if model_maps else ("contrast",)
-        rows_sel, left_out = _select_maps(Catalog(store_path), where, kinds, stat, surface, volumes)
+        rows_sel, left_out = _select_maps(Catalog(store_path), where, kinds, stat, surface, volumes_in)
         batch_n = batch_size or max(4, min(64, len(rows_sel) // (jobs * 4) + 1))
         common = dict(grid=target, method=method, stat=stat, p_sided=p_sided, zero_as_missing=zero_as_missing,
                       background=background, projection=proj)
@@ -865,6 +909,8 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: dict[str, Any], old_rows: p
     dataset_of: dict[str, str] = {}
     for r in rows_sel:
         more = f"{r.get('sha256_r') or ''}|{r.get('model_mask_sha256_r') or ''}|{r.get('geometry')}"
+        if r.get("geometry") not in (None, "volume"):  # the space chooses the resampling path
+            more += f"|{r.get('space') or ''}"
         wanted[r["map_id"]] = _item(r, feature_key(r["sha256"], spec, r["dof"], r["model_mask_sha256"], more),
                                     common.get("projection"))
         dataset_of[r["map_id"]] = r["dataset"]
@@ -953,7 +999,7 @@ def _item(r: dict[str, Any], key: str, projection: dict[str, Any] | None = None)
         return os.path.join(root, rel) if rel else None
 
     it = _Item(r["map_id"], at(r["relpath"]), r["sha256"], r["stat"], r["dof"], key, at(r.get("model_mask")),
-               r.get("model_mask_sha256"), r.get("geometry") or "volume", r.get("hemi"))
+               r.get("model_mask_sha256"), r.get("geometry") or "volume", r.get("hemi"), space=r.get("space"))
     if it.geometry == "surface":
         if r.get("hemi") == "R":  # an unpaired right hemisphere
             it.path_r, it.sha256_r, it.mask_path_r, it.mask_sha256_r = it.path, it.sha256, it.mask_path, it.mask_sha256

@@ -17,6 +17,7 @@ from typing import Any
 import numpy as np
 
 from .errors import FeatureError, GridError, ParameterError
+from .surface import SURFACE_TARGETS, SurfaceTarget, builtin_surface, surface_from_spec
 
 __all__ = ["GrayordinateTarget", "grayordinate_target", "axis_keys", "to_cifti_image"]
 
@@ -33,6 +34,7 @@ class GrayordinateTarget:
     n_grayordinates: int
     grid_key: str  # header.brain_models_key of the axis
     structures: tuple[str, ...]
+    mesh: SurfaceTarget | None = None  # the cortex's surfaces, to project volumes (a mesh description)
 
     @property
     def n_voxels(self) -> int:
@@ -52,13 +54,29 @@ class GrayordinateTarget:
 
     @property
     def grid_id(self) -> str:
-        return hashlib.sha256(f"grayordinates|{self.grid_key}".encode()).hexdigest()[:16]
+        text = f"grayordinates|{self.grid_key}" + (f"|mesh:{self.mesh.grid_id}" if self.mesh else "")
+        return hashlib.sha256(text.encode()).hexdigest()[:16]
+
+    def cortex_mesh(self) -> SurfaceTarget | None:
+        """The surfaces volumes are projected onto for the cortex: the given mesh, or nilearn's
+        fsaverage5 when the template's cortex has its vertex count (None: neither)."""
+        if self.mesh is not None:
+            return self.mesh
+        counts = self.cortex_vertices
+        if counts and all(n == SURFACE_TARGETS["fsaverage5"] for n in counts.values()):
+            return builtin_surface("fsaverage5")
+        return None
+
+    @property
+    def cortex_vertices(self) -> dict[str, int]:
+        return {h: n for h, (_, _, n) in cortex_positions(self.axis()).items()}
 
     def to_json(self) -> dict[str, Any]:
         return {"name": self.name, "kind": "grayordinates", "shape": [self.n_grayordinates], "affine": None,
-                "grid_id": self.grid_id, "template": self.template, "template_sha256": self.sha256,
+                "grid_id": self.grid_id, "grid_key": self.grid_key, "template": self.template, "template_sha256": self.sha256,
                 "structures": list(self.structures),
-                "order": "the template's brain-model axis: its structures in file order"}
+                "order": "the template's brain-model axis: its structures in file order",
+                "mesh": self.mesh.to_json() if self.mesh else None}
 
     def axis(self):
         """The template's brain-model axis (nibabel), read from its header."""
@@ -67,8 +85,12 @@ class GrayordinateTarget:
         return nib.load(self.template).header.get_axis(1)
 
 
-def grayordinate_target(path: str) -> GrayordinateTarget:
-    """A target from a CIFTI-2 file's brain models (``.dscalar.nii``, ``.dtseries.nii``, ...)."""
+def grayordinate_target(path: str, mesh: SurfaceTarget | None = None) -> GrayordinateTarget:
+    """A target from a CIFTI-2 file's brain models (``.dscalar.nii``, ``.dtseries.nii``, ...).
+
+    ``mesh`` (see :func:`mapstore.surface.mesh_from_description`) gives the cortex's surfaces,
+    whose vertex counts must be the template's.
+    """
     import nibabel as nib
 
     from .header import brain_models_key
@@ -85,13 +107,26 @@ def grayordinate_target(path: str) -> GrayordinateTarget:
     with open(path, "rb") as fh:
         for block in iter(lambda: fh.read(1 << 20), b""):
             h.update(block)
+    if mesh is not None:
+        have = {h: n for h, (_, _, n) in cortex_positions(axis).items()}
+        want = {"L": mesh.n_left, "R": mesh.n_right}
+        if not have:
+            raise ParameterError(f"CIFTI template {path}: no cortex in its brain models, so a mesh has nothing to "
+                                 "fill; leave the mesh out")
+        bad = {h: n for h, n in have.items() if want[h] != n}
+        if bad:
+            raise ParameterError(f"mesh {mesh.name}: {want} vertices per hemisphere, the CIFTI template {path} has "
+                                 f"{have}; give the mesh the template's cortex is on")
     return GrayordinateTarget(os.path.abspath(path), h.hexdigest(), len(axis), brain_models_key(axis),
-                              tuple(str(s[0]).replace("CIFTI_STRUCTURE_", "") for s in axis.iter_structures()))
+                              tuple(str(s[0]).replace("CIFTI_STRUCTURE_", "") for s in axis.iter_structures()),
+                              mesh)
 
 
 def target_from_spec(doc: dict[str, Any]) -> GrayordinateTarget:
+    key = doc.get("grid_key") or doc["grid_id"]
     return GrayordinateTarget(doc["template"], doc["template_sha256"], int(doc["shape"][0]),
-                              doc["grid_id"], tuple(doc.get("structures") or ()))
+                              key, tuple(doc.get("structures") or ()),
+                              surface_from_spec(doc["mesh"]) if doc.get("mesh") else None)
 
 
 def axis_keys(axis) -> np.ndarray:

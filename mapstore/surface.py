@@ -1,14 +1,31 @@
-"""Surface targets: the fsaverage mesh nilearn ships, the values of surface maps on it.
+"""Surface targets: the fsaverage mesh nilearn ships or a mesh the user describes, and the
+values of surface maps on it.
 
 A surface feature set's row joins both hemispheres: the left hemisphere's vertices
 ``0 .. n_left - 1`` first, then the right's (nilearn's ``SurfaceImage`` part order).  This
-module gives the meshes and the cortex mask of a target, resamples between fsaverage
-densities, reads GIFTI and CIFTI-2 values, and projects volumes onto the mesh with nilearn's
-``vol_to_surf``.
+module gives the meshes and the cortex mask of a target, resamples between meshes (fsaverage
+densities, or another space through a sphere registered to the target's), reads GIFTI and
+CIFTI-2 values, and projects volumes onto the mesh with nilearn's ``vol_to_surf``.
+
+A user mesh is a JSON *mesh description* (paths relative to it)::
+
+    {"name": "fsLR-32k", "space": "fsLR",
+     "hemispheres": {"L": {"sphere": "L.sphere.surf.gii", "pial": "L.pial.surf.gii",
+                           "white_matter": "L.white.surf.gii", "inflated": "L.inflated.surf.gii",
+                           "cortex": "L.cortex.shape.gii", "sulcal": "L.sulc.shape.gii"},
+                     "R": {...}},
+     "registered_spheres": {"fsaverage": {"L": "fsaverage-in-fsLR.L.sphere.surf.gii", "R": ...}}}
+
+Each hemisphere names GIFTI surfaces (any names; ``sphere`` resamples, ``pial`` and
+``white_matter`` project volumes, ``inflated`` draws) and per-vertex data (``cortex``: non-zero
+on cortex; ``sulcal``: a picture's background).  ``registered_spheres`` gives, per source space,
+that space's sphere deformed into this mesh's sphere coordinates: maps on it are resampled by
+nearest vertex.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import os
 import warnings
@@ -23,13 +40,18 @@ __all__ = [
     "SurfaceTarget",
     "SURFACE_TARGETS",
     "DEFAULT_PROJECTION",
+    "MeshFile",
     "builtin_surface",
     "surface_from_spec",
+    "mesh_from_description",
+    "space_family",
+    "vertex_index",
     "fsaverage_meshes",
     "cortex_mask",
     "density_index",
     "read_surface_values",
     "project_volume",
+    "missing_meshes",
     "check_projection",
     "cifti_cortex",
     "to_surface_image",
@@ -53,13 +75,37 @@ DEFAULT_PROJECTION: dict[str, Any] = {"function": "nilearn.surface.vol_to_surf",
 MEDIAL_WALL_THICKNESS = 0.01
 
 
+# per-vertex data a mesh description may give beside its surfaces
+DATA_KINDS = ("cortex", "sulcal")
+# what a picture is drawn on, best first
+_DRAW_ON = ("inflated", "very_inflated", "midthickness", "pial", "white_matter", "sphere")
+
+
+@dataclass(frozen=True)
+class MeshFile:
+    """One file of a described mesh: a hemisphere's surface, its per-vertex data, or a registered
+    sphere of another space (``kind`` is then that space)."""
+
+    hemi: str
+    kind: str
+    path: str
+    sha256: str
+
+
 @dataclass(frozen=True)
 class SurfaceTarget:
-    """A target mesh pair: ``n_left`` + ``n_right`` vertices of a named fsaverage density."""
+    """A target mesh pair: ``n_left`` + ``n_right`` vertices.
+
+    With no ``files`` it is nilearn's bundled fsaverage5; else a mesh the user described
+    (:func:`mesh_from_description`), whose files' hashes are part of its grid id.
+    """
 
     name: str
     n_left: int
     n_right: int
+    space: str = "fsaverage"
+    files: tuple[MeshFile, ...] = ()
+    registered: tuple[MeshFile, ...] = ()
 
     @property
     def n_vertices(self) -> int:
@@ -73,16 +119,67 @@ class SurfaceTarget:
         return (self.n_vertices,)
 
     @property
+    def builtin(self) -> bool:
+        return not self.files
+
+    @property
+    def family(self) -> str | None:
+        return space_family(self.space, self.n_left)
+
+    @property
     def grid_id(self) -> str:
-        return hashlib.sha256(f"surface|{self.name}|{self.n_left}|{self.n_right}".encode()).hexdigest()[:16]
+        text = f"surface|{self.name}|{self.n_left}|{self.n_right}"
+        if self.files:  # a described mesh: its geometry is its files
+            text += "|" + self.space + "|" + "|".join(f"{f.hemi}:{f.kind}:{f.sha256}"
+                                                      for f in sorted(self.files + self.registered,
+                                                                      key=lambda f: (f.hemi, f.kind)))
+        return hashlib.sha256(text.encode()).hexdigest()[:16]
 
     def to_json(self) -> dict[str, Any]:
-        return {"name": self.name, "kind": "surface", "shape": [self.n_vertices], "affine": None,
-                "grid_id": self.grid_id, "hemispheres": {"L": self.n_left, "R": self.n_right},
-                "order": f"left hemisphere vertices 0..{self.n_left - 1}, then right hemisphere vertices"}
+        doc: dict[str, Any] = {
+            "name": self.name, "kind": "surface", "shape": [self.n_vertices], "affine": None,
+            "grid_id": self.grid_id, "hemispheres": {"L": self.n_left, "R": self.n_right},
+            "order": f"left hemisphere vertices 0..{self.n_left - 1}, then right hemisphere vertices"}
+        if self.files:
+            doc["space"] = self.space
+            doc["files"] = [dataclasses.asdict(f) for f in self.files]
+            doc["registered_spheres"] = [dataclasses.asdict(f) for f in self.registered]
+        return doc
 
     def part(self, hemi: str) -> slice:
         return slice(0, self.n_left) if hemi == "L" else slice(self.n_left, self.n_vertices)
+
+    def file(self, hemi: str, kind: str) -> MeshFile | None:
+        return next((f for f in self.files if f.hemi == hemi and f.kind == kind), None)
+
+    def kinds(self) -> list[str]:
+        """The surfaces (not data) both hemispheres have."""
+        if not self.files:
+            return ["pial", "white_matter", "sphere", "inflated"]
+        have = [{f.kind for f in self.files if f.hemi == h and f.kind not in DATA_KINDS} for h in ("L", "R")]
+        return sorted(have[0] & have[1])
+
+    def meshes(self) -> dict[str, Any]:
+        """The target's surfaces as nilearn ``PolyMesh`` objects by kind (``pial``, ``sphere``, ...)."""
+        if not self.files:
+            return fsaverage_meshes()
+        from nilearn.surface import InMemoryMesh, PolyMesh
+
+        out = {}
+        for kind in self.kinds():
+            parts = {}
+            for hemi, part in PARTS:
+                coords, faces = read_mesh(self.file(hemi, kind))  # type: ignore[arg-type]
+                parts[part] = InMemoryMesh(coords, faces)
+            out[kind] = PolyMesh(**parts)
+        return out
+
+    def vertex_data(self, kind: str) -> np.ndarray | None:
+        """Per-vertex data of a described mesh over both hemispheres (``cortex``, ``sulcal``), or None."""
+        files = [self.file(h, kind) for h in ("L", "R")]
+        if not self.files or None in files:
+            return None
+        return np.concatenate([_read_data(f) for f in files])  # type: ignore[arg-type]
 
 
 def builtin_surface(name: str) -> SurfaceTarget | None:
@@ -93,7 +190,138 @@ def builtin_surface(name: str) -> SurfaceTarget | None:
 
 def surface_from_spec(doc: dict[str, Any]) -> SurfaceTarget:
     h = doc.get("hemispheres") or {}
-    return SurfaceTarget(doc["name"], int(h["L"]), int(h["R"]))
+    return SurfaceTarget(doc["name"], int(h["L"]), int(h["R"]), doc.get("space", "fsaverage"),
+                         tuple(MeshFile(**f) for f in doc.get("files") or ()),
+                         tuple(MeshFile(**f) for f in doc.get("registered_spheres") or ()))
+
+
+def space_family(space: str | None, n_vertices: int) -> str | None:
+    """The mesh family a map's ``space`` names: ``fsaverage`` for every fsaverage density (and for a
+    map named only by an fsaverage vertex count, as nilearn names them), else the space itself."""
+    if space and space.lower().startswith("fsaverage"):
+        return "fsaverage"
+    if not space and n_vertices in FSAVERAGE_ORDERS:
+        return "fsaverage"
+    return space or None
+
+
+_DESCRIPTION = ('{"name": ..., "space": "fsLR", "hemispheres": {"L": {"sphere": "L.sphere.surf.gii", '
+                '"pial": ..., "white_matter": ..., "cortex": ...}, "R": {...}}}')
+
+
+def mesh_from_description(path: str | os.PathLike[str]) -> SurfaceTarget:
+    """A target from a JSON mesh description (see the module docstring); every file is read and hashed.
+
+    Raises ParameterError naming the description or the file, with what to fix.
+    """
+    import json
+
+    path = os.fspath(path)
+    try:
+        with open(path, encoding="utf-8") as fh:
+            doc = json.load(fh)
+    except (OSError, ValueError) as exc:
+        raise ParameterError(f"mesh description {path}: cannot read ({exc}); expected JSON {_DESCRIPTION}") from None
+    if not isinstance(doc, dict) or not isinstance(doc.get("hemispheres"), dict) \
+            or set(doc["hemispheres"]) != {"L", "R"}:
+        raise ParameterError(f"mesh description {path}: 'hemispheres' must name files for L and R; expected "
+                             f"{_DESCRIPTION}")
+    space = doc.get("space")
+    if not isinstance(space, str) or not space:
+        raise ParameterError(f"mesh description {path}: no 'space' (the mesh's space, e.g. fsLR or fsaverage6: "
+                             "maps of that space go onto it vertex for vertex)")
+    base = os.path.dirname(os.path.abspath(path))
+    files: list[MeshFile] = []
+    counts: dict[str, int] = {}
+    for hemi in ("L", "R"):
+        entry = doc["hemispheres"][hemi]
+        if not isinstance(entry, dict) or not entry:
+            raise ParameterError(f"mesh description {path}: hemisphere {hemi} must map kinds to GIFTI files")
+        for kind, rel in sorted(entry.items()):
+            f, n = _mesh_file(path, base, hemi, kind, rel, data=kind in DATA_KINDS)
+            if counts.setdefault(hemi, n) != n:
+                raise ParameterError(f"{f.path}: {n} vertices, the other files of hemisphere {hemi} in {path} have "
+                                     f"{counts[hemi]}; a description's files are of one mesh")
+            files.append(f)
+    target = SurfaceTarget(str(doc.get("name") or os.path.basename(path).split(".")[0]), counts["L"], counts["R"],
+                           space, tuple(files))
+    if not target.kinds():
+        raise ParameterError(f"mesh description {path}: no surface (sphere, pial, ...) given for both hemispheres")
+    registered: list[MeshFile] = []
+    for src_space, pair in sorted((doc.get("registered_spheres") or {}).items()):
+        if not isinstance(pair, dict) or set(pair) != {"L", "R"}:
+            raise ParameterError(f"mesh description {path}: registered_spheres[{src_space!r}] must give L and R files")
+        for hemi in ("L", "R"):
+            f, _ = _mesh_file(path, base, hemi, src_space, pair[hemi], data=False)
+            registered.append(f)
+    if registered and target.file("L", "sphere") is None:
+        raise ParameterError(f"mesh description {path}: registered spheres need the mesh's own 'sphere' for both "
+                             "hemispheres")
+    return dataclasses.replace(target, registered=tuple(registered))
+
+
+def _mesh_file(desc: str, base: str, hemi: str, kind: str, rel: Any, data: bool) -> tuple[MeshFile, int]:
+    if not isinstance(rel, str):
+        raise ParameterError(f"mesh description {desc}: {hemi}.{kind} must be a file path, got {rel!r}")
+    full = os.path.normpath(os.path.join(base, rel))
+    try:
+        with open(full, "rb") as fh:
+            raw = fh.read()
+    except OSError as exc:
+        raise ParameterError(f"mesh description {desc}: {hemi}.{kind} {full}: cannot read ({exc.strerror})") from None
+    f = MeshFile(hemi, kind, full, hashlib.sha256(raw).hexdigest())
+    if data:
+        return f, _read_data(f, raw).size
+    return f, len(_parse_mesh(f, raw)[0])
+
+
+def read_mesh(f: MeshFile) -> tuple[np.ndarray, np.ndarray]:
+    """(coordinates, triangles) of a described mesh's GIFTI surface, refused if it changed."""
+    return _parse_mesh(f, _read_checked(f))
+
+
+def _read_checked(f: MeshFile) -> bytes:
+    try:
+        with open(f.path, "rb") as fh:
+            raw = fh.read()
+    except OSError as exc:
+        raise GridError(f"{f.path}: the mesh file is unreadable ({exc.strerror}); the set was built on it, "
+                        "restore it or rebuild the set") from None
+    if hashlib.sha256(raw).hexdigest() != f.sha256:
+        raise GridError(f"{f.path}: the mesh file changed since the set was built on it; rebuild the set")
+    return raw
+
+
+def _parse_mesh(f: MeshFile, raw: bytes) -> tuple[np.ndarray, np.ndarray]:
+    import nibabel as nib
+
+    try:
+        img = nib.GiftiImage.from_bytes(raw)
+        coords = img.get_arrays_from_intent("NIFTI_INTENT_POINTSET")
+        faces = img.get_arrays_from_intent("NIFTI_INTENT_TRIANGLE")
+    except Exception as exc:  # nibabel's XML and base64 decoders raise several types
+        raise ParameterError(f"{f.path}: not a readable GIFTI surface ({type(exc).__name__}: {exc})") from None
+    if len(coords) != 1 or len(faces) != 1:
+        raise ParameterError(f"{f.path}: a {f.kind} surface needs one POINTSET and one TRIANGLE array (a .surf.gii "
+                             f"file); it has {len(coords)} and {len(faces)}")
+    xyz, tri = np.asarray(coords[0].data, dtype=np.float64), np.asarray(faces[0].data, dtype=np.int64)
+    if xyz.ndim != 2 or xyz.shape[1] != 3 or tri.ndim != 2 or tri.shape[1] != 3 or \
+            (tri.size and (tri.min() < 0 or tri.max() >= len(xyz))):
+        raise ParameterError(f"{f.path}: the surface's arrays are not N x 3 coordinates and M x 3 vertex numbers")
+    return xyz, tri
+
+
+def _read_data(f: MeshFile, raw: bytes | None = None) -> np.ndarray:
+    import nibabel as nib
+
+    raw = _read_checked(f) if raw is None else raw
+    try:
+        arrays = [a.data for a in nib.GiftiImage.from_bytes(raw).darrays if a.intent not in (1008, 1009)]
+    except Exception as exc:  # nibabel's XML and base64 decoders raise several types
+        raise ParameterError(f"{f.path}: not a readable GIFTI file ({type(exc).__name__}: {exc})") from None
+    if len(arrays) != 1:
+        raise ParameterError(f"{f.path}: {f.kind} data must be one array of values per vertex; it has {len(arrays)}")
+    return np.asarray(arrays[0], dtype=np.float64).reshape(-1)
 
 
 def fsaverage_meshes() -> dict[str, Any]:
@@ -103,14 +331,17 @@ def fsaverage_meshes() -> dict[str, Any]:
     return load_fsaverage("fsaverage5")
 
 
-def cortex_mask(target: SurfaceTarget) -> np.ndarray:
-    """Booleans over the target's vertices: True on cortex, False on the medial wall.
+def cortex_mask(target: SurfaceTarget) -> np.ndarray | None:
+    """Booleans over the target's vertices: True on cortex, False on the medial wall (None: not known).
 
-    The medial wall is where the mean cortical thickness of nilearn's bundled fsaverage5 is
-    (numerically) zero: vertices outside the cortex label of the subjects averaged into
-    fsaverage.  This is the wall's core, an approximation; pass a mask of your own for an
-    exact one.
+    On the built-in fsaverage5 the medial wall is where the mean cortical thickness of nilearn's
+    bundled fsaverage5 is (numerically) zero: vertices outside the cortex label of the subjects
+    averaged into fsaverage.  This is the wall's core, an approximation; pass a mask of your own
+    for an exact one.  A described mesh gives its ``cortex`` files (non-zero on cortex), or none.
     """
+    if not target.builtin:
+        data = target.vertex_data("cortex")
+        return None if data is None else np.nan_to_num(data) != 0
     out = []
     for hemi, part in PARTS:
         n = target.n_left if hemi == "L" else target.n_right
@@ -140,31 +371,87 @@ def _bundled_values(name: str) -> np.ndarray | None:
     return np.asarray(nib.load(path).darrays[0].data).reshape(-1)
 
 
-def density_index(n_source: int, n_target: int, hemi: str, meshes: dict[str, Any] | None = None
-                  ) -> np.ndarray | None:
-    """For each target vertex, the source vertex that gives its value (None: the same mesh).
+def vertex_index(space: str | None, n_source: int, hemi: str, target: SurfaceTarget,
+                 cache: dict[str, Any] | None = None) -> tuple[np.ndarray | None, str]:
+    """For each target vertex of hemisphere ``hemi``, the source vertex that gives its value.
 
-    Between fsaverage densities: a finer source is subsampled (the target's vertices are its
-    first ones), a coarser one is resampled to the nearest vertex on the sphere, the usual
-    method between spherically registered meshes (common practice, e.g. FreeSurfer's
-    ``mri_surf2surf`` nearest-neighbour mapping; from memory).
+    Returns (index or None for the same mesh, the resampling path's name).  Between fsaverage
+    densities a finer source is subsampled (the target's vertices are its first ones), a coarser
+    one is resampled to the nearest vertex on the target's sphere.  A source of another space
+    needs that space's sphere registered to the target's (``registered_spheres`` of a mesh
+    description): nearest vertex on the sphere, the usual method between spherically registered
+    meshes (common practice, e.g. FreeSurfer's ``mri_surf2surf`` nearest-neighbour mapping; from
+    memory).  ``cache`` keeps spheres and indices between the maps of a batch.
     """
-    if n_source == n_target:
-        return None
-    if n_source not in FSAVERAGE_ORDERS or n_target not in FSAVERAGE_ORDERS:
-        raise FeatureError(f"a map with {n_source} vertices per hemisphere is not on an fsaverage density "
-                           f"({', '.join(str(n) for n in sorted(FSAVERAGE_ORDERS))}); resample it to fsaverage "
-                           "first")
-    if n_source > n_target:
-        return np.arange(n_target)
+    cache = {} if cache is None else cache
+    n_target = target.n_left if hemi == "L" else target.n_right
+    fam_s, fam_t = space_family(space, n_source), target.family
+    key = f"_vertex_index|{fam_s}|{n_source}|{hemi}"
+    if key in cache:
+        return cache[key]
+    if n_source == n_target and fam_s in (fam_t, None):
+        out: tuple[np.ndarray | None, str] = (None, "surface")
+    elif fam_s == fam_t == "fsaverage":
+        if n_source not in FSAVERAGE_ORDERS or n_target not in FSAVERAGE_ORDERS:
+            raise FeatureError(f"a map with {n_source} vertices per hemisphere is not on an fsaverage density "
+                               f"({', '.join(str(n) for n in sorted(FSAVERAGE_ORDERS))}); resample it to fsaverage "
+                               "first")
+        if n_source > n_target:
+            out = (np.arange(n_target), f"nested-vertex:{n_source}")
+        else:
+            sphere = _sphere(target, hemi, cache)
+            # one sphere: plain distances (its vertices' radii differ by 1e-4, which breaks near-ties)
+            out = (_nearest(sphere[:n_source], sphere, unit=False), f"nearest-vertex:{n_source}")
+    else:
+        reg = next((f for f in target.registered if f.hemi == hemi and f.kind == fam_s), None) if fam_s else None
+        if reg is None:
+            have = sorted({f.kind for f in target.registered})
+            raise FeatureError(f"a map on {space or 'an unnamed mesh'} ({n_source} vertices) cannot go onto "
+                               f"{target.name} (space {target.space}, {n_target} vertices): no sphere of "
+                               f"{fam_s or 'its space'} registered to {target.space} "
+                               f"(registered spheres: {have or 'none'}); add one to the mesh description's "
+                               "'registered_spheres', or name the map's space")
+        src = cache.get(f"_registered|{fam_s}|{hemi}")
+        if src is None:
+            src = cache[f"_registered|{fam_s}|{hemi}"] = read_mesh(reg)[0]
+        if len(src) != n_source:
+            if not (fam_s == "fsaverage" and n_source in FSAVERAGE_ORDERS and n_source < len(src)):
+                raise FeatureError(f"{reg.path}: the registered {fam_s} sphere has {len(src)} vertices, the map "
+                                   f"{n_source}; give the sphere of the map's own mesh")
+            src = src[:n_source]  # a coarser fsaverage's vertices are the first of a finer one
+        out = (_nearest(src, _sphere(target, hemi, cache)), f"nearest-vertex:{fam_s}")
+    cache[key] = out
+    return out
+
+
+def _sphere(target: SurfaceTarget, hemi: str, cache: dict[str, Any]) -> np.ndarray:
+    key = f"_sphere|{hemi}"
+    if key not in cache:
+        if target.builtin:
+            xyz = np.asarray(fsaverage_meshes()["sphere"].parts[dict(PARTS)[hemi]].coordinates, dtype=np.float64)
+        else:
+            f = target.file(hemi, "sphere")
+            if f is None:
+                raise FeatureError(f"resampling onto {target.name} needs its sphere: add 'sphere' files to the "
+                                   "mesh description")
+            xyz = read_mesh(f)[0]
+        n = target.n_left if hemi == "L" else target.n_right
+        if len(xyz) < n:
+            raise FeatureError(f"resampling to {n} vertices needs that mesh's sphere, which mapstore does "
+                               "not ship (nilearn bundles fsaverage5); describe the mesh in a JSON file")
+        cache[key] = xyz[:n]
+    return cache[key]
+
+
+def _nearest(source: np.ndarray, target: np.ndarray, unit: bool = True) -> np.ndarray:
+    """For each target point, the nearest source point: at the smallest angle when ``unit`` (two
+    spheres of any radius, both centred at 0)."""
     from scipy.spatial import cKDTree
 
-    meshes = meshes or fsaverage_meshes()
-    sphere = np.asarray(meshes["sphere"].parts[dict(PARTS)[hemi]].coordinates, dtype=np.float64)
-    if n_target > len(sphere):
-        raise FeatureError(f"resampling to {n_target} vertices needs that mesh's sphere, which mapstore does "
-                           "not ship (nilearn bundles fsaverage5)")
-    _, idx = cKDTree(sphere[:n_source]).query(sphere[:n_target])
+    def norm(a: np.ndarray) -> np.ndarray:
+        return a / np.maximum(np.linalg.norm(a, axis=1, keepdims=True), 1e-12) if unit else a
+
+    _, idx = cKDTree(norm(source)).query(norm(target))
     return idx.astype(np.int64)
 
 
@@ -296,6 +583,10 @@ def project_volume(vol: np.ndarray, affine: np.ndarray, target: SurfaceTarget, p
     img = nib.Nifti1Image(np.where(finite, vol, 0).astype(np.float32), affine)
     mask = None if finite.all() else nib.Nifti1Image(finite.astype(np.uint8), affine)
     kw = {k: v for k, v in projection.items() if k in ("kind", "interpolation", "depth", "radius", "n_samples")}
+    lacking = missing_meshes(target, projection, meshes)
+    if lacking:
+        raise FeatureError(f"projecting a volume onto {target.name} needs its {' and '.join(lacking)} surface(s); "
+                           "add them to the mesh description, or leave volumes out")
     out = np.empty(target.n_vertices, dtype=np.float32)
     for hemi, part in PARTS:
         outer = meshes[projection["outer"]].parts[part]
@@ -307,24 +598,38 @@ def project_volume(vol: np.ndarray, affine: np.ndarray, target: SurfaceTarget, p
     return out
 
 
-def to_surface_image(values: np.ndarray, target: SurfaceTarget):
-    """A nilearn ``SurfaceImage`` of a row on the target's pial mesh."""
+def missing_meshes(target: SurfaceTarget, projection: dict[str, Any], meshes: dict[str, Any] | None = None
+                   ) -> list[str]:
+    """The surfaces a projection names (``outer``, ``inner``) that the target does not have."""
+    have = set(meshes) if meshes is not None else set(target.kinds())
+    return [projection[k] for k in ("outer", "inner") if k in projection and projection[k] not in have]
+
+
+def to_surface_image(values: np.ndarray, target: SurfaceTarget, meshes: dict[str, Any] | None = None):
+    """A nilearn ``SurfaceImage`` of a row on the target's pial mesh (a described mesh's first surface
+    if it has no pial)."""
     from nilearn.surface import SurfaceImage
 
     v = np.asarray(values, dtype=np.float32).reshape(-1)
     if v.size != target.n_vertices:
         raise FeatureError(f"vector has {v.size} values, the {target.name} mesh pair has {target.n_vertices}")
-    return SurfaceImage(mesh=fsaverage_meshes()["pial"], data={part: v[target.part(hemi)] for hemi, part in PARTS})
+    meshes = target.meshes() if meshes is None else meshes
+    mesh = meshes["pial"] if "pial" in meshes else meshes[sorted(meshes)[0]]
+    return SurfaceImage(mesh=mesh, data={part: v[target.part(hemi)] for hemi, part in PARTS})
 
 
-def surface_views(values: np.ndarray, target: SurfaceTarget, height: int = 110) -> np.ndarray:
+def surface_views(values: np.ndarray, target: SurfaceTarget, height: int = 110,
+                  meshes: dict[str, Any] | None = None) -> np.ndarray:
     """Lateral and medial views of both hemispheres side by side, as a 2-D array (NaN: no value).
 
-    Vertices of nilearn's inflated fsaverage5 are drawn as small squares, far ones first, so the
+    Vertices of the inflated mesh (nilearn's fsaverage5, or the best surface a described mesh
+    has: inflated, midthickness, pial, ...) are drawn as small squares, far ones first, so the
     visible side of the surface ends on top (a painter's projection: no shading, no library).
     """
     v = np.asarray(values, dtype=np.float64).reshape(-1)
-    inflated = fsaverage_meshes()["inflated"]
+    meshes = target.meshes() if meshes is None else meshes
+    inflated = meshes[next(k for k in _DRAW_ON + tuple(sorted(meshes)) if k in meshes)]
+    r = 2 if max(target.n_left, target.n_right) <= 20000 else 1  # squares that close the gaps between vertices
     tiles = []
     # (hemisphere, axis sign of the viewer along x, sign of y across the picture)
     for hemi, part, view_x, across in (("L", "left", -1, -1), ("L", "left", 1, 1),
@@ -340,16 +645,19 @@ def surface_views(values: np.ndarray, target: SurfaceTarget, height: int = 110) 
         pix = np.round((h - lo) * scale).astype(int) + 2
         tile = np.full((height, width), np.nan)
         order = np.argsort(view_x * xyz[:, 0])  # far from the viewer first
-        for dr in (-2, -1, 0, 1, 2):
-            for dc in (-2, -1, 0, 1, 2):
+        for dr in range(-r, r + 1):
+            for dc in range(-r, r + 1):
                 tile[pix[order, 1] + dr, pix[order, 0] + dc] = vals[order]
         tiles.append(tile)
         tiles.append(np.full((height, 4), np.nan))
     return np.concatenate(tiles[:-1], axis=1)
 
 
-def sulcal_depth(target: SurfaceTarget) -> np.ndarray:
-    """nilearn's bundled fsaverage5 sulcal depth, both hemispheres (a background for pictures)."""
+def sulcal_depth(target: SurfaceTarget) -> np.ndarray | None:
+    """Sulcal depth over both hemispheres, a background for pictures: nilearn's bundled fsaverage5's,
+    or a described mesh's ``sulcal`` files (None if it has none)."""
+    if not target.builtin:
+        return target.vertex_data("sulcal")
     from nilearn.datasets import load_fsaverage_data
 
     img = load_fsaverage_data(mesh="fsaverage5", mesh_type="inflated", data_type="sulcal")

@@ -143,7 +143,7 @@ def surface_study(tmp_path_factory) -> tuple[Path, dict[str, float]]:
     desc["Name"] = "lateral"
     (root / "dataset_description.json").write_text(json.dumps(desc))
     ax = brain_models()
-    cifti(root / "sub-01" / "sub-01_task-viewing_space-fsLR_den-91k_contrast-faces_stat-z_statmap.dscalar.nii",
+    cifti(root / "sub-01" / "sub-01_task-viewing_space-fsaverage5_den-10k_contrast-faces_stat-z_statmap.dscalar.nii",
           np.random.default_rng(3).normal(size=(1, len(ax))), ax)
     return root, dofs
 
@@ -173,7 +173,7 @@ def test_nilearn_surface_outputs_are_indexed_with_linked_hemispheres(surface_stu
     assert len(resid) == 4 and all(r == {"n_volumes": 40, "n_vertices": N5} for r in resid)
     (grey,) = s.sql("SELECT * FROM maps WHERE geometry = 'grayordinates'").to_pylist()
     assert grey["n_vertices"] == len(brain_models()) and grey["structures"].startswith("CORTEX_LEFT,CORTEX_RIGHT")
-    assert grey["den"] == "91k" and grey["hemi"] is None
+    assert grey["den"] == "10k" and grey["hemi"] is None
 
 
 def test_unpaired_hemisphere_is_reported_and_volume_sets_leave_surfaces_out(surface_study, tmp_path):
@@ -256,7 +256,7 @@ def _row(store, relpath_like: str):
 def test_surface_set_joins_hemispheres_left_then_right(pooled):
     from nilearn.datasets import load_fsaverage
 
-    assert pooled["report"].failed == 0
+    assert pooled["report"].failed == 0, pooled["report"].problems
     fs, mid, full = _row(pooled["store"], "%sub-01_task-viewing_hemi-L_den-10242_contrast-facesminusplaces_stat-z%")
     assert fs.geometry == "surface" and full.size == 2 * N5
     root = pooled["surface"] / "sub-01"
@@ -316,7 +316,7 @@ def test_densities_resample_by_nearest_vertex_on_the_sphere(pooled):
     s = mapstore.open(pooled["store"])
     (row,) = s.sql(f"SELECT coverage, missing_from, resample_path FROM features WHERE map_id = '{mid}'").to_pylist()
     assert row["missing_from"] == "no-hemi-R" and 0.45 < row["coverage"] < 0.55
-    assert row["resample_path"] == "nearest-vertex:40962"
+    assert row["resample_path"] == "nested-vertex:40962"  # the subsampling path
 
 
 def test_surface_selection_export_and_leakage_guard(pooled, tmp_path):
@@ -391,8 +391,8 @@ def test_grayordinate_set_pools_cifti_gifti_and_volume_maps(pooled, tmp_path):
         return fs.matrix([mid])[0]
 
     # a CIFTI-2 map on the template's brain models: its values as nibabel reads them (reference)
-    cfile = next(pooled["surface"].glob("sub-01/*den-91k*.dscalar.nii"))
-    np.testing.assert_array_equal(row("%den-91k%"), nib.load(str(cfile)).get_fdata(dtype=np.float32)[0])
+    cfile = next(pooled["surface"].glob("sub-01/*den-10k*.dscalar.nii"))
+    np.testing.assert_array_equal(row("%den-10k%"), nib.load(str(cfile)).get_fdata(dtype=np.float32)[0])
     cortex_l = slice(0, N5)
     vox = ~ax.surface_mask
     # a volume map: voxels sampled at the template's voxel centres (the MNI 2 mm grid: the values
