@@ -21,7 +21,8 @@ import numpy as np
 import pyarrow as pa
 
 from .copies import pair_correlation
-from .grid import mni152_template
+from .grayordinates import cortex_positions, voxel_positions
+from .grid import grid_from_spec, mni152_template
 from .surface import sulcal_depth, surface_views
 
 __all__ = ["Finding", "CheckReport", "check_store", "png_bytes", "report_json", "LEVELS"]
@@ -155,14 +156,18 @@ def png_bytes(rgb: np.ndarray) -> bytes:
             + chunk(b"IDAT", zlib.compress(raw, 6)) + chunk(b"IEND", b""))
 
 
-def _slices(vol: np.ndarray, affine: np.ndarray, scale: int = 2) -> np.ndarray:
-    """Axial, coronal and sagittal slices through the grid centre, side by side, RAS-up."""
+def _slices(vol: np.ndarray, affine: np.ndarray, scale: int = 2,
+            centre: tuple[int, int, int] | None = None) -> np.ndarray:
+    """Axial, coronal and sagittal slices through the grid centre (or voxel ``centre``), side by side, RAS-up."""
     ras = vol
+    centre = tuple(s // 2 for s in vol.shape) if centre is None else centre  # type: ignore[assignment]
     # flip axes whose affine direction is negative, so pictures read left-right, posterior-anterior
+    c = list(centre)
     for ax in range(3):
         if affine[ax, ax] < 0:
             ras = np.flip(ras, axis=ax)
-    cx, cy, cz = (s // 2 for s in ras.shape)
+            c[ax] = ras.shape[ax] - 1 - c[ax]
+    cx, cy, cz = c
     views = [ras[:, :, cz].T[::-1], ras[:, cy, :].T[::-1], ras[cx, :, :].T[::-1]]
     height = max(v.shape[0] for v in views)
     padded = [np.pad(v, ((0, height - v.shape[0]), (0, 2)), constant_values=np.nan) for v in views]
@@ -458,20 +463,61 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
 
 
 def _views(fs, vector: np.ndarray) -> np.ndarray:
-    """A set's row as a picture: three slices of a volume set, four views of a surface set's hemispheres."""
+    """A set's row as a picture: three slices of a volume set, four views of a surface set's hemispheres,
+    both for a grayordinate set (the cortex's views above, its voxels' slices below)."""
     geometry, grid = fs.base
     if geometry == "surface":
         return surface_views(fs.on_base(vector), grid)
+    if geometry == "grayordinates":
+        return _grayordinate_views(grid, fs.on_base(vector))
     return _slices(fs.on_base(vector), grid.affine_array)
+
+
+def _grayordinate_views(target, values: np.ndarray | None) -> np.ndarray:
+    """A grayordinate row: the cortex on its mesh (when known) above slices through the template's voxels.
+
+    ``values`` None draws the background: sulcal depth on the cortex, the MNI152 template around
+    the voxels, each scaled to 0..1.
+    """
+    axis = target.axis()
+    tiles = []
+    mesh, cortex = target.cortex_mesh(), cortex_positions(axis)
+    if cortex and mesh is not None:
+        if values is None:
+            sulc = sulcal_depth(mesh)
+            full = -sulc if sulc is not None else np.zeros(mesh.n_vertices)  # gyri light, sulci dark
+        else:
+            full = np.full(mesh.n_vertices, np.nan)
+            for hemi, (pos, vertex, _) in cortex.items():
+                full[mesh.part(hemi)][vertex] = values[pos]
+        tiles.append(surface_views(full, mesh))
+    vox, flat, vshape, vaff = voxel_positions(axis)
+    if vox.size:
+        centre = tuple(int(round(float(np.mean(i)))) for i in np.unravel_index(flat, vshape))
+        if values is None:
+            vol = np.asarray(mni152_template(grid_from_spec(vshape, vaff)), dtype=np.float64)
+        else:
+            vol = np.full(int(np.prod(vshape)), np.nan)
+            vol[flat] = values[vox]
+        tiles.append(_slices(vol.reshape(vshape), vaff, scale=1, centre=centre))  # type: ignore[arg-type]
+    if values is None:  # two backgrounds of different units: each to 0..1
+        tiles = [(t - lo) / (hi - lo if hi > lo else 1.0)
+                 for t in tiles for lo, hi in [np.nanpercentile(t, [2, 99.5])]]
+    if not tiles:
+        return np.full((8, 8), np.nan)
+    width = max(t.shape[1] for t in tiles)
+    return np.concatenate([np.pad(t, ((0, 4), (0, width - t.shape[1])), constant_values=np.nan) for t in tiles],
+                          axis=0)
 
 
 def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report) -> None:
     """Each study's mean map over the MNI152 template (sulcal depth on a surface): red positive, blue negative."""
-    if fs.base[0] == "grayordinates":
-        return  # no picture of grayordinates yet: the template's meshes are not known
     geometry, grid = fs.base
     if geometry == "surface":
-        bg = -surface_views(sulcal_depth(grid), grid)  # gyri light, sulci dark
+        sulc = sulcal_depth(grid)
+        bg = -surface_views(sulc if sulc is not None else np.zeros(grid.n_vertices), grid)  # gyri light, sulci dark
+    elif geometry == "grayordinates":
+        bg = _grayordinate_views(grid, None)
     else:
         bg = _slices(mni152_template(grid), grid.affine_array)
     lo, hi = np.nanpercentile(bg, [2, 99.5]) if np.nanmax(bg) > 0 else (0.0, 1.0)
@@ -488,7 +534,8 @@ def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report
             strips.append(np.full((4, grey.shape[1], 3), 255.0))
         report.pictures[f"concept {concept!r}: mean standardised map per study, one row each ("
                         + ", ".join(s for s, _ in items) + "); red positive, blue negative, over the "
-                        + ("sulcal depth" if geometry == "surface" else "MNI152 template")] = \
+                        + {"surface": "sulcal depth", "grayordinates": "sulcal depth and the MNI152 template"}.get(
+                            geometry, "MNI152 template")] = \
             png_bytes(np.concatenate(strips[:-1], axis=0).astype(np.uint8))
 
 
@@ -612,8 +659,6 @@ def _check_features(store, fs, maps, min_coverage, add, report, pictures, max_ro
 
 def _coverage_pictures(fs, rows, stat_of, report, max_rows) -> None:
     """Fraction of maps with a value at each voxel: all maps, then each study."""
-    if fs.base[0] == "grayordinates":
-        return
     ids = [r["map_id"] for r in rows if r["map_id"] in stat_of]
     pick = ids if len(ids) <= max_rows else [ids[i] for i in np.linspace(0, len(ids) - 1, max_rows).astype(int)]
     counts = np.zeros(fs.n_voxels)
@@ -633,8 +678,10 @@ def _coverage_pictures(fs, rows, stat_of, report, max_rows) -> None:
     legend = np.kron(np.linspace(0, 1, 256)[None, :], np.ones((12, 1)))
     report.pictures["colour scale: fraction of maps with a value, 0 (red) to 1 (blue); grey is outside "
                     "the mask"] = png_bytes(_colour(legend, 0.0, 1.0))
-    where = "left lateral, left medial, right lateral, right medial" if fs.base[0] == "surface" else \
-        "axial, coronal, sagittal through the grid centre"
+    where = {"surface": "left lateral, left medial, right lateral, right medial",
+             "grayordinates": "the cortex: left lateral, left medial, right lateral, right medial; below, "
+                              "the template's voxels: axial, coronal, sagittal through their centre"}.get(
+        fs.base[0], "axial, coronal, sagittal through the grid centre")
     report.pictures[f"coverage over {len(pick)} maps ({where})"] = png_bytes(_colour(_views(fs, frac), 0.0, 1.0))
     tiles = []
     for s in sorted(per_study):

@@ -415,10 +415,12 @@ def vertex_index(space: str | None, n_source: int, hemi: str, target: SurfaceTar
         if src is None:
             src = cache[f"_registered|{fam_s}|{hemi}"] = read_mesh(reg)[0]
         if len(src) != n_source:
-            if not (fam_s == "fsaverage" and n_source in FSAVERAGE_ORDERS and n_source < len(src)):
+            if not (fam_s == "fsaverage" and n_source in FSAVERAGE_ORDERS and len(src) in FSAVERAGE_ORDERS):
                 raise FeatureError(f"{reg.path}: the registered {fam_s} sphere has {len(src)} vertices, the map "
                                    f"{n_source}; give the sphere of the map's own mesh")
-            src = src[:n_source]  # a coarser fsaverage's vertices are the first of a finer one
+            # fsaverage densities nest: a coarser map's vertices are the sphere's first ones, and the
+            # sphere's vertices are a finer map's first ones (same numbers)
+            src = src[:n_source]
         out = (_nearest(src, _sphere(target, hemi, cache)), f"nearest-vertex:{fam_s}")
     cache[key] = out
     return out
