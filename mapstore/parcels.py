@@ -65,11 +65,16 @@ from .tables import FeatureSetSpec
 __all__ = ["build_parcels", "fit_parcellation", "ParcelReducer", "stored_atlas"]
 
 _BLOCK = 512  # source rows read and reduced at a time (and rows per parcel shard)
+_PARTS = (("L", "left"), ("R", "right"))
 
 
-def stored_atlas(store: str | os.PathLike[str], name: str) -> Path:
-    """The labels image of a parcellation stored by :func:`fit_parcellation`."""
+def stored_atlas(store: str | os.PathLike[str], name: str) -> Path | dict[str, Path]:
+    """The labels of a parcellation stored by :func:`fit_parcellation`: a NIfTI image's path, or
+    ``{"left": path, "right": path}`` GIFTI labels for a surface parcellation."""
     path = Path(store) / "atlases" / name / "labels.nii.gz"
+    pair = {part: Path(store) / "atlases" / name / f"labels_hemi-{h}.label.gii" for h, part in _PARTS}
+    if all(p.exists() for p in pair.values()):
+        return pair
     if not path.exists():
         have = sorted(p.name for p in (Path(store) / "atlases").glob("*")) if (Path(store) / "atlases").exists() else []
         raise ParameterError(f"{Path(store)}: no stored parcellation {name!r}; stored: {have or 'none'} "
@@ -110,7 +115,8 @@ def build_parcels(store: str | os.PathLike[str], atlas: Any, *, source: str | No
             raise ParameterError(f"feature set {src_name!r} is a parcel set already; give its voxel or surface set")
         given = atlas
         if isinstance(atlas, str) and atlas.startswith("store:"):
-            atlas = str(stored_atlas(store_path, atlas[len("store:"):]))
+            found = stored_atlas(store_path, atlas[len("store:"):])
+            atlas = {k: str(v) for k, v in found.items()} if isinstance(found, dict) else str(found)
         at = load_atlas(atlas, fs.grid, fs.mask_indices, fs.geometry,
                         name=given[len("store:"):] if isinstance(given, str) and given.startswith("store:") else None)
         name = _safe(name or f"{src_name}-{at.name}")
@@ -247,24 +253,44 @@ def _reduce(fs: FeatureSet, at: Atlas, spec: dict[str, Any], old: pa.Table, set_
 # --- data-driven parcellations --------------------------------------------------------------
 
 def _columns_image(fs: FeatureSet, voxels: np.ndarray):
-    """A mask image of X's columns (``voxels``: positions in the set's mask) on the set's grid."""
+    """A mask image of X's columns (``voxels``: positions in the set's mask) on the set's grid or mesh:
+    a NIfTI image for a volume set, a nilearn ``SurfaceImage`` of booleans for a surface set."""
     import nibabel as nib
 
-    if fs.geometry != "volume":
+    if fs.geometry not in ("volume", "surface"):
         raise ParameterError(f"feature set {fs.name!r} is a {fs.geometry} set; data-driven parcellations "
-                             "take a volume set")
-    vol = np.zeros(fs.grid.n_voxels, dtype=np.uint8)
-    vol[fs.mask_indices[np.asarray(voxels)]] = 1
-    return nib.Nifti1Image(vol.reshape(fs.grid.shape), fs.grid.affine_array)
+                             "take a volume or a surface set (nilearn's Parcellations fits one or the other)")
+    full = np.zeros(fs.grid.n_voxels, dtype=np.uint8)
+    full[fs.mask_indices[np.asarray(voxels)]] = 1
+    if fs.geometry == "surface":
+        from nilearn.surface import SurfaceImage
+
+        meshes = fs.grid.meshes()
+        mesh = meshes["pial"] if "pial" in meshes else meshes[sorted(meshes)[0]]
+        return SurfaceImage(mesh=mesh, data={part: full[fs.grid.part(h)] > 0 for h, part in _PARTS})
+    return nib.Nifti1Image(full.reshape(fs.grid.shape), fs.grid.affine_array)
+
+
+def _mask_columns(mask_img) -> np.ndarray:
+    """The mask image's in-mask flags, flat (a surface image: left vertices, then right)."""
+    if hasattr(mask_img, "mesh"):
+        return np.concatenate([np.asarray(mask_img.data.parts[part]).reshape(-1) for _, part in _PARTS]) > 0
+    return np.asarray(mask_img.dataobj).reshape(-1) > 0
 
 
 def _rows_image(x: np.ndarray, mask_img):
+    """Rows ``x`` (rows x in-mask columns) as one image with a sample per row, zero outside the mask."""
     import nibabel as nib
 
-    m = np.asarray(mask_img.dataobj) > 0
-    data = np.zeros(m.shape + (len(x),), dtype=np.float32)
+    m = _mask_columns(mask_img)
+    data = np.zeros((m.size, len(x)), dtype=np.float32)
     data[m] = np.asarray(x, dtype=np.float32).T
-    return nib.Nifti1Image(data, mask_img.affine)
+    if hasattr(mask_img, "mesh"):
+        from nilearn.surface import SurfaceImage
+
+        n_left = np.asarray(mask_img.data.parts["left"]).size
+        return SurfaceImage(mesh=mask_img.mesh, data={"left": data[:n_left], "right": data[n_left:]})
+    return nib.Nifti1Image(data.reshape(mask_img.shape + (len(x),)), mask_img.affine)
 
 
 class ParcelReducer(TransformerMixin, BaseEstimator):
@@ -277,8 +303,9 @@ class ParcelReducer(TransformerMixin, BaseEstimator):
 
     Parameters
     ----------
-    mask_img : Nifti1Image
-        X's columns on the grid: ``ParcelReducer.for_selection(sel, ...)`` builds it.
+    mask_img : Nifti1Image or SurfaceImage
+        X's columns on the grid (a volume set) or mesh (a surface set):
+        ``ParcelReducer.for_selection(sel, ...)`` builds it.
     n_parcels : int, default=100
     method : {"ward", "kmeans", "complete", "average", "rena", "hierarchical_kmeans"}, default="ward"
         nilearn ``Parcellations`` method.
@@ -309,9 +336,9 @@ class ParcelReducer(TransformerMixin, BaseEstimator):
         if not isinstance(self.n_parcels, (int, np.integer)) or self.n_parcels < 2:
             raise ParameterError(f"n_parcels must be an integer >= 2, got {self.n_parcels!r}")
         x = np.asarray(x, dtype=np.float32)
-        n_cols = int((np.asarray(self.mask_img.dataobj) > 0).sum())
+        n_cols = int(_mask_columns(self.mask_img).sum())
         if x.ndim != 2 or x.shape[1] != n_cols:
-            raise ParameterError(f"X must have {n_cols} columns (the mask's voxels), got shape {x.shape}")
+            raise ParameterError(f"X must have {n_cols} columns (the mask's voxels or vertices), got shape {x.shape}")
         if not np.isfinite(x).all():
             raise ParameterError("X has missing values; select with missing='common' (the default) or 'zero'")
         return x
@@ -343,18 +370,27 @@ def fit_labels(x: np.ndarray, mask_img, n_parcels: int, method: str, random_stat
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         p.fit(_rows_image(x, mask_img))
-    lab = np.asarray(p.labels_img_.dataobj)[np.asarray(mask_img.dataobj) > 0].astype(np.int64)
+    # a label is one parcel over both hemispheres of a surface (nilearn numbers them across the two)
+    lab = _flat_labels(p.labels_img_)[_mask_columns(mask_img)].astype(np.int64)
     _, lab = np.unique(lab, return_inverse=True)  # 0-based, no gaps
     return lab.reshape(-1)
 
 
-def fit_parcellation(sel, name: str, *, n_parcels: int = 100, method: str = "ward", random_state: int = 0
-                     ) -> Path:
-    """Fit nilearn ``Parcellations`` on a selection's maps and store its labels image with provenance.
+def _flat_labels(img) -> np.ndarray:
+    if hasattr(img, "mesh"):
+        return np.concatenate([np.asarray(img.data.parts[part]).reshape(-1) for _, part in _PARTS])
+    return np.asarray(img.dataobj).reshape(-1)
 
-    The result lives in ``STORE/atlases/<name>/`` (``labels.nii.gz`` and ``atlas.json``: the
-    feature set, the maps and their row hashes, the method, nilearn's version); build a parcel set
-    from it with ``build_parcels(store, "store:<name>")``.  For decoding, fitting it on every map
+
+def fit_parcellation(sel, name: str, *, n_parcels: int = 100, method: str = "ward", random_state: int = 0
+                     ) -> Path | dict[str, Path]:
+    """Fit nilearn ``Parcellations`` on a selection's maps and store its labels with provenance.
+
+    The result lives in ``STORE/atlases/<name>/``: ``labels.nii.gz`` for a volume set, or
+    ``labels_hemi-L.label.gii`` and ``labels_hemi-R.label.gii`` (GIFTI label files) for a surface
+    set, and ``atlas.json`` (the feature set, the maps and their row hashes, the method, nilearn's
+    version); the return value is the labels' path (a ``{"left": ..., "right": ...}`` pair for a
+    surface set).  Build a parcel set from it with ``build_parcels(store, "store:<name>")``.  For decoding, fitting it on every map
     lets the test maps shape the parcels: use :class:`ParcelReducer` in the pipeline instead.
     """
     import nibabel as nib
@@ -365,10 +401,11 @@ def fit_parcellation(sel, name: str, *, n_parcels: int = 100, method: str = "war
     mask_img = _columns_image(sel.feature_set, sel.voxels)
     x = sel.X
     labels = fit_labels(x, mask_img, n_parcels, method, random_state)
-    vol = np.zeros(mask_img.shape, dtype=np.int32)
-    vol[np.asarray(mask_img.dataobj) > 0] = labels + 1
+    flat = np.zeros(_mask_columns(mask_img).size, dtype=np.int32)
+    flat[_mask_columns(mask_img)] = labels + 1  # 0: outside the mask
     prov = {"name": name, "method": method, "n_parcels": int(labels.max()) + 1, "n_parcels_asked": int(n_parcels),
             "random_state": random_state, "feature_set": sel.feature_set.name,
+            "geometry": sel.feature_set.geometry, "grid": sel.feature_set.grid.to_json(),
             "feature_set_spec_id": sel.feature_set.spec["spec_id"], "query": sel.query,
             "maps": sel.map_ids, "row_sha256": sel.meta["feature_row_sha256"].tolist(),
             "versions": {"mapstore": __version__, "nilearn": nilearn.__version__},
@@ -379,7 +416,13 @@ def fit_parcellation(sel, name: str, *, n_parcels: int = 100, method: str = "war
     tmp = store_path / "atlases" / f".{name}.{uuid.uuid4().hex}"
     tmp.mkdir(parents=True)
     try:
-        nib.save(nib.Nifti1Image(vol, mask_img.affine), str(tmp / "labels.nii.gz"))
+        if hasattr(mask_img, "mesh"):
+            n_left = sel.feature_set.grid.n_left
+            for h, part in _PARTS:
+                _write_label_gifti(tmp / f"labels_hemi-{h}.label.gii", flat[:n_left] if h == "L" else flat[n_left:],
+                                   int(labels.max()) + 1, part)
+        else:
+            nib.save(nib.Nifti1Image(flat.reshape(mask_img.shape), mask_img.affine), str(tmp / "labels.nii.gz"))
         (tmp / "atlas.json").write_text(json.dumps(prov, indent=1, default=str))
         if final.exists():
             old = final.with_name(f".{name}.old.{uuid.uuid4().hex}")
@@ -390,4 +433,21 @@ def fit_parcellation(sel, name: str, *, n_parcels: int = 100, method: str = "war
             os.replace(tmp, final)
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
-    return final / "labels.nii.gz"
+    found = stored_atlas(store_path, name)
+    return found
+
+
+def _write_label_gifti(path: Path, labels: np.ndarray, n_parcels: int, part: str) -> None:
+    """A GIFTI label file (GIFTI 1.0: a NIFTI_INTENT_LABEL int32 array and its label table)."""
+    import nibabel as nib
+    from nibabel.gifti import GiftiDataArray, GiftiImage, GiftiLabel, GiftiLabelTable
+
+    table = GiftiLabelTable()
+    for k in range(n_parcels + 1):
+        lab = GiftiLabel(key=k, red=0.0, green=0.0, blue=0.0, alpha=0.0 if k == 0 else 1.0)
+        lab.label = "outside" if k == 0 else f"parcel-{k}"
+        table.labels.append(lab)
+    img = GiftiImage(labeltable=table, darrays=[GiftiDataArray(np.asarray(labels, np.int32), intent="NIFTI_INTENT_LABEL",
+                                                               datatype="NIFTI_TYPE_INT32")])
+    img.meta["AnatomicalStructurePrimary"] = "CortexLeft" if part == "left" else "CortexRight"
+    nib.save(img, str(path))

@@ -178,3 +178,97 @@ def test_parcel_sets_check_select_and_export(voxel_store, tmp_path):
     out = s.export(tmp_path / "x", sel)
     assert verify(tmp_path / "x" / "manifest.json").ok and out.n_voxels == 27
     assert json.loads((tmp_path / "x" / "manifest.json").read_text())["feature_set"]["grid"]["kind"] == "parcels"
+
+
+@pytest.fixture(scope="module")
+def surface_store(tmp_path_factory):
+    """Two invented studies x three subjects x two contrasts, GIFTI pairs on fsaverage5 (surface set)."""
+    from nilearn.datasets import load_fsaverage
+
+    from .test_surfaces import gifti
+
+    base = tmp_path_factory.mktemp("surface-parcels")
+    sphere = load_fsaverage("fsaverage5")["sphere"]
+    rng = np.random.default_rng(12)
+    for study in ("reef", "dune"):
+        root = base / study
+        root.mkdir()
+        (root / "dataset_description.json").write_text(json.dumps({"Name": study, "BIDSVersion": "1.9.0",
+                                                                   "DatasetType": "derivative"}))
+        for sub in ("01", "02", "03"):
+            for contrast, sign in (("tools", 1.0), ("animals", -1.0)):
+                for h, part in (("L", "left"), ("R", "right")):
+                    xyz = np.asarray(sphere.parts[part].coordinates) / 100
+                    vals = sign * np.sin(3 * xyz[:, 0]) + np.cos(2 * xyz[:, 2]) * rng.normal() \
+                        + 0.3 * rng.normal(size=len(xyz))
+                    gifti(root / f"sub-{sub}" / f"sub-{sub}_task-naming_hemi-{h}_space-fsaverage5_contrast-"
+                          f"{contrast}_stat-effect_statmap.func.gii", [vals])
+    store = base / "store"
+    mapstore.index([base / "reef", base / "dune"], store, progress=False)
+    mapstore.build_features(store, grid="fsaverage5", name="surf", progress=False, jobs=2)
+    return base, store
+
+
+def test_surface_parcellation_equals_nilearn_and_is_stored_as_gifti_labels(surface_store):
+    from nilearn.datasets import load_fsaverage
+    from nilearn.regions import Parcellations
+    from nilearn.surface import SurfaceImage
+
+    _, store = surface_store
+    s = mapstore.open(store)
+    sel = s.select(features="surf", group_by="study")
+    found = mapstore.fit_parcellation(sel, "surf-ward", n_parcels=20, method="ward")
+    assert set(found) == {"left", "right"}
+    prov = json.loads((found["left"].parent / "atlas.json").read_text())
+    assert prov["geometry"] == "surface" and prov["maps"] == sel.map_ids
+    # GIFTI 1.0 label files: one NIFTI_INTENT_LABEL (1002) array and a label table (nibabel reads them)
+    imgs = {part: nib.load(str(p)) for part, p in found.items()}
+    assert all(img.darrays[0].intent == 1002 and len(img.labeltable.labels) == prov["n_parcels"] + 1
+               for img in imgs.values())
+    got = np.concatenate([np.asarray(imgs[p].darrays[0].data) for p in ("left", "right")])
+    # nilearn's Parcellations on the same rows, mask and mesh, built here by hand (reference library)
+    fs = sel.feature_set
+    n = fs.grid.n_left
+    inmask = np.zeros(2 * n, bool)
+    inmask[fs.mask_indices[sel.voxels]] = True
+    mesh = load_fsaverage("fsaverage5")["pial"]
+    data = np.zeros((2 * n, len(sel.X)), np.float32)
+    data[inmask] = np.asarray(sel.X, np.float32).T
+    ref = Parcellations(method="ward", n_parcels=20, smoothing_fwhm=None, standardize=False, random_state=0,
+                        mask=SurfaceImage(mesh=mesh, data={"left": inmask[:n], "right": inmask[n:]}))
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref.fit(SurfaceImage(mesh=mesh, data={"left": data[:n], "right": data[n:]}))
+    want = np.concatenate([np.asarray(ref.labels_img_.data.parts[p]).reshape(-1) for p in ("left", "right")])
+    a, b = got[inmask], want[inmask]
+    assert len(set(zip(a.tolist(), b.tolist()))) == len(set(a.tolist())) == len(set(b.tolist()))
+    assert (got[~inmask] == 0).all()
+    # a parcel set from it, painted back onto the mesh
+    rep = mapstore.build_parcels(store, "store:surf-ward", source="surf")
+    assert rep.n_voxels == len(set(a.tolist())) and rep.failed == 0
+    pset = mapstore.open(store).features(rep.name)
+    img = pset.to_image(pset.matrix([pset.map_ids[0]])[0])
+    assert isinstance(img, SurfaceImage) and img.shape == (2 * n,)
+
+
+def test_in_fold_surface_parcellation_never_sees_test_maps(surface_store):
+    import hashlib
+
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.model_selection import cross_validate
+    from sklearn.pipeline import make_pipeline
+
+    _, store = surface_store
+    sel = mapstore.open(store).select(features="surf", group_by="study")
+    reducer = mapstore.ParcelReducer.for_selection(sel, n_parcels=15, method="kmeans")
+    assert hasattr(reducer.mask_img, "mesh")  # a SurfaceImage mask
+    splits = sel.splits("leave-one-group-out")
+    res = cross_validate(make_pipeline(reducer, LogisticRegression(max_iter=500)), sel.X, sel.y, cv=splits,
+                         return_estimator=True)
+    for est, (train, test) in zip(res["estimator"], splits):
+        fitted = est.steps[0][1]
+        test_rows = {hashlib.sha256(r.tobytes()).hexdigest() for r in np.asarray(sel.X[test], np.float32)}
+        assert len(fitted.fit_rows_) == len(train) and not set(fitted.fit_rows_) & test_rows
+        assert fitted.transform(sel.X[test]).shape == (len(test), int(fitted.labels_.max()) + 1)
+    with pytest.raises(ParameterError, match="columns"):
+        reducer.fit(np.zeros((3, 7), np.float32))
