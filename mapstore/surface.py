@@ -44,6 +44,7 @@ __all__ = [
     "builtin_surface",
     "surface_from_spec",
     "mesh_from_description",
+    "write_mesh_description",
     "space_family",
     "vertex_index",
     "fsaverage_meshes",
@@ -258,6 +259,50 @@ def mesh_from_description(path: str | os.PathLike[str]) -> SurfaceTarget:
         raise ParameterError(f"mesh description {path}: registered spheres need the mesh's own 'sphere' for both "
                              "hemispheres")
     return dataclasses.replace(target, registered=tuple(registered))
+
+
+def write_mesh_description(folder: str | os.PathLike[str], meshes: dict[str, Any], *, space: str, name: str,
+                           cortex: np.ndarray | None = None, sulcal: np.ndarray | None = None) -> str:
+    """Write nilearn meshes (``{"pial": PolyMesh, ...}``) as GIFTI surfaces and a mesh description.
+
+    ``cortex`` and ``sulcal`` are per-vertex arrays over both hemispheres (left, then right).
+    Returns the description's path (``FOLDER/<name>.json``), usable as a feature set's grid.
+    """
+    import json
+
+    import nibabel as nib
+    from nibabel.gifti import GiftiDataArray, GiftiImage
+
+    folder = os.fspath(folder)
+    os.makedirs(folder, exist_ok=True)
+    hemis: dict[str, dict[str, str]] = {"L": {}, "R": {}}
+    n_left = None
+    for kind, poly in sorted(meshes.items()):
+        for hemi, part in PARTS:
+            mesh = poly.parts[part]
+            n_left = len(mesh.coordinates) if hemi == "L" else n_left
+            img = GiftiImage(darrays=[
+                GiftiDataArray(np.asarray(mesh.coordinates, np.float32), intent="NIFTI_INTENT_POINTSET",
+                               datatype="NIFTI_TYPE_FLOAT32"),
+                GiftiDataArray(np.asarray(mesh.faces, np.int32), intent="NIFTI_INTENT_TRIANGLE",
+                               datatype="NIFTI_TYPE_INT32")])
+            fname = f"{name}_hemi-{hemi}_{kind}.surf.gii"
+            nib.save(img, os.path.join(folder, fname))
+            hemis[hemi][kind] = fname
+    for kind, values in (("cortex", cortex), ("sulcal", sulcal)):
+        if values is None:
+            continue
+        v = np.asarray(values, dtype=np.float32).reshape(-1)
+        for hemi, part in PARTS:
+            half = v[:n_left] if hemi == "L" else v[n_left:]
+            fname = f"{name}_hemi-{hemi}_{kind}.shape.gii"
+            nib.save(GiftiImage(darrays=[GiftiDataArray(half, intent="NIFTI_INTENT_SHAPE",
+                                                        datatype="NIFTI_TYPE_FLOAT32")]), os.path.join(folder, fname))
+            hemis[hemi][kind] = fname
+    path = os.path.join(folder, f"{name}.json")
+    with open(path, "w", encoding="utf-8") as fh:
+        json.dump({"name": name, "space": space, "hemispheres": hemis}, fh, indent=1)
+    return path
 
 
 def _mesh_file(desc: str, base: str, hemi: str, kind: str, rel: Any, data: bool) -> tuple[MeshFile, int]:

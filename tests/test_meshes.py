@@ -294,3 +294,21 @@ def test_grayordinate_sets_have_pictures(described, maps, tmp_path):
     assert np.isnan(pic[:cortex_rows]).all() and np.nansum(pic[cortex_rows:]) > 0
     bg = _grayordinate_views(fs.grid, None)
     assert bg.shape == pic.shape and np.isfinite(bg[:cortex_rows]).any()
+
+
+def test_cli_takes_a_mesh_description_and_a_template_mesh(described, maps, tmp_path):
+    from click.testing import CliRunner
+
+    from mapstore.cli import cli
+
+    r = CliRunner().invoke(cli, ["features", "--store", str(maps["store"]), "--grid", str(described["desc"]),
+                                 "--name", "cli-perm", "--no-volumes", "--jobs", "1", "--where", "m.space <> 'fsLR'"])
+    assert r.exit_code == 0, r.output
+    assert "grid perm5" in r.output and "vertices" in r.output and "nearest-vertex:fsaverage" in r.output
+    ax = brain_models(voxels=False)
+    template = cifti(tmp_path / "cli-template.dscalar.nii", np.zeros((1, len(ax))), ax)
+    r = CliRunner().invoke(cli, ["features", "--store", str(maps["store"]), "--grid", str(template), "--mesh",
+                                 str(described["desc"]), "--name", "cli-grey", "--jobs", "1",
+                                 "--where", "m.space = 'MNI152NLin2009cAsym'"])
+    assert r.exit_code == 0, r.output
+    assert "voxels+vol_to_surf x1" in r.output
