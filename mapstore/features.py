@@ -64,7 +64,6 @@ from .grayordinates import (
 )
 from .copies import SKETCH_BITS, Sketcher, find_copies
 from .surface import (
-    SURFACE_TARGETS,
     SurfaceTarget,
     builtin_surface,
     check_projection,
@@ -337,7 +336,7 @@ def _surface_vector(item: _Item, b: _Batch, indices: np.ndarray | None, masks: d
     if item.geometry == "volume":
         vol, facts, conversion, missing_from, clipped = _source_volume(item, b, cache)
         out[:] = project_volume(np.asarray(vol, dtype=np.float32), facts.affine_array, target, b.projection,
-                                _meshes(cache, target))
+                                _meshes(cache, target), cache)
         return (out if indices is None else out[indices]), conversion, "vol_to_surf", missing_from, 0
     halves, conversion, clipped, missing = _hemispheres(item, b)
     paths = set()
@@ -451,7 +450,7 @@ def _grayordinate_vector(item: _Item, b: _Batch, indices: np.ndarray | None, mas
         mesh = target.cortex_mesh()
         if cortex and mesh is not None:
             proj = project_volume(np.asarray(vol, dtype=np.float32), facts.affine_array, mesh, b.projection,
-                                  _meshes(cache, mesh))
+                                  _meshes(cache, mesh), cache)
             for hemi, (pos, vertex, _) in cortex.items():
                 out[pos] = proj[mesh.part(hemi)][vertex]
             path = "voxels+vol_to_surf"

@@ -431,7 +431,7 @@ def vertex_index(space: str | None, n_source: int, hemi: str, target: SurfaceTar
     cache = {} if cache is None else cache
     n_target = target.n_left if hemi == "L" else target.n_right
     fam_s, fam_t = space_family(space, n_source), target.family
-    key = f"_vertex_index|{fam_s}|{n_source}|{hemi}"
+    key = f"_vertex_index|{target.grid_id}|{fam_s}|{n_source}|{hemi}"
     if key in cache:
         return cache[key]
     if n_source == n_target and fam_s in (fam_t, None):
@@ -472,7 +472,7 @@ def vertex_index(space: str | None, n_source: int, hemi: str, target: SurfaceTar
 
 
 def _sphere(target: SurfaceTarget, hemi: str, cache: dict[str, Any]) -> np.ndarray:
-    key = f"_sphere|{hemi}"
+    key = f"_sphere|{target.grid_id}|{hemi}"
     if key not in cache:
         if target.builtin:
             xyz = np.asarray(fsaverage_meshes()["sphere"].parts[dict(PARTS)[hemi]].coordinates, dtype=np.float64)
@@ -608,8 +608,9 @@ def check_projection(projection: dict[str, Any] | None) -> dict[str, Any]:
         p.update(projection)
     if p["kind"] not in ("depth", "line", "ball", "auto"):
         raise ParameterError(f"projection kind must be depth, line, ball or auto, got {p['kind']!r}")
-    if p["interpolation"] not in ("linear", "nearest", "nearest_most_frequent"):
-        raise ParameterError(f"projection interpolation must be linear or nearest, got {p['interpolation']!r}")
+    if p["interpolation"] not in ("linear", "nearest_most_frequent"):
+        raise ParameterError(f"projection interpolation must be linear or nearest_most_frequent (vol_to_surf's), got "
+                             f"{p['interpolation']!r}")
     if p["kind"] != "depth":
         p.pop("depth", None)
         p.pop("inner", None)
@@ -617,32 +618,113 @@ def check_projection(projection: dict[str, Any] | None) -> dict[str, Any]:
 
 
 def project_volume(vol: np.ndarray, affine: np.ndarray, target: SurfaceTarget, projection: dict[str, Any],
-                   meshes: dict[str, Any]) -> np.ndarray:
-    """A volume's values on the target mesh by ``nilearn.surface.vol_to_surf``, both hemispheres.
+                   meshes: dict[str, Any], cache: dict[str, Any] | None = None) -> np.ndarray:
+    """A volume's values on the target mesh as ``nilearn.surface.vol_to_surf`` gives them, both hemispheres.
 
-    Missing voxels (NaN) go to ``vol_to_surf`` as its ``mask_img``: a vertex takes the mean of
-    the samples inside the map's data, and is NaN where none is.
+    Missing voxels (NaN) act as ``vol_to_surf``'s ``mask_img``: a vertex takes the mean of the
+    samples inside the map's data, and is NaN where none is.  The default sampling (``kind``
+    depth, linear interpolation) runs as a sparse matrix built once per grid and mesh (kept in
+    ``cache`` between the maps of a batch); other kinds call ``vol_to_surf``.
     """
-    import nibabel as nib
-    from nilearn.surface import vol_to_surf
-
-    finite = np.isfinite(vol)
-    img = nib.Nifti1Image(np.where(finite, vol, 0).astype(np.float32), affine)
-    mask = None if finite.all() else nib.Nifti1Image(finite.astype(np.uint8), affine)
-    kw = {k: v for k, v in projection.items() if k in ("kind", "interpolation", "depth", "radius", "n_samples")}
     lacking = missing_meshes(target, projection, meshes)
     if lacking:
         raise FeatureError(f"projecting a volume onto {target.name} needs its {' and '.join(lacking)} surface(s); "
                            "add them to the mesh description, or leave volumes out")
+    finite = np.isfinite(vol)
+    filled = np.where(finite, vol, 0).astype(np.float32)
     out = np.empty(target.n_vertices, dtype=np.float32)
+    fast = projection["kind"] == "depth" and projection["interpolation"] == "linear" and min(vol.shape) >= 2
     for hemi, part in PARTS:
         outer = meshes[projection["outer"]].parts[part]
         inner = meshes[projection["inner"]].parts[part] if "inner" in projection else None
-        with warnings.catch_warnings():
-            warnings.simplefilter("ignore")
-            vals = vol_to_surf(img, outer, inner_mesh=inner, mask_img=mask, **kw)
+        if fast and inner is not None:
+            op = _depth_operator(outer, inner, projection["depth"], affine, vol.shape, hemi, target, cache)
+            vals = op.apply(filled, None if finite.all() else finite)
+        else:
+            vals = _vol_to_surf(filled, finite, affine, outer, inner, projection)
         out[target.part(hemi)] = np.asarray(vals, dtype=np.float32)
     return out
+
+
+def _vol_to_surf(filled: np.ndarray, finite: np.ndarray, affine: np.ndarray, outer, inner,
+                 projection: dict[str, Any]) -> np.ndarray:
+    import nibabel as nib
+    from nilearn.surface import vol_to_surf
+
+    img = nib.Nifti1Image(filled, affine)
+    mask = None if finite.all() else nib.Nifti1Image(finite.astype(np.uint8), affine)
+    kw = {k: v for k, v in projection.items() if k in ("kind", "interpolation", "depth", "radius", "n_samples")}
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        return vol_to_surf(img, outer, inner_mesh=inner, mask_img=mask, **kw)
+
+
+@dataclass(frozen=True)
+class _DepthOperator:
+    """Trilinear sampling at fixed depths between two surfaces, as one sparse matrix.
+
+    ``vol_to_surf`` (kind depth, linear) samples each vertex at points between its pial and white
+    positions, drops samples outside the volume or in a masked voxel (the voxel holding the
+    point), interpolates the rest trilinearly and averages them; interpolation at fixed points
+    is linear in the voxel values, so it is a (samples x voxels) matrix.
+    """
+
+    weights: Any  # scipy.sparse.csr_matrix (n_vertices * n_points, n_voxels)
+    inside: np.ndarray  # samples inside the volume
+    voxel: np.ndarray  # flat index of the voxel holding each inside sample (the mask test)
+    n_points: int
+
+    def apply(self, filled: np.ndarray, finite: np.ndarray | None) -> np.ndarray:
+        samples = self.weights @ filled.reshape(-1).astype(np.float64)
+        keep = self.inside.copy()
+        if finite is not None:
+            keep[self.inside] = finite.reshape(-1)[self.voxel]
+        samples[~keep] = np.nan
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # a vertex with no sample left: NaN
+            return np.nanmean(samples.reshape(-1, self.n_points), axis=1)
+
+
+def _depth_operator(outer, inner, depth, affine: np.ndarray, shape: tuple[int, ...], hemi: str,
+                    target: SurfaceTarget, cache: dict[str, Any] | None) -> _DepthOperator:
+    import scipy.sparse as sp
+
+    key = f"_depth_operator|{target.grid_id}|{hemi}|{_json_key(depth)}|{np.asarray(affine).tobytes().hex()}|{shape}"
+    if cache is not None and key in cache:
+        return cache[key]
+    out_xyz, in_xyz = np.asarray(outer.coordinates, np.float64), np.asarray(inner.coordinates, np.float64)
+    steps = np.asarray(depth, dtype=np.float64)[:, None, None]
+    loc = np.swapaxes(out_xyz + steps * (in_xyz - out_xyz), 0, 1).reshape(-1, 3)  # vertex-major, as nilearn
+    inv = np.linalg.inv(np.asarray(affine, dtype=np.float64))
+    vox = loc @ inv[:3, :3].T + inv[:3, 3]
+    dims = np.asarray(shape[:3])
+    inside = (vox >= 0).all(axis=1) & (vox < dims).all(axis=1)
+    v = vox[inside]
+    voxel = np.ravel_multi_index(tuple(np.floor(v).astype(np.int64).T), tuple(dims))
+    # the cell of each point (the last cell for points past the last voxel centre: linear
+    # extrapolation, as scipy's RegularGridInterpolator with fill_value=None)
+    base = np.clip(np.floor(v).astype(np.int64), 0, dims - 2)
+    t = v - base
+    rows = np.flatnonzero(inside)
+    r, c, w = [], [], []
+    for corner in range(8):
+        bits = np.array([(corner >> k) & 1 for k in range(3)])
+        weight = np.prod(np.where(bits, t, 1 - t), axis=1)
+        r.append(rows)
+        c.append(np.ravel_multi_index(tuple((base + bits).T), tuple(dims)))
+        w.append(weight)
+    weights = sp.csr_matrix((np.concatenate(w), (np.concatenate(r), np.concatenate(c))),
+                            shape=(len(loc), int(np.prod(dims))))
+    op = _DepthOperator(weights, inside, voxel, len(steps))
+    if cache is not None:
+        cache[key] = op
+    return op
+
+
+def _json_key(value: Any) -> str:
+    import json
+
+    return json.dumps(value, sort_keys=True)
 
 
 def missing_meshes(target: SurfaceTarget, projection: dict[str, Any], meshes: dict[str, Any] | None = None

@@ -470,3 +470,44 @@ def test_an_fsaverage_map_named_by_vertex_count_is_on_the_named_mesh(tmp_path, r
     s = mapstore.open(tmp_path / "s")
     assert len(set(s.sql("SELECT grid_id FROM maps").column(0).to_pylist())) == 1
     assert not [f for f in s.check(pictures=False).findings if f.code == "several-meshes"]
+
+
+@pytest.mark.parametrize("shape,affine,depth", [
+    ((91, 109, 91), MNI2, [0.0, 0.25, 0.5, 0.75, 1.0]),
+    # oblique 4 mm grid; and a field of view that cuts the brain (samples outside the volume)
+    ((40, 48, 38), np.array([[4.0, 0.3, 0, -78], [0, 3.9, 0.2, -110], [0.1, 0, 4, -60], [0, 0, 0, 1]]), [0.5]),
+    ((30, 30, 30), np.array([[3.0, 0, 0, -40], [0, 3, 0, -60], [0, 0, 3, -30], [0, 0, 0, 1]]), [0.0, 0.3, 1.0]),
+])
+def test_projection_operator_equals_vol_to_surf(shape, affine, depth):
+    """The cached sparse sampling equals nilearn's vol_to_surf (reference library), masked or not."""
+    from nilearn.datasets import load_fsaverage
+    from nilearn.surface import vol_to_surf
+    from scipy import ndimage
+
+    from mapstore.surface import builtin_surface, check_projection, project_volume
+
+    fsa = load_fsaverage("fsaverage5")
+    target = builtin_surface("fsaverage5")
+    rng = np.random.default_rng(len(depth))
+    vol = (ndimage.gaussian_filter(rng.normal(size=shape), 2) * 30).astype(np.float32)
+    cache: dict = {}
+    for kind in ("depth", "line"):  # line: not the matrix, vol_to_surf itself
+        p = check_projection({"kind": kind, "depth": depth} if kind == "depth" else {"kind": "line", "radius": 2})
+        for masked in (False, True):
+            v = vol.copy()
+            if masked:
+                v[:, :shape[1] // 2] = np.nan
+                v[v > 0.5] = np.nan
+            got = project_volume(v, affine, target, p, fsa, cache)
+            fin = np.isfinite(v)
+            img = nib.Nifti1Image(np.where(fin, v, 0).astype(np.float32), affine)
+            mask = None if fin.all() else nib.Nifti1Image(fin.astype(np.uint8), affine)
+            kw = {"kind": "depth", "depth": depth} if kind == "depth" else {"kind": "line", "radius": 2}
+            with warnings.catch_warnings():
+                warnings.simplefilter("ignore")
+                ref = np.concatenate([vol_to_surf(img, fsa["pial"].parts[part], mask_img=mask,
+                                                  inner_mesh=fsa["white_matter"].parts[part] if kind == "depth" else None,
+                                                  interpolation="linear", **kw) for part in ("left", "right")])
+            np.testing.assert_array_equal(np.isnan(got), np.isnan(ref))
+            np.testing.assert_allclose(got[np.isfinite(ref)], ref[np.isfinite(ref)], rtol=1e-5, atol=1e-5)
+    assert any(k.startswith("_depth_operator") for k in cache)  # built once, used for both masks

@@ -8,6 +8,13 @@ Part A, a surface set of N fsaverage5 maps (N hemisphere pairs, 2N GIFTI files):
   cut to the same cortex mask, stacked into one array;
 * the floor: reading every file's bytes once.
 
+Part C, volume maps projected into a surface set (V maps on the MNI152 2 mm grid):
+
+* mapstore: ``index`` then ``build_features(grid="fsaverage5")`` (the projection as a sparse
+  matrix built once per grid and mesh);
+* the hand loop: ``nilearn.surface.vol_to_surf`` (five depths, white to pial) on both
+  hemispheres of every map, stacked.
+
 Part B, a parcel set from a voxel set of R rows (MNI152 3 mm brain mask, 69,765 voxels, an
 invented atlas of cubic blocks, 47 of them in the mask):
 
@@ -20,7 +27,8 @@ run and printed as ratios.
 
 Usage::
 
-    python tests/benchmarks/bench_surfaces.py [--maps 1000] [--rows 10000] [--jobs 2] [--workdir DIR]
+    python tests/benchmarks/bench_surfaces.py [--maps 1000] [--rows 10000] [--volumes 200] [--jobs 2]
+                                              [--workdir DIR]
 """
 
 from __future__ import annotations
@@ -99,6 +107,60 @@ def surface_part(work: Path, n_maps: int, jobs: int) -> None:
           f"peak features / hand loop = {feat['mb'] / hand['mb']:.2f}x")
 
 
+def volume_part(work: Path, n_maps: int, jobs: int) -> None:
+    from scipy import ndimage
+
+    from mapstore.grid import builtin_grid
+    from tests.conftest import write_map
+
+    tree, store = work / "vol-tree", work / "vol-store"
+    grid = builtin_grid("MNI152-2mm")
+    rng = np.random.default_rng(1)
+    bases = [ndimage.gaussian_filter(rng.standard_normal(grid.shape), 3).astype(np.float32) * 40 for _ in range(4)]
+    ds = bench_dataset(tree, "volumestudy", 30)
+    t0 = time.perf_counter()
+    for i in range(n_maps):
+        sub, con = divmod(i, 10)
+        write_map(ds / f"sub-{sub:03d}" / f"sub-{sub:03d}_task-go_space-MNI152NLin2009cAsym_contrast-c{con}_stat-t_"
+                  "statmap.nii.gz", bases[i % 4] * (1 + 0.01 * i), grid.affine_array)
+    print(f"\nC. volume maps into a surface set: {n_maps} maps on MNI152 2 mm, written in "
+          f"{time.perf_counter() - t0:.1f} s")
+    idx = _child(f"import json, time, mapstore\nt=time.perf_counter()\n"
+                 f"mapstore.index([{str(tree)!r}], {str(store)!r}, jobs={jobs}, progress=False)\n"
+                 "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak()}))")
+    feat = _child(f"import json, time, mapstore\nt=time.perf_counter()\n"
+                  f"r=mapstore.build_features({str(store)!r}, grid='fsaverage5', mask='all', jobs={jobs}, "
+                  "progress=False)\n"
+                  f"assert r.built == {n_maps}, r.summary()\n"
+                  "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak()}))")
+    hand = _child(f"import json, time, glob, warnings, numpy as np\nt=time.perf_counter()\n"
+                  "from nilearn.datasets import load_fsaverage\nfrom nilearn.image import load_img\n"
+                  "from nilearn.surface import vol_to_surf\nwarnings.simplefilter('ignore')\n"
+                  "fsa = load_fsaverage('fsaverage5')\n"
+                  f"paths = sorted(glob.glob({str(ds)!r} + '/sub-*/*.nii.gz'))\n"
+                  "rows = []\n"
+                  "for p in paths:\n"
+                  "    img = load_img(p)\n"
+                  "    rows.append(np.concatenate([vol_to_surf(img, fsa['pial'].parts[h], inner_mesh="
+                  "fsa['white_matter'].parts[h], kind='depth', depth=[0.0, 0.25, 0.5, 0.75, 1.0]) "
+                  "for h in ('left', 'right')]))\n"
+                  "X = np.stack(rows).astype(np.float32)\n"
+                  f"np.save({str(work / 'vol-hand.npy')!r}, X[:3])\n"
+                  "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak()}))")
+    import mapstore
+
+    s = mapstore.open(store)
+    fs = s.features(s.feature_sets()[0])
+    first = s.sql("SELECT map_id FROM maps ORDER BY relpath LIMIT 3").column(0).to_pylist()
+    same = np.allclose(fs.matrix(first), np.load(work / "vol-hand.npy"), rtol=1e-5, atol=1e-4)
+    print(f"   mapstore index                               {idx['s']:8.2f} s   peak {idx['mb']:6.0f} MB")
+    print(f"   mapstore features --grid fsaverage5          {feat['s']:8.2f} s   peak {feat['mb']:6.0f} MB")
+    print(f"   hand loop (nilearn vol_to_surf per map)      {hand['s']:8.2f} s   peak {hand['mb']:6.0f} MB")
+    print(f"   ratios: features / hand loop = {feat['s'] / hand['s']:.2f}x, index+features / hand loop = "
+          f"{(idx['s'] + feat['s']) / hand['s']:.2f}x, peak {feat['mb'] / hand['mb']:.2f}x; "
+          f"first rows equal to vol_to_surf's: {same}")
+
+
 def parcel_part(work: Path, n_rows: int) -> None:
     import nibabel as nib
 
@@ -148,6 +210,7 @@ def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.split("\n")[0])
     ap.add_argument("--maps", type=int, default=1000)
     ap.add_argument("--rows", type=int, default=10000)
+    ap.add_argument("--volumes", type=int, default=200)
     ap.add_argument("--jobs", type=int, default=2)
     ap.add_argument("--workdir")
     args = ap.parse_args()
@@ -156,12 +219,14 @@ def main() -> None:
     try:
         if args.maps:
             surface_part(work, args.maps, args.jobs)
+        if args.volumes:
+            volume_part(work, args.volumes, args.jobs)
         if args.rows:
             parcel_part(work, args.rows)
     finally:
         if not args.workdir:
             shutil.rmtree(work, ignore_errors=True)
-    print(json.dumps({"maps": args.maps, "rows": args.rows, "jobs": args.jobs}))
+    print(json.dumps({"maps": args.maps, "rows": args.rows, "volumes": args.volumes, "jobs": args.jobs}))
 
 
 if __name__ == "__main__":
