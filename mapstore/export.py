@@ -40,7 +40,7 @@ from .discover import inside
 from .hashing import sha256_file
 from .features import FeatureSet
 from .query import Selection, fold_vector, parse_scheme
-from .store import Catalog, checkpoint
+from .store import Catalog, checkpoint, replace_dir
 
 __all__ = ["ExportReport", "VerifyReport", "export_selection", "verify", "json_schemas"]
 
@@ -113,7 +113,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
                              if p.name not in DATA_FILES}
         (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1, sort_keys=True, default=str))
         checkpoint()
-        _put_in_place(tmp, out)
+        replace_dir(tmp, out)
     except BaseException:
         shutil.rmtree(tmp, ignore_errors=True)
         raise
@@ -243,18 +243,6 @@ def _write_parquet(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> 
     finally:
         if writer is not None:
             writer.close()
-
-
-def _put_in_place(tmp: Path, out: Path) -> None:
-    if out.exists():
-        old = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.old"
-        os.replace(out, old)
-        checkpoint()
-        os.replace(tmp, out)
-        shutil.rmtree(old, ignore_errors=True)
-    else:
-        os.replace(tmp, out)
-    checkpoint()
 
 
 def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: list[str], splits,

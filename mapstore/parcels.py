@@ -57,6 +57,7 @@ from .store import (
     conform,
     new_snapshot_id,
     read_head,
+    replace_dir,
     write_json_atomic,
     write_lock,
 )
@@ -424,13 +425,7 @@ def fit_parcellation(sel, name: str, *, n_parcels: int = 100, method: str = "war
         else:
             nib.save(nib.Nifti1Image(flat.reshape(mask_img.shape), mask_img.affine), str(tmp / "labels.nii.gz"))
         (tmp / "atlas.json").write_text(json.dumps(prov, indent=1, default=str))
-        if final.exists():
-            old = final.with_name(f".{name}.old.{uuid.uuid4().hex}")
-            os.replace(final, old)
-            os.replace(tmp, final)
-            shutil.rmtree(old, ignore_errors=True)
-        else:
-            os.replace(tmp, final)
+        replace_dir(tmp, final)
     finally:
         shutil.rmtree(tmp, ignore_errors=True)
     found = stored_atlas(store_path, name)

@@ -185,6 +185,52 @@ def write_json_atomic(path: Path, doc: Any) -> None:
     checkpoint()
 
 
+def replace_dir(tmp: Path, out: Path) -> None:
+    """Put the finished folder ``tmp`` at ``out`` in one step, and delete what ``out`` held.
+
+    On Linux the two are swapped by one ``renameat2(RENAME_EXCHANGE)`` call: a reader sees the
+    old folder or the new one, never neither.  Where the kernel or file system cannot swap, the
+    old folder is renamed aside first (a moment with no folder at ``out``).
+    """
+    checkpoint()
+    if out.exists() and _exchange(tmp, out):
+        checkpoint()
+        shutil.rmtree(tmp, ignore_errors=True)  # tmp's name now holds the old folder
+    elif out.exists():
+        old = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.old"
+        os.replace(out, old)
+        checkpoint()
+        os.replace(tmp, out)
+        shutil.rmtree(old, ignore_errors=True)
+    else:
+        os.replace(tmp, out)
+    _fsync_dir(out.parent)
+    checkpoint()
+
+
+def _exchange(a: Path, b: Path) -> bool:
+    """Swap two paths atomically (Linux ``renameat2`` with ``RENAME_EXCHANGE``); False where unsupported."""
+    import ctypes
+    import errno
+    import sys
+
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        fn = ctypes.CDLL(None, use_errno=True).renameat2
+    except (OSError, AttributeError):  # a C library without renameat2 (glibc < 2.28, musl < 1.2.?)
+        return False
+    fn.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
+    fn.restype = ctypes.c_int
+    at_fdcwd, rename_exchange = -100, 2  # <fcntl.h> AT_FDCWD, <linux/fs.h> RENAME_EXCHANGE
+    if fn(at_fdcwd, os.fsencode(a), at_fdcwd, os.fsencode(b), rename_exchange) == 0:
+        return True
+    err = ctypes.get_errno()
+    if err in (errno.ENOSYS, errno.EINVAL, errno.EOPNOTSUPP):
+        return False
+    raise OSError(err, os.strerror(err), str(b))
+
+
 def write_parquet_atomic(table: pa.Table, path: Path, row_group_size: int | None = None) -> None:
     checkpoint()
     tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}.tmp")

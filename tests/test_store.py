@@ -159,3 +159,52 @@ def test_a_read_only_store_can_be_read_and_refuses_writers_in_one_line(tmp_path,
             assert err.count("\n") == 1 and "Traceback" not in err
     finally:
         subprocess.run(["umount", "-l", str(ro)], capture_output=True)
+
+
+def _folder(path, text):
+    path.mkdir()
+    (path / "a.txt").write_text(text)
+    return path
+
+
+@pytest.mark.parametrize("swap", [True, False])
+def test_replace_dir_leaves_the_new_folder_and_nothing_else(tmp_path, monkeypatch, swap):
+    from mapstore import store as st
+
+    if not swap:  # a kernel or file system without RENAME_EXCHANGE: the two-rename path
+        monkeypatch.setattr(st, "_exchange", lambda a, b: False)
+    out = _folder(tmp_path / "out", "old")
+    st.replace_dir(_folder(tmp_path / ".out.new.tmp", "new"), out)
+    assert (out / "a.txt").read_text() == "new" and sorted(p.name for p in tmp_path.iterdir()) == ["out"]
+    st.replace_dir(_folder(tmp_path / ".first.tmp", "first"), tmp_path / "first")  # nothing there before
+    assert (tmp_path / "first" / "a.txt").read_text() == "first"
+
+
+def test_replace_dir_never_leaves_the_folder_missing(tmp_path):
+    """A reader polling the folder while it is replaced 200 times always finds it (where the
+    file system swaps folders: renameat2 RENAME_EXCHANGE, Linux >= 3.15)."""
+    import threading
+
+    from mapstore import store as st
+
+    a, b = _folder(tmp_path / "probe-a", "a"), _folder(tmp_path / "probe-b", "b")
+    if not st._exchange(a, b):
+        pytest.skip("this file system cannot swap folders")
+    assert (a / "a.txt").read_text() == "b"  # swapped
+    out = _folder(tmp_path / "out", "0")
+    missing, stop = [], threading.Event()
+
+    def poll():
+        while not stop.is_set():
+            if not os.path.isdir(out):
+                missing.append(1)
+
+    t = threading.Thread(target=poll)
+    t.start()
+    try:
+        for i in range(200):
+            st.replace_dir(_folder(tmp_path / f".out.{i}.tmp", str(i + 1)), out)
+    finally:
+        stop.set()
+        t.join()
+    assert not missing and (out / "a.txt").read_text() == "200"
