@@ -392,8 +392,11 @@ def _check_metadata(store, add) -> None:
         add(Finding("info", "metadata", "dof-varies", f"{ds}/{task}",
                     f"t maps of task {task} have {len(vals)} different DOF ({', '.join(f'{v:g}' for v in vals)})",
                     "expected when subjects lost runs; check if not"))
-    for r in store.sql("SELECT sha256, count(*) AS n, list(dataset || ':' || relpath ORDER BY dataset, relpath) "
-                       "AS places FROM maps GROUP BY sha256 HAVING count(*) > 1 ORDER BY sha256").to_pylist():
+    # the two hemisphere files of one map count once: constant halves (an intercept-only model's R
+    # squared) are byte-identical without being a copy
+    for r in store.sql("SELECT sha256, count(DISTINCT CASE WHEN linked_map IS NOT NULL THEN least(map_id, linked_map) "
+                       "ELSE map_id END) AS n, list(dataset || ':' || relpath ORDER BY dataset, relpath) "
+                       "AS places FROM maps GROUP BY sha256 HAVING n > 1 ORDER BY sha256").to_pylist():
         where = ", ".join(r["places"][:3])
         add(Finding("warning", "provenance", "duplicate-file", r["sha256"][:16],
                     f"{r['n']} maps are byte-identical ({where})",

@@ -279,3 +279,29 @@ def write_surface_first_level(root: Path, subjects: list[str], conds: tuple[str,
         x = np.asarray(model.design_matrices_[0], dtype=np.float64)
         dofs[f"sub-{sub}"] = float(x.shape[0] - np.linalg.matrix_rank(x))
     return dofs
+
+
+def write_surface_second_level(first: Path, out: Path, subjects: list[str], contrast: str,
+                               task: str = "viewing") -> float:
+    """A one-sample surface ``SecondLevelModel`` over the first-level effect maps (GIFTI pairs written by
+    :func:`write_surface_first_level`), saved with ``save_glm_to_bids``; returns its DOF."""
+    import nibabel as nib
+    import pandas as pd
+    from nilearn.datasets import load_fsaverage
+    from nilearn.glm import save_glm_to_bids
+    from nilearn.glm.second_level import SecondLevelModel
+    from nilearn.surface import SurfaceImage
+
+    mesh = load_fsaverage("fsaverage5")["pial"]
+    maps = []
+    for sub in subjects:
+        left = next((first / f"sub-{sub}").glob(f"*hemi-L*contrast-{contrast}_stat-effect_statmap.gii"))
+        right = Path(str(left).replace("hemi-L", "hemi-R"))
+        maps.append(SurfaceImage(mesh=mesh, data={"left": nib.load(str(left)).darrays[0].data,
+                                                  "right": nib.load(str(right)).darrays[0].data}))
+    dm = pd.DataFrame({"intercept": np.ones(len(maps))})
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        model = SecondLevelModel(minimize_memory=False).fit(maps, design_matrix=dm)
+        save_glm_to_bids(model, contrasts=["intercept"], out_dir=out, prefix=f"task-{task}")
+    return float(len(maps) - 1)

@@ -21,7 +21,7 @@ from mapstore.errors import HeaderError
 from mapstore.header import FSAVERAGE_VERTICES, GIFTI_INTENTS, expected_vertices, read_surface_header
 
 from .conftest import write_map
-from .glm_writers import write_surface_first_level
+from .glm_writers import write_surface_first_level, write_surface_second_level
 
 N5 = 10242
 
@@ -511,3 +511,34 @@ def test_projection_operator_equals_vol_to_surf(shape, affine, depth):
             np.testing.assert_array_equal(np.isnan(got), np.isnan(ref))
             np.testing.assert_allclose(got[np.isfinite(ref)], ref[np.isfinite(ref)], rtol=1e-5, atol=1e-5)
     assert any(k.startswith("_depth_operator") for k in cache)  # built once, used for both masks
+
+
+def test_nilearn_surface_second_level_outputs(surface_study, tmp_path):
+    """nilearn's SecondLevelModel on the first-level surface effect maps, saved by save_glm_to_bids."""
+    first, _ = surface_study
+    group = tmp_path / "group-glm"
+    dof = write_surface_second_level(first, group, ["01", "02"], "facesminusplaces")
+    store = tmp_path / "store"
+    mapstore.index([group], store, progress=False)
+    s = mapstore.open(store)
+    rows = s.sql("SELECT * FROM maps WHERE map_kind = 'contrast' ORDER BY relpath").to_pylist()
+    # nilearn writes effect, p, t, variance and z per hemisphere for the group contrast
+    assert sorted({r["stat"] for r in rows}) == ["effect", "p", "t", "variance", "z"] and len(rows) == 10
+    for r in rows:
+        assert r["sub"] is None and r["hemi"] in ("L", "R") and r["linked_map"] is not None
+        assert r["dof"] == dof and r["dof_source"] == "design"  # n maps - rank of the intercept-only design
+        assert r["model_mask"].endswith(f"hemi-{r['hemi']}_den-10242_mask.gii")
+    rep = mapstore.build_features(store, grid="fsaverage5", progress=False, jobs=1)
+    assert rep.failed == 0 and rep.built == 5
+    fs = mapstore.open(store).features(rep.name)
+    (zl,) = [r for r in rows if r["stat"] == "z" and r["hemi"] == "L"]
+    full = np.full(2 * N5, np.nan, np.float32)
+    full[fs.mask_indices] = fs.matrix([zl["map_id"]])[0]
+    left = nib.load(str(group / zl["relpath"])).darrays[0].data
+    mask = nib.load(str(group / zl["model_mask"])).darrays[0].data != 0
+    ok = np.isfinite(full[:N5])
+    assert (ok <= mask).all()  # the model's mask applies
+    np.testing.assert_array_equal(full[:N5][ok], left[ok].astype(np.float32))
+    # the two halves of one map are not "duplicate files", even when byte-identical (constant R squared)
+    report = mapstore.open(store).check(pictures=False)
+    assert not [f for f in report.findings if f.code == "duplicate-file"]
