@@ -62,7 +62,7 @@ from .grayordinates import (
     to_cifti_image,
     voxel_positions,
 )
-from .copies import SKETCH_BITS, Sketcher, find_copies
+from .copies import SKETCH_BITS, Sketcher, find_copies, sketch_kind
 from .surface import (
     SurfaceTarget,
     builtin_surface,
@@ -235,6 +235,7 @@ class _Batch:
     background: str = "auto"
     coverage_only: bool = False
     sketch_seed: int = 0
+    sketch: str = "count"  # the set's sketch directions (copies.sketch_kind)
     projection: dict[str, Any] | None = None  # surface sets: how volume maps are projected
 
 
@@ -487,7 +488,7 @@ def _run_batch(b: _Batch) -> dict[str, Any]:
     rows: list[dict[str, Any]] = []
     now = time.strftime("%Y-%m-%dT%H:%M:%S")
     masks: dict[str, np.ndarray] = {}
-    sketcher = Sketcher(b.sketch_seed, indices.size)
+    sketcher = Sketcher(b.sketch_seed, indices.size, b.sketch)
     for i, it in enumerate(b.items):
         try:
             vec, conversion, path, missing_from, clipped = _vector(it, b, local, box, masks)
@@ -781,6 +782,7 @@ def build_features(
         spec = _set_spec(name, target, mk, method, stat, p_sided, zero_as_missing, background, kinds, where, proj)
         existing = head.features.get(name)
         old_rows = _previous_rows(store_path, name, existing, spec)
+        spec["sketch"] = _sketch_of(store_path, existing, mk.n_voxels)
         _write_set_files(set_dir, spec, mk, fresh=not existing)
         kept, todo, dropped = _plan_rows(rows_sel, spec, old_rows, batch_n, set_dir, mk, common)
         built = _run_batches(todo, run, store_path, set_dir, name)
@@ -880,6 +882,13 @@ def _set_spec(name: str, target: TargetGrid | SurfaceTarget, mk: Mask, method: s
     return spec
 
 
+def _sketch_of(store_path: Path, existing: FeatureEntry | None, n_voxels: int) -> str:
+    """A set keeps the sketch directions it was made with (its rows' sketches must compare)."""
+    if existing:
+        return FeatureSetSpec.read(store_path / existing.dir).sketch
+    return sketch_kind(n_voxels)
+
+
 def _previous_rows(store_path: Path, name: str, existing: FeatureEntry | None, spec: dict[str, Any]) -> pa.Table:
     """The set's current rows; a set of this name with other settings is refused."""
     if not existing:
@@ -921,7 +930,7 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: dict[str, Any], old_rows: p
     kept = old_rows.take(pa.array(sorted(keep_idx), pa.int64())) if keep_idx else old_rows.slice(0, 0)
     seed = Sketcher.for_set(mk.sha256, mk.n_voxels).seed
     batches = [_Batch(str(set_dir), f"shard-{file_slug(ds)}-{new_snapshot_id()}-{i:05d}.npy", items,
-                      sketch_seed=seed, **common)
+                      sketch_seed=seed, sketch=spec.get("sketch", "count"), **common)
                for ds, items, i in _per_dataset(todo, dataset_of, batch_n)]
     return kept, batches, old_rows.num_rows - kept.num_rows
 
@@ -1236,7 +1245,7 @@ class FeatureSet:
             elif g is not None:
                 todo.append(i)  # a sketch of another size (an earlier version): made again
         if todo:
-            sk = Sketcher.for_set(self.spec["mask"]["sha256"], self.n_voxels)
+            sk = Sketcher.for_set(self.spec["mask"]["sha256"], self.n_voxels, self.spec.get("sketch", "count"))
             for k in range(0, len(todo), 64):
                 part = todo[k:k + 64]
                 out[part] = sk.sketch(self.matrix([map_ids[i] for i in part]))

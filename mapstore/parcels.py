@@ -46,6 +46,7 @@ from .features import (
     _Built,
     _collect_feature_garbage,
     _library_versions,
+    _sketch_of,
     _spec_id,
     _write_tables,
     write_shard,
@@ -127,6 +128,7 @@ def build_parcels(store: str | os.PathLike[str], atlas: Any, *, source: str | No
         set_dir = store_path / "features" / name
         existing = head.features.get(name)
         old = _previous(store_path, name, existing, spec)
+        spec["sketch"] = _sketch_of(store_path, existing, at.n_parcels)
         _write_set_files(set_dir, spec, at, fs)
         built, kept, dropped = _reduce(fs, at, spec, old, set_dir)
         rows_table, entry = _write_tables(store_path, name, kept, built, [], dropped, existing,
@@ -224,7 +226,7 @@ def _reduce(fs: FeatureSet, at: Atlas, spec: dict[str, Any], old: pa.Table, set_
     kept = old.take(pa.array(sorted(keep_idx), pa.int64())) if keep_idx else old.slice(0, 0)
     snap = new_snapshot_id()
     built = _Built([], [], {}, [], snap)
-    sketcher = Sketcher.for_set(spec["mask_sha256"], at.n_parcels)
+    sketcher = Sketcher.for_set(spec["mask_sha256"], at.n_parcels, spec["sketch"])
     now = time.strftime("%Y-%m-%dT%H:%M:%S")
     buf = np.empty((min(_BLOCK, max(len(todo), 1)), fs.n_voxels), dtype=np.float32)
     for k in range(0, len(todo), _BLOCK):

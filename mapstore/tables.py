@@ -142,6 +142,7 @@ class FeatureSetSpec(_JsonRecord):
     geometry: str = "volume"  # volume, surface or parcels
     projection: dict[str, Any] | None = None  # surface sets: how volume maps are projected onto the mesh
     parcels: dict[str, Any] | None = None  # parcel sets: the atlas, the reducer and the source set
+    sketch: str = "count"  # the rows' sketch directions: count (sparse) or gauss (dense, small sets)
 
     @classmethod
     def read(cls, folder: Path) -> "FeatureSetSpec":

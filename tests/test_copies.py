@@ -158,3 +158,42 @@ def test_pair_correlation_on_common_voxels():
     b = np.array([2, 4, 6, np.nan, 10], dtype=np.float32)
     r, n = pair_correlation(a, b)
     assert n == 3 and abs(r - np.corrcoef([1, 2, 5], [2, 4, 10])[0, 1]) < 1e-12
+
+
+def test_a_small_roi_set_scans_few_candidates_and_finds_the_copies(planted):
+    """An 80-voxel set: dense sketch directions, and the scan equals numpy's corrcoef on every pair."""
+    from mapstore.copies import _candidates
+    from mapstore.grid import builtin_grid
+
+    grid = builtin_grid("MNI152-3mm")
+    roi = np.zeros(grid.shape, bool)
+    roi[28:33, 36:40, 26:30] = True  # 80 voxels near the grid centre
+    mapstore.build_features(planted["store"], grid="MNI152-3mm", mask=roi, name="roi", progress=False)
+    fs = mapstore.open(planted["store"]).features("roi")
+    assert fs.n_voxels == 80 and fs.spec["sketch"] == "gauss"
+    ids = fs.map_ids
+    n_pairs = len(ids) * (len(ids) - 1) // 2
+    # sparse count sketches of 80 voxels make every pair a candidate; dense directions do not
+    assert len(_candidates(fs.sketches(ids))) < 0.2 * n_pairs
+    assert len(_candidates(Sketcher(1, 80).sketch(fs.matrix(ids)))) > 0.9 * n_pairs
+    X = fs.matrix(ids)
+    table = {(r["map_a"], r["map_b"]): r for r in find_copies(fs).to_pylist()}
+    missed, strong = [], []
+    for i in range(len(ids)):
+        for j in range(i + 1, len(ids)):
+            both = np.isfinite(X[i]) & np.isfinite(X[j])
+            r = np.corrcoef(X[i][both], X[j][both])[0, 1]  # reference: numpy
+            key = tuple(sorted((ids[i], ids[j])))
+            if abs(r) >= 0.95:
+                strong.append(key)
+                if key not in table:
+                    missed.append((key, r))
+            if key in table:
+                assert abs(table[key]["r"] - r) < 1e-5 and abs(r) >= 0.9
+    # banding finds a pair at |r| 0.95 with probability 0.998 (51 bands of 20 bits, angle / pi
+    # differing bits): a few of many such pairs may be missed, no more
+    assert len(missed) <= max(1, 0.01 * len(strong))
+    # the planted copies of the source map are among them
+    for kind, mid in planted["copies"].items():
+        key = tuple(sorted((planted["src"], mid)))
+        assert key in table, kind
