@@ -16,9 +16,10 @@ A user mesh is a JSON *mesh description* (paths relative to it)::
                      "R": {...}},
      "registered_spheres": {"fsaverage": {"L": "fsaverage-in-fsLR.L.sphere.surf.gii", "R": ...}}}
 
-Each hemisphere names GIFTI surfaces (any names; ``sphere`` resamples, ``pial`` and
-``white_matter`` project volumes, ``inflated`` draws) and per-vertex data (``cortex``: non-zero
-on cortex; ``sulcal``: a picture's background).  ``registered_spheres`` gives, per source space,
+Each hemisphere names surfaces, GIFTI or FreeSurfer (``lh.pial``; any names: ``sphere``
+resamples, ``pial`` and ``white_matter`` project volumes, ``inflated`` draws) and per-vertex data
+(``cortex``: non-zero on cortex, or a FreeSurfer ``.label``; ``sulcal``: a picture's background,
+GIFTI or FreeSurfer morph data such as ``lh.sulc``).  ``registered_spheres`` gives, per source space,
 that space's sphere deformed into this mesh's sphere coordinates: maps on it are resampled by
 nearest vertex.
 """
@@ -180,7 +181,8 @@ class SurfaceTarget:
         files = [self.file(h, kind) for h in ("L", "R")]
         if not self.files or None in files:
             return None
-        return np.concatenate([_read_data(f) for f in files])  # type: ignore[arg-type]
+        return np.concatenate([_read_data(f, n_vertices=self.n_left if f.hemi == "L" else self.n_right)
+                               for f in files])  # type: ignore[union-attr]
 
 
 def builtin_surface(name: str) -> SurfaceTarget | None:
@@ -237,9 +239,11 @@ def mesh_from_description(path: str | os.PathLike[str]) -> SurfaceTarget:
     for hemi in ("L", "R"):
         entry = doc["hemispheres"][hemi]
         if not isinstance(entry, dict) or not entry:
-            raise ParameterError(f"mesh description {path}: hemisphere {hemi} must map kinds to GIFTI files")
-        for kind, rel in sorted(entry.items()):
-            f, n = _mesh_file(path, base, hemi, kind, rel, data=kind in DATA_KINDS)
+            raise ParameterError(f"mesh description {path}: hemisphere {hemi} must map kinds to files (GIFTI or "
+                                 "FreeSurfer)")
+        # surfaces first: a FreeSurfer label names vertices, and needs the count they give
+        for kind, rel in sorted(entry.items(), key=lambda kv: (kv[0] in DATA_KINDS, kv[0])):
+            f, n = _mesh_file(path, base, hemi, kind, rel, data=kind in DATA_KINDS, n_vertices=counts.get(hemi))
             if counts.setdefault(hemi, n) != n:
                 raise ParameterError(f"{f.path}: {n} vertices, the other files of hemisphere {hemi} in {path} have "
                                      f"{counts[hemi]}; a description's files are of one mesh")
@@ -305,7 +309,8 @@ def write_mesh_description(folder: str | os.PathLike[str], meshes: dict[str, Any
     return path
 
 
-def _mesh_file(desc: str, base: str, hemi: str, kind: str, rel: Any, data: bool) -> tuple[MeshFile, int]:
+def _mesh_file(desc: str, base: str, hemi: str, kind: str, rel: Any, data: bool,
+               n_vertices: int | None = None) -> tuple[MeshFile, int]:
     if not isinstance(rel, str):
         raise ParameterError(f"mesh description {desc}: {hemi}.{kind} must be a file path, got {rel!r}")
     full = os.path.normpath(os.path.join(base, rel))
@@ -316,7 +321,7 @@ def _mesh_file(desc: str, base: str, hemi: str, kind: str, rel: Any, data: bool)
         raise ParameterError(f"mesh description {desc}: {hemi}.{kind} {full}: cannot read ({exc.strerror})") from None
     f = MeshFile(hemi, kind, full, hashlib.sha256(raw).hexdigest())
     if data:
-        return f, _read_data(f, raw).size
+        return f, _read_data(f, raw, n_vertices).size
     return f, len(_parse_mesh(f, raw)[0])
 
 
@@ -337,33 +342,76 @@ def _read_checked(f: MeshFile) -> bytes:
     return raw
 
 
+# FreeSurfer binary files start with a 3-byte magic number (nibabel.freesurfer.io): triangle
+# surfaces 0xFFFFFE, "new" curvature (morph data) files 0xFFFFFF
+_FS_TRIANGLES, _FS_MORPH = b"\xff\xff\xfe", b"\xff\xff\xff"
+
+
+def _is_gifti(raw: bytes) -> bool:
+    return b"<GIFTI" in raw[:4096]
+
+
 def _parse_mesh(f: MeshFile, raw: bytes) -> tuple[np.ndarray, np.ndarray]:
+    """(coordinates, triangles) of a GIFTI surface or a FreeSurfer triangle file (``lh.pial``, ...)."""
     import nibabel as nib
 
-    try:
-        img = nib.GiftiImage.from_bytes(raw)
-        coords = img.get_arrays_from_intent("NIFTI_INTENT_POINTSET")
-        faces = img.get_arrays_from_intent("NIFTI_INTENT_TRIANGLE")
-    except Exception as exc:  # nibabel's XML and base64 decoders raise several types
-        raise ParameterError(f"{f.path}: not a readable GIFTI surface ({type(exc).__name__}: {exc})") from None
-    if len(coords) != 1 or len(faces) != 1:
+    if raw[:3] == _FS_TRIANGLES:
+        try:
+            xyz, tri = nib.freesurfer.read_geometry(f.path)  # the bytes were just read and hashed
+        except Exception as exc:  # nibabel raises several types for a cut or damaged file
+            raise ParameterError(f"{f.path}: not a readable FreeSurfer surface ({type(exc).__name__}: {exc})") from None
+        coords_list, faces_list = [xyz], [tri]
+    elif _is_gifti(raw):
+        try:
+            img = nib.GiftiImage.from_bytes(raw)
+            coords_list = [a.data for a in img.get_arrays_from_intent("NIFTI_INTENT_POINTSET")]
+            faces_list = [a.data for a in img.get_arrays_from_intent("NIFTI_INTENT_TRIANGLE")]
+        except Exception as exc:  # nibabel's XML and base64 decoders raise several types
+            raise ParameterError(f"{f.path}: not a readable GIFTI surface ({type(exc).__name__}: {exc})") from None
+    else:
+        raise ParameterError(f"{f.path}: the {f.kind} surface is neither GIFTI (.surf.gii) nor a FreeSurfer surface "
+                             "file (lh.pial, lh.sphere.reg, ...)")
+    if len(coords_list) != 1 or len(faces_list) != 1:
         raise ParameterError(f"{f.path}: a {f.kind} surface needs one POINTSET and one TRIANGLE array (a .surf.gii "
-                             f"file); it has {len(coords)} and {len(faces)}")
-    xyz, tri = np.asarray(coords[0].data, dtype=np.float64), np.asarray(faces[0].data, dtype=np.int64)
+                             f"file); it has {len(coords_list)} and {len(faces_list)}")
+    xyz, tri = np.asarray(coords_list[0], dtype=np.float64), np.asarray(faces_list[0], dtype=np.int64)
     if xyz.ndim != 2 or xyz.shape[1] != 3 or tri.ndim != 2 or tri.shape[1] != 3 or \
             (tri.size and (tri.min() < 0 or tri.max() >= len(xyz))):
         raise ParameterError(f"{f.path}: the surface's arrays are not N x 3 coordinates and M x 3 vertex numbers")
     return xyz, tri
 
 
-def _read_data(f: MeshFile, raw: bytes | None = None) -> np.ndarray:
+def _read_data(f: MeshFile, raw: bytes | None = None, n_vertices: int | None = None) -> np.ndarray:
+    """Per-vertex values: a one-array GIFTI file, FreeSurfer morph data (``lh.sulc``) or a FreeSurfer
+    label (``lh.cortex.label``: 1 on its vertices, 0 elsewhere; needs the hemisphere's vertex count)."""
+    import io
+
     import nibabel as nib
 
     raw = _read_checked(f) if raw is None else raw
+    if raw.startswith(b"#!ascii label"):
+        if n_vertices is None:
+            raise ParameterError(f"{f.path}: a label names vertices; give the hemisphere's surfaces beside it")
+        try:
+            idx = np.loadtxt(io.BytesIO(raw), dtype=np.int64, skiprows=2, usecols=[0], ndmin=1)
+        except ValueError as exc:
+            raise ParameterError(f"{f.path}: not a readable FreeSurfer label ({exc})") from None
+        if idx.size and (idx.min() < 0 or idx.max() >= n_vertices):
+            raise ParameterError(f"{f.path}: the label names vertex {int(idx.max())}, the mesh has {n_vertices}")
+        out = np.zeros(n_vertices)
+        out[idx] = 1.0
+        return out
+    if raw[:3] == _FS_MORPH:
+        try:
+            return np.asarray(nib.freesurfer.read_morph_data(f.path), dtype=np.float64).reshape(-1)
+        except Exception as exc:  # nibabel raises several types for a cut or damaged file
+            raise ParameterError(f"{f.path}: not a readable FreeSurfer morph file ({type(exc).__name__}: {exc})"
+                                 ) from None
     try:
         arrays = [a.data for a in nib.GiftiImage.from_bytes(raw).darrays if a.intent not in (1008, 1009)]
     except Exception as exc:  # nibabel's XML and base64 decoders raise several types
-        raise ParameterError(f"{f.path}: not a readable GIFTI file ({type(exc).__name__}: {exc})") from None
+        raise ParameterError(f"{f.path}: {f.kind} data is neither GIFTI nor FreeSurfer morph data or a label "
+                             f"({type(exc).__name__}: {exc})") from None
     if len(arrays) != 1:
         raise ParameterError(f"{f.path}: {f.kind} data must be one array of values per vertex; it has {len(arrays)}")
     return np.asarray(arrays[0], dtype=np.float64).reshape(-1)

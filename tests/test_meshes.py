@@ -12,6 +12,7 @@ mapstore.
 from __future__ import annotations
 
 import json
+import warnings
 from pathlib import Path
 
 import nibabel as nib
@@ -312,3 +313,65 @@ def test_cli_takes_a_mesh_description_and_a_template_mesh(described, maps, tmp_p
                                  "--where", "m.space = 'MNI152NLin2009cAsym'"])
     assert r.exit_code == 0, r.output
     assert "voxels+vol_to_surf x1" in r.output
+
+
+def test_freesurfer_surfaces_label_and_morph_files_describe_a_mesh(maps, tmp_path):
+    """A FreeSurfer subject folder's files (written with nibabel.freesurfer) as the mesh: lh.pial etc.,
+    lh.cortex.label, lh.sulc.  References: nibabel's FreeSurfer readers, nilearn's vol_to_surf on the
+    same files (nilearn reads FreeSurfer geometry itself), scipy's KD-tree."""
+    from nibabel.freesurfer import read_label, write_geometry, write_morph_data
+    from nilearn.datasets import load_fsaverage
+    from nilearn.surface import vol_to_surf
+    from scipy.spatial import cKDTree
+
+    from mapstore.surface import builtin_surface, cortex_mask
+
+    fsa = load_fsaverage("fsaverage5")
+    wall = cortex_mask(builtin_surface("fsaverage5"))
+    surf = tmp_path / "surf"
+    surf.mkdir()
+    hemis = {}
+    for h, part, fs_name in (("L", "left", "lh"), ("R", "right", "rh")):
+        entry = {}
+        for kind, fname in (("pial", "pial"), ("white_matter", "white"), ("sphere", "sphere")):
+            mesh = fsa[kind].parts[part]
+            write_geometry(str(surf / f"{fs_name}.{fname}"), np.asarray(mesh.coordinates), np.asarray(mesh.faces))
+            entry[kind] = f"surf/{fs_name}.{fname}"
+        half = wall[:N5] if h == "L" else wall[N5:]
+        idx = np.flatnonzero(half)
+        # FreeSurfer's ASCII label format (common practice): a comment line, the count, then
+        # "vertex x y z value" per line
+        with open(surf / f"{fs_name}.cortex.label", "w") as fh:
+            fh.write(f"#!ascii label, from subject fsaverage5\n{idx.size}\n")
+            for v in idx:
+                fh.write(f"{v} 0.0 0.0 0.0 0.0\n")
+        np.testing.assert_array_equal(read_label(str(surf / f"{fs_name}.cortex.label")), idx)  # nibabel reads it
+        with open(surf / f"{fs_name}.sulc", "wb") as fh:
+            write_morph_data(fh, np.linspace(-1, 1, N5).astype(np.float32))
+        entry["cortex"], entry["sulcal"] = f"surf/{fs_name}.cortex.label", f"surf/{fs_name}.sulc"
+        hemis[h] = entry
+    desc = tmp_path / "fs5.json"
+    desc.write_text(json.dumps({"name": "fs5-freesurfer", "space": "fsaverage", "hemispheres": hemis}))
+    rep = mapstore.build_features(maps["store"], grid=str(desc), name="fs5", progress=False, jobs=1,
+                                  where="m.space <> 'fsLR' AND m.space <> 'perm'")
+    assert rep.failed == 0, rep.problems
+    fs = mapstore.open(maps["store"]).features("fs5")
+    np.testing.assert_array_equal(fs.mask_indices, np.flatnonzero(wall))  # the labels are the mask
+    from mapstore.surface import sulcal_depth
+
+    np.testing.assert_allclose(sulcal_depth(fs.grid)[:N5], np.linspace(-1, 1, N5), atol=1e-6)
+    ok = np.zeros(2 * N5, bool)
+    ok[fs.mask_indices] = True
+    # fsaverage4 maps: nearest vertex on the FreeSurfer sphere (scipy's KD-tree, plain distances)
+    got = _full(fs, maps["store"], "%space-fsaverage4%")
+    xyz = np.asarray(fsa["sphere"].parts["left"].coordinates)
+    _, idx4 = cKDTree(xyz[:2562]).query(xyz)
+    np.testing.assert_array_equal(got[:N5][ok[:N5]], maps["fields"]["fsaverage4"]["L"][idx4].astype(np.float32)[ok[:N5]])
+    # a volume: nilearn's vol_to_surf on the FreeSurfer files themselves
+    got = _full(fs, maps["store"], "%space-MNI152%")
+    proj = fs.spec["projection"]
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        ref = vol_to_surf(nib.Nifti1Image(maps["vol"], MNI2), str(surf / "lh.pial"), inner_mesh=str(surf / "lh.white"),
+                          kind=proj["kind"], interpolation=proj["interpolation"], depth=proj["depth"])
+    np.testing.assert_allclose(got[:N5][ok[:N5]], ref[ok[:N5]], rtol=1e-5, atol=1e-4)
