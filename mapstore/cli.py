@@ -203,6 +203,20 @@ def parcels_cmd(store, atlas, source, name) -> None:
     click.echo(build_parcels(store, atlas, source=source, name=name).summary())
 
 
+@cli.command("mesh")
+@click.argument("subject_dir", type=click.Path(exists=True, file_okay=False))
+@click.option("--out", required=True, type=click.Path(dir_okay=False), help="Mesh description (JSON) to write.")
+@click.option("--space", help="The mesh's space (default: the folder's name, e.g. fsaverage6).")
+def mesh_cmd(subject_dir, out, space) -> None:
+    """Describe a FreeSurfer subject folder's surfaces as a mesh (for --grid or --mesh)."""
+    from .surface import describe_freesurfer, mesh_from_description
+
+    path = describe_freesurfer(subject_dir, out, space=space)
+    t = mesh_from_description(path)
+    click.echo(f"wrote {path}: mesh {t.name} (space {t.space}), {t.n_left:,} + {t.n_right:,} vertices, surfaces "
+               f"{', '.join(t.kinds())}; cortex {'given' if t.file('L', 'cortex') else 'not given (every vertex)'}")
+
+
 @cli.command("labels")
 @STORE_OPTION
 @click.option("--vocab", required=True, type=click.Path(dir_okay=False),

@@ -46,6 +46,7 @@ __all__ = [
     "surface_from_spec",
     "mesh_from_description",
     "write_mesh_description",
+    "describe_freesurfer",
     "space_family",
     "vertex_index",
     "fsaverage_meshes",
@@ -245,7 +246,8 @@ def mesh_from_description(path: str | os.PathLike[str]) -> SurfaceTarget:
         for kind, rel in sorted(entry.items(), key=lambda kv: (kv[0] in DATA_KINDS, kv[0])):
             f, n = _mesh_file(path, base, hemi, kind, rel, data=kind in DATA_KINDS, n_vertices=counts.get(hemi))
             if counts.setdefault(hemi, n) != n:
-                raise ParameterError(f"{f.path}: {n} vertices, the other files of hemisphere {hemi} in {path} have "
+                first = next(g.path for g in files if g.hemi == hemi)
+                raise ParameterError(f"{path}: hemisphere {hemi} mixes meshes: {f.path} has {n} vertices, {first} "
                                      f"{counts[hemi]}; a description's files are of one mesh")
             files.append(f)
     target = SurfaceTarget(str(doc.get("name") or os.path.basename(path).split(".")[0]), counts["L"], counts["R"],
@@ -307,6 +309,46 @@ def write_mesh_description(folder: str | os.PathLike[str], meshes: dict[str, Any
     with open(path, "w", encoding="utf-8") as fh:
         json.dump({"name": name, "space": space, "hemispheres": hemis}, fh, indent=1)
     return path
+
+
+# FreeSurfer subject layout (common practice): surfaces in surf/, the cortex label in label/
+_FS_SURFACES = {"pial": "pial", "white_matter": "white", "sphere": "sphere", "inflated": "inflated",
+                "midthickness": "midthickness"}
+_FS_DATA = {"sulcal": "surf/{h}.sulc", "cortex": "label/{h}.cortex.label"}
+
+
+def describe_freesurfer(subject_dir: str | os.PathLike[str], out: str | os.PathLike[str], *,
+                        space: str | None = None, name: str | None = None) -> str:
+    """Write a mesh description of a FreeSurfer subject folder (``$SUBJECTS_DIR/fsaverage6``, ...).
+
+    Takes ``surf/{lh,rh}.{pial,white,sphere,inflated}`` (those present; ``white`` as
+    ``white_matter``), ``surf/?h.sulc`` and ``label/?h.cortex.label``; ``space`` defaults to the
+    folder's name.  The description is checked by reading it back; returns its path.
+    """
+    import json
+
+    subject = os.path.abspath(os.fspath(subject_dir))
+    if not os.path.isdir(os.path.join(subject, "surf")):
+        raise ParameterError(f"{subject}: no surf/ folder; give a FreeSurfer subject folder (e.g. "
+                             "$SUBJECTS_DIR/fsaverage6)")
+    hemis: dict[str, dict[str, str]] = {}
+    for hemi, fs in (("L", "lh"), ("R", "rh")):
+        entry = {kind: os.path.join(subject, "surf", f"{fs}.{stem}") for kind, stem in _FS_SURFACES.items()}
+        entry.update({kind: os.path.join(subject, rel.format(h=fs)) for kind, rel in _FS_DATA.items()})
+        hemis[hemi] = {k: p for k, p in entry.items() if os.path.isfile(p)}
+    both = set(hemis["L"]) & set(hemis["R"])
+    hemis = {h: {k: p for k, p in e.items() if k in both} for h, e in hemis.items()}
+    if not both - set(DATA_KINDS):
+        raise ParameterError(f"{subject}/surf: no lh./rh. pial, white, sphere or inflated surface found")
+    label = os.path.basename(subject.rstrip(os.sep))
+    doc = {"name": name or label, "space": space or label, "hemispheres": hemis}
+    out = os.fspath(out)
+    tmp = f"{out}.{os.getpid()}.tmp"
+    with open(tmp, "w", encoding="utf-8") as fh:
+        json.dump(doc, fh, indent=1)
+    os.replace(tmp, out)
+    mesh_from_description(out)  # every file readable, one vertex count per hemisphere
+    return out
 
 
 def _mesh_file(desc: str, base: str, hemi: str, kind: str, rel: Any, data: bool,

@@ -215,7 +215,7 @@ def test_description_errors_name_the_file(described, tmp_path, maps):
     mixed = json.loads(json.dumps(doc))
     surf_gii(base / "small.surf.gii", np.eye(3), np.array([[0, 1, 2]]))
     mixed["hemispheres"]["L"]["inflated"] = "small.surf.gii"
-    with pytest.raises(ParameterError, match="small.surf.gii: 3 vertices"):
+    with pytest.raises(ParameterError, match="hemisphere L mixes meshes: .*small.surf.gii"):
         mesh_from_description(write(mixed))
     notmesh = json.loads(json.dumps(doc))
     notmesh["hemispheres"]["L"]["pial"] = doc["hemispheres"]["L"]["cortex"]
@@ -375,3 +375,30 @@ def test_freesurfer_surfaces_label_and_morph_files_describe_a_mesh(maps, tmp_pat
         ref = vol_to_surf(nib.Nifti1Image(maps["vol"], MNI2), str(surf / "lh.pial"), inner_mesh=str(surf / "lh.white"),
                           kind=proj["kind"], interpolation=proj["interpolation"], depth=proj["depth"])
     np.testing.assert_allclose(got[:N5][ok[:N5]], ref[ok[:N5]], rtol=1e-5, atol=1e-4)
+
+
+def test_cli_describes_a_freesurfer_subject_folder(tmp_path):
+    from click.testing import CliRunner
+    from nibabel.freesurfer import write_geometry
+    from nilearn.datasets import load_fsaverage
+
+    from mapstore.cli import cli
+    from mapstore.surface import mesh_from_description
+
+    fsa = load_fsaverage("fsaverage5")
+    subject = tmp_path / "subjects" / "fsaverage5"
+    (subject / "surf").mkdir(parents=True)
+    for part, fs in (("left", "lh"), ("right", "rh")):
+        for kind, stem in (("pial", "pial"), ("white_matter", "white"), ("sphere", "sphere")):
+            mesh = fsa[kind].parts[part]
+            write_geometry(str(subject / "surf" / f"{fs}.{stem}"), np.asarray(mesh.coordinates),
+                           np.asarray(mesh.faces))
+    out = tmp_path / "fs5.json"
+    r = CliRunner().invoke(cli, ["mesh", str(subject), "--out", str(out)])
+    assert r.exit_code == 0, r.output
+    assert "space fsaverage5" in r.output and "10,242 + 10,242" in r.output and "not given" in r.output
+    t = mesh_from_description(out)
+    assert t.kinds() == ["pial", "sphere", "white_matter"] and t.family == "fsaverage"
+    from mapstore.cli import main
+
+    assert main(["mesh", str(tmp_path), "--out", str(tmp_path / "x.json")]) == 2  # a parameter error, one line
