@@ -215,6 +215,7 @@ def check_store(store, features: str | None = None, *, min_coverage: float = 0.8
         maps = store.sql(f"SELECT {', '.join('m.' + c for c in _SET_COLUMNS)} FROM maps m JOIN features f "
                          f"USING (map_id) WHERE f.feature_set = {_lit(fs.name)}").to_pylist()
         _check_features(store, fs, maps, min_coverage, add, report, pictures, max_rows_for_pictures)
+        _check_cortex_mesh(store, fs, add)
         _check_copies(fs, maps, add, report)
         _check_concepts(store, fs, maps, add, report, pictures, min_agreement)
     return report
@@ -540,6 +541,25 @@ def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report
                         + {"surface": "sulcal depth", "grayordinates": "sulcal depth and the MNI152 template"}.get(
                             geometry, "MNI152 template")] = \
             png_bytes(np.concatenate(strips[:-1], axis=0).astype(np.uint8))
+
+
+def _check_cortex_mesh(store, fs, add) -> None:
+    """A grayordinate set's cortex mesh: assumed from the vertex count, or unknown (volumes' cortex missing)."""
+    if fs.base[0] != "grayordinates" or fs.geometry != "grayordinates":
+        return
+    grid = fs.grid
+    if grid.mesh is None and grid.cortex_mesh() is not None:
+        add(Finding("info", "grid", "cortex-mesh-assumed", fs.name,
+                    f"the CIFTI template's cortex has 10,242 vertices per hemisphere and no mesh was given: volume "
+                    f"maps were projected onto nilearn's fsaverage5 (fsLR-10k has the same count)",
+                    "if the template is not on fsaverage5, rebuild the set with --mesh (a mesh description)"))
+    n = store.sql("SELECT count(*) AS n FROM features WHERE feature_set = " + _lit(fs.name) +
+                  " AND missing_from LIKE '%no-cortex-mesh%'").to_pylist()[0]["n"]
+    if n:
+        add(Finding("warning", "coverage", "no-cortex-mesh", fs.name,
+                    f"{n} volume map(s) have no cortex values: the template's cortex mesh is not known",
+                    "rebuild the set with --mesh MESH.json (the template cortex's surfaces; 'mapstore mesh' "
+                    "describes a FreeSurfer subject folder)"))
 
 
 def _model_key(m: dict) -> tuple:

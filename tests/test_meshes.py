@@ -402,3 +402,19 @@ def test_cli_describes_a_freesurfer_subject_folder(tmp_path):
     from mapstore.cli import main
 
     assert main(["mesh", str(tmp_path), "--out", str(tmp_path / "x.json")]) == 2  # a parameter error, one line
+
+
+def test_check_says_when_a_template_cortex_mesh_was_assumed_or_unknown(maps, tmp_path):
+    ax = brain_models(voxels=False)
+    template = cifti(tmp_path / "plain.dscalar.nii", np.zeros((1, len(ax))), ax)
+    mapstore.build_features(maps["store"], grid=str(template), name="grey-assumed", progress=False, jobs=1,
+                            where="m.space = 'MNI152NLin2009cAsym'")
+    codes = [f.code for f in mapstore.open(maps["store"]).check("grey-assumed", pictures=False).findings]
+    assert "cortex-mesh-assumed" in codes and "no-cortex-mesh" not in codes
+    small = cifti(tmp_path / "small.dscalar.nii", np.zeros((1, 2 * 2562)), brain_models(2562, 2562, voxels=False))
+    rep = mapstore.build_features(maps["store"], grid=str(small), name="grey-unknown", progress=False, jobs=1,
+                                  where="m.space = 'MNI152NLin2009cAsym'")
+    assert rep.built == 1
+    found = {f.code: f for f in mapstore.open(maps["store"]).check("grey-unknown", pictures=False).findings}
+    assert "no-cortex-mesh" in found and "--mesh" in found["no-cortex-mesh"].remedy
+    assert "cortex-mesh-assumed" not in found
