@@ -418,3 +418,17 @@ def test_check_says_when_a_template_cortex_mesh_was_assumed_or_unknown(maps, tmp
     found = {f.code: f for f in mapstore.open(maps["store"]).check("grey-unknown", pictures=False).findings}
     assert "no-cortex-mesh" in found and "--mesh" in found["no-cortex-mesh"].remedy
     assert "cortex-mesh-assumed" not in found
+
+
+def test_a_described_mesh_set_on_a_dask_cluster_equals_the_local_build(described, maps, perm_set):
+    distributed = pytest.importorskip("distributed")
+    _, local = perm_set
+    with distributed.LocalCluster(n_workers=2, threads_per_worker=1, processes=True,
+                                  dashboard_address=None) as cluster, distributed.Client(cluster) as client:
+        rep = mapstore.build_features(maps["store"], grid=str(described["desc"]), name="perm-dask",
+                                      scheduler=client, batch_size=2, progress=False)
+    assert rep.failed == 1  # the fsLR pair, as locally
+    fs = mapstore.open(maps["store"]).features("perm-dask")
+    ids = local.map_ids
+    assert fs.map_ids == ids
+    np.testing.assert_array_equal(fs.matrix(ids), local.matrix(ids))
