@@ -550,8 +550,8 @@ def _check_cortex_mesh(store, fs, add) -> None:
     grid = fs.grid
     if grid.mesh is None and grid.cortex_mesh() is not None:
         add(Finding("info", "grid", "cortex-mesh-assumed", fs.name,
-                    f"the CIFTI template's cortex has 10,242 vertices per hemisphere and no mesh was given: volume "
-                    f"maps were projected onto nilearn's fsaverage5 (fsLR-10k has the same count)",
+                    "the CIFTI template's cortex has 10,242 vertices per hemisphere and no mesh was given: volume "
+                    "maps were projected onto nilearn's fsaverage5 (fsLR-10k has the same count)",
                     "if the template is not on fsaverage5, rebuild the set with --mesh (a mesh description)"))
     n = store.sql("SELECT count(*) AS n FROM features WHERE feature_set = " + _lit(fs.name) +
                   " AND missing_from LIKE '%no-cortex-mesh%'").to_pylist()[0]["n"]

@@ -428,7 +428,7 @@ def _grayordinate_vector(item: _Item, b: _Batch, indices: np.ndarray | None, mas
     elif item.geometry == "surface":
         halves, conversion, clipped, missing = _hemispheres(item, b)
         cortex = cortex_positions(axis)
-        mesh = target.cortex_mesh() or SurfaceTarget(
+        mesh = _cortex_mesh(target, cache) or SurfaceTarget(
             "template-cortex", cortex["L"][2] if "L" in cortex else 0, cortex["R"][2] if "R" in cortex else 0,
             item.space or "")  # no mesh given: the template's cortex is taken to be on the map's own mesh
         for hemi, (pos, vertex, _) in cortex.items():
@@ -448,7 +448,7 @@ def _grayordinate_vector(item: _Item, b: _Batch, indices: np.ndarray | None, mas
             out[vox] = res.reshape(-1)[flat]
         cortex = cortex_positions(axis)
         path = "voxels"
-        mesh = target.cortex_mesh()
+        mesh = _cortex_mesh(target, cache)
         if cortex and mesh is not None:
             proj = project_volume(np.asarray(vol, dtype=np.float32), facts.affine_array, mesh, b.projection,
                                   _meshes(cache, mesh), cache)
@@ -458,6 +458,13 @@ def _grayordinate_vector(item: _Item, b: _Batch, indices: np.ndarray | None, mas
         elif cortex:
             missing.append("no-cortex-mesh")
     return (out if indices is None else out[indices]), conversion, path, "+".join(missing) or "none", clipped
+
+
+def _cortex_mesh(target: GrayordinateTarget, cache: dict[str, Any]) -> SurfaceTarget | None:
+    """The template cortex's mesh, found once per batch (it reads the template's header)."""
+    if "_cortex_mesh" not in cache:
+        cache["_cortex_mesh"] = target.cortex_mesh()
+    return cache["_cortex_mesh"]
 
 
 def _run_batch(b: _Batch) -> dict[str, Any]:
