@@ -303,9 +303,15 @@ def _check_surfaces(store, add, report) -> None:
     for r in store.sql("SELECT space, count(*) AS n, min(relpath) AS example FROM maps WHERE geometry = 'surface' "
                        "AND ((space IS NULL AND n_vertices NOT IN (642, 2562, 10242, 40962, 163842)) OR NOT starts_with(space, "
                        "'fsaverage')) GROUP BY space").to_pylist():
+        native = (r["space"] or "").startswith("fsnative")
         add(Finding("warning", "space", "surface-space", r["space"] or "(none)",
-                    f"{r['n']} surface map(s) in space {r['space'] or '(none)'} (e.g. {r['example']}): surface "
-                    "sets take fsaverage meshes", "resample them to fsaverage first, or give the mesh"))
+                    f"{r['n']} surface map(s) in space {r['space'] or '(none)'} (e.g. {r['example']}): the built-in "
+                    "surface set takes fsaverage meshes",
+                    "fsnative maps are on each subject's own mesh: resample them to fsaverage first (e.g. FreeSurfer's "
+                    "mri_surf2surf with the subject's sphere.reg)" if native else
+                    "build the set on their mesh (--grid MESH.json, a mesh description; 'mapstore mesh' writes one "
+                    "from a FreeSurfer folder), or give the target's description a sphere of their space registered "
+                    "to it (registered_spheres)"))
 
 
 _MNI_BRAIN_BOX = (np.array([-78.0, -112.0, -72.0]), np.array([78.0, 76.0, 86.0]))  # mm, common practice
