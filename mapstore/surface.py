@@ -287,11 +287,15 @@ def describe_freesurfer(subject_dir: str | os.PathLike[str], out: str | os.PathL
     label = os.path.basename(subject.rstrip(os.sep))
     doc = {"name": name or label, "space": space or label, "hemispheres": hemis}
     out = os.fspath(out)
-    tmp = f"{out}.{os.getpid()}.tmp"
+    tmp = os.path.join(os.path.dirname(os.path.abspath(out)), f".{os.path.basename(out)}.{os.getpid()}.tmp")
     with open(tmp, "w", encoding="utf-8") as fh:
         json.dump(doc, fh, indent=1)
-    os.replace(tmp, out)
-    mesh_from_description(out)  # every file readable, one vertex count per hemisphere
+    try:
+        mesh_from_description(tmp)  # every file readable, one vertex count per hemisphere
+        os.replace(tmp, out)
+    finally:
+        if os.path.exists(tmp):
+            os.unlink(tmp)
     return out
 
 

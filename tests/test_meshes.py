@@ -402,6 +402,11 @@ def test_cli_describes_a_freesurfer_subject_folder(tmp_path):
     from mapstore.cli import main
 
     assert main(["mesh", str(tmp_path), "--out", str(tmp_path / "x.json")]) == 2  # a parameter error, one line
+    # a folder whose surfaces disagree: refused, and no description is left behind
+    write_geometry(str(subject / "surf" / "lh.white"), np.eye(3), np.array([[0, 1, 2]]))
+    bad = tmp_path / "bad.json"
+    assert main(["mesh", str(subject), "--out", str(bad)]) == 2 and not bad.exists()
+    assert not [p for p in tmp_path.iterdir() if p.name.endswith(".tmp")]
 
 
 def test_check_says_when_a_template_cortex_mesh_was_assumed_or_unknown(maps, tmp_path):
