@@ -307,8 +307,8 @@ def _check_surfaces(store, add, report) -> None:
         add(Finding("warning", "space", "surface-space", r["space"] or "(none)",
                     f"{r['n']} surface map(s) in space {r['space'] or '(none)'} (e.g. {r['example']}): the built-in "
                     "surface set takes fsaverage meshes",
-                    "fsnative maps are on each subject's own mesh: resample them to fsaverage first (e.g. FreeSurfer's "
-                    "mri_surf2surf with the subject's sphere.reg)" if native else
+                    "fsnative maps are on each subject's own mesh: build the set with --subjects-dir (the FreeSurfer "
+                    "subjects folder; each subject's surf/?h.sphere.reg takes its maps onto fsaverage)" if native else
                     "build the set on their mesh (--grid MESH.json, a mesh description; 'mapstore mesh' writes one "
                     "from a FreeSurfer folder), or give the target's description a sphere of their space registered "
                     "to it (registered_spheres)"))

@@ -165,11 +165,14 @@ def sql_cmd(store, query, fmt, out) -> None:
 @click.option("--no-volumes", is_flag=True, help="Surface sets: leave volume maps out (no projection).")
 @click.option("--mesh", type=click.Path(exists=True, dir_okay=False),
               help="Grayordinate sets: a JSON mesh description of the template's cortex (to project volume maps).")
+@click.option("--subjects-dir", type=click.Path(exists=True, file_okay=False),
+              help="FreeSurfer subjects folder: each subject's surf/?h.sphere.reg takes its space-fsnative maps "
+                   "onto fsaverage.")
 @click.option("--jobs", type=click.IntRange(min=1), default=None, help="Processes (default: all cores).")
 @click.option("--dask", "dask_address", help="Run on this Dask scheduler (e.g. tcp://host:8786).")
 @click.option("--list", "list_only", is_flag=True, help="List the store's feature sets and stop.")
 def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing, background, model_maps, where,
-                 projection, no_volumes, mesh, jobs, dask_address, list_only) -> None:
+                 projection, no_volumes, mesh, subjects_dir, jobs, dask_address, list_only) -> None:
     """Resample every map once onto one grid or mesh and mask (a named feature set)."""
     if list_only:
         click.echo(render_table(open_store(store).sql("SELECT * FROM feature_sets")))
@@ -183,7 +186,7 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
     report = build_features(store, name, grid=grid, mask=mask, method=method, stat=stat,
                             p_sided=p_sided, zero_as_missing=zero_as_missing, background=background,
                             model_maps=model_maps, where=where, projection=proj, volumes=not no_volumes,
-                            mesh=mesh, jobs=jobs, scheduler=dask_address)
+                            mesh=mesh, subjects_dir=subjects_dir, jobs=jobs, scheduler=dask_address)
     click.echo(report.summary())
 
 

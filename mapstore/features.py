@@ -63,6 +63,7 @@ from .grayordinates import (
     voxel_positions,
 )
 from .copies import SKETCH_BITS, Sketcher, find_copies, sketch_kind
+from .meshfiles import MeshFile, mesh_file
 from .surface import (
     SurfaceTarget,
     builtin_surface,
@@ -220,6 +221,8 @@ class _Item:
     mask_path_r: str | None = None
     mask_sha256_r: str | None = None
     space: str | None = None  # surface: the map's space entity (chooses the resampling path)
+    native: dict[str, MeshFile] | None = None  # fsnative maps: the subject's sphere.reg per hemisphere
+    native_missing: str | None = None  # fsnative maps: why there is no registration
 
 
 @dataclass
@@ -342,7 +345,7 @@ def _surface_vector(item: _Item, b: _Batch, indices: np.ndarray | None, masks: d
     halves, conversion, clipped, missing = _hemispheres(item, b)
     paths = set()
     for hemi, vals in halves.items():
-        idx, path = vertex_index(item.space, vals.size, hemi, target, cache)
+        idx, path = vertex_index(item.space, vals.size, hemi, target, cache, _native(item, hemi))
         paths.add(path)
         out[target.part(hemi)] = vals if idx is None else vals[idx]
     return (out if indices is None else out[indices]), conversion, "+".join(sorted(paths)) or "none", \
@@ -355,6 +358,45 @@ def _meshes(cache: dict[str, Any], target: SurfaceTarget) -> dict[str, Any]:
     if meshes is None:
         meshes = cache["_meshes"] = target.meshes()
     return meshes
+
+
+def _native(item: _Item, hemi: str) -> MeshFile | None:
+    """The subject's registration sphere of an fsnative map's hemisphere (None: not an fsnative map)."""
+    if item.native_missing:
+        raise FeatureError(item.native_missing)
+    return (item.native or {}).get(hemi)
+
+
+_FS_HEMI = {"L": "lh", "R": "rh"}
+
+
+def _attach_registrations(rows: list[dict[str, Any]], subjects_dir: str | os.PathLike[str] | None) -> None:
+    """Give each fsnative map its subject's FreeSurfer ``surf/?h.sphere.reg`` (read, checked and hashed
+    once per subject), or the reason it has none."""
+    found: dict[tuple[str, str], Any] = {}
+    for r in rows:
+        if not (r.get("space") or "").startswith("fsnative") or r.get("geometry") != "surface":
+            continue
+        if subjects_dir is None:
+            continue  # vertex_index says subjects_dir is needed
+        sub = r.get("sub")
+        if not sub:
+            r["native_missing"] = "an fsnative map without a sub- entity: its subject's registration cannot be found"
+            continue
+        native = {}
+        for hemi, fs in _FS_HEMI.items():
+            path = os.path.join(os.fspath(subjects_dir), f"sub-{sub}", "surf", f"{fs}.sphere.reg")
+            if (sub, hemi) not in found:
+                try:
+                    found[(sub, hemi)] = mesh_file(str(subjects_dir), "", hemi, "sphere.reg", path, data=False)[0]
+                except ParameterError as exc:
+                    found[(sub, hemi)] = str(exc)
+            native[hemi] = found[(sub, hemi)]
+        bad = [v for v in native.values() if isinstance(v, str)]
+        if bad:
+            r["native_missing"] = f"the subject's registration is unusable: {bad[0]}"
+        else:
+            r["native"] = native
 
 
 def _hemispheres(item: _Item, b: _Batch) -> tuple[dict[str, np.ndarray], str, int, list[str]]:
@@ -434,7 +476,7 @@ def _grayordinate_vector(item: _Item, b: _Batch, indices: np.ndarray | None, mas
         for hemi, (pos, vertex, _) in cortex.items():
             if hemi in halves:
                 vals = halves[hemi]
-                idx, _ = vertex_index(item.space, vals.size, hemi, mesh, cache)
+                idx, _ = vertex_index(item.space, vals.size, hemi, mesh, cache, _native(item, hemi))
                 out[pos] = (vals if idx is None else vals[idx])[vertex]
         path = "surface-cortex"
         missing.append("volume-structures")
@@ -579,7 +621,7 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], stat: 
     is its ``linked_map``); an unpaired hemisphere comes alone, the other half missing.
     """
     q = ("SELECT m.map_id, m.dataset, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, "
-         "m.model_mask, m.model_mask_sha256, coalesce(m.geometry, 'volume') AS geometry, m.hemi, m.space, ")
+         "m.model_mask, m.model_mask_sha256, coalesce(m.geometry, 'volume') AS geometry, m.hemi, m.space, m.sub, ")
     if surface:  # the right hemisphere's file beside the left's
         q += ("r.relpath AS relpath_r, r.sha256 AS sha256_r, r.model_mask AS model_mask_r, "
               "r.model_mask_sha256 AS model_mask_sha256_r, r.n_volumes AS n_volumes_r FROM maps m "
@@ -679,6 +721,7 @@ def build_features(
     projection: dict[str, Any] | None = None,
     volumes: bool = True,
     mesh: str | os.PathLike[str] | SurfaceTarget | None = None,
+    subjects_dir: str | os.PathLike[str] | None = None,
     jobs: int | None = None,
     scheduler: Any = None,
     batch_size: int | None = None,
@@ -736,6 +779,11 @@ def build_features(
         Grayordinate sets: a mesh description of the template's cortex (its vertex counts), to
         project volume maps' cortex and resample GIFTI maps of other spaces onto it.  Without
         it, a template on fsaverage5 uses nilearn's; others leave volume maps' cortex missing.
+    subjects_dir : path, optional
+        Surface and grayordinate sets on fsaverage: the FreeSurfer subjects folder (fMRIPrep's
+        ``sourcedata/freesurfer``) whose ``sub-<label>/surf/?h.sphere.reg`` take each subject's
+        ``space-fsnative`` maps onto the target (nearest vertex by angle); the files' hashes are in
+        the rows' feature keys.
     jobs : int, optional
         Local worker processes (default: all cores).
     scheduler : dask.distributed.Client or str, optional
@@ -782,6 +830,7 @@ def build_features(
         head = read_head(store_path)
         kinds = ("contrast", "model") if model_maps else ("contrast",)
         rows_sel, left_out = _select_maps(Catalog(store_path), where, kinds, stat, surface, volumes_in)
+        _attach_registrations(rows_sel, subjects_dir)
         batch_n = batch_size or max(4, min(64, len(rows_sel) // (jobs * 4) + 1))
         common = dict(grid=target, method=method, stat=stat, p_sided=p_sided, zero_as_missing=zero_as_missing,
                       background=background, projection=proj)
@@ -790,6 +839,7 @@ def build_features(
         existing = head.features.get(name)
         old_rows = _previous_rows(store_path, name, existing, spec)
         spec["sketch"] = _sketch_of(store_path, existing, mk.n_voxels)
+        spec["subjects_dir"] = os.path.abspath(subjects_dir) if subjects_dir is not None else None
         _write_set_files(set_dir, spec, mk, fresh=not existing)
         kept, todo, dropped = _plan_rows(rows_sel, spec, old_rows, batch_n, set_dir, mk, common)
         built = _run_batches(todo, run, store_path, set_dir, name)
@@ -926,6 +976,8 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: dict[str, Any], old_rows: p
         more = f"{r.get('sha256_r') or ''}|{r.get('model_mask_sha256_r') or ''}|{r.get('geometry')}"
         if r.get("geometry") not in (None, "volume"):  # the space chooses the resampling path
             more += f"|{r.get('space') or ''}"
+        if r.get("native"):  # an fsnative map: its subject's registration
+            more += "|" + "|".join(f.sha256 for f in r["native"].values())
         wanted[r["map_id"]] = _item(r, feature_key(r["sha256"], spec, r["dof"], r["model_mask_sha256"], more),
                                     common.get("projection"))
         dataset_of[r["map_id"]] = r["dataset"]
@@ -1014,7 +1066,8 @@ def _item(r: dict[str, Any], key: str, projection: dict[str, Any] | None = None)
         return os.path.join(root, rel) if rel else None
 
     it = _Item(r["map_id"], at(r["relpath"]), r["sha256"], r["stat"], r["dof"], key, at(r.get("model_mask")),
-               r.get("model_mask_sha256"), r.get("geometry") or "volume", r.get("hemi"), space=r.get("space"))
+               r.get("model_mask_sha256"), r.get("geometry") or "volume", r.get("hemi"), space=r.get("space"),
+               native=r.get("native"), native_missing=r.get("native_missing"))
     if it.geometry == "surface":
         if r.get("hemi") == "R":  # an unpaired right hemisphere
             it.path_r, it.sha256_r, it.mask_path_r, it.mask_sha256_r = it.path, it.sha256, it.mask_path, it.mask_sha256

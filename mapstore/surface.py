@@ -347,7 +347,8 @@ def _bundled_values(name: str) -> np.ndarray | None:
 
 
 def vertex_index(space: str | None, n_source: int, hemi: str, target: SurfaceTarget,
-                 cache: dict[str, Any] | None = None) -> tuple[np.ndarray | None, str]:
+                 cache: dict[str, Any] | None = None, native: MeshFile | None = None
+                 ) -> tuple[np.ndarray | None, str]:
     """For each target vertex of hemisphere ``hemi``, the source vertex that gives its value.
 
     Returns (index or None for the same mesh, the resampling path's name).  Between fsaverage
@@ -356,16 +357,32 @@ def vertex_index(space: str | None, n_source: int, hemi: str, target: SurfaceTar
     needs that space's sphere registered to the target's (``registered_spheres`` of a mesh
     description): nearest vertex on the sphere, the usual method between spherically registered
     meshes (common practice, e.g. FreeSurfer's ``mri_surf2surf`` nearest-neighbour mapping; from
-    memory).  ``cache`` keeps spheres and indices between the maps of a batch.
+    memory).  A map on a subject's own mesh (``fsnative``) goes onto an fsaverage target through
+    that subject's ``sphere.reg`` (``native``: FreeSurfer's registration of the subject's sphere to
+    fsaverage's), nearest vertex by angle.  ``cache`` keeps spheres and indices between the maps of
+    a batch.
     """
     cache = {} if cache is None else cache
     n_target = target.n_left if hemi == "L" else target.n_right
     fam_s, fam_t = space_family(space, n_source), target.family
-    key = f"_vertex_index|{target.grid_id}|{fam_s}|{n_source}|{hemi}"
+    key = f"_vertex_index|{target.grid_id}|{fam_s}|{n_source}|{hemi}|{native.sha256 if native else ''}"
     if key in cache:
         return cache[key]
-    if n_source == n_target and fam_s in (fam_t, None):
-        out: tuple[np.ndarray | None, str] = (None, "surface")
+    if fam_s is not None and fam_s.startswith("fsnative"):
+        if fam_t != "fsaverage":
+            raise FeatureError(f"a map on a subject's own mesh ({space}) goes onto fsaverage meshes only (through "
+                               f"its sphere.reg); the target {target.name} is {target.space}")
+        if native is None:
+            raise FeatureError(f"a map on a subject's own mesh ({space}) needs that subject's FreeSurfer "
+                               "registration: pass subjects_dir (--subjects-dir, the folder of the FreeSurfer "
+                               "subjects, e.g. sourcedata/freesurfer)")
+        src = read_mesh(native)[0]
+        if len(src) != n_source:
+            raise FeatureError(f"{native.path}: {len(src)} vertices, the map {n_source}; give the registration of "
+                               "the subject whose mesh the map is on")
+        out: tuple[np.ndarray | None, str] = (_nearest(src, _sphere(target, hemi, cache)), "nearest-vertex:sphere.reg")
+    elif n_source == n_target and fam_s in (fam_t, None):
+        out = (None, "surface")
     elif fam_s == fam_t == "fsaverage":
         if n_source not in FSAVERAGE_ORDERS or n_target not in FSAVERAGE_ORDERS:
             raise FeatureError(f"a map with {n_source} vertices per hemisphere is not on an fsaverage density "

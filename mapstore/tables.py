@@ -143,6 +143,7 @@ class FeatureSetSpec(_JsonRecord):
     projection: dict[str, Any] | None = None  # surface sets: how volume maps are projected onto the mesh
     parcels: dict[str, Any] | None = None  # parcel sets: the atlas, the reducer and the source set
     sketch: str = "count"  # the rows' sketch directions: count (sparse) or gauss (dense, small sets)
+    subjects_dir: str | None = None  # FreeSurfer subjects whose sphere.reg took fsnative maps onto the mesh
 
     @classmethod
     def read(cls, folder: Path) -> "FeatureSetSpec":

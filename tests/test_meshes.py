@@ -437,3 +437,75 @@ def test_a_described_mesh_set_on_a_dask_cluster_equals_the_local_build(described
     ids = local.map_ids
     assert fs.map_ids == ids
     np.testing.assert_array_equal(fs.matrix(ids), local.matrix(ids))
+
+
+def test_fsnative_maps_go_onto_fsaverage_through_each_subjects_sphere_reg(tmp_path):
+    """fsnative GIFTI pairs (a subject's own mesh), with FreeSurfer sphere.reg files written by nibabel.
+
+    sub-07's mesh is fsaverage5 renumbered (its sphere.reg puts native vertex j at fsaverage5
+    vertex perm[j]): the right answer is the permutation.  sub-08's mesh has 2,562 vertices: scipy's
+    KD-tree by angle (reference library).  sub-09 has no registration: its row fails, naming the file.
+    """
+    from nibabel.freesurfer import write_geometry
+    from nilearn.datasets import load_fsaverage
+    from scipy.spatial import cKDTree
+
+    fsa = load_fsaverage("fsaverage5")["sphere"]
+    rng = np.random.default_rng(21)
+    root, subjects = tmp_path / "study", tmp_path / "freesurfer"
+    root.mkdir()
+    (root / "dataset_description.json").write_text(json.dumps({"Name": "native", "BIDSVersion": "1.9.0",
+                                                               "DatasetType": "derivative"}))
+    perm = {h: rng.permutation(N5) for h in "LR"}
+    values, regs = {}, {}
+    for sub, n in (("07", N5), ("08", 2562), ("09", N5)):
+        values[sub] = {h: rng.normal(size=n) for h in "LR"}
+        for h, part, fs in (("L", "left", "lh"), ("R", "right", "rh")):
+            gifti(root / f"sub-{sub}" / f"sub-{sub}_task-look_hemi-{h}_space-fsnative_contrast-a_stat-t_statmap"
+                  ".func.gii", [values[sub][h]])
+            xyz = np.asarray(fsa.parts[part].coordinates)
+            faces = np.asarray(fsa.parts[part].faces)
+            if sub == "07":
+                reg, tri = xyz[perm[h]], np.argsort(perm[h])[faces]
+            else:  # 2,562 points near fsaverage4's, turned by 2 degrees about z
+                a = np.deg2rad(2.0)
+                rot = np.array([[np.cos(a), -np.sin(a), 0], [np.sin(a), np.cos(a), 0], [0, 0, 1]])
+                reg, tri = xyz[:2562] @ rot.T, faces[(faces < 2562).all(axis=1)]
+            regs[(sub, h)] = reg
+            if sub != "09":
+                (subjects / f"sub-{sub}" / "surf").mkdir(parents=True, exist_ok=True)
+                write_geometry(str(subjects / f"sub-{sub}" / "surf" / f"{fs}.sphere.reg"), reg, tri)
+    store = tmp_path / "store"
+    mapstore.index([root], store, progress=False)
+    rep = mapstore.build_features(store, grid="fsaverage5", mask="all", subjects_dir=subjects, progress=False,
+                                  jobs=1)
+    assert rep.built == 2 and rep.failed == 1
+    assert "sub-09/surf/lh.sphere.reg" in rep.problems[0]["reason"]
+    s = mapstore.open(store)
+    fs = s.features(rep.name)
+
+    def row(sub):
+        (mid,) = s.sql(f"SELECT map_id FROM maps WHERE sub = '{sub}' AND hemi = 'L'").column(0).to_pylist()
+        return fs.matrix([mid])[0]
+
+    want7 = np.concatenate([values["07"][h][np.argsort(perm[h])] for h in "LR"])
+    np.testing.assert_array_equal(row("07"), want7.astype(np.float32))
+    got8 = row("08")
+    for h, part, sl in (("L", "left", slice(0, N5)), ("R", "right", slice(N5, 2 * N5))):
+        reg = regs[("08", h)]
+        target = np.asarray(fsa.parts[part].coordinates)
+        _, idx = cKDTree(reg / np.linalg.norm(reg, axis=1, keepdims=True)).query(
+            target / np.linalg.norm(target, axis=1, keepdims=True))
+        np.testing.assert_array_equal(got8[sl], values["08"][h][idx].astype(np.float32))
+    assert fs.spec["subjects_dir"] == str(subjects)
+    # the registration is part of each row's key: a changed sphere.reg rebuilds that subject's row only
+    write_geometry(str(subjects / "sub-07" / "surf" / "lh.sphere.reg"), regs[("07", "L")] * 1.5,
+                   np.argsort(perm["L"])[np.asarray(fsa.parts["left"].faces)])
+    rep2 = mapstore.build_features(store, grid="fsaverage5", mask="all", subjects_dir=subjects, progress=False,
+                                   jobs=1)
+    assert rep2.built == 1 and rep2.skipped == 1
+    # without the subjects folder the rows fail with the remedy
+    from mapstore.errors import FeatureError
+
+    with pytest.raises(FeatureError, match="every selected map failed .*pass subjects_dir"):
+        mapstore.build_features(store, grid="fsaverage5", mask="all", name="no-reg", progress=False, jobs=1)
