@@ -5,6 +5,8 @@
 
 import sys
 
+import numpy as np
+
 from sklearn.linear_model import LogisticRegression
 from sklearn.model_selection import cross_val_score
 from sklearn.pipeline import make_pipeline

@@ -8,47 +8,47 @@ from __future__ import annotations
 
 from ._version import __version__
 
-from .api import Store, open_store as open  # noqa: A001  (mapstore.open mirrors the builtin on purpose)
-from .catalog import IndexReport, index
+from ._api import Store, open_store as open  # noqa: A001  (mirrors the builtin on purpose)
+from .indexing import IndexReport, index
 from .errors import MapstoreError
-from .export import ExportReport, VerifyReport, verify
+from .select import ExportReport, VerifyReport, verify
 from .features import FeatureReport, FeatureSet, build_features
 from .labels import LabelReport, label_store as label, load_vocabulary
-from .query import Selection
-from .header import HeaderFacts, read_header
+from .select import Selection
+from .formats import HeaderFacts, read_header
 
-_LAZY = {"build_parcels": "parcels", "fit_parcellation": "parcels", "ParcelReducer": "parcels"}
+_LAZY = ("build_parcels", "fit_parcellation", "ParcelReducer")
 
 
 def __getattr__(name: str):
-    # parcels imports scikit-learn: loaded on first use, not with the package
+    # parcel sets import scikit-learn: loaded on first use, not with the package
     if name in _LAZY:
-        import importlib
+        from . import features
 
-        return getattr(importlib.import_module(f".{_LAZY[name]}", __name__), name)
+        return getattr(features, name)
     raise AttributeError(f"module 'mapstore' has no attribute {name!r}")
 
 
-__all__ = sorted([
-    "build_parcels",
-    "fit_parcellation",
-    "ParcelReducer",
-    "ExportReport",
-    "LabelReport",
-    "Selection",
-    "VerifyReport",
-    "label",
-    "load_vocabulary",
-    "verify",
-    "FeatureReport",
-    "FeatureSet",
-    "HeaderFacts",
-    "IndexReport",
-    "MapstoreError",
-    "Store",
+__all__ = [
     "__version__",
     "build_features",
+    "build_parcels",
+    "ExportReport",
+    "FeatureReport",
+    "FeatureSet",
+    "fit_parcellation",
+    "HeaderFacts",
     "index",
+    "IndexReport",
+    "label",
+    "LabelReport",
+    "load_vocabulary",
+    "MapstoreError",
     "open",
+    "ParcelReducer",
     "read_header",
-])
+    "Selection",
+    "Store",
+    "verify",
+    "VerifyReport",
+]

@@ -14,13 +14,14 @@ from pathlib import Path
 import click
 
 from ._version import __version__
-from .api import open_store
-from .catalog import index as run_index
+from ._api import open_store
+from .indexing import index as run_index
 from .check import report_json
 from .demo import make_demo
 from .errors import MapstoreError
-from .export import verify as verify_export
+from .select import verify as verify_export
 from .features import build_features
+from .formats import schema_names, schema_text
 from .labels import label_store
 
 FINDINGS_EXIT = 3  # check found something at --fail-on, or verify found a change (1 is a failure to run)
@@ -182,7 +183,7 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
         try:
             proj = json.loads(projection)
         except ValueError as exc:
-            raise click.BadParameter(f"not JSON ({exc})", param_hint="--projection") from None
+            raise click.BadParameter(f"not JSON ({exc})", param_hint="--projection") from exc
     report = build_features(store, name, grid=grid, mask=mask, method=method, stat=stat,
                             p_sided=p_sided, zero_as_missing=zero_as_missing, background=background,
                             model_maps=model_maps, where=where, projection=proj, volumes=not no_volumes,
@@ -198,7 +199,7 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
 @click.option("--name", help="Name of the parcel set (default: SOURCE-ATLAS).")
 def parcels_cmd(store, atlas, source, name) -> None:
     """Reduce a feature set to one value per parcel of an atlas (a new feature set)."""
-    from .parcels import build_parcels
+    from .features import build_parcels
 
     if "," in atlas and not atlas.startswith("store:"):
         left, right = atlas.split(",", 1)
@@ -212,7 +213,7 @@ def parcels_cmd(store, atlas, source, name) -> None:
 @click.option("--space", help="The mesh's space (default: the folder's name, e.g. fsaverage6).")
 def mesh_cmd(subject_dir, out, space) -> None:
     """Describe a FreeSurfer subject folder's surfaces as a mesh (for --grid or --mesh)."""
-    from .surface import describe_freesurfer, mesh_from_description
+    from .targets import describe_freesurfer, mesh_from_description
 
     path = describe_freesurfer(subject_dir, out, space=space)
     t = mesh_from_description(path)
@@ -278,16 +279,13 @@ def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_cover
 @click.argument("name", required=False)
 def schema_cmd(name) -> None:
     """Print the JSON Schema of a file format (vocabulary, name-rules, origins, maps, ...); no NAME lists them."""
-    from importlib import resources
-
-    folder = resources.files("mapstore").joinpath("json_schemas")
-    names = sorted(p.name[: -len(".schema.json")] for p in folder.iterdir() if p.name.endswith(".schema.json"))
+    names = schema_names()
     if name is None:
         click.echo("\n".join(names))
         return
     if name not in names:
         raise click.BadParameter(f"no schema {name!r}; schemas: {', '.join(names)}", param_hint="NAME")
-    click.echo(folder.joinpath(f"{name}.schema.json").read_text(), nl=False)
+    click.echo(schema_text(name), nl=False)
 
 
 @cli.command("verify")
@@ -387,8 +385,8 @@ def demo_cmd(folder, scale) -> None:
     click.echo("\ncross-study decoding on the cortical surface (every study, the surface one included):")
     click.echo(render_table(_demo_decoder(sout)))
     click.echo("\nchecking the store (grids, space, coverage, stat types, metadata) ...")
-    report = st.check()
-    html_path = report.write_html(base / "check-report.html")
+    report = st.check()  # type: ignore[assignment]
+    html_path = report.write_html(base / "check-report.html")  # type: ignore[attr-defined]
     click.echo(report.summary())
     click.echo(f"report with pictures: {html_path}")
     click.echo(f"\ntry: mapstore sql --store {store} \"SELECT concept, count(*) FROM labels GROUP BY ALL\"")
@@ -435,7 +433,7 @@ def main(argv: list[str] | None = None) -> int:
         return exc.exit_code
     except MapstoreError as exc:
         if getattr(exc, "report", None) is not None:
-            click.echo(exc.report.summary())
+            click.echo(exc.report.summary())  # type: ignore[attr-defined]
         click.echo(f"error: {exc}", err=True)
         return getattr(exc, "exit_code", 1)
     except KeyboardInterrupt:

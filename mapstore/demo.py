@@ -208,8 +208,8 @@ def demo_vocabulary() -> dict:
     """The demo's concept vocabulary: invented concepts, a small hierarchy, and rules."""
     rules = []
     for study in (*STUDIES, *SURFACE_STUDIES):
-        for contrast, concept in study.contrasts.items():
-            rules.append({"task": study.task, "contrast": contrast, "concepts": [concept]})
+        for contrast, concept in study.contrasts.items():  # type: ignore[attr-defined]
+            rules.append({"task": study.task, "contrast": contrast, "concepts": [concept]})  # type: ignore[attr-defined]
     return {
         "vocabulary": "mapstore-demo-concepts",
         "version": "1",
@@ -406,5 +406,5 @@ def make_demo(root: str | os.PathLike[str], *, scale: float = 1.0) -> DemoSummar
     overrides = root / "origins.json"
     _write_json(overrides, {"datasets": {"emberlight": {"lab": "Fernhill Lab", "site": "fernhill-campus"}}})
     every = (*STUDIES, *SURFACE_STUDIES)
-    return DemoSummary(str(root), len(every), len({s.lab for s in every}), n_maps, planted,
+    return DemoSummary(str(root), len(every), len({s.lab for s in every}), n_maps, planted,  # type: ignore[attr-defined]
                        str(vocab), str(rules), str(overrides))

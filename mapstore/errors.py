@@ -11,6 +11,7 @@ from __future__ import annotations
 __all__ = [
     "MapstoreError",
     "ParameterError",
+    "DataFileError",
     "HeaderError",
     "StoreNotFound",
     "NoDatasetsFound",
@@ -19,6 +20,7 @@ __all__ = [
     "StoreCorrupt",
     "StoreUnwritable",
     "StaleSnapshot",
+    "StoreClosed",
     "StoreFull",
     "SchedulerError",
     "QueryError",
@@ -42,6 +44,14 @@ class ParameterError(MapstoreError, ValueError):
     """A public function or CLI option received a value it does not accept."""
 
     exit_code = 2
+
+
+class DataFileError(MapstoreError, ValueError):
+    """A data file (a mesh, a CIFTI template, an atlas) is damaged or not of the kind expected.
+
+    Unlike :class:`ParameterError` (a usage error, exit 2) the command was right and the file
+    is not: exit 1, the message names the file and what would make it usable.
+    """
 
 
 class HeaderError(MapstoreError, ValueError):
@@ -80,6 +90,10 @@ class StoreCorrupt(MapstoreError, OSError):
 
 class StoreFull(MapstoreError, OSError):
     """The store's device is full; the write was undone and the store serves its previous state."""
+
+
+class StoreClosed(MapstoreError, ValueError):
+    """A store opened for reading was closed; open it again."""
 
 
 class StaleSnapshot(MapstoreError, FileNotFoundError):

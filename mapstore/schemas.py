@@ -1,6 +1,6 @@
 """JSON Schemas of the catalog tables and of every file mapstore reads or writes.
 
-The files in ``mapstore/json_schemas/`` (shipped in the wheel; ``mapstore schema NAME`` prints
+The files in the top-level ``schemas/`` folder (shipped in the wheel as ``mapstore/_schemas``; ``mapstore schema NAME`` prints
 one) are generated from this module (``python -m mapstore.schemas``); a test keeps them in sync,
 and the loaders of user files (vocabulary, name rules, origins) validate against them.
 """
@@ -12,9 +12,18 @@ import sys
 from pathlib import Path
 from typing import Any
 
-from . import export, labels
-from .tables import (DATASETS_SCHEMA, FPROBLEMS_SCHEMA, MAPS_SCHEMA, PARTICIPANTS_SCHEMA, PROBLEMS_SCHEMA,
-                     ROWS_SCHEMA, SCHEMA_BASE, arrow_to_json_schema)
+from .labels import json_schemas as _label_schemas
+from .select import json_schemas as _export_schemas
+from .store import (
+    DATASETS_SCHEMA,
+    FPROBLEMS_SCHEMA,
+    MAPS_SCHEMA,
+    PARTICIPANTS_SCHEMA,
+    PROBLEMS_SCHEMA,
+    ROWS_SCHEMA,
+    SCHEMA_BASE,
+    arrow_to_json_schema,
+)
 
 __all__ = ["all_schemas", "write_all"]
 
@@ -252,12 +261,12 @@ def all_schemas() -> dict[str, dict[str, Any]]:
         "type": "object", "required": ["format", "version"],
         "properties": {"format": {"const": "mapstore-store"}, "version": {"type": "integer"}},
     }
-    for stage in (labels, export):  # the stages that define file formats of their own
-        out.update(stage.json_schemas())
+    for stage_schemas in (_label_schemas, _export_schemas):  # stages with file formats of their own
+        out.update(stage_schemas())
     return out
 
 
-SHIPPED = Path(__file__).resolve().parent / "json_schemas"
+SHIPPED = Path(__file__).resolve().parents[1] / "schemas"  # the checkout's folder
 
 
 def write_all(folder: str | Path = SHIPPED) -> list[Path]:

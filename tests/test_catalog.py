@@ -17,7 +17,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import mapstore
-from mapstore.catalog import map_id_for
+from mapstore.indexing._crawl import map_id_for
 from mapstore.errors import ParameterError, QueryError, StoreBusy, StoreNotFound
 
 from .conftest import NIBABEL_DATA, make_derivative, write_json, write_map
@@ -195,7 +195,7 @@ def test_busy_store_fails_fast_and_keeps_old_snapshot(tmp_path):
     head = (store / "HEAD").read_text()
     # a second process holds the writer lock
     proc = subprocess.Popen([sys.executable, "-c", (
-        "import sys, time, pathlib; from mapstore.store import write_lock\n"
+        "import sys, time, pathlib; from mapstore.store._store import write_lock\n"
         f"with write_lock(pathlib.Path({str(store)!r})):\n print('locked', flush=True); time.sleep(30)")],
         stdout=subprocess.PIPE, text=True)
     try:
@@ -261,7 +261,7 @@ def test_crash_mid_index_keeps_the_served_catalog(tmp_path, monkeypatch):
     mapstore.index([tmp_path / "src"], store, progress=False)
     head = (store / "HEAD").read_text()
     before = mapstore.open(store).sql("SELECT * FROM maps ORDER BY map_id")
-    import mapstore.catalog as cat
+    import mapstore.indexing._crawl as cat
 
     def boom(*args, **kwargs):
         raise RuntimeError("simulated crash")

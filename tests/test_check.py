@@ -10,7 +10,7 @@ import numpy as np
 import pytest
 
 import mapstore
-from mapstore.check import png_bytes
+from mapstore.check._check import png_bytes
 from mapstore.cli import main
 
 from .conftest import make_derivative, write_json, write_map
@@ -109,18 +109,18 @@ def labelled_three(demo_store, demo_tree, tmp_path_factory):
 
 
 def test_concepts_agree_across_the_demo_studies(labelled_three):
-    from mapstore.copies import pair_correlation
+    from mapstore.features._copies import pair_correlation
 
     # the quarter-size demo has ~4 maps per study and concept, so its study means are noisy: its
     # concepts agree at r 0.09-0.13 (0.30-0.35 in the full demo); a concept mixing unlike contrasts at -0.03
     st = mapstore.open(labelled_three)
     rep = st.check(features="three", min_agreement=0.05)
     assert not [f for f in rep.findings if f.code == "low-concept-agreement"]
-    summary = rep.tables["concept agreement across studies (mean of each study's standardised maps)"].to_pylist()
+    summary = rep.tables["concept-agreement"].to_pylist()
     assert {r["concept"] for r in summary} == {"arithmetic", "hand-movement", "listening", "reading", "visual-motion"}
     assert all(r["mean_cross_study_r"] >= 0.05 for r in summary)
     # one cell of the study x study table, recomputed with numpy from the rows
-    cell = rep.tables["concept agreement, study x study (r of the study means)"].to_pylist()[0]
+    cell = rep.tables["concept-agreement-pairs"].to_pylist()[0]
     fs = st.features("three")
     ids = {s: [r["map_id"] for r in st.sql(
         f"SELECT l.map_id FROM labels l JOIN maps m USING (map_id) WHERE l.direct AND l.concept = "
@@ -135,7 +135,8 @@ def test_concepts_agree_across_the_demo_studies(labelled_three):
     both = np.isfinite(means[0]) & np.isfinite(means[1])
     assert abs(np.corrcoef(means[0][both], means[1][both])[0, 1] - cell["r_of_means"]) < 1e-3
     assert abs(pair_correlation(means[0], means[1])[0] - cell["r_of_means"]) < 1e-3
-    pics = [k for k in rep.pictures if k.startswith("concept 'reading'")]
+    pics = [k for k in rep.pictures if k == "concept:reading"]
+    assert rep.titles[pics[0]].startswith("concept 'reading'")
     from PIL import Image
     import io
 

@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 import mapstore
-from mapstore.copies import SKETCH_BITS, Sketcher, _estimate, find_copies, pair_correlation
+from mapstore.features._copies import SKETCH_BITS, Sketcher, _estimate, find_copies, pair_correlation
 from mapstore.errors import LeakageError
 
 PLANTED = ("resaved", "flipped", "scaled", "smoothed", "regridded")
@@ -144,7 +144,7 @@ def test_check_reports_the_planted_copies_and_not_the_clean_demo(planted, demo_s
     assert len(found) == 1 and found[0].level == "warning"
     assert found[0].message.startswith("6 maps across studies, different subjects, are copies (|r| up to 1.000, "
                                        "sign-flipped)")
-    table = rep.tables["copies (identical and near-identical maps)"].to_pylist()
+    table = rep.tables["copies"].to_pylist()
     assert len([r for r in table if not r["same_study"]]) >= 5
     clean = tmp_path / "clean"
     shutil.copytree(demo_store, clean)
@@ -162,8 +162,8 @@ def test_pair_correlation_on_common_voxels():
 
 def test_a_small_roi_set_scans_few_candidates_and_finds_the_copies(planted):
     """An 80-voxel set: dense sketch directions, and the scan equals numpy's corrcoef on every pair."""
-    from mapstore.copies import _candidates
-    from mapstore.grid import builtin_grid
+    from mapstore.features._copies import _candidates
+    from mapstore.targets._volume import builtin_grid
 
     grid = builtin_grid("MNI152-3mm")
     roi = np.zeros(grid.shape, bool)

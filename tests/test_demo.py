@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import pytest
+
 import hashlib
 import json
 import shutil
@@ -44,6 +46,7 @@ def test_demo_shape(demo_tree):
     assert nib.load(t_map).shape in {g.shape for g in GRIDS.values()}
 
 
+@pytest.mark.slow
 def test_a_decoder_trained_on_some_studies_predicts_the_others(demo_store, demo_tree, tmp_path):
     from sklearn.linear_model import LogisticRegression
     from sklearn.model_selection import cross_val_score

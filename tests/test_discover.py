@@ -8,7 +8,7 @@ import pytest
 from bids.layout import parse_file_entities
 from bids.layout.models import Config
 
-from mapstore.discover import (
+from mapstore.indexing._discover import (
     EntityParser,
     MetadataOverrides,
     NameRules,
@@ -205,7 +205,7 @@ def test_example_files_are_valid():
     import jsonschema
     import yaml
 
-    from mapstore.labels import load_vocabulary
+    from mapstore.labels._vocabulary import load_vocabulary
     from mapstore.schemas import all_schemas
 
     ex = __import__("pathlib").Path(__file__).resolve().parents[1] / "examples"

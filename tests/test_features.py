@@ -11,8 +11,8 @@ import pytest
 
 import mapstore
 from mapstore.errors import FeatureError, ParameterError
-from mapstore.features import zero_background
-from mapstore.grid import builtin_grid, mni152_brain_mask, read_volume, resample
+from mapstore.targets import zero_background
+from mapstore.targets._volume import builtin_grid, mni152_brain_mask, read_volume, resample
 
 from .conftest import make_derivative, write_json, write_map
 
@@ -171,7 +171,7 @@ def test_z_set_converts_t_and_leaves_out_effect(tmp_path):
     assert set(fs.rows["conversion"].to_pylist()) == {"t->z(dof=25)"}
     # the z values are the source t values mapped through the t(25) -> normal transform, then
     # resampled: the transform is not linear, so it runs before interpolation
-    from mapstore.stats import t_to_z
+    from mapstore.targets._convert import t_to_z
 
     st = mapstore.open(store)
     paths = dict(zip(*st.sql("SELECT m.map_id, d.root || '/' || m.relpath FROM maps m JOIN datasets d "
@@ -227,6 +227,7 @@ def test_reference_image_grid_and_mask_file(tmp_path):
     np.testing.assert_array_equal(fs.matrix([mid])[0], src[10:30, 10:30, 10:30].reshape(-1))
 
 
+@pytest.mark.slow
 def test_dask_local_cluster_matches_local_pool(tmp_path):
     distributed = pytest.importorskip("distributed")
     ds, store = _tree(tmp_path, n=6)
@@ -258,7 +259,7 @@ def test_crash_mid_build_keeps_the_served_set(tmp_path, monkeypatch):
     mapstore.index([tmp_path / "src"], store, progress=False)
     head1 = (store / "HEAD").read_text()
 
-    import mapstore.features as feat
+    import mapstore.targets._volume as feat
 
     def boom(*args, **kwargs):
         raise RuntimeError("simulated crash")

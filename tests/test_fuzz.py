@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+import pytest
+
 import gzip
 import tempfile
 from pathlib import Path
@@ -15,6 +17,8 @@ import mapstore
 from mapstore.errors import MapstoreError
 
 from .conftest import make_derivative
+
+pytestmark = pytest.mark.slow  # CI runs it; pytest -m 'not slow' skips it
 
 
 def _valid(version: int) -> bytes:

@@ -14,11 +14,13 @@ import pytest
 import mapstore
 from mapstore.cli import main
 from mapstore.errors import FeatureError, QueryError
-from mapstore.features import zero_background
-from mapstore.grid import builtin_grid, mni152_brain_mask, read_volume
+from mapstore.targets import zero_background
+from mapstore.targets._volume import builtin_grid, mni152_brain_mask, read_volume
 
 from .conftest import make_derivative, write_json, write_map
 from .glm_writers import fsl_feat_folder, nilearn_outputs, spm_folder
+
+pytestmark = pytest.mark.slow  # CI runs it; pytest -m 'not slow' skips it
 
 
 @pytest.fixture(scope="module")
@@ -213,9 +215,9 @@ def test_p_zero_inside_the_mask_is_clipped_and_p_out_of_range_is_an_error(glm, t
     mapstore.index([copy], store, progress=False)
     r = mapstore.build_features(store, grid="MNI152-3mm", stat="z", where="m.stat = 'p'", progress=False)
     assert r.failed == 1 and r.built == 5  # the six p maps of beta, one of them bad
-    assert r.problems[0]["path"] == str(bad)
+    assert r.problems[0].path == str(bad)
     n_bad = int(glm["beta"].mask.sum())
-    assert r.problems[0]["reason"] == (f"{n_bad} value(s) outside [0, 1] (from {float(data[glm['beta'].mask].min()):g} "
+    assert r.problems[0].reason == (f"{n_bad} value(s) outside [0, 1] (from {float(data[glm['beta'].mask].min()):g} "
                                        f"to {float(data.max()):g}); this is not a p map (a 1 - p or log p map?): "
                                        "rename it or leave it out of z sets")
     clipped = _rows(store, "SELECT m.relpath, f.p_clipped FROM features f JOIN maps m USING (map_id) "

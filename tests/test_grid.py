@@ -11,7 +11,7 @@ from scipy import ndimage
 
 from mapstore.demo import GRIDS
 from mapstore.errors import GridError
-from mapstore.grid import (
+from mapstore.targets._volume import (
     _general,
     _separable,
     _target_to_source,
@@ -204,7 +204,7 @@ def test_grid_and_mask_validation():
         builtin_grid("MNI999")
 
 
-from hypothesis import given, settings  # noqa: E402
+from hypothesis import assume, given, settings  # noqa: E402
 from hypothesis import strategies as st  # noqa: E402
 
 
@@ -217,6 +217,9 @@ def test_nan_semantics_property_against_scipy(scales, signs, shifts, perm, seed)
     # reference: scipy.ndimage.affine_transform (order 1) on the same, NaN-free inputs.
     # A target voxel is NaN exactly when a NaN source voxel has non-zero weight (or it is outside
     # the field of view); every finite value equals scipy's on the zero-filled source.
+    # a shift within ~1e-5 voxel of a whole number takes the exact reindex path (resample's documented
+    # snapping), which scipy does not do: such grids are the reindex test's, not this one's
+    assume(all(d == 0 or d > 1e-4 for d in (abs(s - round(s)) for s in shifts)))
     rng = np.random.default_rng(seed)
     src = rng.standard_normal((9, 10, 11)).astype(np.float32)
     src[rng.random(src.shape) < 0.03] = np.nan

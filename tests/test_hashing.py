@@ -7,7 +7,7 @@ import subprocess
 
 import pytest
 
-from mapstore.hashing import BLOCK, digest_file, sha256_file
+from mapstore.formats._hashing import BLOCK, digest_file, sha256_file
 
 
 @pytest.mark.skipif(shutil.which("sha256sum") is None, reason="coreutils sha256sum missing")
@@ -34,7 +34,7 @@ def test_read_deadline_restarts_on_progress_and_fires_without_it():
 
     import pytest
 
-    from mapstore.hashing import ReadDeadline, ReadTimeout
+    from mapstore.formats._hashing import ReadDeadline, ReadTimeout
 
     with ReadDeadline(0.3) as dl:
         with dl.armed():

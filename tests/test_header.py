@@ -15,7 +15,7 @@ from nibabel.affines import voxel_sizes
 from nibabel.orientations import aff2axcodes
 
 from mapstore.errors import HeaderError
-from mapstore.header import INTENT_NAMES, grid_fingerprint, read_header
+from mapstore.formats._header import INTENT_NAMES, grid_fingerprint, read_header
 
 from .conftest import NIBABEL_DATA
 

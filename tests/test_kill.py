@@ -22,6 +22,8 @@ from mapstore.errors import StoreNotFound
 
 from .conftest import make_derivative, noise_maps, write_json
 
+pytestmark = pytest.mark.slow  # CI runs it; pytest -m 'not slow' skips it
+
 EXPORT_FILES = ("X.npy", "y.npy", "groups.npy", "voxels.npy", "meta.parquet")
 
 

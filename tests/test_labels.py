@@ -10,7 +10,7 @@ import pytest
 
 import mapstore
 from mapstore.errors import VocabularyError
-from mapstore.labels import apply_vocabulary, load_vocabulary
+from mapstore.labels._vocabulary import apply_vocabulary, load_vocabulary
 
 
 def _maps(rows):

@@ -21,7 +21,7 @@ import pytest
 from nibabel.gifti import GiftiDataArray, GiftiImage
 
 import mapstore
-from mapstore.errors import ParameterError
+from mapstore.errors import DataFileError, ParameterError
 
 from .conftest import write_map
 from .test_surfaces import MNI2, N5, brain_models, cifti, gifti, smooth_volume
@@ -43,7 +43,7 @@ def described(tmp_path_factory):
     """fsaverage5 renumbered (space 'perm'): surfaces, cortex, and fsaverage's sphere registered to it."""
     from nilearn.datasets import load_fsaverage
 
-    from mapstore.surface import builtin_surface, cortex_mask
+    from mapstore.targets._surface import builtin_surface, cortex_mask
 
     base = tmp_path_factory.mktemp("mesh")
     fsa = load_fsaverage("fsaverage5")
@@ -121,7 +121,7 @@ def test_description_gives_the_mesh_and_its_cortex(described, perm_set):
     assert fs.geometry == "surface" and fs.grid.name == "perm5" and fs.grid.space == "perm"
     assert fs.grid.n_vertices == 2 * N5 and rep.unit == "vertices"
     # the cortex files are the mask (the builtin medial wall, renumbered)
-    from mapstore.surface import builtin_surface, cortex_mask
+    from mapstore.targets._surface import builtin_surface, cortex_mask
 
     wall = cortex_mask(builtin_surface("fsaverage5"))
     want = np.concatenate([wall[:N5][p["L"]], wall[N5:][p["R"]]])
@@ -138,8 +138,8 @@ def test_maps_of_other_spaces_resample_through_the_registered_sphere(described, 
     rep, fs = perm_set
     p, f = described["perm"], maps["fields"]
     # failed: the fsLR pair only (no fsLR sphere registered to the described space)
-    assert [pr["reason"] for pr in rep.problems if "fsLR" in pr["path"]] and rep.failed == 1
-    assert "registered_spheres" in rep.problems[0]["reason"]
+    assert [pr.reason for pr in rep.problems if "fsLR" in pr.path] and rep.failed == 1
+    assert "registered_spheres" in rep.problems[0].reason
     ok = np.zeros(2 * N5, bool)
     ok[fs.mask_indices] = True
     for like, want in (
@@ -194,7 +194,7 @@ def test_pictures_and_check_run_on_a_described_mesh(described, maps, perm_set):
 
 
 def test_description_errors_name_the_file(described, tmp_path, maps):
-    from mapstore.surface import mesh_from_description
+    from mapstore.targets._surface import mesh_from_description
 
     doc = json.loads(described["desc"].read_text())
     base = described["base"]
@@ -219,7 +219,7 @@ def test_description_errors_name_the_file(described, tmp_path, maps):
         mesh_from_description(write(mixed))
     notmesh = json.loads(json.dumps(doc))
     notmesh["hemispheres"]["L"]["pial"] = doc["hemispheres"]["L"]["cortex"]
-    with pytest.raises(ParameterError, match="POINTSET"):
+    with pytest.raises(DataFileError, match="POINTSET"):  # a damaged file, not a usage error (exit 1)
         mesh_from_description(write(notmesh))
     # no white surface: the volume maps are left out, with the reason
     nowhite = json.loads(json.dumps(doc))
@@ -274,7 +274,7 @@ def test_grayordinate_template_on_a_described_mesh(described, maps, tmp_path):
 
 
 def test_grayordinate_sets_have_pictures(described, maps, tmp_path):
-    from mapstore.check import _grayordinate_views
+    from mapstore.targets._grayordinates import grayordinate_views as _grayordinate_views
 
     ax = brain_models()
     template = cifti(tmp_path / "pic-template.dscalar.nii", np.zeros((1, len(ax))), ax)
@@ -282,9 +282,8 @@ def test_grayordinate_sets_have_pictures(described, maps, tmp_path):
                             progress=False, jobs=1, where="m.space IN ('MNI152NLin2009cAsym', 'fsaverage5')")
     s = mapstore.open(maps["store"])
     report = s.check("grey-pic", pictures=True)
-    (key,) = [k for k in report.pictures if k.startswith("coverage over")]
-    assert "the cortex" in key and "voxels" in key
-    png = report.pictures[key]
+    assert "the cortex" in report.titles["coverage"] and "voxels" in report.titles["coverage"]
+    png = report.pictures["coverage"]
     assert png[:8] == b"\x89PNG\r\n\x1a\n"  # PNG signature (PNG specification, section 5.2)
     # the cortex's four views above, the voxels' three slices below: a row that is 1 on the voxels
     # and NaN on the cortex draws only below the cortex views
@@ -324,7 +323,7 @@ def test_freesurfer_surfaces_label_and_morph_files_describe_a_mesh(maps, tmp_pat
     from nilearn.surface import vol_to_surf
     from scipy.spatial import cKDTree
 
-    from mapstore.surface import builtin_surface, cortex_mask
+    from mapstore.targets._surface import builtin_surface, cortex_mask
 
     fsa = load_fsaverage("fsaverage5")
     wall = cortex_mask(builtin_surface("fsaverage5"))
@@ -357,7 +356,7 @@ def test_freesurfer_surfaces_label_and_morph_files_describe_a_mesh(maps, tmp_pat
     assert rep.failed == 0, rep.problems
     fs = mapstore.open(maps["store"]).features("fs5")
     np.testing.assert_array_equal(fs.mask_indices, np.flatnonzero(wall))  # the labels are the mask
-    from mapstore.surface import sulcal_depth
+    from mapstore.targets._surface import sulcal_depth
 
     np.testing.assert_allclose(sulcal_depth(fs.grid)[:N5], np.linspace(-1, 1, N5), atol=1e-6)
     ok = np.zeros(2 * N5, bool)
@@ -383,7 +382,7 @@ def test_cli_describes_a_freesurfer_subject_folder(tmp_path):
     from nilearn.datasets import load_fsaverage
 
     from mapstore.cli import cli
-    from mapstore.surface import mesh_from_description
+    from mapstore.targets._surface import mesh_from_description
 
     fsa = load_fsaverage("fsaverage5")
     subject = tmp_path / "subjects" / "fsaverage5"
@@ -425,6 +424,7 @@ def test_check_says_when_a_template_cortex_mesh_was_assumed_or_unknown(maps, tmp
     assert "cortex-mesh-assumed" not in found
 
 
+@pytest.mark.slow
 def test_a_described_mesh_set_on_a_dask_cluster_equals_the_local_build(described, maps, perm_set):
     distributed = pytest.importorskip("distributed")
     _, local = perm_set
@@ -480,7 +480,7 @@ def test_fsnative_maps_go_onto_fsaverage_through_each_subjects_sphere_reg(tmp_pa
     rep = mapstore.build_features(store, grid="fsaverage5", mask="all", subjects_dir=subjects, progress=False,
                                   jobs=1)
     assert rep.built == 2 and rep.failed == 1
-    assert "sub-09/surf/lh.sphere.reg" in rep.problems[0]["reason"]
+    assert "sub-09/surf/lh.sphere.reg" in rep.problems[0].reason
     s = mapstore.open(store)
     fs = s.features(rep.name)
 

@@ -147,14 +147,14 @@ def test_fitted_parcellation_is_stored_with_provenance_and_makes_a_set(voxel_sto
     assert prov["maps"] == sel.map_ids and prov["method"] == "kmeans" and prov["feature_set"] == SET
     lab = np.asarray(nib.load(str(path)).dataobj)
     # nilearn's Parcellations on the same rows and mask (reference library): the same partition
-    from mapstore.parcels import _columns_image, _rows_image
+    from mapstore.features._parcels import _columns_image
 
     mask = _columns_image(sel.feature_set, sel.voxels)
     ref = Parcellations(method="kmeans", n_parcels=10, mask=mask, smoothing_fwhm=None, standardize=False,
                         random_state=0)
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
-        ref.fit(_rows_image(sel.X, mask))
+        ref.fit(sel.feature_set.target.samples_image(sel.X, mask))
     m = np.asarray(mask.dataobj) > 0
     a, b = lab[m], np.asarray(ref.labels_img_.dataobj)[m]
     assert len(set(zip(a.tolist(), b.tolist()))) == len(set(a.tolist())) == len(set(b.tolist()))
@@ -165,7 +165,7 @@ def test_fitted_parcellation_is_stored_with_provenance_and_makes_a_set(voxel_sto
 
 
 def test_parcel_sets_check_select_and_export(voxel_store, tmp_path):
-    from mapstore.export import verify
+    from mapstore.select._export import verify
 
     base, store = voxel_store
     if "blocks" not in mapstore.open(store).feature_sets():

@@ -17,7 +17,7 @@ import pyarrow.parquet as pq
 import pytest
 
 import mapstore
-import mapstore.catalog as catalog
+import mapstore.indexing._crawl as catalog
 
 from .conftest import make_derivative, write_json, write_map
 
@@ -155,6 +155,7 @@ def test_a_store_written_before_parts_is_read_and_upgraded(tmp_path):
     assert _rows(store) == want
 
 
+@pytest.mark.slow
 def test_index_on_a_dask_cluster_equals_a_local_run_even_when_a_worker_dies(tmp_path, monkeypatch):
     distributed = pytest.importorskip("distributed")
     root = _tree(tmp_path)

@@ -2,11 +2,15 @@
 
 from __future__ import annotations
 
+import pytest
+
 import os
 import re
 from pathlib import Path
 
 import numpy as np
+
+pytestmark = pytest.mark.slow  # CI runs it; pytest -m 'not slow' skips it
 
 README = Path(__file__).resolve().parents[1] / "README.md"
 

@@ -1,4 +1,4 @@
-"""The shipped schemas (mapstore/json_schemas/) match what the package generates, and validate real files."""
+"""The shipped schemas (the top-level schemas/ folder) match what the package generates, and validate real files."""
 
 from __future__ import annotations
 
@@ -15,7 +15,7 @@ REPO = Path(__file__).resolve().parents[1]
 
 def test_schema_files_in_sync():
     generated = all_schemas()
-    on_disk = {p.name: json.loads(p.read_text()) for p in (REPO / "mapstore" / "json_schemas").glob("*.json")}
+    on_disk = {p.name: json.loads(p.read_text()) for p in (REPO / "schemas").glob("*.json")}
     assert on_disk == generated, "run: python -m mapstore.schemas"
 
 

@@ -7,7 +7,7 @@ import pytest
 from scipy import stats
 
 from mapstore.errors import ConversionError
-from mapstore.stats import convert, p_to_z, t_to_z
+from mapstore.targets._convert import convert, p_to_z, t_to_z
 
 
 @pytest.mark.parametrize("t, df, z", [

@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import subprocess
 import sys
 
@@ -78,7 +79,8 @@ def test_a_reader_of_a_process_that_ended_holds_nothing(tmp_path):
 def test_a_reader_without_a_lease_gets_a_clear_stale_error(tmp_path):
     ds, store, vocab, vocab2 = _tree(tmp_path)
     reader = mapstore.open(store)
-    reader.close()  # as on a read-only store, where no lease can be written
+    for lease in (store / ".readers").glob("*.json"):
+        lease.unlink()  # as on a read-only store, where no lease can be written
     for k in range(2):
         write_map(ds / f"sub-1{k}" / f"sub-1{k}_task-go_contrast-a_stat-t_statmap.nii.gz")
         mapstore.index([ds], store, progress=False)
@@ -169,7 +171,7 @@ def _folder(path, text):
 
 @pytest.mark.parametrize("swap", [True, False])
 def test_replace_dir_leaves_the_new_folder_and_nothing_else(tmp_path, monkeypatch, swap):
-    from mapstore import store as st
+    from mapstore.store import _store as st
 
     if not swap:  # a kernel or file system without RENAME_EXCHANGE: the two-rename path
         monkeypatch.setattr(st, "_exchange", lambda a, b: False)
@@ -185,7 +187,7 @@ def test_replace_dir_never_leaves_the_folder_missing(tmp_path):
     file system swaps folders: renameat2 RENAME_EXCHANGE, Linux >= 3.15)."""
     import threading
 
-    from mapstore import store as st
+    from mapstore.store import _store as st
 
     a, b = _folder(tmp_path / "probe-a", "a"), _folder(tmp_path / "probe-b", "b")
     if not st._exchange(a, b):
@@ -208,3 +210,22 @@ def test_replace_dir_never_leaves_the_folder_missing(tmp_path):
         stop.set()
         t.join()
     assert not missing and (out / "a.txt").read_text() == "200"
+
+
+def test_close_closes_and_refresh_moves_to_the_newest_snapshot(demo_store, demo_tree, tmp_path):
+    from mapstore.errors import StoreClosed
+
+    store = tmp_path / "s"
+    shutil.copytree(demo_store, store)
+    st = mapstore.open(store)
+    assert st.sql("SELECT count(*) AS n FROM labels").to_pylist()[0]["n"] == 0
+    mapstore.label(store, demo_tree / "concepts.json")  # a writer commits while the reader is open
+    assert st.sql("SELECT count(*) AS n FROM labels").to_pylist()[0]["n"] == 0  # still its snapshot
+    assert st.refresh() is st
+    assert st.sql("SELECT count(*) AS n FROM labels").to_pylist()[0]["n"] > 0
+    assert len(list((store / ".readers").glob("*.json"))) == 1  # the old snapshot's lease was let go
+    st.close()
+    assert st.closed and not list((store / ".readers").glob("*.json"))
+    with pytest.raises(StoreClosed, match="closed; open it again"):
+        st.sql("SELECT 1")
+    st.close()  # closing twice is harmless

@@ -18,7 +18,7 @@ from nibabel.gifti import GiftiDataArray, GiftiImage
 
 import mapstore
 from mapstore.errors import HeaderError
-from mapstore.header import FSAVERAGE_VERTICES, GIFTI_INTENTS, expected_vertices, read_surface_header
+from mapstore.formats._header import FSAVERAGE_VERTICES, GIFTI_INTENTS, expected_vertices, read_surface_header
 
 from .conftest import write_map
 from .glm_writers import write_surface_first_level, write_surface_second_level
@@ -332,7 +332,7 @@ def test_surface_selection_export_and_leakage_guard(pooled, tmp_path):
     for train, test in splits:
         assert not set(sel.meta["participant"].iloc[train]) & set(sel.meta["participant"].iloc[test])
     rep = s.export(tmp_path / "out", sel)
-    from mapstore.export import verify
+    from mapstore.select._export import verify
 
     assert verify(Path(rep.out) / "manifest.json").ok
     man = json.loads((Path(rep.out) / "manifest.json").read_text())
@@ -420,7 +420,7 @@ def test_grayordinate_set_pools_cifti_gifti_and_volume_maps(pooled, tmp_path):
 
 
 def test_grayordinates_match_by_structure_and_vertex():
-    from mapstore.grayordinates import match
+    from mapstore.targets._grayordinates import match
 
     full, cortex_only = brain_models(), brain_models(voxels=False)
     t_pos, s_pos = match(cortex_only, full)
@@ -429,7 +429,7 @@ def test_grayordinates_match_by_structure_and_vertex():
 
 
 def test_gifti_values_decode_as_nibabel_reads_them(tmp_path, rng):
-    from mapstore.surface import read_surface_values
+    from mapstore.targets._surface import read_surface_values
 
     vals = rng.normal(size=N5)
     for enc in ("GZipBase64Binary", "Base64Binary", "ASCII"):
@@ -448,7 +448,7 @@ def test_cortex_mask_read_directly_equals_nilearn_loader():
     # nilearn's public loader of its bundled fsaverage5 thickness (reference) gives the same medial wall
     from nilearn.datasets import load_fsaverage_data
 
-    from mapstore.surface import MEDIAL_WALL_THICKNESS, builtin_surface, cortex_mask
+    from mapstore.targets._surface import MEDIAL_WALL_THICKNESS, builtin_surface, cortex_mask
 
     img = load_fsaverage_data(mesh="fsaverage5", mesh_type="pial", data_type="thickness")
     ref = np.concatenate([np.abs(np.asarray(img.data.parts[p])) >= MEDIAL_WALL_THICKNESS for p in ("left", "right")])
@@ -484,13 +484,14 @@ def test_projection_operator_equals_vol_to_surf(shape, affine, depth):
     from nilearn.surface import vol_to_surf
     from scipy import ndimage
 
-    from mapstore.surface import builtin_surface, check_projection, project_volume
+    from mapstore.targets import BatchContext
+    from mapstore.targets._surface import builtin_surface, check_projection, project_volume
 
     fsa = load_fsaverage("fsaverage5")
     target = builtin_surface("fsaverage5")
     rng = np.random.default_rng(len(depth))
     vol = (ndimage.gaussian_filter(rng.normal(size=shape), 2) * 30).astype(np.float32)
-    cache: dict = {}
+    cache = BatchContext()
     for kind in ("depth", "line"):  # line: not the matrix, vol_to_surf itself
         p = check_projection({"kind": kind, "depth": depth} if kind == "depth" else {"kind": "line", "radius": 2})
         for masked in (False, True):
@@ -510,7 +511,7 @@ def test_projection_operator_equals_vol_to_surf(shape, affine, depth):
                                                   interpolation="linear", **kw) for part in ("left", "right")])
             np.testing.assert_array_equal(np.isnan(got), np.isnan(ref))
             np.testing.assert_allclose(got[np.isfinite(ref)], ref[np.isfinite(ref)], rtol=1e-5, atol=1e-5)
-    assert any(k.startswith("_depth_operator") for k in cache)  # built once, used for both masks
+    assert len(cache.operators) == 2  # one per hemisphere: built once, used for both masks
 
 
 def test_nilearn_surface_second_level_outputs(surface_study, tmp_path):

@@ -28,9 +28,9 @@ import pyarrow as pa
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 
-from mapstore.copies import Sketcher  # noqa: E402
-from mapstore.grid import grid_from_spec, mni152_brain_mask  # noqa: E402
-from mapstore.store import ROWS_SCHEMA, write_parquet_atomic  # noqa: E402
+from mapstore.features._copies import Sketcher  # noqa: E402
+from mapstore.targets._volume import grid_from_spec, mni152_brain_mask  # noqa: E402
+from mapstore.store._store import ROWS_SCHEMA, write_parquet_atomic  # noqa: E402
 
 # VmHWM of this process: ru_maxrss would carry over the parent's peak across fork + exec on Linux
 PEAK = """
@@ -43,8 +43,8 @@ def peak_mb():
 SCAN = PEAK + """
 import json, sys, time
 sys.path.insert(0, {root!r})
-from mapstore.features import FeatureSet
-from mapstore.copies import find_copies
+from mapstore.features._build import FeatureSet
+from mapstore.features._copies import find_copies
 from pathlib import Path
 t0 = time.perf_counter()
 fs = FeatureSet(Path({store!r}), "bench", {{"dir": "features/bench", "rows": "features/bench/rows.parquet"}})
@@ -111,7 +111,7 @@ def make_set(folder: Path, n_rows: int, n_copies: int, rng: np.random.Generator)
 
 def exact_r(store: Path, pairs: list[tuple[str, str]]) -> dict:
     """Exact r of the planted pairs (numpy corrcoef on their rows)."""
-    from mapstore.features import FeatureSet
+    from mapstore.features._build import FeatureSet
 
     fs = FeatureSet(store, "bench", {"dir": "features/bench", "rows": "features/bench/rows.parquet"})
     out = {}
@@ -133,7 +133,7 @@ import json, sys, time
 sys.path.insert(0, {str(ROOT)!r})
 import numpy as np
 from pathlib import Path
-from mapstore.features import FeatureSet
+from mapstore.features._build import FeatureSet
 t0 = time.perf_counter()
 fs = FeatureSet(Path({str(store)!r}), "bench", {{"dir": "features/bench", "rows": "features/bench/rows.parquet"}})
 ids = fs.map_ids[:{n}]

@@ -118,7 +118,7 @@ def workload_a(work: Path, n_maps: int, skip_baseline: bool) -> dict:
     t_floor = floor(files)
     # nilearn's template grid and brain mask are derived once per machine and cached (~1.9 s)
     t0 = time.perf_counter()
-    from mapstore.grid import builtin_grid, mni152_brain_mask
+    from mapstore.targets._volume import builtin_grid, mni152_brain_mask
 
     mni152_brain_mask(builtin_grid("MNI152-2mm"))
     print(f"MNI152 grid + mask from the per-machine cache (or made once): {time.perf_counter() - t0:.2f} s")

@@ -76,7 +76,7 @@ def header_parsers(files: list[Path], n: int = 5000) -> tuple[float, float]:
     """
     import io
 
-    from mapstore.header import parse_header
+    from mapstore.formats._header import parse_header
 
     prefixes = [gzip.decompress(f.read_bytes())[:352] for f in files[:n]]
     t0 = time.perf_counter()

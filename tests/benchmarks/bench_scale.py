@@ -123,7 +123,7 @@ def synthetic_catalog(store: Path, n_rows: int, n_datasets: int = 100) -> float:
     import pyarrow.parquet as pq
 
     sys.path.insert(0, str(Path(__file__).resolve().parents[2]))
-    from mapstore.store import (DATASETS_SCHEMA, MAPS_SCHEMA, PROBLEMS_SCHEMA, CatalogManifest, CatalogPart,
+    from mapstore.store._store import (DATASETS_SCHEMA, MAPS_SCHEMA, PROBLEMS_SCHEMA, CatalogManifest, CatalogPart,
                                 Head, commit_head, ensure_store, new_snapshot_id)
 
     t0 = time.perf_counter()
@@ -182,8 +182,8 @@ def synthetic_features(store: Path, n_voxels: int = 100, shard_rows: int = 65536
     import pyarrow as pa
     import pyarrow.parquet as pq
 
-    from mapstore.store import commit_head, read_head
-    from mapstore.tables import ROWS_SCHEMA, FeatureEntry, FeatureSetSpec
+    from mapstore.store._store import commit_head, read_head
+    from mapstore.store._tables import ROWS_SCHEMA, FeatureEntry, FeatureSetSpec
 
     t0 = time.perf_counter()
     head = read_head(store)
@@ -214,7 +214,7 @@ def synthetic_features(store: Path, n_voxels: int = 100, shard_rows: int = 65536
     spec = FeatureSetSpec("synthetic", grid, "synthetic", {"name": "all", "n_voxels": n_voxels, "sha256": "x"},
                           "x", "linear", "native", "one", False, spec_id="synthetic")
     (folder / "set.json").write_text(json.dumps(spec.to_json()))
-    from mapstore.tables import COPIES_SCHEMA
+    from mapstore.store._tables import COPIES_SCHEMA
 
     pq.write_table(COPIES_SCHEMA.empty_table(), folder / "copies-0.parquet")  # random rows: no copies
     head.features["synthetic"] = FeatureEntry("features/synthetic", "features/synthetic/rows-0.parquet",

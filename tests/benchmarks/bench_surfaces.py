@@ -89,7 +89,7 @@ def surface_part(work: Path, n_maps: int, jobs: int) -> None:
                   "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak()}))")
     hand = _child(f"import json, time, glob, numpy as np\nt=time.perf_counter()\n"
                   "from nilearn.surface import load_surf_data\n"
-                  "from mapstore.surface import builtin_surface, cortex_mask\n"
+                  "from mapstore.targets._surface import builtin_surface, cortex_mask\n"
                   "keep = cortex_mask(builtin_surface('fsaverage5'))\n"
                   f"lefts = sorted(glob.glob({str(tree)!r} + '/*/sub-*/*hemi-L*.func.gii'))\n"
                   "rows = [np.concatenate([load_surf_data(p), load_surf_data(p.replace('hemi-L', 'hemi-R'))])[keep]"
@@ -110,7 +110,7 @@ def surface_part(work: Path, n_maps: int, jobs: int) -> None:
 def volume_part(work: Path, n_maps: int, jobs: int) -> None:
     from scipy import ndimage
 
-    from mapstore.grid import builtin_grid
+    from mapstore.targets._volume import builtin_grid
     from tests.conftest import write_map
 
     tree, store = work / "vol-tree", work / "vol-store"
@@ -164,7 +164,7 @@ def volume_part(work: Path, n_maps: int, jobs: int) -> None:
 def parcel_part(work: Path, n_rows: int) -> None:
     import nibabel as nib
 
-    from mapstore.grid import builtin_grid, mni152_brain_mask
+    from mapstore.targets._volume import builtin_grid, mni152_brain_mask
 
     store = work / "parcel-store"
     grid = builtin_grid("MNI152-3mm")

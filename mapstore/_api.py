@@ -1,0 +1,183 @@
+"""The public face of a store: ``mapstore.open(DIR)`` returns a :class:`Store`."""
+
+from __future__ import annotations
+
+import os
+import weakref
+from pathlib import Path
+
+import pyarrow as pa
+
+from .check import CheckReport, check_store
+from .errors import FeatureError, StoreClosed
+from .select import ExportReport, export_selection
+from .features import FeatureSet
+from .labels import refresh_labels
+from .select import Selection, select
+from .store import Catalog, release_lease, take_lease
+
+__all__ = ["Store", "open_store"]
+
+
+class Store:
+    """A mapstore store opened for reading.
+
+    Parameters
+    ----------
+    path : path
+        The store folder written by :func:`mapstore.index`.
+
+    Examples
+    --------
+    >>> import mapstore
+    >>> store = mapstore.open("my-store")                       # doctest: +SKIP
+    >>> store.sql("SELECT stat, count(*) FROM maps GROUP BY stat").to_pandas()  # doctest: +SKIP
+    """
+
+    def __init__(self, path: str | os.PathLike[str]) -> None:
+        self.path: Path = Path(path)
+        self._open()
+
+    def _open(self) -> None:
+        """Read HEAD: the newest snapshot, held by a lease until ``close`` or ``refresh``."""
+        catalog = Catalog(self.path)
+        self.path = catalog.path
+        # a lease keeps this snapshot's files from being collected by writers while the store is open
+        lease = take_lease(self.path, catalog.head) if catalog.head.catalog else None
+        self._finalizer = weakref.finalize(self, _release, catalog, lease)
+        entry = catalog.head.labels
+        if entry and entry.catalog != catalog.head.catalog and entry.copy:
+            # the catalog was re-indexed after labelling: derive labels for it from the stored vocabulary
+            catalog.use_table("labels", refresh_labels(catalog, entry))
+        self._catalog: Catalog | None = catalog
+
+    @property
+    def catalog(self) -> Catalog:
+        if self._catalog is None:
+            raise StoreClosed(f"{self.path}: the store was closed; open it again (mapstore.open)")
+        return self._catalog
+
+    @property
+    def closed(self) -> bool:
+        return self._catalog is None
+
+    def close(self) -> None:
+        """Close the catalog and let writers collect this snapshot's files (also done when the Store is
+        garbage-collected); later calls raise :class:`~mapstore.errors.StoreClosed`."""
+        self._finalizer()
+        self._catalog = None
+
+    def refresh(self) -> "Store":
+        """Move to the store's newest snapshot (what writers committed since this one was opened)."""
+        old = self._finalizer
+        self._open()
+        old()
+        return self
+
+    def __enter__(self) -> "Store":
+        return self
+
+    def __exit__(self, *exc) -> None:
+        self.close()
+
+    def __repr__(self) -> str:
+        return f"Store({str(self.path)!r}, maps={self.sql('SELECT count(*) FROM maps').column(0)[0].as_py()})"
+
+    def sql(self, query: str) -> pa.Table:
+        """Run one read-only SQL query over the catalog views; returns an Arrow table.
+
+        Views: ``maps``, ``datasets``, ``participants``, ``problems``, ``labels``.
+        Call ``.to_pandas()`` on the result for a DataFrame.
+        """
+        return self.catalog.sql(query)
+
+    def table(self, name: str) -> pa.Table:
+        """A whole catalog table as Arrow (``maps``, ``datasets``, ``participants``, ...)."""
+        return self.catalog.table(name)
+
+    def feature_sets(self) -> list[str]:
+        """Names of the feature sets in the store (``SELECT * FROM feature_sets`` for details)."""
+        return sorted(self.catalog.head.features)
+
+    def features(self, name: str | None = None) -> FeatureSet:
+        """A feature set by name; with no name, the default (or only) set."""
+        self.catalog.require_catalog()
+        head = self.catalog.head
+        if name is None:
+            name = head.default_features
+            if name is None:
+                raise FeatureError(f"{self.path}: no feature set yet; run 'mapstore features --store "
+                                   f"{self.path}'")
+        if name not in head.features:
+            raise FeatureError(f"{self.path}: no feature set {name!r}; sets: {self.feature_sets() or 'none'}")
+        return FeatureSet(self.path, name, head.features[name])
+
+    def select(self, where: str | None = None, *, concepts: list[str] | None = None,
+               task: list[str] | None = None, stat: list[str] | None = None, features: str | None = None,
+               min_coverage: float | None = None, target: str = "contrast", group_by: str = "study",
+               with_broader: bool = False, missing: str = "common", min_voxels: int | None = None) -> Selection:
+        """Choose maps for a decoder: returns a :class:`~mapstore.query.Selection`.
+
+        Parameters
+        ----------
+        where : str, optional
+            SQL predicate over ``maps`` joined with participants' columns and a
+            ``concepts`` list of direct labels (e.g. ``"stat = 't' AND age >= 20"`` or
+            ``"list_contains(concepts, 'reading')"``).
+        concepts, task, stat : list of str, optional
+            Keep maps labelled with one of these concepts / of these tasks / stats.
+        features : str, optional
+            Feature set name (default: the store's default set).
+        min_coverage : float, optional
+            Drop maps covering less than this fraction of the mask (reported in ``dropped``).
+        target : {"contrast", "concept", "concepts"} or a maps column, default="contrast"
+            ``concept``: one concept per map (``y``); ``concepts``: multi-label ``Y``.
+        group_by : {"study", "site", "lab", "subject", "dataset"}, default="study"
+        with_broader : bool, default=False
+            Count inherited broader concepts as labels too.
+        missing : {"common", "zero", "keep"}, default="common"
+            Voxels some selected map has no value for: ``common`` keeps only the voxels with a
+            value in every map (``sel.voxels``; ``sel.missing_report`` says how many were
+            dropped), ``zero`` fills 0, ``keep`` leaves NaN (for a pipeline with an imputer,
+            fitted inside each fold).  Nothing is imputed from data across folds.
+        min_voxels : int, optional
+            With ``common``, refuse (naming the maps covering least) when fewer voxels remain;
+            default 1% of the mask.
+
+        Examples
+        --------
+        >>> sel = store.select(concepts=["reading", "listening"], target="concept")  # doctest: +SKIP
+        >>> from sklearn.model_selection import cross_val_score                     # doctest: +SKIP
+        >>> cross_val_score(model, sel.X, sel.y, cv=sel.splits("leave-one-group-out"))  # doctest: +SKIP
+        """
+        return select(self, where, concepts=concepts, task=task, stat=stat, features=features,
+                      min_coverage=min_coverage, target=target, group_by=group_by, with_broader=with_broader,
+                      missing=missing, min_voxels=min_voxels)
+
+    def export(self, out, selection: Selection | None = None, *, scheme: str = "leave-one-group-out",
+               seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False,
+               near_copy_r: float | None = None, **select_options) -> ExportReport:
+        """Export a selection (made from ``select_options`` if not given) with its manifest."""
+        sel = selection if selection is not None else self.select(**select_options)
+        return export_selection(sel, out, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt,
+                                overwrite=overwrite, near_copy_r=near_copy_r)
+
+    def check(self, features: str | None = None, *, min_coverage: float = 0.8,
+              pictures: bool = True, min_agreement: float = 0.2) -> CheckReport:
+        """Grid, space, coverage, stat-type, metadata, copy and concept-agreement findings (mapstore.check)."""
+        return check_store(self, features, min_coverage=min_coverage, pictures=pictures,
+                           min_agreement=min_agreement)
+
+    def to_image(self, vector, name: str | None = None):
+        """A NIfTI image (nibabel) of a feature vector or decoder coefficients on a set's grid."""
+        return self.features(name).to_image(vector)
+
+
+def _release(catalog: Catalog, lease) -> None:
+    catalog.close()
+    release_lease(lease)
+
+
+def open_store(path: str | os.PathLike[str]) -> Store:
+    """Open a store for reading (see :class:`Store`)."""
+    return Store(path)

@@ -1,0 +1,254 @@
+"""A feature set opened for reading: its rows, linked to maps, read straight from the shards."""
+
+from __future__ import annotations
+
+import hashlib
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ..errors import FeatureError
+from ..store import FeatureEntry, FeatureSetSpec
+from ..targets import Target, target_of_set
+from ._copies import SKETCH_BITS, Sketcher
+
+__all__ = ["FeatureSet"]
+
+
+class FeatureSet:
+    """A feature set opened for reading: rows linked to maps, and their vectors.
+
+    Obtained from :meth:`mapstore.Store.features`.
+    """
+
+    def __init__(self, store_path: Path, name: str, entry: FeatureEntry) -> None:
+        self.name = name
+        self.path = store_path / entry.dir
+        self._copies_path = store_path / entry.copies if entry.copies else None
+        self._rows_path = store_path / entry.rows
+        try:
+            self.spec: dict[str, Any] = FeatureSetSpec.read(self.path).to_json()
+            self._rows_file = pq.ParquetFile(self._rows_path)  # the footer only: columns are read when needed
+        except (OSError, ValueError, pa.ArrowException) as exc:
+            raise FeatureError(f"{self.path}: feature set {name!r} is unreadable ({exc})") from exc
+        self.grid: Target = target_of_set(self.spec, self.path)
+        self.geometry: str = self.grid.kind
+        self._indices: np.ndarray | None = None
+        self._shards: dict[str, np.ndarray] = {}
+        self._columns: dict[str, pa.ChunkedArray | None] = {}
+        self._rows: pa.Table | None = None
+        self._pos_map: dict[str, int] | None = None
+
+    @property
+    def rows(self) -> pa.Table:
+        """The whole rows table (every column; prefer the methods, which read only what they need)."""
+        if self._rows is None:
+            self._rows = self._rows_file.read()
+        return self._rows
+
+    def _column(self, name: str) -> pa.ChunkedArray | None:
+        """One column of the rows table (None when the set predates it), read once."""
+        if name not in self._columns:
+            if self._rows is not None:
+                self._columns[name] = self._rows[name] if name in self._rows.column_names else None
+            elif name in self._rows_file.schema_arrow.names:
+                try:
+                    self._columns[name] = self._rows_file.read(columns=[name])[name]
+                except (OSError, pa.ArrowException) as exc:
+                    raise FeatureError(f"{self._rows_path}: unreadable ({exc}); rebuild with 'mapstore "
+                                       f"features --name {self.name}'") from exc
+            else:
+                self._columns[name] = None
+        return self._columns[name]
+
+    @property
+    def _pos(self) -> dict[str, int]:
+        if self._pos_map is None:
+            self._pos_map = {m: i for i, m in enumerate(self._column("map_id").to_pylist())}
+        return self._pos_map
+
+    def __len__(self) -> int:
+        return self._rows_file.metadata.num_rows
+
+    def __repr__(self) -> str:
+        return (f"FeatureSet({self.name!r}, rows={len(self)}, voxels={self.n_voxels}, "
+                f"grid={self.grid.name}, mask={self.spec['mask']['name']})")
+
+    @property
+    def n_voxels(self) -> int:
+        """Features per row (voxels, vertices, grayordinates or parcels: see ``unit``)."""
+        return int(self.spec["mask"]["n_voxels"])
+
+    @property
+    def unit(self) -> str:
+        """What a row's values are: voxels, vertices, grayordinates or parcels."""
+        return self.grid.unit
+
+    @property
+    def map_ids(self) -> list[str]:
+        return self._column("map_id").to_pylist()
+
+    @property
+    def mask_indices(self) -> np.ndarray:
+        if self._indices is None:
+            self._indices = np.load(self.path / "mask.npy")
+        return self._indices
+
+    def _shard(self, name: str) -> np.ndarray:
+        if name not in self._shards:
+            try:
+                self._shards[name] = np.load(self.path / "shards" / name, mmap_mode="r")
+            except OSError as exc:
+                raise FeatureError(f"{self.path / 'shards' / name}: shard unreadable ({exc}); rebuild with "
+                                   f"'mapstore features --name {self.name}'") from exc
+        return self._shards[name]
+
+    def _read_rows(self, shard: str, rows: np.ndarray, out: np.ndarray, dest: np.ndarray) -> None:
+        """Read sorted ``rows`` of a shard into ``out[dest]`` with reads straight into ``out``.
+
+        Reading into the result (rather than copying through numpy) lets the kernel fill
+        fresh pages as it copies, several times faster than faulting them in from Python.
+        """
+        arr = self._shard(shard)  # validates the header; gives shape and data offset
+        if arr.dtype != np.float32 or arr.ndim != 2 or arr.shape[1] != self.n_voxels:
+            raise FeatureError(f"{self.path / 'shards' / shard}: shard has shape {arr.shape} {arr.dtype}, "
+                               f"expected (*, {self.n_voxels}) float32; rebuild the feature set")
+        offset = arr.offset  # type: ignore[attr-defined]
+        row_bytes = self.n_voxels * 4
+        with open(self.path / "shards" / shard, "rb", buffering=0) as fh:
+            i = 0
+            while i < len(rows):
+                j = i + 1  # extend while both the shard rows and their destinations run on
+                while j < len(rows) and rows[j] == rows[j - 1] + 1 and dest[j] == dest[j - 1] + 1:
+                    j += 1
+                fh.seek(offset + int(rows[i]) * row_bytes)
+                view = memoryview(out[dest[i]:dest[i] + (j - i)]).cast("B")  # type: ignore[arg-type]
+                if fh.readinto(view) != len(view):
+                    raise FeatureError(f"{self.path / 'shards' / shard}: shard is truncated; rebuild the "
+                                       "feature set")
+                i = j
+
+    def matrix(self, map_ids=None) -> np.ndarray:
+        """An (n_maps, n_voxels) float32 array of the given maps' rows, in the given order.
+
+        Reads only the requested rows from the shards, straight into the result.
+        """
+        if map_ids is None:
+            map_ids = self.map_ids
+        map_ids = list(map_ids)
+        return self._fill(map_ids, np.empty((len(map_ids), self.n_voxels), dtype=np.float32))
+
+    def locate(self, map_ids) -> tuple[np.ndarray, np.ndarray]:
+        """(shard, row) of each map's row (reads the set's map_id, shard and row columns once)."""
+        map_ids = list(map_ids)
+        missing = [m for m in map_ids if m not in self._pos]
+        if missing:
+            raise FeatureError(f"{len(missing)} map(s) have no row in feature set {self.name!r} (first: "
+                               f"{missing[0]}); build it with 'mapstore features --name {self.name}' or "
+                               "select maps that have rows")
+        pos = np.array([self._pos[m] for m in map_ids], dtype=np.int64)
+        shard_col = self._column("shard").to_numpy()[pos] if len(pos) else np.array([])
+        row_col = self._column("row").to_numpy()[pos] if len(pos) else np.array([], dtype=np.int64)
+        return shard_col, row_col
+
+    def _fill(self, map_ids: list[str], out: np.ndarray) -> np.ndarray:
+        return self.read_at(*self.locate(map_ids), out)
+
+    def read_at(self, shards, rows, out: np.ndarray) -> np.ndarray:
+        """Read the rows at (``shards[i]``, ``rows[i]``) into ``out[i]``: no lookup by map id.
+
+        A selection knows where its rows are (its query joined the ``features`` view), so
+        reading X from a set of a million rows never loads the set's rows table.
+        """
+        shard_col = np.asarray(shards, dtype=object)
+        row_col = np.asarray(rows, dtype=np.int64)
+        for shard in dict.fromkeys(shard_col):
+            sel = np.flatnonzero(shard_col == shard)
+            order = np.argsort(row_col[sel], kind="stable")
+            self._read_rows(shard, row_col[sel][order], out, sel[order])
+        return out
+
+    def read_into(self, map_ids, out: np.ndarray) -> np.ndarray:
+        """Read the rows of ``map_ids`` into ``out[:len(map_ids)]`` (a reusable float32 buffer)."""
+        map_ids = list(map_ids)
+        if out.dtype != np.float32 or out.ndim != 2 or out.shape[1] != self.n_voxels or len(out) < len(map_ids):
+            raise FeatureError(f"buffer must be float32 of shape (>= {len(map_ids)}, {self.n_voxels})")
+        return self._fill(map_ids, out[: len(map_ids)])
+
+    def row_hashes(self, map_ids) -> list[str]:
+        """SHA-256 of each row's float32 bytes, recorded when the row was built."""
+        map_ids = list(map_ids)
+        hashes = self._column("row_sha256")
+        col = hashes.to_pylist() if hashes is not None else [None] * len(self)
+        out = [col[self._pos[m]] for m in map_ids]
+        todo = [i for i, h in enumerate(out) if h is None]  # rows built before hashes were recorded
+        for i, row in zip(todo, self.matrix([map_ids[i] for i in todo])):
+            out[i] = hashlib.sha256(row.tobytes()).hexdigest()
+        return out
+
+    def copies(self) -> pa.Table | None:
+        """Pairs of this set's rows that are copies (``feature_copies``), or None for older sets."""
+        if self._copies_path is None:
+            return None
+        try:
+            return pq.read_table(self._copies_path)
+        except (OSError, pa.ArrowException) as exc:
+            raise FeatureError(f"{self._copies_path}: unreadable ({exc}); rebuild with 'mapstore features "
+                               f"--name {self.name}'") from exc
+
+    def sketches(self, map_ids) -> np.ndarray:
+        """(n, SKETCH_BITS / 8) uint8 sign sketches of rows (:mod:`mapstore.copies`), recorded at build time."""
+        map_ids = list(map_ids)
+        sketches = self._column("sketch")
+        col = sketches.to_pylist() if sketches is not None else [None] * len(self)
+        got = [col[self._pos[m]] for m in map_ids]
+        out = np.zeros((len(map_ids), SKETCH_BITS // 8), dtype=np.uint8)
+        todo = [i for i, g in enumerate(got) if g is None]  # rows built before sketches were recorded
+        for i, g in enumerate(got):
+            if g is not None and len(g) == out.shape[1]:
+                out[i] = np.frombuffer(g, dtype=np.uint8)
+            elif g is not None:
+                todo.append(i)  # a sketch of another size (an earlier version): made again
+        if todo:
+            sk = Sketcher.for_set(self.spec["mask"]["sha256"], self.n_voxels, self.spec.get("sketch", "count"))
+            for k in range(0, len(todo), 64):
+                part = todo[k:k + 64]
+                out[part] = sk.sketch(self.matrix([map_ids[i] for i in part]))
+        return out
+
+    def coverage(self, map_ids=None) -> np.ndarray:
+        """Fraction of mask voxels with a finite value, per map."""
+        cov = self._column("coverage").to_numpy()
+        if map_ids is None:
+            return cov
+        return np.array([cov[self._pos[m]] for m in map_ids])
+
+    @property
+    def target(self) -> Target:
+        """The set's target (a :class:`mapstore.targets.Target`: its kind, geometry, images, pictures)."""
+        return self.grid
+
+    def base(self) -> Target:
+        """The target rows are drawn on (a parcel set's: its source set's)."""
+        return self.grid.base()
+
+    def unmask(self, vector: np.ndarray) -> np.ndarray:
+        """A mask-length vector over every position of the target (NaN outside the mask), in its shape."""
+        v = np.asarray(vector, dtype=np.float32).reshape(-1)
+        if v.size != self.n_voxels:
+            raise FeatureError(f"vector has {v.size} values, feature set {self.name!r} has "
+                               f"{self.n_voxels} mask {self.unit}")
+        return self.grid.full(v, self.mask_indices)
+
+    def on_base(self, vector: np.ndarray) -> np.ndarray:
+        """A row as values over its base's positions (volume-shaped, or both hemispheres' vertices)."""
+        return self.grid.on_base(self.unmask(vector))
+
+    def to_image(self, vector: np.ndarray):
+        """An image of a row (or of a decoder's coefficients): NIfTI (nibabel) on a volume set's grid, a
+        nilearn ``SurfaceImage`` on a surface set's mesh (NaN outside the mask: the medial wall), CIFTI-2
+        on a grayordinate set's template, a parcel set's painted onto its source set's target."""
+        return self.grid.image(self.unmask(vector))

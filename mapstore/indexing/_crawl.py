@@ -1,0 +1,985 @@
+"""Build the catalog: discover -> hash + header -> one atomic catalog snapshot.
+
+Re-indexing is incremental: a map whose size and mtime are unchanged keeps its
+hash and header facts from the previous snapshot; changed files are read again;
+files gone from disk leave the catalog.  A file that cannot be read never stops
+the crawl: it becomes a row of ``problems``.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import errno
+import gc
+import hashlib
+import json
+import math
+import operator
+import os
+import re
+import shutil
+import sys
+import time
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterable
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ._discover import (
+
+    DatasetInfo,
+
+    EntityParser,
+
+    MetadataOverrides,
+
+    ModelFiles,
+
+    NameRules,
+
+    Problem,
+
+    SidecarResolver,
+
+    find_datasets,
+
+    inside,
+
+    read_participants,
+
+    top_folders,
+
+    walk_dataset,
+
+)
+from .._version import __version__
+from .._params import resolve_jobs
+from .._runner import die_once_for_tests, run as run_units
+from ..errors import HeaderError, MapstoreError, NoDatasetsFound, ParameterError, StoreFull
+from ..labels import refresh_labels
+from ..formats import ReadDeadline, ReadTimeout, digest_file
+from ..formats import (
+    NIFTI1_SIZE,
+    NIFTI2_SIZE,
+    HeaderFacts,
+    expected_vertices,
+    header_prefix,
+    parse_header,
+    read_surface_header,
+    surface_format,
+    surface_grid_id,
+)
+from ..store import (
+    DATASETS_SCHEMA,
+    MAPS_SCHEMA,
+    MAPS_SCHEMA_ID,
+    PARTS_DIR,
+    PROBLEMS_SCHEMA,
+    Catalog,
+    CatalogManifest,
+    CatalogPart,
+    Head,
+    commit_head,
+    ensure_store,
+    file_slug,
+    leased_files,
+    new_snapshot_id,
+    read_head,
+    write_json_atomic,
+    write_lock,
+    write_parquet_atomic,
+)
+
+__all__ = ["IndexReport", "index", "map_id_for", "probe_file"]
+
+_N1_SIZES = (NIFTI1_SIZE.to_bytes(4, "little"), NIFTI1_SIZE.to_bytes(4, "big"))
+
+_ENTITY_COLUMNS = ("sub", "ses", "task", "acq", "run", "rec", "space", "res", "den", "hemi", "desc", "contrast",
+                   "stat")
+_HEADER_COLUMNS = ("sha256", "nbytes", "mtime_ns", "nifti_version", "endianness", "shape", "n_volumes",
+                   "dtype", "bitpix", "vox_offset", "scl_slope", "scl_inter", "intent_code",
+                   "intent_name", "intent_p1", "qform_code", "sform_code", "affine_source", "affine",
+                   "voxel_size", "orientation", "grid_id", "descrip", "header_warnings", "geometry",
+                   "n_vertices", "structures")
+
+
+@dataclass
+class IndexReport:
+    """What one ``index`` run did."""
+
+    store: str
+    datasets: int
+    maps: int
+    new: int
+    changed: int
+    unchanged: int
+    removed: int
+    problems: int
+    kept_datasets: int
+    seconds: float
+    problem_codes: dict[str, int] = field(default_factory=dict)
+
+    def summary(self) -> str:
+        rate = (self.new + self.changed) / self.seconds if self.seconds > 0 else 0.0
+        lines = [
+            f"store: {self.store}",
+            f"datasets: {self.datasets}   maps: {self.maps}   "
+            f"(new {self.new}, changed {self.changed}, unchanged {self.unchanged}, removed {self.removed})",
+            f"read {self.new + self.changed} files in {self.seconds:.2f} s ({rate:,.0f} maps/s)",
+        ]
+        if self.kept_datasets:
+            lines.append(f"kept {self.kept_datasets} dataset(s) from earlier runs, not under these roots")
+        if self.problems:
+            codes = ", ".join(f"{k} x{v}" for k, v in sorted(self.problem_codes.items()))
+            lines.append(f"problems: {self.problems} ({codes}); see: mapstore sql --store {self.store} "
+                         "\"SELECT * FROM problems\"")
+        return "\n".join(lines)
+
+
+def map_id_for(dataset_key: str, relpath: str) -> str:
+    """Stable id of a map: a hash of its dataset identity and its path in the dataset."""
+    return hashlib.sha256(f"{dataset_key}\n{relpath}".encode()).hexdigest()[:16]
+
+
+def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None, progress=None
+               ) -> tuple[dict[str, Any], str, int] | Problem:
+    """Hash one file and parse its header from the same read.
+
+    Returns the header columns (shared between files with byte-identical headers
+    through ``cache``; do not modify), the SHA-256 and the size, or a Problem.
+    """
+    try:
+        dig = digest_file(path, progress=progress)
+    except FileNotFoundError:
+        return Problem(path, "missing-file", "file vanished during the crawl", "index again")
+    except OSError as exc:
+        return Problem(path, "unreadable", f"cannot read file ({exc.strerror})", "check permissions")
+    try:
+        prefix = header_prefix(path, dig.head)
+        # maps of one study usually share byte-identical headers: parse each header once
+        key = prefix[:NIFTI1_SIZE] if prefix[:4] in _N1_SIZES else prefix[:NIFTI2_SIZE]
+        cols = cache.get(key) if cache is not None else None
+        if cols is None:
+            facts = parse_header(path, prefix)
+            if not facts.single_file:
+                return Problem(path, "pair-header", "a NIfTI pair header (magic ni1/ni2): the voxels are in a "
+                               "separate .img file", "convert the .hdr/.img pair to a single .nii(.gz) file, "
+                               "for example with nibabel", stage="header")
+            cols = _header_columns(facts)
+            if cache is not None:
+                cache[key] = cols
+    except HeaderError as exc:
+        return Problem(path, exc.code, exc.reason, exc.remedy, stage="header")
+    if not path.endswith(".gz") and dig.nbytes < cols["vox_offset"] + cols["_data_nbytes"]:
+        return Problem(path, "truncated-data",
+                       f"file has {dig.nbytes} bytes, header promises {cols['vox_offset'] + cols['_data_nbytes']}",
+                       "the file was cut short; re-create or re-download it", stage="header")
+    return cols, dig.sha256, dig.nbytes
+
+
+def _header_columns(facts: HeaderFacts) -> dict[str, Any]:
+    return {
+        "nifti_version": facts.nifti_version, "endianness": facts.endianness,
+        "shape": list(facts.shape), "n_volumes": facts.n_volumes, "dtype": facts.dtype,
+        "bitpix": facts.bitpix, "vox_offset": facts.vox_offset,
+        "scl_slope": facts.scl_slope, "scl_inter": facts.scl_inter,
+        "intent_code": facts.intent_code, "intent_name": facts.intent_name,
+        "intent_p1": facts.intent_p1,
+        "qform_code": facts.qform_code, "sform_code": facts.sform_code,
+        "affine_source": facts.affine_source, "affine": list(facts.affine),
+        "voxel_size": list(facts.voxel_size), "orientation": facts.orientation,
+        "grid_id": facts.grid_id, "descrip": facts.descrip, "header_warnings": list(facts.warnings),
+        "_data_nbytes": facts.data_nbytes, "geometry": "volume", "n_vertices": None, "structures": None,
+    }
+
+
+_FSAVERAGE_BY_COUNT = {10 * 4 ** k + 2: f"fsaverage{k}" for k in range(3, 7)} | {163842: "fsaverage"}
+
+
+def _mesh_name(space: str | None, den: str | None, n_vertices: int, fmt: str) -> tuple[str | None, str | None]:
+    """(space, den) naming a GIFTI map's mesh: an fsaverage map named only by its vertex count (nilearn's
+    ``den-10242``, no space) and one named ``space-fsaverage5`` are on the same mesh."""
+    if fmt == "gifti" and n_vertices in _FSAVERAGE_BY_COUNT and (not space or space.startswith("fsaverage")) \
+            and (not den or den == str(n_vertices)):
+        return _FSAVERAGE_BY_COUNT[n_vertices], None
+    return space, den
+
+
+_SIDE = {"CortexLeft": "L", "CortexRight": "R", "CORTEX_LEFT": "L", "CORTEX_RIGHT": "R"}
+
+
+def probe_surface_file(path: str, entities: dict[str, str], progress=None
+                       ) -> tuple[dict[str, Any], str, int] | Problem:
+    """Hash one GIFTI or CIFTI-2 file and read its header facts (no value decoded).
+
+    Returns header columns (with ``_hemi``, the hemisphere the file says it holds), the SHA-256
+    and the size, or a Problem.
+    """
+    try:
+        dig = digest_file(path, progress=progress)
+        facts = read_surface_header(path)
+    except FileNotFoundError:
+        return Problem(path, "missing-file", "file vanished during the crawl", "index again")
+    except HeaderError as exc:
+        return Problem(path, exc.code, exc.reason, exc.remedy, stage="header")
+    except OSError as exc:
+        return Problem(path, "unreadable", f"cannot read file ({exc.strerror})", "check permissions")
+    hemi, space, den = entities.get("hemi"), entities.get("space"), entities.get("den")
+    warnings = list(facts.warnings)
+    side = _SIDE.get(facts.structure or "")
+    if facts.format == "gifti":
+        want = expected_vertices(space, den)
+        if want is not None and facts.n_vertices != want:
+            warnings.append(f"{facts.n_vertices} vertices, but space-{space}{f'_den-{den}' if den else ''} "
+                            f"has {want} per hemisphere")
+        if hemi and side and hemi != side:
+            warnings.append(f"named hemi-{hemi}, but the file says AnatomicalStructurePrimary={facts.structure}")
+        if not hemi and side is None:
+            return Problem(path, "unknown-hemisphere", "a GIFTI map with no hemi entity and no "
+                           "AnatomicalStructurePrimary: its hemisphere is unknown",
+                           "name it with hemi-L or hemi-R (…_hemi-L_space-fsaverage5_…_statmap.func.gii)",
+                           stage="header")
+    cols = {
+        "nifti_version": facts.nifti_version, "endianness": facts.endianness, "shape": list(facts.shape),
+        "n_volumes": facts.n_volumes, "dtype": facts.dtype, "bitpix": facts.bitpix, "vox_offset": facts.vox_offset,
+        "scl_slope": facts.scl_slope, "scl_inter": facts.scl_inter, "intent_code": facts.intent_code,
+        "intent_name": facts.intent_name, "intent_p1": None, "qform_code": None, "sform_code": None,
+        "affine_source": None, "affine": None, "voxel_size": None, "orientation": None,
+        "grid_id": surface_grid_id(facts.geometry_key, *_mesh_name(space, den, facts.n_vertices, facts.format),
+                                   None if facts.format == "cifti" else hemi or side),
+        "descrip": facts.descrip, "header_warnings": warnings,
+        "geometry": "surface" if facts.format == "gifti" else "grayordinates",
+        "n_vertices": facts.n_vertices, "structures": facts.structure, "_hemi": side,
+    }
+    return cols, dig.sha256, dig.nbytes
+
+
+def _to_float(v: Any) -> float | None:
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return None
+    return f
+
+
+def _participants_table(rows: list[dict[str, Any]]) -> pa.Table:
+    """Union of participants columns; a column is numeric when every value parses as a number."""
+    fixed = ["dataset", "participant_id", "sub", "participant"]
+    extra: list[str] = []
+    for r in rows:
+        for k in r:
+            if k not in fixed and k not in extra:
+                extra.append(k)
+    cols: dict[str, pa.Array] = {k: pa.array([r.get(k) for r in rows], pa.string()) for k in fixed}
+    for k in extra:
+        vals = [r.get(k) for r in rows]
+        present = [v for v in vals if v is not None]
+        if present and all(_to_float(v) is not None for v in present):
+            if all(float(v).is_integer() and "." not in str(v) for v in present):
+                cols[k] = pa.array([None if v is None else int(float(v)) for v in vals], pa.int64())
+            else:
+                cols[k] = pa.array([None if v is None else float(v) for v in vals], pa.float64())
+        else:
+            cols[k] = pa.array(vals, pa.string())
+    return pa.table(cols)
+
+
+def _under(path: str, roots: list[Path]) -> bool:
+    return any(inside(path, r) for r in roots)
+
+
+@dataclass
+class _Unit:
+    """One piece of crawl work: a dataset, or some of its top-level folders; it writes one part."""
+
+    ds: DatasetInfo
+    parser: EntityParser
+    top: list[str] | None
+    root_maps: bool
+    by_sub: dict[str, dict[str, Any]]
+    rules: NameRules
+    overrides: MetadataOverrides
+    key: str  # stable across runs while the dataset's top folders stay the same
+    inputs: str  # digest of what the rows depend on beyond the unit's files
+    store: str
+    prev_part: CatalogPart | None = None  # this unit's part in the previous snapshot
+    prev_files: list[str] = field(default_factory=list)  # the dataset's previous parts, for reusing headers
+    read_timeout: float | None = None
+
+
+@dataclass
+class _UnitResult:
+    part: CatalogPart | None  # None: the unit found no maps
+    problems: list[Problem]
+    new: int
+    changed: int
+    unchanged: int
+    reused: bool
+
+
+# problems that may go away without a file changing: a unit that had one is always crawled again
+_NOT_REUSED_LEVEL = "error"
+
+
+def _previous_rows(unit: _Unit) -> pa.Table | None:
+    """Rows of the previous snapshot this unit may reuse (header facts of unchanged files)."""
+    if unit.prev_part is not None and unit.prev_part.schema:
+        files = [os.path.join(unit.store, unit.prev_part.maps)]
+    else:
+        files = unit.prev_files
+    if not files:
+        return None
+    import pyarrow.compute as pc
+
+    cols = ["relpath", "dataset", *_HEADER_COLUMNS]
+    try:
+        t = pa.concat_tables([_read_columns(f, cols) for f in files])
+    except (OSError, pa.ArrowException):
+        return None  # not reusable: the files are read again
+    t = t.filter(pc.equal(t["dataset"], unit.ds.key))
+    geo = t.schema.get_field_index("geometry")
+    t = t.set_column(geo, "geometry", pc.fill_null(t["geometry"], "volume"))  # parts from before surfaces
+    if unit.top is not None and unit.prev_part is None:
+        first = pc.list_element(pc.split_pattern(t["relpath"], "/", max_splits=1), 0)
+        keep = pc.is_in(first, pa.array(unit.top, pa.string()))
+        if unit.root_maps:
+            keep = pc.or_(keep, pc.invert(pc.match_substring(t["relpath"], "/")))
+        t = t.filter(keep)
+    return t
+
+
+def _read_columns(path: str, cols: list[str]) -> pa.Table:
+    """``cols`` of a maps part; columns it predates are null."""
+    f = pq.ParquetFile(path)
+    have = [c for c in cols if c in f.schema_arrow.names]
+    t = f.read(columns=have)
+    fields = {x.name: x for x in MAPS_SCHEMA}
+    return pa.Table.from_arrays([t[c].cast(fields[c].type) if c in have else pa.nulls(t.num_rows, fields[c].type)
+                                 for c in cols], names=cols)
+
+
+_STATIC_HEADER = tuple(c for c in _HEADER_COLUMNS if c not in ("sha256", "nbytes", "mtime_ns"))
+_SIDECAR_COLUMNS = ("metadata", "sidecars")
+# every other maps column is set per row by _RowBuilder.add: a new column is one edit in tables.py
+# plus its value there (a column without one fails the first index loudly)
+_PER_ROW = tuple(f.name for f in MAPS_SCHEMA if f.name not in _STATIC_HEADER and f.name not in _SIDECAR_COLUMNS)
+_ROW_TUPLE = operator.itemgetter(*_PER_ROW)
+
+
+def _run_unit(unit: _Unit) -> _UnitResult:
+    """Crawl one unit and write its part (or keep the previous one when nothing it reads changed).
+
+    Header facts and sidecar metadata repeat across a study's maps, so each distinct
+    value is built once and the columns are gathered with one Arrow ``take``.
+    """
+    with ReadDeadline(unit.read_timeout) as deadline:
+        enabled = gc.isenabled()
+        gc.disable()  # rows are tuples of strings (no cycles); collections over a growing heap cost O(n^2)
+        try:
+            result = _crawl_unit(unit, deadline)
+        finally:
+            if enabled:
+                gc.enable()
+    die_once_for_tests()  # a worker lost after writing its part: the part is an orphan, the unit runs again
+    return result
+
+
+def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
+    fingerprint = hashlib.sha256(unit.inputs.encode())
+    maps, jsons, problems = walk_dataset(unit.ds, unit.parser, unit.rules, unit.top, unit.root_maps, fingerprint)
+    digest = None if unit.rules.rules or any(p.level == _NOT_REUSED_LEVEL for p in problems) \
+        else fingerprint.hexdigest()
+    prev_part = unit.prev_part
+    if digest is not None and prev_part is not None and prev_part.digest == digest and _part_files_exist(unit):
+        return _UnitResult(prev_part, _read_problems(unit.store, prev_part), 0, 0, prev_part.rows, True)
+    rows = _RowBuilder(unit, jsons, problems, deadline)
+    for m in maps:
+        rows.add(m)
+    table = rows.table()
+    problems = rows.all_problems()
+    if any(p.level == _NOT_REUSED_LEVEL for p in problems):
+        digest = None
+    part = _write_part(unit, table, problems, digest)
+    return _UnitResult(part, problems, rows.new, rows.changed, rows.unchanged, False)
+
+
+class _RowBuilder:
+    """The maps rows of one unit, one tuple per map, with repeated values built once.
+
+    Header facts and sidecar metadata repeat across a study's maps: each distinct value is
+    kept once (``headers``, ``sidecars``) and rows point at it (``hidx``, ``sidx``), so the
+    columns are gathered with one Arrow ``take`` at the end.  Unchanged files (same size and
+    mtime as in the previous part) take their hash and header from it.
+    """
+
+    def __init__(self, unit: _Unit, jsons: dict[str, list[str]], problems: list[Problem],
+                 deadline: ReadDeadline) -> None:
+        self.unit, self.ds, self.deadline = unit, unit.ds, deadline
+        self.problems = problems
+        self.resolver = SidecarResolver(unit.ds, jsons, unit.parser)
+        self.model = ModelFiles(unit.ds, jsons, unit.parser)
+        self.prev_table = _previous_rows(unit)
+        pt = self.prev_table
+        self.pcol = {c: pt[c].to_pylist() for c in ("relpath", "nbytes", "mtime_ns", "sha256", "intent_code",
+                                                    "intent_p1", "descrip", "geometry", "structures")
+                     } if pt is not None and pt.num_rows else {}
+        self.prev = {r: i for i, r in enumerate(self.pcol.get("relpath", []))}
+        self.cache: dict[bytes, dict[str, Any]] = {}
+        self.rows: list[tuple] = []
+        self.headers: list[dict[str, Any]] = []
+        self.header_pos: dict[Any, int] = {}
+        self.sidecars: list[dict[str, Any]] = []
+        self.sidecar_pos: dict[tuple, int] = {}
+        self.hidx: list[int] = []
+        self.sidx: list[int] = []
+        self.origins: dict[str | None, dict[str, Any]] = {}
+        self.mask_sha: dict[str, str | None] = {}
+        self.new = self.changed = self.unchanged = 0
+
+    def _header(self, m) -> tuple[dict[str, Any], str, int] | None:
+        """Header columns, sha256 and size of a map (None, with a problem, when it cannot be read)."""
+        pcol = self.pcol
+        old = self.prev.get(m.relpath)
+        if old is not None and pcol["nbytes"][old] == m.nbytes and pcol["mtime_ns"][old] == m.mtime_ns:
+            self.hidx.append(-1 - old)  # a previous row: resolved against the previous table
+            self.unchanged += 1
+            return ({"intent_code": pcol["intent_code"][old], "intent_p1": pcol["intent_p1"][old],
+                     "descrip": pcol["descrip"][old], "geometry": pcol["geometry"][old],
+                     "_hemi": _SIDE.get(pcol["structures"][old] or "")}, pcol["sha256"][old], pcol["nbytes"][old])
+        try:
+            with self.deadline.armed():
+                if surface_format(m.path):
+                    res = probe_surface_file(m.path, m.entities, self.deadline.progress)
+                else:
+                    res = probe_file(m.path, self.cache, self.deadline.progress)
+        except ReadTimeout:
+            res = Problem(m.path, "read-timeout", f"reading the file made no progress for "
+                          f"{self.unit.read_timeout:g} s (a stalled network or FUSE mount, or a file fetched on "
+                          "access?); it was skipped", "make the file readable (fetch it, check the mount), then "
+                          "index again; --read-timeout sets the deadline")
+        if isinstance(res, Problem):
+            self.problems.append(Problem(res.path, res.code, res.reason, res.remedy, res.level, self.ds.key,
+                                         res.stage))
+            return None
+        hdr = res[0]
+        if old is None:
+            self.new += 1
+        else:
+            self.changed += 1
+        key = id(hdr)  # probe_file shares one dict per distinct header
+        pos = self.header_pos.get(key)
+        if pos is None:
+            pos = self.header_pos[key] = len(self.headers)
+            self.headers.append(hdr)
+        self.hidx.append(pos)
+        return res
+
+    def _model_mask(self, m, surface: bool = False) -> tuple[str | None, str | None]:
+        rel = m.extras.get("mask") or self.model.mask_for(m.relpath, m.entities, surface)
+        if rel is not None and rel not in self.mask_sha:
+            self.mask_sha[rel] = _mask_digest(self.ds, rel, self.problems)
+        sha = self.mask_sha.get(rel) if rel else None
+        return (rel, sha) if sha is not None else (None, None)
+
+    def add(self, m) -> None:
+        got = self._header(m)
+        if got is None:
+            return
+        hdr, sha, nbytes = got
+        ds, ents = self.ds, m.entities
+        meta, used, meta_json = self.resolver.resolve_full(m.relpath, ents)
+        skey = (meta_json, *used)
+        spos = self.sidecar_pos.get(skey)
+        if spos is None:
+            spos = self.sidecar_pos[skey] = len(self.sidecars)
+            self.sidecars.append({"metadata": meta_json, "sidecars": used})
+        self.sidx.append(spos)
+        sub = ents.get("sub")
+        origin = self.origins.get(sub)
+        if origin is None:
+            origin = self.origins[sub] = _origin(ds, sub, self.unit.by_sub, self.unit.overrides)
+        lab = origin["lab"]
+        if lab is None and meta.get("InstitutionName") is not None:
+            lab = str(meta["InstitutionName"])
+        volume = hdr.get("geometry") in (None, "volume")
+        # a volume's model mask is a NIfTI, a surface map's a GIFTI of its hemisphere (CIFTI: none)
+        mask_rel, msha = self._model_mask(m, not volume) if hdr.get("geometry") != "grayordinates" else (None, None)
+        dof, dof_source = _degrees_of_freedom(m, meta, used, hdr, self.model, self.problems)
+        get = ents.get
+        row = {c: get(c) for c in _ENTITY_COLUMNS}
+        if not volume and row["hemi"] is None and hdr.get("_hemi"):
+            row["hemi"] = hdr["_hemi"]  # GIFTI's AnatomicalStructurePrimary, where the name has no hemi
+        row.update(
+            map_id=map_id_for(ds.key, m.relpath), dataset=ds.key, relpath=m.relpath,
+            map_kind="contrast" if get("contrast") else "model", suffix=get("suffix"), extension=get("extension"),
+            entities=json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")}, sort_keys=True),
+            named_by=m.named_by, participant=origin["participant"], study=origin["study"], site=origin["site"],
+            lab=lab, sha256=sha, nbytes=nbytes, mtime_ns=m.mtime_ns, dof=dof, dof_source=dof_source,
+            model_mask=mask_rel, model_mask_sha256=msha, linked_map=None)
+        self.rows.append(_ROW_TUPLE(row))
+
+    def table(self) -> pa.Table:
+        # one tuple per row while crawling, transposed into columns once
+        rows = self.rows
+        cols = dict(zip(_PER_ROW, (list(c) for c in zip(*rows)))) if rows else {c: [] for c in _PER_ROW}
+        self.rows = []
+        cols["linked_map"] = link_hemispheres(cols["relpath"], cols["hemi"], cols["map_id"])
+        return _assemble(cols, self.headers, self.hidx, self.sidecars, self.sidx, self.prev_table)
+
+    def all_problems(self) -> list[Problem]:
+        key = self.ds.key
+        return [p if p.dataset else Problem(p.path, p.code, p.reason, p.remedy, p.level, key, p.stage)
+                for p in self.problems + self.resolver.problems]
+
+
+_HEMI_IN_NAME = re.compile(r"(?<=[_/])hemi-[LR](?=_)|^hemi-[LR](?=_)")
+
+
+def link_hemispheres(relpaths: list[str], hemis: list[str | None], map_ids: list[str]) -> list[str | None]:
+    """For each file, the map_id of the other hemisphere of the same map (names equal but for hemi-L/R).
+
+    >>> link_hemispheres(["s/a_hemi-L_x", "s/a_hemi-R_x", "s/b"], ["L", "R", None], ["1", "2", "3"])
+    ['2', '1', None]
+    """
+    by_key: dict[str, dict[str, int]] = {}
+    for i, (rel, hemi) in enumerate(zip(relpaths, hemis)):
+        if hemi in ("L", "R") and _HEMI_IN_NAME.search(rel):
+            by_key.setdefault(_HEMI_IN_NAME.sub("hemi-*", rel), {})[hemi] = i
+    out: list[str | None] = [None] * len(relpaths)
+    for pair in by_key.values():
+        if len(pair) == 2:
+            out[pair["L"]], out[pair["R"]] = map_ids[pair["R"]], map_ids[pair["L"]]
+    return out
+
+
+def _part_files_exist(unit: _Unit) -> bool:
+    """The previous part can be kept only if its files are still there (someone may have deleted them)."""
+    part = unit.prev_part
+    return all(os.path.isfile(os.path.join(unit.store, f)) for f in (part.maps, part.problems) if f)
+
+
+def _part_name(unit: _Unit) -> str:
+    return f"{PARTS_DIR}/{file_slug(unit.ds.key)}-{new_snapshot_id()}"
+
+
+def _write_part(unit: _Unit, table: pa.Table, problems: list[Problem], digest: str | None) -> CatalogPart | None:
+    """Write the unit's maps (sorted by path) and problems as new part files."""
+    if table.num_rows == 0 and not problems:
+        return None
+    base = _part_name(unit)
+    folder = Path(unit.store) / PARTS_DIR
+    folder.mkdir(parents=True, exist_ok=True)
+    table = table.sort_by([("relpath", "ascending")])
+    write_parquet_atomic(table, Path(unit.store) / f"{base}.parquet", row_group_size=_ROW_GROUP)
+    prob = None
+    if problems:
+        prob = f"{base}.problems.parquet"
+        write_parquet_atomic(_problems_table(problems), Path(unit.store) / prob)
+    return CatalogPart(unit.ds.key, unit.key, f"{base}.parquet", table.num_rows, prob, digest)
+
+
+# row groups of this many rows: DuckDB skips a group whose statistics rule it out
+_ROW_GROUP = 32768
+
+
+def _problems_table(problems: list[Problem]) -> pa.Table:
+    return pa.Table.from_pylist([{"path": p.path, "dataset": p.dataset, "code": p.code, "level": p.level,
+                                  "stage": p.stage, "reason": p.reason, "remedy": p.remedy} for p in problems],
+                                schema=PROBLEMS_SCHEMA)
+
+
+def _read_problems(store: str, part: CatalogPart) -> list[Problem]:
+    if not part.problems:
+        return []
+    rows = pq.read_table(os.path.join(store, part.problems)).to_pylist()
+    return [Problem(r["path"], r["code"], r["reason"], r["remedy"], r["level"], r["dataset"], r["stage"])
+            for r in rows]
+
+
+# SPM writes the DOF of a T image into its header description: "SPM{T_[20.0]} - contrast 1: ..."
+_DESCRIP_DOF = re.compile(r"\{T_\[\s*([0-9]+(?:\.[0-9]*)?(?:[eE][+-]?[0-9]+)?)\s*\]\}")
+
+
+def _degrees_of_freedom(m, meta: dict[str, Any], sidecars: list[str], hdr: dict[str, Any], model: ModelFiles,
+                        problems: list[Problem]) -> tuple[float | None, str | None]:
+    """A map's DOF from what the software left, first found wins.
+
+    1. sidecar ``DegreesOfFreedom``; 2. header ``intent_p1`` of a t-test intent (nifti1.h);
+    3. the design matrices beside the map (rows - rank); 4. a header description
+    ``{T_[df]}`` (SPM); 5. a DOF text file named by a name rule (FSL's ``stats/dof``).
+    A value that is not a positive number is a warning naming the file, and the next source
+    is tried.
+    """
+    ds = m.dataset
+    raw = meta.get("DegreesOfFreedom")
+    if raw is not None:
+        dof = _to_float(raw)
+        if dof is not None and dof > 0 and math.isfinite(dof):
+            return dof, "sidecar"
+        where = os.path.join(ds.root, sidecars[-1]) if sidecars else m.path
+        problems.append(Problem(m.path, "bad-dof", f"DegreesOfFreedom {raw!r} (in {where}) is not a positive "
+                                "number; it was ignored", "write the number, e.g. \"DegreesOfFreedom\": 70",
+                                "warning", ds.key))
+    if hdr["intent_code"] == 3 and hdr["intent_p1"] and hdr["intent_p1"] > 0:
+        return float(hdr["intent_p1"]), "header"
+    dof, designs, why = model.design_dof(m.relpath, m.entities)
+    if why:
+        problems.append(Problem(m.path, "bad-design", why, "fix the design matrix (a TSV of numbers with a "
+                                "header row)", "warning", ds.key))
+    if dof is not None:
+        return dof, "design"
+    hit = _DESCRIP_DOF.search(hdr.get("descrip") or "")
+    if hit:
+        return float(hit.group(1)), "descrip"
+    dof_file = m.extras.get("dof_file")
+    if dof_file:
+        path = os.path.join(ds.root, dof_file)
+        try:
+            with open(path, encoding="utf-8") as fh:
+                text = fh.read().strip()
+        except OSError:
+            return None, None
+        dof = _to_float(text)
+        if dof is not None and dof > 0 and math.isfinite(dof):
+            return dof, "dof-file"
+        problems.append(Problem(m.path, "bad-dof", f"the DOF file {path} holds {text[:40]!r}, not a positive "
+                                "number; it was ignored", "write the number alone in the file", "warning", ds.key))
+    return None, None
+
+
+def _mask_digest(ds: DatasetInfo, rel: str, problems: list[Problem]) -> str | None:
+    path = os.path.join(ds.root, rel)
+    try:
+        return digest_file(path).sha256
+    except OSError as exc:
+        problems.append(Problem(path, "unreadable-mask", f"cannot read the model's mask ({exc.strerror}); its "
+                                "maps are used without it", "fix or fetch the mask file", "warning", ds.key))
+        return None
+
+
+def _origin(ds: DatasetInfo, sub: str | None, by_sub: dict[str, dict[str, Any]],
+            over: MetadataOverrides) -> dict[str, Any]:
+    """study, site, lab (None: from each map's sidecar) and participant of one subject."""
+    prow = by_sub.get(sub) if sub is not None else None
+    site = None
+    if prow:
+        for k in ("site", "Site", "site_id"):
+            if prow.get(k) is not None:
+                site = str(prow[k])
+                break
+    base = {"study": ds.study, "site": site, "lab": None}
+    origin = over.apply(ds.key, sub, base)
+    origin["participant"] = origin.get("participant") or (
+        f"{origin['study']}/sub-{sub}" if sub is not None else None)
+    return origin
+
+
+def _assemble(cols: dict[str, list[Any]], headers: list[dict[str, Any]], hidx: list[int],
+              sidecars: list[dict[str, Any]], sidx: list[int], prev: pa.Table | None) -> pa.Table:
+    """Columns in schema order; ``hidx`` >= 0 points into ``headers``, -1 - i at row i of ``prev``."""
+    fields = {f.name: f for f in MAPS_SCHEMA}
+    arrays: dict[str, pa.Array] = {c: pa.array(v, fields[c].type) for c, v in cols.items()}
+    if hidx:
+        hschema = pa.schema([fields[c] for c in _STATIC_HEADER])
+        htab = pa.Table.from_pylist(headers, schema=hschema)
+        if prev is not None and any(i < 0 for i in hidx):
+            htab = pa.concat_tables([htab, prev.select(list(_STATIC_HEADER)).cast(hschema)])
+            hidx = [i if i >= 0 else len(headers) - 1 - i for i in hidx]
+        stab = pa.Table.from_pylist(sidecars, schema=pa.schema([fields[c] for c in _SIDECAR_COLUMNS]))
+        hi = pa.array(hidx, pa.int32())
+        si = pa.array(sidx, pa.int32())
+        for c in _STATIC_HEADER:
+            arrays[c] = htab[c].take(hi).combine_chunks()
+        for c in _SIDECAR_COLUMNS:
+            arrays[c] = stab[c].take(si).combine_chunks()
+    else:
+        for c in _STATIC_HEADER + _SIDECAR_COLUMNS:
+            arrays[c] = pa.array([], fields[c].type)
+    return pa.Table.from_arrays([arrays[f.name] for f in MAPS_SCHEMA], schema=MAPS_SCHEMA)
+
+
+# a unit covers at most this many top-level folders (subjects): parts stay big enough for DuckDB to
+# read few files, and small enough for a worker to hold
+_TOPS_PER_UNIT = 500
+
+
+def _units(ds: DatasetInfo, parser: EntityParser, by_sub: dict[str, dict[str, Any]], rules: NameRules,
+           over: MetadataOverrides, prev: "_Previous", store: Path, split: int, read_timeout: float | None
+           ) -> list[_Unit]:
+    """The units of one dataset: contiguous runs of its top folders (unit 0 also takes root maps).
+
+    Their boundaries depend on the folders alone (and ``split``, raised when there are fewer
+    datasets than workers), so a re-index finds each unit's previous part by its key.
+    """
+    tops = top_folders(ds)
+    n = min(len(tops), max(math.ceil(len(tops) / _TOPS_PER_UNIT), split)) or 1
+    size = math.ceil(len(tops) / n) if tops else 0
+    chunks: list[list[str] | None] = [None] if n == 1 else [tops[i:i + size] for i in range(0, len(tops), size)]
+    inputs = json.dumps([__version__, MAPS_SCHEMA_ID, ds.__dict__, by_sub, over.datasets, over.subjects],
+                        sort_keys=True, default=str)
+    prev_files = prev.files_of(ds.key)
+    units = []
+    for i, top in enumerate(chunks):
+        key = f"{ds.key}|*" if top is None else \
+            f"{ds.key}|{hashlib.sha256(chr(0).join(top).encode()).hexdigest()[:16]}"
+        units.append(_Unit(ds, parser, top, i == 0, by_sub, rules, over, key, inputs, str(store),
+                           prev.by_unit.get(key), prev_files, read_timeout))
+    return units
+
+
+@dataclass
+class _Previous:
+    """What a re-index needs of the last snapshot: its parts list and small tables, never all maps."""
+
+    parts: list[CatalogPart] = field(default_factory=list)
+    datasets: list[dict[str, Any]] = field(default_factory=list)
+    participants: list[dict[str, Any]] = field(default_factory=list)
+    problems: list[dict[str, Any]] = field(default_factory=list)
+    store: Path | None = None
+
+    @property
+    def by_unit(self) -> dict[str, CatalogPart]:
+        return {p.unit: p for p in self.parts if p.unit}
+
+    def files_of(self, dataset: str) -> list[str]:
+        assert self.store is not None or not self.parts
+        return [str(self.store / p.maps) for p in self.parts if p.dataset in (dataset, "")]
+
+    @classmethod
+    def load(cls, store: Path, head: Head) -> "_Previous":
+        if not head.catalog:
+            return cls()
+        # the small tables straight from their files: no view over the parts, which may be damaged
+        # (a re-index is how a damaged store is mended)
+        snap = store / head.catalog
+        tables = {}
+        for name in ("datasets", "participants", "problems"):
+            f = snap / f"{name}.parquet"
+            try:
+                tables[name] = pq.read_table(f).to_pylist() if f.exists() else []
+            except (OSError, pa.ArrowException):
+                tables[name] = []  # unreadable: the crawl rebuilds what it covers
+        try:
+            parts = CatalogManifest.read(store, head.catalog).parts
+        except (OSError, MapstoreError):
+            parts = []
+        return cls(parts, tables["datasets"], tables["participants"], tables["problems"], store)
+
+
+def index(
+    roots: Iterable[str | os.PathLike[str]],
+    store: str | os.PathLike[str],
+    *,
+    rules: str | os.PathLike[str] | list[str | os.PathLike[str]] | None = None,
+    overrides: str | os.PathLike[str] | None = None,
+    jobs: int | None = None,
+    prune: bool = False,
+    progress: bool | None = None,
+    read_timeout: float | None = 60.0,
+    scheduler: Any = None,
+) -> IndexReport:
+    """Crawl derivative datasets and publish a new catalog snapshot in ``store``.
+
+    Parameters
+    ----------
+    roots : iterable of path
+        Derivative datasets, raw datasets holding ``derivatives/``, or folders of them.
+    store : path
+        The store folder (created if missing).  Never inside the roots' datasets.
+    rules : path, preset name, or a list of them, optional
+        Name rules for statistic maps without BIDS ``_statmap`` names: files, or built-in
+        presets (``fsl-feat``, ``spm``).
+    overrides : path, optional
+        A mapping file setting study, site and lab per dataset or subject.
+    jobs : int, optional
+        Processes for crawling, hashing and header reading (default: all cores).
+    prune : bool, default=False
+        Drop datasets indexed by earlier runs that are not under these roots.
+    progress : bool, optional
+        Show a progress bar (default: when standard error is a terminal).
+    read_timeout : float or None, default=60
+        Seconds a file's read may make no progress before the file is skipped as a
+        ``read-timeout`` problem (a stalled mount must not stall the crawl); each block read
+        restarts the deadline; None waits forever.  Enforced in the
+        main thread of the crawling processes (not on Dask workers, whose tasks run in threads).
+    scheduler : dask.distributed.Client or str, optional
+        Send the units of work to this Dask cluster instead of local processes.  Workers must
+        see the datasets and the store at the same paths; each unit writes its own part.
+
+    Returns
+    -------
+    IndexReport
+    """
+    t0 = time.perf_counter()
+    roots = [Path(r).expanduser().absolute() for r in roots]
+    if not roots:
+        raise ParameterError("index needs at least one ROOT folder")
+    jobs = resolve_jobs(jobs)
+    if read_timeout is not None and not (isinstance(read_timeout, (int, float)) and read_timeout > 0):
+        raise ParameterError(f"read_timeout must be a positive number of seconds or None, got {read_timeout!r}")
+    name_rules = NameRules.load(rules)
+    meta_over = MetadataOverrides.load(overrides)
+    store_path = Path(store).expanduser().absolute()
+    datasets, problems = _find(roots, store_path)  # type: ignore[arg-type]
+    store_path = ensure_store(store_path)
+    if progress is None:
+        progress = sys.stderr.isatty()
+    with write_lock(store_path):
+        head = read_head(store_path)
+        prev = _Previous.load(store_path, head)
+        plan = _plan(datasets, prev, roots, prune, name_rules, meta_over, store_path, jobs, scheduler, read_timeout)  # type: ignore[arg-type]
+        problems += plan.problems
+        try:
+            results = list(run_units(_run_unit, plan.units, jobs=jobs, scheduler=scheduler, progress=progress,
+                                     desc="indexing", ordered=True, unit="part"))
+            report = _publish(store_path, head, prev, plan, results, problems, roots)  # type: ignore[arg-type]
+        except OSError as exc:
+            if exc.errno in (errno.ENOSPC, errno.EDQUOT):
+                raise StoreFull(f"{store_path}: no space left on the device (while writing the catalog); the "
+                                "store still serves what it served before. Free space, or move the store, and "
+                                "run the command again") from exc
+            raise
+    report.seconds = time.perf_counter() - t0
+    return report
+
+
+def _find(roots: list[Path], store_path: Path) -> tuple[list[DatasetInfo], list[Problem]]:
+    """The datasets under ``roots``; refuses a store inside one of them."""
+    datasets, problems = find_datasets(roots)
+    if not datasets:
+        why = "; ".join(f"{p.path}: {p.reason}" for p in problems if p.level == "error" or
+                        p.code == "no-derivatives") or "no dataset_description.json or sub-* folders"
+        raise NoDatasetsFound(f"no BIDS derivative dataset found under {', '.join(map(str, roots))} ({why}); "
+                              "give a derivative dataset, a raw dataset with derivatives/, or a folder of them. "
+                              "Nothing was written.")
+    for ds in datasets:
+        if inside(store_path, ds.root):
+            raise ParameterError(f"--store {store_path} lies inside the dataset {ds.root}; keep the store "
+                                 "outside source datasets (mapstore never writes to them)")
+    return datasets, problems
+
+
+@dataclass
+class _Plan:
+    datasets: list[DatasetInfo]
+    units: list[_Unit]
+    kept: list[dict[str, Any]]  # datasets rows of earlier runs kept as they are
+    participants: list[dict[str, Any]]
+    participant_files: dict[str, str | None]
+    problems: list[Problem]
+
+
+def _plan(datasets: list[DatasetInfo], prev: _Previous, roots: list[Path], prune: bool, rules: NameRules,
+          over: MetadataOverrides, store: Path, jobs: int, scheduler: Any, read_timeout: float | None) -> _Plan:
+    """Participants of every dataset, and the units of work (each knowing its previous part)."""
+    found = {d.key for d in datasets}
+    kept = [] if prune else [d for d in prev.datasets if d["dataset"] not in found and not _under(d["root"], roots)]
+    kept_keys = {d["dataset"] for d in kept}
+    participants = [r for r in prev.participants if r["dataset"] in kept_keys]
+    parser = EntityParser()
+    split = 1 if scheduler is None and len(datasets) >= jobs else jobs
+    units: list[_Unit] = []
+    files: dict[str, str | None] = {}
+    problems: list[Problem] = []
+    for ds in datasets:
+        prows, files[ds.key], pprobs = read_participants(ds)
+        problems.extend(pprobs)
+        by_sub: dict[str, dict[str, Any]] = {}
+        for r in prows:
+            pid = r.get("participant_id") or ""
+            sub = pid[4:] if pid.startswith("sub-") else pid
+            rec = {"dataset": ds.key, "participant_id": pid, "sub": sub, "participant": f"{ds.study}/sub-{sub}",
+                   **{k: v for k, v in r.items() if k != "participant_id"}}
+            by_sub[sub] = rec
+            participants.append(rec)
+        units += _units(ds, parser, by_sub, rules, over, prev, store, split, read_timeout)
+    return _Plan(datasets, units, kept, participants, files, problems)
+
+
+def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: list[_UnitResult],
+             problems: list[Problem], roots: list[Path]) -> IndexReport:
+    """Write the snapshot (parts list and small tables) and replace HEAD: the one atomic step."""
+    kept_keys = {d["dataset"] for d in plan.kept}
+    parts = [p for p in prev.parts if p.dataset in kept_keys]
+    if any(p.dataset == "" for p in prev.parts) and kept_keys:  # a store older than parts: split off the kept
+        parts += _split_legacy(store, prev, sorted(kept_keys))
+    for res in results:
+        problems.extend(res.problems)
+        if res.part is not None:
+            parts.append(res.part)
+    n_maps: dict[str, int] = {}
+    for p in parts:
+        n_maps[p.dataset] = n_maps.get(p.dataset, 0) + p.rows
+    ds_rows = list(plan.kept)
+    for ds in plan.datasets:
+        ds_rows.append({
+            "dataset": ds.key, "name": ds.name, "study": ds.study, "root": ds.root,
+            "dataset_type": ds.dataset_type, "generated_by": json.dumps(ds.generated_by),
+            "bids_version": ds.bids_version, "raw_root": ds.raw_root, "raw_name": ds.raw_name,
+            "participants_file": plan.participant_files[ds.key], "n_maps": n_maps.get(ds.key, 0),
+            "description": json.dumps(ds.description, sort_keys=True, default=str),
+        })
+    prob_rows = [r for r in prev.problems if r.get("dataset") in kept_keys]
+    prob_rows += _problems_table(problems).to_pylist()
+    snap = new_snapshot_id()
+    snap_dir = store / "catalog" / snap
+    try:
+        snap_dir.mkdir(parents=True)
+        write_parquet_atomic(pa.Table.from_pylist(ds_rows, schema=DATASETS_SCHEMA), snap_dir / "datasets.parquet")
+        write_parquet_atomic(_participants_table(plan.participants), snap_dir / "participants.parquet")
+        write_parquet_atomic(pa.Table.from_pylist(prob_rows, schema=PROBLEMS_SCHEMA), snap_dir / "problems.parquet")
+        write_json_atomic(snap_dir / CatalogManifest.FILE, CatalogManifest(parts).to_json())
+        head.catalog = f"catalog/{snap}"
+        old_labels = head.labels.table if head.labels else None
+        _relabel(store, head)
+    except OSError:
+        shutil.rmtree(snap_dir, ignore_errors=True)
+        raise
+    total = sum(n_maps.values())
+    commit_head(store, head, {"event": "index", "roots": [str(r) for r in roots], "maps": total, "snapshot": snap})
+    if old_labels and head.labels and old_labels != head.labels.table and \
+            old_labels not in {d.get("labels") for d in leased_files(store)}:
+        (store / old_labels).unlink(missing_ok=True)  # re-derived for the new catalog; no reader holds it
+    codes: dict[str, int] = {}
+    for p in prob_rows:  # type: ignore[assignment]
+        codes[p["code"]] = codes.get(p["code"], 0) + 1  # type: ignore[index]
+    new = sum(r.new for r in results)
+    changed = sum(r.changed for r in results)
+    unchanged = sum(r.unchanged for r in results)
+    before = sum(d.get("n_maps") or 0 for d in prev.datasets if d["dataset"] not in kept_keys)
+    return IndexReport(store=str(store), datasets=len(ds_rows), maps=total, new=new, changed=changed,
+                       unchanged=unchanged, removed=max(0, before - changed - unchanged),
+                       problems=len(prob_rows), kept_datasets=len(plan.kept), seconds=0.0, problem_codes=codes)
+
+
+def _split_legacy(store: Path, prev: _Previous, keys: list[str]) -> list[CatalogPart]:
+    """Parts for datasets kept from a one-file catalog (written before parts existed)."""
+    import pyarrow.compute as pc
+
+    out = []
+    for f in prev.files_of(""):
+        t = pq.read_table(f)
+        for key in keys:
+            sub = t.filter(pc.equal(t["dataset"], key))
+            if sub.num_rows:
+                cols = [sub[c] if c in sub.column_names else pa.nulls(sub.num_rows, fld.type) for c, fld in
+                        ((fld.name, fld) for fld in MAPS_SCHEMA)]
+                sub = pa.Table.from_arrays(cols, schema=MAPS_SCHEMA)
+                name = f"{PARTS_DIR}/kept-{new_snapshot_id()}.parquet"
+                (store / PARTS_DIR).mkdir(parents=True, exist_ok=True)
+                write_parquet_atomic(sub, store / name, row_group_size=_ROW_GROUP)
+                out.append(CatalogPart(key, f"{key}|kept", name, sub.num_rows))
+    return out
+
+
+def _relabel(store: Path, head: Head) -> None:
+    """Labels for the new catalog from the stored vocabulary, so readers never derive them."""
+    entry = head.labels
+    if not entry or not entry.copy:
+        return
+    table = refresh_labels(Catalog(store, head), entry)
+    rel = f"labels/labels-{Path(head.catalog).name}.parquet"
+    write_parquet_atomic(table, store / rel)
+    head.labels = dataclasses.replace(entry, table=rel, catalog=head.catalog)

@@ -1,0 +1,1122 @@
+"""Walk BIDS derivative datasets: find datasets, statistic maps, entities, sidecars.
+
+Nothing here opens a NIfTI file.  Entities are parsed with the patterns of pybids'
+bundled configuration (read once from the installed package), extended with the
+statistical-derivative entities it lacks (``contrast``, ``stat``).  Sidecar
+metadata follows the BIDS inheritance principle: every JSON file in the map's
+folder or a parent folder whose entities are a subset of the map's and whose
+suffix matches applies, the deeper (more specific) overriding the shallower.
+"""
+
+from __future__ import annotations
+
+import csv
+import errno
+import fnmatch
+import hashlib
+import json
+import os
+import re
+import stat
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Iterable
+
+from ..errors import RulesError
+from ..formats import check_user_doc, load_user_file
+from ..store import Problem
+
+__all__ = [
+    "Problem",
+    "DatasetInfo",
+    "MapFile",
+    "EntityParser",
+    "NameRules",
+    "builtin_rules",
+    "MetadataOverrides",
+    "find_datasets",
+    "walk_dataset",
+    "inside",
+    "top_folders",
+    "SidecarResolver",
+    "read_participants",
+    "ModelFiles",
+    "label_problems",
+    "STAT_SUFFIX",
+    "MAP_EXTENSIONS",
+    "split_map_name",
+]
+
+STAT_SUFFIX = "statmap"
+# file extensions of statistic maps: volumes, GIFTI per hemisphere, CIFTI-2 dense scalars (longest first)
+MAP_EXTENSIONS = (".dscalar.nii", ".func.gii", ".shape.gii", ".gii", ".nii.gz", ".nii")
+# files a GLM writer leaves beside its maps: the model's mask and its design matrix
+COMPANION_SUFFIXES = ("_mask.nii.gz", "_mask.nii", "_mask.gii", "_design.tsv")
+# Entities of the statistical-derivatives convention that pybids' bundled config lacks.
+EXTRA_ENTITIES = {
+    "contrast": r"[_/\\]+contrast-([a-zA-Z0-9+]+)",
+    "stat": r"[_/\\]+stat-([a-zA-Z0-9+]+)",
+}
+SKIP_DIRS = {"derivatives", "sourcedata", "code", "stimuli", "log", "logs"}
+
+
+@dataclass
+class DatasetInfo:
+    """One derivative dataset found under an index root."""
+
+    root: str  # absolute path
+    key: str  # stable identity, used in map ids
+    name: str
+    dataset_type: str | None
+    generated_by: list[dict[str, Any]]
+    bids_version: str | None
+    raw_root: str | None
+    raw_name: str | None
+    description: dict[str, Any]
+    source_roots: list[str] = field(default_factory=list)  # local raw datasets named by SourceDatasets
+
+    @property
+    def study(self) -> str:
+        return self.raw_name or self.name
+
+
+@dataclass
+class MapFile:
+    """A statistic map found on disk, before its header or bytes are read."""
+
+    dataset: DatasetInfo
+    relpath: str  # posix, relative to the dataset root
+    path: str  # absolute
+    entities: dict[str, str]
+    nbytes: int
+    mtime_ns: int
+    named_by: str  # "bids" or "rule:<n>"
+    extras: dict[str, str] = field(default_factory=dict)  # from a name rule: mask, dof_file (relpaths)
+
+
+def split_map_name(name: str) -> tuple[str, str] | None:
+    """(stem, extension) of a file name in a statistic-map format, else None.
+
+    >>> split_map_name("sub-01_hemi-L_space-fsaverage5_stat-t_statmap.func.gii")
+    ('sub-01_hemi-L_space-fsaverage5_stat-t_statmap', '.func.gii')
+    """
+    for ext in MAP_EXTENSIONS:
+        if name.endswith(ext):
+            return name[:-len(ext)], ext
+    return None
+
+
+def _short_key(pattern: str) -> str | None:
+    m = re.search(r"([a-zA-Z]+)-\(", pattern)
+    return m.group(1) if m else None
+
+
+class EntityParser:
+    """Entity patterns from pybids' bundled config, compiled once.
+
+    Keys in the result are the BIDS entity keys as written in file names
+    (``sub``, ``ses``, ``task``, ``run``, ``contrast``, ``stat``, ...), plus
+    ``suffix``, ``extension`` and ``datatype``.
+    """
+
+    def __init__(self) -> None:
+        self.patterns: list[tuple[str, str, re.Pattern[str]]] = []
+        for long_name, pattern in self._config_patterns():
+            key = {"suffix": "suffix", "extension": "extension", "datatype": "datatype"}.get(
+                long_name) or _short_key(pattern)
+            if key is None:
+                continue
+            self.patterns.append((long_name, key, re.compile(pattern)))
+        for key, pattern in EXTRA_ENTITIES.items():
+            self.patterns.append((key, key, re.compile(pattern)))
+        self.long_to_short = {ln: k for ln, k, _ in self.patterns}
+        self._fast = [(None if key in ("suffix", "extension", "datatype") else f"{key}-", key, rx)
+                      for _, key, rx in self.patterns]
+        # split() with two groups gives [text, key, value, text, key, value, ..., text]
+        self._varying = re.compile(r"(?<=[_/\\])(contrast|stat)-([a-zA-Z0-9+]+)")
+        self._cache: dict[str, dict[str, str]] = {}
+
+    @staticmethod
+    def _config_patterns() -> list[tuple[str, str]]:
+        # locate pybids' bundled config without importing pybids (its import pulls in
+        # pandas and SQLAlchemy, a third of a second we do not need)
+        import importlib.util
+
+        spec = importlib.util.find_spec("bids")
+        if spec is None or not spec.submodule_search_locations:
+            raise ImportError("mapstore needs pybids (pip install pybids) for its entity definitions")
+        base = Path(list(spec.submodule_search_locations)[0]) / "layout" / "config"
+        out: list[tuple[str, str]] = []
+        for name in ("bids.json", "derivatives.json"):
+            cfg = json.loads((base / name).read_text())
+            for ent in cfg["entities"]:
+                if ent["name"] in ("scans", "fmap", "from", "to", "mode"):
+                    continue  # file-kind markers and transform entities, not map entities
+                out.append((ent["name"], ent["pattern"]))
+        return out
+
+    def parse(self, relpath: str) -> dict[str, str]:
+        """Entities of a path relative to its dataset root (posix separators).
+
+        Files of one folder usually differ only in their contrast and stat labels, so the
+        other entities are parsed once per "name with those two labels blanked" and cached.
+        """
+        parts = self._varying.split("/" + relpath)
+        if len(parts) == 1:
+            return self._parse(relpath)
+        key = "".join(parts[0::3]) + "|" + "".join(parts[1::3])
+        base = self._cache.get(key)
+        if base is None:
+            base = self._parse(relpath)
+            for k in ("contrast", "stat"):
+                base.pop(k, None)
+            if len(self._cache) < 100_000:
+                self._cache[key] = base
+        out = dict(base)
+        for k, v in zip(parts[1::3], parts[2::3]):
+            out.setdefault(k, v)  # first occurrence wins, as in a regex search
+        return out
+
+    def _parse(self, relpath: str) -> dict[str, str]:
+        probe = "/" + relpath
+        out: dict[str, str] = {}
+        for token, key, rx in self._fast:
+            # a key-value entity can only match where its "key-" text occurs
+            if token is None or token in probe:
+                m = rx.search(probe)
+                if m:
+                    out[key] = m.group(1)
+        return out
+
+
+
+
+def builtin_rules() -> dict[str, Path]:
+    """Name-rule presets shipped with mapstore, by name (``--rules fsl-feat``)."""
+    base = Path(__file__).parent / "presets"
+    return {p.stem: p for p in sorted(base.glob("*.yaml"))}
+
+
+@dataclass
+class NameRules:
+    """User rules that name statistic maps whose file names are not BIDS statmap names.
+
+    A rules file (JSON or YAML) holds ``rules``: a list of objects, each with either
+    ``regex`` (a Python regular expression with named groups) or ``template`` (a
+    path with ``{entity}`` placeholders and ``*`` wildcards), matched against the
+    path relative to the dataset root, and optional:
+
+    * ``entities``: fixed entity values; ``datasets``: globs over dataset keys;
+    * ``translate``: per entity, captured value -> entity value (``{stat: {zstat: z}}``);
+    * ``contrast_names``: where the captured contrast number finds its name, either
+      ``{file: TEMPLATE, line: REGEX}`` (a text file; the regex holds ``{contrast}`` and a
+      group ``name``) or ``{file: TEMPLATE, matlab: "SPM.xCon", field: "name"}`` (the
+      number-th element of a struct array in a MATLAB file, read with scipy.io.loadmat);
+    * ``dof_file``: a text file holding the map's degrees of freedom;
+    * ``mask``: the model's mask image.
+
+    TEMPLATEs are paths relative to the dataset root with ``{group}`` placeholders filled
+    from the match.  Groups whose names start with ``_`` are helpers, not entities.
+    Built-in presets (:func:`builtin_rules`) are given by name instead of a path.
+    """
+
+    rules: list[dict[str, Any]] = field(default_factory=list)
+    source: str | None = None
+    _names: dict[str, Any] = field(default_factory=dict, repr=False)  # contrast-name files, read once
+
+    @classmethod
+    def load(cls, paths: str | os.PathLike[str] | Iterable[str | os.PathLike[str]] | None) -> "NameRules":
+        """Rules from files or preset names (one, or several whose rules are tried in order)."""
+        if paths is None:
+            return cls()
+        if isinstance(paths, (str, os.PathLike)):
+            paths = [paths]
+        out = cls()
+        sources = []
+        for path in paths:
+            presets = builtin_rules()
+            if not os.path.exists(path) and str(path) in presets:
+                path = presets[str(path)]
+            elif not os.path.exists(path) and os.sep not in str(path) and "." not in str(path):
+                raise RulesError(f"{path}: no such rules file or built-in preset; presets: "
+                                 f"{', '.join(presets)}")
+            out.rules += cls._load_one(path)
+            sources.append(str(path))
+        out.source = ", ".join(sources)
+        return out
+
+    @staticmethod
+    def _load_one(path: str | os.PathLike[str]) -> list[dict[str, Any]]:
+        f = load_user_file(path, RulesError)
+        check_user_doc(f, "name-rules", RulesError)  # the structure; what a schema cannot say follows
+        compiled = []
+        for i, rule in enumerate(f.doc["rules"]):
+            where = f"{path}: rules[{i}]"
+            if "regex" in rule:
+                try:
+                    rx = re.compile(rule["regex"])
+                except re.error as exc:
+                    raise RulesError(f"{where}: invalid regex ({exc})") from exc
+            else:
+                rx = _template_regex(rule["template"], where)
+            fixed = rule.get("entities", {})
+            names = set(rx.groupindex) | set(fixed)
+            if "stat" not in names:
+                raise RulesError(f"{where}: the rule never sets 'stat'; every map needs a stat "
+                                 "(capture it or fix it in 'entities')")
+            translate = rule.get("translate", {})
+            names_spec = rule.get("contrast_names")
+            if names_spec is not None and "line" in names_spec and "(?P<name>" not in names_spec["line"]:
+                raise RulesError(f"{where}: contrast_names.line needs a group (?P<name>...)")
+            datasets = rule.get("datasets", ["*"])
+            if isinstance(datasets, str):
+                datasets = [datasets]
+            compiled.append({"rx": rx, "entities": dict(fixed), "datasets": list(datasets),
+                             "translate": translate, "contrast_names": names_spec,
+                             "dof_file": rule.get("dof_file"), "mask": rule.get("mask"), "where": where})
+        return compiled
+
+    def match(self, dataset_key: str, relpath: str) -> tuple[int, dict[str, str]] | None:
+        hit = self.match_full(dataset_key, relpath)
+        return None if hit is None else (hit[0], hit[1])
+
+    def match_full(self, dataset_key: str, relpath: str
+                   ) -> tuple[int, dict[str, str], dict[str, str]] | None:
+        """(rule index, entities, all captured groups) of the first rule matching a path."""
+        for i, rule in enumerate(self.rules):
+            if not any(fnmatch.fnmatchcase(dataset_key, g) for g in rule["datasets"]):
+                continue
+            m = rule["rx"].fullmatch(relpath)
+            if m:
+                groups = {k: v for k, v in m.groupdict().items() if v is not None}
+                ents = {k: v for k, v in groups.items() if not k.startswith("_")}
+                for k, table in rule["translate"].items():
+                    if k in ents and ents[k] in table:
+                        ents[k] = table[ents[k]]
+                ents.update(rule["entities"])
+                return i, ents, groups
+        return None
+
+    def extras(self, root: str, index: int, groups: dict[str, str], entities: dict[str, str],
+               path: str, dataset: str) -> tuple[dict[str, str], list[Problem]]:
+        """The rule's companions of one map: contrast name (set in ``entities``), mask, DOF file."""
+        rule = self.rules[index]
+        out: dict[str, str] = {}
+        problems: list[Problem] = []
+
+        def fill(template: str) -> str:
+            try:
+                return os.path.normpath(template.format(**groups)).replace(os.sep, "/")
+            except (KeyError, IndexError, ValueError) as exc:
+                raise RulesError(f"{rule['where']}: template {template!r} names a group the regex "
+                                 f"does not have ({exc})") from exc
+
+        for key in ("mask", "dof_file"):
+            if rule[key]:
+                rel = fill(rule[key])
+                if is_regular(os.path.join(root, rel)):
+                    out[key] = rel
+        spec = rule["contrast_names"]
+        if spec and "contrast" in entities:
+            number = entities["contrast"]
+            rel = fill(spec["file"])
+            name, why = self._contrast_name(os.path.join(root, rel), spec, number)
+            if name:
+                entities["contrast"] = name
+                entities["contrast_number"] = number
+            else:
+                problems.append(Problem(path, "contrast-name-not-found", f"contrast {number}: {why}; the "
+                                        "number is used as the contrast label", "keep the model's contrast "
+                                        "file beside its maps", "warning", dataset))
+        return out, problems
+
+    def _contrast_name(self, path: str, spec: dict[str, Any], number: str) -> tuple[str | None, str]:
+        key = path + "|" + spec.get("matlab", "") + "|" + spec.get("field", "")
+        if key not in self._names:
+            self._names[key] = _read_names_file(path, spec)
+        table, why = self._names[key]
+        if why:
+            return None, why
+        try:
+            n = int(number)
+        except ValueError:
+            return None, f"{number!r} is not a contrast number"
+        if "line" in spec:
+            rx = re.compile(spec["line"].replace("{contrast}", str(n)), re.M)
+            m = rx.search(table)
+            return (m.group("name").strip(), "") if m else (None, f"no line for it in {path}")
+        if 1 <= n <= len(table) and table[n - 1]:
+            return str(table[n - 1]).strip(), ""
+        return None, f"{path} lists {len(table)} contrast(s)"
+
+
+def _read_names_file(path: str, spec: dict[str, Any]) -> tuple[Any, str]:
+    """The text of a contrast-name file or the names of a MATLAB struct array, and why not."""
+    if os.path.exists(path) and not is_regular(path):
+        return None, f"{path} is not a regular file (not opened)"
+    if "line" in spec:
+        try:
+            with open(path, encoding="utf-8", errors="replace") as fh:
+                return fh.read(), ""
+        except OSError as exc:
+            return None, f"cannot read {path} ({exc.strerror})"
+    try:
+        from scipy.io import loadmat
+
+        doc = loadmat(path, simplify_cells=True)
+    except FileNotFoundError:
+        return None, f"{path} is missing"
+    except NotImplementedError:
+        return None, f"{path} is a MATLAB v7.3 (HDF5) file; save it with -v7 to have its contrast names read"
+    except (OSError, ValueError, TypeError) as exc:
+        return None, f"cannot read {path} ({exc})"
+    node: Any = doc
+    for part in spec["matlab"].split("."):
+        node = node.get(part) if isinstance(node, dict) else None
+        if node is None:
+            return None, f"{path} has no {spec['matlab']}"
+    items = list(node) if isinstance(node, (list, tuple)) or hasattr(node, "tolist") else [node]
+    field_ = spec.get("field", "name")
+    return [it.get(field_) if isinstance(it, dict) else None for it in items], ""
+
+
+def _template_regex(template: str, where: str) -> re.Pattern[str]:
+    parts = re.split(r"(\{[a-zA-Z]+\}|\*\*|\*)", template)
+    out = []
+    for p in parts:
+        if p.startswith("{") and p.endswith("}"):
+            out.append(f"(?P<{p[1:-1]}>[a-zA-Z0-9+]+)")
+        elif p == "**":
+            out.append(".*")
+        elif p == "*":
+            out.append("[^/]*")
+        else:
+            out.append(re.escape(p))
+    try:
+        return re.compile("".join(out))
+    except re.error as exc:
+        raise RulesError(f"{where}: invalid template ({exc})") from exc
+
+
+@dataclass
+class MetadataOverrides:
+    """User mapping of datasets (and dataset-qualified subjects) to study, site and lab.
+
+    File format (JSON or YAML)::
+
+        datasets:
+          "<dataset key or glob>": {study: ..., site: ..., lab: ...}
+        subjects:
+          "<dataset key>/sub-<label>": {site: ..., lab: ..., participant: "<study>/sub-<label>"}
+
+    ``participant`` declares that a subject is a person already known under another
+    study's id (the leakage guard then keeps both on one side of every split).
+    """
+
+    datasets: dict[str, dict[str, str]] = field(default_factory=dict)
+    subjects: dict[str, dict[str, str]] = field(default_factory=dict)
+    source: str | None = None
+
+    @classmethod
+    def load(cls, path: str | os.PathLike[str] | None) -> "MetadataOverrides":
+        if path is None:
+            return cls()
+        f = load_user_file(path, RulesError)
+        check_user_doc(f, "origins", RulesError)
+        out = cls(source=str(path))
+        for section in ("datasets", "subjects"):
+            for key, val in (f.doc.get(section) or {}).items():
+                getattr(out, section)[str(key)] = {k: str(v) for k, v in val.items()}
+        return out
+
+    def apply(self, dataset_key: str, sub: str | None, values: dict[str, Any]) -> dict[str, Any]:
+        out = dict(values)
+        for pattern, over in self.datasets.items():
+            if fnmatch.fnmatchcase(dataset_key, pattern):
+                out.update(over)
+        if sub is not None:
+            over = self.subjects.get(f"{dataset_key}/sub-{sub}")
+            if over:
+                out.update(over)
+        return out
+
+
+def _slug(text: str) -> str:
+    s = re.sub(r"[^A-Za-z0-9._-]+", "-", text.strip()).strip("-")
+    return s or "unnamed"
+
+
+def _read_description(root: Path) -> tuple[dict[str, Any] | None, Problem | None]:
+    f = root / "dataset_description.json"
+    if not f.exists():
+        return None, None
+    if not is_regular(f):
+        return {}, Problem(str(f), "not-a-regular-file", "dataset_description.json is not a regular file; it was "
+                           "not opened", "replace it with the JSON file itself", "warning")
+    try:
+        doc = json.loads(f.read_text(encoding="utf-8"))
+        if not isinstance(doc, dict):
+            raise ValueError("top level is not an object")
+        return doc, None
+    except (ValueError, OSError) as exc:
+        return {}, Problem(str(f), "bad-dataset-description", f"cannot parse JSON ({exc})",
+                           "fix the JSON syntax of dataset_description.json", "warning")
+
+
+def _looks_like_dataset(path: Path) -> bool:
+    try:
+        return any(e.name.startswith("sub-") and e.is_dir() for e in os.scandir(path))
+    except OSError:
+        return False
+
+
+def _source_raw(root: Path, desc: dict[str, Any]) -> tuple[Path, dict] | None:
+    """The first local dataset named by ``SourceDatasets`` (a relative path or a file: URL)."""
+    sources = desc.get("SourceDatasets")
+    if not isinstance(sources, list):
+        return None
+    for src in sources:
+        url = src.get("URL") if isinstance(src, dict) else src if isinstance(src, str) else None
+        if not isinstance(url, str) or not url.strip():
+            continue
+        url = url.strip()
+        if url.startswith("file://"):
+            cand = Path(url[len("file://"):])
+        elif "://" in url or url.startswith(("doi:", "bids:")):
+            continue  # remote: nothing local to read
+        else:
+            cand = root / url
+        cand = Path(os.path.normpath(cand))
+        if (cand / "dataset_description.json").is_file():
+            sdesc, _ = _read_description(cand)
+            return cand, sdesc or {}
+    return None
+
+
+def _enclosing_raw(root: Path) -> tuple[Path, dict] | None:
+    """The raw dataset whose ``derivatives/`` folder holds ``root`` (at any depth), if any."""
+    for parent in root.parents:
+        if parent.name == "derivatives" and (parent.parent / "dataset_description.json").is_file():
+            desc, _ = _read_description(parent.parent)
+            if desc is not None and desc.get("DatasetType") != "derivative":
+                return parent.parent, desc
+    return None
+
+
+def _make_dataset(root: Path, desc: dict[str, Any] | None, raw: tuple[Path, dict] | None,
+                  problems: list[Problem] | None = None) -> DatasetInfo:
+    described = desc is not None
+    desc = desc or {}
+    generated = desc.get("GeneratedBy")
+    if not generated and isinstance(desc.get("PipelineDescription"), dict):
+        generated = [desc["PipelineDescription"]]  # older BIDS derivative descriptions
+    if isinstance(generated, dict):
+        generated = [generated]
+    name = str(desc.get("Name") or "").strip() or root.name
+    if described and not str(desc.get("Name") or "").strip() and problems is not None:
+        problems.append(Problem(str(root / "dataset_description.json"), "no-dataset-name",
+                                f"dataset_description.json has no Name; the dataset is named after its "
+                                f"folder, {root.name!r}",
+                                "add a \"Name\" to dataset_description.json (the key of its maps follows it)",
+                                "warning"))
+    sources: list[str] = []
+    if raw is None:
+        raw = _enclosing_raw(root)
+    src = _source_raw(root, desc)
+    if src is not None:
+        sources.append(str(src[0]))
+        if raw is None and src[1].get("DatasetType") != "derivative":
+            raw = src
+    raw_name = None
+    if raw is not None:
+        raw_name = str(raw[1].get("Name") or raw[0].name)
+        key = f"{_slug(raw_name)}/{_slug(name)}"
+    else:
+        key = _slug(name)
+    return DatasetInfo(
+        root=str(root), key=key, name=name,
+        dataset_type=desc.get("DatasetType"),
+        generated_by=list(generated or []),
+        bids_version=desc.get("BIDSVersion"),
+        raw_root=str(raw[0]) if raw else None, raw_name=raw_name,
+        description=desc, source_roots=sources,
+    )
+
+
+def find_datasets(roots: Iterable[str | os.PathLike[str]], max_depth: int = 4
+                  ) -> tuple[list[DatasetInfo], list[Problem]]:
+    """Find every derivative dataset under the given roots.
+
+    A root may be a derivative dataset, a raw dataset holding ``derivatives/``
+    (nested derivative datasets are found too), or a folder of such datasets.
+    Dataset keys are made unique: two different folders with the same names get
+    a short hash of their path appended, with a warning.
+    """
+    finder = _DatasetFinder(max_depth)
+    for root in roots:
+        p = Path(root).expanduser().absolute()
+        if not p.exists():
+            finder.problems.append(Problem(str(p), "missing-root", "the folder to index does not exist",
+                                           "check the path"))
+            continue
+        if not p.is_dir():
+            finder.problems.append(Problem(str(p), "root-not-folder", "expected a folder, got a file",
+                                           "give the dataset folder, not a file in it"))
+            continue
+        before = len(finder.found)
+        finder.visit(p, 0, None)
+        if len(finder.found) == before and not any(pr.path.startswith(str(p)) for pr in finder.problems):
+            finder.problems.append(Problem(str(p), "no-datasets", "no BIDS derivative dataset found",
+                                           "point at a derivative dataset, a raw dataset with derivatives/, "
+                                           "or a folder holding them"))
+    found = finder.found
+    # a raw dataset without derivatives/ is expected when a derivative names it in SourceDatasets
+    sourced = {str(Path(r).resolve()) for ds in found for r in ds.source_roots}
+    problems = [p for p in finder.problems
+                if not (p.code == "no-derivatives" and str(Path(p.path).resolve()) in sourced)]
+    return found, problems + _unique_keys(found)
+
+
+def _unique_keys(found: list[DatasetInfo]) -> list[Problem]:
+    """Give datasets that share a key a short hash of their path (a warning each)."""
+    counts: dict[str, int] = {}
+    for ds in found:
+        counts[ds.key] = counts.get(ds.key, 0) + 1
+    problems = []
+    for ds in found:
+        if counts[ds.key] > 1:
+            old = ds.key
+            ds.key = f"{old}~{hashlib.sha256(ds.root.encode()).hexdigest()[:6]}"
+            problems.append(Problem(ds.root, "dataset-name-clash",
+                                    f"several datasets are named {old!r}; this one is keyed {ds.key!r}",
+                                    "give each dataset a distinct Name in dataset_description.json",
+                                    "warning", ds.key))
+    return problems
+
+
+class _DatasetFinder:
+    """The walk of :func:`find_datasets`: raw datasets, their derivatives, folders of datasets."""
+
+    def __init__(self, max_depth: int) -> None:
+        self.max_depth = max_depth
+        self.found: list[DatasetInfo] = []
+        self.problems: list[Problem] = []
+        self.seen: set[str] = set()
+
+    def visit(self, path: Path, depth: int, raw: tuple[Path, dict] | None) -> None:
+        real = str(path.resolve())
+        if real in self.seen:
+            return
+        desc, prob = _read_description(path)
+        if prob:
+            self.problems.append(prob)
+        if desc is not None:
+            self.seen.add(real)
+            dtype = desc.get("DatasetType")
+            is_raw = dtype == "raw" or (dtype is None and (path / "derivatives").is_dir() and raw is None)
+            if is_raw and raw is None:
+                self._raw(path, desc)
+            else:
+                self._derivative(path, desc, dtype, raw)
+            return
+        if _looks_like_dataset(path):
+            self.seen.add(real)
+            self.problems.append(Problem(str(path), "missing-dataset-description",
+                                         "folder holds sub-* folders but no dataset_description.json; "
+                                         "indexed under its folder name",
+                                         "add dataset_description.json with DatasetType \"derivative\" "
+                                         "and GeneratedBy", "warning"))
+            self.found.append(_make_dataset(path, None, raw, self.problems))
+            return
+        if depth >= self.max_depth:
+            return
+        try:
+            children = sorted(p for p in path.iterdir() if p.is_dir() and not p.name.startswith("."))
+        except OSError as exc:
+            self.problems.append(Problem(str(path), "unreadable-folder", f"cannot list folder ({exc.strerror})",
+                                         "check permissions"))
+            return
+        for child in children:
+            self.visit(child, depth + 1, raw)
+
+    def _raw(self, path: Path, desc: dict[str, Any]) -> None:
+        deriv = path / "derivatives"
+        if not deriv.is_dir():
+            self.problems.append(Problem(str(path), "no-derivatives", "raw BIDS dataset with no derivatives/ folder",
+                                         "index the derivative dataset that holds the statistic maps", "warning"))
+            return
+        for child in sorted(deriv.iterdir()):
+            if child.is_dir() and not child.name.startswith("."):
+                self.visit(child, 0, (path, desc))
+
+    def _derivative(self, path: Path, desc: dict[str, Any], dtype: Any, raw: tuple[Path, dict] | None) -> None:
+        if dtype not in (None, "derivative"):
+            self.problems.append(Problem(str(path / "dataset_description.json"), "unexpected-dataset-type",
+                                         f"DatasetType is {dtype!r}, expected 'derivative'",
+                                         "set DatasetType to \"derivative\"", "warning"))
+        elif dtype is None:
+            self.problems.append(Problem(str(path / "dataset_description.json"), "no-dataset-type",
+                                         "dataset_description.json has no DatasetType",
+                                         "add \"DatasetType\": \"derivative\" and GeneratedBy", "warning"))
+        self.found.append(_make_dataset(path, desc, raw, self.problems))
+        # derivative datasets may nest further derivatives
+        deriv = path / "derivatives"
+        if deriv.is_dir():
+            for child in sorted(deriv.iterdir()):
+                if child.is_dir():
+                    self.visit(child, 0, raw)
+
+
+def inside(path: str | os.PathLike[str], folder: str | os.PathLike[str]) -> bool:
+    """True when ``path`` is ``folder`` or lies under it (both absolute; no file is touched)."""
+    p, f = Path(path), Path(folder)
+    return p == f or f in p.parents
+
+
+def top_folders(ds: DatasetInfo) -> list[str]:
+    """The dataset's top-level folders that a walk descends into."""
+    try:
+        return sorted(e.name for e in os.scandir(ds.root)
+                      if e.is_dir() and not e.name.startswith(".") and e.name not in SKIP_DIRS)
+    except OSError:
+        return []
+
+
+def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
+                 top: Iterable[str] | None = None, root_maps: bool = True, fingerprint: Any = None
+                 ) -> tuple[list[MapFile], dict[str, list[str]], list[Problem]]:
+    """List the statistic maps and JSON sidecars of one dataset (or of part of it).
+
+    Returns the maps, a mapping of folder (relative, posix, "" for the root) to
+    the JSON file names in it, and problems (dangling links, names that look
+    like statistic maps but lack entities).  ``top`` limits the walk to some
+    top-level folders and ``root_maps`` says whether maps lying in the root
+    count; root-level sidecars are always collected, as inheritance needs them.
+    ``fingerprint`` (a hashlib object) is fed the path, size and mtime of every map, sidecar
+    and model file found: equal digests mean the walk found the same files unchanged.
+    """
+    w = _Walk(ds, parser, rules, root_maps, fingerprint)
+    only = None if top is None else set(top)
+    stack = [""]
+    while stack:
+        rel = stack.pop()
+        folder = os.path.join(ds.root, rel) if rel else ds.root
+        try:
+            entries = list(os.scandir(folder))
+        except OSError as exc:
+            w.problems.append(Problem(folder, "unreadable-folder", f"cannot list folder ({exc.strerror})",
+                                      "check permissions", "error", ds.key))
+            continue
+        for e in entries:
+            name = e.name
+            if name.startswith("."):
+                continue
+            relpath = f"{rel}/{name}" if rel else name
+            try:
+                is_dir = e.is_dir()
+            except OSError:
+                is_dir = False
+            if is_dir and name.endswith(MAP_EXTENSIONS) and "_stat-" in name:
+                w.problems.append(Problem(e.path, "not-a-regular-file", "a folder named like a statistic map; it "
+                                          "was not opened", "rename the folder, or put the map file itself here",
+                                          "error", ds.key))
+            elif is_dir:
+                if rel or (name not in SKIP_DIRS and (only is None or name in only)):
+                    stack.append(relpath)
+            elif name.endswith(".json") or name.endswith(COMPANION_SUFFIXES):
+                w.companion(e, rel, relpath)
+            elif name.endswith(MAP_EXTENSIONS) and (rel or root_maps):
+                w.map(e, relpath)
+    w.maps.sort(key=lambda m: m.relpath)
+    if fingerprint is not None:
+        fingerprint.update("".join(f"{m.relpath}\0{m.nbytes}\0{m.mtime_ns}\n" for m in w.maps).encode())
+    return w.maps, w.jsons, w.problems
+
+
+class _Walk:
+    """What :func:`walk_dataset` collects, entry by entry."""
+
+    def __init__(self, ds: DatasetInfo, parser: EntityParser, rules: NameRules, root_maps: bool,
+                 fingerprint: Any) -> None:
+        self.ds, self.parser, self.rules, self.fingerprint = ds, parser, rules, fingerprint
+        self.maps: list[MapFile] = []
+        self.jsons: dict[str, list[str]] = {}
+        self.problems: list[Problem] = []
+
+    def companion(self, e: os.DirEntry, rel: str, relpath: str) -> None:
+        """A sidecar or a model file (mask, design): listed for inheritance and model lookups."""
+        try:
+            st = _stat_entry(e)
+        except _NotRegular as exc:
+            self.problems.append(Problem(e.path, "not-a-regular-file", f"a {exc}, not a regular file; it was "
+                                         "not opened (opening it could block)", "replace it with the file itself",
+                                         "warning", self.ds.key))
+            return
+        except OSError:
+            return  # a dangling or looping link to a sidecar: nothing to read
+        self.jsons.setdefault(rel, []).append(e.name)
+        if self.fingerprint is not None:
+            self.fingerprint.update(f"{relpath}\0{st.st_size}\0{st.st_mtime_ns}\n".encode())
+
+    def map(self, e: os.DirEntry, relpath: str) -> None:
+        """A NIfTI, GIFTI or CIFTI file: a statistic map by its BIDS name or by a name rule, or nothing."""
+        ds, name = self.ds, e.name
+        stem, ext = split_map_name(name)  # type: ignore[misc]  # the walk passes map extensions only
+        is_statmap = stem.endswith("_" + STAT_SUFFIX)
+        hit = None
+        if not is_statmap:
+            hit = self.rules.match_full(ds.key, relpath) if self.rules.rules else None
+            if hit is None:
+                return
+        st = self._stat(e)
+        if st is None:
+            return
+        if is_statmap:
+            ents = self.parser.parse(relpath)
+            self.problems.extend(_fix_labels(stem, ents, e.path, ds.key))
+            if "stat" not in ents:
+                self.problems.append(Problem(e.path, "missing-entity", "statmap file name lacks stat",
+                                             f"name it ..._stat-<label>_statmap{ext} (with contrast-<label> "
+                                             "for a contrast's map), or add a rule in a name-rules file",
+                                             "error", ds.key))
+                return
+            ents["extension"] = ext
+            self.maps.append(MapFile(ds, relpath, e.path, ents, st.st_size, st.st_mtime_ns, "bids"))
+            return
+        idx, ents, groups = hit
+        base = self.parser.parse(relpath)
+        base.update(ents)
+        base["suffix"] = STAT_SUFFIX
+        base["extension"] = ext
+        extras, probs = self.rules.extras(ds.root, idx, groups, base, e.path, ds.key)
+        self.problems.extend(probs)
+        self.maps.append(MapFile(ds, relpath, e.path, base, st.st_size, st.st_mtime_ns, f"rule:{idx}", extras))
+
+    def _stat(self, e: os.DirEntry) -> os.stat_result | None:
+        """The map's stat; only a regular file passes (anything else becomes a problem, unopened)."""
+        key = self.ds.key
+        try:
+            return _stat_entry(e)
+        except _NotRegular as exc:
+            self.problems.append(Problem(e.path, "not-a-regular-file", f"a {exc} named like a statistic map; it was "
+                                         "not opened (opening it could block the crawl)", "replace it with the map "
+                                         "file itself, or remove it", "error", key))
+        except FileNotFoundError:
+            self.problems.append(Problem(e.path, "dangling-symlink",
+                                         "symbolic link to a file that is not there (an unfetched annexed file?)",
+                                         "fetch the file content (for example 'datalad get' or "
+                                         "'git annex get' on it), then index again", "error", key))
+        except OSError as exc:
+            if exc.errno == errno.ELOOP:
+                self.problems.append(Problem(e.path, "symlink-loop", "symbolic links that point at each other "
+                                             "in a loop", "point the link at the map file", "error", key))
+            else:
+                self.problems.append(Problem(e.path, "unreadable", f"cannot stat file ({exc.strerror})",
+                                             "check permissions", "error", key))
+        return None
+
+
+_KINDS = ((stat.S_ISFIFO, "named pipe (FIFO)"), (stat.S_ISSOCK, "socket"), (stat.S_ISCHR, "character device"),
+          (stat.S_ISBLK, "block device"), (stat.S_ISDIR, "folder"))
+
+
+def _kind(mode: int) -> str:
+    return next((name for test, name in _KINDS if test(mode)), "special file")
+
+
+def _stat_entry(entry: os.DirEntry) -> os.stat_result:
+    """The entry's stat (through symlinks); only regular files pass, as opening anything else can block."""
+    st = entry.stat()
+    if not stat.S_ISREG(st.st_mode):
+        raise _NotRegular(_kind(st.st_mode))
+    return st
+
+
+class _NotRegular(OSError):
+    """A path that is not a regular file (a FIFO, a socket, a device or a folder)."""
+
+
+def is_regular(path: str | os.PathLike[str]) -> bool:
+    """True for a regular file (symlinks followed); never opens the path."""
+    try:
+        return stat.S_ISREG(os.stat(path).st_mode)
+    except OSError:
+        return False
+
+
+_ENTITY_PART = re.compile(r"^([a-zA-Z0-9]+)-(.*)$")
+_CLEAN_STEM = re.compile(r"(?:[a-zA-Z0-9]+-[a-zA-Z0-9+]+_)*[a-zA-Z0-9]+")
+
+
+def label_problems(stem: str) -> list[tuple[str, str, str]]:
+    """Labels of a BIDS file name that hold a character BIDS forbids in a label.
+
+    Returns ``(kind, key, whole_label)`` with kind ``hyphen`` (``contrast-a-b``: the label
+    is ``a-b``) or ``underscore`` (``contrast-a_b``: ``b`` has no key, so it belongs to the
+    label before it).  The suffix (the last part) is not a key-value pair and is skipped.
+
+    Examples
+    --------
+    >>> label_problems("sub-01_contrast-sentences-words_stat-t_statmap")
+    [('hyphen', 'contrast', 'sentences-words')]
+    >>> label_problems("sub-01_contrast-faces_houses_stat-t_statmap")
+    [('underscore', 'contrast', 'faces_houses')]
+    """
+    if _CLEAN_STEM.fullmatch(stem):
+        return []  # the usual case, in one regex call
+    entries: list[list[str]] = []  # [kind, key, label]; kind "" while the label is clean
+    for part in stem.split("_")[:-1]:
+        m = _ENTITY_PART.match(part)
+        if m is None:
+            if entries:  # a part with no key continues the label before it
+                entries[-1][2] += "_" + part
+                entries[-1][0] = "underscore"
+            continue
+        entries.append(["hyphen" if "-" in m.group(2) else "", m.group(1), m.group(2)])
+    return [(k, key, label) for k, key, label in entries if k]
+
+
+def _fix_labels(stem: str, ents: dict[str, str], path: str, dataset: str) -> list[Problem]:
+    """Keep forbidden labels whole (never cut at the hyphen or underscore) and say so."""
+    out = []
+    for kind, key, label in label_problems(stem):
+        if key in ents:
+            ents[key] = label
+        char = "a hyphen" if kind == "hyphen" else "an underscore"
+        clean = re.sub(r"[-_]+(.)", lambda m: m.group(1).upper(), label)
+        out.append(Problem(path, "label-not-alphanumeric",
+                           f"{key} label {label!r} holds {char}, which BIDS forbids inside a label; read "
+                           f"as {key} {label!r} (whole), not cut at the {kind}",
+                           f"rename the file with {key}-{clean}", "warning", dataset))
+    return out
+
+
+class SidecarResolver:
+    """Metadata of a data file by the BIDS inheritance principle, with parsed files cached."""
+
+    def __init__(self, ds: DatasetInfo, jsons: dict[str, list[str]], parser: EntityParser) -> None:
+        self.ds = ds
+        self.parser = parser
+        self.problems: list[Problem] = []
+        self._content: dict[str, dict[str, Any] | None] = {}
+        self._index: dict[str, list[tuple[str, str | None, dict[str, str]]]] = {}
+        self._chains: dict[str, tuple] = {}
+        self._merged: dict[tuple[str, ...], tuple[dict[str, Any], list[str], str]] = {}
+        for folder, names in jsons.items():
+            items = []
+            for n in names:
+                if not n.endswith(".json"):
+                    continue
+                if not folder and n in ("dataset_description.json", "participants.json"):
+                    continue
+                relpath = f"{folder}/{n}" if folder else n
+                ents = parser.parse(relpath)
+                suffix = ents.pop("suffix", None)
+                for k in ("extension", "datatype"):
+                    ents.pop(k, None)
+                items.append((relpath, suffix, ents))
+            self._index[folder] = items
+
+    def _load(self, relpath: str) -> dict[str, Any] | None:
+        if relpath not in self._content:
+            path = os.path.join(self.ds.root, relpath)
+            try:
+                with open(path, "rb") as fh:
+                    doc = json.loads(fh.read())
+                if not isinstance(doc, dict):
+                    raise ValueError("top level is not an object")
+                self._content[relpath] = doc
+            except (ValueError, OSError) as exc:
+                self._content[relpath] = None
+                self.problems.append(Problem(path, "bad-sidecar", f"cannot parse JSON sidecar ({exc})",
+                                             "fix the JSON syntax; its metadata was ignored",
+                                             "warning", self.ds.key))
+        return self._content[relpath]
+
+    def _chain(self, folder: str):
+        """Candidate sidecars for files in ``folder``: root first, each level by specificity.
+
+        Returned as (generic, entity, buckets): with many candidates (a sidecar per map in a
+        flat folder), those carrying the most discriminating entity are bucketed by its value,
+        so a file looks only at the sidecars that can apply to it.
+        """
+        plan = self._chains.get(folder)
+        if plan is None:
+            levels = [""]
+            parts = folder.split("/") if folder else []
+            for i in range(len(parts)):
+                levels.append("/".join(parts[: i + 1]))
+            chain = []
+            for level in levels:
+                chain += sorted(self._index.get(level, ()), key=lambda c: (len(c[2]), c[0]))
+            ranked = [(i,) + c for i, c in enumerate(chain)]
+            plan = (ranked, None, {})
+            if len(ranked) > 32:
+                values: dict[str, set[str]] = {}
+                for _, _, _, ents in ranked:
+                    for k, v in ents.items():
+                        values.setdefault(k, set()).add(v)
+                best = max(values, key=lambda k: len(values[k]), default=None)
+                if best is not None and len(values[best]) > 1:
+                    buckets: dict[str, list] = {}
+                    generic = []
+                    for c in ranked:
+                        if best in c[3]:
+                            buckets.setdefault(c[3][best], []).append(c)
+                        else:
+                            generic.append(c)
+                    plan = (generic, best, buckets)
+            self._chains[folder] = plan
+        return plan
+
+    def resolve_full(self, relpath: str, entities: dict[str, str]
+                     ) -> tuple[dict[str, Any], list[str], str]:
+        """Merged metadata (shared, do not modify), sidecars used, and the metadata as JSON."""
+        suffix = entities.get("suffix")
+        folder = relpath.rsplit("/", 1)[0] if "/" in relpath else ""
+        generic, best, buckets = self._chain(folder)
+        cands = generic
+        if best is not None:
+            extra = buckets.get(entities.get(best), ())
+            if extra:
+                cands = sorted(generic + extra)  # back into chain order
+        used = [rp for _, rp, suf, ents in cands
+                if suf == suffix and all(entities.get(k) == v for k, v in ents.items())]
+        key = tuple(used)
+        hit = self._merged.get(key)
+        if hit is None:
+            merged: dict[str, Any] = {}
+            for rp in used:
+                doc = self._load(rp)
+                if doc is not None:
+                    merged.update(doc)
+            hit = (merged, [rp for rp in used if self._content.get(rp) is not None],
+                   json.dumps(merged, sort_keys=True, default=str))
+            self._merged[key] = hit
+        return hit
+
+    def resolve(self, relpath: str, entities: dict[str, str]) -> tuple[dict[str, Any], list[str]]:
+        """Merged metadata for a data file and the sidecars used, shallowest first."""
+        merged, used, _ = self.resolve_full(relpath, entities)
+        return dict(merged), list(used)
+
+
+class ModelFiles:
+    """The files a map's model left beside it: its mask and its design matrices.
+
+    nilearn's writer puts ``<prefix>_mask.nii.gz`` and ``<prefix>_design.tsv`` next to the
+    maps of a model, where ``<prefix>`` holds the model's entities (sub, ses, task, ...);
+    a BIDS ``_mask`` with matching entities is read the same way.  A candidate applies to a
+    map when its entities are a subset of the map's (``run`` aside for designs: a model fit
+    on several runs writes one design per run); the deepest folder, then the most specific
+    candidates win.
+    """
+
+    def __init__(self, ds: DatasetInfo, listing: dict[str, list[str]], parser: EntityParser) -> None:
+        self.ds = ds
+        self._cands: dict[str, list[tuple[str, str, dict[str, str]]]] = {}
+        for folder, names in listing.items():
+            for n in names:
+                kind = "mask" if n.endswith(("_mask.nii.gz", "_mask.nii")) else \
+                    "surface-mask" if n.endswith("_mask.gii") else "design" if n.endswith("_design.tsv") else None
+                if kind is None:
+                    continue
+                rel = f"{folder}/{n}" if folder else n
+                ents = {k: v for k, v in parser.parse(rel).items()
+                        if k not in ("suffix", "extension", "datatype")}
+                self._cands.setdefault(folder, []).append((kind, rel, ents))
+        self._dof: dict[tuple[str, ...], tuple[float | None, str | None]] = {}
+
+    def _find(self, kind: str, relpath: str, entities: dict[str, str]) -> list[str]:
+        if not self._cands:
+            return []
+        folder = relpath.rsplit("/", 1)[0] if "/" in relpath else ""
+        parts = folder.split("/") if folder else []
+        for depth in range(len(parts), -1, -1):
+            level = "/".join(parts[:depth])
+            hits = []
+            for k, rel, ents in self._cands.get(level, ()):
+                if k != kind:
+                    continue
+                own = dict(ents)
+                run = own.pop("run", None) if kind == "design" else None
+                if run is not None and entities.get("run") not in (None, run):
+                    continue
+                if all(entities.get(key) == v for key, v in own.items()):
+                    hits.append((len(own), rel))
+            if hits:
+                best = max(n for n, _ in hits)
+                return sorted(rel for n, rel in hits if n == best)
+        return []
+
+    def mask_for(self, relpath: str, entities: dict[str, str], surface: bool = False) -> str | None:
+        """Relative path of the model's mask for a map (``_mask.gii`` of its hemisphere for a surface map)."""
+        found = self._find("surface-mask" if surface else "mask", relpath, entities)
+        return found[0] if found else None
+
+    def design_dof(self, relpath: str, entities: dict[str, str]) -> tuple[float | None, str | None, str | None]:
+        """Residual degrees of freedom from the design matrices beside a map.
+
+        DOF = rows - rank(X), summed over the runs of a fixed-effects model: the ordinary
+        least-squares convention, and what nilearn computes (``RegressionResults.df_residuals``;
+        its fixed-effects contrasts add the runs' DOF).  Returns (dof, designs used, problem).
+        """
+        designs = tuple(self._find("design", relpath, entities))
+        if not designs:
+            return None, None, None
+        hit = self._dof.get(designs)
+        if hit is None:
+            total, why = 0.0, None
+            for rel in designs:
+                path = os.path.join(self.ds.root, rel)
+                try:
+                    import numpy as np
+
+                    x = np.loadtxt(path, delimiter="\t", skiprows=1, ndmin=2, dtype=np.float64)
+                    if x.size == 0 or not np.all(np.isfinite(x)):
+                        raise ValueError("empty, or a value that is not a finite number")
+                    total += x.shape[0] - int(np.linalg.matrix_rank(x))
+                except (OSError, ValueError) as exc:
+                    why = f"{path}: cannot read the design matrix ({exc})"
+                    break
+            hit = (None, why) if why else (total if total > 0 else None, None)
+            self._dof[designs] = hit
+        return hit[0], ",".join(designs), hit[1]
+
+
+def read_participants(ds: DatasetInfo) -> tuple[list[dict[str, Any]], str | None, list[Problem]]:
+    """Rows of participants.tsv, 'n/a' as None.
+
+    Looked up in the dataset, then its raw dataset (the one enclosing it, or the one its
+    ``SourceDatasets`` names), then the other datasets ``SourceDatasets`` names.
+    """
+    candidates = [Path(ds.root) / "participants.tsv"]
+    for other in [ds.raw_root, *ds.source_roots]:
+        if other and Path(other) / "participants.tsv" not in candidates:
+            candidates.append(Path(other) / "participants.tsv")
+    for f in candidates:
+        if not f.exists():
+            continue
+        if not is_regular(f):
+            return [], str(f), [Problem(str(f), "not-a-regular-file", "participants.tsv is not a regular file; it "
+                                        "was not opened", "replace it with the TSV file itself", "warning", ds.key)]
+        try:
+            with open(f, newline="", encoding="utf-8") as fh:
+                reader = csv.DictReader(fh, delimiter="\t")
+                if not reader.fieldnames or "participant_id" not in reader.fieldnames:
+                    return [], str(f), [Problem(str(f), "bad-participants",
+                                                "participants.tsv has no participant_id column",
+                                                "add a participant_id column (sub-<label>)",
+                                                "warning", ds.key)]
+                rows = []
+                for row in reader:
+                    clean = {k.strip(): (None if v is None or v.strip() in ("", "n/a") else v.strip())
+                             for k, v in row.items() if k is not None}
+                    rows.append(clean)
+                return rows, str(f), []
+        except (OSError, UnicodeDecodeError, csv.Error) as exc:
+            return [], str(f), [Problem(str(f), "bad-participants", f"cannot read participants.tsv ({exc})",
+                                        "save it as UTF-8, tab-separated", "warning", ds.key)]
+    return [], None, []
+
+

@@ -1,0 +1,454 @@
+"""Export a selection (X, y, groups, splits, metadata) with a manifest, and verify it later.
+
+Output folder::
+
+    X.npy             float32 (n_maps, n_voxels), memory-mappable   (or table.parquet with --format parquet);
+                      columns as the selection's missing-value policy keeps them
+    voxels.npy        flat C-order grid index of each column of X (paints a row back onto the grid)
+    y.npy / Y.npy     targets: class names, or a 0/1 matrix over concepts (with concepts.json)
+    groups.npy        group label per row
+    meta.parquet      one row per map: ids, entities, origin, concepts, coverage, fold / split
+    manifest.json     query, feature set (grid, mask hashes), missing-value policy, every source
+                      sha256, store row hash and exported row hash,
+                      vocabulary hash, versions, scheme and seed, hashes of the files above
+
+The folder is written under a temporary name and renamed into place at the end.
+``verify`` re-hashes the sources, the store's rows and the exported files.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import os
+import shutil
+import time
+import uuid
+from concurrent.futures import ThreadPoolExecutor
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from .._version import __version__
+from ..features import NEAR_COPY_R
+from ..errors import ExportError, ParameterError
+from ..indexing import inside
+from ..formats import sha256_file
+from ..features import FeatureSet
+from ._query import Selection, fold_vector, parse_scheme
+from ..store import Catalog, checkpoint, replace_dir
+
+__all__ = ["ExportReport", "VerifyReport", "export_selection", "verify", "json_schemas"]
+
+MANIFEST_FORMAT = "mapstore-export"
+BLOCK_ROWS = 64
+DATA_FILES = ("X.npy", "table.parquet")
+
+
+@dataclass
+class ExportReport:
+    out: str
+    n_maps: int
+    n_voxels: int
+    scheme: str
+    n_splits: int
+    dropped: dict[str, int]
+    seconds: float
+    leaks: list[str] = field(default_factory=list)
+    missing: dict[str, Any] = field(default_factory=dict)
+    unit: str = "voxels"  # what X's columns are: voxels, vertices, grayordinates or parcels
+
+    def summary(self) -> str:
+        d = ", ".join(f"{v} ({k})" for k, v in self.dropped.items()) or "none"
+        m = self.missing
+        voxel_line = (f"\nmissing values: {m['policy']}; {m['dropped_voxels']:,} of {m['mask_voxels']:,} mask {self.unit} "
+                      f"dropped ({m['reason']})" if m.get("dropped_voxels") else
+                      f"\nmissing values: {m['policy']} ({m['reason']})" if m else "")
+        return (f"exported {self.n_maps} maps x {self.n_voxels:,} {self.unit} to {self.out} in {self.seconds:.1f} s\n"
+                f"scheme {self.scheme}: {self.n_splits} split(s); dropped: {d}"
+                + voxel_line
+                + (f"\nWARNING: {len(self.leaks)} leak(s) accepted with --allow-leak" if self.leaks else ""))
+
+
+def _row_hash(row: np.ndarray) -> str:
+    return hashlib.sha256(np.ascontiguousarray(row, dtype=np.float32).tobytes()).hexdigest()
+
+
+def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str = "leave-one-group-out",
+                     seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False,
+                     near_copy_r: float | None = None) -> ExportReport:
+    """Write a selection to ``out`` with its manifest (see the module docstring)."""
+    t0 = time.perf_counter()
+    if fmt not in ("npy", "parquet"):
+        raise ParameterError(f"fmt must be 'npy' or 'parquet', got {fmt!r}")
+    kind, _ = parse_scheme(scheme)
+    out = _check_out(sel, out, overwrite)
+    splits, leaks = _splits(sel, scheme, seed, allow_leak, near_copy_r)
+    out.parent.mkdir(parents=True, exist_ok=True)
+    tmp = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.tmp"
+    tmp.mkdir()
+    checkpoint()
+    try:
+        fs = sel.feature_set
+        meta_t = _meta_table(sel, fold_vector(splits, len(sel)), kind)
+        rows = _Rows(sel)
+        checkpoint()
+        if fmt == "npy":
+            _write_npy(tmp, sel, rows, meta_t)
+        else:
+            _write_parquet(tmp, sel, rows, meta_t)
+        if sel.concepts:
+            (tmp / "concepts.json").write_text(json.dumps(sel.concepts))
+        # flat C-order grid index of each column of X: enough to paint a row back onto the grid
+        np.save(tmp / "voxels.npy", fs.mask_indices[rows.voxels].astype(np.int64))
+        checkpoint()
+        manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, rows.row_hashes, rows.x_hashes, fmt)
+        manifest["near_copy_r"] = NEAR_COPY_R if near_copy_r is None else near_copy_r
+        # the data files are checked row by row against row_sha256 instead of hashed whole
+        manifest["files"] = {p.name: sha256_file(str(p)) for p in sorted(tmp.iterdir())
+                             if p.name not in DATA_FILES}
+        (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1, sort_keys=True, default=str))
+        checkpoint()
+        replace_dir(tmp, out)
+    except BaseException:
+        shutil.rmtree(tmp, ignore_errors=True)
+        raise
+    return ExportReport(str(out), len(sel), len(rows.voxels), scheme, len(splits), dict(sel.dropped),
+                        time.perf_counter() - t0, leaks, sel.missing_report, fs.unit)
+
+
+def _check_out(sel: Selection, out: str | os.PathLike[str], overwrite: bool) -> Path:
+    out = Path(out).expanduser().absolute()
+    for root in sel.store.sql("SELECT root FROM datasets")["root"].to_pylist():
+        if inside(out, root):
+            raise ExportError(f"{out}: lies inside the source dataset {root}; mapstore never writes to source "
+                              "datasets, choose an --out folder elsewhere")
+    if out.exists() and any(out.iterdir()) and not overwrite:
+        raise ExportError(f"{out}: folder exists and is not empty; choose a new --out or pass --overwrite")
+    return out
+
+
+def _splits(sel: Selection, scheme: str, seed: int, allow_leak: bool, near_copy_r: float | None):
+    """The splits, and the leaks accepted with ``allow_leak`` (recorded in the manifest, still warned)."""
+    import warnings
+
+    with warnings.catch_warnings(record=True) as caught:
+        warnings.simplefilter("always")
+        splits = sel.splits(scheme, seed, allow_leak, near_copy_r)
+    leaks = [str(w.message) for w in caught if "leaky split" in str(w.message)]
+    for w in caught:
+        warnings.warn(w.message, w.category, stacklevel=3)
+    return splits, leaks
+
+
+def _meta_table(sel: Selection, fold: np.ndarray, kind: str) -> pa.Table:
+    meta = sel.meta.copy()
+    meta["row"] = np.arange(len(sel))
+    meta["group"] = sel.groups
+    meta["fold"] = fold
+    if kind == "holdout":
+        meta["split"] = np.where(fold >= 0, "test", "train")
+    keep_cols = [c for c in ("row", "map_id", "dataset", "study", "site", "lab", "participant", "sub", "ses",
+                             "run", "task", "contrast", "stat", "space", "concepts", "group", "fold", "split",
+                             "coverage", "sha256", "feature_key", "conversion", "relpath") if c in meta.columns]
+    return pa.Table.from_pandas(meta[keep_cols], preserve_index=False)
+
+
+class _Rows:
+    """Store rows turned into X rows (the selection's missing-value policy), their hashes recorded."""
+
+    def __init__(self, sel: Selection) -> None:
+        self.sel = sel
+        self.fs = sel.feature_set
+        self.ids = sel.map_ids
+        known = sel.meta["feature_row_sha256"].tolist()
+        # recorded when the rows were built (the selection's query brought them); older sets: read
+        self.row_hashes = known if all(isinstance(h, str) for h in known) else self.fs.row_hashes(self.ids)
+        self.voxels = sel.voxels  # X's columns
+        self.subset = len(self.voxels) != self.fs.n_voxels
+        self.same = not self.subset and (sel.missing != "zero" or sel.meta["coverage"].ge(1.0).all())
+        self.x_hashes: list[str] = []
+
+    def buffer(self) -> np.ndarray:
+        return np.empty((min(BLOCK_ROWS, max(len(self.ids), 1)), self.fs.n_voxels), dtype=np.float32)
+
+    def shape(self, block: np.ndarray) -> np.ndarray:
+        out = np.ascontiguousarray(block[:, self.voxels]) if self.subset else block
+        if self.sel.missing == "zero":
+            np.nan_to_num(out, copy=False, nan=0.0)
+        if self.same:  # X rows are the store rows: their hashes are known
+            self.x_hashes.extend(self.row_hashes[len(self.x_hashes):len(self.x_hashes) + len(out)])
+        else:
+            self.x_hashes.extend(_row_hash(r) for r in out)
+        return out
+
+
+def _write_npy(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None:
+    """X.npy through two reused buffers, reading the next block while the last one is written
+    (both system calls release the GIL): no fresh pages for all of X; then y, Y, groups, meta."""
+    n = len(rows.ids)
+    buf, spare = rows.buffer(), rows.buffer()
+    with open(tmp / "X.npy", "wb", buffering=0) as fh, ThreadPoolExecutor(1) as reader:
+        np.lib.format.write_array_header_1_0(
+            fh, {"descr": np.lib.format.dtype_to_descr(np.dtype(np.float32)), "fortran_order": False,
+                 "shape": (n, len(rows.voxels))})
+        starts = list(range(0, n, BLOCK_ROWS))
+        pending = reader.submit(sel.read_rows, 0, buf) if starts else None
+        for k in range(len(starts)):
+            block = pending.result()
+            if k + 1 < len(starts):
+                nxt = starts[k + 1]
+                pending = reader.submit(sel.read_rows, nxt, spare)
+            checkpoint()
+            view = memoryview(rows.shape(block)).cast("B")  # type: ignore[arg-type]
+            while view:
+                view = view[fh.write(view):]
+            buf, spare = spare, buf
+    checkpoint()
+    if sel.y is not None:
+        np.save(tmp / "y.npy", np.asarray(sel.y, dtype=str))
+        checkpoint()
+    if sel.Y is not None:
+        np.save(tmp / "Y.npy", sel.Y)
+        checkpoint()
+    np.save(tmp / "groups.npy", np.asarray(sel.groups, dtype=str))
+    checkpoint()
+    pq.write_table(meta_t, tmp / "meta.parquet")
+    checkpoint()
+
+
+def _write_parquet(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None:
+    """One table.parquet: meta columns, y / Y, and x as a fixed-size list per row."""
+    buf = rows.buffer()
+    writer = None
+    try:
+        for i in range(0, len(rows.ids), BLOCK_ROWS):
+            block = rows.shape(sel.read_rows(i, buf))
+            part = meta_t.slice(i, len(block))
+            if sel.y is not None:
+                part = part.append_column("y", pa.array(np.asarray(sel.y[i:i + len(block)], dtype=str)))
+            if sel.Y is not None:  # multi-label indicators, columns as in concepts.json
+                ind = np.ascontiguousarray(sel.Y[i:i + len(block)], dtype=np.uint8).reshape(-1)
+                part = part.append_column("Y", pa.FixedSizeListArray.from_arrays(
+                    pa.array(ind, pa.uint8()), len(sel.concepts)))
+            flat = pa.array(block.reshape(-1), pa.float32())
+            part = part.append_column("x", pa.FixedSizeListArray.from_arrays(flat, len(rows.voxels)))
+            if writer is None:
+                writer = pq.ParquetWriter(tmp / "table.parquet", part.schema, compression="zstd")
+            writer.write_table(part, row_group_size=64)
+    finally:
+        if writer is not None:
+            writer.close()
+
+
+def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: list[str], splits,
+              row_hashes: list[str], x_hashes: list[str], fmt: str) -> dict[str, Any]:
+    import nibabel
+    import scipy
+    import sklearn
+
+    store = sel.store
+    fs = sel.feature_set
+    head = store.catalog.head
+    ds = {r["dataset"]: r["root"] for r in store.sql("SELECT dataset, root FROM datasets").to_pylist()}
+    sources = []
+    for r, h, xh in zip(sel.meta.itertuples(index=False), row_hashes, x_hashes):
+        sources.append({"map_id": r.map_id, "dataset": r.dataset, "relpath": r.relpath,
+                        "path": os.path.join(ds.get(r.dataset, ""), r.relpath), "sha256": r.sha256,
+                        "feature_key": r.feature_key, "row_sha256": h, "x_sha256": xh})
+    return {
+        "format": MANIFEST_FORMAT, "format_version": 1,
+        "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
+        "mapstore_version": __version__,
+        "versions": {"numpy": np.__version__, "scipy": scipy.__version__, "nibabel": nibabel.__version__,
+                     "scikit-learn": sklearn.__version__},
+        "store": str(store.path), "catalog_snapshot": head.catalog,
+        "query": sel.query, "dropped": sel.dropped,
+        "feature_set": {"name": fs.name, "spec_id": fs.spec["spec_id"], "grid": fs.spec["grid"],
+                        "grid_id": fs.spec["grid_id"], "mask": fs.spec["mask"], "method": fs.spec["method"],
+                        "stat": fs.spec["stat"], "versions": fs.spec.get("versions")},
+        "vocabulary": ({k: getattr(head.labels, k) for k in ("vocabulary", "sha256", "version", "inherit_broader")}
+                       if head.labels else None),
+        "target": sel.target, "concepts": sel.concepts, "group_by": sel.group_by,
+        "scheme": scheme, "seed": seed, "allow_leak": allow_leak, "leaks": leaks,
+        "splits": [{"train": len(tr), "test": len(te),
+                    "test_groups": sorted(map(str, set(sel.groups[te])))} for tr, te in splits],
+        "missing": {**sel.missing_report, "voxels_file": "voxels.npy"},
+        "shape": [len(sel), len(sel.voxels)], "dtype": "float32", "layout": fmt,
+        "sources": sources,
+    }
+
+
+@dataclass
+class VerifyReport:
+    """What ``verify`` found: an empty ``changes`` list means everything still matches."""
+
+    manifest: str
+    checked_sources: int
+    checked_rows: int
+    changes: list[str]
+
+    @property
+    def ok(self) -> bool:
+        return not self.changes
+
+    def summary(self) -> str:
+        head = (f"{self.manifest}: {self.checked_sources} source files, {self.checked_rows} store rows and "
+                "the exported files checked")
+        if self.ok:
+            return head + "\nall hashes match: the export is reproducible from these sources and this store"
+        shown = "\n  ".join(self.changes[:30])
+        more = f"\n  ... and {len(self.changes) - 30} more" if len(self.changes) > 30 else ""
+        return head + f"\n{len(self.changes)} change(s):\n  {shown}{more}"
+
+
+def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
+    """Re-check an export: source file hashes, the store's rows, and the exported files."""
+    mpath = Path(manifest_path)
+    if mpath.is_dir():
+        mpath = mpath / "manifest.json"
+    try:
+        man = json.loads(mpath.read_text())
+    except FileNotFoundError as exc:
+        raise ExportError(f"{mpath}: manifest not found; give the export folder or its manifest.json") from exc
+    except (OSError, ValueError) as exc:
+        raise ExportError(f"{mpath}: unreadable manifest ({exc})") from exc
+    if man.get("format") != MANIFEST_FORMAT:
+        raise ExportError(f"{mpath}: not a mapstore export manifest")
+    changes: list[str] = []
+    folder = mpath.parent
+    for name, sha in man.get("files", {}).items():
+        p = folder / name
+        if not p.exists():
+            changes.append(f"export file missing: {name}")
+        elif sha256_file(str(p)) != sha:
+            changes.append(f"export file changed: {name}")
+    for s in man["sources"]:
+        p = Path(s["path"])
+        if not p.exists():
+            changes.append(f"source missing: {p}")
+            continue
+        got = sha256_file(str(p))
+        if got != s["sha256"]:
+            changes.append(f"source changed: {p} (sha256 {s['sha256'][:12]}... -> {got[:12]}...)")
+    n_rows = 0
+    try:
+        cat = Catalog(man["store"])
+        name = man["feature_set"]["name"]
+        if name not in cat.head.features:
+            raise ExportError(f"no feature set {name!r} in {cat.path}")
+        fs = FeatureSet(cat.path, name, cat.head.features[name])
+    except Exception as exc:  # noqa: BLE001 - any failure to open is reported, not raised
+        changes.append(f"store or feature set unavailable: {exc}")
+        return VerifyReport(str(mpath), len(man["sources"]), 0, changes)
+    if fs.spec["spec_id"] != man["feature_set"]["spec_id"]:
+        changes.append(f"feature set {fs.name!r} now has other settings (spec {fs.spec['spec_id']} != "
+                       f"{man['feature_set']['spec_id']})")
+    rows = {r["map_id"]: r for r in fs.rows.to_pylist()}
+    present = [s for s in man["sources"] if s["map_id"] in rows and rows[s["map_id"]]["feature_key"] == s["feature_key"]]
+    for s in man["sources"]:
+        r = rows.get(s["map_id"])
+        if r is None:
+            changes.append(f"store row gone: {s['map_id']} ({s['relpath']})")
+        elif r["feature_key"] != s["feature_key"]:
+            changes.append(f"store row rebuilt from other inputs: {s['map_id']} ({s['relpath']})")
+    for i in range(0, len(present), BLOCK_ROWS):
+        part = present[i:i + BLOCK_ROWS]
+        block = fs.matrix([s["map_id"] for s in part])
+        for s, row in zip(part, block):
+            n_rows += 1
+            if _row_hash(row) != s["row_sha256"]:
+                changes.append(f"store row changed: {s['map_id']} ({s['relpath']})")
+    changes += _check_data_file(folder, man)
+    return VerifyReport(str(mpath), len(man["sources"]), n_rows, changes)
+
+
+def _x_hash(source: dict[str, Any]) -> str:
+    # manifests before missing-value policies exported whole store rows
+    return source.get("x_sha256") or source["row_sha256"]
+
+
+def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
+    """Compare every exported row with the row hash recorded for it."""
+    out: list[str] = []
+    sources = man["sources"]
+    if man.get("layout") == "parquet":
+        f = folder / "table.parquet"
+        if not f.exists():
+            return ["export file missing: table.parquet"]
+        i = 0
+        for batch in pq.ParquetFile(f).iter_batches(batch_size=BLOCK_ROWS, columns=["x"]):
+            values = batch.column(0).flatten().to_numpy(zero_copy_only=False).reshape(batch.num_rows, -1)
+            for row in values:
+                if i >= len(sources) or _row_hash(row) != _x_hash(sources[i]):
+                    out.append(f"exported row changed: table.parquet row {i}")
+                i += 1
+        if i != len(sources):
+            out.append(f"table.parquet has {i} rows, the manifest {len(sources)}")
+        return out
+    f = folder / "X.npy"
+    if not f.exists():
+        return ["export file missing: X.npy"]
+    try:
+        X = np.load(f, mmap_mode="r")
+    except (OSError, ValueError) as exc:
+        return [f"export file unreadable: X.npy ({exc})"]
+    if X.shape != tuple(man["shape"]) or X.dtype != np.float32:
+        return [f"export file changed: X.npy has shape {X.shape} {X.dtype}, the manifest {man['shape']} float32"]
+    for i, s in enumerate(sources):
+        if _row_hash(X[i]) != _x_hash(s):
+            out.append(f"exported row changed: X.npy row {i} ({s['map_id']})")
+    return out
+
+
+def json_schemas() -> dict[str, dict[str, Any]]:
+    return {"export-manifest.schema.json": {
+        "$schema": "https://json-schema.org/draft/2020-12/schema",
+        "$id": "https://mapstore.invalid/schemas/export-manifest.schema.json",
+        "title": "mapstore export manifest",
+        "description": "Everything needed to reproduce and verify an export: query, feature set, every "
+                       "source file's sha256 and row hash, vocabulary hash, versions, scheme and seed.",
+        "type": "object",
+        "required": ["format", "format_version", "mapstore_version", "store", "query", "feature_set",
+                     "scheme", "seed", "sources", "files", "shape"],
+        "properties": {
+            "format": {"const": MANIFEST_FORMAT},
+            "format_version": {"type": "integer"},
+            "mapstore_version": {"type": "string"},
+            "created": {"type": "string"},
+            "versions": {"type": "object"},
+            "store": {"type": "string"},
+            "catalog_snapshot": {"type": ["string", "null"]},
+            "query": {"type": "object"},
+            "dropped": {"type": "object"},
+            "feature_set": {"type": "object", "required": ["name", "spec_id", "grid_id", "mask"]},
+            "vocabulary": {"type": ["object", "null"]},
+            "target": {"type": "string"},
+            "concepts": {"type": "array", "items": {"type": "string"}},
+            "group_by": {"type": "string"},
+            "scheme": {"type": "string"},
+            "seed": {"type": "integer"},
+            "allow_leak": {"type": "boolean"},
+            "leaks": {"type": "array", "items": {"type": "string"}},
+            "splits": {"type": "array"},
+            "shape": {"type": "array", "items": {"type": "integer"}, "minItems": 2, "maxItems": 2},
+            "dtype": {"const": "float32"},
+            "layout": {"enum": ["npy", "parquet"]},
+            "files": {"type": "object", "additionalProperties": {"type": "string"}},
+            "sources": {"type": "array", "items": {
+                "type": "object",
+                "required": ["map_id", "dataset", "relpath", "path", "sha256", "feature_key", "row_sha256"],
+                "properties": {k: {"type": "string"} for k in
+                               ("map_id", "dataset", "relpath", "path", "sha256", "feature_key", "row_sha256",
+                                "x_sha256")}}},
+            "missing": {"type": "object", "required": ["policy", "mask_voxels", "kept_voxels"],
+                        "properties": {"policy": {"enum": ["common", "zero", "keep"]},
+                                       "mask_voxels": {"type": "integer"}, "kept_voxels": {"type": "integer"},
+                                       "dropped_voxels": {"type": "integer"}, "reason": {"type": "string"},
+                                       "voxels_file": {"type": "string"}}},
+        },
+    }}

@@ -1,0 +1,487 @@
+"""Selections over the catalog: which maps, their targets, groups and leakage-free splits.
+
+A :class:`Selection` holds the rows chosen by SQL (pushed down into DuckDB) and
+gives decoders what they need: ``X`` (read from the feature set only when
+asked), ``y`` (or a multi-label ``Y``), ``groups`` and ``splits()``, which plug
+into scikit-learn's ``cv=`` unchanged.
+"""
+
+from __future__ import annotations
+
+import warnings
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from ..errors import LeakageError, ParameterError, QueryError
+from ..features import NEAR_COPY_R, STORE_FLOOR, find_copies
+from ..labels import load_vocabulary
+
+__all__ = ["Selection", "select", "parse_scheme", "GROUP_COLUMNS", "assign_folds", "MISSING_POLICIES"]
+
+# what X does with voxels some selected map has no value for (NaN in the feature set)
+MISSING_POLICIES = ("common", "zero", "keep")
+
+GROUP_COLUMNS = {"study": "study", "site": "site", "lab": "lab", "subject": "participant",
+                 "participant": "participant", "dataset": "dataset"}
+_TARGET_KINDS = ("contrast", "concept", "concepts")
+
+
+def parse_scheme(scheme: str) -> tuple[str, float | int | None]:
+    """``leave-one-group-out``, ``group-kfold:K`` or ``holdout:FRACTION`` -> (kind, parameter).
+
+    Examples
+    --------
+    >>> parse_scheme("group-kfold:5")
+    ('group-kfold', 5)
+    >>> parse_scheme("holdout:0.2")
+    ('holdout', 0.2)
+    """
+    if not isinstance(scheme, str):
+        raise ParameterError(f"scheme must be a string, got {type(scheme).__name__}")
+    if scheme in ("leave-one-group-out", "logo"):
+        return "leave-one-group-out", None
+    kind, _, arg = scheme.partition(":")
+    if kind == "group-kfold":
+        try:
+            k = int(arg)
+        except ValueError:
+            k = 0
+        if k < 2:
+            raise ParameterError(f"scheme {scheme!r}: group-kfold needs K >= 2, e.g. group-kfold:5")
+        return kind, k
+    if kind == "holdout":
+        try:
+            f = float(arg)
+        except ValueError:
+            f = -1.0
+        if not 0 < f < 1:
+            raise ParameterError(f"scheme {scheme!r}: holdout needs a test fraction in (0, 1), e.g. holdout:0.2")
+        return kind, f
+    raise ParameterError(f"unknown scheme {scheme!r}; use leave-one-group-out, group-kfold:K or holdout:FRACTION")
+
+
+def assign_folds(groups: np.ndarray, scheme: str, seed: int = 0) -> list[tuple[np.ndarray, np.ndarray]]:
+    """Train/test index pairs for ``groups`` under a scheme, as scikit-learn's splitters make them.
+
+    ``leave-one-group-out`` is ``LeaveOneGroupOut``, ``group-kfold:K`` is ``GroupKFold(K)``
+    and ``holdout:F`` is ``GroupShuffleSplit(n_splits=1, test_size=F, random_state=seed)``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> [test.tolist() for _, test in assign_folds(np.array(["a", "a", "b", "c"]), "leave-one-group-out")]
+    [[0, 1], [2], [3]]
+    """
+    # imported here: scikit-learn takes ~0.5 s to import, and only splitting needs it
+    from sklearn.model_selection import GroupKFold, GroupShuffleSplit, LeaveOneGroupOut
+
+    kind, arg = parse_scheme(scheme)
+    groups = np.asarray(groups)
+    n_groups = len(np.unique(groups))
+    dummy = np.zeros((len(groups), 1))
+    if kind == "leave-one-group-out":
+        if n_groups < 2:
+            raise ParameterError(f"leave-one-group-out needs at least 2 groups, the selection has {n_groups}")
+        splitter = LeaveOneGroupOut()
+    elif kind == "group-kfold":
+        if arg > n_groups:
+            raise ParameterError(f"group-kfold:{arg} needs at least {arg} groups, the selection has {n_groups}; "
+                                 f"use group-kfold:{max(2, n_groups)} or group by something finer")
+        splitter = GroupKFold(n_splits=arg)
+    else:
+        if n_groups < 2:
+            raise ParameterError(f"holdout needs at least 2 groups, the selection has {n_groups}")
+        splitter = GroupShuffleSplit(n_splits=1, test_size=arg, random_state=seed)
+    return [(np.asarray(tr), np.asarray(te)) for tr, te in splitter.split(dummy, groups=groups)]
+
+
+def fold_vector(splits, n: int) -> np.ndarray:
+    """Per item: index of the split whose test side holds it (-1 if none: holdout's train side)."""
+    fold = np.full(n, -1, dtype=np.int64)
+    for i, (_, te) in enumerate(splits):
+        fold[te] = i
+    return fold
+
+
+def check_leakage(splits, participants: np.ndarray, sha256: np.ndarray, map_ids: np.ndarray,
+                  allow_leak: bool = False, copies: list[tuple[int, int, str, float]] | None = None) -> list[str]:
+    """Refuse splits that put one participant, one identical file or two copies of a map on both sides.
+
+    ``copies`` are (i, j, kind, r) pairs of positions whose feature rows are identical or
+    near-copies (see :mod:`mapstore.copies`).
+    """
+    problems: list[str] = []
+    for i, (tr, te) in enumerate(splits):
+        for what, col in (("subject", participants), ("identical map (sha256)", sha256)):
+            tr_set = {v for v in col[tr] if v is not None}
+            both = sorted({v for v in col[te] if v is not None} & tr_set)
+            if both:
+                ids = [str(map_ids[j]) for j in te if col[j] in both][:5]
+                problems.append(f"split {i}: {len(both)} {what}(s) on both sides, e.g. {both[0]} "
+                                f"(test map ids {', '.join(ids)})")
+        if copies:
+            side = np.zeros(len(map_ids), dtype=np.int8)
+            side[tr], side[te] = 1, 2
+            across = [(a, b, k, r) for a, b, k, r in copies if {side[a], side[b]} == {1, 2}]
+            if across:
+                a, b, k, r = max(across, key=lambda c: abs(c[3]))
+                what = "identical feature rows" if k == "identical" else f"near-copies (r = {r:+.3f})"
+                problems.append(f"split {i}: {len(across)} pair(s) of copies on both sides, e.g. {map_ids[a]} and "
+                                f"{map_ids[b]}: {what}")
+    if problems and not allow_leak:
+        raise LeakageError("the split leaks:\n  " + "\n  ".join(problems[:10]) +
+                           "\ngroup by a coarser unit (study or subject), drop duplicated maps (SELECT * FROM "
+                           "feature_copies lists them), or pass allow_leak=True (--allow-leak) to accept it")
+    if problems:
+        warnings.warn("leaky split accepted (allow_leak): " + "; ".join(problems[:3]), stacklevel=3)
+    return problems
+
+
+@dataclass
+class Selection:
+    """Maps chosen from a store, ready for a decoder.
+
+    Attributes
+    ----------
+    meta : pandas.DataFrame
+        One row per map (map_id, dataset, study, site, lab, participant, task, contrast, stat,
+        concepts, coverage, sha256, feature_key, ...), in the order of ``X``'s rows.
+    y : ndarray
+        Target per map (a class name), or None when ``target="concepts"``.
+    Y : ndarray of uint8, shape (n_maps, n_concepts)
+        Multi-label indicators when ``target="concepts"`` (columns: ``concepts``).
+    groups : ndarray
+        Group label per map (``group_by``).
+    dropped : dict
+        How many maps were left out, and why.
+    """
+
+    store: Any
+    feature_set: Any
+    meta: Any
+    y: np.ndarray | None
+    Y: np.ndarray | None
+    concepts: list[str]
+    groups: np.ndarray
+    group_by: str
+    target: str
+    query: dict[str, Any]
+    dropped: dict[str, int] = field(default_factory=dict)
+    missing: str = "common"
+    min_voxels: int | None = None
+    _X: np.ndarray | None = field(default=None, repr=False)
+    _voxels: np.ndarray | None = field(default=None, repr=False)
+
+    def __len__(self) -> int:
+        return len(self.meta)
+
+    @property
+    def map_ids(self) -> list[str]:
+        return self.meta["map_id"].tolist()
+
+    def read_rows(self, start: int, out: np.ndarray) -> np.ndarray:
+        """Store rows ``start .. start + len(out)`` of the selection into ``out`` (where the
+        selection's query found them: no lookup in the feature set's rows table)."""
+        stop = min(start + len(out), len(self))
+        return self.feature_set.read_at(self.meta["feature_shard"].to_numpy(object)[start:stop],
+                                        self.meta["feature_row"].to_numpy()[start:stop], out[:stop - start])
+
+    @property
+    def voxels(self) -> np.ndarray:
+        """Columns of ``X``: positions in the feature set's mask vector (see ``missing``).
+
+        ``common`` keeps the voxels finite in every selected map (found in one streamed
+        pass over the rows); ``zero`` and ``keep`` keep every mask voxel.
+        """
+        if self._voxels is None:
+            fs = self.feature_set
+            if self.missing != "common" or bool((self.meta["coverage"] >= 1.0).all()):
+                self._voxels = np.arange(fs.n_voxels)  # every row covers the whole mask: nothing to read
+            else:
+                finite = np.ones(fs.n_voxels, dtype=bool)
+                buf = np.empty((min(64, max(len(self), 1)), fs.n_voxels), dtype=np.float32)
+                for i in range(0, len(self), len(buf)):
+                    finite &= np.isfinite(self.read_rows(i, buf)).all(axis=0)
+                self._voxels = np.flatnonzero(finite)
+                self._refuse_if_too_few()
+        return self._voxels
+
+    def _refuse_if_too_few(self) -> None:
+        fs = self.feature_set
+        need = self.min_voxels if self.min_voxels is not None else max(1, int(np.ceil(0.01 * fs.n_voxels)))
+        kept = len(self._voxels)
+        if kept >= need:
+            return
+        worst = self.meta.sort_values("coverage").head(5)
+        names = ", ".join(f"{r.dataset}:{r.relpath} ({r.coverage:.0%})" for r in worst.itertuples())
+        self._voxels = None
+        raise QueryError(f"only {kept:,} of the feature set's {fs.n_voxels:,} voxels have a value in every one of "
+                         f"the {len(self)} selected maps (need {need:,}); the maps covering least: {names}. Drop "
+                         "them (min_coverage=..., --min-coverage), select fewer studies, or choose missing='zero' "
+                         "or missing='keep' with an imputer in your pipeline")
+
+    @property
+    def missing_report(self) -> dict[str, Any]:
+        """The missing-value policy and what it did to the columns."""
+        n = self.feature_set.n_voxels
+        kept = len(self.voxels)
+        why = {"common": "voxels without a value in at least one selected map were dropped",
+               "zero": "missing values are 0 in X", "keep": "missing values are NaN in X"}[self.missing]
+        return {"policy": self.missing, "mask_voxels": n, "kept_voxels": kept, "dropped_voxels": n - kept,
+                "reason": why}
+
+    @property
+    def X(self) -> np.ndarray:
+        """(n_maps, n_voxels) float32, read from the feature set's shards on first use.
+
+        Columns follow ``missing``: with ``common`` (the default) only voxels with a value in
+        every selected map (``voxels``), so any decoder takes X as it is; ``zero`` fills
+        missing values with 0; ``keep`` leaves them NaN.  Nothing is imputed from the data:
+        an imputer fitted on all maps would see the test folds.
+        """
+        if self._X is None:
+            full = self.read_rows(0, np.empty((len(self), self.feature_set.n_voxels), dtype=np.float32))
+            if self.missing == "common":
+                voxels = self.voxels
+                self._X = full if len(voxels) == full.shape[1] else np.ascontiguousarray(full[:, voxels])
+            elif self.missing == "zero":
+                self._X = np.nan_to_num(full, nan=0.0, copy=False)
+            else:
+                self._X = full
+        return self._X
+
+    def to_image(self, vector):
+        """An image of a row of ``X`` or of a decoder's weights (one per column of ``X``).
+
+        Values go back to their voxels on the feature set's grid (a NIfTI image), or to their
+        vertices on a surface set's mesh (a nilearn ``SurfaceImage``); everything else is NaN.
+        """
+        v = np.asarray(vector, dtype=np.float32).reshape(-1)
+        voxels = self.voxels
+        if v.size != len(voxels):
+            raise ParameterError(f"vector has {v.size} values, X has {len(voxels)} columns")
+        full = np.full(self.feature_set.n_voxels, np.nan, dtype=np.float32)
+        full[voxels] = v
+        return self.feature_set.to_image(full)
+
+    def splits(self, scheme: str = "leave-one-group-out", seed: int = 0,
+               allow_leak: bool = False, near_copy_r: float | None = None) -> list[tuple[np.ndarray, np.ndarray]]:
+        """Train/test index pairs grouped by ``group_by``; pass them as ``cv=`` to scikit-learn.
+
+        Raises :class:`~mapstore.errors.LeakageError` if a participant, an identical file, an
+        identical feature row or a near-copy (|r| >= ``near_copy_r`` on the voxels both maps
+        cover; default :data:`mapstore.copies.NEAR_COPY_R`) would sit on both sides of a
+        split, unless ``allow_leak`` (then a warning).
+        """
+        out = assign_folds(self.groups, scheme, seed)
+        check_leakage(out, self.meta["participant"].to_numpy(object), self.meta["sha256"].to_numpy(object),
+                      self.meta["map_id"].to_numpy(object), allow_leak, self.copy_pairs(near_copy_r))
+        return out
+
+    def copy_pairs(self, near_copy_r: float | None = None) -> list[tuple[int, int, str, float]]:
+        """Positions (i, j, kind, r) of selected maps whose rows are identical or |r| >= ``near_copy_r``."""
+        thr = NEAR_COPY_R if near_copy_r is None else near_copy_r
+        if not 0 < thr <= 1:
+            raise ParameterError(f"near_copy_r must be in (0, 1], got {thr!r}")
+        ids = self.map_ids
+        table = self.feature_set.copies() if thr >= STORE_FLOOR else None
+        if table is None:  # a set built before copies were recorded, or a threshold below the stored pairs'
+            table = find_copies(self.feature_set, ids, floor=thr)
+        pos = {m: i for i, m in enumerate(ids)}
+        out = []
+        for r in table.to_pylist():
+            a, b = pos.get(r["map_a"]), pos.get(r["map_b"])
+            if a is not None and b is not None and (r["kind"] == "identical" or abs(r["r"]) >= thr):
+                out.append((a, b, r["kind"], r["r"]))
+        return out
+
+    def folds(self, scheme: str = "leave-one-group-out", seed: int = 0, allow_leak: bool = False,
+              near_copy_r: float | None = None) -> np.ndarray:
+        """Per map: index of the split where it is in the test set (-1 if never: holdout train)."""
+        return fold_vector(self.splits(scheme, seed, allow_leak, near_copy_r), len(self))
+
+
+
+def _labels(cat, with_broader: bool):
+    """The labels table as a DataFrame: direct labels, plus broader concepts when asked."""
+    import pandas as pd
+
+    lab = cat.sql("SELECT map_id, concept, direct FROM labels").to_pandas()
+    if not with_broader:
+        return lab[lab["direct"]]
+    entry = cat.head.labels
+    if not entry or not entry.copy:
+        return lab
+    vocab = load_vocabulary(cat.path / entry.copy)
+    extra = [(m, b) for m, c in zip(lab["map_id"], lab["concept"]) if c in vocab.concepts
+             for b in vocab.broader_closure(c)]
+    if extra:
+        lab = pd.concat([lab, pd.DataFrame(extra, columns=["map_id", "concept"]).assign(direct=False)])
+    return lab.drop_duplicates(["map_id", "concept"])
+
+
+def _present_values(cat, feature_set: str) -> str:
+    """What the feature set holds, so an empty selection can say what would match."""
+    q = ("SELECT list(DISTINCT m.task ORDER BY m.task) FILTER (WHERE m.task IS NOT NULL) AS task, "
+         "list(DISTINCT m.stat ORDER BY m.stat) AS stat, count(DISTINCT m.contrast) AS n_contrasts, "
+         "count(*) AS n FROM maps m JOIN features f ON f.map_id = m.map_id "
+         f"AND f.feature_set = '{feature_set}'")
+    r = cat.sql(q).to_pylist()[0]
+    return (f"Feature set {feature_set!r} holds {r['n']} map(s): task {', '.join(r['task'] or []) or '(none)'}; "
+            f"stat {', '.join(r['stat'] or []) or '(none)'}; {r['n_contrasts']} contrast(s)")
+
+
+def _sql_list(values) -> str:
+    return ", ".join("'" + str(v).replace("'", "''") + "'" for v in values)
+
+
+def select(store, where: str | None = None, *, concepts: list[str] | None = None, task: list[str] | None = None,
+           stat: list[str] | None = None, features: str | None = None, min_coverage: float | None = None,
+           target: str = "contrast", group_by: str = "study", with_broader: bool = False,
+           missing: str = "common", min_voxels: int | None = None) -> Selection:
+    """Choose maps and build a :class:`Selection` (see :meth:`mapstore.Store.select`)."""
+    _check_select_options(missing, min_voxels, group_by, min_coverage, concepts=concepts, task=task, stat=stat)
+    fs = store.features(features)
+    cat = store.catalog
+    lab = _labels(cat, with_broader)
+    q, base_q = _selection_sql(cat, fs.name, where, task, stat, _concept_ids(lab, concepts, with_broader),
+                               fs.target.second_halves("c"))
+    try:
+        df = cat.sql(q).to_pandas()
+        n_matching = cat.sql(base_q).column(0)[0].as_py()
+    except QueryError as exc:
+        raise QueryError(f"selection {where!r}: {exc}") from exc
+    dropped = {}
+    if n_matching > len(df):
+        dropped["no feature row"] = int(n_matching - len(df))
+    if min_coverage is not None:
+        low = df["coverage"] < min_coverage
+        if low.any():
+            dropped[f"coverage < {min_coverage:g}"] = int(low.sum())
+        df = df[~low].reset_index(drop=True)
+    if df.empty:
+        raise QueryError(f"the selection is empty (dropped: {dropped or 'none'}); loosen the filters. "
+                         + _present_values(cat, fs.name))
+    lab = lab[lab.map_id.isin(set(df.map_id))]
+    by_map = lab.groupby("map_id")["concept"].apply(lambda s: sorted(set(s))).to_dict()
+    df["concepts"] = [by_map.get(m, []) for m in df.map_id]
+    y, Y, concept_list = _targets(df, target, concepts)
+    groups = _groups(df, group_by)
+    query = {"where": where, "concepts": concepts, "task": task, "stat": stat, "features": fs.name,
+             "min_coverage": min_coverage, "target": target, "group_by": group_by, "with_broader": with_broader,
+             "missing": missing, "min_voxels": min_voxels, "sql": q}
+    return Selection(store, fs, df, y, Y, concept_list, groups, group_by, target, query, dropped, missing,
+                     min_voxels)
+
+
+def _check_select_options(missing: str, min_voxels: int | None, group_by: str, min_coverage: float | None,
+                          **lists: list[str] | None) -> None:
+    if missing not in MISSING_POLICIES:
+        raise ParameterError(f"missing must be one of {list(MISSING_POLICIES)}, got {missing!r}")
+    if min_voxels is not None and (not isinstance(min_voxels, int) or min_voxels < 1):
+        raise ParameterError(f"min_voxels must be a positive integer, got {min_voxels!r}")
+    if group_by not in GROUP_COLUMNS:
+        raise ParameterError(f"group_by must be one of {sorted(GROUP_COLUMNS)}, got {group_by!r}")
+    if min_coverage is not None and not 0 <= min_coverage <= 1:
+        raise ParameterError(f"min_coverage must be in [0, 1], got {min_coverage!r}")
+    for name, val in lists.items():
+        if val is not None and (isinstance(val, str) or not all(isinstance(v, str) for v in val)):
+            raise ParameterError(f"{name} must be a list of strings, got {val!r}")
+
+
+def _concept_ids(lab, concepts: list[str] | None, with_broader: bool) -> list[str] | None:
+    """Ids of the maps labelled with one of ``concepts`` (None: no concept filter)."""
+    if not concepts:
+        return None
+    known = set(lab["concept"])
+    if not known:
+        raise QueryError("the store has no labels; run 'mapstore labels --store DIR --vocab FILE' first")
+    unknown = sorted(set(concepts) - known)
+    if unknown:
+        raise QueryError(f"concept(s) {unknown} label no map; labelled concepts: {sorted(known)}"
+                         + ("" if with_broader else " (broader concepts count with with_broader=True)"))
+    return sorted(set(lab.loc[lab["concept"].isin(concepts), "map_id"]))
+
+
+def _selection_sql(cat, feature_set: str, where: str | None, task: list[str] | None, stat: list[str] | None,
+                   ids: list[str] | None, second_halves: str | None = None) -> tuple[str, str]:
+    """The query of the selected maps with their feature rows, and the count of maps matching at all.
+
+    In a surface set a hemisphere pair is one row, under its left file's map_id: the right file of a
+    pair (``second_halves``, an SQL condition over ``c``) is not counted as a map without a row.
+    """
+    maps_cols = set(cat.sql("DESCRIBE maps")["column_name"].to_pylist())
+    p_cols = [c for c in cat.sql("DESCRIBE participants")["column_name"].to_pylist()
+              if c not in maps_cols and c != "participant_id"]
+    p_sel = "".join(f', p."{c}"' for c in p_cols)
+    conds = []
+    if where:
+        conds.append(f"({where})")
+    if task:
+        conds.append(f"task IN ({_sql_list(task)})")
+    if stat:
+        # stat labels are matched case-insensitively: a user's T is nilearn's t, f is F
+        conds.append(f"lower(stat) IN ({_sql_list(v.lower() for v in stat)})")
+    if ids is not None:
+        conds.append(f"map_id IN ({_sql_list(ids)})")
+    # the WHERE predicate sees maps, participants' extra columns, and `concepts` (direct labels)
+    inner = (f"SELECT m.*{p_sel}, coalesce(l.concepts, []) AS concepts FROM maps m LEFT JOIN participants p "
+             "ON p.dataset = m.dataset AND p.sub = m.sub LEFT JOIN (SELECT map_id, list(concept ORDER BY concept) "
+             "AS concepts FROM labels WHERE direct GROUP BY map_id) l ON l.map_id = m.map_id")
+    chosen = f"SELECT * FROM ({inner}) AS m" + (" WHERE " + " AND ".join(conds) if conds else "")
+    # the set's rows are filtered by the selected ids first (a semi join built on the selection), so
+    # a million-row rows table is streamed, never held in a hash table
+    q = (f"WITH s AS MATERIALIZED ({chosen}), f AS (SELECT map_id, coverage, feature_key, conversion, shard, "
+         f"\"row\", row_sha256 FROM features WHERE feature_set = '{feature_set}' AND map_id IN (SELECT map_id FROM s)) "
+         "SELECT s.*, f.coverage, f.feature_key, f.conversion, f.shard AS feature_shard, f.\"row\" AS feature_row, "
+         "f.row_sha256 AS feature_row_sha256 FROM s JOIN f ON f.map_id = s.map_id ORDER BY s.map_id")
+    count = f"SELECT count(*) FROM ({chosen})"
+    if second_halves:
+        count += f" AS c WHERE NOT ({second_halves})"
+    return q, count
+
+
+def _targets(df, target: str, concepts: list[str] | None):
+    """``y`` (one label per map) or ``Y`` (multi-label indicators, with their concept list)."""
+    import pandas as pd
+
+    y = Y = None
+    concept_list: list[str] = []
+    if target == "contrast":
+        y = df["contrast"].to_numpy(object)
+    elif target == "concept":
+        keep = set(concepts) if concepts else None
+        chosen = [[c for c in cs if keep is None or c in keep] for cs in df["concepts"]]
+        bad = [(m, c) for m, c in zip(df.map_id, chosen) if len(c) != 1]
+        if bad:
+            ex = ", ".join(f"{m} {c or '(none)'}" for m, c in bad[:5])
+            raise QueryError(f"target 'concept' needs exactly one concept per map; {len(bad)} map(s) have "
+                             f"none or several (e.g. {ex}); choose concepts=[...] that do not overlap, or use "
+                             "target='concepts' for a multi-label indicator matrix")
+        y = np.array([c[0] for c in chosen], dtype=object)
+    elif target == "concepts":
+        concept_list = sorted(set(concepts) if concepts else {c for cs in df["concepts"] for c in cs})
+        idx = {c: i for i, c in enumerate(concept_list)}
+        Y = np.zeros((len(df), len(concept_list)), dtype=np.uint8)
+        for r, cs in enumerate(df["concepts"]):
+            for c in cs:
+                if c in idx:
+                    Y[r, idx[c]] = 1
+    elif target in df.columns:
+        y = df[target].to_numpy(object)
+        if pd.isna(df[target]).any():
+            raise QueryError(f"target column {target!r} is empty for {int(pd.isna(df[target]).sum())} map(s)")
+    else:
+        raise ParameterError(f"target must be one of {list(_TARGET_KINDS)} or a column of maps, got {target!r}")
+    return y, Y, concept_list
+
+
+def _groups(df, group_by: str) -> np.ndarray:
+    gcol = GROUP_COLUMNS[group_by]
+    if df[gcol].isna().any():
+        n = int(df[gcol].isna().sum())
+        raise QueryError(f"{n} selected map(s) have no {group_by} (e.g. {df.loc[df[gcol].isna(), 'map_id'].iloc[0]}); "
+                         f"set it with an origins file ('mapstore index --origins'), or group by study")
+    return df[gcol].to_numpy(object)

@@ -1,0 +1,687 @@
+"""The store on disk: Parquet catalog snapshots, feature shards, one atomic pointer.
+
+Layout of a store folder::
+
+    store.json                 marker: format name and version
+    HEAD                       JSON pointer to the current snapshot of everything
+    catalog/<snapshot>/        maps, datasets, participants, problems[, labels] .parquet
+    features/<set>/            set.json, mask.npy, shard-*.npy, rows-<snapshot>.parquet
+    .lock                      advisory lock held by the one writer
+
+A writer creates new files only, then replaces ``HEAD`` with one ``os.replace``:
+a reader (or a crash) sees the old snapshot or the new one, never half of one.
+Source datasets are never written to.
+"""
+
+from __future__ import annotations
+
+import contextlib
+import fcntl
+import json
+import os
+import re
+import shutil
+import time
+import uuid
+from pathlib import Path
+from typing import Any, Iterator
+
+import pyarrow as pa
+import pyarrow.parquet as pq
+
+from ._tables import (
+
+    COPIES_SCHEMA,
+
+    DATASETS_SCHEMA,
+
+    FEATURE_SETS_SCHEMA,
+
+    FPROBLEMS_SCHEMA,
+
+    LABELS_SCHEMA,
+
+    MAPS_SCHEMA,
+
+    MAPS_SCHEMA_ID,
+
+    PARTICIPANTS_SCHEMA,
+
+    PARTS_DIR,
+
+    PROBLEMS_SCHEMA,
+
+    ROWS_SCHEMA,
+
+    CatalogManifest,
+
+    CatalogPart,
+
+    FeatureSetSpec,
+
+    Head,
+
+    conform,
+
+)
+from ..errors import (
+    MapstoreError,
+    NoCatalog,
+    QueryError,
+    StaleSnapshot,
+    StoreBusy,
+    StoreCorrupt,
+    StoreNotFound,
+    StoreUnwritable,
+)
+
+__all__ = [
+    "STORE_FORMAT",
+    "MAPS_SCHEMA",
+    "MAPS_SCHEMA_ID",
+    "PARTS_DIR",
+    "DATASETS_SCHEMA",
+    "PROBLEMS_SCHEMA",
+    "ROWS_SCHEMA",
+    "FPROBLEMS_SCHEMA",
+    "Head",
+    "write_lock",
+    "read_head",
+    "commit_head",
+    "new_snapshot_id",
+    "file_slug",
+    "write_parquet_atomic",
+    "write_json_atomic",
+    "checkpoint",
+    "Catalog",
+    "CatalogManifest",
+    "CatalogPart",
+    "conform",
+    "ensure_store",
+]
+
+STORE_FORMAT = {"format": "mapstore-store", "version": 1}
+
+def file_slug(text: str, limit: int = 40) -> str:
+    """A dataset key (which may hold '/') as part of a file name in the store."""
+    return re.sub(r"[^A-Za-z0-9._-]+", "_", text)[:limit] or "_"
+
+
+def new_snapshot_id() -> str:
+    """Ids sort in creation order (to the microsecond), which garbage collection relies on."""
+    now = time.time_ns()
+    return time.strftime("%Y%m%dT%H%M%S", time.gmtime(now // 10 ** 9)) + f".{now // 1000 % 10 ** 6:06d}-" + \
+        uuid.uuid4().hex[:8]
+
+
+def ensure_store(path: str | os.PathLike[str]) -> Path:
+    """Create an empty store folder (or check an existing one) and return its path."""
+    p = Path(path).expanduser().absolute()
+    marker = p / "store.json"
+    if p.exists() and not p.is_dir():
+        raise StoreCorrupt(f"{p}: exists and is not a folder; choose another --store path")
+    if p.is_dir() and not marker.exists():
+        # a creation killed before its marker was in place leaves only its temporary marker
+        for left in p.glob(".store.json.*.tmp"):
+            with contextlib.suppress(OSError):
+                left.unlink()
+        if any(p.iterdir()):
+            raise StoreCorrupt(f"{p}: folder exists, is not empty and is not a mapstore store; "
+                               "choose an empty or new folder for --store")
+    try:
+        p.mkdir(parents=True, exist_ok=True)
+        if not marker.exists():
+            write_json_atomic(marker, STORE_FORMAT)
+    except OSError as exc:
+        raise StoreUnwritable(f"{p}: cannot create the store here ({exc.strerror}); choose a folder you can "
+                              "write (--store)") from exc
+    return p
+
+
+def _check_store(p: Path) -> None:
+    marker = p / "store.json"
+    if not marker.exists():
+        raise StoreNotFound(f"{p}: no mapstore store here (no store.json); run 'mapstore index ROOT "
+                            f"--store {p}' first")
+    try:
+        doc = json.loads(marker.read_text())
+    except (OSError, ValueError) as exc:
+        raise StoreCorrupt(f"{marker}: unreadable store marker ({exc})") from exc
+    if doc.get("format") != STORE_FORMAT["format"] or doc.get("version", 0) > STORE_FORMAT["version"]:
+        raise StoreCorrupt(f"{marker}: store format {doc} is not one this mapstore reads "
+                           f"({STORE_FORMAT}); upgrade mapstore")
+
+
+@contextlib.contextmanager
+def write_lock(path: Path) -> Iterator[None]:
+    """Hold the store's single-writer lock, failing at once if another process has it."""
+    try:
+        lock = open(path / ".lock", "a+")
+    except OSError as exc:
+        raise StoreUnwritable(f"{path}: this store cannot be written from here ({exc.strerror}); reading it "
+                              "(sql, check, export to a folder of yours, verify) works. Ask whoever owns it to "
+                              "run this, or copy the store to a folder you can write") from exc
+    try:
+        try:
+            fcntl.flock(lock.fileno(), fcntl.LOCK_EX | fcntl.LOCK_NB)
+        except BlockingIOError as exc:
+            raise StoreBusy(f"{path}: another mapstore process is writing to this store; "
+                            "wait for it to finish and run the command again") from exc
+        yield
+    finally:
+        with contextlib.suppress(OSError):
+            fcntl.flock(lock.fileno(), fcntl.LOCK_UN)
+        lock.close()
+
+
+def read_head(path: Path) -> Head:
+    _check_store(path)
+    f = path / "HEAD"
+    if not f.exists():
+        return Head()
+    try:
+        return Head.from_json(json.loads(f.read_text()))
+    except (OSError, ValueError) as exc:
+        raise StoreCorrupt(f"{f}: unreadable ({exc}); restore it from a backup or re-index") from exc
+
+
+def _fsync_dir(path: Path) -> None:
+    with contextlib.suppress(OSError):
+        fd = os.open(path, os.O_RDONLY)
+        try:
+            os.fsync(fd)
+        finally:
+            os.close(fd)
+
+
+def checkpoint() -> None:
+    """A point where a crash must leave the store consistent; a test hook can kill the process here.
+
+    With ``MAPSTORE_TEST_KILL_COUNTER=FILE`` and ``MAPSTORE_TEST_KILL_AFTER=N`` set, every
+    checkpoint (in any process) adds a byte to FILE and the N-th one sends this process SIGKILL.
+    Unset, it costs one environment lookup.
+    """
+    counter = os.environ.get("MAPSTORE_TEST_KILL_COUNTER")
+    if not counter:
+        return
+    with open(counter, "ab") as fh:
+        fh.write(b".")
+    if os.path.getsize(counter) >= int(os.environ.get("MAPSTORE_TEST_KILL_AFTER", "0") or 0) > 0:
+        import signal
+
+        os.kill(os.getpid(), signal.SIGKILL)
+
+
+def write_json_atomic(path: Path, doc: Any) -> None:
+    checkpoint()
+    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}.tmp")
+    with open(tmp, "w") as fh:
+        json.dump(doc, fh, indent=1, sort_keys=True, default=str)
+        fh.flush()
+        os.fsync(fh.fileno())
+    checkpoint()
+    os.replace(tmp, path)
+    _fsync_dir(path.parent)
+    checkpoint()
+
+
+def replace_dir(tmp: Path, out: Path) -> None:
+    """Put the finished folder ``tmp`` at ``out`` in one step, and delete what ``out`` held.
+
+    On Linux the two are swapped by one ``renameat2(RENAME_EXCHANGE)`` call: a reader sees the
+    old folder or the new one, never neither.  Where the kernel or file system cannot swap, the
+    old folder is renamed aside first (a moment with no folder at ``out``).
+    """
+    checkpoint()
+    if out.exists() and _exchange(tmp, out):
+        checkpoint()
+        shutil.rmtree(tmp, ignore_errors=True)  # tmp's name now holds the old folder
+    elif out.exists():
+        old = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.old"
+        os.replace(out, old)
+        checkpoint()
+        os.replace(tmp, out)
+        shutil.rmtree(old, ignore_errors=True)
+    else:
+        os.replace(tmp, out)
+    _fsync_dir(out.parent)
+    checkpoint()
+
+
+def _exchange(a: Path, b: Path) -> bool:
+    """Swap two paths atomically (Linux ``renameat2`` with ``RENAME_EXCHANGE``); False where unsupported."""
+    import ctypes
+    import errno
+    import sys
+
+    if not sys.platform.startswith("linux"):
+        return False
+    try:
+        fn = ctypes.CDLL(None, use_errno=True).renameat2
+    except (OSError, AttributeError):  # a C library without renameat2 (glibc < 2.28, musl < 1.2.?)
+        return False
+    fn.argtypes = [ctypes.c_int, ctypes.c_char_p, ctypes.c_int, ctypes.c_char_p, ctypes.c_uint]
+    fn.restype = ctypes.c_int
+    at_fdcwd, rename_exchange = -100, 2  # <fcntl.h> AT_FDCWD, <linux/fs.h> RENAME_EXCHANGE
+    if fn(at_fdcwd, os.fsencode(a), at_fdcwd, os.fsencode(b), rename_exchange) == 0:
+        return True
+    err = ctypes.get_errno()
+    if err in (errno.ENOSYS, errno.EINVAL, errno.EOPNOTSUPP):
+        return False
+    raise OSError(err, os.strerror(err), str(b))
+
+
+def write_parquet_atomic(table: pa.Table, path: Path, row_group_size: int | None = None) -> None:
+    checkpoint()
+    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}.tmp")
+    pq.write_table(table, tmp, compression="zstd", row_group_size=row_group_size)
+    with open(tmp, "rb") as fh:
+        os.fsync(fh.fileno())
+    checkpoint()
+    os.replace(tmp, path)
+    checkpoint()
+
+
+# --- reader leases --------------------------------------------------------------------------
+# A reader (mapstore.open) records which snapshot files it serves in STORE/.readers/; writers'
+# garbage collection keeps every file a live lease names.  A lease is live while its process runs
+# (same host: pid and process start time; another host: for a day).
+
+_LEASES = ".readers"
+_OTHER_HOST_LEASE_S = 24 * 3600
+
+
+def _start_time(pid: int) -> str | None:
+    try:
+        with open(f"/proc/{pid}/stat", "rb") as fh:
+            return fh.read().rsplit(b")", 1)[1].split()[19].decode()  # field 22: start time in ticks
+    except (OSError, IndexError):
+        return None
+
+
+def head_files(head: Head) -> dict[str, Any]:
+    """The files a reader of ``head`` may open later (relative to the store)."""
+    return {"catalog": head.catalog, "labels": head.labels.table if head.labels else None,
+            "features": {n: {"rows": e.rows, "problems": e.problems, "copies": e.copies}
+                         for n, e in head.features.items()}}
+
+
+def take_lease(path: Path, head: Head) -> Path | None:
+    """Record that this process reads ``head``; None when the store cannot be written (read-only)."""
+    import socket
+
+    doc = {"pid": os.getpid(), "start": _start_time(os.getpid()), "host": socket.gethostname(),
+           "time": time.time(), **head_files(head)}
+    folder = path / _LEASES
+    f = folder / f"{os.getpid()}-{uuid.uuid4().hex[:12]}.json"
+    try:
+        folder.mkdir(exist_ok=True)
+        tmp = folder / f".{f.name}.tmp"
+        tmp.write_text(json.dumps(doc))
+        os.replace(tmp, f)
+    except OSError:
+        return None
+    return f
+
+
+def release_lease(lease: Path | None) -> None:
+    if lease is not None:
+        with contextlib.suppress(OSError):
+            lease.unlink()
+
+
+def leased_files(path: Path) -> list[dict[str, Any]]:
+    """The file sets of live leases; leases of ended processes are removed on the way."""
+    import socket
+
+    host = socket.gethostname()
+    out = []  # type: ignore[var-annotated]
+    folder = path / _LEASES
+    if not folder.is_dir():
+        return out
+    for f in folder.glob("*.json"):
+        try:
+            doc = json.loads(f.read_text())
+        except (OSError, ValueError):
+            continue
+        if doc.get("host") == host:
+            live = doc.get("start") is not None and _start_time(int(doc.get("pid", -1))) == doc.get("start")
+        else:
+            live = time.time() - float(doc.get("time", 0)) < _OTHER_HOST_LEASE_S
+        if live:
+            out.append(doc)
+        else:
+            with contextlib.suppress(OSError):
+                f.unlink()
+    return out
+
+
+def commit_head(path: Path, head: Head, event: dict[str, Any]) -> None:
+    """Publish ``head`` as the store's current state (the one atomic step of a write)."""
+    head.history.append({"time": time.strftime("%Y-%m-%dT%H:%M:%S"), **event})
+    write_json_atomic(path / "HEAD", head.to_json())
+    _collect_garbage(path, head)
+    checkpoint()
+
+
+def _collect_garbage(path: Path, head: Head) -> None:
+    # keep the current and the previous catalog snapshot (for readers still on it), every snapshot a
+    # live lease names, and the maps parts those snapshots are made of
+    cat = path / "catalog"
+    if not cat.is_dir():
+        return
+    snaps = sorted((p for p in cat.iterdir() if p.is_dir() and not p.name.startswith(".") and p.name != "parts"),
+                   key=lambda p: p.name)
+    current = Path(head.catalog).name if head.catalog else None
+    keep = {current} | {Path(d["catalog"]).name for d in leased_files(path) if d.get("catalog")}
+    older = [p.name for p in snaps if p.name != current]
+    if older:
+        keep.add(older[-1])
+    for p in snaps:
+        if p.name not in keep:
+            shutil.rmtree(p, ignore_errors=True)
+    parts = path / PARTS_DIR
+    if not parts.is_dir():
+        return
+    used: set[str] = set()
+    for name in keep:
+        if not (cat / name).is_dir():
+            continue
+        try:
+            manifest = CatalogManifest.read(path, f"catalog/{name}")
+        except (OSError, MapstoreError):
+            return  # not sure what is in use: collect nothing
+        for part in manifest.parts:
+            used.update(Path(f).name for f in (part.maps, part.problems) if f)
+    # only the writer (holding the lock) creates parts, so an unlisted one is left by a run that died
+    for f in parts.iterdir():
+        if f.name not in used:
+            with contextlib.suppress(OSError):
+                f.unlink()
+
+
+class Catalog:
+    """Read side of the catalog: a read-only DuckDB whose views read the snapshot's Parquet files.
+
+    Nothing is loaded at open: each query reads the columns and row groups it needs
+    (projection and filter pushdown), so opening a store of a million maps costs what
+    reading its small HEAD costs.
+    """
+
+    TABLES = ("maps", "datasets", "participants", "problems", "labels")
+
+    def __init__(self, path: str | os.PathLike[str], head: Head | None = None) -> None:
+        self.path = Path(path).expanduser().absolute()
+        if not self.path.exists():
+            raise StoreNotFound(f"{self.path}: no such store; run 'mapstore index ROOT --store "
+                                f"{self.path}' first")
+        self.head = head if head is not None else read_head(self.path)
+        self._given: dict[str, pa.Table] = {}
+        self._con = None
+
+    def close(self) -> None:
+        """Close the DuckDB connection (opened again on the next query)."""
+        if self._con is not None:
+            self._con.close()
+            self._con = None
+
+    def require_catalog(self) -> None:
+        """Raise :class:`~mapstore.errors.NoCatalog` when nothing has been indexed into the store."""
+        if not self.head.catalog:
+            raise NoCatalog(f"{self.path}: the store has no catalog yet; run 'mapstore index ROOT --store "
+                            f"{self.path}' first")
+
+    def manifest(self) -> CatalogManifest:
+        """The maps parts of the opened snapshot."""
+        if not self.head.catalog:
+            return CatalogManifest()
+        try:
+            return CatalogManifest.read(self.path, self.head.catalog)
+        except FileNotFoundError as exc:
+            self._raise_missing(Path(exc.filename or self.head.catalog))
+            raise
+
+    def use_table(self, name: str, table: pa.Table) -> None:
+        """Serve ``name`` from ``table`` instead of its file (labels derived for a newer catalog)."""
+        if self._con is not None:
+            raise RuntimeError("use_table must be called before the first query")
+        self._given[name] = table
+
+    def table(self, name: str) -> pa.Table:
+        """A whole catalog table (all rows, all columns): prefer :meth:`sql` with a WHERE."""
+        return self.sql(f'SELECT * FROM "{name}"')
+
+    def _raise_missing(self, p: Path) -> None:
+        """A file of the opened snapshot is gone: stale (the store moved on) or corrupt."""
+        try:
+            now = read_head(self.path)
+        except MapstoreError:
+            now = None
+        if now is not None and now.to_json() != self.head.to_json():
+            raise StaleSnapshot(f"{self.path}: the store changed since it was opened (index, features or labels "
+                                f"ran) and the snapshot this reader serves was collected ({p.name}); open it "
+                                "again with mapstore.open()")
+        raise StoreCorrupt(f"{p}: catalog file missing; re-run 'mapstore index'")
+
+    def connection(self):
+        """A DuckDB connection with one view per table; file access limited to this store."""
+        if self._con is None:
+            import duckdb
+
+            con = duckdb.connect(":memory:")
+            con.execute("SET parquet_metadata_cache = true")
+            try:
+                self._views(con)
+            except duckdb.IOException as exc:  # a view binds to its files: a part may be gone
+                self._io_error(exc)
+            con.execute(f"SET allowed_directories = [{_sql_str(str(self.path) + os.sep)}]")
+            con.execute("SET enable_external_access = false")
+            con.execute("SET lock_configuration = true")
+            self._con = con
+        return self._con
+
+    def _io_error(self, exc: Exception) -> None:
+        missing = _missing_file(str(exc))
+        if missing is not None:
+            self._raise_missing(Path(missing))
+        raise StoreCorrupt(f"{self.path}: cannot read the catalog ({exc}); re-run 'mapstore index'") from exc
+
+    def _views(self, con) -> None:
+        """One view per table, reading the snapshot's files at query time."""
+        views = _ViewBuilder(con, self)
+        manifest = self.manifest()
+        views.files("maps", MAPS_SCHEMA, [self.path / p.maps for p in manifest.parts],
+                    current=all(p.schema == MAPS_SCHEMA_ID for p in manifest.parts))
+        snap = self.path / self.head.catalog if self.head.catalog else None
+        for name, schema in (("datasets", DATASETS_SCHEMA), ("problems", PROBLEMS_SCHEMA),
+                             ("participants", PARTICIPANTS_SCHEMA)):
+            f = snap / f"{name}.parquet" if snap else None
+            if f is not None and not f.exists() and name != "participants":
+                self._raise_missing(f)
+            views.files(name, schema, [f] if f is not None and f.exists() else [],
+                        current=name != "participants", loose=name == "participants")
+        labels = self.head.labels and self.path / self.head.labels.table
+        views.files("labels", LABELS_SCHEMA, [labels] if labels else [])
+        self._feature_views(views)
+
+    def _feature_views(self, views: "_ViewBuilder") -> None:
+        """Views over every feature set: rows (``features``), failures, copies, and one row per set."""
+        rows, probs, copies, sets = [], [], [], []  # type: ignore[var-annotated]
+        for name, entry in sorted(self.head.features.items()):
+            try:
+                spec = FeatureSetSpec.read(self.path / entry.dir)
+            except FileNotFoundError as exc:
+                self._raise_missing(Path(exc.filename or entry.dir))
+            except (OSError, ValueError) as exc:
+                raise StoreCorrupt(f"{self.path / entry.dir}: feature set {name!r} unreadable ({exc}); "
+                                   f"rebuild it with 'mapstore features --name {name}'") from exc
+            for kind, out in (("rows", rows), ("problems", probs), ("copies", copies)):
+                if getattr(entry, kind):
+                    f = self.path / getattr(entry, kind)
+                    if not f.exists():
+                        self._raise_missing(f)
+                    out.append((name, f))
+            sets.append({"feature_set": name, "default": name == self.head.default_features,
+                         "rows": entry.n_rows, "grid": spec.grid["name"], "grid_id": spec.grid_id,
+                         "shape": spec.grid["shape"], "mask": spec.mask["name"], "n_voxels": spec.mask["n_voxels"],
+                         "method": spec.method, "stat": spec.stat, "spec_id": spec.spec_id})
+        # the sketch bytes are for the copy scan, not for SQL
+        views.per_set("features", ROWS_SCHEMA, rows, exclude=("sketch",))
+        views.per_set("feature_problems", FPROBLEMS_SCHEMA, probs)
+        views.per_set("feature_copies", COPIES_SCHEMA, copies)
+        if any(s["rows"] is None for s in sets):  # sets written before HEAD counted their rows
+            counts = dict(views.con.sql("SELECT feature_set, count(*) FROM features GROUP BY ALL").fetchall())
+            for s in sets:
+                s["rows"] = counts.get(s["feature_set"], 0)
+        views.literal("feature_sets", FEATURE_SETS_SCHEMA, sets)
+
+    def sql(self, query: str) -> pa.Table:
+        """Run one read-only SQL statement over the catalog views and return an Arrow table."""
+        return self._run(query, lambda rel: rel.to_arrow_table())
+
+    def stream(self, query: str, batch_rows: int = 65536) -> pa.RecordBatchReader:
+        """Like :meth:`sql`, as a stream of Arrow record batches (for results larger than memory)."""
+        return self._run(query, lambda rel: rel.to_arrow_reader(batch_rows))
+
+    def _run(self, query: str, fetch):
+        import duckdb
+
+        con = self.connection()
+        try:
+            statements = con.extract_statements(query)
+        except duckdb.Error as exc:
+            raise QueryError(f"SQL does not parse: {exc}") from exc
+        if len(statements) != 1:
+            raise QueryError(f"give exactly one SQL statement, got {len(statements)}")
+        kind = statements[0].type
+        if kind not in (duckdb.StatementType.SELECT, duckdb.StatementType.EXPLAIN):
+            raise QueryError(f"only read-only queries (SELECT, WITH ... SELECT) are allowed, "
+                             f"got a {kind.name} statement; the catalog is changed by "
+                             "'mapstore index', 'features' and 'labels'")
+        try:
+            return fetch(con.sql(query))  # DuckDB runs the query (and opens the files) in fetch
+        except duckdb.IOException as exc:
+            self._io_error(exc)
+        except duckdb.Error as exc:
+            raise QueryError(f"{exc}\n(views: {', '.join(self.TABLES)}, features, feature_sets, "
+                             f"feature_problems, feature_copies; see 'mapstore sql --store "
+                             f"{self.path} \"DESCRIBE maps\"')") from exc
+
+
+def _missing_file(message: str) -> str | None:
+    import re
+
+    hit = re.search(r'(?:No files found that match the pattern|[Cc]annot open file) "([^"]+)"', message)
+    return hit.group(1) if hit else None
+
+
+def _sql_str(text: str) -> str:
+    return "'" + text.replace("'", "''") + "'"
+
+
+_DUCK_TYPES = {pa.string(): "VARCHAR", pa.int32(): "INTEGER", pa.int64(): "BIGINT", pa.float64(): "DOUBLE",
+               pa.bool_(): "BOOLEAN", pa.binary(): "BLOB"}
+
+
+def _duck_type(t: pa.DataType) -> str:
+    if pa.types.is_list(t):
+        return _duck_type(t.value_type) + "[]"
+    return _DUCK_TYPES[t]
+
+
+def _sql_value(v: Any, t: pa.DataType) -> str:
+    if v is None:
+        return f"NULL::{_duck_type(t)}"
+    if pa.types.is_list(t):
+        return "[" + ", ".join(_sql_value(x, t.value_type) for x in v) + f"]::{_duck_type(t)}"
+    if pa.types.is_boolean(t):
+        return "true" if v else "false"
+    if pa.types.is_string(t):
+        return _sql_str(str(v))
+    return f"{v!r}::{_duck_type(t)}"
+
+
+class _ViewBuilder:
+    """Creates the catalog's views: over Parquet files (read at query time) or small literal tables.
+
+    Views are plain SQL: registering an Arrow table with DuckDB imports pandas (~0.2 s), which
+    would be most of the cost of opening a store.
+    """
+
+    def __init__(self, con, cat: Catalog) -> None:
+        self.con = con
+        self.cat = cat
+
+    @staticmethod
+    def _empty(schema: pa.Schema) -> str:
+        return "SELECT " + ", ".join(f'NULL::{_duck_type(f.type)} AS "{f.name}"' for f in schema) + " WHERE false"
+
+    def literal(self, name: str, schema: pa.Schema, rows: list[dict[str, Any]]) -> None:
+        """A view holding ``rows`` (a few: one per feature set)."""
+        if not rows:
+            body = self._empty(schema)
+        else:
+            values = ", ".join("(" + ", ".join(_sql_value(r.get(f.name), f.type) for f in schema) + ")" for r in rows)
+            names = ", ".join(f'"{f.name}"' for f in schema)
+            body = f"SELECT * FROM (VALUES {values}) AS t({names})"
+        self.con.execute(f'CREATE VIEW "{name}" AS {body}')
+
+    def arrow(self, name: str, table: pa.Table) -> None:
+        self.con.register(f"_t_{name}", table)
+        self.con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM "_t_{name}"')
+
+    def _source(self, schema: pa.Schema, files: list[Path], current: bool, loose: bool) -> str:
+        """A FROM clause with exactly ``schema``'s columns (files of older versions lack some)."""
+        lst = "[" + ", ".join(_sql_str(str(f)) for f in files) + "]"
+        if loose:  # participants: columns vary by store; every file's columns, whatever they are
+            return f"read_parquet({lst}, union_by_name = true)"
+        if current:
+            return f"read_parquet({lst})"
+        cols = ", ".join(f'"{f.name}"' for f in schema)
+        return f"(SELECT {cols} FROM ({self._empty(schema)} UNION ALL BY NAME " \
+               f"FROM read_parquet({lst}, union_by_name = true)))"
+
+    def files(self, name: str, schema: pa.Schema, files: list[Path], current: bool = True,
+              loose: bool = False) -> None:
+        if name in self.cat._given:
+            self.arrow(name, self.cat._given[name])
+        elif not files:
+            self.con.execute(f'CREATE VIEW "{name}" AS {self._empty(schema)}')
+        else:
+            self.con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM {self._source(schema, files, current, loose)}')
+
+    def per_set(self, name: str, schema: pa.Schema, files: list[tuple[str, Path]], exclude: tuple[str, ...] = ()
+                ) -> None:
+        """One view over a table of every feature set, with a ``feature_set`` column first."""
+        if not files:
+            empty = pa.schema([("feature_set", pa.string()), *[f for f in schema if f.name not in exclude]])
+            self.con.execute(f'CREATE VIEW "{name}" AS {self._empty(empty)}')
+            return
+        drop = f" EXCLUDE ({', '.join(exclude)})" if exclude else ""
+        parts = [f"SELECT {_sql_str(set_name)} AS feature_set, *{drop} FROM {self._source(schema, [f], False, False)}"
+                 for set_name, f in files]
+        self.con.execute(f'CREATE VIEW "{name}" AS ' + " UNION ALL ".join(parts))
+
+
+def collect_feature_garbage(store: Path, set_dir: Path, current: str, previous: str | None) -> None:
+    """Delete shards and rows tables that neither the current, the previous, nor a live reader's uses."""
+    keep_tables = {Path(current).name} | ({Path(previous).name} if previous else set())
+    for lease in leased_files(store):
+        entry = (lease.get("features") or {}).get(set_dir.name) or {}
+        if entry.get("rows"):
+            keep_tables.add(Path(entry["rows"]).name)
+    keep_tables = {t for t in keep_tables if (set_dir / t).exists()}
+    used: set[str] = set()
+    for t in keep_tables:
+        used |= set(pq.read_table(set_dir / t, columns=["shard"])["shard"].to_pylist())
+    for p in set_dir.glob("rows-*.parquet"):
+        if p.name not in keep_tables:
+            p.unlink(missing_ok=True)
+            for kind in ("problems-", "copies-"):
+                (set_dir / p.name.replace("rows-", kind)).unlink(missing_ok=True)
+    for p in (set_dir / "shards").glob("shard-*.npy"):
+        if p.name not in used:
+            p.unlink(missing_ok=True)
+    for p in (set_dir / "shards").glob("*.tmp"):
+        if time.time() - p.stat().st_mtime > 3600:  # left by a crashed run
+            p.unlink(missing_ok=True)

@@ -1,0 +1,292 @@
+"""What the store holds: the Arrow schema of every table and the records of HEAD and snapshots.
+
+One home for each: a new ``maps`` column is one edit here plus its producer (``catalog``);
+readers, writers and the JSON Schemas (``schemas.py``) all take them from this module.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+from dataclasses import dataclass, field, fields
+from pathlib import Path
+from typing import Any
+
+import pyarrow as pa
+
+from ..errors import StoreCorrupt
+
+__all__ = [
+    "MAPS_SCHEMA", "MAPS_SCHEMA_ID", "DATASETS_SCHEMA", "PROBLEMS_SCHEMA", "PARTICIPANTS_SCHEMA", "LABELS_SCHEMA",
+    "ROWS_SCHEMA", "FPROBLEMS_SCHEMA", "COPIES_SCHEMA", "FEATURE_SETS_SCHEMA", "PARTS_DIR",
+    "Head", "FeatureEntry", "LabelsEntry", "FeatureSetSpec", "CatalogPart", "CatalogManifest", "conform", "arrow_to_json_schema", "SCHEMA_BASE",
+]
+
+SCHEMA_BASE = "https://mapstore.invalid/schemas/"
+
+_s, _i32, _i64, _f64 = pa.string(), pa.int32(), pa.int64(), pa.float64()
+MAPS_SCHEMA = pa.schema([
+    ("map_id", _s), ("dataset", _s), ("relpath", _s),
+    ("sub", _s), ("ses", _s), ("task", _s), ("acq", _s), ("run", _s), ("rec", _s),
+    ("space", _s), ("res", _s), ("den", _s), ("hemi", _s), ("desc", _s), ("contrast", _s), ("stat", _s), ("map_kind", _s),
+    ("suffix", _s), ("extension", _s), ("entities", _s), ("named_by", _s),
+    ("participant", _s), ("study", _s), ("site", _s), ("lab", _s),
+    ("sha256", _s), ("nbytes", _i64), ("mtime_ns", _i64),
+    ("nifti_version", _i32), ("endianness", _s), ("shape", pa.list_(_i64)), ("n_volumes", _i64),
+    ("dtype", _s), ("bitpix", _i32), ("vox_offset", _i64),
+    ("scl_slope", _f64), ("scl_inter", _f64), ("intent_code", _i32), ("intent_name", _s), ("intent_p1", _f64),
+    ("qform_code", _i32), ("sform_code", _i32), ("affine_source", _s),
+    ("affine", pa.list_(_f64)), ("voxel_size", pa.list_(_f64)), ("orientation", _s),
+    ("grid_id", _s), ("descrip", _s), ("dof", _f64), ("dof_source", _s), ("model_mask", _s),
+    ("model_mask_sha256", _s), ("metadata", _s), ("sidecars", pa.list_(_s)),
+    ("header_warnings", pa.list_(_s)),
+    # surface maps: 'volume' (NIfTI), 'surface' (GIFTI, one hemisphere per file) or 'grayordinates'
+    # (CIFTI-2); the values per map; CIFTI structures; the map_id of the other hemisphere's file
+    ("geometry", _s), ("n_vertices", _i64), ("structures", _s), ("linked_map", _s),
+])
+DATASETS_SCHEMA = pa.schema([
+    ("dataset", _s), ("name", _s), ("study", _s), ("root", _s), ("dataset_type", _s),
+    ("generated_by", _s), ("bids_version", _s), ("raw_root", _s), ("raw_name", _s),
+    ("participants_file", _s), ("n_maps", _i64), ("description", _s),
+])
+ROWS_SCHEMA = pa.schema([
+    ("map_id", _s), ("feature_key", _s), ("sha256", _s),
+    ("shard", _s), ("row", _i64), ("coverage", _f64),
+    ("stat_in", _s), ("stat_out", _s), ("conversion", _s),
+    ("resample_path", _s), ("built_at", _s), ("row_sha256", _s),
+    ("vmin", _f64), ("vmax", _f64), ("vmean", _f64),
+    ("missing_from", _s), ("p_clipped", _i64), ("sketch", pa.binary()),
+    ("source_key", _s),  # parcel sets: the feature_key of the source set's row
+])
+# pairs of rows of one feature set that are copies (written by features, read by check and export)
+COPIES_SCHEMA = pa.schema([("map_a", _s), ("map_b", _s), ("kind", _s), ("r", _f64), ("n_common", _i64)])
+FPROBLEMS_SCHEMA = pa.schema([
+    ("map_id", _s), ("path", _s), ("code", _s), ("reason", _s),
+    ("remedy", _s),
+])
+
+
+# the fixed columns; participants.tsv adds its own
+PARTICIPANTS_SCHEMA = pa.schema([("dataset", _s), ("participant_id", _s), ("sub", _s), ("participant", _s)])
+LABELS_SCHEMA = pa.schema([("map_id", _s), ("concept", _s), ("direct", pa.bool_()), ("rule", _i32),
+                           ("vocabulary_sha256", _s)])
+FEATURE_SETS_SCHEMA = pa.schema([("feature_set", _s), ("default", pa.bool_()), ("rows", _i64), ("grid", _s),
+                                 ("grid_id", _s), ("shape", pa.list_(_i64)), ("mask", _s), ("n_voxels", _i64),
+                                 ("method", _s), ("stat", _s), ("spec_id", _s)])
+
+PROBLEMS_SCHEMA = pa.schema([
+    ("path", _s), ("dataset", _s), ("code", _s), ("level", _s), ("stage", _s),
+    ("reason", _s), ("remedy", _s),
+])
+
+
+@dataclass(frozen=True)
+class Problem:
+    """A file that could not be used, or was used with a caveat (level ``warning``): one type for the
+    index's problems table and a feature set's."""
+
+    path: str
+    code: str
+    reason: str
+    remedy: str
+    level: str = "error"
+    dataset: str | None = None
+    stage: str = "discover"
+    map_id: str | None = None  # a feature problem's map
+
+    def row(self, schema: pa.Schema) -> dict[str, Any]:
+        """The record as a row of a table with ``schema`` (the problems or feature_problems table)."""
+        return {name: getattr(self, name) for name in schema.names}
+
+
+class _JsonRecord:
+    """to_json / from_json for the dataclass records of HEAD and set.json."""
+
+    def to_json(self) -> dict[str, Any]:
+        return dict(self.__dict__)
+
+    @classmethod
+    def from_json(cls, doc: dict[str, Any]):
+        """The record from its JSON object; keys it does not know (from newer versions) are ignored."""
+        names = {f.name for f in fields(cls)}  # type: ignore[arg-type]
+        return cls(**{k: v for k, v in doc.items() if k in names})
+
+
+@dataclass
+class FeatureEntry(_JsonRecord):
+    """HEAD's record of one feature set: its folder and the tables of its current state."""
+
+    dir: str
+    rows: str
+    problems: str
+    copies: str | None = None
+    n_rows: int | None = None
+    spec_id: str | None = None
+    catalog: str | None = None  # the catalog snapshot it was built from
+
+
+@dataclass
+class LabelsEntry(_JsonRecord):
+    """HEAD's record of the labels: the table, and the vocabulary (its stored copy) that made it."""
+
+    table: str
+    vocabulary: str | None = None
+    version: str | None = None
+    sha256: str | None = None  # of the vocabulary file as the user gave it
+    source: str | None = None
+    copy: str | None = None  # the stored copy, relative to the store
+    inherit_broader: bool | None = None
+    catalog: str | None = None  # the catalog snapshot it labels
+    concepts: list[str] = field(default_factory=list)
+
+
+@dataclass
+class FeatureSetSpec(_JsonRecord):
+    """``features/<set>/set.json``: everything a set's rows depend on (written once per set)."""
+
+    name: str
+    grid: dict[str, Any]  # name, shape, affine, grid_id
+    grid_id: str
+    mask: dict[str, Any]  # name, n_voxels, sha256
+    mask_sha256: str
+    method: str
+    stat: str
+    p_sided: str
+    zero_as_missing: bool
+    background: str = "keep"
+    kinds: list[str] = field(default_factory=lambda: ["contrast", "model"])
+    where: str | None = None
+    versions: dict[str, str] = field(default_factory=dict)
+    spec_id: str = ""
+    geometry: str = "volume"  # volume, surface or parcels
+    projection: dict[str, Any] | None = None  # surface sets: how volume maps are projected onto the mesh
+    parcels: dict[str, Any] | None = None  # parcel sets: the atlas, the reducer and the source set
+    sketch: str = "count"  # the rows' sketch directions: count (sparse) or gauss (dense, small sets)
+    subjects_dir: str | None = None  # FreeSurfer subjects whose sphere.reg took fsnative maps onto the mesh
+
+    @classmethod
+    def read(cls, folder: Path) -> "FeatureSetSpec":
+        """Read ``folder/set.json`` (OSError and ValueError pass to the caller)."""
+        return cls.from_json(json.loads((folder / "set.json").read_text()))
+
+
+@dataclass
+class Head:
+    """What the store currently serves: one catalog snapshot, the feature sets and the labels."""
+
+    catalog: str | None = None
+    features: dict[str, FeatureEntry] = field(default_factory=dict)
+    default_features: str | None = None
+    labels: LabelsEntry | None = None
+    history: list[dict[str, Any]] = field(default_factory=list)
+
+    def to_json(self) -> dict[str, Any]:
+        return {"catalog": self.catalog, "features": {k: v.to_json() for k, v in self.features.items()},
+                "default_features": self.default_features,
+                "labels": self.labels.to_json() if self.labels else None, "history": self.history[-50:]}
+
+    @classmethod
+    def from_json(cls, doc: dict[str, Any]) -> "Head":
+        labels = doc.get("labels")
+        return cls(doc.get("catalog"), {k: FeatureEntry.from_json(v) for k, v in (doc.get("features") or {}).items()},
+                   doc.get("default_features"), LabelsEntry.from_json(labels) if labels else None,
+                   list(doc.get("history") or []))
+
+
+MAPS_SCHEMA_ID = hashlib.sha256(MAPS_SCHEMA.to_string().encode()).hexdigest()[:16]
+PARTS_DIR = "catalog/parts"
+
+
+@dataclass
+class CatalogPart:
+    """One Parquet part of the maps table: the rows one unit of work (a dataset, or some of its
+    top-level folders) wrote.  Parts are shared between snapshots until their unit changes."""
+
+    dataset: str
+    unit: str  # stable key of the unit of work (dataset + its top folders)
+    maps: str  # path relative to the store
+    rows: int
+    problems: str | None = None  # the unit's problems (Parquet, PROBLEMS_SCHEMA), if it had any
+    digest: str | None = None  # fingerprint of everything the rows were made from; None: never reused
+    schema: str = MAPS_SCHEMA_ID  # MAPS_SCHEMA when written ("" for stores older than parts)
+
+    def to_json(self) -> dict[str, Any]:
+        return dict(self.__dict__)
+
+    @classmethod
+    def from_json(cls, doc: dict[str, Any]) -> "CatalogPart":
+        return cls(**{k: doc.get(k) for k in ("dataset", "unit", "maps", "rows", "problems", "digest")},
+                   schema=doc.get("schema", ""))
+
+
+@dataclass
+class CatalogManifest:
+    """``catalog/<snapshot>/parts.json``: the maps parts a snapshot is made of, in dataset order."""
+
+    parts: list[CatalogPart] = field(default_factory=list)
+
+    FILE = "parts.json"
+
+    def to_json(self) -> dict[str, Any]:
+        return {"format": 2, "parts": [p.to_json() for p in self.parts]}
+
+    @classmethod
+    def from_json(cls, doc: dict[str, Any]) -> "CatalogManifest":
+        return cls([CatalogPart.from_json(d) for d in doc.get("parts") or []])
+
+    @classmethod
+    def read(cls, store: Path, snapshot: str) -> "CatalogManifest":
+        """The manifest of ``snapshot`` (a store-relative folder); a pre-parts snapshot is one part."""
+        folder = store / snapshot
+        f = folder / cls.FILE
+        try:
+            return cls.from_json(json.loads(f.read_text()))
+        except FileNotFoundError:
+            if (folder / "maps.parquet").exists():
+                return cls([CatalogPart("", "", f"{snapshot}/maps.parquet", -1, None, None, "")])
+            raise
+        except (OSError, ValueError) as exc:
+            raise StoreCorrupt(f"{f}: unreadable ({exc}); re-run 'mapstore index'") from exc
+
+
+def conform(table: pa.Table, schema: pa.Schema) -> pa.Table:
+    """A table with exactly ``schema``'s columns: ones added since it was written are null."""
+    cols = [table[f.name].cast(f.type) if f.name in table.column_names else pa.nulls(table.num_rows, f.type)
+            for f in schema]
+    return pa.Table.from_arrays(cols, schema=schema)
+
+
+def _arrow_type(t: pa.DataType) -> dict[str, Any]:
+    if pa.types.is_string(t) or pa.types.is_large_string(t):
+        return {"type": ["string", "null"]}
+    if pa.types.is_integer(t):
+        return {"type": ["integer", "null"]}
+    if pa.types.is_floating(t):
+        return {"type": ["number", "null"]}
+    if pa.types.is_binary(t) or pa.types.is_large_binary(t):
+        return {}  # raw bytes: JSON has no type for them (Parquet stores them as they are)
+    if pa.types.is_boolean(t):
+        return {"type": ["boolean", "null"]}
+    if pa.types.is_list(t) or pa.types.is_large_list(t) or pa.types.is_fixed_size_list(t):
+        return {"type": ["array", "null"], "items": _arrow_type(t.value_type)}
+    return {}
+
+
+def arrow_to_json_schema(name: str, schema: pa.Schema, description: str,
+                         docs: dict[str, str] | None = None) -> dict[str, Any]:
+    """JSON Schema of one row of a catalog table."""
+    props = {}
+    for f in schema:
+        p = dict(_arrow_type(f.type))
+        if docs and f.name in docs:
+            p["description"] = docs[f.name]
+        props[f.name] = p
+    return {
+        "$schema": "https://json-schema.org/draft/2020-12/schema",
+        "$id": SCHEMA_BASE + f"{name}.schema.json",
+        "title": f"mapstore catalog table '{name}' (one row)",
+        "description": description,
+        "type": "object",
+        "properties": props,
+        "required": [schema[0].name],
+    }
