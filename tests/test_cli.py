@@ -81,8 +81,14 @@ def test_ordinary_mistakes_are_one_line_without_traceback(demo_store, tmp_path, 
     write_map(src / "sub-01" / "sub-01_task-go_contrast-a_stat-t_statmap.nii.gz")
     empty = tmp_path / "empty"
     empty.mkdir()
-    (empty / "store.json").write_text('{"format": "mapstore-store", "version": 1}')
+    (empty / "store.json").write_text('{"format": "mapstore-store", "version": 2}')
+    old = tmp_path / "old"  # a store of the format before every part carried the current columns
+    old.mkdir()
+    (old / "store.json").write_text('{"format": "mapstore-store", "version": 1}')
     cases = [
+        (["sql", "--store", str(old), "SELECT 1"], 1,
+         f"error: {old}: written by an older mapstore (store format 1; this one reads format 2); index the "
+         "datasets again into a new folder"),
         (["features", "--store", str(demo_store), "--grid", str(grid)], 2,
          f'error: grid spec {grid}: no shape; expected JSON {{"shape": [x, y, z], "affine": [[...4x4...]]}}'),
         (["sql", "--store", str(demo_store), "--out", str(tmp_path / "no" / "x.csv"), "--format", "csv",

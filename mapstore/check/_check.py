@@ -262,7 +262,7 @@ def _check_grids(store, add, report) -> None:
                     "feature sets", "nothing to do; split a file into 3-D maps if you need its volumes"))
 
 
-_VOLUME = "coalesce(geometry, 'volume') = 'volume'"  # rows indexed before surfaces have no geometry
+_VOLUME = "geometry = 'volume'"
 
 
 def _check_surfaces(store, add, report) -> None:

@@ -162,7 +162,7 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], target
     is its ``linked_map``); an unpaired hemisphere comes alone, the other half missing.
     """
     q = ("SELECT m.map_id, m.dataset, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, "
-         "m.model_mask, m.model_mask_sha256, coalesce(m.geometry, 'volume') AS geometry, m.hemi, m.space, m.sub, ")
+         "m.model_mask, m.model_mask_sha256, m.geometry, m.hemi, m.space, m.sub, ")
     second = target.second_halves("m")
     if second:  # the right hemisphere's file beside the left's
         q += ("r.relpath AS relpath_r, r.sha256 AS sha256_r, r.model_mask AS model_mask_r, "
@@ -194,7 +194,7 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], target
 
 def _left_out(r: dict[str, Any], kinds: tuple[str, ...], stat: str) -> str | None:
     """Why the set's settings leave a catalog map out (None: taken)."""
-    if (r["map_kind"] or "contrast") not in kinds:
+    if r["map_kind"] not in kinds:
         return "model maps (no contrast: residuals, fit; --model-maps takes them)"
     if max(r["n_volumes"] or 1, r["n_volumes_r"] or 1) > 1:
         return "multi-volume maps (e.g. an F contrast's effect, one volume per contrast row)"

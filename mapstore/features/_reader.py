@@ -50,7 +50,7 @@ class FeatureSet:
         return self._rows
 
     def _column(self, name: str) -> pa.ChunkedArray | None:
-        """One column of the rows table (None when the set predates it), read once."""
+        """One column of the rows table (None when the table has no such column), read once."""
         if name not in self._columns:
             if self._rows is not None:
                 self._columns[name] = self._rows[name] if name in self._rows.column_names else None
@@ -184,13 +184,13 @@ class FeatureSet:
         hashes = self._column("row_sha256")
         col = hashes.to_pylist() if hashes is not None else [None] * len(self)
         out = [col[self._pos[m]] for m in map_ids]
-        todo = [i for i, h in enumerate(out) if h is None]  # rows built before hashes were recorded
+        todo = [i for i, h in enumerate(out) if h is None]  # rows written without one (synthetic sets)
         for i, row in zip(todo, self.matrix([map_ids[i] for i in todo])):
             out[i] = hashlib.sha256(row.tobytes()).hexdigest()
         return out
 
     def copies(self) -> pa.Table | None:
-        """Pairs of this set's rows that are copies (``feature_copies``), or None for older sets."""
+        """Pairs of this set's rows that are copies (``feature_copies``), or None when none was stored."""
         if self._copies_path is None:
             return None
         try:
@@ -206,12 +206,10 @@ class FeatureSet:
         col = sketches.to_pylist() if sketches is not None else [None] * len(self)
         got = [col[self._pos[m]] for m in map_ids]
         out = np.zeros((len(map_ids), SKETCH_BITS // 8), dtype=np.uint8)
-        todo = [i for i, g in enumerate(got) if g is None]  # rows built before sketches were recorded
+        todo = [i for i, g in enumerate(got) if g is None]  # rows written without one (synthetic sets)
         for i, g in enumerate(got):
-            if g is not None and len(g) == out.shape[1]:
+            if g is not None:
                 out[i] = np.frombuffer(g, dtype=np.uint8)
-            elif g is not None:
-                todo.append(i)  # a sketch of another size (an earlier version): made again
         if todo:
             sk = Sketcher.for_set(self.spec["mask"]["sha256"], self.n_voxels, self.spec.get("sketch", "count"))
             for k in range(0, len(todo), 64):

@@ -325,7 +325,7 @@ _NOT_REUSED_LEVEL = "error"
 
 def _previous_rows(unit: _Unit) -> pa.Table | None:
     """Rows of the previous snapshot this unit may reuse (header facts of unchanged files)."""
-    if unit.prev_part is not None and unit.prev_part.schema:
+    if unit.prev_part is not None:
         files = [os.path.join(unit.store, unit.prev_part.maps)]
     else:
         files = unit.prev_files
@@ -339,8 +339,6 @@ def _previous_rows(unit: _Unit) -> pa.Table | None:
     except (OSError, pa.ArrowException):
         return None  # not reusable: the files are read again
     t = t.filter(pc.equal(t["dataset"], unit.ds.key))
-    geo = t.schema.get_field_index("geometry")
-    t = t.set_column(geo, "geometry", pc.fill_null(t["geometry"], "volume"))  # parts from before surfaces
     if unit.top is not None and unit.prev_part is None:
         first = pc.list_element(pc.split_pattern(t["relpath"], "/", max_splits=1), 0)
         keep = pc.is_in(first, pa.array(unit.top, pa.string()))
@@ -745,7 +743,7 @@ class _Previous:
 
     def files_of(self, dataset: str) -> list[str]:
         assert self.store is not None or not self.parts
-        return [str(self.store / p.maps) for p in self.parts if p.dataset in (dataset, "")]
+        return [str(self.store / p.maps) for p in self.parts if p.dataset == dataset]
 
     @classmethod
     def load(cls, store: Path, head: Head) -> "_Previous":
@@ -903,8 +901,6 @@ def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: lis
     """Write the snapshot (parts list and small tables) and replace HEAD: the one atomic step."""
     kept_keys = {d["dataset"] for d in plan.kept}
     parts = [p for p in prev.parts if p.dataset in kept_keys]
-    if any(p.dataset == "" for p in prev.parts) and kept_keys:  # a store older than parts: split off the kept
-        parts += _split_legacy(store, prev, sorted(kept_keys))
     for res in results:
         problems.extend(res.problems)
         if res.part is not None:
@@ -952,26 +948,6 @@ def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: lis
     return IndexReport(store=str(store), datasets=len(ds_rows), maps=total, new=new, changed=changed,
                        unchanged=unchanged, removed=max(0, before - changed - unchanged),
                        problems=len(prob_rows), kept_datasets=len(plan.kept), seconds=0.0, problem_codes=codes)
-
-
-def _split_legacy(store: Path, prev: _Previous, keys: list[str]) -> list[CatalogPart]:
-    """Parts for datasets kept from a one-file catalog (written before parts existed)."""
-    import pyarrow.compute as pc
-
-    out = []
-    for f in prev.files_of(""):
-        t = pq.read_table(f)
-        for key in keys:
-            sub = t.filter(pc.equal(t["dataset"], key))
-            if sub.num_rows:
-                cols = [sub[c] if c in sub.column_names else pa.nulls(sub.num_rows, fld.type) for c, fld in
-                        ((fld.name, fld) for fld in MAPS_SCHEMA)]
-                sub = pa.Table.from_arrays(cols, schema=MAPS_SCHEMA)
-                name = f"{PARTS_DIR}/kept-{new_snapshot_id()}.parquet"
-                (store / PARTS_DIR).mkdir(parents=True, exist_ok=True)
-                write_parquet_atomic(sub, store / name, row_group_size=_ROW_GROUP)
-                out.append(CatalogPart(key, f"{key}|kept", name, sub.num_rows))
-    return out
 
 
 def _relabel(store: Path, head: Head) -> None:

@@ -287,7 +287,7 @@ class Selection:
             raise ParameterError(f"near_copy_r must be in (0, 1], got {thr!r}")
         ids = self.map_ids
         table = self.feature_set.copies() if thr >= STORE_FLOOR else None
-        if table is None:  # a set built before copies were recorded, or a threshold below the stored pairs'
+        if table is None:  # no stored pairs, or a threshold below the stored pairs' floor
             table = find_copies(self.feature_set, ids, floor=thr)
         pos = {m: i for i, m in enumerate(ids)}
         out = []

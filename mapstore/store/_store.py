@@ -100,7 +100,8 @@ __all__ = [
     "ensure_store",
 ]
 
-STORE_FORMAT = {"format": "mapstore-store", "version": 1}
+# version 2: every part and table has the current columns (stores of version 1 are indexed again)
+STORE_FORMAT = {"format": "mapstore-store", "version": 2}
 
 def file_slug(text: str, limit: int = 40) -> str:
     """A dataset key (which may hold '/') as part of a file name in the store."""
@@ -150,6 +151,10 @@ def _check_store(p: Path) -> None:
     if doc.get("format") != STORE_FORMAT["format"] or doc.get("version", 0) > STORE_FORMAT["version"]:
         raise StoreCorrupt(f"{marker}: store format {doc} is not one this mapstore reads "
                            f"({STORE_FORMAT}); upgrade mapstore")
+    if doc.get("version", 0) < STORE_FORMAT["version"]:
+        raise StoreCorrupt(f"{p}: written by an older mapstore (store format {doc.get('version')}; this one reads "
+                           f"format {STORE_FORMAT['version']}); index the datasets again into a new folder "
+                           "(mapstore index ROOTS --store NEW_FOLDER), then delete this one")
 
 
 @contextlib.contextmanager
@@ -490,16 +495,14 @@ class Catalog:
         """One view per table, reading the snapshot's files at query time."""
         views = _ViewBuilder(con, self)
         manifest = self.manifest()
-        views.files("maps", MAPS_SCHEMA, [self.path / p.maps for p in manifest.parts],
-                    current=all(p.schema == MAPS_SCHEMA_ID for p in manifest.parts))
+        views.files("maps", MAPS_SCHEMA, [self.path / p.maps for p in manifest.parts])
         snap = self.path / self.head.catalog if self.head.catalog else None
         for name, schema in (("datasets", DATASETS_SCHEMA), ("problems", PROBLEMS_SCHEMA),
                              ("participants", PARTICIPANTS_SCHEMA)):
             f = snap / f"{name}.parquet" if snap else None
             if f is not None and not f.exists() and name != "participants":
                 self._raise_missing(f)
-            views.files(name, schema, [f] if f is not None and f.exists() else [],
-                        current=name != "participants", loose=name == "participants")
+            views.files(name, schema, [f] if f is not None and f.exists() else [], loose=name == "participants")
         labels = self.head.labels and self.path / self.head.labels.table
         views.files("labels", LABELS_SCHEMA, [labels] if labels else [])
         self._feature_views(views)
@@ -630,25 +633,21 @@ class _ViewBuilder:
         self.con.register(f"_t_{name}", table)
         self.con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM "_t_{name}"')
 
-    def _source(self, schema: pa.Schema, files: list[Path], current: bool, loose: bool) -> str:
-        """A FROM clause with exactly ``schema``'s columns (files of older versions lack some)."""
+    @staticmethod
+    def _source(files: list[Path], loose: bool) -> str:
+        """A FROM clause over the files (every file of a store has its table's current columns)."""
         lst = "[" + ", ".join(_sql_str(str(f)) for f in files) + "]"
         if loose:  # participants: columns vary by store; every file's columns, whatever they are
             return f"read_parquet({lst}, union_by_name = true)"
-        if current:
-            return f"read_parquet({lst})"
-        cols = ", ".join(f'"{f.name}"' for f in schema)
-        return f"(SELECT {cols} FROM ({self._empty(schema)} UNION ALL BY NAME " \
-               f"FROM read_parquet({lst}, union_by_name = true)))"
+        return f"read_parquet({lst})"
 
-    def files(self, name: str, schema: pa.Schema, files: list[Path], current: bool = True,
-              loose: bool = False) -> None:
+    def files(self, name: str, schema: pa.Schema, files: list[Path], loose: bool = False) -> None:
         if name in self.cat._given:
             self.arrow(name, self.cat._given[name])
         elif not files:
             self.con.execute(f'CREATE VIEW "{name}" AS {self._empty(schema)}')
         else:
-            self.con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM {self._source(schema, files, current, loose)}')
+            self.con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM {self._source(files, loose)}')
 
     def per_set(self, name: str, schema: pa.Schema, files: list[tuple[str, Path]], exclude: tuple[str, ...] = ()
                 ) -> None:
@@ -658,7 +657,7 @@ class _ViewBuilder:
             self.con.execute(f'CREATE VIEW "{name}" AS {self._empty(empty)}')
             return
         drop = f" EXCLUDE ({', '.join(exclude)})" if exclude else ""
-        parts = [f"SELECT {_sql_str(set_name)} AS feature_set, *{drop} FROM {self._source(schema, [f], False, False)}"
+        parts = [f"SELECT {_sql_str(set_name)} AS feature_set, *{drop} FROM {self._source([f], False)}"
                  for set_name, f in files]
         self.con.execute(f'CREATE VIEW "{name}" AS ' + " UNION ALL ".join(parts))
 

@@ -208,7 +208,7 @@ class CatalogPart:
     rows: int
     problems: str | None = None  # the unit's problems (Parquet, PROBLEMS_SCHEMA), if it had any
     digest: str | None = None  # fingerprint of everything the rows were made from; None: never reused
-    schema: str = MAPS_SCHEMA_ID  # MAPS_SCHEMA when written ("" for stores older than parts)
+    schema: str = MAPS_SCHEMA_ID  # MAPS_SCHEMA when written
 
     def to_json(self) -> dict[str, Any]:
         return dict(self.__dict__)
@@ -236,14 +236,11 @@ class CatalogManifest:
 
     @classmethod
     def read(cls, store: Path, snapshot: str) -> "CatalogManifest":
-        """The manifest of ``snapshot`` (a store-relative folder); a pre-parts snapshot is one part."""
-        folder = store / snapshot
-        f = folder / cls.FILE
+        """The manifest of ``snapshot`` (a store-relative folder)."""
+        f = store / snapshot / cls.FILE
         try:
             return cls.from_json(json.loads(f.read_text()))
         except FileNotFoundError:
-            if (folder / "maps.parquet").exists():
-                return cls([CatalogPart("", "", f"{snapshot}/maps.parquet", -1, None, None, "")])
             raise
         except (OSError, ValueError) as exc:
             raise StoreCorrupt(f"{f}: unreadable ({exc}); re-run 'mapstore index'") from exc

@@ -10,7 +10,7 @@ from typing import Any
 
 import numpy as np
 
-from ..errors import ParameterError
+from ..errors import DataFileError, ParameterError
 from ._grayordinates import GrayordinateTarget, grayordinate_target
 from ._parcels import ParcelGrid
 from ._protocol import Mask, Target, coverage_fraction, mask_from_array
@@ -19,16 +19,17 @@ from ._volume import TargetGrid, builtin_grid, grid_from_image, grid_from_spec
 
 __all__ = ["KINDS", "target_of_set", "resolve_target", "resolve_mask", "image_target"]
 
-# a set.json's "geometry" -> its kind (sets written before kinds were recorded are volume sets)
+# a set.json's "geometry" -> its kind
 KINDS: dict[str, type[Target]] = {"volume": TargetGrid, "surface": SurfaceTarget,
                                   "grayordinates": GrayordinateTarget, "parcels": ParcelGrid}
 
 
 def target_of_set(spec: dict[str, Any], folder: str | os.PathLike[str] | None = None) -> Target:
     """The target of a feature set from its ``set.json``."""
-    kind = spec.get("geometry") or "volume"
+    kind = spec.get("geometry")
     if kind not in KINDS:
-        raise ParameterError(f"unknown kind of target {kind!r}; known: {sorted(KINDS)}")
+        raise DataFileError(f"a feature set's set.json names no known kind of target ({kind!r}; known: "
+                            f"{sorted(KINDS)}); rebuild the set")
     return KINDS[kind].from_set(spec, folder)
 
 

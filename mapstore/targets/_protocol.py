@@ -238,7 +238,7 @@ class Target(abc.ABC):
 
     def spec_fields(self, settings: BuildSettings) -> dict[str, Any]:
         """What ``set.json`` records beside the grid: the kind, and how volumes are projected."""
-        return {}
+        return {"geometry": self.kind}
 
     def second_halves(self, alias: str) -> str | None:
         """An SQL condition over the catalog's maps (as ``alias``) true for a file served as the second

@@ -99,8 +99,7 @@ class MeshedTarget(Target):
         return {"geometry": self.kind, "projection": settings.projection, "versions": {"nilearn": version("nilearn")}}
 
     def second_halves(self, alias: str) -> str | None:
-        return (f"coalesce({alias}.geometry, 'volume') = 'surface' AND {alias}.hemi = 'R' AND "
-                f"{alias}.linked_map IS NOT NULL")
+        return f"{alias}.geometry = 'surface' AND {alias}.hemi = 'R' AND {alias}.linked_map IS NOT NULL"
 
     def leaves_out(self, geometry: str, volumes: bool | str) -> str | None:
         if geometry == "volume" and volumes is not True:
