@@ -117,10 +117,10 @@ def test_incremental_reindex(tmp_path):
     ds = _small_tree(tmp_path)
     store = tmp_path / "store"
     r1 = mapstore.index([tmp_path / "src"], store, progress=False)
-    assert (r1.new, r1.maps) == (4, 4)
+    assert (r1.n_new, r1.n_maps) == (4, 4)
     ids1 = mapstore.open(store).sql("SELECT map_id, relpath, sha256 FROM maps ORDER BY relpath").to_pylist()
     r2 = mapstore.index([tmp_path / "src"], store, progress=False)
-    assert (r2.new, r2.changed, r2.unchanged, r2.removed) == (0, 0, 4, 0)
+    assert (r2.n_new, r2.n_changed, r2.n_unchanged, r2.n_removed) == (0, 0, 4, 0)
     ids2 = mapstore.open(store).sql("SELECT map_id, relpath, sha256 FROM maps ORDER BY relpath").to_pylist()
     assert ids1 == ids2
     # change one file's content, remove one, add one
@@ -131,7 +131,7 @@ def test_incremental_reindex(tmp_path):
     (ds / "sub-02" / "func" / "sub-02_task-go_contrast-b_stat-t_statmap.nii.gz").unlink()
     write_map(ds / "sub-03" / "func" / "sub-03_task-go_contrast-a_stat-t_statmap.nii.gz")
     r3 = mapstore.index([tmp_path / "src"], store, progress=False)
-    assert (r3.new, r3.changed, r3.unchanged, r3.removed, r3.maps) == (1, 1, 2, 1, 4)
+    assert (r3.n_new, r3.n_changed, r3.n_unchanged, r3.n_removed, r3.n_maps) == (1, 1, 2, 1, 4)
     rows = {r["relpath"]: r for r in mapstore.open(store).sql("SELECT * FROM maps").to_pylist()}
     changed = rows[f.relative_to(ds).as_posix()]
     assert changed["sha256"] != next(r for r in ids1 if r["relpath"] == changed["relpath"])["sha256"]
@@ -155,9 +155,9 @@ def test_other_roots_kept_unless_pruned(tmp_path):
     store = tmp_path / "store"
     mapstore.index([tmp_path / "src"], store, progress=False)
     r = mapstore.index([tmp_path / "src2"], store, progress=False)
-    assert r.maps == 5 and r.kept_datasets == 1
+    assert r.n_maps == 5 and r.n_kept_datasets == 1
     r = mapstore.index([tmp_path / "src2"], store, prune=True, progress=False)
-    assert r.maps == 1
+    assert r.n_maps == 1
 
 
 def test_unreadable_file_does_not_stop_the_crawl(tmp_path):
@@ -168,7 +168,7 @@ def test_unreadable_file_does_not_stop_the_crawl(tmp_path):
     write_map(short)
     short.write_bytes(short.read_bytes()[:400])
     r = mapstore.index([tmp_path / "src"], tmp_path / "store", progress=False)
-    assert r.maps == 4
+    assert r.n_maps == 4
     probs = {p["path"]: p for p in mapstore.open(tmp_path / "store").sql("SELECT * FROM problems").to_pylist()}
     assert probs[str(bad)]["code"] == "bad-gzip" and probs[str(short)]["code"] == "truncated-data"
 
@@ -240,7 +240,7 @@ def test_parallel_index_equals_serial(tmp_path):
                   shape=(3, 3, 3))
     a = mapstore.index([tmp_path / "src"], tmp_path / "a", jobs=1, progress=False)
     b = mapstore.index([tmp_path / "src"], tmp_path / "b", jobs=2, progress=False)
-    assert a.maps == b.maps == 600
+    assert a.n_maps == b.n_maps == 600
     q = "SELECT map_id, sha256, grid_id FROM maps ORDER BY map_id"
     assert mapstore.open(tmp_path / "a").sql(q) == mapstore.open(tmp_path / "b").sql(q)
 
@@ -252,7 +252,7 @@ def test_pair_header_named_nii_is_a_problem(tmp_path):
     dst.parent.mkdir(parents=True)
     shutil.copy(NIBABEL_DATA / "nifti1.hdr", dst)
     r = mapstore.index([ds], tmp_path / "store", progress=False)
-    assert r.maps == 0 and r.problem_codes == {"pair-header": 1}
+    assert r.n_maps == 0 and r.problem_codes == {"pair-header": 1}
 
 
 def test_crash_mid_index_keeps_the_served_catalog(tmp_path, monkeypatch):
@@ -273,7 +273,7 @@ def test_crash_mid_index_keeps_the_served_catalog(tmp_path, monkeypatch):
     assert (store / "HEAD").read_text() == head
     assert mapstore.open(store).sql("SELECT * FROM maps ORDER BY map_id") == before
     monkeypatch.undo()
-    assert mapstore.index([tmp_path / "src"], store, jobs=1, progress=False).new == 1  # lock released
+    assert mapstore.index([tmp_path / "src"], store, jobs=1, progress=False).n_new == 1  # lock released
 
 
 def test_sidecar_per_map_in_a_flat_folder(tmp_path):
@@ -327,7 +327,7 @@ def test_special_files_are_reported_not_opened(tmp_path):
     os.mkfifo(ds / "participants.tsv")
     store = tmp_path / "store"
     code = (f"import mapstore; r = mapstore.index([{str(ds)!r}], {str(store)!r}, jobs=2, progress=False); "
-            "print(r.maps)")
+            "print(r.n_maps)")
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, timeout=120)
     sock.close()
     assert out.returncode == 0, out.stderr

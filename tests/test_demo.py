@@ -75,7 +75,7 @@ def test_surface_study_pools_with_the_volume_studies(demo_store, demo_tree, tmp_
     shutil.copytree(demo_store, store)
     mapstore.label(store, demo_tree / "concepts.json")
     rep = mapstore.build_features(store, grid="fsaverage5", where="m.stat IN ('t', 'z')", jobs=2, progress=False)
-    assert rep.failed == 0 and rep.paths.get("surface") and rep.paths.get("vol_to_surf")
+    assert rep.n_problems == 0 and rep.paths.get("surface") and rep.paths.get("vol_to_surf")
     st = mapstore.open(store)
     sel = st.select(concepts=["visual-motion", "hand-movement", "listening", "reading", "arithmetic"],
                     target="concept", stat=["t", "z"], group_by="study", features=rep.name, missing="zero")

@@ -233,7 +233,7 @@ def test_export_records_the_policy_and_verify_catches_changed_rows(labelled_stor
         rep = st.export(out, multi, fmt=fmt)
         man = json.loads((out / "manifest.json").read_text())
         assert man["missing"]["policy"] == "common" and man["missing"]["kept_voxels"] == len(multi.voxels)
-        assert man["shape"] == [len(multi), len(multi.voxels)] and rep.n_voxels == len(multi.voxels)
+        assert man["shape"] == [len(multi), len(multi.voxels)] and rep.n_features == len(multi.voxels)
         assert "mask voxels dropped" in rep.summary()
         assert mapstore.verify(out).ok
         if fmt == "npy":

@@ -22,7 +22,7 @@ def featured_store(demo_store, tmp_path_factory):
     store = tmp_path_factory.mktemp("feat") / "store"
     shutil.copytree(demo_store, store)
     report = mapstore.build_features(store, jobs=2, progress=False)
-    assert report.failed == 0
+    assert report.n_problems == 0
     return store
 
 
@@ -96,7 +96,7 @@ def test_to_image_round_trip(featured_store):
 
 def test_warm_rerun_skips_everything(featured_store):
     r = mapstore.build_features(featured_store, jobs=1, progress=False)
-    assert r.built == 0 and r.skipped == mapstore.open(featured_store).features().rows.num_rows
+    assert r.n_built == 0 and r.n_unchanged == mapstore.open(featured_store).features().rows.num_rows
 
 
 def test_coverage_column(featured_store):
@@ -139,7 +139,7 @@ def test_changed_source_gets_a_new_row(tmp_path):
     os.utime(f, ns=(st_.st_atime_ns, st_.st_mtime_ns + 10**9))
     mapstore.index([tmp_path / "src"], store, progress=False)
     r2 = mapstore.build_features(store, grid="MNI152-3mm", jobs=1, progress=False)
-    assert (r2.built, r2.dropped) == (1, 1)
+    assert (r2.n_built, r2.n_removed) == (1, 1)
     fs2 = mapstore.open(store).features(r2.name)
     rows = fs2.rows.to_pandas().set_index("map_id")
     assert rows.loc[mid, "feature_key"] != old_key and len(rows) == 5
@@ -156,7 +156,7 @@ def test_file_changed_after_index_is_a_feature_problem(tmp_path):
     f = ds / "sub-02" / "sub-02_task-go_contrast-a_stat-t_statmap.nii.gz"
     write_map(f, np.zeros((41, 48, 40), np.float32), nib.load(f).affine)
     r = mapstore.build_features(store, grid="MNI152-3mm", jobs=1, progress=False)
-    assert r.failed == 1 and r.built == 4
+    assert r.n_problems == 1 and r.n_built == 4
     probs = mapstore.open(store).sql("SELECT * FROM feature_problems").to_pylist()
     assert "changed since it was indexed" in probs[0]["reason"] and probs[0]["path"] == str(f)
 
@@ -164,7 +164,7 @@ def test_file_changed_after_index_is_a_feature_problem(tmp_path):
 def test_z_set_converts_t_and_leaves_out_effect(tmp_path):
     ds, store = _tree(tmp_path)
     r = mapstore.build_features(store, "zset", grid="MNI152-3mm", stat="z", jobs=1, progress=False)
-    assert r.built == 4 and r.failed == 0
+    assert r.n_built == 4 and r.n_problems == 0
     assert r.left_out == {"maps with no z equivalent (only t, p and z maps go into a z set)": 1}
     assert "left out 1 maps with no z equivalent" in r.summary()
     fs = mapstore.open(store).features("zset")
@@ -198,7 +198,7 @@ def test_coverage_masks(tmp_path):
     brain = mni152_brain_mask(builtin_grid("MNI152-3mm"))
     assert set(fs.mask_indices.tolist()) <= set(brain.indices.tolist())
     r2 = mapstore.build_features(store, "cov", grid="MNI152-3mm", mask="coverage:0.5", jobs=1, progress=False)
-    assert r2.n_voxels >= r.n_voxels
+    assert r2.n_features >= r.n_features
     with pytest.raises(ParameterError, match="coverage fraction"):
         mapstore.build_features(store, "bad", mask="coverage:2", progress=False)
 
@@ -219,7 +219,7 @@ def test_reference_image_grid_and_mask_file(tmp_path):
     nib.save(nib.Nifti1Image(mask, nib.load(ref).affine), str(mpath))
     r = mapstore.build_features(store, "native", grid=str(ref), mask=str(mpath), jobs=1, progress=False)
     # same grid: no interpolation (the mask's bounding box is an integer shift of it)
-    assert r.n_voxels == 20**3 and set(r.paths) <= {"same", "reindex"}
+    assert r.n_features == 20**3 and set(r.paths) <= {"same", "reindex"}
     fs = mapstore.open(store).features("native")
     mid = mapstore.open(store).sql("SELECT map_id FROM maps WHERE relpath = "
                                    f"'{ref.relative_to(ds).as_posix()}'")["map_id"][0].as_py()
@@ -241,7 +241,7 @@ def test_dask_local_cluster_matches_local_pool(tmp_path):
 
         assert main(["features", "--store", str(store), "--name", "addr", "--grid", "MNI152-3mm",
                      "--dask", cluster.scheduler_address]) == 0
-    assert r.built == 7
+    assert r.n_built == 7
     st = mapstore.open(store)
     ids = st.features("local").map_ids
     np.testing.assert_array_equal(st.features("local").matrix(ids), st.features("dask").matrix(ids))

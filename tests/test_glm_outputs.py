@@ -89,7 +89,7 @@ def test_dof_from_the_design_matrix(glm):
 
 def test_features_leave_out_model_and_multi_volume_maps(glm):
     native = glm["native"]
-    assert native.failed == 0
+    assert native.n_problems == 0
     assert native.left_out == {
         "multi-volume maps (e.g. an F contrast's effect, one volume per contrast row)": 8,
         "model maps (no contrast: residuals, fit; --model-maps takes them)": 18}
@@ -136,7 +136,7 @@ def test_z_from_t_and_p_equals_nilearns_z(glm):
     from nilearn.image import resample_img
 
     z = glm["z"]
-    assert z.failed == 0
+    assert z.n_problems == 0
     st = mapstore.open(glm["store"])
     fs = st.features("z")
     grid = builtin_grid("MNI152-2mm")
@@ -191,7 +191,7 @@ def test_zero_background_rule_on_a_known_mask(glm, tmp_path):
     cov = _rows(store, "SELECT min(coverage) lo, max(coverage) hi FROM features")[0]
     kept = mapstore.build_features(store, "keep", grid="MNI152-3mm", where="m.stat = 't'", background="keep",
                                    progress=False)
-    assert kept.failed == 0
+    assert kept.n_problems == 0
     full = _rows(store, "SELECT min(coverage) lo FROM features WHERE feature_set = 'keep'")[0]
     assert cov["hi"] < 0.7 and full["lo"] > cov["hi"]  # keeping the zeros counts them as data
 
@@ -214,7 +214,7 @@ def test_p_zero_inside_the_mask_is_clipped_and_p_out_of_range_is_an_error(glm, t
     store = tmp_path / "store"
     mapstore.index([copy], store, progress=False)
     r = mapstore.build_features(store, grid="MNI152-3mm", stat="z", where="m.stat = 'p'", progress=False)
-    assert r.failed == 1 and r.built == 5  # the six p maps of beta, one of them bad
+    assert r.n_problems == 1 and r.n_built == 5  # the six p maps of beta, one of them bad
     assert r.problems[0].path == str(bad)
     n_bad = int(glm["beta"].mask.sum())
     assert r.problems[0].reason == (f"{n_bad} value(s) outside [0, 1] (from {float(data[glm['beta'].mask].min()):g} "
@@ -240,7 +240,7 @@ def test_features_fail_loudly_when_every_map_fails(tmp_path, capsys):
     mapstore.index([ds], store, progress=False)
     with pytest.raises(FeatureError, match="every selected map failed") as err:
         mapstore.build_features(store, grid="MNI152-3mm", stat="z", progress=False)
-    assert err.value.report.failed == 2
+    assert err.value.report.n_problems == 2
     assert main(["features", "--store", str(store), "--grid", "MNI152-3mm", "--stat", "z"]) == 1
     out = capsys.readouterr()
     assert "every selected map failed (2)" in out.err and "t to z needs degrees of freedom" in out.err
@@ -308,7 +308,7 @@ def test_fsl_feat_folder_through_the_preset(tmp_path, rng):
     assert {(r["sub"], r["task"], r["dof"], r["dof_source"], r["model_mask"]) for r in rows} == {
         ("01", "reading", 187.0, "dof-file", "sub-01/task-reading.feat/mask.nii.gz")}
     r = mapstore.build_features(store, grid="MNI152-3mm", stat="z", progress=False)
-    assert r.failed == 0 and r.built == 4  # t and z maps of two contrasts
+    assert r.n_problems == 0 and r.n_built == 4  # t and z maps of two contrasts
 
 
 def test_spm_folder_through_the_preset(tmp_path, rng):
@@ -324,7 +324,7 @@ def test_spm_folder_through_the_preset(tmp_path, rng):
     assert t["dof"] == 96.0 and t["dof_source"] == "descrip" and t["model_mask"] == "sub-01/task-faces/mask.nii"
     assert json.loads(t["entities"])["contrast_number"] == "0001"
     r = mapstore.build_features(store, grid="MNI152-3mm", progress=False)
-    assert r.failed == 0 and r.built == 4
+    assert r.n_problems == 0 and r.n_built == 4
 
 
 def test_unknown_preset_is_refused_with_the_list(tmp_path):

@@ -90,13 +90,13 @@ def test_label_store_and_sql(demo_store, demo_tree, tmp_path):
     store = tmp_path / "store"
     shutil.copytree(demo_store, store)
     report = mapstore.label(store, demo_tree / "concepts.json")
-    assert report.labelled == report.maps and not report.unused_rules
+    assert report.n_labelled == report.n_maps and not report.unused_rules
     st = mapstore.open(store)
     n = st.sql("SELECT count(DISTINCT map_id) n FROM labels")["n"][0].as_py()
-    assert n == report.maps
+    assert n == report.n_maps
     sha = st.sql("SELECT DISTINCT vocabulary_sha256 s FROM labels")["s"].to_pylist()
     assert sha == [report.sha256]
     # a re-index keeps labels coherent: they are derived again from the stored vocabulary copy
     mapstore.index([demo_tree], store, rules=demo_tree / "name-rules.json", progress=False)
     st = mapstore.open(store)
-    assert st.sql("SELECT count(DISTINCT map_id) n FROM labels")["n"][0].as_py() == report.maps
+    assert st.sql("SELECT count(DISTINCT map_id) n FROM labels")["n"][0].as_py() == report.n_maps

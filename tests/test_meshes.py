@@ -138,7 +138,7 @@ def test_maps_of_other_spaces_resample_through_the_registered_sphere(described, 
     rep, fs = perm_set
     p, f = described["perm"], maps["fields"]
     # failed: the fsLR pair only (no fsLR sphere registered to the described space)
-    assert [pr.reason for pr in rep.problems if "fsLR" in pr.path] and rep.failed == 1
+    assert [pr.reason for pr in rep.problems if "fsLR" in pr.path] and rep.n_problems == 1
     assert "registered_spheres" in rep.problems[0].reason
     ok = np.zeros(2 * N5, bool)
     ok[fs.mask_indices] = True
@@ -230,7 +230,7 @@ def test_description_errors_name_the_file(described, tmp_path, maps):
     nowhite["hemispheres"]["L"]["pial"] = copy.name
     rep = mapstore.build_features(maps["store"], grid=str(write(nowhite)), name="nowhite", progress=False,
                                   jobs=1, where="m.space <> 'fsLR'")
-    assert rep.failed == 0 and any("no white_matter surface" in k for k in rep.left_out)
+    assert rep.n_problems == 0 and any("no white_matter surface" in k for k in rep.left_out)
     # a mesh file changed after the set was built on it: refused, naming the file
     fs = mapstore.open(maps["store"]).features("nowhite")
     fs.to_image(np.zeros(fs.n_voxels, np.float32))
@@ -247,7 +247,7 @@ def test_grayordinate_template_on_a_described_mesh(described, maps, tmp_path):
     template = cifti(tmp_path / "perm-template.dscalar.nii", np.zeros((1, len(ax))), ax)
     rep = mapstore.build_features(maps["store"], grid=str(template), mesh=str(described["desc"]), name="grey-perm",
                                   progress=False, jobs=1, where="m.space IN ('MNI152NLin2009cAsym', 'fsaverage5')")
-    assert rep.failed == 0, rep.problems
+    assert rep.n_problems == 0, rep.problems
     s = mapstore.open(maps["store"])
     fs = s.features("grey-perm")
     assert fs.grid.mesh is not None and fs.grid.mesh.space == "perm"
@@ -353,7 +353,7 @@ def test_freesurfer_surfaces_label_and_morph_files_describe_a_mesh(maps, tmp_pat
     desc.write_text(json.dumps({"name": "fs5-freesurfer", "space": "fsaverage", "hemispheres": hemis}))
     rep = mapstore.build_features(maps["store"], grid=str(desc), name="fs5", progress=False, jobs=1,
                                   where="m.space <> 'fsLR' AND m.space <> 'perm'")
-    assert rep.failed == 0, rep.problems
+    assert rep.n_problems == 0, rep.problems
     fs = mapstore.open(maps["store"]).features("fs5")
     np.testing.assert_array_equal(fs.mask_indices, np.flatnonzero(wall))  # the labels are the mask
     from mapstore.targets._surface import sulcal_depth
@@ -418,7 +418,7 @@ def test_check_says_when_a_template_cortex_mesh_was_assumed_or_unknown(maps, tmp
     small = cifti(tmp_path / "small.dscalar.nii", np.zeros((1, 2 * 2562)), brain_models(2562, 2562, voxels=False))
     rep = mapstore.build_features(maps["store"], grid=str(small), name="grey-unknown", progress=False, jobs=1,
                                   where="m.space = 'MNI152NLin2009cAsym'")
-    assert rep.built == 1
+    assert rep.n_built == 1
     found = {f.code: f for f in mapstore.open(maps["store"]).check("grey-unknown", pictures=False).findings}
     assert "no-cortex-mesh" in found and "--mesh" in found["no-cortex-mesh"].remedy
     assert "cortex-mesh-assumed" not in found
@@ -432,7 +432,7 @@ def test_a_described_mesh_set_on_a_dask_cluster_equals_the_local_build(described
                                   dashboard_address=None) as cluster, distributed.Client(cluster) as client:
         rep = mapstore.build_features(maps["store"], grid=str(described["desc"]), name="perm-dask",
                                       scheduler=client, batch_size=2, progress=False)
-    assert rep.failed == 1  # the fsLR pair, as locally
+    assert rep.n_problems == 1  # the fsLR pair, as locally
     fs = mapstore.open(maps["store"]).features("perm-dask")
     ids = local.map_ids
     assert fs.map_ids == ids
@@ -479,7 +479,7 @@ def test_fsnative_maps_go_onto_fsaverage_through_each_subjects_sphere_reg(tmp_pa
     mapstore.index([root], store, progress=False)
     rep = mapstore.build_features(store, grid="fsaverage5", mask="all", subjects_dir=subjects, progress=False,
                                   jobs=1)
-    assert rep.built == 2 and rep.failed == 1
+    assert rep.n_built == 2 and rep.n_problems == 1
     assert "sub-09/surf/lh.sphere.reg" in rep.problems[0].reason
     s = mapstore.open(store)
     fs = s.features(rep.name)
@@ -503,7 +503,7 @@ def test_fsnative_maps_go_onto_fsaverage_through_each_subjects_sphere_reg(tmp_pa
                    np.argsort(perm["L"])[np.asarray(fsa.parts["left"].faces)])
     rep2 = mapstore.build_features(store, grid="fsaverage5", mask="all", subjects_dir=subjects, progress=False,
                                    jobs=1)
-    assert rep2.built == 1 and rep2.skipped == 1
+    assert rep2.n_built == 1 and rep2.n_unchanged == 1
     # without the subjects folder the rows fail with the remedy
     from mapstore.errors import FeatureError
 

@@ -67,7 +67,7 @@ def test_label_atlas_means_equal_nilearn_labels_masker(voxel_store):
     atlas = base / "blocks.nii.gz"
     nib.save(nib.Nifti1Image(lab.astype(np.int16), aff), str(atlas))
     rep = mapstore.build_parcels(store, str(atlas), source=SET, name="blocks")
-    assert rep.built == 8 and rep.n_voxels == 27
+    assert rep.n_built == 8 and rep.n_features == 27
     s = mapstore.open(store)
     fs, src = s.features("blocks"), s.features(SET)
     masker = NiftiLabelsMasker(labels_img=str(atlas), mask_img=_mask_img(src), strategy="mean")
@@ -88,7 +88,7 @@ def test_label_atlas_means_equal_nilearn_labels_masker(voxel_store):
     assert set(np.round(np.unique(vals[np.isfinite(vals)]), 4)) <= set(np.round(vec, 4))
     # a second run keeps every row (same source rows, same atlas)
     again = mapstore.build_parcels(store, str(atlas), source=SET, name="blocks")
-    assert again.built == 0 and again.skipped == 8
+    assert again.n_built == 0 and again.n_unchanged == 8
 
 
 def test_probabilistic_atlas_equals_nilearn_maps_masker(voxel_store):
@@ -159,7 +159,7 @@ def test_fitted_parcellation_is_stored_with_provenance_and_makes_a_set(voxel_sto
     a, b = lab[m], np.asarray(ref.labels_img_.dataobj)[m]
     assert len(set(zip(a.tolist(), b.tolist()))) == len(set(a.tolist())) == len(set(b.tolist()))
     rep = mapstore.build_parcels(store, "store:km10", source=SET)
-    assert rep.n_voxels == len(set(a.tolist()))
+    assert rep.n_features == len(set(a.tolist()))
     with pytest.raises(ParameterError, match="no stored parcellation 'nope'"):
         mapstore.build_parcels(store, "store:nope", source=SET)
 
@@ -176,7 +176,7 @@ def test_parcel_sets_check_select_and_export(voxel_store, tmp_path):
     sel = s.select(features="blocks", group_by="study")
     assert sel.X.shape == (8, 27)
     out = s.export(tmp_path / "x", sel)
-    assert verify(tmp_path / "x" / "manifest.json").ok and out.n_voxels == 27
+    assert verify(tmp_path / "x" / "manifest.json").ok and out.n_features == 27
     assert json.loads((tmp_path / "x" / "manifest.json").read_text())["feature_set"]["grid"]["kind"] == "parcels"
 
 
@@ -245,7 +245,7 @@ def test_surface_parcellation_equals_nilearn_and_is_stored_as_gifti_labels(surfa
     assert (got[~inmask] == 0).all()
     # a parcel set from it, painted back onto the mesh
     rep = mapstore.build_parcels(store, "store:surf-ward", source="surf")
-    assert rep.n_voxels == len(set(a.tolist())) and rep.failed == 0
+    assert rep.n_features == len(set(a.tolist())) and rep.n_problems == 0
     pset = mapstore.open(store).features(rep.name)
     img = pset.to_image(pset.matrix([pset.map_ids[0]])[0])
     assert isinstance(img, SurfaceImage) and img.shape == (2 * n,)
@@ -272,3 +272,39 @@ def test_in_fold_surface_parcellation_never_sees_test_maps(surface_store):
         assert fitted.transform(sel.X[test]).shape == (len(test), int(fitted.labels_.max()) + 1)
     with pytest.raises(ParameterError, match="columns"):
         reducer.fit(np.zeros((3, 7), np.float32))
+
+
+def test_parcel_reducer_passes_scikit_learns_estimator_checks():
+    """Reference: scikit-learn's ``check_estimator`` (every check it runs on a transformer)."""
+    from sklearn.utils.estimator_checks import check_estimator
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("ignore")
+        results = check_estimator(mapstore.ParcelReducer(), on_fail=None)
+    failed = [(r["check_name"], repr(r["exception"])) for r in results if r["status"] == "failed"]
+    assert len(results) > 30 and failed == []
+
+
+def test_parcel_reducer_without_a_mask_equals_feature_agglomeration():
+    """Reference: scikit-learn ``FeatureAgglomeration`` (Ward, mean pooling) on the same columns."""
+    from sklearn.cluster import FeatureAgglomeration
+
+    rng = np.random.default_rng(5)
+    base = rng.normal(size=(40, 4))
+    x = np.repeat(base, 6, axis=1) + rng.normal(scale=0.05, size=(40, 24))  # 4 groups of 6 alike columns
+    ours = mapstore.ParcelReducer(n_parcels=4).fit(x[:30])
+    ref = FeatureAgglomeration(n_clusters=4).fit(x[:30])
+    # the same partition of the columns (labels may be numbered differently)
+    assert len({(a, b) for a, b in zip(ours.labels_, ref.labels_)}) == 4
+    got, want = ours.transform(x[30:]), ref.transform(x[30:])
+    order = [int(ref.labels_[np.flatnonzero(ours.labels_ == j)[0]]) for j in range(4)]
+    np.testing.assert_allclose(got, want[:, order], rtol=1e-12)
+
+
+def test_parcel_reducer_names_a_bad_parameter():
+    with pytest.raises(ParameterError, match="n_parcels must be a positive integer"):
+        mapstore.ParcelReducer(n_parcels=0).fit(np.ones((3, 4)))
+    with pytest.raises(ParameterError, match="method must be one of"):
+        mapstore.ParcelReducer(method="spectral").fit(np.ones((3, 4)))
+    with pytest.raises(ParameterError, match="missing='common'"):
+        mapstore.ParcelReducer(n_parcels=2).fit(np.array([[1.0, np.nan], [0.0, 1.0]]))

@@ -59,14 +59,14 @@ def test_reindex_rewrites_only_the_changed_dataset(tmp_path):
     first = {p["dataset"]: p["maps"] for p in _parts(store)}
     assert sorted(first) == ["alpha", "beta", "gamma"]
     warm = mapstore.index([root], store, jobs=1, progress=False)
-    assert warm.unchanged == 24 and warm.new == warm.changed == 0
+    assert warm.n_unchanged == 24 and warm.n_new == warm.n_changed == 0
     assert {p["dataset"]: p["maps"] for p in _parts(store)} == first  # nothing rewritten
 
     # a changed map in beta: beta's part only
     write_map(root / "beta" / "sub-01" / "sub-01_task-go_contrast-a_stat-t_statmap.nii.gz",
               np.full((4, 5, 6), 9.0, np.float32))
     r = mapstore.index([root], store, jobs=1, progress=False)
-    assert (r.changed, r.unchanged) == (1, 23)
+    assert (r.n_changed, r.n_unchanged) == (1, 23)
     now = {p["dataset"]: p["maps"] for p in _parts(store)}
     assert now["alpha"] == first["alpha"] and now["gamma"] == first["gamma"] and now["beta"] != first["beta"]
     assert _rows(store) == _fresh(tmp_path, root, "a")
@@ -98,7 +98,7 @@ def test_what_a_part_depends_on(tmp_path, change):
     assert now["gamma"] != first["gamma"] and now["alpha"] == first["alpha"]
     assert _rows(store) == _fresh(tmp_path, root, change)
     if change == "removed-map":
-        assert r.removed == 1
+        assert r.n_removed == 1
     if change == "sidecar":
         assert {m["dof"] for m in _rows(store) if m["dataset"] == "gamma"} == {33.0}
 
@@ -128,7 +128,7 @@ def test_a_unit_with_a_read_problem_is_crawled_again(tmp_path):
     alpha = [p for p in _parts(store) if p["dataset"] == "alpha"][0]
     assert alpha["digest"] is None and alpha["problems"]
     again = mapstore.index([root], store, jobs=1, progress=False)
-    assert again.problems == 1
+    assert again.n_problems == 1
 
 
 def test_a_snapshot_that_lost_its_parts_list_is_named_as_corrupt(tmp_path):
@@ -153,7 +153,7 @@ def test_index_on_a_dask_cluster_equals_a_local_run_even_when_a_worker_dies(tmp_
         store = tmp_path / "dask"
         r = mapstore.index([root], store, scheduler=client, progress=False)
         assert flag.exists()  # a worker was lost after writing a part
-        assert r.maps == 24
+        assert r.n_maps == 24
         from mapstore.cli import main
 
         monkeypatch.delenv("MAPSTORE_TEST_DIE_ONCE")
@@ -180,5 +180,5 @@ def test_a_deleted_part_is_written_again_not_kept(tmp_path):
     with pytest.raises(StoreCorrupt, match="re-run 'mapstore index'"):
         _rows(store)
     r = mapstore.index([root], store, jobs=1, progress=False)
-    assert r.changed == 0 and r.new == 8  # beta's maps read again (their previous rows are gone)
+    assert r.n_changed == 0 and r.n_new == 8  # beta's maps read again (their previous rows are gone)
     assert _rows(store) == want

@@ -125,7 +125,7 @@ def test_a_full_disk_during_features_is_clear_and_undone(tmp_path):
         st.close()
         filler.unlink()
         r = mapstore.build_features(store, grid="MNI152-3mm", name="big", jobs=1, progress=False)
-        assert r.built == 24 and r.failed == 0
+        assert r.n_built == 24 and r.n_problems == 0
         clean = tmp_path / "clean"
         mapstore.index([ds], clean, progress=False)
         mapstore.build_features(clean, grid="MNI152-3mm", name="big", jobs=1, progress=False)
@@ -176,7 +176,7 @@ def test_replace_dir_leaves_the_new_folder_and_nothing_else(tmp_path, monkeypatc
     if not swap:  # a kernel or file system without RENAME_EXCHANGE: the two-rename path
         monkeypatch.setattr(st, "_exchange", lambda a, b: False)
     out = _folder(tmp_path / "out", "old")
-    st.replace_dir(_folder(tmp_path / ".out.new.tmp", "new"), out)
+    st.replace_dir(_folder(tmp_path / ".out.n_new.tmp", "new"), out)
     assert (out / "a.txt").read_text() == "new" and sorted(p.name for p in tmp_path.iterdir()) == ["out"]
     st.replace_dir(_folder(tmp_path / ".first.tmp", "first"), tmp_path / "first")  # nothing there before
     assert (tmp_path / "first" / "a.txt").read_text() == "first"

@@ -195,7 +195,7 @@ def test_unpaired_hemisphere_is_reported_and_volume_sets_leave_surfaces_out(surf
     # the volume checks see the one volume map only: no mixed grids, no field of view outside the brain
     assert {f.code for f in findings if f.check in ("grid", "space")} <= {"multi-volume", "surface-space"}
     rep = mapstore.build_features(store, progress=False, jobs=1)
-    assert rep.built == 1
+    assert rep.n_built == 1
     assert rep.left_out["surface maps (a volume set takes volume maps only)"] == 2 * (5 + 2) * 2 - 1  # (5 contrast + 2 model maps) x 2 hemispheres x 2 subjects, one removed
     assert rep.left_out["grayordinates maps (a volume set takes volume maps only)"] == 1
 
@@ -256,7 +256,7 @@ def _row(store, relpath_like: str):
 def test_surface_set_joins_hemispheres_left_then_right(pooled):
     from nilearn.datasets import load_fsaverage
 
-    assert pooled["report"].failed == 0, pooled["report"].problems
+    assert pooled["report"].n_problems == 0, pooled["report"].problems
     fs, mid, full = _row(pooled["store"], "%sub-01_task-viewing_hemi-L_den-10242_contrast-facesminusplaces_stat-z%")
     assert fs.geometry == "surface" and full.size == 2 * N5
     root = pooled["surface"] / "sub-01"
@@ -353,7 +353,7 @@ def test_surface_parcels_equal_nilearn_surface_labels_masker(pooled):
         labels.append(offset + (xyz[:, 0] > 0) * 4 + (xyz[:, 1] > 0) * 2 + (xyz[:, 2] > 0))
     labels = np.concatenate(labels).astype(np.int64)
     rep = mapstore.build_parcels(pooled["store"], labels, source="fsaverage5-cortex-native", name="octants")
-    assert rep.n_voxels == 16
+    assert rep.n_features == 16
     s = mapstore.open(pooled["store"])
     fs, src = s.features("octants"), s.features("fsaverage5-cortex-native")
     cortex = np.zeros(2 * N5, bool)
@@ -381,7 +381,7 @@ def test_grayordinate_set_pools_cifti_gifti_and_volume_maps(pooled, tmp_path):
     ax = brain_models()
     template = cifti(tmp_path / "template.dscalar.nii", np.zeros((1, len(ax))), ax)
     rep = mapstore.build_features(pooled["store"], grid=str(template), name="grey", progress=False, jobs=1)
-    assert rep.failed == 0
+    assert rep.n_problems == 0
     s = mapstore.open(pooled["store"])
     fs = s.features("grey")
     assert fs.geometry == "grayordinates" and fs.n_voxels == len(ax)
@@ -530,7 +530,7 @@ def test_nilearn_surface_second_level_outputs(surface_study, tmp_path):
         assert r["dof"] == dof and r["dof_source"] == "design"  # n maps - rank of the intercept-only design
         assert r["model_mask"].endswith(f"hemi-{r['hemi']}_den-10242_mask.gii")
     rep = mapstore.build_features(store, grid="fsaverage5", progress=False, jobs=1)
-    assert rep.failed == 0 and rep.built == 5
+    assert rep.n_problems == 0 and rep.n_built == 5
     fs = mapstore.open(store).features(rep.name)
     (zl,) = [r for r in rows if r["stat"] == "z" and r["hemi"] == "L"]
     full = np.full(2 * N5, np.nan, np.float32)

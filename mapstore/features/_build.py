@@ -80,24 +80,29 @@ class FeatureReport:
     """What one ``features`` run did."""
 
     name: str
-    n_voxels: int
+    n_features: int  # a row's values (in ``unit``)
     grid: str
     mask: str
-    built: int
-    skipped: int
-    dropped: int
-    failed: int
+    n_built: int
+    n_unchanged: int
+    n_removed: int  # rows of maps gone from the catalog or no longer selected
+    n_problems: int
     seconds: float
     paths: dict[str, int] = field(default_factory=dict)
     problems: list[Problem] = field(default_factory=list)
     left_out: dict[str, int] = field(default_factory=dict)
     unit: str = "voxels"  # what a row's values are: voxels, vertices, grayordinates or parcels
 
+    @property
+    def problem_codes(self) -> dict[str, int]:
+        """Problems by code, as :attr:`IndexReport.problem_codes`."""
+        return dict(Counter(p.code for p in self.problems))
+
     def summary(self) -> str:
-        rate = self.built / self.seconds if self.seconds > 0 else 0.0
-        lines = [f"feature set {self.name!r}: grid {self.grid}, mask {self.mask} ({self.n_voxels:,} {self.unit})",
-                 f"built {self.built} rows ({rate:,.1f} maps/s), kept {self.skipped} unchanged, "
-                 f"dropped {self.dropped} stale, {self.failed} failed in {self.seconds:.1f} s"]
+        rate = self.n_built / self.seconds if self.seconds > 0 else 0.0
+        lines = [f"feature set {self.name!r}: grid {self.grid}, mask {self.mask} ({self.n_features:,} {self.unit})",
+                 f"built {self.n_built} rows ({rate:,.1f} maps/s), kept {self.n_unchanged} unchanged, "
+                 f"removed {self.n_removed} stale, {self.n_problems} failed in {self.seconds:.1f} s"]
         for why, n in self.left_out.items():
             lines.append(f"left out {n} {why}")
         if self.paths:
@@ -331,8 +336,9 @@ def build_features(
                                        "rows": rows_table.num_rows})
         collect_feature_garbage(store_path, set_dir, entry.rows, existing.rows if existing else None)
 
-    report = FeatureReport(name=name, n_voxels=mk.n_voxels, grid=target.name, mask=mk.name,
-                           built=len(new_rows), skipped=kept.num_rows, dropped=dropped, failed=len(problems),
+    report = FeatureReport(name=name, n_features=mk.n_voxels, grid=target.name, mask=mk.name,
+                           n_built=len(new_rows), n_unchanged=kept.num_rows, n_removed=dropped,
+                           n_problems=len(problems),
                            seconds=time.perf_counter() - t0, paths=built.paths, problems=problems, left_out=left_out,
                            unit=target.unit)
     if rows_table.num_rows == 0 and problems:

@@ -34,7 +34,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 from sklearn.base import BaseEstimator, TransformerMixin
-from sklearn.utils.validation import check_is_fitted
+from sklearn.utils.validation import check_is_fitted, validate_data
 
 from .._version import __version__
 from ..targets import Atlas, ParcelGrid, image_target, load_atlas, reduce_rows
@@ -140,8 +140,8 @@ def build_parcels(store: str | os.PathLike[str], atlas: Any, *, source: str | No
         commit_head(store_path, head, {"event": "parcels", "set": name, "source": src_name,
                                        "built": len(built.rows), "rows": rows_table.num_rows})
         collect_feature_garbage(store_path, set_dir, entry.rows, existing.rows if existing else None)
-    return FeatureReport(name=name, n_voxels=at.n_parcels, grid=f"parcels of {at.name}", mask="all parcels",
-                         built=len(built.rows), skipped=kept.num_rows, dropped=dropped, failed=0,
+    return FeatureReport(name=name, n_features=at.n_parcels, grid=f"parcels of {at.name}", mask="all parcels",
+                         n_built=len(built.rows), n_unchanged=kept.num_rows, n_removed=dropped, n_problems=0,
                          seconds=time.perf_counter() - t0, paths={f"parcels:{at.reducer}": len(built.rows)},
                          unit="parcels")
 
@@ -274,21 +274,37 @@ class ParcelReducer(TransformerMixin, BaseEstimator):
 
     Parameters
     ----------
-    mask_img : Nifti1Image or SurfaceImage
+    mask_img : Nifti1Image or SurfaceImage or None, default=None
         X's columns on the grid (a volume set) or mesh (a surface set):
-        ``ParcelReducer.for_selection(sel, ...)`` builds it.
+        ``ParcelReducer.for_selection(sel, ...)`` builds it.  With a mask, nilearn
+        ``Parcellations`` groups spatially neighbouring columns.  Without one, columns are
+        grouped by Ward clustering of their profiles across rows (scikit-learn
+        ``FeatureAgglomeration``), with no spatial constraint.
     n_parcels : int, default=100
+        Parcels asked for; without a mask, at most X's number of columns.
     method : {"ward", "kmeans", "complete", "average", "rena", "hierarchical_kmeans"}, default="ward"
-        nilearn ``Parcellations`` method.
+        nilearn ``Parcellations`` method (used with a mask).
     random_state : int, default=0
 
     Attributes
     ----------
-    labels_ : ndarray of shape (n_columns,)
+    labels_ : ndarray of shape (n_features_in_,)
         Parcel of each column of X (0-based).
+    n_features_in_ : int
+        Columns of X seen in ``fit``.
     fit_rows_ : list of str
         SHA-256 of each row ``fit`` saw (what the leakage test checks).
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from mapstore import ParcelReducer
+    >>> X = np.random.default_rng(0).normal(size=(6, 10))
+    >>> ParcelReducer(n_parcels=3).fit_transform(X).shape
+    (6, 3)
     """
+
+    _methods = ("ward", "kmeans", "complete", "average", "rena", "hierarchical_kmeans")
 
     def __init__(self, mask_img=None, n_parcels: int = 100, method: str = "ward", random_state: int = 0) -> None:
         self.mask_img = mask_img
@@ -301,34 +317,58 @@ class ParcelReducer(TransformerMixin, BaseEstimator):
                       ) -> "ParcelReducer":
         return cls(_columns_image(sel.feature_set, sel.voxels), n_parcels, method, random_state)
 
-    def _check(self, x: np.ndarray) -> np.ndarray:
-        if self.mask_img is None:
-            raise ParameterError("ParcelReducer needs mask_img (use ParcelReducer.for_selection(sel, ...))")
-        if not isinstance(self.n_parcels, (int, np.integer)) or self.n_parcels < 2:
-            raise ParameterError(f"n_parcels must be an integer >= 2, got {self.n_parcels!r}")
-        x = np.asarray(x, dtype=np.float32)
-        n_cols = int((image_target(self.mask_img).image_values(self.mask_img) > 0).sum())
-        if x.ndim != 2 or x.shape[1] != n_cols:
-            raise ParameterError(f"X must have {n_cols} columns (the mask's voxels or vertices), got shape {x.shape}")
-        if not np.isfinite(x).all():
-            raise ParameterError("X has missing values; select with missing='common' (the default) or 'zero'")
-        return x
+    def _check_params(self) -> None:
+        if isinstance(self.n_parcels, bool) or not isinstance(self.n_parcels, (int, np.integer)) \
+                or self.n_parcels < 1:
+            raise ParameterError(f"n_parcels must be a positive integer, got {self.n_parcels!r}")
+        if self.method not in self._methods:
+            raise ParameterError(f"method must be one of {', '.join(self._methods)}; got {self.method!r}")
+        if self.mask_img is not None and self.n_parcels < 2:
+            raise ParameterError(f"n_parcels must be >= 2 with a mask, got {self.n_parcels!r}")
 
     def fit(self, X, y=None) -> "ParcelReducer":
-        x = self._check(X)
-        self.fit_rows_ = [hashlib.sha256(r.tobytes()).hexdigest() for r in x]
-        self.labels_ = fit_labels(x, self.mask_img, self.n_parcels, self.method, self.random_state)
+        self._check_params()
+        x = _finite(validate_data(self, X, dtype=np.float64, ensure_all_finite=False))
+        if self.mask_img is not None:
+            n_cols = int((image_target(self.mask_img).image_values(self.mask_img) > 0).sum())
+            if x.shape[1] != n_cols:
+                raise ParameterError(f"X must have {n_cols} columns (the mask's voxels or vertices), "
+                                     f"got shape {x.shape}")
+        self.fit_rows_ = [hashlib.sha256(r.astype(np.float32).tobytes()).hexdigest() for r in x]
+        if self.mask_img is not None:
+            self.labels_ = fit_labels(x.astype(np.float32), self.mask_img, self.n_parcels, self.method,
+                                      self.random_state)
+        else:
+            self.labels_ = _profile_labels(x, int(self.n_parcels))
         return self
 
     def transform(self, X) -> np.ndarray:
         check_is_fitted(self, "labels_")  # scikit-learn's NotFittedError, as every estimator raises
-        x = self._check(X)
+        x = _finite(validate_data(self, X, dtype=np.float64, ensure_all_finite=False, reset=False))
         k = int(self.labels_.max()) + 1
         counts = np.bincount(self.labels_, minlength=k).astype(np.float64)
         sums = np.zeros((len(x), k))
         for j in range(k):  # one column sum per parcel: X's columns are grouped by label
             sums[:, j] = x[:, self.labels_ == j].sum(axis=1)
-        return (sums / np.where(counts > 0, counts, 1)).astype(np.float32)
+        return sums / np.where(counts > 0, counts, 1)
+
+
+def _finite(x: np.ndarray) -> np.ndarray:
+    if not np.isfinite(x).all():
+        raise ParameterError("X has NaN or infinite values; select with missing='common' (the default) or 'zero'")
+    return x
+
+
+def _profile_labels(x: np.ndarray, n_parcels: int) -> np.ndarray:
+    """0-based labels of X's columns by Ward clustering of their profiles (no spatial constraint)."""
+    from sklearn.cluster import FeatureAgglomeration
+
+    k = min(n_parcels, x.shape[1])
+    if k == x.shape[1]:  # as many parcels as columns: each column its own
+        return np.arange(k, dtype=np.int64)
+    agg = FeatureAgglomeration(n_clusters=k).fit(x)
+    _, lab = np.unique(agg.labels_, return_inverse=True)
+    return lab.reshape(-1).astype(np.int64)
 
 
 def fit_labels(x: np.ndarray, mask_img, n_parcels: int, method: str, random_state: int) -> np.ndarray:

@@ -110,30 +110,30 @@ class IndexReport:
     """What one ``index`` run did."""
 
     store: str
-    datasets: int
-    maps: int
-    new: int
-    changed: int
-    unchanged: int
-    removed: int
-    problems: int
-    kept_datasets: int
+    n_datasets: int
+    n_maps: int
+    n_new: int
+    n_changed: int
+    n_unchanged: int
+    n_removed: int
+    n_problems: int
+    n_kept_datasets: int
     seconds: float
     problem_codes: dict[str, int] = field(default_factory=dict)
 
     def summary(self) -> str:
-        rate = (self.new + self.changed) / self.seconds if self.seconds > 0 else 0.0
+        rate = (self.n_new + self.n_changed) / self.seconds if self.seconds > 0 else 0.0
         lines = [
             f"store: {self.store}",
-            f"datasets: {self.datasets}   maps: {self.maps}   "
-            f"(new {self.new}, changed {self.changed}, unchanged {self.unchanged}, removed {self.removed})",
-            f"read {self.new + self.changed} files in {self.seconds:.2f} s ({rate:,.0f} maps/s)",
+            f"datasets: {self.n_datasets}   maps: {self.n_maps}   "
+            f"(new {self.n_new}, changed {self.n_changed}, unchanged {self.n_unchanged}, removed {self.n_removed})",
+            f"read {self.n_new + self.n_changed} files in {self.seconds:.2f} s ({rate:,.0f} maps/s)",
         ]
-        if self.kept_datasets:
-            lines.append(f"kept {self.kept_datasets} dataset(s) from earlier runs, not under these roots")
-        if self.problems:
+        if self.n_kept_datasets:
+            lines.append(f"kept {self.n_kept_datasets} dataset(s) from earlier runs, not under these roots")
+        if self.n_problems:
             codes = ", ".join(f"{k} x{v}" for k, v in sorted(self.problem_codes.items()))
-            lines.append(f"problems: {self.problems} ({codes}); see: mapstore sql --store {self.store} "
+            lines.append(f"problems: {self.n_problems} ({codes}); see: mapstore sql --store {self.store} "
                          "\"SELECT * FROM problems\"")
         return "\n".join(lines)
 
@@ -945,9 +945,9 @@ def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: lis
     changed = sum(r.changed for r in results)
     unchanged = sum(r.unchanged for r in results)
     before = sum(d.get("n_maps") or 0 for d in prev.datasets if d["dataset"] not in kept_keys)
-    return IndexReport(store=str(store), datasets=len(ds_rows), maps=total, new=new, changed=changed,
-                       unchanged=unchanged, removed=max(0, before - changed - unchanged),
-                       problems=len(prob_rows), kept_datasets=len(plan.kept), seconds=0.0, problem_codes=codes)
+    return IndexReport(store=str(store), n_datasets=len(ds_rows), n_maps=total, n_new=new, n_changed=changed,
+                       n_unchanged=unchanged, n_removed=max(0, before - changed - unchanged),
+                       n_problems=len(prob_rows), n_kept_datasets=len(plan.kept), seconds=0.0, problem_codes=codes)
 
 
 def _relabel(store: Path, head: Head) -> None:

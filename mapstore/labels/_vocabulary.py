@@ -198,16 +198,16 @@ class LabelReport:
 
     vocabulary: str
     sha256: str
-    maps: int
-    labelled: int
-    labels: int
+    n_maps: int
+    n_labelled: int
+    n_labels: int
     unmatched_contrasts: list[dict[str, Any]]
     unused_rules: list[int]
     per_concept: dict[str, int]
 
     def summary(self) -> str:
-        lines = [f"vocabulary {self.vocabulary!r} (sha256 {self.sha256[:12]}): {self.labelled} of {self.maps} "
-                 f"maps labelled, {self.labels} labels",
+        lines = [f"vocabulary {self.vocabulary!r} (sha256 {self.sha256[:12]}): {self.n_labelled} of {self.n_maps} "
+                 f"maps labelled, {self.n_labels} labels",
                  "per concept: " + ", ".join(f"{k} {v}" for k, v in sorted(self.per_concept.items()))]
         if self.unmatched_contrasts:
             lines.append(f"{len(self.unmatched_contrasts)} contrast(s) no rule matched:")

@@ -53,7 +53,7 @@ DATA_FILES = ("X.npy", "table.parquet")
 class ExportReport:
     out: str
     n_maps: int
-    n_voxels: int
+    n_features: int  # X's columns (in ``unit``)
     scheme: str
     n_splits: int
     dropped: dict[str, int]
@@ -68,7 +68,7 @@ class ExportReport:
         voxel_line = (f"\nmissing values: {m['policy']}; {m['dropped_voxels']:,} of {m['mask_voxels']:,} mask {self.unit} "
                       f"dropped ({m['reason']})" if m.get("dropped_voxels") else
                       f"\nmissing values: {m['policy']} ({m['reason']})" if m else "")
-        return (f"exported {self.n_maps} maps x {self.n_voxels:,} {self.unit} to {self.out} in {self.seconds:.1f} s\n"
+        return (f"exported {self.n_maps} maps x {self.n_features:,} {self.unit} to {self.out} in {self.seconds:.1f} s\n"
                 f"scheme {self.scheme}: {self.n_splits} split(s); dropped: {d}"
                 + voxel_line
                 + (f"\nWARNING: {len(self.leaks)} leak(s) accepted with --allow-leak" if self.leaks else ""))
@@ -288,8 +288,8 @@ class VerifyReport:
     """What ``verify`` found: an empty ``changes`` list means everything still matches."""
 
     manifest: str
-    checked_sources: int
-    checked_rows: int
+    n_sources: int
+    n_rows: int
     changes: list[str]
 
     @property
@@ -297,7 +297,7 @@ class VerifyReport:
         return not self.changes
 
     def summary(self) -> str:
-        head = (f"{self.manifest}: {self.checked_sources} source files, {self.checked_rows} store rows and "
+        head = (f"{self.manifest}: {self.n_sources} source files, {self.n_rows} store rows and "
                 "the exported files checked")
         if self.ok:
             return head + "\nall hashes match: the export is reproducible from these sources and this store"

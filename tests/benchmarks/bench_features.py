@@ -128,8 +128,8 @@ def workload_a(work: Path, n_maps: int, skip_baseline: bool) -> dict:
         f"t=time.perf_counter(); mapstore.index([{str(root)!r}], {str(store)!r}, progress=False); ti=time.perf_counter()-t\n"
         f"t=time.perf_counter(); r=mapstore.build_features({str(store)!r}, progress=False); tf=time.perf_counter()-t\n"
         f"t=time.perf_counter(); w=mapstore.build_features({str(store)!r}, progress=False); tw=time.perf_counter()-t\n"
-        "assert w.built == 0 and r.failed == 0\n"
-        "print(ti, tf, tw, r.built)\n")
+        "assert w.n_built == 0 and r.n_problems == 0\n"
+        "print(ti, tf, tw, r.n_built)\n")
     ti, tf, tw, built = out.split()
     ti, tf, tw = float(ti), float(tf), float(tw)
     n = len(files)
@@ -168,7 +168,7 @@ def workload_b(work: Path, n_rows: int, rss_sizes: list[int], b_per_map: float |
             "['map_id'].to_pylist()\n"
             "where = 'm.map_id IN (' + ','.join(repr(s) for s in sel) + ')'\n"
             f"t=time.perf_counter(); r=mapstore.build_features({str(store)!r}, where=where, progress=False); "
-            "print(time.perf_counter()-t, r.built)\n")
+            "print(time.perf_counter()-t, r.n_built)\n")
         t, built = out.split()
         print(f"build of {built} rows: {float(t):7.2f} s, peak RSS (largest process) {rss / 1024:6.0f} MB")
         if n == n_rows:
@@ -216,7 +216,7 @@ def time_x(store: Path, n_rows: int, b_per_map: float | None) -> None:
         t_saves.append(time.perf_counter() - t0)
         same.unlink()
     t_exp, t_save = float(np.median(t_exps)), float(np.median(t_saves))
-    print(f"export of {rep.n_maps} maps ({rep.n_maps * rep.n_voxels * 4 / 1e6:,.0f} MB X), median of 5: "
+    print(f"export of {rep.n_maps} maps ({rep.n_maps * rep.n_features * 4 / 1e6:,.0f} MB X), median of 5: "
           f"{t_exp:6.2f} s (runs {', '.join(f'{t:.2f}' for t in t_exps)})")
     print(f"np.save of the same array, median of 5: {t_save:6.2f} s (runs {', '.join(f'{t:.2f}' for t in t_saves)})")
     print(f"ratio export / np.save:              {t_exp / t_save:8.2f}x  (target <= 1.5x)")

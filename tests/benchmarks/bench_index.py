@@ -101,7 +101,7 @@ def ours(root: Path, store: Path, jobs: int | None) -> tuple[float, float, int, 
         "cold=time.perf_counter()-t\n"
         f"t=time.perf_counter(); w=mapstore.index([{str(root)!r}], {str(store)!r}, jobs={jobs!r}, progress=False)\n"
         "warm=time.perf_counter()-t\n"
-        "print(cold, warm, r.maps, w.unchanged)\n"
+        "print(cold, warm, r.n_maps, w.n_unchanged)\n"
     )
     before = resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss
     out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True).stdout

@@ -68,7 +68,7 @@ def index_run(root: Path, store: Path, jobs: int, runs: int = 1) -> dict:
             "    t = time.perf_counter()\n"
             f"    r = mapstore.index([{str(root)!r}], {str(store)!r}, jobs={jobs}, progress=False)\n"
             "    times.append(time.perf_counter() - t)\n"
-            "print(json.dumps({'times': times, 'maps': r.maps, 'unchanged': r.unchanged, 'peak': _peak()}))\n")
+            "print(json.dumps({'times': times, 'maps': r.n_maps, 'unchanged': r.n_unchanged, 'peak': _peak()}))\n")
     return _child(code)
 
 

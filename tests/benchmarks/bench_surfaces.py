@@ -85,7 +85,7 @@ def surface_part(work: Path, n_maps: int, jobs: int) -> None:
                  "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak()}))")
     feat = _child(f"import json, time, mapstore\nt=time.perf_counter()\n"
                   f"r=mapstore.build_features({str(store)!r}, grid='fsaverage5', jobs={jobs}, progress=False)\n"
-                  "assert r.built == " + str(n_maps) + ", r.summary()\n"
+                  "assert r.n_built == " + str(n_maps) + ", r.summary()\n"
                   "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak()}))")
     hand = _child(f"import json, time, glob, numpy as np\nt=time.perf_counter()\n"
                   "from nilearn.surface import load_surf_data\n"
@@ -131,7 +131,7 @@ def volume_part(work: Path, n_maps: int, jobs: int) -> None:
     feat = _child(f"import json, time, mapstore\nt=time.perf_counter()\n"
                   f"r=mapstore.build_features({str(store)!r}, grid='fsaverage5', mask='all', jobs={jobs}, "
                   "progress=False)\n"
-                  f"assert r.built == {n_maps}, r.summary()\n"
+                  f"assert r.n_built == {n_maps}, r.summary()\n"
                   "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak()}))")
     hand = _child(f"import json, time, glob, warnings, numpy as np\nt=time.perf_counter()\n"
                   "from nilearn.datasets import load_fsaverage\nfrom nilearn.image import load_img\n"
@@ -180,7 +180,7 @@ def parcel_part(work: Path, n_rows: int) -> None:
     nib.save(nib.Nifti1Image(lab.astype(np.int16), grid.affine_array), str(atlas))
     ours = _child(f"import json, time, mapstore\nt=time.perf_counter()\n"
                   f"r=mapstore.build_parcels({str(store)!r}, {str(atlas)!r}, source='synthetic', name='blocks')\n"
-                  "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak(), 'p': r.n_voxels}))")
+                  "print(json.dumps({'s': time.perf_counter()-t, 'mb': _peak(), 'p': r.n_features}))")
     hand = _child(f"import json, time, warnings, numpy as np, nibabel as nib, mapstore\nt=time.perf_counter()\n"
                   "from nilearn.maskers import NiftiLabelsMasker\nwarnings.simplefilter('ignore')\n"
                   f"fs = mapstore.open({str(store)!r}).features('synthetic')\n"
