@@ -118,11 +118,13 @@ def write_table(table, fmt: str, out: str | None) -> None:
               help="Seconds a file's read may make no progress before the file is skipped (read-timeout).")
 @click.option("--dask", "dask_address", help="Run the crawl on this Dask scheduler (e.g. tcp://host:8786); "
               "workers must see the datasets and the store at the same paths.")
-def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_address) -> None:
+@click.option("--transforms", multiple=True, type=click.Path(file_okay=False),
+              help="Folder of registrations of native-space maps to a template (BIDS *_from-<space>_to-"
+                   "<template>_mode-image_xfm.h5/.txt/.mat files); repeatable.")
+def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_address, transforms) -> None:
     """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them)."""
     report = run_index(roots, store, rules=list(rules) or None, overrides=origins, jobs=jobs, prune=prune,
-                            scheduler=dask_address,
-                            read_timeout=read_timeout)
+                       scheduler=dask_address, read_timeout=read_timeout, transforms=list(transforms))
     click.echo(report.summary())
 
 

@@ -131,9 +131,10 @@ class FeatureError(MapstoreError, ValueError):
     produced nothing usable (every selected map failed).
     """
 
-    def __init__(self, message: str, report=None) -> None:
+    def __init__(self, message: str, report=None, code: str | None = None, remedy: str | None = None) -> None:
         super().__init__(message)
         self.report = report
+        self.code, self.remedy = code, remedy  # a map's problem: its code and what to do, when known
 
 
 class ConversionError(MapstoreError, ValueError):

@@ -50,6 +50,11 @@ MAPS_DOCS = {
     "n_vertices": "values per map of a surface file: vertices (GIFTI) or grayordinates (CIFTI-2)",
     "structures": "GIFTI AnatomicalStructurePrimary, or the CIFTI-2 brain structures, comma-separated",
     "linked_map": "map_id of the other hemisphere's file of the same map (names equal but for hemi-L/R)",
+    "space_kind": "template (space- names a template), native (a subject's own space: T1w, bold, any other "
+                  "space-, a FEAT first-level stats/ folder) or unstated (no space-: taken as the template's)",
+    "registration": "a native volume's registration to a template, JSON: {\"to\": space, \"steps\": [{\"path\", "
+                    "\"sha256\", \"format\"}, ...]} with the template side first; {\"missing\": reason} when "
+                    "none was found",
     "dof": "degrees of freedom, first found of: sidecar DegreesOfFreedom, intent_p1 of a t-test header, "
            "the design matrices beside the map (rows - rank), a header description {T_[df]}, a DOF file",
     "dof_source": "where dof came from: sidecar, header, design, descrip, dof-file",

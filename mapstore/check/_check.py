@@ -306,8 +306,24 @@ _MNI_BRAIN_BOX = (np.array([-78.0, -112.0, -72.0]), np.array([78.0, 76.0, 86.0])
 
 def _check_space(store, add) -> None:
     spaces = {r["space"]: r["n"] for r in store.sql(f"SELECT space, count(*) AS n FROM maps WHERE {_VOLUME} "
-                                                     "GROUP BY space").to_pylist()}
+                                                     "AND space_kind <> 'native' GROUP BY space").to_pylist()}
     named = {s for s in spaces if s}
+    for r in store.sql(f"SELECT dataset, count(*) AS n, min(relpath) AS example, any_value(registration) AS why, "
+                       f"count(*) FILTER (WHERE registration NOT LIKE '{{\"missing\"%') AS registered FROM maps "
+                       f"WHERE {_VOLUME} AND space_kind = 'native' GROUP BY dataset ORDER BY dataset").to_pylist():
+        missing = r["n"] - r["registered"]
+        if missing:
+            why = json.loads(r["why"]).get("missing", "") if r["why"] else ""
+            add(Finding("error", "space", "native-no-registration", r["dataset"],
+                        f"{missing} native-space volume map(s) without a registration to a template (e.g. "
+                        f"{r['example']}: {why}); feature sets refuse them",
+                        "give the folder holding the registrations with 'mapstore index --transforms DIR', or "
+                        "index the maps written in template space"))
+        if r["registered"]:
+            add(Finding("info", "space", "native-registered", r["dataset"],
+                        f"{r['registered']} native-space volume map(s) reach the template through their "
+                        "registration (one resampling: transform, then the set's interpolation)",
+                        "none needed; a changed registration file rebuilds their rows"))
     if len(named) > 1:
         add(Finding("warning", "space", "several-spaces", "catalog",
                     f"volume maps in {len(named)} template spaces ({', '.join(f'{s} x{spaces[s]}' for s in sorted(named))})",
@@ -315,7 +331,8 @@ def _check_space(store, add) -> None:
                     "select one space, or accept the small misalignment"))
     if spaces.get(None):
         add(Finding("warning", "space", "no-space-entity", "catalog",
-                    f"{spaces[None]} map(s) have no space- entity; they are taken to be in the target's space",
+                    f"{spaces[None]} map(s) have no space- entity; they are taken to be in the target's space "
+                    "(a map in a subject's own space would land in the wrong place)",
                     "add space-<label> to the file names, or a name rule that sets it"))
     lo_b, hi_b = _MNI_BRAIN_BOX
     grids = store.sql("SELECT grid_id, any_value(affine) AS affine, any_value(shape) AS shape, min(relpath) AS "

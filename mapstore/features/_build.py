@@ -138,6 +138,8 @@ def feature_key(sha256: str, spec: dict[str, Any], dof: float | None, model_mask
              "" if dof is None or spec["stat"] == "native" else f"{dof:.6g}", __version__]
     if spec.get("projection") is not None:
         parts += [json.dumps(spec["projection"], sort_keys=True), more]
+    elif "|native:" in more:  # a volume set: only a native map's registration adds to the key
+        parts.append(more[more.index("|native:"):])
     text = "|".join(parts)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
@@ -167,7 +169,7 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], target
     is its ``linked_map``); an unpaired hemisphere comes alone, the other half missing.
     """
     q = ("SELECT m.map_id, m.dataset, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, "
-         "m.model_mask, m.model_mask_sha256, m.geometry, m.hemi, m.space, m.sub, ")
+         "m.model_mask, m.model_mask_sha256, m.geometry, m.hemi, m.space, m.sub, m.space_kind, m.registration, ")
     second = target.second_halves("m")
     if second:  # the right hemisphere's file beside the left's
         q += ("r.relpath AS relpath_r, r.sha256 AS sha256_r, r.model_mask AS model_mask_r, "

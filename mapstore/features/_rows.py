@@ -59,6 +59,8 @@ def feature_problem(it: SourceMap, exc: Exception) -> Problem:
         reason = reason[len(path) + 2:]  # the row names the file already
     remedy = "re-run 'mapstore index' if the file changed" if "index" in reason else \
         "fix or exclude the map (see the reason)"
+    code = getattr(exc, "code", None) or code
+    remedy = getattr(exc, "remedy", None) or remedy
     return Problem(path, code, reason, remedy, stage="features", map_id=it.map_id)
 
 

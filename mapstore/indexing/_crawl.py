@@ -27,6 +27,7 @@ from typing import Any, Iterable
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from ._spaces import RegistrationFinder, registration_json, space_kind
 from ._discover import (
 
     DatasetInfo,
@@ -307,6 +308,7 @@ class _Unit:
     prev_part: CatalogPart | None = None  # this unit's part in the previous snapshot
     prev_files: list[str] = field(default_factory=list)  # the dataset's previous parts, for reusing headers
     read_timeout: float | None = None
+    transforms: tuple[str, ...] = ()  # folders of registrations given by the user
 
 
 @dataclass
@@ -397,8 +399,8 @@ def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
         rows.add(m)
     table = rows.table()
     problems = rows.all_problems()
-    if any(p.level == _NOT_REUSED_LEVEL for p in problems):
-        digest = None
+    if any(p.level == _NOT_REUSED_LEVEL for p in problems) or rows.native:
+        digest = None  # a native map's registration may change outside the unit's files
     part = _write_part(unit, table, problems, digest)
     return _UnitResult(part, problems, rows.new, rows.changed, rows.unchanged, False)
 
@@ -435,6 +437,8 @@ class _RowBuilder:
         self.origins: dict[str | None, dict[str, Any]] = {}
         self.mask_sha: dict[str, str | None] = {}
         self.new = self.changed = self.unchanged = 0
+        self.native = 0  # native-space maps: their registration lives outside the unit's files
+        self.registrations = RegistrationFinder(unit.ds.root, unit.ds.source_roots, unit.transforms)
 
     def _header(self, m) -> tuple[dict[str, Any], str, int] | None:
         """Header columns, sha256 and size of a map (None, with a problem, when it cannot be read)."""
@@ -506,6 +510,15 @@ class _RowBuilder:
         mask_rel, msha = self._model_mask(m, not volume) if hdr.get("geometry") != "grayordinates" else (None, None)
         dof, dof_source = _degrees_of_freedom(m, meta, used, hdr, self.model, self.problems)
         get = ents.get
+        kind = space_kind(get("space"), ds.root, m.relpath)
+        reg, why = None, ""
+        if kind == "native" and volume:
+            self.native += 1
+            reg, why = self.registrations.find(get("space"), get("sub"), get("ses"), ds.root, m.relpath)
+            if reg is None:
+                self.problems.append(Problem(m.path, "no-registration", why, "give the folder holding the "
+                                             "subject's registration to a template with --transforms (index), or "
+                                             "index the map written in template space", "warning", ds.key))
         row = {c: get(c) for c in _ENTITY_COLUMNS}
         if not volume and row["hemi"] is None and hdr.get("_hemi"):
             row["hemi"] = hdr["_hemi"]  # GIFTI's AnatomicalStructurePrimary, where the name has no hemi
@@ -515,7 +528,8 @@ class _RowBuilder:
             entities=json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")}, sort_keys=True),
             named_by=m.named_by, participant=origin["participant"], study=origin["study"], site=origin["site"],
             lab=lab, sha256=sha, nbytes=nbytes, mtime_ns=m.mtime_ns, dof=dof, dof_source=dof_source,
-            model_mask=mask_rel, model_mask_sha256=msha, linked_map=None)
+            model_mask=mask_rel, model_mask_sha256=msha, linked_map=None, space_kind=kind,
+            registration=registration_json(reg or ({"missing": why} if kind == "native" and volume else None)))
         self.rows.append(_ROW_TUPLE(row))
 
     def table(self) -> pa.Table:
@@ -704,8 +718,8 @@ _TOPS_PER_UNIT = 500
 
 
 def _units(ds: DatasetInfo, parser: EntityParser, by_sub: dict[str, dict[str, Any]], rules: NameRules,
-           over: MetadataOverrides, prev: "_Previous", store: Path, split: int, read_timeout: float | None
-           ) -> list[_Unit]:
+           over: MetadataOverrides, prev: "_Previous", store: Path, split: int, read_timeout: float | None,
+           transforms: tuple[str, ...] = ()) -> list[_Unit]:
     """The units of one dataset: contiguous runs of its top folders (unit 0 also takes root maps).
 
     Their boundaries depend on the folders alone (and ``split``, raised when there are fewer
@@ -715,7 +729,7 @@ def _units(ds: DatasetInfo, parser: EntityParser, by_sub: dict[str, dict[str, An
     n = min(len(tops), max(math.ceil(len(tops) / _TOPS_PER_UNIT), split)) or 1
     size = math.ceil(len(tops) / n) if tops else 0
     chunks: list[list[str] | None] = [None] if n == 1 else [tops[i:i + size] for i in range(0, len(tops), size)]
-    inputs = json.dumps([__version__, MAPS_SCHEMA_ID, ds.__dict__, by_sub, over.datasets, over.subjects],
+    inputs = json.dumps([__version__, MAPS_SCHEMA_ID, ds.__dict__, by_sub, over.datasets, over.subjects, transforms],
                         sort_keys=True, default=str)
     prev_files = prev.files_of(ds.key)
     units = []
@@ -723,7 +737,7 @@ def _units(ds: DatasetInfo, parser: EntityParser, by_sub: dict[str, dict[str, An
         key = f"{ds.key}|*" if top is None else \
             f"{ds.key}|{hashlib.sha256(chr(0).join(top).encode()).hexdigest()[:16]}"
         units.append(_Unit(ds, parser, top, i == 0, by_sub, rules, over, key, inputs, str(store),
-                           prev.by_unit.get(key), prev_files, read_timeout))
+                           prev.by_unit.get(key), prev_files, read_timeout, transforms))
     return units
 
 
@@ -777,6 +791,7 @@ def index(
     progress: bool | None = None,
     read_timeout: float | None = 60.0,
     scheduler: Any = None,
+    transforms: Iterable[str | os.PathLike[str]] = (),
 ) -> IndexReport:
     """Crawl derivative datasets and publish a new catalog snapshot in ``store``.
 
@@ -805,6 +820,11 @@ def index(
     scheduler : dask.distributed.Client or str, optional
         Send the units of work to this Dask cluster instead of local processes.  Workers must
         see the datasets and the store at the same paths; each unit writes its own part.
+    transforms : iterable of path, optional
+        Folders holding registrations of native-space maps to a template
+        (``sub-<label>[_ses-<label>]_..._from-<space>_to-<template>_mode-image_xfm.{h5,txt,mat}``,
+        in ``sub-<label>/`` folders or lying flat), looked in after the map's own dataset and the
+        datasets its ``SourceDatasets`` names.
 
     Returns
     -------
@@ -819,6 +839,11 @@ def index(
         raise ParameterError(f"read_timeout must be a positive number of seconds or None, got {read_timeout!r}")
     name_rules = NameRules.load(rules)
     meta_over = MetadataOverrides.load(overrides)
+    xfm_roots = tuple(str(Path(t).expanduser().absolute()) for t in ([transforms] if isinstance(transforms, (str, os.PathLike)) else transforms))
+    for t in xfm_roots:
+        if not os.path.isdir(t):
+            raise ParameterError(f"transforms folder {t} does not exist; give a folder holding the registrations "
+                                 "(sub-<label>_..._from-<space>_to-<template>_mode-image_xfm.h5 files)")
     store_path = Path(store).expanduser().absolute()
     datasets, problems = _find(roots, store_path)  # type: ignore[arg-type]
     store_path = ensure_store(store_path)
@@ -827,7 +852,8 @@ def index(
     with write_lock(store_path):
         head = read_head(store_path)
         prev = _Previous.load(store_path, head)
-        plan = _plan(datasets, prev, roots, prune, name_rules, meta_over, store_path, jobs, scheduler, read_timeout)  # type: ignore[arg-type]
+        plan = _plan(datasets, prev, roots, prune, name_rules, meta_over, store_path, jobs, scheduler, read_timeout,  # type: ignore[arg-type]
+                     xfm_roots)
         problems += plan.problems
         try:
             results = list(run_units(_run_unit, plan.units, jobs=jobs, scheduler=scheduler, progress=progress,
@@ -870,7 +896,8 @@ class _Plan:
 
 
 def _plan(datasets: list[DatasetInfo], prev: _Previous, roots: list[Path], prune: bool, rules: NameRules,
-          over: MetadataOverrides, store: Path, jobs: int, scheduler: Any, read_timeout: float | None) -> _Plan:
+          over: MetadataOverrides, store: Path, jobs: int, scheduler: Any, read_timeout: float | None,
+          transforms: tuple[str, ...] = ()) -> _Plan:
     """Participants of every dataset, and the units of work (each knowing its previous part)."""
     found = {d.key for d in datasets}
     kept = [] if prune else [d for d in prev.datasets if d["dataset"] not in found and not _under(d["root"], roots)]
@@ -892,7 +919,7 @@ def _plan(datasets: list[DatasetInfo], prev: _Previous, roots: list[Path], prune
                    **{k: v for k, v in r.items() if k != "participant_id"}}
             by_sub[sub] = rec
             participants.append(rec)
-        units += _units(ds, parser, by_sub, rules, over, prev, store, split, read_timeout)
+        units += _units(ds, parser, by_sub, rules, over, prev, store, split, read_timeout, transforms)
     return _Plan(datasets, units, kept, participants, files, problems)
 
 

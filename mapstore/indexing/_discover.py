@@ -73,7 +73,7 @@ class DatasetInfo:
     raw_root: str | None
     raw_name: str | None
     description: dict[str, Any]
-    source_roots: list[str] = field(default_factory=list)  # local raw datasets named by SourceDatasets
+    source_roots: list[str] = field(default_factory=list)  # local datasets named by SourceDatasets
 
     @property
     def study(self) -> str:
@@ -470,11 +470,12 @@ def _looks_like_dataset(path: Path) -> bool:
         return False
 
 
-def _source_raw(root: Path, desc: dict[str, Any]) -> tuple[Path, dict] | None:
-    """The first local dataset named by ``SourceDatasets`` (a relative path or a file: URL)."""
+def _local_sources(root: Path, desc: dict[str, Any]) -> list[tuple[Path, dict]]:
+    """The local datasets named by ``SourceDatasets`` (a relative path or a file: URL), in order."""
     sources = desc.get("SourceDatasets")
     if not isinstance(sources, list):
-        return None
+        return []
+    found = []
     for src in sources:
         url = src.get("URL") if isinstance(src, dict) else src if isinstance(src, str) else None
         if not isinstance(url, str) or not url.strip():
@@ -489,8 +490,14 @@ def _source_raw(root: Path, desc: dict[str, Any]) -> tuple[Path, dict] | None:
         cand = Path(os.path.normpath(cand))
         if (cand / "dataset_description.json").is_file():
             sdesc, _ = _read_description(cand)
-            return cand, sdesc or {}
-    return None
+            found.append((cand, sdesc or {}))
+    return found
+
+
+def _source_raw(root: Path, desc: dict[str, Any]) -> tuple[Path, dict] | None:
+    """The first local dataset named by ``SourceDatasets``."""
+    found = _local_sources(root, desc)
+    return found[0] if found else None
 
 
 def _enclosing_raw(root: Path) -> tuple[Path, dict] | None:
@@ -519,14 +526,12 @@ def _make_dataset(root: Path, desc: dict[str, Any] | None, raw: tuple[Path, dict
                                 f"folder, {root.name!r}",
                                 "add a \"Name\" to dataset_description.json (the key of its maps follows it)",
                                 "warning"))
-    sources: list[str] = []
     if raw is None:
         raw = _enclosing_raw(root)
-    src = _source_raw(root, desc)
-    if src is not None:
-        sources.append(str(src[0]))
-        if raw is None and src[1].get("DatasetType") != "derivative":
-            raw = src
+    local = _local_sources(root, desc)
+    sources = [str(p) for p, _ in local]
+    if local and raw is None and local[0][1].get("DatasetType") != "derivative":
+        raw = local[0]
     raw_name = None
     if raw is not None:
         raw_name = str(raw[1].get("Name") or raw[0].name)

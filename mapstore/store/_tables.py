@@ -43,6 +43,9 @@ MAPS_SCHEMA = pa.schema([
     # surface maps: 'volume' (NIfTI), 'surface' (GIFTI, one hemisphere per file) or 'grayordinates'
     # (CIFTI-2); the values per map; CIFTI structures; the map_id of the other hemisphere's file
     ("geometry", _s), ("n_vertices", _i64), ("structures", _s), ("linked_map", _s),
+    # 'template', 'native' or 'unstated' (no space entity); a native volume's registration to a template
+    # (JSON: {"to": space, "steps": [{"path", "sha256", "format", ...}]}, template side first)
+    ("space_kind", _s), ("registration", _s),
 ])
 DATASETS_SCHEMA = pa.schema([
     ("dataset", _s), ("name", _s), ("study", _s), ("root", _s), ("dataset_type", _s),

@@ -13,6 +13,7 @@ from __future__ import annotations
 
 import abc
 import hashlib
+import json
 import os
 from dataclasses import dataclass, field
 from typing import Any, ClassVar, NamedTuple
@@ -46,6 +47,8 @@ class SourceMap:
     space: str | None = None  # surface: the map's space entity (chooses the resampling path)
     native: dict[str, Any] | None = None  # fsnative maps: the subject's sphere.reg per hemisphere (MeshFile)
     native_missing: str | None = None  # fsnative maps: why there is no registration
+    space_kind: str | None = None  # template, native or unstated
+    registration: dict[str, Any] | None = None  # a native volume's transforms to a template, template side first
 
     @property
     def where(self) -> str:
@@ -62,7 +65,8 @@ class SourceMap:
 
         it = cls(r["map_id"], at(r["relpath"]), r["sha256"], r["stat"], r["dof"], key, at(r.get("model_mask")),
                  r.get("model_mask_sha256"), r.get("geometry") or "volume", r.get("hemi"), space=r.get("space"),
-                 native=r.get("native"), native_missing=r.get("native_missing"))
+                 native=r.get("native"), native_missing=r.get("native_missing"), space_kind=r.get("space_kind"),
+                 registration=json.loads(r["registration"]) if r.get("registration") else None)
         if it.geometry == "surface":
             if r.get("hemi") == "R":  # an unpaired right hemisphere
                 it.path_r, it.sha256_r, it.mask_path_r, it.mask_sha256_r = (it.path, it.sha256, it.mask_path,
@@ -82,6 +86,10 @@ class SourceMap:
             more += f"|{r.get('space') or ''}"
         if r.get("native"):
             more += "|" + "|".join(f.sha256 for f in r["native"].values())
+        if r.get("space_kind") == "native":  # a changed registration (or a new one) rebuilds the row
+            reg = json.loads(r["registration"]) if r.get("registration") else {}
+            more += "|native:" + ",".join(f"{s['sha256']}/{s.get('reference_sha256') or ''}/"
+                                          f"{s.get('moving_sha256') or ''}" for s in reg.get("steps", []))
         return more
 
 
@@ -105,6 +113,7 @@ class BatchContext:
     vertex_indices: dict[tuple, tuple[np.ndarray | None, str]] = field(default_factory=dict)
     spheres: dict[tuple, np.ndarray] = field(default_factory=dict)  # a target's sphere per hemisphere
     registered: dict[tuple, np.ndarray] = field(default_factory=dict)  # registered spheres' coordinates
+    pulled: dict[tuple, np.ndarray] = field(default_factory=dict)  # a registration's source voxel coordinates
     operators: dict[tuple, Any] = field(default_factory=dict)  # projection operators per grid and mesh
     meshes: dict[str, dict[str, Any]] = field(default_factory=dict)  # a mesh's surfaces, by grid id
     axis: Any = None  # a grayordinate template's brain-model axis

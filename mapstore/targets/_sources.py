@@ -89,8 +89,17 @@ def _model_mask(path: str, sha256: str, facts: HeaderFacts, cache: dict[str, np.
 
 
 
-def source_volume(item: SourceMap, settings: BuildSettings, ctx: BatchContext) -> SourceVolume:
-    """A volume map's values on its own grid: missing region as NaN, statistic converted."""
+def source_volume(item: SourceMap, settings: BuildSettings, ctx: BatchContext, native_ok: bool = False
+                  ) -> SourceVolume:
+    """A volume map's values on its own grid: missing region as NaN, statistic converted.
+
+    A native-space map is refused unless the caller resamples it through its registration
+    (``native_ok``): projecting it as if it were in the template would put values in the wrong place.
+    """
+    if item.space_kind == "native" and not native_ok:
+        raise FeatureError("a volume map in a native space: this kind of feature set does not take it through "
+                           "its registration yet; build a volume feature set for it, or give the map in "
+                           "template space")
     converting = settings.stat == "z" and item.stat in ("t", "p")
     # p close to 1 (z < -5) is not representable in float32: convert from the file's precision
     vol, facts = read_volume(str(item.path), expect_sha256=item.sha256,

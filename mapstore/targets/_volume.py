@@ -105,11 +105,20 @@ class TargetGrid(Target):
 
     def values(self, item: SourceMap, settings: BuildSettings, ctx: BatchContext, region: Any = None,
                indices: np.ndarray | None = None) -> RowValues:
+        from ._registered import pull_coordinates, registration_of, sample
         from ._sources import source_volume
 
-        src = source_volume(item, settings, ctx)
-        out, path = resample(np.asarray(src.values, dtype=np.float32), src.facts.affine_array, region or self,
-                             settings.method, return_path=True)
+        grid = region or self
+        if item.space_kind == "native":
+            reg = registration_of(item)  # before reading the map: a refusal costs nothing
+            src = source_volume(item, settings, ctx, native_ok=True)
+            vox = pull_coordinates(reg, grid, src.facts.affine_array, ctx)
+            out, path = sample(np.asarray(src.values, dtype=np.float32), vox, grid.shape, settings.method), \
+                "registered"
+        else:
+            src = source_volume(item, settings, ctx)
+            out, path = resample(np.asarray(src.values, dtype=np.float32), src.facts.affine_array, grid,
+                                 settings.method, return_path=True)
         flat = out.reshape(-1)
         vec = flat if indices is None else flat[indices]
         return RowValues(np.asarray(vec, dtype=np.float32), src.conversion, path, src.missing_from, src.p_clipped)

@@ -1,0 +1,223 @@
+"""Native-space volume maps reach the template through their registration, or are refused.
+
+References: a known affine between an invented subject space and the template (so the right
+answer at every template voxel is known), written as a transform file by nitransforms (ITK) or as
+a FLIRT matrix by hand; nitransforms' own resampling of the same map (``nitransforms.resampling.apply``).
+A naive resampling that ignores the registration must fail the same checks.  The maps are invented.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+import mapstore
+from mapstore.targets import builtin_grid
+
+from .conftest import make_derivative, write_json
+
+pytest.importorskip("nitransforms")
+
+GRID = "MNI152-3mm"
+TEMPLATE = "MNI152NLin2009cAsym"
+
+
+def _rotation(deg: float, shift) -> np.ndarray:
+    t = np.deg2rad(deg)
+    a = np.eye(4)
+    a[:3, :3] = [[np.cos(t), -np.sin(t), 0], [np.sin(t), np.cos(t), 0], [0, 0, 1]]
+    a[:3, 3] = shift
+    return a
+
+
+# subject (native) millimetres = KNOWN @ template millimetres
+KNOWN = _rotation(15.0, [10.0, -12.0, 6.0])
+NATIVE_AFFINE = np.array([[2.0, 0, 0, -100.0], [0, 2.0, 0, -130.0], [0, 0, 2.0, -80.0], [0, 0, 0, 1]])
+NATIVE_SHAPE = (100, 120, 90)
+
+
+def field_mm(p: np.ndarray) -> np.ndarray:
+    """The invented effect at template millimetres ``p`` (n, 3): smooth, so interpolation is near exact."""
+    return np.sin(p[:, 0] / 12.0) * np.cos(p[:, 1] / 15.0) + p[:, 2] / 40.0
+
+
+def native_image(known: np.ndarray = KNOWN) -> nib.Nifti1Image:
+    """The field as sampled on the subject's own grid (template point = inv(known) @ subject point)."""
+    ijk = np.indices(NATIVE_SHAPE).reshape(3, -1)
+    native_mm = NATIVE_AFFINE[:3, :3] @ ijk + NATIVE_AFFINE[:3, 3:4]
+    template_mm = np.linalg.inv(known)[:3, :3] @ native_mm + np.linalg.inv(known)[:3, 3:4]
+    data = field_mm(template_mm.T).reshape(NATIVE_SHAPE).astype(np.float32)
+    return nib.Nifti1Image(data, NATIVE_AFFINE)
+
+
+def template_answer() -> np.ndarray:
+    g = builtin_grid(GRID)
+    ijk = np.indices(g.shape).reshape(3, -1)
+    mm = g.affine_array[:3, :3] @ ijk + g.affine_array[:3, 3:4]
+    return field_mm(mm.T).reshape(g.shape)
+
+
+def write_itk(path: Path, known_ref_to_moving: np.ndarray) -> Path:
+    import nitransforms as nt
+
+    path.parent.mkdir(parents=True, exist_ok=True)
+    nt.linear.Affine(known_ref_to_moving).to_filename(str(path), fmt="itk")
+    return path
+
+
+def _name(sub: str, space: str) -> str:
+    return f"sub-{sub}/func/sub-{sub}_task-tap_space-{space}_contrast-tap_stat-effect_statmap.nii.gz"
+
+
+@pytest.fixture(scope="module")
+def native_store(tmp_path_factory):
+    base = tmp_path_factory.mktemp("native")
+    prep = base / "prep"  # the preprocessing derivative the model's dataset names in SourceDatasets
+    write_json(prep / "dataset_description.json", {"Name": "prep", "BIDSVersion": "1.9.0",
+                                                   "DatasetType": "derivative"})
+    write_itk(prep / "sub-01" / "anat" / f"sub-01_from-T1w_to-{TEMPLATE}_mode-image_xfm.txt", KNOWN)
+    glm = make_derivative(base / "glm", "pine")
+    desc = json.loads((glm / "dataset_description.json").read_text())
+    write_json(glm / "dataset_description.json", {**desc, "SourceDatasets": [{"URL": "../prep"}]})
+    img = native_image()
+    for sub, space in (("01", "T1w"), ("02", "T1w")):
+        (glm / _name(sub, space)).parent.mkdir(parents=True, exist_ok=True)
+        nib.save(img, str(glm / _name(sub, space)))
+    # sub-03: a map in its functional space; boldref -> T1w beside it, T1w -> template in a folder given by hand
+    bold_to_t1 = _rotation(-5.0, [2.0, 3.0, -4.0])  # boldref mm = bold_to_t1 @ T1w mm
+    (glm / _name("03", "boldref")).parent.mkdir(parents=True, exist_ok=True)
+    nib.save(native_image(bold_to_t1 @ KNOWN), str(glm / _name("03", "boldref")))
+    write_itk(glm / "sub-03" / "func" / "sub-03_task-tap_from-boldref_to-T1w_mode-image_xfm.txt", bold_to_t1)
+    given = base / "given"
+    write_itk(given / f"sub-03_from-T1w_to-{TEMPLATE}_mode-image_xfm.txt", KNOWN)
+    store = base / "store"
+    rep = mapstore.index([glm], store, transforms=[given], progress=False, jobs=1)
+    built = mapstore.build_features(store, grid=GRID, progress=False, jobs=1)
+    return base, store, rep, built
+
+
+def _row(store: Path, sub: str) -> np.ndarray:
+    s = mapstore.open(store)
+    fs = s.features()
+    mid = s.sql(f"SELECT map_id FROM maps WHERE sub = '{sub}'")["map_id"][0].as_py()
+    return fs.unmask(fs.matrix([mid])[0]).reshape(builtin_grid(GRID).shape)
+
+
+def test_a_registered_native_map_lands_on_the_known_answer(native_store):
+    _, store, _, built = native_store
+    assert built.paths.get("registered") == 2, built.summary()
+    want = template_answer()
+    for sub in ("01", "03"):  # one transform file (found in the source dataset), and a chain of two
+        got = _row(store, sub)
+        ok = np.isfinite(got)
+        assert ok.sum() > 20000
+        assert np.abs(got[ok] - want[ok]).max() < 0.02  # 2 mm source voxels, linear interpolation
+        assert np.corrcoef(got[ok], want[ok])[0, 1] > 0.999
+
+
+def test_the_row_equals_nitransforms_resampling_and_the_naive_one_fails(native_store):
+    import nitransforms as nt
+    from nitransforms.resampling import apply
+    from nilearn.image import resample_to_img
+
+    base, store, _, _ = native_store
+    g = builtin_grid(GRID)
+    ref = nib.Nifti1Image(np.zeros(g.shape, np.float32), g.affine_array)
+    src = nib.load(str(base / "glm" / _name("01", "T1w")))
+    xfm = nt.linear.load(str(base / "prep" / "sub-01" / "anat" / f"sub-01_from-T1w_to-{TEMPLATE}_mode-image_xfm.txt"),
+                         fmt="itk")
+    theirs = np.asarray(apply(xfm, src, reference=ref, order=1, cval=np.nan).dataobj)
+    ours = _row(store, "01")
+    common = np.isfinite(ours) & np.isfinite(theirs)
+    assert common.sum() > 20000
+    assert np.corrcoef(ours[common], theirs[common])[0, 1] >= 0.99
+    np.testing.assert_allclose(ours[common], theirs[common], atol=1e-3)
+    # resampling the file by its own affine, as if it were in the template, fails the same check
+    naive = resample_to_img(src, ref, interpolation="linear", force_resample=True, copy_header=True).get_fdata()
+    both = common & (naive != 0)
+    assert np.corrcoef(ours[both], naive[both])[0, 1] < 0.99
+
+
+def test_a_native_map_without_registration_is_refused_with_its_reason(native_store):
+    _, store, rep, built = native_store
+    refused = [p for p in built.problems if "sub-02" in p.path]
+    assert len(refused) == 1 and "native space 'T1w'" in refused[0].reason
+    assert "sub-02_*from-T1w_to-<template>" in refused[0].reason and refused[0].code == "no-registration"
+    assert "--transforms" in refused[0].remedy
+    s = mapstore.open(store)
+    kinds = {r["sub"]: r["space_kind"] for r in s.sql("SELECT sub, space_kind FROM maps").to_pylist()}
+    assert kinds == {"01": "native", "02": "native", "03": "native"}
+    regs = {r["sub"]: json.loads(r["registration"]) for r in s.sql("SELECT sub, registration FROM maps").to_pylist()}
+    assert [Path(st["path"]).name for st in regs["03"]["steps"]] == [
+        f"sub-03_from-T1w_to-{TEMPLATE}_mode-image_xfm.txt", "sub-03_task-tap_from-boldref_to-T1w_mode-image_xfm.txt"]
+    assert "missing" in regs["02"]
+    assert rep.problem_codes.get("no-registration") == 1
+    found = [f for f in mapstore.open(store).check().findings if f.code == "native-no-registration"]
+    assert len(found) == 1 and found[0].level == "error" and "--transforms" in found[0].remedy
+
+
+def test_a_changed_registration_rebuilds_the_row(native_store, tmp_path):
+    import shutil
+
+    base, _, _, _ = native_store
+    work = tmp_path / "w"
+    shutil.copytree(base, work, ignore=shutil.ignore_patterns("store"))
+    store = work / "store"
+    mapstore.index([work / "glm"], store, transforms=[work / "given"], progress=False, jobs=1)
+    mapstore.build_features(store, grid=GRID, progress=False, jobs=1)
+    write_itk(work / "prep" / "sub-01" / "anat" / f"sub-01_from-T1w_to-{TEMPLATE}_mode-image_xfm.txt",
+              _rotation(14.0, [10.0, -12.0, 6.0]))
+    mapstore.index([work / "glm"], store, transforms=[work / "given"], progress=False, jobs=1)
+    again = mapstore.build_features(store, grid=GRID, progress=False, jobs=1)
+    assert again.n_built == 1 and again.n_unchanged == 1  # sub-01 only (sub-02 is still refused)
+
+
+def _flirt_matrix(func: nib.Nifti1Image, std: nib.Nifti1Image, func_to_std_mm: np.ndarray) -> np.ndarray:
+    """FLIRT's matrix: the moving image's scaled-voxel coordinates to the reference's (x flipped for an image
+    whose affine has a positive determinant); from memory of FSL's FLIRT documentation."""
+    def fsl(img):
+        zooms = np.sqrt((img.affine[:3, :3] ** 2).sum(axis=0))
+        m = np.diag([*zooms, 1.0])
+        if np.linalg.det(img.affine) > 0:
+            flip = np.eye(4)
+            flip[0, 0], flip[0, 3] = -1, (img.shape[0] - 1) * zooms[0]
+            m = flip @ m
+        return m
+    return fsl(std) @ np.linalg.inv(std.affine) @ func_to_std_mm @ func.affine @ np.linalg.inv(fsl(func))
+
+
+def test_a_feat_first_level_map_goes_through_its_flirt_matrix(tmp_path):
+    root = make_derivative(tmp_path / "feat", "oak")
+    feat = root / "sub-01" / "tap.feat"
+    (feat / "stats").mkdir(parents=True)
+    (feat / "design.fsf").write_text("set fmri(level) 1\n")
+    (feat / "design.con").write_text("/ContrastName1\ttap\n")
+    func = native_image()
+    nib.save(func, str(feat / "stats" / "cope1.nii.gz"))
+    (feat / "reg").mkdir()
+    nib.save(func, str(feat / "reg" / "example_func.nii.gz"))
+    g = builtin_grid(GRID)
+    std = nib.Nifti1Image(np.zeros(g.shape, np.float32), g.affine_array)
+    nib.save(std, str(feat / "reg" / "standard.nii.gz"))
+    mat = _flirt_matrix(func, std, np.linalg.inv(KNOWN))
+    np.savetxt(feat / "reg" / "example_func2standard.mat", mat, fmt="%.10f")
+    # a second analysis without its registration: refused
+    other = root / "sub-02" / "tap.feat"
+    (other / "stats").mkdir(parents=True)
+    (other / "design.fsf").write_text("set fmri(level) 1\n")
+    (other / "design.con").write_text("/ContrastName1\ttap\n")
+    nib.save(func, str(other / "stats" / "cope1.nii.gz"))
+    store = tmp_path / "store"
+    mapstore.index([root], store, rules="fsl-feat", progress=False, jobs=1)
+    assert mapstore.open(store).sql("SELECT count(*) n FROM maps WHERE space_kind = 'native'")["n"][0].as_py() == 2
+    built = mapstore.build_features(store, grid=GRID, progress=False, jobs=1)
+    assert built.n_built == 1 and built.n_problems == 1
+    assert "example_func2standard.mat" in built.problems[0].reason
+    got = _row(store, "01")
+    want = template_answer()
+    ok = np.isfinite(got)
+    assert ok.sum() > 20000 and np.abs(got[ok] - want[ok]).max() < 0.02
