@@ -50,6 +50,8 @@ MAPS_DOCS = {
     "n_vertices": "values per map of a surface file: vertices (GIFTI) or grayordinates (CIFTI-2)",
     "structures": "GIFTI AnatomicalStructurePrimary, or the CIFTI-2 brain structures, comma-separated",
     "linked_map": "map_id of the other hemisphere's file of the same map (names equal but for hemi-L/R)",
+    "dof_numerator": "an F map's numerator degrees of freedom: its contrast's rank, the volumes of the effect map "
+                     "beside it (dof is the denominator's)",
     "space_kind": "template (space- names a template), native (a subject's own space: T1w, bold, any other "
                   "space-, a FEAT first-level stats/ folder) or unstated (no space-: taken as the template's)",
     "registration": "a native volume's registration to a template, JSON: {\"to\": space, \"steps\": [{\"path\", "

@@ -252,7 +252,7 @@ def test_pair_header_named_nii_is_a_problem(tmp_path):
     dst.parent.mkdir(parents=True)
     shutil.copy(NIBABEL_DATA / "nifti1.hdr", dst)
     r = mapstore.index([ds], tmp_path / "store", progress=False)
-    assert r.n_maps == 0 and r.problem_codes == {"pair-header": 1}
+    assert r.n_maps == 0 and r.problem_codes == {"pair-header": 1, "no-maps": 1}
 
 
 def test_crash_mid_index_keeps_the_served_catalog(tmp_path, monkeypatch):

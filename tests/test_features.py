@@ -165,7 +165,7 @@ def test_z_set_converts_t_and_leaves_out_effect(tmp_path):
     ds, store = _tree(tmp_path)
     r = mapstore.build_features(store, "zset", grid="MNI152-3mm", stat="z", jobs=1, progress=False)
     assert r.n_built == 4 and r.n_problems == 0
-    assert r.left_out == {"maps with no z equivalent (only t, p and z maps go into a z set)": 1}
+    assert r.left_out == {"maps with no z equivalent (only t, F, p and z maps go into a z set)": 1}
     assert "left out 1 maps with no z equivalent" in r.summary()
     fs = mapstore.open(store).features("zset")
     assert set(fs.rows["conversion"].to_pylist()) == {"t->z(dof=25)"}

@@ -216,7 +216,14 @@ def _lit(text: str) -> str:
 
 
 def _check_problems(store, add) -> None:
-    for p in store.sql("SELECT * FROM problems").to_pylist():
+    # image files no naming took: one finding per dataset and name ending, whatever the crawl's units
+    for p in store.sql("SELECT dataset, regexp_extract(reason, '\\(\\*([^)]*)\\)', 1) AS ending, sum(count) AS n, "
+                       "min(path) AS example, any_value(remedy) AS remedy FROM problems WHERE code = 'unmatched-images' "
+                       "GROUP BY ALL ORDER BY dataset, ending").to_pylist():
+        add(Finding("info", "files", "unmatched-images", p["dataset"] or "?",
+                    f"{p['n']} image file(s) *{p['ending']} were passed over: no BIDS statmap name, no name rule "
+                    f"(e.g. {p['example']})", p["remedy"]))
+    for p in store.sql("SELECT * FROM problems WHERE code <> 'unmatched-images'").to_pylist():
         add(Finding(p["level"] if p["level"] in LEVELS else "error", "files", p["code"], p["path"],
                     p["reason"], p["remedy"]))
 

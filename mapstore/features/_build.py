@@ -131,14 +131,16 @@ def spec_id(doc: dict[str, Any]) -> str:
 
 
 def feature_key(sha256: str, spec: dict[str, Any], dof: float | None, model_mask_sha256: str | None = None,
-                more: str = "") -> str:
+                more: str = "", dof1: float | None = None) -> str:
     """Hash of everything a row's values depend on; ``more`` adds an item's other sources (a hemisphere)."""
     parts = [sha256, spec["grid_id"], spec["mask_sha256"], spec["method"], spec["stat"],
              spec["p_sided"], str(spec["zero_as_missing"]), spec["background"], model_mask_sha256 or "",
              "" if dof is None or spec["stat"] == "native" else f"{dof:.6g}", __version__]
     if spec.get("projection") is not None:
         parts += [json.dumps(spec["projection"], sort_keys=True), more]
-    elif "|native:" in more:  # a volume set: only a native map's registration adds to the key
+    if dof1 is not None and spec["stat"] != "native":  # an F map's contrast rank
+        parts.append(f"df1={dof1:.6g}")
+    if spec.get("projection") is None and "|native:" in more:  # a volume set: only a native map's registration adds to the key
         parts.append(more[more.index("|native:"):])
     text = "|".join(parts)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
@@ -156,7 +158,7 @@ def _per_dataset(items: list[SourceMap], dataset_of: dict[str, str], n: int):
             k += 1
 
 
-_Z_READY = ("t", "p", "z")
+_Z_READY = ("t", "F", "p", "z")
 
 
 def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], target: Target, stat: str,
@@ -169,7 +171,8 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], target
     is its ``linked_map``); an unpaired hemisphere comes alone, the other half missing.
     """
     q = ("SELECT m.map_id, m.dataset, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, "
-         "m.model_mask, m.model_mask_sha256, m.geometry, m.hemi, m.space, m.sub, m.space_kind, m.registration, ")
+         "m.model_mask, m.model_mask_sha256, m.geometry, m.hemi, m.space, m.sub, m.space_kind, m.registration, "
+         "m.dof_numerator, ")
     second = target.second_halves("m")
     if second:  # the right hemisphere's file beside the left's
         q += ("r.relpath AS relpath_r, r.sha256 AS sha256_r, r.model_mask AS model_mask_r, "
@@ -206,7 +209,7 @@ def _left_out(r: dict[str, Any], kinds: tuple[str, ...], stat: str) -> str | Non
     if max(r["n_volumes"] or 1, r["n_volumes_r"] or 1) > 1:
         return "multi-volume maps (e.g. an F contrast's effect, one volume per contrast row)"
     if stat == "z" and r["stat"] not in _Z_READY:
-        return "maps with no z equivalent (only t, p and z maps go into a z set)"
+        return "maps with no z equivalent (only t, F, p and z maps go into a z set)"
     return None
 
 
@@ -449,7 +452,8 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: dict[str, Any], old_rows: p
     wanted: dict[str, SourceMap] = {}
     dataset_of: dict[str, str] = {}
     for r in rows_sel:
-        key = feature_key(r["sha256"], spec, r["dof"], r["model_mask_sha256"], SourceMap.key_sources(r))
+        key = feature_key(r["sha256"], spec, r["dof"], r["model_mask_sha256"], SourceMap.key_sources(r),
+                          r.get("dof_numerator"))
         wanted[r["map_id"]] = SourceMap.from_row(r, key)
         dataset_of[r["map_id"]] = r["dataset"]
     # keyed by map too: byte-identical copies of a file share a feature key, not a row

@@ -60,7 +60,7 @@ from .._params import resolve_jobs
 from .._runner import die_once_for_tests, run as run_units
 from ..errors import HeaderError, MapstoreError, NoDatasetsFound, ParameterError, StoreFull
 from ..labels import refresh_labels
-from ..formats import ReadDeadline, ReadTimeout, digest_file
+from ..formats import REAL_SCALAR_DTYPES, ReadDeadline, ReadTimeout, digest_file
 from ..formats import (
     NIFTI1_SIZE,
     NIFTI2_SIZE,
@@ -121,6 +121,11 @@ class IndexReport:
     n_kept_datasets: int
     seconds: float
     problem_codes: dict[str, int] = field(default_factory=dict)
+    passed_over: dict[str, int] = field(default_factory=dict)  # image files no naming took, by name ending
+
+    @property
+    def n_passed_over(self) -> int:
+        return sum(self.passed_over.values())
 
     def summary(self) -> str:
         rate = (self.n_new + self.n_changed) / self.seconds if self.seconds > 0 else 0.0
@@ -132,6 +137,10 @@ class IndexReport:
         ]
         if self.n_kept_datasets:
             lines.append(f"kept {self.n_kept_datasets} dataset(s) from earlier runs, not under these roots")
+        if self.passed_over:
+            top = ", ".join(f"*{k} x{v}" for k, v in sorted(self.passed_over.items(), key=lambda kv: -kv[1])[:4])
+            lines.append(f"passed over {self.n_passed_over} image file(s) that no naming takes ({top}); a name rule "
+                         "would take them: see SELECT path, remedy FROM problems WHERE code = 'unmatched-images'")
         if self.n_problems:
             codes = ", ".join(f"{k} x{v}" for k, v in sorted(self.problem_codes.items()))
             lines.append(f"problems: {self.n_problems} ({codes}); see: mapstore sql --store {self.store} "
@@ -168,6 +177,9 @@ def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None, prog
                 return Problem(path, "pair-header", "a NIfTI pair header (magic ni1/ni2): the voxels are in a "
                                "separate .img file", "convert the .hdr/.img pair to a single .nii(.gz) file, "
                                "for example with nibabel", stage="header")
+            refused = _not_a_map(path, facts)
+            if refused is not None:
+                return refused
             cols = _header_columns(facts)
             if cache is not None:
                 cache[key] = cols
@@ -178,6 +190,20 @@ def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None, prog
                        f"file has {dig.nbytes} bytes, header promises {cols['vox_offset'] + cols['_data_nbytes']}",
                        "the file was cut short; re-create or re-download it", stage="header")
     return cols, dig.sha256, dig.nbytes
+
+
+def _not_a_map(path: str, facts: HeaderFacts) -> Problem | None:
+    """A header that cannot hold a statistic map: refused at once, not when a feature set reads it."""
+    if facts.dtype not in REAL_SCALAR_DTYPES:
+        return Problem(path, "not-real-valued", f"the voxels are {facts.dtype} (not real numbers): a statistic map "
+                       "holds one real value per voxel", "save the magnitude or the real part as a float32 map",
+                       stage="header")
+    extra = facts.shape[4:]
+    if any(d > 1 for d in extra):
+        return Problem(path, "too-many-dimensions", f"a {len(facts.shape)}-D image of shape {facts.shape}: a "
+                       "statistic map is 3-D (or 4-D: the volumes of one contrast)", "split it into one 3-D "
+                       "(or 4-D) map per file", stage="header")
+    return None
 
 
 def _header_columns(facts: HeaderFacts) -> dict[str, Any]:
@@ -528,7 +554,7 @@ class _RowBuilder:
             entities=json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")}, sort_keys=True),
             named_by=m.named_by, participant=origin["participant"], study=origin["study"], site=origin["site"],
             lab=lab, sha256=sha, nbytes=nbytes, mtime_ns=m.mtime_ns, dof=dof, dof_source=dof_source,
-            model_mask=mask_rel, model_mask_sha256=msha, linked_map=None, space_kind=kind,
+            model_mask=mask_rel, model_mask_sha256=msha, linked_map=None, space_kind=kind, dof_numerator=None,
             registration=registration_json(reg or ({"missing": why} if kind == "native" and volume else None)))
         self.rows.append(_ROW_TUPLE(row))
 
@@ -538,15 +564,32 @@ class _RowBuilder:
         cols = dict(zip(_PER_ROW, (list(c) for c in zip(*rows)))) if rows else {c: [] for c in _PER_ROW}
         self.rows = []
         cols["linked_map"] = link_hemispheres(cols["relpath"], cols["hemi"], cols["map_id"])
-        return _assemble(cols, self.headers, self.hidx, self.sidecars, self.sidx, self.prev_table)
+        table = _assemble(cols, self.headers, self.hidx, self.sidecars, self.sidx, self.prev_table)
+        return _f_ranks(table)
 
     def all_problems(self) -> list[Problem]:
         key = self.ds.key
-        return [p if p.dataset else Problem(p.path, p.code, p.reason, p.remedy, p.level, key, p.stage)
+        return [p if p.dataset else dataclasses.replace(p, dataset=key)
                 for p in self.problems + self.resolver.problems]
 
 
 _HEMI_IN_NAME = re.compile(r"(?<=[_/])hemi-[LR](?=_)|^hemi-[LR](?=_)")
+
+
+def _f_ranks(table: pa.Table) -> pa.Table:
+    """An F map's numerator DOF: the volumes of the effect map its writer left beside it (one per row of
+    the F contrast, as nilearn's ``save_glm_to_bids`` writes them)."""
+    stats = table["stat"].to_pylist()
+    if "F" not in stats:
+        return table
+    rel = table["relpath"].to_pylist()
+    vols = dict(zip(rel, table["n_volumes"].to_pylist()))
+    out = []
+    for r, s in zip(rel, stats):
+        n = vols.get(r.replace("_stat-F_", "_stat-effect_")) if s == "F" and "_stat-F_" in r else None
+        out.append(float(n) if n else None)
+    i = table.schema.get_field_index("dof_numerator")
+    return table.set_column(i, table.schema.field(i), pa.array(out, pa.float64()))
 
 
 def link_hemispheres(relpaths: list[str], hemis: list[str | None], map_ids: list[str]) -> list[str | None]:
@@ -597,17 +640,15 @@ _ROW_GROUP = 32768
 
 
 def _problems_table(problems: list[Problem]) -> pa.Table:
-    return pa.Table.from_pylist([{"path": p.path, "dataset": p.dataset, "code": p.code, "level": p.level,
-                                  "stage": p.stage, "reason": p.reason, "remedy": p.remedy} for p in problems],
-                                schema=PROBLEMS_SCHEMA)
+    return pa.Table.from_pylist([p.row(PROBLEMS_SCHEMA) for p in problems], schema=PROBLEMS_SCHEMA)
 
 
 def _read_problems(store: str, part: CatalogPart) -> list[Problem]:
     if not part.problems:
         return []
     rows = pq.read_table(os.path.join(store, part.problems)).to_pylist()
-    return [Problem(r["path"], r["code"], r["reason"], r["remedy"], r["level"], r["dataset"], r["stage"])
-            for r in rows]
+    return [Problem(r["path"], r["code"], r["reason"], r["remedy"], r["level"], r["dataset"], r["stage"],
+                    count=r.get("count") or 1) for r in rows]
 
 
 # SPM writes the DOF of a T image into its header description: "SPM{T_[20.0]} - contrast 1: ..."
@@ -944,6 +985,12 @@ def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: lis
             "participants_file": plan.participant_files[ds.key], "n_maps": n_maps.get(ds.key, 0),
             "description": json.dumps(ds.description, sort_keys=True, default=str),
         })
+    for ds in plan.datasets:
+        if not n_maps.get(ds.key):
+            problems.append(Problem(ds.root, "no-maps", "the dataset yielded no statistic maps",
+                                    "see its unmatched-images rows (the image files no naming took, with a rule "
+                                    "that would take them); or index it with a name-rules file (--rules)",
+                                    "warning", ds.key))
     prob_rows = [r for r in prev.problems if r.get("dataset") in kept_keys]
     prob_rows += _problems_table(problems).to_pylist()
     snap = new_snapshot_id()
@@ -966,15 +1013,20 @@ def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: lis
             old_labels not in {d.get("labels") for d in leased_files(store)}:
         (store / old_labels).unlink(missing_ok=True)  # re-derived for the new catalog; no reader holds it
     codes: dict[str, int] = {}
+    passed: dict[str, int] = {}
     for p in prob_rows:  # type: ignore[assignment]
         codes[p["code"]] = codes.get(p["code"], 0) + 1  # type: ignore[index]
+        if p["code"] == "unmatched-images":  # type: ignore[index]
+            ending = p["reason"].split("(*", 1)[-1].split(")", 1)[0]  # type: ignore[index]
+            passed[ending] = passed.get(ending, 0) + (p["count"] or 1)  # type: ignore[index]
     new = sum(r.new for r in results)
     changed = sum(r.changed for r in results)
     unchanged = sum(r.unchanged for r in results)
     before = sum(d.get("n_maps") or 0 for d in prev.datasets if d["dataset"] not in kept_keys)
     return IndexReport(store=str(store), n_datasets=len(ds_rows), n_maps=total, n_new=new, n_changed=changed,
                        n_unchanged=unchanged, n_removed=max(0, before - changed - unchanged),
-                       n_problems=len(prob_rows), n_kept_datasets=len(plan.kept), seconds=0.0, problem_codes=codes)
+                       n_problems=len(prob_rows), n_kept_datasets=len(plan.kept), seconds=0.0, problem_codes=codes,
+                       passed_over=passed)
 
 
 def _relabel(store: Path, head: Head) -> None:

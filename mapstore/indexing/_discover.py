@@ -733,9 +733,35 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
             elif name.endswith(MAP_EXTENSIONS) and (rel or root_maps):
                 w.map(e, relpath)
     w.maps.sort(key=lambda m: m.relpath)
+    for ending, (n, example) in sorted(w.unmatched.items()):
+        w.problems.append(unmatched_problem(ds, ending, n, example))
     if fingerprint is not None:
         fingerprint.update("".join(f"{m.relpath}\0{m.nbytes}\0{m.mtime_ns}\n" for m in w.maps).encode())
     return w.maps, w.jsons, w.problems
+
+
+# stat names other tools give their maps, and the BIDS stat they are (common practice)
+_STAT_WORDS = {"beta": "effect", "cope": "effect", "con": "effect", "effect": "effect", "tstat": "t",
+               "spmT": "t", "t": "t", "zstat": "z", "z": "z", "varcope": "variance", "variance": "variance",
+               "pval": "p", "p": "p", "fstat": "F", "spmF": "F"}
+
+
+def suggested_rule(ending: str) -> str:
+    """A name rule (JSON, one line) that would take files with this name ending as statistic maps."""
+    word, ext = (ending[1:].split(".", 1) + [""])[:2] if ending.startswith("_") else ("", ending.lstrip("."))
+    stat = _STAT_WORDS.get(word, _STAT_WORDS.get(word.lower(), "effect"))
+    rx = rf"(?:.*/)?[^/]*_(?P<stat>{re.escape(word)})\.{re.escape(ext)}"
+    return json.dumps({"rules": [{"regex": rx, "translate": {"stat": {word: stat}}}]})
+
+
+def unmatched_problem(ds: DatasetInfo, ending: str, n: int, example: str) -> Problem:
+    """One ``info`` row per kind of image file no naming took (nothing a dataset holds goes unsaid)."""
+    return Problem(example, "unmatched-images",
+                   f"{n} image file(s) named like this one (*{ending}) are neither BIDS statistic maps "
+                   "(..._stat-<label>_statmap) nor taken by a name rule; they were passed over",
+                   "if they are statistic maps, rename them ..._stat-<label>_statmap, or index with a name-rules "
+                   f"file (--rules) such as {suggested_rule(ending)}; otherwise nothing to do",
+                   "info", ds.key, count=n)
 
 
 class _Walk:
@@ -747,6 +773,7 @@ class _Walk:
         self.maps: list[MapFile] = []
         self.jsons: dict[str, list[str]] = {}
         self.problems: list[Problem] = []
+        self.unmatched: dict[str, list[Any]] = {}  # by name ending (_beta.nii.gz): [count, first path]
 
     def companion(self, e: os.DirEntry, rel: str, relpath: str) -> None:
         """A sidecar or a model file (mask, design): listed for inheritance and model lookups."""
@@ -772,6 +799,9 @@ class _Walk:
         if not is_statmap:
             hit = self.rules.match_full(ds.key, relpath) if self.rules.rules else None
             if hit is None:
+                ending = "_" + stem.rsplit("_", 1)[-1] + ext if "_" in stem else ext
+                seen = self.unmatched.setdefault(ending, [0, e.path])
+                seen[0] += 1
                 return
         st = self._stat(e)
         if st is None:
@@ -1012,9 +1042,9 @@ class ModelFiles:
     nilearn's writer puts ``<prefix>_mask.nii.gz`` and ``<prefix>_design.tsv`` next to the
     maps of a model, where ``<prefix>`` holds the model's entities (sub, ses, task, ...);
     a BIDS ``_mask`` with matching entities is read the same way.  A candidate applies to a
-    map when its entities are a subset of the map's (``run`` aside for designs: a model fit
-    on several runs writes one design per run); the deepest folder, then the most specific
-    candidates win.
+    map when its entities are a subset of the map's (``ses`` and ``run`` aside for designs: a
+    model fit on several sessions and runs writes one design per run, and names its maps
+    without them); the deepest folder, then the most specific candidates win.
     """
 
     def __init__(self, ds: DatasetInfo, listing: dict[str, list[str]], parser: EntityParser) -> None:
@@ -1044,9 +1074,11 @@ class ModelFiles:
                 if k != kind:
                     continue
                 own = dict(ents)
-                run = own.pop("run", None) if kind == "design" else None
-                if run is not None and entities.get("run") not in (None, run):
-                    continue
+                if kind == "design":  # a model over sessions and runs: one design per run, the map names neither
+                    if any(own.get(k) is not None and entities.get(k) not in (None, own[k]) for k in ("ses", "run")):
+                        continue
+                    own.pop("ses", None)
+                    own.pop("run", None)
                 if all(entities.get(key) == v for key, v in own.items()):
                     hits.append((len(own), rel))
             if hits:

@@ -46,6 +46,8 @@ MAPS_SCHEMA = pa.schema([
     # 'template', 'native' or 'unstated' (no space entity); a native volume's registration to a template
     # (JSON: {"to": space, "steps": [{"path", "sha256", "format", ...}]}, template side first)
     ("space_kind", _s), ("registration", _s),
+    # an F map's numerator degrees of freedom: its contrast's rank (the volumes of its effect map)
+    ("dof_numerator", _f64),
 ])
 DATASETS_SCHEMA = pa.schema([
     ("dataset", _s), ("name", _s), ("study", _s), ("root", _s), ("dataset_type", _s),
@@ -79,7 +81,7 @@ FEATURE_SETS_SCHEMA = pa.schema([("feature_set", _s), ("default", pa.bool_()), (
 
 PROBLEMS_SCHEMA = pa.schema([
     ("path", _s), ("dataset", _s), ("code", _s), ("level", _s), ("stage", _s),
-    ("reason", _s), ("remedy", _s),
+    ("reason", _s), ("remedy", _s), ("count", _i64),
 ])
 
 
@@ -96,6 +98,7 @@ class Problem:
     dataset: str | None = None
     stage: str = "discover"
     map_id: str | None = None  # a feature problem's map
+    count: int = 1  # files the row stands for (one row for many files passed over alike)
 
     def row(self, schema: pa.Schema) -> dict[str, Any]:
         """The record as a row of a table with ``schema`` (the problems or feature_problems table)."""

@@ -11,8 +11,7 @@ import numpy as np
 
 from ..errors import ConversionError
 
-__all__ = ["t_to_z", "p_to_z", "convert"]
-
+__all__ = ["t_to_z", "p_to_z", "f_to_z", "convert"]
 
 
 def _t_logsf(t: np.ndarray, dof: float) -> np.ndarray:
@@ -61,6 +60,31 @@ def t_to_z(t, dof: float) -> np.ndarray:
     return np.copysign(z, t)
 
 
+def f_to_z(f, df1: float, df2: float) -> np.ndarray:
+    """z values with the same upper tail probability as F(df1, df2) values (what nilearn writes as an
+    F contrast's z map: z = Phi^-1(1 - p)), from log sf so that large F gives large finite z.
+
+    Examples
+    --------
+    >>> float(f_to_z(4.10, 2, 30).round(2))   # p = 0.0267 (scipy.stats.f.sf(4.10, 2, 30))
+    1.93
+    """
+    from scipy import special, stats
+
+    for name, d in (("df1", df1), ("df2", df2)):
+        if d is None or not np.isfinite(d) or d <= 0:
+            raise ConversionError(f"F to z needs positive {name}, got {d!r}")
+    f = np.asarray(f, dtype=np.float64)
+    if np.any(f < 0):
+        raise ConversionError("F values must be >= 0; is this really an F map?")
+    with np.errstate(divide="ignore"):
+        logsf = stats.f.logsf(f, df1, df2)
+    # p = 0 in float64 (F far in the tail): the smallest positive double, as for p maps
+    logsf = np.maximum(logsf, np.log(np.finfo(np.float64).tiny))
+    z = -special.ndtri_exp(logsf)
+    return np.where(np.isinf(f), np.inf, z)
+
+
 def p_to_z(p, sided: str = "one") -> np.ndarray:
     """z values for p values: one-sided z = Phi^-1(1 - p), two-sided z = Phi^-1(1 - p/2) (>= 0).
 
@@ -85,8 +109,13 @@ def p_to_z(p, sided: str = "one") -> np.ndarray:
     return -special.ndtri(q)
 
 
+_DOF_SOURCES = ("no DegreesOfFreedom in its JSON sidecars, no t-test intent_p1 in its header, no design matrix "
+                "(*_design.tsv whose entities match the map's, any session and run) beside it or in a folder "
+                "above, no {T_[df]} in its header description, no DOF file named by a name rule")
+
+
 def convert(values: np.ndarray, stat: str, to: str, *, dof: float | None = None,
-            sided: str = "one", where: str = "") -> tuple[np.ndarray, str]:
+            sided: str = "one", where: str = "", dof1: float | None = None) -> tuple[np.ndarray, str]:
     """Convert a map's values to ``to`` ("native" or "z"); returns values and what was done."""
     if to == "native" or stat == to:
         return values, "none"
@@ -94,10 +123,9 @@ def convert(values: np.ndarray, stat: str, to: str, *, dof: float | None = None,
         raise ConversionError(f"cannot convert to {to!r}; choose 'native' or 'z'")
     if stat == "t":
         if dof is None or not np.isfinite(dof):
-            raise ConversionError(f"{where}: t to z needs degrees of freedom, and none was found (sidecar "
-                                  "DegreesOfFreedom, header intent_p1, a design matrix beside the map, a header "
-                                  "description {{T_[df]}}, a DOF file); add DegreesOfFreedom to the map's JSON "
-                                  "sidecar, or build this feature set with the native stat")
+            raise ConversionError(f"{where}: t to z needs degrees of freedom, and none was found ({_DOF_SOURCES}); "
+                                  "add DegreesOfFreedom to the map's JSON sidecar, or build this feature set with "
+                                  "the native stat")
         return t_to_z(values, dof).astype(np.float32), f"t->z(dof={dof:g})"
     if stat == "p":
         v = np.asarray(values)
@@ -107,5 +135,14 @@ def convert(values: np.ndarray, stat: str, to: str, *, dof: float | None = None,
                                   f"{float(np.nanmin(v)):g} to {float(np.nanmax(v)):g}); this is not a p map "
                                   "(a 1 - p or log p map?): rename it or leave it out of z sets")
         return p_to_z(v, sided).astype(np.float32), f"p->z({sided}-sided)"
-    raise ConversionError(f"{where}: a {stat!r} map cannot be converted to z (only t and p maps can); "
-                          "select t, z or p maps for a z feature set")
+    if stat == "F":
+        if dof is None or not np.isfinite(dof):
+            raise ConversionError(f"{where}: F to z needs the denominator degrees of freedom, and none was found "
+                                  f"({_DOF_SOURCES}); add DegreesOfFreedom to the map's JSON sidecar")
+        if dof1 is None:
+            raise ConversionError(f"{where}: F to z needs the numerator degrees of freedom (the F contrast's rank), "
+                                  "read from the effect map beside it (same name with stat-effect, one volume per "
+                                  "contrast row), which is not there")
+        return f_to_z(values, dof1, dof).astype(np.float32), f"F->z(df1={dof1:g},df2={dof:g})"
+    raise ConversionError(f"{where}: a {stat!r} map cannot be converted to z (only t, F and p maps can); "
+                          "select t, F, z or p maps for a z feature set")

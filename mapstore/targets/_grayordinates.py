@@ -150,7 +150,7 @@ class GrayordinateTarget(MeshedTarget):
             vals = read_surface_values(path, item.sha256).astype(np.float64)
             if settings.zero_as_missing:
                 vals[vals == 0] = np.nan
-            vals, conversion = convert(vals, item.stat, settings.stat, dof=item.dof, sided=settings.p_sided,
+            vals, conversion = convert(vals, item.stat, settings.stat, dof=item.dof, dof1=item.dof_numerator, sided=settings.p_sided,
                                        where=path)
             t_pos, s_pos = match(nib.load(path).header.get_axis(1), axis)  # type: ignore[attr-defined]
             out[t_pos] = vals[s_pos]

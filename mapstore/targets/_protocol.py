@@ -49,6 +49,7 @@ class SourceMap:
     native_missing: str | None = None  # fsnative maps: why there is no registration
     space_kind: str | None = None  # template, native or unstated
     registration: dict[str, Any] | None = None  # a native volume's transforms to a template, template side first
+    dof_numerator: float | None = None  # an F map's contrast rank
 
     @property
     def where(self) -> str:
@@ -66,7 +67,8 @@ class SourceMap:
         it = cls(r["map_id"], at(r["relpath"]), r["sha256"], r["stat"], r["dof"], key, at(r.get("model_mask")),
                  r.get("model_mask_sha256"), r.get("geometry") or "volume", r.get("hemi"), space=r.get("space"),
                  native=r.get("native"), native_missing=r.get("native_missing"), space_kind=r.get("space_kind"),
-                 registration=json.loads(r["registration"]) if r.get("registration") else None)
+                 registration=json.loads(r["registration"]) if r.get("registration") else None,
+                 dof_numerator=r.get("dof_numerator"))
         if it.geometry == "surface":
             if r.get("hemi") == "R":  # an unpaired right hemisphere
                 it.path_r, it.sha256_r, it.mask_path_r, it.mask_sha256_r = (it.path, it.sha256, it.mask_path,

@@ -100,7 +100,7 @@ def source_volume(item: SourceMap, settings: BuildSettings, ctx: BatchContext, n
         raise FeatureError("a volume map in a native space: this kind of feature set does not take it through "
                            "its registration yet; build a volume feature set for it, or give the map in "
                            "template space")
-    converting = settings.stat == "z" and item.stat in ("t", "p")
+    converting = settings.stat == "z" and item.stat in ("t", "F", "p")
     # p close to 1 (z < -5) is not representable in float32: convert from the file's precision
     vol, facts = read_volume(str(item.path), expect_sha256=item.sha256,
                              dtype=np.float64 if converting else np.float32)
@@ -119,7 +119,7 @@ def source_volume(item: SourceMap, settings: BuildSettings, ctx: BatchContext, n
     clipped = 0
     if settings.stat == "z" and item.stat == "p":
         clipped = int(np.count_nonzero(vol == 0))  # p = 0 where the model has data: clipped, reported
-    vol, conversion = convert(vol, item.stat, settings.stat, dof=item.dof, sided=settings.p_sided,
+    vol, conversion = convert(vol, item.stat, settings.stat, dof=item.dof, dof1=item.dof_numerator, sided=settings.p_sided,
                               where=item.where)
     return SourceVolume(vol, facts, conversion, missing_from, clipped)
 
@@ -182,7 +182,7 @@ def hemispheres(item: SourceMap, settings: BuildSettings) -> Hemispheres:
             missing.append(f"no-hemi-{hemi}")
             continue
         vals, model_mask = sources[hemi]
-        vals = vals.astype(np.float64 if settings.stat == "z" and item.stat in ("t", "p") else np.float32)
+        vals = vals.astype(np.float64 if settings.stat == "z" and item.stat in ("t", "F", "p") else np.float32)
         if model_mask is not None:
             mvals = read_surface_values(*model_mask)
             if mvals.shape != vals.shape:
@@ -193,7 +193,7 @@ def hemispheres(item: SourceMap, settings: BuildSettings) -> Hemispheres:
             vals[vals == 0] = np.nan
         if settings.stat == "z" and item.stat == "p":
             clipped += int(np.count_nonzero(vals == 0))
-        vals, conversion = convert(vals, item.stat, settings.stat, dof=item.dof, sided=settings.p_sided,
+        vals, conversion = convert(vals, item.stat, settings.stat, dof=item.dof, dof1=item.dof_numerator, sided=settings.p_sided,
                                    where=item.where)
         out[hemi] = np.asarray(vals, dtype=np.float32)
     if settings.zero_as_missing:

@@ -31,6 +31,7 @@ sys.path.insert(0, str(ROOT))
 from mapstore.features._copies import Sketcher  # noqa: E402
 from mapstore.targets._volume import grid_from_spec, mni152_brain_mask  # noqa: E402
 from mapstore.store._store import ROWS_SCHEMA, write_parquet_atomic  # noqa: E402
+from mapstore.store import FeatureSetSpec  # noqa: E402
 
 # VmHWM of this process: ru_maxrss would carry over the parent's peak across fork + exec on Linux
 PEAK = """
@@ -43,11 +44,12 @@ def peak_mb():
 SCAN = PEAK + """
 import json, sys, time
 sys.path.insert(0, {root!r})
-from mapstore.features._build import FeatureSet
+from mapstore.features import FeatureSet
 from mapstore.features._copies import find_copies
+from mapstore.store import FeatureEntry
 from pathlib import Path
 t0 = time.perf_counter()
-fs = FeatureSet(Path({store!r}), "bench", {{"dir": "features/bench", "rows": "features/bench/rows.parquet"}})
+fs = FeatureSet(Path({store!r}), "bench", FeatureEntry("features/bench", "features/bench/rows.parquet", ""))
 ids = fs.map_ids[:{n}]
 table = find_copies(fs, ids if len(ids) < len(fs.map_ids) else None)
 t = time.perf_counter() - t0
@@ -62,8 +64,10 @@ def make_set(folder: Path, n_rows: int, n_copies: int, rng: np.random.Generator)
     set_dir = folder / "features" / "bench"
     (set_dir / "shards").mkdir(parents=True)
     np.save(set_dir / "mask.npy", mask.indices)
-    (set_dir / "set.json").write_text(json.dumps({"grid": grid.to_json(), "mask": {"name": "brain", "n_voxels": nv,
-                                                                                 "sha256": mask.sha256}}))
+    spec = FeatureSetSpec(name="bench", grid=grid.to_json(), grid_id=grid.grid_id,
+                          mask={"name": "brain", "n_voxels": nv, "sha256": mask.sha256}, mask_sha256=mask.sha256,
+                          method="linear", stat="native", p_sided="one", zero_as_missing=False)
+    (set_dir / "set.json").write_text(json.dumps(spec.to_json()))
     sk = Sketcher.for_set(mask.sha256, nv)
     basis = rng.normal(size=(40, nv)).astype(np.float32)  # smooth-ish shared noise directions
     concepts = rng.normal(size=(20, nv)).astype(np.float32)
@@ -111,9 +115,10 @@ def make_set(folder: Path, n_rows: int, n_copies: int, rng: np.random.Generator)
 
 def exact_r(store: Path, pairs: list[tuple[str, str]]) -> dict:
     """Exact r of the planted pairs (numpy corrcoef on their rows)."""
-    from mapstore.features._build import FeatureSet
+    from mapstore.features import FeatureSet
+    from mapstore.store import FeatureEntry
 
-    fs = FeatureSet(store, "bench", {"dir": "features/bench", "rows": "features/bench/rows.parquet"})
+    fs = FeatureSet(store, "bench", FeatureEntry("features/bench", "features/bench/rows.parquet", ""))
     out = {}
     for a, b in pairs:
         x = fs.matrix([a, b])
@@ -123,7 +128,9 @@ def exact_r(store: Path, pairs: list[tuple[str, str]]) -> dict:
 
 def run_scan(store: Path, n: int) -> dict:
     code = SCAN.format(root=str(ROOT), store=str(store), n=n)
-    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True, check=True)
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    if out.returncode:
+        sys.exit(f"the scan failed:\n{out.stderr}")
     return json.loads(out.stdout)
 
 
@@ -133,9 +140,10 @@ import json, sys, time
 sys.path.insert(0, {str(ROOT)!r})
 import numpy as np
 from pathlib import Path
-from mapstore.features._build import FeatureSet
+from mapstore.features import FeatureSet
+from mapstore.store import FeatureEntry
 t0 = time.perf_counter()
-fs = FeatureSet(Path({str(store)!r}), "bench", {{"dir": "features/bench", "rows": "features/bench/rows.parquet"}})
+fs = FeatureSet(Path({str(store)!r}), "bench", FeatureEntry("features/bench", "features/bench/rows.parquet", ""))
 ids = fs.map_ids[:{n}]
 r = np.corrcoef(fs.matrix(ids))   # every row is finite here: exact Pearson r of all pairs
 iu = np.triu_indices(len(ids), 1)
