@@ -298,3 +298,27 @@ def test_a_selection_reads_its_rows_without_the_rows_table(featured_store):
     shards = st.sql("SELECT f.shard, count(DISTINCT m.dataset) n FROM features f JOIN maps m USING (map_id) "
                     "GROUP BY ALL").to_pylist()
     assert shards and all(r["n"] == 1 for r in shards)
+
+
+def test_a_map_with_no_value_inside_the_mask_is_a_problem_not_a_copy(tmp_path):
+    """Two maps whose field of view misses the brain mask: each a feature problem; neither is anyone's copy."""
+    rng = np.random.default_rng(4)
+    far = np.array([[3.0, 0, 0, 400], [0, 3, 0, 400], [0, 0, 3, 400], [0, 0, 0, 1]])  # 400 mm off the brain
+    near = np.array([[3.0, 0, 0, -90], [0, 3, 0, -126], [0, 0, 3, -72], [0, 0, 0, 1]])
+    roots = []
+    for study in ("fir", "yew"):
+        root = make_derivative(tmp_path / study, study)
+        roots.append(root)
+        for sub in ("01", "02"):
+            write_map(root / f"sub-{sub}" / f"sub-{sub}_task-go_contrast-a_stat-effect_statmap.nii.gz",
+                      rng.normal(size=(61, 73, 61)).astype(np.float32), near)
+        write_map(root / "sub-03" / "sub-03_task-go_contrast-a_stat-effect_statmap.nii.gz",
+                  rng.normal(size=(20, 20, 20)).astype(np.float32), far)
+    store = tmp_path / "store"
+    mapstore.index(roots, store, progress=False, jobs=1)
+    r = mapstore.build_features(store, grid="MNI152-3mm", progress=False, jobs=1)
+    assert r.n_built == 4 and r.problem_codes == {"no-value-in-mask": 2}
+    st = mapstore.open(store)
+    assert st.features().copies().num_rows == 0
+    sel = st.select(group_by="study")
+    assert len(sel) == 4 and len(sel.splits("leave-one-group-out")) == 2

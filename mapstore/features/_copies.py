@@ -134,6 +134,10 @@ def _candidates(sketches: np.ndarray) -> np.ndarray:
     return np.stack([flat // n, flat % n], axis=1)
 
 
+# fewest common values for two rows to be compared at all (fewer say nothing about being copies)
+MIN_COMMON = 10
+
+
 def pair_correlation(a: np.ndarray, b: np.ndarray) -> tuple[float, int]:
     """Pearson correlation of two rows on the voxels both have a value for, and that count."""
     both = np.isfinite(a) & np.isfinite(b)
@@ -164,6 +168,8 @@ def find_copies(fs, map_ids: list[str] | None = None, *, floor: float = STORE_FL
     or ``near``, r (signed: a sign-flipped copy has r close to -1), n_common voxels.
     """
     ids = list(fs.map_ids if map_ids is None else map_ids)
+    if len(ids) >= 2:  # rows with too few values to correlate are no one's copies (an empty row is not a copy)
+        ids = [m for m, n in zip(ids, fs.n_values(ids)) if n >= MIN_COMMON]
     if len(ids) < 2:
         return COPIES_SCHEMA.empty_table()
     sketches = fs.sketches(ids)
@@ -193,7 +199,7 @@ def find_copies(fs, map_ids: list[str] | None = None, *, floor: float = STORE_FL
             if (a, b) in out:
                 continue
             r, n = pair_correlation(rows[where[int(i)]], rows[where[int(j)]])
-            if np.isfinite(r) and abs(r) >= floor:
+            if n >= MIN_COMMON and np.isfinite(r) and abs(r) >= floor:
                 out[(a, b)] = ("near", r, n)
     rows_out = [{"map_a": a, "map_b": b, "kind": k, "r": r, "n_common": n} for (a, b), (k, r, n) in sorted(out.items())]
     return pa.Table.from_pylist(rows_out, schema=COPIES_SCHEMA)

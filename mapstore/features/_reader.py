@@ -199,6 +199,13 @@ class FeatureSet:
             raise FeatureError(f"{self._copies_path}: unreadable ({exc}); rebuild with 'mapstore features "
                                f"--name {self.name}'") from exc
 
+    def n_values(self, map_ids) -> np.ndarray:
+        """Values (finite entries) of each row, from the coverage recorded at build time."""
+        cover = self._column("coverage")
+        col = cover.to_numpy(zero_copy_only=False) if cover is not None else np.ones(len(self))
+        idx = np.fromiter((self._pos[m] for m in map_ids), dtype=np.int64)
+        return np.rint(np.nan_to_num(col[idx].astype(np.float64), nan=1.0) * self.n_voxels).astype(np.int64)
+
     def sketches(self, map_ids) -> np.ndarray:
         """(n, SKETCH_BITS / 8) uint8 sign sketches of rows (:mod:`mapstore.copies`), recorded at build time."""
         map_ids = list(map_ids)

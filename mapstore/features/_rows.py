@@ -101,8 +101,16 @@ def run_batch(b: Batch) -> BatchResult:
             out.problems.append(feature_problem(it, exc))
             continue
         vec = row.values
-        arr[i] = vec
         finite = np.isfinite(vec)
+        if not finite.any():
+            arr[i] = np.nan
+            out.problems.append(Problem(it.where, "no-value-in-mask", "the map has no value inside the feature "
+                                        "set's mask (its field of view or its own mask misses it)",
+                                        "check the map's space and field of view; a map of another part of the "
+                                        "brain belongs in a feature set with another mask", stage="features",
+                                        map_id=it.map_id))
+            continue
+        arr[i] = vec
         vals = vec[finite]
         out.rows.append({"map_id": it.map_id, "feature_key": it.key, "sha256": it.sha256, "shard": b.shard,
                          "row": i, "coverage": float(finite.mean()), "stat_in": it.stat,
