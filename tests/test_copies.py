@@ -170,7 +170,7 @@ def test_a_small_roi_set_scans_few_candidates_and_finds_the_copies(planted):
     roi[28:33, 36:40, 26:30] = True  # 80 voxels near the grid centre
     mapstore.build_features(planted["store"], grid="MNI152-3mm", mask=roi, name="roi", progress=False)
     fs = mapstore.open(planted["store"]).features("roi")
-    assert fs.n_voxels == 80 and fs.spec["sketch"] == "gauss"
+    assert fs.n_voxels == 80 and fs.spec.sketch == "gauss"
     ids = fs.map_ids
     n_pairs = len(ids) * (len(ids) - 1) // 2
     # sparse count sketches of 80 voxels make every pair a candidate; dense directions do not

@@ -169,7 +169,7 @@ def test_volume_projects_onto_the_described_surfaces(described, maps, perm_set):
 
     _, fs = perm_set
     got = _full(fs, maps["store"], "%space-MNI152%")
-    proj = fs.spec["projection"]
+    proj = fs.spec.projection
     img = nib.Nifti1Image(maps["vol"], MNI2)
     ok = np.zeros(2 * N5, bool)
     ok[fs.mask_indices] = True
@@ -253,7 +253,7 @@ def test_grayordinate_template_on_a_described_mesh(described, maps, tmp_path):
     assert fs.grid.mesh is not None and fs.grid.mesh.space == "perm"
     (mid,) = s.sql("SELECT map_id FROM maps WHERE relpath LIKE '%space-MNI152%'").column(0).to_pylist()
     got = fs.matrix([mid])[0]
-    proj = fs.spec["projection"]
+    proj = fs.spec.projection
     fsa = described["fsa"]
     img = nib.Nifti1Image(maps["vol"], MNI2)
     ref = vol_to_surf(img, fsa["pial"].parts["left"], inner_mesh=fsa["white_matter"].parts["left"],
@@ -266,7 +266,9 @@ def test_grayordinate_template_on_a_described_mesh(described, maps, tmp_path):
     np.testing.assert_array_equal(fs.matrix([gid])[0][:N5],
                                   maps["fields"]["fsaverage5"]["L"][described["perm"]["L"]].astype(np.float32))
     # a mesh whose vertex counts are not the template's is refused
-    small = cifti(tmp_path / "small.dscalar.nii", np.zeros((1, 2 * 2562)), brain_models(2562, 2562, voxels=False))
+    # with a few subcortical voxels, so that the map has values where the unknown cortex has none
+    ax_small = brain_models(2562, 2562)
+    small = cifti(tmp_path / "small.dscalar.nii", np.zeros((1, len(ax_small))), ax_small)
     with pytest.raises(ParameterError, match="vertices per hemisphere"):
         mapstore.build_features(maps["store"], grid=str(small), mesh=str(described["desc"]), progress=False)
     with pytest.raises(ParameterError, match="mesh applies to grayordinate sets"):
@@ -368,7 +370,7 @@ def test_freesurfer_surfaces_label_and_morph_files_describe_a_mesh(maps, tmp_pat
     np.testing.assert_array_equal(got[:N5][ok[:N5]], maps["fields"]["fsaverage4"]["L"][idx4].astype(np.float32)[ok[:N5]])
     # a volume: nilearn's vol_to_surf on the FreeSurfer files themselves
     got = _full(fs, maps["store"], "%space-MNI152%")
-    proj = fs.spec["projection"]
+    proj = fs.spec.projection
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")
         ref = vol_to_surf(nib.Nifti1Image(maps["vol"], MNI2), str(surf / "lh.pial"), inner_mesh=str(surf / "lh.white"),
@@ -415,7 +417,9 @@ def test_check_says_when_a_template_cortex_mesh_was_assumed_or_unknown(maps, tmp
                             where="m.space = 'MNI152NLin2009cAsym'")
     codes = [f.code for f in mapstore.open(maps["store"]).check("grey-assumed", pictures=False).findings]
     assert "cortex-mesh-assumed" in codes and "no-cortex-mesh" not in codes
-    small = cifti(tmp_path / "small.dscalar.nii", np.zeros((1, 2 * 2562)), brain_models(2562, 2562, voxels=False))
+    # with a few subcortical voxels, so that the map has values where the unknown cortex has none
+    ax_small = brain_models(2562, 2562)
+    small = cifti(tmp_path / "small.dscalar.nii", np.zeros((1, len(ax_small))), ax_small)
     rep = mapstore.build_features(maps["store"], grid=str(small), name="grey-unknown", progress=False, jobs=1,
                                   where="m.space = 'MNI152NLin2009cAsym'")
     assert rep.n_built == 1
@@ -497,7 +501,7 @@ def test_fsnative_maps_go_onto_fsaverage_through_each_subjects_sphere_reg(tmp_pa
         _, idx = cKDTree(reg / np.linalg.norm(reg, axis=1, keepdims=True)).query(
             target / np.linalg.norm(target, axis=1, keepdims=True))
         np.testing.assert_array_equal(got8[sl], values["08"][h][idx].astype(np.float32))
-    assert fs.spec["subjects_dir"] == str(subjects)
+    assert fs.spec.subjects_dir == str(subjects)
     # the registration is part of each row's key: a changed sphere.reg rebuilds that subject's row only
     write_geometry(str(subjects / "sub-07" / "surf" / "lh.sphere.reg"), regs[("07", "L")] * 1.5,
                    np.argsort(perm["L"])[np.asarray(fsa.parts["left"].faces)])

@@ -106,7 +106,7 @@ def test_probabilistic_atlas_equals_nilearn_maps_masker(voxel_store):
     nib.save(nib.Nifti1Image(maps, src.grid.affine_array), str(atlas))
     mapstore.build_parcels(store, str(atlas), source=SET, name="blobs")
     fs = mapstore.open(store).features("blobs")
-    assert fs.spec["method"] == "maps-regression" and fs.n_voxels == 5
+    assert fs.spec.method == "maps-regression" and fs.n_voxels == 5
     masker = NiftiMapsMasker(maps_img=str(atlas), mask_img=_mask_img(src))
     with warnings.catch_warnings():
         warnings.simplefilter("ignore")

@@ -279,7 +279,7 @@ def test_volume_map_row_equals_vol_to_surf_by_hand(pooled):
 
     fsa = load_fsaverage("fsaverage5")
     fs = mapstore.open(pooled["store"]).features("fsaverage5-cortex-native")
-    proj = fs.spec["projection"]
+    proj = fs.spec.projection
     for sub, data in zip(("01", "02"), pooled["v"]):
         _, _, full = _row(pooled["store"], f"sub-{sub}/%space-MNI152%")
         img = nib.Nifti1Image(np.nan_to_num(data, nan=0.0), MNI2)
@@ -401,7 +401,7 @@ def test_grayordinate_set_pools_cifti_gifti_and_volume_maps(pooled, tmp_path):
     got = row("sub-01/%space-MNI152%")
     np.testing.assert_allclose(got[vox], v1[tuple(ax.voxel[vox].T)], rtol=1e-5)
     fsa = load_fsaverage("fsaverage5")
-    proj = fs.spec["projection"]
+    proj = fs.spec.projection
     ref = vol_to_surf(nib.Nifti1Image(v1, MNI2), fsa["pial"].parts["left"],
                       inner_mesh=fsa["white_matter"].parts["left"], kind=proj["kind"],
                       interpolation=proj["interpolation"], depth=proj["depth"])

@@ -165,7 +165,7 @@ def _safe(name: str) -> str:
 def _parcel_spec(name: str, fs: FeatureSet, at: Atlas, source_spec_id: str | None) -> dict[str, Any]:
     grid = ParcelGrid(at.name, at.n_parcels, at.sha256)
     mask_sha = hashlib.sha256(f"{grid.grid_id}|all".encode()).hexdigest()
-    src = fs.spec
+    src = fs.spec.to_json()
     spec = {"name": name, "grid": grid.to_json(), "grid_id": grid.grid_id,
             "mask": {"name": "all parcels", "n_voxels": at.n_parcels, "sha256": mask_sha}, "mask_sha256": mask_sha,
             "method": at.reducer, "stat": src["stat"], "p_sided": src["p_sided"],
@@ -411,7 +411,7 @@ def fit_parcellation(sel, name: str, *, n_parcels: int = 100, method: str = "war
     prov = {"name": name, "method": method, "n_parcels": int(labels.max()) + 1, "n_parcels_asked": int(n_parcels),
             "random_state": random_state, "feature_set": sel.feature_set.name,
             "geometry": sel.feature_set.geometry, "grid": sel.feature_set.grid.to_json(),
-            "feature_set_spec_id": sel.feature_set.spec["spec_id"], "query": sel.query,
+            "feature_set_spec_id": sel.feature_set.spec.spec_id, "query": sel.query,
             "maps": sel.map_ids, "row_sha256": sel.meta["feature_row_sha256"].tolist(),
             "versions": {"mapstore": __version__, "nilearn": nilearn.__version__},
             "created": time.strftime("%Y-%m-%dT%H:%M:%S"),

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import hashlib
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 import pyarrow as pa
@@ -30,11 +29,11 @@ class FeatureSet:
         self._copies_path = store_path / entry.copies if entry.copies else None
         self._rows_path = store_path / entry.rows
         try:
-            self.spec: dict[str, Any] = FeatureSetSpec.read(self.path).to_json()
+            self.spec: FeatureSetSpec = FeatureSetSpec.read(self.path)
             self._rows_file = pq.ParquetFile(self._rows_path)  # the footer only: columns are read when needed
         except (OSError, ValueError, pa.ArrowException) as exc:
             raise FeatureError(f"{self.path}: feature set {name!r} is unreadable ({exc})") from exc
-        self.grid: Target = target_of_set(self.spec, self.path)
+        self.grid: Target = target_of_set(self.spec.to_json(), self.path)
         self.geometry: str = self.grid.kind
         self._indices: np.ndarray | None = None
         self._shards: dict[str, np.ndarray] = {}
@@ -75,12 +74,12 @@ class FeatureSet:
 
     def __repr__(self) -> str:
         return (f"FeatureSet({self.name!r}, rows={len(self)}, voxels={self.n_voxels}, "
-                f"grid={self.grid.name}, mask={self.spec['mask']['name']})")
+                f"grid={self.grid.name}, mask={self.spec.mask['name']})")
 
     @property
     def n_voxels(self) -> int:
         """Features per row (voxels, vertices, grayordinates or parcels: see ``unit``)."""
-        return int(self.spec["mask"]["n_voxels"])
+        return int(self.spec.mask["n_voxels"])
 
     @property
     def unit(self) -> str:
@@ -218,7 +217,7 @@ class FeatureSet:
             if g is not None:
                 out[i] = np.frombuffer(g, dtype=np.uint8)
         if todo:
-            sk = Sketcher.for_set(self.spec["mask"]["sha256"], self.n_voxels, self.spec.get("sketch", "count"))
+            sk = Sketcher.for_set(self.spec.mask["sha256"], self.n_voxels, self.spec.sketch)
             for k in range(0, len(todo), 64):
                 part = todo[k:k + 64]
                 out[part] = sk.sketch(self.matrix([map_ids[i] for i in part]))

@@ -268,9 +268,9 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
                      "scikit-learn": sklearn.__version__},
         "store": str(store.path), "catalog_snapshot": head.catalog,
         "query": sel.query, "dropped": sel.dropped,
-        "feature_set": {"name": fs.name, "spec_id": fs.spec["spec_id"], "grid": fs.spec["grid"],
-                        "grid_id": fs.spec["grid_id"], "mask": fs.spec["mask"], "method": fs.spec["method"],
-                        "stat": fs.spec["stat"], "versions": fs.spec.get("versions")},
+        "feature_set": {"name": fs.name, "spec_id": fs.spec.spec_id, "grid": fs.spec.grid,
+                        "grid_id": fs.spec.grid_id, "mask": fs.spec.mask, "method": fs.spec.method,
+                        "stat": fs.spec.stat, "versions": fs.spec.versions},
         "vocabulary": ({k: getattr(head.labels, k) for k in ("vocabulary", "sha256", "version", "inherit_broader")}
                        if head.labels else None),
         "target": sel.target, "concepts": sel.concepts, "group_by": sel.group_by,
@@ -345,8 +345,8 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
     except Exception as exc:  # noqa: BLE001 - any failure to open is reported, not raised
         changes.append(f"store or feature set unavailable: {exc}")
         return VerifyReport(str(mpath), len(man["sources"]), 0, changes)
-    if fs.spec["spec_id"] != man["feature_set"]["spec_id"]:
-        changes.append(f"feature set {fs.name!r} now has other settings (spec {fs.spec['spec_id']} != "
+    if fs.spec.spec_id != man["feature_set"]["spec_id"]:
+        changes.append(f"feature set {fs.name!r} now has other settings (spec {fs.spec.spec_id} != "
                        f"{man['feature_set']['spec_id']})")
     rows = {r["map_id"]: r for r in fs.rows.to_pylist()}
     present = [s for s in man["sources"] if s["map_id"] in rows and rows[s["map_id"]]["feature_key"] == s["feature_key"]]
