@@ -18,6 +18,7 @@ BENCH = Path(__file__).resolve().parent / "benchmarks"
 @pytest.mark.parametrize("script, args, expect", [
     ("bench_copies.py", ["--rows", "2000", "--naive", "500", "--copies", "20"], "recall"),
     ("bench_index.py", ["--maps", "200"], "ratio mapstore cold / baseline speed"),
+    ("bench_native.py", ["--maps", "2"], "registered / nitransforms"),
 ])
 def test_benchmark_script_runs(script, args, expect):
     out = subprocess.run([sys.executable, str(BENCH / script), *args], capture_output=True, text=True, timeout=600)

@@ -221,3 +221,19 @@ def test_a_feat_first_level_map_goes_through_its_flirt_matrix(tmp_path):
     want = template_answer()
     ok = np.isfinite(got)
     assert ok.sum() > 20000 and np.abs(got[ok] - want[ok]).max() < 0.02
+
+
+def test_space_kinds(tmp_path):
+    """Common practice: template names by family prefix (BIDS template identifiers); FEAT first level is native."""
+    from mapstore.indexing._spaces import space_kind
+
+    assert space_kind("MNI152NLin2009cAsym", str(tmp_path), "x.nii.gz") == "template"
+    assert space_kind("MNI152NLin6Asym", str(tmp_path), "x.nii.gz") == "template"
+    assert space_kind("T1w", str(tmp_path), "x.nii.gz") == "native"
+    assert space_kind(None, str(tmp_path), "sub-01/x.nii.gz") == "unstated"
+    for feat, level in (("a/run1.feat", 1), ("a/group.gfeat/cope1.feat", 1)):
+        (tmp_path / feat).mkdir(parents=True)
+        (tmp_path / feat / "design.fsf").write_text(f"set fmri(level) {level}\n")
+    assert space_kind(None, str(tmp_path), "a/run1.feat/stats/cope1.nii.gz") == "native"
+    # a higher-level (gfeat) cope's stats are in standard space, whatever its design says
+    assert space_kind(None, str(tmp_path), "a/group.gfeat/cope1.feat/stats/cope1.nii.gz") == "unstated"

@@ -67,7 +67,7 @@ def space_kind(space: str | None, root: str, relpath: str) -> str:
     if space:
         return "template" if is_template(space) else "native"
     feat = _feat_folder(relpath)
-    if feat is not None and not feat.rsplit("/", 2)[0].endswith(".gfeat"):
+    if feat is not None and not feat.rsplit("/", 1)[0].endswith(".gfeat"):  # a gfeat cope is in standard space
         folder = Path(root) / feat
         level = _feat_level(folder)
         if level == 1 or (level is None and (folder / "reg").is_dir()):
