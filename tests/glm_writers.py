@@ -230,7 +230,7 @@ def spm_folder(folder: Path, contrasts: list[tuple[str, str]], dof: float, rng: 
             vol[~mask] = np.nan
             img = nib.Nifti1Image(vol, aff)
             if is_stat:
-                df = f"{dof:.1f}" if kind == "T" else f"1.0,{dof:.1f}"
+                df = f"{dof:.1f}" if kind == "T" else f"2.0,{dof:.1f}"  # an F contrast of two rows
                 img.header["descrip"] = f"SPM{{{kind}_[{df}]}} - contrast {i + 1}: {name}".encode()[:79]
             nib.save(img, str(folder / fname))
     savemat(folder / "SPM.mat", {"SPM": {"xCon": xcon, "swd": str(folder)}})

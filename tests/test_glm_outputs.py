@@ -323,8 +323,30 @@ def test_spm_folder_through_the_preset(tmp_path, rng):
     t = rows[("faces > houses", "t")]
     assert t["dof"] == 96.0 and t["dof_source"] == "descrip" and t["model_mask"] == "sub-01/task-faces/mask.nii"
     assert json.loads(t["entities"])["contrast_number"] == "0001"
+    f = rows[("effects of interest", "F")]
+    assert (f["dof"], f["dof_numerator"], f["dof_source"]) == (96.0, 2.0, "descrip")
     r = mapstore.build_features(store, grid="MNI152-3mm", progress=False)
     assert r.n_problems == 0 and r.n_built == 4
+    # F to z through p with SPM's (df1, df2): scipy's F and normal distributions (reference)
+    from scipy import stats
+
+    z = mapstore.build_features(store, "z", grid="MNI152-3mm", stat="z", where="m.stat = 'F'", progress=False)
+    assert z.n_problems == 0 and z.n_built == 1
+    img = nib.load(str(tmp_path / "spm" / "sub-01" / "task-faces" / "spmF_0002.nii"))
+    fvals = np.asarray(img.dataobj, dtype=np.float64)
+    want = stats.norm.isf(stats.f.sf(fvals, 2.0, 96.0))
+    s = mapstore.open(store)
+    fs = s.features("z")
+    got = fs.unmask(fs.matrix([f["map_id"]])[0]).reshape(-1)
+    # converted on the map's own grid, then resampled: nilearn's resampling of scipy's z map (reference)
+    from nilearn.image import resample_to_img
+
+    tmpl = fs.to_image(np.zeros(fs.n_voxels, np.float32))
+    ref = resample_to_img(nib.Nifti1Image(np.nan_to_num(want), img.affine), tmpl, interpolation="linear", force_resample=True,
+                          copy_header=True).get_fdata().reshape(-1)
+    both = np.isfinite(got) & np.isfinite(ref)
+    assert both.sum() > 100
+    np.testing.assert_allclose(got[both], ref[both], atol=1e-3)
 
 
 def test_unknown_preset_is_refused_with_the_list(tmp_path):

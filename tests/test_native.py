@@ -237,3 +237,64 @@ def test_space_kinds(tmp_path):
     assert space_kind(None, str(tmp_path), "a/run1.feat/stats/cope1.nii.gz") == "native"
     # a higher-level (gfeat) cope's stats are in standard space, whatever its design says
     assert space_kind(None, str(tmp_path), "a/group.gfeat/cope1.feat/stats/cope1.nii.gz") == "unstated"
+
+
+def _lps(a: np.ndarray) -> np.ndarray:
+    """An RAS+ affine in ITK's LPS convention (x and y negated on both sides)."""
+    flip = np.diag([-1.0, -1.0, 1.0, 1.0])
+    return flip @ a @ flip
+
+
+def test_an_itk_composite_with_a_displacement_field_as_simpleitk_maps_it(tmp_path):
+    """An affine plus a nonlinear displacement field in one ITK HDF5 composite (the kind fMRIPrep leaves),
+    written by SimpleITK (ITK's own transform writer); the reference is SimpleITK's ``TransformPoint``
+    of each template point, where the subject map's value is known exactly."""
+    sitk = pytest.importorskip("SimpleITK")
+    from nilearn.image import resample_to_img
+
+    aff = sitk.AffineTransform(3)
+    aff.SetMatrix(_lps(KNOWN)[:3, :3].ravel().tolist())
+    aff.SetTranslation(_lps(KNOWN)[:3, 3].tolist())
+    size, origin, spacing = (51, 60, 50), (-100.0, -100.0, -80.0), 4.0  # covers the template, in LPS mm
+    zz, yy, xx = np.meshgrid(*[origin[i] + spacing * np.arange(size[i]) for i in (2, 1, 0)], indexing="ij")
+    field = np.stack([3 * np.sin(yy / 30), 2 * np.cos(xx / 25), np.full_like(xx, 1.5)], -1)  # mm, invented
+    fimg = sitk.GetImageFromArray(field, isVector=True)
+    fimg.SetOrigin(origin)
+    fimg.SetSpacing((spacing,) * 3)
+    composite = sitk.CompositeTransform(3)
+    composite.AddTransform(aff)
+    composite.AddTransform(sitk.DisplacementFieldTransform(fimg))
+    prep = tmp_path / "prep"
+    write_json(prep / "dataset_description.json", {"Name": "prep", "BIDSVersion": "1.9.0",
+                                                   "DatasetType": "derivative"})
+    (prep / "sub-01" / "anat").mkdir(parents=True)
+    sitk.WriteTransform(composite, str(prep / "sub-01" / "anat" / f"sub-01_from-T1w_to-{TEMPLATE}_mode-image_xfm.h5"))
+    # the subject's map: a smooth function of the subject's own millimetres
+    ijk = np.indices(NATIVE_SHAPE).reshape(3, -1)
+    native_mm = (NATIVE_AFFINE[:3, :3] @ ijk + NATIVE_AFFINE[:3, 3:4]).T
+    src = nib.Nifti1Image(field_mm(native_mm).reshape(NATIVE_SHAPE).astype(np.float32), NATIVE_AFFINE)
+    glm = make_derivative(tmp_path / "glm", "elm")
+    (glm / _name("01", "T1w")).parent.mkdir(parents=True)
+    nib.save(src, str(glm / _name("01", "T1w")))
+    store = tmp_path / "store"
+    mapstore.index([glm], store, transforms=[prep], progress=False, jobs=1)
+    built = mapstore.build_features(store, grid=GRID, progress=False, jobs=1)
+    assert built.paths.get("registered") == 1, built.summary()
+    got = _row(store, "01")
+    # the known answer at sampled template voxels: the value at SimpleITK's mapped point
+    g = builtin_grid(GRID)
+    rng = np.random.default_rng(3)
+    vox = np.argwhere(np.isfinite(got))[rng.choice(int(np.isfinite(got).sum()), 3000, replace=False)]
+    pts = (g.affine_array[:3, :3] @ vox.T + g.affine_array[:3, 3:4]).T
+    flip = np.array([-1.0, -1.0, 1.0])
+    mapped = np.array([np.array(composite.TransformPoint(tuple(float(c) for c in p * flip))) * flip for p in pts])
+    want = field_mm(mapped)
+    ours = got[tuple(vox.T)]
+    assert np.abs(ours - want).max() < 0.03  # 2 mm source voxels, linear interpolation
+    assert np.corrcoef(ours, want)[0, 1] > 0.999
+    # the affine alone (the displacement field dropped) fails the same check, and so does no registration
+    affine_only = field_mm(pts @ KNOWN[:3, :3].T + KNOWN[:3, 3])
+    assert np.abs(affine_only - want).max() > 0.1
+    ref = nib.Nifti1Image(np.zeros(g.shape, np.float32), g.affine_array)
+    naive = resample_to_img(src, ref, interpolation="linear", force_resample=True, copy_header=True).get_fdata()
+    assert np.abs(naive[tuple(vox.T)] - want).max() > 0.1

@@ -259,7 +259,7 @@ def _check_grids(store, add, report) -> None:
                     "fine for mapstore (every map is resampled), but check the models were fit alike"))
     multi = store.sql("SELECT dataset, list(stat ORDER BY relpath) AS stats, min(relpath) AS example, "
                       "arg_min(n_volumes, relpath) AS example_volumes, count(*) AS n FROM maps "
-                      "WHERE n_volumes > 1 GROUP BY dataset ORDER BY dataset").to_pylist()
+                      "WHERE n_volumes > 1 AND map_index IS NULL GROUP BY dataset ORDER BY dataset").to_pylist()
     for r in multi:
         kinds = Counter(f"stat-{s}" for s in r["stats"])
         add(Finding("info", "grid", "multi-volume", r["dataset"],
@@ -414,7 +414,7 @@ def _check_metadata(store, add) -> None:
     # squared) are byte-identical without being a copy
     for r in store.sql("SELECT sha256, count(DISTINCT CASE WHEN linked_map IS NOT NULL THEN least(map_id, linked_map) "
                        "ELSE map_id END) AS n, list(dataset || ':' || relpath ORDER BY dataset, relpath) "
-                       "AS places FROM maps GROUP BY sha256 HAVING n > 1 ORDER BY sha256").to_pylist():
+                       "AS places FROM maps GROUP BY sha256, map_index HAVING n > 1 ORDER BY sha256").to_pylist():
         where = ", ".join(r["places"][:3])
         add(Finding("warning", "provenance", "duplicate-file", r["sha256"][:16],
                     f"{r['n']} maps are byte-identical ({where})",

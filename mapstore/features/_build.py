@@ -131,7 +131,7 @@ def spec_id(doc: dict[str, Any]) -> str:
 
 
 def feature_key(sha256: str, spec: dict[str, Any], dof: float | None, model_mask_sha256: str | None = None,
-                more: str = "", dof1: float | None = None) -> str:
+                more: str = "", dof1: float | None = None, map_index: int | None = None) -> str:
     """Hash of everything a row's values depend on; ``more`` adds an item's other sources (a hemisphere)."""
     parts = [sha256, spec["grid_id"], spec["mask_sha256"], spec["method"], spec["stat"],
              spec["p_sided"], str(spec["zero_as_missing"]), spec["background"], model_mask_sha256 or "",
@@ -140,6 +140,8 @@ def feature_key(sha256: str, spec: dict[str, Any], dof: float | None, model_mask
         parts += [json.dumps(spec["projection"], sort_keys=True), more]
     if dof1 is not None and spec["stat"] != "native":  # an F map's contrast rank
         parts.append(f"df1={dof1:.6g}")
+    if map_index is not None:  # one map of a file of several
+        parts.append(f"map={map_index}")
     if spec.get("projection") is None and "|native:" in more:  # a volume set: only a native map's registration adds to the key
         parts.append(more[more.index("|native:"):])
     text = "|".join(parts)
@@ -172,7 +174,7 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], target
     """
     q = ("SELECT m.map_id, m.dataset, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, "
          "m.model_mask, m.model_mask_sha256, m.geometry, m.hemi, m.space, m.sub, m.space_kind, m.registration, "
-         "m.dof_numerator, ")
+         "m.dof_numerator, m.map_index, ")
     second = target.second_halves("m")
     if second:  # the right hemisphere's file beside the left's
         q += ("r.relpath AS relpath_r, r.sha256 AS sha256_r, r.model_mask AS model_mask_r, "
@@ -206,7 +208,7 @@ def _left_out(r: dict[str, Any], kinds: tuple[str, ...], stat: str) -> str | Non
     """Why the set's settings leave a catalog map out (None: taken)."""
     if r["map_kind"] not in kinds:
         return "model maps (no contrast: residuals, fit; --model-maps takes them)"
-    if max(r["n_volumes"] or 1, r["n_volumes_r"] or 1) > 1:
+    if max(r["n_volumes"] or 1, r["n_volumes_r"] or 1) > 1 and r["map_index"] is None:
         return "multi-volume maps (e.g. an F contrast's effect, one volume per contrast row)"
     if stat == "z" and r["stat"] not in _Z_READY:
         return "maps with no z equivalent (only t, F, p and z maps go into a z set)"
@@ -453,7 +455,7 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: dict[str, Any], old_rows: p
     dataset_of: dict[str, str] = {}
     for r in rows_sel:
         key = feature_key(r["sha256"], spec, r["dof"], r["model_mask_sha256"], SourceMap.key_sources(r),
-                          r.get("dof_numerator"))
+                          r.get("dof_numerator"), r.get("map_index"))
         wanted[r["map_id"]] = SourceMap.from_row(r, key)
         dataset_of[r["map_id"]] = r["dataset"]
     # keyed by map too: byte-identical copies of a file share a feature key, not a row

@@ -463,6 +463,7 @@ class SurfaceFacts:
     scl_slope: float | None = None
     scl_inter: float | None = None
     warnings: tuple[str, ...] = field(default_factory=tuple)
+    map_names: tuple[str, ...] = ()  # per map: CIFTI scalar names, or each GIFTI data array's ``Name``
 
     @property
     def shape(self) -> tuple[int, ...]:
@@ -509,6 +510,7 @@ def _gifti_facts(path: str) -> SurfaceFacts:
     opener = gzip.open if magic == b"\x1f\x8b" else open
     arrays: list[dict[str, str]] = []
     meta: dict[str, str] = {}
+    array_names: dict[int, str] = {}  # data array -> its metadata's Name (a map name, as Workbench writes)
     depth = 0
     name = None
     try:
@@ -522,11 +524,15 @@ def _gifti_facts(path: str) -> SurfaceFacts:
                 depth -= 1
                 if el.tag == "Data":
                     el.clear()  # the encoded values: never decoded, dropped at once
-                elif depth == 3 and el.tag in ("Name", "Value"):  # GIFTI > MetaData > MD > Name|Value
+                elif depth in (3, 4) and el.tag in ("Name", "Value"):
+                    # GIFTI > MetaData > MD > Name|Value (the file's), one level deeper a data array's
                     if el.tag == "Name":
                         name = (el.text or "").strip()
                     elif name is not None:
-                        meta[name] = (el.text or "").strip()
+                        if depth == 3:
+                            meta[name] = (el.text or "").strip()
+                        elif name == "Name" and arrays:
+                            array_names[len(arrays) - 1] = (el.text or "").strip()
                         name = None
     except ET.ParseError as exc:
         raise HeaderError(path, "bad-gifti", f"not well-formed GIFTI XML ({exc})",
@@ -534,7 +540,9 @@ def _gifti_facts(path: str) -> SurfaceFacts:
     except (EOFError, OSError, zlib.error) as exc:
         raise HeaderError(path, "bad-gifti", f"the file is cut short or its compression is corrupt ({exc})",
                           "re-create or re-download the file") from exc
-    data = [a for a in arrays if a.get("Intent") not in ("NIFTI_INTENT_POINTSET", "NIFTI_INTENT_TRIANGLE")]
+    kept = [i for i, a in enumerate(arrays) if a.get("Intent") not in ("NIFTI_INTENT_POINTSET",
+                                                                       "NIFTI_INTENT_TRIANGLE")]
+    data = [arrays[i] for i in kept]
     if not data:
         what = "a mesh (coordinates and triangles)" if arrays else "no data array"
         raise HeaderError(path, "no-surface-data", f"the GIFTI file holds {what}, not values per vertex",
@@ -555,9 +563,10 @@ def _gifti_facts(path: str) -> SurfaceFacts:
     code = GIFTI_INTENTS.get(intent, -1)
     structure = meta.get("AnatomicalStructurePrimary") or None
     endian = {"LittleEndian": "<", "BigEndian": ">"}.get(data[0].get("Endian", ""), None)
+    names = tuple(array_names.get(i, "") for i in kept) if len(data) == n_volumes else ("",) * n_volumes
     return SurfaceFacts("gifti", n_vertices, n_volumes, dtype, code, INTENT_NAMES.get(code, intent), structure,
                         f"gifti|{n_vertices}", meta.get("Description", "") or meta.get("Name", ""), endian,
-                        warnings=tuple(warnings))
+                        warnings=tuple(warnings), map_names=names)
 
 
 def _gifti_layout(path: str, data: list[dict[str, str]]) -> tuple[int, int]:
@@ -609,7 +618,17 @@ def _cifti_facts(path: str) -> SurfaceFacts:
     return SurfaceFacts("cifti", len(cols), len(rows), facts.dtype, facts.intent_code,
                         "dense scalars" if facts.intent_code == CIFTI_SCALAR_INTENT else f"code {facts.intent_code}",
                         ",".join(structures), brain_models_key(cols), facts.descrip, facts.endianness, 2,
-                        facts.vox_offset, facts.bitpix, facts.scl_slope, facts.scl_inter, tuple(warnings))
+                        facts.vox_offset, facts.bitpix, facts.scl_slope, facts.scl_inter, tuple(warnings),
+                        _scalar_names(rows))
+
+
+def _scalar_names(axis) -> tuple[str, ...]:
+    """The map names of a CIFTI-2 scalar axis (another kind of first axis names no maps)."""
+    from nibabel.cifti2 import cifti2_axes
+
+    if isinstance(axis, cifti2_axes.ScalarAxis):
+        return tuple(str(n) for n in axis.name)
+    return ("",) * len(axis)
 
 
 def _cifti_extension(path: str, ext: bytes, order: str) -> bytes:

@@ -279,6 +279,7 @@ def probe_surface_file(path: str, entities: dict[str, str], progress=None
         "descrip": facts.descrip, "header_warnings": warnings,
         "geometry": "surface" if facts.format == "gifti" else "grayordinates",
         "n_vertices": facts.n_vertices, "structures": facts.structure, "_hemi": side,
+        "_map_names": list(facts.map_names),
     }
     return cols, dig.sha256, dig.nbytes
 
@@ -361,7 +362,7 @@ def _previous_rows(unit: _Unit) -> pa.Table | None:
         return None
     import pyarrow.compute as pc
 
-    cols = ["relpath", "dataset", *_HEADER_COLUMNS]
+    cols = ["relpath", "dataset", "map_index", "map_name", *_HEADER_COLUMNS]
     try:
         t = pa.concat_tables([_read_columns(f, cols) for f in files])
     except (OSError, pa.ArrowException):
@@ -449,9 +450,16 @@ class _RowBuilder:
         self.prev_table = _previous_rows(unit)
         pt = self.prev_table
         self.pcol = {c: pt[c].to_pylist() for c in ("relpath", "nbytes", "mtime_ns", "sha256", "intent_code",
-                                                    "intent_p1", "descrip", "geometry", "structures")
+                                                    "intent_p1", "descrip", "geometry", "structures", "n_volumes",
+                                                    "map_index", "map_name")
                      } if pt is not None and pt.num_rows else {}
         self.prev = {r: i for i, r in enumerate(self.pcol.get("relpath", []))}
+        # the map names of the previous rows of files of several maps, by file
+        self.prev_names: dict[str, dict[int, str]] = {}
+        for r, i, n in zip(self.pcol.get("relpath", []), self.pcol.get("map_index", []),
+                           self.pcol.get("map_name", [])):
+            if i is not None:
+                self.prev_names.setdefault(r, {})[i] = n or ""
         self.cache: dict[bytes, dict[str, Any]] = {}
         self.rows: list[tuple] = []
         self.headers: list[dict[str, Any]] = []
@@ -466,16 +474,20 @@ class _RowBuilder:
         self.native = 0  # native-space maps: their registration lives outside the unit's files
         self.registrations = RegistrationFinder(unit.ds.root, unit.ds.source_roots, unit.transforms)
 
-    def _header(self, m) -> tuple[dict[str, Any], str, int] | None:
-        """Header columns, sha256 and size of a map (None, with a problem, when it cannot be read)."""
+    def _header(self, m) -> tuple[dict[str, Any], str, int, int] | None:
+        """Header columns, sha256, size and header position of a map (None, with a problem, when it cannot
+        be read).  The position is >= 0 in ``headers``, or -1 - i for row i of the previous table."""
         pcol = self.pcol
         old = self.prev.get(m.relpath)
         if old is not None and pcol["nbytes"][old] == m.nbytes and pcol["mtime_ns"][old] == m.mtime_ns:
-            self.hidx.append(-1 - old)  # a previous row: resolved against the previous table
             self.unchanged += 1
+            n = pcol["n_volumes"][old] or 1
+            names = self.prev_names.get(m.relpath, {})
             return ({"intent_code": pcol["intent_code"][old], "intent_p1": pcol["intent_p1"][old],
-                     "descrip": pcol["descrip"][old], "geometry": pcol["geometry"][old],
-                     "_hemi": _SIDE.get(pcol["structures"][old] or "")}, pcol["sha256"][old], pcol["nbytes"][old])
+                     "descrip": pcol["descrip"][old], "geometry": pcol["geometry"][old], "n_volumes": n,
+                     "_map_names": [names.get(i, "") for i in range(n)],
+                     "_hemi": _SIDE.get(pcol["structures"][old] or "")}, pcol["sha256"][old], pcol["nbytes"][old],
+                    -1 - old)
         try:
             with self.deadline.armed():
                 if surface_format(m.path):
@@ -501,8 +513,7 @@ class _RowBuilder:
         if pos is None:
             pos = self.header_pos[key] = len(self.headers)
             self.headers.append(hdr)
-        self.hidx.append(pos)
-        return res
+        return (*res, pos)
 
     def _model_mask(self, m, surface: bool = False) -> tuple[str | None, str | None]:
         rel = m.extras.get("mask") or self.model.mask_for(m.relpath, m.entities, surface)
@@ -515,22 +526,41 @@ class _RowBuilder:
         got = self._header(m)
         if got is None:
             return
-        hdr, sha, nbytes = got
-        ds, ents = self.ds, m.entities
-        meta, used, meta_json = self.resolver.resolve_full(m.relpath, ents)
+        hdr, sha, nbytes, hpos = got
+        ds = self.ds
+        meta, used, meta_json = self.resolver.resolve_full(m.relpath, m.entities)
         skey = (meta_json, *used)
         spos = self.sidecar_pos.get(skey)
         if spos is None:
             spos = self.sidecar_pos[skey] = len(self.sidecars)
             self.sidecars.append({"metadata": meta_json, "sidecars": used})
-        self.sidx.append(spos)
-        sub = ents.get("sub")
-        origin = self.origins.get(sub)
-        if origin is None:
-            origin = self.origins[sub] = _origin(ds, sub, self.unit.by_sub, self.unit.overrides)
-        lab = origin["lab"]
-        if lab is None and meta.get("InstitutionName") is not None:
-            lab = str(meta["InstitutionName"])
+        file_row = self._file_row(m, hdr, sha, nbytes, meta, used)
+        maps = maps_in_file(m.path, m.entities, hdr)
+        for index, name in maps:
+            row = file_row if len(maps) == 1 else dict(file_row)
+            row.update(map_index=index, map_name=name)
+            if index is not None:  # one map of several: its name may give entities the file name lacks
+                ents = {**entities_from_map_name(name, m.path), **m.entities}
+                row.update({c: ents.get(c) for c in _ENTITY_COLUMNS if c != "hemi"})
+                row["map_id"] = map_id_for(ds.key, f"{m.relpath}#{index}")
+                row["entities"] = json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")},
+                                             sort_keys=True)
+            row["map_kind"] = "contrast" if row["contrast"] else "model"
+            origin = self.origins.get(row["sub"])
+            if origin is None:
+                origin = self.origins[row["sub"]] = _origin(ds, row["sub"], self.unit.by_sub, self.unit.overrides)
+            lab = origin["lab"]
+            if lab is None and meta.get("InstitutionName") is not None:
+                lab = str(meta["InstitutionName"])
+            row.update(participant=origin["participant"], study=origin["study"], site=origin["site"], lab=lab)
+            self.hidx.append(hpos)
+            self.sidx.append(spos)
+            self.rows.append(_ROW_TUPLE(row))
+
+    def _file_row(self, m, hdr: dict[str, Any], sha: str, nbytes: int, meta: dict[str, Any], used: list[str]
+                  ) -> dict[str, Any]:
+        """The columns a file's maps share (entities, origin and map columns are set per map)."""
+        ds, ents = self.ds, m.entities
         volume = hdr.get("geometry") in (None, "volume")
         # a volume's model mask is a NIfTI, a surface map's a GIFTI of its hemisphere (CIFTI: none)
         mask_rel, msha = self._model_mask(m, not volume) if hdr.get("geometry") != "grayordinates" else (None, None)
@@ -550,20 +580,20 @@ class _RowBuilder:
             row["hemi"] = hdr["_hemi"]  # GIFTI's AnatomicalStructurePrimary, where the name has no hemi
         row.update(
             map_id=map_id_for(ds.key, m.relpath), dataset=ds.key, relpath=m.relpath,
-            map_kind="contrast" if get("contrast") else "model", suffix=get("suffix"), extension=get("extension"),
+            suffix=get("suffix"), extension=get("extension"),
             entities=json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")}, sort_keys=True),
-            named_by=m.named_by, participant=origin["participant"], study=origin["study"], site=origin["site"],
-            lab=lab, sha256=sha, nbytes=nbytes, mtime_ns=m.mtime_ns, dof=dof, dof_source=dof_source,
-            model_mask=mask_rel, model_mask_sha256=msha, linked_map=None, space_kind=kind, dof_numerator=None,
+            named_by=m.named_by, sha256=sha, nbytes=nbytes, mtime_ns=m.mtime_ns, dof=dof, dof_source=dof_source,
+            model_mask=mask_rel, model_mask_sha256=msha, linked_map=None, space_kind=kind,
+            dof_numerator=(descrip_f_dof(hdr.get("descrip")) or (None,))[0] if get("stat") == "F" else None,
             registration=registration_json(reg or ({"missing": why} if kind == "native" and volume else None)))
-        self.rows.append(_ROW_TUPLE(row))
+        return row
 
     def table(self) -> pa.Table:
         # one tuple per row while crawling, transposed into columns once
         rows = self.rows
         cols = dict(zip(_PER_ROW, (list(c) for c in zip(*rows)))) if rows else {c: [] for c in _PER_ROW}
         self.rows = []
-        cols["linked_map"] = link_hemispheres(cols["relpath"], cols["hemi"], cols["map_id"])
+        cols["linked_map"] = link_hemispheres(cols["relpath"], cols["hemi"], cols["map_id"], cols["map_index"])
         table = _assemble(cols, self.headers, self.hidx, self.sidecars, self.sidx, self.prev_table)
         return _f_ranks(table)
 
@@ -573,35 +603,94 @@ class _RowBuilder:
                 for p in self.problems + self.resolver.problems]
 
 
+_TIME_SERIES = 2001  # NIFTI_INTENT_TIME_SERIES (nifti1.h)
+_SERIES_STATS = ("errorts",)  # nilearn's residuals: one volume or array per scan
+_MAP_FILE_ENDINGS = (".dscalar.nii", ".func.gii", ".shape.gii", ".label.gii", ".nii.gz", ".nii", ".gii")
+_ENTITY_TOKEN = re.compile(r"^([a-zA-Z]+)-([a-zA-Z0-9+.]+)$")
+_NO_NAME = re.compile(r"^(#?\d*|map|column \d+)$", re.IGNORECASE)
+
+
+def maps_in_file(path: str, entities: dict[str, str], hdr: dict[str, Any]) -> list[tuple[int | None, str | None]]:
+    """(position, name) of each map of a file: one row per map for a CIFTI-2 dense-scalar file or a GIFTI
+    file of several named data arrays, [(None, None)] for a file that is one map.
+
+    A multi-volume NIfTI stays one row, and so do a GIFTI series (unnamed arrays, a time-series intent or
+    nilearn's residuals: one array per scan) and the effect file of an F contrast (its volumes are the
+    contrast's rows, not maps of their own; the F map is beside it).
+    """
+    n = hdr.get("n_volumes") or 1
+    if n < 2 or hdr.get("geometry") in (None, "volume"):
+        return [(None, None)]
+    if entities.get("stat") == "effect" and "_stat-effect_" in path and \
+            os.path.exists(path.replace("_stat-effect_", "_stat-F_")):
+        return [(None, None)]
+    names = list(hdr.get("_map_names") or [])
+    names += [""] * (n - len(names))
+    if hdr.get("geometry") == "surface" and (not any(names) or hdr.get("intent_code") == _TIME_SERIES
+                                             or entities.get("stat") in _SERIES_STATS):
+        return [(None, None)]
+    return list(enumerate(names[:n]))
+
+
+def entities_from_map_name(name: str | None, path: str) -> dict[str, str]:
+    """The entities a map's name in a file of several maps gives: BIDS key-value pairs when it is a BIDS
+    name (``sub-02_contrast-tools``: stacked subjects' maps), else the name as the contrast; nothing for
+    an empty or numbered name or one that repeats the file's own name.
+
+    >>> entities_from_map_name("sub-02_task-read_contrast-words_stat-t_statmap.dscalar.nii", "x")
+    {'sub': '02', 'task': 'read', 'contrast': 'words', 'stat': 't'}
+    >>> entities_from_map_name("faces minus houses", "x"), entities_from_map_name("#3", "x")
+    ({'contrast': 'faces minus houses'}, {})
+    """
+    text = (name or "").strip()
+    for end in _MAP_FILE_ENDINGS:
+        if text.endswith(end):
+            text = text[:-len(end)]
+            break
+    base = os.path.basename(path)
+    if not text or _NO_NAME.match(text) or base.startswith(text + "."):
+        return {}
+    tokens = text.split("_")
+    pairs = [_ENTITY_TOKEN.match(t) for t in tokens]
+    if pairs[0] is not None and all(p is not None for p in pairs[:-1]):  # the last may be a suffix
+        found = {p.group(1): p.group(2) for p in pairs if p is not None}
+        return {k: v for k, v in found.items() if k in _ENTITY_COLUMNS}
+    return {"contrast": text}
+
+
 _HEMI_IN_NAME = re.compile(r"(?<=[_/])hemi-[LR](?=_)|^hemi-[LR](?=_)")
 
 
 def _f_ranks(table: pa.Table) -> pa.Table:
-    """An F map's numerator DOF: the volumes of the effect map its writer left beside it (one per row of
-    the F contrast, as nilearn's ``save_glm_to_bids`` writes them)."""
+    """An F map's numerator DOF, where its header gave none (SPM's description does): the volumes of
+    the effect map its writer left beside it (one per row of the F contrast, as nilearn's
+    ``save_glm_to_bids`` writes them)."""
     stats = table["stat"].to_pylist()
     if "F" not in stats:
         return table
     rel = table["relpath"].to_pylist()
     vols = dict(zip(rel, table["n_volumes"].to_pylist()))
     out = []
-    for r, s in zip(rel, stats):
+    for r, s, have in zip(rel, stats, table["dof_numerator"].to_pylist()):
         n = vols.get(r.replace("_stat-F_", "_stat-effect_")) if s == "F" and "_stat-F_" in r else None
-        out.append(float(n) if n else None)
+        out.append(have if have is not None else float(n) if n else None)
     i = table.schema.get_field_index("dof_numerator")
     return table.set_column(i, table.schema.field(i), pa.array(out, pa.float64()))
 
 
-def link_hemispheres(relpaths: list[str], hemis: list[str | None], map_ids: list[str]) -> list[str | None]:
-    """For each file, the map_id of the other hemisphere of the same map (names equal but for hemi-L/R).
+def link_hemispheres(relpaths: list[str], hemis: list[str | None], map_ids: list[str],
+                     map_index: list[int | None] | None = None) -> list[str | None]:
+    """For each map, the map_id of the other hemisphere of the same map (file names equal but for
+    hemi-L/R; in files of several maps, the map at the same position).
 
     >>> link_hemispheres(["s/a_hemi-L_x", "s/a_hemi-R_x", "s/b"], ["L", "R", None], ["1", "2", "3"])
     ['2', '1', None]
     """
-    by_key: dict[str, dict[str, int]] = {}
-    for i, (rel, hemi) in enumerate(zip(relpaths, hemis)):
+    by_key: dict[tuple[str, int | None], dict[str, int]] = {}
+    index = map_index or [None] * len(relpaths)
+    for i, (rel, hemi, k) in enumerate(zip(relpaths, hemis, index)):
         if hemi in ("L", "R") and _HEMI_IN_NAME.search(rel):
-            by_key.setdefault(_HEMI_IN_NAME.sub("hemi-*", rel), {})[hemi] = i
+            by_key.setdefault((_HEMI_IN_NAME.sub("hemi-*", rel), k), {})[hemi] = i
     out: list[str | None] = [None] * len(relpaths)
     for pair in by_key.values():
         if len(pair) == 2:
@@ -626,7 +715,7 @@ def _write_part(unit: _Unit, table: pa.Table, problems: list[Problem], digest: s
     base = _part_name(unit)
     folder = Path(unit.store) / PARTS_DIR
     folder.mkdir(parents=True, exist_ok=True)
-    table = table.sort_by([("relpath", "ascending")])
+    table = table.sort_by([("relpath", "ascending"), ("map_index", "ascending")])
     write_parquet_atomic(table, Path(unit.store) / f"{base}.parquet", row_group_size=_ROW_GROUP)
     prob = None
     if problems:
@@ -651,8 +740,21 @@ def _read_problems(store: str, part: CatalogPart) -> list[Problem]:
                     count=r.get("count") or 1) for r in rows]
 
 
-# SPM writes the DOF of a T image into its header description: "SPM{T_[20.0]} - contrast 1: ..."
-_DESCRIP_DOF = re.compile(r"\{T_\[\s*([0-9]+(?:\.[0-9]*)?(?:[eE][+-]?[0-9]+)?)\s*\]\}")
+# SPM writes the DOF of a T image into its header description: "SPM{T_[20.0]} - contrast 1: ...",
+# and both of an F image's: "SPM{F_[2.0,20.0]} - ..." (numerator, then error DOF)
+_NUM = r"\s*([0-9]+(?:\.[0-9]*)?(?:[eE][+-]?[0-9]+)?)\s*"
+_DESCRIP_DOF = re.compile(r"\{T_\[" + _NUM + r"\]\}")
+_DESCRIP_F = re.compile(r"\{F_\[" + _NUM + "," + _NUM + r"\]\}")
+
+
+def descrip_f_dof(descrip: str | None) -> tuple[float, float] | None:
+    """(df1, df2) of an F image from SPM's header description, or None.
+
+    >>> descrip_f_dof("SPM{F_[2.0,96.0]} - contrast 2: effects of interest")
+    (2.0, 96.0)
+    """
+    hit = _DESCRIP_F.search(descrip or "")
+    return (float(hit.group(1)), float(hit.group(2))) if hit else None
 
 
 def _degrees_of_freedom(m, meta: dict[str, Any], sidecars: list[str], hdr: dict[str, Any], model: ModelFiles,
@@ -686,6 +788,9 @@ def _degrees_of_freedom(m, meta: dict[str, Any], sidecars: list[str], hdr: dict[
     hit = _DESCRIP_DOF.search(hdr.get("descrip") or "")
     if hit:
         return float(hit.group(1)), "descrip"
+    f_dof = descrip_f_dof(hdr.get("descrip"))
+    if f_dof is not None:
+        return f_dof[1], "descrip"
     dof_file = m.extras.get("dof_file")
     if dof_file:
         path = os.path.join(ds.root, dof_file)

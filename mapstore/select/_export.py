@@ -257,9 +257,13 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
     ds = {r["dataset"]: r["root"] for r in store.sql("SELECT dataset, root FROM datasets").to_pylist()}
     sources = []
     for r, h, xh in zip(sel.meta.itertuples(index=False), row_hashes, x_hashes):
-        sources.append({"map_id": r.map_id, "dataset": r.dataset, "relpath": r.relpath,
-                        "path": os.path.join(ds.get(r.dataset, ""), r.relpath), "sha256": r.sha256,
-                        "feature_key": r.feature_key, "row_sha256": h, "x_sha256": xh})
+        src = {"map_id": r.map_id, "dataset": r.dataset, "relpath": r.relpath,
+               "path": os.path.join(ds.get(r.dataset, ""), r.relpath), "sha256": r.sha256,
+               "feature_key": r.feature_key, "row_sha256": h, "x_sha256": xh}
+        index = getattr(r, "map_index", None)
+        if index is not None and index == index:  # one map of a file of several (NaN in pandas: none)
+            src["map_index"] = int(index)
+        sources.append(src)
     return {
         "format": MANIFEST_FORMAT, "format_version": 1,
         "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
@@ -442,9 +446,9 @@ def json_schemas() -> dict[str, dict[str, Any]]:
             "sources": {"type": "array", "items": {
                 "type": "object",
                 "required": ["map_id", "dataset", "relpath", "path", "sha256", "feature_key", "row_sha256"],
-                "properties": {k: {"type": "string"} for k in
-                               ("map_id", "dataset", "relpath", "path", "sha256", "feature_key", "row_sha256",
-                                "x_sha256")}}},
+                "properties": {**{k: {"type": "string"} for k in
+                                  ("map_id", "dataset", "relpath", "path", "sha256", "feature_key", "row_sha256",
+                                   "x_sha256")}, "map_index": {"type": "integer", "minimum": 0}}}},
             "missing": {"type": "object", "required": ["policy", "mask_voxels", "kept_voxels"],
                         "properties": {"policy": {"enum": ["common", "zero", "keep"]},
                                        "mask_voxels": {"type": "integer"}, "kept_voxels": {"type": "integer"},

@@ -276,9 +276,18 @@ class Selection:
         split, unless ``allow_leak`` (then a warning).
         """
         out = assign_folds(self.groups, scheme, seed)
-        check_leakage(out, self.meta["participant"].to_numpy(object), self.meta["sha256"].to_numpy(object),
+        check_leakage(out, self.meta["participant"].to_numpy(object), self._content_ids(),
                       self.meta["map_id"].to_numpy(object), allow_leak, self.copy_pairs(near_copy_r))
         return out
+
+    def _content_ids(self) -> np.ndarray:
+        """Per row, what makes two maps the same content: the file's hash, and the map's position in a
+        file of several maps (two maps of one CIFTI file are different maps)."""
+        sha = self.meta["sha256"].to_numpy(object)
+        if "map_index" not in self.meta.columns:
+            return sha
+        index = self.meta["map_index"].to_numpy(object)
+        return np.array([s if i is None or i != i else f"{s}#{int(i)}" for s, i in zip(sha, index)], dtype=object)
 
     def copy_pairs(self, near_copy_r: float | None = None) -> list[tuple[int, int, str, float]]:
         """Positions (i, j, kind, r) of selected maps whose rows are identical or |r| >= ``near_copy_r``."""

@@ -48,6 +48,9 @@ MAPS_SCHEMA = pa.schema([
     ("space_kind", _s), ("registration", _s),
     # an F map's numerator degrees of freedom: its contrast's rank (the volumes of its effect map)
     ("dof_numerator", _f64),
+    # a file of several maps (CIFTI-2 scalars, GIFTI data arrays) gives one row per map: its position
+    # in the file (0-based) and the name the file gives it; null for a file that is one map
+    ("map_index", _i64), ("map_name", _s),
 ])
 DATASETS_SCHEMA = pa.schema([
     ("dataset", _s), ("name", _s), ("study", _s), ("root", _s), ("dataset_type", _s),

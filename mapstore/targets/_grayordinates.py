@@ -147,7 +147,7 @@ class GrayordinateTarget(MeshedTarget):
         clipped = 0
         if item.geometry == "grayordinates":
             path = str(item.path)
-            vals = read_surface_values(path, item.sha256).astype(np.float64)
+            vals = read_surface_values(path, item.sha256, item.map_index).astype(np.float64)
             if settings.zero_as_missing:
                 vals[vals == 0] = np.nan
             vals, conversion = convert(vals, item.stat, settings.stat, dof=item.dof, dof1=item.dof_numerator, sided=settings.p_sided,

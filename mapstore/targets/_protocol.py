@@ -50,6 +50,7 @@ class SourceMap:
     space_kind: str | None = None  # template, native or unstated
     registration: dict[str, Any] | None = None  # a native volume's transforms to a template, template side first
     dof_numerator: float | None = None  # an F map's contrast rank
+    map_index: int | None = None  # the map's position in a file of several maps (CIFTI scalars, GIFTI arrays)
 
     @property
     def where(self) -> str:
@@ -68,7 +69,7 @@ class SourceMap:
                  r.get("model_mask_sha256"), r.get("geometry") or "volume", r.get("hemi"), space=r.get("space"),
                  native=r.get("native"), native_missing=r.get("native_missing"), space_kind=r.get("space_kind"),
                  registration=json.loads(r["registration"]) if r.get("registration") else None,
-                 dof_numerator=r.get("dof_numerator"))
+                 dof_numerator=r.get("dof_numerator"), map_index=r.get("map_index"))
         if it.geometry == "surface":
             if r.get("hemi") == "R":  # an unpaired right hemisphere
                 it.path_r, it.sha256_r, it.mask_path_r, it.mask_sha256_r = (it.path, it.sha256, it.mask_path,

@@ -168,13 +168,13 @@ def hemispheres(item: SourceMap, settings: BuildSettings) -> Hemispheres:
     sources: dict[str, tuple[np.ndarray, tuple[str, str | None] | None]] = {}
     if item.geometry == "grayordinates":
         path = str(item.path)
-        for h, v in cifti_cortex(path, read_surface_values(path, item.sha256)).items():
+        for h, v in cifti_cortex(path, read_surface_values(path, item.sha256, item.map_index)).items():
             sources[h] = (v, None)
     else:
         for hemi, p, sha, mpath, msha in (("L", item.path, item.sha256, item.mask_path, item.mask_sha256),
                                           ("R", item.path_r, item.sha256_r, item.mask_path_r, item.mask_sha256_r)):
             if p is not None:
-                sources[hemi] = (read_surface_values(p, sha), (mpath, msha) if mpath else None)
+                sources[hemi] = (read_surface_values(p, sha, item.map_index), (mpath, msha) if mpath else None)
     missing = ["model-mask"] if any(m for _, m in sources.values()) else []
     conversion, clipped, out = "none", 0, {}
     for hemi in ("L", "R"):

@@ -565,10 +565,13 @@ def _nearest(source: np.ndarray, target: np.ndarray, unit: bool = True) -> np.nd
     return idx.astype(np.int64)
 
 
-def read_surface_values(path: str, expect_sha256: str | None = None) -> np.ndarray:
-    """The values of a one-map GIFTI file (vertices,) or CIFTI-2 file (grayordinates,), float32.
+def read_surface_values(path: str, expect_sha256: str | None = None, map_index: int | None = None
+                        ) -> np.ndarray:
+    """The values of one map of a GIFTI file (vertices,) or CIFTI-2 file (grayordinates,), float32.
 
-    The bytes read are the bytes hashed: a file changed since it was indexed is refused.
+    ``map_index`` picks a map of a file of several (a CIFTI scalar row, a GIFTI data array or column);
+    without it the file must hold one map.  The bytes read are the bytes hashed: a file changed since
+    it was indexed is refused.
     """
     import nibabel as nib
 
@@ -582,11 +585,13 @@ def read_surface_values(path: str, expect_sha256: str | None = None) -> np.ndarr
     try:
         if path.endswith(".nii"):
             img = nib.Cifti2Image.from_bytes(raw)
+            if map_index is not None:  # only that row is decoded
+                return _pick_map(path, img.dataobj, map_index, "maps")
             data = np.asarray(img.get_fdata(dtype=np.float32))
             if data.shape[0] != 1:
                 raise GridError(f"{path}: holds {data.shape[0]} maps; a feature row takes one")
             return data[0]
-        fast = _gifti_one_array(raw)
+        fast = _gifti_one_array(raw) if map_index is None else None
         if fast is not None:
             return fast
         img = nib.GiftiImage.from_bytes(raw)  # type: ignore[assignment]
@@ -596,9 +601,20 @@ def read_surface_values(path: str, expect_sha256: str | None = None) -> np.ndarr
     except Exception as exc:  # nibabel's XML and base64 decoders raise several types
         raise GridError(f"{path}: the values cannot be decoded ({type(exc).__name__}: {exc}); re-create "
                         "the file") from exc
+    if map_index is not None:
+        if len(arrays) == 1 and np.asarray(arrays[0]).ndim == 2:  # one array of vertices x maps
+            return _pick_map(path, np.asarray(arrays[0]).T, map_index, "columns")
+        return _pick_map(path, np.asarray(arrays), map_index, "data arrays")
     if len(arrays) != 1 or np.asarray(arrays[0]).ndim != 1:
         raise GridError(f"{path}: holds {len(arrays)} data arrays; a feature row takes a file with one map")
     return np.asarray(arrays[0], dtype=np.float32)
+
+
+def _pick_map(path: str, maps: Any, index: int, what: str) -> np.ndarray:
+    """Map ``index`` of an array of maps x values, float32."""
+    if not 0 <= index < maps.shape[0]:
+        raise GridError(f"{path}: holds {maps.shape[0]} {what}, not map {index}; re-run 'mapstore index'")
+    return np.asarray(maps[index], dtype=np.float32)
 
 
 _GIFTI_TYPES = {"NIFTI_TYPE_FLOAT32": "f4", "NIFTI_TYPE_FLOAT64": "f8", "NIFTI_TYPE_INT32": "i4",
