@@ -72,14 +72,46 @@ def render_table(table, max_rows: int | None = None, width: int = 40) -> str:
     return "\n".join(out)
 
 
+def _json_cell(v):
+    """A value JSON has no type for: bytes as hex, anything else (intervals, UUIDs, times) as text."""
+    return v.hex() if isinstance(v, (bytes, bytearray)) else str(v)
+
+
+def _csv_ok(t) -> bool:
+    import pyarrow as pa
+
+    return not (pa.types.is_nested(t) or pa.types.is_binary(t) or pa.types.is_large_binary(t)
+                or pa.types.is_fixed_size_binary(t) or pa.types.is_interval(t) or pa.types.is_union(t)
+                or pa.types.is_dictionary(t))
+
+
+def _parquet_ok(t) -> bool:
+    import pyarrow as pa
+
+    if pa.types.is_interval(t) or pa.types.is_union(t):
+        return False
+    if pa.types.is_list(t) or pa.types.is_large_list(t) or pa.types.is_fixed_size_list(t):
+        return _parquet_ok(t.value_type)
+    if pa.types.is_struct(t):
+        return all(_parquet_ok(t.field(i).type) for i in range(t.num_fields))
+    return True
+
+
 def write_table(table, fmt: str, out: str | None) -> None:
     import pyarrow.csv as pacsv
     import pyarrow.parquet as pq
 
+    import pyarrow as pa
+
     if fmt == "parquet":
         if not out:
             raise click.UsageError("--format parquet needs --out FILE")
-        pq.write_table(table, out)
+        try:
+            pq.write_table(table, out)
+        except (pa.ArrowNotImplementedError, pa.ArrowInvalid) as exc:
+            kinds = ", ".join(f"{f.name} ({f.type})" for f in table.schema if not _parquet_ok(f.type))
+            raise click.UsageError(f"Parquet cannot hold column(s) {kinds or '?'}: cast them in the query "
+                                   "(e.g. CAST(x AS VARCHAR)), or use --format csv or json") from exc
         click.echo(f"wrote {table.num_rows} rows to {out}", err=True)
         return
     if fmt == "csv":
@@ -88,13 +120,14 @@ def write_table(table, fmt: str, out: str | None) -> None:
         buf = io.BytesIO()
         flat = table
         for i, field in enumerate(table.schema):
-            if str(field.type).startswith(("list", "large_list", "fixed_size_list", "struct")):
-                flat = flat.set_column(i, field.name,
-                                       [[json.dumps(v) for v in table.column(i).to_pylist()]])
+            if not _csv_ok(field.type):  # nested, binary, interval, union: one JSON text per cell
+                flat = flat.set_column(i, field.name, pa.array(
+                    [None if v is None else json.dumps(v, default=_json_cell) for v in table.column(i).to_pylist()],
+                    pa.string()))
         pacsv.write_csv(flat, buf)
         text = buf.getvalue().decode()
     elif fmt == "json":
-        text = json.dumps(table.to_pylist(), default=str, indent=1) + "\n"
+        text = json.dumps(table.to_pylist(), default=_json_cell, indent=1) + "\n"
     else:
         text = render_table(table) + "\n"
     if out:

@@ -9,8 +9,8 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from ..errors import FeatureError
-from ..store import FeatureEntry, FeatureSetSpec
+from ..errors import FeatureError, StoreCorrupt
+from ..store import FeatureEntry, FeatureSetSpec, plain_name, regular_file, store_file
 from ..targets import Target, target_of_set
 from ._copies import SKETCH_BITS, Sketcher
 
@@ -25,9 +25,11 @@ class FeatureSet:
 
     def __init__(self, store_path: Path, name: str, entry: FeatureEntry) -> None:
         self.name = name
-        self.path = store_path / entry.dir
-        self._copies_path = store_path / entry.copies if entry.copies else None
-        self._rows_path = store_path / entry.rows
+        # HEAD's paths are proven inside the store when it is read; again here for a record built by hand
+        self.path = store_file(store_path, entry.dir, f"feature set {name!r} dir", folder=True)
+        self._copies_path = store_file(store_path, entry.copies, f"feature set {name!r} copies") \
+            if entry.copies else None
+        self._rows_path = store_file(store_path, entry.rows, f"feature set {name!r} rows")
         try:
             self.spec: FeatureSetSpec = FeatureSetSpec.read(self.path)
             self._rows_file = pq.ParquetFile(self._rows_path)  # the footer only: columns are read when needed
@@ -93,14 +95,29 @@ class FeatureSet:
     @property
     def mask_indices(self) -> np.ndarray:
         if self._indices is None:
-            self._indices = np.load(self.path / "mask.npy")
+            f = self.path / "mask.npy"
+            try:
+                idx = np.load(regular_file(f, f"feature set {self.name!r} mask"), allow_pickle=False)
+            except (OSError, ValueError, EOFError) as exc:
+                if isinstance(exc, StoreCorrupt):
+                    raise
+                raise StoreCorrupt(f"{f}: the set's mask is unreadable ({exc}); rebuild it with 'mapstore "
+                                   f"features --name {self.name}'") from exc
+            if idx.ndim != 1 or idx.dtype.kind not in "iu" or idx.size != self.n_voxels:
+                raise StoreCorrupt(f"{f}: the set's mask holds {idx.size} {idx.dtype} values, not "
+                                   f"{self.n_voxels} indices; rebuild it with 'mapstore features --name {self.name}'")
+            self._indices = idx
         return self._indices
 
     def _shard(self, name: str) -> np.ndarray:
         if name not in self._shards:
+            f = self.path / "shards" / plain_name(name, f"feature set {self.name!r} rows table shard")
             try:
-                self._shards[name] = np.load(self.path / "shards" / name, mmap_mode="r")
-            except OSError as exc:
+                regular_file(f, f"feature set {self.name!r} shard")
+                self._shards[name] = np.load(f, mmap_mode="r", allow_pickle=False)
+            except StoreCorrupt:
+                raise
+            except (OSError, ValueError, EOFError) as exc:
                 raise FeatureError(f"{self.path / 'shards' / name}: shard unreadable ({exc}); rebuild with "
                                    f"'mapstore features --name {self.name}'") from exc
         return self._shards[name]
@@ -117,6 +134,10 @@ class FeatureSet:
                                f"expected (*, {self.n_voxels}) float32; rebuild the feature set")
         offset = arr.offset  # type: ignore[attr-defined]
         row_bytes = self.n_voxels * 4
+        if len(rows) and (rows[0] < 0 or rows[-1] >= arr.shape[0]):  # rows are sorted
+            raise StoreCorrupt(f"{self.path / 'shards' / shard}: the rows table names row {int(rows[-1])} of a "
+                               f"shard of {arr.shape[0]}; rebuild the set with 'mapstore features --name "
+                               f"{self.name}'")
         with open(self.path / "shards" / shard, "rb", buffering=0) as fh:
             i = 0
             while i < len(rows):

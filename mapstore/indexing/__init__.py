@@ -4,12 +4,13 @@ presets), resolve sidecars and participants, read headers and hashes into the ca
 from __future__ import annotations
 
 from ._crawl import IndexReport, index, map_id_for
-from ._discover import builtin_rules, inside
+from ._discover import builtin_rules, inside, lies_within
 
 __all__ = [
     "builtin_rules",
     "index",
     "IndexReport",
     "inside",
+    "lies_within",
     "map_id_for",
 ]

@@ -48,6 +48,8 @@ from ._discover import (
 
     inside,
 
+    lies_within,
+
     read_participants,
 
     top_folders,
@@ -606,7 +608,7 @@ class _RowBuilder:
 _TIME_SERIES = 2001  # NIFTI_INTENT_TIME_SERIES (nifti1.h)
 _SERIES_STATS = ("errorts",)  # nilearn's residuals: one volume or array per scan
 _MAP_FILE_ENDINGS = (".dscalar.nii", ".func.gii", ".shape.gii", ".label.gii", ".nii.gz", ".nii", ".gii")
-_ENTITY_TOKEN = re.compile(r"^([a-zA-Z]+)-([a-zA-Z0-9+.]+)$")
+_ENTITY_TOKEN = re.compile(r"^([a-zA-Z]+)-((?:[^\W_]|[+.])+)$")
 _NO_NAME = re.compile(r"^(#?\d*|map|column \d+)$", re.IGNORECASE)
 
 
@@ -1025,7 +1027,7 @@ def _find(roots: list[Path], store_path: Path) -> tuple[list[DatasetInfo], list[
                               "give a derivative dataset, a raw dataset with derivatives/, or a folder of them. "
                               "Nothing was written.")
     for ds in datasets:
-        if inside(store_path, ds.root):
+        if lies_within(store_path, ds.root):
             raise ParameterError(f"--store {store_path} lies inside the dataset {ds.root}; keep the store "
                                  "outside source datasets (mapstore never writes to them)")
     return datasets, problems

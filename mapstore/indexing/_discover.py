@@ -37,6 +37,7 @@ __all__ = [
     "find_datasets",
     "walk_dataset",
     "inside",
+    "lies_within",
     "top_folders",
     "SidecarResolver",
     "read_participants",
@@ -53,9 +54,20 @@ MAP_EXTENSIONS = (".dscalar.nii", ".func.gii", ".shape.gii", ".gii", ".nii.gz", 
 # files a GLM writer leaves beside its maps: the model's mask and its design matrix
 COMPANION_SUFFIXES = ("_mask.nii.gz", "_mask.nii", "_mask.gii", "_design.tsv")
 # Entities of the statistical-derivatives convention that pybids' bundled config lacks.
+# BIDS labels are alphanumeric: mapstore reads letters and digits in Unicode's sense (Python's str.isalnum:
+# ``contrast-wörter`` is the label ``wörter``), where pybids' patterns say ASCII [a-zA-Z0-9]
+ALNUM = r"[^\W_]"
+LABEL = r"(?:[^\W_]|\+)+"  # a label as the patterns read it (with BIDS' ``+`` joins)
+
+
+def unicode_labels(pattern: str) -> str:
+    """An entity pattern with its ASCII alphanumeric classes widened to Unicode letters and digits."""
+    return pattern.replace("[a-zA-Z0-9+]+", LABEL).replace("[a-zA-Z0-9]+", ALNUM + "+")
+
+
 EXTRA_ENTITIES = {
-    "contrast": r"[_/\\]+contrast-([a-zA-Z0-9+]+)",
-    "stat": r"[_/\\]+stat-([a-zA-Z0-9+]+)",
+    "contrast": r"[_/\\]+contrast-(" + LABEL + ")",
+    "stat": r"[_/\\]+stat-(" + LABEL + ")",
 }
 SKIP_DIRS = {"derivatives", "sourcedata", "code", "stimuli", "log", "logs"}
 
@@ -126,14 +138,14 @@ class EntityParser:
                 long_name) or _short_key(pattern)
             if key is None:
                 continue
-            self.patterns.append((long_name, key, re.compile(pattern)))
+            self.patterns.append((long_name, key, re.compile(unicode_labels(pattern))))
         for key, pattern in EXTRA_ENTITIES.items():
             self.patterns.append((key, key, re.compile(pattern)))
         self.long_to_short = {ln: k for ln, k, _ in self.patterns}
         self._fast = [(None if key in ("suffix", "extension", "datatype") else f"{key}-", key, rx)
                       for _, key, rx in self.patterns]
         # split() with two groups gives [text, key, value, text, key, value, ..., text]
-        self._varying = re.compile(r"(?<=[_/\\])(contrast|stat)-([a-zA-Z0-9+]+)")
+        self._varying = re.compile(r"(?<=[_/\\])(contrast|stat)-(" + LABEL + ")")
         self._cache: dict[str, dict[str, str]] = {}
 
     @staticmethod
@@ -385,7 +397,7 @@ def _template_regex(template: str, where: str) -> re.Pattern[str]:
     out = []
     for p in parts:
         if p.startswith("{") and p.endswith("}"):
-            out.append(f"(?P<{p[1:-1]}>[a-zA-Z0-9+]+)")
+            out.append(f"(?P<{p[1:-1]}>{LABEL})")
         elif p == "**":
             out.append(".*")
         elif p == "*":
@@ -678,6 +690,29 @@ def inside(path: str | os.PathLike[str], folder: str | os.PathLike[str]) -> bool
     return p == f or f in p.parents
 
 
+def lies_within(path: str | os.PathLike[str], folder: str | os.PathLike[str]) -> bool:
+    """True when writing ``path`` would write into ``folder``, however either is spelled: ``..`` steps
+    and symlinks are resolved as the kernel would, and each existing ancestor of the path is compared
+    with the folder by device and inode (a bind mount or another alias of the same folder).
+    """
+    real = Path(os.path.realpath(path))
+    real_folder = Path(os.path.realpath(folder))
+    if inside(real, real_folder) or inside(os.path.abspath(path), os.path.abspath(folder)):
+        return True
+    try:
+        st = os.stat(folder)
+    except OSError:
+        return False
+    for a in (real, *real.parents):
+        try:
+            sa = os.stat(a)
+        except OSError:
+            continue
+        if (sa.st_dev, sa.st_ino) == (st.st_dev, st.st_ino):
+            return True
+    return False
+
+
 def top_folders(ds: DatasetInfo) -> list[str]:
     """The dataset's top-level folders that a walk descends into."""
     try:
@@ -879,8 +914,8 @@ def is_regular(path: str | os.PathLike[str]) -> bool:
         return False
 
 
-_ENTITY_PART = re.compile(r"^([a-zA-Z0-9]+)-(.*)$")
-_CLEAN_STEM = re.compile(r"(?:[a-zA-Z0-9]+-[a-zA-Z0-9+]+_)*[a-zA-Z0-9]+")
+_ENTITY_PART = re.compile(r"^(" + ALNUM + r"+)-(.*)$")
+_CLEAN_STEM = re.compile(r"(?:" + ALNUM + r"+-" + LABEL + "_)*" + ALNUM + "+")
 
 
 def label_problems(stem: str) -> list[tuple[str, str, str]]:

@@ -36,7 +36,7 @@ import pyarrow.parquet as pq
 from .._version import __version__
 from ..features import NEAR_COPY_R
 from ..errors import ExportError, ParameterError
-from ..indexing import inside
+from ..indexing import lies_within
 from ..formats import sha256_file
 from ..features import FeatureSet
 from ._query import Selection, fold_vector, parse_scheme
@@ -124,7 +124,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
 def _check_out(sel: Selection, out: str | os.PathLike[str], overwrite: bool) -> Path:
     out = Path(out).expanduser().absolute()
     for root in sel.store.sql("SELECT root FROM datasets")["root"].to_pylist():
-        if inside(out, root):
+        if lies_within(out, root):
             raise ExportError(f"{out}: lies inside the source dataset {root}; mapstore never writes to source "
                               "datasets, choose an --out folder elsewhere")
     if out.exists() and any(out.iterdir()) and not overwrite:
@@ -321,20 +321,26 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
         raise ExportError(f"{mpath}: manifest not found; give the export folder or its manifest.json") from exc
     except (OSError, ValueError) as exc:
         raise ExportError(f"{mpath}: unreadable manifest ({exc})") from exc
-    if man.get("format") != MANIFEST_FORMAT:
+    if not isinstance(man, dict) or man.get("format") != MANIFEST_FORMAT:
         raise ExportError(f"{mpath}: not a mapstore export manifest")
+    _check_manifest(man, mpath)
     changes: list[str] = []
     folder = mpath.parent
     for name, sha in man.get("files", {}).items():
         p = folder / name
         if not p.exists():
             changes.append(f"export file missing: {name}")
+        elif not _regular(p):
+            changes.append(f"export file is not a regular file (a FIFO, device or folder): {name}")
         elif sha256_file(str(p)) != sha:
             changes.append(f"export file changed: {name}")
     for s in man["sources"]:
         p = Path(s["path"])
         if not p.exists():
             changes.append(f"source missing: {p}")
+            continue
+        if not _regular(p):  # a FIFO would hang the hash, a device never end it
+            changes.append(f"source is not a regular file (a FIFO, device or folder): {p}")
             continue
         got = sha256_file(str(p))
         if got != s["sha256"]:
@@ -369,6 +375,37 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
                 changes.append(f"store row changed: {s['map_id']} ({s['relpath']})")
     changes += _check_data_file(folder, man)
     return VerifyReport(str(mpath), len(man["sources"]), n_rows, changes)
+
+
+def _regular(p: Path) -> bool:
+    import stat
+
+    try:
+        return stat.S_ISREG(os.stat(p).st_mode)
+    except OSError:
+        return False
+
+
+def _check_manifest(man: dict[str, Any], mpath: Path) -> None:
+    """The fields verify reads have their types, and the export files it names are plain names in its folder."""
+    def bad(what: str) -> ExportError:
+        return ExportError(f"{mpath}: malformed manifest ({what}); re-export to get a manifest verify can read")
+
+    files, sources = man.get("files", {}), man.get("sources")
+    if not isinstance(files, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in files.items()):
+        raise bad("'files' must map file names to hashes")
+    for name in files:
+        if not name or "/" in name or "\\" in name or name in (".", "..") or "\x00" in name:
+            raise bad(f"'files' names {name!r}, which is not a file of the export folder")
+    if not isinstance(sources, list) or not all(isinstance(s, dict) for s in sources):
+        raise bad("'sources' must be a list of objects")
+    for i, s in enumerate(sources):
+        for k in ("map_id", "path", "sha256", "feature_key", "row_sha256", "relpath"):
+            if not isinstance(s.get(k), str):
+                raise bad(f"sources[{i}].{k} is {type(s.get(k)).__name__}, not text")
+    if not isinstance(man.get("store"), str) or not isinstance(man.get("feature_set"), dict) or \
+            not isinstance(man["feature_set"].get("name"), str):
+        raise bad("'store' and 'feature_set.name' must be text")
 
 
 def _x_hash(source: dict[str, Any]) -> str:

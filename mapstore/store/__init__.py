@@ -3,6 +3,7 @@ lock, atomic writes, crash checkpoints, readers' leases, garbage collection, the
 
 from __future__ import annotations
 
+from ._paths import inside_store, plain_name, regular_file, relative_path, store_file
 from ._store import (
     Catalog,
     checkpoint,
@@ -61,6 +62,11 @@ __all__ = [
     "file_slug",
     "FPROBLEMS_SCHEMA",
     "Head",
+    "inside_store",
+    "plain_name",
+    "regular_file",
+    "relative_path",
+    "store_file",
     "LABELS_SCHEMA",
     "LabelsEntry",
     "leased_files",

@@ -21,14 +21,17 @@ import json
 import os
 import re
 import shutil
+import tempfile
 import time
 import uuid
+import weakref
 from pathlib import Path
 from typing import Any, Iterator
 
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from ._paths import inside_store, regular_file, store_file
 from ._tables import (
 
     COPIES_SCHEMA,
@@ -115,6 +118,9 @@ def new_snapshot_id() -> str:
         uuid.uuid4().hex[:8]
 
 
+_TMP_MARKER = re.compile(r"^\.store\.json\.[0-9a-f]{32}\.tmp$")
+
+
 def ensure_store(path: str | os.PathLike[str]) -> Path:
     """Create an empty store folder (or check an existing one) and return its path."""
     p = Path(path).expanduser().absolute()
@@ -122,17 +128,15 @@ def ensure_store(path: str | os.PathLike[str]) -> Path:
     if p.exists() and not p.is_dir():
         raise StoreCorrupt(f"{p}: exists and is not a folder; choose another --store path")
     if p.is_dir() and not marker.exists():
-        # a creation killed before its marker was in place leaves only its temporary marker
-        for left in p.glob(".store.json.*.tmp"):
-            with contextlib.suppress(OSError):
-                left.unlink()
-        if any(p.iterdir()):
+        # another run creating the store at this moment (or one killed before its marker was in place)
+        # leaves only temporary markers: they do not make the folder foreign, and are not ours to delete
+        if any(not _TMP_MARKER.match(e.name) for e in p.iterdir()):
             raise StoreCorrupt(f"{p}: folder exists, is not empty and is not a mapstore store; "
                                "choose an empty or new folder for --store")
     try:
         p.mkdir(parents=True, exist_ok=True)
         if not marker.exists():
-            write_json_atomic(marker, STORE_FORMAT)
+            write_json_atomic(marker, STORE_FORMAT)  # two runs at once both write the same marker
     except OSError as exc:
         raise StoreUnwritable(f"{p}: cannot create the store here ({exc.strerror}); choose a folder you can "
                               "write (--store)") from exc
@@ -185,9 +189,15 @@ def read_head(path: Path) -> Head:
     if not f.exists():
         return Head()
     try:
-        return Head.from_json(json.loads(f.read_text()))
+        regular_file(f, "HEAD")
+        head = Head.from_json(json.loads(f.read_text()))
+    except StoreCorrupt:
+        raise
     except (OSError, ValueError) as exc:
         raise StoreCorrupt(f"{f}: unreadable ({exc}); restore it from a backup or re-index") from exc
+    for record, rel, folder in head.paths():  # every path HEAD names stays inside the store, before any is opened
+        store_file(path, rel, record, folder=folder)
+    return head
 
 
 def _fsync_dir(path: Path) -> None:
@@ -293,6 +303,7 @@ def write_parquet_atomic(table: pa.Table, path: Path, row_group_size: int | None
 # (same host: pid and process start time; another host: for a day).
 
 _LEASES = ".readers"
+_LEASE_NAME = re.compile(r"^[0-9]+-[0-9a-f]{12}\.json$")
 _OTHER_HOST_LEASE_S = 24 * 3600
 
 
@@ -344,15 +355,19 @@ def leased_files(path: Path) -> list[dict[str, Any]]:
     folder = path / _LEASES
     if not folder.is_dir():
         return out
-    for f in folder.glob("*.json"):
+    for f in folder.iterdir():
+        if not _LEASE_NAME.match(f.name):
+            continue  # not a lease this code wrote: neither read nor deleted
         try:
-            doc = json.loads(f.read_text())
-        except (OSError, ValueError):
-            continue
-        if doc.get("host") == host:
-            live = doc.get("start") is not None and _start_time(int(doc.get("pid", -1))) == doc.get("start")
-        else:
-            live = time.time() - float(doc.get("time", 0)) < _OTHER_HOST_LEASE_S
+            doc = json.loads(regular_file(f, "a reader's lease").read_text())
+            if not isinstance(doc, dict):
+                raise ValueError("not an object")
+            if doc.get("host") == host:
+                live = doc.get("start") is not None and _start_time(int(doc.get("pid", -1))) == doc.get("start")
+            else:
+                live = time.time() - float(doc.get("time", 0)) < _OTHER_HOST_LEASE_S
+        except (OSError, ValueError, TypeError, OverflowError):
+            continue  # unreadable or damaged (a FIFO, garbage): it protects nothing and is left alone
         if live:
             out.append(doc)
         else:
@@ -423,12 +438,14 @@ class Catalog:
         self.head = head if head is not None else read_head(self.path)
         self._given: dict[str, pa.Table] = {}
         self._con = None
+        self._scratch = ""
 
     def close(self) -> None:
         """Close the DuckDB connection (opened again on the next query)."""
         if self._con is not None:
             self._con.close()
             self._con = None
+            shutil.rmtree(self._scratch, ignore_errors=True)
 
     def require_catalog(self) -> None:
         """Raise :class:`~mapstore.errors.NoCatalog` when nothing has been indexed into the store."""
@@ -475,12 +492,19 @@ class Catalog:
 
             con = duckdb.connect(":memory:")
             con.execute("SET parquet_metadata_cache = true")
+            # a query that spills writes into a folder of its own, removed with the connection
+            self._scratch = tempfile.mkdtemp(prefix="mapstore-sql-")
+            weakref.finalize(self, shutil.rmtree, self._scratch, True)
+            con.execute(f"SET temp_directory = {_sql_str(self._scratch)}")
+            # restricted before any view binds to a file (a view reads its Parquet footers)
+            con.execute(f"SET allowed_directories = [{_sql_str(str(self.path) + os.sep)}]")
+            con.execute("SET enable_external_access = false")
             try:
                 self._views(con)
             except duckdb.IOException as exc:  # a view binds to its files: a part may be gone
                 self._io_error(exc)
-            con.execute(f"SET allowed_directories = [{_sql_str(str(self.path) + os.sep)}]")
-            con.execute("SET enable_external_access = false")
+            except duckdb.Error as exc:  # a damaged file (not Parquet, cut short)
+                self._damaged(exc)
             con.execute("SET lock_configuration = true")
             self._con = con
         return self._con
@@ -490,6 +514,14 @@ class Catalog:
         if missing is not None:
             self._raise_missing(Path(missing))
         raise StoreCorrupt(f"{self.path}: cannot read the catalog ({exc}); re-run 'mapstore index'") from exc
+
+    def _damaged(self, exc: Exception) -> None:
+        """A DuckDB error naming a file of this store: the file is damaged (StoreCorrupt, with the remedy)."""
+        text = str(exc).splitlines()[0]
+        hit = re.search(r"'([^']+)'|\"([^\"]+)\"", text)
+        where = (hit.group(1) or hit.group(2)) if hit else str(self.path)
+        raise StoreCorrupt(f"{where}: a store file is damaged ({text}); re-run 'mapstore index' (a catalog "
+                           "file), 'mapstore labels' (labels) or 'mapstore features' (a feature set's rows)") from exc
 
     def _views(self, con) -> None:
         """One view per table, reading the snapshot's files at query time."""
@@ -557,7 +589,9 @@ class Catalog:
         if len(statements) != 1:
             raise QueryError(f"give exactly one SQL statement, got {len(statements)}")
         kind = statements[0].type
-        if kind not in (duckdb.StatementType.SELECT, duckdb.StatementType.EXPLAIN):
+        if kind == duckdb.StatementType.EXPLAIN:  # EXPLAIN ANALYZE runs what it explains: that must read only
+            kind = _explained(con, statements[0].query)
+        if kind != duckdb.StatementType.SELECT:
             raise QueryError(f"only read-only queries (SELECT, WITH ... SELECT) are allowed, "
                              f"got a {kind.name} statement; the catalog is changed by "
                              "'mapstore index', 'features' and 'labels'")
@@ -565,10 +599,32 @@ class Catalog:
             return fetch(con.sql(query))  # DuckDB runs the query (and opens the files) in fetch
         except duckdb.IOException as exc:
             self._io_error(exc)
+        except duckdb.InvalidInputException as exc:
+            if str(self.path) in str(exc):  # a file of the store, not the query, is at fault
+                self._damaged(exc)
+            raise QueryError(f"{str(exc).splitlines()[0]}") from exc
         except duckdb.Error as exc:
             raise QueryError(f"{exc}\n(views: {', '.join(self.TABLES)}, features, feature_sets, "
                              f"feature_problems, feature_copies; see 'mapstore sql --store "
                              f"{self.path} \"DESCRIBE maps\"')") from exc
+
+
+_EXPLAIN = re.compile(r"^(?:\s+|--[^\n]*(?:\n|$)|/\*.*?\*/)*EXPLAIN\b"
+                      r"(?:\s+|--[^\n]*(?:\n|$)|/\*.*?\*/|ANALY[SZ]E\b|\([^()]*\))*", re.IGNORECASE | re.DOTALL)
+
+
+def _explained(con, query: str):
+    """The statement type an EXPLAIN explains (a QueryError when it cannot be told)."""
+    import duckdb
+
+    hit = _EXPLAIN.match(query)
+    try:
+        inner = con.extract_statements(query[hit.end():]) if hit else []
+    except duckdb.Error:
+        inner = []
+    if len(inner) != 1:
+        raise QueryError("EXPLAIN is allowed in front of one SELECT only; write it as EXPLAIN [ANALYZE] SELECT ...")
+    return inner[0].type
 
 
 def _missing_file(message: str) -> str | None:
@@ -633,9 +689,12 @@ class _ViewBuilder:
         self.con.register(f"_t_{name}", table)
         self.con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM "_t_{name}"')
 
-    @staticmethod
-    def _source(files: list[Path], loose: bool) -> str:
-        """A FROM clause over the files (every file of a store has its table's current columns)."""
+    def _source(self, files: list[Path], loose: bool) -> str:
+        """A FROM clause over the files (every file of a store has its table's current columns); each
+        proven a regular file inside the store first."""
+        for f in files:
+            with contextlib.suppress(FileNotFoundError):  # a missing file is named by the query's error
+                regular_file(inside_store(self.cat.path, f, "a catalog table"), "a catalog table")
         lst = "[" + ", ".join(_sql_str(str(f)) for f in files) + "]"
         if loose:  # participants: columns vary by store; every file's columns, whatever they are
             return f"read_parquet({lst}, union_by_name = true)"

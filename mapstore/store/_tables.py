@@ -10,11 +10,12 @@ import hashlib
 import json
 from dataclasses import dataclass, field, fields
 from pathlib import Path
-from typing import Any
+from typing import Any, ClassVar
 
 import pyarrow as pa
 
 from ..errors import StoreCorrupt
+from ._paths import check_types, relative_path
 
 __all__ = [
     "MAPS_SCHEMA", "MAPS_SCHEMA_ID", "DATASETS_SCHEMA", "PROBLEMS_SCHEMA", "PARTICIPANTS_SCHEMA", "LABELS_SCHEMA",
@@ -108,17 +109,36 @@ class Problem:
         return {name: getattr(self, name) for name in schema.names}
 
 
+_S, _I, _L, _D, _B = (str,), (int,), (list,), (dict,), (bool,)
+
+
 class _JsonRecord:
-    """to_json / from_json for the dataclass records of HEAD and set.json."""
+    """to_json / from_json for the dataclass records of HEAD and set.json.
+
+    A record read from a store is checked first: each field of ``_TYPES`` has its type, each field of
+    ``_PATHS`` is a relative path with no ``..`` step (StoreCorrupt otherwise, naming the record).
+    """
+
+    _TYPES: ClassVar[dict[str, tuple[type, ...]]] = {}
+    _PATHS: ClassVar[tuple[str, ...]] = ()
 
     def to_json(self) -> dict[str, Any]:
         return dict(self.__dict__)
 
     @classmethod
-    def from_json(cls, doc: dict[str, Any]):
+    def from_json(cls, doc: dict[str, Any], record: str = ""):
         """The record from its JSON object; keys it does not know (from newer versions) are ignored."""
+        record = record or cls.__name__
+        check_types(doc, cls._TYPES, record)
+        for k in cls._PATHS:
+            if doc.get(k) is not None:
+                relative_path(doc[k], f"{record}.{k}")
         names = {f.name for f in fields(cls)}  # type: ignore[arg-type]
-        return cls(**{k: v for k, v in doc.items() if k in names})
+        try:
+            return cls(**{k: v for k, v in doc.items() if k in names})
+        except TypeError as exc:  # a required field missing
+            raise StoreCorrupt(f"{record}: {exc}; the store was damaged or crafted: restore it from a backup, "
+                               "or index the datasets again into a new store") from exc
 
 
 @dataclass
@@ -132,6 +152,10 @@ class FeatureEntry(_JsonRecord):
     n_rows: int | None = None
     spec_id: str | None = None
     catalog: str | None = None  # the catalog snapshot it was built from
+
+    _TYPES: ClassVar[dict[str, tuple[type, ...]]] = {
+        "dir": _S, "rows": _S, "problems": _S, "copies": _S, "n_rows": _I, "spec_id": _S, "catalog": _S}
+    _PATHS: ClassVar[tuple[str, ...]] = ("dir", "rows", "problems", "copies", "catalog")
 
 
 @dataclass
@@ -147,6 +171,11 @@ class LabelsEntry(_JsonRecord):
     inherit_broader: bool | None = None
     catalog: str | None = None  # the catalog snapshot it labels
     concepts: list[str] = field(default_factory=list)
+
+    _TYPES: ClassVar[dict[str, tuple[type, ...]]] = {
+        "table": _S, "vocabulary": _S, "version": _S, "sha256": _S, "source": _S, "copy": _S,
+        "inherit_broader": _B, "catalog": _S, "concepts": _L}
+    _PATHS: ClassVar[tuple[str, ...]] = ("table", "copy", "catalog")
 
 
 @dataclass
@@ -173,10 +202,23 @@ class FeatureSetSpec(_JsonRecord):
     sketch: str = "count"  # the rows' sketch directions: count (sparse) or gauss (dense, small sets)
     subjects_dir: str | None = None  # FreeSurfer subjects whose sphere.reg took fsnative maps onto the mesh
 
+    _TYPES: ClassVar[dict[str, tuple[type, ...]]] = {
+        "name": _S, "grid": _D, "grid_id": _S, "mask": _D, "mask_sha256": _S, "method": _S, "stat": _S,
+        "p_sided": _S, "zero_as_missing": _B, "background": _S, "kinds": _L, "where": _S, "versions": _D,
+        "spec_id": _S, "geometry": _S, "projection": _D, "parcels": _D, "sketch": _S, "subjects_dir": _S}
+
     @classmethod
     def read(cls, folder: Path) -> "FeatureSetSpec":
-        """Read ``folder/set.json`` (OSError and ValueError pass to the caller)."""
-        return cls.from_json(json.loads((folder / "set.json").read_text()))
+        """Read ``folder/set.json`` (OSError and ValueError pass to the caller; a FIFO or device is refused)."""
+        from ._paths import regular_file
+
+        f = regular_file(folder / "set.json", "set.json")
+        spec = cls.from_json(json.loads(f.read_text()), str(f))
+        mask = spec.mask
+        if not isinstance(mask.get("n_voxels"), int) or isinstance(mask.get("n_voxels"), bool) or \
+                not 0 < mask["n_voxels"] < 2 ** 40:
+            raise StoreCorrupt(f"{f}: mask.n_voxels {mask.get('n_voxels')!r} is not a count; rebuild the set")
+        return spec
 
 
 @dataclass
@@ -196,10 +238,26 @@ class Head:
 
     @classmethod
     def from_json(cls, doc: dict[str, Any]) -> "Head":
+        check_types(doc, {"catalog": _S, "features": _D, "default_features": _S, "labels": _D, "history": _L},
+                    "HEAD")
+        if doc.get("catalog") is not None:
+            relative_path(doc["catalog"], "HEAD catalog")
         labels = doc.get("labels")
-        return cls(doc.get("catalog"), {k: FeatureEntry.from_json(v) for k, v in (doc.get("features") or {}).items()},
-                   doc.get("default_features"), LabelsEntry.from_json(labels) if labels else None,
+        return cls(doc.get("catalog"),
+                   {str(k): FeatureEntry.from_json(v, f"HEAD features.{k}") for k, v in (doc.get("features") or {}).items()},
+                   doc.get("default_features"), LabelsEntry.from_json(labels, "HEAD labels") if labels else None,
                    list(doc.get("history") or []))
+
+    def paths(self) -> list[tuple[str, str, bool]]:
+        """(record, path, is a folder) of every store path HEAD names."""
+        out = [("HEAD catalog", self.catalog, True)] if self.catalog else []
+        for name, e in self.features.items():
+            out += [(f"HEAD features.{name}.{k}", getattr(e, k), k in ("dir", "catalog"))
+                    for k in FeatureEntry._PATHS if getattr(e, k)]
+        if self.labels:
+            out += [(f"HEAD labels.{k}", getattr(self.labels, k), k == "catalog") for k in LabelsEntry._PATHS
+                    if getattr(self.labels, k)]
+        return out
 
 
 MAPS_SCHEMA_ID = hashlib.sha256(MAPS_SCHEMA.to_string().encode()).hexdigest()[:16]
@@ -223,7 +281,14 @@ class CatalogPart:
         return dict(self.__dict__)
 
     @classmethod
-    def from_json(cls, doc: dict[str, Any]) -> "CatalogPart":
+    def from_json(cls, doc: dict[str, Any], record: str = "parts.json") -> "CatalogPart":
+        check_types(doc, {"dataset": _S, "unit": _S, "maps": _S, "rows": _I, "problems": _S, "digest": _S,
+                          "schema": _S}, record)
+        for k in ("maps", "problems"):
+            if doc.get(k) is not None:
+                relative_path(doc[k], f"{record}.{k}")
+        if doc.get("maps") is None:
+            raise StoreCorrupt(f"{record}: a part with no maps file; re-run 'mapstore index'")
         return cls(**{k: doc.get(k) for k in ("dataset", "unit", "maps", "rows", "problems", "digest")},
                    schema=doc.get("schema", ""))
 
@@ -240,15 +305,23 @@ class CatalogManifest:
         return {"format": 2, "parts": [p.to_json() for p in self.parts]}
 
     @classmethod
-    def from_json(cls, doc: dict[str, Any]) -> "CatalogManifest":
-        return cls([CatalogPart.from_json(d) for d in doc.get("parts") or []])
+    def from_json(cls, doc: dict[str, Any], record: str = "parts.json") -> "CatalogManifest":
+        check_types(doc, {"parts": _L}, record)
+        return cls([CatalogPart.from_json(d, f"{record} part {i}") for i, d in enumerate(doc.get("parts") or [])])
 
     @classmethod
     def read(cls, store: Path, snapshot: str) -> "CatalogManifest":
         """The manifest of ``snapshot`` (a store-relative folder)."""
-        f = store / snapshot / cls.FILE
+        from ._paths import store_file
+
+        f = store_file(store, f"{snapshot}/{cls.FILE}", f"HEAD catalog {snapshot}")
         try:
-            return cls.from_json(json.loads(f.read_text()))
+            manifest = cls.from_json(json.loads(f.read_text()), str(f))
+            for i, p in enumerate(manifest.parts):
+                for k in ("maps", "problems"):
+                    if getattr(p, k):
+                        store_file(store, getattr(p, k), f"{f} part {i}.{k}")
+            return manifest
         except FileNotFoundError:
             raise
         except (OSError, ValueError) as exc:
