@@ -456,6 +456,17 @@ def _demo_decoder(export_dir: Path):
     return pa.Table.from_pylist(rows)
 
 
+def _written_path(argv: list[str]) -> str | None:
+    """The output folder or file, else the store, a command line names (for an error that names no file)."""
+    for flag in ("--out", "--html", "--store"):
+        for i, arg in enumerate(argv):
+            if arg == flag and i + 1 < len(argv):
+                return argv[i + 1]
+            if arg.startswith(flag + "="):
+                return arg.split("=", 1)[1]
+    return None
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point: run the CLI and turn mapstore errors into messages and exit codes."""
     try:
@@ -475,9 +486,10 @@ def main(argv: list[str] | None = None) -> int:
         click.echo("interrupted", err=True)
         return 130
     except OSError as exc:  # an operating-system failure mapstore did not foresee: still one line
-        where = f"{exc.filename}: " if getattr(exc, "filename", None) else ""
-        click.echo(f"error: {where}{exc.strerror or exc} (check the path, its permissions and free space)",
-                   err=True)
+        named = getattr(exc, "filename", None) or _written_path(argv if argv is not None else sys.argv[1:])
+        where = f"{named}: " if named else ""
+        what = exc.strerror or (str(exc).splitlines() or [type(exc).__name__])[0]
+        click.echo(f"error: {where}{what} (check the path, its permissions and free space)", err=True)
         return 1
     return rv if isinstance(rv, int) else 0
 

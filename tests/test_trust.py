@@ -332,3 +332,69 @@ def test_a_damaged_store_file_is_a_message_never_a_traceback(built, tmp_path, da
             pytest.fail(f"{target.name} {damage}: {type(exc).__name__}: {exc}")
         finally:
             signal.alarm(0)
+
+
+_IDENTICAL_RUN = """
+import resource, sys
+import mapstore
+store = sys.argv[2]
+mapstore.index([sys.argv[1]], store, progress=False, jobs=1)
+rep = mapstore.build_features(store, "flat", grid=sys.argv[3], mask="intersection", progress=False, jobs=1)
+n = mapstore.open(store).sql("SELECT count(*) AS n FROM feature_copies")["n"][0].as_py()
+print(rep.n_built, n, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss // 1024)
+"""
+
+
+def test_thousands_of_identical_maps_cost_linear_memory(tmp_path):
+    """3,000 byte-identical maps: one group of copies (2,999 pairs, not 4.5 million), and the build's
+    peak memory stays far below what listing every pair takes (measured in a fresh process)."""
+    import subprocess
+    import sys
+
+    import nibabel as nib
+
+    ds = make_derivative(tmp_path / "same", "aspen")
+    aff = np.diag([4.0, 4.0, 4.0, 1.0])
+    data = np.random.default_rng(0).normal(size=(8, 8, 8)).astype(np.float32)
+    img = nib.Nifti1Image(data, aff)
+    for i in range(3000):
+        (ds / f"sub-{i:04d}").mkdir()
+        nib.save(img, str(ds / f"sub-{i:04d}" / f"sub-{i:04d}_task-x_contrast-a_stat-t_statmap.nii"))
+    grid = write_json(tmp_path / "grid.json", {"shape": [8, 8, 8], "affine": aff.tolist()})
+    out = subprocess.run([sys.executable, "-c", _IDENTICAL_RUN, str(ds), str(tmp_path / "store"), str(grid)],
+                         capture_output=True, text=True, timeout=900)
+    assert out.returncode == 0, out.stderr[-2000:]
+    built, pairs, peak_mb = map(int, out.stdout.split())
+    assert built == 3000 and pairs == 2999
+    assert peak_mb < 900, peak_mb  # every pair listed took 2.4 GB here
+
+
+def test_a_full_disk_names_the_output_in_one_line(built, tmp_path, capsys):
+    import subprocess
+
+    from .test_store import _mount_tmpfs
+
+    mnt = tmp_path / "tiny"
+    if not _mount_tmpfs(mnt, "1m"):
+        pytest.skip("needs root and a tmpfs mount (CI runs as root)")
+    try:
+        (mnt / "filler").write_bytes(b"\0" * (1024 * 1024 - 8192))
+        out = mnt / "maps.csv"
+        code = main(["sql", "--store", str(built[2]), "--format", "csv", "--out", str(out),
+                     "SELECT *, repeat('x', 5000) AS pad FROM maps"])
+        err = capsys.readouterr().err.strip()
+        assert code == 1 and len(err.splitlines()) == 1 and str(out) in err and "Traceback" not in err, err
+    finally:
+        subprocess.run(["umount", "-l", str(mnt)], capture_output=True)
+
+
+def test_a_damaged_shard_is_rebuilt_by_the_next_features_run(built, tmp_path):
+    store = _copy(built, tmp_path)
+    before = mapstore.open(store).features("default").matrix()
+    shard = next((store / "features" / "default" / "shards").iterdir())
+    shard.write_bytes(shard.read_bytes()[: shard.stat().st_size // 2])
+    with pytest.raises(MapstoreError):
+        mapstore.open(store).features("default").matrix()
+    rep = mapstore.build_features(store, "default", grid="MNI152-3mm", progress=False, jobs=1)
+    assert rep.n_built == 4 and rep.n_problems == 0
+    np.testing.assert_array_equal(mapstore.open(store).features("default").matrix(), before)

@@ -22,6 +22,7 @@ import errno
 import hashlib
 import json
 import os
+import shutil
 import sys
 import time
 import uuid
@@ -37,7 +38,7 @@ import pyarrow.parquet as pq
 from .._params import positive_int, resolve_jobs
 from .._runner import run as run_units
 from .._version import __version__
-from ..errors import FeatureError, ParameterError, QueryError, StoreFull
+from ..errors import FeatureError, MapstoreError, ParameterError, QueryError, StoreFull
 from ..store import (
     FPROBLEMS_SCHEMA,
     ROWS_SCHEMA,
@@ -330,17 +331,28 @@ def build_features(
         spec = _set_spec(name, target, mk, settings, kinds, where, sketch_of(store_path, existing, mk.n_voxels),
                          os.path.abspath(subjects_dir) if subjects_dir is not None else None)
         old_rows = _previous_rows(store_path, name, existing, spec)
-        _write_set_files(set_dir, spec, mk, fresh=not existing)
-        kept, todo, dropped = _plan_rows(rows_sel, spec, old_rows, batch_n, set_dir, mk, target, settings)
-        built = _run_batches(todo, run, store_path, set_dir, name)
-        new_rows, problems = built.rows, coverage_problems + built.problems
-        rows_table, entry = write_tables(store_path, name, kept, built, problems, dropped, existing)
-        head.features[name] = dataclasses.replace(entry, n_rows=rows_table.num_rows, spec_id=spec["spec_id"],
-                                                  catalog=head.catalog)
-        if head.default_features is None or name == DEFAULT_SET:
-            head.default_features = name
-        commit_head(store_path, head, {"event": "features", "set": name, "built": len(new_rows),
-                                       "rows": rows_table.num_rows})
+        try:
+            _write_set_files(set_dir, spec, mk, fresh=not existing)
+            kept, todo, dropped = _plan_rows(rows_sel, spec, old_rows, batch_n, set_dir, mk, target, settings)
+            built = _run_batches(todo, run, store_path, set_dir, name)
+            new_rows, problems = built.rows, coverage_problems + built.problems
+            rows_table, entry = write_tables(store_path, name, kept, built, problems, dropped, existing)
+            head.features[name] = dataclasses.replace(entry, n_rows=rows_table.num_rows, spec_id=spec["spec_id"],
+                                                      catalog=head.catalog)
+            if head.default_features is None or name == DEFAULT_SET:
+                head.default_features = name
+            commit_head(store_path, head, {"event": "features", "set": name, "built": len(new_rows),
+                                           "rows": rows_table.num_rows})
+        except BaseException as exc:
+            try:
+                named = read_head(store_path).features.get(name) is not None
+            except MapstoreError:
+                named = True  # unsure what HEAD names: keep the files
+            if not existing and not named:
+                shutil.rmtree(set_dir, ignore_errors=True)  # a new set no HEAD names: nothing of it is kept
+            if isinstance(exc, OSError):
+                _raise_if_full(exc, store_path, [])
+            raise
         collect_feature_garbage(store_path, set_dir, entry.rows, existing.rows if existing else None)
 
     report = FeatureReport(name=name, n_features=mk.n_voxels, grid=target.name, mask=mk.name,
@@ -461,6 +473,10 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: dict[str, Any], old_rows: p
     # keyed by map too: byte-identical copies of a file share a feature key, not a row
     have = {mk_: i for i, mk_ in enumerate(zip(old_rows["map_id"].to_pylist(),
                                                old_rows["feature_key"].to_pylist()))}
+    # a row whose shard is damaged (missing, cut short, not a float32 .npy of the mask's width) is built again
+    sound = _sound_shards(set_dir, old_rows, mk.n_voxels)
+    shard_of, row_of = old_rows["shard"].to_pylist(), old_rows["row"].to_pylist()
+    have = {k: i for k, i in have.items() if sound.get(shard_of[i], 0) > row_of[i] >= 0}
     keep_idx = [have[(m, it.key)] for m, it in wanted.items() if (m, it.key) in have]
     todo = [it for m, it in wanted.items() if (m, it.key) not in have]
     kept = old_rows.take(pa.array(sorted(keep_idx), pa.int64())) if keep_idx else old_rows.slice(0, 0)
@@ -469,6 +485,26 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: dict[str, Any], old_rows: p
                      settings, sketch_seed=seed, sketch=spec.get("sketch", "count"))
                for ds, items, i in _per_dataset(todo, dataset_of, batch_n)]
     return kept, batches, old_rows.num_rows - kept.num_rows
+
+
+def _sound_shards(set_dir: Path, rows: pa.Table, n_voxels: int) -> dict[str, int]:
+    """Rows held by each sound shard the rows table names (a damaged shard is left out: its rows are
+    built again).  Only headers and sizes are read."""
+    import stat as stat_
+
+    out: dict[str, int] = {}
+    for name in set(rows["shard"].to_pylist()) if rows.num_rows else ():
+        f = set_dir / "shards" / str(name)
+        try:
+            if "/" in str(name) or not stat_.S_ISREG(os.stat(f).st_mode):
+                continue
+            arr = np.load(f, mmap_mode="r", allow_pickle=False)
+            if arr.dtype == np.float32 and arr.ndim == 2 and arr.shape[1] == n_voxels and \
+                    os.path.getsize(f) >= arr.offset + arr.nbytes:  # type: ignore[attr-defined]
+                out[str(name)] = arr.shape[0]
+        except (OSError, ValueError, EOFError):
+            continue
+    return out
 
 
 @dataclass

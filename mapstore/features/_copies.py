@@ -172,17 +172,21 @@ def find_copies(fs, map_ids: list[str] | None = None, *, floor: float = STORE_FL
         ids = [m for m, n in zip(ids, fs.n_values(ids)) if n >= MIN_COMMON]
     if len(ids) < 2:
         return COPIES_SCHEMA.empty_table()
-    sketches = fs.sketches(ids)
     hashes = fs.row_hashes(ids)
     out: dict[tuple[str, str], tuple[str, float, int]] = {}
-    by_hash: dict[str, list[int]] = {}
-    for i, h in enumerate(hashes):
-        by_hash.setdefault(h, []).append(i)
+    by_hash: dict[str, list[str]] = {}
+    for m, h in zip(ids, hashes):
+        by_hash.setdefault(h, []).append(m)
+    # identical rows: one star per group (its first map to each other), so k copies cost k - 1 pairs,
+    # not k^2 / 2; near-copies are looked for among one row per group
     for members in by_hash.values():
-        for x in range(len(members)):
-            for y in range(x + 1, len(members)):
-                a, b = sorted((ids[members[x]], ids[members[y]]))
-                out[(a, b)] = ("identical", 1.0, fs.n_voxels)
+        first, *rest = sorted(members)
+        for m in rest:
+            out[(first, m)] = ("identical", 1.0, fs.n_voxels)
+    ids = [min(members) for members in by_hash.values()]
+    if len(ids) < 2:
+        return _copies_table(out)
+    sketches = fs.sketches(ids)
     pairs = _candidates(sketches)
     if len(pairs):
         est = np.concatenate([np.abs(_estimate(sketches[p[:, 0]], sketches[p[:, 1]]))
@@ -201,5 +205,9 @@ def find_copies(fs, map_ids: list[str] | None = None, *, floor: float = STORE_FL
             r, n = pair_correlation(rows[where[int(i)]], rows[where[int(j)]])
             if n >= MIN_COMMON and np.isfinite(r) and abs(r) >= floor:
                 out[(a, b)] = ("near", r, n)
+    return _copies_table(out)
+
+
+def _copies_table(out: dict[tuple[str, str], tuple[str, float, int]]) -> pa.Table:
     rows_out = [{"map_a": a, "map_b": b, "kind": k, "r": r, "n_common": n} for (a, b), (k, r, n) in sorted(out.items())]
     return pa.Table.from_pylist(rows_out, schema=COPIES_SCHEMA)

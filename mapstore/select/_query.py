@@ -105,14 +105,43 @@ def fold_vector(splits, n: int) -> np.ndarray:
     return fold
 
 
+def copy_groups(n: int, copies: list[tuple[int, int, str, float]]) -> list[tuple[np.ndarray, str, float]]:
+    """Groups of positions joined by copy pairs (connected components, linear in the pairs): each group's
+    members, ``identical`` when every pair in it is, and its strongest |r|."""
+    parent = list(range(n))
+
+    def find(x: int) -> int:
+        while parent[x] != x:
+            parent[x] = parent[parent[x]]
+            x = parent[x]
+        return x
+
+    for a, b, _, _ in copies:
+        parent[find(a)] = find(b)
+    kind: dict[int, str] = {}
+    strength: dict[int, float] = {}
+    for a, _, k, r in copies:
+        root = find(a)
+        kind[root] = "identical" if kind.get(root, "identical") == "identical" and k == "identical" else "near"
+        strength[root] = r if abs(r) >= abs(strength.get(root, 0.0)) else strength[root]
+    members: dict[int, list[int]] = {}
+    for x in range(n):
+        root = find(x)
+        if root in kind:
+            members.setdefault(root, []).append(x)
+    return [(np.array(m), kind[root], strength[root]) for root, m in members.items()]
+
+
 def check_leakage(splits, participants: np.ndarray, sha256: np.ndarray, map_ids: np.ndarray,
                   allow_leak: bool = False, copies: list[tuple[int, int, str, float]] | None = None) -> list[str]:
     """Refuse splits that put one participant, one identical file or two copies of a map on both sides.
 
     ``copies`` are (i, j, kind, r) pairs of positions whose feature rows are identical or
-    near-copies (see :mod:`mapstore.copies`).
+    near-copies (see :mod:`mapstore.copies`); maps joined by them form a group, and a group with
+    members on both sides of a split leaks (copies need not be listed pair by pair: a star is enough).
     """
     problems: list[str] = []
+    groups = copy_groups(len(map_ids), copies or [])
     for i, (tr, te) in enumerate(splits):
         for what, col in (("subject", participants), ("identical map (sha256)", sha256)):
             tr_set = {v for v in col[tr] if v is not None}
@@ -121,14 +150,16 @@ def check_leakage(splits, participants: np.ndarray, sha256: np.ndarray, map_ids:
                 ids = [str(map_ids[j]) for j in te if col[j] in both][:5]
                 problems.append(f"split {i}: {len(both)} {what}(s) on both sides, e.g. {both[0]} "
                                 f"(test map ids {', '.join(ids)})")
-        if copies:
+        if groups:
             side = np.zeros(len(map_ids), dtype=np.int8)
             side[tr], side[te] = 1, 2
-            across = [(a, b, k, r) for a, b, k, r in copies if {side[a], side[b]} == {1, 2}]
+            across = [(members, k, r) for members, k, r in groups if {1, 2} <= set(side[members].tolist())]
             if across:
-                a, b, k, r = max(across, key=lambda c: abs(c[3]))
+                members, k, r = max(across, key=lambda g: abs(g[2]))
+                a = members[side[members] == 1][0]
+                b = members[side[members] == 2][0]
                 what = "identical feature rows" if k == "identical" else f"near-copies (r = {r:+.3f})"
-                problems.append(f"split {i}: {len(across)} pair(s) of copies on both sides, e.g. {map_ids[a]} and "
+                problems.append(f"split {i}: {len(across)} group(s) of copies on both sides, e.g. {map_ids[a]} and "
                                 f"{map_ids[b]}: {what}")
     if problems and not allow_leak:
         raise LeakageError("the split leaks:\n  " + "\n  ".join(problems[:10]) +
@@ -298,12 +329,17 @@ class Selection:
         table = self.feature_set.copies() if thr >= STORE_FLOOR else None
         if table is None:  # no stored pairs, or a threshold below the stored pairs' floor
             table = find_copies(self.feature_set, ids, floor=thr)
+        # groups over every stored pair (two selected maps may be joined through one that is not
+        # selected), then each group's selected maps as a star from its first
+        kept = [r for r in table.to_pylist() if r["kind"] == "identical" or abs(r["r"]) >= thr]
+        names = sorted({x for r in kept for x in (r["map_a"], r["map_b"])})
+        at = {m: i for i, m in enumerate(names)}
         pos = {m: i for i, m in enumerate(ids)}
         out = []
-        for r in table.to_pylist():
-            a, b = pos.get(r["map_a"]), pos.get(r["map_b"])
-            if a is not None and b is not None and (r["kind"] == "identical" or abs(r["r"]) >= thr):
-                out.append((a, b, r["kind"], r["r"]))
+        for members, kind, r in copy_groups(len(names), [(at[c["map_a"]], at[c["map_b"]], c["kind"], c["r"])
+                                                         for c in kept]):
+            chosen = sorted(pos[names[k]] for k in members if names[k] in pos)
+            out += [(chosen[0], j, kind, r) for j in chosen[1:]]
         return out
 
     def folds(self, scheme: str = "leave-one-group-out", seed: int = 0, allow_leak: bool = False,

@@ -130,7 +130,7 @@ def ensure_store(path: str | os.PathLike[str]) -> Path:
     if p.is_dir() and not marker.exists():
         # another run creating the store at this moment (or one killed before its marker was in place)
         # leaves only temporary markers: they do not make the folder foreign, and are not ours to delete
-        if any(not _TMP_MARKER.match(e.name) for e in p.iterdir()):
+        if any(not _TMP_MARKER.match(e.name) for e in p.iterdir()) and not marker.exists():
             raise StoreCorrupt(f"{p}: folder exists, is not empty and is not a mapstore store; "
                                "choose an empty or new folder for --store")
     try:
