@@ -335,13 +335,15 @@ def test_a_damaged_store_file_is_a_message_never_a_traceback(built, tmp_path, da
 
 
 _IDENTICAL_RUN = """
-import resource, sys
+import sys
 import mapstore
 store = sys.argv[2]
 mapstore.index([sys.argv[1]], store, progress=False, jobs=1)
 rep = mapstore.build_features(store, "flat", grid=sys.argv[3], mask="intersection", progress=False, jobs=1)
 n = mapstore.open(store).sql("SELECT count(*) AS n FROM feature_copies")["n"][0].as_py()
-print(rep.n_built, n, resource.getrusage(resource.RUSAGE_SELF).ru_maxrss // 1024)
+# VmHWM: this process image's peak (ru_maxrss would carry the forking parent's peak across exec)
+peak = next(int(line.split()[1]) for line in open("/proc/self/status") if line.startswith("VmHWM:"))
+print(rep.n_built, n, peak // 1024)
 """
 
 
