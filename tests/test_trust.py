@@ -400,3 +400,14 @@ def test_a_damaged_shard_is_rebuilt_by_the_next_features_run(built, tmp_path):
     rep = mapstore.build_features(store, "default", grid="MNI152-3mm", progress=False, jobs=1)
     assert rep.n_built == 4 and rep.n_problems == 0
     np.testing.assert_array_equal(mapstore.open(store).features("default").matrix(), before)
+
+
+def test_index_repairs_a_damaged_catalog_part(built, tmp_path):
+    store = _copy(built, tmp_path)
+    head = json.loads((store / "HEAD").read_text())
+    part = json.loads((store / head["catalog"] / "parts.json").read_text())["parts"][0]["maps"]
+    (store / part).write_bytes(b"garbage")
+    with pytest.raises(StoreCorrupt, match="damaged"):
+        mapstore.open(store).sql("SELECT count(*) FROM maps")
+    mapstore.index([built[1]], store, progress=False, jobs=1)
+    assert mapstore.open(store).sql("SELECT count(*) AS n FROM maps")["n"][0].as_py() == 4

@@ -701,9 +701,19 @@ def link_hemispheres(relpaths: list[str], hemis: list[str | None], map_ids: list
 
 
 def _part_files_exist(unit: _Unit) -> bool:
-    """The previous part can be kept only if its files are still there (someone may have deleted them)."""
+    """The previous part can be kept only if its files are still there and sound (someone may have deleted
+    or damaged them: a damaged part is written again, which is how ``index`` repairs a catalog)."""
     part = unit.prev_part
-    return all(os.path.isfile(os.path.join(unit.store, f)) for f in (part.maps, part.problems) if f)
+    for f in (part.maps, part.problems):
+        if not f:
+            continue
+        path = os.path.join(unit.store, f)
+        try:
+            if not os.path.isfile(path) or pq.ParquetFile(path).metadata.num_rows < 0:
+                return False
+        except (OSError, pa.ArrowException):
+            return False
+    return True
 
 
 def _part_name(unit: _Unit) -> str:
