@@ -14,7 +14,7 @@ from .errors import MapstoreError
 from .select import ExportReport, VerifyReport, verify
 from .features import FeatureReport, FeatureSet, build_features
 from .labels import LabelReport, label_store as label, load_vocabulary
-from .select import Selection
+from .select import Selection, align_columns, check_folds
 from .formats import HeaderFacts, read_header
 
 _LAZY = ("build_parcels", "fit_parcellation", "ParcelReducer")
@@ -31,6 +31,8 @@ def __getattr__(name: str):
 
 __all__ = [
     "__version__",
+    "align_columns",
+    "check_folds",
     "build_features",
     "build_parcels",
     "ExportReport",

@@ -115,7 +115,8 @@ class Store:
     def select(self, where: str | None = None, *, concepts: list[str] | None = None,
                task: list[str] | None = None, stat: list[str] | None = None, features: str | None = None,
                min_coverage: float | None = None, target: str = "contrast", group_by: str = "study",
-               with_broader: bool = False, missing: str = "common", min_voxels: int | None = None) -> Selection:
+               with_broader: bool = False, missing: str = "common", min_voxels: int | None = None,
+               one_stat: bool = True, per_subject: str = "contrast") -> Selection:
         """Choose maps for a decoder: returns a :class:`~mapstore.query.Selection`.
 
         Parameters
@@ -130,9 +131,13 @@ class Store:
             Feature set name (default: the store's default set).
         min_coverage : float, optional
             Drop maps covering less than this fraction of the mask (reported in ``dropped``).
-        target : {"contrast", "concept", "concepts"} or a maps column, default="contrast"
-            ``concept``: one concept per map (``y``); ``concepts``: multi-label ``Y``.
-        group_by : {"study", "site", "lab", "subject", "dataset"}, default="study"
+        target : {"contrast", "study-contrast", "concept", "concepts"} or a column, default="contrast"
+            ``study-contrast``: each study's contrast names kept apart (``study/contrast``);
+            ``concept``: one concept per map (``y``); ``concepts``: multi-label ``Y``; a maps or
+            participants column (a numeric one, such as ``age``, stays numeric).
+        group_by : str, default="study"
+            ``study``, ``site``, ``lab``, ``subject``, ``dataset``, any maps or participants column,
+            or ``metadata:KEY`` (a sidecar field, e.g. ``metadata:ManufacturersModelName``).
         with_broader : bool, default=False
             Count inherited broader concepts as labels too.
         missing : {"common", "zero", "keep"}, default="common"
@@ -143,6 +148,13 @@ class Store:
         min_voxels : int, optional
             With ``common``, refuse (naming the maps covering least) when fewer voxels remain;
             default 1% of the mask.
+        one_stat : bool, default=True
+            Keep one stat per subject and contrast: z, else t, F, p, effect, variance (a study that
+            ships t and z maps of the same contrast would otherwise count twice).
+        per_subject : {"contrast", "one", "map"}, default="contrast"
+            ``contrast``: one map per subject, task and contrast (the subject-level map where the
+            writer left one, else the first session and run); ``one``: one map per subject (for a
+            participant target); ``map``: every map.  What went is counted in ``dropped``.
 
         Examples
         --------
@@ -152,15 +164,20 @@ class Store:
         """
         return select(self, where, concepts=concepts, task=task, stat=stat, features=features,
                       min_coverage=min_coverage, target=target, group_by=group_by, with_broader=with_broader,
-                      missing=missing, min_voxels=min_voxels)
+                      missing=missing, min_voxels=min_voxels, one_stat=one_stat, per_subject=per_subject)
 
     def export(self, out, selection: Selection | None = None, *, scheme: str = "leave-one-group-out",
                seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False,
-               near_copy_r: float | None = None, **select_options) -> ExportReport:
-        """Export a selection (made from ``select_options`` if not given) with its manifest."""
+               near_copy_r: float | None = None, allow_unseen: bool = False,
+               participant_columns: list[str] | None = None, **select_options) -> ExportReport:
+        """Export a selection (made from ``select_options`` if not given) with its manifest.
+
+        ``participant_columns`` (personal data: none by default) adds those participants.tsv
+        columns to ``meta.parquet``; the manifest lists them."""
         sel = selection if selection is not None else self.select(**select_options)
         return export_selection(sel, out, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt,
-                                overwrite=overwrite, near_copy_r=near_copy_r)
+                                overwrite=overwrite, near_copy_r=near_copy_r, allow_unseen=allow_unseen,
+                                participant_columns=participant_columns)
 
     def check(self, features: str | None = None, *, min_coverage: float = 0.8,
               pictures: bool = True, min_agreement: float = 0.2) -> CheckReport:

@@ -278,14 +278,25 @@ def labels_cmd(store, vocab, inherit) -> None:
 @click.option("--features", "feature_set", help="Feature set name (default: the default set).")
 @click.option("--min-coverage", type=click.FloatRange(0, 1), help="Drop maps covering less of the mask.")
 @click.option("--target", default=None,
-              help="contrast (default without labels options), concept (one per map), concepts "
-                   "(multi-label), or a maps column.")
-@click.option("--group-by", type=click.Choice(["study", "site", "lab", "subject", "dataset"]), default="study",
-              show_default=True)
+              help="contrast (default without labels options), study-contrast (each study's names apart), "
+                   "concept (one per map), concepts (multi-label), or a maps or participants column.")
+@click.option("--group-by", default="study", show_default=True,
+              help="study, site, lab, subject, dataset, a maps or participants column, or metadata:KEY "
+                   "(a sidecar field, e.g. metadata:ManufacturersModelName).")
 @click.option("--scheme", default="leave-one-group-out", show_default=True,
-              help="leave-one-group-out | group-kfold:K | holdout:FRACTION")
+              help="leave-one-group-out | group-kfold:K | stratified-group-kfold:K | within-study-group-kfold:K "
+                   "| holdout:FRACTION")
 @click.option("--seed", type=int, default=0, show_default=True)
 @click.option("--allow-leak", is_flag=True, help="Accept a split that leaks (with a warning).")
+@click.option("--participant-column", "participant_columns", multiple=True,
+              help="Add this participants.tsv column to meta.parquet (repeatable; personal data: none by default).")
+@click.option("--one-stat/--every-stat", default=True, show_default=True,
+              help="One stat per subject and contrast (z, else t, F, p, effect, variance), or every stat.")
+@click.option("--per-subject", type=click.Choice(["contrast", "one", "map"]), default="contrast", show_default=True,
+              help="One map per subject and contrast (subject-level map, else first session and run), one per "
+                   "subject, or every map.")
+@click.option("--allow-unseen", is_flag=True, help="Accept test classes training never saw (recorded in the "
+              "manifest).")
 @click.option("--near-copy-r", type=click.FloatRange(0, 1, min_open=True), default=None,
               help="Refuse maps on both sides whose rows correlate at least this much (default 0.9).")
 @click.option("--with-broader", is_flag=True, help="Count inherited broader concepts as labels.")
@@ -297,16 +308,22 @@ def labels_cmd(store, vocab, inherit) -> None:
 @click.option("--format", "fmt", type=click.Choice(["npy", "parquet"]), default="npy", show_default=True)
 @click.option("--overwrite", is_flag=True, help="Replace an existing export folder.")
 def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_coverage, target, group_by, scheme,
-               seed, allow_leak, near_copy_r, with_broader, missing, min_voxels, fmt, overwrite) -> None:
+               seed, allow_leak, participant_columns, one_stat, per_subject, allow_unseen, near_copy_r, with_broader,
+               missing, min_voxels, fmt, overwrite) -> None:
     """Export X, y, groups, splits and metadata of a selection, with a manifest."""
     st = open_store(store)
     if target is None:
         target = "concept" if concepts else "contrast"
     sel = st.select(where, concepts=list(concepts) or None, task=list(tasks) or None, stat=list(stats) or None,
                     features=feature_set, min_coverage=min_coverage, target=target, group_by=group_by,
-                    with_broader=with_broader, missing=missing, min_voxels=min_voxels)
+                    with_broader=with_broader, missing=missing, min_voxels=min_voxels, one_stat=one_stat,
+                    per_subject=per_subject)
     report = st.export(out, sel, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt, overwrite=overwrite,
-                       near_copy_r=near_copy_r)
+                       near_copy_r=near_copy_r, allow_unseen=allow_unseen,
+                       participant_columns=list(participant_columns) or None)
+    if participant_columns:
+        click.echo(f"note: meta.parquet holds participant columns ({', '.join(participant_columns)}): personal "
+                   "data under the studies' ethics approval", err=True)
     click.echo(report.summary())
 
 

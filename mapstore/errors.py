@@ -18,6 +18,7 @@ __all__ = [
     "NoCatalog",
     "StoreBusy",
     "StoreCorrupt",
+    "UnseenClassError",
     "StoreUnwritable",
     "StaleSnapshot",
     "StoreClosed",
@@ -139,6 +140,10 @@ class FeatureError(MapstoreError, ValueError):
 
 class ConversionError(MapstoreError, ValueError):
     """A statistic could not be converted (for example t to z without degrees of freedom)."""
+
+
+class UnseenClassError(MapstoreError, ValueError):
+    """A split's test side holds a class its training side never saw (no model can score it)."""
 
 
 class LeakageError(MapstoreError, ValueError):

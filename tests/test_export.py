@@ -135,7 +135,10 @@ def test_export_refuses_to_overwrite_and_parquet_format(labelled_store, tmp_path
     st = mapstore.open(labelled_store)
     sel = st.select(stat=["z"])
     out = tmp_path / "p"
-    st.export(out, sel, scheme="holdout:0.3", fmt="parquet")
+    # each study's own contrast names: a held-out study's are unseen in training, accepted and recorded
+    with pytest.warns(UserWarning, match="unseen test classes"):
+        st.export(out, sel, scheme="holdout:0.3", fmt="parquet", allow_unseen=True)
+    assert json.loads((out / "manifest.json").read_text())["unseen"]
     t = pq.read_table(out / "table.parquet")
     assert t.num_rows == len(sel) and set(t.column("y").to_pylist()) == set(sel.y)
     x0 = np.asarray(t.column("x")[0].values)
@@ -178,7 +181,7 @@ def test_origins_mapping_one_person_in_two_studies_is_a_leak(demo_tree, tmp_path
     with pytest.raises(LeakageError, match="glowtrack/sub-02"):
         sel.splits("leave-one-group-out")
     with pytest.warns(UserWarning):
-        rep = st.export(tmp_path / "out", sel, allow_leak=True)
+        rep = st.export(tmp_path / "out", sel, allow_leak=True, allow_unseen=True)
     assert rep.leaks and json.loads((tmp_path / "out" / "manifest.json").read_text())["allow_leak"]
 
 

@@ -328,10 +328,12 @@ def test_surface_selection_export_and_leakage_guard(pooled, tmp_path):
     assert sel.X.shape == (len(sel), s.features("fsaverage5-cortex-native").n_voxels)
     img = sel.to_image(sel.X[0])
     assert img.shape == (2 * N5,)
-    splits = sel.splits("leave-one-group-out")
+    with pytest.warns(UserWarning, match="unseen test classes"):  # each study's own contrast names
+        splits = sel.splits("leave-one-group-out", allow_unseen=True)
     for train, test in splits:
         assert not set(sel.meta["participant"].iloc[train]) & set(sel.meta["participant"].iloc[test])
-    rep = s.export(tmp_path / "out", sel)
+    with pytest.warns(UserWarning, match="unseen test classes"):
+        rep = s.export(tmp_path / "out", sel, allow_unseen=True)
     from mapstore.select._export import verify
 
     assert verify(Path(rep.out) / "manifest.json").ok

@@ -3,10 +3,15 @@
 from __future__ import annotations
 
 from ._export import ExportReport, VerifyReport, export_selection, json_schemas, verify
-from ._query import Selection, select
+from ._query import SCHEMES, Selection, align_columns, check_classes, check_folds, check_leakage, select
 
 
 __all__ = [
+    "align_columns",
+    "check_classes",
+    "check_folds",
+    "check_leakage",
+    "SCHEMES",
     "json_schemas",
     "export_selection",
     "ExportReport",

@@ -80,21 +80,28 @@ def _row_hash(row: np.ndarray) -> str:
 
 def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str = "leave-one-group-out",
                      seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False,
-                     near_copy_r: float | None = None) -> ExportReport:
-    """Write a selection to ``out`` with its manifest (see the module docstring)."""
+                     near_copy_r: float | None = None, allow_unseen: bool = False,
+                     participant_columns: list[str] | None = None) -> ExportReport:
+    """Write a selection to ``out`` with its manifest (see the module docstring).
+
+    ``participant_columns`` adds those columns of participants.tsv (age, sex, ...) to ``meta``:
+    personal data, under the ethics approval of the studies that collected it, so none go out
+    unless named; the manifest lists the ones that did.
+    """
     t0 = time.perf_counter()
     if fmt not in ("npy", "parquet"):
         raise ParameterError(f"fmt must be 'npy' or 'parquet', got {fmt!r}")
     kind, _ = parse_scheme(scheme)
     out = _check_out(sel, out, overwrite)
-    splits, leaks = _splits(sel, scheme, seed, allow_leak, near_copy_r)
+    personal = _participant_columns(sel, participant_columns)
+    splits, leaks, unseen = _splits(sel, scheme, seed, allow_leak, near_copy_r, allow_unseen)
     out.parent.mkdir(parents=True, exist_ok=True)
     tmp = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.tmp"
     tmp.mkdir()
     checkpoint()
     try:
         fs = sel.feature_set
-        meta_t = _meta_table(sel, fold_vector(splits, len(sel)), kind)
+        meta_t = _meta_table(sel, fold_vector(splits, len(sel)), kind, personal)
         rows = _Rows(sel)
         checkpoint()
         if fmt == "npy":
@@ -108,6 +115,8 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         checkpoint()
         manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, rows.row_hashes, rows.x_hashes, fmt)
         manifest["near_copy_r"] = NEAR_COPY_R if near_copy_r is None else near_copy_r
+        manifest["allow_unseen"], manifest["unseen"] = allow_unseen, unseen
+        manifest["personal_data"] = {"columns": personal, "note": PERSONAL_NOTE if personal else None}
         # the data files are checked row by row against row_sha256 instead of hashed whole
         manifest["files"] = {p.name: sha256_file(str(p)) for p in sorted(tmp.iterdir())
                              if p.name not in DATA_FILES}
@@ -132,20 +141,42 @@ def _check_out(sel: Selection, out: str | os.PathLike[str], overwrite: bool) -> 
     return out
 
 
-def _splits(sel: Selection, scheme: str, seed: int, allow_leak: bool, near_copy_r: float | None):
-    """The splits, and the leaks accepted with ``allow_leak`` (recorded in the manifest, still warned)."""
+def _splits(sel: Selection, scheme: str, seed: int, allow_leak: bool, near_copy_r: float | None,
+            allow_unseen: bool = False):
+    """The splits, and the leaks and unseen test classes accepted with ``allow_leak`` / ``allow_unseen``
+    (recorded in the manifest, still warned)."""
     import warnings
 
     with warnings.catch_warnings(record=True) as caught:
         warnings.simplefilter("always")
-        splits = sel.splits(scheme, seed, allow_leak, near_copy_r)
+        splits = sel.splits(scheme, seed, allow_leak, near_copy_r, allow_unseen=allow_unseen)
     leaks = [str(w.message) for w in caught if "leaky split" in str(w.message)]
+    unseen = [str(w.message) for w in caught if "unseen test classes" in str(w.message)]
     for w in caught:
         warnings.warn(w.message, w.category, stacklevel=3)
-    return splits, leaks
+    return splits, leaks, unseen
 
 
-def _meta_table(sel: Selection, fold: np.ndarray, kind: str) -> pa.Table:
+PERSONAL_NOTE = ("participant metadata is personal data under the ethics approval of the studies that collected it: "
+                 "keep this export where that approval allows")
+
+
+def _participant_columns(sel: Selection, names: list[str] | None) -> list[str]:
+    """The participants columns a user asked to export (named one by one), checked against the selection."""
+    if not names:
+        return []
+    if isinstance(names, str):
+        names = [names]
+    known = set(sel.store.sql("DESCRIBE participants")["column_name"].to_pylist()) - {
+        "dataset", "participant_id", "sub", "participant"}
+    unknown = [n for n in names if n not in known or n not in sel.meta.columns]
+    if unknown:
+        raise ParameterError(f"participant column(s) {unknown} are not in participants.tsv of the selected "
+                             f"studies; they have: {sorted(known) or 'none'}")
+    return list(dict.fromkeys(names))
+
+
+def _meta_table(sel: Selection, fold: np.ndarray, kind: str, personal: list[str] | None = None) -> pa.Table:
     meta = sel.meta.copy()
     meta["row"] = np.arange(len(sel))
     meta["group"] = sel.groups
@@ -155,6 +186,10 @@ def _meta_table(sel: Selection, fold: np.ndarray, kind: str) -> pa.Table:
     keep_cols = [c for c in ("row", "map_id", "dataset", "study", "site", "lab", "participant", "sub", "ses",
                              "run", "task", "contrast", "stat", "space", "concepts", "group", "fold", "split",
                              "coverage", "sha256", "feature_key", "conversion", "relpath") if c in meta.columns]
+    keep_cols += [c for c in personal or [] if c not in keep_cols]
+    if sel.y is not None:
+        meta["y"] = _y_array(sel.y)
+        keep_cols.append("y")
     return pa.Table.from_pandas(meta[keep_cols], preserve_index=False)
 
 
@@ -210,7 +245,7 @@ def _write_npy(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None
             buf, spare = spare, buf
     checkpoint()
     if sel.y is not None:
-        np.save(tmp / "y.npy", np.asarray(sel.y, dtype=str))
+        np.save(tmp / "y.npy", _y_array(sel.y))
         checkpoint()
     if sel.Y is not None:
         np.save(tmp / "Y.npy", sel.Y)
@@ -221,6 +256,12 @@ def _write_npy(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None
     checkpoint()
 
 
+def _y_array(y: np.ndarray) -> np.ndarray:
+    """Targets as written: numbers stay float64 (a regression target), class names are text."""
+    y = np.asarray(y)
+    return y.astype(np.float64) if y.dtype.kind in "biuf" else y.astype(str)
+
+
 def _write_parquet(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None:
     """One table.parquet: meta columns, y / Y, and x as a fixed-size list per row."""
     buf = rows.buffer()
@@ -229,8 +270,7 @@ def _write_parquet(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> 
         for i in range(0, len(rows.ids), BLOCK_ROWS):
             block = rows.shape(sel.read_rows(i, buf))
             part = meta_t.slice(i, len(block))
-            if sel.y is not None:
-                part = part.append_column("y", pa.array(np.asarray(sel.y[i:i + len(block)], dtype=str)))
+            # y is a column of meta already
             if sel.Y is not None:  # multi-label indicators, columns as in concepts.json
                 ind = np.ascontiguousarray(sel.Y[i:i + len(block)], dtype=np.uint8).reshape(-1)
                 part = part.append_column("Y", pa.FixedSizeListArray.from_arrays(
@@ -474,6 +514,9 @@ def json_schemas() -> dict[str, dict[str, Any]]:
             "scheme": {"type": "string"},
             "seed": {"type": "integer"},
             "allow_leak": {"type": "boolean"},
+            "allow_unseen": {"type": "boolean"},
+            "unseen": {"type": "array", "items": {"type": "string"}},
+            "personal_data": {"type": "object", "properties": {"columns": {"type": "array", "items": {"type": "string"}}, "note": {"type": ["string", "null"]}}},
             "leaks": {"type": "array", "items": {"type": "string"}},
             "splits": {"type": "array"},
             "shape": {"type": "array", "items": {"type": "integer"}, "minItems": 2, "maxItems": 2},

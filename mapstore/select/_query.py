@@ -8,28 +8,40 @@ into scikit-learn's ``cv=`` unchanged.
 
 from __future__ import annotations
 
+import dataclasses
 import warnings
 from dataclasses import dataclass, field
 from typing import Any
 
 import numpy as np
 
-from ..errors import LeakageError, ParameterError, QueryError
+from ..errors import LeakageError, ParameterError, QueryError, UnseenClassError
 from ..features import NEAR_COPY_R, STORE_FLOOR, find_copies
 from ..labels import load_vocabulary
 
-__all__ = ["Selection", "select", "parse_scheme", "GROUP_COLUMNS", "assign_folds", "MISSING_POLICIES"]
+__all__ = ["Selection", "select", "parse_scheme", "GROUP_COLUMNS", "assign_folds", "MISSING_POLICIES",
+           "check_classes", "check_leakage", "check_folds", "align_columns", "SCHEMES"]
 
 # what X does with voxels some selected map has no value for (NaN in the feature set)
 MISSING_POLICIES = ("common", "zero", "keep")
 
 GROUP_COLUMNS = {"study": "study", "site": "site", "lab": "lab", "subject": "participant",
                  "participant": "participant", "dataset": "dataset"}
-_TARGET_KINDS = ("contrast", "concept", "concepts")
+_TARGET_KINDS = ("contrast", "study-contrast", "concept", "concepts")
+
+
+_KFOLD_KINDS = ("group-kfold", "stratified-group-kfold", "within-study-group-kfold")
+SCHEMES = ("leave-one-group-out", "group-kfold:K", "stratified-group-kfold:K", "within-study-group-kfold:K",
+           "holdout:FRACTION")
 
 
 def parse_scheme(scheme: str) -> tuple[str, float | int | None]:
-    """``leave-one-group-out``, ``group-kfold:K`` or ``holdout:FRACTION`` -> (kind, parameter).
+    """A split scheme's name -> (kind, parameter).
+
+    ``leave-one-group-out``; ``group-kfold:K`` (K folds of whole groups); ``stratified-group-kfold:K``
+    (whole groups, class shares kept as far as the groups allow); ``within-study-group-kfold:K``
+    (every study's groups, e.g. its subjects, dealt into K folds within that study, so each fold
+    holds out part of every study); ``holdout:FRACTION``.
 
     Examples
     --------
@@ -43,13 +55,13 @@ def parse_scheme(scheme: str) -> tuple[str, float | int | None]:
     if scheme in ("leave-one-group-out", "logo"):
         return "leave-one-group-out", None
     kind, _, arg = scheme.partition(":")
-    if kind == "group-kfold":
+    if kind in _KFOLD_KINDS:
         try:
             k = int(arg)
         except ValueError:
             k = 0
         if k < 2:
-            raise ParameterError(f"scheme {scheme!r}: group-kfold needs K >= 2, e.g. group-kfold:5")
+            raise ParameterError(f"scheme {scheme!r}: {kind} needs K >= 2, e.g. {kind}:5")
         return kind, k
     if kind == "holdout":
         try:
@@ -59,14 +71,18 @@ def parse_scheme(scheme: str) -> tuple[str, float | int | None]:
         if not 0 < f < 1:
             raise ParameterError(f"scheme {scheme!r}: holdout needs a test fraction in (0, 1), e.g. holdout:0.2")
         return kind, f
-    raise ParameterError(f"unknown scheme {scheme!r}; use leave-one-group-out, group-kfold:K or holdout:FRACTION")
+    raise ParameterError(f"unknown scheme {scheme!r}; use one of {', '.join(SCHEMES)}")
 
 
-def assign_folds(groups: np.ndarray, scheme: str, seed: int = 0) -> list[tuple[np.ndarray, np.ndarray]]:
+def assign_folds(groups: np.ndarray, scheme: str, seed: int = 0, y: np.ndarray | None = None,
+                 studies: np.ndarray | None = None) -> list[tuple[np.ndarray, np.ndarray]]:
     """Train/test index pairs for ``groups`` under a scheme, as scikit-learn's splitters make them.
 
-    ``leave-one-group-out`` is ``LeaveOneGroupOut``, ``group-kfold:K`` is ``GroupKFold(K)``
-    and ``holdout:F`` is ``GroupShuffleSplit(n_splits=1, test_size=F, random_state=seed)``.
+    ``leave-one-group-out`` is ``LeaveOneGroupOut``, ``group-kfold:K`` is ``GroupKFold(K)``,
+    ``stratified-group-kfold:K`` is ``StratifiedGroupKFold(K, shuffle=True, random_state=seed)`` on
+    ``y``, ``within-study-group-kfold:K`` is ``GroupKFold(K)`` run within each study of ``studies``
+    (fold k's test side joins every study's k-th fold), and ``holdout:F`` is
+    ``GroupShuffleSplit(n_splits=1, test_size=F, random_state=seed)``.
 
     Examples
     --------
@@ -75,12 +91,25 @@ def assign_folds(groups: np.ndarray, scheme: str, seed: int = 0) -> list[tuple[n
     [[0, 1], [2], [3]]
     """
     # imported here: scikit-learn takes ~0.5 s to import, and only splitting needs it
-    from sklearn.model_selection import GroupKFold, GroupShuffleSplit, LeaveOneGroupOut
+    from sklearn.model_selection import GroupKFold, GroupShuffleSplit, LeaveOneGroupOut, StratifiedGroupKFold
 
     kind, arg = parse_scheme(scheme)
     groups = np.asarray(groups)
     n_groups = len(np.unique(groups))
     dummy = np.zeros((len(groups), 1))
+    if kind == "within-study-group-kfold":
+        if studies is None:
+            raise ParameterError("within-study-group-kfold needs each map's study")
+        return _within_studies(groups, np.asarray(studies), int(arg))  # type: ignore[arg-type]
+    if kind == "stratified-group-kfold":
+        if y is None or np.asarray(y).ndim != 1:
+            raise ParameterError("stratified-group-kfold needs one class per map (target 'contrast', 'concept', "
+                                 "'study-contrast' or a column); a multi-label target has no single class")
+        if arg > n_groups:
+            raise ParameterError(f"stratified-group-kfold:{arg} needs at least {arg} groups, the selection has "
+                                 f"{n_groups}")
+        sgk = StratifiedGroupKFold(n_splits=int(arg), shuffle=True, random_state=seed)  # type: ignore[arg-type]
+        return [(np.asarray(tr), np.asarray(te)) for tr, te in sgk.split(dummy, np.asarray(y, dtype=str), groups)]
     if kind == "leave-one-group-out":
         if n_groups < 2:
             raise ParameterError(f"leave-one-group-out needs at least 2 groups, the selection has {n_groups}")
@@ -95,6 +124,70 @@ def assign_folds(groups: np.ndarray, scheme: str, seed: int = 0) -> list[tuple[n
             raise ParameterError(f"holdout needs at least 2 groups, the selection has {n_groups}")
         splitter = GroupShuffleSplit(n_splits=1, test_size=arg, random_state=seed)
     return [(np.asarray(tr), np.asarray(te)) for tr, te in splitter.split(dummy, groups=groups)]
+
+
+def _within_studies(groups: np.ndarray, studies: np.ndarray, k: int) -> list[tuple[np.ndarray, np.ndarray]]:
+    """K folds whose test sides hold part of every study: GroupKFold(K) within each study, fold by fold."""
+    from sklearn.model_selection import GroupKFold
+
+    test: list[list[np.ndarray]] = [[] for _ in range(k)]
+    for study in np.unique(studies.astype(str)):
+        idx = np.flatnonzero(studies.astype(str) == study)
+        g = groups[idx]
+        if len(np.unique(g)) < k:
+            raise ParameterError(f"within-study-group-kfold:{k}: study {study!r} has {len(np.unique(g))} group(s); "
+                                 f"each study needs at least {k} (use a smaller K, or leave that study out)")
+        for f, (_, te) in enumerate(GroupKFold(n_splits=k).split(np.zeros((len(idx), 1)), groups=g)):
+            test[f].append(idx[te])
+    out = []
+    for parts in test:
+        te = np.sort(np.concatenate(parts))
+        out.append((np.setdiff1d(np.arange(len(groups)), te), te))
+    return out
+
+
+def check_classes(splits, y: np.ndarray | None = None, Y: np.ndarray | None = None,
+                  concepts: list[str] | None = None, allow_unseen: bool = False) -> list[str]:
+    """Refuse splits whose test side holds a class its training side never saw (no model can score on it).
+
+    ``y`` holds one class per map (a numeric ``y`` is a regression target: not checked), ``Y`` a 0/1
+    matrix over ``concepts``.  Raises :class:`~mapstore.errors.UnseenClassError` naming the split and
+    the classes, unless ``allow_unseen`` (then a warning); returns the problems found.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> splits = [(np.array([0, 1]), np.array([2, 3]))]
+    >>> check_classes(splits, np.array(["a", "b", "a", "b"], dtype=object))
+    []
+    """
+    problems: list[str] = []
+    if y is not None and np.asarray(y).dtype.kind not in "OUS":
+        return problems  # a numeric target
+    for i, (tr, te) in enumerate(splits):
+        if y is not None:
+            seen = set(np.asarray(y, dtype=object)[tr].tolist())
+            unseen = sorted({str(v) for v in np.asarray(y, dtype=object)[te].tolist()} - {str(v) for v in seen})
+        elif Y is not None:
+            names = concepts or [str(c) for c in range(Y.shape[1])]
+            trained = Y[tr].sum(axis=0) > 0
+            unseen = [names[c] for c in np.flatnonzero((Y[te].sum(axis=0) > 0) & ~trained)]
+        else:
+            unseen = []
+        if unseen:
+            listed = ", ".join(unseen[:5]) + (f" and {len(unseen) - 5} more" if len(unseen) > 5 else "")
+            problems.append(f"split {i}: {len(unseen)} class(es) in test that training never saw: {listed}")
+    if problems and not allow_unseen:
+        raise UnseenClassError(
+            "no model can score these test maps:\n  " + "\n  ".join(problems[:10]) +
+            "\nuse a target the groups share (target='concept' from labels, which studies have in common; "
+            "target='study-contrast' with scheme='within-study-group-kfold:K' for each study's own names), group "
+            "by something finer (group_by='subject'), or pass allow_unseen=True (--allow-unseen) to accept it "
+            "(recorded in the export's manifest)")
+    if problems:
+        warnings.warn("split with unseen test classes accepted (allow_unseen): " + "; ".join(problems[:3]),
+                      stacklevel=3)
+    return problems
 
 
 def fold_vector(splits, n: int) -> np.ndarray:
@@ -274,13 +367,10 @@ class Selection:
         """
         if self._X is None:
             full = self.read_rows(0, np.empty((len(self), self.feature_set.n_voxels), dtype=np.float32))
-            if self.missing == "common":
-                voxels = self.voxels
-                self._X = full if len(voxels) == full.shape[1] else np.ascontiguousarray(full[:, voxels])
-            elif self.missing == "zero":
-                self._X = np.nan_to_num(full, nan=0.0, copy=False)
-            else:
-                self._X = full
+            if self.missing == "zero":
+                full = np.nan_to_num(full, nan=0.0, copy=False)
+            voxels = self.voxels  # every mask voxel for zero and keep, unless the columns were fixed
+            self._X = full if len(voxels) == full.shape[1] else np.ascontiguousarray(full[:, voxels])
         return self._X
 
     def to_image(self, vector):
@@ -298,18 +388,64 @@ class Selection:
         return self.feature_set.to_image(full)
 
     def splits(self, scheme: str = "leave-one-group-out", seed: int = 0,
-               allow_leak: bool = False, near_copy_r: float | None = None) -> list[tuple[np.ndarray, np.ndarray]]:
+               allow_leak: bool = False, near_copy_r: float | None = None,
+               allow_unseen: bool = False) -> list[tuple[np.ndarray, np.ndarray]]:
         """Train/test index pairs grouped by ``group_by``; pass them as ``cv=`` to scikit-learn.
 
-        Raises :class:`~mapstore.errors.LeakageError` if a participant, an identical file, an
-        identical feature row or a near-copy (|r| >= ``near_copy_r`` on the voxels both maps
-        cover; default :data:`mapstore.copies.NEAR_COPY_R`) would sit on both sides of a
-        split, unless ``allow_leak`` (then a warning).
+        ``scheme`` is one of :data:`SCHEMES` (see :func:`parse_scheme`).  Raises
+        :class:`~mapstore.errors.LeakageError` if a participant, an identical file, an identical
+        feature row or a near-copy (|r| >= ``near_copy_r`` on the voxels both maps cover; default
+        :data:`mapstore.copies.NEAR_COPY_R`) would sit on both sides of a split, unless
+        ``allow_leak`` (then a warning); and :class:`~mapstore.errors.UnseenClassError` if a test
+        side holds a class its training side never saw, unless ``allow_unseen``.
         """
-        out = assign_folds(self.groups, scheme, seed)
-        check_leakage(out, self.meta["participant"].to_numpy(object), self._content_ids(),
-                      self.meta["map_id"].to_numpy(object), allow_leak, self.copy_pairs(near_copy_r))
+        out = assign_folds(self.groups, scheme, seed, y=self.y, studies=self.studies)
+        self.check(out, allow_leak=allow_leak, near_copy_r=near_copy_r, allow_unseen=allow_unseen)
         return out
+
+    def check(self, splits, allow_leak: bool = False, near_copy_r: float | None = None,
+              allow_unseen: bool = False) -> dict[str, list[str]]:
+        """Check any folds (a list of (train, test) index pairs, or a scikit-learn splitter, given
+        ``X``-free: ``split(X, y, groups)`` is called with this selection's y and groups) against the
+        store's rules: no participant, identical map or copy on both sides, no unseen test class.
+        Returns the problems accepted under ``allow_leak`` / ``allow_unseen``."""
+        pairs = _as_pairs(splits, self)
+        leaks = check_leakage(pairs, self.meta["participant"].to_numpy(object), self._content_ids(),
+                              self.meta["map_id"].to_numpy(object), allow_leak, self.copy_pairs(near_copy_r))
+        unseen = check_classes(pairs, self.y, self.Y, self.concepts, allow_unseen)
+        return {"leaks": leaks, "unseen": unseen}
+
+    def weights(self, by: str = "study") -> np.ndarray:
+        """Sample weights giving each study (or subject, or any group column) the same total weight,
+        summing to the number of maps: a study of many maps does not outweigh a small one.
+
+        Examples
+        --------
+        >>> import numpy as np
+        >>> g = np.array(["a", "a", "a", "b"])
+        >>> (len(g) / 2 / np.unique(g, return_counts=True)[1][np.unique(g, return_inverse=True)[1]]).tolist()
+        [0.6666666666666666, 0.6666666666666666, 0.6666666666666666, 2.0]
+        """
+        col = GROUP_COLUMNS.get(by, by)
+        if col not in self.meta.columns:
+            raise ParameterError(f"weights by {by!r}: not a unit or column of the selection")
+        keys = self.meta[col].fillna(self.meta["map_id"]).astype(str).to_numpy()
+        _, inverse, counts = np.unique(keys, return_inverse=True, return_counts=True)
+        return len(keys) / len(counts) / counts[inverse]
+
+    @property
+    def studies(self) -> np.ndarray:
+        """The study of each map (the task vector of a multitask model: one head per study)."""
+        return self.meta["study"].to_numpy(object)
+
+    def with_columns(self, voxels: np.ndarray) -> "Selection":
+        """This selection with ``X``'s columns fixed to ``voxels`` (positions in the feature set's mask),
+        as :func:`align_columns` gives several selections one column set."""
+        v = np.asarray(voxels, dtype=np.int64)
+        if v.ndim != 1 or (v.size and (v.min() < 0 or v.max() >= self.feature_set.n_voxels)):
+            raise ParameterError(f"voxels must be positions in the feature set's mask (0 .. "
+                                 f"{self.feature_set.n_voxels - 1})")
+        return dataclasses.replace(self, _X=None, _voxels=v)
 
     def _content_ids(self) -> np.ndarray:
         """Per row, what makes two maps the same content: the file's hash, and the map's position in a
@@ -349,6 +485,52 @@ class Selection:
 
 
 
+def _as_pairs(splits, sel: "Selection") -> list[tuple[np.ndarray, np.ndarray]]:
+    """(train, test) index arrays from a list of pairs or a scikit-learn splitter (``split(X, y, groups)``)."""
+    if hasattr(splits, "split"):
+        y = sel.y if sel.y is not None else (sel.Y if sel.Y is not None else None)
+        try:
+            got = splits.split(np.zeros((len(sel), 1)), None if y is None else np.asarray(y, dtype=str)
+                               if np.asarray(y).ndim == 1 and np.asarray(y).dtype.kind == "O" else y, sel.groups)
+            splits = list(got)
+        except (TypeError, ValueError) as exc:
+            raise ParameterError(f"the splitter could not split the selection: {exc}") from exc
+    out = []
+    for k, pair in enumerate(splits):
+        try:
+            tr, te = pair
+            tr, te = np.asarray(tr, dtype=np.int64), np.asarray(te, dtype=np.int64)
+        except (TypeError, ValueError) as exc:
+            raise ParameterError(f"split {k} is not a (train indices, test indices) pair") from exc
+        if tr.size and (tr.min() < 0 or tr.max() >= len(sel)) or te.size and (te.min() < 0 or te.max() >= len(sel)):
+            raise ParameterError(f"split {k} has indices outside 0 .. {len(sel) - 1}")
+        out.append((tr, te))
+    return out
+
+
+def check_folds(selection: "Selection", splits, *, allow_leak: bool = False, near_copy_r: float | None = None,
+                allow_unseen: bool = False) -> dict[str, list[str]]:
+    """Check folds built by hand (index pairs, or any scikit-learn splitter, an outer or inner loop of a
+    nested cross-validation alike) against the store's rules; see :meth:`Selection.check`."""
+    return selection.check(splits, allow_leak=allow_leak, near_copy_r=near_copy_r, allow_unseen=allow_unseen)
+
+
+def align_columns(*selections: "Selection") -> list["Selection"]:
+    """The selections with one column set: the voxels every one of them keeps (all of one feature set), so
+    per-study models and a shared representation line up column by column."""
+    if not selections:
+        return []
+    names = {s.feature_set.name for s in selections}
+    if len(names) != 1:
+        raise ParameterError(f"selections of different feature sets ({sorted(names)}) have no columns in common")
+    common = selections[0].voxels
+    for s in selections[1:]:
+        common = np.intersect1d(common, s.voxels)
+    if common.size == 0:
+        raise QueryError("the selections share no voxel; select maps that cover a common part of the mask")
+    return [s.with_columns(common) for s in selections]
+
+
 def _labels(cat, with_broader: bool):
     """The labels table as a DataFrame: direct labels, plus broader concepts when asked."""
     import pandas as pd
@@ -382,12 +564,64 @@ def _sql_list(values) -> str:
     return ", ".join("'" + str(v).replace("'", "''") + "'" for v in values)
 
 
+# one stat per contrast: the first of these a contrast has (z and t carry the same evidence)
+STAT_ORDER = ("z", "t", "F", "p", "effect", "variance")
+PER_SUBJECT = ("contrast", "one", "map")
+
+
+def _one_per(df, per_subject: str, one_stat: bool):
+    """Rows kept so that no subject or contrast counts twice, and how many went (by reason).
+
+    ``one_stat``: of one subject's maps of one contrast (same task, session, run), the stat first in
+    :data:`STAT_ORDER`.  ``per_subject="contrast"``: of one subject's maps of one contrast, the
+    subject-level map (no ``ses``/``run``) where the writer left one, else the first session and run
+    in order (a pooled subject-level map outranks a single run's preferred stat).  ``"one"``: one map per subject in all (the first by task, contrast and the rules
+    above), for a participant target.  ``"map"``: every map.
+    """
+    import pandas as pd
+
+    dropped: dict[str, int] = {}
+    if df.empty:
+        return df, dropped
+    has_sub = df["participant"].notna()
+    rank = df["stat"].map({s: i for i, s in enumerate(STAT_ORDER)}).fillna(len(STAT_ORDER))
+    level = (df["ses"].notna().astype(int) + df["run"].notna().astype(int))  # 0: the subject-level map
+    work = df.assign(_rank=rank, _level=level, _ses=df["ses"].fillna(""), _run=df["run"].fillna(""),
+                     _key=df["participant"].fillna(df["map_id"]))
+    keep = pd.Series(True, index=df.index)
+    if one_stat:
+        cols = ["_key", "task", "contrast", "_ses", "_run", "space", "desc"]
+        order = work.sort_values(cols + ["_rank", "map_id"], na_position="last")
+        first = ~order.duplicated(subset=[c for c in cols if c in order.columns], keep="first")
+        gone = (~first.reindex(df.index)) & has_sub
+        if gone.any():
+            dropped["another stat of the same contrast (kept: " + "/".join(STAT_ORDER) + " first)"] = int(gone.sum())
+        keep &= ~gone
+    if per_subject in ("contrast", "one"):
+        rest = work[keep]
+        cols = (["_key", "task", "contrast", "space"] + ([] if one_stat else ["stat"])
+                if per_subject == "contrast" else ["_key"])
+        order = rest.sort_values(cols + ["_level", "_ses", "_run", "_rank", "task", "contrast", "map_id"],
+                                 na_position="last")
+        first = ~order.duplicated(subset=cols, keep="first")
+        gone = (~first.reindex(rest.index)) & has_sub[rest.index]
+        if gone.any():
+            why = ("another session or run of the same subject's contrast (kept: the subject-level map, else the "
+                   "first session and run)" if per_subject == "contrast" else "another map of the same subject")
+            dropped[why] = int(gone.sum())
+        keep[rest.index[gone.to_numpy()]] = False
+    return df[keep].reset_index(drop=True), dropped
+
+
 def select(store, where: str | None = None, *, concepts: list[str] | None = None, task: list[str] | None = None,
            stat: list[str] | None = None, features: str | None = None, min_coverage: float | None = None,
            target: str = "contrast", group_by: str = "study", with_broader: bool = False,
-           missing: str = "common", min_voxels: int | None = None) -> Selection:
+           missing: str = "common", min_voxels: int | None = None, one_stat: bool = True,
+           per_subject: str = "contrast") -> Selection:
     """Choose maps and build a :class:`Selection` (see :meth:`mapstore.Store.select`)."""
     _check_select_options(missing, min_voxels, group_by, min_coverage, concepts=concepts, task=task, stat=stat)
+    if per_subject not in PER_SUBJECT:
+        raise ParameterError(f"per_subject must be one of {list(PER_SUBJECT)}, got {per_subject!r}")
     fs = store.features(features)
     cat = store.catalog
     lab = _labels(cat, with_broader)
@@ -406,6 +640,8 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
         if low.any():
             dropped[f"coverage < {min_coverage:g}"] = int(low.sum())
         df = df[~low].reset_index(drop=True)
+    df, once = _one_per(df, per_subject, one_stat)
+    dropped.update(once)
     if df.empty:
         raise QueryError(f"the selection is empty (dropped: {dropped or 'none'}); loosen the filters. "
                          + _present_values(cat, fs.name))
@@ -416,7 +652,8 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
     groups = _groups(df, group_by)
     query = {"where": where, "concepts": concepts, "task": task, "stat": stat, "features": fs.name,
              "min_coverage": min_coverage, "target": target, "group_by": group_by, "with_broader": with_broader,
-             "missing": missing, "min_voxels": min_voxels, "sql": q}
+             "missing": missing, "min_voxels": min_voxels, "one_stat": one_stat, "per_subject": per_subject,
+             "sql": q}
     return Selection(store, fs, df, y, Y, concept_list, groups, group_by, target, query, dropped, missing,
                      min_voxels)
 
@@ -427,8 +664,9 @@ def _check_select_options(missing: str, min_voxels: int | None, group_by: str, m
         raise ParameterError(f"missing must be one of {list(MISSING_POLICIES)}, got {missing!r}")
     if min_voxels is not None and (not isinstance(min_voxels, int) or min_voxels < 1):
         raise ParameterError(f"min_voxels must be a positive integer, got {min_voxels!r}")
-    if group_by not in GROUP_COLUMNS:
-        raise ParameterError(f"group_by must be one of {sorted(GROUP_COLUMNS)}, got {group_by!r}")
+    if not isinstance(group_by, str) or not group_by:
+        raise ParameterError(f"group_by must be a unit ({', '.join(sorted(GROUP_COLUMNS))}), a column or "
+                             f"metadata:KEY, got {group_by!r}")
     if min_coverage is not None and not 0 <= min_coverage <= 1:
         raise ParameterError(f"min_coverage must be in [0, 1], got {min_coverage!r}")
     for name, val in lists.items():
@@ -496,6 +734,8 @@ def _targets(df, target: str, concepts: list[str] | None):
     concept_list: list[str] = []
     if target == "contrast":
         y = df["contrast"].to_numpy(object)
+    elif target == "study-contrast":  # each study's contrast names kept apart from another's
+        y = np.array([f"{s}/{c}" for s, c in zip(df["study"], df["contrast"])], dtype=object)
     elif target == "concept":
         keep = set(concepts) if concepts else None
         chosen = [[c for c in cs if keep is None or c in keep] for cs in df["concepts"]]
@@ -515,16 +755,34 @@ def _targets(df, target: str, concepts: list[str] | None):
                 if c in idx:
                     Y[r, idx[c]] = 1
     elif target in df.columns:
-        y = df[target].to_numpy(object)
         if pd.isna(df[target]).any():
             raise QueryError(f"target column {target!r} is empty for {int(pd.isna(df[target]).sum())} map(s)")
+        col = df[target]
+        # a numeric column (age, a score) stays numeric: a regression target
+        y = col.to_numpy(np.float64) if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col) \
+            else col.to_numpy(object)
     else:
         raise ParameterError(f"target must be one of {list(_TARGET_KINDS)} or a column of maps, got {target!r}")
     return y, Y, concept_list
 
 
 def _groups(df, group_by: str) -> np.ndarray:
-    gcol = GROUP_COLUMNS[group_by]
+    """Group per map: a named unit (study, site, lab, subject, dataset), a maps or participants column,
+    or ``metadata:KEY``, a field of the maps' sidecar metadata (a scanner model: ``metadata:ManufacturersModelName``)."""
+    import json
+
+    import pandas as pd
+
+    if group_by.startswith("metadata:"):
+        key = group_by.split(":", 1)[1]
+        vals = [json.loads(m).get(key) if isinstance(m, str) and m else None for m in df["metadata"]]
+        df = df.assign(_group=pd.Series([None if v is None else str(v) for v in vals], dtype=object))
+        gcol = "_group"
+    else:
+        gcol = GROUP_COLUMNS.get(group_by, group_by)
+    if gcol not in df.columns:
+        raise ParameterError(f"group_by {group_by!r} is not a unit ({', '.join(sorted(GROUP_COLUMNS))}), a column "
+                             "of maps or participants, or metadata:KEY")
     if df[gcol].isna().any():
         n = int(df[gcol].isna().sum())
         raise QueryError(f"{n} selected map(s) have no {group_by} (e.g. {df.loc[df[gcol].isna(), 'map_id'].iloc[0]}); "

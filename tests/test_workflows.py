@@ -1,0 +1,172 @@
+"""The field's cross-study analyses on pooled maps: safe split defaults, multitask splits, participant
+targets and groups.
+
+References: scikit-learn's own splitters (``GroupKFold``, ``StratifiedGroupKFold``) for the fold
+assignments; pandas' reading of the demo's participants.tsv files and ``json`` of its sidecars for
+targets and groups.  The data are the demo's invented consortium.
+"""
+
+from __future__ import annotations
+
+import json
+import shutil
+
+import numpy as np
+import pandas as pd
+import pytest
+
+import mapstore
+from mapstore.errors import LeakageError, ParameterError, UnseenClassError
+
+
+@pytest.fixture(scope="module")
+def store(demo_store, demo_tree, tmp_path_factory):
+    path = tmp_path_factory.mktemp("flows") / "store"
+    shutil.copytree(demo_store, path)
+    mapstore.build_features(path, grid="MNI152-3mm", name="default", jobs=2, progress=False)
+    mapstore.label(path, demo_tree / "concepts.json")
+    return mapstore.open(path)
+
+
+def test_the_default_split_that_cannot_score_is_refused_naming_the_classes(store, tmp_path):
+    # each study names its own contrasts: leave-one-study-out never trains on a test class
+    sel = store.select(stat=["t"])
+    with pytest.raises(UnseenClassError, match="class\\(es\\) in test that training never saw") as err:
+        sel.splits()
+    assert "target='concept'" in str(err.value) and "allow_unseen=True" in str(err.value)
+    with pytest.raises(UnseenClassError):
+        store.export(tmp_path / "x", sel)
+    assert not (tmp_path / "x").exists()
+    # concepts the studies share: no fold has an unseen class
+    ok = store.select(concepts=["hand-movement", "listening"], target="concept", stat=["t", "z"])
+    assert len(ok.splits()) == ok.meta["study"].nunique()
+    # a multi-label target: a concept only one study has is unseen when that study is held out
+    multi = store.select(target="concepts", stat=["t"])
+    only = [c for c in multi.concepts
+            if multi.meta.loc[multi.Y[:, multi.concepts.index(c)] == 1, "study"].nunique() == 1]
+    if only:
+        with pytest.raises(UnseenClassError, match=only[0]):
+            multi.splits()
+
+
+def test_within_study_folds_equal_group_kfold_run_in_each_study(store):
+    sel = store.select(stat=["t"], target="study-contrast", group_by="subject")
+    splits = sel.splits("within-study-group-kfold:2")  # each study's own names: seen in every fold
+    from sklearn.model_selection import GroupKFold
+
+    assert len(splits) == 2
+    for study in sel.meta["study"].unique():
+        idx = np.flatnonzero(sel.studies == study)
+        ref = [te for _, te in GroupKFold(2).split(np.zeros((len(idx), 1)), groups=sel.groups[idx])]
+        for (_, te), want in zip(splits, ref):
+            np.testing.assert_array_equal(np.intersect1d(te, idx), idx[want])
+    assert all(set(sel.studies[te]) == set(sel.studies) for _, te in splits)  # every study in every test side
+    assert all(y.split("/")[0] in set(sel.studies) for y in sel.y)
+
+
+def test_stratified_group_kfold_equals_scikit_learn(store):
+    from sklearn.model_selection import StratifiedGroupKFold
+
+    sel = store.select(concepts=["hand-movement", "listening", "reading"], target="concept", group_by="subject",
+                       stat=["t", "z"])
+    got = sel.splits("stratified-group-kfold:3", seed=4)
+    ref = StratifiedGroupKFold(3, shuffle=True, random_state=4).split(np.zeros((len(sel), 1)), sel.y.astype(str),
+                                                                      sel.groups)
+    for (tr, te), (rtr, rte) in zip(got, ref):
+        np.testing.assert_array_equal(te, rte)
+        np.testing.assert_array_equal(tr, rtr)
+
+
+def test_any_folds_are_checked_against_the_stores_rules(store):
+    from sklearn.model_selection import GroupKFold, KFold
+
+    sel = store.select(concepts=["hand-movement", "listening"], target="concept", stat=["t", "z"],
+                       group_by="subject")
+    # scikit-learn's plain KFold ignores subjects: a subject lands on both sides
+    with pytest.raises(LeakageError, match="subject"):
+        mapstore.check_folds(sel, KFold(4, shuffle=True, random_state=0))
+    got = mapstore.check_folds(sel, GroupKFold(4))  # grouped by subject: clean
+    assert got == {"leaks": [], "unseen": []}
+    with pytest.raises(ParameterError, match="outside"):
+        mapstore.check_folds(sel, [(np.array([0, 1]), np.array([len(sel)]))])
+
+
+def test_a_numeric_participant_target_stays_numeric(store, demo_tree, tmp_path):
+    sel = store.select(target="age", stat=["t"], group_by="site")
+    assert sel.y.dtype == np.float64
+    # reference: pandas' reading of each study's participants.tsv
+    ages = {}
+    for d in store.sql("SELECT dataset, participants_file FROM datasets").to_pylist():
+        t = pd.read_csv(d["participants_file"], sep="\t", dtype={"participant_id": str})
+        ages.update({(d["dataset"], p.removeprefix("sub-")): float(a) for p, a in zip(t.participant_id, t.age)})
+    want = [ages[(d, s)] for d, s in zip(sel.meta["dataset"], sel.meta["sub"])]
+    np.testing.assert_array_equal(sel.y, want)
+    sel.splits()  # a regression target has no classes to be unseen
+    out = store.export(tmp_path / "age", sel).out
+    y = np.load(f"{out}/y.npy")
+    assert y.dtype == np.float64 and np.array_equal(y, sel.y)
+
+
+def test_group_by_any_column_or_sidecar_field(store, demo_tree):
+    sel = store.select(stat=["t"], target="concepts", group_by="metadata:InstitutionName")
+    want = [json.loads(m).get("InstitutionName") for m in sel.meta["metadata"]]
+    assert list(sel.groups) == want
+    by_sex = store.select(stat=["t"], target="concepts", group_by="sex")  # a participants column
+    assert set(by_sex.groups) <= {"F", "M"}
+    with pytest.raises(ParameterError, match="not a unit"):
+        store.select(stat=["t"], group_by="no_such_column")
+
+
+def test_selections_share_one_column_set(store):
+    a = store.select(stat=["t"], where="study = 'inkwell'", target="concepts")
+    b = store.select(stat=["t"], where="study = 'emberlight'", target="concepts")
+    a2, b2 = mapstore.align_columns(a, b)
+    assert a2.X.shape[1] == b2.X.shape[1]
+    cols = np.intersect1d(a.voxels, b.voxels)
+    np.testing.assert_array_equal(a2.X, store.features().matrix(a.map_ids)[:, cols])
+    assert np.isfinite(b2.X).all()
+
+
+def test_no_subject_or_contrast_counts_twice_unless_asked(store):
+    every = store.select(stat=["t", "z", "effect"], target="concepts", per_subject="map", one_stat=False)
+    sel = store.select(stat=["t", "z", "effect"], target="concepts")
+    m = every.meta
+    # reference, by hand with pandas: per subject, task and contrast the subject-level map (no ses/run),
+    # else the first session and run; among those, the first stat of z, t, effect
+    order = {"z": 0, "t": 1, "effect": 2}
+    ref = (m.assign(_r=m["stat"].map(order), _l=m["ses"].notna().astype(int) + m["run"].notna().astype(int),
+                    _s=m["ses"].fillna(""), _u=m["run"].fillna(""))
+           .sort_values(["participant", "task", "contrast", "_l", "_s", "_u", "_r", "map_id"])
+           .groupby(["participant", "task", "contrast"], dropna=False).head(1))
+    assert sorted(sel.map_ids) == sorted(ref["map_id"])
+    assert sum(sel.dropped.values()) - sel.dropped.get("no feature row", 0) == len(every) - len(sel)
+    assert not sel.meta.duplicated(["participant", "task", "contrast"]).any()
+    one = store.select(stat=["t", "z"], target="age", per_subject="one")
+    assert one.meta["participant"].is_unique and len(one) == every.meta["participant"].nunique()
+
+
+def test_sample_weights_give_each_study_the_same_total(store):
+    sel = store.select(concepts=["hand-movement", "listening"], target="concept")
+    w = sel.weights("study")
+    totals = pd.Series(w).groupby(sel.meta["study"].to_numpy()).sum()
+    np.testing.assert_allclose(totals.to_numpy(), len(sel) / sel.meta["study"].nunique())
+    assert np.isclose(w.sum(), len(sel))
+
+
+def test_participant_columns_go_out_only_when_named(store, tmp_path):
+    import pyarrow.parquet as pq
+
+    sel = store.select(target="age", stat=["t"], group_by="site", per_subject="one")
+    plain = store.export(tmp_path / "plain", sel).out
+    meta = pq.read_table(f"{plain}/meta.parquet").to_pandas()
+    assert "age" not in meta.columns and "sex" not in meta.columns
+    np.testing.assert_array_equal(meta["y"].to_numpy(), sel.y)  # y beside the other columns
+    man = json.loads(open(f"{plain}/manifest.json").read())
+    assert man["personal_data"]["columns"] == []
+    named = store.export(tmp_path / "named", sel, participant_columns=["sex"]).out
+    meta = pq.read_table(f"{named}/meta.parquet").to_pandas()
+    assert list(meta["sex"]) == list(sel.meta["sex"])
+    man = json.loads(open(f"{named}/manifest.json").read())
+    assert man["personal_data"]["columns"] == ["sex"] and "personal data" in man["personal_data"]["note"]
+    with pytest.raises(ParameterError, match="not in participants.tsv"):
+        store.export(tmp_path / "bad", sel, participant_columns=["height"])
