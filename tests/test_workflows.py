@@ -170,3 +170,28 @@ def test_participant_columns_go_out_only_when_named(store, tmp_path):
     assert man["personal_data"]["columns"] == ["sex"] and "personal data" in man["personal_data"]["note"]
     with pytest.raises(ParameterError, match="not in participants.tsv"):
         store.export(tmp_path / "bad", sel, participant_columns=["height"])
+
+
+def test_a_new_map_goes_through_the_sets_rules_exactly(store, tmp_path):
+    import nibabel as nib
+
+    fs = store.features("default")
+    r = store.sql("SELECT m.map_id, d.root || '/' || m.relpath AS path, m.model_mask, d.root AS root, m.dof "
+                  "FROM maps m JOIN datasets d USING (dataset) JOIN features f ON f.map_id = m.map_id "
+                  "AND f.feature_set = 'default' WHERE m.stat = 't' ORDER BY m.map_id LIMIT 1").to_pylist()[0]
+    mask = f"{r['root']}/{r['model_mask']}" if r["model_mask"] else None
+    got = fs.transform(r["path"], "t", mask_img=mask)
+    np.testing.assert_array_equal(got, fs.matrix([r["map_id"]])[0])  # the stored row, bit for bit
+    got = fs.transform(nib.load(r["path"]), "t", mask_img=mask)  # an image in memory
+    np.testing.assert_array_equal(got, fs.matrix([r["map_id"]])[0])
+    # a z set converts the new map as it converted the stored one (t with its DOF)
+    mapstore.build_features(store.path, "z3", grid="MNI152-3mm", stat="z", where=f"m.map_id = '{r['map_id']}'",
+                            jobs=1, progress=False)
+    zs = mapstore.open(store.path).features("z3")
+    np.testing.assert_array_equal(zs.transform(r["path"], "t", dof=r["dof"], mask_img=mask),
+                                  zs.matrix([r["map_id"]])[0])
+    with pytest.raises(mapstore.MapstoreError, match="say the map's stat"):
+        zs.transform(r["path"])
+    # on a selection's columns, equal to its row of X: a decoder fitted on X predicts it
+    sel = store.select(stat=["t"], target="concepts", where=f"map_id = '{r['map_id']}'")
+    np.testing.assert_array_equal(sel.transform(r["path"], "t", mask_img=mask), sel.X[0])

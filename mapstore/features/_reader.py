@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import hashlib
+import os
 from pathlib import Path
 
 import numpy as np
@@ -272,8 +273,83 @@ class FeatureSet:
         """A row as values over its base's positions (volume-shaped, or both hemispheres' vertices)."""
         return self.grid.on_base(self.unmask(vector))
 
+    def transform(self, image, stat: str | None = None, *, dof: float | None = None, dof1: float | None = None,
+                  mask_img=None, registration=None, space: str | None = None) -> np.ndarray:
+        """One new map through exactly this set's rules: the same stat conversion, missing-region rules
+        (the model's mask, a zero background, zeros on request), resampling or projection and mask.
+
+        Parameters
+        ----------
+        image : path, nibabel image, or (left, right) GIFTI paths
+            A volume (NIfTI), a CIFTI-2 dense-scalar file, or a surface map's two hemispheres.
+        stat : str, optional
+            The map's statistic (``t``, ``z``, ``p``, ``F``, ``effect`` ...): needed when the set
+            converts to z (``dof`` for t, ``dof`` and ``dof1`` for F).
+        mask_img : path or nibabel image, optional
+            The model's own mask (missing outside it), as a stored map's model mask.
+        registration : list of paths, optional
+            A native-space volume's ITK/ANTs transforms to the set's template, template side first
+            (``*_from-T1w_to-<template>_mode-image_xfm.h5``, as the store finds them).
+        space : str, optional
+            A surface map's space entity (``fsaverage5``, ``fsnative`` ...), as its file name would say.
+
+        Returns
+        -------
+        ndarray, float32, shape (n_voxels,)
+            The row the store would hold for this map (NaN where it has no value).
+        """
+        import tempfile
+
+        from ..targets import BatchContext, BuildSettings, SourceMap
+
+        spec = self.spec
+        if self.geometry == "parcels":
+            raise FeatureError(f"{self.name!r} is a parcel set: transform the map with its source set, then "
+                               "reduce it with the set's ParcelReducer")
+        if spec.stat == "z" and stat is None:
+            raise FeatureError(f"feature set {self.name!r} converts maps to z: say the map's stat (stat='t', "
+                               "with dof=...)")
+        settings = BuildSettings(spec.method, spec.stat, spec.p_sided, spec.zero_as_missing, spec.background,
+                                 spec.projection)
+        with tempfile.TemporaryDirectory(prefix="mapstore-transform-") as tmp:
+            paths = _as_files(image, tmp, "map")
+            mask = _as_files(mask_img, tmp, "mask")[0] if mask_img is not None else None
+            steps = [{"path": os.fspath(p), "sha256": "", "format": "itk"} for p in registration or []]
+            first = paths[0]
+            geometry = "grayordinates" if first.endswith(".dscalar.nii") else \
+                "surface" if first.endswith(".gii") else "volume"
+            item = SourceMap("new", first, None, stat or "unknown", dof, "", mask, None, geometry,
+                             "L" if geometry == "surface" else None,
+                             paths[1] if geometry == "surface" and len(paths) > 1 else None,
+                             space=space, space_kind="native" if steps else "template",
+                             registration={"to": "template", "steps": steps} if steps else None,
+                             dof_numerator=dof1)
+            region, local = self.grid.crop(self.mask_indices)
+            row = self.grid.values(item, settings, BatchContext(), region, local)
+        return np.asarray(row.values, dtype=np.float32)
+
     def to_image(self, vector: np.ndarray):
         """An image of a row (or of a decoder's coefficients): NIfTI (nibabel) on a volume set's grid, a
         nilearn ``SurfaceImage`` on a surface set's mesh (NaN outside the mask: the medial wall), CIFTI-2
         on a grayordinate set's template, a parcel set's painted onto its source set's target."""
         return self.grid.image(self.unmask(vector))
+
+
+def _as_files(image, folder: str, name: str) -> list[str]:
+    """Paths of a map given as a path, a (left, right) pair of paths, or a nibabel image (saved to ``folder``)."""
+    if isinstance(image, (str, os.PathLike)):
+        return [os.fspath(image)]
+    if isinstance(image, (tuple, list)):
+        return [p for part in image for p in _as_files(part, folder, name)]
+    import nibabel as nib
+
+    if isinstance(image, nib.Cifti2Image):
+        path = os.path.join(folder, f"{name}.dscalar.nii")
+    elif isinstance(image, nib.GiftiImage):
+        path = os.path.join(folder, f"{name}-{len(os.listdir(folder))}.func.gii")
+    elif isinstance(image, nib.spatialimages.SpatialImage):
+        path = os.path.join(folder, f"{name}.nii.gz")
+    else:
+        raise FeatureError(f"cannot read a map from a {type(image).__name__}: give a path or a nibabel image")
+    nib.save(image, path)
+    return [path]

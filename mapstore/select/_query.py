@@ -438,6 +438,13 @@ class Selection:
         """The study of each map (the task vector of a multitask model: one head per study)."""
         return self.meta["study"].to_numpy(object)
 
+    def transform(self, image, stat: str | None = None, **options) -> np.ndarray:
+        """A new map on this selection's columns (see :meth:`FeatureSet.transform`), so a decoder fitted
+        on ``X`` predicts it: ``model.predict(sel.transform(img, stat='t', dof=90)[None])``.  With
+        ``missing='zero'`` its missing values are 0; otherwise they stay NaN (the map may cover less)."""
+        v = self.feature_set.transform(image, stat, **options)[self.voxels]
+        return np.nan_to_num(v, nan=0.0) if self.missing == "zero" else v
+
     def with_columns(self, voxels: np.ndarray) -> "Selection":
         """This selection with ``X``'s columns fixed to ``voxels`` (positions in the feature set's mask),
         as :func:`align_columns` gives several selections one column set."""
