@@ -9,7 +9,7 @@ from pathlib import Path
 import pyarrow as pa
 
 from .check import CheckReport, check_store
-from .errors import FeatureError, StoreClosed
+from .errors import FeatureError, ParameterError, StoreClosed
 from .select import ExportReport, export_selection
 from .features import FeatureSet
 from .labels import refresh_labels
@@ -178,6 +178,42 @@ class Store:
         return export_selection(sel, out, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt,
                                 overwrite=overwrite, near_copy_r=near_copy_r, allow_unseen=allow_unseen,
                                 participant_columns=participant_columns)
+
+    def similar(self, query, k: int = 10, *, features: str | None = None, absolute: bool = False,
+                stat: str | None = None, **transform_options):
+        """The ``k`` maps of a feature set most similar to ``query`` (a map id of the set, or a new map:
+        a path or nibabel image, run through :meth:`FeatureSet.transform` with ``stat`` and options).
+
+        Similarity is the correlation on the voxels both maps have (sign kept; ``absolute`` ranks
+        by |r|), shortlisted from the stored sketches and ranked exactly.  Returns a pandas
+        DataFrame: map_id, r, n_common, study, dataset, task, contrast, stat, concepts, coverage, relpath.
+        """
+        import pandas as pd
+
+        from .features import most_similar
+        from .select._query import _sql_list
+
+        if not isinstance(k, int) or isinstance(k, bool) or k < 1:
+            raise ParameterError(f"k must be a positive integer, got {k!r}")
+        fs = self.features(features)
+        exclude = None
+        if isinstance(query, str) and not os.path.exists(query) and query in set(fs.map_ids):
+            vector, exclude = fs.matrix([query])[0], query
+        else:
+            vector = fs.transform(query, stat, **transform_options)
+        hits = most_similar(fs, vector, k, absolute=absolute, exclude=exclude)
+        cols = ["map_id", "r", "n_common", "study", "dataset", "task", "contrast", "stat", "concepts", "coverage",
+                "relpath"]
+        if not hits:
+            return pd.DataFrame(columns=cols)
+        found = pd.DataFrame(hits, columns=["map_id", "r", "n_common"])
+        info = self.sql(
+            "SELECT m.map_id, m.study, m.dataset, m.task, m.contrast, m.stat, m.relpath, f.coverage, "
+            "coalesce(l.concepts, []) AS concepts FROM maps m JOIN features f ON f.map_id = m.map_id AND "
+            f"f.feature_set = '{fs.name}' LEFT JOIN (SELECT map_id, list(concept ORDER BY concept) AS concepts "
+            "FROM labels WHERE direct GROUP BY map_id) l ON l.map_id = m.map_id "
+            f"WHERE m.map_id IN ({_sql_list(found['map_id'])})").to_pandas()
+        return found.merge(info, on="map_id", how="left")[cols]
 
     def check(self, features: str | None = None, *, min_coverage: float = 0.8,
               pictures: bool = True, min_agreement: float = 0.2) -> CheckReport:

@@ -340,6 +340,27 @@ def schema_cmd(name) -> None:
     click.echo(schema_text(name), nl=False)
 
 
+@cli.command("similar")
+@STORE_OPTION
+@click.argument("query")
+@click.option("--features", "feature_set", help="Feature set name (default: the default set).")
+@click.option("-k", "k", type=click.IntRange(min=1), default=10, show_default=True, help="How many maps to list.")
+@click.option("--absolute", is_flag=True, help="Rank by |r| (a sign-flipped map counts as similar).")
+@click.option("--stat", help="A new map's statistic (t, z, p, F, effect, ...), when the set converts to z.")
+@click.option("--dof", type=float, help="A new t or F map's degrees of freedom.")
+@click.option("--format", "fmt", type=click.Choice(["table", "csv", "json"]), default="table", show_default=True,
+              help="Output format.")
+def similar_cmd(store, query, feature_set, k, absolute, stat, dof, fmt) -> None:
+    """List the maps most similar to QUERY: a map id of the feature set, or a new map's file."""
+    import pyarrow as pa
+
+    options = {"dof": dof} if dof is not None else {}
+    df = open_store(store).similar(query, k, features=feature_set, absolute=absolute, stat=stat, **options)
+    df["r"] = df["r"].round(4)
+    df["coverage"] = df["coverage"].round(3)
+    write_table(pa.Table.from_pandas(df, preserve_index=False), fmt, None)
+
+
 @cli.command("verify")
 @click.argument("manifest", type=click.Path(exists=True))
 def verify_cmd(manifest) -> None:

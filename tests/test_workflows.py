@@ -195,3 +195,39 @@ def test_a_new_map_goes_through_the_sets_rules_exactly(store, tmp_path):
     # on a selection's columns, equal to its row of X: a decoder fitted on X predicts it
     sel = store.select(stat=["t"], target="concepts", where=f"map_id = '{r['map_id']}'")
     np.testing.assert_array_equal(sel.transform(r["path"], "t", mask_img=mask), sel.X[0])
+
+
+def _brute_force(fs, v, exclude=None):
+    """NaN-aware Pearson correlation of ``v`` with every row, by numpy's corrcoef (reference)."""
+    out = []
+    for m, row in zip(fs.map_ids, fs.matrix()):
+        if m == exclude:
+            continue
+        both = np.isfinite(v) & np.isfinite(row)
+        if both.sum() >= 10:
+            out.append((m, float(np.corrcoef(v[both], row[both])[0, 1])))
+    return out
+
+
+def test_similar_maps_equal_a_brute_force_ranking(store, tmp_path, capsys):
+    fs = store.features("default")
+    query = fs.map_ids[3]
+    got = store.similar(query, k=5)
+    ref = sorted(_brute_force(fs, fs.matrix([query])[0], exclude=query), key=lambda t: -t[1])[:5]
+    assert list(got["map_id"]) == [m for m, _ in ref]
+    np.testing.assert_allclose(got["r"], [r for _, r in ref], atol=1e-5)
+    assert {"study", "contrast", "concepts", "coverage"} <= set(got.columns)
+    # a new map (a file) ranked with its sign ignored: a sign-flipped copy of a stored map comes first
+    import nibabel as nib
+
+    path = store.sql(f"SELECT d.root || '/' || m.relpath AS p FROM maps m JOIN datasets d USING (dataset) "
+                     f"WHERE m.map_id = '{query}'")["p"][0].as_py()
+    img = nib.load(path)
+    flipped = nib.Nifti1Image(-np.asanyarray(img.dataobj, dtype=np.float32), img.affine)
+    top = store.similar(flipped, k=3, absolute=True)
+    assert top["map_id"].iloc[0] == query and top["r"].iloc[0] < -0.999
+    from mapstore.cli import main
+
+    assert main(["similar", "--store", str(store.path), query, "-k", "3", "--format", "csv"]) == 0
+    lines = capsys.readouterr().out.strip().splitlines()
+    assert len(lines) == 4 and lines[1].startswith(f'"{ref[0][0]}"')

@@ -4,7 +4,8 @@ copies, reduced to parcels."""
 from __future__ import annotations
 
 from ._build import DEFAULT_SET, FeatureReport, build_features, feature_key, spec_id, write_tables
-from ._copies import NEAR_COPY_R, SKETCH_BITS, STORE_FLOOR, Sketcher, find_copies, pair_correlation, sketch_kind
+from ._copies import (NEAR_COPY_R, SKETCH_BITS, STORE_FLOOR, Sketcher, find_copies, most_similar, pair_correlation,
+                      sketch_kind)
 from ._reader import FeatureSet
 from ._rows import Batch, BatchResult, run_batch, write_shard
 
@@ -28,6 +29,7 @@ __all__ = [
     "FeatureReport",
     "FeatureSet",
     "find_copies",
+    "most_similar",
     "fit_parcellation",
     "NEAR_COPY_R",
     "pair_correlation",

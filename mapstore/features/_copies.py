@@ -27,7 +27,7 @@ import pyarrow as pa
 from ..store import COPIES_SCHEMA
 
 __all__ = ["Sketcher", "SKETCH_BITS", "find_copies", "COPIES_SCHEMA", "NEAR_COPY_R", "pair_correlation",
-           "sketch_kind"]
+           "sketch_kind", "most_similar"]
 
 SKETCH_BITS = 1024
 _BAND = 20
@@ -211,3 +211,35 @@ def find_copies(fs, map_ids: list[str] | None = None, *, floor: float = STORE_FL
 def _copies_table(out: dict[tuple[str, str], tuple[str, float, int]]) -> pa.Table:
     rows_out = [{"map_a": a, "map_b": b, "kind": k, "r": r, "n_common": n} for (a, b), (k, r, n) in sorted(out.items())]
     return pa.Table.from_pylist(rows_out, schema=COPIES_SCHEMA)
+
+
+def most_similar(fs, vector: np.ndarray, k: int = 10, *, absolute: bool = False, exclude: str | None = None,
+                 shortlist: int | None = None) -> list[tuple[str, float, int]]:
+    """The ``k`` rows of a feature set most correlated with ``vector`` (NaN-aware: on the voxels both
+    have), as (map_id, r, n_common), best first.
+
+    The stored sign sketches shortlist candidates (``shortlist`` rows, default ``max(50 k, 500)``,
+    by estimated correlation); the shortlist is ranked by the exact correlation.  ``absolute`` ranks
+    by |r| (a sign-flipped map counts as similar); ``exclude`` leaves one map out (the query itself).
+    """
+    v = np.asarray(vector, dtype=np.float32).reshape(-1)
+    if v.size != fs.n_voxels:
+        raise ValueError(f"vector has {v.size} values, the set has {fs.n_voxels}")
+    ids = [m for m in fs.map_ids if m != exclude]
+    if not ids or int(np.isfinite(v).sum()) < MIN_COMMON:
+        return []
+    sk = Sketcher.for_set(fs.spec.mask["sha256"], fs.n_voxels, fs.spec.sketch)
+    est = _estimate(fs.sketches(ids), sk.sketch(v[None, :]))
+    score = np.abs(est) if absolute else est
+    m = min(len(ids), shortlist or max(50 * k, 500))
+    cand = np.argpartition(-score, m - 1)[:m] if m < len(ids) else np.arange(len(ids))
+    out = []
+    for start in range(0, len(cand), 512):
+        part = cand[start:start + 512]
+        rows = fs.matrix([ids[i] for i in part])
+        for i, row in zip(part, rows):
+            r, n = pair_correlation(v, row)
+            if n >= MIN_COMMON and np.isfinite(r):
+                out.append((ids[i], r, n))
+    out.sort(key=lambda t: (-(abs(t[1]) if absolute else t[1]), t[0]))
+    return out[:k]
