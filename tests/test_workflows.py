@@ -231,3 +231,32 @@ def test_similar_maps_equal_a_brute_force_ranking(store, tmp_path, capsys):
     assert main(["similar", "--store", str(store.path), query, "-k", "3", "--format", "csv"]) == 0
     lines = capsys.readouterr().out.strip().splitlines()
     assert len(lines) == 4 and lines[1].startswith(f'"{ref[0][0]}"')
+
+
+def test_encoding_scores_equal_scikit_learn_per_voxel(store):
+    from sklearn.linear_model import RidgeCV
+    from sklearn.metrics import r2_score
+
+    from mapstore.analyses import concept_descriptors, encoding_scores
+
+    sel = store.select(concepts=["hand-movement", "listening", "reading", "visual-motion"], target="concepts",
+                       stat=["t", "z"])
+    got = encoding_scores(sel)
+    # reference: a RidgeCV fitted on each training side by hand, scored by scikit-learn's r2_score
+    D, names = concept_descriptors(sel)
+    X = sel.X.astype(np.float64)
+    P = np.zeros_like(X)
+    for tr, te in sel.splits():
+        P[te] = RidgeCV(alphas=np.logspace(-2, 4, 13)).fit(D[tr], X[tr]).predict(D[te])
+    np.testing.assert_allclose(got.predictions, P, rtol=1e-4, atol=1e-4)
+    np.testing.assert_allclose(got.r2, r2_score(X, P, multioutput="raw_values"), rtol=1e-3, atol=1e-4)
+    j = int(np.nanargmax(got.r2))
+    assert abs(got.r[j] - np.corrcoef(X[:, j], P[:, j])[0, 1]) < 1e-4
+    assert names == got.descriptors and got.to_image("r2").shape == store.features().grid.shape
+    # descriptors from a table keyed by contrast (one invented stimulus feature per contrast)
+    import pandas as pd
+
+    table = pd.DataFrame({"contrast": sorted(sel.meta["contrast"].unique())})
+    table["loudness"] = np.arange(len(table), dtype=float)
+    by_table = encoding_scores(sel, table)
+    assert by_table.descriptors == ["loudness"] and by_table.r2.shape == got.r2.shape
