@@ -197,7 +197,10 @@ class Store:
             raise ParameterError(f"k must be a positive integer, got {k!r}")
         fs = self.features(features)
         exclude = None
-        if isinstance(query, str) and not os.path.exists(query) and query in set(fs.map_ids):
+        if isinstance(query, str) and not os.path.exists(query):
+            if query not in set(fs.map_ids):
+                raise FeatureError(f"{query}: neither a file nor a map with a row in feature set {fs.name!r}; "
+                                   "give a map id of the set (SELECT map_id FROM features) or a map's path")
             vector, exclude = fs.matrix([query])[0], query
         else:
             vector = fs.transform(query, stat, **transform_options)
