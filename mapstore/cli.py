@@ -284,8 +284,8 @@ def labels_cmd(store, vocab, inherit) -> None:
               help="study, site, lab, subject, dataset, a maps or participants column, or metadata:KEY "
                    "(a sidecar field, e.g. metadata:ManufacturersModelName).")
 @click.option("--scheme", default="leave-one-group-out", show_default=True,
-              help="leave-one-group-out | group-kfold:K | stratified-group-kfold:K | within-study-group-kfold:K "
-                   "| holdout:FRACTION")
+              help="leave-one-group-out | group-kfold:K | repeated-group-kfold:K:R | stratified-group-kfold:K | "
+                   "within-study-group-kfold:K | holdout:FRACTION")
 @click.option("--seed", type=int, default=0, show_default=True)
 @click.option("--allow-leak", is_flag=True, help="Accept a split that leaks (with a warning).")
 @click.option("--participant-column", "participant_columns", multiple=True,

@@ -260,3 +260,15 @@ def test_encoding_scores_equal_scikit_learn_per_voxel(store):
     table["loudness"] = np.arange(len(table), dtype=float)
     by_table = encoding_scores(sel, table)
     assert by_table.descriptors == ["loudness"] and by_table.r2.shape == got.r2.shape
+
+
+def test_repeated_group_kfold_equals_scikit_learn_shuffled_runs(store):
+    from sklearn.model_selection import GroupKFold
+
+    sel = store.select(concepts=["hand-movement", "listening"], target="concept", group_by="subject")
+    got = sel.splits("repeated-group-kfold:3:2", seed=7)
+    ref = [te for rep in range(2) for _, te in GroupKFold(3, shuffle=True, random_state=7 + rep).split(
+        np.zeros((len(sel), 1)), groups=sel.groups)]
+    assert len(got) == 6
+    for (_, te), want in zip(got, ref):
+        np.testing.assert_array_equal(te, want)

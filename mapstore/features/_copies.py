@@ -214,18 +214,19 @@ def _copies_table(out: dict[tuple[str, str], tuple[str, float, int]]) -> pa.Tabl
 
 
 def most_similar(fs, vector: np.ndarray, k: int = 10, *, absolute: bool = False, exclude: str | None = None,
-                 shortlist: int | None = None) -> list[tuple[str, float, int]]:
+                 shortlist: int | None = None, map_ids: list[str] | None = None) -> list[tuple[str, float, int]]:
     """The ``k`` rows of a feature set most correlated with ``vector`` (NaN-aware: on the voxels both
     have), as (map_id, r, n_common), best first.
 
     The stored sign sketches shortlist candidates (``shortlist`` rows, default ``max(50 k, 500)``,
     by estimated correlation); the shortlist is ranked by the exact correlation.  ``absolute`` ranks
-    by |r| (a sign-flipped map counts as similar); ``exclude`` leaves one map out (the query itself).
+    by |r| (a sign-flipped map counts as similar); ``exclude`` leaves one map out (the query itself);
+    ``map_ids`` limits the search to those rows.
     """
     v = np.asarray(vector, dtype=np.float32).reshape(-1)
     if v.size != fs.n_voxels:
         raise ValueError(f"vector has {v.size} values, the set has {fs.n_voxels}")
-    ids = [m for m in fs.map_ids if m != exclude]
+    ids = [m for m in (fs.map_ids if map_ids is None else map_ids) if m != exclude]
     if not ids or int(np.isfinite(v).sum()) < MIN_COMMON:
         return []
     sk = Sketcher.for_set(fs.spec.mask["sha256"], fs.n_voxels, fs.spec.sketch)

@@ -31,17 +31,18 @@ _TARGET_KINDS = ("contrast", "study-contrast", "concept", "concepts")
 
 
 _KFOLD_KINDS = ("group-kfold", "stratified-group-kfold", "within-study-group-kfold")
-SCHEMES = ("leave-one-group-out", "group-kfold:K", "stratified-group-kfold:K", "within-study-group-kfold:K",
-           "holdout:FRACTION")
+SCHEMES = ("leave-one-group-out", "group-kfold:K", "repeated-group-kfold:K:R", "stratified-group-kfold:K",
+           "within-study-group-kfold:K", "holdout:FRACTION")
 
 
-def parse_scheme(scheme: str) -> tuple[str, float | int | None]:
+def parse_scheme(scheme: str) -> tuple[str, Any]:
     """A split scheme's name -> (kind, parameter).
 
     ``leave-one-group-out``; ``group-kfold:K`` (K folds of whole groups); ``stratified-group-kfold:K``
     (whole groups, class shares kept as far as the groups allow); ``within-study-group-kfold:K``
     (every study's groups, e.g. its subjects, dealt into K folds within that study, so each fold
-    holds out part of every study); ``holdout:FRACTION``.
+    holds out part of every study); ``repeated-group-kfold:K:R`` (R shuffled group k-folds, K R
+    splits); ``holdout:FRACTION``.
 
     Examples
     --------
@@ -55,6 +56,16 @@ def parse_scheme(scheme: str) -> tuple[str, float | int | None]:
     if scheme in ("leave-one-group-out", "logo"):
         return "leave-one-group-out", None
     kind, _, arg = scheme.partition(":")
+    if kind == "repeated-group-kfold":
+        k_text, _, r_text = arg.partition(":")
+        try:
+            k, r = int(k_text), int(r_text)
+        except ValueError:
+            k = r = 0
+        if k < 2 or r < 1:
+            raise ParameterError(f"scheme {scheme!r}: repeated-group-kfold needs K >= 2 and R >= 1, e.g. "
+                                 "repeated-group-kfold:5:10")
+        return kind, (k, r)
     if kind in _KFOLD_KINDS:
         try:
             k = int(arg)
@@ -97,6 +108,14 @@ def assign_folds(groups: np.ndarray, scheme: str, seed: int = 0, y: np.ndarray |
     groups = np.asarray(groups)
     n_groups = len(np.unique(groups))
     dummy = np.zeros((len(groups), 1))
+    if kind == "repeated-group-kfold":
+        k, r = arg
+        if k > n_groups:
+            raise ParameterError(f"repeated-group-kfold:{k}:{r} needs at least {k} groups, the selection has "
+                                 f"{n_groups}")
+        return [(np.asarray(tr), np.asarray(te)) for rep in range(r)
+                for tr, te in GroupKFold(n_splits=k, shuffle=True, random_state=seed + rep).split(dummy,
+                                                                                                  groups=groups)]
     if kind == "within-study-group-kfold":
         if studies is None:
             raise ParameterError("within-study-group-kfold needs each map's study")
