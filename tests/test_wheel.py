@@ -27,6 +27,10 @@ def test_schemas_and_presets_work_from_a_built_wheel(tmp_path):
     shipped = sorted(n.split("/")[-1] for n in names if n.startswith("mapstore/_schemas/"))
     assert shipped == sorted(p.name for p in (REPO / "schemas").glob("*.schema.json"))
     assert any(n.startswith("mapstore/indexing/presets/") for n in names)
+    # every package of the checkout is in the wheel (a new stage folder must be listed in pyproject.toml)
+    packages = sorted(str(p.parent.relative_to(REPO)) for p in (REPO / "mapstore").rglob("__init__.py"))
+    missing = [p for p in packages if f"{p}/__init__.py" not in names]
+    assert not missing, f"packages left out of the wheel: {missing}"
     # the unpacked wheel alone on the path (not the checkout): the CLI prints a schema, rules load a preset
     code = ("import sys; sys.path.insert(0, sys.argv[1]); import mapstore; assert mapstore.__file__.startswith("
             "sys.argv[1]), mapstore.__file__; from mapstore.cli import main; from mapstore.indexing import "
