@@ -191,7 +191,6 @@ class Store:
         import pandas as pd
 
         from .features import most_similar
-        from .select._query import _sql_list
 
         if not isinstance(k, int) or isinstance(k, bool) or k < 1:
             raise ParameterError(f"k must be a positive integer, got {k!r}")
@@ -215,7 +214,7 @@ class Store:
             "coalesce(l.concepts, []) AS concepts FROM maps m JOIN features f ON f.map_id = m.map_id AND "
             f"f.feature_set = '{fs.name}' LEFT JOIN (SELECT map_id, list(concept ORDER BY concept) AS concepts "
             "FROM labels WHERE direct GROUP BY map_id) l ON l.map_id = m.map_id "
-            f"WHERE m.map_id IN ({_sql_list(found['map_id'])})").to_pandas()
+            "WHERE m.map_id IN (" + ", ".join("'" + str(m).replace("'", "''") + "'" for m in found["map_id"]) + ")").to_pandas()
         return found.merge(info, on="map_id", how="left")[cols]
 
     def check(self, features: str | None = None, *, min_coverage: float = 0.8,

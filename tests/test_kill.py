@@ -64,7 +64,7 @@ def _stage_args(stage, w, store, out=None):
             "features": ["features", "--store", str(store), "--grid", "MNI152-3mm", "--jobs", "1"],
             "labels": ["labels", "--store", str(store), "--vocab", str(w["vocab"])],
             "export": ["export", "--store", str(store), "--out", str(out), "--concept", "go", "--concept", "stop",
-                       "--group-by", "subject", "--scheme", "group-kfold:2", "--overwrite"]}[stage]
+                       "--group-by", "subject", "--scheme", "stratified-group-kfold:2", "--overwrite"]}[stage]
 
 
 def _base(stage, w, dest):
