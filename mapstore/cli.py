@@ -305,7 +305,8 @@ def labels_cmd(store, vocab, inherit) -> None:
                    "fill 0, or keep NaN.")
 @click.option("--min-voxels", type=click.IntRange(min=1), help="With --missing common, refuse when fewer remain "
               "(default: 1% of the mask).")
-@click.option("--format", "fmt", type=click.Choice(["npy", "parquet"]), default="npy", show_default=True)
+@click.option("--format", "fmt", type=click.Choice(["npy", "parquet", "zarr"]), default="npy", show_default=True,
+              help="X as a memory-mappable .npy, one Parquet table, or a Zarr v3 array (chunks of rows).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing export folder.")
 def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_coverage, target, group_by, scheme,
                seed, allow_leak, participant_columns, one_stat, per_subject, allow_unseen, near_copy_r, with_broader,

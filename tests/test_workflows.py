@@ -272,3 +272,62 @@ def test_repeated_group_kfold_equals_scikit_learn_shuffled_runs(store):
     assert len(got) == 6
     for (_, te), want in zip(got, ref):
         np.testing.assert_array_equal(te, want)
+
+
+def test_x_streams_in_bounded_memory_and_equals_every_other_route(store, tmp_path):
+    import tracemalloc
+
+    sel = store.select(concepts=["hand-movement", "listening", "reading"], target="concept")
+    assert len(sel.voxels) < store.features().n_voxels  # the common policy drops columns here
+    full = store.features().matrix(sel.map_ids)[:, sel.voxels]  # reference: the rows, then the columns
+    tracemalloc.start()
+    X = sel.X
+    peak = tracemalloc.get_traced_memory()[1]
+    tracemalloc.stop()
+    np.testing.assert_array_equal(X, full)
+    assert peak <= 1.1 * X.nbytes + 64 * store.features().n_voxels * 4 * 2, (peak, X.nbytes)
+    blocks = list(sel.blocks(rows=7))
+    np.testing.assert_array_equal(np.concatenate([b for _, b, _ in blocks]), X)
+    assert [list(i) for i, _, _ in blocks][1] == list(range(7, 14))
+    np.testing.assert_array_equal(np.concatenate([y for _, _, y in blocks]), sel.y)
+    mm = sel.to_memmap(tmp_path / "X.npy")
+    np.testing.assert_array_equal(np.asarray(mm), X)
+    lazy = sel.to_dask(chunk_rows=10)
+    assert lazy.shape == X.shape and lazy.chunks[0][0] == 10
+    np.testing.assert_array_equal(lazy.compute(scheduler="synchronous"), X)
+
+
+@pytest.mark.slow
+def test_x_on_a_distributed_cluster_equals_numpy(store):
+    from dask.distributed import Client, LocalCluster
+
+    sel = store.select(concepts=["hand-movement", "listening", "reading"], target="concept")
+    with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, \
+            Client(cluster) as client:
+        mean = client.compute(sel.to_dask(chunk_rows=16).mean(axis=0)).result()
+    np.testing.assert_allclose(mean, sel.X.astype(np.float64).mean(axis=0), rtol=1e-5, atol=1e-6)
+
+
+def test_a_zarr_export_is_read_by_zarr_and_dask_and_verified(store, tmp_path):
+    import dask.array as da
+    import zarr
+
+    from mapstore.select._export import verify
+
+    sel = store.select(concepts=["hand-movement", "listening", "reading"], target="concept")
+    out = store.export(tmp_path / "z", sel, fmt="zarr").out
+    import xarray as xr
+
+    arr = zarr.open_array(f"{out}/X.zarr", path="X", mode="r")  # zarr itself, no mapstore
+    assert arr.metadata.zarr_format == 3 and arr.chunks[1] == arr.shape[1]
+    np.testing.assert_array_equal(arr[:], sel.X)
+    np.testing.assert_array_equal(da.from_zarr(f"{out}/X.zarr", component="X").compute(), sel.X)
+    ds = xr.open_zarr(f"{out}/X.zarr", consolidated=False)
+    assert ds["X"].dims == ("map", "column")
+    np.testing.assert_array_equal(ds["X"].values, sel.X)
+    np.testing.assert_array_equal(ds["voxel"].values, np.load(f"{out}/voxels.npy"))
+    assert verify(out).ok
+    arr = zarr.open_array(f"{out}/X.zarr", path="X", mode="r+")
+    arr[3, 5] = arr[3, 5] + 1  # a changed value is found
+    rep = verify(out)
+    assert not rep.ok and any("X.zarr row 3" in c for c in rep.changes)

@@ -26,6 +26,7 @@ class FeatureSet:
 
     def __init__(self, store_path: Path, name: str, entry: FeatureEntry) -> None:
         self.name = name
+        self.store_path, self.entry = Path(store_path), entry  # what a worker needs to open the set again
         # HEAD's paths are proven inside the store when it is read; again here for a record built by hand
         self.path = store_file(store_path, entry.dir, f"feature set {name!r} dir", folder=True)
         self._copies_path = store_file(store_path, entry.copies, f"feature set {name!r} copies") \

@@ -2,8 +2,10 @@
 
 Output folder::
 
-    X.npy             float32 (n_maps, n_voxels), memory-mappable   (or table.parquet with --format parquet);
-                      columns as the selection's missing-value policy keeps them
+    X.npy             float32 (n_maps, n_voxels), memory-mappable   (or table.parquet with --format parquet,
+                      or X.zarr with --format zarr: a Zarr v3 array, chunks of 64 rows x every column,
+                      compressed, readable by zarr, xarray and Dask); columns as the selection's
+                      missing-value policy keeps them
     voxels.npy        flat C-order grid index of each column of X (paints a row back onto the grid)
     y.npy / Y.npy     targets: class names, or a 0/1 matrix over concepts (with concepts.json)
     groups.npy        group label per row
@@ -46,7 +48,8 @@ __all__ = ["ExportReport", "VerifyReport", "export_selection", "verify", "json_s
 
 MANIFEST_FORMAT = "mapstore-export"
 BLOCK_ROWS = 64
-DATA_FILES = ("X.npy", "table.parquet")
+DATA_FILES = ("X.npy", "table.parquet", "X.zarr")
+FORMATS = ("npy", "parquet", "zarr")
 
 
 @dataclass
@@ -89,8 +92,13 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
     unless named; the manifest lists the ones that did.
     """
     t0 = time.perf_counter()
-    if fmt not in ("npy", "parquet"):
-        raise ParameterError(f"fmt must be 'npy' or 'parquet', got {fmt!r}")
+    if fmt not in FORMATS:
+        raise ParameterError(f"fmt must be one of {list(FORMATS)}, got {fmt!r}")
+    if fmt == "zarr":
+        try:
+            import zarr  # noqa: F401
+        except ImportError as exc:
+            raise ParameterError("the zarr format needs zarr >= 3: pip install 'mapstore[zarr]'") from exc
     kind, _ = parse_scheme(scheme)
     out = _check_out(sel, out, overwrite)
     personal = _participant_columns(sel, participant_columns)
@@ -106,6 +114,8 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         checkpoint()
         if fmt == "npy":
             _write_npy(tmp, sel, rows, meta_t)
+        elif fmt == "zarr":
+            _write_zarr(tmp, sel, rows, meta_t)
         else:
             _write_parquet(tmp, sel, rows, meta_t)
         if sel.concepts:
@@ -244,6 +254,33 @@ def _write_npy(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None
                 view = view[fh.write(view):]
             buf, spare = spare, buf
     checkpoint()
+    _write_side_files(tmp, sel, meta_t)
+
+
+def _write_zarr(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None:
+    """X as a Zarr v3 array (chunks of BLOCK_ROWS rows x every column, zarr's default compression),
+    written block by block; then the same side files as the npy layout."""
+    import zarr
+
+    n = len(rows.ids)
+    # a group (X and the grid voxel of each column, named dimensions): xarray opens it as a dataset
+    group = zarr.open_group(str(tmp / "X.zarr"), mode="w", zarr_format=3)
+    group.attrs["mapstore"] = {"rows": "maps, in meta.parquet's order", "columns": "voxel: flat C-order grid index"}
+    arr = group.create_array("X", shape=(n, len(rows.voxels)), dtype="float32",
+                             chunks=(BLOCK_ROWS, max(1, len(rows.voxels))), fill_value=np.nan,
+                             dimension_names=("map", "column"))
+    vox = group.create_array("voxel", shape=(len(rows.voxels),), dtype="int64", dimension_names=("column",))
+    vox[:] = sel.feature_set.mask_indices[rows.voxels].astype(np.int64)
+    buf = rows.buffer()
+    for start in range(0, n, BLOCK_ROWS):
+        block = rows.shape(sel.read_rows(start, buf))
+        arr[start:start + len(block)] = block
+        checkpoint()
+    _write_side_files(tmp, sel, meta_t)
+
+
+def _write_side_files(tmp: Path, sel: Selection, meta_t: pa.Table) -> None:
+    """y / Y, groups and meta beside X (the npy and zarr layouts)."""
     if sel.y is not None:
         np.save(tmp / "y.npy", _y_array(sel.y))
         checkpoint()
@@ -471,18 +508,26 @@ def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
         if i != len(sources):
             out.append(f"table.parquet has {i} rows, the manifest {len(sources)}")
         return out
-    f = folder / "X.npy"
+    name = "X.zarr" if man.get("layout") == "zarr" else "X.npy"
+    f = folder / name
     if not f.exists():
-        return ["export file missing: X.npy"]
+        return [f"export file missing: {name}"]
     try:
-        X = np.load(f, mmap_mode="r")
-    except (OSError, ValueError) as exc:
-        return [f"export file unreadable: X.npy ({exc})"]
-    if X.shape != tuple(man["shape"]) or X.dtype != np.float32:
-        return [f"export file changed: X.npy has shape {X.shape} {X.dtype}, the manifest {man['shape']} float32"]
-    for i, s in enumerate(sources):
-        if _row_hash(X[i]) != _x_hash(s):
-            out.append(f"exported row changed: X.npy row {i} ({s['map_id']})")
+        if name == "X.zarr":
+            import zarr
+
+            X = zarr.open_array(str(f), path="X", mode="r")
+        else:
+            X = np.load(f, mmap_mode="r")
+    except Exception as exc:  # noqa: BLE001 - numpy and zarr raise several kinds for a damaged file
+        return [f"export file unreadable: {name} ({exc})"]
+    if tuple(X.shape) != tuple(man["shape"]) or X.dtype != np.float32:
+        return [f"export file changed: {name} has shape {X.shape} {X.dtype}, the manifest {man['shape']} float32"]
+    for start in range(0, len(sources), BLOCK_ROWS):  # one read per block (a Zarr chunk)
+        block = np.asarray(X[start:start + BLOCK_ROWS])
+        for i, row in enumerate(block, start):
+            if i < len(sources) and _row_hash(row) != _x_hash(sources[i]):
+                out.append(f"exported row changed: {name} row {i} ({sources[i]['map_id']})")
     return out
 
 
@@ -521,7 +566,7 @@ def json_schemas() -> dict[str, dict[str, Any]]:
             "splits": {"type": "array"},
             "shape": {"type": "array", "items": {"type": "integer"}, "minItems": 2, "maxItems": 2},
             "dtype": {"const": "float32"},
-            "layout": {"enum": ["npy", "parquet"]},
+            "layout": {"enum": ["npy", "parquet", "zarr"]},
             "files": {"type": "object", "additionalProperties": {"type": "string"}},
             "sources": {"type": "array", "items": {
                 "type": "object",

@@ -385,12 +385,74 @@ class Selection:
         an imputer fitted on all maps would see the test folds.
         """
         if self._X is None:
-            full = self.read_rows(0, np.empty((len(self), self.feature_set.n_voxels), dtype=np.float32))
-            if self.missing == "zero":
-                full = np.nan_to_num(full, nan=0.0, copy=False)
-            voxels = self.voxels  # every mask voxel for zero and keep, unless the columns were fixed
-            self._X = full if len(voxels) == full.shape[1] else np.ascontiguousarray(full[:, voxels])
+            out = np.empty((len(self), len(self.voxels)), dtype=np.float32)
+            self._X = self._fill(out)
         return self._X
+
+    _BLOCK = 64  # rows read at a time when X keeps some of the mask's columns
+
+    def _fill(self, out: np.ndarray, start: int = 0) -> np.ndarray:
+        """Rows ``start ..`` of X read into ``out`` (n rows x X's columns): straight into it when X keeps
+        every mask voxel, else through a small buffer, so the peak is X's own size plus one block."""
+        voxels = self.voxels  # every mask voxel for zero and keep, unless the columns were fixed
+        n_vox = self.feature_set.n_voxels
+        if len(voxels) == n_vox:
+            self.read_rows(start, out)
+        else:
+            buf = np.empty((min(self._BLOCK, max(len(out), 1)), n_vox), dtype=np.float32)
+            for i in range(0, len(out), len(buf)):
+                got = self.read_rows(start + i, buf[:min(len(buf), len(out) - i)])
+                np.take(got, voxels, axis=1, out=out[i:i + len(got)])
+        if self.missing == "zero":
+            np.nan_to_num(out, nan=0.0, copy=False)
+        return out
+
+    def blocks(self, rows: int = 256):
+        """X in blocks of ``rows`` maps, as (indices, X block, y block): for learners that learn from
+        part of the data at a time (scikit-learn's ``partial_fit``), with X's columns and missing-value
+        policy; no more than one block is in memory.  ``y block`` is the block's ``y`` (or ``Y``)."""
+        if not isinstance(rows, int) or isinstance(rows, bool) or rows < 1:
+            raise ParameterError(f"rows must be a positive integer, got {rows!r}")
+        target = self.y if self.y is not None else self.Y
+        for start in range(0, len(self), rows):
+            idx = np.arange(start, min(len(self), start + rows))
+            block = self._fill(np.empty((len(idx), len(self.voxels)), dtype=np.float32), start)
+            yield idx, block, None if target is None else target[idx]
+
+    def to_memmap(self, path) -> np.ndarray:
+        """X written block by block to ``path`` (a ``.npy`` file) and opened memory-mapped: for a selection
+        larger than memory (the file holds X's float32 bytes; numpy reads pages as they are used)."""
+        import os
+
+        path = os.fspath(path)
+        out = np.lib.format.open_memmap(path, mode="w+", dtype=np.float32, shape=(len(self), len(self.voxels)))
+        for idx, block, _ in self.blocks():
+            out[idx[0]:idx[-1] + 1] = block
+        out.flush()
+        del out
+        return np.load(path, mmap_mode="r")
+
+    def to_dask(self, chunk_rows: int = 256):
+        """X as a lazy ``dask.array`` (chunks of ``chunk_rows`` maps x every column), read from the shards
+        when computed: on a ``distributed`` cluster the workers must see the store at the same path."""
+        try:
+            import dask
+            import dask.array as da
+        except ImportError as exc:
+            raise ParameterError("to_dask needs Dask: pip install 'mapstore[dask]'") from exc
+        if not isinstance(chunk_rows, int) or isinstance(chunk_rows, bool) or chunk_rows < 1:
+            raise ParameterError(f"chunk_rows must be a positive integer, got {chunk_rows!r}")
+        fs = self.feature_set
+        shards = self.meta["feature_shard"].to_numpy(object)
+        rows = self.meta["feature_row"].to_numpy()
+        voxels = self.voxels
+        parts = []
+        for start in range(0, len(self), chunk_rows):
+            stop = min(len(self), start + chunk_rows)
+            task = dask.delayed(_read_block, pure=True)(str(fs.store_path), fs.name, fs.entry,
+                                                        shards[start:stop], rows[start:stop], voxels, self.missing)
+            parts.append(da.from_delayed(task, shape=(stop - start, len(voxels)), dtype=np.float32))
+        return da.concatenate(parts, axis=0)
 
     def to_image(self, vector):
         """An image of a row of ``X`` or of a decoder's weights (one per column of ``X``).
@@ -509,6 +571,18 @@ class Selection:
         """Per map: index of the split where it is in the test set (-1 if never: holdout train)."""
         return fold_vector(self.splits(scheme, seed, allow_leak, near_copy_r), len(self))
 
+
+
+def _read_block(store: str, name: str, entry, shards, rows, voxels, missing: str) -> np.ndarray:
+    """Rows of one chunk of X, read from the shards (run on a Dask worker: nothing but paths travels)."""
+    from pathlib import Path
+
+    from ..features import FeatureSet
+
+    fs = FeatureSet(Path(store), name, entry)
+    full = fs.read_at(shards, rows, np.empty((len(rows), fs.n_voxels), dtype=np.float32))
+    out = full if len(voxels) == fs.n_voxels else np.ascontiguousarray(full[:, voxels])
+    return np.nan_to_num(out, nan=0.0, copy=False) if missing == "zero" else out
 
 
 def _as_pairs(splits, sel: "Selection") -> list[tuple[np.ndarray, np.ndarray]]:
