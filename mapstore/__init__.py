@@ -8,25 +8,35 @@ from __future__ import annotations
 
 from ._version import __version__
 
-from ._api import Store, open_store as open  # noqa: A001  (mirrors the builtin on purpose)
-from .indexing import IndexReport, index
-from .errors import MapstoreError
-from .select import ExportReport, VerifyReport, verify
-from .features import FeatureReport, FeatureSet, build_features
-from .labels import LabelReport, label_store as label, load_vocabulary
-from .select import Selection, align_columns, check_folds
-from .formats import HeaderFacts, read_header
-
-_LAZY = ("build_parcels", "fit_parcellation", "ParcelReducer")
+# Public names are loaded on first use (PEP 562): `import mapstore` and the CLI's help stay fast; each
+# name comes from the stage that defines it.
+_HOME = {
+    "Store": "._api", "open": "._api",
+    "IndexReport": ".indexing", "index": ".indexing",
+    "MapstoreError": ".errors",
+    "ExportReport": ".select", "VerifyReport": ".select", "verify": ".select", "Selection": ".select",
+    "align_columns": ".select", "check_folds": ".select",
+    "FeatureReport": ".features", "FeatureSet": ".features", "build_features": ".features",
+    "build_parcels": ".features", "fit_parcellation": ".features", "ParcelReducer": ".features",
+    "LabelReport": ".labels", "label": ".labels", "load_vocabulary": ".labels",
+    "HeaderFacts": ".formats", "read_header": ".formats",
+}
+_RENAMED = {"open": "open_store", "label": "label_store"}
 
 
 def __getattr__(name: str):
-    # parcel sets import scikit-learn: loaded on first use, not with the package
-    if name in _LAZY:
-        from . import features
+    home = _HOME.get(name)
+    if home is None:
+        raise AttributeError(f"module 'mapstore' has no attribute {name!r}")
+    import importlib
 
-        return getattr(features, name)
-    raise AttributeError(f"module 'mapstore' has no attribute {name!r}")
+    value = getattr(importlib.import_module(home, __name__), _RENAMED.get(name, name))
+    globals()[name] = value  # once loaded, an ordinary attribute
+    return value
+
+
+def __dir__() -> list[str]:
+    return sorted(set(globals()) | set(_HOME))
 
 
 __all__ = [

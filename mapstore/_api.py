@@ -4,17 +4,18 @@ from __future__ import annotations
 
 import os
 import weakref
+from typing import TYPE_CHECKING
 from pathlib import Path
 
 import pyarrow as pa
 
-from .check import CheckReport, check_store
 from .errors import FeatureError, ParameterError, StoreClosed
-from .select import ExportReport, export_selection
-from .features import FeatureSet
-from .labels import refresh_labels
-from .select import Selection, select
 from .store import Catalog, release_lease, take_lease
+
+if TYPE_CHECKING:  # the stages load when a method first needs them: opening a store for SQL stays light
+    from .check import CheckReport
+    from .features import FeatureSet
+    from .select import ExportReport, Selection
 
 __all__ = ["Store", "open_store"]
 
@@ -48,6 +49,8 @@ class Store:
         entry = catalog.head.labels
         if entry and entry.catalog != catalog.head.catalog and entry.copy:
             # the catalog was re-indexed after labelling: derive labels for it from the stored vocabulary
+            from .labels import refresh_labels
+
             catalog.use_table("labels", refresh_labels(catalog, entry))
         self._catalog: Catalog | None = catalog
 
@@ -110,6 +113,8 @@ class Store:
                                    f"{self.path}'")
         if name not in head.features:
             raise FeatureError(f"{self.path}: no feature set {name!r}; sets: {self.feature_sets() or 'none'}")
+        from .features import FeatureSet
+
         return FeatureSet(self.path, name, head.features[name])
 
     def select(self, where: str | None = None, *, concepts: list[str] | None = None,
@@ -162,6 +167,8 @@ class Store:
         >>> from sklearn.model_selection import cross_val_score                     # doctest: +SKIP
         >>> cross_val_score(model, sel.X, sel.y, cv=sel.splits("leave-one-group-out"))  # doctest: +SKIP
         """
+        from .select import select
+
         return select(self, where, concepts=concepts, task=task, stat=stat, features=features,
                       min_coverage=min_coverage, target=target, group_by=group_by, with_broader=with_broader,
                       missing=missing, min_voxels=min_voxels, one_stat=one_stat, per_subject=per_subject)
@@ -174,6 +181,8 @@ class Store:
 
         ``participant_columns`` (personal data: none by default) adds those participants.tsv
         columns to ``meta.parquet``; the manifest lists them."""
+        from .select import export_selection
+
         sel = selection if selection is not None else self.select(**select_options)
         return export_selection(sel, out, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt,
                                 overwrite=overwrite, near_copy_r=near_copy_r, allow_unseen=allow_unseen,
@@ -220,6 +229,8 @@ class Store:
     def check(self, features: str | None = None, *, min_coverage: float = 0.8,
               pictures: bool = True, min_agreement: float = 0.2) -> CheckReport:
         """Grid, space, coverage, stat-type, metadata, copy and concept-agreement findings (mapstore.check)."""
+        from .check import check_store
+
         return check_store(self, features, min_coverage=min_coverage, pictures=pictures,
                            min_agreement=min_agreement)
 

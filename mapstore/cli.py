@@ -14,15 +14,64 @@ from pathlib import Path
 import click
 
 from ._version import __version__
-from ._api import open_store
-from .indexing import index as run_index
-from .check import report_json
-from .demo import make_demo
 from .errors import MapstoreError
-from .select import verify as verify_export
-from .features import build_features
-from .formats import schema_names, schema_text
-from .labels import label_store
+
+# Each command imports the stage it runs when it runs: `mapstore --help` (and a typo) never pays for
+# numpy, pyarrow, DuckDB or scikit-learn.
+
+
+def open_store(path):
+    from ._api import open_store as run
+
+    return run(path)
+
+
+def run_index(*args, **kwargs):
+    from .indexing import index as run
+
+    return run(*args, **kwargs)
+
+
+def report_json(report) -> str:
+    from .check import report_json as run
+
+    return run(report)
+
+
+def make_demo(*args, **kwargs):
+    from .demo import make_demo as run
+
+    return run(*args, **kwargs)
+
+
+def verify_export(manifest):
+    from .select import verify as run
+
+    return run(manifest)
+
+
+def build_features(*args, **kwargs):
+    from .features import build_features as run
+
+    return run(*args, **kwargs)
+
+
+def schema_names() -> list[str]:
+    from .formats import schema_names as run
+
+    return run()
+
+
+def schema_text(name: str) -> str:
+    from .formats import schema_text as run
+
+    return run(name)
+
+
+def label_store(*args, **kwargs):
+    from .labels import label_store as run
+
+    return run(*args, **kwargs)
 
 FINDINGS_EXIT = 3  # check found something at --fail-on, or verify found a change (1 is a failure to run)
 

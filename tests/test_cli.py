@@ -128,3 +128,17 @@ def test_schema_command_prints_the_shipped_schemas(capsys):
     assert json.loads(capsys.readouterr().out) == json.loads(shipped)
     assert main(["schema", "nope"]) == 2
     assert "no schema 'nope'" in capsys.readouterr().err
+
+
+def test_help_loads_no_numeric_library():
+    """`mapstore --help` imports the CLI and click only: numpy, pyarrow, DuckDB and scikit-learn load
+    with the command that needs them (a fresh interpreter, its modules listed)."""
+    import subprocess
+    import sys
+
+    code = ("import sys; from mapstore.cli import main\ntry:\n    main(['--help'])\nexcept SystemExit:\n    pass\n"
+            "print(sorted(m for m in ('numpy', 'pyarrow', 'duckdb', 'sklearn', 'nibabel', 'scipy') if m in sys.modules))")
+    out = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True,
+                         cwd=Path(__file__).resolve().parents[1])
+    assert out.returncode == 0, out.stderr
+    assert out.stdout.strip().splitlines()[-1] == "[]"
