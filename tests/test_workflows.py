@@ -331,3 +331,24 @@ def test_a_zarr_export_is_read_by_zarr_and_dask_and_verified(store, tmp_path):
     arr[3, 5] = arr[3, 5] + 1  # a changed value is found
     rep = verify(out)
     assert not rep.ok and any("X.zarr row 3" in c for c in rep.changes)
+
+
+def test_parcels_fit_on_a_sample_of_a_memory_mapped_x(store, tmp_path):
+    from sklearn.cluster import FeatureAgglomeration
+
+    from mapstore import ParcelReducer
+
+    sel = store.select(concepts=["hand-movement", "listening", "reading"], target="concept")
+    mm = sel.to_memmap(tmp_path / "X.npy")
+    cols = np.arange(0, mm.shape[1], 50)  # a few hundred columns keep Ward clustering quick
+    small = np.ascontiguousarray(mm[:, cols])
+    np.save(tmp_path / "small.npy", small)
+    big = np.load(tmp_path / "small.npy", mmap_mode="r")
+    red = ParcelReducer(n_parcels=8, max_rows=20, random_state=3).fit(big)
+    rows = np.sort(np.random.default_rng(3).choice(len(big), 20, replace=False))
+    np.testing.assert_array_equal(red.fit_sample_, rows)
+    # reference: scikit-learn's FeatureAgglomeration on the drawn rows (the no-mask mode's equal)
+    ref = FeatureAgglomeration(n_clusters=8).fit(np.asarray(big[rows], dtype=np.float64))
+    assert len(set(zip(red.labels_, ref.labels_))) == 8  # the same partition, up to label names
+    red._BLOCK = 7  # transform reads a memory-mapped X in blocks: equal to the whole-array answer
+    np.testing.assert_allclose(red.transform(big), ref.transform(np.asarray(big, dtype=np.float64)), rtol=1e-10)

@@ -285,6 +285,10 @@ class ParcelReducer(TransformerMixin, BaseEstimator):
     method : {"ward", "kmeans", "complete", "average", "rena", "hierarchical_kmeans"}, default="ward"
         nilearn ``Parcellations`` method (used with a mask).
     random_state : int, default=0
+    max_rows : int, optional
+        Fit on at most this many rows, drawn at random (``random_state``) without replacement, when X
+        has more: for an X larger than memory given memory-mapped (``Selection.to_memmap``), only the
+        drawn rows are read.  ``transform`` then reads X in blocks of rows.
 
     Attributes
     ----------
@@ -294,6 +298,8 @@ class ParcelReducer(TransformerMixin, BaseEstimator):
         Columns of X seen in ``fit``.
     fit_rows_ : list of str
         SHA-256 of each row ``fit`` saw (what the leakage test checks).
+    fit_sample_ : ndarray or None
+        The rows ``fit`` drew (``max_rows``), or None when it saw every row.
 
     Examples
     --------
@@ -306,11 +312,13 @@ class ParcelReducer(TransformerMixin, BaseEstimator):
 
     _methods = ("ward", "kmeans", "complete", "average", "rena", "hierarchical_kmeans")
 
-    def __init__(self, mask_img=None, n_parcels: int = 100, method: str = "ward", random_state: int = 0) -> None:
+    def __init__(self, mask_img=None, n_parcels: int = 100, method: str = "ward", random_state: int = 0,
+                 max_rows: int | None = None) -> None:
         self.mask_img = mask_img
         self.n_parcels = n_parcels
         self.method = method
         self.random_state = random_state
+        self.max_rows = max_rows
 
     @classmethod
     def for_selection(cls, sel, n_parcels: int = 100, method: str = "ward", random_state: int = 0
@@ -325,9 +333,17 @@ class ParcelReducer(TransformerMixin, BaseEstimator):
             raise ParameterError(f"method must be one of {', '.join(self._methods)}; got {self.method!r}")
         if self.mask_img is not None and self.n_parcels < 2:
             raise ParameterError(f"n_parcels must be >= 2 with a mask, got {self.n_parcels!r}")
+        if self.max_rows is not None and (isinstance(self.max_rows, bool) or
+                                          not isinstance(self.max_rows, (int, np.integer)) or self.max_rows < 2):
+            raise ParameterError(f"max_rows must be an integer >= 2 or None, got {self.max_rows!r}")
 
     def fit(self, X, y=None) -> "ParcelReducer":
         self._check_params()
+        self.fit_sample_ = None
+        if self.max_rows is not None and isinstance(X, np.ndarray) and X.ndim == 2 and len(X) > self.max_rows:
+            rng = np.random.default_rng(self.random_state)
+            self.fit_sample_ = np.sort(rng.choice(len(X), int(self.max_rows), replace=False))
+            X = X[self.fit_sample_]  # a memory-mapped X: only these rows are read
         x = _finite(validate_data(self, X, dtype=np.float64, ensure_all_finite=False))
         if self.mask_img is not None:
             n_cols = int((image_target(self.mask_img).image_values(self.mask_img) > 0).sum())
@@ -342,8 +358,12 @@ class ParcelReducer(TransformerMixin, BaseEstimator):
             self.labels_ = _profile_labels(x, int(self.n_parcels))
         return self
 
+    _BLOCK = 1024  # rows of an ndarray X converted and reduced at a time
+
     def transform(self, X) -> np.ndarray:
         check_is_fitted(self, "labels_")  # scikit-learn's NotFittedError, as every estimator raises
+        if isinstance(X, np.ndarray) and X.ndim == 2 and len(X) > self._BLOCK:  # a large (memory-mapped) X
+            return np.concatenate([self.transform(X[i:i + self._BLOCK]) for i in range(0, len(X), self._BLOCK)])
         x = _finite(validate_data(self, X, dtype=np.float64, ensure_all_finite=False, reset=False))
         k = int(self.labels_.max()) + 1
         counts = np.bincount(self.labels_, minlength=k).astype(np.float64)
@@ -351,6 +371,16 @@ class ParcelReducer(TransformerMixin, BaseEstimator):
         for j in range(k):  # one column sum per parcel: X's columns are grouped by label
             sums[:, j] = x[:, self.labels_ == j].sum(axis=1)
         return sums / np.where(counts > 0, counts, 1)
+
+
+def _study_sample(studies: np.ndarray, n: int, seed: int) -> np.ndarray:
+    """``n`` row positions drawn without replacement, each study keeping its share (at least one row)."""
+    rng = np.random.default_rng(seed)
+    keys = np.asarray(studies).astype(str)
+    names, counts = np.unique(keys, return_counts=True)
+    quota = np.maximum(1, np.floor(counts / counts.sum() * n)).astype(int)
+    picked = [rng.choice(np.flatnonzero(keys == s), min(q, c), replace=False) for s, q, c in zip(names, quota, counts)]
+    return np.sort(np.concatenate(picked))
 
 
 def _finite(x: np.ndarray) -> np.ndarray:
@@ -387,8 +417,8 @@ def fit_labels(x: np.ndarray, mask_img, n_parcels: int, method: str, random_stat
     return lab.reshape(-1)
 
 
-def fit_parcellation(sel, name: str, *, n_parcels: int = 100, method: str = "ward", random_state: int = 0
-                     ) -> Path | dict[str, Path]:
+def fit_parcellation(sel, name: str, *, n_parcels: int = 100, method: str = "ward", random_state: int = 0,
+                     max_rows: int | None = None) -> Path | dict[str, Path]:
     """Fit nilearn ``Parcellations`` on a selection's maps and store its labels with provenance.
 
     The result lives in ``STORE/atlases/<name>/``: ``labels.nii.gz`` for a volume set, or
@@ -397,12 +427,16 @@ def fit_parcellation(sel, name: str, *, n_parcels: int = 100, method: str = "war
     version); the return value is the labels' path (a ``{"left": ..., "right": ...}`` pair for a
     surface set).  Build a parcel set from it with ``build_parcels(store, "store:<name>")``.  For decoding, fitting it on every map
     lets the test maps shape the parcels: use :class:`ParcelReducer` in the pipeline instead.
+    ``max_rows`` fits on that many maps drawn at random (``random_state``), in proportion to each study's
+    share, when the selection has more (only those rows are read); ``atlas.json`` lists the maps used.
     """
     import nilearn
 
     name = _safe(name)
     store_path = Path(sel.store.path)
     mask_img = _columns_image(sel.feature_set, sel.voxels)
+    if max_rows is not None and len(sel) > max_rows:
+        sel = sel.subset(_study_sample(sel.studies, int(max_rows), random_state))
     x = sel.X
     labels = fit_labels(x, mask_img, n_parcels, method, random_state)
     inside = sel.feature_set.target.image_values(mask_img) > 0

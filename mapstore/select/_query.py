@@ -526,6 +526,15 @@ class Selection:
         v = self.feature_set.transform(image, stat, **options)[self.voxels]
         return np.nan_to_num(v, nan=0.0) if self.missing == "zero" else v
 
+    def subset(self, indices) -> "Selection":
+        """The maps at ``indices`` (positions in this selection), with this selection's columns."""
+        idx = np.asarray(indices, dtype=np.int64)
+        if idx.ndim != 1 or (idx.size and (idx.min() < 0 or idx.max() >= len(self))):
+            raise ParameterError(f"indices must be positions 0 .. {len(self) - 1}")
+        return dataclasses.replace(
+            self, meta=self.meta.iloc[idx].reset_index(drop=True), y=None if self.y is None else self.y[idx],
+            Y=None if self.Y is None else self.Y[idx], groups=self.groups[idx], _X=None, _voxels=self.voxels)
+
     def with_columns(self, voxels: np.ndarray) -> "Selection":
         """This selection with ``X``'s columns fixed to ``voxels`` (positions in the feature set's mask),
         as :func:`align_columns` gives several selections one column set."""
