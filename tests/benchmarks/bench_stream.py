@@ -121,7 +121,7 @@ def main() -> None:
               f"peak RSS {res['blocks']['rss_mb']:.0f} MB")
         print(f"to_dask mean on 2 workers: {res['dask']['seconds']:.1f} s, client peak RSS {res['dask']['rss_mb']:.0f} MB, "
               f"worker peak RSS {res['dask']['worker_peak_mb']:.0f} MB (equal to numpy on the first 512 rows)")
-        print(f"np.save-like .npy write: {res['npy']['seconds']:.1f} s; zarr write (zstd level 1, as the export): {res["zarr"]["seconds"]:.1f} s; "
+        print(f"np.save-like .npy write: {res['npy']['seconds']:.1f} s; zarr write (zstd level 1, as the export): {res['zarr']['seconds']:.1f} s; "
               f"ratio zarr / npy throughput {res['npy']['seconds'] / res['zarr']['seconds']:.2f}")
 
 
