@@ -261,6 +261,7 @@ def _write_zarr(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> Non
     """X as a Zarr v3 array (chunks of BLOCK_ROWS rows x every column, zstd level 1),
     written block by block; then the same side files as the npy layout."""
     import zarr
+    from zarr.codecs import ZstdCodec
 
     n = len(rows.ids)
     # a group (X and the grid voxel of each column, named dimensions): xarray opens it as a dataset
@@ -269,7 +270,7 @@ def _write_zarr(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> Non
     # zstd at level 1: compressed (any reader of Zarr v3 decodes it) at about the speed of an uncompressed write
     arr = group.create_array("X", shape=(n, len(rows.voxels)), dtype="float32",
                              chunks=(BLOCK_ROWS, max(1, len(rows.voxels))), fill_value=np.nan,
-                             compressors=[zarr.codecs.ZstdCodec(level=1)], dimension_names=("map", "column"))
+                             compressors=[ZstdCodec(level=1)], dimension_names=("map", "column"))
     vox = group.create_array("voxel", shape=(len(rows.voxels),), dtype="int64", dimension_names=("column",))
     vox[:] = sel.feature_set.mask_indices[rows.voxels].astype(np.int64)
     buf = rows.buffer()
