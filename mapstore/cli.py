@@ -411,6 +411,49 @@ def similar_cmd(store, query, feature_set, k, absolute, stat, dof, fmt) -> None:
     write_table(pa.Table.from_pandas(df, preserve_index=False), fmt, None)
 
 
+@cli.command("pool")
+@STORE_OPTION
+@click.option("--out", required=True, type=click.Path(file_okay=False), help="Folder for the maps and peaks.")
+@click.option("--concept", "concepts", multiple=True, help="Pool the maps labelled with this concept (repeatable).")
+@click.option("--task", "tasks", multiple=True, help="Pool the maps of this task (repeatable).")
+@click.option("--where", help="SQL predicate over maps and participants' columns choosing the maps.")
+@click.option("--stat", "stats", multiple=True, default=("effect",), show_default=True,
+              help="Which maps to pool (repeatable): subjects' effect maps by default.")
+@click.option("--features", "feature_set", help="Feature set name (default: the default set).")
+@click.option("--method", type=click.Choice(["stouffer", "stouffer-weighted", "fisher", "fixed", "random"]),
+              default="random", show_default=True, help="How study maps are combined, voxel by voxel.")
+@click.option("--min-subjects", type=click.IntRange(min=2), default=3, show_default=True,
+              help="A study's map is missing where fewer of its subjects have a value.")
+@click.option("--min-studies", type=click.IntRange(min=1), default=2, show_default=True,
+              help="The pooled map is missing where fewer studies have a value.")
+@click.option("--fdr", "fdr_q", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.05,
+              show_default=True, help="False discovery rate for the threshold (Benjamini-Hochberg).")
+@click.option("--leave-one-out", is_flag=True, help="Also say how much each study moves the result.")
+def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min_subjects, min_studies, fdr_q,
+             leave_one_out) -> None:
+    """Do the studies agree, and where? Study maps of the chosen maps, combined across studies."""
+    import numpy as np
+
+    from .analyses import pool, write_pooled
+
+    st = open_store(store)
+    sel = st.select(where, concepts=list(concepts) or None, task=list(tasks) or None, stat=list(stats) or None,
+                    features=feature_set, target="concepts", missing="keep")
+    res = pool(sel, method, min_subjects=min_subjects, min_studies=min_studies, leave_one_out=leave_one_out)
+    prov = write_pooled(res, out, fdr_q)
+    tested = prov["fdr"]["n_tested"]
+    thr = prov["fdr"]["z_threshold"]
+    above = int(np.sum(res.z >= thr)) if np.isfinite(thr) else 0
+    click.echo(f"pooled {len(sel)} maps of {len(res.studies)} studies ({method}); {tested:,} voxels tested")
+    click.echo(f"FDR q={fdr_q:g}: z >= {thr:.2f}, {above:,} voxels" if np.isfinite(thr) else
+               f"FDR q={fdr_q:g}: no voxel survives")
+    if res.i2 is not None and np.isfinite(res.i2).any():
+        click.echo(f"between-study heterogeneity I^2: median {float(np.nanmedian(res.i2)):.2f}")
+    for p in res.peaks(5, threshold=thr if np.isfinite(thr) else None):
+        click.echo(f"  peak z {p['z']:.2f} at {p.get('mm', p['position'])} ({p['n_studies']} studies)")
+    click.echo(f"wrote {len(prov['files'])} files to {out}")
+
+
 @cli.command("verify")
 @click.argument("manifest", type=click.Path(exists=True))
 def verify_cmd(manifest) -> None:

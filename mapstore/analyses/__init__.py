@@ -1,7 +1,10 @@
-"""Analyses the field runs on pooled maps, built on selections: encoding models scored per voxel."""
+"""Analyses the field runs on pooled maps, built on selections: encoding models scored per voxel, and
+study-level maps combined across studies (image-based meta-analysis)."""
 
 from __future__ import annotations
 
 from ._encoding import EncodingScores, concept_descriptors, encoding_scores
+from ._pooled import METHODS, PooledMaps, StudyMaps, combine, fdr_threshold, pool, study_maps, write_pooled
 
-__all__ = ["EncodingScores", "concept_descriptors", "encoding_scores"]
+__all__ = ["EncodingScores", "concept_descriptors", "encoding_scores", "METHODS", "PooledMaps", "StudyMaps",
+           "combine", "fdr_threshold", "pool", "study_maps", "write_pooled"]

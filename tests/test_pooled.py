@@ -1,0 +1,183 @@
+"""Pooled-map statistics against the reference libraries and a published worked example.
+
+References: scipy's ``combine_pvalues`` (Stouffer, weighted Stouffer, Fisher); statsmodels'
+``combine_effects`` (fixed and DerSimonian-Laird random effects) and ``multipletests`` (fdr_bh);
+nilearn's ``SecondLevelModel`` (one-sample t); the BCG vaccine trials (Colditz et al., 1994, 13 trials),
+whose DerSimonian-Laird results on the log risk ratio are, from memory of metafor's documentation:
+estimate -0.7141, standard error 0.1787, tau^2 0.3088, I^2 92.12 %, Q 152.23.  Simulated studies with
+a known shared effect at a known voxel are invented.
+"""
+
+from __future__ import annotations
+
+import json
+from pathlib import Path
+
+import nibabel as nib
+import numpy as np
+import pytest
+
+import mapstore
+from mapstore.analyses import combine, fdr_threshold, pool, study_maps, write_pooled
+
+from .conftest import make_derivative, write_json, write_map
+
+pytest.importorskip("statsmodels")
+
+BCG = np.array([[4, 119, 11, 128], [6, 300, 29, 274], [3, 228, 11, 209], [62, 13536, 248, 12619],
+                [33, 5036, 47, 5761], [180, 1361, 372, 1079], [8, 2537, 10, 619], [505, 87886, 499, 87892],
+                [29, 7470, 45, 7232], [17, 1699, 65, 1600], [186, 50448, 141, 27197], [5, 2493, 3, 2338],
+                [27, 16886, 29, 17825]], dtype=float)
+
+
+def test_random_effects_reproduce_the_bcg_worked_example():
+    a, b, c, d = BCG.T
+    yi = np.log((a / (a + b)) / (c / (c + d)))
+    vi = 1 / a - 1 / (a + b) + 1 / c - 1 / (c + d)
+    got = combine(effect=yi[:, None], variance=vi[:, None], method="random")
+    assert abs(got["effect"][0] - -0.7141) < 5e-4 and abs(np.sqrt(got["variance"][0]) - 0.1787) < 5e-4
+    assert abs(got["tau2"][0] - 0.3088) < 5e-4 and abs(got["i2"][0] - 0.9212) < 5e-4
+    assert abs(got["q"][0] - 152.23) < 0.01
+
+
+def test_fixed_and_random_effects_equal_statsmodels_voxel_by_voxel(rng):
+    from statsmodels.stats.meta_analysis import combine_effects
+
+    k, v = 7, 60
+    effect = rng.normal(0.3, 0.5, size=(k, v))
+    variance = rng.uniform(0.02, 0.3, size=(k, v))
+    effect[2, :10] = np.nan  # a study that did not measure these voxels
+    for method, fe in (("fixed", True), ("random", False)):
+        got = combine(effect=effect, variance=variance, method=method)
+        for j in range(v):
+            ok = np.isfinite(effect[:, j])
+            ref = combine_effects(effect[ok, j], variance[ok, j], method_re="dl")
+            # DerSimonian-Laird truncates tau^2 at 0 (random effects are then fixed effects); statsmodels
+            # reports the untruncated moment estimate (and I^2 below 0) and weights with it
+            fixed_here = fe or ref.tau2 <= 0
+            mean, var = (ref.mean_effect_fe, ref.var_eff_w_fe) if fixed_here else (ref.mean_effect_re,
+                                                                                   ref.var_eff_w_re)
+            assert got["effect"][j] == pytest.approx(mean, rel=1e-9, abs=1e-12)
+            assert got["variance"][j] == pytest.approx(var, rel=1e-9)
+            assert got["q"][j] == pytest.approx(ref.q, rel=1e-9)
+            assert got["i2"][j] == pytest.approx(max(0.0, ref.i2), rel=1e-9, abs=1e-12)  # statsmodels: unclamped
+            assert got["tau2"][j] == pytest.approx(0.0 if fixed_here else ref.tau2, rel=1e-9, abs=1e-12)
+            assert got["n_studies"][j] == ok.sum()
+
+
+def test_stouffer_and_fisher_equal_scipy(rng):
+    from scipy import stats
+
+    k, v = 6, 80
+    z = rng.normal(0.8, 1.2, size=(k, v))
+    z[0, :5] = np.nan
+    n = rng.integers(10, 60, size=k)
+    for method, ref_method in (("stouffer", "stouffer"), ("stouffer-weighted", "stouffer"), ("fisher", "fisher")):
+        got = combine(z, n=n, method=method)
+        for j in range(v):
+            ok = np.isfinite(z[:, j])
+            p = stats.norm.sf(z[ok, j])
+            kw = {"weights": np.sqrt(n[ok])} if method == "stouffer-weighted" else {}
+            ref = stats.combine_pvalues(p, method=ref_method, **kw).pvalue
+            assert got["p"][j] == pytest.approx(ref, rel=1e-7, abs=1e-300)
+
+
+def test_fdr_equals_benjamini_hochberg_of_statsmodels(rng):
+    from scipy import stats
+    from statsmodels.stats.multitest import multipletests
+
+    z = np.concatenate([rng.normal(0, 1, 900), rng.normal(3.5, 1, 100), [np.nan] * 50])
+    thr = fdr_threshold(z, 0.05)
+    finite = z[np.isfinite(z)]
+    reject = multipletests(stats.norm.sf(finite), alpha=0.05, method="fdr_bh")[0]
+    np.testing.assert_array_equal(finite >= thr, reject)  # counted over the voxels tested (NaN left out)
+
+
+@pytest.fixture(scope="module")
+def shared(tmp_path_factory):
+    """Four invented studies of ten subjects; every subject's map carries one shared effect at a known
+    voxel (a Gaussian blob) plus noise; the fourth study's sign is flipped in a second store."""
+    base = tmp_path_factory.mktemp("pooled")
+    aff = np.diag([4.0, 4.0, 4.0, 1.0])
+    aff[:3, 3] = [-80, -112, -60]
+    shape = (41, 48, 40)
+    peak = (20, 30, 22)
+    ijk = np.indices(shape).reshape(3, -1).T
+    blob = np.exp(-((ijk - peak) ** 2).sum(axis=1) / (2 * 2.0 ** 2)).reshape(shape)
+    rng = np.random.default_rng(5)
+    stores = {}
+    for flip in (False, True):
+        roots = []
+        for s in range(4):
+            ds = make_derivative(base / f"flip{int(flip)}" / f"study{s}", f"study{s}")
+            sign = -1.0 if flip and s == 3 else 1.0
+            for i in range(10):
+                data = (sign * 2.0 * blob + rng.normal(0, 1.0, size=shape)).astype(np.float32)
+                write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-x_contrast-a_stat-effect_statmap.nii.gz", data, aff)
+            roots.append(ds)
+        store = base / f"store{int(flip)}"
+        mapstore.index(roots, store, progress=False, jobs=1)
+        grid = write_json(base / "grid.json", {"shape": list(shape), "affine": aff.tolist()})
+        mapstore.build_features(store, "own", grid=str(grid), progress=False, jobs=1)
+        stores[flip] = store
+    return stores, peak, aff
+
+
+def test_the_pooled_map_peaks_at_the_shared_effect_and_a_flipped_study_raises_i2(shared, tmp_path):
+    stores, peak, aff = shared
+    sel = mapstore.open(stores[False]).select(features="own", target="concepts", stat=["effect"])
+    # Stouffer on the studies' z maps: inverse-variance weights from ten subjects' variances are heavy-tailed
+    # (a study whose variance is small by chance dominates a voxel), z is not
+    top = pool(sel, "stouffer").peaks(1)[0]
+    assert np.abs(np.array(top["position"]) - peak).max() <= 1
+    assert top["n_studies"] == 4
+    res = pool(sel, "random", leave_one_out=True)
+    flipped = pool(mapstore.open(stores[True]).select(features="own", target="concepts", stat=["effect"]), "random")
+    j = _column_of(sel, peak)
+    assert flipped.i2[j] > res.i2[j] + 0.3
+    assert set(res.provenance["leave_one_out"]) == {f"study{s}" for s in range(4)}
+    prov = write_pooled(res, tmp_path / "out")
+    assert (tmp_path / "out" / "pooled_stat-z.nii.gz").exists() and (tmp_path / "out" / "peaks.tsv").exists()
+    assert json.loads((tmp_path / "out" / "pooled.json").read_text())["fdr"]["n_tested"] == prov["fdr"]["n_tested"]
+    img = nib.load(str(tmp_path / "out" / "pooled_stat-z.nii.gz"))
+    np.testing.assert_allclose(img.affine, aff)
+
+
+def _column_of(sel, ijk) -> int:
+    fs = sel.feature_set
+    flat = int(np.ravel_multi_index(ijk, fs.grid.shape))
+    return int(np.flatnonzero(fs.mask_indices[sel.voxels] == flat)[0])
+
+
+def test_study_maps_equal_nilearn_second_level_one_sample_t(shared):
+    from nilearn.glm.second_level import SecondLevelModel
+    import pandas as pd
+
+    stores, _, aff = shared
+    sel = mapstore.open(stores[False]).select(features="own", target="concepts", stat=["effect"],
+                                              where="study = 'study1'")
+    sm = study_maps(sel)
+    fs = sel.feature_set
+    imgs = [sel.to_image(row) for row in sel.X]
+    mask = sel.to_image(np.ones(len(sel.voxels), dtype=np.float32))
+    mask = nib.Nifti1Image((np.nan_to_num(mask.get_fdata()) > 0).astype(np.uint8), mask.affine)
+    model = SecondLevelModel(mask_img=mask).fit(imgs, design_matrix=pd.DataFrame({"intercept": [1] * len(imgs)}))
+    t_img = model.compute_contrast("intercept", output_type="stat")
+    ref = t_img.get_fdata().reshape(-1)[fs.mask_indices[sel.voxels]]
+    np.testing.assert_allclose(sm.t[0], ref, rtol=1e-4, atol=1e-4)
+    assert sm.n_subjects.tolist() == [10]
+
+
+def test_the_pool_command_writes_maps_and_peaks(shared, tmp_path, capsys):
+    from mapstore.cli import main
+
+    stores, peak, _ = shared
+    out = tmp_path / "cli"
+    code = main(["pool", "--store", str(stores[False]), "--features", "own", "--out", str(out),
+                 "--method", "stouffer", "--leave-one-out"])
+    text = capsys.readouterr().out
+    assert code == 0 and "pooled 40 maps of 4 studies (stouffer)" in text and "peak z" in text
+    assert {p.name for p in out.iterdir()} >= {"pooled_stat-z.nii.gz", "pooled_stat-p.nii.gz", "peaks.tsv",
+                                               "pooled.json"}
+    first = (out / "peaks.tsv").read_text().splitlines()[1].split("\t")
+    assert np.abs(np.array(first[2].split(","), dtype=int) - peak).max() <= 1
