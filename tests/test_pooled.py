@@ -11,7 +11,6 @@ a known shared effect at a known voxel are invented.
 from __future__ import annotations
 
 import json
-from pathlib import Path
 
 import nibabel as nib
 import numpy as np
