@@ -113,6 +113,8 @@ def shared(tmp_path_factory):
             for i in range(10):
                 data = (sign * 2.0 * blob + rng.normal(0, 1.0, size=shape)).astype(np.float32)
                 write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-x_contrast-a_stat-effect_statmap.nii.gz", data, aff)
+                write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-x_contrast-a_stat-variance_statmap.nii.gz",
+                          rng.uniform(0.5, 2.0, size=shape).astype(np.float32), aff)
             roots.append(ds)
         store = base / f"store{int(flip)}"
         mapstore.index(roots, store, progress=False, jobs=1)
@@ -180,3 +182,24 @@ def test_the_pool_command_writes_maps_and_peaks(shared, tmp_path, capsys):
                                                "pooled.json"}
     first = (out / "peaks.tsv").read_text().splitlines()[1].split("\t")
     assert np.abs(np.array(first[2].split(","), dtype=int) - peak).max() <= 1
+
+
+def test_streaming_combination_of_given_maps_equals_combine(shared):
+    from mapstore.analyses import pool_maps
+
+    stores, _, _ = shared
+    st = mapstore.open(stores[True])
+    eff = st.select(features="own", target="concepts", stat=["effect"])
+    var = st.select(features="own", target="concepts", stat=["variance"])
+    eff = eff.subset(np.argsort(eff.meta["participant"].to_numpy(), kind="stable"))
+    var = var.subset(np.argsort(var.meta["participant"].to_numpy(), kind="stable"))
+    assert list(eff.meta["participant"]) == list(var.meta["participant"])
+    E = eff.X.astype(np.float64)
+    V = var.with_columns(eff.voxels).X.astype(np.float64)
+    n = np.arange(10, 10 + len(eff))
+    for method in ("stouffer", "stouffer-weighted", "fisher", "fixed", "random"):
+        got = pool_maps(eff, method, variance=var, n=n, rows=7)  # blocks of 7 maps: the sums carry over
+        want = combine(E, effect=E, variance=V, n=n, method=method)
+        for key in ("z", "effect", "variance", "tau2", "i2", "q"):
+            if key in want:
+                np.testing.assert_allclose(getattr(got, key), want[key], rtol=1e-9, atol=1e-9, err_msg=(method, key))

@@ -26,7 +26,8 @@ from .._version import __version__
 from ..errors import ParameterError
 from ..select import Selection
 
-__all__ = ["StudyMaps", "PooledMaps", "study_maps", "combine", "pool", "fdr_threshold", "write_pooled", "METHODS"]
+__all__ = ["StudyMaps", "PooledMaps", "study_maps", "combine", "pool", "pool_maps", "fdr_threshold", "write_pooled",
+           "METHODS"]
 
 METHODS = ("stouffer", "stouffer-weighted", "fisher", "fixed", "random")
 _BLOCK = 8192  # voxels combined at a time
@@ -340,3 +341,91 @@ def write_pooled(result: PooledMaps, out, fdr_q: float = 0.05) -> dict[str, Any]
                                          "n_tested": int(np.isfinite(result.z).sum())}, files=written + ["peaks.tsv"])
     (folder / "pooled.json").write_text(json.dumps(prov, indent=1, default=str))
     return prov
+
+
+def pool_maps(sel: Selection, method: str = "stouffer", *, variance: Selection | None = None,
+              n: np.ndarray | None = None, rows: int | None = None) -> PooledMaps:
+    """Combine given study-level maps (one row of ``sel`` per study: z maps for ``stouffer``,
+    ``stouffer-weighted`` and ``fisher``; effect maps for ``fixed`` and ``random``, with ``variance``, a
+    selection of their variance maps in the same order) voxel by voxel, streaming the rows in blocks of
+    ``rows`` (default: about 32 MB of float64 per block): memory holds a few per-voxel sums and one block,
+    whatever the number of maps (random effects read the maps twice: tau^2 first).  Equal to
+    :func:`combine` on the stacked maps.
+    """
+    from scipy import stats
+
+    rows = rows or max(4, (32 << 20) // (8 * max(1, len(sel.voxels))))
+    if method not in METHODS:
+        raise ParameterError(f"method must be one of {list(METHODS)}, got {method!r}")
+    ncol = len(sel.voxels)
+    acc = {k: np.zeros(ncol) for k in ("k", "s1", "s2", "s3", "s4")}
+    if method in ("fixed", "random"):
+        if variance is None or len(variance) != len(sel):
+            raise ParameterError(f"method {method!r} needs the variance maps of the same studies (variance=...)")
+        variance = variance.with_columns(sel.voxels)
+
+        def pairs():
+            for (idx, e, _), (_, v, _) in zip(sel.blocks(rows), variance.blocks(rows)):
+                e, v = e.astype(np.float64), v.astype(np.float64)
+                ok = np.isfinite(e) & np.isfinite(v) & (v > 0)
+                yield idx, np.where(ok, e, 0.0), np.where(ok, 1.0 / np.where(ok, v, 1.0), 0.0), ok, v
+
+        for _, e, w, ok, _ in pairs():
+            acc["k"] += ok.sum(axis=0)
+            acc["s1"] += w.sum(axis=0)
+            acc["s2"] += (w * e).sum(axis=0)
+            acc["s3"] += (w * e * e).sum(axis=0)
+            acc["s4"] += (w * w).sum(axis=0)
+        k = acc["k"]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            fe = acc["s2"] / acc["s1"]
+            q = np.maximum(0.0, acc["s3"] - acc["s2"] ** 2 / acc["s1"])
+            i2 = np.where((k > 1) & (q > 0), np.maximum(0.0, (q - (k - 1)) / q), np.where(k > 1, 0.0, np.nan))
+            if method == "fixed":
+                est, var, tau2 = fe, 1.0 / acc["s1"], np.zeros(ncol)
+            else:
+                c = acc["s1"] - acc["s4"] / acc["s1"]
+                tau2 = np.where(k > 1, np.maximum(0.0, (q - (k - 1)) / c), 0.0)
+                sw, swe = np.zeros(ncol), np.zeros(ncol)
+                for _, e, _, ok, v in pairs():  # second pass: weights with tau^2
+                    wr = np.where(ok, 1.0 / (np.where(ok, v, 1.0) + tau2), 0.0)
+                    sw += wr.sum(axis=0)
+                    swe += (wr * e).sum(axis=0)
+                est, var = swe / sw, 1.0 / sw
+            z = est / np.sqrt(var)
+        none = k == 0
+        res = {"z": np.where(none, np.nan, z), "effect": np.where(none, np.nan, est),
+               "variance": np.where(none, np.nan, var), "tau2": np.where(none, np.nan, tau2),
+               "i2": i2, "q": np.where(none, np.nan, q)}
+    else:
+        weights = None
+        if method == "stouffer-weighted":
+            if n is None or len(n) != len(sel):
+                raise ParameterError("stouffer-weighted needs each study's sample size (n=..., one per row)")
+            weights = np.sqrt(np.asarray(n, dtype=np.float64))
+        for idx, zb, _ in sel.blocks(rows):
+            zb = zb.astype(np.float64)
+            ok = np.isfinite(zb)
+            z0 = np.where(ok, zb, 0.0)
+            acc["k"] += ok.sum(axis=0)
+            if method == "fisher":
+                acc["s1"] += np.where(ok, stats.norm.logsf(z0), 0.0).sum(axis=0)
+            else:
+                w = np.ones(len(idx)) if weights is None else weights[idx]
+                acc["s1"] += (w[:, None] * z0).sum(axis=0)
+                acc["s2"] += (np.where(ok, w[:, None] ** 2, 0.0)).sum(axis=0)
+        k = acc["k"]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            if method == "fisher":
+                chi = -2.0 * acc["s1"]
+                z = stats.norm.isf(stats.chi2.sf(chi, 2 * k))
+            else:
+                z = acc["s1"] / np.sqrt(acc["s2"])
+        res = {"z": np.where(k > 0, z, np.nan)}
+    res["p"] = np.where(np.isfinite(res["z"]), stats.norm.sf(res["z"]), np.nan)
+    studies = [str(s) for s in sel.studies]
+    prov = {"method": method, "given_maps": sel.map_ids, "feature_set": sel.feature_set.name, "query": sel.query,
+            "versions": {"mapstore": __version__, "numpy": np.__version__},
+            "created": time.strftime("%Y-%m-%dT%H:%M:%S")}
+    return PooledMaps(method, res["z"], res["p"], acc["k"].astype(np.int64), res.get("effect"), res.get("variance"),
+                      res.get("tau2"), res.get("i2"), res.get("q"), studies, sel, prov)

@@ -73,8 +73,9 @@ RUNS = {
 }
 
 
-def make_set(folder: Path, n_rows: int) -> int:
-    grid = builtin_grid("MNI152-3mm")
+def make_set(folder: Path, n_rows: int, grid_name: str = "MNI152-3mm", positive: bool = False) -> int:
+    """A feature set of ``n_rows`` random rows on a template's brain mask (positive values on request)."""
+    grid = builtin_grid(grid_name)
     mask = mni152_brain_mask(grid)
     set_dir = folder / "features" / "bench"
     (set_dir / "shards").mkdir(parents=True)
@@ -87,7 +88,8 @@ def make_set(folder: Path, n_rows: int) -> int:
     rows = []
     for k, start in enumerate(range(0, n_rows, SHARD)):
         m = min(SHARD, n_rows - start)
-        np.save(set_dir / "shards" / f"shard-{k:05d}.npy", rng.standard_normal((m, mask.n_voxels), dtype=np.float32))
+        block = rng.standard_normal((m, mask.n_voxels), dtype=np.float32)
+        np.save(set_dir / "shards" / f"shard-{k:05d}.npy", np.abs(block) + 0.1 if positive else block)
         rows += [{"map_id": f"m{start + j:07d}", "shard": f"shard-{k:05d}.npy", "row": j, "coverage": 1.0}
                  for j in range(m)]
     write_parquet_atomic(pa.Table.from_pylist(rows, schema=pa.schema([f for f in ROWS_SCHEMA if f.name in rows[0]])),

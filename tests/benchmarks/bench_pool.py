@@ -1,0 +1,90 @@
+"""Combining study maps at scale: ``pool_maps`` on N study maps x the MNI152 2 mm brain mask against
+reading the same bytes with ``np.load`` (same process, same run), with the peak memory of each.
+
+    python tests/benchmarks/bench_pool.py [--maps 1000]
+
+Effect and variance maps are written straight into two feature sets' shards (bench_stream.make_set);
+each measurement runs in a fresh process and reports its own peak RSS (VmHWM).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+
+ROOT = Path(__file__).resolve().parents[2]
+sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from bench_stream import SHARD, make_set  # noqa: E402
+
+SETUP = """
+import json, sys, time, glob
+sys.path.insert(0, {root!r})
+import numpy as np, pandas as pd
+from pathlib import Path
+from mapstore.features import FeatureSet
+from mapstore.select import Selection
+from mapstore.store import FeatureEntry
+from mapstore.analyses import pool_maps
+def peak_mb():
+    for line in open("/proc/self/status"):
+        if line.startswith("VmHWM:"):
+            return int(line.split()[1]) / 1024
+def selection(store):
+    fs = FeatureSet(Path(store), "bench", FeatureEntry("features/bench", "features/bench/rows.parquet", ""))
+    n = {maps}
+    meta = pd.DataFrame({{"map_id": [f"m{{i:07d}}" for i in range(n)], "study": [f"s{{i}}" for i in range(n)],
+                         "participant": [None] * n, "feature_shard": [f"shard-{{i // {shard}:05d}}.npy" for i in range(n)],
+                         "feature_row": [i % {shard} for i in range(n)], "coverage": np.ones(n)}})
+    return Selection(None, fs, meta, None, None, [], meta["study"].to_numpy(object), "study", "none", {{}}, missing="keep")
+t0 = time.perf_counter()
+"""
+
+RUNS = {
+    "read": "total = 0.0\nfor f in sorted(glob.glob({effect!r} + '/features/bench/shards/*.npy')):\n"
+            "    total += float(np.load(f)[0, 0])\n",
+    "stouffer": "res = pool_maps(selection({effect!r}), 'stouffer')\n",
+    "random": "res = pool_maps(selection({effect!r}), 'random', variance=selection({variance!r}))\n",
+}
+
+
+def run(kind: str, effect: Path, variance: Path, maps: int) -> dict:
+    code = SETUP.format(root=str(ROOT), maps=maps, shard=SHARD) + \
+        RUNS[kind].format(effect=str(effect), variance=str(variance)) + \
+        "\nprint(json.dumps({'seconds': time.perf_counter() - t0, 'rss_mb': peak_mb()}))\n"
+    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    if done.returncode:
+        sys.exit(f"{kind} failed:\n{done.stderr[-3000:]}")
+    return json.loads(done.stdout.strip().splitlines()[-1])
+
+
+def main() -> None:
+    ap = argparse.ArgumentParser()
+    ap.add_argument("--maps", type=int, default=1000)
+    args = ap.parse_args()
+    with tempfile.TemporaryDirectory(prefix="mapstore-bench-pool-") as tmp:
+        effect, variance = Path(tmp) / "effect", Path(tmp) / "variance"
+        t0 = time.perf_counter()
+        nv = make_set(effect, args.maps, "MNI152-2mm")
+        make_set(variance, args.maps, "MNI152-2mm", positive=True)
+        gb = args.maps * nv * 4 / 2 ** 30
+        print(f"{args.maps:,} effect and variance maps x {nv:,} voxels ({gb:.2f} GiB each) written in "
+              f"{time.perf_counter() - t0:.0f} s")
+        res = {k: run(k, effect, variance, args.maps) for k in ("read", "stouffer", "random")}
+        base = res["read"]["seconds"]
+        print(f"np.load of the effect maps' bytes: {base:.1f} s, peak RSS {res['read']['rss_mb']:.0f} MB")
+        for k, reads in (("stouffer", 1), ("random", 4)):
+            print(f"pool_maps {k}: {res[k]['seconds']:.1f} s, peak RSS {res[k]['rss_mb']:.0f} MB; ratio to one read of "
+                  f"the bytes it reads ({reads}x the effect maps' bytes): {res[k]['seconds'] / (base * reads):.2f}")
+
+
+if __name__ == "__main__":
+    os.environ.setdefault("OMP_NUM_THREADS", "2")
+    main()
