@@ -20,6 +20,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
+from ..analyses import combine
 from ..features import pair_correlation
 
 __all__ = ["Finding", "CheckReport", "check_store", "png_bytes", "report_json", "LEVELS"]
@@ -448,13 +449,17 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
         studies = {s: ids for s, ids in by[concept].items()}
         if len(studies) < 2:
             continue
-        means = {}
+        means, variances = {}, {}
         for s, ids in sorted(studies.items()):
             pick = ids if len(ids) <= _MAPS_PER_STUDY else \
                 [ids[i] for i in np.linspace(0, len(ids) - 1, _MAPS_PER_STUDY).astype(int)]
-            with np.errstate(invalid="ignore"), warnings.catch_warnings():
+            with np.errstate(invalid="ignore", divide="ignore"), warnings.catch_warnings():
                 warnings.simplefilter("ignore", RuntimeWarning)  # voxels no map of the study covers
-                means[s] = np.nanmean(_standardised(fs.matrix(pick)), axis=0).astype(np.float32)
+                std = _standardised(fs.matrix(pick))
+                means[s] = np.nanmean(std, axis=0).astype(np.float32)
+                n = np.isfinite(std).sum(axis=0)
+                # the variance of the study's mean map: for the pooled map and the heterogeneity across studies
+                variances[s] = np.where(n >= 3, np.nanvar(std, axis=0, ddof=1) / np.maximum(n, 1), np.nan)
         names = sorted(means)
         rs = []
         for i, a in enumerate(names):
@@ -465,8 +470,14 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
                              "maps_b": len(studies[b]), "r_of_means": round(r, 3), "common_voxels": n})
         finite = [r for r in rs if np.isfinite(r)]
         mean_r = float(np.mean(finite)) if finite else float("nan")
+        pooled = combine(effect=np.stack([means[s] for s in names]), variance=np.stack([variances[s] for s in names]),
+                         method="random")
+        i2 = pooled["i2"][np.isfinite(pooled["i2"])]
+        zmax = pooled["z"][np.isfinite(pooled["z"])]
         summary.append({"concept": concept, "studies": len(names), "maps": sum(len(v) for v in studies.values()),
-                        "mean_cross_study_r": round(mean_r, 3), "min_r": round(min(finite), 3) if finite else None})
+                        "mean_cross_study_r": round(mean_r, 3), "min_r": round(min(finite), 3) if finite else None,
+                        "pooled_max_z": round(float(zmax.max()), 2) if zmax.size else None,
+                        "median_I2": round(float(np.median(i2)), 3) if i2.size else None})
         if not finite or mean_r < min_agreement:
             add(Finding("warning", "concepts", "low-concept-agreement", concept,
                         f"concept {concept!r}: the mean maps of its {len(names)} studies correlate at r = {mean_r:.2f} "
@@ -477,7 +488,8 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
         tiles[concept] = [(s, means[s]) for s in names]
     if summary:
         report.add_table("concept-agreement", "concept agreement across studies (mean of each study's standardised "
-                         "maps)", pa.Table.from_pylist(summary))
+                         "maps; pooled by random effects: the largest pooled z and the median I^2, the share of "
+                         "variation between studies)", pa.Table.from_pylist(summary))
         report.add_table("concept-agreement-pairs", "concept agreement, study x study (r of the study means)",
                          pa.Table.from_pylist(rows))
     if pictures and tiles:
