@@ -202,4 +202,5 @@ def test_streaming_combination_of_given_maps_equals_combine(shared):
         want = combine(E, effect=E, variance=V, n=n, method=method)
         for key in ("z", "effect", "variance", "tau2", "i2", "q"):
             if key in want:
-                np.testing.assert_allclose(getattr(got, key), want[key], rtol=1e-9, atol=1e-9, err_msg=(method, key))
+                # float32 maps, products in float32 summed in float64: equal to float64 throughout within 1e-5
+                np.testing.assert_allclose(getattr(got, key), want[key], rtol=1e-5, atol=1e-6, err_msg=(method, key))

@@ -365,17 +365,27 @@ def pool_maps(sel: Selection, method: str = "stouffer", *, variance: Selection |
         variance = variance.with_columns(sel.voxels)
 
         def pairs():
+            """Blocks of (effect, 1 / variance, measured), float32, zero where not measured (in place)."""
             for (idx, e, _), (_, v, _) in zip(sel.blocks(rows), variance.blocks(rows)):
-                e, v = e.astype(np.float64), v.astype(np.float64)
-                ok = np.isfinite(e) & np.isfinite(v) & (v > 0)
-                yield idx, np.where(ok, e, 0.0), np.where(ok, 1.0 / np.where(ok, v, 1.0), 0.0), ok, v
+                with np.errstate(invalid="ignore", divide="ignore"):
+                    ok = np.isfinite(e) & np.isfinite(v) & (v > 0)
+                    np.reciprocal(v, out=v)
+                e[~ok] = 0.0
+                v[~ok] = 0.0
+                yield idx, e, v, ok
 
-        for _, e, w, ok, _ in pairs():
+        def add(total: np.ndarray, block: np.ndarray) -> None:
+            total += np.add.reduce(block, axis=0, dtype=np.float64)
+
+        for _, e, w, ok in pairs():
             acc["k"] += ok.sum(axis=0)
-            acc["s1"] += w.sum(axis=0)
-            acc["s2"] += (w * e).sum(axis=0)
-            acc["s3"] += (w * e * e).sum(axis=0)
-            acc["s4"] += (w * w).sum(axis=0)
+            add(acc["s1"], w)
+            we = w * e
+            add(acc["s2"], we)
+            we *= e
+            add(acc["s3"], we)
+            np.multiply(w, w, out=we)
+            add(acc["s4"], we)
         k = acc["k"]
         with np.errstate(invalid="ignore", divide="ignore"):
             fe = acc["s2"] / acc["s1"]
@@ -387,10 +397,14 @@ def pool_maps(sel: Selection, method: str = "stouffer", *, variance: Selection |
                 c = acc["s1"] - acc["s4"] / acc["s1"]
                 tau2 = np.where(k > 1, np.maximum(0.0, (q - (k - 1)) / c), 0.0)
                 sw, swe = np.zeros(ncol), np.zeros(ncol)
-                for _, e, _, ok, v in pairs():  # second pass: weights with tau^2
-                    wr = np.where(ok, 1.0 / (np.where(ok, v, 1.0) + tau2), 0.0)
-                    sw += wr.sum(axis=0)
-                    swe += (wr * e).sum(axis=0)
+                tau32 = tau2.astype(np.float32)
+                for _, e, w, ok in pairs():  # second pass: weights 1 / (v + tau^2)
+                    with np.errstate(divide="ignore"):
+                        wr = np.reciprocal(np.reciprocal(w) + tau32)
+                    wr[~ok] = 0.0
+                    add(sw, wr)
+                    wr *= e
+                    add(swe, wr)
                 est, var = swe / sw, 1.0 / sw
             z = est / np.sqrt(var)
         none = k == 0
@@ -404,16 +418,19 @@ def pool_maps(sel: Selection, method: str = "stouffer", *, variance: Selection |
                 raise ParameterError("stouffer-weighted needs each study's sample size (n=..., one per row)")
             weights = np.sqrt(np.asarray(n, dtype=np.float64))
         for idx, zb, _ in sel.blocks(rows):
-            zb = zb.astype(np.float64)
             ok = np.isfinite(zb)
-            z0 = np.where(ok, zb, 0.0)
             acc["k"] += ok.sum(axis=0)
+            np.nan_to_num(zb, copy=False, nan=0.0)  # the block is this loop's own: zeroed in place
             if method == "fisher":
-                acc["s1"] += np.where(ok, stats.norm.logsf(z0), 0.0).sum(axis=0)
+                acc["s1"] += np.where(ok, stats.norm.logsf(zb.astype(np.float64)), 0.0).sum(axis=0)
+            elif weights is None:
+                acc["s1"] += np.add.reduce(zb, axis=0, dtype=np.float64)
             else:
-                w = np.ones(len(idx)) if weights is None else weights[idx]
-                acc["s1"] += (w[:, None] * z0).sum(axis=0)
-                acc["s2"] += (np.where(ok, w[:, None] ** 2, 0.0)).sum(axis=0)
+                w = weights[idx]
+                acc["s1"] += np.add.reduce(w[:, None] * zb, axis=0, dtype=np.float64)
+                acc["s2"] += (ok * (w[:, None] ** 2)).sum(axis=0)
+        if method == "stouffer":
+            acc["s2"] = acc["k"].copy()
         k = acc["k"]
         with np.errstate(invalid="ignore", divide="ignore"):
             if method == "fisher":
