@@ -457,7 +457,19 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
 @cli.command("verify")
 @click.argument("manifest", type=click.Path(exists=True))
 def verify_cmd(manifest) -> None:
-    """Re-check an export's MANIFEST against its sources and store; exit 3 if anything changed."""
+    """Re-check an export's MANIFEST (or a folder 'mapstore pool' wrote) against its sources and store; exit 3
+    if anything changed."""
+    if Path(manifest).is_dir() and (Path(manifest) / "pooled.json").exists():
+        from .analyses import verify_pooled
+
+        changes = verify_pooled(manifest)
+        click.echo(f"{manifest}: pooled maps, their sources and files checked: "
+                   + ("all match" if not changes else f"{len(changes)} change(s)"))
+        for c in changes[:20]:
+            click.echo(f"  {c}")
+        if changes:
+            raise click.exceptions.Exit(FINDINGS_EXIT)
+        return
     report = verify_export(manifest)
     click.echo(report.summary())
     if not report.ok:

@@ -204,3 +204,18 @@ def test_streaming_combination_of_given_maps_equals_combine(shared):
             if key in want:
                 # float32 maps, products in float32 summed in float64: equal to float64 throughout within 1e-5
                 np.testing.assert_allclose(getattr(got, key), want[key], rtol=1e-5, atol=1e-6, err_msg=(method, key))
+
+
+def test_verify_finds_a_changed_pooled_output_or_source(shared, tmp_path, capsys):
+    import shutil
+
+    from mapstore.cli import main
+
+    stores, _, _ = shared
+    out = tmp_path / "v"
+    assert main(["pool", "--store", str(stores[False]), "--features", "own", "--out", str(out)]) == 0
+    assert main(["verify", str(out)]) == 0
+    (out / "peaks.tsv").write_text("edited\\n")
+    assert main(["verify", str(out)]) == 3
+    assert "output file changed: peaks.tsv" in capsys.readouterr().out
+    shutil.rmtree(out)

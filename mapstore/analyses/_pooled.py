@@ -27,7 +27,7 @@ from ..errors import ParameterError
 from ..select import Selection
 
 __all__ = ["StudyMaps", "PooledMaps", "study_maps", "combine", "pool", "pool_maps", "fdr_threshold", "write_pooled",
-           "METHODS"]
+           "verify_pooled", "METHODS"]
 
 METHODS = ("stouffer", "stouffer-weighted", "fisher", "fixed", "random")
 _BLOCK = 8192  # voxels combined at a time
@@ -270,6 +270,7 @@ def pool(sel: Selection, method: str = "random", *, min_subjects: int = 3, min_s
         if key in res:
             res[key] = np.where(few, np.nan, res[key])
     prov = {"method": method, "min_subjects": min_subjects, "min_studies": min_studies,
+            "store": str(sel.store.path) if sel.store is not None else None,
             "studies": {s: int(n) for s, n in zip(sm.studies, sm.n_subjects)}, "query": sel.query,
             "feature_set": sel.feature_set.name, "maps": sel.map_ids,
             "row_sha256": sel.meta["feature_row_sha256"].tolist() if "feature_row_sha256" in sel.meta else [],
@@ -337,10 +338,56 @@ def write_pooled(result: PooledMaps, out, fdr_q: float = 0.05) -> dict[str, Any]
         for p in peaks:
             fh.write(f"{p['z']:.4f}\t{p['n_studies']}\t{','.join(map(str, p['position']))}\t"
                      f"{','.join(map(str, p.get('mm', [])))}\n")
+    from ..formats import sha256_file
+
+    files = written + ["peaks.tsv"]
     prov = dict(result.provenance, fdr={"q": fdr_q, "z_threshold": thr,
-                                         "n_tested": int(np.isfinite(result.z).sum())}, files=written + ["peaks.tsv"])
+                                         "n_tested": int(np.isfinite(result.z).sum())}, files=files,
+                file_sha256={f: sha256_file(str(folder / f)) for f in files}, sources=_sources(result))
     (folder / "pooled.json").write_text(json.dumps(prov, indent=1, default=str))
     return prov
+
+
+def _sources(result: PooledMaps) -> list[dict[str, Any]]:
+    """Each pooled map's source file (path, sha256) and the store row it was read from (row hash)."""
+    sel = result.selection
+    if sel is None or sel.store is None:
+        return []
+    import os
+
+    roots = {r["dataset"]: r["root"] for r in sel.store.sql("SELECT dataset, root FROM datasets").to_pylist()}
+    rows = sel.meta.get("feature_row_sha256")
+    return [{"map_id": m.map_id, "path": os.path.join(roots.get(m.dataset, ""), m.relpath), "sha256": m.sha256,
+             "row_sha256": None if rows is None else rows.iloc[i]}
+            for i, m in enumerate(sel.meta.itertuples(index=False))]
+
+
+def verify_pooled(folder) -> list[str]:
+    """What changed since ``write_pooled`` wrote ``folder``: its files, the source maps, the store's rows."""
+    import os
+    from pathlib import Path
+
+    from ..formats import sha256_file
+
+    folder = Path(os.fspath(folder))
+    try:
+        prov = json.loads((folder / "pooled.json").read_text())
+    except (OSError, ValueError) as exc:
+        raise ParameterError(f"{folder}: no readable pooled.json ({exc}); give a folder 'mapstore pool' wrote") from exc
+    changes = []
+    for name, sha in (prov.get("file_sha256") or {}).items():
+        p = folder / str(name)
+        if "/" in str(name) or not p.is_file():
+            changes.append(f"output file missing: {name}")
+        elif sha256_file(str(p)) != sha:
+            changes.append(f"output file changed: {name}")
+    for s in prov.get("sources") or []:
+        p = Path(str(s.get("path")))
+        if not p.is_file():
+            changes.append(f"source missing: {p}")
+        elif s.get("sha256") and sha256_file(str(p)) != s["sha256"]:
+            changes.append(f"source changed: {p}")
+    return changes
 
 
 def pool_maps(sel: Selection, method: str = "stouffer", *, variance: Selection | None = None,
