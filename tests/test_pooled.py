@@ -219,3 +219,14 @@ def test_verify_finds_a_changed_pooled_output_or_source(shared, tmp_path, capsys
     assert main(["verify", str(out)]) == 3
     assert "output file changed: peaks.tsv" in capsys.readouterr().out
     shutil.rmtree(out)
+
+
+def test_map_families_pair_each_effect_with_its_variance(shared):
+    stores, _, _ = shared
+    st = mapstore.open(stores[True])
+    pairs = st.sql("SELECT e.map_id AS effect, v.map_id AS variance, e.relpath AS e_path, v.relpath AS v_path "
+                   "FROM map_families e JOIN map_families v USING (family) "
+                   "WHERE e.stat = 'effect' AND v.stat = 'variance'").to_pylist()
+    assert len(pairs) == 40  # every subject's effect map has exactly its own variance map
+    for p in pairs:
+        assert p["e_path"].replace("stat-effect", "stat-variance") == p["v_path"]

@@ -528,6 +528,10 @@ class Catalog:
         views = _ViewBuilder(con, self)
         manifest = self.manifest()
         views.files("maps", MAPS_SCHEMA, [self.path / p.maps for p in manifest.parts])
+        # the maps of one contrast of one model (effect, variance, t, z, p): names equal but for stat-<x>
+        con.execute("CREATE VIEW map_families AS SELECT md5(dataset || '/' || regexp_replace(relpath, "
+                    "'_stat-[^_/]+', '') || '#' || coalesce(CAST(map_index AS VARCHAR), ''))[:16] AS family, "
+                    "map_id, stat, dataset, sub, ses, run, task, contrast, relpath FROM maps")
         snap = self.path / self.head.catalog if self.head.catalog else None
         for name, schema in (("datasets", DATASETS_SCHEMA), ("problems", PROBLEMS_SCHEMA),
                              ("participants", PARTICIPANTS_SCHEMA)):
@@ -605,7 +609,7 @@ class Catalog:
             raise QueryError(f"{str(exc).splitlines()[0]}") from exc
         except duckdb.Error as exc:
             raise QueryError(f"{exc}\n(views: {', '.join(self.TABLES)}, features, feature_sets, "
-                             f"feature_problems, feature_copies; see 'mapstore sql --store "
+                             f"feature_problems, feature_copies, map_families; see 'mapstore sql --store "
                              f"{self.path} \"DESCRIBE maps\"')") from exc
 
 
