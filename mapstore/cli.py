@@ -84,6 +84,7 @@ def _target(path: str | None, option: str) -> None:
 
 
 STORE_OPTION = click.option("--store", "store", required=True, type=click.Path(file_okay=False),
+                            envvar="MAPSTORE_STORE", show_envvar=True,
                             help="Store folder (created by 'mapstore index').")
 
 
@@ -217,7 +218,8 @@ def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_addr
               show_default=True)
 @click.option("--out", type=click.Path(dir_okay=False), help="Write to FILE instead of standard output.")
 def sql_cmd(store, query, fmt, out) -> None:
-    """Run a read-only SQL QUERY over the views maps, datasets, participants, problems, labels."""
+    """Run a read-only SQL QUERY over the views maps, datasets, participants, problems, labels, features,
+    feature_sets, feature_problems, feature_copies and map_families."""
     _target(out, "--out")
     table = open_store(store).sql(query)
     write_table(table, fmt, out)
@@ -225,7 +227,8 @@ def sql_cmd(store, query, fmt, out) -> None:
 
 @cli.command("features")
 @STORE_OPTION
-@click.option("--name", help="Feature set name (default: 'default' for the default settings).")
+@click.option("--features", "--name", "name",
+              help="Feature set name (default: 'default' for the default settings).")
 @click.option("--grid", default="MNI152-2mm", show_default=True,
               help="MNI152-1mm|MNI152-2mm|MNI152-3mm, a reference image, or a JSON {shape, affine} file; "
                    "fsaverage5 or a JSON mesh description (GIFTI surfaces per hemisphere) for a surface set "
@@ -279,7 +282,7 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
 @STORE_OPTION
 @click.option("--atlas", required=True, help="A label image or a 4-D probabilistic atlas (NIfTI) for a volume "
               "set; LEFT.gii,RIGHT.gii label files for a surface set; store:NAME for a stored parcellation.")
-@click.option("--source", help="The voxel or surface set to reduce (default: the default set).")
+@click.option("--features", "--source", "source", help="The voxel or surface set to reduce (default: the default set).")
 @click.option("--name", help="Name of the parcel set (default: SOURCE-ATLAS).")
 def parcels_cmd(store, atlas, source, name) -> None:
     """Reduce a feature set to one value per parcel of an atlas (a new feature set)."""
@@ -487,7 +490,7 @@ def verify_cmd(manifest) -> None:
 @click.option("--format", "fmt", type=click.Choice(["summary", "table", "json"]), default="summary",
               show_default=True)
 @click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error", show_default=True,
-              help="Exit 1 when a finding is at this level or worse.")
+              help="Exit 3 when a finding is at this level or worse.")
 def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fail_on) -> None:
     """Check grids, space, coverage, stat types, metadata, copies and concept agreement of a store."""
     _target(html_out, "--html")

@@ -142,3 +142,15 @@ def test_help_loads_no_numeric_library():
                          cwd=Path(__file__).resolve().parents[1])
     assert out.returncode == 0, out.stderr
     assert out.stdout.strip().splitlines()[-1] == "[]"
+
+
+def test_the_store_comes_from_the_environment_and_the_set_option_has_one_name(demo_store, tmp_path, monkeypatch,
+                                                                              capsys):
+    monkeypatch.setenv("MAPSTORE_STORE", str(demo_store))
+    assert main(["sql", "SELECT count(*) AS n FROM maps"]) == 0
+    assert "(1 row)" in capsys.readouterr().out
+    runner = CliRunner()
+    for cmd in ("features", "parcels", "export", "check", "similar"):
+        assert "--features" in runner.invoke(cli, [cmd, "--help"]).output, cmd
+    assert "Exit 3 when a finding" in runner.invoke(cli, ["check", "--help"]).output
+    assert "map_families" in runner.invoke(cli, ["sql", "--help"]).output

@@ -57,6 +57,11 @@ class CheckReport:
     pictures: dict[str, bytes] = field(default_factory=dict)  # PNG bytes by stable id (``coverage``, ...)
     titles: dict[str, str] = field(default_factory=dict)  # what a person reads above a table or picture
 
+    def __repr__(self) -> str:
+        return (f"CheckReport({self.store!r}, feature set {self.feature_set!r}: {self.count('error')} error(s), "
+                f"{self.count('warning')} warning(s), {self.count('info')} note(s); tables: "
+                f"{', '.join(self.tables) or 'none'})")
+
     def add_table(self, key: str, title: str, table: pa.Table) -> None:
         self.tables[key], self.titles[key] = table, title
 

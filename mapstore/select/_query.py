@@ -320,6 +320,14 @@ class Selection:
     def __len__(self) -> int:
         return len(self.meta)
 
+    def __repr__(self) -> str:
+        studies = self.meta["study"].nunique() if "study" in self.meta else 0
+        target = f"y: {len(set(map(str, self.y)))} classes" if self.y is not None and self.y.dtype.kind == "O" \
+            else "y: numeric" if self.y is not None else f"Y: {len(self.concepts)} concepts"
+        cols = f"{len(self._voxels):,} columns" if self._voxels is not None else "columns not read yet"
+        return (f"Selection({len(self)} maps of {studies} studies, feature set {self.feature_set.name!r}, {cols}, "
+                f"target {self.target!r} ({target}), groups by {self.group_by!r}, missing={self.missing!r})")
+
     @property
     def map_ids(self) -> list[str]:
         return self.meta["map_id"].tolist()
