@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import json
 import shutil
+from pathlib import Path
 
 import numpy as np
 import pandas as pd
@@ -352,3 +353,20 @@ def test_parcels_fit_on_a_sample_of_a_memory_mapped_x(store, tmp_path):
     assert len(set(zip(red.labels_, ref.labels_))) == 8  # the same partition, up to label names
     red._BLOCK = 7  # transform reads a memory-mapped X in blocks: equal to the whole-array answer
     np.testing.assert_allclose(red.transform(big), ref.transform(np.asarray(big, dtype=np.float64)), rtol=1e-10)
+
+
+def test_an_export_puts_its_columns_back_on_the_brain_without_mapstore(store, tmp_path):
+    import nibabel as nib
+    import pyarrow.parquet as pq
+
+    sel = store.select(concepts=["hand-movement", "listening"], target="concept")
+    out = Path(store.export(tmp_path / "e", sel).out)
+    X = np.load(out / "X.npy")
+    cols = pq.read_table(out / "columns.parquet").to_pandas()
+    mask = nib.load(str(out / "mask.nii.gz"))  # nibabel alone: the columns' voxels on the grid
+    assert int(np.asarray(mask.dataobj).sum()) == X.shape[1] == len(cols)
+    vol = np.full(mask.shape, np.nan, dtype=np.float32)
+    vol[cols["i"], cols["j"], cols["k"]] = X[0]
+    np.testing.assert_array_equal(vol, np.asarray(sel.to_image(sel.X[0]).dataobj))
+    ijk1 = np.c_[cols[["i", "j", "k"]].to_numpy(), np.ones(len(cols))]
+    np.testing.assert_allclose((mask.affine @ ijk1.T)[:3].T, cols[["x_mm", "y_mm", "z_mm"]].to_numpy())

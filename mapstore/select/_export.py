@@ -7,6 +7,8 @@ Output folder::
                       compressed, readable by zarr, xarray and Dask); columns as the selection's
                       missing-value policy keeps them
     voxels.npy        flat C-order grid index of each column of X (paints a row back onto the grid)
+    columns.parquet   each column's grid index, and on a volume grid its i, j, k and millimetres
+    mask.nii.gz       X's columns as a mask image on the grid (mask.dscalar.nii on grayordinates)
     y.npy / Y.npy     targets: class names, or a 0/1 matrix over concepts (with concepts.json)
     groups.npy        group label per row
     meta.parquet      one row per map: ids, entities, origin, concepts, coverage, fold / split
@@ -122,6 +124,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
             (tmp / "concepts.json").write_text(json.dumps(sel.concepts))
         # flat C-order grid index of each column of X: enough to paint a row back onto the grid
         np.save(tmp / "voxels.npy", fs.mask_indices[rows.voxels].astype(np.int64))
+        _write_columns(tmp, sel, rows.voxels)
         checkpoint()
         manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, rows.row_hashes, rows.x_hashes, fmt)
         manifest["near_copy_r"] = NEAR_COPY_R if near_copy_r is None else near_copy_r
@@ -255,6 +258,31 @@ def _write_npy(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None
             buf, spare = spare, buf
     checkpoint()
     _write_side_files(tmp, sel, meta_t)
+
+
+def _write_columns(tmp: Path, sel: Selection, voxels: np.ndarray) -> None:
+    """What each column of X is, readable without mapstore: ``columns.parquet`` (grid index; on a volume
+    grid also i, j, k and millimetres) and the columns as a mask image (``mask.nii.gz`` on a volume grid,
+    ``mask.dscalar.nii`` on grayordinates)."""
+    fs = sel.feature_set
+    flat = fs.mask_indices[voxels].astype(np.int64)
+    cols: dict[str, Any] = {"column": np.arange(len(flat)), "grid_index": flat}
+    if fs.geometry == "volume":
+        shape = tuple(fs.grid.shape)
+        ijk = np.stack(np.unravel_index(flat, shape)).astype(np.int64)
+        mm = fs.grid.affine_array[:3, :3] @ ijk + fs.grid.affine_array[:3, 3:4]
+        cols.update(i=ijk[0], j=ijk[1], k=ijk[2], x_mm=mm[0], y_mm=mm[1], z_mm=mm[2])
+    pq.write_table(pa.table(cols), tmp / "columns.parquet")
+    full = np.full(fs.n_voxels, np.nan, dtype=np.float32)
+    full[voxels] = 1.0
+    img = fs.to_image(full)
+    if fs.geometry == "volume":
+        import nibabel as nib
+
+        data = np.nan_to_num(np.asarray(img.dataobj, dtype=np.float32)) > 0
+        nib.save(nib.Nifti1Image(data.astype(np.uint8), img.affine), str(tmp / "mask.nii.gz"))
+    elif fs.geometry == "grayordinates":
+        img.to_filename(str(tmp / "mask.dscalar.nii"))
 
 
 def _write_zarr(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None:
