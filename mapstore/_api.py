@@ -86,11 +86,24 @@ class Store:
     def __repr__(self) -> str:
         return f"Store({str(self.path)!r}, maps={self.sql('SELECT count(*) FROM maps').column(0)[0].as_py()})"
 
+    def _repr_html_(self) -> str:
+        from .formats import html_table
+
+        rows = self.sql("SELECT study, count(DISTINCT participant) AS subjects, count(*) AS maps, "
+                        "string_agg(DISTINCT stat, ', ' ORDER BY stat) AS stats FROM maps GROUP BY study "
+                        "ORDER BY study").to_pylist()
+        sets = ", ".join(self.feature_sets()) or "none"
+        return html_table(f"mapstore store {self.path} (feature sets: {sets}; labels: "
+                          f"{'yes' if self.catalog.head.labels else 'no'})", ["study", "subjects", "maps", "stats"],
+                          [[r["study"], r["subjects"], r["maps"], r["stats"]] for r in rows])
+
     def sql(self, query: str) -> pa.Table:
         """Run one read-only SQL query over the catalog views; returns an Arrow table.
 
-        Views: ``maps``, ``datasets``, ``participants``, ``problems``, ``labels``.
-        Call ``.to_pandas()`` on the result for a DataFrame.
+        Views: ``maps``, ``datasets``, ``participants``, ``problems``, ``labels``, ``features``,
+        ``feature_sets``, ``feature_problems``, ``feature_copies``, ``map_families``.  Call
+        ``.to_pandas()`` on the result for a DataFrame.  Read tables through the views, not the
+        store's Parquet files: old parts stay on disk until collected, so globbing them counts rows twice.
         """
         return self.catalog.sql(query)
 

@@ -370,3 +370,11 @@ def test_an_export_puts_its_columns_back_on_the_brain_without_mapstore(store, tm
     np.testing.assert_array_equal(vol, np.asarray(sel.to_image(sel.X[0]).dataobj))
     ijk1 = np.c_[cols[["i", "j", "k"]].to_numpy(), np.ones(len(cols))]
     np.testing.assert_allclose((mask.affine @ ijk1.T)[:3].T, cols[["x_mm", "y_mm", "z_mm"]].to_numpy())
+
+
+def test_notebook_views_are_short_html_tables(store):
+    sel = store.select(concepts=["hand-movement", "listening"], target="concept")
+    for obj in (store, store.features(), sel, store.check(pictures=False)):
+        page = obj._repr_html_()
+        assert page.startswith("<table><caption>") and len(page) < 20_000, type(obj)
+    assert len(repr(sel)) < 300 and "maps of" in repr(sel)

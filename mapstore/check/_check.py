@@ -62,6 +62,14 @@ class CheckReport:
                 f"{self.count('warning')} warning(s), {self.count('info')} note(s); tables: "
                 f"{', '.join(self.tables) or 'none'})")
 
+    def _repr_html_(self) -> str:
+        from ..formats import html_table
+
+        order = {"error": 0, "warning": 1, "info": 2}
+        rows = sorted(self.findings, key=lambda f: (order.get(f.level, 3), f.check, f.code))
+        return html_table(repr(self), ["level", "check", "code", "about", "message", "remedy"],
+                          [[f.level, f.check, f.code, f.subject, f.message, f.remedy] for f in rows])
+
     def add_table(self, key: str, title: str, table: pa.Table) -> None:
         self.tables[key], self.titles[key] = table, title
 

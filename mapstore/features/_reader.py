@@ -80,6 +80,13 @@ class FeatureSet:
         return (f"FeatureSet({self.name!r}, rows={len(self)}, voxels={self.n_voxels}, "
                 f"grid={self.grid.name}, mask={self.spec.mask['name']})")
 
+    def _repr_html_(self) -> str:
+        from ..formats import html_table
+
+        spec = self.spec
+        return html_table(f"feature set {self.name!r}", ["rows", self.unit, "grid", "mask", "method", "stat"],
+                          [[len(self), self.n_voxels, self.grid.name, spec.mask["name"], spec.method, spec.stat]])
+
     @property
     def n_voxels(self) -> int:
         """Features per row (voxels, vertices, grayordinates or parcels: see ``unit``)."""

@@ -3,6 +3,7 @@ deadline, mesh files, user-written YAML/JSON files and the JSON Schemas they are
 
 from __future__ import annotations
 
+from ._html import html_table
 from ._hashing import ReadDeadline, ReadTimeout, digest_file, sha256_file
 from ._header import (
     HeaderFacts,
@@ -51,6 +52,7 @@ __all__ = [
     "schema_names",
     "schema_text",
     "sha256_file",
+    "html_table",
     "surface_format",
     "surface_grid_id",
     "UserFile",

@@ -320,6 +320,13 @@ class Selection:
     def __len__(self) -> int:
         return len(self.meta)
 
+    def _repr_html_(self) -> str:
+        from ..formats import html_table
+
+        by = self.meta.groupby("study").agg(maps=("map_id", "size"), subjects=("participant", "nunique"))
+        return html_table(repr(self), ["study", "maps", "subjects"],
+                          [[s, int(r.maps), int(r.subjects)] for s, r in by.iterrows()])
+
     def __repr__(self) -> str:
         studies = self.meta["study"].nunique() if "study" in self.meta else 0
         target = f"y: {len(set(map(str, self.y)))} classes" if self.y is not None and self.y.dtype.kind == "O" \
