@@ -589,7 +589,7 @@ class Catalog:
         try:
             statements = con.extract_statements(query)
         except duckdb.Error as exc:
-            raise QueryError(f"SQL does not parse: {exc}") from exc
+            raise QueryError(f"SQL does not parse: {str(exc).strip().splitlines()[0]}") from exc
         if len(statements) != 1:
             raise QueryError(f"give exactly one SQL statement, got {len(statements)}")
         kind = statements[0].type
@@ -608,9 +608,18 @@ class Catalog:
                 self._damaged(exc)
             raise QueryError(f"{str(exc).splitlines()[0]}") from exc
         except duckdb.Error as exc:
-            raise QueryError(f"{exc}\n(views: {', '.join(self.TABLES)}, features, feature_sets, "
-                             f"feature_problems, feature_copies, map_families; see 'mapstore sql --store "
-                             f"{self.path} \"DESCRIBE maps\"')") from exc
+            raise QueryError(_one_line(exc, self.path)) from exc
+
+
+def _one_line(exc: Exception, store: Path) -> str:
+    """DuckDB's error as one line with a hint: never its candidate lists, caret lines or the query itself."""
+    first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    missing = re.search(r'Referenced column "([^"]+)" not found', first)
+    if missing:
+        return (f"{first.rstrip('!')}: a text value needs quotes ('{missing.group(1)}'); the columns are listed by "
+                f"mapstore sql --store {store} \"DESCRIBE maps\"")
+    return (f"{first} (views: maps, datasets, participants, problems, labels, features, feature_sets, "
+            "feature_problems, feature_copies, map_families)")
 
 
 _EXPLAIN = re.compile(r"^(?:\s+|--[^\n]*(?:\n|$)|/\*.*?\*/)*EXPLAIN\b"
