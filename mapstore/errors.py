@@ -19,6 +19,7 @@ __all__ = [
     "StoreBusy",
     "StoreCorrupt",
     "UnseenClassError",
+    "UnknownGrid",
     "StoreUnwritable",
     "StaleSnapshot",
     "StoreClosed",
@@ -119,6 +120,10 @@ class VocabularyError(MapstoreError, ValueError):
 
 class GridError(MapstoreError, ValueError):
     """A target grid or mask is invalid or cannot be built."""
+
+
+class UnknownGrid(ParameterError, GridError):
+    """A grid name that is not a built-in grid: a usage error (exit 2), as an unknown mask is."""
 
 
 class SchedulerError(MapstoreError, ConnectionError):

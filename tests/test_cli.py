@@ -162,3 +162,13 @@ def test_a_sql_mistake_is_one_line_with_a_hint(demo_store, capsys):
     assert len(err.splitlines()) == 1 and "needs quotes ('inkwell')" in err and "SELECT" not in err
     assert main(["sql", "--store", str(demo_store), "SELEC 1"]) == 1
     assert len(capsys.readouterr().err.strip().splitlines()) == 1
+
+
+def test_an_unknown_grid_or_mask_is_a_usage_error(demo_store, tmp_path, capsys):
+    import shutil
+
+    store = tmp_path / "s"
+    shutil.copytree(demo_store, store)
+    assert main(["features", "--store", str(store), "--grid", "bogus"]) == 2
+    assert main(["features", "--store", str(store), "--grid", "MNI152-3mm", "--mask", "bogus"]) == 2
+    assert "unknown built-in grid" in capsys.readouterr().err

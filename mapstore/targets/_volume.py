@@ -26,7 +26,7 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from ..errors import GridError, HeaderError, ParameterError
+from ..errors import GridError, HeaderError, ParameterError, UnknownGrid
 from ._protocol import BatchContext, BuildSettings, Mask, RowValues, SourceMap, Target, mask_from_array
 from ..formats import REAL_SCALAR_DTYPES, HeaderFacts, grid_fingerprint, header_prefix, parse_header, read_header
 
@@ -236,7 +236,7 @@ def mni152_template(grid: TargetGrid) -> np.ndarray:
 def builtin_grid(name: str) -> TargetGrid:
     """A grid of the MNI152 template nilearn ships, at 1, 2 or 3 mm (``MNI152-2mm``, ...)."""
     if name not in BUILTIN_GRIDS:
-        raise GridError(f"unknown built-in grid {name!r}; choose one of {sorted(BUILTIN_GRIDS)} or give "
+        raise UnknownGrid(f"unknown built-in grid {name!r}; choose one of {sorted(BUILTIN_GRIDS)} or give "
                         "a reference image path")
     shape, affine, _ = _mni152(BUILTIN_GRIDS[name])
     return grid_from_spec(shape, affine, name)
