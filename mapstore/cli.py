@@ -88,10 +88,26 @@ STORE_OPTION = click.option("--store", "store", required=True, type=click.Path(f
                             help="Store folder (created by 'mapstore index').")
 
 
-@click.group(context_settings={"help_option_names": ["-h", "--help"]})
+class _InWorkflowOrder(click.Group):
+    """Commands listed in the order a study is pooled, not alphabetically."""
+
+    ORDER = ("index", "features", "labels", "export", "verify", "check", "sql", "similar", "pool", "parcels",
+             "mesh", "schema", "demo")
+
+    def list_commands(self, ctx: click.Context) -> list[str]:
+        names = super().list_commands(ctx)
+        return [n for n in self.ORDER if n in names] + [n for n in names if n not in self.ORDER]
+
+
+@click.group(cls=_InWorkflowOrder, context_settings={"help_option_names": ["-h", "--help"]})
 @click.version_option(__version__, prog_name="mapstore")
 def cli() -> None:
-    """Pool brain statistic maps from many BIDS derivative datasets into one store."""
+    """Pool brain statistic maps from many BIDS derivative datasets into one store.
+
+    \b
+    mapstore index DATASETS... --store DIR     then: features, labels, export
+    mapstore demo FOLDER                       the whole job on invented data
+    """
 
 
 def _format_cell(v: object, width: int = 40) -> str:
@@ -215,7 +231,7 @@ def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_addr
 @STORE_OPTION
 @click.argument("query")
 @click.option("--format", "fmt", type=click.Choice(["table", "csv", "json", "parquet"]), default="table",
-              show_default=True)
+              show_default=True, help="Output format (parquet needs --out).")
 @click.option("--out", type=click.Path(dir_okay=False), help="Write to FILE instead of standard output.")
 def sql_cmd(store, query, fmt, out) -> None:
     """Run a read-only SQL QUERY over the views maps, datasets, participants, problems, labels, features,
@@ -237,7 +253,8 @@ def sql_cmd(store, query, fmt, out) -> None:
 @click.option("--mask", default="brain", show_default=True,
               help="brain (MNI152 brain mask; on a surface: the cortex, medial wall out), all (surfaces), "
                    "intersection, coverage:FRACTION, or a mask image.")
-@click.option("--method", type=click.Choice(["linear", "nearest", "cubic"]), default="linear", show_default=True)
+@click.option("--method", type=click.Choice(["linear", "nearest", "cubic"]), default="linear", show_default=True,
+              help="Interpolation when a map is resampled onto the grid.")
 @click.option("--stat", type=click.Choice(["native", "z"]), default="native", show_default=True,
               help="Keep each map's stat, or convert t and p maps to z.")
 @click.option("--p-sided", type=click.Choice(["one", "two"]), default="one", show_default=True,
@@ -338,7 +355,8 @@ def labels_cmd(store, vocab, inherit) -> None:
 @click.option("--scheme", default="leave-one-group-out", show_default=True,
               help="leave-one-group-out | group-kfold:K | repeated-group-kfold:K:R | stratified-group-kfold:K | "
                    "within-study-group-kfold:K | holdout:FRACTION")
-@click.option("--seed", type=int, default=0, show_default=True)
+@click.option("--seed", type=int, default=0, show_default=True,
+              help="Random seed of shuffled schemes (holdout, stratified and repeated group k-folds).")
 @click.option("--allow-leak", is_flag=True, help="Accept a split that leaks (with a warning).")
 @click.option("--participant-column", "participant_columns", multiple=True,
               help="Add this participants.tsv column to meta.parquet (repeatable; personal data: none by default).")
@@ -488,7 +506,7 @@ def verify_cmd(manifest) -> None:
               help="Flag concepts whose per-study mean maps correlate less across studies.")
 @click.option("--html", "html_out", type=click.Path(dir_okay=False), help="Write an HTML report with pictures.")
 @click.option("--format", "fmt", type=click.Choice(["summary", "table", "json"]), default="summary",
-              show_default=True)
+              show_default=True, help="A summary, a table of every finding, or JSON.")
 @click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error", show_default=True,
               help="Exit 3 when a finding is at this level or worse.")
 def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fail_on) -> None:

@@ -172,3 +172,13 @@ def test_an_unknown_grid_or_mask_is_a_usage_error(demo_store, tmp_path, capsys):
     assert main(["features", "--store", str(store), "--grid", "bogus"]) == 2
     assert main(["features", "--store", str(store), "--grid", "MNI152-3mm", "--mask", "bogus"]) == 2
     assert "unknown built-in grid" in capsys.readouterr().err
+
+
+def test_every_option_has_help_and_commands_come_in_workflow_order():
+    runner = CliRunner()
+    text = runner.invoke(cli, ["--help"]).output
+    listed = [line.split()[0] for line in text.split("Commands:")[1].strip().splitlines()]
+    assert listed[:4] == ["index", "features", "labels", "export"]
+    missing = [(name, p.opts) for name, cmd in cli.commands.items() for p in cmd.params
+               if getattr(p, "help", "x") is None and not getattr(p, "hidden", False) and p.param_type_name == "option"]
+    assert missing == []
