@@ -378,3 +378,16 @@ def test_notebook_views_are_short_html_tables(store):
         page = obj._repr_html_()
         assert page.startswith("<table><caption>") and len(page) < 20_000, type(obj)
     assert len(repr(sel)) < 300 and "maps of" in repr(sel)
+
+
+def test_a_manifest_holds_what_a_rebuild_needs(store, tmp_path, demo_tree):
+    sel = store.select(concepts=["hand-movement", "listening"], target="concept")
+    out = Path(store.export(tmp_path / "m", sel).out)
+    man = json.loads((out / "manifest.json").read_text())
+    assert {"python", "nilearn", "duckdb", "pyarrow", "numpy"} <= set(man["versions"])
+    fs = man["feature_settings"]
+    assert {"background", "p_sided", "zero_as_missing", "method", "stat", "kinds"} <= set(fs)
+    vocab = json.loads((demo_tree / "concepts.json").read_text())
+    assert set(man["vocabulary_content"]["concepts"]) == set(vocab["concepts"])
+    assert set(man["datasets"]) == set(sel.meta["dataset"])
+    assert all("stat" in s and "dof" in s and not s["relpath"].startswith("/") for s in man["sources"])

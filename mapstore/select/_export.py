@@ -354,7 +354,11 @@ def _write_parquet(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> 
 
 def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: list[str], splits,
               row_hashes: list[str], x_hashes: list[str], fmt: str) -> dict[str, Any]:
+    import platform
+
+    import duckdb
     import nibabel
+    import nilearn
     import scipy
     import sklearn
 
@@ -366,7 +370,8 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
     for r, h, xh in zip(sel.meta.itertuples(index=False), row_hashes, x_hashes):
         src = {"map_id": r.map_id, "dataset": r.dataset, "relpath": r.relpath,
                "path": os.path.join(ds.get(r.dataset, ""), r.relpath), "sha256": r.sha256,
-               "feature_key": r.feature_key, "row_sha256": h, "x_sha256": xh}
+               "feature_key": r.feature_key, "row_sha256": h, "x_sha256": xh, "stat": getattr(r, "stat", None),
+               "dof": _number(getattr(r, "dof", None))}
         index = getattr(r, "map_index", None)
         if index is not None and index == index:  # one map of a file of several (NaN in pandas: none)
             src["map_index"] = int(index)
@@ -375,8 +380,14 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
         "format": MANIFEST_FORMAT, "format_version": 1,
         "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
         "mapstore_version": __version__,
-        "versions": {"numpy": np.__version__, "scipy": scipy.__version__, "nibabel": nibabel.__version__,
-                     "scikit-learn": sklearn.__version__},
+        "versions": {"python": platform.python_version(), "numpy": np.__version__, "scipy": scipy.__version__,
+                     "nibabel": nibabel.__version__, "nilearn": nilearn.__version__, "scikit-learn": sklearn.__version__,
+                     "duckdb": duckdb.__version__, "pyarrow": pa.__version__},
+        # what a rebuild on another machine needs: each dataset's identity, sources relative to its root
+        "datasets": {r["dataset"]: {"name": r["name"], "generated_by": r["generated_by"]}
+                     for r in store.sql("SELECT dataset, name, generated_by FROM datasets").to_pylist()
+                     if r["dataset"] in set(sel.meta["dataset"])},
+        "feature_settings": fs.spec.to_json(),
         "store": str(store.path), "catalog_snapshot": head.catalog,
         "query": sel.query, "dropped": sel.dropped,
         "feature_set": {"name": fs.name, "spec_id": fs.spec.spec_id, "grid": fs.spec.grid,
@@ -384,6 +395,7 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
                         "stat": fs.spec.stat, "versions": fs.spec.versions},
         "vocabulary": ({k: getattr(head.labels, k) for k in ("vocabulary", "sha256", "version", "inherit_broader")}
                        if head.labels else None),
+        "vocabulary_content": _vocabulary_content(store),
         "target": sel.target, "concepts": sel.concepts, "group_by": sel.group_by,
         "scheme": scheme, "seed": seed, "allow_leak": allow_leak, "leaks": leaks,
         "splits": [{"train": len(tr), "test": len(te),
@@ -392,6 +404,25 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
         "shape": [len(sel), len(sel.voxels)], "dtype": "float32", "layout": fmt,
         "sources": sources,
     }
+
+
+def _number(v: Any) -> float | None:
+    try:
+        f = float(v)
+    except (TypeError, ValueError):
+        return None
+    return f if f == f else None
+
+
+def _vocabulary_content(store) -> Any:
+    """The vocabulary as the labels applied it (the store's copy), so the manifest alone rebuilds the labels."""
+    entry = store.catalog.head.labels
+    if not entry or not entry.copy:
+        return None
+    try:
+        return json.loads((Path(store.path) / entry.copy).read_text())
+    except (OSError, ValueError):
+        return None
 
 
 @dataclass
