@@ -521,7 +521,7 @@ def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fa
     else:
         click.echo(report.summary())
     if html_out:
-        click.echo(f"wrote {report.write_html(html_out)}", err=True)
+        click.echo(f"wrote {report.write_html(html_out, command='mapstore ' + ' '.join(sys.argv[1:]))}", err=True)
     if fail_on != "never" and report.fails(fail_on):
         raise click.exceptions.Exit(FINDINGS_EXIT)
 
@@ -585,7 +585,7 @@ def demo_cmd(folder, scale) -> None:
     click.echo(render_table(_demo_decoder(sout)))
     click.echo("\nchecking the store (grids, space, coverage, stat types, metadata) ...")
     report = st.check()  # type: ignore[assignment]
-    html_path = report.write_html(base / "check-report.html")  # type: ignore[attr-defined]
+    html_path = report.write_html(base / "check-report.html", command=f"mapstore demo {folder}")  # type: ignore[attr-defined]
     click.echo(report.summary())
     click.echo(f"report with pictures: {html_path}")
     click.echo(f"\ntry: mapstore sql --store {store} \"SELECT concept, count(*) FROM labels GROUP BY ALL\"")

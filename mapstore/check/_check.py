@@ -13,6 +13,7 @@ import json
 import struct
 import warnings
 import zlib
+import time
 from collections import Counter, defaultdict
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -20,6 +21,7 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
+from .._version import __version__
 from ..analyses import combine
 from ..features import pair_correlation
 
@@ -107,30 +109,67 @@ class CheckReport:
             lines.append(f"  {level:7s} {check:9s} {code:26s} x{n:<4d} e.g. {example.message}")
         return "\n".join(lines)
 
-    def write_html(self, path: str | Path) -> Path:
-        """One self-contained HTML page (pictures embedded)."""
+    def write_html(self, path: str | Path, command: str | None = None) -> Path:
+        """One self-contained HTML page, read top to bottom: what was checked (version, time, command), the
+        counts and the studies, then the findings (each with an anchor, files linked), then the tables,
+        then the pictures (embedded)."""
         path = Path(path)
+        esc = html.escape
         parts = ["<!doctype html><html><head><meta charset='utf-8'><title>mapstore check</title>",
-                 "<style>body{font-family:sans-serif;margin:2em;max-width:80em}table{border-collapse:collapse}"
-                 "td,th{border:1px solid #ccc;padding:2px 6px;font-size:90%;text-align:left}"
-                 ".error{background:#fdd}.warning{background:#ffd}.info{background:#eef}"
-                 "img{image-rendering:pixelated;border:1px solid #999;margin:4px}</style></head><body>",
-                 f"<h1>mapstore check</h1><p>store <code>{html.escape(self.store)}</code>"
-                 + (f", feature set <code>{html.escape(self.feature_set)}</code>" if self.feature_set else "")
-                 + f"</p><p>{self.count('error')} errors, {self.count('warning')} warnings, "
-                 f"{self.count('info')} notes</p>"]
+                 "<style>body{font-family:sans-serif;margin:1.5em auto;max-width:1400px;padding:0 1em}"
+                 "table{border-collapse:collapse;margin-bottom:1em}td,th{border:1px solid #ccc;padding:2px 6px;"
+                 "font-size:90%;text-align:left;vertical-align:top}.error{background:#fdd}.warning{background:#ffd}"
+                 ".info{background:#eef}img{image-rendering:pixelated;border:1px solid #999;margin:4px;"
+                 "max-width:100%}header p{color:#444;margin:.2em 0}</style></head><body>",
+                 "<header><h1>mapstore check</h1>"
+                 f"<p>store <code>{esc(self.store)}</code>"
+                 + (f", feature set <code>{esc(self.feature_set)}</code>" if self.feature_set else "") + "</p>"
+                 f"<p>mapstore {esc(__version__)}, {esc(time.strftime('%Y-%m-%d %H:%M:%S'))}"
+                 + (f", <code>{esc(command)}</code>" if command else "") + "</p></header>",
+                 f"<p id='counts'><b>{_plural(self.count('error'), 'error')}, {_plural(self.count('warning'), 'warning')}, "
+                 f"{_plural(self.count('info'), 'note')}</b></p>"]
+        if "studies" in self.tables:
+            parts.append(f"<h2 id='studies'>{esc(self.titles.get('studies', 'studies'))}</h2>"
+                         + _html_table(self.tables["studies"]))
+        parts.append("<h2 id='findings'>findings</h2>" + _findings_table(self.to_table()))
+        for key, table in self.tables.items():
+            if key != "studies":
+                parts.append(f"<h2 id='{esc(key)}'>{esc(self.titles.get(key, key))}</h2>" + _html_table(table))
         for key, png in self.pictures.items():
             b64 = base64.b64encode(png).decode()
-            title = html.escape(self.titles.get(key, key))
-            parts.append(f"<h2 id='{html.escape(key)}'>{title}</h2><img alt='{title}' "
-                         f"src='data:image/png;base64,{b64}'>")
-        for key, table in self.tables.items():
-            parts.append(f"<h2 id='{html.escape(key)}'>{html.escape(self.titles.get(key, key))}</h2>"
-                         + _html_table(table))
-        parts.append("<h2>findings</h2>" + _html_table(self.to_table(), level_col="level"))
+            title = esc(self.titles.get(key, key))
+            parts.append(f"<h2 id='{esc(key)}'>{title}</h2><img alt='{title}' src='data:image/png;base64,{b64}'>")
+        # layout facts a browser can report back (the report's own test reads them): broken pictures, and
+        # where the findings and the first picture sit on the page
+        parts.append("<script>window.addEventListener('load',function(){var im=document.images,b=0;"
+                     "for(var i=0;i<im.length;i++){if(!im[i].complete||im[i].naturalWidth===0)b++;}"
+                     "var d=document.body.dataset;d.brokenImages=b;d.findingsTop="
+                     "Math.round(document.getElementById('findings').getBoundingClientRect().top);"
+                     "d.firstPictureTop=im.length?Math.round(im[0].getBoundingClientRect().top):-1;});</script>")
         parts.append("</body></html>")
         path.write_text("\n".join(parts), encoding="utf-8")
         return path
+
+
+def _plural(n: int, word: str) -> str:
+    return f"{n} {word}" if n == 1 else f"{n} {word}s"
+
+
+def _findings_table(table: pa.Table) -> str:
+    """The findings, each row an anchor (#finding-N); a subject that is a file becomes a link to it."""
+    import os
+
+    head = "".join(f"<th>{html.escape(c)}</th>" for c in table.column_names)
+    rows = []
+    for i, r in enumerate(table.to_pylist(), 1):
+        cells = []
+        for k, v in r.items():
+            text = html.escape("" if v is None else str(v))
+            if k == "subject" and v and os.path.isabs(str(v)) and os.path.exists(str(v)):
+                text = f"<a href='file://{html.escape(str(v))}'>{text}</a>"
+            cells.append(f"<td>{text}</td>")
+        rows.append(f"<tr id='finding-{i}' class='{html.escape(str(r['level']))}'>{''.join(cells)}</tr>")
+    return f"<table><tr>{head}</tr>{''.join(rows)}</table>"
 
 
 def _html_table(table: pa.Table, level_col: str | None = None) -> str:
@@ -204,6 +243,7 @@ def check_store(store, features: str | None = None, *, min_coverage: float = 0.8
         fs = store.features(features)
     report = CheckReport(str(store.path), fs.name if fs else None)
     add = report.findings.append
+    _study_table(store, fs, report)
     _check_problems(store, add)
     # catalog-wide checks are SQL aggregates: the maps table is never read into Python whole
     _check_grids(store, add, report)
@@ -220,6 +260,24 @@ def check_store(store, features: str | None = None, *, min_coverage: float = 0.8
         _check_copies(fs, maps, add, report)
         _check_concepts(store, fs, maps, add, report, pictures, min_agreement)
     return report
+
+
+def _study_table(store, fs, report) -> None:
+    """One row per study: its datasets, subjects, tasks, stats, spaces, DOF range, maps, and (with a feature set)
+    the mean coverage of its rows."""
+    cover = ""
+    if fs is not None:
+        cover = (", round(avg(f.coverage), 3) AS mean_coverage FROM maps m LEFT JOIN features f ON "
+                 f"f.map_id = m.map_id AND f.feature_set = {_lit(fs.name)}")
+    else:
+        cover = " FROM maps m"
+    rows = store.sql("SELECT m.study, count(DISTINCT m.dataset) AS datasets, count(DISTINCT m.participant) AS "
+                     "subjects, string_agg(DISTINCT m.task, ', ' ORDER BY m.task) AS tasks, "
+                     "string_agg(DISTINCT m.stat, ', ' ORDER BY m.stat) AS stats, "
+                     "string_agg(DISTINCT m.space, ', ' ORDER BY m.space) AS spaces, "
+                     "min(m.dof) AS dof_min, max(m.dof) AS dof_max, count(*) AS maps" + cover +
+                     " GROUP BY m.study ORDER BY m.study")
+    report.add_table("studies", "the studies (one row each)", rows)
 
 
 _SET_COLUMNS = ("map_id", "dataset", "relpath", "study", "participant", "entities", "stat")
