@@ -391,3 +391,15 @@ def test_a_manifest_holds_what_a_rebuild_needs(store, tmp_path, demo_tree):
     assert set(man["vocabulary_content"]["concepts"]) == set(vocab["concepts"])
     assert set(man["datasets"]) == set(sel.meta["dataset"])
     assert all("stat" in s and "dof" in s and not s["relpath"].startswith("/") for s in man["sources"])
+
+
+def test_meta_holds_the_targets_and_folds(store, tmp_path):
+    import pyarrow.parquet as pq
+
+    sel = store.select(concepts=["hand-movement", "listening", "reading"], target="concepts")
+    out = Path(store.export(tmp_path / "t", sel).out)
+    meta = pq.read_table(out / "meta.parquet").to_pandas()
+    Y = np.load(out / "Y.npy")
+    for j, concept in enumerate(json.loads((out / "concepts.json").read_text())):
+        np.testing.assert_array_equal(meta[f"Y:{concept}"].to_numpy(), Y[:, j])
+    assert (meta["fold"] >= 0).all() and len(meta) == len(Y)

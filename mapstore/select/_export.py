@@ -203,6 +203,10 @@ def _meta_table(sel: Selection, fold: np.ndarray, kind: str, personal: list[str]
     if sel.y is not None:
         meta["y"] = _y_array(sel.y)
         keep_cols.append("y")
+    if sel.Y is not None:  # the multi-label indicators, one column per concept (as in concepts.json)
+        for j, concept in enumerate(sel.concepts):
+            meta[f"Y:{concept}"] = sel.Y[:, j].astype(np.uint8)
+            keep_cols.append(f"Y:{concept}")
     return pa.Table.from_pandas(meta[keep_cols], preserve_index=False)
 
 
