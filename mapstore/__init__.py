@@ -20,6 +20,7 @@ _HOME = {
     "build_parcels": ".features", "fit_parcellation": ".features", "ParcelReducer": ".features",
     "LabelReport": ".labels", "label": ".labels", "load_vocabulary": ".labels",
     "HeaderFacts": ".formats", "read_header": ".formats",
+    "rebuild": "._rebuild", "RebuildReport": "._rebuild",
 }
 _RENAMED = {"open": "open_store", "label": "label_store"}
 
@@ -41,6 +42,8 @@ def __dir__() -> list[str]:
 
 __all__ = [
     "__version__",
+    "rebuild",
+    "RebuildReport",
     "align_columns",
     "check_folds",
     "build_features",

@@ -91,8 +91,8 @@ STORE_OPTION = click.option("--store", "store", required=True, type=click.Path(f
 class _InWorkflowOrder(click.Group):
     """Commands listed in the order a study is pooled, not alphabetically."""
 
-    ORDER = ("index", "features", "labels", "export", "verify", "check", "sql", "similar", "pool", "parcels",
-             "mesh", "schema", "demo")
+    ORDER = ("index", "features", "labels", "export", "verify", "rebuild", "check", "sql", "similar", "pool",
+             "parcels", "mesh", "schema", "demo")
 
     def list_commands(self, ctx: click.Context) -> list[str]:
         names = super().list_commands(ctx)
@@ -473,6 +473,25 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
     for p in res.peaks(5, threshold=thr if np.isfinite(thr) else None):
         click.echo(f"  peak z {p['z']:.2f} at {p.get('mm', p['position'])} ({p['n_studies']} studies)")
     click.echo(f"wrote {len(prov['files'])} files to {out}")
+
+
+@cli.command("rebuild")
+@click.argument("manifest", type=click.Path(exists=True))
+@click.option("--sources", multiple=True, required=True, type=click.Path(exists=True, file_okay=False),
+              help="A folder holding the source datasets (repeatable): they may have moved.")
+@click.option("--out", required=True, type=click.Path(file_okay=False), help="Folder for the rebuilt export.")
+@click.option("--store", "store", type=click.Path(file_okay=False), help="Store to index into (default: a new "
+              "temporary one).")
+@click.option("--rules", multiple=True, help="The name rules the first index used (repeatable).")
+@click.option("--origins", type=click.Path(dir_okay=False), help="The origins file the first index used.")
+def rebuild_cmd(manifest, sources, out, store, rules, origins) -> None:
+    """Rebuild an export from its MANIFEST and the source datasets; exit 3 if X is not the same, row by row."""
+    from ._rebuild import rebuild
+
+    report = rebuild(manifest, list(sources), out, store=store, rules=list(rules) or None, origins=origins)
+    click.echo(report.summary())
+    if not report.ok:
+        raise click.exceptions.Exit(FINDINGS_EXIT)
 
 
 @cli.command("verify")
