@@ -159,7 +159,7 @@ def test_the_store_comes_from_the_environment_and_the_set_option_has_one_name(de
 def test_a_sql_mistake_is_one_line_with_a_hint(demo_store, capsys):
     assert main(["sql", "--store", str(demo_store), "SELECT * FROM maps WHERE study = inkwell"]) == 1
     err = capsys.readouterr().err.strip()
-    assert len(err.splitlines()) == 1 and "needs quotes ('inkwell')" in err and "SELECT" not in err
+    assert len(err.splitlines()) == 1 and "needs quotes: 'inkwell'" in err and "SELECT" not in err
     assert main(["sql", "--store", str(demo_store), "SELEC 1"]) == 1
     assert len(capsys.readouterr().err.strip().splitlines()) == 1
 

@@ -616,8 +616,8 @@ def _one_line(exc: Exception, store: Path) -> str:
     first = str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
     missing = re.search(r'Referenced column "([^"]+)" not found', first)
     if missing:
-        return (f"{first.rstrip('!')}: a text value needs quotes ('{missing.group(1)}'); the columns are listed by "
-                f"mapstore sql --store {store} \"DESCRIBE maps\"")
+        return (f"{first.rstrip('!')}: no such column (a text value needs quotes: '{missing.group(1)}'); the views' "
+                f"columns are listed by mapstore sql --store {store} \"DESCRIBE maps\"")
     return (f"{first} (views: maps, datasets, participants, problems, labels, features, feature_sets, "
             "feature_problems, feature_copies, map_families)")
 
