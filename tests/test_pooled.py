@@ -21,8 +21,6 @@ from mapstore.analyses import combine, fdr_threshold, pool, study_maps, write_po
 
 from .conftest import make_derivative, write_json, write_map
 
-pytest.importorskip("statsmodels")
-
 BCG = np.array([[4, 119, 11, 128], [6, 300, 29, 274], [3, 228, 11, 209], [62, 13536, 248, 12619],
                 [33, 5036, 47, 5761], [180, 1361, 372, 1079], [8, 2537, 10, 619], [505, 87886, 499, 87892],
                 [29, 7470, 45, 7232], [17, 1699, 65, 1600], [186, 50448, 141, 27197], [5, 2493, 3, 2338],
