@@ -10,9 +10,7 @@ each measurement runs in a fresh process and reports its own peak RSS (VmHWM).
 from __future__ import annotations
 
 import argparse
-import json
 import os
-import subprocess
 import sys
 import tempfile
 import time
@@ -22,48 +20,27 @@ ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
 sys.path.insert(0, str(Path(__file__).resolve().parent))
 
-from bench_stream import SHARD, make_set  # noqa: E402
+from bench_stream import PROLOGUE, SHARD, make_set, measure  # noqa: E402
 
-SETUP = """
-import json, sys, time, glob
-sys.path.insert(0, {root!r})
-import numpy as np, pandas as pd
-from pathlib import Path
-from mapstore.features import FeatureSet
-from mapstore.select import Selection
-from mapstore.store import FeatureEntry
+SETUP = PROLOGUE + """
+import glob
 from mapstore.analyses import pool_maps
 import scipy.stats  # imported before the clock starts (once per process, ~1 s here): steady-state figures
-def peak_mb():
-    for line in open("/proc/self/status"):
-        if line.startswith("VmHWM:"):
-            return int(line.split()[1]) / 1024
-def selection(store):
-    fs = FeatureSet(Path(store), "bench", FeatureEntry("features/bench", "features/bench/rows.parquet", ""))
-    n = {maps}
-    meta = pd.DataFrame({{"map_id": [f"m{{i:07d}}" for i in range(n)], "study": [f"s{{i}}" for i in range(n)],
-                         "participant": [None] * n, "feature_shard": [f"shard-{{i // {shard}:05d}}.npy" for i in range(n)],
-                         "feature_row": [i % {shard} for i in range(n)], "coverage": np.ones(n)}})
-    return Selection(None, fs, meta, None, None, [], meta["study"].to_numpy(object), "study", "none", {{}}, missing="keep")
 t0 = time.perf_counter()
 """
 
 RUNS = {
     "read": "total = 0.0\nfor f in sorted(glob.glob({effect!r} + '/features/bench/shards/*.npy')):\n"
             "    total += float(np.load(f)[0, 0])\n",
-    "stouffer": "res = pool_maps(selection({effect!r}), 'stouffer')\n",
-    "random": "res = pool_maps(selection({effect!r}), 'random', variance=selection({variance!r}))\n",
+    "stouffer": "res = pool_maps(selection({effect!r}, {maps}, {maps}, 'keep'), 'stouffer')\n",
+    "random": "res = pool_maps(selection({effect!r}, {maps}, {maps}, 'keep'), 'random', "
+              "variance=selection({variance!r}, {maps}, {maps}, 'keep'))\n",
 }
 
 
 def run(kind: str, effect: Path, variance: Path, maps: int) -> dict:
-    code = SETUP.format(root=str(ROOT), maps=maps, shard=SHARD) + \
-        RUNS[kind].format(effect=str(effect), variance=str(variance)) + \
-        "\nprint(json.dumps({'seconds': time.perf_counter() - t0, 'rss_mb': peak_mb()}))\n"
-    done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
-    if done.returncode:
-        sys.exit(f"{kind} failed:\n{done.stderr[-3000:]}")
-    return json.loads(done.stdout.strip().splitlines()[-1])
+    return measure(kind, SETUP.format(root=str(ROOT), shard=SHARD)
+                   + RUNS[kind].format(effect=str(effect), variance=str(variance), maps=maps))
 
 
 def main() -> None:

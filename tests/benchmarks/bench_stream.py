@@ -24,13 +24,18 @@ import pyarrow as pa
 
 ROOT = Path(__file__).resolve().parents[2]
 sys.path.insert(0, str(ROOT))
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+
+from bench_copies import PEAK  # noqa: E402
 
 from mapstore.store import FeatureSetSpec, ROWS_SCHEMA, write_parquet_atomic  # noqa: E402
 from mapstore.targets._volume import builtin_grid, mni152_brain_mask  # noqa: E402
 
 SHARD = 2000
 
-SETUP = """
+# the start of every measuring process: a Selection over the synthetic set's shards (no catalog needed),
+# and the process's own peak RSS; scripts format it with root and shard, then add their run
+PROLOGUE = PEAK + """
 import json, sys, time
 sys.path.insert(0, {root!r})
 import numpy as np, pandas as pd
@@ -38,16 +43,19 @@ from pathlib import Path
 from mapstore.features import FeatureSet
 from mapstore.select import Selection
 from mapstore.store import FeatureEntry
-def peak_mb():
-    for line in open("/proc/self/status"):
-        if line.startswith("VmHWM:"):
-            return int(line.split()[1]) / 1024
-fs = FeatureSet(Path({store!r}), "bench", FeatureEntry("features/bench", "features/bench/rows.parquet", ""))
-n = {rows}
-meta = pd.DataFrame({{"map_id": [f"m{{i:07d}}" for i in range(n)], "study": [f"s{{i % 20}}" for i in range(n)],
-                     "participant": [f"p{{i}}" for i in range(n)], "feature_shard": [f"shard-{{i // {shard}:05d}}.npy" for i in range(n)],
-                     "feature_row": [i % {shard} for i in range(n)], "coverage": np.ones(n)}})
-sel = Selection(None, fs, meta, None, None, [], meta["study"].to_numpy(object), "study", "none", {{}}, missing="common")
+def selection(store, n, n_studies, missing):
+    fs = FeatureSet(Path(store), "bench", FeatureEntry("features/bench", "features/bench/rows.parquet", ""))
+    meta = pd.DataFrame({{"map_id": [f"m{{i:07d}}" for i in range(n)], "study": [f"s{{i % n_studies}}" for i in range(n)],
+                         "participant": [f"p{{i}}" for i in range(n)],
+                         "feature_shard": [f"shard-{{i // {shard}:05d}}.npy" for i in range(n)],
+                         "feature_row": [i % {shard} for i in range(n)], "coverage": np.ones(n)}})
+    return Selection(None, fs, meta, None, None, [], meta["study"].to_numpy(object), "study", "none", {{}},
+                     missing=missing)
+"""
+
+SETUP = PROLOGUE + """
+sel = selection({store!r}, {rows}, 20, "common")
+fs, meta, n = sel.feature_set, sel.meta, len(sel)
 t0 = time.perf_counter()
 """
 
@@ -59,8 +67,7 @@ RUNS = {
              "    mean = client.compute(sel.to_dask(chunk_rows=256).mean(axis=0)).result()\n"
              "    workers = client.run(lambda: __import__('resource').getrusage(0).ru_maxrss / 1024)\n"
              "ref = np.mean(fs.matrix(sel.map_ids[:512]).astype(np.float64), axis=0)\n"
-             "sub = Selection(None, fs, meta.iloc[:512].reset_index(drop=True), None, None, [], "
-             "meta['study'].to_numpy(object)[:512], 'study', 'none', {{}}, missing='common')\n"
+             "sub = selection({store!r}, 512, 20, 'common')\n"
              "assert np.allclose(sub.to_dask(chunk_rows=100).mean(axis=0).compute(), ref, atol=1e-5)\n"
              "extra = {{'worker_peak_mb': max(workers.values())}}\n"),
     "npy": ("out = np.lib.format.open_memmap({out!r} + '/X.npy', mode='w+', dtype=np.float32, "
@@ -98,9 +105,15 @@ def make_set(folder: Path, n_rows: int, grid_name: str = "MNI152-3mm", positive:
 
 
 def run(kind: str, store: Path, rows: int, out: Path) -> dict:
-    code = SETUP.format(root=str(ROOT), store=str(store), rows=rows, shard=SHARD) + RUNS[kind].format(out=str(out)) + \
-        "\nres = {'seconds': time.perf_counter() - t0, 'rss_mb': peak_mb()}\n" \
-        "res.update(globals().get('extra', {}))\nprint(json.dumps(res))\n"
+    return measure(kind, SETUP.format(root=str(ROOT), store=str(store), rows=rows, shard=SHARD)
+                   + RUNS[kind].format(out=str(out), store=str(store)))
+
+
+def measure(kind: str, code: str) -> dict:
+    """Run ``code`` (which sets ``t0``, and may set ``extra``) in a fresh process: its seconds since ``t0``,
+    its own peak RSS, and ``extra``."""
+    code += ("\nres = {'seconds': time.perf_counter() - t0, 'rss_mb': peak_mb()}\n"
+             "res.update(globals().get('extra', {}))\nprint(json.dumps(res))\n")
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
     if done.returncode:
         sys.exit(f"{kind} failed:\n{done.stderr[-3000:]}")
