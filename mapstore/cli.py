@@ -441,8 +441,11 @@ def similar_cmd(store, query, feature_set, k, absolute, stat, dof, fmt) -> None:
 @click.option("--stat", "stats", multiple=True, default=("effect",), show_default=True,
               help="Which maps to pool (repeatable): subjects' effect maps by default.")
 @click.option("--features", "feature_set", help="Feature set name (default: the default set).")
-@click.option("--method", type=click.Choice(["stouffer", "stouffer-weighted", "fisher", "fixed", "random"]),
-              default="random", show_default=True, help="How study maps are combined, voxel by voxel.")
+@click.option("--method", type=click.Choice(["stouffer", "stouffer-weighted", "fisher", "fixed", "random",
+                                             "random-reml"]),
+              default="random", show_default=True,
+              help="How study maps are combined, voxel by voxel (random: DerSimonian-Laird tau^2; random-reml: "
+                   "restricted maximum likelihood).")
 @click.option("--min-subjects", type=click.IntRange(min=2), default=3, show_default=True,
               help="A study's map is missing where fewer of its subjects have a value.")
 @click.option("--min-studies", type=click.IntRange(min=1), default=2, show_default=True,
@@ -450,8 +453,10 @@ def similar_cmd(store, query, feature_set, k, absolute, stat, dof, fmt) -> None:
 @click.option("--fdr", "fdr_q", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.05,
               show_default=True, help="False discovery rate for the threshold (Benjamini-Hochberg).")
 @click.option("--leave-one-out", is_flag=True, help="Also say how much each study moves the result.")
+@click.option("--use-variance", is_flag=True,
+              help="Weight each subject's effect map by its own variance map (same name, stat-variance).")
 def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min_subjects, min_studies, fdr_q,
-             leave_one_out) -> None:
+             leave_one_out, use_variance) -> None:
     """Do the studies agree, and where? Study maps of the chosen maps, combined across studies."""
     import numpy as np
 
@@ -460,7 +465,8 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
     st = open_store(store)
     sel = st.select(where, concepts=list(concepts) or None, task=list(tasks) or None, stat=list(stats) or None,
                     features=feature_set, target="concepts", missing="keep")
-    res = pool(sel, method, min_subjects=min_subjects, min_studies=min_studies, leave_one_out=leave_one_out)
+    res = pool(sel, method, min_subjects=min_subjects, min_studies=min_studies, leave_one_out=leave_one_out,
+               use_variance=use_variance)
     prov = write_pooled(res, out, fdr_q)
     tested = prov["fdr"]["n_tested"]
     thr = prov["fdr"]["z_threshold"]

@@ -4,8 +4,11 @@ References: scipy's ``combine_pvalues`` (Stouffer, weighted Stouffer, Fisher); s
 ``combine_effects`` (fixed and DerSimonian-Laird random effects) and ``multipletests`` (fdr_bh);
 nilearn's ``SecondLevelModel`` (one-sample t); the BCG vaccine trials (Colditz et al., 1994, 13 trials),
 whose DerSimonian-Laird results on the log risk ratio are, from memory of metafor's documentation:
-estimate -0.7141, standard error 0.1787, tau^2 0.3088, I^2 92.12 %, Q 152.23.  Simulated studies with
-a known shared effect at a known voxel are invented.
+estimate -0.7141, standard error 0.1787, tau^2 0.3088, I^2 92.12 %, Q 152.23; and by restricted maximum
+likelihood (metafor's default, also from memory): estimate -0.7145, standard error 0.1798, tau^2 0.3132,
+I^2 92.22 %.  The REML tau^2 is also checked against scipy's bounded minimiser of the restricted
+log-likelihood written out (Viechtbauer, 2005).  Simulated studies with a known shared effect at a known
+voxel are invented.
 """
 
 from __future__ import annotations
@@ -18,6 +21,7 @@ import pytest
 
 import mapstore
 from mapstore.analyses import combine, fdr_threshold, pool, study_maps, write_pooled
+from mapstore.errors import ParameterError
 
 from .conftest import make_derivative, write_json, write_map
 
@@ -35,6 +39,46 @@ def test_random_effects_reproduce_the_bcg_worked_example():
     assert abs(got["effect"][0] - -0.7141) < 5e-4 and abs(np.sqrt(got["variance"][0]) - 0.1787) < 5e-4
     assert abs(got["tau2"][0] - 0.3088) < 5e-4 and abs(got["i2"][0] - 0.9212) < 5e-4
     assert abs(got["q"][0] - 152.23) < 0.01
+
+
+def test_reml_reproduces_the_bcg_worked_example():
+    a, b, c, d = BCG.T
+    yi = np.log((a / (a + b)) / (c / (c + d)))
+    vi = 1 / a - 1 / (a + b) + 1 / c - 1 / (c + d)
+    got = combine(effect=yi[:, None], variance=vi[:, None], method="random-reml")
+    assert abs(got["effect"][0] - -0.7145) < 5e-4 and abs(np.sqrt(got["variance"][0]) - 0.1798) < 5e-4
+    assert abs(got["tau2"][0] - 0.3132) < 5e-4 and abs(got["i2"][0] - 0.9222) < 5e-4
+    # the DerSimonian-Laird value is not the REML one: the test tells the two estimators apart
+    assert abs(combine(effect=yi[:, None], variance=vi[:, None], method="random")["tau2"][0] - 0.3132) > 3e-3
+
+
+def test_reml_tau2_maximises_the_restricted_likelihood_found_by_scipy(rng):
+    from scipy.optimize import minimize_scalar
+
+    k, v = 9, 40
+    effect = rng.normal(0.4, 0.6, size=(k, v))
+    variance = rng.uniform(0.05, 0.5, size=(k, v))
+    effect[1, :8] = np.nan
+    variance[4, 5:9] = np.nan
+    got = combine(effect=effect, variance=variance, method="random-reml")
+    for j in range(v):
+        ok = np.isfinite(effect[:, j]) & np.isfinite(variance[:, j])
+        y, s2 = effect[ok, j], variance[ok, j]
+
+        def neg_restricted_loglik(tau2):
+            w = 1 / (s2 + tau2)
+            mu = (w * y).sum() / w.sum()
+            return 0.5 * (np.log(s2 + tau2).sum() + np.log(w.sum()) + (w * (y - mu) ** 2).sum())
+
+        ref = minimize_scalar(neg_restricted_loglik, bounds=(0, 50), method="bounded",
+                              options={"xatol": 1e-12}).x
+        if neg_restricted_loglik(0.0) <= neg_restricted_loglik(ref):
+            ref = 0.0  # the maximum sits on the boundary
+        assert got["tau2"][j] == pytest.approx(ref, abs=1e-6), j
+        w = 1 / (s2 + got["tau2"][j])
+        assert got["effect"][j] == pytest.approx((w * y).sum() / w.sum(), rel=1e-9)
+        assert got["variance"][j] == pytest.approx(1 / w.sum(), rel=1e-9)
+        assert got["n_studies"][j] == ok.sum()
 
 
 def test_fixed_and_random_effects_equal_statsmodels_voxel_by_voxel(rng):
@@ -195,7 +239,7 @@ def test_streaming_combination_of_given_maps_equals_combine(shared):
     E = eff.X.astype(np.float64)
     V = var.with_columns(eff.voxels).X.astype(np.float64)
     n = np.arange(10, 10 + len(eff))
-    for method in ("stouffer", "stouffer-weighted", "fisher", "fixed", "random"):
+    for method in ("stouffer", "stouffer-weighted", "fisher", "fixed", "random", "random-reml"):
         got = pool_maps(eff, method, variance=var, n=n, rows=7)  # blocks of 7 maps: the sums carry over
         want = combine(E, effect=E, variance=V, n=n, method=method)
         for key in ("z", "effect", "variance", "tau2", "i2", "q"):
@@ -228,3 +272,84 @@ def test_map_families_pair_each_effect_with_its_variance(shared):
     assert len(pairs) == 40  # every subject's effect map has exactly its own variance map
     for p in pairs:
         assert p["e_path"].replace("stat-effect", "stat-variance") == p["v_path"]
+
+
+def test_streaming_leaves_out_what_a_map_did_not_measure(tmp_path):
+    """Maps with holes (NaN), zero, negative and infinite variances, and an infinite effect: the streamed
+    combination counts a map only where combine() does, block by block."""
+    from mapstore.analyses import pool_maps, variance_maps
+
+    rng = np.random.default_rng(11)
+    shape, aff = (8, 9, 10), np.diag([3.0, 3.0, 3.0, 1.0])
+    ds = make_derivative(tmp_path / "holes", "holes")
+    for i in range(9):
+        e = rng.normal(0.5, 1.0, size=shape).astype(np.float32)
+        v = rng.uniform(0.2, 1.5, size=shape).astype(np.float32)
+        e[i % 4:i % 4 + 2, :, :3] = np.nan  # each map misses a different slab
+        if i == 2:
+            v[3:5, 3:5, :] = 0.0
+        if i == 5:
+            v[:2, 6:, 6:] = -1.0
+        if i == 7:
+            v[5:, :2, 4:6] = np.inf
+            e[6, 6, 6] = np.inf
+        write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-x_contrast-a_stat-effect_statmap.nii.gz", e, aff)
+        write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-x_contrast-a_stat-variance_statmap.nii.gz", v, aff)
+    lone = "sub-09/sub-09_task-x_contrast-a_stat-effect_statmap.nii.gz"  # an effect map with no variance map
+    write_map(ds / lone, rng.normal(size=shape).astype(np.float32), aff)
+    store = tmp_path / "store"
+    mapstore.index([ds], store, progress=False, jobs=1)
+    grid = write_json(tmp_path / "grid.json", {"shape": list(shape), "affine": aff.tolist()})
+    mapstore.build_features(store, "own", grid=str(grid), progress=False, jobs=1)
+    st = mapstore.open(store)
+    with pytest.raises(ParameterError, match=f"{lone}: no variance map beside it"):
+        variance_maps(st.select(features="own", stat=["effect"], missing="keep"))
+    eff = st.select(features="own", stat=["effect"], missing="keep", where="sub <> '09'")
+    var = st.select(features="own", stat=["variance"], missing="keep")
+    eff = eff.subset(np.argsort(eff.meta["participant"].to_numpy(), kind="stable"))
+    var = var.subset(np.argsort(var.meta["participant"].to_numpy(), kind="stable"))
+    E, V = eff.X.astype(np.float64), var.with_columns(eff.voxels).X.astype(np.float64)
+    assert np.isnan(E).any() and (V <= 0).any() and np.isinf(V).any()  # the holes reached the store
+    for method in ("stouffer", "fixed", "random", "random-reml"):
+        for rows in (2, 4, None):
+            got = pool_maps(eff, method, variance=var, rows=rows)
+            want = combine(E, effect=E, variance=V, method=method)
+            np.testing.assert_array_equal(got.n_studies, want["n_studies"], err_msg=(method, rows))
+            for key in ("z", "effect", "tau2"):
+                if key in want:
+                    np.testing.assert_allclose(getattr(got, key), want[key], rtol=2e-5, atol=2e-6,
+                                               err_msg=(method, rows, key))
+
+
+def test_weighting_subjects_by_their_variance_equals_statsmodels_per_study(shared, tmp_path, capsys):
+    from statsmodels.stats.meta_analysis import combine_effects
+
+    from mapstore.analyses import variance_maps
+    from mapstore.cli import main
+
+    stores, peak, _ = shared
+    sel = mapstore.open(stores[False]).select(features="own", target="concepts", stat=["effect"], missing="keep")
+    var = variance_maps(sel)
+    for a, b in zip(sel.meta.itertuples(), var.meta.itertuples()):
+        assert a.relpath.replace("stat-effect", "stat-variance") == b.relpath
+    sm = study_maps(sel, variance=var)
+    E, V = sel.X.astype(np.float64), var.X.astype(np.float64)
+    j = _column_of(sel, peak)
+    for s, study in enumerate(sm.studies):
+        rows = sel.studies.astype(str) == study
+        ref = combine_effects(E[rows, j], V[rows, j], method_re="dl")
+        mean, v = (ref.mean_effect_re, ref.var_eff_w_re) if ref.tau2 > 0 else (ref.mean_effect_fe, ref.var_eff_w_fe)
+        assert sm.effect[s, j] == pytest.approx(mean, rel=1e-5)
+        assert sm.variance[s, j] == pytest.approx(v, rel=1e-5)
+    res = pool(sel, "random-reml", use_variance=True)
+    assert np.abs(np.array(res.peaks(1)[0]["position"]) - peak).max() <= 1
+    assert "random effects" in res.provenance["study_maps"] and res.provenance["reml_unconverged"] == 0
+    out = tmp_path / "weighted"
+    assert main(["pool", "--store", str(stores[False]), "--features", "own", "--out", str(out), "--method",
+                 "random-reml", "--use-variance"]) == 0
+    assert "(random-reml)" in capsys.readouterr().out
+    # variance maps have no variance map: one line saying what is needed, exit 2
+    code = main(["pool", "--store", str(stores[False]), "--features", "own", "--out", str(tmp_path / "no"),
+                 "--stat", "variance", "--use-variance"])
+    err = capsys.readouterr().err
+    assert code == 2 and "needs effect maps" in err and len(err.strip().splitlines()) == 1

@@ -5,7 +5,8 @@ from __future__ import annotations
 
 from ._encoding import EncodingScores, concept_descriptors, encoding_scores
 from ._pooled import (METHODS, PooledMaps, StudyMaps, combine, fdr_threshold, pool, pool_maps, study_maps,
-                      verify_pooled, write_pooled)
+                      variance_maps, verify_pooled, write_pooled)
 
 __all__ = ["EncodingScores", "concept_descriptors", "encoding_scores", "METHODS", "PooledMaps", "StudyMaps",
-           "combine", "fdr_threshold", "pool", "pool_maps", "study_maps", "verify_pooled", "write_pooled"]
+           "combine", "fdr_threshold", "pool", "pool_maps", "study_maps", "variance_maps", "verify_pooled",
+           "write_pooled"]

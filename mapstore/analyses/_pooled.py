@@ -9,6 +9,10 @@ Methods (published names; formulas as in the meta-analysis literature, e.g. Bore
 - ``fixed``: inverse-variance weights w_i = 1/v_i; estimate sum(w e) / sum(w), variance 1/sum(w)
 - ``random``: DerSimonian-Laird tau^2 = max(0, (Q - (k - 1)) / (sum w - sum w^2 / sum w)), weights
   1/(v_i + tau^2); I^2 = max(0, (Q - (k - 1)) / Q)
+- ``random-reml``: tau^2 by restricted maximum likelihood (Viechtbauer, 2005, from memory), iterated from
+  the DerSimonian-Laird value; I^2 = tau^2 / (tau^2 + s^2), s^2 the typical within-study variance
+  (k - 1) sum w / ((sum w)^2 - sum w^2) (Higgins & Thompson, 2002), which equals the Q form above for
+  DerSimonian-Laird's tau^2
 
 Everything works on blocks of voxels, so memory is bounded by the block, not by the maps.
 """
@@ -18,7 +22,7 @@ from __future__ import annotations
 import json
 import time
 from dataclasses import dataclass, field
-from typing import Any
+from typing import Any, Callable
 
 import numpy as np
 
@@ -26,10 +30,11 @@ from .._version import __version__
 from ..errors import ParameterError
 from ..select import Selection
 
-__all__ = ["StudyMaps", "PooledMaps", "study_maps", "combine", "pool", "pool_maps", "fdr_threshold", "write_pooled",
-           "verify_pooled", "METHODS"]
+__all__ = ["StudyMaps", "PooledMaps", "study_maps", "variance_maps", "combine", "pool", "pool_maps", "fdr_threshold",
+           "write_pooled", "verify_pooled", "METHODS"]
 
-METHODS = ("stouffer", "stouffer-weighted", "fisher", "fixed", "random")
+METHODS = ("stouffer", "stouffer-weighted", "fisher", "fixed", "random", "random-reml")
+_EFFECT_METHODS = ("fixed", "random", "random-reml")
 _BLOCK = 8192  # voxels combined at a time
 
 
@@ -122,40 +127,84 @@ def _t_to_z(t: np.ndarray, dof: np.ndarray) -> np.ndarray:
     return z
 
 
-def study_maps(sel: Selection, *, min_subjects: int = 3) -> StudyMaps:
+def study_maps(sel: Selection, *, min_subjects: int = 3, variance: Selection | None = None) -> StudyMaps:
     """Per study, the one-sample t of its maps at every voxel (the maps of one study are its subjects'
     maps of one contrast, or of one concept), NaN where fewer than ``min_subjects`` have a value.
 
     The maps are read once, study by study.  Equal to nilearn's ``SecondLevelModel`` one-sample t on the
     same maps where every map has a value.
+
+    With ``variance`` (each subject's variance map, a row per row of ``sel``: see :func:`variance_maps`),
+    a study's map is instead the DerSimonian-Laird random-effects combination of its subjects' effects,
+    each weighted by its own variance plus the between-subject variance; ``t`` and ``z`` are then the
+    effect over its standard error.
     """
     if not isinstance(min_subjects, int) or min_subjects < 2:
         raise ParameterError(f"min_subjects must be an integer >= 2, got {min_subjects!r}")
+    if variance is not None and len(variance) != len(sel):
+        raise ParameterError(f"variance has {len(variance)} maps for {len(sel)} effect maps; give one per map")
     studies = sorted({str(s) for s in sel.studies})
     ncol = len(sel.voxels)
     out = {k: np.full((len(studies), ncol), np.nan) for k in ("effect", "variance", "t", "z", "n")}
     counts = np.zeros(len(studies), dtype=np.int64)
-    keep_policy = sel.missing
     for s, study in enumerate(studies):
         idx = np.flatnonzero(sel.studies.astype(str) == study)
         sub = sel.subset(idx)
-        if keep_policy == "zero":
+        if sel.missing == "zero":
             sub = _with_missing(sub, "keep")
         X = sub.X.astype(np.float64)
         counts[s] = len(idx)
-        n = np.isfinite(X).sum(axis=0)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            mean = np.where(n > 0, np.nansum(X, axis=0) / np.maximum(n, 1), np.nan)
-            sd = np.sqrt(np.nansum((X - mean) ** 2, axis=0) / np.maximum(n - 1, 1))
-            var = sd ** 2 / np.maximum(n, 1)
-            t = mean / np.sqrt(var)
+        if variance is None:
+            n = np.isfinite(X).sum(axis=0)
+            with np.errstate(invalid="ignore", divide="ignore"):
+                mean = np.where(n > 0, np.nansum(X, axis=0) / np.maximum(n, 1), np.nan)
+                sd = np.sqrt(np.nansum((X - mean) ** 2, axis=0) / np.maximum(n - 1, 1))
+                var = sd ** 2 / np.maximum(n, 1)
+                t = mean / np.sqrt(var)
+            z = _t_to_z(np.where(n >= min_subjects, t, 0.0), np.maximum(n - 1, 1))
+        else:
+            V = _with_missing(variance.subset(idx), "keep").with_columns(sel.voxels).X.astype(np.float64)
+            got = _combine_blocks(lambda cols: combine(effect=X[:, cols], variance=V[:, cols], method="random"),
+                                  ncol)
+            mean, var, z, n = got["effect"], got["variance"], got["z"], got["n_studies"]
+            t = z
         ok = n >= min_subjects
-        out["effect"][s] = np.where(ok, mean, np.nan)
-        out["variance"][s] = np.where(ok, var, np.nan)
-        out["t"][s] = np.where(ok, t, np.nan)
-        out["z"][s] = np.where(ok, _t_to_z(np.where(ok, t, 0.0), np.maximum(n - 1, 1)), np.nan)
-        out["n"][s] = np.where(ok, n, np.nan)
+        for key, val in (("effect", mean), ("variance", var), ("t", t), ("z", z), ("n", n)):
+            out[key][s] = np.where(ok, val, np.nan)
     return StudyMaps(studies, out["effect"], out["variance"], out["t"], out["z"], out["n"], counts)
+
+
+def variance_maps(sel: Selection) -> Selection:
+    """The variance map of each of ``sel``'s effect maps (the one of its map family: the same file name
+    with ``stat-variance``), row for row, with ``sel``'s columns; a clear error names the first effect
+    map that has none."""
+    if sel.store is None:
+        raise ParameterError("variance maps are found through the store: give a selection made by Store.select")
+    stats_ = set(sel.meta["stat"].astype(str))
+    if stats_ != {"effect"}:
+        raise ParameterError(f"weighting by variance needs effect maps; the selection also holds "
+                             f"{sorted(stats_ - {'effect'})} (select stat=['effect'])")
+    ids = ", ".join("'" + str(m).replace("'", "''") + "'" for m in sel.map_ids)
+    pairs = sel.store.sql("SELECT e.map_id AS effect, min(v.map_id) AS variance FROM map_families e "
+                          "JOIN map_families v ON v.family = e.family AND v.stat = 'variance' "
+                          f"WHERE e.map_id IN ({ids}) GROUP BY e.map_id").to_pylist()
+    of = {p["effect"]: p["variance"] for p in pairs}
+    lacking = [i for i, m in enumerate(sel.map_ids) if m not in of]
+    if lacking:
+        row = sel.meta.iloc[lacking[0]]
+        raise ParameterError(f"{row['dataset']}:{row['relpath']}: no variance map beside it (the same name with "
+                             f"stat-variance; {len(lacking)} effect maps lack one); index the variance maps, or "
+                             "pool without weighting by variance")
+    var_ids = [of[m] for m in sel.map_ids]
+    got = sel.store.select("map_id IN (" + ", ".join("'" + v.replace("'", "''") + "'" for v in var_ids) + ")",
+                           features=sel.feature_set.name, stat=["variance"], missing="keep", one_stat=False,
+                           per_subject="map")
+    pos = {m: i for i, m in enumerate(got.map_ids)}
+    missing_rows = [v for v in var_ids if v not in pos]
+    if missing_rows:
+        raise ParameterError(f"{len(missing_rows)} variance maps have no row in feature set "
+                             f"{sel.feature_set.name!r}; run 'mapstore features --features {sel.feature_set.name}'")
+    return got.subset(np.array([pos[v] for v in var_ids], dtype=np.int64)).with_columns(sel.voxels)
 
 
 def _with_missing(sel: Selection, policy: str) -> Selection:
@@ -164,47 +213,117 @@ def _with_missing(sel: Selection, policy: str) -> Selection:
     return dataclasses.replace(sel, missing=policy, _X=None)
 
 
+def _term(w: np.ndarray, e: np.ndarray, v: np.ndarray, powers: tuple[int, int, int]) -> np.ndarray:
+    """Column sums of w^a e^b v^c over rows (one pass: BLAS for a plain sum, einsum for products)."""
+    a, b, c = powers
+    ops = [w] * a + [e] * b + [v] * c
+    if len(ops) == 1:
+        return np.ones(len(w), dtype=w.dtype) @ ops[0]
+    while len(ops) > 3:  # einsum leaves its fast loop beyond three operands (~7x slower)
+        ops = [ops[0] * ops[1]] + ops[2:]
+    return np.einsum(",".join(["ij"] * len(ops)) + "->j", *ops)
+
+
+# the column sums each step of fixed and random effects needs (powers of w, e - shift and v)
+_MOMENTS = ((1, 0, 0), (1, 1, 0), (1, 2, 0), (2, 0, 0))  # fixed weights: sum w, w e, w e^2, w^2
+_WEIGHTS = ((1, 0, 0), (1, 1, 0))  # random weights: sum w, w e
+_REML = ((1, 0, 0), (1, 1, 0), (2, 0, 0), (2, 1, 0), (2, 2, 0))  # + w^2, w^2 e, w^2 e^2
+
+
+def _masked_sums(e: np.ndarray, v: np.ndarray, tau: np.ndarray, terms) -> tuple[np.ndarray, np.ndarray]:
+    """(studies measured, column sums of ``terms`` with w = 1 / (v + tau)) in float64, a row counting
+    where its effect and variance are finite and the variance positive."""
+    e, v = np.asarray(e, dtype=np.float64), np.asarray(v, dtype=np.float64)
+    ok = np.isfinite(e) & np.isfinite(v) & (v > 0)
+    e0, v0 = np.where(ok, e, 0.0), np.where(ok, v, 1.0)
+    w = np.where(ok, 1.0 / (v0 + tau), 0.0)
+    return ok.sum(axis=0), np.stack([_term(w, e0, v0, t) for t in terms])
+
+
+def _effects(sums, shift: np.ndarray, method: str, max_iter: int = 100,
+             tol: float = 1e-10) -> dict[str, np.ndarray]:
+    """Fixed or random effects from column sums: ``sums(tau, terms)`` gives (studies measured, sums) for
+    effects less
+    ``shift`` (the shift keeps Q's difference of sums away from cancellation; Q does not depend on it).
+
+    ``random`` estimates tau^2 by DerSimonian-Laird; ``random-reml`` by restricted maximum likelihood,
+    iterating tau^2 <- sum w^2 ((e - mu)^2 - v) / sum w^2 + 1 / sum w (the Fisher scoring step of the
+    REML likelihood), w = 1 / (v + tau^2), from the DerSimonian-Laird value until it moves by less than
+    ``tol`` (relative), truncated at 0.
+    """
+    zero = np.zeros(len(shift))
+    k, (s1, s2, s3, s4) = sums(zero, _MOMENTS)
+    info: dict[str, Any] = {}
+    with np.errstate(invalid="ignore", divide="ignore"):
+        q = np.maximum(0.0, s3 - s2 ** 2 / s1)
+        typical = (k - 1) * s1 / (s1 ** 2 - s4)  # the typical within-study variance (Higgins & Thompson)
+        if method == "fixed":
+            est, var, tau2 = s2 / s1, 1.0 / s1, zero
+        else:
+            tau2 = np.where(k > 1, np.maximum(0.0, (q - (k - 1)) / (s1 - s4 / s1)), 0.0)
+            if method == "random-reml":
+                passes = 0
+                while True:
+                    passes += 1
+                    sw, swe, sw2, sw2e, sw2e2 = sums(tau2, _REML)[1]
+                    sw2v = sw - tau2 * sw2  # w^2 v = w - tau^2 w^2, as w = 1 / (v + tau^2)
+                    est, var = swe / sw, 1.0 / sw
+                    dev = sw2e2 - 2 * est * sw2e + est ** 2 * sw2
+                    new = np.where(k > 1, np.maximum(0.0, (dev - sw2v) / sw2 + 1.0 / sw), 0.0)
+                    moving = np.abs(np.nan_to_num(new - tau2)) > tol * (1.0 + tau2)
+                    if not moving.any() or passes >= max_iter:
+                        break
+                    tau2 = new
+                info["reml_passes"] = passes
+                info["reml_unconverged"] = int(moving.sum())
+            else:
+                sw, swe = sums(tau2, _WEIGHTS)[1]
+                est, var = swe / sw, 1.0 / sw
+        i2 = np.where(k > 1, tau2 / (tau2 + typical), np.nan) if method == "random-reml" else \
+            np.where((k > 1) & (q > 0), np.maximum(0.0, (q - (k - 1)) / q), np.where(k > 1, 0.0, np.nan))
+        est = est + shift
+        z = est / np.sqrt(var)
+    none = k == 0
+    out = {"z": np.where(none, np.nan, z), "effect": np.where(none, np.nan, est),
+           "variance": np.where(none, np.nan, var), "tau2": np.where(none, np.nan, tau2), "i2": i2,
+           "q": np.where(none, np.nan, q)}
+    out.update({key: np.asarray(val) for key, val in info.items()})
+    out["n_studies"] = k
+    return out
+
+
 def combine(z: np.ndarray | None = None, *, effect: np.ndarray | None = None, variance: np.ndarray | None = None,
             n: np.ndarray | None = None, method: str = "random") -> dict[str, np.ndarray]:
     """Combine study maps (rows: studies, columns: voxels) voxel by voxel, NaN-aware.
 
     ``stouffer`` and ``fisher`` take ``z``; ``stouffer-weighted`` takes ``z`` and ``n`` (sample sizes,
-    a row per study or a value per study and voxel); ``fixed`` and ``random`` take ``effect`` and
-    ``variance``.  Returns arrays per voxel: ``z``, ``p`` (one-sided), ``n_studies``, and for fixed and
-    random effects ``effect``, ``variance``, ``q``, ``tau2`` and ``i2``.
+    a row per study or a value per study and voxel); ``fixed``, ``random`` and ``random-reml`` take
+    ``effect`` and ``variance``.  Returns arrays per voxel: ``z``, ``p`` (one-sided), ``n_studies``, and
+    for fixed and random effects ``effect``, ``variance``, ``q``, ``tau2`` and ``i2``.
+
+    Examples
+    --------
+    >>> import numpy as np
+    >>> from mapstore.analyses import combine
+    >>> got = combine(effect=np.array([[0.2], [0.5], [0.3]]), variance=np.array([[0.01], [0.02], [0.01]]),
+    ...               method="fixed")
+    >>> round(float(got["effect"][0]), 4), int(got["n_studies"][0])
+    (0.28, 3)
     """
     from scipy import stats
 
     if method not in METHODS:
         raise ParameterError(f"method must be one of {list(METHODS)}, got {method!r}")
-    if method in ("fixed", "random"):
+    if method in _EFFECT_METHODS:
         if effect is None or variance is None:
             raise ParameterError(f"method {method!r} needs effect and variance maps")
         e, v = np.atleast_2d(np.asarray(effect, dtype=np.float64)), np.atleast_2d(np.asarray(variance, dtype=np.float64))
         if e.shape != v.shape:
             raise ParameterError(f"effect {e.shape} and variance {v.shape} differ in shape")
-        ok = np.isfinite(e) & np.isfinite(v) & (v > 0)
-        k = ok.sum(axis=0)
-        w = np.where(ok, 1.0 / np.where(ok, v, 1.0), 0.0)
-        e0 = np.where(ok, e, 0.0)
-        with np.errstate(invalid="ignore", divide="ignore"):
-            sw = w.sum(axis=0)
-            fe = (w * e0).sum(axis=0) / sw
-            q = (w * (e0 - fe) ** 2).sum(axis=0)
-            out = {"q": np.where(k > 0, q, np.nan),
-                   "i2": np.where((k > 1) & (q > 0), np.maximum(0.0, (q - (k - 1)) / q), np.where(k > 1, 0.0, np.nan))}
-            if method == "fixed":
-                est, var = fe, 1.0 / sw
-                tau2 = np.zeros_like(fe)
-            else:
-                c = sw - (w ** 2).sum(axis=0) / sw
-                tau2 = np.where(k > 1, np.maximum(0.0, (q - (k - 1)) / c), 0.0)
-                wr = np.where(ok, 1.0 / (np.where(ok, v, 1.0) + tau2), 0.0)
-                est = (wr * e0).sum(axis=0) / wr.sum(axis=0)
-                var = 1.0 / wr.sum(axis=0)
-            zz = est / np.sqrt(var)
-        out.update(effect=np.where(k > 0, est, np.nan), variance=np.where(k > 0, var, np.nan),
-                   tau2=np.where(k > 0, tau2, np.nan), z=np.where(k > 0, zz, np.nan))
+        shift = np.nan_to_num(np.nanmedian(np.where(np.isfinite(v) & (v > 0), e, np.nan), axis=0)) \
+            if np.isfinite(e).any() else np.zeros(e.shape[1])
+        out = _effects(lambda tau, terms: _masked_sums(e - shift, v, tau, terms), shift, method)
+        k = out["n_studies"]
     else:
         if z is None:
             raise ParameterError(f"method {method!r} needs z maps")
@@ -223,17 +342,25 @@ def combine(z: np.ndarray | None = None, *, effect: np.ndarray | None = None, va
                 wt = np.where(ok, np.sqrt(np.where(np.isfinite(nn), nn, 0.0)), 0.0)
                 zz = (wt * z0).sum(axis=0) / np.sqrt((wt ** 2).sum(axis=0))
             else:  # fisher
-                logp = np.where(ok, stats.norm.logsf(z0), 0.0)
-                chi = -2.0 * logp.sum(axis=0)
-                zz = stats.norm.isf(stats.chi2.sf(chi, 2 * k))
-                big = np.isinf(zz)  # p below double precision: z from -log p (the normal tail's asymptote)
-                if big.any():
-                    lp = -stats.chi2.logsf(chi[big], 2 * k[big])
-                    zz[big] = np.sqrt(np.maximum(0.0, 2 * lp - np.log(4 * np.pi * lp)))
+                zz = _fisher_z(np.where(ok, stats.norm.logsf(z0), 0.0).sum(axis=0), k)
         out = {"z": np.where(k > 0, zz, np.nan)}
     out["p"] = np.where(np.isfinite(out["z"]), stats.norm.sf(out["z"]), np.nan)
     out["n_studies"] = k.astype(np.int64)
     return out
+
+
+def _fisher_z(sum_logp: np.ndarray, k: np.ndarray) -> np.ndarray:
+    """z of Fisher's X^2 = -2 sum log p with 2k degrees of freedom, kept finite far out."""
+    from scipy import stats
+
+    chi = -2.0 * sum_logp
+    with np.errstate(invalid="ignore", divide="ignore"):
+        zz = stats.norm.isf(stats.chi2.sf(chi, 2 * k))
+        big = np.isinf(zz)  # p below double precision: z from -log p (the normal tail's asymptote)
+        if big.any():
+            lp = -stats.chi2.logsf(chi[big], 2 * k[big])
+            zz[big] = np.sqrt(np.maximum(0.0, 2 * lp - np.log(4 * np.pi * lp)))
+    return zz
 
 
 def fdr_threshold(z: np.ndarray, q: float = 0.05) -> float:
@@ -255,27 +382,40 @@ def fdr_threshold(z: np.ndarray, q: float = 0.05) -> float:
 
 
 def pool(sel: Selection, method: str = "random", *, min_subjects: int = 3, min_studies: int = 2,
-         leave_one_out: bool = False) -> PooledMaps:
+         leave_one_out: bool = False, use_variance: bool = False) -> PooledMaps:
     """Do the studies of a selection agree, and where?  Study-level one-sample maps of the selection's
     maps (per study: its subjects' maps), combined across studies with ``method`` (see :data:`METHODS`).
 
     Voxels where fewer than ``min_studies`` studies have a value are NaN.  ``leave_one_out`` adds, per
     study, how much leaving it out moves the combined z (``provenance["leave_one_out"]``: the largest
-    change and the correlation of the two maps).
+    change and the correlation of the two maps).  ``use_variance`` weights each subject's effect map by
+    its own variance map (found by :func:`variance_maps`): a study's map is then the random-effects
+    combination of its subjects rather than their one-sample t.
+
+    Examples
+    --------
+    >>> import mapstore  # doctest: +SKIP
+    >>> from mapstore.analyses import pool
+    >>> sel = mapstore.open("store").select(concepts=["reading"], stat=["effect"], missing="keep")
+    >>> res = pool(sel, "random-reml", use_variance=True)
+    >>> res.peaks(3), float(np.nanmedian(res.i2))
     """
-    sm = study_maps(sel, min_subjects=min_subjects)
+    sm = study_maps(sel, min_subjects=min_subjects, variance=variance_maps(sel) if use_variance else None)
     res = _combine_study_maps(sm, method)
     few = res["n_studies"] < min_studies
     for key in ("z", "p", "effect", "variance", "tau2", "i2", "q"):
         if key in res:
             res[key] = np.where(few, np.nan, res[key])
     prov = {"method": method, "min_subjects": min_subjects, "min_studies": min_studies,
+            "study_maps": "random effects of subjects' effect and variance maps" if use_variance else
+            "one-sample t of subjects' maps",
             "store": str(sel.store.path) if sel.store is not None else None,
             "studies": {s: int(n) for s, n in zip(sm.studies, sm.n_subjects)}, "query": sel.query,
             "feature_set": sel.feature_set.name, "maps": sel.map_ids,
             "row_sha256": sel.meta["feature_row_sha256"].tolist() if "feature_row_sha256" in sel.meta else [],
             "versions": {"mapstore": __version__, "numpy": np.__version__},
-            "created": time.strftime("%Y-%m-%dT%H:%M:%S")}
+            "created": time.strftime("%Y-%m-%dT%H:%M:%S"),
+            **{key: int(val) for key, val in res.items() if key.startswith("reml_")}}
     if leave_one_out:
         loo = {}
         for s, study in enumerate(sm.studies):
@@ -293,15 +433,22 @@ def pool(sel: Selection, method: str = "random", *, min_subjects: int = 3, min_s
 
 def _combine_study_maps(sm: StudyMaps, method: str) -> dict[str, np.ndarray]:
     """combine() over blocks of voxels (memory bounded by the block)."""
-    ncol = sm.z.shape[1]
+    return _combine_blocks(lambda cols: combine(sm.z[:, cols], effect=sm.effect[:, cols],
+                                                variance=sm.variance[:, cols], n=sm.n[:, cols], method=method),
+                           sm.z.shape[1])
+
+
+def _combine_blocks(run: Callable[[slice], dict[str, np.ndarray]], ncol: int) -> dict[str, np.ndarray]:
+    """``run`` over blocks of ``_BLOCK`` voxels, the results joined."""
     parts: dict[str, list[np.ndarray]] = {}
     for start in range(0, ncol, _BLOCK):
-        cols = slice(start, start + _BLOCK)
-        got = combine(sm.z[:, cols], effect=sm.effect[:, cols], variance=sm.variance[:, cols],
-                      n=sm.n[:, cols], method=method)
+        got = run(slice(start, start + _BLOCK))
         for key, val in got.items():
             parts.setdefault(key, []).append(val)
-    return {key: np.concatenate(vals) for key, vals in parts.items()}
+    # per voxel: joined; REML's pass count: the most any block took; voxels still moving: summed
+    return {key: np.concatenate(vals) if np.ndim(vals[0]) else np.asarray(max(vals) if key == "reml_passes"
+                                                                          else sum(vals))
+            for key, vals in parts.items()}
 
 
 def write_pooled(result: PooledMaps, out, fdr_q: float = 0.05) -> dict[str, Any]:
@@ -390,106 +537,137 @@ def verify_pooled(folder) -> list[str]:
     return changes
 
 
+def _ahead(items):
+    """The items of an iterator, the next one read in a thread while the caller works on this one (file
+    reads and numpy's arithmetic release the GIL, so reading and combining overlap)."""
+    from concurrent.futures import ThreadPoolExecutor
+
+    it = iter(items)
+    with ThreadPoolExecutor(1) as pool_:
+        fut = pool_.submit(next, it, None)
+        while True:
+            item = fut.result()
+            if item is None:
+                return
+            fut = pool_.submit(next, it, None)
+            yield item
+
+
+def _streamed_sums(sel: Selection, variance: Selection, rows: int, shift: np.ndarray) -> Callable:
+    """``sums(tau, terms)`` for :func:`_effects` over given effect and variance maps read in blocks: float32
+    column sums where every map of the block is measured, float64 over the measured maps elsewhere.
+
+    The first pass (tau = 0: w = 1 / v) finds, per block, the columns where some map is not measured
+    (w not finite and positive, or a sum not finite); later passes reuse them."""
+    ncol = len(shift)
+    s32 = shift.astype(np.float32)
+    unmeasured: list[np.ndarray] = []  # per block: its columns where a map is not measured
+
+    def sums(tau: np.ndarray, terms) -> tuple[np.ndarray, np.ndarray]:
+        first = not unmeasured
+        if first and tau.any():
+            raise ValueError("the first pass over the maps has tau = 0")
+        total = np.zeros((len(terms), ncol))
+        k = np.zeros(ncol, dtype=np.int64)
+        t32 = tau.astype(np.float32)
+        buf = np.empty((rows, ncol), dtype=np.float32)
+        blocks = ((idx, e, v) for (idx, e, _), (_, v, _) in zip(sel.blocks(rows, reuse=True),
+                                                                 variance.blocks(rows, reuse=True)))
+        for b, (idx, e, v) in enumerate(_ahead(blocks)):
+            n, w = len(idx), buf[:len(idx)]
+            e -= s32
+            if first:
+                np.reciprocal(v, out=w)
+            else:
+                np.add(v, t32, out=w)
+                np.reciprocal(w, out=w)
+            got = np.stack([_term(w, e, v, t) for t in terms])
+            if first:
+                with np.errstate(invalid="ignore"):
+                    unmeasured.append(np.flatnonzero(~(w.min(axis=0) > 0) | ~np.isfinite(got).all(axis=0)))
+            bad = unmeasured[b]
+            got[:, bad] = 0.0
+            total += got
+            k += n
+            if bad.size:
+                kb, sb = _masked_sums(e[:, bad], v[:, bad], tau[bad], terms)
+                k[bad] += kb - n
+                total[:, bad] += sb
+        return k, total
+
+    return sums
+
+
 def pool_maps(sel: Selection, method: str = "stouffer", *, variance: Selection | None = None,
               n: np.ndarray | None = None, rows: int | None = None) -> PooledMaps:
     """Combine given study-level maps (one row of ``sel`` per study: z maps for ``stouffer``,
-    ``stouffer-weighted`` and ``fisher``; effect maps for ``fixed`` and ``random``, with ``variance``, a
-    selection of their variance maps in the same order) voxel by voxel, streaming the rows in blocks of
-    ``rows`` (default: about 32 MB of float64 per block): memory holds a few per-voxel sums and one block,
-    whatever the number of maps (random effects read the maps twice: tau^2 first).  Equal to
-    :func:`combine` on the stacked maps.
+    ``stouffer-weighted`` and ``fisher``; effect maps for ``fixed``, ``random`` and ``random-reml``, with
+    ``variance``, a selection of their variance maps in the same order) voxel by voxel, streaming the rows
+    in blocks of ``rows`` (default: about 16 MB of float32 per block): memory holds a few per-voxel sums
+    and two blocks, whatever the number of maps (random effects read the maps twice, tau^2 first;
+    ``random-reml`` once more per iteration).  Equal to :func:`combine` on the stacked maps.
     """
+    from threadpoolctl import threadpool_limits
+
+    # one BLAS thread: its spinning threads would take the cores the reading thread needs
+    with threadpool_limits(limits=1, user_api="blas"):
+        return _pool_maps(sel, method, variance, n, rows)
+
+
+def _pool_maps(sel: Selection, method: str, variance: Selection | None, n: np.ndarray | None,
+               rows: int | None) -> PooledMaps:
     from scipy import stats
 
-    rows = rows or max(4, (32 << 20) // (8 * max(1, len(sel.voxels))))
+    rows = rows or max(4, (16 << 20) // (4 * max(1, len(sel.voxels))))
     if method not in METHODS:
         raise ParameterError(f"method must be one of {list(METHODS)}, got {method!r}")
     ncol = len(sel.voxels)
-    acc = {k: np.zeros(ncol) for k in ("k", "s1", "s2", "s3", "s4")}
-    if method in ("fixed", "random"):
+    info: dict[str, Any] = {}
+    if method in _EFFECT_METHODS:
         if variance is None or len(variance) != len(sel):
             raise ParameterError(f"method {method!r} needs the variance maps of the same studies (variance=...)")
         variance = variance.with_columns(sel.voxels)
-
-        def pairs():
-            """Blocks of (effect, 1 / variance, measured), float32, zero where not measured (in place)."""
-            for (idx, e, _), (_, v, _) in zip(sel.blocks(rows), variance.blocks(rows)):
-                with np.errstate(invalid="ignore", divide="ignore"):
-                    ok = np.isfinite(e) & np.isfinite(v) & (v > 0)
-                    np.reciprocal(v, out=v)
-                e[~ok] = 0.0
-                v[~ok] = 0.0
-                yield idx, e, v, ok
-
-        def add(total: np.ndarray, block: np.ndarray) -> None:
-            total += np.add.reduce(block, axis=0, dtype=np.float64)
-
-        for _, e, w, ok in pairs():
-            acc["k"] += ok.sum(axis=0)
-            add(acc["s1"], w)
-            we = w * e
-            add(acc["s2"], we)
-            we *= e
-            add(acc["s3"], we)
-            np.multiply(w, w, out=we)
-            add(acc["s4"], we)
-        k = acc["k"]
-        with np.errstate(invalid="ignore", divide="ignore"):
-            fe = acc["s2"] / acc["s1"]
-            q = np.maximum(0.0, acc["s3"] - acc["s2"] ** 2 / acc["s1"])
-            i2 = np.where((k > 1) & (q > 0), np.maximum(0.0, (q - (k - 1)) / q), np.where(k > 1, 0.0, np.nan))
-            if method == "fixed":
-                est, var, tau2 = fe, 1.0 / acc["s1"], np.zeros(ncol)
-            else:
-                c = acc["s1"] - acc["s4"] / acc["s1"]
-                tau2 = np.where(k > 1, np.maximum(0.0, (q - (k - 1)) / c), 0.0)
-                sw, swe = np.zeros(ncol), np.zeros(ncol)
-                tau32 = tau2.astype(np.float32)
-                for _, e, w, ok in pairs():  # second pass: weights 1 / (v + tau^2)
-                    with np.errstate(divide="ignore"):
-                        wr = np.reciprocal(np.reciprocal(w) + tau32)
-                    wr[~ok] = 0.0
-                    add(sw, wr)
-                    wr *= e
-                    add(swe, wr)
-                est, var = swe / sw, 1.0 / sw
-            z = est / np.sqrt(var)
-        none = k == 0
-        res = {"z": np.where(none, np.nan, z), "effect": np.where(none, np.nan, est),
-               "variance": np.where(none, np.nan, var), "tau2": np.where(none, np.nan, tau2),
-               "i2": i2, "q": np.where(none, np.nan, q)}
+        first = next(sel.blocks(rows))[1]  # a shift near the effects: Q's sums stay apart from cancellation
+        with np.errstate(invalid="ignore"), __import__("warnings").catch_warnings():
+            __import__("warnings").simplefilter("ignore", RuntimeWarning)
+            shift = np.nan_to_num(np.nanmedian(first, axis=0).astype(np.float64))
+        res = _effects(_streamed_sums(sel, variance, rows, shift), shift, method)
+        k = res.pop("n_studies")
+        info = {key: res.pop(key).item() for key in [key for key in res if key.startswith("reml_")]}
     else:
         weights = None
         if method == "stouffer-weighted":
             if n is None or len(n) != len(sel):
                 raise ParameterError("stouffer-weighted needs each study's sample size (n=..., one per row)")
             weights = np.sqrt(np.asarray(n, dtype=np.float64))
-        for idx, zb, _ in sel.blocks(rows):
-            ok = np.isfinite(zb)
-            acc["k"] += ok.sum(axis=0)
-            np.nan_to_num(zb, copy=False, nan=0.0)  # the block is this loop's own: zeroed in place
+        k = np.zeros(ncol, dtype=np.int64)
+        s1, s2 = np.zeros(ncol), np.zeros(ncol)
+        for idx, zb, _ in _ahead(sel.blocks(rows, reuse=True)):
             if method == "fisher":
-                acc["s1"] += np.where(ok, stats.norm.logsf(zb.astype(np.float64)), 0.0).sum(axis=0)
-            elif weights is None:
-                acc["s1"] += np.add.reduce(zb, axis=0, dtype=np.float64)
-            else:
-                w = weights[idx]
-                acc["s1"] += np.add.reduce(w[:, None] * zb, axis=0, dtype=np.float64)
-                acc["s2"] += (ok * (w[:, None] ** 2)).sum(axis=0)
-        if method == "stouffer":
-            acc["s2"] = acc["k"].copy()
-        k = acc["k"]
+                ok = np.isfinite(zb)
+                k += ok.sum(axis=0)
+                s1 += np.where(ok, stats.norm.logsf(np.where(ok, zb, 0.0).astype(np.float64)), 0.0).sum(axis=0)
+                continue
+            w = np.ones(len(idx)) if weights is None else weights[idx]
+            got = w.astype(np.float32) @ zb
+            bad = ~np.isfinite(got)
+            got[bad] = 0.0
+            s1 += got
+            s2 += np.where(bad, 0.0, float((w ** 2).sum()))
+            k += len(idx) * ~bad
+            if bad.any():
+                sub = zb[:, bad].astype(np.float64)
+                ok = np.isfinite(sub)
+                k[bad] += ok.sum(axis=0)
+                s1[bad] += w @ np.where(ok, sub, 0.0)
+                s2[bad] += (w ** 2) @ ok
         with np.errstate(invalid="ignore", divide="ignore"):
-            if method == "fisher":
-                chi = -2.0 * acc["s1"]
-                z = stats.norm.isf(stats.chi2.sf(chi, 2 * k))
-            else:
-                z = acc["s1"] / np.sqrt(acc["s2"])
+            z = _fisher_z(s1, k) if method == "fisher" else s1 / np.sqrt(s2)
         res = {"z": np.where(k > 0, z, np.nan)}
     res["p"] = np.where(np.isfinite(res["z"]), stats.norm.sf(res["z"]), np.nan)
     studies = [str(s) for s in sel.studies]
     prov = {"method": method, "given_maps": sel.map_ids, "feature_set": sel.feature_set.name, "query": sel.query,
             "versions": {"mapstore": __version__, "numpy": np.__version__},
-            "created": time.strftime("%Y-%m-%dT%H:%M:%S")}
-    return PooledMaps(method, res["z"], res["p"], acc["k"].astype(np.int64), res.get("effect"), res.get("variance"),
+            "created": time.strftime("%Y-%m-%dT%H:%M:%S"), **info}
+    return PooledMaps(method, res["z"], res["p"], k.astype(np.int64), res.get("effect"), res.get("variance"),
                       res.get("tau2"), res.get("i2"), res.get("q"), studies, sel, prov)

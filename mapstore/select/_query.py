@@ -422,17 +422,26 @@ class Selection:
             np.nan_to_num(out, nan=0.0, copy=False)
         return out
 
-    def blocks(self, rows: int = 256):
+    def blocks(self, rows: int = 256, reuse: bool = False):
         """X in blocks of ``rows`` maps, as (indices, X block, y block): for learners that learn from
         part of the data at a time (scikit-learn's ``partial_fit``), with X's columns and missing-value
-        policy; no more than one block is in memory.  ``y block`` is the block's ``y`` (or ``Y``)."""
+        policy; no more than one block is in memory.  ``y block`` is the block's ``y`` (or ``Y``).
+
+        ``reuse=True`` reads into two buffers in turn (faster: no fresh memory per block): a block is
+        then overwritten two blocks later, so copy what must outlive that."""
         if not isinstance(rows, int) or isinstance(rows, bool) or rows < 1:
             raise ParameterError(f"rows must be a positive integer, got {rows!r}")
         target = self.y if self.y is not None else self.Y
-        for start in range(0, len(self), rows):
+        buffers: list[np.ndarray] = []
+        for b, start in enumerate(range(0, len(self), rows)):
             idx = np.arange(start, min(len(self), start + rows))
-            block = self._fill(np.empty((len(idx), len(self.voxels)), dtype=np.float32), start)
-            yield idx, block, None if target is None else target[idx]
+            if not reuse:
+                buf = np.empty((len(idx), len(self.voxels)), dtype=np.float32)
+            else:
+                if len(buffers) < 2:
+                    buffers.append(np.empty((min(rows, len(self)), len(self.voxels)), dtype=np.float32))
+                buf = buffers[b % 2][:len(idx)]
+            yield idx, self._fill(buf, start), None if target is None else target[idx]
 
     def to_memmap(self, path) -> np.ndarray:
         """X written block by block to ``path`` (a ``.npy`` file) and opened memory-mapped: for a selection
