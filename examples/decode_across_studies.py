@@ -1,4 +1,8 @@
-"""Decode concepts across studies from a mapstore store (run `mapstore demo DIR` first).
+"""
+Decode concepts across studies
+==============================
+
+Decode concepts across studies from a mapstore store (run `mapstore demo DIR` first)::
 
     python examples/decode_across_studies.py DIR/store
 """

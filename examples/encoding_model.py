@@ -1,5 +1,9 @@
-"""An encoding model: maps predicted from their concepts, scored per voxel on held-out studies
-(run `mapstore demo DIR` first).
+"""
+An encoding model scored per voxel
+==================================
+
+An encoding model: maps predicted from their concepts, scored per voxel on held-out studies
+(run `mapstore demo DIR` first)::
 
     python examples/encoding_model.py DIR/store
 """

@@ -1,6 +1,10 @@
-"""A decoder that never holds X in memory: scikit-learn's SGDClassifier learns block by block
+"""
+A decoder that never holds X in memory
+======================================
+
+A decoder that never holds X in memory: scikit-learn's SGDClassifier learns block by block
 (`partial_fit`), tested on a held-out study; the same selection as a lazy Dask array for a per-voxel
-statistic (run `mapstore demo DIR` first).
+statistic (run `mapstore demo DIR` first)::
 
     python examples/incremental_decoder.py DIR/store
 """

@@ -1,4 +1,8 @@
-"""Multi-label decoding with the concept hierarchy, leave-one-study-out (run `mapstore demo DIR` first).
+"""
+Multi-label decoding with the concept hierarchy
+===============================================
+
+Multi-label decoding with the concept hierarchy, leave-one-study-out (run `mapstore demo DIR` first)::
 
     python examples/multilabel_concepts.py DIR/store
 """

@@ -1,5 +1,9 @@
-"""Multitask decoding: each study's own contrast names, one head per study on a representation shared by
-all studies; subjects held out within every study (run `mapstore demo DIR` first).
+"""
+Multitask decoding, one head per study
+======================================
+
+Multitask decoding: each study's own contrast names, one head per study on a representation shared by
+all studies; subjects held out within every study (run `mapstore demo DIR` first)::
 
     python examples/multitask_studies.py DIR/store
 """

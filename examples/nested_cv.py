@@ -1,6 +1,10 @@
-"""Nested cross-validation: the regularisation chosen on inner folds grouped by subject, scored on held-out
+"""
+Nested cross-validation with checked folds
+==========================================
+
+Nested cross-validation: the regularisation chosen on inner folds grouped by subject, scored on held-out
 studies; scikit-learn's metadata routing passes the groups down, and every fold is checked against the
-store's leakage rules (run `mapstore demo DIR` first).
+store's leakage rules (run `mapstore demo DIR` first)::
 
     python examples/nested_cv.py DIR/store
 """

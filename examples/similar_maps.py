@@ -1,5 +1,9 @@
-"""Which stored maps look like this one? A map of the store, then a new map from a file
-(run `mapstore demo DIR` first).
+"""
+The stored maps most like a given one
+=====================================
+
+Which stored maps look like this one? A map of the store, then a new map from a file
+(run `mapstore demo DIR` first)::
 
     python examples/similar_maps.py DIR/store
 """

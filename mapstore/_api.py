@@ -207,7 +207,7 @@ class Store:
         a path or nibabel image, run through :meth:`FeatureSet.transform` with ``stat`` and options).
 
         Similarity is the correlation on the voxels both maps have (sign kept; ``absolute`` ranks
-        by |r|), shortlisted from the stored sketches and ranked exactly.  Returns a pandas
+        by absolute r), shortlisted from the stored sketches and ranked exactly.  Returns a pandas
         DataFrame: map_id, r, n_common, study, dataset, task, contrast, stat, concepts, coverage, relpath.
         """
         import pandas as pd

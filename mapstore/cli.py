@@ -218,7 +218,7 @@ def write_table(table, fmt: str, out: str | None) -> None:
 @click.option("--dask", "dask_address", help="Run the crawl on this Dask scheduler (e.g. tcp://host:8786); "
               "workers must see the datasets and the store at the same paths.")
 @click.option("--transforms", multiple=True, type=click.Path(file_okay=False),
-              help="Folder of registrations of native-space maps to a template (BIDS *_from-<space>_to-"
+              help="Folder of registrations of native-space maps to a template (BIDS files named like _from-<space>_to-"
                    "<template>_mode-image_xfm.h5/.txt/.mat files); repeatable.")
 def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_address, transforms) -> None:
     """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them)."""
@@ -416,7 +416,7 @@ def schema_cmd(name) -> None:
 @click.argument("query")
 @click.option("--features", "feature_set", help="Feature set name (default: the default set).")
 @click.option("-k", "k", type=click.IntRange(min=1), default=10, show_default=True, help="How many maps to list.")
-@click.option("--absolute", is_flag=True, help="Rank by |r| (a sign-flipped map counts as similar).")
+@click.option("--absolute", is_flag=True, help="Rank by absolute r (a sign-flipped map counts as similar).")
 @click.option("--stat", help="A new map's statistic (t, z, p, F, effect, ...), when the set converts to z.")
 @click.option("--dof", type=float, help="A new t or F map's degrees of freedom.")
 @click.option("--format", "fmt", type=click.Choice(["table", "csv", "json"]), default="table", show_default=True,

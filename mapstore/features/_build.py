@@ -240,8 +240,6 @@ def build_features(
 ) -> FeatureReport:
     """Resample the catalog's maps onto one grid and mask into a named feature set.
 
-    (Long only by its parameter list: the body is the phases, each a function below.)
-
     Parameters
     ----------
     store : path

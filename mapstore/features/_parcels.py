@@ -292,7 +292,7 @@ class ParcelReducer(TransformerMixin, BaseEstimator):
 
     Attributes
     ----------
-    labels_ : ndarray of shape (n_features_in_,)
+    labels_ : ndarray of shape (n_features,)
         Parcel of each column of X (0-based).
     n_features_in_ : int
         Columns of X seen in ``fit``.

@@ -219,7 +219,7 @@ def fold_vector(splits, n: int) -> np.ndarray:
 
 def copy_groups(n: int, copies: list[tuple[int, int, str, float]]) -> list[tuple[np.ndarray, str, float]]:
     """Groups of positions joined by copy pairs (connected components, linear in the pairs): each group's
-    members, ``identical`` when every pair in it is, and its strongest |r|."""
+    members, ``identical`` when every pair in it is, and its strongest absolute r."""
     parent = list(range(n))
 
     def find(x: int) -> int:
@@ -499,7 +499,7 @@ class Selection:
 
         ``scheme`` is one of :data:`SCHEMES` (see :func:`parse_scheme`).  Raises
         :class:`~mapstore.errors.LeakageError` if a participant, an identical file, an identical
-        feature row or a near-copy (|r| >= ``near_copy_r`` on the voxels both maps cover; default
+        feature row or a near-copy (absolute r >= ``near_copy_r`` on the voxels both maps cover; default
         :data:`mapstore.copies.NEAR_COPY_R`) would sit on both sides of a split, unless
         ``allow_leak`` (then a warning); and :class:`~mapstore.errors.UnseenClassError` if a test
         side holds a class its training side never saw, unless ``allow_unseen``.
@@ -578,7 +578,7 @@ class Selection:
         return np.array([s if i is None or i != i else f"{s}#{int(i)}" for s, i in zip(sha, index)], dtype=object)
 
     def copy_pairs(self, near_copy_r: float | None = None) -> list[tuple[int, int, str, float]]:
-        """Positions (i, j, kind, r) of selected maps whose rows are identical or |r| >= ``near_copy_r``."""
+        """Positions (i, j, kind, r) of selected maps whose rows are identical or absolute r >= ``near_copy_r``."""
         thr = NEAR_COPY_R if near_copy_r is None else near_copy_r
         if not 0 < thr <= 1:
             raise ParameterError(f"near_copy_r must be in (0, 1], got {thr!r}")
