@@ -49,12 +49,22 @@ def _grid_and_mask(man: dict[str, Any]) -> tuple[Any, str]:
     return grid_arg, "brain"
 
 
+def _write_given(folder: Path, kind: str, i: int, given: dict[str, Any]) -> str:
+    """A user file the manifest kept (its parsed content), written back as JSON for the index."""
+    if not isinstance(given, dict) or not isinstance(given.get("content"), dict):
+        raise ExportError(f"the manifest's index_inputs {kind} entry {i} has no content; give --{kind} yourself")
+    folder.mkdir(parents=True, exist_ok=True)
+    path = folder / f"{kind}-{i}-from-manifest.json"
+    path.write_text(json.dumps(given["content"]))
+    return str(path)
+
+
 def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[str]], out: str | os.PathLike[str], *,
             store: str | os.PathLike[str] | None = None, rules=None, origins=None) -> RebuildReport:
     """Rebuild the export ``manifest`` describes from the datasets under ``sources`` into ``out``.
 
-    ``rules`` and ``origins`` are the name rules and origins file the first index used (the manifest
-    names the datasets and each map's path inside its dataset; study and site come from the origins).
+    The name rules and origins the first index used are taken from the manifest, which keeps their
+    content; ``rules`` and ``origins`` (files or preset names) replace them when given.
     """
     from . import build_features, index, label, open as open_store
 
@@ -69,6 +79,12 @@ def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[st
         raise ExportError(f"{mpath}: the manifest predates rebuilds (no feature settings or dataset names); "
                           "export again with this mapstore")
     store_path = Path(store) if store is not None else Path(tempfile.mkdtemp(prefix="mapstore-rebuild-")) / "store"
+    kept = man.get("index_inputs") or {}
+    if rules is None and kept.get("rules"):
+        rules = [r["preset"] if "preset" in r else _write_given(store_path.parent, "rules", i, r)
+                 for i, r in enumerate(kept["rules"])]
+    if origins is None and kept.get("origins"):
+        origins = _write_given(store_path.parent, "origins", 0, kept["origins"])
     index(sources, store_path, rules=rules, overrides=origins, progress=False)
     settings = man["feature_settings"]
     grid, mask = _grid_and_mask(man)

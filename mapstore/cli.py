@@ -488,8 +488,10 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
 @click.option("--out", required=True, type=click.Path(file_okay=False), help="Folder for the rebuilt export.")
 @click.option("--store", "store", type=click.Path(file_okay=False), help="Store to index into (default: a new "
               "temporary one).")
-@click.option("--rules", multiple=True, help="The name rules the first index used (repeatable).")
-@click.option("--origins", type=click.Path(dir_okay=False), help="The origins file the first index used.")
+@click.option("--rules", multiple=True, help="Name rules to index with instead of those the manifest kept "
+              "(repeatable; files or presets).")
+@click.option("--origins", type=click.Path(dir_okay=False),
+              help="Origins file to index with instead of the one the manifest kept.")
 def rebuild_cmd(manifest, sources, out, store, rules, origins) -> None:
     """Rebuild an export from its MANIFEST and the source datasets; exit 3 if X is not the same, row by row."""
     from ._rebuild import rebuild

@@ -8,6 +8,7 @@ targets and groups.  The data are the demo's invented consortium.
 
 from __future__ import annotations
 
+import hashlib
 import json
 import shutil
 from pathlib import Path
@@ -391,6 +392,11 @@ def test_a_manifest_holds_what_a_rebuild_needs(store, tmp_path, demo_tree):
     assert set(man["vocabulary_content"]["concepts"]) == set(vocab["concepts"])
     assert set(man["datasets"]) == set(sel.meta["dataset"])
     assert all("stat" in s and "dof" in s and not s["relpath"].startswith("/") for s in man["sources"])
+    # the name rules and origins the catalog was made with, as given (content, name, hash)
+    kept = man["index_inputs"]
+    assert kept["origins"]["content"] == json.loads((demo_tree / "origins.json").read_text())
+    assert kept["origins"]["sha256"] == hashlib.sha256((demo_tree / "origins.json").read_bytes()).hexdigest()
+    assert [r["content"] for r in kept["rules"]] == [json.loads((demo_tree / "name-rules.json").read_text())]
 
 
 def test_meta_holds_the_targets_and_folds(store, tmp_path):
@@ -418,8 +424,9 @@ def test_a_rebuild_from_the_manifest_on_moved_sources_is_byte_identical(demo_sto
     first = Path(st.export(tmp_path / "first", sel).out)
     moved = tmp_path / "elsewhere" / "data"  # the sources on another machine, at another path
     shutil.copytree(demo_tree, moved, symlinks=True)
-    rep = mapstore.rebuild(first, [moved], tmp_path / "again", store=tmp_path / "s2",
-                           rules=moved / "name-rules.json", origins=moved / "origins.json")
+    for name in ("name-rules.json", "origins.json", "concepts.json"):  # only the manifest keeps them now
+        (moved / name).unlink()
+    rep = mapstore.rebuild(first, [moved], tmp_path / "again", store=tmp_path / "s2")
     assert rep.ok, rep.summary()
     digest = [hashlib.sha256((p / "X.npy").read_bytes()).hexdigest() for p in (first, tmp_path / "again")]
     assert digest[0] == digest[1]  # X byte for byte

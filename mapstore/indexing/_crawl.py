@@ -84,6 +84,7 @@ from ..store import (
     CatalogManifest,
     CatalogPart,
     Head,
+    INDEX_INPUTS_FILE,
     commit_head,
     ensure_store,
     file_slug,
@@ -1016,7 +1017,8 @@ def index(
         try:
             results = list(run_units(_run_unit, plan.units, jobs=jobs, scheduler=scheduler, progress=progress,
                                      desc="indexing", ordered=True, unit="part"))
-            report = _publish(store_path, head, prev, plan, results, problems, roots)  # type: ignore[arg-type]
+            inputs = {"rules": name_rules.given, "origins": meta_over.given}
+            report = _publish(store_path, head, prev, plan, results, problems, roots, inputs)  # type: ignore[arg-type]
         except OSError as exc:
             if exc.errno in (errno.ENOSPC, errno.EDQUOT):
                 raise StoreFull(f"{store_path}: no space left on the device (while writing the catalog); the "
@@ -1082,7 +1084,7 @@ def _plan(datasets: list[DatasetInfo], prev: _Previous, roots: list[Path], prune
 
 
 def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: list[_UnitResult],
-             problems: list[Problem], roots: list[Path]) -> IndexReport:
+             problems: list[Problem], roots: list[Path], inputs: dict[str, Any] | None = None) -> IndexReport:
     """Write the snapshot (parts list and small tables) and replace HEAD: the one atomic step."""
     kept_keys = {d["dataset"] for d in plan.kept}
     parts = [p for p in prev.parts if p.dataset in kept_keys]
@@ -1118,6 +1120,8 @@ def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: lis
         write_parquet_atomic(_participants_table(plan.participants), snap_dir / "participants.parquet")
         write_parquet_atomic(pa.Table.from_pylist(prob_rows, schema=PROBLEMS_SCHEMA), snap_dir / "problems.parquet")
         write_json_atomic(snap_dir / CatalogManifest.FILE, CatalogManifest(parts).to_json())
+        # the name rules and origins this snapshot was made with, as given: what a rebuild elsewhere needs
+        write_json_atomic(snap_dir / INDEX_INPUTS_FILE, inputs or {"rules": [], "origins": None})
         head.catalog = f"catalog/{snap}"
         old_labels = head.labels.table if head.labels else None
         _relabel(store, head)

@@ -235,6 +235,8 @@ class NameRules:
     rules: list[dict[str, Any]] = field(default_factory=list)
     source: str | None = None
     _names: dict[str, Any] = field(default_factory=dict, repr=False)  # contrast-name files, read once
+    # what was given, as a rebuild needs it again: {"preset": name} or {"file", "sha256", "content"}
+    given: list[dict[str, Any]] = field(default_factory=list, repr=False)
 
     @classmethod
     def load(cls, paths: str | os.PathLike[str] | Iterable[str | os.PathLike[str]] | None) -> "NameRules":
@@ -248,10 +250,13 @@ class NameRules:
         for path in paths:
             presets = builtin_rules()
             if not os.path.exists(path) and str(path) in presets:
+                out.given.append({"preset": str(path)})
                 path = presets[str(path)]
             elif not os.path.exists(path) and os.sep not in str(path) and "." not in str(path):
                 raise RulesError(f"{path}: no such rules file or built-in preset; presets: "
                                  f"{', '.join(presets)}")
+            else:
+                out.given.append(_given_file(path, RulesError))
             out.rules += cls._load_one(path)
             sources.append(str(path))
         out.source = ", ".join(sources)
@@ -428,6 +433,7 @@ class MetadataOverrides:
     datasets: dict[str, dict[str, str]] = field(default_factory=dict)
     subjects: dict[str, dict[str, str]] = field(default_factory=dict)
     source: str | None = None
+    given: dict[str, Any] | None = field(default=None, repr=False)  # {"file", "sha256", "content"}
 
     @classmethod
     def load(cls, path: str | os.PathLike[str] | None) -> "MetadataOverrides":
@@ -435,7 +441,7 @@ class MetadataOverrides:
             return cls()
         f = load_user_file(path, RulesError)
         check_user_doc(f, "origins", RulesError)
-        out = cls(source=str(path))
+        out = cls(source=str(path), given=_given_file(path, RulesError))
         for section in ("datasets", "subjects"):
             for key, val in (f.doc.get(section) or {}).items():
                 getattr(out, section)[str(key)] = {k: str(v) for k, v in val.items()}
@@ -1192,3 +1198,11 @@ def read_participants(ds: DatasetInfo) -> tuple[list[dict[str, Any]], str | None
     return [], None, []
 
 
+
+
+def _given_file(path: str | os.PathLike[str], error: type[Exception]) -> dict[str, Any]:
+    """A user file as the store keeps it for rebuilds: its name, hash and parsed content (JSON-able)."""
+    f = load_user_file(path, error)
+    data = Path(path).read_bytes()
+    return {"file": Path(path).name, "sha256": hashlib.sha256(data).hexdigest(),
+            "content": json.loads(json.dumps(f.doc, default=str))}

@@ -400,6 +400,8 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
         "vocabulary": ({k: getattr(head.labels, k) for k in ("vocabulary", "sha256", "version", "inherit_broader")}
                        if head.labels else None),
         "vocabulary_content": _vocabulary_content(store),
+        # the name rules and origins the catalog was made with (their content): a rebuild needs no other file
+        "index_inputs": store.catalog.index_inputs(),
         "target": sel.target, "concepts": sel.concepts, "group_by": sel.group_by,
         "scheme": scheme, "seed": seed, "allow_leak": allow_leak, "leaks": leaks,
         "splits": [{"train": len(tr), "test": len(te),
@@ -618,6 +620,12 @@ def json_schemas() -> dict[str, dict[str, Any]]:
             "dropped": {"type": "object"},
             "feature_set": {"type": "object", "required": ["name", "spec_id", "grid_id", "mask"]},
             "vocabulary": {"type": ["object", "null"]},
+            "vocabulary_content": {"type": ["object", "null"]},
+            "index_inputs": {"type": ["object", "null"], "properties": {
+                "rules": {"type": "array", "items": {"type": "object"}},
+                "origins": {"type": ["object", "null"]}}},
+            "feature_settings": {"type": "object"},
+            "datasets": {"type": "object"},
             "target": {"type": "string"},
             "concepts": {"type": "array", "items": {"type": "string"}},
             "group_by": {"type": "string"},

@@ -30,6 +30,7 @@ from ._tables import (
     FeatureEntry,
     FeatureSetSpec,
     Head,
+    INDEX_INPUTS_FILE,
     LABELS_SCHEMA,
     LabelsEntry,
     MAPS_SCHEMA,
@@ -41,12 +42,15 @@ from ._tables import (
     ROWS_SCHEMA,
     SCHEMA_BASE,
     arrow_to_json_schema,
+    check_index_inputs,
     conform,
 )
 
 
 __all__ = [
     "arrow_to_json_schema",
+    "check_index_inputs",
+    "INDEX_INPUTS_FILE",
     "Catalog",
     "CatalogManifest",
     "CatalogPart",

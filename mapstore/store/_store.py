@@ -33,39 +33,24 @@ import pyarrow.parquet as pq
 
 from ._paths import inside_store, regular_file, store_file
 from ._tables import (
-
     COPIES_SCHEMA,
-
     DATASETS_SCHEMA,
-
     FEATURE_SETS_SCHEMA,
-
     FPROBLEMS_SCHEMA,
-
     LABELS_SCHEMA,
-
     MAPS_SCHEMA,
-
     MAPS_SCHEMA_ID,
-
     PARTICIPANTS_SCHEMA,
-
     PARTS_DIR,
-
     PROBLEMS_SCHEMA,
-
     ROWS_SCHEMA,
-
     CatalogManifest,
-
     CatalogPart,
-
     FeatureSetSpec,
-
     Head,
-
     conform,
-
+    INDEX_INPUTS_FILE,
+    check_index_inputs,
 )
 from ..errors import (
     MapstoreError,
@@ -446,6 +431,22 @@ class Catalog:
             self._con.close()
             self._con = None
             shutil.rmtree(self._scratch, ignore_errors=True)
+
+    def index_inputs(self) -> dict[str, Any] | None:
+        """The name rules and origins the catalog snapshot was made with (``{"rules": [...], "origins":
+        ...}``, each file as ``file``, ``sha256`` and parsed ``content``, a preset as ``{"preset": name}``),
+        or None for a snapshot written before they were kept."""
+        if not self.head.catalog:
+            return None
+        record = f"{self.head.catalog}/{INDEX_INPUTS_FILE}"
+        try:
+            path = store_file(self.path, record, "HEAD's catalog snapshot")
+            doc = json.loads(path.read_text(encoding="utf-8"))
+        except FileNotFoundError:
+            return None
+        except (OSError, ValueError) as exc:
+            raise StoreCorrupt(f"{self.path / record}: unreadable ({exc}); re-run 'mapstore index'") from exc
+        return check_index_inputs(doc, str(self.path / record))
 
     def require_catalog(self) -> None:
         """Raise :class:`~mapstore.errors.NoCatalog` when nothing has been indexed into the store."""

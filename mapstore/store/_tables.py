@@ -293,6 +293,28 @@ class CatalogPart:
                    schema=doc.get("schema", ""))
 
 
+INDEX_INPUTS_FILE = "index-inputs.json"  # in each catalog snapshot: the name rules and origins it was made with
+
+
+def check_index_inputs(doc: Any, record: str) -> dict[str, Any]:
+    """A snapshot's index inputs, type-checked: ``rules`` (a list of ``{"preset": name}`` or ``{"file",
+    "sha256", "content"}``) and ``origins`` (one such file, or null)."""
+    def given_file(d: Any, where: str) -> None:
+        if not (isinstance(d, dict) and isinstance(d.get("file"), str) and isinstance(d.get("sha256"), str)
+                and isinstance(d.get("content"), dict)):
+            raise StoreCorrupt(f"{record}: {where} is not a file record (file, sha256, content); re-run "
+                               "'mapstore index'")
+
+    if not isinstance(doc, dict) or not isinstance(doc.get("rules"), list):
+        raise StoreCorrupt(f"{record}: not an index-inputs record (rules, origins); re-run 'mapstore index'")
+    for i, r in enumerate(doc["rules"]):
+        if not (isinstance(r, dict) and isinstance(r.get("preset"), str)):
+            given_file(r, f"rules[{i}]")
+    if doc.get("origins") is not None:
+        given_file(doc["origins"], "origins")
+    return doc
+
+
 @dataclass
 class CatalogManifest:
     """``catalog/<snapshot>/parts.json``: the maps parts a snapshot is made of, in dataset order."""
