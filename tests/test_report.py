@@ -43,4 +43,61 @@ def test_the_report_renders_with_every_picture_and_findings_first(demo_store, de
     facts = dict(re.findall(r'data-([a-z-]+)="(-?\d+)"', body))
     assert facts.get("broken-images") == "0", body
     assert 0 <= int(facts["findings-top"]) < int(facts["first-picture-top"]), facts
+    assert int(facts["page-width"]) <= 1400, facts  # readable at 1,400 px: nothing runs off to the side
     assert text.count("<img") >= 3 and "id='finding-1'" in text
+    # the pictures say what they show: rows named by study, planes in millimetres with L/R marks, colour
+    # bars with their range and unit; per-study value histograms; each concept's agreement as a matrix
+    st = mapstore.open(store)
+    reading = [r["study"] for r in st.sql("SELECT DISTINCT m.study FROM labels l JOIN maps m USING (map_id) "
+                                          "WHERE l.concept = 'reading' ORDER BY 1").to_pylist()]
+    concept = text[text.index("id='concept:reading'"):]
+    concept = concept[:concept.index("</section>")]
+    assert [s for s in re.findall(r"<th class='rowname'>([^<]+)</th>", concept)] == reading
+    assert re.search(r"axial z = -?\d+ mm", concept) and re.search(r"sagittal x = -?\d+ mm", concept)
+    assert "<span class='mark'>L</span>" in concept and "<span class='mark'>R</span>" in concept
+    assert "SD units" in concept and len(re.findall(r"<div class='ticks'>(<span>[^<]+</span>){3}</div>", concept)) == 1
+    assert "id='values-by-study'" in text and text.count("<svg") >= len(reading)
+    assert "id='agreement:reading'" in text and "class='matrix'" in text
+
+
+def test_slices_are_labelled_in_millimetres_and_read_left_to_right():
+    """A value planted in the left hemisphere (negative x, by nibabel's apply_affine of the grid) shows in
+    the left half of the axial and coronal panels, marked L there; the plane labels are the focus voxel's
+    millimetres."""
+    import nibabel as nib
+    import numpy as np
+
+    from mapstore.targets import builtin_grid
+
+    grid = builtin_grid("MNI152-3mm")
+    vol = np.zeros(grid.shape)
+    aff = grid.affine_array
+    ijk = np.array(nib.affines.apply_affine(np.linalg.inv(aff), [-40.0, -20.0, 30.0])).round().astype(int)
+    vol[tuple(ijk)] = 5.0
+    focus = grid.peak(vol.reshape(-1))
+    assert tuple(focus) == tuple(ijk)
+    axial, coronal, sagittal = grid.panels(vol.reshape(-1), focus)
+    x, y, z = nib.affines.apply_affine(aff, ijk)
+    assert axial.label == f"axial z = {z:.0f} mm" and coronal.label == f"coronal y = {y:.0f} mm"
+    assert sagittal.label == f"sagittal x = {x:.0f} mm" and (axial.left, axial.right) == ("L", "R")
+    for panel in (axial, coronal):
+        col = np.argwhere(panel.values == 5.0)[0][1]
+        assert col < panel.values.shape[1] / 2  # left hemisphere on the left of the picture
+    row, col = np.argwhere(sagittal.values == 5.0)[0]
+    assert col < sagittal.values.shape[1] / 2 and (sagittal.left, sagittal.right) == ("P", "A")  # y < 0: posterior
+
+
+def test_a_lateral_surface_view_shows_no_medial_wall():
+    """Drawn with a depth buffer over the mesh's faces, the lateral views of fsaverage5 show none of the
+    medial wall (outside nilearn's cortex mask), the medial views a solid patch of it."""
+    import numpy as np
+
+    from mapstore.targets import builtin_surface, cortex_mask
+
+    target = builtin_surface("fsaverage5")
+    inside = np.where(cortex_mask(target), 1.0, np.nan)
+    surface = [np.isfinite(p.values) for p in target.panels(np.zeros(target.n_vertices))]  # where it is drawn
+    wall = {p.label: float(np.mean(np.isnan(p.values[on]))) for p, on in zip(target.panels(inside), surface)}
+    assert set(wall) == {"left lateral", "left medial", "right lateral", "right medial"}
+    assert wall["left lateral"] == 0 and wall["right lateral"] == 0, wall
+    assert wall["left medial"] > 0.03 and wall["right medial"] > 0.03, wall

@@ -10,10 +10,8 @@ from __future__ import annotations
 import base64
 import html
 import json
-import struct
-import warnings
-import zlib
 import time
+import warnings
 from collections import Counter, defaultdict
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -24,6 +22,7 @@ import pyarrow as pa
 from .._version import __version__
 from ..analyses import combine
 from ..features import pair_correlation
+from ._figures import FIGURE_CSS, Scale, compose, figure_html, histograms_html, matrix_html, png_bytes, stack_rgb
 
 __all__ = ["Finding", "CheckReport", "check_store", "png_bytes", "report_json", "LEVELS"]
 
@@ -58,6 +57,8 @@ class CheckReport:
     tables: dict[str, pa.Table] = field(default_factory=dict)  # by stable id (``grids``, ``copies``, ...)
     pictures: dict[str, bytes] = field(default_factory=dict)  # PNG bytes by stable id (``coverage``, ...)
     titles: dict[str, str] = field(default_factory=dict)  # what a person reads above a table or picture
+    figures: dict[str, str] = field(default_factory=dict)  # the page's HTML of a picture (labels, colour bar)
+    _order: list[str] = field(default_factory=list, repr=False)  # pictures and figures, as added
 
     def __repr__(self) -> str:
         return (f"CheckReport({self.store!r}, feature set {self.feature_set!r}: {self.count('error')} error(s), "
@@ -75,8 +76,18 @@ class CheckReport:
     def add_table(self, key: str, title: str, table: pa.Table) -> None:
         self.tables[key], self.titles[key] = table, title
 
-    def add_picture(self, key: str, title: str, png: bytes) -> None:
+    def add_picture(self, key: str, title: str, png: bytes, figure: str | None = None) -> None:
+        """A picture (PNG bytes), shown on the page as ``figure`` (HTML: panels labelled, a colour bar)
+        when given."""
         self.pictures[key], self.titles[key] = png, title
+        if figure is not None:
+            self.figures[key] = figure
+        self._order.append(key)
+
+    def add_figure(self, key: str, title: str, figure: str) -> None:
+        """A figure that is HTML only (histograms as SVG, a matrix as a coloured table)."""
+        self.figures[key], self.titles[key] = figure, title
+        self._order.append(key)
 
     def count(self, level: str) -> int:
         return sum(1 for f in self.findings if f.level == level)
@@ -120,7 +131,7 @@ class CheckReport:
                  "table{border-collapse:collapse;margin-bottom:1em}td,th{border:1px solid #ccc;padding:2px 6px;"
                  "font-size:90%;text-align:left;vertical-align:top}.error{background:#fdd}.warning{background:#ffd}"
                  ".info{background:#eef}img{image-rendering:pixelated;border:1px solid #999;margin:4px;"
-                 "max-width:100%}header p{color:#444;margin:.2em 0}</style></head><body>",
+                 "max-width:100%}header p{color:#444;margin:.2em 0}" + FIGURE_CSS + "</style></head><body>",
                  "<header><h1>mapstore check</h1>"
                  f"<p>store <code>{esc(self.store)}</code>"
                  + (f", feature set <code>{esc(self.feature_set)}</code>" if self.feature_set else "") + "</p>"
@@ -135,17 +146,21 @@ class CheckReport:
         for key, table in self.tables.items():
             if key != "studies":
                 parts.append(f"<h2 id='{esc(key)}'>{esc(self.titles.get(key, key))}</h2>" + _html_table(table))
-        for key, png in self.pictures.items():
-            b64 = base64.b64encode(png).decode()
+        for key in dict.fromkeys(self._order + list(self.pictures) + list(self.figures)):
             title = esc(self.titles.get(key, key))
-            parts.append(f"<h2 id='{esc(key)}'>{title}</h2><img alt='{title}' src='data:image/png;base64,{b64}'>")
+            if key in self.figures:
+                parts.append(f"<section class='figure'><h2 id='{esc(key)}'>{title}</h2>{self.figures[key]}</section>")
+            else:
+                b64 = base64.b64encode(self.pictures[key]).decode()
+                parts.append(f"<h2 id='{esc(key)}'>{title}</h2><img alt='{title}' src='data:image/png;base64,{b64}'>")
         # layout facts a browser can report back (the report's own test reads them): broken pictures, and
         # where the findings and the first picture sit on the page
         parts.append("<script>window.addEventListener('load',function(){var im=document.images,b=0;"
                      "for(var i=0;i<im.length;i++){if(!im[i].complete||im[i].naturalWidth===0)b++;}"
                      "var d=document.body.dataset;d.brokenImages=b;d.findingsTop="
                      "Math.round(document.getElementById('findings').getBoundingClientRect().top);"
-                     "d.firstPictureTop=im.length?Math.round(im[0].getBoundingClientRect().top):-1;});</script>")
+                     "d.firstPictureTop=im.length?Math.round(im[0].getBoundingClientRect().top):-1;"
+                     "d.pageWidth=document.documentElement.scrollWidth;});</script>")
         parts.append("</body></html>")
         path.write_text("\n".join(parts), encoding="utf-8")
         return path
@@ -180,39 +195,6 @@ def _html_table(table: pa.Table, level_col: str | None = None) -> str:
         cells = "".join(f"<td>{html.escape('' if v is None else str(v))}</td>" for v in r.values())
         rows.append(f"<tr{cls}>{cells}</tr>")
     return f"<table><tr>{head}</tr>{''.join(rows)}</table>"
-
-
-# --- pictures -----------------------------------------------------------------------------
-
-# 0 = red (no map has a value), 0.5 = yellow, 1 = blue (every map has one)
-_RAMP = np.array([[180, 20, 30], [235, 110, 40], [250, 200, 60], [150, 200, 150], [40, 130, 200]],
-                 dtype=np.float64)
-
-
-def _colour(values: np.ndarray, vmin: float, vmax: float) -> np.ndarray:
-    """RGB uint8 for values in [vmin, vmax]; NaN is grey."""
-    v = np.clip((values - vmin) / (vmax - vmin if vmax > vmin else 1.0), 0, 1)
-    pos = v * (len(_RAMP) - 1)
-    lo = np.floor(np.nan_to_num(pos)).astype(int).clip(0, len(_RAMP) - 2)
-    frac = (np.nan_to_num(pos) - lo)[..., None]
-    rgb = _RAMP[lo] * (1 - frac) + _RAMP[lo + 1] * frac
-    rgb[np.isnan(values)] = 200
-    return rgb.astype(np.uint8)
-
-
-def png_bytes(rgb: np.ndarray) -> bytes:
-    """Encode an (H, W, 3) uint8 array as a PNG (8-bit RGB, no interlace), per the PNG spec."""
-    rgb = np.ascontiguousarray(rgb, dtype=np.uint8)
-    if rgb.ndim != 3 or rgb.shape[2] != 3:
-        raise ValueError(f"expected an (H, W, 3) array, got {rgb.shape}")
-    h, w, _ = rgb.shape
-    raw = b"".join(b"\x00" + rgb[y].tobytes() for y in range(h))  # filter type 0 per scanline
-
-    def chunk(kind: bytes, data: bytes) -> bytes:
-        return struct.pack(">I", len(data)) + kind + data + struct.pack(">I", zlib.crc32(kind + data) & 0xFFFFFFFF)
-
-    return (b"\x89PNG\r\n\x1a\n" + chunk(b"IHDR", struct.pack(">IIBBBBB", w, h, 8, 2, 0, 0, 0))
-            + chunk(b"IDAT", zlib.compress(raw, 6)) + chunk(b"IEND", b""))
 
 
 # --- checks -------------------------------------------------------------------------------
@@ -557,6 +539,14 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
                         "check the vocabulary's rules for this concept (are the contrasts alike?) and the maps' "
                         "stat types and signs"))
         tiles[concept] = [(s, means[s]) for s in names]
+        if pictures:
+            r = np.full((len(names), len(names)), np.nan)
+            for row in rows:
+                if row["concept"] == concept:
+                    i, j = names.index(str(row["study_a"])), names.index(str(row["study_b"]))
+                    r[i, j] = r[j, i] = row["r_of_means"]
+            report.add_figure(f"agreement:{concept}", f"concept {concept!r}: how the studies' mean maps agree "
+                              "(r, study x study)", matrix_html(names, r))
     if summary:
         report.add_table("concept-agreement", "concept agreement across studies (mean of each study's standardised "
                          "maps; pooled by random effects: the largest pooled z and the median I^2, the share of "
@@ -567,30 +557,54 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
         _concept_pictures(fs, tiles, report)
 
 
-def _views(fs, vector: np.ndarray) -> np.ndarray:
-    """A set's row as its target draws it (a parcel set's on its source set's target)."""
-    return fs.base().views(fs.on_base(vector))
+class _Drawer:
+    """Rows of a feature set drawn for the report: its base target's labelled panels (through a focus:
+    a volume's peak voxel) over the target's background, dimmed outside the set's mask."""
+
+    _HEIGHT = 300  # pixels a row of panels aims at
+
+    def __init__(self, fs) -> None:
+        self.fs, self.base = fs, fs.base()
+        self.inside = fs.on_base(np.ones(fs.n_voxels, dtype=np.float32))  # NaN outside the set's mask
+
+    def focus(self, vector: np.ndarray):
+        return self.base.peak(self.fs.on_base(vector))
+
+    def draw(self, rows: list[tuple[str, np.ndarray]], scale: Scale, focus=None, note: str = "") -> tuple[bytes, str]:
+        """(one PNG of every row, the page's figure) for rows of (name, vector over the set's mask)."""
+        backgrounds = self.base.background_panels(focus)
+        drawn_rows = self.base.panels_of([self.inside] + [self.fs.on_base(v) for _, v in rows], focus)
+        inside = [p.values for p in drawn_rows[0]]
+        finite = np.concatenate([b[np.isfinite(b)].ravel() for b in backgrounds]) if backgrounds else np.zeros(1)
+        grey = tuple(np.percentile(finite, [2, 99.5])) if finite.size and np.ptp(finite) > 0 else (0.0, 1.0)
+        tallest = max(b.shape[0] for b in backgrounds)
+        wide = sum(b.shape[1] for b in backgrounds)
+        zoom = max(1, min(round(self._HEIGHT / tallest), 1100 // max(wide, 1)))
+        drawn, headers = [], []
+        for (name, _), panels in zip(rows, drawn_rows[1:]):
+            headers = [(p.label, p.left, p.right) for p in panels]
+            drawn.append((name, [compose(p.values, bg, ins, scale, grey, zoom)  # type: ignore[arg-type]
+                                 for p, bg, ins in zip(panels, backgrounds, inside)]))
+        png = png_bytes(stack_rgb([rgbs for _, rgbs in drawn]))
+        return png, figure_html(drawn, headers, scale, note)
 
 
 def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report) -> None:
-    """Each study's mean map over the MNI152 template (sulcal depth on a surface): red positive, blue negative."""
-    base = fs.base()
-    bg = base.background()
-    lo, hi = np.nanpercentile(bg, [2, 99.5]) if np.nanmax(bg) > 0 else (0.0, 1.0)
-    grey = np.clip((np.nan_to_num(bg, nan=hi) - lo) / (hi - lo if hi > lo else 1.0), 0, 1)[..., None] \
-        * np.array([235.0, 235, 235])  # the gaps between slices come out white
+    """Each study's mean map over the set's background (the MNI152 template; sulcal depth on a surface),
+    one row per study, through the peak of the studies' average: red positive, blue negative."""
+    drawer = _Drawer(fs)
     for concept, items in tiles.items():
         vmax = max(float(np.nanpercentile(np.abs(m), 99)) for _, m in items) or 1.0
-        strips = []
-        for _, mean in items:
-            v = _views(fs, mean) / vmax
-            alpha = np.clip(np.abs(np.nan_to_num(v)) * 1.5 - 0.3, 0, 1)[..., None]  # faint values fade out
-            colour = np.where((np.nan_to_num(v) >= 0)[..., None], np.array([220.0, 40, 30]), np.array([30.0, 90, 220]))
-            strips.append(grey * (1 - alpha) + colour * alpha)
-            strips.append(np.full((4, grey.shape[1], 3), 255.0))
+        with warnings.catch_warnings():
+            warnings.simplefilter("ignore", RuntimeWarning)  # voxels no study covers
+            focus = drawer.focus(np.nanmean(np.stack([m for _, m in items]), axis=0))
+        png, figure = drawer.draw(items, Scale("diverging", -vmax, vmax, "mean of the study's standardised maps "
+                                              "(SD units; each map z-scored over its voxels)"), focus,
+                                  note=f"Background: the {drawer.base.background_name}, darker outside the set's "
+                                       "mask. Slices through the largest absolute value of the studies' average.")
         report.add_picture(f"concept:{concept}", f"concept {concept!r}: mean standardised map per study, one row "
-                           "each (" + ", ".join(s for s, _ in items) + "); red positive, blue negative, over the "
-                           + base.background_name, png_bytes(np.concatenate(strips[:-1], axis=0).astype(np.uint8)))
+                           "each (" + ", ".join(s for s, _ in items) + "); red positive, blue negative",
+                           png, figure)
 
 
 def _check_target(store, fs, add) -> None:
@@ -730,38 +744,51 @@ def _check_features(store, fs, maps, min_coverage, add, report, pictures, max_ro
 
 
 def _coverage_pictures(fs, rows, stat_of, report, max_rows) -> None:
-    """Fraction of maps with a value at each voxel: all maps, then each study."""
+    """Fraction of maps with a value at each voxel: all maps, then each study; and the distribution of
+    the stored values per study and stat."""
     ids = [r["map_id"] for r in rows if r["map_id"] in stat_of]
     pick = ids if len(ids) <= max_rows else [ids[i] for i in np.linspace(0, len(ids) - 1, max_rows).astype(int)]
+    stat_out = {r["map_id"]: r["stat_out"] for r in rows}
     counts = np.zeros(fs.n_voxels)
     per_study: dict[str, np.ndarray] = {}
     per_n: Counter = Counter()
+    samples: dict[tuple[str, str], list[np.ndarray]] = defaultdict(list)
+    rng = np.random.default_rng(0)
     block = 64
     for i in range(0, len(pick), block):
         part = pick[i:i + block]
-        finite = np.isfinite(fs.matrix(part))
+        X = fs.matrix(part)
+        finite = np.isfinite(X)
         counts += finite.sum(axis=0)
-        for mid, row in zip(part, finite):
+        for mid, row, ok in zip(part, X, finite):
             s = stat_of[mid]["study"]
             per_study.setdefault(s, np.zeros(fs.n_voxels))
-            per_study[s] += row
+            per_study[s] += ok
             per_n[s] += 1
+            key = (s, str(stat_out.get(mid) or stat_of[mid]["stat"]))
+            if len(samples[key]) < _HIST_MAPS:
+                vals = row[ok]
+                samples[key].append(vals if vals.size <= 5000 else rng.choice(vals, 5000, replace=False))
     frac = counts / max(len(pick), 1)
-    legend = np.kron(np.linspace(0, 1, 256)[None, :], np.ones((12, 1)))
-    report.add_picture("coverage-scale", "colour scale: fraction of maps with a value, 0 (red) to 1 (blue); grey "
-                       "is outside the mask", png_bytes(_colour(legend, 0.0, 1.0)))
-    where = fs.base().picture_caption
-    report.add_picture("coverage", f"coverage over {len(pick)} maps ({where})",
-                       png_bytes(_colour(_views(fs, frac), 0.0, 1.0)))
-    tiles = []
-    for s in sorted(per_study):
-        tiles.append(_views(fs, per_study[s] / per_n[s]))
-    if tiles:
-        width = max(t.shape[1] for t in tiles)
-        stack = np.concatenate([np.pad(t, ((0, 4), (0, width - t.shape[1])), constant_values=np.nan)
-                                for t in tiles], axis=0)
-        report.add_picture("coverage-per-study", "coverage per study, one row each: " + ", ".join(sorted(per_study)),
-                           png_bytes(_colour(stack, 0.0, 1.0)))
+    drawer = _Drawer(fs)
+    scale = Scale("sequential", 0.0, 1.0, "fraction of the maps with a value (red: none, blue: all)")
+    note = (f"{drawer.base.picture_caption.capitalize()}. Background: the {drawer.base.background_name}, darker "
+            "outside the set's mask.")
+    png, figure = drawer.draw([(f"all {len(pick)} maps", frac)], scale, note=note)
+    report.add_picture("coverage", f"coverage over {len(pick)} maps ({drawer.base.picture_caption})", png, figure)
+    if per_study:
+        studies = sorted(per_study)
+        png, figure = drawer.draw([(f"{s} ({per_n[s]})", per_study[s] / per_n[s]) for s in studies], scale, note=note)
+        report.add_picture("coverage-per-study", "coverage per study, one row each: " + ", ".join(studies), png,
+                           figure)
+    if samples:
+        report.add_figure("values-by-study", "stored values per study and stat (a sample of up to "
+                          f"{_HIST_MAPS} maps each; one range per stat: a study on another scale or with flipped "
+                          "signs stands out; red line: the median)",
+                          histograms_html({k: np.concatenate(v) for k, v in samples.items()}))
+
+
+_HIST_MAPS = 6  # maps per study and stat in the value histograms
 
 
 def report_json(report: CheckReport) -> str:

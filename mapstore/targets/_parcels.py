@@ -28,7 +28,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from ..errors import DataFileError, FeatureError, ParameterError
-from ._protocol import BatchContext, BuildSettings, RowValues, SourceMap, Target
+from ._protocol import BatchContext, BuildSettings, Panel, RowValues, SourceMap, Target
 
 __all__ = ["Atlas", "ParcelGrid", "REDUCERS", "load_atlas", "reduce_rows", "paint"]
 
@@ -112,6 +112,18 @@ class ParcelGrid(Target):
 
     def background(self) -> np.ndarray:
         return self.base().background()
+
+    def peak(self, full: np.ndarray) -> Any:
+        return self.base().peak(self.on_base(full))
+
+    def panels(self, full: np.ndarray, focus: Any = None) -> list[Panel]:
+        return self.base().panels(self.on_base(full), focus)
+
+    def panels_of(self, fulls: list[np.ndarray], focus: Any = None) -> list[list[Panel]]:
+        return self.base().panels_of([self.on_base(f) for f in fulls], focus)
+
+    def background_panels(self, focus: Any = None) -> list[np.ndarray]:
+        return self.base().background_panels(focus)
 
     @property
     def picture_caption(self) -> str:  # type: ignore[override]

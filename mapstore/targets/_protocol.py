@@ -190,6 +190,17 @@ def coverage_fraction(mask: str) -> float | None:
     return frac
 
 
+@dataclass(frozen=True)
+class Panel:
+    """One drawn view of a row: a 2-D picture (NaN: no value), what it shows (``axial z = 12 mm``, ``left
+    lateral``) and the marks at its left and right edges (``L``/``R``, ``P``/``A``)."""
+
+    values: np.ndarray
+    label: str
+    left: str = ""
+    right: str = ""
+
+
 class Target(abc.ABC):
     """A space feature rows live in: ``n_positions`` positions in a fixed order.
 
@@ -328,3 +339,21 @@ class Target(abc.ABC):
     @abc.abstractmethod
     def background(self) -> np.ndarray:
         """The picture's background, the shape of ``views`` (any scale: pictures stretch it)."""
+
+    def peak(self, full: np.ndarray) -> Any:
+        """Where the report's pictures of ``full`` look (a volume: the voxel of largest absolute value);
+        None: the kind's fixed views."""
+        return None
+
+    def panels(self, full: np.ndarray, focus: Any = None) -> list[Panel]:
+        """``full`` drawn as labelled panels through ``focus`` (see :meth:`peak`): by default one panel,
+        the kind's ``views``."""
+        return [Panel(self.views(full), self.picture_caption)]
+
+    def panels_of(self, fulls: list[np.ndarray], focus: Any = None) -> list[list[Panel]]:
+        """:meth:`panels` of several rows (a kind may share work between them)."""
+        return [self.panels(full, focus) for full in fulls]
+
+    def background_panels(self, focus: Any = None) -> list[np.ndarray]:
+        """The backgrounds of :meth:`panels`, panel by panel."""
+        return [self.background()]

@@ -36,7 +36,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from ..errors import FeatureError, GridError, ParameterError
-from ._protocol import BatchContext, BuildSettings, Mask, RowValues, SourceMap, Target, mask_from_array
+from ._protocol import BatchContext, BuildSettings, Mask, Panel, RowValues, SourceMap, Target, mask_from_array
 from ..formats import DATA_KINDS, MeshFile, mesh_file, read_mesh, read_vertex_data, write_mesh_description
 
 __all__ = [
@@ -280,6 +280,20 @@ class SurfaceTarget(MeshedTarget):
     def background(self) -> np.ndarray:
         sulc = sulcal_depth(self)
         return -surface_views(sulc if sulc is not None else np.zeros(self.n_vertices), self)  # gyri light
+
+    def panels(self, full: np.ndarray, focus: Any = None) -> list[Panel]:
+        return self.panels_of([full], focus)[0]
+
+    def panels_of(self, fulls: list[np.ndarray], focus: Any = None) -> list[list[Panel]]:
+        layout = surface_layout(self, _PANEL_HEIGHT)  # one projection for every row
+        return [[Panel(t, name) for t, name in zip(surface_tiles(full, self, layout=layout), _VIEW_NAMES)]
+                for full in fulls]
+
+    def background_panels(self, focus: Any = None) -> list[np.ndarray]:
+        """Sulcal depth in two tones (gyri light, sulci darker): a quiet background, no dot noise."""
+        sulc = sulcal_depth(self)
+        flat = np.zeros(self.n_vertices) if sulc is None else np.where(np.nan_to_num(sulc) > 0, -1.0, 0.0)
+        return surface_tiles(flat, self, height=_PANEL_HEIGHT)
 
     def vertex_data(self, kind: str) -> np.ndarray | None:
         """Per-vertex data of a described mesh over both hemispheres (``cortex``, ``sulcal``), or None."""
@@ -826,39 +840,74 @@ def to_surface_image(values: np.ndarray, target: SurfaceTarget, meshes: dict[str
     return SurfaceImage(mesh=mesh, data={part: v[target.part(hemi)] for hemi, part in PARTS})
 
 
+_VIEW_NAMES = ("left lateral", "left medial", "right lateral", "right medial")
+# barycentric points of a triangle (corners, edge thirds, centre): where a face is drawn
+_BARY = np.array([(i, j, 3 - i - j) for i in range(4) for j in range(4 - i)], dtype=np.float64) / 3
+_PANEL_HEIGHT = 240  # the report's surface views (the one-picture views stay 110 rows high)
+
+
 def surface_views(values: np.ndarray, target: SurfaceTarget, height: int = 110,
                   meshes: dict[str, Any] | None = None) -> np.ndarray:
-    """Lateral and medial views of both hemispheres side by side, as a 2-D array (NaN: no value).
+    """Lateral and medial views of both hemispheres side by side, as a 2-D array (NaN: no value)."""
+    tiles = surface_tiles(values, target, height, meshes)
+    gap = np.full((height, 4), np.nan)
+    return np.concatenate([part for t in tiles for part in (t, gap)][:-1], axis=1)
 
-    Vertices of the inflated mesh (nilearn's fsaverage5, or the best surface a described mesh
-    has: inflated, midthickness, pial, ...) are drawn as small squares, far ones first, so the
-    visible side of the surface ends on top (a painter's projection: no shading, no library).
-    """
+
+def surface_tiles(values: np.ndarray, target: SurfaceTarget, height: int = 110,
+                  meshes: dict[str, Any] | None = None, layout: list | None = None) -> list[np.ndarray]:
+    """The four views (left lateral, left medial, right lateral, right medial), each a 2-D array; give
+    ``layout`` (:func:`surface_layout`) to draw many rows on one projection."""
     v = np.asarray(values, dtype=np.float64).reshape(-1)
+    tiles = []
+    for shape, pixels, vertices in (layout if layout is not None else surface_layout(target, height, meshes)):
+        tile = np.full(shape, np.nan)
+        tile.flat[pixels] = v[vertices]
+        tiles.append(tile)
+    return tiles
+
+
+def surface_layout(target: SurfaceTarget, height: int = 110,
+                   meshes: dict[str, Any] | None = None) -> list[tuple[tuple[int, int], np.ndarray, np.ndarray]]:
+    """Per view, the picture's shape, its drawn pixels and the vertex (over both hemispheres) each shows.
+
+    Vertices of the inflated mesh (nilearn's fsaverage5, or the best surface a described mesh has:
+    inflated, midthickness, pial, ...) are projected onto the view's plane; where the mesh has faces,
+    points spread over each triangle carry its nearest corner, so the surface is drawn without gaps
+    (nothing behind it, the other side or the medial wall, shows through). A depth buffer keeps, per
+    pixel, the point nearest the viewer (no shading, no library).
+    """
     meshes = target.meshes() if meshes is None else meshes
     inflated = meshes[next(k for k in _DRAW_ON + tuple(sorted(meshes)) if k in meshes)]
-    r = 2 if max(target.n_left, target.n_right) <= 20000 else 1  # squares that close the gaps between vertices
-    tiles = []
+    out = []
     # (hemisphere, axis sign of the viewer along x, sign of y across the picture)
     for hemi, part, view_x, across in (("L", "left", -1, -1), ("L", "left", 1, 1),
                                        ("R", "right", 1, 1), ("R", "right", -1, -1)):
         xyz = np.asarray(inflated.parts[part].coordinates, dtype=np.float64)
-        vals = v[target.part(hemi)]
-        n = min(len(vals), len(xyz))
-        xyz, vals = xyz[:n], vals[:n]
+        n = min(target.part(hemi).stop - target.part(hemi).start, len(xyz))
+        xyz = xyz[:n]
+        vertex = np.arange(n)
+        faces = getattr(inflated.parts[part], "faces", None)
+        if faces is not None and len(faces):
+            faces = np.asarray(faces, dtype=np.int64)
+            faces = faces[(faces < n).all(axis=1)]
+            xyz, vertex = (_BARY @ xyz[faces]).reshape(-1, 3), faces[:, _BARY.argmax(axis=1)].reshape(-1)
+            r = max(1, round(height / 220))
+        else:  # vertices only: squares that close the gaps between them, growing with the picture
+            r = (2 if max(target.n_left, target.n_right) <= 20000 else 1) * max(1, round(height / 110))
         h = np.array([across * xyz[:, 1], -xyz[:, 2]]).T  # picture columns, rows (up is +z)
         lo, hi = h.min(axis=0), h.max(axis=0)
-        scale = (height - 5) / max(hi[1] - lo[1], 1e-6)
-        width = int(np.ceil((hi[0] - lo[0]) * scale)) + 5
-        pix = np.round((h - lo) * scale).astype(int) + 2
-        tile = np.full((height, width), np.nan)
-        order = np.argsort(view_x * xyz[:, 0])  # far from the viewer first
-        for dr in range(-r, r + 1):
-            for dc in range(-r, r + 1):
-                tile[pix[order, 1] + dr, pix[order, 0] + dc] = vals[order]
-        tiles.append(tile)
-        tiles.append(np.full((height, 4), np.nan))
-    return np.concatenate(tiles[:-1], axis=1)
+        scale = (height - 2 * r - 1) / max(hi[1] - lo[1], 1e-6)  # a margin of r: the squares stay inside
+        width = int(np.ceil((hi[0] - lo[0]) * scale)) + 2 * r + 1
+        pix = np.round((h - lo) * scale).astype(np.int64) + r
+        offsets = [(dr, dc) for dr in range(-r, r + 1) for dc in range(-r, r + 1)]
+        flat = np.concatenate([(pix[:, 1] + dr) * width + pix[:, 0] + dc for dr, dc in offsets])
+        near = np.tile(view_x * xyz[:, 0], len(offsets))  # larger: nearer the viewer
+        which = np.tile(vertex, len(offsets))
+        order = np.lexsort((near, flat))  # by pixel, nearest last
+        last = np.r_[flat[order][1:] != flat[order][:-1], True]
+        out.append(((height, width), flat[order][last], which[order][last] + target.part(hemi).start))
+    return out
 
 
 def sulcal_depth(target: SurfaceTarget) -> np.ndarray | None:

@@ -27,7 +27,7 @@ from typing import Any, ClassVar
 import numpy as np
 
 from ..errors import GridError, HeaderError, ParameterError, UnknownGrid
-from ._protocol import BatchContext, BuildSettings, Mask, RowValues, SourceMap, Target, mask_from_array
+from ._protocol import BatchContext, BuildSettings, Mask, Panel, RowValues, SourceMap, Target, mask_from_array
 from ..formats import REAL_SCALAR_DTYPES, HeaderFacts, grid_fingerprint, header_prefix, parse_header, read_header
 
 __all__ = [
@@ -157,6 +157,18 @@ class TargetGrid(Target):
 
     def background(self) -> np.ndarray:
         return slice_views(mni152_template(self), self.affine_array)
+
+    def peak(self, full: np.ndarray) -> tuple[int, int, int] | None:
+        v = np.abs(np.asarray(full, dtype=np.float64).reshape(self.shape))
+        if not np.isfinite(v).any():
+            return None
+        return tuple(int(i) for i in np.unravel_index(np.nanargmax(v), self.shape))  # type: ignore[return-value]
+
+    def panels(self, full: np.ndarray, focus: Any = None) -> list[Panel]:
+        return slice_panels(np.asarray(full).reshape(self.shape), self.affine_array, focus)
+
+    def background_panels(self, focus: Any = None) -> list[np.ndarray]:
+        return [p.values for p in slice_panels(mni152_template(self), self.affine_array, focus)]
 
 
 def grid_from_spec(shape, affine, name: str = "custom") -> TargetGrid:
@@ -516,6 +528,22 @@ def crop_grid(grid: TargetGrid, indices: np.ndarray) -> tuple[TargetGrid, np.nda
                      grid.name + ":box")
     local = np.ravel_multi_index(tuple(ijk - lo[:, None]), box.shape)
     return box, local.astype(np.int64)
+
+
+def slice_panels(vol: np.ndarray, affine: np.ndarray, focus: tuple[int, int, int] | None = None) -> list[Panel]:
+    """Axial, coronal and sagittal slices through voxel ``focus`` (the grid centre if None), RAS-up and
+    reading left to right (L to R; P to A), each labelled with its plane's millimetre coordinate."""
+    c = list(tuple(s // 2 for s in vol.shape) if focus is None else focus)
+    mm = affine[:3, :3] @ np.array(c, dtype=np.float64) + affine[:3, 3]
+    ras = vol
+    for ax in range(3):  # flip axes whose affine direction is negative (as slice_views)
+        if affine[ax, ax] < 0:
+            ras = np.flip(ras, axis=ax)
+            c[ax] = ras.shape[ax] - 1 - c[ax]
+    cx, cy, cz = c
+    return [Panel(ras[:, :, cz].T[::-1], f"axial z = {mm[2]:.0f} mm", "L", "R"),
+            Panel(ras[:, cy, :].T[::-1], f"coronal y = {mm[1]:.0f} mm", "L", "R"),
+            Panel(ras[cx, :, :].T[::-1], f"sagittal x = {mm[0]:.0f} mm", "P", "A")]
 
 
 def slice_views(vol: np.ndarray, affine: np.ndarray, scale: int = 2,
