@@ -85,7 +85,7 @@ def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[st
                  for i, r in enumerate(kept["rules"])]
     if origins is None and kept.get("origins"):
         origins = _write_given(store_path.parent, "origins", 0, kept["origins"])
-    index(sources, store_path, rules=rules, overrides=origins, progress=False)
+    index(sources, store_path, rules=rules, origins=origins, progress=False)
     settings = man["feature_settings"]
     grid, mask = _grid_and_mask(man)
     build_features(store_path, settings["name"], grid=grid, mask=mask, method=settings["method"],

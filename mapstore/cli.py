@@ -222,7 +222,7 @@ def write_table(table, fmt: str, out: str | None) -> None:
                    "<template>_mode-image_xfm.h5/.txt/.mat files); repeatable.")
 def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_address, transforms) -> None:
     """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them)."""
-    report = run_index(roots, store, rules=list(rules) or None, overrides=origins, jobs=jobs, prune=prune,
+    report = run_index(roots, store, rules=list(rules) or None, origins=origins, jobs=jobs, prune=prune,
                        scheduler=dask_address, read_timeout=read_timeout, transforms=list(transforms))
     click.echo(report.summary())
 
@@ -359,7 +359,7 @@ def labels_cmd(store, vocab, inherit) -> None:
               help="Random seed of shuffled schemes (holdout, stratified and repeated group k-folds).")
 @click.option("--allow-leak", is_flag=True, help="Accept a split that leaks (with a warning).")
 @click.option("--participant-column", "participant_columns", multiple=True,
-              help="Add this participants.tsv column to meta.parquet (repeatable; personal data: none by default).")
+              help="Add this participants.tsv column to meta.parquet (repeatable; personal data; default: none).")
 @click.option("--one-stat/--every-stat", default=True, show_default=True,
               help="One stat per subject and contrast (z, else t, F, p, effect, variance), or every stat.")
 @click.option("--per-subject", type=click.Choice(["contrast", "one", "map"]), default="contrast", show_default=True,
@@ -368,7 +368,7 @@ def labels_cmd(store, vocab, inherit) -> None:
 @click.option("--allow-unseen", is_flag=True, help="Accept test classes training never saw (recorded in the "
               "manifest).")
 @click.option("--near-copy-r", type=click.FloatRange(0, 1, min_open=True), default=None,
-              help="Refuse maps on both sides whose rows correlate at least this much (default 0.9).")
+              help="Refuse maps on both sides whose rows correlate at least this much (default: 0.9).")
 @click.option("--with-broader", is_flag=True, help="Count inherited broader concepts as labels.")
 @click.option("--missing", type=click.Choice(["common", "zero", "keep"]), default="common", show_default=True,
               help="Voxels some selected map has no value for: keep only voxels every map covers (common), "
@@ -439,7 +439,7 @@ def similar_cmd(store, query, feature_set, k, absolute, stat, dof, fmt) -> None:
 @click.option("--task", "tasks", multiple=True, help="Pool the maps of this task (repeatable).")
 @click.option("--where", help="SQL predicate over maps and participants' columns choosing the maps.")
 @click.option("--stat", "stats", multiple=True, default=("effect",), show_default=True,
-              help="Which maps to pool (repeatable): subjects' effect maps by default.")
+              help="Which maps to pool (repeatable): subjects' maps of this stat.")
 @click.option("--features", "feature_set", help="Feature set name (default: the default set).")
 @click.option("--method", type=click.Choice(["stouffer", "stouffer-weighted", "fisher", "fixed", "random",
                                              "random-reml"]),
@@ -526,7 +526,7 @@ def verify_cmd(manifest) -> None:
 
 @cli.command("check")
 @STORE_OPTION
-@click.option("--features", "feature_set", help="Feature set for coverage and value checks (default set).")
+@click.option("--features", "feature_set", help="Feature set for coverage and value checks (default: the default set).")
 @click.option("--min-coverage", type=click.FloatRange(0, 1), default=0.8, show_default=True,
               help="Report maps covering less of the mask.")
 @click.option("--min-agreement", type=click.FloatRange(-1, 1), default=0.2, show_default=True,
@@ -566,7 +566,7 @@ def demo_cmd(folder, scale) -> None:
     click.echo(f"  {summary.studies} studies by {summary.labs} labs, {summary.maps} statistic maps, "
                f"{len(summary.planted_problems)} planted problem files")
     click.echo(f"indexing into {store} ...")
-    report = run_index([data], store, rules=summary.rules, overrides=summary.overrides)
+    report = run_index([data], store, rules=summary.rules, origins=summary.overrides)
     click.echo(report.summary())
     st = open_store(store)
     click.echo("\nmaps per study, grid and stat:")

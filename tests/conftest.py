@@ -26,7 +26,7 @@ def demo_tree(tmp_path_factory) -> Path:
 def demo_store(demo_tree, tmp_path_factory) -> Path:
     store = tmp_path_factory.mktemp("demostore") / "store"
     mapstore.index([demo_tree], store, rules=demo_tree / "name-rules.json",
-                   overrides=demo_tree / "origins.json", progress=False)
+                   origins=demo_tree / "origins.json", progress=False)
     return store
 
 

@@ -365,3 +365,12 @@ def test_a_read_that_stalls_does_not_stall_the_crawl(tmp_path, jobs):
     assert probs[0]["reason"].startswith("reading the file made no progress for 2 s")
     assert sorted(mapstore.open(store).sql("SELECT sub FROM maps").column(0).to_pylist()) == ["00", "02"]
     assert took < 60
+
+
+def test_index_takes_origins_under_one_name(tmp_path):
+    # ``overrides=`` is origins' earlier name: both at once is a usage error, before anything is read
+    from mapstore.errors import ParameterError
+
+    with pytest.raises(ParameterError, match="give origins= only"):
+        mapstore.index([tmp_path], tmp_path / "store", origins=tmp_path / "a.yaml", overrides=tmp_path / "b.yaml")
+    assert not (tmp_path / "store").exists()

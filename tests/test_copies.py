@@ -61,7 +61,7 @@ def planted(demo_tree, tmp_path_factory):
     shutil.copytree(demo_tree, tree, symlinks=True)
     src, copies = _plant(tree)
     store = tmp_path_factory.mktemp("plantedstore") / "store"
-    mapstore.index([tree], store, rules=tree / "name-rules.json", overrides=tree / "origins.json", progress=False)
+    mapstore.index([tree], store, rules=tree / "name-rules.json", origins=tree / "origins.json", progress=False)
     mapstore.build_features(store, grid="MNI152-3mm", name="three", progress=False)
     mapstore.label(store, tree / "concepts.json")
     st = mapstore.open(store)

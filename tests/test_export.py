@@ -141,7 +141,7 @@ def test_export_refuses_to_overwrite_and_parquet_format(labelled_store, tmp_path
     assert json.loads((out / "manifest.json").read_text())["unseen"]
     t = pq.read_table(out / "table.parquet")
     assert t.num_rows == len(sel) and set(t.column("y").to_pylist()) == set(sel.y)
-    x0 = np.asarray(t.column("x")[0].values)
+    x0 = np.asarray(t.column("X")[0].values)  # named as X.npy and the Zarr array
     np.testing.assert_array_equal(x0, st.features().matrix(sel.map_ids[:1])[0][sel.voxels])
     assert set(t.column("split").to_pylist()) == {"train", "test"}
     assert mapstore.verify(out).ok
@@ -174,7 +174,7 @@ def test_origins_mapping_one_person_in_two_studies_is_a_leak(demo_tree, tmp_path
     origins.write_text(yaml.safe_dump({"datasets": {"emberlight": {"lab": "Fernhill Lab"}},
                                        "subjects": {"inkwell/sub-01": {"participant": "glowtrack/sub-02"}}}))
     store = tmp_path / "store"
-    mapstore.index([demo_tree], store, rules=demo_tree / "name-rules.json", overrides=origins, progress=False)
+    mapstore.index([demo_tree], store, rules=demo_tree / "name-rules.json", origins=origins, progress=False)
     mapstore.build_features(store, grid="MNI152-3mm", jobs=2, progress=False)
     st = mapstore.open(store)
     sel = st.select(features=st.feature_sets()[0], group_by="study")
@@ -248,12 +248,12 @@ def test_export_records_the_policy_and_verify_catches_changed_rows(labelled_stor
         else:
             t = pq.read_table(out / "table.parquet")
             np.testing.assert_array_equal(np.array(t.column("Y").to_pylist(), dtype=np.uint8), multi.Y)
-            x = np.array(t.column("x").to_pylist(), dtype=np.float32)
+            x = np.array(t.column("X").to_pylist(), dtype=np.float32)
             x[2, 5] += 1.0
             import pyarrow as pa
 
             flat = pa.FixedSizeListArray.from_arrays(pa.array(x.reshape(-1), pa.float32()), x.shape[1])
-            pq.write_table(t.set_column(t.column_names.index("x"), "x", flat), out / "table.parquet")
+            pq.write_table(t.set_column(t.column_names.index("X"), "X", flat), out / "table.parquet")
         changes = mapstore.verify(out).changes
         assert changes == [f"exported row changed: {'X.npy' if fmt == 'npy' else 'table.parquet'} row 2"
                            + (f" ({multi.map_ids[2]})" if fmt == "npy" else "")]

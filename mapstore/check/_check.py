@@ -397,7 +397,8 @@ def _check_space(store, add) -> None:
                     "add space-<label> to the file names, or a name rule that sets it"))
     lo_b, hi_b = _MNI_BRAIN_BOX
     grids = store.sql("SELECT grid_id, any_value(affine) AS affine, any_value(shape) AS shape, min(relpath) AS "
-                      f"example, count(*) AS n FROM maps WHERE {_VOLUME} GROUP BY grid_id ORDER BY grid_id").to_pylist()
+                      "example, string_agg(DISTINCT dataset, ', ' ORDER BY dataset) AS datasets, count(*) AS n "
+                      f"FROM maps WHERE {_VOLUME} GROUP BY grid_id ORDER BY grid_id").to_pylist()
     for g in grids:
         aff = np.reshape(g["affine"], (4, 4))
         shape = np.asarray(g["shape"][:3])
@@ -407,13 +408,15 @@ def _check_space(store, add) -> None:
         overlap = np.prod(np.clip(np.minimum(hi, hi_b) - np.maximum(lo, lo_b), 0, None)) / np.prod(hi_b - lo_b)
         n = g["n"]
         if overlap < 0.05:
-            add(Finding("error", "space", "outside-mni-brain", g["grid_id"],
+            add(Finding("error", "space", "outside-mni-brain", g["datasets"] or g["grid_id"],
                         f"{n} map(s) (e.g. {g['example']}) have a field of view that misses the MNI brain "
                         f"box: world x {lo[0]:.0f}..{hi[0]:.0f}, y {lo[1]:.0f}..{hi[1]:.0f}, z {lo[2]:.0f}..{hi[2]:.0f} mm",
                         "the affine is probably wrong or the map is in native space; fix the header"))
         elif overlap < 0.8:
-            add(Finding("warning", "space", "partial-field-of-view", g["grid_id"],
-                        f"{n} map(s) (e.g. {g['example']}) cover {overlap:.0%} of the MNI brain box",
+            add(Finding("warning", "space", "partial-field-of-view", g["datasets"] or g["grid_id"],
+                        f"{n} map(s) of grid {g['grid_id']} (e.g. {g['example']}) cover {overlap:.0%} of the MNI "
+                        f"brain box: world x {lo[0]:.0f}..{hi[0]:.0f}, y {lo[1]:.0f}..{hi[1]:.0f}, "
+                        f"z {lo[2]:.0f}..{hi[2]:.0f} mm",
                         "expected for partial acquisitions; set a coverage threshold when exporting"))
 
 

@@ -944,13 +944,14 @@ def index(
     store: str | os.PathLike[str],
     *,
     rules: str | os.PathLike[str] | list[str | os.PathLike[str]] | None = None,
-    overrides: str | os.PathLike[str] | None = None,
+    origins: str | os.PathLike[str] | None = None,
     jobs: int | None = None,
     prune: bool = False,
     progress: bool | None = None,
     read_timeout: float | None = 60.0,
     scheduler: Any = None,
     transforms: Iterable[str | os.PathLike[str]] = (),
+    overrides: str | os.PathLike[str] | None = None,
 ) -> IndexReport:
     """Crawl derivative datasets and publish a new catalog snapshot in ``store``.
 
@@ -963,8 +964,9 @@ def index(
     rules : path, preset name, or a list of them, optional
         Name rules for statistic maps without BIDS ``_statmap`` names: files, or built-in
         presets (``fsl-feat``, ``spm``).
-    overrides : path, optional
-        A mapping file setting study, site and lab per dataset or subject.
+    origins : path, optional
+        An origins file setting study, site and lab per dataset or subject (the CLI's ``--origins``;
+        ``examples/origins.yaml``).
     jobs : int, optional
         Processes for crawling, hashing and header reading (default: all cores).
     prune : bool, default=False
@@ -984,6 +986,8 @@ def index(
         (``sub-<label>[_ses-<label>]_..._from-<space>_to-<template>_mode-image_xfm.{h5,txt,mat}``,
         in ``sub-<label>/`` folders or lying flat), looked in after the map's own dataset and the
         datasets its ``SourceDatasets`` names.
+    overrides : path, optional
+        The earlier name of ``origins``, still accepted.
 
     Returns
     -------
@@ -996,8 +1000,12 @@ def index(
     jobs = resolve_jobs(jobs)
     if read_timeout is not None and not (isinstance(read_timeout, (int, float)) and read_timeout > 0):
         raise ParameterError(f"read_timeout must be a positive number of seconds or None, got {read_timeout!r}")
+    if overrides is not None:  # the earlier name of ``origins``
+        if origins is not None:
+            raise ParameterError("give origins= only (overrides= is its earlier name)")
+        origins = overrides
     name_rules = NameRules.load(rules)
-    meta_over = MetadataOverrides.load(overrides)
+    meta_over = MetadataOverrides.load(origins)
     xfm_roots = tuple(str(Path(t).expanduser().absolute()) for t in ([transforms] if isinstance(transforms, (str, os.PathLike)) else transforms))
     for t in xfm_roots:
         if not os.path.isdir(t):

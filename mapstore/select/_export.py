@@ -334,7 +334,7 @@ def _y_array(y: np.ndarray) -> np.ndarray:
 
 
 def _write_parquet(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None:
-    """One table.parquet: meta columns, y / Y, and x as a fixed-size list per row."""
+    """One table.parquet: meta columns, y / Y, and X as a fixed-size list per row (as X.npy, the Zarr X)."""
     buf = rows.buffer()
     writer = None
     try:
@@ -347,7 +347,7 @@ def _write_parquet(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> 
                 part = part.append_column("Y", pa.FixedSizeListArray.from_arrays(
                     pa.array(ind, pa.uint8()), len(sel.concepts)))
             flat = pa.array(block.reshape(-1), pa.float32())
-            part = part.append_column("x", pa.FixedSizeListArray.from_arrays(flat, len(rows.voxels)))
+            part = part.append_column("X", pa.FixedSizeListArray.from_arrays(flat, len(rows.voxels)))
             if writer is None:
                 writer = pq.ParquetWriter(tmp / "table.parquet", part.schema, compression="zstd")
             writer.write_table(part, row_group_size=64)
@@ -566,7 +566,9 @@ def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
         if not f.exists():
             return ["export file missing: table.parquet"]
         i = 0
-        for batch in pq.ParquetFile(f).iter_batches(batch_size=BLOCK_ROWS, columns=["x"]):
+        pf = pq.ParquetFile(f)
+        column = "X" if "X" in pf.schema_arrow.names else "x"  # earlier exports named it x
+        for batch in pf.iter_batches(batch_size=BLOCK_ROWS, columns=[column]):
             values = batch.column(0).flatten().to_numpy(zero_copy_only=False).reshape(batch.num_rows, -1)
             for row in values:
                 if i >= len(sources) or _row_hash(row) != _x_hash(sources[i]):
