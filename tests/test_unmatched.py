@@ -31,6 +31,8 @@ def test_files_no_naming_takes_are_reported_with_a_rule_that_takes_them(tmp_path
     (tmp_path / "rule.json").write_text(json.dumps(rule))
     again = mapstore.index([root], store, rules=[str(tmp_path / "rule.json")], progress=False, jobs=1)
     assert again.n_maps == 6 and again.passed_over == {"_rsquared.nii.gz": 1}
+    # passed-over files are notes, not problems: nothing failed
+    assert again.n_problems == 0 and again.note_codes.get("unmatched-images") and "problems:" not in again.summary()
     got = mapstore.open(store).sql("SELECT DISTINCT stat, contrast FROM maps ORDER BY contrast").to_pylist()
     assert got == [{"stat": "effect", "contrast": "a"}, {"stat": "effect", "contrast": "b"}]
 

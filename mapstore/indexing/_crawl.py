@@ -120,11 +120,13 @@ class IndexReport:
     n_changed: int
     n_unchanged: int
     n_removed: int
-    n_problems: int
+    n_problems: int  # files or datasets that could not be used (errors and warnings)
     n_kept_datasets: int
     seconds: float
     problem_codes: dict[str, int] = field(default_factory=dict)
     passed_over: dict[str, int] = field(default_factory=dict)  # image files no naming took, by name ending
+    n_notes: int = 0  # caveats (info rows of problems), and the passed-over files' rows
+    note_codes: dict[str, int] = field(default_factory=dict)
 
     @property
     def n_passed_over(self) -> int:
@@ -147,7 +149,10 @@ class IndexReport:
         if self.n_problems:
             codes = ", ".join(f"{k} x{v}" for k, v in sorted(self.problem_codes.items()))
             lines.append(f"problems: {self.n_problems} ({codes}); see: mapstore sql --store {self.store} "
-                         "\"SELECT * FROM problems\"")
+                         "\"SELECT * FROM problems WHERE level <> 'info'\"")
+        notes = {k: v for k, v in self.note_codes.items() if k != "unmatched-images"}
+        if notes:
+            lines.append(f"notes: {sum(notes.values())} ({', '.join(f'{k} x{v}' for k, v in sorted(notes.items()))})")
         return "\n".join(lines)
 
 
@@ -1143,8 +1148,10 @@ def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: lis
         (store / old_labels).unlink(missing_ok=True)  # re-derived for the new catalog; no reader holds it
     codes: dict[str, int] = {}
     passed: dict[str, int] = {}
+    notes: dict[str, int] = {}
     for p in prob_rows:  # type: ignore[assignment]
-        codes[p["code"]] = codes.get(p["code"], 0) + 1  # type: ignore[index]
+        into = notes if p["level"] == "info" else codes  # type: ignore[index]
+        into[p["code"]] = into.get(p["code"], 0) + 1  # type: ignore[index]
         if p["code"] == "unmatched-images":  # type: ignore[index]
             ending = p["reason"].split("(*", 1)[-1].split(")", 1)[0]  # type: ignore[index]
             passed[ending] = passed.get(ending, 0) + (p["count"] or 1)  # type: ignore[index]
@@ -1154,8 +1161,8 @@ def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: lis
     before = sum(d.get("n_maps") or 0 for d in prev.datasets if d["dataset"] not in kept_keys)
     return IndexReport(store=str(store), n_datasets=len(ds_rows), n_maps=total, n_new=new, n_changed=changed,
                        n_unchanged=unchanged, n_removed=max(0, before - changed - unchanged),
-                       n_problems=len(prob_rows), n_kept_datasets=len(plan.kept), seconds=0.0, problem_codes=codes,
-                       passed_over=passed)
+                       n_problems=sum(codes.values()), n_kept_datasets=len(plan.kept), seconds=0.0,
+                       problem_codes=codes, passed_over=passed, n_notes=sum(notes.values()), note_codes=notes)
 
 
 def _relabel(store: Path, head: Head) -> None:
