@@ -348,6 +348,9 @@ def test_weighting_subjects_by_their_variance_equals_statsmodels_per_study(share
     assert main(["pool", "--store", str(stores[False]), "--features", "own", "--out", str(out), "--method",
                  "random-reml", "--use-variance"]) == 0
     assert "(random-reml)" in capsys.readouterr().out
+    kept = json.loads((out / "pooled.json").read_text())["variance_sources"]  # verify checks these files too
+    assert len(kept) == 40 and all("stat-variance" in v["path"] for v in kept)
+    assert main(["verify", str(out)]) == 0
     # variance maps have no variance map: one line saying what is needed, exit 2
     code = main(["pool", "--store", str(stores[False]), "--features", "own", "--out", str(tmp_path / "no"),
                  "--stat", "variance", "--use-variance"])

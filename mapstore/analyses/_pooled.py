@@ -244,8 +244,8 @@ def _masked_sums(e: np.ndarray, v: np.ndarray, tau: np.ndarray, terms) -> tuple[
 def _effects(sums, shift: np.ndarray, method: str, max_iter: int = 100,
              tol: float = 1e-10) -> dict[str, np.ndarray]:
     """Fixed or random effects from column sums: ``sums(tau, terms)`` gives (studies measured, sums) for
-    effects less
-    ``shift`` (the shift keeps Q's difference of sums away from cancellation; Q does not depend on it).
+    effects less ``shift`` (the shift keeps Q's difference of sums away from cancellation; Q does not
+    depend on it).
 
     ``random`` estimates tau^2 by DerSimonian-Laird; ``random-reml`` by restricted maximum likelihood,
     iterating tau^2 <- sum w^2 ((e - mu)^2 - v) / sum w^2 + 1 / sum w (the Fisher scoring step of the
@@ -402,7 +402,8 @@ def pool(sel: Selection, method: str = "random", *, min_subjects: int = 3, min_s
     >>> res = pool(sel, "random-reml", use_variance=True)  # doctest: +SKIP
     >>> res.peaks(3), float(np.nanmedian(res.i2))  # doctest: +SKIP
     """
-    sm = study_maps(sel, min_subjects=min_subjects, variance=variance_maps(sel) if use_variance else None)
+    variance = variance_maps(sel) if use_variance else None
+    sm = study_maps(sel, min_subjects=min_subjects, variance=variance)
     res = _combine_study_maps(sm, method)
     few = res["n_studies"] < min_studies
     for key in ("z", "p", "effect", "variance", "tau2", "i2", "q"):
@@ -418,6 +419,8 @@ def pool(sel: Selection, method: str = "random", *, min_subjects: int = 3, min_s
             "versions": {"mapstore": __version__, "numpy": np.__version__},
             "created": time.strftime("%Y-%m-%dT%H:%M:%S"),
             **{key: int(val) for key, val in res.items() if key.startswith("reml_")}}
+    if variance is not None:  # their files are sources too: verify checks them
+        prov["variance_sources"] = _sources(variance)
     if leave_one_out:
         loo = {}
         for s, study in enumerate(sm.studies):
@@ -492,15 +495,15 @@ def write_pooled(result: PooledMaps, out, fdr_q: float = 0.05) -> dict[str, Any]
     files = written + ["peaks.tsv"]
     prov = dict(result.provenance, fdr={"q": fdr_q, "z_threshold": thr,
                                          "n_tested": int(np.isfinite(result.z).sum())}, files=files,
-                file_sha256={f: sha256_file(str(folder / f)) for f in files}, sources=_sources(result))
+                file_sha256={f: sha256_file(str(folder / f)) for f in files},
+                sources=_sources(result.selection) if result.selection is not None else [])
     (folder / "pooled.json").write_text(json.dumps(prov, indent=1, default=str))
     return prov
 
 
-def _sources(result: PooledMaps) -> list[dict[str, Any]]:
-    """Each pooled map's source file (path, sha256) and the store row it was read from (row hash)."""
-    sel = result.selection
-    if sel is None or sel.store is None:
+def _sources(sel: Selection) -> list[dict[str, Any]]:
+    """Each map's source file (path, sha256) and the store row it was read from (row hash)."""
+    if sel.store is None:
         return []
     import os
 
@@ -530,7 +533,7 @@ def verify_pooled(folder) -> list[str]:
             changes.append(f"output file missing: {name}")
         elif sha256_file(str(p)) != sha:
             changes.append(f"output file changed: {name}")
-    for s in prov.get("sources") or []:
+    for s in (prov.get("sources") or []) + (prov.get("variance_sources") or []):
         p = Path(str(s.get("path")))
         if not p.is_file():
             changes.append(f"source missing: {p}")
