@@ -105,8 +105,14 @@ def cli() -> None:
     """Pool brain statistic maps from many BIDS derivative datasets into one store.
 
     \b
-    mapstore index DATASETS... --store DIR     then: features, labels, export
-    mapstore demo FOLDER                       the whole job on invented data
+    The job, in order (MAPSTORE_STORE=DIR can replace --store):
+      mapstore index /data/studyA /data/consortium --store DIR   the catalog of every map
+      mapstore features --store DIR                              every map once onto one grid
+      mapstore labels --store DIR --vocab concepts.yaml          contrast names -> concepts
+      mapstore export --store DIR --concept reading --out OUT    X, y, groups, splits, manifest
+      mapstore check --store DIR --html check.html               findings and a report
+      mapstore pool --store DIR --concept reading --out OUT      do the studies agree, and where?
+      mapstore demo FOLDER                                       all of it on invented data
     """
 
 
@@ -221,7 +227,12 @@ def write_table(table, fmt: str, out: str | None) -> None:
               help="Folder of registrations of native-space maps to a template (BIDS files named like _from-<space>_to-"
                    "<template>_mode-image_xfm.h5/.txt/.mat files); repeatable.")
 def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_address, transforms) -> None:
-    """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them)."""
+    """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them).
+
+    \b
+    Example:
+      mapstore index /data/studyA /data/consortium --store pooled --origins origins.yaml
+    """
     report = run_index(roots, store, rules=list(rules) or None, origins=origins, jobs=jobs, prune=prune,
                        scheduler=dask_address, read_timeout=read_timeout, transforms=list(transforms))
     click.echo(report.summary())
@@ -235,7 +246,12 @@ def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_addr
 @click.option("--out", type=click.Path(dir_okay=False), help="Write to FILE instead of standard output.")
 def sql_cmd(store, query, fmt, out) -> None:
     """Run a read-only SQL QUERY over the views maps, datasets, participants, problems, labels, features,
-    feature_sets, feature_problems, feature_copies and map_families."""
+    feature_sets, feature_problems, feature_copies and map_families.
+
+    \b
+    Example:
+      mapstore sql --store pooled "SELECT study, stat, count(*) FROM maps GROUP BY ALL"
+    """
     _target(out, "--out")
     table = open_store(store).sql(query)
     write_table(table, fmt, out)
@@ -278,7 +294,12 @@ def sql_cmd(store, query, fmt, out) -> None:
 @click.option("--list", "list_only", is_flag=True, help="List the store's feature sets and stop.")
 def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing, background, model_maps, where,
                  projection, no_volumes, mesh, subjects_dir, jobs, dask_address, list_only) -> None:
-    """Resample every map once onto one grid or mesh and mask (a named feature set)."""
+    """Resample every map once onto one grid or mesh and mask (a named feature set).
+
+    \b
+    Example:
+      mapstore features --store pooled --grid MNI152-3mm --stat z --features z3
+    """
     if list_only:
         click.echo(render_table(open_store(store).sql("SELECT * FROM feature_sets")))
         return
@@ -302,7 +323,12 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
 @click.option("--features", "--source", "source", help="The voxel or surface set to reduce (default: the default set).")
 @click.option("--name", help="Name of the parcel set (default: SOURCE-ATLAS).")
 def parcels_cmd(store, atlas, source, name) -> None:
-    """Reduce a feature set to one value per parcel of an atlas (a new feature set)."""
+    """Reduce a feature set to one value per parcel of an atlas (a new feature set).
+
+    \b
+    Example:
+      mapstore parcels --store pooled --atlas atlas.nii.gz --source default
+    """
     from .features import build_parcels
 
     if "," in atlas and not atlas.startswith("store:"):
@@ -316,7 +342,12 @@ def parcels_cmd(store, atlas, source, name) -> None:
 @click.option("--out", required=True, type=click.Path(dir_okay=False), help="Mesh description (JSON) to write.")
 @click.option("--space", help="The mesh's space (default: the folder's name, e.g. fsaverage6).")
 def mesh_cmd(subject_dir, out, space) -> None:
-    """Describe a FreeSurfer subject folder's surfaces as a mesh (for --grid or --mesh)."""
+    """Describe a FreeSurfer subject folder's surfaces as a mesh (for --grid or --mesh).
+
+    \b
+    Example:
+      mapstore mesh $SUBJECTS_DIR/fsaverage6 --out fs6.json
+    """
     from .targets import describe_freesurfer, mesh_from_description
 
     path = describe_freesurfer(subject_dir, out, space=space)
@@ -332,7 +363,12 @@ def mesh_cmd(subject_dir, out, space) -> None:
 @click.option("--with-broader/--direct-only", "inherit", default=None,
               help="Also label maps with broader concepts (default: as the vocabulary says).")
 def labels_cmd(store, vocab, inherit) -> None:
-    """Label the store's maps with concepts from a vocabulary."""
+    """Label the store's maps with concepts from a vocabulary.
+
+    \b
+    Example:
+      mapstore labels --store pooled --vocab concepts.yaml
+    """
     report = label_store(store, vocab, inherit_broader=inherit)
     click.echo(report.summary())
 
@@ -381,7 +417,12 @@ def labels_cmd(store, vocab, inherit) -> None:
 def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_coverage, target, group_by, scheme,
                seed, allow_leak, participant_columns, one_stat, per_subject, allow_unseen, near_copy_r, with_broader,
                missing, min_voxels, fmt, overwrite) -> None:
-    """Export X, y, groups, splits and metadata of a selection, with a manifest."""
+    """Export X, y, groups, splits and metadata of a selection, with a manifest.
+
+    \b
+    Example:
+      mapstore export --store pooled --concept reading --concept listening --out reading-vs-listening
+    """
     st = open_store(store)
     if target is None:
         target = "concept" if concepts else "contrast"
@@ -401,7 +442,12 @@ def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_cover
 @cli.command("schema")
 @click.argument("name", required=False)
 def schema_cmd(name) -> None:
-    """Print the JSON Schema of a file format (vocabulary, name-rules, origins, maps, ...); no NAME lists them."""
+    """Print the JSON Schema of a file format (vocabulary, name-rules, origins, maps, ...); no NAME lists them.
+
+    \b
+    Example:
+      mapstore schema vocabulary
+    """
     names = schema_names()
     if name is None:
         click.echo("\n".join(names))
@@ -422,7 +468,12 @@ def schema_cmd(name) -> None:
 @click.option("--format", "fmt", type=click.Choice(["table", "csv", "json"]), default="table", show_default=True,
               help="Output format.")
 def similar_cmd(store, query, feature_set, k, absolute, stat, dof, fmt) -> None:
-    """List the maps most similar to QUERY: a map id of the feature set, or a new map's file."""
+    """List the maps most similar to QUERY: a map id of the feature set, or a new map's file.
+
+    \b
+    Example:
+      mapstore similar --store pooled new-map.nii.gz --stat t --dof 60
+    """
     import pyarrow as pa
 
     options = {"dof": dof} if dof is not None else {}
@@ -457,7 +508,12 @@ def similar_cmd(store, query, feature_set, k, absolute, stat, dof, fmt) -> None:
               help="Weight each subject's effect map by its own variance map (same name, stat-variance).")
 def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min_subjects, min_studies, fdr_q,
              leave_one_out, use_variance) -> None:
-    """Do the studies agree, and where? Study maps of the chosen maps, combined across studies."""
+    """Do the studies agree, and where? Study maps of the chosen maps, combined across studies.
+
+    \b
+    Example:
+      mapstore pool --store pooled --concept reading --out reading-pooled
+    """
     import numpy as np
 
     from .analyses import pool, write_pooled
@@ -493,7 +549,12 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
 @click.option("--origins", type=click.Path(dir_okay=False),
               help="Origins file to index with instead of the one the manifest kept.")
 def rebuild_cmd(manifest, sources, out, store, rules, origins) -> None:
-    """Rebuild an export from its MANIFEST and the source datasets; exit 3 if X is not the same, row by row."""
+    """Rebuild an export from its MANIFEST and the source datasets; exit 3 if X is not the same, row by row.
+
+    \b
+    Example:
+      mapstore rebuild reading-vs-listening --sources /new/place --out again
+    """
     from ._rebuild import rebuild
 
     report = rebuild(manifest, list(sources), out, store=store, rules=list(rules) or None, origins=origins)
@@ -506,7 +567,12 @@ def rebuild_cmd(manifest, sources, out, store, rules, origins) -> None:
 @click.argument("manifest", type=click.Path(exists=True))
 def verify_cmd(manifest) -> None:
     """Re-check an export's MANIFEST (or a folder 'mapstore pool' wrote) against its sources and store; exit 3
-    if anything changed."""
+    if anything changed.
+
+    \b
+    Example:
+      mapstore verify reading-vs-listening
+    """
     if Path(manifest).is_dir() and (Path(manifest) / "pooled.json").exists():
         from .analyses import verify_pooled
 
@@ -537,7 +603,12 @@ def verify_cmd(manifest) -> None:
 @click.option("--fail-on", type=click.Choice(["error", "warning", "never"]), default="error", show_default=True,
               help="Exit 3 when a finding is at this level or worse.")
 def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fail_on) -> None:
-    """Check grids, space, coverage, stat types, metadata, copies and concept agreement of a store."""
+    """Check grids, space, coverage, stat types, metadata, copies and concept agreement of a store.
+
+    \b
+    Example:
+      mapstore check --store pooled --html check.html
+    """
     _target(html_out, "--html")
     report = open_store(store).check(feature_set, min_coverage=min_coverage, pictures=bool(html_out),
                                         min_agreement=min_agreement)
@@ -558,7 +629,12 @@ def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fa
 @click.option("--scale", type=click.FloatRange(0.1, 1.0), default=1.0, show_default=True,
               help="Fraction of the demo's subjects to generate.")
 def demo_cmd(folder, scale) -> None:
-    """Generate the invented demo consortium in FOLDER and run the whole job on it."""
+    """Generate the invented demo consortium in FOLDER and run the whole job on it.
+
+    \b
+    Example:
+      mapstore demo ./mapstore-demo
+    """
     base = Path(folder).absolute()
     data, store = base / "data", base / "store"
     click.echo(f"writing the invented consortium to {data} ...")

@@ -182,3 +182,11 @@ def test_every_option_has_help_and_commands_come_in_workflow_order():
     missing = [(name, p.opts) for name, cmd in cli.commands.items() for p in cmd.params
                if getattr(p, "help", "x") is None and not getattr(p, "hidden", False) and p.param_type_name == "option"]
     assert missing == []
+
+
+def test_every_command_shows_an_example_of_itself():
+    from mapstore.cli import cli
+
+    for name, command in cli.commands.items():
+        text = command.help or ""
+        assert "Example:" in text and f"mapstore {name} " in text.split("Example:")[1], name
