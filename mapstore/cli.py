@@ -691,8 +691,25 @@ def demo_cmd(folder, scale) -> None:
     html_path = report.write_html(base / "check-report.html", command=f"mapstore demo {folder}")  # type: ignore[attr-defined]
     click.echo(report.summary())
     click.echo(f"report with pictures: {html_path}")
+    import numpy as np
+
+    from .analyses import pool, write_pooled
+
+    pooled = base / "pooled-reading"
+    click.echo(f"\ndo the studies agree on 'reading', and where? (each study's t and z maps, one map per study, "
+               f"combined by Stouffer's method) -> {pooled}")
+    rsel = st.select(concepts=["reading"], stat=["t", "z"], missing="keep")
+    fewest = int(rsel.meta.groupby("study")["participant"].nunique().min())
+    res = pool(rsel, "stouffer", min_subjects=max(2, min(3, fewest)))  # a small demo has 2 subjects a study
+    prov = write_pooled(res, pooled)
+    thr = prov["fdr"]["z_threshold"]
+    click.echo(f"  {len(res.studies)} studies; FDR 0.05 over {prov['fdr']['n_tested']:,} voxels: "
+               + (f"z >= {thr:.2f}" if np.isfinite(thr) else "no voxel survives"))
+    for p in res.peaks(3, threshold=thr if np.isfinite(thr) else None):
+        click.echo(f"  peak z {p['z']:.1f} at {p.get('mm', p['position'])} mm ({p['n_studies']} studies)")
     click.echo(f"\ntry: mapstore sql --store {store} \"SELECT concept, count(*) FROM labels GROUP BY ALL\"")
     click.echo(f"     mapstore verify {out}")
+    click.echo(f"     mapstore verify {pooled}")
 
 
 def _demo_decoder(export_dir: Path):

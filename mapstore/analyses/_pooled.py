@@ -83,7 +83,7 @@ class PooledMaps:
 
     def peaks(self, k: int = 10, threshold: float | None = None) -> list[dict[str, Any]]:
         """The ``k`` highest local maxima of z (26-neighbourhood on a volume grid; the highest values
-        elsewhere) above ``threshold``: position, millimetres where the grid has them, value, and the
+        elsewhere) at or above ``threshold``: position, millimetres where the grid has them, value, and the
         studies that had a value there."""
         if self.selection is None:
             return []
@@ -98,11 +98,11 @@ class PooledMaps:
 
             filled = np.nan_to_num(grid, nan=-np.inf)
             local = (filled == ndimage.maximum_filter(filled, size=3, mode="constant", cval=-np.inf))
-            for ijk in np.argwhere(local & np.isfinite(grid) & (grid > thr)):
+            for ijk in np.argwhere(local & np.isfinite(grid) & (grid >= thr)):
                 cand.append((float(grid[tuple(ijk)]), tuple(int(c) for c in ijk)))
         else:  # a mesh or grayordinates: the highest values
             flat_grid = grid.reshape(-1)
-            for i in np.flatnonzero(np.isfinite(flat_grid) & (flat_grid > thr)):
+            for i in np.flatnonzero(np.isfinite(flat_grid) & (flat_grid >= thr)):
                 cand.append((float(flat_grid[i]), (int(i),)))
         cand.sort(key=lambda c: -c[0])
         affine = getattr(fs.grid, "affine_array", None)
