@@ -298,3 +298,75 @@ def test_an_itk_composite_with_a_displacement_field_as_simpleitk_maps_it(tmp_pat
     ref = nib.Nifti1Image(np.zeros(g.shape, np.float32), g.affine_array)
     naive = resample_to_img(src, ref, interpolation="linear", force_resample=True, copy_header=True).get_fdata()
     assert np.abs(naive[tuple(vox.T)] - want).max() > 0.1
+
+
+def test_a_registered_native_map_projects_onto_the_surface_as_nilearn_on_moved_meshes(native_store, tmp_path):
+    """Onto fsaverage5 a native map is sampled once where each template point lies in it: the row equals
+    nilearn's ``vol_to_surf`` of the native image with the fsaverage5 pial and white surfaces moved into
+    the subject's millimetres by the known affine; projecting it as if it were in the template does not."""
+    import shutil
+
+    from nilearn.datasets import load_fsaverage
+    from nilearn.surface import InMemoryMesh, vol_to_surf
+
+    base, store, _, _ = native_store
+    store2 = tmp_path / "s"
+    shutil.copytree(store, store2)
+    built = mapstore.build_features(store2, grid="fsaverage5", name="surf", progress=False, jobs=1)
+    assert built.paths.get("registered+vol_to_surf") == 2, built.summary()  # sub-01 (one file), sub-03 (a chain)
+    refused = [p for p in built.problems if "sub-02" in p.path]  # no registration: refused, not guessed
+    assert len(refused) == 1 and "registration" in refused[0].reason
+    s = mapstore.open(store2)
+    fs = s.features("surf")
+    proj = fs.spec.projection
+    fsa = load_fsaverage("fsaverage5")
+    img = native_image()
+
+    def moved(mesh, a):  # the mesh's points in the subject's millimetres: a @ template millimetres
+        xyz = np.asarray(mesh.coordinates, dtype=np.float64)
+        return InMemoryMesh(xyz @ a[:3, :3].T + a[:3, 3], np.asarray(mesh.faces))
+
+    def nilearn_rows(a):
+        return np.concatenate([vol_to_surf(img, moved(fsa["pial"].parts[p], a),
+                                           inner_mesh=moved(fsa["white_matter"].parts[p], a), kind=proj["kind"],
+                                           interpolation=proj["interpolation"], depth=proj["depth"])
+                               for p in ("left", "right")])
+
+    mid = s.sql("SELECT map_id FROM maps WHERE sub = '01'")["map_id"][0].as_py()
+    ours = fs.unmask(fs.matrix([mid])[0])
+    keep = fs.mask_indices
+    ref = nilearn_rows(KNOWN)
+    both = np.isfinite(ours[keep]) & np.isfinite(ref[keep])
+    assert both.sum() > 15000
+    np.testing.assert_allclose(ours[keep][both], ref[keep][both], rtol=1e-4, atol=1e-4)
+    naive = nilearn_rows(np.eye(4))  # the native image projected as if it were in the template
+    assert np.corrcoef(ours[keep][both], naive[keep][both])[0, 1] < 0.99
+
+
+def test_a_registered_native_map_fills_grayordinates_voxels_and_cortex(native_store, tmp_path):
+    """A CIFTI template's voxels get the known field (the registration applied) and its cortex the
+    surface set's projection of the same map."""
+    import shutil
+
+    from .test_surfaces import MNI2, brain_models, cifti
+
+    base, store, _, _ = native_store
+    store2 = tmp_path / "s"
+    shutil.copytree(store, store2)
+    ax = brain_models()
+    template = cifti(tmp_path / "template.dscalar.nii", np.zeros((1, len(ax))), ax)
+    grey = mapstore.build_features(store2, grid=str(template), name="grey", progress=False, jobs=1)
+    assert grey.paths.get("registered+voxels+vol_to_surf") == 2, grey.summary()
+    surf = mapstore.build_features(store2, grid="fsaverage5", name="surf", progress=False, jobs=1)
+    assert surf.n_built == 2
+    s = mapstore.open(store2)
+    mid = s.sql("SELECT map_id FROM maps WHERE sub = '01'")["map_id"][0].as_py()
+    g, f = s.features("grey"), s.features("surf")
+    row = g.unmask(g.matrix([mid])[0])
+    vox = ax.volume_mask
+    mm = nib.affines.apply_affine(MNI2, ax.voxel[vox])
+    assert np.abs(row[vox] - field_mm(mm)).max() < 0.02  # the known answer at the template's voxels
+    cortex = f.unmask(f.matrix([mid])[0])  # NaN on the medial wall (the surface set's cortex mask)
+    on = np.isfinite(cortex)
+    assert on.sum() > 15000
+    np.testing.assert_allclose(row[ax.surface_mask][on], cortex[on], rtol=1e-6, atol=1e-6)

@@ -26,7 +26,7 @@ from ._surface import (
     SurfaceTarget,
     builtin_surface,
     missing_meshes,
-    project_volume,
+    project_source,
     read_surface_values,
     sulcal_depth,
     surface_from_spec,
@@ -137,6 +137,7 @@ class GrayordinateTarget(MeshedTarget):
         """
         import nibabel as nib
 
+        from ._registered import pull_coordinates, registration_of, sample
         from ._sources import hemispheres, native_sphere, source_volume
 
         if ctx.axis is None:
@@ -172,23 +173,26 @@ class GrayordinateTarget(MeshedTarget):
             how = "surface-cortex"
             missing.append("volume-structures")
         else:
-            src = source_volume(item, settings, ctx)
+            # a native-space map goes through its registration (refused, before reading, without one)
+            reg = registration_of(item) if item.space_kind == "native" else None
+            src = source_volume(item, settings, ctx, native_ok=reg is not None)
             conversion, clipped = src.conversion, src.p_clipped
             missing = [] if src.missing_from == "none" else [src.missing_from]
             vox, flat, vshape, vaff = voxel_positions(axis)
             vol = np.asarray(src.values, dtype=np.float32)
             if vox.size:
-                res = resample(vol, src.facts.affine_array, grid_from_spec(vshape, vaff), settings.method)
+                vgrid = grid_from_spec(vshape, vaff)
+                res = resample(vol, src.facts.affine_array, vgrid, settings.method) if reg is None else \
+                    sample(vol, pull_coordinates(reg, vgrid, src.facts.affine_array, ctx), vgrid.shape, settings.method)
                 out[vox] = res.reshape(-1)[flat]
             cortex = cortex_positions(axis)
-            how = "voxels"
+            how = "voxels" if reg is None else "registered+voxels"
             mesh = self._cortex_mesh(ctx)
             if cortex and mesh is not None:
-                proj = project_volume(vol, src.facts.affine_array, mesh, settings.projection or DEFAULT_PROJECTION,
-                                      ctx.surfaces(mesh), ctx)
+                proj = project_source(src, reg, mesh, settings.projection or DEFAULT_PROJECTION, ctx)
                 for hemi, (pos, vertex, _) in cortex.items():
                     out[pos] = proj[mesh.part(hemi)][vertex]
-                how = "voxels+vol_to_surf"
+                how += "+vol_to_surf"
             elif cortex:
                 missing.append("no-cortex-mesh")
         return RowValues(out if indices is None else out[indices], conversion, how, "+".join(missing) or "none",

@@ -1,4 +1,5 @@
-"""Resampling a native-space volume onto a template grid through its registration, in one pass.
+"""Resampling a native-space volume onto a template grid (or projecting it onto a template mesh) through
+its registration, in one pass.
 
 Each target voxel's position (template millimetres) goes through the registration's steps
 (nitransforms reads the ITK/ANTs and FSL files the pipelines leave, affine and nonlinear, and maps
@@ -18,7 +19,7 @@ import numpy as np
 from ..errors import FeatureError
 from ._protocol import BatchContext, SourceMap
 
-__all__ = ["registration_of", "pull_coordinates", "sample"]
+__all__ = ["registration_of", "registration_key", "map_points", "pull_coordinates", "sample"]
 
 _ORDER = {"nearest": 0, "linear": 1, "cubic": 3}
 
@@ -49,17 +50,28 @@ def _load_step(step: dict[str, Any]):
         raise FeatureError(f"{path}: cannot read the registration ({type(exc).__name__}: {exc})") from exc
 
 
+def registration_key(reg: dict[str, Any]) -> tuple[str, ...]:
+    """What identifies a registration: its steps' file hashes."""
+    return tuple(s["sha256"] for s in reg["steps"])
+
+
+def map_points(reg: dict[str, Any], pts: np.ndarray) -> np.ndarray:
+    """Template millimetres (n, 3) to the map's own millimetres, through every step of the registration."""
+    pts = np.asarray(pts, dtype=np.float64)
+    for step in reg["steps"]:
+        pts = np.asarray(_load_step(step).map(pts), dtype=np.float64)
+    return pts
+
+
 def pull_coordinates(reg: dict[str, Any], grid, src_affine: np.ndarray, ctx: BatchContext) -> np.ndarray:
     """Source voxel coordinates (3, n) of every voxel of ``grid`` through the registration (cached per batch)."""
-    key = (tuple(s["sha256"] for s in reg["steps"]), grid.grid_id, np.asarray(src_affine).tobytes())
+    key = (registration_key(reg), grid.grid_id, np.asarray(src_affine).tobytes())
     hit = ctx.pulled.get(key)
     if hit is not None:
         return hit
     ijk = np.indices(grid.shape, dtype=np.float64).reshape(3, -1)
     aff = grid.affine_array
-    pts = (aff[:3, :3] @ ijk + aff[:3, 3:4]).T  # (n, 3) template millimetres
-    for step in reg["steps"]:
-        pts = np.asarray(_load_step(step).map(pts), dtype=np.float64)
+    pts = map_points(reg, (aff[:3, :3] @ ijk + aff[:3, 3:4]).T)  # template millimetres, then the map's
     inv = np.linalg.inv(np.asarray(src_affine, dtype=np.float64))
     vox = inv[:3, :3] @ pts.T + inv[:3, 3:4]
     ctx.pulled[key] = vox

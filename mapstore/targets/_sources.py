@@ -97,9 +97,9 @@ def source_volume(item: SourceMap, settings: BuildSettings, ctx: BatchContext, n
     (``native_ok``): projecting it as if it were in the template would put values in the wrong place.
     """
     if item.space_kind == "native" and not native_ok:
-        raise FeatureError("a volume map in a native space: this kind of feature set does not take it through "
-                           "its registration yet; build a volume feature set for it, or give the map in "
-                           "template space")
+        raise FeatureError("a volume map in a native space: this kind of feature set cannot take it through "
+                           "its registration; build a volume, surface or grayordinate feature set for it, or give "
+                           "the map in template space")
     converting = settings.stat == "z" and item.stat in ("t", "F", "p")
     # p close to 1 (z < -5) is not representable in float32: convert from the file's precision
     vol, facts = read_volume(str(item.path), expect_sha256=item.sha256,

@@ -37,6 +37,7 @@ import numpy as np
 
 from ..errors import FeatureError, GridError, ParameterError
 from ._protocol import BatchContext, BuildSettings, Mask, Panel, RowValues, SourceMap, Target, mask_from_array
+from ._registered import map_points, registration_key
 from ..formats import DATA_KINDS, MeshFile, mesh_file, read_mesh, read_vertex_data, write_mesh_description
 
 __all__ = [
@@ -55,6 +56,7 @@ __all__ = [
     "fsaverage_meshes",
     "cortex_mask",
     "read_surface_values",
+    "project_source",
     "project_volume",
     "missing_meshes",
     "check_projection",
@@ -229,15 +231,16 @@ class SurfaceTarget(MeshedTarget):
     def values(self, item: SourceMap, settings: BuildSettings, ctx: BatchContext, region: Any = None,
                indices: np.ndarray | None = None) -> RowValues:
         """Both hemispheres on this mesh (left, then right)."""
+        from ._registered import registration_of
         from ._sources import hemispheres, native_sphere, source_volume
 
         out = np.full(self.n_vertices, np.nan, dtype=np.float32)
         if item.geometry == "volume":
-            src = source_volume(item, settings, ctx)
-            out[:] = project_volume(np.asarray(src.values, dtype=np.float32), src.facts.affine_array, self,
-                                    settings.projection or DEFAULT_PROJECTION, ctx.surfaces(self), ctx)
-            return RowValues(out if indices is None else out[indices], src.conversion, "vol_to_surf",
-                             src.missing_from, 0)
+            reg = registration_of(item) if item.space_kind == "native" else None  # refused before reading
+            src = source_volume(item, settings, ctx, native_ok=reg is not None)
+            out[:] = project_source(src, reg, self, settings.projection or DEFAULT_PROJECTION, ctx)
+            return RowValues(out if indices is None else out[indices], src.conversion,
+                             "registered+vol_to_surf" if reg is not None else "vol_to_surf", src.missing_from, 0)
         halves = hemispheres(item, settings)
         paths = set()
         for hemi, vals in halves.values.items():
@@ -710,8 +713,41 @@ def check_projection(projection: dict[str, Any] | None) -> dict[str, Any]:
     return p
 
 
+def project_source(src: Any, reg: dict[str, Any] | None, target: SurfaceTarget, projection: dict[str, Any],
+                   ctx: BatchContext) -> np.ndarray:
+    """A source volume (``_sources.SourceVolume``) onto the target mesh.  A native-space map (``reg``, its
+    registration) is projected with the mesh's points taken through the registration into the map's own
+    millimetres: the map is sampled once, where each template point lies in it."""
+    meshes = ctx.surfaces(target)
+    tag: tuple[str, ...] = ()
+    if reg is not None:
+        meshes = _registered_meshes(meshes, reg, [projection["outer"], projection.get("inner")], target, ctx)
+        tag = registration_key(reg)
+    return project_volume(np.asarray(src.values, dtype=np.float32), src.facts.affine_array, target, projection,
+                          meshes, ctx, tag)
+
+
+def _registered_meshes(meshes: dict[str, Any], reg: dict[str, Any], names: list[str | None], target: SurfaceTarget,
+                       ctx: BatchContext) -> dict[str, Any]:
+    """``meshes`` with the named surfaces' vertices mapped through the registration (cached per batch)."""
+    from nilearn.surface import InMemoryMesh, PolyMesh
+
+    out = dict(meshes)
+    for name in names:
+        if name is None or name not in meshes:
+            continue
+        key = ("mesh", registration_key(reg), target.grid_id, name)
+        if key not in ctx.pulled:
+            parts = {part: InMemoryMesh(map_points(reg, np.asarray(m.coordinates, dtype=np.float64)),
+                                        np.asarray(m.faces))
+                     for part, m in meshes[name].parts.items()}
+            ctx.pulled[key] = PolyMesh(**parts)
+        out[name] = ctx.pulled[key]
+    return out
+
+
 def project_volume(vol: np.ndarray, affine: np.ndarray, target: SurfaceTarget, projection: dict[str, Any],
-                   meshes: dict[str, Any], ctx: BatchContext | None = None) -> np.ndarray:
+                   meshes: dict[str, Any], ctx: BatchContext | None = None, tag: tuple[str, ...] = ()) -> np.ndarray:
     """A volume's values on the target mesh as ``nilearn.surface.vol_to_surf`` gives them, both hemispheres.
 
     Missing voxels (NaN) act as ``vol_to_surf``'s ``mask_img``: a vertex takes the mean of the
@@ -731,7 +767,7 @@ def project_volume(vol: np.ndarray, affine: np.ndarray, target: SurfaceTarget, p
         outer = meshes[projection["outer"]].parts[part]
         inner = meshes[projection["inner"]].parts[part] if "inner" in projection else None
         if fast and inner is not None:
-            op = _depth_operator(outer, inner, projection["depth"], affine, vol.shape, hemi, target, ctx)
+            op = _depth_operator(outer, inner, projection["depth"], affine, vol.shape, hemi, target, ctx, tag)
             vals = op.apply(filled, None if finite.all() else finite)
         else:
             vals = _vol_to_surf(filled, finite, affine, outer, inner, projection)
@@ -779,10 +815,11 @@ class _DepthOperator:
 
 
 def _depth_operator(outer, inner, depth, affine: np.ndarray, shape: tuple[int, ...], hemi: str,
-                    target: SurfaceTarget, ctx: BatchContext | None) -> _DepthOperator:
+                    target: SurfaceTarget, ctx: BatchContext | None, tag: tuple[str, ...] = ()) -> _DepthOperator:
     import scipy.sparse as sp
 
-    key = (target.grid_id, hemi, _json_key(depth), np.asarray(affine).tobytes(), tuple(shape))
+    # ``tag``: the registration the meshes went through (one operator per subject's registration)
+    key = (target.grid_id, hemi, _json_key(depth), np.asarray(affine).tobytes(), tuple(shape), tag)
     if ctx is not None and key in ctx.operators:
         return ctx.operators[key]
     out_xyz, in_xyz = np.asarray(outer.coordinates, np.float64), np.asarray(inner.coordinates, np.float64)
