@@ -65,10 +65,10 @@ def png_bytes(rgb: np.ndarray) -> bytes:
 
 
 def _grey(background: np.ndarray, lo: float, hi: float) -> np.ndarray:
-    """Background as grey RGB in [95, 230] (quiet: the colours stay the loudest thing); white where it has
+    """Background as grey RGB in [140, 228] (quiet: the colours stay the loudest thing); white where it has
     nothing (between views, off the surface)."""
     g = np.clip((np.nan_to_num(background, nan=lo) - lo) / (hi - lo if hi > lo else 1.0), 0, 1)
-    rgb = (95 + 135 * g)[..., None] * np.ones(3)
+    rgb = (140 + 88 * g)[..., None] * np.ones(3)
     rgb[np.isnan(background)] = 255.0
     return rgb
 

@@ -939,11 +939,13 @@ def surface_layout(target: SurfaceTarget, height: int = 110,
         pix = np.round((h - lo) * scale).astype(np.int64) + r
         offsets = [(dr, dc) for dr in range(-r, r + 1) for dc in range(-r, r + 1)]
         flat = np.concatenate([(pix[:, 1] + dr) * width + pix[:, 0] + dc for dr, dc in offsets])
-        near = np.tile(view_x * xyz[:, 0], len(offsets))  # larger: nearer the viewer
-        which = np.tile(vertex, len(offsets))
-        order = np.lexsort((near, flat))  # by pixel, nearest last
-        last = np.r_[flat[order][1:] != flat[order][:-1], True]
-        out.append(((height, width), flat[order][last], which[order][last] + target.part(hemi).start))
+        order = np.argsort(view_x * xyz[:, 0], kind="stable")  # far first: rank grows toward the viewer
+        rank = np.empty(len(order), dtype=np.int64)
+        rank[order] = np.arange(len(order))
+        best = np.full(height * width, -1, dtype=np.int64)
+        np.maximum.at(best, flat, np.tile(rank, len(offsets)))  # per pixel, the nearest point covering it
+        pixels = np.flatnonzero(best >= 0)
+        out.append(((height, width), pixels, vertex[order[best[pixels]]] + target.part(hemi).start))
     return out
 
 
