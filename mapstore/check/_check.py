@@ -501,6 +501,7 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
             by[r["concept"]][study_of[r["map_id"]]].append(r["map_id"])
     rows, summary = [], []
     tiles: dict[str, list[tuple[str, np.ndarray]]] = {}
+    matrices: dict[str, str] = {}  # each concept's study x study agreement, shown beside its picture
     for concept in sorted(by):
         studies = {s: ids for s, ids in by[concept].items()}
         if len(studies) < 2:
@@ -548,8 +549,7 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
                 if row["concept"] == concept:
                     i, j = names.index(str(row["study_a"])), names.index(str(row["study_b"]))
                     r[i, j] = r[j, i] = row["r_of_means"]
-            report.add_figure(f"agreement:{concept}", f"concept {concept!r}: how the studies' mean maps agree "
-                              "(r, study x study)", matrix_html(names, r))
+            matrices[concept] = matrix_html(names, r)
     if summary:
         report.add_table("concept-agreement", "concept agreement across studies (mean of each study's standardised "
                          "maps; pooled by random effects: the largest pooled z and the median I^2, the share of "
@@ -557,7 +557,7 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
         report.add_table("concept-agreement-pairs", "concept agreement, study x study (r of the study means)",
                          pa.Table.from_pylist(rows))
     if pictures and tiles:
-        _concept_pictures(fs, tiles, report)
+        _concept_pictures(fs, tiles, matrices, report)
 
 
 class _Drawer:
@@ -592,9 +592,10 @@ class _Drawer:
         return png, figure_html(drawn, headers, scale, note)
 
 
-def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report) -> None:
+def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], matrices: dict[str, str], report) -> None:
     """Each study's mean map over the set's background (the MNI152 template; sulcal depth on a surface),
-    one row per study, through the peak of the studies' average: red positive, blue negative."""
+    one row per study, through the peak of the studies' average: red positive, blue negative; then how
+    those means agree, as a matrix."""
     drawer = _Drawer(fs)
     for concept, items in tiles.items():
         vmax = max(float(np.nanpercentile(np.abs(m), 99)) for _, m in items) or 1.0
@@ -608,6 +609,9 @@ def _concept_pictures(fs, tiles: dict[str, list[tuple[str, np.ndarray]]], report
         report.add_picture(f"concept:{concept}", f"concept {concept!r}: mean standardised map per study, one row "
                            "each (" + ", ".join(s for s, _ in items) + "); red positive, blue negative",
                            png, figure)
+        if concept in matrices:
+            report.add_figure(f"agreement:{concept}", f"concept {concept!r}: how the studies' mean maps agree "
+                              "(r, study x study)", matrices[concept])
 
 
 def _check_target(store, fs, add) -> None:
