@@ -64,6 +64,12 @@ def test_check_finds_planted_faults(tmp_path):
     assert report.fails("error") and report.worst() == "error"
     dup = next(f for f in report.findings if f.code == "duplicate-file")
     assert "alpha" in dup.message and "beta" in dup.message and dup.remedy
+    # a finding about one map links the map's file on the page
+    neg = next(f for f in report.findings if f.code == "negative-variance")
+    page = report.write_html(tmp_path / "r.html").read_text()
+    uri = (tmp_path / "src").resolve().as_uri()
+    assert report.files[neg.subject].endswith("stat-variance_statmap.nii.gz")
+    assert f"<a href='{uri}" in page and f">{neg.subject}</a>" in page
     assert report.tables["grids"].num_rows == 2
 
 

@@ -58,6 +58,7 @@ class CheckReport:
     pictures: dict[str, bytes] = field(default_factory=dict)  # PNG bytes by stable id (``coverage``, ...)
     titles: dict[str, str] = field(default_factory=dict)  # what a person reads above a table or picture
     figures: dict[str, str] = field(default_factory=dict)  # the page's HTML of a picture (labels, colour bar)
+    files: dict[str, str] = field(default_factory=dict)  # a finding's subject that is a map id -> its file
     _order: list[str] = field(default_factory=list, repr=False)  # pictures and figures, as added
 
     def __repr__(self) -> str:
@@ -142,7 +143,7 @@ class CheckReport:
         if "studies" in self.tables:
             parts.append(f"<h2 id='studies'>{esc(self.titles.get('studies', 'studies'))}</h2>"
                          + _html_table(self.tables["studies"]))
-        parts.append("<h2 id='findings'>findings</h2>" + _findings_table(self.to_table()))
+        parts.append("<h2 id='findings'>findings</h2>" + _findings_table(self.to_table(), self.files))
         for key, table in self.tables.items():
             if key != "studies":
                 parts.append(f"<h2 id='{esc(key)}'>{esc(self.titles.get(key, key))}</h2>" + _html_table(table))
@@ -170,18 +171,24 @@ def _plural(n: int, word: str) -> str:
     return f"{n} {word}" if n == 1 else f"{n} {word}s"
 
 
-def _findings_table(table: pa.Table) -> str:
-    """The findings, each row an anchor (#finding-N); a subject that is a file becomes a link to it."""
+def _findings_table(table: pa.Table, files: dict[str, str] | None = None) -> str:
+    """The findings, each row an anchor (#finding-N); a subject that is a file, or a map id whose file is
+    known (``files``), becomes a link to the file."""
     import os
+    from pathlib import Path
 
+    files = files or {}
     head = "".join(f"<th>{html.escape(c)}</th>" for c in table.column_names)
     rows = []
     for i, r in enumerate(table.to_pylist(), 1):
         cells = []
         for k, v in r.items():
             text = html.escape("" if v is None else str(v))
-            if k == "subject" and v and os.path.isabs(str(v)) and os.path.exists(str(v)):
-                text = f"<a href='file://{html.escape(str(v))}'>{text}</a>"
+            target = files.get(str(v)) if k == "subject" and v else None
+            if target is None and k == "subject" and v and os.path.isabs(str(v)):
+                target = str(v)
+            if target is not None and os.path.exists(target):
+                text = f"<a href='{html.escape(Path(target).as_uri())}'>{text}</a>"
             cells.append(f"<td>{text}</td>")
         rows.append(f"<tr id='finding-{i}' class='{html.escape(str(r['level']))}'>{''.join(cells)}</tr>")
     return f"<table><tr>{head}</tr>{''.join(rows)}</table>"
@@ -241,7 +248,21 @@ def check_store(store, features: str | None = None, *, min_coverage: float = 0.8
         _check_target(store, fs, add)
         _check_copies(fs, maps, add, report)
         _check_concepts(store, fs, maps, add, report, pictures, min_agreement)
+    _link_files(store, report)
     return report
+
+
+def _link_files(store, report: CheckReport) -> None:
+    """The file of each finding whose subject is a map id (so the page links it)."""
+    ids = sorted({f.subject for f in report.findings if len(f.subject) == 16 and
+                  all(c in "0123456789abcdef" for c in f.subject)})
+    if not ids:
+        return
+    import os
+
+    for r in store.sql("SELECT m.map_id, d.root, m.relpath FROM maps m JOIN datasets d USING (dataset) WHERE "
+                       f"m.map_id IN ({', '.join(_lit(i) for i in ids)})").to_pylist():
+        report.files[r["map_id"]] = os.path.join(r["root"], r["relpath"])
 
 
 def _study_table(store, fs, report) -> None:
