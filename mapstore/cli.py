@@ -327,7 +327,7 @@ def parcels_cmd(store, atlas, source, name) -> None:
 
     \b
     Example:
-      mapstore parcels --store pooled --atlas atlas.nii.gz --source default
+      mapstore parcels --store pooled --atlas atlas.nii.gz --features default
     """
     from .features import build_parcels
 
