@@ -132,8 +132,10 @@ def spec_id(doc: dict[str, Any]) -> str:
 
 
 def feature_key(sha256: str, spec: dict[str, Any], dof: float | None, model_mask_sha256: str | None = None,
-                more: str = "", dof1: float | None = None, map_index: int | None = None) -> str:
-    """Hash of everything a row's values depend on; ``more`` adds an item's other sources (a hemisphere)."""
+                more: str = "", dof1: float | None = None, map_index: int | None = None,
+                registration: str = "") -> str:
+    """Hash of everything a row's values depend on; ``more`` adds an item's other sources (a hemisphere,
+    and a native map's ``registration``, which a volume set adds on its own)."""
     parts = [sha256, spec["grid_id"], spec["mask_sha256"], spec["method"], spec["stat"],
              spec["p_sided"], str(spec["zero_as_missing"]), spec["background"], model_mask_sha256 or "",
              "" if dof is None or spec["stat"] == "native" else f"{dof:.6g}", __version__]
@@ -143,8 +145,8 @@ def feature_key(sha256: str, spec: dict[str, Any], dof: float | None, model_mask
         parts.append(f"df1={dof1:.6g}")
     if map_index is not None:  # one map of a file of several
         parts.append(f"map={map_index}")
-    if spec.get("projection") is None and "|native:" in more:  # a volume set: only a native map's registration adds to the key
-        parts.append(more[more.index("|native:"):])
+    if spec.get("projection") is None and registration:  # a volume set: only a native map's registration adds
+        parts.append(registration)
     text = "|".join(parts)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
@@ -465,7 +467,7 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: dict[str, Any], old_rows: p
     dataset_of: dict[str, str] = {}
     for r in rows_sel:
         key = feature_key(r["sha256"], spec, r["dof"], r["model_mask_sha256"], SourceMap.key_sources(r),
-                          r.get("dof_numerator"), r.get("map_index"))
+                          r.get("dof_numerator"), r.get("map_index"), SourceMap.registration_key(r))
         wanted[r["map_id"]] = SourceMap.from_row(r, key)
         dataset_of[r["map_id"]] = r["dataset"]
     # keyed by map too: byte-identical copies of a file share a feature key, not a row

@@ -89,11 +89,17 @@ class SourceMap:
             more += f"|{r.get('space') or ''}"
         if r.get("native"):
             more += "|" + "|".join(f.sha256 for f in r["native"].values())
-        if r.get("space_kind") == "native":  # a changed registration (or a new one) rebuilds the row
-            reg = json.loads(r["registration"]) if r.get("registration") else {}
-            more += "|native:" + ",".join(f"{s['sha256']}/{s.get('reference_sha256') or ''}/"
-                                          f"{s.get('moving_sha256') or ''}" for s in reg.get("steps", []))
-        return more
+        return more + SourceMap.registration_key(r)
+
+    @staticmethod
+    def registration_key(r: dict[str, Any]) -> str:
+        """A native-space volume's registration as it enters the feature key (``""`` for other maps): a
+        changed registration (or a new one) rebuilds the row, whatever the target."""
+        if r.get("space_kind") != "native":
+            return ""
+        reg = json.loads(r["registration"]) if r.get("registration") else {}
+        return "|native:" + ",".join(f"{s['sha256']}/{s.get('reference_sha256') or ''}/"
+                                     f"{s.get('moving_sha256') or ''}" for s in reg.get("steps", []))
 
 
 @dataclass(frozen=True)
