@@ -7,6 +7,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import tempfile
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -66,8 +67,6 @@ def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[st
     The name rules and origins the first index used are taken from the manifest, which keeps their
     content; ``rules`` and ``origins`` (files or preset names) replace them when given.
     """
-    from . import build_features, index, label, open as open_store
-
     mpath = Path(manifest)
     if mpath.is_dir():
         mpath = mpath / "manifest.json"
@@ -80,11 +79,23 @@ def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[st
                           "export again with this mapstore")
     store_path = Path(store) if store is not None else Path(tempfile.mkdtemp(prefix="mapstore-rebuild-")) / "store"
     kept = man.get("index_inputs") or {}
-    if rules is None and kept.get("rules"):
-        rules = [r["preset"] if "preset" in r else _write_given(store_path.parent, "rules", i, r)
-                 for i, r in enumerate(kept["rules"])]
-    if origins is None and kept.get("origins"):
-        origins = _write_given(store_path.parent, "origins", 0, kept["origins"])
+    # the files the manifest keeps, written back for the stages that read files; in a folder of their own
+    # (never beside the user's store), removed at the end
+    given = Path(tempfile.mkdtemp(prefix="mapstore-rebuild-inputs-"))
+    try:
+        if rules is None and kept.get("rules"):
+            rules = [r["preset"] if "preset" in r else _write_given(given, "rules", i, r)
+                     for i, r in enumerate(kept["rules"])]
+        if origins is None and kept.get("origins"):
+            origins = _write_given(given, "origins", 0, kept["origins"])
+        return _rebuild(man, sources, out, store_path, given, rules, origins)
+    finally:
+        shutil.rmtree(given, ignore_errors=True)
+
+
+def _rebuild(man: dict[str, Any], sources, out, store_path: Path, given: Path, rules, origins) -> RebuildReport:
+    from . import build_features, index, label, open as open_store
+
     index(sources, store_path, rules=rules, origins=origins, progress=False)
     settings = man["feature_settings"]
     grid, mask = _grid_and_mask(man)
@@ -93,7 +104,7 @@ def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[st
                    background=settings["background"], model_maps="model" in settings.get("kinds", ["contrast"]),
                    progress=False)
     if man.get("vocabulary_content"):
-        vocab = store_path.parent / "vocabulary-from-manifest.json"
+        vocab = given / "vocabulary-from-manifest.json"
         vocab.write_text(json.dumps(man["vocabulary_content"]))
         label(store_path, vocab, inherit_broader=(man.get("vocabulary") or {}).get("inherit_broader"))
     st = open_store(store_path)
