@@ -134,7 +134,8 @@ class Store:
                task: list[str] | None = None, stat: list[str] | None = None, features: str | None = None,
                min_coverage: float | None = None, target: str = "contrast", group_by: str = "study",
                with_broader: bool = False, missing: str = "common", min_voxels: int | None = None,
-               one_stat: bool = True, per_subject: str = "contrast") -> Selection:
+               one_stat: bool = True, per_subject: str = "contrast", level: str | list[str] = "subject"
+               ) -> Selection:
         """Choose maps for a decoder: returns a :class:`~mapstore.query.Selection`.
 
         Parameters
@@ -173,6 +174,11 @@ class Store:
             ``contrast``: one map per subject, task and contrast (the subject-level map where the
             writer left one, else the first session and run); ``one``: one map per subject (for a
             participant target); ``map``: every map.  What went is counted in ``dropped``.
+        level : {"subject", "any", "run", "session", "group", "unknown"} or list, default="subject"
+            Whom the maps summarise (the catalog's ``level``): ``subject`` takes one person's maps
+            (run, session and subject level), so a group map never enters subject-level work as a
+            subject; ``group`` takes group maps, ``any`` every map.  The rest are counted in
+            ``dropped`` by level.
 
         Examples
         --------
@@ -184,7 +190,8 @@ class Store:
 
         return select(self, where, concepts=concepts, task=task, stat=stat, features=features,
                       min_coverage=min_coverage, target=target, group_by=group_by, with_broader=with_broader,
-                      missing=missing, min_voxels=min_voxels, one_stat=one_stat, per_subject=per_subject)
+                      missing=missing, min_voxels=min_voxels, one_stat=one_stat, per_subject=per_subject,
+                      level=level)
 
     def export(self, out, selection: Selection | None = None, *, scheme: str = "leave-one-group-out",
                seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False,

@@ -127,7 +127,7 @@ def _rebuild(man: dict[str, Any], sources, out, store_path: Path, given: Path, r
                     concepts=q.get("concepts") if man["target"] in ("concept", "concepts") else None,
                     group_by=man["group_by"], with_broader=bool(q.get("with_broader")),
                     missing=q.get("missing", "common"), min_voxels=q.get("min_voxels"), one_stat=False,
-                    per_subject="map")
+                    per_subject="map", level="any")
     pos = {m: i for i, m in enumerate(sel.map_ids)}
     sel = sel.subset([pos[m] for m in wanted])  # the manifest's row order
     rep = st.export(out, sel, scheme=man["scheme"], seed=man["seed"], allow_leak=man.get("allow_leak", False),

@@ -15,6 +15,7 @@ import click
 
 from ._version import __version__
 from .errors import MapstoreError
+from .statkinds import LEVEL_CHOICES
 
 # Each command imports the stage it runs when it runs: `mapstore --help` (and a typo) never pays for
 # numpy, pyarrow, DuckDB or scikit-learn.
@@ -83,6 +84,9 @@ def _target(path: str | None, option: str) -> None:
                                  "exist; create it first", param_hint=option)
 
 
+LEVEL_OPTION = click.option("--level", "level", multiple=True, type=click.Choice(LEVEL_CHOICES), default=("subject",),
+                            show_default=True, help="Whom the maps summarise (repeatable): subject takes one "
+                            "person's maps (run, session, subject level); group, any, or a level by name.")
 STORE_OPTION = click.option("--store", "store", required=True, type=click.Path(file_okay=False),
                             envvar="MAPSTORE_STORE", show_envvar=True,
                             help="Store folder (created by 'mapstore index').")
@@ -401,6 +405,7 @@ def labels_cmd(store, vocab, inherit) -> None:
 @click.option("--per-subject", type=click.Choice(["contrast", "one", "map"]), default="contrast", show_default=True,
               help="One map per subject and contrast (subject-level map, else first session and run), one per "
                    "subject, or every map.")
+@LEVEL_OPTION
 @click.option("--allow-unseen", is_flag=True, help="Accept test classes training never saw (recorded in the "
               "manifest).")
 @click.option("--near-copy-r", type=click.FloatRange(0, 1, min_open=True), default=None,
@@ -415,8 +420,8 @@ def labels_cmd(store, vocab, inherit) -> None:
               help="X as a memory-mappable .npy, one Parquet table, or a Zarr v3 array (chunks of rows).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing export folder.")
 def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_coverage, target, group_by, scheme,
-               seed, allow_leak, participant_columns, one_stat, per_subject, allow_unseen, near_copy_r, with_broader,
-               missing, min_voxels, fmt, overwrite) -> None:
+               seed, allow_leak, participant_columns, one_stat, per_subject, level, allow_unseen, near_copy_r,
+               with_broader, missing, min_voxels, fmt, overwrite) -> None:
     """Export X, y, groups, splits and metadata of a selection, with a manifest.
 
     \b
@@ -429,7 +434,7 @@ def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_cover
     sel = st.select(where, concepts=list(concepts) or None, task=list(tasks) or None, stat=list(stats) or None,
                     features=feature_set, min_coverage=min_coverage, target=target, group_by=group_by,
                     with_broader=with_broader, missing=missing, min_voxels=min_voxels, one_stat=one_stat,
-                    per_subject=per_subject)
+                    per_subject=per_subject, level=list(level))
     report = st.export(out, sel, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt, overwrite=overwrite,
                        near_copy_r=near_copy_r, allow_unseen=allow_unseen,
                        participant_columns=list(participant_columns) or None)
@@ -506,8 +511,9 @@ def similar_cmd(store, query, feature_set, k, absolute, stat, dof, fmt) -> None:
 @click.option("--leave-one-out", is_flag=True, help="Also say how much each study moves the result.")
 @click.option("--use-variance", is_flag=True,
               help="Weight each subject's effect map by its own variance map (same name, stat-variance).")
+@LEVEL_OPTION
 def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min_subjects, min_studies, fdr_q,
-             leave_one_out, use_variance) -> None:
+             leave_one_out, use_variance, level) -> None:
     """Do the studies agree, and where? Study maps of the chosen maps, combined across studies.
 
     \b
@@ -520,7 +526,7 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
 
     st = open_store(store)
     sel = st.select(where, concepts=list(concepts) or None, task=list(tasks) or None, stat=list(stats) or None,
-                    features=feature_set, target="concepts", missing="keep")
+                    features=feature_set, target="concepts", missing="keep", level=list(level))
     res = pool(sel, method, min_subjects=min_subjects, min_studies=min_studies, leave_one_out=leave_one_out,
                use_variance=use_variance)
     prov = write_pooled(res, out, fdr_q)

@@ -60,7 +60,14 @@ MAPS_DOCS = {
     "dof": "degrees of freedom, first found of: sidecar DegreesOfFreedom, intent_p1 of a t-test header, "
            "the design matrices beside the map (rows - rank), a header description {T_[df]}, a DOF file",
     "dof_source": "where dof came from: sidecar, header, design, descrip, dof-file",
-    "map_kind": "contrast (a contrast's map) or model (a stat without a contrast: residuals, fit)",
+    "map_kind": "contrast (a contrast's map) or model (a stat without a contrast, or of one regressor: "
+                "residuals, fit, parameter estimates)",
+    "level": "whom the map summarises: run, session, subject (the three are one person's), group, or unknown (no "
+             "subject, no sign of a group model); from a name rule or origins, the writer's layout, the entities",
+    "n_inputs": "a group (or higher-level) map's count of inputs where its writer says (FEAT design.fsf, SPM.mat, "
+                "the design matrix beside it)",
+    "group_contrast": "a higher-level model's own contrast (FEAT .gfeat: the group mean, a difference); the "
+                      "lower-level contrast is in contrast",
     "descrip": "the header's description field",
     "model_mask": "the model's own mask beside the map (path relative to the dataset root)",
     "model_mask_sha256": "SHA-256 of the model's mask file",
@@ -138,17 +145,18 @@ def _origins_schema() -> dict[str, Any]:
         "$id": SCHEMA_BASE + "origins.schema.json",
         "$comment": _MSG_NOTE,
         "title": "mapstore origins mapping",
-        "description": "Sets study, site and lab per dataset (keys are dataset keys or globs) and per "
+        "description": "Sets study, site, lab and level (run, session, subject, group) per dataset (keys are dataset keys or globs) and per "
                        "study-qualified subject ('<dataset key>/sub-<label>'); overrides what BIDS "
                        "metadata says.",
         "type": "object",
         "additionalProperties": False,
         _X: {"type": "expected an object with 'datasets' and/or 'subjects'",
              "additionalProperties": "unknown top-level key(s) {extra}; allowed: {allowed}"},
-        "properties": {"datasets": {"type": ["object", "null"], "additionalProperties": entry(("study", "site", "lab")),
+        "properties": {"datasets": {"type": ["object", "null"],
+                                    "additionalProperties": entry(("study", "site", "lab", "level")),
                                     _X: {"type": "'datasets' must be an object"}},
                        "subjects": {"type": ["object", "null"],
-                                    "additionalProperties": entry(("study", "site", "lab", "participant")),
+                                    "additionalProperties": entry(("study", "site", "lab", "participant", "level")),
                                     _X: {"type": "'subjects' must be an object"}}},
     }
 

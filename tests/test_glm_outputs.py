@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 import shutil
 import warnings
+from pathlib import Path
 
 import nibabel as nib
 import numpy as np
@@ -286,7 +287,9 @@ def test_stat_options_match_case_insensitively_and_empty_selections_say_what_exi
     st = mapstore.open(glm["store"])
     upper = st.select(stat=["T"], target="contrast")
     lower = st.select(stat=["t"], target="contrast")
-    assert len(upper) == len(lower) == 17
+    assert len(upper) == len(lower) == 16  # subjects' maps: the group t map is left out by its level
+    assert lower.dropped == {"level group (take them with level='group' or level='any')": 1}
+    assert len(st.select(stat=["t"], level="any")) == 17
     assert len(st.select(stat=["f"])) == 8
     with pytest.raises(QueryError) as err:
         st.select(task=["nosuchtask"])
@@ -353,7 +356,7 @@ def test_unknown_preset_is_refused_with_the_list(tmp_path):
     ds = make_derivative(tmp_path / "d")
     with pytest.raises(mapstore.MapstoreError) as err:
         mapstore.index([ds], tmp_path / "store", rules="afni", progress=False)
-    assert str(err.value) == "afni: no such rules file or built-in preset; presets: fsl-feat, spm"
+    assert str(err.value) == "afni: no such rules file or built-in preset; presets: freesurfer, fsl-feat, spm"
 
 
 def test_the_readme_decoding_runs_on_nilearn_outputs(glm, tmp_path):
@@ -378,3 +381,44 @@ def test_the_readme_decoding_runs_on_nilearn_outputs(glm, tmp_path):
     weights = LogisticRegression(max_iter=1000).fit(sel.X, sel.y).coef_[0]
     img = sel.to_image(weights)
     assert np.isfinite(np.asarray(img.dataobj)).sum() == sel.X.shape[1]
+
+
+def test_group_maps_beside_subjects_change_no_subject_level_work(glm, tmp_path):
+    """nilearn's SecondLevelModel saved by save_glm_to_bids into the first level's own folder (a real
+    writer): its maps are level group; a leave-one-study-out export and pool on the tree equal the same
+    on the tree without them."""
+    from mapstore.analyses import pool
+
+    from .glm_writers import NilearnStudy, write_second_level
+
+    plain, mixed = tmp_path / "plain", tmp_path / "mixed"
+    shutil.copytree(glm["base"], plain, symlinks=True)
+    shutil.copytree(glm["base"], mixed, symlinks=True)
+    alpha = glm["alpha"]
+    here = mixed / "alpha" / "derivatives" / "glm"
+    write_second_level(here, NilearnStudy(**{**alpha.__dict__, "root": here}), "reading", "wordsminusconsonants")
+    results = {}
+    for name, base in (("plain", plain), ("mixed", mixed)):
+        store = tmp_path / f"store-{name}"
+        mapstore.index([base], store, progress=False)
+        mapstore.build_features(store, progress=False)
+        st = mapstore.open(store)
+        sel = st.select(task=["reading"], stat=["effect"], group_by="study", target="contrast")
+        out = st.export(tmp_path / f"out-{name}", sel, scheme="leave-one-group-out").out
+        res = pool(st.select(task=["reading"], stat=["z"], group_by="study", target="contrast", missing="keep"),
+                   "stouffer", min_subjects=2)
+        results[name] = (sel, out, res)
+    st = mapstore.open(tmp_path / "store-mixed")
+    groups = st.sql("SELECT level, count(*) AS n FROM maps WHERE relpath LIKE 'group/%' AND dataset LIKE 'alpha/%' "
+                    "GROUP BY level").to_pylist()
+    assert groups and all(g["level"] == "group" for g in groups)
+    (sp, op, rp), (sm, om, rm) = results["plain"], results["mixed"]
+    assert len(sp) == len(sm)
+    assert sm.dropped.get("level group (take them with level='group' or level='any')", 0) >= 1
+    for f in ("X.npy", "y.npy", "groups.npy"):
+        a, b = np.load(Path(op) / f, allow_pickle=True), np.load(Path(om) / f, allow_pickle=True)
+        assert a.shape == b.shape and (a == b).all(), f
+    assert json.loads((Path(op) / "manifest.json").read_text())["splits"] == \
+        json.loads((Path(om) / "manifest.json").read_text())["splits"]
+    np.testing.assert_array_equal(rp.z, rm.z)
+    assert rp.studies == rm.studies

@@ -27,7 +27,7 @@ def test_files_no_naming_takes_are_reported_with_a_rule_that_takes_them(tmp_path
     assert sorted(f.message.split(" image")[0] for f in found) == ["1", "6"]
     # the rule the remedy suggests takes the files, with their stat
     beta = next(f for f in found if "_beta" in f.message)
-    rule = json.loads(beta.remedy.split("such as ", 1)[1].rsplit("; otherwise", 1)[0])
+    rule = json.loads(beta.remedy.split("such as ", 1)[1].split("; it takes them as", 1)[0])
     (tmp_path / "rule.json").write_text(json.dumps(rule))
     again = mapstore.index([root], store, rules=[str(tmp_path / "rule.json")], progress=False, jobs=1)
     assert again.n_maps == 6 and again.passed_over == {"_rsquared.nii.gz": 1}

@@ -199,7 +199,7 @@ def variance_maps(sel: Selection) -> Selection:
     var_ids = [of[m] for m in sel.map_ids]
     got = sel.store.select("map_id IN (" + ", ".join("'" + v.replace("'", "''") + "'" for v in var_ids) + ")",
                            features=sel.feature_set.name, stat=["variance"], missing="keep", one_stat=False,
-                           per_subject="map")
+                           per_subject="map", level="any")
     pos = {m: i for i, m in enumerate(got.map_ids)}
     missing_rows = [v for v in var_ids if v not in pos]
     if missing_rows:

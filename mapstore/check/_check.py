@@ -22,19 +22,17 @@ import pyarrow as pa
 from .._version import __version__
 from ..analyses import combine
 from ..features import pair_correlation
+from ..statkinds import STAT_KINDS, known_stats
 from ._figures import FIGURE_CSS, Scale, compose, figure_html, histograms_html, matrix_html, png_bytes, stack_rgb
 
 __all__ = ["Finding", "CheckReport", "check_store", "png_bytes", "report_json", "LEVELS"]
 
 LEVELS = ("info", "warning", "error")
 CONCEPT_AGREEMENT = 0.2  # mean cross-study r of a concept's study means below which check flags it
-# BIDS statistical-derivatives stat labels, plus the model maps nilearn writes (errorts, rsquared)
-# and SPM's extra-sum-of-squares images (ess)
-KNOWN_STATS = {"t", "z", "p", "F", "chi2", "effect", "variance", "std", "r", "logp", "errorts", "rsquared",
-               "ess"}
-# nifti1.h intent codes that name a statistic, and the stat labels they agree with
-INTENT_STATS = {3: {"t"}, 4: {"F"}, 5: {"z"}, 6: {"chi2"}, 22: {"p"}, 23: {"logp"}, 24: {"logp"},
-                2: {"r"}}
+# the stat labels of the table of statistic kinds, and the nifti1.h intent codes that declare one
+KNOWN_STATS = set(known_stats())
+INTENT_STATS = {code: {k.label for k in STAT_KINDS if code in k.intents}
+                for code in sorted({c for k in STAT_KINDS for c in k.intents if c != 2001})}
 
 
 @dataclass(frozen=True)

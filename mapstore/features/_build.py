@@ -35,6 +35,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from ..statkinds import convertible_to_z
 from .._params import positive_int, resolve_jobs
 from .._runner import run as run_units
 from .._version import __version__
@@ -163,7 +164,7 @@ def _per_dataset(items: list[SourceMap], dataset_of: dict[str, str], n: int):
             k += 1
 
 
-_Z_READY = ("t", "F", "p", "z")
+_Z_READY = convertible_to_z()
 
 
 def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], target: Target, stat: str,

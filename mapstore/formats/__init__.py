@@ -5,6 +5,17 @@ from __future__ import annotations
 
 from ._html import html_table
 from ._hashing import ReadDeadline, ReadTimeout, digest_file, sha256_file
+from ._foreign import (
+    DATA_EXTENSIONS,
+    FOREIGN_EXTENSIONS,
+    ForeignFacts,
+    afni_brick,
+    data_file,
+    digest_map,
+    foreign_format,
+    read_foreign_header,
+    read_foreign_volume,
+)
 from ._header import (
     HeaderFacts,
     NIFTI1_SIZE,
@@ -26,6 +37,15 @@ from ._userfiles import UserFile, check_user_doc, format_key_path, load_user_fil
 
 
 __all__ = [
+    "afni_brick",
+    "DATA_EXTENSIONS",
+    "data_file",
+    "digest_map",
+    "FOREIGN_EXTENSIONS",
+    "ForeignFacts",
+    "foreign_format",
+    "read_foreign_header",
+    "read_foreign_volume",
     "brain_models_key",
     "check_user_doc",
     "DATA_KINDS",

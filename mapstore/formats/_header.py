@@ -113,7 +113,7 @@ class HeaderFacts:
     ``qform_code > 0``, else pixdim scaling (method 1).
     """
 
-    nifti_version: int
+    nifti_version: int | None  # None: another format read through nibabel (formats._foreign)
     endianness: str
     shape: tuple[int, ...]
     dtype: str
@@ -472,9 +472,10 @@ class SurfaceFacts:
 
 def surface_format(name: str) -> str | None:
     """``"gifti"``, ``"cifti"`` or None (a volume, or not a map format), from a file name."""
-    if name.endswith(".gii"):  # nilearn's writer names its surface maps plain .gii
+    low = name.lower()
+    if low.endswith(".gii"):  # nilearn's writer names its surface maps plain .gii
         return "gifti"
-    if name.endswith(".dscalar.nii"):
+    if low.endswith((".dscalar.nii", ".dtseries.nii")):  # a one-timepoint series is a map too
         return "cifti"
     return None
 
@@ -612,7 +613,12 @@ def _cifti_facts(path: str) -> SurfaceFacts:
         raise HeaderError(path, "not-dense", f"the second CIFTI axis is a {type(cols).__name__}, not brain models "
                           "(a parcellated or connectivity file)", "index dense scalar maps (.dscalar.nii)")
     warnings = [w for w in facts.warnings if "pixdim" not in w]  # CIFTI has no voxel affine in its header
-    if facts.intent_code != CIFTI_SCALAR_INTENT:
+    if isinstance(rows, cifti2_axes.SeriesAxis) and len(rows) > 1:
+        raise HeaderError(path, "time-series", f"a dense series of {len(rows)} time points, not a statistic map",
+                          "index statistic maps (a .dscalar.nii, or a series of one time point)")
+    if isinstance(rows, cifti2_axes.SeriesAxis):
+        pass  # grayordinate pipelines write a statistic map as a one-timepoint series
+    elif facts.intent_code != CIFTI_SCALAR_INTENT:
         warnings.append(f"intent code {facts.intent_code}, not {CIFTI_SCALAR_INTENT} (dense scalars)")
     structures = [str(s[0]).replace("CIFTI_STRUCTURE_", "") for s in cols.iter_structures()]
     return SurfaceFacts("cifti", len(cols), len(rows), facts.dtype, facts.intent_code,

@@ -27,6 +27,7 @@ from typing import Any, Iterable
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from ._layouts import LayoutReader, level_from_entities
 from ._spaces import RegistrationFinder, registration_json, space_kind
 from ._discover import (
 
@@ -62,7 +63,9 @@ from .._params import resolve_jobs
 from .._runner import die_once_for_tests, run as run_units
 from ..errors import HeaderError, MapstoreError, NoDatasetsFound, ParameterError, StoreFull
 from ..labels import refresh_labels
-from ..formats import REAL_SCALAR_DTYPES, ReadDeadline, ReadTimeout, digest_file
+from ..statkinds import LEVELS, kind_for_word, kinds_for_intent, stat_kind
+from ..formats import REAL_SCALAR_DTYPES, ReadDeadline, ReadTimeout, afni_brick, digest_file, digest_map
+from ..formats import foreign_format, read_foreign_header
 from ..formats import (
     NIFTI1_SIZE,
     NIFTI2_SIZE,
@@ -106,7 +109,7 @@ _HEADER_COLUMNS = ("sha256", "nbytes", "mtime_ns", "nifti_version", "endianness"
                    "dtype", "bitpix", "vox_offset", "scl_slope", "scl_inter", "intent_code",
                    "intent_name", "intent_p1", "qform_code", "sform_code", "affine_source", "affine",
                    "voxel_size", "orientation", "grid_id", "descrip", "header_warnings", "geometry",
-                   "n_vertices", "structures")
+                   "n_vertices", "structures", "file_format")
 
 
 @dataclass
@@ -193,10 +196,33 @@ def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None, prog
                 cache[key] = cols
     except HeaderError as exc:
         return Problem(path, exc.code, exc.reason, exc.remedy, stage="header")
-    if not path.endswith(".gz") and dig.nbytes < cols["vox_offset"] + cols["_data_nbytes"]:
+    if dig.head[:2] != b"\x1f\x8b" and dig.nbytes < cols["vox_offset"] + cols["_data_nbytes"]:
         return Problem(path, "truncated-data",
                        f"file has {dig.nbytes} bytes, header promises {cols['vox_offset'] + cols['_data_nbytes']}",
                        "the file was cut short; re-create or re-download it", stage="header")
+    return cols, dig.sha256, dig.nbytes
+
+
+def probe_foreign(path: str, progress=None) -> tuple[dict[str, Any], str, int] | Problem:
+    """Hash a map of another format (both files of a two-file one) and read its header through nibabel."""
+    try:
+        dig = digest_map(path, progress=progress)
+        info = read_foreign_header(path)
+    except FileNotFoundError:
+        return Problem(path, "missing-file", "file vanished during the crawl", "index again")
+    except HeaderError as exc:
+        return Problem(path, exc.code, exc.reason, exc.remedy, stage="header")
+    except OSError as exc:
+        return Problem(path, "unreadable", f"cannot read file ({exc.strerror})", "check permissions")
+    if info.surface_vertices is not None:
+        return Problem(path, "surface-overlay", f"a FreeSurfer surface overlay of {info.surface_vertices} values "
+                       "(one per vertex), not a volume", "save it as GIFTI (nibabel: nib.gifti.GiftiImage with "
+                       "one data array; name it hemi-L or hemi-R) and index that", stage="header")
+    refused = _not_a_map(path, info.facts)
+    if refused is not None:
+        return refused
+    cols = _header_columns(info.facts)
+    cols.update(file_format=info.file_format, _map_names=list(info.map_names), _bricks=list(info.statistics))
     return cols, dig.sha256, dig.nbytes
 
 
@@ -227,6 +253,7 @@ def _header_columns(facts: HeaderFacts) -> dict[str, Any]:
         "voxel_size": list(facts.voxel_size), "orientation": facts.orientation,
         "grid_id": facts.grid_id, "descrip": facts.descrip, "header_warnings": list(facts.warnings),
         "_data_nbytes": facts.data_nbytes, "geometry": "volume", "n_vertices": None, "structures": None,
+        "file_format": f"nifti{facts.nifti_version}" if facts.nifti_version else None,
     }
 
 
@@ -287,6 +314,7 @@ def probe_surface_file(path: str, entities: dict[str, str], progress=None
         "descrip": facts.descrip, "header_warnings": warnings,
         "geometry": "surface" if facts.format == "gifti" else "grayordinates",
         "n_vertices": facts.n_vertices, "structures": facts.structure, "_hemi": side,
+        "file_format": "gifti" if facts.format == "gifti" else "cifti2",
         "_map_names": list(facts.map_names),
     }
     return cols, dig.sha256, dig.nbytes
@@ -423,7 +451,8 @@ def _run_unit(unit: _Unit) -> _UnitResult:
 
 def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
     fingerprint = hashlib.sha256(unit.inputs.encode())
-    maps, jsons, problems = walk_dataset(unit.ds, unit.parser, unit.rules, unit.top, unit.root_maps, fingerprint)
+    maps, jsons, problems = walk_dataset(unit.ds, unit.parser, unit.rules, unit.top, unit.root_maps, fingerprint,
+                                         unit.ds.exclude)
     digest = None if unit.rules.rules or any(p.level == _NOT_REUSED_LEVEL for p in problems) \
         else fingerprint.hexdigest()
     prev_part = unit.prev_part
@@ -481,13 +510,16 @@ class _RowBuilder:
         self.new = self.changed = self.unchanged = 0
         self.native = 0  # native-space maps: their registration lives outside the unit's files
         self.registrations = RegistrationFinder(unit.ds.root, unit.ds.source_roots, unit.transforms)
+        self.layouts = LayoutReader(unit.ds.root, unit.ds.key, jsons, unit.ds.index_root)
 
     def _header(self, m) -> tuple[dict[str, Any], str, int, int] | None:
         """Header columns, sha256, size and header position of a map (None, with a problem, when it cannot
         be read).  The position is >= 0 in ``headers``, or -1 - i for row i of the previous table."""
         pcol = self.pcol
         old = self.prev.get(m.relpath)
-        if old is not None and pcol["nbytes"][old] == m.nbytes and pcol["mtime_ns"][old] == m.mtime_ns:
+        # an AFNI bucket's sub-bricks take their statistics from its header: read again
+        if old is not None and pcol["nbytes"][old] == m.nbytes and pcol["mtime_ns"][old] == m.mtime_ns \
+                and m.entities.get("extension") != ".head":
             self.unchanged += 1
             n = pcol["n_volumes"][old] or 1
             names = self.prev_names.get(m.relpath, {})
@@ -500,6 +532,8 @@ class _RowBuilder:
             with self.deadline.armed():
                 if surface_format(m.path):
                     res = probe_surface_file(m.path, m.entities, self.deadline.progress)
+                elif foreign_format(m.path):
+                    res = probe_foreign(m.path, self.deadline.progress)
                 else:
                     res = probe_file(m.path, self.cache, self.deadline.progress)
         except ReadTimeout:
@@ -536,6 +570,15 @@ class _RowBuilder:
             return
         hdr, sha, nbytes, hpos = got
         ds = self.ds
+        given = m.entities.pop("level", None) or self.unit.overrides.apply(ds.key, m.entities.get("sub"), {}).get("level")
+        if given is not None and given not in LEVELS:
+            self.problems.append(Problem(m.path, "bad-level", f"level {given!r} (from a name rule or the origins "
+                                         f"file) is not one of {', '.join(LEVELS)}; the layout's level is used",
+                                         "write one of " + ", ".join(LEVELS), "warning", ds.key))
+            given = None
+        place = self.layouts.facts(m.relpath, m.entities, given)
+        m.entities.update(place.entities)
+        self.problems.extend(place.problems)
         meta, used, meta_json = self.resolver.resolve_full(m.relpath, m.entities)
         skey = (meta_json, *used)
         spos = self.sidecar_pos.get(skey)
@@ -543,17 +586,35 @@ class _RowBuilder:
             spos = self.sidecar_pos[skey] = len(self.sidecars)
             self.sidecars.append({"metadata": meta_json, "sidecars": used})
         file_row = self._file_row(m, hdr, sha, nbytes, meta, used)
+        if file_row["dof"] is None and place.dof is not None:
+            file_row.update(dof=place.dof, dof_source=place.dof_source)
+        if file_row["dof_numerator"] is None and place.dof_numerator is not None and m.entities.get("stat") == "F":
+            file_row["dof_numerator"] = place.dof_numerator
+        n_inputs = place.n_inputs
+        if n_inputs is None and place.level == "group":
+            n_inputs = self.model.design_rows(m.relpath, m.entities)
+        file_row.update(level=place.level, n_inputs=n_inputs, group_contrast=place.group_contrast)
         maps = maps_in_file(m.path, m.entities, hdr)
+        afni = m.entities.get("extension") == ".head"
+        bricks = hdr.get("_bricks") if afni else None
         for index, name in maps:
             row = file_row if len(maps) == 1 else dict(file_row)
             row.update(map_index=index, map_name=name)
-            if index is not None:  # one map of several: its name may give entities the file name lacks
+            if afni:  # a sub-brick: its label and statistic code say what it is
+                if not self._afni_brick(m, row, index, (hdr.get("_map_names") or [""])[index or 0],
+                                        (bricks or [])[index or 0] if bricks and (index or 0) < len(bricks) else (0, ())):
+                    continue
+            elif index is not None:  # one map of several: its name may give entities the file name lacks
                 ents = {**entities_from_map_name(name, m.path), **m.entities}
                 row.update({c: ents.get(c) for c in _ENTITY_COLUMNS if c != "hemi"})
                 row["map_id"] = map_id_for(ds.key, f"{m.relpath}#{index}")
                 row["entities"] = json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")},
                                              sort_keys=True)
-            row["map_kind"] = "contrast" if row["contrast"] else "model"
+                if ents.get("sub") and not m.entities.get("sub") and not given:
+                    # stacked subjects' maps in one file (named sub-XX): each is that subject's
+                    row.update(level=level_from_entities(ents), n_inputs=None)
+            kind = stat_kind(row["stat"])
+            row["map_kind"] = "contrast" if row["contrast"] and (kind is None or kind.role == "contrast") else "model"
             origin = self.origins.get(row["sub"])
             if origin is None:
                 origin = self.origins[row["sub"]] = _origin(ds, row["sub"], self.unit.by_sub, self.unit.overrides)
@@ -564,6 +625,35 @@ class _RowBuilder:
             self.hidx.append(hpos)
             self.sidx.append(spos)
             self.rows.append(_ROW_TUPLE(row))
+
+    def _afni_brick(self, m, row: dict[str, Any], index: int | None, label: str,
+                    stat: tuple[int, tuple[float, ...]]) -> bool:
+        """Fill one AFNI sub-brick's row from its label and statistic code; False (with a note) for a brick
+        whose statistic nothing names."""
+        info = afni_brick(label, *stat)
+        kinds = kinds_for_intent(info.get("intent"))
+        word = kind_for_word(info.get("word"))
+        label_stat = kinds[0] if kinds else word.label if word else m.entities.get("stat")
+        if not label_stat:
+            self.problems.append(Problem(f"{m.path}[{index or 0}]", "unknown-stat", f"sub-brick {index or 0} "
+                                         f"({label or 'no label'}) has no statistic code and its label names no "
+                                         "statistic; it was passed over", "label it (3drefit -sublabel) with a "
+                                         "statistic word (Coef, Tstat, Fstat, Zscr), or index it with a name rule",
+                                         "info", self.ds.key))
+            return False
+        contrast = m.entities.get("contrast") or info.get("contrast")
+        ents = {**m.entities, "stat": label_stat, **({"contrast": contrast} if contrast else {})}
+        row.update({c: ents.get(c) for c in _ENTITY_COLUMNS if c != "hemi"})
+        row["map_index"] = index
+        if index is not None:
+            row["map_id"] = map_id_for(self.ds.key, f"{m.relpath}#{index}")
+        row["entities"] = json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")
+                                      and v is not None}, sort_keys=True)
+        if info.get("dof"):
+            row.update(dof=float(info["dof"]), dof_source="afni-statistic")
+        if info.get("dof_numerator"):
+            row["dof_numerator"] = float(info["dof_numerator"])
+        return True
 
     def _file_row(self, m, hdr: dict[str, Any], sha: str, nbytes: int, meta: dict[str, Any], used: list[str]
                   ) -> dict[str, Any]:
@@ -627,6 +717,9 @@ def maps_in_file(path: str, entities: dict[str, str], hdr: dict[str, Any]) -> li
     contrast's rows, not maps of their own; the F map is beside it).
     """
     n = hdr.get("n_volumes") or 1
+    if n >= 2 and hdr.get("file_format") == "afni":
+        names = list(hdr.get("_map_names") or [])
+        return [(i, names[i] if i < len(names) else "") for i in range(n)]  # an AFNI bucket: a map per sub-brick
     if n < 2 or hdr.get("geometry") in (None, "volume"):
         return [(None, None)]
     if entities.get("stat") == "effect" and "_stat-effect_" in path and \
@@ -649,6 +742,8 @@ def entities_from_map_name(name: str | None, path: str) -> dict[str, str]:
     {'sub': '02', 'task': 'read', 'contrast': 'words', 'stat': 't'}
     >>> entities_from_map_name("faces minus houses", "x"), entities_from_map_name("#3", "x")
     ({'contrast': 'faces minus houses'}, {})
+    >>> entities_from_map_name("BODY-AVG", "x"), entities_from_map_name("2BK-0BK", "x")
+    ({'contrast': 'BODY-AVG'}, {'contrast': '2BK-0BK'})
     """
     text = (name or "").strip()
     for end in _MAP_FILE_ENDINGS:
@@ -662,7 +757,8 @@ def entities_from_map_name(name: str | None, path: str) -> dict[str, str]:
     pairs = [_ENTITY_TOKEN.match(t) for t in tokens]
     if pairs[0] is not None and all(p is not None for p in pairs[:-1]):  # the last may be a suffix
         found = {p.group(1): p.group(2) for p in pairs if p is not None}
-        return {k: v for k, v in found.items() if k in _ENTITY_COLUMNS}
+        if all(k in _ENTITY_COLUMNS for k in found):  # BODY-AVG is a contrast, not an entity BODY
+            return found
     return {"contrast": text}
 
 

@@ -23,8 +23,11 @@ from pathlib import Path
 from typing import Any, Iterable
 
 from ..errors import RulesError
+from ..formats import DATA_EXTENSIONS, FOREIGN_EXTENSIONS, data_file
+from ..statkinds import COMPANION_WORDS, STAT_KINDS, kind_for_word, known_stats, stat_kind
 from ..formats import check_user_doc, load_user_file
 from ..store import Problem
+from ._layouts import h5_field_strings, h5_struct, is_matlab_hdf5, subject_from_path
 
 __all__ = [
     "Problem",
@@ -49,8 +52,15 @@ __all__ = [
 ]
 
 STAT_SUFFIX = "statmap"
-# file extensions of statistic maps: volumes, GIFTI per hemisphere, CIFTI-2 dense scalars (longest first)
-MAP_EXTENSIONS = (".dscalar.nii", ".func.gii", ".shape.gii", ".gii", ".nii.gz", ".nii")
+# file extensions of statistic maps, lower case (names are compared without regard to case): volumes,
+# GIFTI per hemisphere, CIFTI-2 dense scalars and one-timepoint dense series (longest first)
+# (ANALYZE and NIfTI pairs, AFNI, FreeSurfer and MINC files are read through nibabel: formats._foreign)
+MAP_EXTENSIONS = (".dscalar.nii", ".dtseries.nii", ".func.gii", ".shape.gii", ".gii", ".nii.gz", ".nii") + \
+    FOREIGN_EXTENSIONS
+# image files not read as maps: each is reported, never dropped silently.  The data half of a two-file
+# format (.img beside .hdr, .BRIK beside .HEAD) belongs to its header's map; alone it is reported.
+OTHER_IMAGE_EXTENSIONS = (".mnc.gz",)
+DATA_HALVES = {d: h for h, ds in DATA_EXTENSIONS.items() for d in ds}
 # files a GLM writer leaves beside its maps: the model's mask and its design matrix
 COMPANION_SUFFIXES = ("_mask.nii.gz", "_mask.nii", "_mask.gii", "_design.tsv")
 # Entities of the statistical-derivatives convention that pybids' bundled config lacks.
@@ -86,6 +96,8 @@ class DatasetInfo:
     raw_name: str | None
     description: dict[str, Any]
     source_roots: list[str] = field(default_factory=list)  # local datasets named by SourceDatasets
+    exclude: list[str] = field(default_factory=list)  # folders (relative) that are datasets of their own
+    index_root: str | None = None  # the root the user named that holds it (what a design file may point into)
 
     @property
     def study(self) -> str:
@@ -112,9 +124,10 @@ def split_map_name(name: str) -> tuple[str, str] | None:
     >>> split_map_name("sub-01_hemi-L_space-fsaverage5_stat-t_statmap.func.gii")
     ('sub-01_hemi-L_space-fsaverage5_stat-t_statmap', '.func.gii')
     """
+    low = name.lower()
     for ext in MAP_EXTENSIONS:
-        if name.endswith(ext):
-            return name[:-len(ext)], ext
+        if low.endswith(ext):
+            return name[:-len(ext)], name[-len(ext):]
     return None
 
 
@@ -377,15 +390,15 @@ def _read_names_file(path: str, spec: dict[str, Any]) -> tuple[Any, str]:
                 return fh.read(), ""
         except OSError as exc:
             return None, f"cannot read {path} ({exc.strerror})"
+    if is_matlab_hdf5(path):
+        return _read_names_h5(path, spec)
     try:
         from scipy.io import loadmat
 
         doc = loadmat(path, simplify_cells=True)
     except FileNotFoundError:
         return None, f"{path} is missing"
-    except NotImplementedError:
-        return None, f"{path} is a MATLAB v7.3 (HDF5) file; save it with -v7 to have its contrast names read"
-    except (OSError, ValueError, TypeError) as exc:
+    except (OSError, ValueError, TypeError, NotImplementedError) as exc:
         return None, f"cannot read {path} ({exc})"
     node: Any = doc
     for part in spec["matlab"].split("."):
@@ -395,6 +408,20 @@ def _read_names_file(path: str, spec: dict[str, Any]) -> tuple[Any, str]:
     items = list(node) if isinstance(node, (list, tuple)) or hasattr(node, "tolist") else [node]
     field_ = spec.get("field", "name")
     return [it.get(field_) if isinstance(it, dict) else None for it in items], ""
+
+
+def _read_names_h5(path: str, spec: dict[str, Any]) -> tuple[Any, str]:
+    """The names of a struct array in a MATLAB v7.3 (HDF5) file."""
+    import h5py
+
+    try:
+        with h5py.File(path, "r") as f:
+            group = h5_struct(f, spec["matlab"])
+            if group is None:
+                return None, f"{path} has no {spec['matlab']}"
+            return h5_field_strings(f, group, spec.get("field", "name")), ""
+    except (OSError, ValueError, KeyError, TypeError) as exc:
+        return None, f"cannot read {path} as MATLAB v7.3 ({exc})"
 
 
 def _template_regex(template: str, where: str) -> re.Pattern[str]:
@@ -588,10 +615,13 @@ def find_datasets(roots: Iterable[str | os.PathLike[str]], max_depth: int = 4
             continue
         before = len(finder.found)
         finder.visit(p, 0, None)
+        finder.plain(p, p, 0)
+        for ds in finder.found[before:]:
+            ds.index_root = str(p)
         if len(finder.found) == before and not any(pr.path.startswith(str(p)) for pr in finder.problems):
-            finder.problems.append(Problem(str(p), "no-datasets", "no BIDS derivative dataset found",
-                                           "point at a derivative dataset, a raw dataset with derivatives/, "
-                                           "or a folder holding them"))
+            finder.problems.append(Problem(str(p), "no-datasets", "no BIDS derivative dataset and no image file "
+                                           "found", "point at a derivative dataset, a raw dataset with derivatives/, "
+                                           "a folder of GLM outputs, or a folder holding them"))
     found = finder.found
     # a raw dataset without derivatives/ is expected when a derivative names it in SourceDatasets
     sourced = {str(Path(r).resolve()) for ds in found for r in ds.source_roots}
@@ -662,6 +692,34 @@ class _DatasetFinder:
         for child in children:
             self.visit(child, depth + 1, raw)
 
+    def plain(self, path: Path, root: Path, depth: int) -> None:
+        """Folders outside every BIDS dataset that hold image files become datasets of their own (named by
+        their path under the index root; the study is the folder's name, which origins can change).
+
+        A folder with no BIDS dataset below it is one dataset; a folder with some is walked into, and its
+        own loose files are one dataset that leaves its sub-folders to the others.
+        """
+        taken = {Path(s) for s in self.seen}
+        real = Path(os.path.realpath(path))
+        if real in taken or any(t in real.parents for t in taken) or depth > _PLAIN_DEPTH:
+            return
+        below = [t for t in taken if real in t.parents]
+        if not below:
+            if _has_images(path):
+                self.seen.add(str(real))
+                self.found.append(_plain_dataset(path, root))
+            return
+        try:
+            children = sorted(c for c in path.iterdir() if c.is_dir() and not c.name.startswith("."))
+        except OSError:
+            return
+        if _has_images(path, depth=0):
+            ds = _plain_dataset(path, root)
+            ds.exclude = [c.name for c in children]
+            self.found.append(ds)
+        for child in children:
+            self.plain(child, root, depth + 1)
+
     def _raw(self, path: Path, desc: dict[str, Any]) -> None:
         deriv = path / "derivatives"
         if not deriv.is_dir():
@@ -688,6 +746,50 @@ class _DatasetFinder:
             for child in sorted(deriv.iterdir()):
                 if child.is_dir():
                     self.visit(child, 0, raw)
+
+
+_PLAIN_DEPTH = 8  # how deep below an index root a folder of GLM outputs is looked for
+_SCAN_ENTRIES = 200_000  # how many entries a look for image files reads before it stops
+
+
+def _is_image_name(name: str) -> bool:
+    low = name.lower()
+    return low.endswith(MAP_EXTENSIONS) or low.endswith(OTHER_IMAGE_EXTENSIONS) or \
+        any(low.endswith(d) for d in DATA_HALVES)
+
+
+def _has_images(path: Path, depth: int = 12) -> bool:
+    """Whether a folder (or, with depth > 0, a folder below it) holds an image file; bounded, loops skipped."""
+    stack, seen, n = [(path, 0)], set(), 0
+    while stack:
+        folder, d = stack.pop()
+        try:
+            st = os.stat(folder)
+            if (st.st_dev, st.st_ino) in seen:
+                continue
+            seen.add((st.st_dev, st.st_ino))
+            entries = list(os.scandir(folder))
+        except OSError:
+            continue
+        for e in entries:
+            n += 1
+            if n > _SCAN_ENTRIES or e.name.startswith("."):
+                continue
+            if _is_dir(e):
+                if d < depth:
+                    stack.append((Path(e.path), d + 1))
+            elif _is_image_name(e.name):
+                return True
+    return False
+
+
+def _plain_dataset(path: Path, root: Path) -> DatasetInfo:
+    """A folder of maps outside BIDS: keyed by its path under the index root, its study the folder name."""
+    rel = path.relative_to(root) if path != root else Path()
+    parts = [root.name, *rel.parts]
+    name = path.name or "root"
+    return DatasetInfo(root=str(path), key="/".join(_slug(p) for p in parts), name=name, dataset_type="folder",
+                       generated_by=[], bids_version=None, raw_root=None, raw_name=None, description={})
 
 
 def inside(path: str | os.PathLike[str], folder: str | os.PathLike[str]) -> bool:
@@ -723,13 +825,39 @@ def top_folders(ds: DatasetInfo) -> list[str]:
     """The dataset's top-level folders that a walk descends into."""
     try:
         return sorted(e.name for e in os.scandir(ds.root)
-                      if e.is_dir() and not e.name.startswith(".") and e.name not in SKIP_DIRS)
+                      if e.is_dir() and not e.name.startswith(".") and e.name not in SKIP_DIRS
+                      and e.name not in ds.exclude)
     except OSError:
         return []
 
 
+def _is_dir(e: os.DirEntry) -> bool:
+    try:
+        return e.is_dir()
+    except OSError:
+        return False
+
+
+def _written_twice(ds: DatasetInfo, maps: list[MapFile]) -> list[Problem]:
+    """A map saved both as .nii and .nii.gz (or in two cases of one name): both are kept, and said."""
+    by_stem: dict[str, list[MapFile]] = {}
+    for m in maps:
+        stem, _ = split_map_name(m.relpath) or (m.relpath, "")
+        by_stem.setdefault(stem.lower(), []).append(m)
+    out = []
+    for group in by_stem.values():
+        if len(group) > 1:
+            names = ", ".join(os.path.basename(m.relpath) for m in group)
+            out.append(Problem(group[0].path, "map-written-twice", f"one map written {len(group)} times in "
+                               f"different formats ({names}); each is a catalog row",
+                               "keep one of the files (selections keep one stat and one map per subject and "
+                               "contrast, so a decoder is not fed both)", "warning", ds.key))
+    return out
+
+
 def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
-                 top: Iterable[str] | None = None, root_maps: bool = True, fingerprint: Any = None
+                 top: Iterable[str] | None = None, root_maps: bool = True, fingerprint: Any = None,
+                 skip_folders: Iterable[str] | None = None
                  ) -> tuple[list[MapFile], dict[str, list[str]], list[Problem]]:
     """List the statistic maps and JSON sidecars of one dataset (or of part of it).
 
@@ -740,69 +868,170 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
     count; root-level sidecars are always collected, as inheritance needs them.
     ``fingerprint`` (a hashlib object) is fed the path, size and mtime of every map, sidecar
     and model file found: equal digests mean the walk found the same files unchanged.
+    ``skip_folders`` (relative paths) are not entered: datasets of their own nested in this one.
     """
     w = _Walk(ds, parser, rules, root_maps, fingerprint)
     only = None if top is None else set(top)
+    skip = set(skip_folders or ())
     stack = [""]
+    seen: set[tuple[int, int]] = set()  # folders by device and inode: a symlink loop is walked once
     while stack:
         rel = stack.pop()
         folder = os.path.join(ds.root, rel) if rel else ds.root
         try:
+            st = os.stat(folder)
+            if (st.st_dev, st.st_ino) in seen:
+                w.problems.append(Problem(folder, "symlink-loop", "a folder reached again through a symbolic "
+                                          "link (a loop, or a second path to the same folder); walked once",
+                                          "remove the link, or nothing to do if the folder is meant to be "
+                                          "reachable twice", "warning", ds.key))
+                continue
+            seen.add((st.st_dev, st.st_ino))
             entries = list(os.scandir(folder))
         except OSError as exc:
             w.problems.append(Problem(folder, "unreadable-folder", f"cannot list folder ({exc.strerror})",
                                       "check permissions", "error", ds.key))
             continue
+        lowered = {e.name.lower() for e in entries}
+        digits = [e.name for e in entries if e.name.isdigit() and _is_dir(e)]
+        if len(digits) >= 2:  # folders named by subject number, side by side
+            w.digit_dirs.update(f"{rel}/{d}" if rel else d for d in digits)
         for e in entries:
             name = e.name
             if name.startswith("."):
                 continue
             relpath = f"{rel}/{name}" if rel else name
-            try:
-                is_dir = e.is_dir()
-            except OSError:
-                is_dir = False
-            if is_dir and name.endswith(MAP_EXTENSIONS) and "_stat-" in name:
+            is_dir = _is_dir(e)
+            low = name.lower()
+            if is_dir and low.endswith(MAP_EXTENSIONS) and "_stat-" in name:
                 w.problems.append(Problem(e.path, "not-a-regular-file", "a folder named like a statistic map; it "
                                           "was not opened", "rename the folder, or put the map file itself here",
                                           "error", ds.key))
             elif is_dir:
+                if relpath in skip:
+                    continue
                 if rel or (name not in SKIP_DIRS and (only is None or name in only)):
                     stack.append(relpath)
-            elif name.endswith(".json") or name.endswith(COMPANION_SUFFIXES):
+            elif low.endswith(".json") or low.endswith(COMPANION_SUFFIXES):
                 w.companion(e, rel, relpath)
-            elif name.endswith(MAP_EXTENSIONS) and (rel or root_maps):
+            elif low.endswith(MAP_EXTENSIONS) and (rel or root_maps):
                 w.map(e, relpath)
+            elif low.endswith(OTHER_IMAGE_EXTENSIONS) and (rel or root_maps):
+                w.other_image(e, relpath)
+            elif (half := next((d for d in DATA_HALVES if low.endswith(d)), None)) and (rel or root_maps):
+                if low[:-len(half)] + DATA_HALVES[half] not in lowered:
+                    w.other_image(e, relpath, half)  # a data file without its header
     w.maps.sort(key=lambda m: m.relpath)
-    for ending, (n, example) in sorted(w.unmatched.items()):
-        w.problems.append(unmatched_problem(ds, ending, n, example))
+    w.problems.extend(_written_twice(ds, w.maps))
+    for ending, (n, example, ents) in sorted(w.unmatched.items()):
+        w.problems.append(unmatched_problem(ds, ending, n, example, ents))
+    for ending, (n, example) in sorted(w.other.items()):
+        if ending in DATA_HALVES:
+            w.problems.append(Problem(example, "data-without-header", f"{n} data file(s) (*{ending}) with no "
+                                      f"{DATA_HALVES[ending]} header beside them: the voxels without what they "
+                                      "are; passed over", f"put the {DATA_HALVES[ending]} header back beside each",
+                                      "warning", ds.key, count=n))
+        else:
+            w.problems.append(Problem(example, "unread-format", f"{n} image file(s) in a format not read as maps "
+                                      f"(*{ending}, a compressed MINC file); passed over", "uncompress it (gunzip) "
+                                      "and index again", "warning", ds.key, count=n))
     if fingerprint is not None:
         fingerprint.update("".join(f"{m.relpath}\0{m.nbytes}\0{m.mtime_ns}\n" for m in w.maps).encode())
     return w.maps, w.jsons, w.problems
 
 
-# stat names other tools give their maps, and the BIDS stat they are (common practice)
-_STAT_WORDS = {"beta": "effect", "cope": "effect", "con": "effect", "effect": "effect", "tstat": "t",
-               "spmT": "t", "t": "t", "zstat": "z", "z": "z", "varcope": "variance", "variance": "variance",
-               "pval": "p", "p": "p", "fstat": "F", "spmF": "F"}
+def name_form(stem: str) -> tuple[str, str]:
+    """How a file name that is not a BIDS statmap name carries its statistic: ``(form, word)``.
+
+    Forms: ``numbered`` (SPM's ``con_0001``), ``counted`` (FEAT's ``cope1``), ``bare`` (``ResMS``,
+    ``sigmasquareds``) and ``suffix`` (``faces_zmap``, ``sub-01_effect_size``; known words of several
+    parts are kept whole).
+
+    >>> [name_form(s) for s in ("con_0001", "cope12", "ResMS", "faces_effect_size", "sub-01_r_square")]
+    [('numbered', 'con'), ('counted', 'cope'), ('bare', 'ResMS'), ('suffix', 'effect_size'), ('suffix', 'r_square')]
+    """
+    low = stem.lower()
+    for w in _LONG_WORDS:
+        if low.endswith("_" + w) or low == w:
+            return ("bare" if low == w else "suffix"), stem[-len(w):]
+    tokens = stem.split("_")
+    if len(tokens) >= 2 and tokens[-1].isdigit() and tokens[-2].isalpha():
+        return "numbered", tokens[-2]
+    m = re.fullmatch(r"([A-Za-z]+?)([0-9]+)", tokens[-1])
+    if len(tokens) == 1 and m:
+        return "counted", m.group(1)
+    if len(tokens) == 1:
+        return "bare", stem
+    return "suffix", tokens[-1]
 
 
-def suggested_rule(ending: str) -> str:
-    """A name rule (JSON, one line) that would take files with this name ending as statistic maps."""
-    word, ext = (ending[1:].split(".", 1) + [""])[:2] if ending.startswith("_") else ("", ending.lstrip("."))
-    stat = _STAT_WORDS.get(word, _STAT_WORDS.get(word.lower(), "effect"))
-    rx = rf"(?:.*/)?[^/]*_(?P<stat>{re.escape(word)})\.{re.escape(ext)}"
-    return json.dumps({"rules": [{"regex": rx, "translate": {"stat": {word: stat}}}]})
+_LONG_WORDS = sorted({w.lower() for k in STAT_KINDS for w in k.words if "_" in w} |
+                     {w.lower() for w in COMPANION_WORDS if "_" in w}, key=len, reverse=True)
+_FORM_ENDING = {"numbered": "{w}_<N>", "counted": "{w}<N>", "bare": "{w}", "suffix": "_{w}"}
+# a token that names a BIDS entity is not a contrast
+_NOT_CONTRAST = r"(?!(?:sub|ses|task|acq|run|rec|space|res|den|hemi|desc|dir|echo|contrast|stat)-)"
 
 
-def unmatched_problem(ds: DatasetInfo, ending: str, n: int, example: str) -> Problem:
+def name_ending(stem: str, ext: str) -> str:
+    """The key passed-over files are counted under: what their names share (``cope<N>.nii.gz``)."""
+    form, word = name_form(stem)
+    return _FORM_ENDING[form].format(w=word) + ext
+
+
+def suggested_rule(stem: str, ext: str, entities: dict[str, str] | None = None) -> tuple[str | None, str]:
+    """A name rule (JSON, one line) that takes files named like this one, and what it takes them as.
+
+    The stat comes from the table of statistic kinds (the writer's word); the contrast from the number
+    (``cope3``, ``con_0003``) or the name part before the word; ``(None, why)`` for a word no kind knows.
+    """
+    form, word = name_form(stem)
+    kind = kind_for_word(word)
+    if kind is None:
+        if word.lower() in (w.lower() for w in COMPANION_WORDS):
+            return None, f"a file a model leaves beside its maps ({word}), not a statistic map"
+        return None, (f"the word {word!r} names no statistic mapstore knows; if these are statistic maps, write "
+                      "a name rule that sets stat (entities: {stat: LABEL}, LABEL one of "
+                      f"{', '.join(known_stats())})")
+    label = kind.label
+    if label == "beta" and entities and entities.get("contrast"):
+        label = "effect"  # a "beta" named for a contrast is the contrast's estimate
+    numbered = form in ("numbered", "counted")
+    by_number = numbered and (kind.role == "contrast" or label in ("effect", "beta"))
+    by_name = form == "suffix" and (kind.role == "contrast" or label == "effect")
+    by_folder = form == "bare" and kind.role == "contrast"  # FreeSurfer's <glmdir>/<contrast>/sig.mgh
+    number = r"(?P<contrast>[0-9]+)" if by_number else r"[0-9]*"
+    w = f"(?P<stat>{re.escape(word)})"
+    bare = f"(?P<contrast>[^/]+)/{w}" if by_folder else f"(?:[^/]*_)?{w}"
+    body = {"numbered": f"{w}_{number}", "counted": f"{w}{number}", "bare": bare,
+            "suffix": "(?:[^/]*?_)??" + (f"(?:{_NOT_CONTRAST}(?P<contrast>[^/_]+)_)?" if by_name else "") + w}[form]
+    rule = json.dumps({"rules": [{"regex": r"(?:.*/)?" + body + re.escape(ext),
+                                  "translate": {"stat": {word: label}}}]})
+    role = "contrast" if kind.role == "contrast" or label == "effect" else "model"
+    what = f"{label} maps ({(stat_kind(label) or kind).description}; {role} maps)"
+    if by_number:
+        what += ", the contrast (or regressor) from the number in the name"
+    elif by_name:
+        what += ", the contrast from the name part before the word, or the file's contrast- entity"
+    elif by_folder:
+        what += ", the contrast from the folder the file is in"
+    return rule, what
+
+
+def unmatched_problem(ds: DatasetInfo, ending: str, n: int, example: str,
+                      entities: dict[str, str] | None = None) -> Problem:
     """One ``info`` row per kind of image file no naming took (nothing a dataset holds goes unsaid)."""
+    name = os.path.basename(example)
+    stem, ext = split_map_name(name) or (name, "")
+    rule, what = suggested_rule(stem, ext, entities)
+    if rule is None:
+        remedy = f"{what}; otherwise nothing to do" if "no statistic" in what else f"{what}: nothing to do"
+    else:
+        remedy = (f"if they are statistic maps, rename them ..._stat-<label>_statmap, or index with a name-rules "
+                  f"file (--rules) such as {rule}; it takes them as {what}; otherwise nothing to do")
     return Problem(example, "unmatched-images",
                    f"{n} image file(s) named like this one (*{ending}) are neither BIDS statistic maps "
                    "(..._stat-<label>_statmap) nor taken by a name rule; they were passed over",
-                   "if they are statistic maps, rename them ..._stat-<label>_statmap, or index with a name-rules "
-                   f"file (--rules) such as {suggested_rule(ending)}; otherwise nothing to do",
-                   "info", ds.key, count=n)
+                   remedy, "info", ds.key, count=n)
 
 
 class _Walk:
@@ -814,7 +1043,14 @@ class _Walk:
         self.maps: list[MapFile] = []
         self.jsons: dict[str, list[str]] = {}
         self.problems: list[Problem] = []
-        self.unmatched: dict[str, list[Any]] = {}  # by name ending (_beta.nii.gz): [count, first path]
+        self.unmatched: dict[str, list[Any]] = {}  # by name ending (_beta.nii.gz): [count, first path, entities]
+        self.other: dict[str, list[Any]] = {}  # image files of formats not read, by extension: [count, first path]
+        self.digit_dirs: set[str] = set()  # folders named by a number beside others so named (subject numbers)
+
+    def other_image(self, e: os.DirEntry, relpath: str, ext: str | None = None) -> None:
+        ext = ext or next(x for x in OTHER_IMAGE_EXTENSIONS if e.name.lower().endswith(x))
+        seen = self.other.setdefault(ext, [0, e.path])
+        seen[0] += 1
 
     def companion(self, e: os.DirEntry, rel: str, relpath: str) -> None:
         """A sidecar or a model file (mask, design): listed for inheritance and model lookups."""
@@ -839,14 +1075,27 @@ class _Walk:
         hit = None
         if not is_statmap:
             hit = self.rules.match_full(ds.key, relpath) if self.rules.rules else None
+            if hit is None and ext.lower() == ".head":  # an AFNI bucket says what each sub-brick is
+                hit = (-1, {}, {})
             if hit is None:
-                ending = "_" + stem.rsplit("_", 1)[-1] + ext if "_" in stem else ext
-                seen = self.unmatched.setdefault(ending, [0, e.path])
+                ending = name_ending(stem, ext)
+                seen = self.unmatched.setdefault(ending, [0, e.path, None])
+                if seen[0] == 0:
+                    seen[2] = self.parser.parse(relpath)
                 seen[0] += 1
                 return
         st = self._stat(e)
         if st is None:
             return
+        size, mtime = st.st_size, st.st_mtime_ns
+        if ext.lower() in DATA_EXTENSIONS:  # a two-file format: its size and time are both files'
+            half = data_file(e.path)
+            try:
+                dst = os.stat(half) if half else None
+            except OSError:
+                dst = None
+            if dst is not None:
+                size, mtime = size + dst.st_size, max(mtime, dst.st_mtime_ns)
         if is_statmap:
             ents = self.parser.parse(relpath)
             self.problems.extend(_fix_labels(stem, ents, e.path, ds.key))
@@ -856,17 +1105,39 @@ class _Walk:
                                              "for a contrast's map), or add a rule in a name-rules file",
                                              "error", ds.key))
                 return
-            ents["extension"] = ext
-            self.maps.append(MapFile(ds, relpath, e.path, ents, st.st_size, st.st_mtime_ns, "bids"))
+            ents["extension"] = ext.lower()
+            self._subject(ents, relpath)
+            kind = stat_kind(ents["stat"])
+            if "contrast" not in ents and ents.get("desc") and kind is not None and kind.role == "contrast":
+                ents["contrast"] = ents["desc"]
+                self.problems.append(Problem(e.path, "contrast-from-desc", f"a {ents['stat']} map with no contrast- "
+                                             f"entity: its desc-{ents['desc']} is taken as the contrast",
+                                             f"name it with contrast-{ents['desc']} to say so", "info", ds.key))
+            self.maps.append(MapFile(ds, relpath, e.path, ents, size, mtime, "bids"))
             return
         idx, ents, groups = hit
         base = self.parser.parse(relpath)
         base.update(ents)
         base["suffix"] = STAT_SUFFIX
-        base["extension"] = ext
+        base["extension"] = ext.lower()
+        self._subject(base, relpath)
+        if idx < 0:  # an AFNI bucket no rule names: its header says what it holds
+            base.pop("stat", None)
+            self.maps.append(MapFile(ds, relpath, e.path, base, size, mtime, "afni"))
+            return
         extras, probs = self.rules.extras(ds.root, idx, groups, base, e.path, ds.key)
         self.problems.extend(probs)
-        self.maps.append(MapFile(ds, relpath, e.path, base, st.st_size, st.st_mtime_ns, f"rule:{idx}", extras))
+        self.maps.append(MapFile(ds, relpath, e.path, base, size, mtime, f"rule:{idx}", extras))
+
+    def _subject(self, ents: dict[str, str], relpath: str) -> None:
+        """A subject named by a folder outside BIDS (``subj07/``, ``s07/``, a number among numbers)."""
+        if "sub" not in ents:
+            # a folder of maps outside BIDS may itself be the subject's (subj07/ indexed as a dataset)
+            sub = subject_from_path(relpath, self.digit_dirs)
+            if sub is None and self.ds.dataset_type == "folder":
+                sub = subject_from_path(f"{os.path.basename(self.ds.root)}/{relpath}")
+            if sub:
+                ents["sub"] = sub
 
     def _stat(self, e: os.DirEntry) -> os.stat_result | None:
         """The map's stat; only a regular file passes (anything else becomes a problem, unopened)."""
@@ -1131,6 +1402,18 @@ class ModelFiles:
         """Relative path of the model's mask for a map (``_mask.gii`` of its hemisphere for a surface map)."""
         found = self._find("surface-mask" if surface else "mask", relpath, entities)
         return found[0] if found else None
+
+    def design_rows(self, relpath: str, entities: dict[str, str]) -> int | None:
+        """Rows of the design matrix beside a map (a group model's inputs: one row per map it pooled)."""
+        designs = self._find("design", relpath, entities)
+        if len(designs) != 1:
+            return None
+        try:
+            with open(os.path.join(self.ds.root, designs[0]), encoding="utf-8") as fh:
+                n = sum(1 for line in fh if line.strip()) - 1
+        except (OSError, UnicodeDecodeError):
+            return None
+        return n if n > 0 else None
 
     def design_dof(self, relpath: str, entities: dict[str, str]) -> tuple[float | None, str | None, str | None]:
         """Residual degrees of freedom from the design matrices beside a map.

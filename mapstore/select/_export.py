@@ -41,7 +41,7 @@ from .._version import __version__
 from ..features import NEAR_COPY_R
 from ..errors import ExportError, ParameterError
 from ..indexing import lies_within
-from ..formats import sha256_file
+from ..formats import digest_map, foreign_format, sha256_file
 from ..features import FeatureSet
 from ._query import Selection, fold_vector, parse_scheme
 from ..store import Catalog, checkpoint, replace_dir
@@ -486,7 +486,7 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
         if not _regular(p):  # a FIFO would hang the hash, a device never end it
             changes.append(f"source is not a regular file (a FIFO, device or folder): {p}")
             continue
-        got = sha256_file(str(p))
+        got = digest_map(str(p)).sha256 if foreign_format(str(p)) else sha256_file(str(p))
         if got != s["sha256"]:
             changes.append(f"source changed: {p} (sha256 {s['sha256'][:12]}... -> {got[:12]}...)")
     n_rows = 0

@@ -15,6 +15,7 @@ from typing import Any
 
 import numpy as np
 
+from ..statkinds import LEVEL_CHOICES, LEVELS, STAT_PREFERENCE, SUBJECT_LEVELS
 from ..errors import LeakageError, ParameterError, QueryError, UnseenClassError
 from ..features import NEAR_COPY_R, STORE_FLOOR, find_copies
 from ..labels import load_vocabulary
@@ -256,8 +257,9 @@ def check_leakage(splits, participants: np.ndarray, sha256: np.ndarray, map_ids:
     groups = copy_groups(len(map_ids), copies or [])
     for i, (tr, te) in enumerate(splits):
         for what, col in (("subject", participants), ("identical map (sha256)", sha256)):
-            tr_set = {v for v in col[tr] if v is not None}
-            both = sorted({v for v in col[te] if v is not None} & tr_set)
+            # a map without a subject (a group map) is nobody's: never one shared person
+            tr_set = {v for v in col[tr] if isinstance(v, str)}
+            both = sorted({v for v in col[te] if isinstance(v, str)} & tr_set)
             if both:
                 ids = [str(map_ids[j]) for j in te if col[j] in both][:5]
                 problems.append(f"split {i}: {len(both)} {what}(s) on both sides, e.g. {both[0]} "
@@ -698,7 +700,7 @@ def _sql_list(values) -> str:
 
 
 # one stat per contrast: the first of these a contrast has (z and t carry the same evidence)
-STAT_ORDER = ("z", "t", "F", "p", "effect", "variance")
+STAT_ORDER = STAT_PREFERENCE
 PER_SUBJECT = ("contrast", "one", "map")
 
 
@@ -719,14 +721,17 @@ def _one_per(df, per_subject: str, one_stat: bool):
     has_sub = df["participant"].notna()
     rank = df["stat"].map({s: i for i, s in enumerate(STAT_ORDER)}).fillna(len(STAT_ORDER))
     level = (df["ses"].notna().astype(int) + df["run"].notna().astype(int))  # 0: the subject-level map
+    # a map without a subject belongs to its model: its dataset and folder (a group model's t and z are
+    # one contrast's two stats, as a subject's are)
+    model = df["dataset"].astype(str) + "|" + df["relpath"].astype(str).str.rsplit("/", n=1).str[0]
     work = df.assign(_rank=rank, _level=level, _ses=df["ses"].fillna(""), _run=df["run"].fillna(""),
-                     _key=df["participant"].fillna(df["map_id"]))
+                     _key=df["participant"].fillna(model))
     keep = pd.Series(True, index=df.index)
     if one_stat:
         cols = ["_key", "task", "contrast", "_ses", "_run", "space", "desc"]
         order = work.sort_values(cols + ["_rank", "map_id"], na_position="last")
         first = ~order.duplicated(subset=[c for c in cols if c in order.columns], keep="first")
-        gone = (~first.reindex(df.index)) & has_sub
+        gone = ~first.reindex(df.index)
         if gone.any():
             dropped["another stat of the same contrast (kept: " + "/".join(STAT_ORDER) + " first)"] = int(gone.sum())
         keep &= ~gone
@@ -750,9 +755,10 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
            stat: list[str] | None = None, features: str | None = None, min_coverage: float | None = None,
            target: str = "contrast", group_by: str = "study", with_broader: bool = False,
            missing: str = "common", min_voxels: int | None = None, one_stat: bool = True,
-           per_subject: str = "contrast") -> Selection:
+           per_subject: str = "contrast", level: str | list[str] = "subject") -> Selection:
     """Choose maps and build a :class:`Selection` (see :meth:`mapstore.Store.select`)."""
     _check_select_options(missing, min_voxels, group_by, min_coverage, concepts=concepts, task=task, stat=stat)
+    levels = resolve_levels(level)
     if per_subject not in PER_SUBJECT:
         raise ParameterError(f"per_subject must be one of {list(PER_SUBJECT)}, got {per_subject!r}")
     fs = store.features(features)
@@ -768,6 +774,8 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
     dropped = {}
     if n_matching > len(df):
         dropped["no feature row"] = int(n_matching - len(df))
+    df, by_level = _take_levels(df, levels)
+    dropped.update(by_level)
     if min_coverage is not None:
         low = df["coverage"] < min_coverage
         if low.any():
@@ -786,9 +794,47 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
     query = {"where": where, "concepts": concepts, "task": task, "stat": stat, "features": fs.name,
              "min_coverage": min_coverage, "target": target, "group_by": group_by, "with_broader": with_broader,
              "missing": missing, "min_voxels": min_voxels, "one_stat": one_stat, "per_subject": per_subject,
-             "sql": q}
+             "level": level if isinstance(level, str) else list(level), "sql": q}
     return Selection(store, fs, df, y, Y, concept_list, groups, group_by, target, query, dropped, missing,
                      min_voxels)
+
+
+def resolve_levels(level: str | list[str] | tuple[str, ...]) -> tuple[str, ...]:
+    """The map levels a ``level=`` choice takes: ``"subject"`` (the default) is one person's maps (run,
+    session and subject level), ``"any"`` every level, else the levels named.
+
+    >>> resolve_levels("subject"), resolve_levels(["group"])
+    (('run', 'session', 'subject'), ('group',))
+    """
+    names = [level] if isinstance(level, str) else list(level) if isinstance(level, (list, tuple)) else None
+    if not names or any(n not in LEVEL_CHOICES for n in names):
+        raise ParameterError(f"level must be one of {list(LEVEL_CHOICES)} or a list of {list(LEVELS)}, got {level!r}")
+    out: list[str] = []
+    for n in names:
+        for lv in SUBJECT_LEVELS if n == "subject" else LEVELS if n == "any" else (n,):
+            if lv not in out:
+                out.append(lv)
+    return tuple(out)
+
+
+def map_levels(df) -> "Any":
+    """Each row's level; a catalog written before levels were recorded: subject when it names one."""
+    import pandas as pd
+
+    derived = pd.Series(np.where(df["sub"].notna(), "subject", "unknown"), index=df.index)
+    return df["level"].fillna(derived) if "level" in df.columns else derived
+
+
+def _take_levels(df, levels: tuple[str, ...]):
+    """The rows of the levels asked for, and what went, by level (with the choice that takes them)."""
+    if df.empty:
+        return df, {}
+    lv = map_levels(df)
+    keep = lv.isin(levels).to_numpy()
+    dropped = {}
+    for name, n in lv[~keep].value_counts().sort_index().items():
+        dropped[f"level {name} (take them with level={name!r} or level='any')"] = int(n)
+    return df[keep].reset_index(drop=True), dropped
 
 
 def _check_select_options(missing: str, min_voxels: int | None, group_by: str, min_coverage: float | None,

@@ -52,6 +52,12 @@ MAPS_SCHEMA = pa.schema([
     # a file of several maps (CIFTI-2 scalars, GIFTI data arrays) gives one row per map: its position
     # in the file (0-based) and the name the file gives it; null for a file that is one map
     ("map_index", _i64), ("map_name", _s),
+    # whom the map summarises: run, session, subject (one person's), group or unknown; a group map's
+    # count of inputs where its writer says; a higher-level contrast (FEAT .gfeat: group mean, ...)
+    ("level", _s), ("n_inputs", _i64), ("group_contrast", _s),
+    # the file's format: nifti1, nifti2, gifti, cifti2, or one read through nibabel (nifti1-pair, analyze,
+    # afni, mgh, minc1, minc2)
+    ("file_format", _s),
 ])
 DATASETS_SCHEMA = pa.schema([
     ("dataset", _s), ("name", _s), ("study", _s), ("root", _s), ("dataset_type", _s),

@@ -11,7 +11,7 @@ import numpy as np
 
 from ..errors import ConversionError
 
-__all__ = ["t_to_z", "p_to_z", "f_to_z", "convert"]
+__all__ = ["t_to_z", "p_to_z", "f_to_z", "logp_to_z", "convert"]
 
 
 def _t_logsf(t: np.ndarray, dof: float) -> np.ndarray:
@@ -109,6 +109,23 @@ def p_to_z(p, sided: str = "one") -> np.ndarray:
     return -special.ndtri(q)
 
 
+def logp_to_z(v, sided: str = "two") -> np.ndarray:
+    """z values for signed -log10 p values (FreeSurfer's ``sig``: -log10 p carrying the effect's sign).
+
+    p = 10^-abs(v); z = sign(v) Phi^-1(1 - p/2) for two-sided p (FreeSurfer's t tests, from memory),
+    sign(v) Phi^-1(1 - p) for one-sided p.
+
+    Examples
+    --------
+    >>> [round(float(z), 3) for z in logp_to_z([-np.log10(0.05), np.log10(0.01)], "two")]
+    [1.96, -2.576]
+    """
+    v = np.asarray(v, dtype=np.float64)
+    with np.errstate(over="ignore"):
+        p = np.power(10.0, -np.abs(v))
+    return np.copysign(p_to_z(p, sided), v)
+
+
 _DOF_SOURCES = ("no DegreesOfFreedom in its JSON sidecars, no t-test intent_p1 in its header, no design matrix "
                 "(*_design.tsv whose entities match the map's, any session and run) beside it or in a folder "
                 "above, no {T_[df]} in its header description, no DOF file named by a name rule")
@@ -144,5 +161,8 @@ def convert(values: np.ndarray, stat: str, to: str, *, dof: float | None = None,
                                   "read from the effect map beside it (same name with stat-effect, one volume per "
                                   "contrast row), which is not there")
         return f_to_z(values, dof1, dof).astype(np.float32), f"F->z(df1={dof1:g},df2={dof:g})"
-    raise ConversionError(f"{where}: a {stat!r} map cannot be converted to z (only t, F and p maps can); "
+    if stat == "logp":
+        return logp_to_z(values, sided).astype(np.float32), f"logp->z({sided}-sided)"
+    raise ConversionError(f"{where}: a {stat!r} map cannot be converted to z (only t, F, p and signed -log10 p "
+                          "maps can); "
                           "select t, F, z or p maps for a z feature set")

@@ -12,6 +12,7 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
+from ..statkinds import convertible_to_z
 from ..errors import FeatureError, GridError, ParameterError
 from ..formats import HeaderFacts, MeshFile, mesh_file
 from ._convert import convert
@@ -40,6 +41,9 @@ class Hemispheres(NamedTuple):
     conversion: str
     p_clipped: int
     missing: list[str]  # what made values missing
+
+# kinds converted to z on the source grid, in float64 (p close to 1 needs it)
+_CONVERTED = tuple(k for k in convertible_to_z() if k != "z")
 
 
 def zero_background(vol: np.ndarray, min_fraction: float = 0.01) -> np.ndarray | None:
@@ -100,10 +104,10 @@ def source_volume(item: SourceMap, settings: BuildSettings, ctx: BatchContext, n
         raise FeatureError("a volume map in a native space: this kind of feature set cannot take it through "
                            "its registration; build a volume, surface or grayordinate feature set for it, or give "
                            "the map in template space")
-    converting = settings.stat == "z" and item.stat in ("t", "F", "p")
+    converting = settings.stat == "z" and item.stat in _CONVERTED
     # p close to 1 (z < -5) is not representable in float32: convert from the file's precision
     vol, facts = read_volume(str(item.path), expect_sha256=item.sha256,
-                             dtype=np.float64 if converting else np.float32)
+                             dtype=np.float64 if converting else np.float32, map_index=item.map_index)
     missing_from = "none"
     if item.mask_path and item.mask_sha256:
         vol[~_model_mask(item.mask_path, item.mask_sha256, facts, ctx.model_masks)] = np.nan
@@ -182,7 +186,7 @@ def hemispheres(item: SourceMap, settings: BuildSettings) -> Hemispheres:
             missing.append(f"no-hemi-{hemi}")
             continue
         vals, model_mask = sources[hemi]
-        vals = vals.astype(np.float64 if settings.stat == "z" and item.stat in ("t", "F", "p") else np.float32)
+        vals = vals.astype(np.float64 if settings.stat == "z" and item.stat in _CONVERTED else np.float32)
         if model_mask is not None:
             mvals = read_surface_values(*model_mask)
             if mvals.shape != vals.shape:

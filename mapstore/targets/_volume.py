@@ -28,7 +28,8 @@ import numpy as np
 
 from ..errors import GridError, HeaderError, ParameterError, UnknownGrid
 from ._protocol import BatchContext, BuildSettings, Mask, Panel, RowValues, SourceMap, Target, mask_from_array
-from ..formats import REAL_SCALAR_DTYPES, HeaderFacts, grid_fingerprint, header_prefix, parse_header, read_header
+from ..formats import (REAL_SCALAR_DTYPES, HeaderFacts, digest_map, foreign_format, grid_fingerprint, header_prefix,
+                       parse_header, read_foreign_volume, read_header)
 
 __all__ = [
     "TargetGrid",
@@ -295,12 +296,16 @@ def gunzip(raw: bytes) -> bytes:
     return gzip_ng.decompress(raw)
 
 
-def read_volume(path: str, expect_sha256: str | None = None, dtype=np.float32) -> tuple[np.ndarray, HeaderFacts]:
+def read_volume(path: str, expect_sha256: str | None = None, dtype=np.float32, map_index: int | None = None
+                ) -> tuple[np.ndarray, HeaderFacts]:
     """Read a 3-D NIfTI volume as scaled float32 (or ``dtype``), optionally checking the file's SHA-256.
 
     The file is read once; its bytes are hashed, inflated if gzipped, and viewed
-    with the header's dtype, byte order and Fortran (x-fastest) layout.
+    with the header's dtype, byte order and Fortran (x-fastest) layout.  Other formats (ANALYZE and
+    NIfTI pairs, AFNI, MGH, MINC) are read through nibabel; ``map_index`` picks an AFNI sub-brick.
     """
+    if foreign_format(path):
+        return _read_foreign(path, expect_sha256, dtype, map_index)
     try:
         with open(path, "rb") as fh:
             raw = fh.read()
@@ -338,6 +343,23 @@ def read_volume(path: str, expect_sha256: str | None = None, dtype=np.float32) -
         with np.errstate(over="ignore", invalid="ignore"):  # a wild slope gives inf, as the header says
             vol = vol * vol.dtype.type(slope) + vol.dtype.type(inter if np.isfinite(inter) else 0)
     return vol, facts
+
+
+def _read_foreign(path: str, expect_sha256: str | None, dtype, map_index: int | None
+                  ) -> tuple[np.ndarray, HeaderFacts]:
+    try:
+        if expect_sha256 is not None:
+            got = digest_map(path).sha256
+            if got != expect_sha256:
+                raise GridError(f"{path}: content changed since it was indexed (sha256 {got[:12]}... != "
+                                f"{expect_sha256[:12]}...); re-run 'mapstore index'")
+        return read_foreign_volume(path, map_index, dtype)
+    except FileNotFoundError as exc:
+        raise GridError(f"{path}: file is gone since it was indexed; re-run 'mapstore index'") from exc
+    except HeaderError as exc:
+        raise GridError(str(exc)) from exc
+    except OSError as exc:
+        raise GridError(f"{path}: cannot read ({exc.strerror})") from exc
 
 
 def _target_to_source(src_affine: np.ndarray, grid: TargetGrid) -> np.ndarray:
