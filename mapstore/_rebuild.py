@@ -37,13 +37,32 @@ class RebuildReport:
         return head + ("" if self.ok else "\n" + "\n".join(f"  {d}" for d in self.differences[:20]))
 
 
+_MAX_GRID = 512 ** 3  # voxels of a declared grid: far above any real template (MNI152 1 mm: 7.2 million)
+
+
 def _grid_and_mask(man: dict[str, Any]) -> tuple[Any, str]:
     spec = man["feature_settings"]
-    grid = spec["grid"]
+    grid = spec.get("grid")
+    if not isinstance(grid, dict) or not isinstance(spec.get("mask"), dict):
+        raise ExportError("the manifest's feature_settings have no grid and mask objects; export again")
     name = grid.get("name")
-    grid_arg: Any = name if name in ("MNI152-1mm", "MNI152-2mm", "MNI152-3mm") else \
-        {"shape": grid["shape"], "affine": grid["affine"]}
-    mask = spec["mask"]["name"]
+    if name in ("MNI152-1mm", "MNI152-2mm", "MNI152-3mm"):
+        grid_arg: Any = name
+    else:
+        shape, affine = grid.get("shape"), grid.get("affine")
+        if not (isinstance(shape, list) and len(shape) == 3 and all(isinstance(v, int) and not isinstance(v, bool)
+                                                                    and v > 0 for v in shape)):
+            raise ExportError(f"the manifest's grid shape {shape!r} is not three positive whole numbers")
+        if shape[0] * shape[1] * shape[2] > _MAX_GRID:
+            raise ExportError(f"the manifest's grid {shape} has more than {_MAX_GRID:,} voxels; no template is that "
+                              "large")
+        flat = affine if isinstance(affine, list) and len(affine) == 16 else \
+            [v for row in affine for v in row] if isinstance(affine, list) and all(
+                isinstance(r, list) and len(r) == 4 for r in affine) and len(affine) == 4 else None
+        if flat is None or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in flat):
+            raise ExportError("the manifest's grid affine is not 16 numbers")
+        grid_arg = {"shape": shape, "affine": [flat[i:i + 4] for i in range(0, 16, 4)]}
+    mask = spec["mask"].get("name")
     if mask != "MNI152-brain":
         raise ParameterError(f"the export's feature set used mask {mask!r}: only the built-in brain mask can be "
                              "rebuilt from a manifest")
@@ -67,30 +86,90 @@ def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[st
     The name rules and origins the first index used are taken from the manifest, which keeps their
     content; ``rules`` and ``origins`` (files or preset names) replace them when given.
     """
-    mpath = Path(manifest)
-    if mpath.is_dir():
-        mpath = mpath / "manifest.json"
-    try:
-        man = json.loads(mpath.read_text())
-    except (OSError, ValueError) as exc:
-        raise ExportError(f"{mpath}: unreadable manifest ({exc})") from exc
+    from .select import read_manifest
+    from .store import check_output
+
+    mpath, man = read_manifest(manifest)
     if "feature_settings" not in man or "datasets" not in man:
         raise ExportError(f"{mpath}: the manifest predates rebuilds (no feature settings or dataset names); "
                           "export again with this mapstore")
-    store_path = Path(store) if store is not None else Path(tempfile.mkdtemp(prefix="mapstore-rebuild-")) / "store"
+    _check_rebuild_fields(man, mpath)
+    if store is not None:
+        given_store = Path(store).expanduser().absolute()
+        if given_store.is_dir() and any(given_store.iterdir()):
+            raise ExportError(f"{given_store}: --store must be a new or empty folder: a rebuild makes its own store "
+                              "and never changes one of yours")
+        store_path = check_output(given_store, sources=[str(s) for s in sources], what="--store")
+    else:
+        _remove_leftovers()
+        store_path = Path(tempfile.mkdtemp(prefix=f"mapstore-rebuild-{os.getpid()}-")) / "store"
     kept = man.get("index_inputs") or {}
     # the files the manifest keeps, written back for the stages that read files; in a folder of their own
     # (never beside the user's store), removed at the end
-    given = Path(tempfile.mkdtemp(prefix="mapstore-rebuild-inputs-"))
+    given = Path(tempfile.mkdtemp(prefix=f"mapstore-rebuild-inputs-{os.getpid()}-"))
     try:
         if rules is None and kept.get("rules"):
+            from .indexing import builtin_rules
+
+            presets = builtin_rules()
+            for r in kept["rules"]:
+                if "preset" in r and r["preset"] not in presets:
+                    raise ExportError(f"{mpath}: the manifest names a preset {r['preset']!r} this mapstore does not "
+                                      f"ship (presets: {', '.join(presets)}); give --rules yourself")
             rules = [r["preset"] if "preset" in r else _write_given(given, "rules", i, r)
                      for i, r in enumerate(kept["rules"])]
         if origins is None and kept.get("origins"):
             origins = _write_given(given, "origins", 0, kept["origins"])
-        return _rebuild(man, sources, out, store_path, given, rules, origins)
+        report = _rebuild(man, sources, out, store_path, given, rules, origins)
+        if store is None:
+            (store_path.parent / "DONE").write_text("")  # a finished rebuild's store: kept for the user
+        return report
     finally:
         shutil.rmtree(given, ignore_errors=True)
+
+
+def _remove_leftovers() -> None:
+    """Temporary folders of rebuilds whose process died (a finished rebuild's store holds DONE)."""
+    import re
+
+    base = Path(tempfile.gettempdir())
+    for p in base.glob("mapstore-rebuild-*"):
+        m = re.match(r"mapstore-rebuild-(?:inputs-)?(\d+)-", p.name)
+        if m is None or not p.is_dir() or (p / "DONE").exists():
+            continue
+        try:
+            os.kill(int(m.group(1)), 0)
+        except ProcessLookupError:
+            shutil.rmtree(p, ignore_errors=True)
+        except PermissionError:
+            pass
+
+
+def _check_rebuild_fields(man: dict[str, Any], mpath: Path) -> None:
+    """What rebuild reads beyond what verify does, typed; one line naming the field otherwise."""
+    def need(ok: bool, what: str) -> None:
+        if not ok:
+            raise ExportError(f"{mpath}: malformed manifest ({what}); export again with this mapstore")
+
+    fs = man["feature_settings"]
+    need(isinstance(fs, dict), "'feature_settings' must be an object")
+    for k in ("name", "method", "stat", "p_sided", "background"):
+        need(isinstance(fs.get(k), str), f"feature_settings.{k} must be text")
+    need(isinstance(fs.get("zero_as_missing"), bool), "feature_settings.zero_as_missing must be true or false")
+    need(isinstance(man["datasets"], dict) and all(isinstance(v, dict) and isinstance(v.get("name"), str)
+                                                   for v in man["datasets"].values()),
+         "'datasets' must map keys to objects with a name")
+    for i, s in enumerate(man["sources"]):
+        need(isinstance(s.get("dataset"), str), f"sources[{i}].dataset must be text")
+        need(s.get("map_index") is None or (isinstance(s["map_index"], int) and not isinstance(s["map_index"], bool)),
+             f"sources[{i}].map_index must be a whole number")
+    need(isinstance(man.get("query"), dict), "'query' must be an object")
+    for k in ("target", "group_by", "scheme"):
+        need(isinstance(man.get(k), str), f"'{k}' must be text")
+    kept = man.get("index_inputs") or {}
+    for i, r in enumerate(kept.get("rules") or []):
+        need(isinstance(r, dict) and (isinstance(r.get("preset"), str) or isinstance(r.get("content"), dict)),
+             f"index_inputs.rules[{i}] must name a preset or hold content")
 
 
 def _rebuild(man: dict[str, Any], sources, out, store_path: Path, given: Path, rules, origins) -> RebuildReport:
@@ -129,6 +208,12 @@ def _rebuild(man: dict[str, Any], sources, out, store_path: Path, given: Path, r
                     missing=q.get("missing", "common"), min_voxels=q.get("min_voxels"), one_stat=False,
                     per_subject="map", level="any")
     pos = {m: i for i, m in enumerate(sel.map_ids)}
+    lost = [src for src, m in zip(man["sources"], wanted) if m not in pos]
+    if lost:
+        where = ", ".join(f"{src['dataset']}:{src['relpath']}" for src in lost[:5])
+        raise ExportError(f"{len(lost)} map(s) of the manifest are not in the rebuilt selection (e.g. {where}): "
+                          "the vocabulary no longer labels them with the manifest's concepts, or they have no "
+                          "feature row; compare the vocabulary with the one the manifest kept")
     sel = sel.subset([pos[m] for m in wanted])  # the manifest's row order
     rep = st.export(out, sel, scheme=man["scheme"], seed=man["seed"], allow_leak=man.get("allow_leak", False),
                     allow_unseen=man.get("allow_unseen", False), fmt=man.get("layout", "npy"))

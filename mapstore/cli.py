@@ -225,12 +225,14 @@ def write_table(table, fmt: str, out: str | None) -> None:
 @click.option("--prune", is_flag=True, help="Drop datasets from earlier runs not under these ROOTs.")
 @click.option("--read-timeout", type=click.FloatRange(min=0, min_open=True), default=60.0, show_default=True,
               help="Seconds a file's read may make no progress before the file is skipped (read-timeout).")
+@click.option("--max-map-mb", type=click.IntRange(min=1), default=4096, show_default=True,
+              help="Refuse a map whose header declares more voxel data than this (MiB), before reading it.")
 @click.option("--dask", "dask_address", help="Run the crawl on this Dask scheduler (e.g. tcp://host:8786); "
               "workers must see the datasets and the store at the same paths.")
 @click.option("--transforms", multiple=True, type=click.Path(file_okay=False),
               help="Folder of registrations of native-space maps to a template (BIDS files named like _from-<space>_to-"
                    "<template>_mode-image_xfm.h5/.txt/.mat files); repeatable.")
-def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_address, transforms) -> None:
+def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_address, transforms, max_map_mb) -> None:
     """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them).
 
     \b
@@ -238,7 +240,8 @@ def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_addr
       mapstore index /data/studyA /data/consortium --store pooled --origins origins.yaml
     """
     report = run_index(roots, store, rules=list(rules) or None, origins=origins, jobs=jobs, prune=prune,
-                       scheduler=dask_address, read_timeout=read_timeout, transforms=list(transforms))
+                       scheduler=dask_address, read_timeout=read_timeout, transforms=list(transforms),
+                       max_map_mb=max_map_mb)
     click.echo(report.summary())
 
 
@@ -512,8 +515,9 @@ def similar_cmd(store, query, feature_set, k, absolute, stat, dof, fmt) -> None:
 @click.option("--use-variance", is_flag=True,
               help="Weight each subject's effect map by its own variance map (same name, stat-variance).")
 @LEVEL_OPTION
+@click.option("--overwrite", is_flag=True, help="Replace a folder an earlier pool or export wrote.")
 def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min_subjects, min_studies, fdr_q,
-             leave_one_out, use_variance, level) -> None:
+             leave_one_out, use_variance, level, overwrite) -> None:
     """Do the studies agree, and where? Study maps of the chosen maps, combined across studies.
 
     \b
@@ -529,7 +533,7 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
                     features=feature_set, target="concepts", missing="keep", level=list(level))
     res = pool(sel, method, min_subjects=min_subjects, min_studies=min_studies, leave_one_out=leave_one_out,
                use_variance=use_variance)
-    prov = write_pooled(res, out, fdr_q)
+    prov = write_pooled(res, out, fdr_q, overwrite=overwrite)
     tested = prov["fdr"]["n_tested"]
     thr = prov["fdr"]["z_threshold"]
     above = int(np.sum(res.z >= thr)) if np.isfinite(thr) else 0
@@ -707,7 +711,7 @@ def demo_cmd(folder, scale) -> None:
     rsel = st.select(concepts=["reading"], stat=["t", "z"], missing="keep")
     fewest = int(rsel.meta.groupby("study")["participant"].nunique().min())
     res = pool(rsel, "stouffer", min_subjects=max(2, min(3, fewest)))  # a small demo has 2 subjects a study
-    prov = write_pooled(res, pooled)
+    prov = write_pooled(res, pooled, overwrite=True)
     thr = prov["fdr"]["z_threshold"]
     click.echo(f"  {len(res.studies)} studies; FDR 0.05 over {prov['fdr']['n_tested']:,} voxels: "
                + (f"z >= {thr:.2f}" if np.isfinite(thr) else "no voxel survives"))

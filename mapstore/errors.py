@@ -10,6 +10,7 @@ from __future__ import annotations
 
 __all__ = [
     "MapstoreError",
+    "OutputPlaceError",
     "ParameterError",
     "DataFileError",
     "HeaderError",
@@ -157,3 +158,8 @@ class LeakageError(MapstoreError, ValueError):
 
 class ExportError(MapstoreError, OSError):
     """An export could not be written or verified."""
+
+
+class OutputPlaceError(ExportError):
+    """An output would land where mapstore never writes: a source dataset, a store, or a folder it did
+    not write (with overwrite)."""

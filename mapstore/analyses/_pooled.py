@@ -27,6 +27,7 @@ from typing import Any, Callable
 
 import numpy as np
 
+from ..store import check_output, output_folder
 from .._version import __version__
 from ..errors import ParameterError
 from ..select import Selection
@@ -456,13 +457,21 @@ def _combine_blocks(run: Callable[[slice], dict[str, np.ndarray]], ncol: int) ->
             for key, vals in parts.items()}
 
 
-def write_pooled(result: PooledMaps, out, fdr_q: float = 0.05) -> dict[str, Any]:
-    """Images of every map the method made, a table of peaks and the provenance, written to folder ``out``."""
-    import os
-    from pathlib import Path
+def write_pooled(result: PooledMaps, out, fdr_q: float = 0.05, *, overwrite: bool = False) -> dict[str, Any]:
+    """Images of every map the method made, a table of peaks and the provenance, written to folder ``out``.
 
-    folder = Path(os.fspath(out))
-    folder.mkdir(parents=True, exist_ok=True)
+    The folder appears whole or not at all (written beside its place, then renamed); it may not lie in
+    a source dataset or a store, and ``overwrite`` replaces only a folder mapstore wrote."""
+    sel = result.selection
+    roots = sel.store.sql("SELECT root FROM datasets")["root"].to_pylist() if sel is not None and \
+        sel.store is not None else []
+    stores = [str(sel.store.path)] if sel is not None and sel.store is not None else []
+    place = check_output(out, sources=roots, stores=stores, overwrite=overwrite)
+    with output_folder(place, "pooled") as folder:
+        return _write_pooled(result, folder, fdr_q)
+
+
+def _write_pooled(result: PooledMaps, folder, fdr_q: float) -> dict[str, Any]:
     written = []
     fs = result.selection.feature_set if result.selection is not None else None
     suffix = ".dscalar.nii" if fs is not None and fs.geometry == "grayordinates" else \

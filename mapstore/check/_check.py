@@ -19,6 +19,8 @@ from pathlib import Path
 import numpy as np
 import pyarrow as pa
 
+from ..store import check_output, write_file_atomic
+from ..errors import OutputPlaceError
 from .._version import __version__
 from ..analyses import combine
 from ..features import pair_correlation
@@ -56,6 +58,7 @@ class CheckReport:
     pictures: dict[str, bytes] = field(default_factory=dict)  # PNG bytes by stable id (``coverage``, ...)
     titles: dict[str, str] = field(default_factory=dict)  # what a person reads above a table or picture
     figures: dict[str, str] = field(default_factory=dict)  # the page's HTML of a picture (labels, colour bar)
+    sources: list[str] = field(default_factory=list, repr=False)  # dataset roots: no report is written there
     files: dict[str, str] = field(default_factory=dict)  # a finding's subject that is a map id -> its file
     _order: list[str] = field(default_factory=list, repr=False)  # pictures and figures, as added
 
@@ -123,7 +126,7 @@ class CheckReport:
         """One self-contained HTML page, read top to bottom: what was checked (version, time, command), the
         counts and the studies, then the findings (each with an anchor, files linked), then the tables,
         then the pictures (embedded)."""
-        path = Path(path)
+        path = check_output(path, sources=self.sources, stores=[self.store], folder=False, what="--html")
         esc = html.escape
         parts = ["<!doctype html><html><head><meta charset='utf-8'><title>mapstore check</title>",
                  "<style>body{font-family:sans-serif;margin:1.5em auto;max-width:1400px;padding:0 1em}"
@@ -161,7 +164,10 @@ class CheckReport:
                      "d.firstPictureTop=im.length?Math.round(im[0].getBoundingClientRect().top):-1;"
                      "d.pageWidth=document.documentElement.scrollWidth;});</script>")
         parts.append("</body></html>")
-        path.write_text("\n".join(parts), encoding="utf-8")
+        if not path.parent.is_dir():
+            raise OutputPlaceError(f"{path}: --html names a file in a folder that does not exist; create "
+                                   f"{path.parent} first or choose another place")
+        write_file_atomic(path, "\n".join(parts).encode("utf-8"))
         return path
 
 
@@ -228,7 +234,8 @@ def check_store(store, features: str | None = None, *, min_coverage: float = 0.8
     fs = None
     if store.feature_sets():
         fs = store.features(features)
-    report = CheckReport(str(store.path), fs.name if fs else None)
+    report = CheckReport(str(store.path), fs.name if fs else None,
+                         sources=store.sql("SELECT root FROM datasets")["root"].to_pylist())
     add = report.findings.append
     _study_table(store, fs, report)
     _check_problems(store, add)

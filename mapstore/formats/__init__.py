@@ -4,6 +4,7 @@ deadline, mesh files, user-written YAML/JSON files and the JSON Schemas they are
 from __future__ import annotations
 
 from ._html import html_table
+from ._regex import safe_regex
 from ._hashing import ReadDeadline, ReadTimeout, digest_file, sha256_file
 from ._foreign import (
     DATA_EXTENSIONS,
@@ -33,7 +34,7 @@ from ._header import (
 )
 from ._meshfiles import DATA_KINDS, MeshFile, mesh_file, read_mesh, read_vertex_data, write_mesh_description
 from ._schemafiles import schema_dir, schema_names, schema_text
-from ._userfiles import UserFile, check_user_doc, format_key_path, load_user_file
+from ._userfiles import MAX_DEPTH, UserFile, check_user_doc, format_key_path, load_user_file, nesting_depth
 
 
 __all__ = [
@@ -56,6 +57,9 @@ __all__ = [
     "header_prefix",
     "HeaderFacts",
     "load_user_file",
+    "safe_regex",
+    "MAX_DEPTH",
+    "nesting_depth",
     "mesh_file",
     "MeshFile",
     "NIFTI1_SIZE",

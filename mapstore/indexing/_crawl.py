@@ -59,7 +59,7 @@ from ._discover import (
 
 )
 from .._version import __version__
-from .._params import resolve_jobs
+from .._params import positive_int, resolve_jobs
 from .._runner import die_once_for_tests, run as run_units
 from ..errors import HeaderError, MapstoreError, NoDatasetsFound, ParameterError, StoreFull
 from ..labels import refresh_labels
@@ -101,6 +101,7 @@ from ..store import (
 
 __all__ = ["IndexReport", "index", "map_id_for", "probe_file"]
 
+MAX_MAP_MB = 4096  # the default bound on a map's declared voxel data (index(max_map_mb=...))
 _N1_SIZES = (NIFTI1_SIZE.to_bytes(4, "little"), NIFTI1_SIZE.to_bytes(4, "big"))
 
 _ENTITY_COLUMNS = ("sub", "ses", "task", "acq", "run", "rec", "space", "res", "den", "hemi", "desc", "contrast",
@@ -164,8 +165,8 @@ def map_id_for(dataset_key: str, relpath: str) -> str:
     return hashlib.sha256(f"{dataset_key}\n{relpath}".encode()).hexdigest()[:16]
 
 
-def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None, progress=None
-               ) -> tuple[dict[str, Any], str, int] | Problem:
+def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None, progress=None,
+               max_bytes: int = MAX_MAP_MB << 20) -> tuple[dict[str, Any], str, int] | Problem:
     """Hash one file and parse its header from the same read.
 
     Returns the header columns (shared between files with byte-identical headers
@@ -196,6 +197,8 @@ def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None, prog
                 cache[key] = cols
     except HeaderError as exc:
         return Problem(path, exc.code, exc.reason, exc.remedy, stage="header")
+    if cols["_data_nbytes"] > max_bytes:
+        return _too_large(path, cols["_data_nbytes"], max_bytes)
     if dig.head[:2] != b"\x1f\x8b" and dig.nbytes < cols["vox_offset"] + cols["_data_nbytes"]:
         return Problem(path, "truncated-data",
                        f"file has {dig.nbytes} bytes, header promises {cols['vox_offset'] + cols['_data_nbytes']}",
@@ -203,11 +206,21 @@ def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None, prog
     return cols, dig.sha256, dig.nbytes
 
 
-def probe_foreign(path: str, progress=None) -> tuple[dict[str, Any], str, int] | Problem:
+def _too_large(path: str, declared: int, limit: int) -> Problem:
+    return Problem(path, "map-too-large", f"the header declares {declared:,} bytes of voxel data, more than the "
+                   f"{limit >> 20:,} MiB a map may hold (a damaged header, or a compressed bomb); not read",
+                   "re-create the file; if it is a real map this large, index with a larger --max-map-mb",
+                   stage="header")
+
+
+def probe_foreign(path: str, progress=None, max_bytes: int = MAX_MAP_MB << 20
+                  ) -> tuple[dict[str, Any], str, int] | Problem:
     """Hash a map of another format (both files of a two-file one) and read its header through nibabel."""
     try:
-        dig = digest_map(path, progress=progress)
         info = read_foreign_header(path)
+        if info.facts.data_nbytes > max_bytes:
+            return _too_large(path, info.facts.data_nbytes, max_bytes)
+        dig = digest_map(path, progress=progress)
     except FileNotFoundError:
         return Problem(path, "missing-file", "file vanished during the crawl", "index again")
     except HeaderError as exc:
@@ -272,7 +285,7 @@ def _mesh_name(space: str | None, den: str | None, n_vertices: int, fmt: str) ->
 _SIDE = {"CortexLeft": "L", "CortexRight": "R", "CORTEX_LEFT": "L", "CORTEX_RIGHT": "R"}
 
 
-def probe_surface_file(path: str, entities: dict[str, str], progress=None
+def probe_surface_file(path: str, entities: dict[str, str], progress=None, max_bytes: int = MAX_MAP_MB << 20
                        ) -> tuple[dict[str, Any], str, int] | Problem:
     """Hash one GIFTI or CIFTI-2 file and read its header facts (no value decoded).
 
@@ -288,6 +301,9 @@ def probe_surface_file(path: str, entities: dict[str, str], progress=None
         return Problem(path, exc.code, exc.reason, exc.remedy, stage="header")
     except OSError as exc:
         return Problem(path, "unreadable", f"cannot read file ({exc.strerror})", "check permissions")
+    declared = facts.n_vertices * facts.n_volumes * max(1, (facts.bitpix or 32) // 8)
+    if declared > max_bytes:
+        return _too_large(path, declared, max_bytes)
     hemi, space, den = entities.get("hemi"), entities.get("space"), entities.get("den")
     warnings = list(facts.warnings)
     side = _SIDE.get(facts.structure or "")
@@ -372,6 +388,7 @@ class _Unit:
     prev_files: list[str] = field(default_factory=list)  # the dataset's previous parts, for reusing headers
     read_timeout: float | None = None
     transforms: tuple[str, ...] = ()  # folders of registrations given by the user
+    max_map_bytes: int = 0  # a map whose header declares more voxel bytes is refused (0: the default)
 
 
 @dataclass
@@ -530,12 +547,13 @@ class _RowBuilder:
                     -1 - old)
         try:
             with self.deadline.armed():
+                limit = self.unit.max_map_bytes or MAX_MAP_MB << 20
                 if surface_format(m.path):
-                    res = probe_surface_file(m.path, m.entities, self.deadline.progress)
+                    res = probe_surface_file(m.path, m.entities, self.deadline.progress, limit)
                 elif foreign_format(m.path):
-                    res = probe_foreign(m.path, self.deadline.progress)
+                    res = probe_foreign(m.path, self.deadline.progress, limit)
                 else:
-                    res = probe_file(m.path, self.cache, self.deadline.progress)
+                    res = probe_file(m.path, self.cache, self.deadline.progress, limit)
         except ReadTimeout:
             res = Problem(m.path, "read-timeout", f"reading the file made no progress for "
                           f"{self.unit.read_timeout:g} s (a stalled network or FUSE mount, or a file fetched on "
@@ -979,7 +997,7 @@ _TOPS_PER_UNIT = 500
 
 def _units(ds: DatasetInfo, parser: EntityParser, by_sub: dict[str, dict[str, Any]], rules: NameRules,
            over: MetadataOverrides, prev: "_Previous", store: Path, split: int, read_timeout: float | None,
-           transforms: tuple[str, ...] = ()) -> list[_Unit]:
+           transforms: tuple[str, ...] = (), max_map_bytes: int = 0) -> list[_Unit]:
     """The units of one dataset: contiguous runs of its top folders (unit 0 also takes root maps).
 
     Their boundaries depend on the folders alone (and ``split``, raised when there are fewer
@@ -997,7 +1015,7 @@ def _units(ds: DatasetInfo, parser: EntityParser, by_sub: dict[str, dict[str, An
         key = f"{ds.key}|*" if top is None else \
             f"{ds.key}|{hashlib.sha256(chr(0).join(top).encode()).hexdigest()[:16]}"
         units.append(_Unit(ds, parser, top, i == 0, by_sub, rules, over, key, inputs, str(store),
-                           prev.by_unit.get(key), prev_files, read_timeout, transforms))
+                           prev.by_unit.get(key), prev_files, read_timeout, transforms, max_map_bytes))
     return units
 
 
@@ -1053,6 +1071,7 @@ def index(
     scheduler: Any = None,
     transforms: Iterable[str | os.PathLike[str]] = (),
     overrides: str | os.PathLike[str] | None = None,
+    max_map_mb: int = MAX_MAP_MB,
 ) -> IndexReport:
     """Crawl derivative datasets and publish a new catalog snapshot in ``store``.
 
@@ -1074,6 +1093,10 @@ def index(
         Drop datasets indexed by earlier runs that are not under these roots.
     progress : bool, optional
         Show a progress bar (default: when standard error is a terminal).
+    max_map_mb : int, default=4096
+        A map whose header declares more voxel data than this many MiB is refused, from the header,
+        before any of it is inflated (a damaged header, or a compressed bomb); real maps are far smaller
+        (a 1 mm MNI152 float64 map is 58 MB).
     read_timeout : float or None, default=60
         Seconds a file's read may make no progress before the file is skipped as a
         ``read-timeout`` problem (a stalled mount must not stall the crawl); each block read
@@ -1099,6 +1122,7 @@ def index(
     if not roots:
         raise ParameterError("index needs at least one ROOT folder")
     jobs = resolve_jobs(jobs)
+    positive_int("max_map_mb", max_map_mb)
     if read_timeout is not None and not (isinstance(read_timeout, (int, float)) and read_timeout > 0):
         raise ParameterError(f"read_timeout must be a positive number of seconds or None, got {read_timeout!r}")
     if overrides is not None:  # the earlier name of ``origins``
@@ -1121,7 +1145,7 @@ def index(
         head = read_head(store_path)
         prev = _Previous.load(store_path, head)
         plan = _plan(datasets, prev, roots, prune, name_rules, meta_over, store_path, jobs, scheduler, read_timeout,  # type: ignore[arg-type]
-                     xfm_roots)
+                     xfm_roots, max_map_mb << 20)
         problems += plan.problems
         try:
             results = list(run_units(_run_unit, plan.units, jobs=jobs, scheduler=scheduler, progress=progress,
@@ -1166,7 +1190,7 @@ class _Plan:
 
 def _plan(datasets: list[DatasetInfo], prev: _Previous, roots: list[Path], prune: bool, rules: NameRules,
           over: MetadataOverrides, store: Path, jobs: int, scheduler: Any, read_timeout: float | None,
-          transforms: tuple[str, ...] = ()) -> _Plan:
+          transforms: tuple[str, ...] = (), max_map_bytes: int = 0) -> _Plan:
     """Participants of every dataset, and the units of work (each knowing its previous part)."""
     found = {d.key for d in datasets}
     kept = [] if prune else [d for d in prev.datasets if d["dataset"] not in found and not _under(d["root"], roots)]
@@ -1188,7 +1212,7 @@ def _plan(datasets: list[DatasetInfo], prev: _Previous, roots: list[Path], prune
                    **{k: v for k, v in r.items() if k != "participant_id"}}
             by_sub[sub] = rec
             participants.append(rec)
-        units += _units(ds, parser, by_sub, rules, over, prev, store, split, read_timeout, transforms)
+        units += _units(ds, parser, by_sub, rules, over, prev, store, split, read_timeout, transforms, max_map_bytes)
     return _Plan(datasets, units, kept, participants, files, problems)
 
 

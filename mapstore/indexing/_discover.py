@@ -23,10 +23,10 @@ from pathlib import Path
 from typing import Any, Iterable
 
 from ..errors import RulesError
-from ..formats import DATA_EXTENSIONS, FOREIGN_EXTENSIONS, data_file
+from ..formats import DATA_EXTENSIONS, FOREIGN_EXTENSIONS, MAX_DEPTH, data_file, nesting_depth, safe_regex
 from ..statkinds import COMPANION_WORDS, STAT_KINDS, kind_for_word, known_stats, stat_kind
 from ..formats import check_user_doc, load_user_file
-from ..store import Problem
+from ..store import Problem, inside, lies_within
 from ._layouts import h5_field_strings, h5_struct, is_matlab_hdf5, subject_from_path
 
 __all__ = [
@@ -80,6 +80,10 @@ EXTRA_ENTITIES = {
     "stat": r"[_/\\]+stat-(" + LABEL + ")",
 }
 SKIP_DIRS = {"derivatives", "sourcedata", "code", "stimuli", "log", "logs"}
+# what a dataset's own files may hold before they are reported and skipped (far above real ones)
+SIDECAR_LIMIT = 16 << 20  # bytes of a JSON sidecar
+PARTICIPANTS_LIMIT = 64 << 20  # bytes of participants.tsv
+PARTICIPANTS_COLUMNS = 2_000
 
 
 @dataclass
@@ -283,10 +287,7 @@ class NameRules:
         for i, rule in enumerate(f.doc["rules"]):
             where = f"{path}: rules[{i}]"
             if "regex" in rule:
-                try:
-                    rx = re.compile(rule["regex"])
-                except re.error as exc:
-                    raise RulesError(f"{where}: invalid regex ({exc})") from exc
+                rx = safe_regex(rule["regex"], where, RulesError)
             else:
                 rx = _template_regex(rule["template"], where)
             fixed = rule.get("entities", {})
@@ -298,6 +299,14 @@ class NameRules:
             names_spec = rule.get("contrast_names")
             if names_spec is not None and "line" in names_spec and "(?P<name>" not in names_spec["line"]:
                 raise RulesError(f"{where}: contrast_names.line needs a group (?P<name>...)")
+            if names_spec is not None and "line" in names_spec:
+                safe_regex(names_spec["line"].replace("{contrast}", "1"), f"{where}: contrast_names.line", RulesError,
+                           re.M)
+            for key in ("mask", "dof_file"):
+                if rule.get(key) is not None:
+                    _check_template(rule[key], f"{where}: {key}")
+            if names_spec is not None:
+                _check_template(names_spec["file"], f"{where}: contrast_names.file")
             datasets = rule.get("datasets", ["*"])
             if isinstance(datasets, str):
                 datasets = [datasets]
@@ -335,11 +344,7 @@ class NameRules:
         problems: list[Problem] = []
 
         def fill(template: str) -> str:
-            try:
-                return os.path.normpath(template.format(**groups)).replace(os.sep, "/")
-            except (KeyError, IndexError, ValueError) as exc:
-                raise RulesError(f"{rule['where']}: template {template!r} names a group the regex "
-                                 f"does not have ({exc})") from exc
+            return fill_template(template, groups, rule["where"])
 
         for key in ("mask", "dof_file"):
             if rule[key]:
@@ -424,6 +429,47 @@ def _read_names_h5(path: str, spec: dict[str, Any]) -> tuple[Any, str]:
         return None, f"cannot read {path} as MATLAB v7.3 ({exc})"
 
 
+def _check_template(template: str, where: str) -> None:
+    """A companion's path template: relative, no ``..`` step, ``{group}`` fields only (checked at load)."""
+    import string
+
+    if template.startswith(("/", "\\", "~")) or ".." in re.split(r"[/\\]", template):
+        raise RulesError(f"{where}: {template!r} must be a path inside the dataset (relative, no '..')")
+    try:
+        fields = list(string.Formatter().parse(template))
+    except ValueError as exc:
+        raise RulesError(f"{where}: {template!r} is not a path template ({exc})") from exc
+    for _, name, spec, conv in fields:
+        if name is not None and (not name.isidentifier() or spec or conv):
+            raise RulesError(f"{where}: {template!r} may hold only {{group}} fields (a group name of the regex), "
+                             f"not {{{name}{'!' + conv if conv else ''}{':' + spec if spec else ''}}}")
+
+
+def fill_template(template: str, groups: dict[str, str], where: str) -> str:
+    """A path template filled with a match's groups: named fields only (no attribute or index access, no
+    format spec), the result a relative path that stays inside the dataset.
+
+    >>> fill_template("{_model}/design.con", {"_model": "sub-01/a.feat"}, "rule")
+    'sub-01/a.feat/design.con'
+    """
+    import string
+
+    out = []
+    for text, name, spec, conv in string.Formatter().parse(template):
+        out.append(text)
+        if name is None:
+            continue
+        if not name.isidentifier() or spec or conv:
+            raise RulesError(f"{where}: template {template!r} may hold only {{group}} fields")
+        if name not in groups:
+            raise RulesError(f"{where}: template {template!r} names a group the regex does not have ({name!r})")
+        out.append(groups[name])
+    rel = os.path.normpath("".join(out)).replace(os.sep, "/")
+    if os.path.isabs(rel) or rel == ".." or rel.startswith("../"):
+        raise RulesError(f"{where}: template {template!r} leads outside the dataset ({rel})")
+    return rel
+
+
 def _template_regex(template: str, where: str) -> re.Pattern[str]:
     parts = re.split(r"(\{[a-zA-Z]+\}|\*\*|\*)", template)
     out = []
@@ -499,10 +545,17 @@ def _read_description(root: Path) -> tuple[dict[str, Any] | None, Problem | None
         return {}, Problem(str(f), "not-a-regular-file", "dataset_description.json is not a regular file; it was "
                            "not opened", "replace it with the JSON file itself", "warning")
     try:
+        if f.stat().st_size > SIDECAR_LIMIT:
+            raise ValueError(f"larger than {SIDECAR_LIMIT >> 20} MiB; not read")
         doc = json.loads(f.read_text(encoding="utf-8"))
         if not isinstance(doc, dict):
             raise ValueError("top level is not an object")
+        if nesting_depth(doc) > MAX_DEPTH:
+            raise ValueError(f"nested deeper than {MAX_DEPTH} levels")
         return doc, None
+    except RecursionError:
+        return {}, Problem(str(f), "bad-dataset-description", f"nested deeper than {MAX_DEPTH} levels",
+                           "write dataset_description.json as a flat JSON object", "warning")
     except (ValueError, OSError) as exc:
         return {}, Problem(str(f), "bad-dataset-description", f"cannot parse JSON ({exc})",
                            "fix the JSON syntax of dataset_description.json", "warning")
@@ -790,35 +843,6 @@ def _plain_dataset(path: Path, root: Path) -> DatasetInfo:
     name = path.name or "root"
     return DatasetInfo(root=str(path), key="/".join(_slug(p) for p in parts), name=name, dataset_type="folder",
                        generated_by=[], bids_version=None, raw_root=None, raw_name=None, description={})
-
-
-def inside(path: str | os.PathLike[str], folder: str | os.PathLike[str]) -> bool:
-    """True when ``path`` is ``folder`` or lies under it (both absolute; no file is touched)."""
-    p, f = Path(path), Path(folder)
-    return p == f or f in p.parents
-
-
-def lies_within(path: str | os.PathLike[str], folder: str | os.PathLike[str]) -> bool:
-    """True when writing ``path`` would write into ``folder``, however either is spelled: ``..`` steps
-    and symlinks are resolved as the kernel would, and each existing ancestor of the path is compared
-    with the folder by device and inode (a bind mount or another alias of the same folder).
-    """
-    real = Path(os.path.realpath(path))
-    real_folder = Path(os.path.realpath(folder))
-    if inside(real, real_folder) or inside(os.path.abspath(path), os.path.abspath(folder)):
-        return True
-    try:
-        st = os.stat(folder)
-    except OSError:
-        return False
-    for a in (real, *real.parents):
-        try:
-            sa = os.stat(a)
-        except OSError:
-            continue
-        if (sa.st_dev, sa.st_ino) == (st.st_dev, st.st_ino):
-            return True
-    return False
 
 
 def top_folders(ds: DatasetInfo) -> list[str]:
@@ -1268,11 +1292,25 @@ class SidecarResolver:
         if relpath not in self._content:
             path = os.path.join(self.ds.root, relpath)
             try:
+                if os.path.getsize(path) > SIDECAR_LIMIT:
+                    self._content[relpath] = None
+                    self.problems.append(Problem(path, "sidecar-too-large", f"{os.path.getsize(path):,} bytes, "
+                                                 f"more than the {SIDECAR_LIMIT >> 20} MiB a sidecar may hold; "
+                                                 "it was not read", "keep metadata in sidecars (large data belongs "
+                                                 "in files of its own)", "warning", self.ds.key))
+                    return None
                 with open(path, "rb") as fh:
-                    doc = json.loads(fh.read())
+                    doc = json.loads(fh.read(SIDECAR_LIMIT + 1))
                 if not isinstance(doc, dict):
                     raise ValueError("top level is not an object")
+                if nesting_depth(doc) > MAX_DEPTH:
+                    raise ValueError(f"nested deeper than {MAX_DEPTH} levels")
                 self._content[relpath] = doc
+            except RecursionError:
+                self._content[relpath] = None
+                self.problems.append(Problem(path, "bad-sidecar", f"nested deeper than {MAX_DEPTH} levels; its "
+                                             "metadata was ignored", "write a flat JSON object", "warning",
+                                             self.ds.key))
             except (ValueError, OSError) as exc:
                 self._content[relpath] = None
                 self.problems.append(Problem(path, "bad-sidecar", f"cannot parse JSON sidecar ({exc})",
@@ -1462,8 +1500,19 @@ def read_participants(ds: DatasetInfo) -> tuple[list[dict[str, Any]], str | None
             return [], str(f), [Problem(str(f), "not-a-regular-file", "participants.tsv is not a regular file; it "
                                         "was not opened", "replace it with the TSV file itself", "warning", ds.key)]
         try:
+            size = f.stat().st_size
+            if size > PARTICIPANTS_LIMIT:
+                return [], str(f), [Problem(str(f), "participants-too-large", f"{size:,} bytes, more than the "
+                                            f"{PARTICIPANTS_LIMIT >> 20} MiB a participants table may hold; it was "
+                                            "not read", "keep one row per participant and the columns you use",
+                                            "warning", ds.key)]
             with open(f, newline="", encoding="utf-8") as fh:
                 reader = csv.DictReader(fh, delimiter="\t")
+                if reader.fieldnames and len(reader.fieldnames) > PARTICIPANTS_COLUMNS:
+                    return [], str(f), [Problem(str(f), "participants-too-wide", f"{len(reader.fieldnames):,} "
+                                                f"columns, more than the {PARTICIPANTS_COLUMNS:,} a participants "
+                                                "table may have; it was not read", "keep the columns you use "
+                                                "(phenotypes belong in phenotype/ files)", "warning", ds.key)]
                 if not reader.fieldnames or "participant_id" not in reader.fieldnames:
                     return [], str(f), [Problem(str(f), "bad-participants",
                                                 "participants.tsv has no participant_id column",

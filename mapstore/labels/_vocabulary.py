@@ -32,7 +32,7 @@ from typing import Any
 
 import pyarrow as pa
 
-from ..formats import check_user_doc, format_key_path, load_user_file
+from ..formats import check_user_doc, format_key_path, load_user_file, safe_regex
 from ..errors import VocabularyError
 from ..store import LABELS_SCHEMA, LabelsEntry, arrow_to_json_schema
 from ..store import (
@@ -134,20 +134,25 @@ def _check_concepts(concepts: dict[str, Any], fail) -> dict[str, dict[str, Any]]
         for i, b in enumerate(spec["broader"]):
             if b not in clean:
                 fail(("concepts", name, "broader", i), f"unknown concept {b!r}; define it under 'concepts'")
-    state: dict[str, int] = {}
-
-    def visit(c: str, trail: list[str]) -> None:
-        if state.get(c) == 1:
-            fail(("concepts", c, "broader"), "broader concepts form a cycle: " + " -> ".join(trail + [c]))
-        if state.get(c) == 2:
-            return
-        state[c] = 1
-        for b in clean[c]["broader"]:
-            visit(b, trail + [c])
-        state[c] = 2
-
-    for c in clean:
-        visit(c, [])
+    state: dict[str, int] = {}  # 1: on the current path, 2: done
+    for start in clean:  # depth first without recursion: a chain of thousands of broader links is fine
+        if state.get(start):
+            continue
+        path, stack = [start], [iter(clean[start]["broader"])]
+        state[start] = 1
+        while stack:
+            nxt = next(stack[-1], None)
+            if nxt is None:
+                state[path.pop()] = 2
+                stack.pop()
+            elif state.get(nxt) == 1:
+                trail = path[path.index(nxt):] + [nxt]
+                fail(("concepts", nxt, "broader"), "broader concepts form a cycle: " + " -> ".join(trail[:20])
+                     + (" -> ..." if len(trail) > 20 else ""))
+            elif not state.get(nxt):
+                state[nxt] = 1
+                path.append(nxt)
+                stack.append(iter(clean[nxt]["broader"]))
     return clean
 
 
@@ -183,9 +188,11 @@ def _pattern(v: Any, fail) -> _Pattern:
         if set(v) != {"regex"} or not isinstance(v["regex"], str):
             fail("a pattern object must be {regex: '...'}")
         try:
-            return _Pattern(v["regex"], "regex", re.compile(v["regex"]))
-        except re.error as exc:
-            fail(f"invalid regular expression {v['regex']!r} ({exc})")
+            return _Pattern(v["regex"], "regex", safe_regex(v["regex"], "pattern", ValueError))
+        except ValueError as exc:
+            why = str(exc).split(": ", 1)[1]
+            fail(f"invalid regular expression {v['regex']!r} ({why[len('invalid regex ('):-1]})"
+                 if why.startswith("invalid regex (") else why)
     if not isinstance(v, (str, int)):
         fail(f"expected a name, a glob or {{regex: ...}}, got {type(v).__name__}")
     s = str(v)

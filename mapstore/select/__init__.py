@@ -2,7 +2,7 @@
 
 from __future__ import annotations
 
-from ._export import ExportReport, VerifyReport, export_selection, json_schemas, verify
+from ._export import ExportReport, VerifyReport, export_selection, json_schemas, read_manifest, verify
 from ._query import SCHEMES, Selection, align_columns, check_classes, check_folds, check_leakage, select
 
 
@@ -13,6 +13,7 @@ __all__ = [
     "check_leakage",
     "SCHEMES",
     "json_schemas",
+    "read_manifest",
     "export_selection",
     "ExportReport",
     "select",

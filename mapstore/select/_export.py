@@ -25,9 +25,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
-import shutil
 import time
-import uuid
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -40,11 +38,10 @@ import pyarrow.parquet as pq
 from .._version import __version__
 from ..features import NEAR_COPY_R
 from ..errors import ExportError, ParameterError
-from ..indexing import lies_within
-from ..formats import digest_map, foreign_format, sha256_file
+from ..formats import digest_map, foreign_format, nesting_depth, sha256_file
 from ..features import FeatureSet
 from ._query import Selection, fold_vector, parse_scheme
-from ..store import Catalog, checkpoint, replace_dir
+from ..store import OUTPUT_MARKER, Catalog, check_output, checkpoint, output_folder
 
 __all__ = ["ExportReport", "VerifyReport", "export_selection", "verify", "json_schemas"]
 
@@ -105,11 +102,7 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
     out = _check_out(sel, out, overwrite)
     personal = _participant_columns(sel, participant_columns)
     splits, leaks, unseen = _splits(sel, scheme, seed, allow_leak, near_copy_r, allow_unseen)
-    out.parent.mkdir(parents=True, exist_ok=True)
-    tmp = out.parent / f".{out.name}.{uuid.uuid4().hex[:8]}.tmp"
-    tmp.mkdir()
-    checkpoint()
-    try:
+    with output_folder(out, "export") as tmp:
         fs = sel.feature_set
         meta_t = _meta_table(sel, fold_vector(splits, len(sel)), kind, personal)
         rows = _Rows(sel)
@@ -132,26 +125,16 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         manifest["personal_data"] = {"columns": personal, "note": PERSONAL_NOTE if personal else None}
         # the data files are checked row by row against row_sha256 instead of hashed whole
         manifest["files"] = {p.name: sha256_file(str(p)) for p in sorted(tmp.iterdir())
-                             if p.name not in DATA_FILES}
+                             if p.name not in DATA_FILES and p.name != OUTPUT_MARKER}
         (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1, sort_keys=True, default=str))
         checkpoint()
-        replace_dir(tmp, out)
-    except BaseException:
-        shutil.rmtree(tmp, ignore_errors=True)
-        raise
     return ExportReport(str(out), len(sel), len(rows.voxels), scheme, len(splits), dict(sel.dropped),
                         time.perf_counter() - t0, leaks, sel.missing_report, fs.unit)
 
 
 def _check_out(sel: Selection, out: str | os.PathLike[str], overwrite: bool) -> Path:
-    out = Path(out).expanduser().absolute()
-    for root in sel.store.sql("SELECT root FROM datasets")["root"].to_pylist():
-        if lies_within(out, root):
-            raise ExportError(f"{out}: lies inside the source dataset {root}; mapstore never writes to source "
-                              "datasets, choose an --out folder elsewhere")
-    if out.exists() and any(out.iterdir()) and not overwrite:
-        raise ExportError(f"{out}: folder exists and is not empty; choose a new --out or pass --overwrite")
-    return out
+    roots = sel.store.sql("SELECT root FROM datasets")["root"].to_pylist()
+    return check_output(out, sources=roots, stores=[str(sel.store.path)], overwrite=overwrite)
 
 
 def _splits(sel: Selection, scheme: str, seed: int, allow_leak: bool, near_copy_r: float | None,
@@ -456,28 +439,20 @@ class VerifyReport:
 
 def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
     """Re-check an export: source file hashes, the store's rows, and the exported files."""
-    mpath = Path(manifest_path)
-    if mpath.is_dir():
-        mpath = mpath / "manifest.json"
-    try:
-        man = json.loads(mpath.read_text())
-    except FileNotFoundError as exc:
-        raise ExportError(f"{mpath}: manifest not found; give the export folder or its manifest.json") from exc
-    except (OSError, ValueError) as exc:
-        raise ExportError(f"{mpath}: unreadable manifest ({exc})") from exc
-    if not isinstance(man, dict) or man.get("format") != MANIFEST_FORMAT:
-        raise ExportError(f"{mpath}: not a mapstore export manifest")
-    _check_manifest(man, mpath)
+    mpath, man = read_manifest(manifest_path)
     changes: list[str] = []
     folder = mpath.parent
     for name, sha in man.get("files", {}).items():
         p = folder / name
         if not p.exists():
             changes.append(f"export file missing: {name}")
+        elif not _inside_folder(p, folder):
+            changes.append(f"export file leads out of the export folder (a symbolic link): {name}")
         elif not _regular(p):
             changes.append(f"export file is not a regular file (a FIFO, device or folder): {name}")
         elif sha256_file(str(p)) != sha:
             changes.append(f"export file changed: {name}")
+    hashed: dict[str, str] = {}  # a file that several entries name is hashed once
     for s in man["sources"]:
         p = Path(s["path"])
         if not p.exists():
@@ -486,7 +461,10 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
         if not _regular(p):  # a FIFO would hang the hash, a device never end it
             changes.append(f"source is not a regular file (a FIFO, device or folder): {p}")
             continue
-        got = digest_map(str(p)).sha256 if foreign_format(str(p)) else sha256_file(str(p))
+        key = os.path.realpath(p)
+        if key not in hashed:
+            hashed[key] = digest_map(str(p)).sha256 if foreign_format(str(p)) else sha256_file(str(p))
+        got = hashed[key]
         if got != s["sha256"]:
             changes.append(f"source changed: {p} (sha256 {s['sha256'][:12]}... -> {got[:12]}...)")
     n_rows = 0
@@ -521,6 +499,49 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
     return VerifyReport(str(mpath), len(man["sources"]), n_rows, changes)
 
 
+_BLOCK_LIMIT = 1 << 30  # bytes of one block of exported rows read at once
+MANIFEST_LIMIT = 256 << 20  # bytes: a manifest of a million maps is about 600 MB... of a hundred thousand, 60
+MANIFEST_DEPTH = 16
+
+
+def read_manifest(manifest_path: str | os.PathLike[str]) -> tuple[Path, dict[str, Any]]:
+    """A manifest as untrusted input: bounded in size and depth, its types checked before anything reads
+    it; returns its path and content, or ExportError in one line."""
+    mpath = Path(manifest_path)
+    if mpath.is_dir():
+        mpath = mpath / "manifest.json"
+    try:
+        if not mpath.exists():
+            raise FileNotFoundError(mpath)
+        if not _regular(mpath):
+            raise ExportError(f"{mpath}: not a regular file; give the export folder or its manifest.json")
+        size = mpath.stat().st_size
+        if size > MANIFEST_LIMIT:
+            raise ExportError(f"{mpath}: {size:,} bytes, more than the {MANIFEST_LIMIT >> 20} MiB a manifest may hold")
+        man = json.loads(mpath.read_text(encoding="utf-8"))
+    except FileNotFoundError as exc:
+        if mpath.parent.name.endswith(".partial"):
+            raise ExportError(f"{mpath.parent}: the unfinished folder of an interrupted run, not a result; run it "
+                              "again (the next run removes it)") from exc
+        raise ExportError(f"{mpath}: manifest not found; give the export folder or its manifest.json") from exc
+    except RecursionError as exc:
+        raise ExportError(f"{mpath}: malformed manifest (nested deeper than {MANIFEST_DEPTH} levels)") from exc
+    except (OSError, ValueError) as exc:
+        raise ExportError(f"{mpath}: unreadable manifest ({exc})") from exc
+    if not isinstance(man, dict) or man.get("format") != MANIFEST_FORMAT:
+        raise ExportError(f"{mpath}: not a mapstore export manifest")
+    if nesting_depth(man, MANIFEST_DEPTH) > MANIFEST_DEPTH:
+        raise ExportError(f"{mpath}: malformed manifest (nested deeper than {MANIFEST_DEPTH} levels)")
+    _check_manifest(man, mpath)
+    return mpath, man
+
+
+def _inside_folder(p: Path, folder: Path) -> bool:
+    """The path, links followed, stays in the folder (an export file that is a link out is not the export's)."""
+    real, base = os.path.realpath(p), os.path.realpath(folder)
+    return real.startswith(base + os.sep)
+
+
 def _regular(p: Path) -> bool:
     import stat
 
@@ -550,6 +571,18 @@ def _check_manifest(man: dict[str, Any], mpath: Path) -> None:
     if not isinstance(man.get("store"), str) or not isinstance(man.get("feature_set"), dict) or \
             not isinstance(man["feature_set"].get("name"), str):
         raise bad("'store' and 'feature_set.name' must be text")
+    shape = man.get("shape")
+    if not (isinstance(shape, list) and len(shape) == 2 and all(isinstance(v, int) and not isinstance(v, bool)
+                                                                  and v >= 0 for v in shape)):
+        raise bad("'shape' must be two whole numbers")
+    for key, kind in (("layout", str), ("scheme", str), ("target", str), ("group_by", str)):
+        if man.get(key) is not None and not isinstance(man[key], kind):
+            raise bad(f"'{key}' must be text")
+    for key in ("query", "datasets", "feature_settings", "index_inputs", "vocabulary", "vocabulary_content"):
+        if man.get(key) is not None and not isinstance(man[key], dict):
+            raise bad(f"'{key}' must be an object")
+    if man.get("seed") is not None and (not isinstance(man["seed"], int) or isinstance(man["seed"], bool)):
+        raise bad("'seed' must be a whole number")
 
 
 def _x_hash(source: dict[str, Any]) -> str:
@@ -565,8 +598,16 @@ def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
         f = folder / "table.parquet"
         if not f.exists():
             return ["export file missing: table.parquet"]
+        if not _inside_folder(f, folder) or not _regular(f):
+            return ["export file leads out of the export folder or is not a regular file: table.parquet"]
         i = 0
-        pf = pq.ParquetFile(f)
+        try:
+            pf = pq.ParquetFile(f)
+            groups = [pf.metadata.row_group(k).total_byte_size for k in range(pf.metadata.num_row_groups)]
+        except (OSError, pa.ArrowException) as exc:
+            return [f"export file unreadable: table.parquet ({exc})"]
+        if groups and max(groups) > _BLOCK_LIMIT * 16:
+            return [f"export file changed: table.parquet declares a row group of {max(groups):,} bytes"]
         column = "X" if "X" in pf.schema_arrow.names else "x"  # earlier exports named it x
         for batch in pf.iter_batches(batch_size=BLOCK_ROWS, columns=[column]):
             values = batch.column(0).flatten().to_numpy(zero_copy_only=False).reshape(batch.num_rows, -1)
@@ -581,6 +622,9 @@ def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
     f = folder / name
     if not f.exists():
         return [f"export file missing: {name}"]
+    if 4 * BLOCK_ROWS * max(1, int(man["shape"][1])) > _BLOCK_LIMIT:
+        return [f"export file changed: the manifest declares rows of {man['shape'][1]:,} values, more than an "
+                "export can hold"]
     try:
         if name == "X.zarr":
             import zarr
@@ -592,6 +636,13 @@ def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
         return [f"export file unreadable: {name} ({exc})"]
     if tuple(X.shape) != tuple(man["shape"]) or X.dtype != np.float32:
         return [f"export file changed: {name} has shape {X.shape} {X.dtype}, the manifest {man['shape']} float32"]
+    if not _inside_folder(f, folder) or (name == "X.zarr" and any(
+            not _inside_folder(Path(d) / n, folder) for d, _, ns in os.walk(f) for n in ns)):
+        return [f"export file leads out of the export folder (a symbolic link): {name}"]
+    stored = sum(os.path.getsize(Path(d) / n) for d, _, ns in os.walk(f) for n in ns) if f.is_dir() else \
+        os.path.getsize(f)
+    if name == "X.npy" and stored < 4 * int(np.prod(man["shape"])):
+        return [f"export file changed: {name} holds fewer bytes than its shape {man['shape']} needs"]
     for start in range(0, len(sources), BLOCK_ROWS):  # one read per block (a Zarr chunk)
         block = np.asarray(X[start:start + BLOCK_ROWS])
         for i, row in enumerate(block, start):

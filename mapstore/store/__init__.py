@@ -3,6 +3,7 @@ lock, atomic writes, crash checkpoints, readers' leases, garbage collection, the
 
 from __future__ import annotations
 
+from ._outputs import OUTPUT_MARKER, check_output, inside, is_store, lies_within, output_folder, remove_leftovers, write_file_atomic
 from ._paths import inside_store, plain_name, regular_file, relative_path, store_file
 from ._store import (
     Catalog,
@@ -84,6 +85,14 @@ __all__ = [
     "read_head",
     "release_lease",
     "replace_dir",
+    "OUTPUT_MARKER",
+    "check_output",
+    "inside",
+    "is_store",
+    "lies_within",
+    "output_folder",
+    "remove_leftovers",
+    "write_file_atomic",
     "ROWS_SCHEMA",
     "SCHEMA_BASE",
     "take_lease",
