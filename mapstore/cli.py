@@ -14,7 +14,7 @@ from pathlib import Path
 import click
 
 from ._version import __version__
-from .errors import MapstoreError
+from .errors import MapstoreError, ParameterError
 from .statkinds import LEVEL_CHOICES
 
 # Each command imports the stage it runs when it runs: `mapstore --help` (and a typo) never pays for
@@ -186,7 +186,7 @@ def write_table(table, fmt: str, out: str | None) -> None:
             pq.write_table(table, out)
         except (pa.ArrowNotImplementedError, pa.ArrowInvalid) as exc:
             kinds = ", ".join(f"{f.name} ({f.type})" for f in table.schema if not _parquet_ok(f.type))
-            raise click.UsageError(f"Parquet cannot hold column(s) {kinds or '?'}: cast them in the query "
+            raise ParameterError(f"Parquet cannot hold column(s) {kinds or '?'}: cast them in the query "
                                    "(e.g. CAST(x AS VARCHAR)), or use --format csv or json") from exc
         click.echo(f"wrote {table.num_rows} rows to {out}", err=True)
         return

@@ -81,8 +81,10 @@ def test_every_image_file_of_the_lab_is_a_map_or_a_reported_line(lab):
         assert by_path[p]["remedy"], p
     # what the lab has: nothing of the maps the writers wrote is passed over
     assert {os.path.basename(p) for p in left} == {"mask.nii.gz", "example_func.nii.gz", "mask.nii", "mask.hdr",
-                                                    "mask.mgh", "sig.mgh", "cope1.nii.gz", "cope2.nii.gz"}
-    assert by_path[str(root / "fs" / "lh.thick.glmdir" / "age" / "sig.mgh")]["code"] == "surface-overlay"
+                                                    "mask.mgh", "cope1.nii.gz", "cope2.nii.gz"}
+    overlay = _one(store, "lh.thick.glmdir/age/sig.mgh")[0]
+    assert (overlay["geometry"], overlay["hemi"], overlay["n_vertices"], overlay["stat"],
+            overlay["contrast"]) == ("surface", "L", 10242, "logp", "age")
 
 
 def test_upper_case_and_twice_written_maps_are_kept_and_said(lab):
@@ -323,3 +325,67 @@ def test_level_from_origins_and_rules(tmp_path, rng):
     mapstore.index([root], tmp_path / "store", rules=str(rule), progress=False, jobs=1)
     got = _rows(tmp_path / "store", "SELECT code FROM problems WHERE code = 'bad-level'")
     assert got == [{"code": "bad-level"}]
+
+
+def test_freesurfer_surface_overlays_go_on_the_mesh_their_vertex_count_names(tmp_path, rng):
+    """mri_glmfit on fsaverage5 writes lh./rh. glm folders of (10242, 1, 1) MGH overlays (from memory); the
+    pair is one surface row, equal to the values nibabel reads from the two files."""
+    root = tmp_path / "fsglm"
+    values = {}
+    for hemi in ("lh", "rh"):
+        values[hemi] = rng.normal(size=10242).astype(np.float32)
+        save(nib.MGHImage(values[hemi].reshape(-1, 1, 1), np.eye(4)), root / f"{hemi}.age.glmdir" / "older" / "gamma.mgh")
+        (root / f"{hemi}.age.glmdir" / "dof.dat").write_text("57\n")
+    store = tmp_path / "store"
+    rep = mapstore.index([root], store, rules="freesurfer", progress=False, jobs=1)
+    rows = _rows(store, "SELECT map_id, hemi, linked_map, stat, contrast, dof, level FROM maps ORDER BY hemi")
+    assert rep.n_maps == 2 and [r["hemi"] for r in rows] == ["L", "R"]
+    assert rows[0]["linked_map"] == rows[1]["map_id"] and {r["stat"] for r in rows} == {"effect"}
+    assert {(r["contrast"], r["dof"], r["level"]) for r in rows} == {("older", 57.0, "group")}
+    built = mapstore.build_features(store, grid="fsaverage5", progress=False, jobs=1)
+    assert built.n_problems == 0 and built.n_built == 1
+    fs = mapstore.open(store).features()
+    got = fs.unmask(fs.matrix([rows[0]["map_id"]])[0])
+    want = np.concatenate([values["lh"], values["rh"]])
+    kept = np.isfinite(got)
+    assert kept.sum() == 20484 - 654  # the fsaverage5 cortex mask leaves out 303 + 351 medial-wall vertices
+    np.testing.assert_array_equal(got[kept], want[kept])
+
+
+def test_a_nifti_bucket_with_afni_s_extension_is_a_map_per_sub_brick(tmp_path, rng):
+    """AFNI writes a bucket to NIfTI as (x, y, z, 1, bricks) with its attributes in an extension of code 4:
+    an XML of AFNI_atr elements (from memory of AFNI's NIfTI output); written here with nibabel."""
+    data = rng.normal(size=SHAPE + (1, 3)).astype(np.float32)
+    img = nib.Nifti1Image(data, AFF)
+    xml = ('<?xml version="1.0" ?>\n<AFNI_attributes self_idcode="XYZ" ni_form="ni_group" >\n'
+           '<AFNI_atr ni_type="String" ni_dimen="1" atr_name="BRICK_LABS" >\n "reef#0_Coef~reef#0_Tstat~Full_Fstat"\n'
+           '</AFNI_atr>\n<AFNI_atr ni_type="float" ni_dimen="9" atr_name="BRICK_STATAUX" >\n 1 3 1 88 2 4 2 2 88\n'
+           '</AFNI_atr>\n</AFNI_attributes>\n')
+    img.header.extensions.append(nib.nifti1.Nifti1Extension(4, xml.encode()))
+    path = save(img, tmp_path / "afni-nii" / "s31" / "stats.s31.nii.gz")
+    store = tmp_path / "store"
+    rep = mapstore.index([tmp_path / "afni-nii"], store, rules=str(_rule(tmp_path)), progress=False, jobs=1)
+    rows = _rows(store, "SELECT * FROM maps ORDER BY map_index")
+    assert rep.n_maps == 3, mapstore.open(store).sql("SELECT * FROM problems").to_pylist()
+    assert [(r["map_index"], r["contrast"], r["stat"], r["dof"], r["dof_numerator"]) for r in rows] == [
+        (0, "reef", "effect", None, None), (1, "reef", "t", 88.0, None), (2, "Full", "F", 88.0, 2.0)]
+    assert {r["sub"] for r in rows} == {"31"}
+    grid = save(nib.Nifti1Image(np.ones(SHAPE, np.uint8), AFF), tmp_path / "grid.nii.gz")
+    built = mapstore.build_features(store, grid=str(grid), mask=str(grid), progress=False, jobs=1)
+    assert built.n_problems == 0 and built.n_built == 3
+    fs = mapstore.open(store).features()
+    ref = nib.load(str(path)).get_fdata()  # nibabel's reading (reference)
+    for r in rows:
+        got = fs.unmask(fs.matrix([r["map_id"]])[0]).reshape(SHAPE)
+        np.testing.assert_allclose(got, ref[..., 0, r["map_index"]], atol=1e-6)
+
+
+def _rule(tmp_path):
+    # the file has no BIDS name: a rule takes it (its stat: each brick's own from the extension)
+    return save_json(tmp_path / "afni-rule.json", {"rules": [{"regex": r"(?:.*/)?stats\.[a-z0-9]+\.nii\.gz",
+                                                             "entities": {"stat": "effect"}}]})
+
+
+def save_json(path, doc):
+    path.write_text(json.dumps(doc))
+    return path

@@ -11,6 +11,7 @@ from ._foreign import (
     FOREIGN_EXTENSIONS,
     ForeignFacts,
     afni_brick,
+    afni_extension,
     data_file,
     digest_map,
     foreign_format,
@@ -39,6 +40,7 @@ from ._userfiles import MAX_DEPTH, UserFile, check_user_doc, format_key_path, lo
 
 __all__ = [
     "afni_brick",
+    "afni_extension",
     "DATA_EXTENSIONS",
     "data_file",
     "digest_map",

@@ -29,7 +29,7 @@ from ._hashing import BLOCK, FileDigest
 from ._header import HeaderFacts
 
 __all__ = ["FOREIGN_EXTENSIONS", "DATA_EXTENSIONS", "foreign_format", "data_file", "digest_map",
-           "ForeignFacts", "read_foreign_header", "read_foreign_volume", "afni_brick"]
+           "ForeignFacts", "read_foreign_header", "read_foreign_volume", "afni_brick", "afni_extension"]
 
 # the header files of the formats read here (lower case), and the data halves of the two-file ones
 FOREIGN_EXTENSIONS = (".hdr", ".head", ".mgh", ".mgz", ".mnc")
@@ -131,8 +131,12 @@ def _statistics(header) -> tuple[tuple[int, tuple[float, ...]], ...] | None:
     aux = info.get("BRICK_STATAUX") if isinstance(info, dict) else None
     if aux is None:
         return None
-    vals = list(np.atleast_1d(np.asarray(aux, dtype=np.float64)))
     n = header.get_data_shape()[3] if len(header.get_data_shape()) > 3 else 1
+    return stataux(list(np.atleast_1d(np.asarray(aux, dtype=np.float64))), n)
+
+
+def stataux(vals: list[float], n: int) -> tuple[tuple[int, tuple[float, ...]], ...]:
+    """BRICK_STATAUX's runs (brick, code, number of params, params...) as (code, params) per brick."""
     out: list[tuple[int, tuple[float, ...]]] = [(0, ())] * n
     i = 0
     while i + 2 < len(vals):
@@ -218,6 +222,32 @@ def read_foreign_volume(path: str, map_index: int | None = None, dtype=np.float3
     vol = np.asarray(proxy[..., k] if len(shape) > 3 else proxy, dtype=np.float64)
     vol = vol.reshape(shape[:3]) if vol.ndim != 3 else vol
     return vol.astype(dtype, copy=False), info.facts
+
+
+_ATR = re.compile(r'atr_name\s*=\s*"(?P<name>BRICK_LABS|BRICK_STATAUX)"\s*>\s*(?P<value>[^<]*)<')
+
+
+def afni_extension(path: str, n_maps: int) -> tuple[tuple[str, ...], tuple] | None:
+    """Sub-brick labels and statistics from the AFNI extension (code 4: an XML of AFNI's attributes) of a
+    NIfTI file AFNI wrote, or None when it has none."""
+    import nibabel as nib
+
+    try:
+        img: Any = nib.load(path)
+        exts = [e for e in img.header.extensions if e.get_code() == 4]
+    except Exception:  # noqa: BLE001  # a damaged extension is no extension
+        return None
+    if not exts:
+        return None
+    raw = exts[0].get_content()
+    text = raw.decode("utf-8", "replace") if isinstance(raw, bytes) else str(raw)
+    found = {m.group("name"): m.group("value").strip() for m in _ATR.finditer(text[:1 << 20])}
+    names = tuple(found.get("BRICK_LABS", "").strip('"').split("~")) if "BRICK_LABS" in found else ()
+    try:
+        aux = [float(v) for v in found.get("BRICK_STATAUX", "").split()]
+    except ValueError:
+        aux = []
+    return names[:n_maps] + ("",) * max(0, n_maps - len(names)), stataux(aux, n_maps) if aux else ()
 
 
 _AFNI_LABEL = re.compile(r"^(?P<name>.+?)(?:_GLT)?(?:#\d+)?_(?P<word>[A-Za-z^0-9]+)$")

@@ -64,7 +64,7 @@ from .._runner import die_once_for_tests, run as run_units
 from ..errors import HeaderError, MapstoreError, NoDatasetsFound, ParameterError, StoreFull
 from ..labels import refresh_labels
 from ..statkinds import LEVELS, kind_for_word, kinds_for_intent, stat_kind
-from ..formats import REAL_SCALAR_DTYPES, ReadDeadline, ReadTimeout, afni_brick, digest_file, digest_map
+from ..formats import REAL_SCALAR_DTYPES, ReadDeadline, ReadTimeout, afni_brick, afni_extension, digest_file, digest_map
 from ..formats import foreign_format, read_foreign_header
 from ..formats import (
     NIFTI1_SIZE,
@@ -189,11 +189,16 @@ def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None, prog
                 return Problem(path, "pair-header", "a NIfTI pair header (magic ni1/ni2): the voxels are in a "
                                "separate .img file", "convert the .hdr/.img pair to a single .nii(.gz) file, "
                                "for example with nibabel", stage="header")
-            refused = _not_a_map(path, facts)
+            # a bucket AFNI wrote as NIfTI: (x, y, z, 1, bricks) with its attributes in an extension
+            bucket = afni_extension(path, facts.n_volumes) if facts.n_volumes > 1 and facts.vox_offset > 352 \
+                else None
+            refused = _not_a_map(path, facts) if bucket is None else None
             if refused is not None:
                 return refused
             cols = _header_columns(facts)
-            if cache is not None:
+            if bucket is not None:
+                cols.update(_map_names=list(bucket[0]), _bricks=list(bucket[1]), _afni=True)
+            elif cache is not None:  # headers with extensions are not shared: the extension is not in the key
                 cache[key] = cols
     except HeaderError as exc:
         return Problem(path, exc.code, exc.reason, exc.remedy, stage="header")
@@ -213,8 +218,8 @@ def _too_large(path: str, declared: int, limit: int) -> Problem:
                    stage="header")
 
 
-def probe_foreign(path: str, progress=None, max_bytes: int = MAX_MAP_MB << 20
-                  ) -> tuple[dict[str, Any], str, int] | Problem:
+def probe_foreign(path: str, progress=None, max_bytes: int = MAX_MAP_MB << 20,
+                  entities: dict[str, str] | None = None) -> tuple[dict[str, Any], str, int] | Problem:
     """Hash a map of another format (both files of a two-file one) and read its header through nibabel."""
     try:
         info = read_foreign_header(path)
@@ -228,14 +233,38 @@ def probe_foreign(path: str, progress=None, max_bytes: int = MAX_MAP_MB << 20
     except OSError as exc:
         return Problem(path, "unreadable", f"cannot read file ({exc.strerror})", "check permissions")
     if info.surface_vertices is not None:
-        return Problem(path, "surface-overlay", f"a FreeSurfer surface overlay of {info.surface_vertices} values "
-                       "(one per vertex), not a volume", "save it as GIFTI (nibabel: nib.gifti.GiftiImage with "
-                       "one data array; name it hemi-L or hemi-R) and index that", stage="header")
+        return _surface_overlay(path, info, dig, entities or {})
     refused = _not_a_map(path, info.facts)
     if refused is not None:
         return refused
     cols = _header_columns(info.facts)
     cols.update(file_format=info.file_format, _map_names=list(info.map_names), _bricks=list(info.statistics))
+    return cols, dig.sha256, dig.nbytes
+
+
+_FS_HEMI = re.compile(r"(?:^|/)(lh|rh)(?:\.|/|$)")
+
+
+def _surface_overlay(path: str, info, dig, entities: dict[str, str]) -> tuple[dict[str, Any], str, int] | Problem:
+    """A FreeSurfer surface overlay (values per vertex in an MGH file): a surface map on the mesh its vertex
+    count names, its hemisphere from the hemi entity or FreeSurfer's lh./rh. naming."""
+    n = int(info.surface_vertices)
+    shape = info.facts.shape
+    n_maps = math.prod(shape[3:]) if len(shape) > 3 else 1
+    if n_maps > 1:
+        return Problem(path, "too-many-dimensions", f"a surface overlay of {n_maps} frames: a statistic map is one",
+                       "save one frame per file", stage="header")
+    hits = _FS_HEMI.findall(path.replace(os.sep, "/"))
+    side = entities.get("hemi") or ({"lh": "L", "rh": "R"}[hits[-1]] if hits else None)
+    if side not in ("L", "R"):
+        return Problem(path, "unknown-hemisphere", f"a surface overlay of {n} vertices whose hemisphere nothing "
+                       "names", "put it under a folder named lh.* or rh.* (FreeSurfer's naming), or name it hemi-L "
+                       "or hemi-R", stage="header")
+    space, den = _mesh_name(entities.get("space"), entities.get("den"), n, "gifti")
+    cols = _header_columns(info.facts)
+    cols.update(shape=[n], n_volumes=1, affine=None, voxel_size=None, orientation=None, affine_source=None,
+                geometry="surface", n_vertices=n, structures={"L": "CortexLeft", "R": "CortexRight"}[side],
+                grid_id=surface_grid_id(f"gifti|{n}", space, den, side), file_format=info.file_format, _hemi=side)
     return cols, dig.sha256, dig.nbytes
 
 
@@ -536,7 +565,8 @@ class _RowBuilder:
         old = self.prev.get(m.relpath)
         # an AFNI bucket's sub-bricks take their statistics from its header: read again
         if old is not None and pcol["nbytes"][old] == m.nbytes and pcol["mtime_ns"][old] == m.mtime_ns \
-                and m.entities.get("extension") != ".head":
+                and m.entities.get("extension") != ".head" and not (
+                    pcol["map_index"][old] is not None and pcol["geometry"][old] in (None, "volume")):
             self.unchanged += 1
             n = pcol["n_volumes"][old] or 1
             names = self.prev_names.get(m.relpath, {})
@@ -551,7 +581,7 @@ class _RowBuilder:
                 if surface_format(m.path):
                     res = probe_surface_file(m.path, m.entities, self.deadline.progress, limit)
                 elif foreign_format(m.path):
-                    res = probe_foreign(m.path, self.deadline.progress, limit)
+                    res = probe_foreign(m.path, self.deadline.progress, limit, m.entities)
                 else:
                     res = probe_file(m.path, self.cache, self.deadline.progress, limit)
         except ReadTimeout:
@@ -613,7 +643,7 @@ class _RowBuilder:
             n_inputs = self.model.design_rows(m.relpath, m.entities)
         file_row.update(level=place.level, n_inputs=n_inputs, group_contrast=place.group_contrast)
         maps = maps_in_file(m.path, m.entities, hdr)
-        afni = m.entities.get("extension") == ".head"
+        afni = m.entities.get("extension") == ".head" or bool(hdr.get("_afni"))
         bricks = hdr.get("_bricks") if afni else None
         for index, name in maps:
             row = file_row if len(maps) == 1 else dict(file_row)
@@ -735,7 +765,7 @@ def maps_in_file(path: str, entities: dict[str, str], hdr: dict[str, Any]) -> li
     contrast's rows, not maps of their own; the F map is beside it).
     """
     n = hdr.get("n_volumes") or 1
-    if n >= 2 and hdr.get("file_format") == "afni":
+    if n >= 2 and (hdr.get("file_format") == "afni" or hdr.get("_afni")):
         names = list(hdr.get("_map_names") or [])
         return [(i, names[i] if i < len(names) else "") for i in range(n)]  # an AFNI bucket: a map per sub-brick
     if n < 2 or hdr.get("geometry") in (None, "volume"):
@@ -780,7 +810,7 @@ def entities_from_map_name(name: str | None, path: str) -> dict[str, str]:
     return {"contrast": text}
 
 
-_HEMI_IN_NAME = re.compile(r"(?<=[_/])hemi-[LR](?=_)|^hemi-[LR](?=_)")
+_HEMI_IN_NAME = re.compile(r"(?<=[_/])hemi-[LR](?=_)|^hemi-[LR](?=_)|(?<=/)[lr]h(?=[./])|^[lr]h(?=[./])")
 
 
 def _f_ranks(table: pa.Table) -> pa.Table:

@@ -134,9 +134,14 @@ def _check_store(p: Path) -> None:
         raise StoreNotFound(f"{p}: no mapstore store here (no store.json); run 'mapstore index ROOT "
                             f"--store {p}' first")
     try:
+        if marker.stat().st_size > 4096:
+            raise ValueError("larger than a store marker is")
         doc = json.loads(marker.read_text())
-    except (OSError, ValueError) as exc:
+    except (OSError, ValueError, RecursionError) as exc:
         raise StoreCorrupt(f"{marker}: unreadable store marker ({exc})") from exc
+    if not isinstance(doc, dict) or not isinstance(doc.get("version", 0), int) or isinstance(doc.get("version"), bool):
+        raise StoreCorrupt(f"{marker}: a damaged store marker (expected an object with a whole-number version); "
+                           "restore it from a backup, or index the datasets again into a new store")
     if doc.get("format") != STORE_FORMAT["format"] or doc.get("version", 0) > STORE_FORMAT["version"]:
         raise StoreCorrupt(f"{marker}: store format {doc} is not one this mapstore reads "
                            f"({STORE_FORMAT}); upgrade mapstore")

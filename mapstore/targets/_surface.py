@@ -38,7 +38,8 @@ import numpy as np
 from ..errors import FeatureError, GridError, ParameterError
 from ._protocol import BatchContext, BuildSettings, Mask, Panel, RowValues, SourceMap, Target, mask_from_array
 from ._registered import map_points, registration_key
-from ..formats import DATA_KINDS, MeshFile, mesh_file, read_mesh, read_vertex_data, write_mesh_description
+from ..formats import (DATA_KINDS, MeshFile, digest_map, foreign_format, mesh_file, read_mesh, read_vertex_data,
+                       write_mesh_description)
 
 __all__ = [
     "MeshedTarget",
@@ -592,6 +593,8 @@ def read_surface_values(path: str, expect_sha256: str | None = None, map_index: 
     """
     import nibabel as nib
 
+    if foreign_format(path) == "mgh":  # a FreeSurfer surface overlay: (vertices, 1, 1)
+        return _mgh_values(path, expect_sha256)
     try:
         with open(path, "rb") as fh:
             raw = fh.read()
@@ -625,6 +628,20 @@ def read_surface_values(path: str, expect_sha256: str | None = None, map_index: 
     if len(arrays) != 1 or np.asarray(arrays[0]).ndim != 1:
         raise GridError(f"{path}: holds {len(arrays)} data arrays; a feature row takes a file with one map")
     return np.asarray(arrays[0], dtype=np.float32)
+
+
+def _mgh_values(path: str, expect_sha256: str | None) -> np.ndarray:
+    import nibabel as nib
+
+    try:
+        if expect_sha256 is not None and digest_map(path).sha256 != expect_sha256:
+            raise GridError(f"{path}: the file changed since it was indexed; re-run 'mapstore index'")
+        img: Any = nib.load(path)
+        return np.asarray(img.dataobj, dtype=np.float32).reshape(-1)
+    except GridError:
+        raise
+    except Exception as exc:  # nibabel's MGH reader raises several types on a damaged file
+        raise GridError(f"{path}: the values cannot be read ({type(exc).__name__}: {exc})") from exc
 
 
 def _pick_map(path: str, maps: Any, index: int, what: str) -> np.ndarray:

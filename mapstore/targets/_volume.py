@@ -341,17 +341,21 @@ def read_volume(path: str, expect_sha256: str | None = None, dtype=np.float32, m
         raise GridError(str(exc)) from exc
     except (OSError, EOFError, ValueError) as exc:
         raise GridError(f"{path}: gzip stream is corrupt ({exc}); re-create the file") from exc
-    if facts.n_volumes != 1:
+    if facts.n_volumes != 1 and map_index is None:
         raise GridError(f"{path}: has {facts.n_volumes} volumes; a statistic map must be one 3-D volume "
                         "(split it, or keep only the map you need)")
+    k = map_index or 0  # a sub-brick of an AFNI bucket written as NIfTI: volumes follow each other
+    if not 0 <= k < facts.n_volumes:
+        raise GridError(f"{path}: has {facts.n_volumes} volume(s), not a volume {k}; re-run 'mapstore index'")
     if facts.dtype not in REAL_SCALAR_DTYPES:
         raise GridError(f"{path}: voxel type {facts.dtype} is not a real scalar; save the map as float32")
     dt = np.dtype(facts.dtype).newbyteorder(facts.endianness)  # type: ignore[arg-type]
     count = math.prod(facts.spatial_shape)  # Python ints: a damaged header's dims must not wrap around
-    need = facts.vox_offset + count * dt.itemsize
+    start = facts.vox_offset + k * count * dt.itemsize
+    need = start + count * dt.itemsize
     if len(body) < need:
         raise GridError(f"{path}: data is truncated ({len(body)} bytes, header needs {need}); re-create the file")
-    arr = np.frombuffer(body, dtype=dt, count=count, offset=facts.vox_offset)
+    arr = np.frombuffer(body, dtype=dt, count=count, offset=start)
     vol = arr.reshape(facts.spatial_shape, order="F").astype(dtype)
     slope, inter = facts.scl_slope, facts.scl_inter
     # nifti1.h: scaling applies when scl_slope is non-zero (and finite)
