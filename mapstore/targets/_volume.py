@@ -304,7 +304,10 @@ def gunzip(raw: bytes, limit: int | None = None) -> bytes:
     data = raw
     while data and len(out) < limit:
         d = z.decompressobj(16 + z.MAX_WBITS)
-        out += d.decompress(data, limit - len(out))
+        try:
+            out += d.decompress(data, limit - len(out))
+        except z.error as exc:  # zlib's own error class: a corrupt stream is a ValueError to the caller
+            raise ValueError(str(exc)) from exc
         if not d.eof:
             break  # the limit reached, or the stream cut short (the length check says which)
         data = d.unused_data
