@@ -15,7 +15,7 @@ import click
 
 from ._version import __version__
 from .errors import MapstoreError, ParameterError
-from .statkinds import LEVEL_CHOICES
+from .statkinds import LEVEL_CHOICES, POOL_DEFAULT, POOL_METHODS, POOLABLE
 
 # Each command imports the stage it runs when it runs: `mapstore --help` (and a typo) never pays for
 # numpy, pyarrow, DuckDB or scikit-learn.
@@ -75,6 +75,11 @@ def label_store(*args, **kwargs):
     return run(*args, **kwargs)
 
 FINDINGS_EXIT = 3  # check found something at --fail-on, or verify found a change (1 is a failure to run)
+
+
+def _plural(n: int, one: str, many: str | None = None) -> str:
+    """``1 study``, ``3 studies``: counts said as a person would."""
+    return f"{n:,} {one if n == 1 else many or one + 's'}"
 
 
 def _target(path: str | None, option: str) -> None:
@@ -497,14 +502,15 @@ def similar_cmd(store, query, feature_set, k, absolute, stat, dof, fmt) -> None:
 @click.option("--concept", "concepts", multiple=True, help="Pool the maps labelled with this concept (repeatable).")
 @click.option("--task", "tasks", multiple=True, help="Pool the maps of this task (repeatable).")
 @click.option("--where", help="SQL predicate over maps and participants' columns choosing the maps.")
-@click.option("--stat", "stats", multiple=True, default=("effect",), show_default=True,
-              help="Which maps to pool (repeatable): subjects' maps of this stat.")
+@click.option("--stat", "stats", multiple=True, default=POOLABLE, show_default=True,
+              help="Which maps to pool (repeatable): of each subject's maps of a contrast, the first of these it "
+                   "has; a study's maps must be one stat.")
 @click.option("--features", "feature_set", help="Feature set name (default: the default set).")
-@click.option("--method", type=click.Choice(["stouffer", "stouffer-weighted", "fisher", "fixed", "random",
-                                             "random-reml"]),
-              default="random", show_default=True,
-              help="How study maps are combined, voxel by voxel (random: DerSimonian-Laird tau^2; random-reml: "
-                   "restricted maximum likelihood).")
+@click.option("--method", type=click.Choice(POOL_METHODS), default=POOL_DEFAULT, show_default=True,
+              help="How study maps are combined, voxel by voxel: stouffer (each study's one-sample z; holds its "
+                   "false-positive rate on null studies), fixed or random effects of effect maps (random: "
+                   "DerSimonian-Laird; random-hksj: with the Hartung-Knapp-Sidik-Jonkman variance and a t "
+                   "reference; random-reml: restricted maximum likelihood).")
 @click.option("--min-subjects", type=click.IntRange(min=2), default=3, show_default=True,
               help="A study's map is missing where fewer of its subjects have a value.")
 @click.option("--min-studies", type=click.IntRange(min=1), default=2, show_default=True,
@@ -536,13 +542,19 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
     prov = write_pooled(res, out, fdr_q, overwrite=overwrite)
     tested = prov["fdr"]["n_tested"]
     thr = prov["fdr"]["z_threshold"]
-    above = int(np.sum(res.z >= thr)) if np.isfinite(thr) else 0
-    click.echo(f"pooled {len(sel)} maps of {len(res.studies)} studies ({method}); {tested:,} voxels tested")
-    click.echo(f"FDR q={fdr_q:g}: z >= {thr:.2f}, {above:,} voxels" if np.isfinite(thr) else
+    above = int(np.sum(res.z >= thr)) if thr is not None else 0
+    k = len(res.studies)
+    click.echo(f"pooled {_plural(len(sel), 'map')} of {_plural(k, 'study', 'studies')} ({method}); "
+               f"{_plural(tested, 'voxel')} tested")
+    click.echo(f"FDR q={fdr_q:g}: z >= {thr:.2f}, {_plural(above, 'voxel')}" if thr is not None else
                f"FDR q={fdr_q:g}: no voxel survives")
     if res.i2 is not None and np.isfinite(res.i2).any():
         click.echo(f"between-study heterogeneity I^2: median {float(np.nanmedian(res.i2)):.2f}")
-    for p in res.peaks(5, threshold=thr if np.isfinite(thr) else None):
+    for reason, n in prov.get("left_out", {}).items():
+        click.echo(f"  {reason}: {n['values']:,} value(s) at {_plural(n['voxels'], 'voxel')}")
+    if sel.dropped:
+        click.echo("  not pooled: " + "; ".join(f"{why} x{n}" for why, n in sel.dropped.items()))
+    for p in res.peaks(5, threshold=thr):
         click.echo(f"  peak z {p['z']:.2f} at {p.get('mm', p['position'])} ({p['n_studies']} studies)")
     click.echo(f"wrote {len(prov['files'])} files to {out}")
 
@@ -701,7 +713,6 @@ def demo_cmd(folder, scale) -> None:
     html_path = report.write_html(base / "check-report.html", command=f"mapstore demo {folder}")  # type: ignore[attr-defined]
     click.echo(report.summary())
     click.echo(f"report with pictures: {html_path}")
-    import numpy as np
 
     from .analyses import pool, write_pooled
 
@@ -714,8 +725,8 @@ def demo_cmd(folder, scale) -> None:
     prov = write_pooled(res, pooled, overwrite=True)
     thr = prov["fdr"]["z_threshold"]
     click.echo(f"  {len(res.studies)} studies; FDR 0.05 over {prov['fdr']['n_tested']:,} voxels: "
-               + (f"z >= {thr:.2f}" if np.isfinite(thr) else "no voxel survives"))
-    for p in res.peaks(3, threshold=thr if np.isfinite(thr) else None):
+               + (f"z >= {thr:.2f}" if thr is not None else "no voxel survives"))
+    for p in res.peaks(3, threshold=thr):
         click.echo(f"  peak z {p['z']:.1f} at {p.get('mm', p['position'])} mm ({p['n_studies']} studies)")
     click.echo(f"\ntry: mapstore sql --store {store} \"SELECT concept, count(*) FROM labels GROUP BY ALL\"")
     click.echo(f"     mapstore verify {out}")

@@ -156,7 +156,9 @@ def _brain(axes: list[np.ndarray]) -> np.ndarray:
 
 
 def _map_volume(study: Study, sub: str, concept: str, grid: Grid, stat: str, key: str,
-                brain: np.ndarray, axes: list[np.ndarray]) -> np.ndarray:
+                brain: np.ndarray, axes: list[np.ndarray], dof: float = 180.0) -> np.ndarray:
+    """One stat of one subject's contrast: its t, z, effect and variance maps are one model's (z is the t
+    through its DOF, effect / sqrt(variance) is the t), as a GLM writes them."""
     rng = _rng(study.name, sub, key)
     subj = _rng(study.name, sub)
     signal = np.zeros(grid.shape, dtype=np.float32)
@@ -166,14 +168,17 @@ def _map_volume(study: Study, sub: str, concept: str, grid: Grid, stat: str, key
         signal += _blob(axes, tuple(np.add(centre, jitter)), 7.0)
     noise = _smooth_noise(rng, grid.shape) * 1.2
     t = amp * signal + noise
+    variance = 0.5 + 0.2 * np.abs(_smooth_noise(_rng(study.name, sub, key, "variance"), grid.shape))
     if stat == "t":
         vol = t
     elif stat == "z":
-        vol = t * 0.95
+        from .targets import t_to_z
+
+        vol = t_to_z(t, dof)
     elif stat == "effect":
-        vol = t * 0.8 + 0.1 * _smooth_noise(rng, grid.shape)
+        vol = t * np.sqrt(variance)
     elif stat == "variance":
-        vol = 0.5 + 0.2 * np.abs(_smooth_noise(rng, grid.shape))
+        vol = variance
     else:  # pragma: no cover - STUDIES lists known stats only
         raise ValueError(stat)
     fill = np.nan if study.nan_outside else 0.0
@@ -286,8 +291,9 @@ def _write_study(root: Path, study, scale: float) -> int:
             for run in study.runs or (None,):
                 for contrast, concept in study.contrasts.items():
                     for stat in study.stats:
-                        key = (ses, run, contrast, stat)
-                        vol = _map_volume(study, sub, concept, grid, stat, str(key), brain, axes)
+                        key = (ses, run, contrast)  # one model per contrast: its stats share its noise
+                        own = dof - 40 if not study.legacy_names and sub == subjects[1] else dof
+                        vol = _map_volume(study, sub, concept, grid, stat, str(key), brain, axes, own)
                         path = _map_path(ds, study, sub, ses, run, contrast, stat)
                         _save(vol, grid, path, stat, dof, int16=(stat == "effect" and study.legacy_names))
                         n_maps += 1

@@ -11,6 +11,7 @@ from __future__ import annotations
 __all__ = [
     "MapstoreError",
     "OutputPlaceError",
+    "PoolError",
     "ParameterError",
     "DataFileError",
     "HeaderError",
@@ -163,3 +164,8 @@ class ExportError(MapstoreError, OSError):
 class OutputPlaceError(ExportError):
     """An output would land where mapstore never writes: a source dataset, a store, or a folder it did
     not write (with overwrite)."""
+
+
+class PoolError(MapstoreError, ValueError):
+    """Maps that cannot be pooled as asked (a stat the method cannot take, an empty result); the message
+    names why and the option that changes it."""

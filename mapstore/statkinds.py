@@ -29,7 +29,8 @@ import math
 from dataclasses import dataclass
 
 __all__ = ["StatKind", "STAT_KINDS", "stat_kind", "kind_for_word", "kinds_for_intent", "known_stats",
-           "convertible_to_z", "contrast_stats", "STAT_PREFERENCE", "COMPANION_WORDS", "LEVELS", "SUBJECT_LEVELS", "LEVEL_CHOICES"]
+           "convertible_to_z", "contrast_stats", "STAT_PREFERENCE", "COMPANION_WORDS", "LEVELS", "SUBJECT_LEVELS", "LEVEL_CHOICES",
+           "POOL_METHODS", "POOL_DEFAULT", "POOLABLE"]
 
 
 @dataclass(frozen=True)
@@ -113,6 +114,11 @@ COMPANION_WORDS = ("mask", "brainmask", "example_func", "mean_func", "filtered_f
 # the levels of a map: whom it summarises; the first three are one subject's
 LEVELS = ("run", "session", "subject", "group", "unknown")
 SUBJECT_LEVELS = ("run", "session", "subject")
+# how study maps are combined (analyses.combine), the default, and the stats a study's one-sample test
+# takes: declared here, where the CLI reads its choices without loading the numeric libraries
+POOL_METHODS = ("stouffer", "stouffer-weighted", "fisher", "fixed", "random", "random-hksj", "random-reml")
+POOL_DEFAULT = "stouffer"
+POOLABLE = ("z", "t", "effect")
 # what a ``level=`` choice may name: "subject" is one person's maps (the three above), "any" every level
 LEVEL_CHOICES = ("subject", "any") + LEVELS
 

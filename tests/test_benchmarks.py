@@ -21,6 +21,7 @@ BENCH = Path(__file__).resolve().parent / "benchmarks"
     ("bench_native.py", ["--maps", "2"], "registered / nitransforms"),
     ("bench_stream.py", ["--rows", "600"], "ratio zarr / npy throughput"),
     ("bench_pool.py", ["--maps", "30"], "pool_maps random"),
+    ("bench_pool_null.py", ["--voxels", "2000", "--sims", "2", "--designs", "5x6"], "holds .05"),
     ("bench_lookup.py", ["--rows", "600", "--subset", "300", "--queries", "3"], "ratio transform / alone"),
 ])
 def test_benchmark_script_runs(script, args, expect):

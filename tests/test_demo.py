@@ -89,3 +89,23 @@ def test_surface_study_pools_with_the_volume_studies(demo_store, demo_tree, tmp_
     assert by_study["driftwood"]["accuracy"] > by_study["driftwood"]["chance"]
     mean = sum(r["accuracy"] for r in table) / len(table)
     assert mean > 2 * sum(r["chance"] for r in table) / len(table)
+
+
+def test_a_subjects_t_z_and_effect_maps_are_one_model_s(demo_tree):
+    """z is the t through its DOF (scipy's t and normal distributions, the reference); effect / sqrt(variance)
+    is the t, as one GLM writes them."""
+    import nibabel as nib
+    import numpy as np
+    from scipy import stats
+
+    func = demo_tree / "inkwell" / "sub-01" / "func"
+    stem = "sub-01_task-glyphread_space-MNI152Lin_contrast-wordsVsConsonants_stat-{}_statmap.nii"
+    t, z = (np.asarray(nib.load(str(func / stem.format(s))).dataobj, np.float64) for s in ("t", "z"))
+    dof = json.loads((demo_tree / "inkwell" / "task-glyphread_statmap.json").read_text())["DegreesOfFreedom"]
+    ok = np.isfinite(t) & (np.abs(t) < 6)
+    np.testing.assert_allclose(z[ok], stats.norm.isf(stats.t.sf(t[ok], dof)), atol=1e-4)
+    glm = next((demo_tree / "emberlight").rglob("sub-01/glm"))
+    t2, e2, v2 = (np.asarray(nib.load(str(next(glm.glob(f"sentenceRead_{s}.nii.gz")))).dataobj, np.float64)
+                  for s in ("t", "beta", "variance"))
+    inside = v2 > 0
+    assert np.corrcoef(t2[inside], (e2 / np.sqrt(v2))[inside])[0, 1] > 0.999  # the effect is stored as int16

@@ -353,8 +353,131 @@ def test_weighting_subjects_by_their_variance_equals_statsmodels_per_study(share
     kept = json.loads((out / "pooled.json").read_text())["variance_sources"]  # verify checks these files too
     assert len(kept) == 40 and all("stat-variance" in v["path"] for v in kept)
     assert main(["verify", str(out)]) == 0
-    # variance maps have no variance map: one line saying what is needed, exit 2
+    # variance maps are not what pool takes: one line saying what is, exit 1
     code = main(["pool", "--store", str(stores[False]), "--features", "own", "--out", str(tmp_path / "no"),
                  "--stat", "variance", "--use-variance"])
     err = capsys.readouterr().err
-    assert code == 2 and "needs effect maps" in err and len(err.strip().splitlines()) == 1
+    assert code == 1 and "pool takes z, t or effect maps, not variance" in err and len(err.strip().splitlines()) == 1
+
+
+def test_an_infinite_z_is_kept_at_the_cap_never_dropped():
+    """Reference: Stouffer by hand with p = 0 or 1 taken as the smallest positive double (z = +-37.5, what
+    p_to_z gives p = 0); dropping the contrary study would make the result more significant."""
+    from scipy import stats
+
+    from mapstore.analyses import Z_CAP
+
+    z = np.array([[3.0], [3.0], [-np.inf]])
+    got = combine(z, method="stouffer")
+    want = (3.0 + 3.0 - Z_CAP) / np.sqrt(3)
+    assert got["z"][0] == pytest.approx(want) and got["n_studies"][0] == 3
+    assert Z_CAP == pytest.approx(stats.norm.isf(np.finfo(np.float64).tiny), abs=0.05)
+    assert got["capped:infinite z (kept at +-37.5)"][0] == 1
+
+
+def test_what_pool_cannot_take_is_refused_in_one_line(shared, tmp_path, capsys):
+    from mapstore.cli import main
+    from mapstore.errors import PoolError
+
+    stores, _, _ = shared
+    st = mapstore.open(stores[False])
+    with pytest.raises(PoolError, match="not variance maps"):
+        pool(st.select(features="own", stat=["variance"]))
+    with pytest.raises(PoolError, match="lower --min-studies"):
+        pool(st.select(features="own", stat=["effect"], where="study = 'study1'"))
+    code = main(["pool", "--store", str(stores[False]), "--features", "own", "--out", str(tmp_path / "one"),
+                 "--stat", "effect", "--where", "study = 'study1'"])
+    err = capsys.readouterr().err
+    assert code == 1 and "nothing to pool" in err and len(err.strip().splitlines()) == 1
+    assert not (tmp_path / "one").exists()
+
+
+def test_pooled_json_is_strict_json_and_counts_what_was_left_out(shared, tmp_path):
+    stores, _, _ = shared
+    sel = mapstore.open(stores[False]).select(features="own", stat=["effect"], missing="keep")
+    res = pool(sel, min_subjects=10)  # voxels where a study has fewer than ten subjects' values: left out
+    write_pooled(res, tmp_path / "strict")
+    text = (tmp_path / "strict" / "pooled.json").read_text()
+
+    def refuse(word):
+        raise AssertionError(f"not strict JSON: {word}")
+
+    doc = json.loads(text, parse_constant=refuse)
+    assert doc["method"] == "stouffer" and isinstance(doc["left_out"], dict)
+
+
+def test_group_maps_pool_as_study_maps(tmp_path, rng):
+    """One group z map per study (level group), pooled directly: Stouffer by hand (scipy's
+    combine_pvalues on the voxels' one-sided p, the reference)."""
+    from scipy import stats
+
+    shape, aff = (6, 7, 8), np.diag([4.0, 4.0, 4.0, 1.0])
+    maps = []
+    for s in range(3):
+        ds = make_derivative(tmp_path / "src" / f"g{s}", f"g{s}")
+        z = rng.normal(1.0, 1.0, size=shape).astype(np.float32)
+        maps.append(z)
+        write_map(ds / "group" / "task-x_contrast-a_stat-z_statmap.nii.gz", z, aff)
+        for i in range(4):  # and subjects' maps beside, which a group pool leaves out
+            write_map(ds / f"sub-{i:02d}" / f"sub-{i:02d}_task-x_contrast-a_stat-z_statmap.nii.gz",
+                      rng.normal(size=shape).astype(np.float32), aff)
+    store = tmp_path / "store"
+    mapstore.index([tmp_path / "src"], store, progress=False, jobs=1)
+    grid = write_json(tmp_path / "grid.json", {"shape": list(shape), "affine": aff.tolist()})
+    mask = write_map(tmp_path / "mask.nii.gz", np.ones(shape, np.uint8), aff)
+    mapstore.build_features(store, grid=str(grid), mask=str(mask), progress=False, jobs=1)
+    st = mapstore.open(store)
+    sel = st.select(level="group", missing="keep")
+    assert len(sel) == 3 and sel.dropped["level subject (take them with level='subject' or level='any')"] == 12
+    res = pool(sel)
+    assert res.provenance["study_maps"] == "the studies' group maps"
+    got = sel.feature_set.unmask(np.where(np.isfinite(res.z), res.z, np.nan).astype(np.float32)).reshape(shape) \
+        if len(sel.voxels) == sel.feature_set.n_voxels else None
+    flat = np.array([m.reshape(-1, order="C") for m in maps])
+    want = np.array([stats.combine_pvalues(stats.norm.sf(flat[:, j]), method="stouffer")[0]
+                     for j in range(flat.shape[1])])
+    np.testing.assert_allclose(np.asarray(got).reshape(-1), want, atol=1e-4)
+    with pytest.raises(mapstore.MapstoreError, match="mixes group maps"):
+        pool(st.select(level="any", missing="keep"))
+    # random effects need effects with variances: on z maps, refused with the reason
+    with pytest.raises(mapstore.MapstoreError, match="random combines effects with their variances"):
+        pool(st.select(missing="keep"), "random")
+
+
+def test_where_pooling_and_decoding_agree_equals_the_hand_computation(shared, rng):
+    """Reference: statsmodels' Benjamini-Hochberg on the pooled map's two-sided p, numpy's quantile for
+    the top 5% of absolute weights, the signs compared by hand, on the columns both share."""
+    from statsmodels.stats.multitest import multipletests
+
+    from mapstore.analyses import conjunction
+
+    stores, peak, _ = shared
+    st = mapstore.open(stores[False])
+    pooled = pool(st.select(features="own", stat=["effect"], missing="keep"))
+    dec = st.select(features="own", stat=["effect"], where="study <> 'study3'")  # common columns only
+    weights = rng.normal(size=len(dec.voxels))
+    j = int(np.flatnonzero(dec.voxels == pooled.selection.voxels[_column_of(pooled.selection, peak)])[0])
+    weights[j] = 10.0  # the decoder leans on the shared effect's voxel
+    got = conjunction(pooled, weights, dec)
+    common = np.intersect1d(pooled.selection.voxels, dec.voxels)
+    z = pooled.z[np.searchsorted(pooled.selection.voxels, common)]
+    w = weights[np.searchsorted(dec.voxels, common)]
+    ok = np.isfinite(z)
+    p2 = 2 * stats_norm_sf(np.abs(z[ok]))
+    keep = np.zeros(len(common), bool)
+    keep[np.flatnonzero(ok)] = multipletests(p2, alpha=0.05, method="fdr_bh")[0]
+    want = keep & (np.abs(w) >= np.quantile(np.abs(w[ok]), 0.95)) & (np.sign(z) == np.sign(w))
+    np.testing.assert_array_equal(got.columns, common)
+    np.testing.assert_array_equal(got.agree, want)
+    assert want[np.searchsorted(common, dec.voxels[j])]  # the shared effect's voxel is in it
+    table = got.table()
+    assert len(table) == want.sum() and {"z", "weight", "x_mm"} <= set(table.columns)
+    img = got.to_image()
+    assert np.nansum(np.abs(img.get_fdata())) == want.sum()
+    assert got.provenance["pooled"]["method"] == "stouffer" and got.provenance["decoder"]["maps"] == dec.map_ids
+
+
+def stats_norm_sf(x):
+    from scipy import stats
+
+    return stats.norm.sf(x)

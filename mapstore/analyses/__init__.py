@@ -3,10 +3,11 @@ study-level maps combined across studies (image-based meta-analysis)."""
 
 from __future__ import annotations
 
+from ._conjunction import Conjunction, conjunction
 from ._encoding import EncodingScores, concept_descriptors, encoding_scores
-from ._pooled import (METHODS, PooledMaps, StudyMaps, combine, fdr_threshold, pool, pool_maps, study_maps,
-                      variance_maps, verify_pooled, write_pooled)
+from ._pooled import (DEFAULT_METHOD, METHODS, Z_CAP, PooledMaps, StudyMaps, combine, fdr_threshold, one_sample, pool,
+                      pool_maps, study_maps, variance_maps, verify_pooled, write_pooled)
 
-__all__ = ["EncodingScores", "concept_descriptors", "encoding_scores", "METHODS", "PooledMaps", "StudyMaps",
+__all__ = ["Conjunction", "conjunction", "EncodingScores", "concept_descriptors", "encoding_scores", "METHODS", "DEFAULT_METHOD", "Z_CAP", "one_sample", "PooledMaps", "StudyMaps",
            "combine", "fdr_threshold", "pool", "pool_maps", "study_maps", "variance_maps", "verify_pooled",
            "write_pooled"]

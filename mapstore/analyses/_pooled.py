@@ -9,6 +9,9 @@ Methods (published names; formulas as in the meta-analysis literature, e.g. Bore
 - ``fixed``: inverse-variance weights w_i = 1/v_i; estimate sum(w e) / sum(w), variance 1/sum(w)
 - ``random``: DerSimonian-Laird tau^2 = max(0, (Q - (k - 1)) / (sum w - sum w^2 / sum w)), weights
   1/(v_i + tau^2); I^2 = max(0, (Q - (k - 1)) / Q)
+- ``random-hksj``: DerSimonian-Laird weights, the variance of the estimate by Hartung-Knapp-Sidik-Jonkman
+  (sum w (e - mu)^2 / ((k - 1) sum w)), the estimate over its standard error referred to Student t with
+  k - 1 degrees of freedom (then given as the z of the same p)
 - ``random-reml``: tau^2 by restricted maximum likelihood (Viechtbauer, 2005, from memory), iterated from
   the DerSimonian-Laird value; I^2 = tau^2 / (tau^2 + s^2), s^2 the typical within-study variance
   (k - 1) sum w / ((sum w)^2 - sum w^2) (Higgins & Thompson, 2002), which equals the Q form above for
@@ -29,14 +32,22 @@ import numpy as np
 
 from ..store import check_output, output_folder
 from .._version import __version__
-from ..errors import ParameterError
-from ..select import Selection
+from ..errors import ParameterError, PoolError
+from ..select import Selection, map_levels
+from ..statkinds import POOL_DEFAULT, POOL_METHODS, POOLABLE
 
-__all__ = ["StudyMaps", "PooledMaps", "study_maps", "variance_maps", "combine", "pool", "pool_maps", "fdr_threshold",
+__all__ = ["StudyMaps", "PooledMaps", "one_sample", "study_maps", "variance_maps", "combine", "pool", "pool_maps", "fdr_threshold",
            "write_pooled", "verify_pooled", "METHODS"]
 
-METHODS = ("stouffer", "stouffer-weighted", "fisher", "fixed", "random", "random-reml")
-_EFFECT_METHODS = ("fixed", "random", "random-reml")
+METHODS = POOL_METHODS
+_EFFECT_METHODS = ("fixed", "random", "random-hksj", "random-reml")
+# the default: the one whose false-positive rate on simulated null studies holds its nominal level
+# (tests/test_pool_null.py; tests/benchmarks/bench_pool_null.py; BENCHMARKS.md)
+DEFAULT_METHOD = POOL_DEFAULT
+# the most extreme z a method carries: the z of the smallest positive double as a one-sided p (p = 0
+# written by a tool, a z of +-inf) -- the value p_to_z gives p = 0
+Z_CAP = 37.5
+
 _BLOCK = 8192  # voxels combined at a time
 
 
@@ -51,6 +62,8 @@ class StudyMaps:
     z: np.ndarray  # t converted with n - 1 DOF, voxel by voxel
     n: np.ndarray  # subjects with a value, per voxel (NaN in the others where n < min_subjects)
     n_subjects: np.ndarray  # per study
+    # what was left out or changed, by reason: per reason, per study and voxel, how many subjects' values
+    left_out: dict[str, np.ndarray] = field(default_factory=dict)
 
 
 @dataclass
@@ -129,7 +142,27 @@ def _t_to_z(t: np.ndarray, dof: np.ndarray) -> np.ndarray:
     return z
 
 
-def study_maps(sel: Selection, *, min_subjects: int = 3, variance: Selection | None = None) -> StudyMaps:
+def one_sample(X: np.ndarray, min_subjects: int = 2) -> tuple[np.ndarray, ...]:
+    """The one-sample test of the rows of ``X`` (subjects x voxels) at every voxel, NaN-aware: mean, its
+    variance (s^2 / n), t, the z of the same one-sided p (n - 1 DOF) and n; z is 0 where n < min_subjects.
+
+    >>> import numpy as np
+    >>> mean, var, t, z, n = one_sample(np.array([[1.0], [2.0], [3.0]]))
+    >>> float(mean[0]), float(t[0]), int(n[0])  # mean 2, s = 1, t = 2 / (1 / sqrt 3)
+    (2.0, 3.4641016151377544, 3)
+    """
+    n = np.isfinite(X).sum(axis=0)
+    with np.errstate(invalid="ignore", divide="ignore"):
+        mean = np.where(n > 0, np.nansum(X, axis=0) / np.maximum(n, 1), np.nan)
+        sd = np.sqrt(np.nansum((X - mean) ** 2, axis=0) / np.maximum(n - 1, 1))
+        var = sd ** 2 / np.maximum(n, 1)
+        t = mean / np.sqrt(var)
+    z = _t_to_z(np.where(n >= min_subjects, t, 0.0), np.maximum(n - 1, 1))
+    return mean, var, t, z, n
+
+
+def study_maps(sel: Selection, *, min_subjects: int = 3, variance: Selection | None = None,
+               capped: bool = True) -> StudyMaps:
     """Per study, the one-sample t of its maps at every voxel (the maps of one study are its subjects'
     maps of one contrast, or of one concept), NaN where fewer than ``min_subjects`` have a value.
 
@@ -140,6 +173,10 @@ def study_maps(sel: Selection, *, min_subjects: int = 3, variance: Selection | N
     a study's map is instead the DerSimonian-Laird random-effects combination of its subjects' effects,
     each weighted by its own variance plus the between-subject variance; ``t`` and ``z`` are then the
     effect over its standard error.
+
+    A subject's infinite value (a p written as 0 or 1, then made z) is kept at +-Z_CAP when ``capped``
+    (z and t maps), else left out; either way it is counted in ``left_out``, as are the voxels where a
+    study has fewer than ``min_subjects`` values.
     """
     if not isinstance(min_subjects, int) or min_subjects < 2:
         raise ParameterError(f"min_subjects must be an integer >= 2, got {min_subjects!r}")
@@ -149,21 +186,22 @@ def study_maps(sel: Selection, *, min_subjects: int = 3, variance: Selection | N
     ncol = len(sel.voxels)
     out = {k: np.full((len(studies), ncol), np.nan) for k in ("effect", "variance", "t", "z", "n")}
     counts = np.zeros(len(studies), dtype=np.int64)
+    inf_reason = f"infinite value (kept at +-{Z_CAP:g})" if capped else "infinite value (left out)"
+    left = {inf_reason: np.zeros((len(studies), ncol), np.int64),
+            "study below min_subjects": np.zeros((len(studies), ncol), np.int64)}
     for s, study in enumerate(studies):
         idx = np.flatnonzero(sel.studies.astype(str) == study)
         sub = sel.subset(idx)
         if sel.missing == "zero":
             sub = _with_missing(sub, "keep")
         X = sub.X.astype(np.float64)
+        inf = np.isinf(X)
+        if inf.any():
+            left[inf_reason][s] = inf.sum(axis=0)
+            X = np.where(inf, np.copysign(Z_CAP, X), X) if capped else np.where(inf, np.nan, X)
         counts[s] = len(idx)
         if variance is None:
-            n = np.isfinite(X).sum(axis=0)
-            with np.errstate(invalid="ignore", divide="ignore"):
-                mean = np.where(n > 0, np.nansum(X, axis=0) / np.maximum(n, 1), np.nan)
-                sd = np.sqrt(np.nansum((X - mean) ** 2, axis=0) / np.maximum(n - 1, 1))
-                var = sd ** 2 / np.maximum(n, 1)
-                t = mean / np.sqrt(var)
-            z = _t_to_z(np.where(n >= min_subjects, t, 0.0), np.maximum(n - 1, 1))
+            mean, var, t, z, n = one_sample(X, min_subjects)
         else:
             V = _with_missing(variance.subset(idx), "keep").with_columns(sel.voxels).X.astype(np.float64)
             got = _combine_blocks(lambda cols: combine(effect=X[:, cols], variance=V[:, cols], method="random"),
@@ -171,9 +209,10 @@ def study_maps(sel: Selection, *, min_subjects: int = 3, variance: Selection | N
             mean, var, z, n = got["effect"], got["variance"], got["z"], got["n_studies"]
             t = z
         ok = n >= min_subjects
+        left["study below min_subjects"][s] = np.where(ok, 0, n)
         for key, val in (("effect", mean), ("variance", var), ("t", t), ("z", z), ("n", n)):
             out[key][s] = np.where(ok, val, np.nan)
-    return StudyMaps(studies, out["effect"], out["variance"], out["t"], out["z"], out["n"], counts)
+    return StudyMaps(studies, out["effect"], out["variance"], out["t"], out["z"], out["n"], counts, left)
 
 
 def variance_maps(sel: Selection) -> Selection:
@@ -278,6 +317,11 @@ def _effects(sums, shift: np.ndarray, method: str, max_iter: int = 100,
                     tau2 = new
                 info["reml_passes"] = passes
                 info["reml_unconverged"] = int(moving.sum())
+            elif method == "random-hksj":
+                sw, swe, swe2 = sums(tau2, ((1, 0, 0), (1, 1, 0), (1, 2, 0)))[1]
+                est = swe / sw
+                spread = np.maximum(0.0, swe2 - swe ** 2 / sw)  # sum w (e - mu)^2
+                var = np.where(k > 1, spread / (np.maximum(k - 1, 1) * sw), np.nan)
             else:
                 sw, swe = sums(tau2, _WEIGHTS)[1]
                 est, var = swe / sw, 1.0 / sw
@@ -285,6 +329,9 @@ def _effects(sums, shift: np.ndarray, method: str, max_iter: int = 100,
             np.where((k > 1) & (q > 0), np.maximum(0.0, (q - (k - 1)) / q), np.where(k > 1, 0.0, np.nan))
         est = est + shift
         z = est / np.sqrt(var)
+        if method == "random-hksj":  # Student t with k - 1 DOF, given as the z of the same p
+            z = np.where(k > 1, _t_to_z(np.nan_to_num(z, nan=0.0), np.maximum(k - 1, 1)), np.nan)
+            z = np.where(np.isfinite(var) & (var > 0), z, np.nan)
     none = k == 0
     out = {"z": np.where(none, np.nan, z), "effect": np.where(none, np.nan, est),
            "variance": np.where(none, np.nan, var), "tau2": np.where(none, np.nan, tau2), "i2": i2,
@@ -322,15 +369,21 @@ def combine(z: np.ndarray | None = None, *, effect: np.ndarray | None = None, va
         e, v = np.atleast_2d(np.asarray(effect, dtype=np.float64)), np.atleast_2d(np.asarray(variance, dtype=np.float64))
         if e.shape != v.shape:
             raise ParameterError(f"effect {e.shape} and variance {v.shape} differ in shape")
+        left = {"zero variance": (v == 0) & np.isfinite(e), "negative variance": (v < 0) & np.isfinite(e),
+                "infinite effect or variance": (np.isinf(e) | np.isinf(v))}
         with warnings.catch_warnings():
             warnings.simplefilter("ignore", RuntimeWarning)  # voxels no study measured
             shift = np.nan_to_num(np.nanmedian(np.where(np.isfinite(v) & (v > 0), e, np.nan), axis=0))
         out = _effects(lambda tau, terms: _masked_sums(e - shift, v, tau, terms), shift, method)
+        for reason, where in left.items():
+            out["left_out:" + reason] = where.sum(axis=0)
         k = out["n_studies"]
     else:
         if z is None:
             raise ParameterError(f"method {method!r} needs z maps")
         zs = np.atleast_2d(np.asarray(z, dtype=np.float64))
+        capped = np.isinf(zs)  # p written as 0 or 1: kept, as the most extreme z the method carries
+        zs = np.where(capped, np.copysign(Z_CAP, zs), zs)
         ok = np.isfinite(zs)
         k = ok.sum(axis=0)
         z0 = np.where(ok, zs, 0.0)
@@ -346,7 +399,7 @@ def combine(z: np.ndarray | None = None, *, effect: np.ndarray | None = None, va
                 zz = (wt * z0).sum(axis=0) / np.sqrt((wt ** 2).sum(axis=0))
             else:  # fisher
                 zz = _fisher_z(np.where(ok, stats.norm.logsf(z0), 0.0).sum(axis=0), k)
-        out = {"z": np.where(k > 0, zz, np.nan)}
+        out = {"z": np.where(k > 0, zz, np.nan), f"capped:infinite z (kept at +-{Z_CAP:g})": capped.sum(axis=0)}
     out["p"] = np.where(np.isfinite(out["z"]), stats.norm.sf(out["z"]), np.nan)
     out["n_studies"] = k.astype(np.int64)
     return out
@@ -384,38 +437,65 @@ def fdr_threshold(z: np.ndarray, q: float = 0.05) -> float:
     return float(stats.norm.isf(p[below[-1]]))
 
 
-def pool(sel: Selection, method: str = "random", *, min_subjects: int = 3, min_studies: int = 2,
+def pool(sel: Selection, method: str = DEFAULT_METHOD, *, min_subjects: int = 3, min_studies: int = 2,
          leave_one_out: bool = False, use_variance: bool = False) -> PooledMaps:
     """Do the studies of a selection agree, and where?  Study-level one-sample maps of the selection's
     maps (per study: its subjects' maps), combined across studies with ``method`` (see :data:`METHODS`).
 
-    Voxels where fewer than ``min_studies`` studies have a value are NaN.  ``leave_one_out`` adds, per
-    study, how much leaving it out moves the combined z (``provenance["leave_one_out"]``: the largest
-    change and the correlation of the two maps).  ``use_variance`` weights each subject's effect map by
-    its own variance map (found by :func:`variance_maps`): a study's map is then the random-effects
-    combination of its subjects rather than their one-sample t.
+    The default, Stouffer's method on each study's one-sample z, is the method whose false-positive rate
+    on simulated null studies holds its nominal level (random effects on studies of a few subjects each
+    do not: see the user guide).  A selection of group-level maps (``level="group"``, one per study)
+    pools them directly: their z (a t through its DOF), or with ``use_variance`` their effects weighted
+    by their variance maps.
+
+    Voxels where fewer than ``min_studies`` studies have a value are NaN.  What was left out, and why, is
+    counted (``provenance["left_out"]``): subjects' infinite values (kept at +-Z_CAP for z and t maps),
+    studies below ``min_subjects`` at a voxel, zero or negative variances, voxels below ``min_studies``.
+    A stat the method cannot take (p, F, random effects on t or z) and an empty result are a
+    :class:`~mapstore.errors.PoolError` naming the option that changes it.  ``leave_one_out`` adds, per
+    study, how much leaving it out moves the combined z.
 
     Examples
     --------
     >>> import mapstore  # doctest: +SKIP
     >>> from mapstore.analyses import pool  # doctest: +SKIP
-    >>> sel = mapstore.open("store").select(concepts=["reading"], stat=["effect"], missing="keep")  # doctest: +SKIP
-    >>> res = pool(sel, "random-reml", use_variance=True)  # doctest: +SKIP
-    >>> res.peaks(3), float(np.nanmedian(res.i2))  # doctest: +SKIP
+    >>> sel = mapstore.open("store").select(concepts=["reading"], missing="keep")  # doctest: +SKIP
+    >>> res = pool(sel)  # doctest: +SKIP
+    >>> res.peaks(3), res.provenance["left_out"]  # doctest: +SKIP
     """
+    if method not in METHODS:
+        raise ParameterError(f"method must be one of {list(METHODS)}, got {method!r}")
+    if not isinstance(min_studies, int) or min_studies < 1:
+        raise ParameterError(f"min_studies must be a positive integer, got {min_studies!r}")
+    levels = set(map_levels(sel.meta)) if len(sel) else set()
+    group = levels == {"group"}
+    if "group" in levels and not group:
+        raise PoolError("the selection mixes group maps with subjects' maps; pool one level (level='subject', the "
+                        "default, or level='group': one group map per study)")
+    native = _check_stats(sel, method, use_variance, group)
     variance = variance_maps(sel) if use_variance else None
-    sm = study_maps(sel, min_subjects=min_subjects, variance=variance)
+    sm = _group_maps(sel, native, variance) if group else \
+        study_maps(sel, min_subjects=min_subjects, variance=variance, capped=native != {"effect"})
     res = _combine_study_maps(sm, method)
     few = res["n_studies"] < min_studies
+    below = few & (res["n_studies"] > 0)
     for key in ("z", "p", "effect", "variance", "tau2", "i2", "q"):
         if key in res:
             res[key] = np.where(few, np.nan, res[key])
+    if not np.isfinite(res["z"]).any():
+        most = int(res["n_studies"].max()) if res["n_studies"].size else 0
+        raise PoolError(f"nothing to pool: {len(sm.studies)} study(ies) ({', '.join(sm.studies) or 'none'}), at most "
+                        f"{most} with a value at any voxel, fewer than min_studies={min_studies}; select maps of "
+                        "more studies (--stat, --concept, --level), or lower --min-studies"
+                        + ("" if group else f" or --min-subjects ({min_subjects})"))
+    left = _left_out(sm, res, below)
     prov = {"method": method, "min_subjects": min_subjects, "min_studies": min_studies,
-            "study_maps": "random effects of subjects' effect and variance maps" if use_variance else
+            "study_maps": "the studies' group maps" if group else
+            "random effects of subjects' effect and variance maps" if use_variance else
             "one-sample t of subjects' maps",
             "store": str(sel.store.path) if sel.store is not None else None,
             "studies": {s: int(n) for s, n in zip(sm.studies, sm.n_subjects)}, "query": sel.query,
-            "feature_set": sel.feature_set.name, "maps": sel.map_ids,
+            "feature_set": sel.feature_set.name, "maps": sel.map_ids, "left_out": left,
             "row_sha256": sel.meta["feature_row_sha256"].tolist() if "feature_row_sha256" in sel.meta else [],
             "versions": {"mapstore": __version__, "numpy": np.__version__},
             "created": time.strftime("%Y-%m-%dT%H:%M:%S"),
@@ -435,6 +515,83 @@ def pool(sel: Selection, method: str = "random", *, min_subjects: int = 3, min_s
         prov["leave_one_out"] = loo
     return PooledMaps(method, res["z"], res["p"], res["n_studies"], res.get("effect"), res.get("variance"),
                       res.get("tau2"), res.get("i2"), res.get("q"), sm.studies, sel, prov)
+
+
+def _check_stats(sel: Selection, method: str, use_variance: bool, group: bool) -> set[str]:
+    """What the selection's values are ({'z'} for a z feature set, else its maps' stats), refused when the
+    method cannot take them."""
+    converted = sel.feature_set.spec.stat == "z"
+    stats = {"z"} if converted else {str(s) for s in sel.meta["stat"]}
+    bad = sorted(stats - set(POOLABLE))
+    if bad:
+        raise PoolError(f"pool takes z, t or effect maps, not {', '.join(bad)} maps: a p, F or -log10 p map pools "
+                        "once it is z (build a z feature set, 'mapstore features --stat z' with --p-sided one or two "
+                        "as the writer computed p), or choose --stat z/t/effect")
+    by_study = sel.meta.groupby("study")["stat"].nunique() if not converted else None
+    if by_study is not None and (by_study > 1).any():
+        study = by_study[by_study > 1].index[0]
+        raise PoolError(f"study {study!r} has maps of several stats ({', '.join(sorted(stats))}); a study's maps "
+                        "must be one stat: choose one with --stat")
+    if method in _EFFECT_METHODS and stats != {"effect"}:
+        raise PoolError(f"{method} combines effects with their variances; the selection holds "
+                        f"{'z values (a z feature set)' if converted else ', '.join(sorted(stats)) + ' maps'}: pool "
+                        "t or z maps with stouffer (the default), or select effect maps (--stat effect)")
+    if group and stats == {"effect"} and not use_variance:
+        raise PoolError("group effect maps pool with their variance maps (--use-variance), or pool the groups' t "
+                        "or z maps")
+    return stats
+
+
+def _group_maps(sel: Selection, stats: set[str], variance: Selection | None) -> StudyMaps:
+    """One group map per study, as its study map: z (t through its DOF), or effect with its variance."""
+    studies = sorted({str(s) for s in sel.studies})
+    per = sel.meta.groupby("study").size()
+    if (per > 1).any():
+        study = per[per > 1].index[0]
+        raise PoolError(f"study {study!r} has {int(per[study])} group maps of this selection; pool one per study "
+                        "(narrow it with --where or --concept)")
+    order = [int(np.flatnonzero(sel.studies.astype(str) == s)[0]) for s in studies]
+    X = _with_missing(sel, "keep").X.astype(np.float64)[order]
+    inf = np.isinf(X)
+    capped = stats != {"effect"}
+    X = np.where(inf, np.copysign(Z_CAP, X), X) if capped else np.where(inf, np.nan, X)
+    n_inputs = sel.meta["n_inputs"].to_numpy(np.float64)[order] if "n_inputs" in sel.meta else \
+        np.full(len(order), np.nan)
+    n = np.broadcast_to(n_inputs[:, None], X.shape).copy()
+    if variance is not None:
+        V = _with_missing(variance, "keep").with_columns(sel.voxels).X.astype(np.float64)[order]
+        with np.errstate(invalid="ignore", divide="ignore"):
+            z = np.where(V > 0, X / np.sqrt(V), np.nan)
+        return StudyMaps(studies, X, V, z, z, n, np.nan_to_num(n_inputs).astype(np.int64),
+                         {"infinite value (left out)": inf.astype(np.int64)})
+    if stats == {"t"} and sel.feature_set.spec.stat != "z":
+        dof = sel.meta["dof"].to_numpy(np.float64)[order]
+        if not np.all(np.isfinite(dof) & (dof > 0)):
+            raise PoolError("a group t map without degrees of freedom cannot become z; add DegreesOfFreedom to its "
+                            "sidecar, or pool a z feature set")
+        z = _t_to_z(X, dof[:, None])
+    else:
+        z = X
+    return StudyMaps(studies, np.full_like(X, np.nan), np.full_like(X, np.nan), X, z, n,
+                     np.nan_to_num(n_inputs).astype(np.int64), {f"infinite value (kept at +-{Z_CAP:g})":
+                                                               inf.astype(np.int64)})
+
+
+def _left_out(sm: StudyMaps, res: dict[str, np.ndarray], below: np.ndarray) -> dict[str, dict[str, int]]:
+    """Per reason, how many values (a subject's or a study's at a voxel) were left out or kept at a cap,
+    and at how many voxels."""
+    out: dict[str, dict[str, int]] = {}
+    for reason, counts in sm.left_out.items():
+        if counts.any():
+            out[f"subjects: {reason}"] = {"values": int(counts.sum()), "voxels": int((counts > 0).any(axis=0).sum())}
+    for key, counts in res.items():
+        if key.startswith(("left_out:", "capped:")) and np.asarray(counts).any():
+            out["studies: " + key.split(":", 1)[1]] = {"values": int(counts.sum()), "voxels": int((counts > 0).sum())}
+    if below.any():
+        out["voxels below min_studies"] = {"values": int(res["n_studies"][below].sum()), "voxels": int(below.sum())}
+    if int(res.get("reml_unconverged", 0)):
+        out["studies: REML did not converge"] = {"values": 0, "voxels": int(res["reml_unconverged"])}
+    return out
 
 
 def _combine_study_maps(sm: StudyMaps, method: str) -> dict[str, np.ndarray]:
@@ -502,12 +659,26 @@ def _write_pooled(result: PooledMaps, folder, fdr_q: float) -> dict[str, Any]:
     from ..formats import sha256_file
 
     files = written + ["peaks.tsv"]
-    prov = dict(result.provenance, fdr={"q": fdr_q, "z_threshold": thr,
+    prov = dict(result.provenance, fdr={"q": fdr_q, "z_threshold": thr if np.isfinite(thr) else None,
                                          "n_tested": int(np.isfinite(result.z).sum())}, files=files,
                 file_sha256={f: sha256_file(str(folder / f)) for f in files},
                 sources=_sources(result.selection) if result.selection is not None else [])
-    (folder / "pooled.json").write_text(json.dumps(prov, indent=1, default=str))
+    # strict JSON: no NaN or Infinity (a value nothing gave is null)
+    (folder / "pooled.json").write_text(json.dumps(_strict(prov), indent=1, default=str, allow_nan=False))
     return prov
+
+
+def _strict(obj: Any) -> Any:
+    """The record with every non-finite number as None (JSON has no NaN or Infinity)."""
+    if isinstance(obj, dict):
+        return {k: _strict(v) for k, v in obj.items()}
+    if isinstance(obj, (list, tuple)):
+        return [_strict(v) for v in obj]
+    if isinstance(obj, (float, np.floating)):
+        return float(obj) if np.isfinite(obj) else None
+    if isinstance(obj, np.integer):
+        return int(obj)
+    return obj
 
 
 def _sources(sel: Selection) -> list[dict[str, Any]]:
@@ -656,7 +827,12 @@ def _pool_maps(sel: Selection, method: str, variance: Selection | None, n: np.nd
             weights = np.sqrt(np.asarray(n, dtype=np.float64))
         k = np.zeros(ncol, dtype=np.int64)
         s1, s2 = np.zeros(ncol), np.zeros(ncol)
+        capped = np.zeros(ncol, dtype=np.int64)
         for idx, zb, _ in _ahead(sel.blocks(rows, reuse=True)):
+            inf = np.isinf(zb)
+            if inf.any():  # kept at the most extreme z the method carries, as combine() keeps them
+                capped += inf.sum(axis=0)
+                zb = np.where(inf, np.copysign(np.float32(Z_CAP), zb), zb)
             if method == "fisher":
                 ok = np.isfinite(zb)
                 k += ok.sum(axis=0)
@@ -678,6 +854,9 @@ def _pool_maps(sel: Selection, method: str, variance: Selection | None, n: np.nd
         with np.errstate(invalid="ignore", divide="ignore"):
             z = _fisher_z(s1, k) if method == "fisher" else s1 / np.sqrt(s2)
         res = {"z": np.where(k > 0, z, np.nan)}
+        if capped.any():
+            info["left_out"] = {f"studies: infinite z (kept at +-{Z_CAP:g})": {
+                "values": int(capped.sum()), "voxels": int((capped > 0).sum())}}
     res["p"] = np.where(np.isfinite(res["z"]), stats.norm.sf(res["z"]), np.nan)
     studies = [str(s) for s in sel.studies]
     prov = {"method": method, "given_maps": sel.map_ids, "feature_set": sel.feature_set.name, "query": sel.query,

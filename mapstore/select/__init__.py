@@ -3,7 +3,8 @@
 from __future__ import annotations
 
 from ._export import ExportReport, VerifyReport, export_selection, json_schemas, read_manifest, verify
-from ._query import SCHEMES, Selection, align_columns, check_classes, check_folds, check_leakage, select
+from ._query import (SCHEMES, Selection, align_columns, check_classes, check_folds, check_leakage, map_levels,
+                     resolve_levels, select)
 
 
 __all__ = [
@@ -13,6 +14,8 @@ __all__ = [
     "check_leakage",
     "SCHEMES",
     "json_schemas",
+    "map_levels",
+    "resolve_levels",
     "read_manifest",
     "export_selection",
     "ExportReport",

@@ -306,7 +306,7 @@ def gunzip(raw: bytes, limit: int | None = None) -> bytes:
         d = z.decompressobj(16 + z.MAX_WBITS)
         try:
             out += d.decompress(data, limit - len(out))
-        except z.error as exc:  # zlib's own error class: a corrupt stream is a ValueError to the caller
+        except z.error as exc:  # type: ignore[misc]  # zlib's own error class: a corrupt stream is a ValueError to the caller
             raise ValueError(str(exc)) from exc
         if not d.eof:
             break  # the limit reached, or the stream cut short (the length check says which)
