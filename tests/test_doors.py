@@ -102,13 +102,13 @@ def test_a_second_pool_replaces_the_first_whole_and_leftovers_go(small, tmp_path
     st = mapstore.open(small["store"])
     sel = st.select(stat=["t"], group_by="study", missing="keep")
     out = tmp_path / "pooled"
-    write_pooled(pool(sel, "fixed", min_subjects=2), out)
-    first = set(os.listdir(out))
+    write_pooled(pool(sel, "stouffer", min_subjects=2), out)
+    (out / "pooled_stat-left-by-an-older-version.nii.gz").write_bytes(b"x")  # a file the second run did not write
     stale = tmp_path / ".pooled.999999-0123abcd.partial"  # what a killed run (a dead pid) left
     stale.mkdir()
-    write_pooled(pool(sel, "stouffer", min_subjects=2), out, overwrite=True)
-    now = set(os.listdir(out))
-    assert "pooled_stat-effect.nii.gz" in first and "pooled_stat-effect.nii.gz" not in now
+    write_pooled(pool(sel, "fisher", min_subjects=2), out, overwrite=True)
+    assert not (out / "pooled_stat-left-by-an-older-version.nii.gz").exists()  # replaced whole
+    assert json.loads((out / "pooled.json").read_text())["method"] == "fisher"
     assert not stale.exists() and not [n for n in os.listdir(tmp_path) if n.endswith(".partial")]
     assert not verify_pooled(out)
 
