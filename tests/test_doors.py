@@ -17,7 +17,7 @@ import numpy as np
 import pytest
 
 import mapstore
-from mapstore.errors import ExportError, OutputPlaceError, VocabularyError
+from mapstore.errors import ExportError, MapstoreError, OutputPlaceError, VocabularyError
 
 from .conftest import box_4mm, make_derivative, noise_maps, write_json, write_map
 
@@ -328,3 +328,27 @@ def test_a_rebuild_of_an_export_on_a_custom_grid(tmp_path):
     out = Path(st.export(tmp_path / "exp", st.select(stat=["t"], group_by="subject")).out)
     rep = mapstore.rebuild(out, [tmp_path / "src"], tmp_path / "again", store=tmp_path / "s2")
     assert rep.ok, rep.summary()
+
+
+def test_crafted_pooled_records_are_refused_or_reported(small, tmp_path):
+    from mapstore.analyses import pool, verify_pooled, write_pooled
+
+    st = mapstore.open(small["store"])
+    out = tmp_path / "pooled"
+    write_pooled(pool(st.select(stat=["t"], group_by="study", missing="keep"), min_subjects=2), out)
+    good = json.loads((out / "pooled.json").read_text())
+    for crafted in ({**good, "file_sha256": [1, 2]}, {**good, "sources": "x"}, [1],
+                    {**good, "x": json.loads("[" * 40 + "]" * 40)}):
+        (out / "pooled.json").write_text(json.dumps(crafted))
+        with pytest.raises(MapstoreError) as err:
+            verify_pooled(out)
+        assert "\n" not in str(err.value) and "pooled.json" in str(err.value)
+    (out / "pooled.json").write_text("[" * 100_000 + "]" * 100_000)
+    with pytest.raises(MapstoreError):
+        verify_pooled(out)
+    # an output file that is a link out of the folder is not the folder's
+    outside = tmp_path / "elsewhere.tsv"
+    os.replace(out / "peaks.tsv", outside)
+    (out / "peaks.tsv").symlink_to(outside)
+    (out / "pooled.json").write_text(json.dumps(good))
+    assert any("leads out of the folder" in c for c in verify_pooled(out))

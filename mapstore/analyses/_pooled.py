@@ -30,6 +30,7 @@ from typing import Any, Callable
 
 import numpy as np
 
+from ..formats import digest_map, foreign_format
 from ..store import check_output, output_folder
 from .._version import __version__
 from ..errors import ParameterError, PoolError
@@ -701,25 +702,56 @@ def verify_pooled(folder) -> list[str]:
 
     from ..formats import sha256_file
 
+    from ..formats import nesting_depth
+
     folder = Path(os.fspath(folder))
+    record = folder / "pooled.json"
+    # a pooled record someone sent is untrusted input: bounded, its types checked before use
     try:
-        prov = json.loads((folder / "pooled.json").read_text())
+        if record.stat().st_size > _RECORD_LIMIT:
+            raise ValueError(f"larger than {_RECORD_LIMIT >> 20} MiB")
+        prov = json.loads(record.read_text())
+        if not isinstance(prov, dict) or nesting_depth(prov, 16) > 16:
+            raise ValueError("not an object, or nested deeper than 16 levels")
+    except RecursionError as exc:
+        raise ParameterError(f"{folder}: pooled.json is nested too deeply; give a folder 'mapstore pool' wrote") from exc
     except (OSError, ValueError) as exc:
+        if folder.name.endswith(".partial"):
+            raise ParameterError(f"{folder}: the unfinished folder of an interrupted run, not a result; run it "
+                                 "again (the next run removes it)") from exc
         raise ParameterError(f"{folder}: no readable pooled.json ({exc}); give a folder 'mapstore pool' wrote") from exc
+    files = prov.get("file_sha256") or {}
+    lists = [prov.get("sources") or [], prov.get("variance_sources") or []]
+    sources = [s for part in lists if isinstance(part, list) for s in part]
+    if not isinstance(files, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in files.items()) \
+            or not all(isinstance(part, list) for part in lists) or not all(isinstance(s, dict) for s in sources):
+        raise ParameterError(f"{folder}: a malformed pooled.json (file_sha256 must map names to hashes, sources be "
+                             "objects); give a folder 'mapstore pool' wrote")
     changes = []
-    for name, sha in (prov.get("file_sha256") or {}).items():
-        p = folder / str(name)
-        if "/" in str(name) or not p.is_file():
+    base = os.path.realpath(folder)
+    for name, sha in files.items():
+        p = folder / name
+        if "/" in name or "\\" in name or name in ("", ".", "..") or not p.is_file():
             changes.append(f"output file missing: {name}")
+        elif not os.path.realpath(p).startswith(base + os.sep):
+            changes.append(f"output file leads out of the folder (a symbolic link): {name}")
         elif sha256_file(str(p)) != sha:
             changes.append(f"output file changed: {name}")
-    for s in (prov.get("sources") or []) + (prov.get("variance_sources") or []):
+    hashed: dict[str, str] = {}
+    for s in sources:
         p = Path(str(s.get("path")))
         if not p.is_file():
             changes.append(f"source missing: {p}")
-        elif s.get("sha256") and sha256_file(str(p)) != s["sha256"]:
+            continue
+        key = os.path.realpath(p)
+        if key not in hashed and s.get("sha256"):
+            hashed[key] = digest_map(str(p)).sha256 if foreign_format(str(p)) else sha256_file(str(p))
+        if s.get("sha256") and hashed[key] != s["sha256"]:
             changes.append(f"source changed: {p}")
     return changes
+
+
+_RECORD_LIMIT = 256 << 20  # bytes of a pooled.json
 
 
 def _ahead(items):
