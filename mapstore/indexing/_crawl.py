@@ -211,6 +211,16 @@ def probe_file(path: str, cache: dict[bytes, dict[str, Any]] | None = None, prog
     return cols, dig.sha256, dig.nbytes
 
 
+def _failed_read(path: str, exc: Exception) -> Problem:
+    """The problem row of a file whose header could not be read: gone, damaged, or unreadable."""
+    if isinstance(exc, HeaderError):
+        return Problem(path, exc.code, exc.reason, exc.remedy, stage="header")
+    if isinstance(exc, FileNotFoundError):
+        return Problem(path, "missing-file", "file vanished during the crawl", "index again")
+    return Problem(path, "unreadable", f"cannot read file ({getattr(exc, 'strerror', None) or exc})",
+                   "check permissions")
+
+
 def _too_large(path: str, declared: int, limit: int) -> Problem:
     return Problem(path, "map-too-large", f"the header declares {declared:,} bytes of voxel data, more than the "
                    f"{limit >> 20:,} MiB a map may hold (a damaged header, or a compressed bomb); not read",
@@ -226,12 +236,8 @@ def probe_foreign(path: str, progress=None, max_bytes: int = MAX_MAP_MB << 20,
         if info.facts.data_nbytes > max_bytes:
             return _too_large(path, info.facts.data_nbytes, max_bytes)
         dig = digest_map(path, progress=progress)
-    except FileNotFoundError:
-        return Problem(path, "missing-file", "file vanished during the crawl", "index again")
-    except HeaderError as exc:
-        return Problem(path, exc.code, exc.reason, exc.remedy, stage="header")
-    except OSError as exc:
-        return Problem(path, "unreadable", f"cannot read file ({exc.strerror})", "check permissions")
+    except (HeaderError, OSError) as exc:
+        return _failed_read(path, exc)
     if info.surface_vertices is not None:
         return _surface_overlay(path, info, dig, entities or {})
     refused = _not_a_map(path, info.facts)
@@ -324,12 +330,8 @@ def probe_surface_file(path: str, entities: dict[str, str], progress=None, max_b
     try:
         dig = digest_file(path, progress=progress)
         facts = read_surface_header(path)
-    except FileNotFoundError:
-        return Problem(path, "missing-file", "file vanished during the crawl", "index again")
-    except HeaderError as exc:
-        return Problem(path, exc.code, exc.reason, exc.remedy, stage="header")
-    except OSError as exc:
-        return Problem(path, "unreadable", f"cannot read file ({exc.strerror})", "check permissions")
+    except (HeaderError, OSError) as exc:
+        return _failed_read(path, exc)
     declared = facts.n_vertices * facts.n_volumes * max(1, (facts.bitpix or 32) // 8)
     if declared > max_bytes:
         return _too_large(path, declared, max_bytes)
