@@ -559,6 +559,8 @@ class _RowBuilder:
         self.native = 0  # native-space maps: their registration lives outside the unit's files
         self.registrations = RegistrationFinder(unit.ds.root, unit.ds.source_roots, unit.transforms)
         self.layouts = LayoutReader(unit.ds.root, unit.ds.key, jsons, unit.ds.index_root)
+        over = unit.overrides
+        self.levels_given = any("level" in v for v in (*over.datasets.values(), *over.subjects.values()))
 
     def _header(self, m) -> tuple[dict[str, Any], str, int, int] | None:
         """Header columns, sha256, size and header position of a map (None, with a problem, when it cannot
@@ -620,7 +622,9 @@ class _RowBuilder:
             return
         hdr, sha, nbytes, hpos = got
         ds = self.ds
-        given = m.entities.pop("level", None) or self.unit.overrides.apply(ds.key, m.entities.get("sub"), {}).get("level")
+        given = m.entities.pop("level", None)
+        if given is None and self.levels_given:  # an origins file that sets levels
+            given = self.unit.overrides.apply(ds.key, m.entities.get("sub"), {}).get("level")
         if given is not None and given not in LEVELS:
             self.problems.append(Problem(m.path, "bad-level", f"level {given!r} (from a name rule or the origins "
                                          f"file) is not one of {', '.join(LEVELS)}; the layout's level is used",

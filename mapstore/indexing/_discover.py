@@ -866,8 +866,8 @@ def _written_twice(ds: DatasetInfo, maps: list[MapFile]) -> list[Problem]:
     """A map saved both as .nii and .nii.gz (or in two cases of one name): both are kept, and said."""
     by_stem: dict[str, list[MapFile]] = {}
     for m in maps:
-        stem, _ = split_map_name(m.relpath) or (m.relpath, "")
-        by_stem.setdefault(stem.lower(), []).append(m)
+        ext = m.entities.get("extension") or ""
+        by_stem.setdefault(m.relpath[:len(m.relpath) - len(ext)].lower(), []).append(m)
     out = []
     for group in by_stem.values():
         if len(group) > 1:

@@ -159,24 +159,38 @@ class LayoutReader:
             sub = subject_from_path(relpath, digit_folders)
             if sub:
                 out.entities["sub"] = sub
-        feat = next((i for i in range(len(parts) - 2, -1, -1) if parts[i].endswith(".feat")), None)
+        feat, spm, node, group_folder = self._folder(parts[:-1])
         if feat is not None:
             self._feat(parts, feat, entities, out)
-        elif os.path.isfile(os.path.join(self.root, *parts[:-1], "SPM.mat")):
+        elif spm:
             self._spm(parts, entities, out)
         layout = out.level  # what a writer's own files said (FEAT, SPM)
         if layout is None:
-            for p in parts[:-1]:
-                if p.startswith("node-"):
-                    layout = self._nodes.get(p[5:]) or _level_word(p[5:]) or layout
-                elif _norm(p) in GROUP_FOLDERS and not entities.get("sub"):
-                    layout = "group"  # a folder named like a group analysis, maps named for no subject
+            # a node folder's level; a folder named like a group analysis, for maps named for no subject
+            layout = node or ("group" if group_folder and not entities.get("sub") else None)
         if given:
             out.level = given
         else:
             out.level = layout or level_from_entities({**entities, **out.entities})
         assert out.level in LEVELS
         return out
+
+    def _folder(self, parts: list[str]) -> tuple[int | None, bool, str | None, bool]:
+        """What a map's folder says, read once per folder: the last .feat step, an SPM.mat beside it, the
+        level of a node- folder, a folder named like a group analysis."""
+        key = "/".join(parts)
+        hit = self._cache.get("folder:" + key)
+        if hit is None:
+            feat = next((i for i in range(len(parts) - 1, -1, -1) if parts[i].endswith(".feat")), None)
+            spm = feat is None and os.path.isfile(os.path.join(self.root, *parts, "SPM.mat"))
+            node, group = None, False
+            for p in parts:
+                if p.startswith("node-"):
+                    node = self._nodes.get(p[5:]) or _level_word(p[5:]) or node
+                elif _norm(p) in GROUP_FOLDERS:
+                    group = True
+            hit = self._cache["folder:" + key] = (feat, spm, node, group)
+        return hit
 
     # --- FEAT ----------------------------------------------------------------------------------
     def _feat(self, parts: list[str], i: int, entities: dict[str, str], out: LayoutFacts) -> None:
