@@ -142,7 +142,8 @@ class IndexReport:
             f"store: {self.store}",
             f"datasets: {self.n_datasets}   maps: {self.n_maps}   "
             f"(new {self.n_new}, changed {self.n_changed}, unchanged {self.n_unchanged}, removed {self.n_removed})",
-            f"read {self.n_new + self.n_changed} files in {self.seconds:.2f} s ({rate:,.0f} maps/s)",
+            f"read {self.n_new + self.n_changed} file{'' if self.n_new + self.n_changed == 1 else 's'} in "
+            f"{self.seconds:.2f} s ({rate:,.0f} maps/s)",
         ]
         if self.n_kept_datasets:
             lines.append(f"kept {self.n_kept_datasets} dataset(s) from earlier runs, not under these roots")
