@@ -13,7 +13,14 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from ._api import open_store
 from .errors import ExportError, ParameterError
+from .features import build_features
+from .indexing import builtin_rules, index
+from .labels import label_store
+from .select import read_manifest
+from .store import check_output
+from .targets import KINDS
 
 __all__ = ["RebuildReport", "rebuild"]
 
@@ -37,36 +44,18 @@ class RebuildReport:
         return head + ("" if self.ok else "\n" + "\n".join(f"  {d}" for d in self.differences[:20]))
 
 
-_MAX_GRID = 512 ** 3  # voxels of a declared grid: far above any real template (MNI152 1 mm: 7.2 million)
-
-
-def _grid_and_mask(man: dict[str, Any]) -> tuple[Any, str]:
+def _build_arguments(man: dict[str, Any]) -> dict[str, Any]:
+    """The feature-build arguments the manifest's set records, as its kind of target reads them."""
     spec = man["feature_settings"]
-    grid = spec.get("grid")
-    if not isinstance(grid, dict) or not isinstance(spec.get("mask"), dict):
+    kind = spec.get("geometry", "volume")  # manifests before the kind was recorded: volume sets
+    if kind not in KINDS:
+        raise ExportError(f"the manifest's feature set is of an unknown kind {kind!r} (known: {', '.join(KINDS)})")
+    if not isinstance(spec.get("grid"), dict) or not isinstance(spec.get("mask"), dict):
         raise ExportError("the manifest's feature_settings have no grid and mask objects; export again")
-    name = grid.get("name")
-    if name in ("MNI152-1mm", "MNI152-2mm", "MNI152-3mm"):
-        grid_arg: Any = name
-    else:
-        shape, affine = grid.get("shape"), grid.get("affine")
-        if not (isinstance(shape, list) and len(shape) == 3 and all(isinstance(v, int) and not isinstance(v, bool)
-                                                                    and v > 0 for v in shape)):
-            raise ExportError(f"the manifest's grid shape {shape!r} is not three positive whole numbers")
-        if shape[0] * shape[1] * shape[2] > _MAX_GRID:
-            raise ExportError(f"the manifest's grid {shape} has more than {_MAX_GRID:,} voxels; no template is that "
-                              "large")
-        flat = affine if isinstance(affine, list) and len(affine) == 16 else \
-            [v for row in affine for v in row] if isinstance(affine, list) and all(
-                isinstance(r, list) and len(r) == 4 for r in affine) and len(affine) == 4 else None
-        if flat is None or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in flat):
-            raise ExportError("the manifest's grid affine is not 16 numbers")
-        grid_arg = {"shape": shape, "affine": [flat[i:i + 4] for i in range(0, 16, 4)]}
-    mask = spec["mask"].get("name")
-    if mask != "MNI152-brain":
-        raise ParameterError(f"the export's feature set used mask {mask!r}: only the built-in brain mask can be "
-                             "rebuilt from a manifest")
-    return grid_arg, "brain"
+    try:
+        return KINDS[kind].rebuild_arguments(spec["grid"], spec["mask"], spec)
+    except ParameterError as exc:
+        raise ExportError(str(exc)) from exc
 
 
 def _write_given(folder: Path, kind: str, i: int, given: dict[str, Any]) -> str:
@@ -86,9 +75,6 @@ def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[st
     The name rules and origins the first index used are taken from the manifest, which keeps their
     content; ``rules`` and ``origins`` (files or preset names) replace them when given.
     """
-    from .select import read_manifest
-    from .store import check_output
-
     mpath, man = read_manifest(manifest)
     if "feature_settings" not in man or "datasets" not in man:
         raise ExportError(f"{mpath}: the manifest predates rebuilds (no feature settings or dataset names); "
@@ -109,8 +95,6 @@ def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[st
     given = Path(tempfile.mkdtemp(prefix=f"mapstore-rebuild-inputs-{os.getpid()}-"))
     try:
         if rules is None and kept.get("rules"):
-            from .indexing import builtin_rules
-
             presets = builtin_rules()
             for r in kept["rules"]:
                 if "preset" in r and r["preset"] not in presets:
@@ -173,19 +157,16 @@ def _check_rebuild_fields(man: dict[str, Any], mpath: Path) -> None:
 
 
 def _rebuild(man: dict[str, Any], sources, out, store_path: Path, given: Path, rules, origins) -> RebuildReport:
-    from . import build_features, index, label, open as open_store
-
     index(sources, store_path, rules=rules, origins=origins, progress=False)
     settings = man["feature_settings"]
-    grid, mask = _grid_and_mask(man)
-    build_features(store_path, settings["name"], grid=grid, mask=mask, method=settings["method"],
+    build_features(store_path, settings["name"], **_build_arguments(man), method=settings["method"],
                    stat=settings["stat"], p_sided=settings["p_sided"], zero_as_missing=settings["zero_as_missing"],
                    background=settings["background"], model_maps="model" in settings.get("kinds", ["contrast"]),
                    progress=False)
     if man.get("vocabulary_content"):
         vocab = given / "vocabulary-from-manifest.json"
         vocab.write_text(json.dumps(man["vocabulary_content"]))
-        label(store_path, vocab, inherit_broader=(man.get("vocabulary") or {}).get("inherit_broader"))
+        label_store(store_path, vocab, inherit_broader=(man.get("vocabulary") or {}).get("inherit_broader"))
     st = open_store(store_path)
     names = {k: v["name"] for k, v in man["datasets"].items()}
     by_place = {}

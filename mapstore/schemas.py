@@ -181,6 +181,9 @@ def _head_schema() -> dict[str, Any]:
 
 def all_schemas() -> dict[str, dict[str, Any]]:
     """Every schema by file name (long because the schemas are written out here as literals)."""
+    from .targets import KINDS, METHODS, REDUCERS
+
+    kinds = list(KINDS)  # the kinds of target, as registered
     out = {
         "maps.schema.json": arrow_to_json_schema("maps", MAPS_SCHEMA, "One statistic map.", MAPS_DOCS),
         "datasets.schema.json": arrow_to_json_schema("datasets", DATASETS_SCHEMA,
@@ -224,14 +227,15 @@ def all_schemas() -> dict[str, dict[str, Any]]:
             "name": {"type": "string"},
             "grid": {"type": "object", "required": ["name", "shape", "grid_id"],
                      "properties": {"name": {"type": "string"},
-                                    "kind": {"enum": ["volume", "surface", "grayordinates", "parcels"]},
+                                    "kind": {"enum": kinds, "description": "older sets only: the kind is "
+                                                                            "'geometry'"},
                                     "shape": {"type": "array", "items": {"type": "integer"}, "minItems": 1,
                                               "maxItems": 3},
                                     "affine": {"type": ["array", "null"], "items": {"type": "number"},
                                                "minItems": 16, "maxItems": 16},
                                     "hemispheres": {"type": "object"},
                                     "grid_id": {"type": "string"}}},
-            "geometry": {"enum": ["volume", "surface", "grayordinates", "parcels"]},
+            "geometry": {"enum": kinds, "description": "the kind of target the rows live on"},
             "sketch": {"enum": ["count", "gauss"],
                        "description": "sketch directions of the rows: sparse count sketch, or dense Gaussian "
                                       "(sets of fewer than 2,048 features)"},
@@ -243,7 +247,7 @@ def all_schemas() -> dict[str, dict[str, Any]]:
             "grid_id": {"type": "string"},
             "mask": {"type": "object", "required": ["name", "n_voxels", "sha256"]},
             "mask_sha256": {"type": "string"},
-            "method": {"enum": ["linear", "nearest", "cubic", "nearest-vertex", "mean", "maps-regression"]},
+            "method": {"enum": [*METHODS, "nearest-vertex", *REDUCERS]},
             "stat": {"enum": ["native", "z"]},
             "p_sided": {"enum": ["one", "two"]},
             "zero_as_missing": {"type": "boolean"},

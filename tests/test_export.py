@@ -209,7 +209,7 @@ def test_missing_policies_against_numpy(labelled_store):
     vol = np.asarray(img.dataobj).reshape(-1)
     np.testing.assert_array_equal(vol[fs.mask_indices[want]], common.X[0])
     assert np.isnan(np.delete(vol, fs.mask_indices[want])).all()
-    np.testing.assert_array_equal(img.affine, fs.grid.affine_array)
+    np.testing.assert_array_equal(img.affine, fs.target.affine_array)
     with pytest.raises(mapstore.MapstoreError, match="missing must be one of"):
         st.select(missing="impute")
 

@@ -86,8 +86,8 @@ def test_to_image_round_trip(featured_store):
     fs = st.features()
     x = fs.matrix(fs.map_ids[:1])[0]
     img = st.to_image(x)
-    assert isinstance(img, nib.Nifti1Image) and img.shape == fs.grid.shape
-    np.testing.assert_array_equal(img.affine, fs.grid.affine_array)
+    assert isinstance(img, nib.Nifti1Image) and img.shape == fs.target.shape
+    np.testing.assert_array_equal(img.affine, fs.target.affine_array)
     back = img.get_fdata(dtype=np.float32).reshape(-1)[fs.mask_indices]
     np.testing.assert_array_equal(back, x)
     with pytest.raises(FeatureError, match="mask voxels"):

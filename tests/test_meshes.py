@@ -104,7 +104,7 @@ def _full(fs, store, like: str) -> np.ndarray:
     s = mapstore.open(store)
     (mid,) = s.sql(f"SELECT map_id FROM maps WHERE relpath LIKE '{like}' AND coalesce(hemi, 'L') = 'L'"
                    ).column(0).to_pylist()
-    full = np.full(fs.grid.n_vertices, np.nan, np.float32)
+    full = np.full(fs.target.n_vertices, np.nan, np.float32)
     full[fs.mask_indices] = fs.matrix([mid])[0]
     return full
 
@@ -118,8 +118,8 @@ def perm_set(described, maps):
 def test_description_gives_the_mesh_and_its_cortex(described, perm_set):
     rep, fs = perm_set
     p = described["perm"]
-    assert fs.geometry == "surface" and fs.grid.name == "perm5" and fs.grid.space == "perm"
-    assert fs.grid.n_vertices == 2 * N5 and rep.unit == "vertices"
+    assert fs.target.kind == "surface" and fs.target.name == "perm5" and fs.target.space == "perm"
+    assert fs.target.n_vertices == 2 * N5 and rep.unit == "vertices"
     # the cortex files are the mask (the builtin medial wall, renumbered)
     from mapstore.targets._surface import builtin_surface, cortex_mask
 
@@ -250,7 +250,7 @@ def test_grayordinate_template_on_a_described_mesh(described, maps, tmp_path):
     assert rep.n_problems == 0, rep.problems
     s = mapstore.open(maps["store"])
     fs = s.features("grey-perm")
-    assert fs.grid.mesh is not None and fs.grid.mesh.space == "perm"
+    assert fs.target.mesh is not None and fs.target.mesh.space == "perm"
     (mid,) = s.sql("SELECT map_id FROM maps WHERE relpath LIKE '%space-MNI152%'").column(0).to_pylist()
     got = fs.matrix([mid])[0]
     proj = fs.spec.projection
@@ -291,10 +291,10 @@ def test_grayordinate_sets_have_pictures(described, maps, tmp_path):
     # and NaN on the cortex draws only below the cortex views
     fs = s.features("grey-pic")
     row = np.where(ax.surface_mask, np.nan, 1.0)
-    pic = _grayordinate_views(fs.grid, row)
+    pic = _grayordinate_views(fs.target, row)
     cortex_rows = 110 + 4  # surface_views height, then the gap
     assert np.isnan(pic[:cortex_rows]).all() and np.nansum(pic[cortex_rows:]) > 0
-    bg = _grayordinate_views(fs.grid, None)
+    bg = _grayordinate_views(fs.target, None)
     assert bg.shape == pic.shape and np.isfinite(bg[:cortex_rows]).any()
 
 
@@ -360,7 +360,7 @@ def test_freesurfer_surfaces_label_and_morph_files_describe_a_mesh(maps, tmp_pat
     np.testing.assert_array_equal(fs.mask_indices, np.flatnonzero(wall))  # the labels are the mask
     from mapstore.targets._surface import sulcal_depth
 
-    np.testing.assert_allclose(sulcal_depth(fs.grid)[:N5], np.linspace(-1, 1, N5), atol=1e-6)
+    np.testing.assert_allclose(sulcal_depth(fs.target)[:N5], np.linspace(-1, 1, N5), atol=1e-6)
     ok = np.zeros(2 * N5, bool)
     ok[fs.mask_indices] = True
     # fsaverage4 maps: nearest vertex on the FreeSurfer sphere (scipy's KD-tree, plain distances)

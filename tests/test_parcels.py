@@ -52,7 +52,7 @@ def voxel_store(tmp_path_factory):
 
 
 def _mask_img(fs):
-    return nib.Nifti1Image(np.isfinite(fs.unmask(np.ones(fs.n_voxels))).astype(np.uint8), fs.grid.affine_array)
+    return nib.Nifti1Image(np.isfinite(fs.unmask(np.ones(fs.n_voxels))).astype(np.uint8), fs.target.affine_array)
 
 
 def test_label_atlas_means_equal_nilearn_labels_masker(voxel_store):
@@ -84,7 +84,7 @@ def test_label_atlas_means_equal_nilearn_labels_masker(voxel_store):
     vec = fs.matrix([fs.map_ids[0]])[0]
     img = fs.to_image(vec)
     vals = np.asarray(img.dataobj)
-    assert vals.shape == src.grid.shape
+    assert vals.shape == src.target.shape
     assert set(np.round(np.unique(vals[np.isfinite(vals)]), 4)) <= set(np.round(vec, 4))
     # a second run keeps every row (same source rows, same atlas)
     again = mapstore.build_parcels(store, str(atlas), source=SET, name="blocks")
@@ -98,12 +98,12 @@ def test_probabilistic_atlas_equals_nilearn_maps_masker(voxel_store):
     s = mapstore.open(store)
     src = s.features(SET)
     # five invented Gaussian blobs on the set's own grid
-    ijk = np.indices(src.grid.shape).reshape(3, -1).T
+    ijk = np.indices(src.target.shape).reshape(3, -1).T
     centres = [(20, 30, 25), (40, 30, 25), (30, 50, 30), (30, 20, 35), (30, 40, 15)]
-    maps = np.stack([np.exp(-((ijk - np.array(c)) ** 2).sum(axis=1) / (2 * 5.0 ** 2)).reshape(src.grid.shape)
+    maps = np.stack([np.exp(-((ijk - np.array(c)) ** 2).sum(axis=1) / (2 * 5.0 ** 2)).reshape(src.target.shape)
                      for c in centres], axis=-1).astype(np.float32)
     atlas = base / "blobs.nii.gz"
-    nib.save(nib.Nifti1Image(maps, src.grid.affine_array), str(atlas))
+    nib.save(nib.Nifti1Image(maps, src.target.affine_array), str(atlas))
     mapstore.build_parcels(store, str(atlas), source=SET, name="blobs")
     fs = mapstore.open(store).features("blobs")
     assert fs.spec.method == "maps-regression" and fs.n_voxels == 5
@@ -177,7 +177,7 @@ def test_parcel_sets_check_select_and_export(voxel_store, tmp_path):
     assert sel.X.shape == (8, 27)
     out = s.export(tmp_path / "x", sel)
     assert verify(tmp_path / "x" / "manifest.json").ok and out.n_features == 27
-    assert json.loads((tmp_path / "x" / "manifest.json").read_text())["feature_set"]["grid"]["kind"] == "parcels"
+    assert json.loads((tmp_path / "x" / "manifest.json").read_text())["feature_settings"]["geometry"] == "parcels"
 
 
 @pytest.fixture(scope="module")
@@ -228,7 +228,7 @@ def test_surface_parcellation_equals_nilearn_and_is_stored_as_gifti_labels(surfa
     got = np.concatenate([np.asarray(imgs[p].darrays[0].data) for p in ("left", "right")])
     # nilearn's Parcellations on the same rows, mask and mesh, built here by hand (reference library)
     fs = sel.feature_set
-    n = fs.grid.n_left
+    n = fs.target.n_left
     inmask = np.zeros(2 * n, bool)
     inmask[fs.mask_indices[sel.voxels]] = True
     mesh = load_fsaverage("fsaverage5")["pial"]

@@ -186,11 +186,14 @@ def test_the_pooled_map_peaks_at_the_shared_effect_and_a_flipped_study_raises_i2
     assert json.loads((tmp_path / "out" / "pooled.json").read_text())["fdr"]["n_tested"] == prov["fdr"]["n_tested"]
     img = nib.load(str(tmp_path / "out" / "pooled_stat-z.nii.gz"))
     np.testing.assert_allclose(img.affine, aff)
+    # the images say what they hold: nibabel reads the NIfTI-1 intent codes (z score 5, p value 22)
+    assert img.header.get_intent()[0] == "z score"
+    assert nib.load(str(tmp_path / "out" / "pooled_stat-p.nii.gz")).header.get_intent()[0] == "p value"
 
 
 def _column_of(sel, ijk) -> int:
     fs = sel.feature_set
-    flat = int(np.ravel_multi_index(ijk, fs.grid.shape))
+    flat = int(np.ravel_multi_index(ijk, fs.target.shape))
     return int(np.flatnonzero(fs.mask_indices[sel.voxels] == flat)[0])
 
 

@@ -13,6 +13,7 @@ from pathlib import Path
 
 import nibabel as nib
 import numpy as np
+import pyarrow.parquet as pq
 import pytest
 from nibabel.gifti import GiftiDataArray, GiftiImage
 
@@ -248,7 +249,7 @@ def _row(store, relpath_like: str):
     s = mapstore.open(store)
     fs = s.features("fsaverage5-cortex-native")
     (mid,) = [r["map_id"] for r in s.sql(f"SELECT map_id FROM maps WHERE relpath LIKE '{relpath_like}'").to_pylist()]
-    full = np.full(fs.grid.n_vertices, np.nan, np.float32)
+    full = np.full(fs.target.n_vertices, np.nan, np.float32)
     full[fs.mask_indices] = fs.matrix([mid])[0]
     return fs, mid, full
 
@@ -258,7 +259,7 @@ def test_surface_set_joins_hemispheres_left_then_right(pooled):
 
     assert pooled["report"].n_problems == 0, pooled["report"].problems
     fs, mid, full = _row(pooled["store"], "%sub-01_task-viewing_hemi-L_den-10242_contrast-facesminusplaces_stat-z%")
-    assert fs.geometry == "surface" and full.size == 2 * N5
+    assert fs.target.kind == "surface" and full.size == 2 * N5
     root = pooled["surface"] / "sub-01"
     # nibabel reads the two files nilearn wrote (reference): the row is left's values, then right's
     ref = np.concatenate([nib.load(str(root / f"sub-01_task-viewing_hemi-{h}_den-10242_contrast-facesminusplaces_"
@@ -338,7 +339,17 @@ def test_surface_selection_export_and_leakage_guard(pooled, tmp_path):
 
     assert verify(Path(rep.out) / "manifest.json").ok
     man = json.loads((Path(rep.out) / "manifest.json").read_text())
-    assert man["feature_set"]["grid"]["kind"] == "surface"
+    assert man["feature_settings"]["geometry"] == "surface"
+    # X's columns say where they are without mapstore: hemisphere and vertex, and a mask per hemisphere
+    # that nibabel reads with the mesh's vertex count
+    cols = pq.read_table(Path(rep.out) / "columns.parquet").to_pandas()
+    assert set(cols["hemi"]) == {"L", "R"} and cols["vertex"].between(0, N5 - 1).all()
+    flat = np.where(cols["hemi"] == "R", cols["vertex"] + N5, cols["vertex"])
+    np.testing.assert_array_equal(flat, cols["grid_index"])
+    for hemi in ("L", "R"):
+        gii = nib.load(str(Path(rep.out) / f"mask_hemi-{hemi}.func.gii"))
+        inside = np.flatnonzero(gii.darrays[0].data > 0)
+        np.testing.assert_array_equal(inside, np.sort(cols.loc[cols["hemi"] == hemi, "vertex"].to_numpy()))
     assert s.check("fsaverage5-cortex-native").count("error") == 0
 
 
@@ -386,7 +397,7 @@ def test_grayordinate_set_pools_cifti_gifti_and_volume_maps(pooled, tmp_path):
     assert rep.n_problems == 0
     s = mapstore.open(pooled["store"])
     fs = s.features("grey")
-    assert fs.geometry == "grayordinates" and fs.n_voxels == len(ax)
+    assert fs.target.kind == "grayordinates" and fs.n_voxels == len(ax)
 
     def row(like):
         (mid,) = s.sql(f"SELECT map_id FROM maps WHERE relpath ILIKE '{like}'").column(0).to_pylist()

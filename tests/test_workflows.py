@@ -254,7 +254,7 @@ def test_encoding_scores_equal_scikit_learn_per_voxel(store):
     np.testing.assert_allclose(got.r2, r2_score(X, P, multioutput="raw_values"), rtol=1e-3, atol=1e-4)
     j = int(np.nanargmax(got.r2))
     assert abs(got.r[j] - np.corrcoef(X[:, j], P[:, j])[0, 1]) < 1e-4
-    assert names == got.descriptors and got.to_image("r2").shape == store.features().grid.shape
+    assert names == got.descriptors and got.to_image("r2").shape == store.features().target.shape
     # descriptors from a table keyed by contrast (one invented stimulus feature per contrast)
     import pandas as pd
 

@@ -58,10 +58,8 @@ class Conjunction:
         cols = self.columns[idx]
         out = pd.DataFrame({"column": cols, "z": self.z[idx], "weight": self.weights[idx],
                             "sign": np.sign(self.z[idx]).astype(int)})
-        affine = getattr(fs.grid, "affine_array", None)
-        if affine is not None and len(getattr(fs.grid, "shape", ())) == 3:
-            ijk = np.array(np.unravel_index(fs.mask_indices[cols], fs.grid.shape)).T
-            mm = ijk @ affine[:3, :3].T + affine[:3, 3] if len(ijk) else np.zeros((0, 3))
+        mm = fs.target.millimetres(fs.mask_indices[cols])
+        if mm is not None:
             out["x_mm"], out["y_mm"], out["z_mm"] = mm[:, 0], mm[:, 1], mm[:, 2]
         return out.sort_values("z", key=np.abs, ascending=False).reset_index(drop=True)
 

@@ -103,34 +103,24 @@ class PooledMaps:
         if self.selection is None:
             return []
         fs = self.selection.feature_set
-        vol = np.full(fs.n_voxels, np.nan, dtype=np.float32)
-        vol[self.selection.voxels] = self.z
-        grid = fs.unmask(vol)
-        cand: list[tuple[float, tuple[int, ...]]] = []
+        row = np.full(fs.n_voxels, np.nan, dtype=np.float32)
+        row[self.selection.voxels] = self.z
+        target = fs.target
+        full = fs.unmask(row).reshape(-1)
         thr = -np.inf if threshold is None else threshold
-        if grid.ndim == 3:
-            from scipy import ndimage
-
-            filled = np.nan_to_num(grid, nan=-np.inf)
-            local = (filled == ndimage.maximum_filter(filled, size=3, mode="constant", cval=-np.inf))
-            for ijk in np.argwhere(local & np.isfinite(grid) & (grid >= thr)):
-                cand.append((float(grid[tuple(ijk)]), tuple(int(c) for c in ijk)))
-        else:  # a mesh or grayordinates: the highest values
-            flat_grid = grid.reshape(-1)
-            for i in np.flatnonzero(np.isfinite(flat_grid) & (flat_grid >= thr)):
-                cand.append((float(flat_grid[i]), (int(i),)))
-        cand.sort(key=lambda c: -c[0])
-        affine = getattr(fs.grid, "affine_array", None)
+        cand = target.local_maxima(full)
+        cand = cand[full[cand] >= thr]
+        top = cand[np.argsort(-full[cand], kind="stable")[:k]]
+        mm = target.millimetres(top)
         flat_of = {int(c): j for j, c in enumerate(fs.mask_indices[self.selection.voxels])}
         out = []
-        for v, pos in cand[:k]:
-            flat = int(np.ravel_multi_index(pos, grid.shape)) if len(pos) == 3 else pos[0]
-            row: dict[str, Any] = {"position": list(pos), "z": v}
-            if affine is not None and len(pos) == 3:
-                row["mm"] = [round(float(c), 2) for c in (affine[:3, :3] @ np.array(pos) + affine[:3, 3])]
-            j = flat_of.get(flat)
-            row["n_studies"] = int(self.n_studies[j]) if j is not None else 0
-            out.append(row)
+        for i, flat in enumerate(top):
+            peak: dict[str, Any] = {"position": target.position(int(flat)), "z": float(full[flat])}
+            if mm is not None:
+                peak["mm"] = [round(float(c), 2) for c in mm[i]]
+            j = flat_of.get(int(flat))
+            peak["n_studies"] = int(self.n_studies[j]) if j is not None else 0
+            out.append(peak)
         return out
 
 
@@ -630,26 +620,11 @@ def write_pooled(result: PooledMaps, out, fdr_q: float = 0.05, *, overwrite: boo
 
 
 def _write_pooled(result: PooledMaps, folder, fdr_q: float) -> dict[str, Any]:
-    written = []
-    fs = result.selection.feature_set if result.selection is not None else None
-    suffix = ".dscalar.nii" if fs is not None and fs.geometry == "grayordinates" else \
-        ".func.gii" if fs is not None and fs.geometry == "surface" else ".nii.gz"
+    written: list[str] = []
     for key in ("z", "p", "effect", "variance", "tau2", "i2", "n_studies"):
         if getattr(result, key) is None:
             continue
-        img = result.to_image(key)
-        if suffix == ".func.gii":  # a nilearn SurfaceImage: one GIFTI file per hemisphere
-            for hemi, part in (("L", "left"), ("R", "right")):
-                import nibabel as nib
-
-                data = np.asarray(img.data.parts[part], dtype=np.float32)
-                path = folder / f"pooled_hemi-{hemi}_stat-{key}{suffix}"
-                nib.save(nib.gifti.GiftiImage(darrays=[nib.gifti.GiftiDataArray(data)]), str(path))
-                written.append(path.name)
-        else:
-            path = folder / f"pooled_stat-{key}{suffix}"
-            img.to_filename(str(path))
-            written.append(path.name)
+        written += _write_map(result, key, folder)
     thr = result.fdr(fdr_q)
     peaks = result.peaks(20, threshold=thr if np.isfinite(thr) else None)
     with open(folder / "peaks.tsv", "w", encoding="utf-8") as fh:
@@ -667,6 +642,20 @@ def _write_pooled(result: PooledMaps, folder, fdr_q: float) -> dict[str, Any]:
     # strict JSON: no NaN or Infinity (a value nothing gave is null)
     (folder / "pooled.json").write_text(json.dumps(_strict(prov), indent=1, default=str, allow_nan=False))
     return prov
+
+
+_INTENTS = {"z": ("NIFTI_INTENT_ZSCORE",), "p": ("NIFTI_INTENT_PVAL",)}
+
+
+def _write_map(result: PooledMaps, key: str, folder) -> list[str]:
+    """One pooled map as image file(s) on the set's target (its intent code where the format has one)."""
+    sel = result.selection
+    if sel is None:
+        raise PoolError("pooled maps without their selection cannot be written as images")
+    fs = sel.feature_set
+    row = np.full(fs.n_voxels, np.nan, dtype=np.float32)
+    row[sel.voxels] = np.asarray(getattr(result, key), dtype=np.float32)
+    return fs.target.write_image(fs.unmask(row), folder, f"pooled_stat-{key}", _INTENTS.get(key))
 
 
 def _strict(obj: Any) -> Any:

@@ -120,7 +120,7 @@ def build_parcels(store: str | os.PathLike[str], atlas: Any, *, source: str | No
         if isinstance(atlas, str) and atlas.startswith("store:"):
             found = stored_atlas(store_path, atlas[len("store:"):])
             atlas = {k: str(v) for k, v in found.items()} if isinstance(found, dict) else str(found)
-        at = load_atlas(atlas, fs.grid, fs.mask_indices, fs.geometry,
+        at = load_atlas(atlas, fs.target, fs.mask_indices, fs.target.kind,
                         name=given[len("store:"):] if isinstance(given, str) and given.startswith("store:") else None)
         name = _safe(name or f"{src_name}-{at.name}")
         if name == src_name or name == DEFAULT_SET:
@@ -174,7 +174,7 @@ def _parcel_spec(name: str, fs: FeatureSet, at: Atlas, source_spec_id: str | Non
             "geometry": "parcels",
             "parcels": {"atlas": at.source, "atlas_name": at.name, "atlas_sha256": at.sha256, "kind": at.kind,
                         "reducer": at.reducer, "labels": at.labels, "source_set": fs.name,
-                        "source_spec_id": source_spec_id or src.get("spec_id"), "source_geometry": fs.geometry,
+                        "source_spec_id": source_spec_id or src.get("spec_id"), "source_geometry": fs.target.kind,
                         "source_grid": src["grid"], "source_mask_sha256": src["mask_sha256"]}}
     spec["spec_id"] = spec_id({**spec, "projection": {"parcels": spec["parcels"]["atlas_sha256"],
                                                        "source": spec["parcels"]["source_spec_id"],
@@ -444,7 +444,7 @@ def fit_parcellation(sel, name: str, *, n_parcels: int = 100, method: str = "war
     flat[inside] = labels + 1  # 0: outside the mask
     prov = {"name": name, "method": method, "n_parcels": int(labels.max()) + 1, "n_parcels_asked": int(n_parcels),
             "random_state": random_state, "feature_set": sel.feature_set.name,
-            "geometry": sel.feature_set.geometry, "grid": sel.feature_set.grid.to_json(),
+            "geometry": sel.feature_set.target.kind, "grid": sel.feature_set.target.to_json(),
             "feature_set_spec_id": sel.feature_set.spec.spec_id, "query": sel.query,
             "maps": sel.map_ids, "row_sha256": sel.meta["feature_row_sha256"].tolist(),
             "versions": {"mapstore": __version__, "nilearn": nilearn.__version__},

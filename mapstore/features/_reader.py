@@ -37,8 +37,7 @@ class FeatureSet:
             self._rows_file = pq.ParquetFile(self._rows_path)  # the footer only: columns are read when needed
         except (OSError, ValueError, pa.ArrowException) as exc:
             raise FeatureError(f"{self.path}: feature set {name!r} is unreadable ({exc})") from exc
-        self.grid: Target = target_of_set(self.spec.to_json(), self.path)
-        self.geometry: str = self.grid.kind
+        self.target: Target = target_of_set(self.spec.to_json(), self.path)
         self._indices: np.ndarray | None = None
         self._shards: dict[str, np.ndarray] = {}
         self._columns: dict[str, pa.ChunkedArray | None] = {}
@@ -78,14 +77,14 @@ class FeatureSet:
 
     def __repr__(self) -> str:
         return (f"FeatureSet({self.name!r}, rows={len(self)}, voxels={self.n_voxels}, "
-                f"grid={self.grid.name}, mask={self.spec.mask['name']})")
+                f"grid={self.target.name}, mask={self.spec.mask['name']})")
 
     def _repr_html_(self) -> str:
         from ..formats import html_table
 
         spec = self.spec
         return html_table(f"feature set {self.name!r}", ["rows", self.unit, "grid", "mask", "method", "stat"],
-                          [[len(self), self.n_voxels, self.grid.name, spec.mask["name"], spec.method, spec.stat]])
+                          [[len(self), self.n_voxels, self.target.name, spec.mask["name"], spec.method, spec.stat]])
 
     @property
     def n_voxels(self) -> int:
@@ -95,7 +94,7 @@ class FeatureSet:
     @property
     def unit(self) -> str:
         """What a row's values are: voxels, vertices, grayordinates or parcels."""
-        return self.grid.unit
+        return self.target.unit
 
     @property
     def map_ids(self) -> list[str]:
@@ -261,13 +260,26 @@ class FeatureSet:
         return np.array([cov[self._pos[m]] for m in map_ids])
 
     @property
-    def target(self) -> Target:
-        """The set's target (a :class:`mapstore.targets.Target`: its kind, geometry, images, pictures)."""
-        return self.grid
+    def grid(self) -> Target:
+        """Deprecated: the set's :attr:`target`."""
+        import warnings
+
+        warnings.warn("FeatureSet.grid is now FeatureSet.target; grid goes in the next release", DeprecationWarning,
+                      stacklevel=2)
+        return self.target
+
+    @property
+    def geometry(self) -> str:
+        """Deprecated: the kind of the set's target, ``target.kind``."""
+        import warnings
+
+        warnings.warn("FeatureSet.geometry is now FeatureSet.target.kind; geometry goes in the next release",
+                      DeprecationWarning, stacklevel=2)
+        return self.target.kind
 
     def base(self) -> Target:
         """The target rows are drawn on (a parcel set's: its source set's)."""
-        return self.grid.base()
+        return self.target.base()
 
     def unmask(self, vector: np.ndarray) -> np.ndarray:
         """A mask-length vector over every position of the target (NaN outside the mask), in its shape."""
@@ -275,11 +287,11 @@ class FeatureSet:
         if v.size != self.n_voxels:
             raise FeatureError(f"vector has {v.size} values, feature set {self.name!r} has "
                                f"{self.n_voxels} mask {self.unit}")
-        return self.grid.full(v, self.mask_indices)
+        return self.target.full(v, self.mask_indices)
 
     def on_base(self, vector: np.ndarray) -> np.ndarray:
         """A row as values over its base's positions (volume-shaped, or both hemispheres' vertices)."""
-        return self.grid.on_base(self.unmask(vector))
+        return self.target.on_base(self.unmask(vector))
 
     def transform(self, image, stat: str | None = None, *, dof: float | None = None, dof1: float | None = None,
                   mask_img=None, registration=None, space: str | None = None) -> np.ndarray:
@@ -311,9 +323,6 @@ class FeatureSet:
         from ..targets import BatchContext, BuildSettings, SourceMap
 
         spec = self.spec
-        if self.geometry == "parcels":
-            raise FeatureError(f"{self.name!r} is a parcel set: transform the map with its source set, then "
-                               "reduce it with the set's ParcelReducer")
         if spec.stat == "z" and stat is None:
             raise FeatureError(f"feature set {self.name!r} converts maps to z: say the map's stat (stat='t', "
                                "with dof=...)")
@@ -332,15 +341,15 @@ class FeatureSet:
                              space=space, space_kind="native" if steps else "template",
                              registration={"to": "template", "steps": steps} if steps else None,
                              dof_numerator=dof1)
-            region, local = self.grid.crop(self.mask_indices)
-            row = self.grid.values(item, settings, BatchContext(), region, local)
+            region, local = self.target.crop(self.mask_indices)
+            row = self.target.values(item, settings, BatchContext(), region, local)
         return np.asarray(row.values, dtype=np.float32)
 
     def to_image(self, vector: np.ndarray):
         """An image of a row (or of a decoder's coefficients): NIfTI (nibabel) on a volume set's grid, a
         nilearn ``SurfaceImage`` on a surface set's mesh (NaN outside the mask: the medial wall), CIFTI-2
         on a grayordinate set's template, a parcel set's painted onto its source set's target."""
-        return self.grid.image(self.unmask(vector))
+        return self.target.image(self.unmask(vector))
 
 
 def _as_files(image, folder: str, name: str) -> list[str]:

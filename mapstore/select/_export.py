@@ -7,8 +7,10 @@ Output folder::
                       compressed, readable by zarr, xarray and Dask); columns as the selection's
                       missing-value policy keeps them
     voxels.npy        flat C-order grid index of each column of X (paints a row back onto the grid)
-    columns.parquet   each column's grid index, and on a volume grid its i, j, k and millimetres
-    mask.nii.gz       X's columns as a mask image on the grid (mask.dscalar.nii on grayordinates)
+    columns.parquet   each column's grid index, and where it is (a volume's i, j, k and millimetres, a
+                      mesh's hemisphere and vertex, a parcel's name)
+    mask.*            X's columns as a mask image on the set's target (mask.nii.gz on a volume grid,
+                      mask_hemi-L/R.func.gii on a mesh, mask.dscalar.nii on grayordinates)
     y.npy / Y.npy     targets: class names, or a 0/1 matrix over concepts (with concepts.json)
     groups.npy        group label per row
     meta.parquet      one row per map: ids, entities, origin, concepts, coverage, fold / split
@@ -248,28 +250,16 @@ def _write_npy(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None
 
 
 def _write_columns(tmp: Path, sel: Selection, voxels: np.ndarray) -> None:
-    """What each column of X is, readable without mapstore: ``columns.parquet`` (grid index; on a volume
-    grid also i, j, k and millimetres) and the columns as a mask image (``mask.nii.gz`` on a volume grid,
-    ``mask.dscalar.nii`` on grayordinates)."""
+    """What each column of X is, readable without mapstore: ``columns.parquet`` (grid index, and where the
+    target says so i, j, k and millimetres, hemisphere and vertex, or parcel) and the columns as a mask
+    image on the set's target."""
     fs = sel.feature_set
     flat = fs.mask_indices[voxels].astype(np.int64)
-    cols: dict[str, Any] = {"column": np.arange(len(flat)), "grid_index": flat}
-    if fs.geometry == "volume":
-        shape = tuple(fs.grid.shape)
-        ijk = np.stack(np.unravel_index(flat, shape)).astype(np.int64)
-        mm = fs.grid.affine_array[:3, :3] @ ijk + fs.grid.affine_array[:3, 3:4]
-        cols.update(i=ijk[0], j=ijk[1], k=ijk[2], x_mm=mm[0], y_mm=mm[1], z_mm=mm[2])
+    cols: dict[str, Any] = {"column": np.arange(len(flat)), "grid_index": flat, **fs.target.position_columns(flat)}
     pq.write_table(pa.table(cols), tmp / "columns.parquet")
-    full = np.full(fs.n_voxels, np.nan, dtype=np.float32)
-    full[voxels] = 1.0
-    img = fs.to_image(full)
-    if fs.geometry == "volume":
-        import nibabel as nib
-
-        data = np.nan_to_num(np.asarray(img.dataobj, dtype=np.float32)) > 0
-        nib.save(nib.Nifti1Image(data.astype(np.uint8), img.affine), str(tmp / "mask.nii.gz"))
-    elif fs.geometry == "grayordinates":
-        img.to_filename(str(tmp / "mask.dscalar.nii"))
+    flags = np.zeros(fs.target.n_positions, dtype=bool)
+    flags[flat] = True
+    fs.target.write_mask(tmp, flags.reshape(fs.target.shape))
 
 
 def _write_zarr(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> None:

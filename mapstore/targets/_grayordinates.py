@@ -87,7 +87,7 @@ class GrayordinateTarget(MeshedTarget):
         return {h: n for h, (_, _, n) in cortex_positions(self.axis()).items()}
 
     def to_json(self) -> dict[str, Any]:
-        return {"name": self.name, "kind": "grayordinates", "shape": [self.n_grayordinates], "affine": None,
+        return {"name": self.name, "shape": [self.n_grayordinates], "affine": None,
                 "grid_id": self.grid_id, "grid_key": self.grid_key, "template": self.template, "template_sha256": self.sha256,
                 "structures": list(self.structures),
                 "order": "the template's brain-model axis: its structures in file order",
@@ -197,6 +197,8 @@ class GrayordinateTarget(MeshedTarget):
                 missing.append("no-cortex-mesh")
         return RowValues(out if indices is None else out[indices], conversion, how, "+".join(missing) or "none",
                          clipped)
+
+    image_suffix: ClassVar[str] = ".dscalar.nii"
 
     def image(self, full: np.ndarray):
         return to_cifti_image(full, self)

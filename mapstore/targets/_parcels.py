@@ -53,6 +53,7 @@ class ParcelGrid(Target):
     atlas_kind: str = "labels"  # labels | maps | surface-labels
     source: Target | None = None  # the source set's target
     folder: str | None = None  # the parcel set's folder
+    labels: tuple[str, ...] = ()  # each parcel's name, in order
 
     @property
     def shape(self) -> tuple[int]:  # type: ignore[override]
@@ -63,7 +64,7 @@ class ParcelGrid(Target):
         return hashlib.sha256(f"parcels|{self.atlas_sha256}|{self.n_parcels}".encode()).hexdigest()[:16]
 
     def to_json(self) -> dict[str, Any]:
-        return {"name": self.name, "kind": "parcels", "shape": [self.n_parcels], "affine": None,
+        return {"name": self.name, "shape": [self.n_parcels], "affine": None,
                 "grid_id": self.grid_id}
 
     @classmethod
@@ -77,11 +78,13 @@ class ParcelGrid(Target):
         p = spec["parcels"]
         source = target_of_set({"geometry": p["source_geometry"], "grid": p["source_grid"]})
         return cls(p["atlas_name"], len(p["labels"]), p["atlas_sha256"], p["kind"], source,
-                   os.fspath(folder) if folder is not None else None)
+                   os.fspath(folder) if folder is not None else None, tuple(str(n) for n in p["labels"]))
 
     def values(self, item: SourceMap, settings: BuildSettings, ctx: BatchContext, region: Any = None,
                indices: np.ndarray | None = None) -> RowValues:
-        raise FeatureError("a parcel set is made from a source feature set (mapstore.build_parcels), not from maps")
+        raise FeatureError(f"{self.name!r} is a parcel set, made from a source feature set (mapstore.build_parcels), "
+                           "not from maps: transform a map with the source set, then reduce it with the set's "
+                           "ParcelReducer")
 
     def base(self) -> Target:
         if self.source is None:
@@ -106,6 +109,17 @@ class ParcelGrid(Target):
 
     def image(self, full: np.ndarray):
         return self.base().image(self.on_base(full))
+
+    def write_image(self, full: np.ndarray, folder: Any, stem: str, intent: tuple[str, ...] | None = None) -> list[str]:
+        return self.base().write_image(self.on_base(full), folder, stem, intent)
+
+    def write_mask(self, folder: Any, flags: np.ndarray, stem: str = "mask") -> list[str]:
+        return self.base().write_mask(folder, np.nan_to_num(self.on_base(np.asarray(flags, np.float32))) > 0, stem)
+
+    def position_columns(self, flat: np.ndarray) -> dict[str, np.ndarray]:
+        if len(self.labels) != self.n_parcels:
+            return {}
+        return {"parcel": np.asarray(self.labels, dtype=object)[np.asarray(flat, dtype=np.int64)].astype(str)}
 
     def views(self, full: np.ndarray) -> np.ndarray:
         return self.base().views(self.on_base(full))

@@ -301,6 +301,51 @@ class Target(abc.ABC):
     def image(self, full: np.ndarray):
         """An image of values over every position: NIfTI, nilearn ``SurfaceImage`` or CIFTI-2."""
 
+    image_suffix: ClassVar[str] = ".nii.gz"  # the file an :meth:`image` is written to
+
+    def write_image(self, full: np.ndarray, folder: Any, stem: str, intent: tuple[str, ...] | None = None) -> list[str]:
+        """Write values over every position as image file(s) ``stem`` + suffix in ``folder``; the names
+        written.  ``intent`` (a NIfTI intent name and its parameters, e.g. ``("NIFTI_INTENT_ZSCORE",)``) is set where the
+        format has one."""
+        img = self.image(full)
+        if intent is not None and hasattr(img.header, "set_intent"):
+            img.header.set_intent(intent[0], tuple(intent[1:]))
+        name = f"{stem}{self.image_suffix}"
+        img.to_filename(os.path.join(os.fspath(folder), name))
+        return [name]
+
+    def write_mask(self, folder: Any, flags: np.ndarray, stem: str = "mask") -> list[str]:
+        """Write booleans over every position as a mask image in ``folder`` (1 inside, 0 outside)."""
+        return self.write_image(np.asarray(flags, dtype=np.float32).reshape(self.shape), folder, stem)
+
+    # -- describing positions (export columns, peak tables) -----------------------------------------
+    def position_columns(self, flat: np.ndarray) -> dict[str, np.ndarray]:
+        """Columns that say where each position (flat index) is, beside the index itself: a volume's i, j,
+        k and millimetres, a mesh's hemisphere and vertex. The default: none."""
+        return {}
+
+    def position(self, flat: int) -> list[int]:
+        """A position as the target's own coordinates (a volume's i, j, k; else the index)."""
+        return [int(flat)]
+
+    def millimetres(self, flat: np.ndarray) -> np.ndarray | None:
+        """(n, 3) world coordinates in mm of positions, where the target has them (None: it has not)."""
+        return None
+
+    def local_maxima(self, full: np.ndarray) -> np.ndarray:
+        """Flat indices of the positions a peak table may list: a volume's local maxima (26 neighbours);
+        by default every position with a value."""
+        return np.flatnonzero(np.isfinite(np.asarray(full).reshape(-1)))
+
+    # -- rebuilding from a shared manifest ------------------------------------------------------
+    @classmethod
+    def rebuild_arguments(cls, grid: Any, mask: Any, settings: dict[str, Any]) -> dict[str, Any]:
+        """The feature-build arguments (``grid``, ``mask`` and any of this kind's own) that remake a set
+        from an export manifest's records: ``grid`` (the set's ``grid`` document), ``mask`` (its mask
+        record) and ``settings`` (its ``set.json``), all untrusted.  The default refuses in one line."""
+        raise ParameterError(f"a {cls.kind} set cannot be rebuilt from a manifest alone (it depends on files on "
+                             "the machine that built it); build the set yourself and export again")
+
     def base(self) -> "Target":
         """The target rows are drawn on (a parcel set's: its source set's)."""
         return self

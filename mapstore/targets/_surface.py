@@ -161,7 +161,7 @@ class SurfaceTarget(MeshedTarget):
 
     def to_json(self) -> dict[str, Any]:
         doc: dict[str, Any] = {
-            "name": self.name, "kind": "surface", "shape": [self.n_vertices], "affine": None,
+            "name": self.name, "shape": [self.n_vertices], "affine": None,
             "grid_id": self.grid_id, "hemispheres": {"L": self.n_left, "R": self.n_right},
             "order": f"left hemisphere vertices 0..{self.n_left - 1}, then right hemisphere vertices"}
         if self.files:
@@ -201,6 +201,47 @@ class SurfaceTarget(MeshedTarget):
     @classmethod
     def from_json(cls, doc: dict[str, Any]) -> "SurfaceTarget":
         return surface_from_spec(doc)
+
+    image_suffix: ClassVar[str] = ".func.gii"
+
+    def write_image(self, full: np.ndarray, folder: Any, stem: str, intent: tuple[str, ...] | None = None) -> list[str]:
+        """One GIFTI file per hemisphere (``stem_hemi-L.func.gii``), named by its cortex structure."""
+        import nibabel as nib
+
+        v = np.asarray(full, dtype=np.float32).reshape(-1)
+        names = []
+        for hemi, structure in (("L", "CortexLeft"), ("R", "CortexRight")):
+            arr = nib.gifti.GiftiDataArray(np.ascontiguousarray(v[self.part(hemi)]),
+                                           intent=intent[0] if intent else "NIFTI_INTENT_NONE",
+                                           datatype="NIFTI_TYPE_FLOAT32")
+            img = nib.gifti.GiftiImage(darrays=[arr], meta=nib.gifti.GiftiMetaData(
+                {"AnatomicalStructurePrimary": structure}))
+            name = f"{stem}_hemi-{hemi}{self.image_suffix}"
+            nib.save(img, os.path.join(os.fspath(folder), name))
+            names.append(name)
+        return names
+
+    def position_columns(self, flat: np.ndarray) -> dict[str, np.ndarray]:
+        flat = np.asarray(flat, dtype=np.int64)
+        right = flat >= self.n_left
+        return {"hemi": np.where(right, "R", "L"), "vertex": np.where(right, flat - self.n_left, flat)}
+
+    @classmethod
+    def rebuild_arguments(cls, grid: Any, mask: Any, settings: dict[str, Any]) -> dict[str, Any]:
+        name = grid.get("name") if isinstance(grid, dict) else None
+        if not isinstance(name, str) or builtin_surface(name) is None or grid.get("files"):
+            return super().rebuild_arguments(grid, mask, settings)
+        mask_name = mask.get("name") if isinstance(mask, dict) else None
+        if mask_name not in (f"{name}-cortex", f"{name}-all"):
+            raise ParameterError(f"the export's feature set used mask {mask_name!r}: only the mesh's cortex or all "
+                                 "of it can be rebuilt from a manifest")
+        proj = settings.get("projection")
+        out: dict[str, Any] = {"grid": name, "mask": mask_name.rsplit("-", 1)[1]}
+        if isinstance(proj, dict) and proj.get("volumes") != "left out":
+            out["projection"] = proj
+        else:
+            out["volumes"] = False
+        return out
 
     def default_name(self, mask: Any, method: str, stat: str, default_settings: bool) -> str:
         return f"{self.name}-{'cortex' if str(mask) == 'brain' else os.path.basename(str(mask))}-{stat}"

@@ -53,6 +53,7 @@ __all__ = [
 METHODS = ("linear", "nearest", "cubic")
 _ORDER = {"nearest": 0, "linear": 1, "cubic": 3}
 BUILTIN_GRIDS = {"MNI152-2mm": 2, "MNI152-3mm": 3, "MNI152-1mm": 1}
+_MAX_GRID = 512 ** 3  # voxels of a declared grid: far above any real template (MNI152 1 mm: 7.2 million)
 
 
 @dataclass(frozen=True)
@@ -158,6 +159,62 @@ class TargetGrid(Target):
 
     def background(self) -> np.ndarray:
         return slice_views(mni152_template(self), self.affine_array)
+
+    def write_mask(self, folder: Any, flags: np.ndarray, stem: str = "mask") -> list[str]:
+        import nibabel as nib
+
+        name = f"{stem}.nii.gz"
+        data = (np.nan_to_num(np.asarray(flags, dtype=np.float32)) > 0).astype(np.uint8).reshape(self.shape)
+        nib.save(nib.Nifti1Image(data, self.affine_array), os.path.join(os.fspath(folder), name))
+        return [name]
+
+    def position_columns(self, flat: np.ndarray) -> dict[str, np.ndarray]:
+        ijk = np.stack(np.unravel_index(np.asarray(flat, dtype=np.int64), self.shape)).astype(np.int64)
+        mm = self.millimetres(flat)
+        return {"i": ijk[0], "j": ijk[1], "k": ijk[2], "x_mm": mm[:, 0], "y_mm": mm[:, 1], "z_mm": mm[:, 2]}
+
+    def position(self, flat: int) -> list[int]:
+        return [int(c) for c in np.unravel_index(int(flat), self.shape)]
+
+    def millimetres(self, flat: np.ndarray) -> np.ndarray:
+        ijk = np.stack(np.unravel_index(np.asarray(flat, dtype=np.int64), self.shape)).astype(np.float64)
+        aff = self.affine_array
+        return (aff[:3, :3] @ ijk + aff[:3, 3:4]).T
+
+    def local_maxima(self, full: np.ndarray) -> np.ndarray:
+        from scipy import ndimage
+
+        vol = np.asarray(full, dtype=np.float64).reshape(self.shape)
+        filled = np.nan_to_num(vol, nan=-np.inf)
+        local = filled == ndimage.maximum_filter(filled, size=3, mode="constant", cval=-np.inf)
+        return np.flatnonzero((local & np.isfinite(vol)).reshape(-1))
+
+    @classmethod
+    def rebuild_arguments(cls, grid: Any, mask: Any, settings: dict[str, Any]) -> dict[str, Any]:
+        name = grid.get("name") if isinstance(grid, dict) else None
+        if not isinstance(grid, dict):
+            raise ParameterError("the manifest's grid is not an object; export again")
+        if name in BUILTIN_GRIDS:
+            grid_arg: Any = name
+        else:
+            shape, affine = grid.get("shape"), grid.get("affine")
+            if not (isinstance(shape, list) and len(shape) == 3 and all(
+                    isinstance(v, int) and not isinstance(v, bool) and v > 0 for v in shape)):
+                raise ParameterError(f"the manifest's grid shape {shape!r} is not three positive whole numbers")
+            if shape[0] * shape[1] * shape[2] > _MAX_GRID:
+                raise ParameterError(f"the manifest's grid {shape} has more than {_MAX_GRID:,} voxels; no template "
+                                     "is that large")
+            flat = affine if isinstance(affine, list) and len(affine) == 16 else \
+                [v for row in affine for v in row] if isinstance(affine, list) and len(affine) == 4 and all(
+                    isinstance(r, list) and len(r) == 4 for r in affine) else None
+            if flat is None or not all(isinstance(v, (int, float)) and not isinstance(v, bool) for v in flat):
+                raise ParameterError("the manifest's grid affine is not 16 numbers")
+            grid_arg = {"shape": shape, "affine": [flat[i:i + 4] for i in range(0, 16, 4)]}
+        mask_name = mask.get("name") if isinstance(mask, dict) else None
+        if mask_name != "MNI152-brain":
+            raise ParameterError(f"the export's feature set used mask {mask_name!r}: only the built-in brain mask can "
+                                 "be rebuilt from a manifest")
+        return {"grid": grid_arg, "mask": "brain"}
 
     def peak(self, full: np.ndarray) -> tuple[int, int, int] | None:
         v = np.abs(np.asarray(full, dtype=np.float64).reshape(self.shape))
