@@ -20,7 +20,7 @@ import mapstore
 
 store = mapstore.open(sys.argv[1])
 sel = store.select(concepts=["visual-motion", "hand-movement", "listening", "reading", "arithmetic"],
-                   target="concept", stat=["t", "z"], group_by="study", min_coverage=0.5)
+                   y_from="concept", stat=["t", "z"], group_by="study", min_coverage=0.5)
 print(f"{len(sel)} maps, {sel.X.shape[1]} voxels, dropped: {sel.dropped or 'none'}")
 print(sel.missing_report)  # X keeps the voxels every selected map covers (missing="common")
 

@@ -16,7 +16,7 @@ import mapstore
 from mapstore.analyses import encoding_scores
 
 store = mapstore.open(sys.argv[1])
-sel = store.select(concepts=["visual-motion", "hand-movement", "listening", "reading"], target="concepts",
+sel = store.select(concepts=["visual-motion", "hand-movement", "listening", "reading"], y_from="concepts",
                    stat=["t", "z"])
 scores = encoding_scores(sel)  # concept indicators in, maps out; RidgeCV; leave-one-study-out
 print(scores.summary())

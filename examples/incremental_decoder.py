@@ -17,7 +17,7 @@ from sklearn.linear_model import SGDClassifier
 import mapstore
 
 store = mapstore.open(sys.argv[1])
-sel = store.select(concepts=["visual-motion", "hand-movement", "listening", "reading"], target="concept",
+sel = store.select(concepts=["visual-motion", "hand-movement", "listening", "reading"], y_from="concept",
                    stat=["t", "z"])
 classes = np.unique(sel.y)
 for train, test in sel.splits()[:3]:

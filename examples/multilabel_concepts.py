@@ -18,7 +18,7 @@ import mapstore
 
 store = mapstore.open(sys.argv[1])
 # every concept a map has, its broader ones included (a reading map is a language map too)
-sel = store.select(target="concepts", stat=["t", "z"], with_broader=True)
+sel = store.select(y_from="concepts", stat=["t", "z"], with_broader=True)
 print(f"{len(sel)} maps x {sel.X.shape[1]} voxels, {len(sel.concepts)} concepts: {', '.join(sel.concepts)}")
 X = sel.X / np.linalg.norm(sel.X, axis=1, keepdims=True)  # each map scaled on its own: nothing leaks
 scores = {c: [] for c in sel.concepts}

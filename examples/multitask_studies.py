@@ -18,7 +18,7 @@ import mapstore
 
 store = mapstore.open(sys.argv[1])
 # study-qualified targets ("inkwell/faces" is not "driftwood/faces"), grouped by subject
-sel = store.select(target="study-contrast", group_by="subject", stat=["t", "z"])
+sel = store.select(y_from="study-contrast", group_by="subject", stat=["t", "z"])
 splits = sel.splits("within-study-group-kfold:2")  # every fold holds out half the subjects of every study
 print(f"{len(sel)} maps of {len(set(sel.studies))} studies; folds checked: {mapstore.check_folds(sel, splits)}")
 X = sel.X / np.linalg.norm(sel.X, axis=1, keepdims=True)

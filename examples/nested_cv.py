@@ -20,7 +20,7 @@ import mapstore
 
 sklearn.set_config(enable_metadata_routing=True)
 store = mapstore.open(sys.argv[1])
-sel = store.select(concepts=["visual-motion", "hand-movement", "listening", "reading"], target="concept",
+sel = store.select(concepts=["visual-motion", "hand-movement", "listening", "reading"], y_from="concept",
                    stat=["t", "z"], group_by="study")
 X = sel.X / np.linalg.norm(sel.X, axis=1, keepdims=True)
 subjects = sel.meta["participant"].to_numpy()

@@ -19,7 +19,7 @@ import mapstore
 
 store = mapstore.open(sys.argv[1])
 # one map per subject (no subject counts twice), age stays numeric, sites held out one at a time
-sel = store.select(target="age", per_subject="one", group_by="site", stat=["t", "z"])
+sel = store.select(y_from="age", per_subject="one", group_by="site", stat=["t", "z"])
 print(f"{len(sel)} subjects at {len(set(sel.groups))} sites; y is {sel.y.dtype}; dropped: {sel.dropped}")
 X = sel.X / np.linalg.norm(sel.X, axis=1, keepdims=True)
 w = sel.weights("study")  # each study counts the same in training, whatever its size

@@ -132,10 +132,10 @@ class Store:
 
     def select(self, where: str | None = None, *, concepts: list[str] | None = None,
                task: list[str] | None = None, stat: list[str] | None = None, features: str | None = None,
-               min_coverage: float | None = None, target: str = "contrast", group_by: str = "study",
+               min_coverage: float | None = None, y_from: str = "contrast", group_by: str = "study",
                with_broader: bool = False, missing: str = "common", min_voxels: int | None = None,
-               one_stat: bool = True, per_subject: str = "contrast", level: str | list[str] = "subject"
-               ) -> Selection:
+               one_stat: bool = True, per_subject: str = "contrast", level: str | list[str] = "subject",
+               target: str | None = None) -> Selection:
         """Choose maps for a decoder: returns a :class:`~mapstore.query.Selection`.
 
         Parameters
@@ -150,7 +150,8 @@ class Store:
             Feature set name (default: the store's default set).
         min_coverage : float, optional
             Drop maps covering less than this fraction of the mask (reported in ``dropped``).
-        target : {"contrast", "study-contrast", "concept", "concepts"} or a column, default="contrast"
+        y_from : {"contrast", "study-contrast", "concept", "concepts"} or a column, default="contrast"
+            What ``y`` is made from.
             ``study-contrast``: each study's contrast names kept apart (``study/contrast``);
             ``concept``: one concept per map (``y``); ``concepts``: multi-label ``Y``; a maps or
             participants column (a numeric one, such as ``age``, stays numeric).
@@ -182,16 +183,16 @@ class Store:
 
         Examples
         --------
-        >>> sel = store.select(concepts=["reading", "listening"], target="concept")  # doctest: +SKIP
+        >>> sel = store.select(concepts=["reading", "listening"], y_from="concept")  # doctest: +SKIP
         >>> from sklearn.model_selection import cross_val_score                     # doctest: +SKIP
         >>> cross_val_score(model, sel.X, sel.y, cv=sel.splits("leave-one-group-out"))  # doctest: +SKIP
         """
         from .select import select
 
         return select(self, where, concepts=concepts, task=task, stat=stat, features=features,
-                      min_coverage=min_coverage, target=target, group_by=group_by, with_broader=with_broader,
+                      min_coverage=min_coverage, y_from=y_from, group_by=group_by, with_broader=with_broader,
                       missing=missing, min_voxels=min_voxels, one_stat=one_stat, per_subject=per_subject,
-                      level=level)
+                      level=level, target=target)
 
     def export(self, out, selection: Selection | None = None, *, scheme: str = "leave-one-group-out",
                seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False,

@@ -18,7 +18,7 @@ from .errors import ExportError, ParameterError
 from .features import build_features
 from .indexing import builtin_rules, index
 from .labels import label_store
-from .select import read_manifest
+from .select import ExportManifest, read_manifest
 from .store import check_output
 from .targets import KINDS
 
@@ -44,9 +44,9 @@ class RebuildReport:
         return head + ("" if self.ok else "\n" + "\n".join(f"  {d}" for d in self.differences[:20]))
 
 
-def _build_arguments(man: dict[str, Any]) -> dict[str, Any]:
+def _build_arguments(man: ExportManifest) -> dict[str, Any]:
     """The feature-build arguments the manifest's set records, as its kind of target reads them."""
-    spec = man["feature_settings"]
+    spec = man.feature_settings
     kind = spec.get("geometry", "volume")  # manifests before the kind was recorded: volume sets
     if kind not in KINDS:
         raise ExportError(f"the manifest's feature set is of an unknown kind {kind!r} (known: {', '.join(KINDS)})")
@@ -76,7 +76,7 @@ def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[st
     content; ``rules`` and ``origins`` (files or preset names) replace them when given.
     """
     mpath, man = read_manifest(manifest)
-    if "feature_settings" not in man or "datasets" not in man:
+    if man.datasets is None or "grid" not in man.feature_settings:
         raise ExportError(f"{mpath}: the manifest predates rebuilds (no feature settings or dataset names); "
                           "export again with this mapstore")
     _check_rebuild_fields(man, mpath)
@@ -89,7 +89,7 @@ def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[st
     else:
         _remove_leftovers()
         store_path = Path(tempfile.mkdtemp(prefix=f"mapstore-rebuild-{os.getpid()}-")) / "store"
-    kept = man.get("index_inputs") or {}
+    kept = man.index_inputs or {}
     # the files the manifest keeps, written back for the stages that read files; in a folder of their own
     # (never beside the user's store), removed at the end
     given = Path(tempfile.mkdtemp(prefix=f"mapstore-rebuild-inputs-{os.getpid()}-"))
@@ -129,78 +129,69 @@ def _remove_leftovers() -> None:
             pass
 
 
-def _check_rebuild_fields(man: dict[str, Any], mpath: Path) -> None:
+def _check_rebuild_fields(man: ExportManifest, mpath: Path) -> None:
     """What rebuild reads beyond what verify does, typed; one line naming the field otherwise."""
     def need(ok: bool, what: str) -> None:
         if not ok:
             raise ExportError(f"{mpath}: malformed manifest ({what}); export again with this mapstore")
 
-    fs = man["feature_settings"]
-    need(isinstance(fs, dict), "'feature_settings' must be an object")
+    fs = man.feature_settings
     for k in ("name", "method", "stat", "p_sided", "background"):
         need(isinstance(fs.get(k), str), f"feature_settings.{k} must be text")
     need(isinstance(fs.get("zero_as_missing"), bool), "feature_settings.zero_as_missing must be true or false")
-    need(isinstance(man["datasets"], dict) and all(isinstance(v, dict) and isinstance(v.get("name"), str)
-                                                   for v in man["datasets"].values()),
+    need(all(isinstance(v, dict) and isinstance(v.get("name"), str) for v in (man.datasets or {}).values()),
          "'datasets' must map keys to objects with a name")
-    for i, s in enumerate(man["sources"]):
-        need(isinstance(s.get("dataset"), str), f"sources[{i}].dataset must be text")
-        need(s.get("map_index") is None or (isinstance(s["map_index"], int) and not isinstance(s["map_index"], bool)),
-             f"sources[{i}].map_index must be a whole number")
-    need(isinstance(man.get("query"), dict), "'query' must be an object")
-    for k in ("target", "group_by", "scheme"):
-        need(isinstance(man.get(k), str), f"'{k}' must be text")
-    kept = man.get("index_inputs") or {}
+    kept = man.index_inputs or {}
     for i, r in enumerate(kept.get("rules") or []):
         need(isinstance(r, dict) and (isinstance(r.get("preset"), str) or isinstance(r.get("content"), dict)),
              f"index_inputs.rules[{i}] must name a preset or hold content")
 
 
-def _rebuild(man: dict[str, Any], sources, out, store_path: Path, given: Path, rules, origins) -> RebuildReport:
+def _rebuild(man: ExportManifest, sources, out, store_path: Path, given: Path, rules, origins) -> RebuildReport:
     index(sources, store_path, rules=rules, origins=origins, progress=False)
-    settings = man["feature_settings"]
+    settings = man.feature_settings
     build_features(store_path, settings["name"], **_build_arguments(man), method=settings["method"],
                    stat=settings["stat"], p_sided=settings["p_sided"], zero_as_missing=settings["zero_as_missing"],
                    background=settings["background"], model_maps="model" in settings.get("kinds", ["contrast"]),
                    progress=False)
-    if man.get("vocabulary_content"):
+    if man.vocabulary_content:
         vocab = given / "vocabulary-from-manifest.json"
-        vocab.write_text(json.dumps(man["vocabulary_content"]))
-        label_store(store_path, vocab, inherit_broader=(man.get("vocabulary") or {}).get("inherit_broader"))
+        vocab.write_text(json.dumps(man.vocabulary_content))
+        label_store(store_path, vocab, inherit_broader=(man.vocabulary or {}).get("inherit_broader"))
     st = open_store(store_path)
-    names = {k: v["name"] for k, v in man["datasets"].items()}
+    names = {k: v["name"] for k, v in (man.datasets or {}).items()}
     by_place = {}
     for r in st.sql("SELECT m.map_id, d.name, m.relpath, m.map_index FROM maps m JOIN datasets d "
                     "USING (dataset)").to_pylist():
         by_place[(r["name"], r["relpath"], r["map_index"])] = r["map_id"]
     wanted: list[Any] = []
     missing: list[Any] = []
-    for s in man["sources"]:
-        key = (names.get(s["dataset"]), s["relpath"], s.get("map_index"))
+    for s in man.sources:
+        key = (names.get(s.dataset), s.relpath, s.map_index)
         (wanted if key in by_place else missing).append(by_place.get(key, key))
     if missing:
         raise ExportError(f"{len(missing)} source map(s) of the manifest are not under the sources given (e.g. "
                           f"{missing[0][0]}:{missing[0][1]}); give the folders that hold those datasets")
-    q = man["query"]
+    q = man.query
     ids = ", ".join(f"'{m}'" for m in wanted)
-    sel = st.select(f"map_id IN ({ids})", features=settings["name"], target=man["target"],
-                    concepts=q.get("concepts") if man["target"] in ("concept", "concepts") else None,
-                    group_by=man["group_by"], with_broader=bool(q.get("with_broader")),
+    sel = st.select(f"map_id IN ({ids})", features=settings["name"], y_from=man.y_from,
+                    concepts=q.get("concepts") if man.y_from in ("concept", "concepts") else None,
+                    group_by=man.group_by, with_broader=bool(q.get("with_broader")),
                     missing=q.get("missing", "common"), min_voxels=q.get("min_voxels"), one_stat=False,
                     per_subject="map", level="any")
     pos = {m: i for i, m in enumerate(sel.map_ids)}
-    lost = [src for src, m in zip(man["sources"], wanted) if m not in pos]
+    lost = [src for src, m in zip(man.sources, wanted) if m not in pos]
     if lost:
-        where = ", ".join(f"{src['dataset']}:{src['relpath']}" for src in lost[:5])
+        where = ", ".join(f"{src.dataset}:{src.relpath}" for src in lost[:5])
         raise ExportError(f"{len(lost)} map(s) of the manifest are not in the rebuilt selection (e.g. {where}): "
                           "the vocabulary no longer labels them with the manifest's concepts, or they have no "
                           "feature row; compare the vocabulary with the one the manifest kept")
     sel = sel.subset([pos[m] for m in wanted])  # the manifest's row order
-    rep = st.export(out, sel, scheme=man["scheme"], seed=man["seed"], allow_leak=man.get("allow_leak", False),
-                    allow_unseen=man.get("allow_unseen", False), fmt=man.get("layout", "npy"))
-    new = json.loads((Path(rep.out) / "manifest.json").read_text())
-    diffs = [f"row {i} ({s['relpath']}): X differs" for i, (s, n) in enumerate(zip(man["sources"], new["sources"]))
-             if s.get("x_sha256") != n.get("x_sha256")]
-    if new["shape"] != man["shape"]:
-        diffs.insert(0, f"X has shape {new['shape']}, the manifest {man['shape']}")
-    return RebuildReport(str(rep.out), str(store_path), len(new["sources"]), len(new["sources"]) - len(diffs), diffs)
+    rep = st.export(out, sel, scheme=man.scheme, seed=man.seed, allow_leak=man.allow_leak,
+                    allow_unseen=man.allow_unseen, fmt=man.layout)
+    _, new = read_manifest(rep.out)
+    diffs = [f"row {i} ({s.relpath}): X differs" for i, (s, n) in enumerate(zip(man.sources, new.sources))
+             if s.x_hash != n.x_hash]
+    if new.shape != man.shape:
+        diffs.insert(0, f"X has shape {new.shape}, the manifest {man.shape}")
+    return RebuildReport(str(rep.out), str(store_path), len(new.sources), len(new.sources) - len(diffs), diffs)

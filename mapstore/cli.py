@@ -394,8 +394,8 @@ def labels_cmd(store, vocab, inherit) -> None:
 @click.option("--stat", "stats", multiple=True, help="Keep maps of this stat (repeatable).")
 @click.option("--features", "feature_set", help="Feature set name (default: the default set).")
 @click.option("--min-coverage", type=click.FloatRange(0, 1), help="Drop maps covering less of the mask.")
-@click.option("--target", default=None,
-              help="contrast (default without labels options), study-contrast (each study's names apart), "
+@click.option("--y-from", "--target", "y_from", default=None,
+              help="What y is made from: contrast (default without labels options), study-contrast (each study's names apart), "
                    "concept (one per map), concepts (multi-label), or a maps or participants column.")
 @click.option("--group-by", default="study", show_default=True,
               help="study, site, lab, subject, dataset, a maps or participants column, or metadata:KEY "
@@ -427,7 +427,7 @@ def labels_cmd(store, vocab, inherit) -> None:
 @click.option("--format", "fmt", type=click.Choice(["npy", "parquet", "zarr"]), default="npy", show_default=True,
               help="X as a memory-mappable .npy, one Parquet table, or a Zarr v3 array (chunks of rows).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing export folder.")
-def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_coverage, target, group_by, scheme,
+def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_coverage, y_from, group_by, scheme,
                seed, allow_leak, participant_columns, one_stat, per_subject, level, allow_unseen, near_copy_r,
                with_broader, missing, min_voxels, fmt, overwrite) -> None:
     """Export X, y, groups, splits and metadata of a selection, with a manifest.
@@ -437,10 +437,10 @@ def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_cover
       mapstore export --store pooled --concept reading --concept listening --out reading-vs-listening
     """
     st = open_store(store)
-    if target is None:
-        target = "concept" if concepts else "contrast"
+    if y_from is None:
+        y_from = "concept" if concepts else "contrast"
     sel = st.select(where, concepts=list(concepts) or None, task=list(tasks) or None, stat=list(stats) or None,
-                    features=feature_set, min_coverage=min_coverage, target=target, group_by=group_by,
+                    features=feature_set, min_coverage=min_coverage, y_from=y_from, group_by=group_by,
                     with_broader=with_broader, missing=missing, min_voxels=min_voxels, one_stat=one_stat,
                     per_subject=per_subject, level=list(level))
     report = st.export(out, sel, scheme=scheme, seed=seed, allow_leak=allow_leak, fmt=fmt, overwrite=overwrite,
@@ -536,7 +536,7 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
 
     st = open_store(store)
     sel = st.select(where, concepts=list(concepts) or None, task=list(tasks) or None, stat=list(stats) or None,
-                    features=feature_set, target="concepts", missing="keep", level=list(level))
+                    features=feature_set, y_from="concepts", missing="keep", level=list(level))
     res = pool(sel, method, min_subjects=min_subjects, min_studies=min_studies, leave_one_out=leave_one_out,
                use_variance=use_variance)
     prov = write_pooled(res, out, fdr_q, overwrite=overwrite)
@@ -689,7 +689,7 @@ def demo_cmd(folder, scale) -> None:
     click.echo(label_store(store, summary.vocabulary).summary())
     st = open_store(store)
     concepts = ["visual-motion", "hand-movement", "listening", "reading", "arithmetic"]
-    sel = st.select(concepts=concepts, target="concept", stat=["t", "z"], group_by="study")
+    sel = st.select(concepts=concepts, y_from="concept", stat=["t", "z"], group_by="study")
     out = base / "export-leave-one-study-out"
     click.echo(f"\nexporting t and z maps of {len(concepts)} concepts, leave-one-study-out, to {out} ...")
     click.echo(st.export(out, sel, scheme="leave-one-group-out", overwrite=True).summary())
@@ -702,7 +702,7 @@ def demo_cmd(folder, scale) -> None:
     sreport = build_features(store, grid="fsaverage5", where="m.stat IN ('t', 'z')")
     click.echo(sreport.summary())
     st = open_store(store)
-    ssel = st.select(concepts=concepts, target="concept", stat=["t", "z"], group_by="study",
+    ssel = st.select(concepts=concepts, y_from="concept", stat=["t", "z"], group_by="study",
                      features=sreport.name)
     sout = base / "export-surface-leave-one-study-out"
     click.echo(st.export(sout, ssel, scheme="leave-one-group-out", overwrite=True).summary())

@@ -124,7 +124,7 @@ def test_every_planted_copy_is_found_with_its_kind(planted):
 
 def test_each_planted_copy_is_refused_across_studies(planted):
     st = mapstore.open(planted["store"])
-    sel = st.select(concepts=["hand-movement"], target="concept", features="three", missing="keep")
+    sel = st.select(concepts=["hand-movement"], y_from="concept", features="three", missing="keep")
     with pytest.raises(LeakageError) as err:
         sel.splits("leave-one-group-out")
     assert "group(s) of copies on both sides" in str(err.value) and "feature_copies" in str(err.value)
@@ -136,7 +136,7 @@ def test_each_planted_copy_is_refused_across_studies(planted):
         # each copy alone, with the original, is refused
         others = [m for k, m in planted["copies"].items() if k != kind]
         one = st.select(f"map_id NOT IN ({', '.join(repr(o) for o in others)})", concepts=["hand-movement"],
-                        target="concept", features="three", missing="keep")
+                        y_from="concept", features="three", missing="keep")
         with pytest.raises(LeakageError, match="copies on both sides"):
             one.splits("leave-one-group-out")
     # allow_leak turns the refusal into a recorded warning

@@ -61,7 +61,7 @@ def test_a_decoder_trained_on_some_studies_predicts_the_others(demo_store, demo_
     # the quarter-size demo has few subjects per study: every stat and run is kept (a subject's maps
     # stay on one side of every split, so this adds no leak, only training maps)
     sel = st.select(concepts=["visual-motion", "hand-movement", "listening", "reading", "arithmetic"],
-                    target="concept", stat=["t", "z"], features="three", missing="zero", one_stat=False,
+                    y_from="concept", stat=["t", "z"], features="three", missing="zero", one_stat=False,
                     per_subject="map")
     # missing voxels as 0 ("no effect"), every voxel kept; maps z-scored one by one
     prep = FunctionTransformer(lambda a: StandardScaler().fit_transform(np.asarray(a).T).T)
@@ -81,7 +81,7 @@ def test_surface_study_pools_with_the_volume_studies(demo_store, demo_tree, tmp_
     assert rep.n_problems == 0 and rep.paths.get("surface") and rep.paths.get("vol_to_surf")
     st = mapstore.open(store)
     sel = st.select(concepts=["visual-motion", "hand-movement", "listening", "reading", "arithmetic"],
-                    target="concept", stat=["t", "z"], group_by="study", features=rep.name, missing="zero")
+                    y_from="concept", stat=["t", "z"], group_by="study", features=rep.name, missing="zero")
     st.export(tmp_path / "x", sel)
     table = _demo_decoder(tmp_path / "x").to_pylist()
     by_study = {r["held_out_study"]: r for r in table}

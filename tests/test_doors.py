@@ -247,6 +247,7 @@ CRAFTED = [
     ("sources", None), ("sources", [1, 2]), ("sources", "x"), ("files", {"../../etc/passwd": "x"}),
     ("files", {"a": 1}), ("shape", "big"), ("shape", [1]), ("store", None), ("feature_set", []),
     ("query", None), ("seed", "x"), ("datasets", [1]), ("feature_settings", "x"), ("index_inputs", [1]),
+    ("y_from", 3), ("feature_settings", {"grid": {}}),
 ]
 
 

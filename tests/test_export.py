@@ -35,16 +35,16 @@ def test_default_target_is_contrast_and_works_without_labels(demo_store, tmp_pat
 
 def test_select_where_targets_groups(labelled_store):
     st = mapstore.open(labelled_store)
-    sel = st.select("stat = 't' AND age >= 30", concepts=["reading", "listening"], target="concept")
-    everyone = st.select("stat = 't'", concepts=["reading", "listening"], target="concept")
+    sel = st.select("stat = 't' AND age >= 30", concepts=["reading", "listening"], y_from="concept")
+    everyone = st.select("stat = 't'", concepts=["reading", "listening"], y_from="concept")
     assert set(sel.y) == {"reading", "listening"}
     assert 0 < len(sel) < len(everyone) and (sel.meta.age >= 30).all()  # the participants' column filters
     assert (sel.meta.stat == "t").all()
     assert sel.X.shape == (len(sel), len(sel.voxels)) and np.isfinite(sel.X).all()
-    multi = st.select(concepts=["reading", "listening", "visual-motion"], target="concepts")
+    multi = st.select(concepts=["reading", "listening", "visual-motion"], y_from="concepts")
     assert multi.Y.shape == (len(multi), 3) and multi.concepts == ["listening", "reading", "visual-motion"]
     assert (multi.Y.sum(axis=1) >= 1).all()
-    broad = st.select(concepts=["perception"], with_broader=True, target="concepts")
+    broad = st.select(concepts=["perception"], with_broader=True, y_from="concepts")
     assert "perception" in broad.concepts and broad.Y[:, broad.concepts.index("perception")].all()
     by_sql = st.select("list_contains(concepts, 'reading') AND stat = 't'")
     assert len(by_sql) == len(st.select(concepts=["reading"], stat=["t"]))
@@ -63,7 +63,7 @@ def test_coverage_threshold_reports_dropped(labelled_store):
 def test_concept_target_refuses_overlaps(labelled_store):
     st = mapstore.open(labelled_store)
     with pytest.raises(QueryError, match="exactly one concept"):
-        st.select(concepts=["perception", "listening"], with_broader=True, target="concept")
+        st.select(concepts=["perception", "listening"], with_broader=True, y_from="concept")
     with pytest.raises(QueryError, match="label no map"):
         st.select(concepts=["juggling"])
 
@@ -73,7 +73,7 @@ def test_splits_plug_into_scikit_learn(labelled_store):
     from sklearn.model_selection import cross_val_score
 
     st = mapstore.open(labelled_store)
-    sel = st.select(concepts=["reading", "hand-movement"], target="concept", stat=["t", "z"])
+    sel = st.select(concepts=["reading", "hand-movement"], y_from="concept", stat=["t", "z"])
     X = np.nan_to_num(sel.X[:, ::50])
     scores = cross_val_score(LogisticRegression(max_iter=200), X, sel.y, cv=sel.splits("group-kfold:2"))
     assert len(scores) == 2
@@ -81,7 +81,7 @@ def test_splits_plug_into_scikit_learn(labelled_store):
 
 def test_export_round_trip_and_verify(labelled_store, tmp_path):
     st = mapstore.open(labelled_store)
-    sel = st.select(concepts=["reading", "listening", "arithmetic"], target="concept")
+    sel = st.select(concepts=["reading", "listening", "arithmetic"], y_from="concept")
     out = tmp_path / "exp"
     rep = st.export(out, sel, scheme="leave-one-group-out", seed=3)
     assert rep.n_maps == len(sel) and rep.n_splits == sel.meta.study.nunique()
@@ -98,8 +98,17 @@ def test_export_round_trip_and_verify(labelled_store, tmp_path):
     man = json.loads((out / "manifest.json").read_text())
     jsonschema.validate(man, all_schemas()["export-manifest.schema.json"])
     assert man["seed"] == 3 and man["vocabulary"]["sha256"] and len(man["sources"]) == len(sel)
-    assert man["feature_set"]["mask"]["sha256"] and man["feature_set"]["grid_id"]
+    assert man["feature_settings"]["mask"]["sha256"] and man["feature_settings"]["grid_id"]
     assert mapstore.verify(out).ok
+    # a manifest of the earlier form (the label kind as 'target', the set as 'feature_set') still reads
+    old = {k: v for k, v in man.items() if k not in ("y_from", "feature_settings")}
+    old["target"] = man["y_from"]
+    old["feature_set"] = {k: man["feature_settings"][k] for k in ("name", "spec_id", "grid", "grid_id", "mask")}
+    (out / "manifest.json").write_text(json.dumps(old))
+    _, read = mapstore.select.read_manifest(out)
+    assert read.y_from == man["y_from"] and read.set_spec_id == man["feature_settings"]["spec_id"]
+    assert mapstore.verify(out).ok
+    (out / "manifest.json").write_text(json.dumps(man))
 
     # a modified source file is caught
     src = man["sources"][0]["path"]
@@ -146,7 +155,7 @@ def test_export_refuses_to_overwrite_and_parquet_format(labelled_store, tmp_path
     assert set(t.column("split").to_pylist()) == {"train", "test"}
     assert mapstore.verify(out).ok
     # a multi-label target keeps its indicator matrix in the parquet layout too
-    multi = st.select(concepts=["reading", "listening", "visual-motion"], target="concepts")
+    multi = st.select(concepts=["reading", "listening", "visual-motion"], y_from="concepts")
     st.export(tmp_path / "pm", multi, fmt="parquet")
     tm = pq.read_table(tmp_path / "pm" / "table.parquet")
     np.testing.assert_array_equal(np.array(tm.column("Y").to_pylist(), dtype=np.uint8), multi.Y)
@@ -187,10 +196,10 @@ def test_origins_mapping_one_person_in_two_studies_is_a_leak(demo_tree, tmp_path
 
 def test_missing_policies_against_numpy(labelled_store):
     st = mapstore.open(labelled_store)
-    full = st.features().matrix(st.select(concepts=["reading", "listening"], target="concept",
+    full = st.features().matrix(st.select(concepts=["reading", "listening"], y_from="concept",
                                           missing="keep").map_ids)
     assert np.isnan(full).any()  # the demo has partial fields of view
-    common = st.select(concepts=["reading", "listening"], target="concept")
+    common = st.select(concepts=["reading", "listening"], y_from="concept")
     # reference: numpy on the same rows
     want = np.flatnonzero(np.isfinite(full).all(axis=0))
     np.testing.assert_array_equal(common.voxels, want)
@@ -199,9 +208,9 @@ def test_missing_policies_against_numpy(labelled_store):
     assert rep == {"policy": "common", "mask_voxels": full.shape[1], "kept_voxels": want.size,
                    "dropped_voxels": full.shape[1] - want.size,
                    "reason": "voxels without a value in at least one selected map were dropped"}
-    zero = st.select(concepts=["reading", "listening"], target="concept", missing="zero")
+    zero = st.select(concepts=["reading", "listening"], y_from="concept", missing="zero")
     np.testing.assert_array_equal(zero.X, np.nan_to_num(full))
-    keep = st.select(concepts=["reading", "listening"], target="concept", missing="keep")
+    keep = st.select(concepts=["reading", "listening"], y_from="concept", missing="keep")
     np.testing.assert_array_equal(np.isnan(keep.X), np.isnan(full))
     # a row (or decoder weights) goes back onto the grid: values at their voxels, NaN elsewhere
     img = common.to_image(common.X[0])
@@ -216,7 +225,7 @@ def test_missing_policies_against_numpy(labelled_store):
 
 def test_too_few_common_voxels_is_refused_naming_the_maps(labelled_store):
     st = mapstore.open(labelled_store)
-    sel = st.select(concepts=["reading", "listening"], target="concept", min_voxels=10 ** 6)
+    sel = st.select(concepts=["reading", "listening"], y_from="concept", min_voxels=10 ** 6)
     with pytest.raises(QueryError) as err:
         sel.X
     msg = str(err.value)
@@ -230,7 +239,7 @@ def test_too_few_common_voxels_is_refused_naming_the_maps(labelled_store):
 
 def test_export_records_the_policy_and_verify_catches_changed_rows(labelled_store, tmp_path):
     st = mapstore.open(labelled_store)
-    multi = st.select(concepts=["reading", "listening", "visual-motion"], target="concepts")
+    multi = st.select(concepts=["reading", "listening", "visual-motion"], y_from="concepts")
     for fmt in ("npy", "parquet"):
         out = tmp_path / fmt
         rep = st.export(out, multi, fmt=fmt)

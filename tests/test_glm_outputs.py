@@ -285,8 +285,8 @@ def test_labels_with_a_hyphen_are_kept_whole_with_a_warning(tmp_path):
 
 def test_stat_options_match_case_insensitively_and_empty_selections_say_what_exists(glm):
     st = mapstore.open(glm["store"])
-    upper = st.select(stat=["T"], target="contrast")
-    lower = st.select(stat=["t"], target="contrast")
+    upper = st.select(stat=["T"], y_from="contrast")
+    lower = st.select(stat=["t"], y_from="contrast")
     assert len(upper) == len(lower) == 16  # subjects' maps: the group t map is left out by its level
     assert lower.dropped == {"level group (take them with level='group' or level='any')": 1}
     assert len(st.select(stat=["t"], level="any")) == 17
@@ -372,7 +372,7 @@ def test_the_readme_decoding_runs_on_nilearn_outputs(glm, tmp_path):
         "rules": [{"contrast": "words*", "concepts": ["reading"]}, {"contrast": "tones*", "concepts": ["listening"]}]})
     mapstore.label(store, vocab)
     st = mapstore.open(store)
-    sel = st.select("sub IS NOT NULL", concepts=["reading", "listening"], target="concept", group_by="subject",
+    sel = st.select("sub IS NOT NULL", concepts=["reading", "listening"], y_from="concept", group_by="subject",
                     stat=["t"])
     assert sel.meta.study.nunique() == 2 and np.isfinite(sel.X).all()
     assert sel.missing_report["dropped_voxels"] > 0  # beta's cut field of view
@@ -403,9 +403,9 @@ def test_group_maps_beside_subjects_change_no_subject_level_work(glm, tmp_path):
         mapstore.index([base], store, progress=False)
         mapstore.build_features(store, progress=False)
         st = mapstore.open(store)
-        sel = st.select(task=["reading"], stat=["effect"], group_by="study", target="contrast")
+        sel = st.select(task=["reading"], stat=["effect"], group_by="study", y_from="contrast")
         out = st.export(tmp_path / f"out-{name}", sel, scheme="leave-one-group-out").out
-        res = pool(st.select(task=["reading"], stat=["z"], group_by="study", target="contrast", missing="keep"),
+        res = pool(st.select(task=["reading"], stat=["z"], group_by="study", y_from="contrast", missing="keep"),
                    "stouffer", min_subjects=2)
         results[name] = (sel, out, res)
     st = mapstore.open(tmp_path / "store-mixed")

@@ -170,14 +170,14 @@ def shared(tmp_path_factory):
 
 def test_the_pooled_map_peaks_at_the_shared_effect_and_a_flipped_study_raises_i2(shared, tmp_path):
     stores, peak, aff = shared
-    sel = mapstore.open(stores[False]).select(features="own", target="concepts", stat=["effect"])
+    sel = mapstore.open(stores[False]).select(features="own", y_from="concepts", stat=["effect"])
     # Stouffer on the studies' z maps: inverse-variance weights from ten subjects' variances are heavy-tailed
     # (a study whose variance is small by chance dominates a voxel), z is not
     top = pool(sel, "stouffer").peaks(1)[0]
     assert np.abs(np.array(top["position"]) - peak).max() <= 1
     assert top["n_studies"] == 4
     res = pool(sel, "random", leave_one_out=True)
-    flipped = pool(mapstore.open(stores[True]).select(features="own", target="concepts", stat=["effect"]), "random")
+    flipped = pool(mapstore.open(stores[True]).select(features="own", y_from="concepts", stat=["effect"]), "random")
     j = _column_of(sel, peak)
     assert flipped.i2[j] > res.i2[j] + 0.3
     assert set(res.provenance["leave_one_out"]) == {f"study{s}" for s in range(4)}
@@ -202,7 +202,7 @@ def test_study_maps_equal_nilearn_second_level_one_sample_t(shared):
     import pandas as pd
 
     stores, _, aff = shared
-    sel = mapstore.open(stores[False]).select(features="own", target="concepts", stat=["effect"],
+    sel = mapstore.open(stores[False]).select(features="own", y_from="concepts", stat=["effect"],
                                               where="study = 'study1'")
     sm = study_maps(sel)
     fs = sel.feature_set
@@ -236,8 +236,8 @@ def test_streaming_combination_of_given_maps_equals_combine(shared):
 
     stores, _, _ = shared
     st = mapstore.open(stores[True])
-    eff = st.select(features="own", target="concepts", stat=["effect"])
-    var = st.select(features="own", target="concepts", stat=["variance"])
+    eff = st.select(features="own", y_from="concepts", stat=["effect"])
+    var = st.select(features="own", y_from="concepts", stat=["variance"])
     eff = eff.subset(np.argsort(eff.meta["participant"].to_numpy(), kind="stable"))
     var = var.subset(np.argsort(var.meta["participant"].to_numpy(), kind="stable"))
     assert list(eff.meta["participant"]) == list(var.meta["participant"])
@@ -333,7 +333,7 @@ def test_weighting_subjects_by_their_variance_equals_statsmodels_per_study(share
     from mapstore.cli import main
 
     stores, peak, _ = shared
-    sel = mapstore.open(stores[False]).select(features="own", target="concepts", stat=["effect"], missing="keep")
+    sel = mapstore.open(stores[False]).select(features="own", y_from="concepts", stat=["effect"], missing="keep")
     var = variance_maps(sel)
     for a, b in zip(sel.meta.itertuples(), var.meta.itertuples()):
         assert a.relpath.replace("stat-effect", "stat-variance") == b.relpath

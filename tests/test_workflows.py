@@ -35,15 +35,15 @@ def test_the_default_split_that_cannot_score_is_refused_naming_the_classes(store
     sel = store.select(stat=["t"])
     with pytest.raises(UnseenClassError, match="class\\(es\\) in test that training never saw") as err:
         sel.splits()
-    assert "target='concept'" in str(err.value) and "allow_unseen=True" in str(err.value)
+    assert "y_from='concept'" in str(err.value) and "allow_unseen=True" in str(err.value)
     with pytest.raises(UnseenClassError):
         store.export(tmp_path / "x", sel)
     assert not (tmp_path / "x").exists()
     # concepts the studies share: no fold has an unseen class
-    ok = store.select(concepts=["hand-movement", "listening"], target="concept", stat=["t", "z"])
+    ok = store.select(concepts=["hand-movement", "listening"], y_from="concept", stat=["t", "z"])
     assert len(ok.splits()) == ok.meta["study"].nunique()
     # a multi-label target: a concept only one study has is unseen when that study is held out
-    multi = store.select(target="concepts", stat=["t"])
+    multi = store.select(y_from="concepts", stat=["t"])
     only = [c for c in multi.concepts
             if multi.meta.loc[multi.Y[:, multi.concepts.index(c)] == 1, "study"].nunique() == 1]
     if only:
@@ -52,7 +52,7 @@ def test_the_default_split_that_cannot_score_is_refused_naming_the_classes(store
 
 
 def test_within_study_folds_equal_group_kfold_run_in_each_study(store):
-    sel = store.select(stat=["t"], target="study-contrast", group_by="subject")
+    sel = store.select(stat=["t"], y_from="study-contrast", group_by="subject")
     splits = sel.splits("within-study-group-kfold:2")  # each study's own names: seen in every fold
     from sklearn.model_selection import GroupKFold
 
@@ -69,7 +69,7 @@ def test_within_study_folds_equal_group_kfold_run_in_each_study(store):
 def test_stratified_group_kfold_equals_scikit_learn(store):
     from sklearn.model_selection import StratifiedGroupKFold
 
-    sel = store.select(concepts=["hand-movement", "listening", "reading"], target="concept", group_by="subject",
+    sel = store.select(concepts=["hand-movement", "listening", "reading"], y_from="concept", group_by="subject",
                        stat=["t", "z"])
     got = sel.splits("stratified-group-kfold:3", seed=4)
     ref = StratifiedGroupKFold(3, shuffle=True, random_state=4).split(np.zeros((len(sel), 1)), sel.y.astype(str),
@@ -82,7 +82,7 @@ def test_stratified_group_kfold_equals_scikit_learn(store):
 def test_any_folds_are_checked_against_the_stores_rules(store):
     from sklearn.model_selection import GroupKFold, KFold
 
-    sel = store.select(concepts=["hand-movement", "listening"], target="concept", stat=["t", "z"],
+    sel = store.select(concepts=["hand-movement", "listening"], y_from="concept", stat=["t", "z"],
                        group_by="subject")
     # scikit-learn's plain KFold ignores subjects: a subject lands on both sides
     with pytest.raises(LeakageError, match="subject"):
@@ -94,7 +94,7 @@ def test_any_folds_are_checked_against_the_stores_rules(store):
 
 
 def test_a_numeric_participant_target_stays_numeric(store, demo_tree, tmp_path):
-    sel = store.select(target="age", stat=["t"], group_by="site")
+    sel = store.select(y_from="age", stat=["t"], group_by="site")
     assert sel.y.dtype == np.float64
     # reference: pandas' reading of each study's participants.tsv
     ages = {}
@@ -110,18 +110,18 @@ def test_a_numeric_participant_target_stays_numeric(store, demo_tree, tmp_path):
 
 
 def test_group_by_any_column_or_sidecar_field(store, demo_tree):
-    sel = store.select(stat=["t"], target="concepts", group_by="metadata:InstitutionName")
+    sel = store.select(stat=["t"], y_from="concepts", group_by="metadata:InstitutionName")
     want = [json.loads(m).get("InstitutionName") for m in sel.meta["metadata"]]
     assert list(sel.groups) == want
-    by_sex = store.select(stat=["t"], target="concepts", group_by="sex")  # a participants column
+    by_sex = store.select(stat=["t"], y_from="concepts", group_by="sex")  # a participants column
     assert set(by_sex.groups) <= {"F", "M"}
     with pytest.raises(ParameterError, match="not a unit"):
         store.select(stat=["t"], group_by="no_such_column")
 
 
 def test_selections_share_one_column_set(store):
-    a = store.select(stat=["t"], where="study = 'inkwell'", target="concepts")
-    b = store.select(stat=["t"], where="study = 'emberlight'", target="concepts")
+    a = store.select(stat=["t"], where="study = 'inkwell'", y_from="concepts")
+    b = store.select(stat=["t"], where="study = 'emberlight'", y_from="concepts")
     a2, b2 = mapstore.align_columns(a, b)
     assert a2.X.shape[1] == b2.X.shape[1]
     cols = np.intersect1d(a.voxels, b.voxels)
@@ -130,8 +130,8 @@ def test_selections_share_one_column_set(store):
 
 
 def test_no_subject_or_contrast_counts_twice_unless_asked(store):
-    every = store.select(stat=["t", "z", "effect"], target="concepts", per_subject="map", one_stat=False)
-    sel = store.select(stat=["t", "z", "effect"], target="concepts")
+    every = store.select(stat=["t", "z", "effect"], y_from="concepts", per_subject="map", one_stat=False)
+    sel = store.select(stat=["t", "z", "effect"], y_from="concepts")
     m = every.meta
     # reference, by hand with pandas: per subject, task and contrast the subject-level map (no ses/run),
     # else the first session and run; among those, the first stat of z, t, effect
@@ -143,12 +143,12 @@ def test_no_subject_or_contrast_counts_twice_unless_asked(store):
     assert sorted(sel.map_ids) == sorted(ref["map_id"])
     assert sum(sel.dropped.values()) - sel.dropped.get("no feature row", 0) == len(every) - len(sel)
     assert not sel.meta.duplicated(["participant", "task", "contrast"]).any()
-    one = store.select(stat=["t", "z"], target="age", per_subject="one")
+    one = store.select(stat=["t", "z"], y_from="age", per_subject="one")
     assert one.meta["participant"].is_unique and len(one) == every.meta["participant"].nunique()
 
 
 def test_sample_weights_give_each_study_the_same_total(store):
-    sel = store.select(concepts=["hand-movement", "listening"], target="concept")
+    sel = store.select(concepts=["hand-movement", "listening"], y_from="concept")
     w = sel.weights("study")
     totals = pd.Series(w).groupby(sel.meta["study"].to_numpy()).sum()
     np.testing.assert_allclose(totals.to_numpy(), len(sel) / sel.meta["study"].nunique())
@@ -158,7 +158,7 @@ def test_sample_weights_give_each_study_the_same_total(store):
 def test_participant_columns_go_out_only_when_named(store, tmp_path):
     import pyarrow.parquet as pq
 
-    sel = store.select(target="age", stat=["t"], group_by="site", per_subject="one")
+    sel = store.select(y_from="age", stat=["t"], group_by="site", per_subject="one")
     plain = store.export(tmp_path / "plain", sel).out
     meta = pq.read_table(f"{plain}/meta.parquet").to_pandas()
     assert "age" not in meta.columns and "sex" not in meta.columns
@@ -195,7 +195,7 @@ def test_a_new_map_goes_through_the_sets_rules_exactly(store, tmp_path):
     with pytest.raises(mapstore.MapstoreError, match="say the map's stat"):
         zs.transform(r["path"])
     # on a selection's columns, equal to its row of X: a decoder fitted on X predicts it
-    sel = store.select(stat=["t"], target="concepts", where=f"map_id = '{r['map_id']}'")
+    sel = store.select(stat=["t"], y_from="concepts", where=f"map_id = '{r['map_id']}'")
     np.testing.assert_array_equal(sel.transform(r["path"], "t", mask_img=mask), sel.X[0])
 
 
@@ -241,7 +241,7 @@ def test_encoding_scores_equal_scikit_learn_per_voxel(store):
 
     from mapstore.analyses import concept_descriptors, encoding_scores
 
-    sel = store.select(concepts=["hand-movement", "listening", "reading", "visual-motion"], target="concepts",
+    sel = store.select(concepts=["hand-movement", "listening", "reading", "visual-motion"], y_from="concepts",
                        stat=["t", "z"])
     got = encoding_scores(sel)
     # reference: a RidgeCV fitted on each training side by hand, scored by scikit-learn's r2_score
@@ -267,7 +267,7 @@ def test_encoding_scores_equal_scikit_learn_per_voxel(store):
 def test_repeated_group_kfold_equals_scikit_learn_shuffled_runs(store):
     from sklearn.model_selection import GroupKFold
 
-    sel = store.select(concepts=["hand-movement", "listening"], target="concept", group_by="subject")
+    sel = store.select(concepts=["hand-movement", "listening"], y_from="concept", group_by="subject")
     got = sel.splits("repeated-group-kfold:3:2", seed=7)
     ref = [te for rep in range(2) for _, te in GroupKFold(3, shuffle=True, random_state=7 + rep).split(
         np.zeros((len(sel), 1)), groups=sel.groups)]
@@ -279,7 +279,7 @@ def test_repeated_group_kfold_equals_scikit_learn_shuffled_runs(store):
 def test_x_streams_in_bounded_memory_and_equals_every_other_route(store, tmp_path):
     import tracemalloc
 
-    sel = store.select(concepts=["hand-movement", "listening", "reading"], target="concept")
+    sel = store.select(concepts=["hand-movement", "listening", "reading"], y_from="concept")
     assert len(sel.voxels) < store.features().n_voxels  # the common policy drops columns here
     full = store.features().matrix(sel.map_ids)[:, sel.voxels]  # reference: the rows, then the columns
     tracemalloc.start()
@@ -303,7 +303,7 @@ def test_x_streams_in_bounded_memory_and_equals_every_other_route(store, tmp_pat
 def test_x_on_a_distributed_cluster_equals_numpy(store):
     from dask.distributed import Client, LocalCluster
 
-    sel = store.select(concepts=["hand-movement", "listening", "reading"], target="concept")
+    sel = store.select(concepts=["hand-movement", "listening", "reading"], y_from="concept")
     with LocalCluster(n_workers=2, threads_per_worker=1, processes=True, dashboard_address=None) as cluster, \
             Client(cluster) as client:
         mean = client.compute(sel.to_dask(chunk_rows=16).mean(axis=0)).result()
@@ -316,7 +316,7 @@ def test_a_zarr_export_is_read_by_zarr_and_dask_and_verified(store, tmp_path):
 
     from mapstore.select._export import verify
 
-    sel = store.select(concepts=["hand-movement", "listening", "reading"], target="concept")
+    sel = store.select(concepts=["hand-movement", "listening", "reading"], y_from="concept")
     out = store.export(tmp_path / "z", sel, fmt="zarr").out
     import xarray as xr
 
@@ -340,7 +340,7 @@ def test_parcels_fit_on_a_sample_of_a_memory_mapped_x(store, tmp_path):
 
     from mapstore import ParcelReducer
 
-    sel = store.select(concepts=["hand-movement", "listening", "reading"], target="concept")
+    sel = store.select(concepts=["hand-movement", "listening", "reading"], y_from="concept")
     mm = sel.to_memmap(tmp_path / "X.npy")
     cols = np.arange(0, mm.shape[1], 50)  # a few hundred columns keep Ward clustering quick
     small = np.ascontiguousarray(mm[:, cols])
@@ -360,7 +360,7 @@ def test_an_export_puts_its_columns_back_on_the_brain_without_mapstore(store, tm
     import nibabel as nib
     import pyarrow.parquet as pq
 
-    sel = store.select(concepts=["hand-movement", "listening"], target="concept")
+    sel = store.select(concepts=["hand-movement", "listening"], y_from="concept")
     out = Path(store.export(tmp_path / "e", sel).out)
     X = np.load(out / "X.npy")
     cols = pq.read_table(out / "columns.parquet").to_pandas()
@@ -374,7 +374,7 @@ def test_an_export_puts_its_columns_back_on_the_brain_without_mapstore(store, tm
 
 
 def test_notebook_views_are_short_html_tables(store):
-    sel = store.select(concepts=["hand-movement", "listening"], target="concept")
+    sel = store.select(concepts=["hand-movement", "listening"], y_from="concept")
     for obj in (store, store.features(), sel, store.check(pictures=False)):
         page = obj._repr_html_()
         assert page.startswith("<table><caption>") and len(page) < 20_000, type(obj)
@@ -382,7 +382,7 @@ def test_notebook_views_are_short_html_tables(store):
 
 
 def test_a_manifest_holds_what_a_rebuild_needs(store, tmp_path, demo_tree):
-    sel = store.select(concepts=["hand-movement", "listening"], target="concept")
+    sel = store.select(concepts=["hand-movement", "listening"], y_from="concept")
     out = Path(store.export(tmp_path / "m", sel).out)
     man = json.loads((out / "manifest.json").read_text())
     assert {"python", "nilearn", "duckdb", "pyarrow", "numpy"} <= set(man["versions"])
@@ -402,7 +402,7 @@ def test_a_manifest_holds_what_a_rebuild_needs(store, tmp_path, demo_tree):
 def test_meta_holds_the_targets_and_folds(store, tmp_path):
     import pyarrow.parquet as pq
 
-    sel = store.select(concepts=["hand-movement", "listening", "reading"], target="concepts")
+    sel = store.select(concepts=["hand-movement", "listening", "reading"], y_from="concepts")
     out = Path(store.export(tmp_path / "t", sel).out)
     meta = pq.read_table(out / "meta.parquet").to_pandas()
     Y = np.load(out / "Y.npy")
@@ -420,7 +420,7 @@ def test_a_rebuild_from_the_manifest_on_moved_sources_is_byte_identical(demo_sto
     mapstore.build_features(store, "default", grid="MNI152-3mm", jobs=2, progress=False)
     mapstore.label(store, demo_tree / "concepts.json")
     st = mapstore.open(store)
-    sel = st.select(concepts=["hand-movement", "listening"], target="concept")
+    sel = st.select(concepts=["hand-movement", "listening"], y_from="concept")
     first = Path(st.export(tmp_path / "first", sel).out)
     moved = tmp_path / "elsewhere" / "data"  # the sources on another machine, at another path
     shutil.copytree(demo_tree, moved, symlinks=True)

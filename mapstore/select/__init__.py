@@ -2,7 +2,8 @@
 
 from __future__ import annotations
 
-from ._export import ExportReport, VerifyReport, export_selection, json_schemas, read_manifest, verify
+from ._export import ExportReport, VerifyReport, export_selection, json_schemas, verify
+from ._manifest import ExportManifest, ManifestSource, read_manifest
 from ._query import (SCHEMES, Selection, align_columns, check_classes, check_folds, check_leakage, map_levels,
                      resolve_levels, select)
 
@@ -14,10 +15,12 @@ __all__ = [
     "check_leakage",
     "SCHEMES",
     "json_schemas",
+    "ManifestSource",
     "map_levels",
     "resolve_levels",
     "read_manifest",
     "export_selection",
+    "ExportManifest",
     "ExportReport",
     "select",
     "Selection",

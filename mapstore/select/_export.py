@@ -40,14 +40,14 @@ import pyarrow.parquet as pq
 from .._version import __version__
 from ..features import NEAR_COPY_R
 from ..errors import ExportError, ParameterError
-from ..formats import digest_map, foreign_format, nesting_depth, sha256_file
+from ..formats import digest_map, foreign_format, sha256_file
 from ..features import FeatureSet
+from ._manifest import MANIFEST_FORMAT, ExportManifest, ManifestSource, _regular, read_manifest
 from ._query import Selection, fold_vector, parse_scheme
 from ..store import OUTPUT_MARKER, Catalog, check_output, checkpoint, output_folder
 
 __all__ = ["ExportReport", "VerifyReport", "export_selection", "verify", "json_schemas"]
 
-MANIFEST_FORMAT = "mapstore-export"
 BLOCK_ROWS = 64
 DATA_FILES = ("X.npy", "table.parquet", "X.zarr")
 FORMATS = ("npy", "parquet", "zarr")
@@ -122,13 +122,13 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
         _write_columns(tmp, sel, rows.voxels)
         checkpoint()
         manifest = _manifest(sel, scheme, seed, allow_leak, leaks, splits, rows.row_hashes, rows.x_hashes, fmt)
-        manifest["near_copy_r"] = NEAR_COPY_R if near_copy_r is None else near_copy_r
-        manifest["allow_unseen"], manifest["unseen"] = allow_unseen, unseen
-        manifest["personal_data"] = {"columns": personal, "note": PERSONAL_NOTE if personal else None}
+        manifest.near_copy_r = NEAR_COPY_R if near_copy_r is None else near_copy_r
+        manifest.allow_unseen, manifest.unseen = allow_unseen, unseen
+        manifest.personal_data = {"columns": personal, "note": PERSONAL_NOTE if personal else None}
         # the data files are checked row by row against row_sha256 instead of hashed whole
-        manifest["files"] = {p.name: sha256_file(str(p)) for p in sorted(tmp.iterdir())
-                             if p.name not in DATA_FILES and p.name != OUTPUT_MARKER}
-        (tmp / "manifest.json").write_text(json.dumps(manifest, indent=1, sort_keys=True, default=str))
+        manifest.files = {p.name: sha256_file(str(p)) for p in sorted(tmp.iterdir())
+                          if p.name not in DATA_FILES and p.name != OUTPUT_MARKER}
+        manifest.write(tmp)
         checkpoint()
     return ExportReport(str(out), len(sel), len(rows.voxels), scheme, len(splits), dict(sel.dropped),
                         time.perf_counter() - t0, leaks, sel.missing_report, fs.unit)
@@ -330,7 +330,7 @@ def _write_parquet(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> 
 
 
 def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: list[str], splits,
-              row_hashes: list[str], x_hashes: list[str], fmt: str) -> dict[str, Any]:
+              row_hashes: list[str], x_hashes: list[str], fmt: str) -> ExportManifest:
     import platform
 
     import duckdb
@@ -345,44 +345,32 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
     ds = {r["dataset"]: r["root"] for r in store.sql("SELECT dataset, root FROM datasets").to_pylist()}
     sources = []
     for r, h, xh in zip(sel.meta.itertuples(index=False), row_hashes, x_hashes):
-        src = {"map_id": r.map_id, "dataset": r.dataset, "relpath": r.relpath,
-               "path": os.path.join(ds.get(r.dataset, ""), r.relpath), "sha256": r.sha256,
-               "feature_key": r.feature_key, "row_sha256": h, "x_sha256": xh, "stat": getattr(r, "stat", None),
-               "dof": _number(getattr(r, "dof", None))}
         index = getattr(r, "map_index", None)
-        if index is not None and index == index:  # one map of a file of several (NaN in pandas: none)
-            src["map_index"] = int(index)
-        sources.append(src)
-    return {
-        "format": MANIFEST_FORMAT, "format_version": 1,
-        "created": time.strftime("%Y-%m-%dT%H:%M:%S%z"),
-        "mapstore_version": __version__,
-        "versions": {"python": platform.python_version(), "numpy": np.__version__, "scipy": scipy.__version__,
-                     "nibabel": nibabel.__version__, "nilearn": nilearn.__version__, "scikit-learn": sklearn.__version__,
-                     "duckdb": duckdb.__version__, "pyarrow": pa.__version__},
+        sources.append(ManifestSource(
+            r.map_id, r.dataset, r.relpath, os.path.join(ds.get(r.dataset, ""), r.relpath), r.sha256,
+            r.feature_key, h, xh, getattr(r, "stat", None), _number(getattr(r, "dof", None)),
+            # one map of a file of several (NaN in pandas: none)
+            int(index) if index is not None and index == index else None))
+    return ExportManifest(
+        store=str(store.path), feature_settings=fs.spec.to_json(), query=sel.query, y_from=sel.y_from,
+        group_by=sel.group_by, scheme=scheme, seed=seed, shape=[len(sel), len(sel.voxels)], sources=sources,
+        layout=fmt, created=time.strftime("%Y-%m-%dT%H:%M:%S%z"), mapstore_version=__version__,
+        versions={"python": platform.python_version(), "numpy": np.__version__, "scipy": scipy.__version__,
+                  "nibabel": nibabel.__version__, "nilearn": nilearn.__version__, "scikit-learn": sklearn.__version__,
+                  "duckdb": duckdb.__version__, "pyarrow": pa.__version__},
         # what a rebuild on another machine needs: each dataset's identity, sources relative to its root
-        "datasets": {r["dataset"]: {"name": r["name"], "generated_by": r["generated_by"]}
-                     for r in store.sql("SELECT dataset, name, generated_by FROM datasets").to_pylist()
-                     if r["dataset"] in set(sel.meta["dataset"])},
-        "feature_settings": fs.spec.to_json(),
-        "store": str(store.path), "catalog_snapshot": head.catalog,
-        "query": sel.query, "dropped": sel.dropped,
-        "feature_set": {"name": fs.name, "spec_id": fs.spec.spec_id, "grid": fs.spec.grid,
-                        "grid_id": fs.spec.grid_id, "mask": fs.spec.mask, "method": fs.spec.method,
-                        "stat": fs.spec.stat, "versions": fs.spec.versions},
-        "vocabulary": ({k: getattr(head.labels, k) for k in ("vocabulary", "sha256", "version", "inherit_broader")}
-                       if head.labels else None),
-        "vocabulary_content": _vocabulary_content(store),
+        datasets={r["dataset"]: {"name": r["name"], "generated_by": r["generated_by"]}
+                  for r in store.sql("SELECT dataset, name, generated_by FROM datasets").to_pylist()
+                  if r["dataset"] in set(sel.meta["dataset"])},
+        catalog_snapshot=head.catalog, dropped=sel.dropped,
+        vocabulary=({k: getattr(head.labels, k) for k in ("vocabulary", "sha256", "version", "inherit_broader")}
+                    if head.labels else None),
+        vocabulary_content=_vocabulary_content(store),
         # the name rules and origins the catalog was made with (their content): a rebuild needs no other file
-        "index_inputs": store.catalog.index_inputs(),
-        "target": sel.target, "concepts": sel.concepts, "group_by": sel.group_by,
-        "scheme": scheme, "seed": seed, "allow_leak": allow_leak, "leaks": leaks,
-        "splits": [{"train": len(tr), "test": len(te),
-                    "test_groups": sorted(map(str, set(sel.groups[te])))} for tr, te in splits],
-        "missing": {**sel.missing_report, "voxels_file": "voxels.npy"},
-        "shape": [len(sel), len(sel.voxels)], "dtype": "float32", "layout": fmt,
-        "sources": sources,
-    }
+        index_inputs=store.catalog.index_inputs(), concepts=sel.concepts, allow_leak=allow_leak, leaks=leaks,
+        splits=[{"train": len(tr), "test": len(te), "test_groups": sorted(map(str, set(sel.groups[te])))}
+                for tr, te in splits],
+        missing={**sel.missing_report, "voxels_file": "voxels.npy"})
 
 
 def _number(v: Any) -> float | None:
@@ -432,7 +420,7 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
     mpath, man = read_manifest(manifest_path)
     changes: list[str] = []
     folder = mpath.parent
-    for name, sha in man.get("files", {}).items():
+    for name, sha in man.files.items():
         p = folder / name
         if not p.exists():
             changes.append(f"export file missing: {name}")
@@ -443,8 +431,8 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
         elif sha256_file(str(p)) != sha:
             changes.append(f"export file changed: {name}")
     hashed: dict[str, str] = {}  # a file that several entries name is hashed once
-    for s in man["sources"]:
-        p = Path(s["path"])
+    for s in man.sources:
+        p = Path(s.path)
         if not p.exists():
             changes.append(f"source missing: {p}")
             continue
@@ -455,136 +443,52 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
         if key not in hashed:
             hashed[key] = digest_map(str(p)).sha256 if foreign_format(str(p)) else sha256_file(str(p))
         got = hashed[key]
-        if got != s["sha256"]:
-            changes.append(f"source changed: {p} (sha256 {s['sha256'][:12]}... -> {got[:12]}...)")
+        if got != s.sha256:
+            changes.append(f"source changed: {p} (sha256 {s.sha256[:12]}... -> {got[:12]}...)")
     n_rows = 0
     try:
-        cat = Catalog(man["store"])
-        name = man["feature_set"]["name"]
+        cat = Catalog(man.store)
+        name = man.set_name
         if name not in cat.head.features:
             raise ExportError(f"no feature set {name!r} in {cat.path}")
         fs = FeatureSet(cat.path, name, cat.head.features[name])
     except Exception as exc:  # noqa: BLE001 - any failure to open is reported, not raised
         changes.append(f"store or feature set unavailable: {exc}")
-        return VerifyReport(str(mpath), len(man["sources"]), 0, changes)
-    if fs.spec.spec_id != man["feature_set"]["spec_id"]:
+        return VerifyReport(str(mpath), len(man.sources), 0, changes)
+    if fs.spec.spec_id != man.set_spec_id:
         changes.append(f"feature set {fs.name!r} now has other settings (spec {fs.spec.spec_id} != "
-                       f"{man['feature_set']['spec_id']})")
+                       f"{man.set_spec_id})")
     rows = {r["map_id"]: r for r in fs.rows.to_pylist()}
-    present = [s for s in man["sources"] if s["map_id"] in rows and rows[s["map_id"]]["feature_key"] == s["feature_key"]]
-    for s in man["sources"]:
-        r = rows.get(s["map_id"])
+    present = [s for s in man.sources if s.map_id in rows and rows[s.map_id]["feature_key"] == s.feature_key]
+    for s in man.sources:
+        r = rows.get(s.map_id)
         if r is None:
-            changes.append(f"store row gone: {s['map_id']} ({s['relpath']})")
-        elif r["feature_key"] != s["feature_key"]:
-            changes.append(f"store row rebuilt from other inputs: {s['map_id']} ({s['relpath']})")
+            changes.append(f"store row gone: {s.map_id} ({s.relpath})")
+        elif r["feature_key"] != s.feature_key:
+            changes.append(f"store row rebuilt from other inputs: {s.map_id} ({s.relpath})")
     for i in range(0, len(present), BLOCK_ROWS):
         part = present[i:i + BLOCK_ROWS]
-        block = fs.matrix([s["map_id"] for s in part])
+        block = fs.matrix([s.map_id for s in part])
         for s, row in zip(part, block):
             n_rows += 1
-            if _row_hash(row) != s["row_sha256"]:
-                changes.append(f"store row changed: {s['map_id']} ({s['relpath']})")
+            if _row_hash(row) != s.row_sha256:
+                changes.append(f"store row changed: {s.map_id} ({s.relpath})")
     changes += _check_data_file(folder, man)
-    return VerifyReport(str(mpath), len(man["sources"]), n_rows, changes)
+    return VerifyReport(str(mpath), len(man.sources), n_rows, changes)
 
 
 _BLOCK_LIMIT = 1 << 30  # bytes of one block of exported rows read at once
-MANIFEST_LIMIT = 256 << 20  # bytes: a manifest of a million maps is about 600 MB... of a hundred thousand, 60
-MANIFEST_DEPTH = 16
-
-
-def read_manifest(manifest_path: str | os.PathLike[str]) -> tuple[Path, dict[str, Any]]:
-    """A manifest as untrusted input: bounded in size and depth, its types checked before anything reads
-    it; returns its path and content, or ExportError in one line."""
-    mpath = Path(manifest_path)
-    if mpath.is_dir():
-        mpath = mpath / "manifest.json"
-    try:
-        if not mpath.exists():
-            raise FileNotFoundError(mpath)
-        if not _regular(mpath):
-            raise ExportError(f"{mpath}: not a regular file; give the export folder or its manifest.json")
-        size = mpath.stat().st_size
-        if size > MANIFEST_LIMIT:
-            raise ExportError(f"{mpath}: {size:,} bytes, more than the {MANIFEST_LIMIT >> 20} MiB a manifest may hold")
-        man = json.loads(mpath.read_text(encoding="utf-8"))
-    except FileNotFoundError as exc:
-        if mpath.parent.name.endswith(".partial"):
-            raise ExportError(f"{mpath.parent}: the unfinished folder of an interrupted run, not a result; run it "
-                              "again (the next run removes it)") from exc
-        raise ExportError(f"{mpath}: manifest not found; give the export folder or its manifest.json") from exc
-    except RecursionError as exc:
-        raise ExportError(f"{mpath}: malformed manifest (nested deeper than {MANIFEST_DEPTH} levels)") from exc
-    except (OSError, ValueError) as exc:
-        raise ExportError(f"{mpath}: unreadable manifest ({exc})") from exc
-    if not isinstance(man, dict) or man.get("format") != MANIFEST_FORMAT:
-        raise ExportError(f"{mpath}: not a mapstore export manifest")
-    if nesting_depth(man, MANIFEST_DEPTH) > MANIFEST_DEPTH:
-        raise ExportError(f"{mpath}: malformed manifest (nested deeper than {MANIFEST_DEPTH} levels)")
-    _check_manifest(man, mpath)
-    return mpath, man
-
-
 def _inside_folder(p: Path, folder: Path) -> bool:
     """The path, links followed, stays in the folder (an export file that is a link out is not the export's)."""
     real, base = os.path.realpath(p), os.path.realpath(folder)
     return real.startswith(base + os.sep)
 
 
-def _regular(p: Path) -> bool:
-    import stat
-
-    try:
-        return stat.S_ISREG(os.stat(p).st_mode)
-    except OSError:
-        return False
-
-
-def _check_manifest(man: dict[str, Any], mpath: Path) -> None:
-    """The fields verify reads have their types, and the export files it names are plain names in its folder."""
-    def bad(what: str) -> ExportError:
-        return ExportError(f"{mpath}: malformed manifest ({what}); re-export to get a manifest verify can read")
-
-    files, sources = man.get("files", {}), man.get("sources")
-    if not isinstance(files, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in files.items()):
-        raise bad("'files' must map file names to hashes")
-    for name in files:
-        if not name or "/" in name or "\\" in name or name in (".", "..") or "\x00" in name:
-            raise bad(f"'files' names {name!r}, which is not a file of the export folder")
-    if not isinstance(sources, list) or not all(isinstance(s, dict) for s in sources):
-        raise bad("'sources' must be a list of objects")
-    for i, s in enumerate(sources):
-        for k in ("map_id", "path", "sha256", "feature_key", "row_sha256", "relpath"):
-            if not isinstance(s.get(k), str):
-                raise bad(f"sources[{i}].{k} is {type(s.get(k)).__name__}, not text")
-    if not isinstance(man.get("store"), str) or not isinstance(man.get("feature_set"), dict) or \
-            not isinstance(man["feature_set"].get("name"), str):
-        raise bad("'store' and 'feature_set.name' must be text")
-    shape = man.get("shape")
-    if not (isinstance(shape, list) and len(shape) == 2 and all(isinstance(v, int) and not isinstance(v, bool)
-                                                                  and v >= 0 for v in shape)):
-        raise bad("'shape' must be two whole numbers")
-    for key, kind in (("layout", str), ("scheme", str), ("target", str), ("group_by", str)):
-        if man.get(key) is not None and not isinstance(man[key], kind):
-            raise bad(f"'{key}' must be text")
-    for key in ("query", "datasets", "feature_settings", "index_inputs", "vocabulary", "vocabulary_content"):
-        if man.get(key) is not None and not isinstance(man[key], dict):
-            raise bad(f"'{key}' must be an object")
-    if man.get("seed") is not None and (not isinstance(man["seed"], int) or isinstance(man["seed"], bool)):
-        raise bad("'seed' must be a whole number")
-
-
-def _x_hash(source: dict[str, Any]) -> str:
-    # manifests before missing-value policies exported whole store rows
-    return source.get("x_sha256") or source["row_sha256"]
-
-
-def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
+def _check_data_file(folder: Path, man: ExportManifest) -> list[str]:
     """Compare every exported row with the row hash recorded for it."""
     out: list[str] = []
-    sources = man["sources"]
-    if man.get("layout") == "parquet":
+    sources = man.sources
+    if man.layout == "parquet":
         f = folder / "table.parquet"
         if not f.exists():
             return ["export file missing: table.parquet"]
@@ -602,18 +506,18 @@ def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
         for batch in pf.iter_batches(batch_size=BLOCK_ROWS, columns=[column]):
             values = batch.column(0).flatten().to_numpy(zero_copy_only=False).reshape(batch.num_rows, -1)
             for row in values:
-                if i >= len(sources) or _row_hash(row) != _x_hash(sources[i]):
+                if i >= len(sources) or _row_hash(row) != sources[i].x_hash:
                     out.append(f"exported row changed: table.parquet row {i}")
                 i += 1
         if i != len(sources):
             out.append(f"table.parquet has {i} rows, the manifest {len(sources)}")
         return out
-    name = "X.zarr" if man.get("layout") == "zarr" else "X.npy"
+    name = "X.zarr" if man.layout == "zarr" else "X.npy"
     f = folder / name
     if not f.exists():
         return [f"export file missing: {name}"]
-    if 4 * BLOCK_ROWS * max(1, int(man["shape"][1])) > _BLOCK_LIMIT:
-        return [f"export file changed: the manifest declares rows of {man['shape'][1]:,} values, more than an "
+    if 4 * BLOCK_ROWS * max(1, int(man.shape[1])) > _BLOCK_LIMIT:
+        return [f"export file changed: the manifest declares rows of {man.shape[1]:,} values, more than an "
                 "export can hold"]
     try:
         if name == "X.zarr":
@@ -624,20 +528,20 @@ def _check_data_file(folder: Path, man: dict[str, Any]) -> list[str]:
             X = np.load(f, mmap_mode="r")
     except Exception as exc:  # noqa: BLE001 - numpy and zarr raise several kinds for a damaged file
         return [f"export file unreadable: {name} ({exc})"]
-    if tuple(X.shape) != tuple(man["shape"]) or X.dtype != np.float32:
-        return [f"export file changed: {name} has shape {X.shape} {X.dtype}, the manifest {man['shape']} float32"]
+    if tuple(X.shape) != tuple(man.shape) or X.dtype != np.float32:
+        return [f"export file changed: {name} has shape {X.shape} {X.dtype}, the manifest {man.shape} float32"]
     if not _inside_folder(f, folder) or (name == "X.zarr" and any(
             not _inside_folder(Path(d) / n, folder) for d, _, ns in os.walk(f) for n in ns)):
         return [f"export file leads out of the export folder (a symbolic link): {name}"]
     stored = sum(os.path.getsize(Path(d) / n) for d, _, ns in os.walk(f) for n in ns) if f.is_dir() else \
         os.path.getsize(f)
-    if name == "X.npy" and stored < 4 * int(np.prod(man["shape"])):
-        return [f"export file changed: {name} holds fewer bytes than its shape {man['shape']} needs"]
+    if name == "X.npy" and stored < 4 * int(np.prod(man.shape)):
+        return [f"export file changed: {name} holds fewer bytes than its shape {man.shape} needs"]
     for start in range(0, len(sources), BLOCK_ROWS):  # one read per block (a Zarr chunk)
         block = np.asarray(X[start:start + BLOCK_ROWS])
         for i, row in enumerate(block, start):
-            if i < len(sources) and _row_hash(row) != _x_hash(sources[i]):
-                out.append(f"exported row changed: {name} row {i} ({sources[i]['map_id']})")
+            if i < len(sources) and _row_hash(row) != sources[i].x_hash:
+                out.append(f"exported row changed: {name} row {i} ({sources[i].map_id})")
     return out
 
 
@@ -649,8 +553,8 @@ def json_schemas() -> dict[str, dict[str, Any]]:
         "description": "Everything needed to reproduce and verify an export: query, feature set, every "
                        "source file's sha256 and row hash, vocabulary hash, versions, scheme and seed.",
         "type": "object",
-        "required": ["format", "format_version", "mapstore_version", "store", "query", "feature_set",
-                     "scheme", "seed", "sources", "files", "shape"],
+        "required": ["format", "format_version", "mapstore_version", "store", "query", "feature_settings",
+                     "y_from", "group_by", "scheme", "seed", "sources", "files", "shape"],
         "properties": {
             "format": {"const": MANIFEST_FORMAT},
             "format_version": {"type": "integer"},
@@ -661,15 +565,16 @@ def json_schemas() -> dict[str, dict[str, Any]]:
             "catalog_snapshot": {"type": ["string", "null"]},
             "query": {"type": "object"},
             "dropped": {"type": "object"},
-            "feature_set": {"type": "object", "required": ["name", "spec_id", "grid_id", "mask"]},
             "vocabulary": {"type": ["object", "null"]},
             "vocabulary_content": {"type": ["object", "null"]},
             "index_inputs": {"type": ["object", "null"], "properties": {
                 "rules": {"type": "array", "items": {"type": "object"}},
                 "origins": {"type": ["object", "null"]}}},
-            "feature_settings": {"type": "object"},
+            "feature_settings": {"type": "object", "required": ["name", "spec_id", "grid", "grid_id", "mask"],
+                                 "description": "the feature set's set.json"},
             "datasets": {"type": "object"},
-            "target": {"type": "string"},
+            "near_copy_r": {"type": ["number", "null"]},
+            "y_from": {"type": "string", "description": "what y is made from (older manifests: 'target')"},
             "concepts": {"type": "array", "items": {"type": "string"}},
             "group_by": {"type": "string"},
             "scheme": {"type": "string"},

@@ -28,7 +28,7 @@ MISSING_POLICIES = ("common", "zero", "keep")
 
 GROUP_COLUMNS = {"study": "study", "site": "site", "lab": "lab", "subject": "participant",
                  "participant": "participant", "dataset": "dataset"}
-_TARGET_KINDS = ("contrast", "study-contrast", "concept", "concepts")
+Y_FROM = ("contrast", "study-contrast", "concept", "concepts")
 
 
 _KFOLD_KINDS = ("group-kfold", "stratified-group-kfold", "within-study-group-kfold")
@@ -200,8 +200,8 @@ def check_classes(splits, y: np.ndarray | None = None, Y: np.ndarray | None = No
     if problems and not allow_unseen:
         raise UnseenClassError(
             "no model can score these test maps:\n  " + "\n  ".join(problems[:10]) +
-            "\nuse a target the groups share (target='concept' from labels, which studies have in common; "
-            "target='study-contrast' with scheme='within-study-group-kfold:K' for each study's own names), group "
+            "\nuse a target the groups share (y_from='concept' from labels, which studies have in common; "
+            "y_from='study-contrast' with scheme='within-study-group-kfold:K' for each study's own names), group "
             "by something finer (group_by='subject'), or pass allow_unseen=True (--allow-unseen) to accept it "
             "(recorded in the export's manifest)")
     if problems:
@@ -294,9 +294,9 @@ class Selection:
         One row per map (map_id, dataset, study, site, lab, participant, task, contrast, stat,
         concepts, coverage, sha256, feature_key, ...), in the order of ``X``'s rows.
     y : ndarray
-        Target per map (a class name), or None when ``target="concepts"``.
+        Target per map (a class name), or None when ``y_from="concepts"``.
     Y : ndarray of uint8, shape (n_maps, n_concepts)
-        Multi-label indicators when ``target="concepts"`` (columns: ``concepts``).
+        Multi-label indicators when ``y_from="concepts"`` (columns: ``concepts``).
     groups : ndarray
         Group label per map (``group_by``).
     dropped : dict
@@ -311,7 +311,7 @@ class Selection:
     concepts: list[str]
     groups: np.ndarray
     group_by: str
-    target: str
+    y_from: str  # what y is made from: contrast, study-contrast, concept, concepts or a column
     query: dict[str, Any]
     dropped: dict[str, int] = field(default_factory=dict)
     missing: str = "common"
@@ -321,6 +321,15 @@ class Selection:
 
     def __len__(self) -> int:
         return len(self.meta)
+
+    @property
+    def target(self) -> str:
+        """Deprecated: :attr:`y_from`."""
+        import warnings
+
+        warnings.warn("Selection.target is now Selection.y_from; target goes in the next release", DeprecationWarning,
+                      stacklevel=2)
+        return self.y_from
 
     def _repr_html_(self) -> str:
         from ..formats import html_table
@@ -335,7 +344,7 @@ class Selection:
             else "y: numeric" if self.y is not None else f"Y: {len(self.concepts)} concepts"
         cols = f"{len(self._voxels):,} columns" if self._voxels is not None else "columns not read yet"
         return (f"Selection({len(self)} maps of {studies} studies, feature set {self.feature_set.name!r}, {cols}, "
-                f"target {self.target!r} ({target}), groups by {self.group_by!r}, missing={self.missing!r})")
+                f"y from {self.y_from!r} ({target}), groups by {self.group_by!r}, missing={self.missing!r})")
 
     @property
     def map_ids(self) -> list[str]:
@@ -753,10 +762,16 @@ def _one_per(df, per_subject: str, one_stat: bool):
 
 def select(store, where: str | None = None, *, concepts: list[str] | None = None, task: list[str] | None = None,
            stat: list[str] | None = None, features: str | None = None, min_coverage: float | None = None,
-           target: str = "contrast", group_by: str = "study", with_broader: bool = False,
+           y_from: str = "contrast", group_by: str = "study", with_broader: bool = False,
            missing: str = "common", min_voxels: int | None = None, one_stat: bool = True,
-           per_subject: str = "contrast", level: str | list[str] = "subject") -> Selection:
+           per_subject: str = "contrast", level: str | list[str] = "subject", target: str | None = None) -> Selection:
     """Choose maps and build a :class:`Selection` (see :meth:`mapstore.Store.select`)."""
+    if target is not None:
+        import warnings
+
+        warnings.warn("select(target=...) is now select(y_from=...); target goes in the next release",
+                      DeprecationWarning, stacklevel=3)
+        y_from = target
     _check_select_options(missing, min_voxels, group_by, min_coverage, concepts=concepts, task=task, stat=stat)
     levels = resolve_levels(level)
     if per_subject not in PER_SUBJECT:
@@ -789,13 +804,13 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
     lab = lab[lab.map_id.isin(set(df.map_id))]
     by_map = lab.groupby("map_id")["concept"].apply(lambda s: sorted(set(s))).to_dict()
     df["concepts"] = [by_map.get(m, []) for m in df.map_id]
-    y, Y, concept_list = _targets(df, target, concepts)
+    y, Y, concept_list = _targets(df, y_from, concepts)
     groups = _groups(df, group_by)
     query = {"where": where, "concepts": concepts, "task": task, "stat": stat, "features": fs.name,
-             "min_coverage": min_coverage, "target": target, "group_by": group_by, "with_broader": with_broader,
+             "min_coverage": min_coverage, "y_from": y_from, "group_by": group_by, "with_broader": with_broader,
              "missing": missing, "min_voxels": min_voxels, "one_stat": one_stat, "per_subject": per_subject,
              "level": level if isinstance(level, str) else list(level), "sql": q}
-    return Selection(store, fs, df, y, Y, concept_list, groups, group_by, target, query, dropped, missing,
+    return Selection(store, fs, df, y, Y, concept_list, groups, group_by, y_from, query, dropped, missing,
                      min_voxels)
 
 
@@ -905,27 +920,27 @@ def _selection_sql(cat, feature_set: str, where: str | None, task: list[str] | N
     return q, count
 
 
-def _targets(df, target: str, concepts: list[str] | None):
+def _targets(df, y_from: str, concepts: list[str] | None):
     """``y`` (one label per map) or ``Y`` (multi-label indicators, with their concept list)."""
     import pandas as pd
 
     y = Y = None
     concept_list: list[str] = []
-    if target == "contrast":
+    if y_from == "contrast":
         y = df["contrast"].to_numpy(object)
-    elif target == "study-contrast":  # each study's contrast names kept apart from another's
+    elif y_from == "study-contrast":  # each study's contrast names kept apart from another's
         y = np.array([f"{s}/{c}" for s, c in zip(df["study"], df["contrast"])], dtype=object)
-    elif target == "concept":
+    elif y_from == "concept":
         keep = set(concepts) if concepts else None
         chosen = [[c for c in cs if keep is None or c in keep] for cs in df["concepts"]]
         bad = [(m, c) for m, c in zip(df.map_id, chosen) if len(c) != 1]
         if bad:
             ex = ", ".join(f"{m} {c or '(none)'}" for m, c in bad[:5])
-            raise QueryError(f"target 'concept' needs exactly one concept per map; {len(bad)} map(s) have "
+            raise QueryError(f"y_from 'concept' needs exactly one concept per map; {len(bad)} map(s) have "
                              f"none or several (e.g. {ex}); choose concepts=[...] that do not overlap, or use "
-                             "target='concepts' for a multi-label indicator matrix")
+                             "y_from='concepts' for a multi-label indicator matrix")
         y = np.array([c[0] for c in chosen], dtype=object)
-    elif target == "concepts":
+    elif y_from == "concepts":
         concept_list = sorted(set(concepts) if concepts else {c for cs in df["concepts"] for c in cs})
         idx = {c: i for i, c in enumerate(concept_list)}
         Y = np.zeros((len(df), len(concept_list)), dtype=np.uint8)
@@ -933,15 +948,15 @@ def _targets(df, target: str, concepts: list[str] | None):
             for c in cs:
                 if c in idx:
                     Y[r, idx[c]] = 1
-    elif target in df.columns:
-        if pd.isna(df[target]).any():
-            raise QueryError(f"target column {target!r} is empty for {int(pd.isna(df[target]).sum())} map(s)")
-        col = df[target]
+    elif y_from in df.columns:
+        if pd.isna(df[y_from]).any():
+            raise QueryError(f"y_from column {y_from!r} is empty for {int(pd.isna(df[y_from]).sum())} map(s)")
+        col = df[y_from]
         # a numeric column (age, a score) stays numeric: a regression target
         y = col.to_numpy(np.float64) if pd.api.types.is_numeric_dtype(col) and not pd.api.types.is_bool_dtype(col) \
             else col.to_numpy(object)
     else:
-        raise ParameterError(f"target must be one of {list(_TARGET_KINDS)} or a column of maps, got {target!r}")
+        raise ParameterError(f"y_from must be one of {list(Y_FROM)} or a column of maps, got {y_from!r}")
     return y, Y, concept_list
 
 
