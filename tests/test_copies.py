@@ -9,7 +9,7 @@ import numpy as np
 import pytest
 
 import mapstore
-from mapstore.select._query import copy_groups
+from mapstore.select._splits import copy_groups
 from mapstore.features._copies import SKETCH_BITS, Sketcher, _estimate, find_copies, pair_correlation
 from mapstore.errors import LeakageError
 

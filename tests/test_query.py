@@ -9,7 +9,7 @@ from hypothesis import strategies as st
 from sklearn.model_selection import GroupKFold, GroupShuffleSplit, LeaveOneGroupOut
 
 from mapstore.errors import LeakageError, ParameterError
-from mapstore.select._query import assign_folds, check_leakage, parse_scheme
+from mapstore.select._splits import assign_folds, check_leakage, parse_scheme
 
 
 @st.composite

@@ -4,8 +4,8 @@ from __future__ import annotations
 
 from ._export import ExportReport, VerifyReport, export_selection, json_schemas, verify
 from ._manifest import ExportManifest, ManifestSource, read_manifest
-from ._query import (SCHEMES, Selection, align_columns, check_classes, check_folds, check_leakage, map_levels,
-                     resolve_levels, select)
+from ._query import Selection, align_columns, check_folds, map_levels, resolve_levels, select
+from ._splits import SCHEMES, check_classes, check_leakage
 
 
 __all__ = [

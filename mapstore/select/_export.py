@@ -43,7 +43,8 @@ from ..errors import ExportError, ParameterError
 from ..formats import digest_map, foreign_format, sha256_file
 from ..features import FeatureSet
 from ._manifest import MANIFEST_FORMAT, ExportManifest, ManifestSource, _regular, read_manifest
-from ._query import Selection, fold_vector, parse_scheme
+from ._query import Selection
+from ._splits import fold_vector, parse_scheme
 from ..store import OUTPUT_MARKER, Catalog, check_output, checkpoint, output_folder
 
 __all__ = ["ExportReport", "VerifyReport", "export_selection", "verify", "json_schemas"]
