@@ -8,15 +8,10 @@ import pytest
 from bids.layout import parse_file_entities
 from bids.layout.models import Config
 
-from mapstore.indexing._discover import (
-    EntityParser,
-    MetadataOverrides,
-    NameRules,
-    SidecarResolver,
-    find_datasets,
-    read_participants,
-    walk_dataset,
-)
+from mapstore.indexing._datasets import find_datasets
+from mapstore.indexing._metadata import MetadataOverrides, SidecarResolver, read_participants
+from mapstore.indexing._names import EntityParser, NameRules
+from mapstore.indexing._walk import walk_dataset
 from mapstore.errors import RulesError
 
 from .conftest import make_derivative, write_json, write_map

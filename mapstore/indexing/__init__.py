@@ -4,7 +4,8 @@ presets), resolve sidecars and participants, read headers and hashes into the ca
 from __future__ import annotations
 
 from ._crawl import IndexReport, index, map_id_for
-from ._discover import builtin_rules, inside, lies_within
+from ._names import builtin_rules
+from ..store import inside, lies_within
 
 __all__ = [
     "builtin_rules",

@@ -29,35 +29,11 @@ import pyarrow.parquet as pq
 
 from ._layouts import LayoutReader, level_from_entities
 from ._spaces import RegistrationFinder, registration_json, space_kind
-from ._discover import (
-
-    DatasetInfo,
-
-    EntityParser,
-
-    MetadataOverrides,
-
-    ModelFiles,
-
-    NameRules,
-
-    Problem,
-
-    SidecarResolver,
-
-    find_datasets,
-
-    inside,
-
-    lies_within,
-
-    read_participants,
-
-    top_folders,
-
-    walk_dataset,
-
-)
+from ._datasets import DatasetInfo, find_datasets, top_folders
+from ._metadata import MetadataOverrides, ModelFiles, SidecarResolver, read_participants
+from ._names import EntityParser, NameRules
+from ._walk import walk_dataset
+from ..store import Problem, inside, lies_within
 from .._version import __version__
 from .._params import positive_int, resolve_jobs
 from .._runner import die_once_for_tests, run as run_units
