@@ -11,17 +11,9 @@ from scipy import ndimage
 
 from mapstore.demo import GRIDS
 from mapstore.errors import GridError
-from mapstore.targets._volume import (
-    _general,
-    _separable,
-    _target_to_source,
-    builtin_grid,
-    grid_from_spec,
-    mask_from_array,
-    mni152_brain_mask,
-    read_volume,
-    resample,
-)
+from mapstore.targets._readers import read_volume
+from mapstore.targets._resample import _general, _separable, _target_to_source, resample
+from mapstore.targets._volume import builtin_grid, grid_from_spec, mask_from_array, mni152_brain_mask
 
 from .conftest import NIBABEL_DATA
 

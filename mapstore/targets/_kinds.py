@@ -30,7 +30,7 @@ def target_of_set(spec: dict[str, Any], folder: str | os.PathLike[str] | None = 
     if kind not in KINDS:
         raise DataFileError(f"a feature set's set.json names no known kind of target ({kind!r}; known: "
                             f"{sorted(KINDS)}); rebuild the set")
-    return KINDS[kind].from_set(spec, folder)
+    return KINDS[kind].from_set(spec, folder, target_of_set)
 
 
 def _cifti_template(grid: Any) -> str | None:

@@ -72,11 +72,10 @@ class ParcelGrid(Target):
         raise FeatureError("a parcel set's target is read from its set.json (its atlas and source set)")
 
     @classmethod
-    def from_set(cls, spec: dict[str, Any], folder: str | os.PathLike[str] | None = None) -> "ParcelGrid":
-        from ._kinds import target_of_set
-
+    def from_set(cls, spec: dict[str, Any], folder: str | os.PathLike[str] | None = None,
+                 of_set: Any = None) -> "ParcelGrid":
         p = spec["parcels"]
-        source = target_of_set({"geometry": p["source_geometry"], "grid": p["source_grid"]})
+        source = of_set({"geometry": p["source_geometry"], "grid": p["source_grid"]})
         return cls(p["atlas_name"], len(p["labels"]), p["atlas_sha256"], p["kind"], source,
                    os.fspath(folder) if folder is not None else None, tuple(str(n) for n in p["labels"]))
 

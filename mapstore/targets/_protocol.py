@@ -240,8 +240,9 @@ class Target(abc.ABC):
         """The target a ``to_json`` document describes."""
 
     @classmethod
-    def from_set(cls, spec: dict[str, Any], folder: Any = None) -> "Target":
-        """The target of a feature set, from its ``set.json`` (and its folder, for kinds with files there)."""
+    def from_set(cls, spec: dict[str, Any], folder: Any = None, of_set: Any = None) -> "Target":
+        """The target of a feature set, from its ``set.json`` (and its folder, for kinds with files there);
+        ``of_set`` reads another set's target (a kind built over a source set needs it)."""
         return cls.from_json(spec["grid"])
 
     # -- building ------------------------------------------------------------------------------

@@ -17,8 +17,8 @@ from ..errors import FeatureError, GridError, ParameterError
 from ..formats import HeaderFacts, MeshFile, mesh_file
 from ._convert import convert
 from ._protocol import BatchContext, BuildSettings, SourceMap
-from ._surface import cifti_cortex, read_surface_values
-from ._volume import grid_from_spec, read_volume, resample
+from ._readers import cifti_cortex, read_surface_values, read_volume
+from ._resample import GridLike, resample
 
 __all__ = ["SourceVolume", "Hemispheres", "zero_background", "source_volume", "hemispheres", "native_sphere",
            "attach_registrations"]
@@ -86,7 +86,7 @@ def _model_mask(path: str, sha256: str, facts: HeaderFacts, cache: dict[str, np.
         except GridError as exc:
             raise FeatureError(f"the model's mask of this map is unusable: {exc}") from exc
         if mfacts.grid_id != facts.grid_id:
-            data = resample(data, mfacts.affine_array, grid_from_spec(facts.spatial_shape, facts.affine_array),
+            data = resample(data, mfacts.affine_array, GridLike(tuple(facts.spatial_shape), facts.affine_array),
                             "nearest")
         hit = cache[key] = np.nan_to_num(data, nan=0.0) != 0
     return hit

@@ -35,10 +35,11 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from ..errors import FeatureError, GridError, ParameterError
+from ..errors import FeatureError, ParameterError
+from ._readers import cifti_cortex, read_surface_values
 from ._protocol import BatchContext, BuildSettings, Mask, Panel, RowValues, SourceMap, Target, mask_from_array
 from ._registered import map_points, registration_key
-from ..formats import (DATA_KINDS, MeshFile, digest_map, foreign_format, mesh_file, read_mesh, read_vertex_data,
+from ..formats import (DATA_KINDS, MeshFile, mesh_file, read_mesh, read_vertex_data,
                        write_mesh_description)
 
 __all__ = [
@@ -622,133 +623,6 @@ def _nearest(source: np.ndarray, target: np.ndarray, unit: bool = True) -> np.nd
 
     _, idx = cKDTree(norm(source)).query(norm(target))
     return idx.astype(np.int64)
-
-
-def read_surface_values(path: str, expect_sha256: str | None = None, map_index: int | None = None
-                        ) -> np.ndarray:
-    """The values of one map of a GIFTI file (vertices,) or CIFTI-2 file (grayordinates,), float32.
-
-    ``map_index`` picks a map of a file of several (a CIFTI scalar row, a GIFTI data array or column);
-    without it the file must hold one map.  The bytes read are the bytes hashed: a file changed since
-    it was indexed is refused.
-    """
-    import nibabel as nib
-
-    if foreign_format(path) == "mgh":  # a FreeSurfer surface overlay: (vertices, 1, 1)
-        return _mgh_values(path, expect_sha256)
-    try:
-        with open(path, "rb") as fh:
-            raw = fh.read()
-    except OSError as exc:
-        raise GridError(f"{path}: cannot read ({exc.strerror}); check the file") from exc
-    if expect_sha256 is not None and hashlib.sha256(raw).hexdigest() != expect_sha256:
-        raise GridError(f"{path}: the file changed since it was indexed; re-run 'mapstore index'")
-    try:
-        if path.endswith(".nii"):
-            img = nib.Cifti2Image.from_bytes(raw)
-            if map_index is not None:  # only that row is decoded
-                return _pick_map(path, img.dataobj, map_index, "maps")
-            data = np.asarray(img.get_fdata(dtype=np.float32))
-            if data.shape[0] != 1:
-                raise GridError(f"{path}: holds {data.shape[0]} maps; a feature row takes one")
-            return data[0]
-        fast = _gifti_one_array(raw) if map_index is None else None
-        if fast is not None:
-            return fast
-        img = nib.GiftiImage.from_bytes(raw)  # type: ignore[assignment]
-        arrays = [a.data for a in img.darrays if a.intent not in (1008, 1009)]  # type: ignore[attr-defined]
-    except GridError:
-        raise
-    except Exception as exc:  # nibabel's XML and base64 decoders raise several types
-        raise GridError(f"{path}: the values cannot be decoded ({type(exc).__name__}: {exc}); re-create "
-                        "the file") from exc
-    if map_index is not None:
-        if len(arrays) == 1 and np.asarray(arrays[0]).ndim == 2:  # one array of vertices x maps
-            return _pick_map(path, np.asarray(arrays[0]).T, map_index, "columns")
-        return _pick_map(path, np.asarray(arrays), map_index, "data arrays")
-    if len(arrays) != 1 or np.asarray(arrays[0]).ndim != 1:
-        raise GridError(f"{path}: holds {len(arrays)} data arrays; a feature row takes a file with one map")
-    return np.asarray(arrays[0], dtype=np.float32)
-
-
-def _mgh_values(path: str, expect_sha256: str | None) -> np.ndarray:
-    import nibabel as nib
-
-    try:
-        if expect_sha256 is not None and digest_map(path).sha256 != expect_sha256:
-            raise GridError(f"{path}: the file changed since it was indexed; re-run 'mapstore index'")
-        img: Any = nib.load(path)
-        return np.asarray(img.dataobj, dtype=np.float32).reshape(-1)
-    except GridError:
-        raise
-    except Exception as exc:  # nibabel's MGH reader raises several types on a damaged file
-        raise GridError(f"{path}: the values cannot be read ({type(exc).__name__}: {exc})") from exc
-
-
-def _pick_map(path: str, maps: Any, index: int, what: str) -> np.ndarray:
-    """Map ``index`` of an array of maps x values, float32."""
-    if not 0 <= index < maps.shape[0]:
-        raise GridError(f"{path}: holds {maps.shape[0]} {what}, not map {index}; re-run 'mapstore index'")
-    return np.asarray(maps[index], dtype=np.float32)
-
-
-_GIFTI_TYPES = {"NIFTI_TYPE_FLOAT32": "f4", "NIFTI_TYPE_FLOAT64": "f8", "NIFTI_TYPE_INT32": "i4",
-                "NIFTI_TYPE_INT16": "i2", "NIFTI_TYPE_UINT8": "u1", "NIFTI_TYPE_INT8": "i1"}
-
-
-def _gifti_one_array(raw: bytes) -> np.ndarray | None:
-    """The values of a GIFTI file with one 1-D base64 data array, decoded without an XML parse.
-
-    GIFTI 1.0 (section 2.3.4): ``Base64Binary`` is the array's bytes in base64,
-    ``GZipBase64Binary`` the same after zlib compression, in the ``Endian`` byte order.  Anything
-    else (several arrays, ASCII, external files, 2-D arrays) returns None: nibabel reads it.
-    """
-    import base64
-    import re
-    import zlib
-
-    if raw.count(b"<DataArray") != 1:
-        return None
-    tag = re.search(rb"<DataArray\b([^>]*)>", raw)
-    start, stop = raw.find(b"<Data>"), raw.find(b"</Data>")
-    if tag is None or start < 0 or stop < start:
-        return None
-    attrs = dict(re.findall(rb'(\w+)="([^"]*)"', tag.group(1)))
-    enc, kind = attrs.get(b"Encoding"), _GIFTI_TYPES.get(attrs.get(b"DataType", b"").decode())
-    if enc not in (b"Base64Binary", b"GZipBase64Binary") or kind is None or attrs.get(b"Dimensionality") != b"1" \
-            or attrs.get(b"Intent") in (b"NIFTI_INTENT_POINTSET", b"NIFTI_INTENT_TRIANGLE"):
-        return None
-    try:
-        data = base64.b64decode(raw[start + 6:stop])
-        if enc == b"GZipBase64Binary":
-            data = zlib.decompress(data)
-        order = ">" if attrs.get(b"Endian") == b"BigEndian" else "<"
-        values = np.frombuffer(data, dtype=order + kind)
-    except (ValueError, zlib.error):
-        return None  # let nibabel say what is wrong
-    if values.size != int(attrs.get(b"Dim0", b"-1")):
-        return None
-    return values.astype(np.float32)
-
-
-def cifti_cortex(path: str, values: np.ndarray) -> dict[str, np.ndarray]:
-    """The cortex of a CIFTI-2 map as full hemispheres ({'L': (n,), 'R': (n,)}, NaN where not modelled)."""
-    import nibabel as nib
-
-    img = nib.load(path)
-    axis = img.header.get_axis(1)  # type: ignore[attr-defined]
-    out = {}
-    for name, sl, bm in axis.iter_structures():
-        hemi = {"CIFTI_STRUCTURE_CORTEX_LEFT": "L", "CIFTI_STRUCTURE_CORTEX_RIGHT": "R"}.get(str(name))
-        if hemi is None:
-            continue
-        full = np.full(int(axis.nvertices[str(name)]), np.nan, dtype=np.float32)
-        full[bm.vertex] = values[sl]
-        out[hemi] = full
-    if not out:
-        raise GridError(f"{path}: no cortex in its brain models (CORTEX_LEFT/RIGHT); a surface set takes "
-                        "the cortex")
-    return out
 
 
 def check_projection(projection: dict[str, Any] | None) -> dict[str, Any]:

@@ -1,24 +1,8 @@
-"""Target grids, masks, voxel reading and pure resampling of arrays.
-
-Resampling keeps "not measured" apart from "no effect": target voxels outside a
-map's field of view are NaN, never 0, and a NaN in the source reaches only the
-target voxels whose interpolation gives it a non-zero weight.
-
-Paths, fastest first:
-
-* ``same``: the source grid is the target grid (a copy);
-* ``reindex``: the grids differ only by axis flips/permutations and an integer
-  voxel shift (e.g. LAS vs RAS at the same spacing): exact, by indexing;
-* ``separable``: axis-aligned grids (permutation x scaling + shift) with linear or
-  nearest interpolation: three sparse 1-D interpolations, exactly trilinear;
-* ``general``: anything else, and cubic: ``scipy.ndimage.affine_transform``.
-"""
+"""Volume targets: grids (built-in MNI152 or the user's), their masks, pictures and the path of a volume
+map onto them (read by ``_readers``, resampled by ``_resample``, converted by ``_sources``)."""
 
 from __future__ import annotations
 
-import gzip
-import hashlib
-import math
 import os
 from dataclasses import dataclass
 from pathlib import Path
@@ -26,10 +10,11 @@ from typing import Any, ClassVar
 
 import numpy as np
 
-from ..errors import GridError, HeaderError, ParameterError, UnknownGrid
+from ..errors import GridError, ParameterError, UnknownGrid
+from ._readers import gunzip, read_volume
+from ._resample import METHODS, resample
 from ._protocol import BatchContext, BuildSettings, Mask, Panel, RowValues, SourceMap, Target, mask_from_array
-from ..formats import (REAL_SCALAR_DTYPES, HeaderFacts, digest_map, foreign_format, grid_fingerprint, header_prefix,
-                       parse_header, read_foreign_volume, read_header)
+from ..formats import (grid_fingerprint, read_header)
 
 __all__ = [
     "TargetGrid",
@@ -50,8 +35,6 @@ __all__ = [
     "METHODS",
 ]
 
-METHODS = ("linear", "nearest", "cubic")
-_ORDER = {"nearest": 0, "linear": 1, "cubic": 3}
 BUILTIN_GRIDS = {"MNI152-2mm": 2, "MNI152-3mm": 3, "MNI152-1mm": 1}
 _MAX_GRID = 512 ** 3  # voxels of a declared grid: far above any real template (MNI152 1 mm: 7.2 million)
 
@@ -339,281 +322,6 @@ def mask_from_image(path: str | os.PathLike[str], grid: TargetGrid) -> Mask:
         data = resample(data, facts.affine_array, grid, "nearest")
     data = np.nan_to_num(data, nan=0.0)
     return mask_from_array(grid, data != 0, f"file:{Path(path).name}")
-
-
-def gunzip(raw: bytes, limit: int | None = None) -> bytes:
-    """Inflate a (possibly multi-member) gzip stream, with zlib-ng when it is installed; with ``limit``, at
-    most that many bytes (a stream that inflates to more than its header promises is never held whole).
-
-    zlib-ng inflates NIfTI float maps about 1.5x faster than the standard zlib here.
-    """
-    try:
-        from zlib_ng import zlib_ng as z
-    except ImportError:  # pragma: no cover - zlib-ng is a dependency
-        import zlib as z  # type: ignore[no-redef]
-    if limit is None:
-        try:
-            from zlib_ng import gzip_ng
-        except ImportError:  # pragma: no cover
-            return gzip.decompress(raw)
-        return gzip_ng.decompress(raw)
-    out = bytearray()
-    data = raw
-    while data and len(out) < limit:
-        d = z.decompressobj(16 + z.MAX_WBITS)
-        try:
-            out += d.decompress(data, limit - len(out))
-        except z.error as exc:  # type: ignore[misc]  # zlib's own error class: a corrupt stream is a ValueError to the caller
-            raise ValueError(str(exc)) from exc
-        if not d.eof:
-            break  # the limit reached, or the stream cut short (the length check says which)
-        data = d.unused_data
-    return bytes(out)
-
-
-def read_volume(path: str, expect_sha256: str | None = None, dtype=np.float32, map_index: int | None = None
-                ) -> tuple[np.ndarray, HeaderFacts]:
-    """Read a 3-D NIfTI volume as scaled float32 (or ``dtype``), optionally checking the file's SHA-256.
-
-    The file is read once; its bytes are hashed, inflated if gzipped, and viewed
-    with the header's dtype, byte order and Fortran (x-fastest) layout.  Other formats (ANALYZE and
-    NIfTI pairs, AFNI, MGH, MINC) are read through nibabel; ``map_index`` picks an AFNI sub-brick.
-    """
-    if foreign_format(path):
-        return _read_foreign(path, expect_sha256, dtype, map_index)
-    try:
-        with open(path, "rb") as fh:
-            raw = fh.read()
-    except FileNotFoundError as exc:
-        raise GridError(f"{path}: file is gone since it was indexed; re-run 'mapstore index'") from exc
-    except OSError as exc:
-        raise GridError(f"{path}: cannot read ({exc.strerror})") from exc
-    if expect_sha256 is not None:
-        got = hashlib.sha256(raw).hexdigest()
-        if got != expect_sha256:
-            raise GridError(f"{path}: content changed since it was indexed (sha256 {got[:12]}... != "
-                            f"{expect_sha256[:12]}...); re-run 'mapstore index'")
-    try:
-        facts = parse_header(path, header_prefix(path, raw[:4096]))
-        # inflate only what the header says the map holds (plus a byte): never a bomb's whole stream
-        body = gunzip(raw, facts.vox_offset + facts.data_nbytes + 1) if raw[:2] == b"\x1f\x8b" else raw
-    except HeaderError as exc:
-        raise GridError(str(exc)) from exc
-    except (OSError, EOFError, ValueError) as exc:
-        raise GridError(f"{path}: gzip stream is corrupt ({exc}); re-create the file") from exc
-    if facts.n_volumes != 1 and map_index is None:
-        raise GridError(f"{path}: has {facts.n_volumes} volumes; a statistic map must be one 3-D volume "
-                        "(split it, or keep only the map you need)")
-    k = map_index or 0  # a sub-brick of an AFNI bucket written as NIfTI: volumes follow each other
-    if not 0 <= k < facts.n_volumes:
-        raise GridError(f"{path}: has {facts.n_volumes} volume(s), not a volume {k}; re-run 'mapstore index'")
-    if facts.dtype not in REAL_SCALAR_DTYPES:
-        raise GridError(f"{path}: voxel type {facts.dtype} is not a real scalar; save the map as float32")
-    dt = np.dtype(facts.dtype).newbyteorder(facts.endianness)  # type: ignore[arg-type]
-    count = math.prod(facts.spatial_shape)  # Python ints: a damaged header's dims must not wrap around
-    start = facts.vox_offset + k * count * dt.itemsize
-    need = start + count * dt.itemsize
-    if len(body) < need:
-        raise GridError(f"{path}: data is truncated ({len(body)} bytes, header needs {need}); re-create the file")
-    arr = np.frombuffer(body, dtype=dt, count=count, offset=start)
-    vol = arr.reshape(facts.spatial_shape, order="F").astype(dtype)
-    slope, inter = facts.scl_slope, facts.scl_inter
-    # nifti1.h: scaling applies when scl_slope is non-zero (and finite)
-    if np.isfinite(slope) and slope != 0 and (slope != 1 or inter != 0):
-        with np.errstate(over="ignore", invalid="ignore"):  # a wild slope gives inf, as the header says
-            vol = vol * vol.dtype.type(slope) + vol.dtype.type(inter if np.isfinite(inter) else 0)
-    return vol, facts
-
-
-def _read_foreign(path: str, expect_sha256: str | None, dtype, map_index: int | None
-                  ) -> tuple[np.ndarray, HeaderFacts]:
-    try:
-        if expect_sha256 is not None:
-            got = digest_map(path).sha256
-            if got != expect_sha256:
-                raise GridError(f"{path}: content changed since it was indexed (sha256 {got[:12]}... != "
-                                f"{expect_sha256[:12]}...); re-run 'mapstore index'")
-        return read_foreign_volume(path, map_index, dtype)
-    except FileNotFoundError as exc:
-        raise GridError(f"{path}: file is gone since it was indexed; re-run 'mapstore index'") from exc
-    except HeaderError as exc:
-        raise GridError(str(exc)) from exc
-    except OSError as exc:
-        raise GridError(f"{path}: cannot read ({exc.strerror})") from exc
-
-
-def _target_to_source(src_affine: np.ndarray, grid: TargetGrid) -> np.ndarray:
-    return np.linalg.inv(np.asarray(src_affine, dtype=np.float64)) @ grid.affine_array
-
-
-def _axis_aligned(m: np.ndarray, tol: float = 1e-6) -> np.ndarray | None:
-    """perm[t] = source axis fed by target axis t, if each row/column has one non-zero."""
-    r = m[:3, :3]
-    nz = np.abs(r) > tol
-    if not (nz.sum(axis=0) == 1).all() or not (nz.sum(axis=1) == 1).all():
-        return None
-    return np.argmax(nz, axis=0)  # for target axis t (column), the source axis (row)
-
-
-def _weights_1d(coord: np.ndarray, n: int, method: str):
-    """Sparse (len(coord) x n) interpolation matrix along one axis, and the in-FOV flags."""
-    from scipy import sparse
-
-    eps = 1e-6
-    m = coord.size
-    # snap near-integer coordinates so a grid-aligned sample gives no weight (and no NaN) to its
-    # neighbour through rounding error
-    near = np.round(coord)
-    coord = np.where(np.abs(coord - near) < 1e-9, near, coord)
-    if method == "nearest":
-        valid = (coord >= -0.5 - eps) & (coord < n - 0.5 + eps)
-        idx = np.clip(np.floor(coord + 0.5).astype(np.int64), 0, n - 1)
-        rows = np.arange(m)[valid]
-        w = sparse.csr_matrix((np.ones(rows.size), (rows, idx[valid])), shape=(m, n))
-        return w, valid
-    valid = (coord >= -eps) & (coord <= n - 1 + eps)
-    c = np.clip(coord, 0, n - 1)
-    i0 = np.floor(c).astype(np.int64)
-    i0 = np.minimum(i0, n - 1)
-    f = c - i0
-    i1 = np.minimum(i0 + 1, n - 1)
-    rows = np.arange(m)
-    data = np.concatenate([1.0 - f, f])
-    cols = np.concatenate([i0, i1])
-    rr = np.concatenate([rows, rows])
-    keep = (data != 0) & np.concatenate([valid, valid])
-    w = sparse.csr_matrix((data[keep], (rr[keep], cols[keep])), shape=(m, n))
-    w.sum_duplicates()
-    w.eliminate_zeros()
-    return w, valid
-
-
-def resample(data: np.ndarray, src_affine: np.ndarray, grid: TargetGrid, method: str = "linear",
-             return_path: bool = False):
-    """Resample a 3-D array (voxel-to-world ``src_affine``) onto ``grid``.
-
-    Parameters
-    ----------
-    data : ndarray of shape (X, Y, Z)
-        Source values; NaN marks voxels without a value.
-    src_affine : ndarray of shape (4, 4)
-    grid : TargetGrid
-    method : {"linear", "nearest", "cubic"}, default="linear"
-    return_path : bool, default=False
-        Also return which path was taken (``same``, ``reindex``, ``separable``, ``general``).
-
-    Returns
-    -------
-    ndarray of shape ``grid.shape``, float32, NaN outside the source's field of view.
-    """
-    if method not in _ORDER:
-        raise GridError(f"method must be one of {list(METHODS)}, got {method!r}")
-    data = np.asarray(data)
-    if data.ndim != 3:
-        raise GridError(f"expected a 3-D volume, got shape {data.shape}")
-    m = _target_to_source(src_affine, grid)
-    out, path = _resample(data, m, grid, method)
-    return (out, path) if return_path else out
-
-
-def _plan(m: np.ndarray, src_shape: tuple[int, ...], grid: TargetGrid, method: str):
-    """The resampling path for a target-to-source voxel matrix, with its axis parameters."""
-    perm = _axis_aligned(m)
-    if perm is None:
-        return "general", None, None, None
-    scale = m[perm, np.arange(3)]
-    offset = m[perm, 3]
-    if np.allclose(np.abs(scale), 1.0, atol=1e-6) and np.allclose(offset, np.round(offset), atol=1e-5):
-        if (perm == np.arange(3)).all() and (scale > 0).all() and np.allclose(offset, 0, atol=1e-5) \
-                and tuple(src_shape) == grid.shape:
-            return "same", perm, scale, offset
-        return "reindex", perm, np.round(scale).astype(int), np.round(offset).astype(int)
-    if method in ("linear", "nearest"):
-        return "separable", perm, scale, offset
-    return "general", None, None, None
-
-
-def _resample(data: np.ndarray, m: np.ndarray, grid: TargetGrid, method: str):
-    path, perm, scale, offset = _plan(m, data.shape, grid, method)
-    if path == "same":
-        return data.astype(np.float32, copy=True), path
-    if path == "reindex":
-        return _reindex(data, perm, scale, offset, grid), path
-    if path == "separable":
-        return _separable(data, perm, scale, offset, grid, method), path
-    return _general(data, m, grid, method), path
-
-
-def _reindex(data, perm, sign, offset, grid):
-    src = np.transpose(data, perm)  # src axis t now fed by target axis t
-    out = np.full(grid.shape, np.nan, dtype=np.float32)
-    tgt_sl, src_sl = [], []
-    for t in range(3):
-        n_t, n_s, sg, off = grid.shape[t], src.shape[t], int(sign[t]), int(offset[t])
-        # target i reads source sg * i + off; keep the i for which that lies in [0, n_s)
-        lo, hi = ((-off, n_s - off) if sg > 0 else (off - n_s + 1, off + 1))
-        lo, hi = max(lo, 0), min(hi, n_t)
-        if lo >= hi:
-            return out
-        tgt_sl.append(slice(lo, hi))
-        first, last = sg * lo + off, sg * (hi - 1) + off
-        src_sl.append(slice(first, last + 1, 1) if sg > 0 else slice(first, (last - 1) if last > 0 else None, -1))
-    out[tuple(tgt_sl)] = src[tuple(src_sl)]
-    return out
-
-
-def _separable(data, perm, scale, offset, grid, method):
-    """Three sparse 1-D interpolations in float32, each on a C-contiguous 2-D view.
-
-    Sparse products touch only stored (non-zero) weights, so a NaN reaches exactly the
-    targets that give it weight.
-    """
-    x = np.ascontiguousarray(np.transpose(data, perm), dtype=np.float32)
-    ws, valid = [], []
-    for t in range(3):
-        coord = scale[t] * np.arange(grid.shape[t]) + offset[t]
-        w, v = _weights_1d(coord, x.shape[t], method)
-        ws.append(w.astype(np.float32))
-        valid.append(v)
-    n0, n1, n2 = x.shape
-    m0, m1 = ws[0].shape[0], ws[1].shape[0]
-    x = (ws[0] @ x.reshape(n0, -1)).reshape(m0, n1, n2)                      # axis 0
-    x = np.ascontiguousarray(x.transpose(0, 2, 1)).reshape(-1, n1)            # (m0 * n2, n1)
-    x = np.asarray(x @ ws[1].T.tocsc()).reshape(m0, n2, m1)                   # axis 1
-    x = np.ascontiguousarray(x.transpose(0, 2, 1)).reshape(-1, n2)            # (m0 * m1, n2)
-    out = np.asarray(x @ ws[2].T.tocsc(), dtype=np.float32).reshape(m0, m1, -1)  # axis 2
-    out[~(valid[0][:, None, None] & valid[1][None, :, None] & valid[2][None, None, :])] = np.nan
-    return out
-
-
-def _general(data, m, grid, method):
-    from scipy import ndimage
-
-    order = _ORDER[method]
-    nan = ~np.isfinite(data)
-    clean = np.where(nan, 0.0, data).astype(np.float64)
-    mat, off = m[:3, :3], m[:3, 3]
-    out = ndimage.affine_transform(clean, mat, off, output_shape=grid.shape, order=order,
-                                   mode="constant", cval=0.0, prefilter=order > 1)
-    # field of view, from the source coordinates of every target voxel
-    ii = [np.arange(s, dtype=np.float64) for s in grid.shape]
-    inside = np.ones(grid.shape, dtype=bool)
-    lo, hi = (-0.5, 0.5) if order == 0 else (0.0, 0.0)
-    for a in range(3):
-        c = (mat[a, 0] * ii[0][:, None, None] + mat[a, 1] * ii[1][None, :, None]
-             + mat[a, 2] * ii[2][None, None, :] + off[a])
-        inside &= (c >= lo - 1e-6) & (c <= data.shape[a] - 1 + hi + 1e-6)
-    if nan.any():
-        ind = nan.astype(np.float64)
-        if order == 3:
-            # the cubic B-spline kernel reaches two voxels out: widen the NaN region by its support
-            ind = ndimage.binary_dilation(nan, iterations=1).astype(np.float64)
-        reach = ndimage.affine_transform(ind, mat, off, output_shape=grid.shape, order=min(order, 1),
-                                         mode="constant", cval=0.0, prefilter=False)
-        out[reach > 1e-7] = np.nan
-    out = out.astype(np.float32)
-    out[~inside] = np.nan
-    return out
 
 
 def crop_grid(grid: TargetGrid, indices: np.ndarray) -> tuple[TargetGrid, np.ndarray]:
