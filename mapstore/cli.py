@@ -39,12 +39,6 @@ def report_json(report) -> str:
     return run(report)
 
 
-def make_demo(*args, **kwargs):
-    from .demo import make_demo as run
-
-    return run(*args, **kwargs)
-
-
 def verify_export(manifest):
     from .select import verify as run
 
@@ -67,6 +61,12 @@ def schema_text(name: str) -> str:
     from .formats import schema_text as run
 
     return run(name)
+
+
+def text_table(*args, **kwargs) -> str:
+    from .formats._text import text_table as run
+
+    return run(*args, **kwargs)
 
 
 def label_store(*args, **kwargs):
@@ -123,34 +123,6 @@ def cli() -> None:
       mapstore pool --store DIR --concept reading --out OUT      do the studies agree, and where?
       mapstore demo FOLDER                                       all of it on invented data
     """
-
-
-def _format_cell(v: object, width: int = 40) -> str:
-    if v is None:
-        return ""
-    if isinstance(v, float):
-        text = f"{v:.6g}"
-    elif isinstance(v, (list, tuple)):
-        text = "[" + ",".join(_format_cell(x, 12) for x in v) + "]"
-    else:
-        text = str(v)
-    text = text.replace("\n", " ")
-    return text if len(text) <= width else text[: width - 1] + "…"
-
-
-def render_table(table, max_rows: int | None = None, width: int = 40) -> str:
-    """A plain-text table of an Arrow table (cells cut at ``width`` characters)."""
-    names = table.column_names
-    rows = table.to_pylist() if max_rows is None else table.slice(0, max_rows).to_pylist()
-    cells = [[_format_cell(r[n], width) for n in names] for r in rows]
-    widths = [max([len(n)] + [len(c[i]) for c in cells]) for i, n in enumerate(names)]
-    out = ["  ".join(n.ljust(w) for n, w in zip(names, widths)),
-           "  ".join("-" * w for w in widths)]
-    out += ["  ".join(c.ljust(w) for c, w in zip(row, widths)) for row in cells]
-    shown = len(rows)
-    out.append(f"({table.num_rows} row{'s' if table.num_rows != 1 else ''}"
-               + (f", first {shown} shown" if shown < table.num_rows else "") + ")")
-    return "\n".join(out)
 
 
 def _json_cell(v):
@@ -210,7 +182,7 @@ def write_table(table, fmt: str, out: str | None) -> None:
     elif fmt == "json":
         text = json.dumps(table.to_pylist(), default=_json_cell, indent=1) + "\n"
     else:
-        text = render_table(table) + "\n"
+        text = text_table(table) + "\n"
     if out:
         Path(out).write_text(text)
         click.echo(f"wrote {table.num_rows} rows to {out}", err=True)
@@ -313,7 +285,7 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
       mapstore features --store pooled --grid MNI152-3mm --stat z --features z3
     """
     if list_only:
-        click.echo(render_table(open_store(store).sql("SELECT * FROM feature_sets")))
+        click.echo(text_table(open_store(store).sql("SELECT * FROM feature_sets")))
         return
     proj = None
     if projection:
@@ -637,7 +609,7 @@ def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fa
     if fmt == "json":
         click.echo(report_json(report))
     elif fmt == "table":
-        click.echo(render_table(report.to_table()))
+        click.echo(text_table(report.to_table()))
     else:
         click.echo(report.summary())
     if html_out:
@@ -657,108 +629,9 @@ def demo_cmd(folder, scale) -> None:
     Example:
       mapstore demo ./mapstore-demo
     """
-    base = Path(folder).absolute()
-    data, store = base / "data", base / "store"
-    click.echo(f"writing the invented consortium to {data} ...")
-    summary = make_demo(data, scale=scale)
-    click.echo(f"  {summary.studies} studies by {summary.labs} labs, {summary.maps} statistic maps, "
-               f"{len(summary.planted_problems)} planted problem files")
-    click.echo(f"indexing into {store} ...")
-    report = run_index([data], store, rules=summary.rules, origins=summary.overrides)
-    click.echo(report.summary())
-    st = open_store(store)
-    click.echo("\nmaps per study, grid and stat:")
-    click.echo(render_table(st.sql(
-        "SELECT study, lab, count(DISTINCT site) AS sites, count(DISTINCT participant) AS subjects, "
-        "string_agg(DISTINCT stat, ',' ORDER BY stat) AS stats, geometry, orientation, "
-        "list_first(voxel_size) AS voxel_mm, count(*) AS maps FROM maps "
-        "GROUP BY ALL ORDER BY study")))
-    click.echo("\nproblems found:")
-    click.echo(render_table(st.sql(
-        f"SELECT code, level, replace(path, '{data}/', '') AS path, remedy FROM problems ORDER BY code"),
-        width=100))
-    click.echo("\nresampling every map onto the MNI152 2 mm grid and brain mask ...")
-    freport = build_features(store)
-    click.echo(freport.summary())
-    st = open_store(store)
-    click.echo(render_table(st.sql(
-        "SELECT m.study, m.orientation, list_first(m.voxel_size) AS voxel_mm, any_value(f.resample_path) AS path, "
-        "round(min(f.coverage), 3) AS min_coverage, round(avg(f.coverage), 3) AS mean_coverage, count(*) AS rows "
-        "FROM features f JOIN maps m USING (map_id) GROUP BY ALL ORDER BY m.study")))
-    click.echo("\nlabelling maps with the demo's concept vocabulary ...")
-    click.echo(label_store(store, summary.vocabulary).summary())
-    st = open_store(store)
-    concepts = ["visual-motion", "hand-movement", "listening", "reading", "arithmetic"]
-    sel = st.select(concepts=concepts, y_from="concept", stat=["t", "z"], group_by="study")
-    out = base / "export-leave-one-study-out"
-    click.echo(f"\nexporting t and z maps of {len(concepts)} concepts, leave-one-study-out, to {out} ...")
-    click.echo(st.export(out, sel, scheme="leave-one-group-out", overwrite=True).summary())
-    click.echo("\ncross-study decoding (scikit-learn LogisticRegression, trained on the other studies):")
-    click.echo(render_table(_demo_decoder(out)))
-    click.echo("(chance: 1 / the number of concepts trained on; majority: share of the held-out study's "
-               "most common concept)")
-    click.echo("\npooling volume and surface studies on fsaverage5 (surface maps as they are, volume t and z maps "
-               "projected with nilearn's vol_to_surf) ...")
-    sreport = build_features(store, grid="fsaverage5", where="m.stat IN ('t', 'z')")
-    click.echo(sreport.summary())
-    st = open_store(store)
-    ssel = st.select(concepts=concepts, y_from="concept", stat=["t", "z"], group_by="study",
-                     features=sreport.name)
-    sout = base / "export-surface-leave-one-study-out"
-    click.echo(st.export(sout, ssel, scheme="leave-one-group-out", overwrite=True).summary())
-    click.echo("\ncross-study decoding on the cortical surface (every study, the surface one included):")
-    click.echo(render_table(_demo_decoder(sout)))
-    click.echo("\nchecking the store (grids, space, coverage, stat types, metadata) ...")
-    report = st.check()  # type: ignore[assignment]
-    html_path = report.write_html(base / "check-report.html", command=f"mapstore demo {folder}")  # type: ignore[attr-defined]
-    click.echo(report.summary())
-    click.echo(f"report with pictures: {html_path}")
+    from .demo import run_demo
 
-    from .analyses import pool, write_pooled
-
-    pooled = base / "pooled-reading"
-    click.echo(f"\ndo the studies agree on 'reading', and where? (each study's t and z maps, one map per study, "
-               f"combined by Stouffer's method) -> {pooled}")
-    rsel = st.select(concepts=["reading"], stat=["t", "z"], missing="keep")
-    fewest = int(rsel.meta.groupby("study")["participant"].nunique().min())
-    res = pool(rsel, "stouffer", min_subjects=max(2, min(3, fewest)))  # a small demo has 2 subjects a study
-    prov = write_pooled(res, pooled, overwrite=True)
-    thr = prov["fdr"]["z_threshold"]
-    click.echo(f"  {len(res.studies)} studies; FDR 0.05 over {prov['fdr']['n_tested']:,} voxels: "
-               + (f"z >= {thr:.2f}" if thr is not None else "no voxel survives"))
-    for p in res.peaks(3, threshold=thr):
-        click.echo(f"  peak z {p['z']:.1f} at {p.get('mm', p['position'])} mm ({p['n_studies']} studies)")
-    click.echo(f"\ntry: mapstore sql --store {store} \"SELECT concept, count(*) FROM labels GROUP BY ALL\"")
-    click.echo(f"     mapstore verify {out}")
-    click.echo(f"     mapstore verify {pooled}")
-
-
-def _demo_decoder(export_dir: Path):
-    """Leave-one-study-out accuracy of a plain logistic regression on an export, per held-out study."""
-    import numpy as np
-    import pyarrow as pa
-    import pyarrow.parquet as pq
-    from sklearn.linear_model import LogisticRegression
-    from sklearn.pipeline import make_pipeline
-    from sklearn.preprocessing import FunctionTransformer, StandardScaler
-
-    X = np.load(export_dir / "X.npy", mmap_mode="r")
-    y = np.load(export_dir / "y.npy")
-    meta = pq.read_table(export_dir / "meta.parquet").to_pandas()
-    rows = []
-    for fold in sorted(meta["fold"].unique()):
-        test = (meta["fold"] == fold).to_numpy()
-        # X holds the voxels every map covers (missing="common"); maps are z-scored one by one
-        prep = FunctionTransformer(lambda a: StandardScaler().fit_transform(np.asarray(a).T).T)
-        model = make_pipeline(prep, LogisticRegression(max_iter=300, C=0.01))
-        model.fit(X[~test], y[~test])
-        acc = float((model.predict(X[test]) == y[test]).mean())
-        classes, counts = np.unique(y[test], return_counts=True)
-        rows.append({"held_out_study": meta.loc[test, "study"].iloc[0], "test_maps": int(test.sum()),
-                     "classes": len(classes), "accuracy": round(acc, 3),
-                     "chance": round(1.0 / len(np.unique(y[~test])), 3),
-                     "majority": round(counts.max() / counts.sum(), 3)})
-    return pa.Table.from_pylist(rows)
+    run_demo(folder, scale=scale, say=click.echo)
 
 
 def _written_path(argv: list[str]) -> str | None:

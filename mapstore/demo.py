@@ -15,11 +15,12 @@ import json
 import os
 from dataclasses import dataclass
 from pathlib import Path
+from typing import Any, Callable
 
 import numpy as np
 
-__all__ = ["CONCEPTS", "STUDIES", "SURFACE_STUDIES", "GRIDS", "make_demo", "DemoSummary", "demo_vocabulary",
-           "demo_rules"]
+__all__ = ["CONCEPTS", "STUDIES", "SURFACE_STUDIES", "GRIDS", "make_demo", "run_demo", "demo_decoder", "DemoSummary",
+           "demo_vocabulary", "demo_rules"]
 
 # invented concepts and the MNI coordinates (mm) where the demo puts their activity
 CONCEPTS: dict[str, list[tuple[float, float, float]]] = {
@@ -414,3 +415,115 @@ def make_demo(root: str | os.PathLike[str], *, scale: float = 1.0) -> DemoSummar
     every = (*STUDIES, *SURFACE_STUDIES)
     return DemoSummary(str(root), len(every), len({s.lab for s in every}), n_maps, planted,  # type: ignore[attr-defined]
                        str(vocab), str(rules), str(overrides))
+
+
+def run_demo(folder: str | os.PathLike[str], *, scale: float = 1.0, say: Callable[[str], Any] = print) -> None:
+    """Write the invented consortium into ``folder`` and run the whole job on it (index, features, labels,
+    export, cross-study decoding, a surface set, check, pooling), telling ``say`` what it does."""
+    from ._api import open_store
+    from .analyses import pool, write_pooled
+    from .features import build_features
+    from .formats._text import text_table
+    from .indexing import index
+    from .labels import label_store
+
+    base = Path(folder).absolute()
+    data, store = base / "data", base / "store"
+    say(f"writing the invented consortium to {data} ...")
+    summary = make_demo(data, scale=scale)
+    say(f"  {summary.studies} studies by {summary.labs} labs, {summary.maps} statistic maps, "
+        f"{len(summary.planted_problems)} planted problem files")
+    say(f"indexing into {store} ...")
+    report = index([data], store, rules=summary.rules, origins=summary.overrides)
+    say(report.summary())
+    st = open_store(store)
+    say("\nmaps per study, grid and stat:")
+    say(text_table(st.sql(
+        "SELECT study, lab, count(DISTINCT site) AS sites, count(DISTINCT participant) AS subjects, "
+        "string_agg(DISTINCT stat, ',' ORDER BY stat) AS stats, geometry, orientation, "
+        "list_first(voxel_size) AS voxel_mm, count(*) AS maps FROM maps "
+        "GROUP BY ALL ORDER BY study")))
+    say("\nproblems found:")
+    say(text_table(st.sql(
+        f"SELECT code, level, replace(path, '{data}/', '') AS path, remedy FROM problems ORDER BY code"),
+        width=100))
+    say("\nresampling every map onto the MNI152 2 mm grid and brain mask ...")
+    freport = build_features(store)
+    say(freport.summary())
+    st = open_store(store)
+    say(text_table(st.sql(
+        "SELECT m.study, m.orientation, list_first(m.voxel_size) AS voxel_mm, any_value(f.resample_path) AS path, "
+        "round(min(f.coverage), 3) AS min_coverage, round(avg(f.coverage), 3) AS mean_coverage, count(*) AS rows "
+        "FROM features f JOIN maps m USING (map_id) GROUP BY ALL ORDER BY m.study")))
+    say("\nlabelling maps with the demo's concept vocabulary ...")
+    say(label_store(store, summary.vocabulary).summary())
+    st = open_store(store)
+    concepts = ["visual-motion", "hand-movement", "listening", "reading", "arithmetic"]
+    sel = st.select(concepts=concepts, y_from="concept", stat=["t", "z"], group_by="study")
+    out = base / "export-leave-one-study-out"
+    say(f"\nexporting t and z maps of {len(concepts)} concepts, leave-one-study-out, to {out} ...")
+    say(st.export(out, sel, scheme="leave-one-group-out", overwrite=True).summary())
+    say("\ncross-study decoding (scikit-learn LogisticRegression, trained on the other studies):")
+    say(text_table(demo_decoder(out)))
+    say("(chance: 1 / the number of concepts trained on; majority: share of the held-out study's "
+        "most common concept)")
+    say("\npooling volume and surface studies on fsaverage5 (surface maps as they are, volume t and z maps "
+        "projected with nilearn's vol_to_surf) ...")
+    sreport = build_features(store, grid="fsaverage5", where="m.stat IN ('t', 'z')")
+    say(sreport.summary())
+    st = open_store(store)
+    ssel = st.select(concepts=concepts, y_from="concept", stat=["t", "z"], group_by="study",
+                     features=sreport.name)
+    sout = base / "export-surface-leave-one-study-out"
+    say(st.export(sout, ssel, scheme="leave-one-group-out", overwrite=True).summary())
+    say("\ncross-study decoding on the cortical surface (every study, the surface one included):")
+    say(text_table(demo_decoder(sout)))
+    say("\nchecking the store (grids, space, coverage, stat types, metadata) ...")
+    report = st.check()  # type: ignore[assignment]
+    html_path = report.write_html(base / "check-report.html", command=f"mapstore demo {folder}")  # type: ignore[attr-defined]
+    say(report.summary())
+    say(f"report with pictures: {html_path}")
+
+    pooled = base / "pooled-reading"
+    say(f"\ndo the studies agree on 'reading', and where? (each study's t and z maps, one map per study, "
+        f"combined by Stouffer's method) -> {pooled}")
+    rsel = st.select(concepts=["reading"], stat=["t", "z"], missing="keep")
+    fewest = int(rsel.meta.groupby("study")["participant"].nunique().min())
+    res = pool(rsel, "stouffer", min_subjects=max(2, min(3, fewest)))  # a small demo has 2 subjects a study
+    prov = write_pooled(res, pooled, overwrite=True)
+    thr = prov["fdr"]["z_threshold"]
+    say(f"  {len(res.studies)} studies; FDR 0.05 over {prov['fdr']['n_tested']:,} voxels: "
+        + (f"z >= {thr:.2f}" if thr is not None else "no voxel survives"))
+    for p in res.peaks(3, threshold=thr):
+        say(f"  peak z {p['z']:.1f} at {p.get('mm', p['position'])} mm ({p['n_studies']} studies)")
+    say(f"\ntry: mapstore sql --store {store} \"SELECT concept, count(*) FROM labels GROUP BY ALL\"")
+    say(f"     mapstore verify {out}")
+    say(f"     mapstore verify {pooled}")
+
+
+def demo_decoder(export_dir: Path):
+    """Leave-one-study-out accuracy of a plain logistic regression on an export, per held-out study."""
+    import numpy as np
+    import pyarrow as pa
+    import pyarrow.parquet as pq
+    from sklearn.linear_model import LogisticRegression
+    from sklearn.pipeline import make_pipeline
+    from sklearn.preprocessing import FunctionTransformer, StandardScaler
+
+    X = np.load(export_dir / "X.npy", mmap_mode="r")
+    y = np.load(export_dir / "y.npy")
+    meta = pq.read_table(export_dir / "meta.parquet").to_pandas()
+    rows = []
+    for fold in sorted(meta["fold"].unique()):
+        test = (meta["fold"] == fold).to_numpy()
+        # X holds the voxels every map covers (missing="common"); maps are z-scored one by one
+        prep = FunctionTransformer(lambda a: StandardScaler().fit_transform(np.asarray(a).T).T)
+        model = make_pipeline(prep, LogisticRegression(max_iter=300, C=0.01))
+        model.fit(X[~test], y[~test])
+        acc = float((model.predict(X[test]) == y[test]).mean())
+        classes, counts = np.unique(y[test], return_counts=True)
+        rows.append({"held_out_study": meta.loc[test, "study"].iloc[0], "test_maps": int(test.sum()),
+                     "classes": len(classes), "accuracy": round(acc, 3),
+                     "chance": round(1.0 / len(np.unique(y[~test])), 3),
+                     "majority": round(counts.max() / counts.sum(), 3)})
+    return pa.Table.from_pylist(rows)

@@ -72,7 +72,7 @@ def test_a_decoder_trained_on_some_studies_predicts_the_others(demo_store, demo_
 
 
 def test_surface_study_pools_with_the_volume_studies(demo_store, demo_tree, tmp_path):
-    from mapstore.cli import _demo_decoder
+    from mapstore.demo import demo_decoder
 
     store = tmp_path / "s"
     shutil.copytree(demo_store, store)
@@ -83,7 +83,7 @@ def test_surface_study_pools_with_the_volume_studies(demo_store, demo_tree, tmp_
     sel = st.select(concepts=["visual-motion", "hand-movement", "listening", "reading", "arithmetic"],
                     y_from="concept", stat=["t", "z"], group_by="study", features=rep.name, missing="zero")
     st.export(tmp_path / "x", sel)
-    table = _demo_decoder(tmp_path / "x").to_pylist()
+    table = demo_decoder(tmp_path / "x").to_pylist()
     by_study = {r["held_out_study"]: r for r in table}
     assert "driftwood" in by_study and len(by_study) == 7  # the surface study is one of the held-out studies
     assert by_study["driftwood"]["accuracy"] > by_study["driftwood"]["chance"]
