@@ -53,7 +53,6 @@ from ..store import (
     file_slug,
     new_snapshot_id,
     read_head,
-    write_json_atomic,
     write_lock,
     write_parquet_atomic,
 )
@@ -124,29 +123,31 @@ def library_versions() -> dict[str, str]:
             "nibabel": nibabel.__version__}
 
 
-def spec_id(doc: dict[str, Any]) -> str:
-    keep = {k: doc.get(k) for k in ("grid_id", "mask_sha256", "method", "stat", "p_sided", "zero_as_missing",
-                                    "background", "kinds")}
-    if doc.get("projection") is not None:  # surface sets only: volume sets keep their ids
-        keep["projection"] = doc["projection"]
+def spec_id(spec: FeatureSetSpec, projection: dict[str, Any] | None = None) -> str:
+    """A set's identity: what its rows' values depend on (``projection`` stands in for the spec's own)."""
+    keep: dict[str, Any] = {k: getattr(spec, k) for k in ("grid_id", "mask_sha256", "method", "stat", "p_sided",
+                                                          "zero_as_missing", "background", "kinds")}
+    projection = spec.projection if projection is None else projection
+    if projection is not None:  # surface sets only: volume sets keep their ids
+        keep["projection"] = projection
     return hashlib.sha256(json.dumps(keep, sort_keys=True).encode()).hexdigest()[:16]
 
 
-def feature_key(sha256: str, spec: dict[str, Any], dof: float | None, model_mask_sha256: str | None = None,
+def feature_key(sha256: str, spec: FeatureSetSpec, dof: float | None, model_mask_sha256: str | None = None,
                 more: str = "", dof1: float | None = None, map_index: int | None = None,
                 registration: str = "") -> str:
     """Hash of everything a row's values depend on; ``more`` adds an item's other sources (a hemisphere,
     and a native map's ``registration``, which a volume set adds on its own)."""
-    parts = [sha256, spec["grid_id"], spec["mask_sha256"], spec["method"], spec["stat"],
-             spec["p_sided"], str(spec["zero_as_missing"]), spec["background"], model_mask_sha256 or "",
-             "" if dof is None or spec["stat"] == "native" else f"{dof:.6g}", __version__]
-    if spec.get("projection") is not None:
-        parts += [json.dumps(spec["projection"], sort_keys=True), more]
-    if dof1 is not None and spec["stat"] != "native":  # an F map's contrast rank
+    parts = [sha256, spec.grid_id, spec.mask_sha256, spec.method, spec.stat,
+             spec.p_sided, str(spec.zero_as_missing), spec.background, model_mask_sha256 or "",
+             "" if dof is None or spec.stat == "native" else f"{dof:.6g}", __version__]
+    if spec.projection is not None:
+        parts += [json.dumps(spec.projection, sort_keys=True), more]
+    if dof1 is not None and spec.stat != "native":  # an F map's contrast rank
         parts.append(f"df1={dof1:.6g}")
     if map_index is not None:  # one map of a file of several
         parts.append(f"map={map_index}")
-    if spec.get("projection") is None and registration:  # a volume set: only a native map's registration adds
+    if spec.projection is None and registration:  # a volume set: only a native map's registration adds
         parts.append(registration)
     text = "|".join(parts)
     return hashlib.sha256(text.encode()).hexdigest()[:32]
@@ -338,7 +339,7 @@ def build_features(
             built = _run_batches(todo, run, store_path, set_dir, name)
             new_rows, problems = built.rows, coverage_problems + built.problems
             rows_table, entry = write_tables(store_path, name, kept, built, problems, dropped, existing)
-            head.features[name] = dataclasses.replace(entry, n_rows=rows_table.num_rows, spec_id=spec["spec_id"],
+            head.features[name] = dataclasses.replace(entry, n_rows=rows_table.num_rows, spec_id=spec.spec_id,
                                                       catalog=head.catalog)
             if head.default_features is None or name == DEFAULT_SET:
                 head.default_features = name
@@ -415,20 +416,17 @@ def _resolve_mask(mask: Any, target: Target, settings: BuildSettings, rows_sel: 
 
 
 def _set_spec(name: str, target: Target, mk: Mask, settings: BuildSettings, kinds: tuple[str, ...],
-              where: str | None, sketch: str, subjects_dir: str | None) -> dict[str, Any]:
+              where: str | None, sketch: str, subjects_dir: str | None) -> FeatureSetSpec:
     """``set.json``: everything a row's value depends on, and its id (made last, never changed after)."""
-    spec: dict[str, Any] = {
-        "name": name, "grid": target.to_json(), "grid_id": target.grid_id,
-        "mask": {"name": mk.name, "n_voxels": mk.n_voxels, "sha256": mk.sha256},
-        "mask_sha256": mk.sha256, "method": settings.method, "stat": settings.stat, "p_sided": settings.p_sided,
-        "zero_as_missing": settings.zero_as_missing, "background": settings.background, "kinds": list(kinds),
-        "where": where, "versions": library_versions(),
-    }
     extra = target.spec_fields(settings)
-    spec["versions"].update(extra.pop("versions", {}))
-    spec.update(extra)
-    spec["sketch"], spec["subjects_dir"] = sketch, subjects_dir  # recorded, not in the id
-    spec["spec_id"] = spec_id(spec)
+    versions = {**library_versions(), **extra.pop("versions", {})}
+    spec = FeatureSetSpec(name=name, grid=target.to_json(), grid_id=target.grid_id,
+                          mask={"name": mk.name, "n_voxels": mk.n_voxels, "sha256": mk.sha256}, mask_sha256=mk.sha256,
+                          method=settings.method, stat=settings.stat, p_sided=settings.p_sided,
+                          zero_as_missing=settings.zero_as_missing, background=settings.background, kinds=list(kinds),
+                          where=where, versions=versions, **extra,
+                          sketch=sketch, subjects_dir=subjects_dir)  # the last two recorded, not in the id
+    spec.spec_id = spec_id(spec)
     return spec
 
 
@@ -439,28 +437,28 @@ def sketch_of(store_path: Path, existing: FeatureEntry | None, n_voxels: int) ->
     return sketch_kind(n_voxels)
 
 
-def _previous_rows(store_path: Path, name: str, existing: FeatureEntry | None, spec: dict[str, Any]) -> pa.Table:
+def _previous_rows(store_path: Path, name: str, existing: FeatureEntry | None, spec: FeatureSetSpec) -> pa.Table:
     """The set's current rows; a set of this name with other settings is refused."""
     if not existing:
         return ROWS_SCHEMA.empty_table()
     old = FeatureSetSpec.read(store_path / existing.dir)
-    if old.spec_id != spec["spec_id"]:
+    if old.spec_id != spec.spec_id:
         raise FeatureError(f"feature set {name!r} exists with other settings (grid "
                            f"{old.grid['name']}, mask {old.mask['name']}, method "
                            f"{old.method}, stat {old.stat}); choose another name")
     return conform(pq.read_table(store_path / existing.rows), ROWS_SCHEMA)
 
 
-def _write_set_files(set_dir: Path, spec: dict[str, Any], mk: Mask, fresh: bool) -> None:
+def _write_set_files(set_dir: Path, spec: FeatureSetSpec, mk: Mask, fresh: bool) -> None:
     (set_dir / "shards").mkdir(parents=True, exist_ok=True)
     if fresh or not (set_dir / "mask.npy").exists():
         tmp = set_dir / f".mask.{uuid.uuid4().hex}.npy"
         np.save(tmp, mk.indices)
         os.replace(tmp, set_dir / "mask.npy")
-    write_json_atomic(set_dir / "set.json", spec)
+    spec.write(set_dir)
 
 
-def _plan_rows(rows_sel: list[dict[str, Any]], spec: dict[str, Any], old_rows: pa.Table, batch_n: int,
+def _plan_rows(rows_sel: list[dict[str, Any]], spec: FeatureSetSpec, old_rows: pa.Table, batch_n: int,
                set_dir: Path, mk: Mask, target: Target, settings: BuildSettings
                ) -> tuple[pa.Table, list[Batch], int]:
     """Rows kept as they are, batches of maps to build (one dataset each), and how many rows go."""
@@ -483,7 +481,7 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: dict[str, Any], old_rows: p
     kept = old_rows.take(pa.array(sorted(keep_idx), pa.int64())) if keep_idx else old_rows.slice(0, 0)
     seed = Sketcher.for_set(mk.sha256, mk.n_voxels).seed
     batches = [Batch(str(set_dir), f"shard-{file_slug(ds)}-{new_snapshot_id()}-{i:05d}.npy", items, target,
-                     settings, sketch_seed=seed, sketch=spec.get("sketch", "count"))
+                     settings, sketch_seed=seed, sketch=spec.sketch)
                for ds, items, i in _per_dataset(todo, dataset_of, batch_n)]
     return kept, batches, old_rows.num_rows - kept.num_rows
 

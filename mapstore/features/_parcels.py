@@ -60,7 +60,6 @@ from ..store import (
     new_snapshot_id,
     read_head,
     replace_dir,
-    write_json_atomic,
     write_lock,
 )
 from ..store import FeatureSetSpec
@@ -129,13 +128,13 @@ def build_parcels(store: str | os.PathLike[str], atlas: Any, *, source: str | No
         set_dir = store_path / "features" / name
         existing = head.features.get(name)
         old = _previous(store_path, name, existing, spec)
-        spec["sketch"] = sketch_of(store_path, existing, at.n_parcels)
+        spec.sketch = sketch_of(store_path, existing, at.n_parcels)
         _write_set_files(set_dir, spec, at, fs)
         built, kept, dropped = _reduce(fs, at, spec, old, set_dir)
         rows_table, entry = write_tables(store_path, name, kept, built, [], dropped, existing,
                                           copies=_source_copies(fs))
         head = read_head(store_path)
-        head.features[name] = dataclasses.replace(entry, n_rows=rows_table.num_rows, spec_id=spec["spec_id"],
+        head.features[name] = dataclasses.replace(entry, n_rows=rows_table.num_rows, spec_id=spec.spec_id,
                                                   catalog=head.catalog)
         commit_head(store_path, head, {"event": "parcels", "set": name, "source": src_name,
                                        "built": len(built.rows), "rows": rows_table.num_rows})
@@ -162,37 +161,36 @@ def _safe(name: str) -> str:
     return "".join(c if c.isalnum() or c in "-_." else "_" for c in name)
 
 
-def _parcel_spec(name: str, fs: FeatureSet, at: Atlas, source_spec_id: str | None) -> dict[str, Any]:
+def _parcel_spec(name: str, fs: FeatureSet, at: Atlas, source_spec_id: str | None) -> FeatureSetSpec:
     grid = ParcelGrid(at.name, at.n_parcels, at.sha256)
     mask_sha = hashlib.sha256(f"{grid.grid_id}|all".encode()).hexdigest()
-    src = fs.spec.to_json()
-    spec = {"name": name, "grid": grid.to_json(), "grid_id": grid.grid_id,
-            "mask": {"name": "all parcels", "n_voxels": at.n_parcels, "sha256": mask_sha}, "mask_sha256": mask_sha,
-            "method": at.reducer, "stat": src["stat"], "p_sided": src["p_sided"],
-            "zero_as_missing": src["zero_as_missing"], "background": src.get("background", "keep"),
-            "kinds": src.get("kinds", ["contrast"]), "where": src.get("where"), "versions": library_versions(),
-            "geometry": "parcels",
-            "parcels": {"atlas": at.source, "atlas_name": at.name, "atlas_sha256": at.sha256, "kind": at.kind,
-                        "reducer": at.reducer, "labels": at.labels, "source_set": fs.name,
-                        "source_spec_id": source_spec_id or src.get("spec_id"), "source_geometry": fs.target.kind,
-                        "source_grid": src["grid"], "source_mask_sha256": src["mask_sha256"]}}
-    spec["spec_id"] = spec_id({**spec, "projection": {"parcels": spec["parcels"]["atlas_sha256"],
-                                                       "source": spec["parcels"]["source_spec_id"],
-                                                       "reducer": at.reducer}})
+    src = fs.spec
+    spec = FeatureSetSpec(
+        name=name, grid=grid.to_json(), grid_id=grid.grid_id,
+        mask={"name": "all parcels", "n_voxels": at.n_parcels, "sha256": mask_sha}, mask_sha256=mask_sha,
+        method=at.reducer, stat=src.stat, p_sided=src.p_sided, zero_as_missing=src.zero_as_missing,
+        background=src.background, kinds=list(src.kinds), where=src.where, versions=library_versions(),
+        geometry=grid.kind,
+        parcels={"atlas": at.source, "atlas_name": at.name, "atlas_sha256": at.sha256, "kind": at.kind,
+                 "reducer": at.reducer, "labels": at.labels, "source_set": fs.name,
+                 "source_spec_id": source_spec_id or src.spec_id, "source_geometry": fs.target.kind,
+                 "source_grid": src.grid, "source_mask_sha256": src.mask_sha256})
+    spec.spec_id = spec_id(spec, projection={"parcels": at.sha256, "source": spec.parcels["source_spec_id"],
+                                             "reducer": at.reducer})
     return spec
 
 
-def _previous(store_path: Path, name: str, existing, spec: dict[str, Any]) -> pa.Table:
+def _previous(store_path: Path, name: str, existing, spec: FeatureSetSpec) -> pa.Table:
     if not existing:
         return ROWS_SCHEMA.empty_table()
     old = FeatureSetSpec.read(store_path / existing.dir)
-    if old.spec_id != spec["spec_id"]:
+    if old.spec_id != spec.spec_id:
         raise FeatureError(f"feature set {name!r} exists with other settings (atlas, reducer or source set); "
                            "choose another name")
     return conform(pq.read_table(store_path / existing.rows), ROWS_SCHEMA)
 
 
-def _write_set_files(set_dir: Path, spec: dict[str, Any], at: Atlas, fs: FeatureSet) -> None:
+def _write_set_files(set_dir: Path, spec: FeatureSetSpec, at: Atlas, fs: FeatureSet) -> None:
     import scipy.sparse as sp
 
     (set_dir / "shards").mkdir(parents=True, exist_ok=True)
@@ -202,16 +200,16 @@ def _write_set_files(set_dir: Path, spec: dict[str, Any], at: Atlas, fs: Feature
         tmp = set_dir / f".{uuid.uuid4().hex}.{fname}"
         save(tmp)
         os.replace(tmp, set_dir / fname)
-    write_json_atomic(set_dir / "set.json", spec)
+    spec.write(set_dir)
 
 
-def parcel_key(source_key: str, spec: dict[str, Any]) -> str:
-    p = spec["parcels"]
+def parcel_key(source_key: str, spec: FeatureSetSpec) -> str:
+    p = spec.parcels or {}
     text = "|".join([source_key, p["atlas_sha256"], p["reducer"], p["source_mask_sha256"], __version__])
     return hashlib.sha256(text.encode()).hexdigest()[:32]
 
 
-def _reduce(fs: FeatureSet, at: Atlas, spec: dict[str, Any], old: pa.Table, set_dir: Path
+def _reduce(fs: FeatureSet, at: Atlas, spec: FeatureSetSpec, old: pa.Table, set_dir: Path
             ) -> tuple[Built, pa.Table, int]:
     """Reduce the source rows whose parcel row is missing or stale, a block at a time."""
     src = fs.rows.select(["map_id", "feature_key", "sha256", "shard", "row", "stat_in", "stat_out", "conversion",
@@ -227,7 +225,7 @@ def _reduce(fs: FeatureSet, at: Atlas, spec: dict[str, Any], old: pa.Table, set_
     kept = old.take(pa.array(sorted(keep_idx), pa.int64())) if keep_idx else old.slice(0, 0)
     snap = new_snapshot_id()
     built = Built([], [], {}, [], snap)
-    sketcher = Sketcher.for_set(spec["mask_sha256"], at.n_parcels, spec["sketch"])
+    sketcher = Sketcher.for_set(spec.mask_sha256, at.n_parcels, spec.sketch)
     now = time.strftime("%Y-%m-%dT%H:%M:%S")
     buf = np.empty((min(_BLOCK, max(len(todo), 1)), fs.n_voxels), dtype=np.float32)
     for k in range(0, len(todo), _BLOCK):

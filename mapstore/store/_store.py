@@ -31,6 +31,7 @@ from typing import Any, Iterator
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from ._atomic import _fsync_dir, checkpoint, write_json_atomic
 from ._paths import inside_store, regular_file, store_file
 from ._tables import (
     COPIES_SCHEMA,
@@ -188,46 +189,6 @@ def read_head(path: Path) -> Head:
     for record, rel, folder in head.paths():  # every path HEAD names stays inside the store, before any is opened
         store_file(path, rel, record, folder=folder)
     return head
-
-
-def _fsync_dir(path: Path) -> None:
-    with contextlib.suppress(OSError):
-        fd = os.open(path, os.O_RDONLY)
-        try:
-            os.fsync(fd)
-        finally:
-            os.close(fd)
-
-
-def checkpoint() -> None:
-    """A point where a crash must leave the store consistent; a test hook can kill the process here.
-
-    With ``MAPSTORE_TEST_KILL_COUNTER=FILE`` and ``MAPSTORE_TEST_KILL_AFTER=N`` set, every
-    checkpoint (in any process) adds a byte to FILE and the N-th one sends this process SIGKILL.
-    Unset, it costs one environment lookup.
-    """
-    counter = os.environ.get("MAPSTORE_TEST_KILL_COUNTER")
-    if not counter:
-        return
-    with open(counter, "ab") as fh:
-        fh.write(b".")
-    if os.path.getsize(counter) >= int(os.environ.get("MAPSTORE_TEST_KILL_AFTER", "0") or 0) > 0:
-        import signal
-
-        os.kill(os.getpid(), signal.SIGKILL)
-
-
-def write_json_atomic(path: Path, doc: Any) -> None:
-    checkpoint()
-    tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}.tmp")
-    with open(tmp, "w") as fh:
-        json.dump(doc, fh, indent=1, sort_keys=True, default=str)
-        fh.flush()
-        os.fsync(fh.fileno())
-    checkpoint()
-    os.replace(tmp, path)
-    _fsync_dir(path.parent)
-    checkpoint()
 
 
 def replace_dir(tmp: Path, out: Path) -> None:

@@ -15,6 +15,7 @@ from typing import Any, ClassVar
 import pyarrow as pa
 
 from ..errors import StoreCorrupt
+from ._atomic import write_json_atomic
 from ._paths import check_types, relative_path
 
 __all__ = [
@@ -202,7 +203,7 @@ class FeatureSetSpec(_JsonRecord):
     where: str | None = None
     versions: dict[str, str] = field(default_factory=dict)
     spec_id: str = ""
-    geometry: str = "volume"  # volume, surface or parcels
+    geometry: str = "volume"  # the kind of target (targets.KINDS): volume, surface, grayordinates, parcels
     projection: dict[str, Any] | None = None  # surface sets: how volume maps are projected onto the mesh
     parcels: dict[str, Any] | None = None  # parcel sets: the atlas, the reducer and the source set
     sketch: str = "count"  # the rows' sketch directions: count (sparse) or gauss (dense, small sets)
@@ -212,6 +213,10 @@ class FeatureSetSpec(_JsonRecord):
         "name": _S, "grid": _D, "grid_id": _S, "mask": _D, "mask_sha256": _S, "method": _S, "stat": _S,
         "p_sided": _S, "zero_as_missing": _B, "background": _S, "kinds": _L, "where": _S, "versions": _D,
         "spec_id": _S, "geometry": _S, "projection": _D, "parcels": _D, "sketch": _S, "subjects_dir": _S}
+
+    def write(self, folder: Path) -> None:
+        """Write ``folder/set.json`` atomically (the one writer of the file)."""
+        write_json_atomic(Path(folder) / "set.json", self.to_json())
 
     @classmethod
     def read(cls, folder: Path) -> "FeatureSetSpec":
