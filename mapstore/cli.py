@@ -512,8 +512,8 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
     res = pool(sel, method, min_subjects=min_subjects, min_studies=min_studies, leave_one_out=leave_one_out,
                use_variance=use_variance)
     prov = write_pooled(res, out, fdr_q, overwrite=overwrite)
-    tested = prov["fdr"]["n_tested"]
-    thr = prov["fdr"]["z_threshold"]
+    tested = prov.fdr["n_tested"]
+    thr = prov.fdr["z_threshold"]
     above = int(np.sum(res.z >= thr)) if thr is not None else 0
     k = len(res.studies)
     click.echo(f"pooled {_plural(len(sel), 'map')} of {_plural(k, 'study', 'studies')} ({method}); "
@@ -522,13 +522,13 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
                f"FDR q={fdr_q:g}: no voxel survives")
     if res.i2 is not None and np.isfinite(res.i2).any():
         click.echo(f"between-study heterogeneity I^2: median {float(np.nanmedian(res.i2)):.2f}")
-    for reason, n in prov.get("left_out", {}).items():
+    for reason, n in prov.details.get("left_out", {}).items():
         click.echo(f"  {reason}: {n['values']:,} value(s) at {_plural(n['voxels'], 'voxel')}")
     if sel.dropped:
         click.echo("  not pooled: " + "; ".join(f"{why} x{n}" for why, n in sel.dropped.items()))
     for p in res.peaks(5, threshold=thr):
         click.echo(f"  peak z {p['z']:.2f} at {p.get('mm', p['position'])} ({p['n_studies']} studies)")
-    click.echo(f"wrote {len(prov['files'])} files to {out}")
+    click.echo(f"wrote {len(prov.files)} files to {out}")
 
 
 @cli.command("rebuild")

@@ -491,8 +491,8 @@ def run_demo(folder: str | os.PathLike[str], *, scale: float = 1.0, say: Callabl
     fewest = int(rsel.meta.groupby("study")["participant"].nunique().min())
     res = pool(rsel, "stouffer", min_subjects=max(2, min(3, fewest)))  # a small demo has 2 subjects a study
     prov = write_pooled(res, pooled, overwrite=True)
-    thr = prov["fdr"]["z_threshold"]
-    say(f"  {len(res.studies)} studies; FDR 0.05 over {prov['fdr']['n_tested']:,} voxels: "
+    thr = prov.fdr["z_threshold"]
+    say(f"  {len(res.studies)} studies; FDR 0.05 over {prov.fdr['n_tested']:,} voxels: "
         + (f"z >= {thr:.2f}" if thr is not None else "no voxel survives"))
     for p in res.peaks(3, threshold=thr):
         say(f"  peak z {p['z']:.1f} at {p.get('mm', p['position'])} mm ({p['n_studies']} studies)")

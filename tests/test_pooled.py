@@ -183,7 +183,7 @@ def test_the_pooled_map_peaks_at_the_shared_effect_and_a_flipped_study_raises_i2
     assert set(res.provenance["leave_one_out"]) == {f"study{s}" for s in range(4)}
     prov = write_pooled(res, tmp_path / "out")
     assert (tmp_path / "out" / "pooled_stat-z.nii.gz").exists() and (tmp_path / "out" / "peaks.tsv").exists()
-    assert json.loads((tmp_path / "out" / "pooled.json").read_text())["fdr"]["n_tested"] == prov["fdr"]["n_tested"]
+    assert json.loads((tmp_path / "out" / "pooled.json").read_text())["fdr"]["n_tested"] == prov.fdr["n_tested"]
     img = nib.load(str(tmp_path / "out" / "pooled_stat-z.nii.gz"))
     np.testing.assert_allclose(img.affine, aff)
     # the images say what they hold: nibabel reads the NIfTI-1 intent codes (z score 5, p value 22)

@@ -127,7 +127,7 @@ def test_a_kind_defined_outside_mapstore_goes_through_the_whole_job(slab_kind, t
     res = pool(sel)
     assert res.peaks(1)[0]["position"] == [PEAK_SLICE]
     prov = write_pooled(res, tmp_path / "pooled")
-    assert "pooled_stat-z.nii.gz" in prov["files"]
+    assert "pooled_stat-z.nii.gz" in prov.files
     assert nib.load(str(tmp_path / "pooled" / "pooled_stat-z.nii.gz")).shape == (1, 1, SHAPE[2])
 
     again = mapstore.rebuild(Path(rep.out) / "manifest.json", roots, tmp_path / "rebuilt")

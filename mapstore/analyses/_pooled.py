@@ -22,7 +22,6 @@ Everything works on blocks of voxels, so memory is bounded by the block, not by 
 
 from __future__ import annotations
 
-import json
 import time
 import warnings
 from dataclasses import dataclass, field
@@ -35,6 +34,7 @@ from ..store import check_output, output_folder
 from .._version import __version__
 from ..errors import ParameterError, PoolError
 from ..select import Selection, map_levels
+from ._record import PooledRecord, PooledSource
 from ..statkinds import POOL_DEFAULT, POOL_METHODS, POOLABLE
 
 __all__ = ["StudyMaps", "PooledMaps", "one_sample", "study_maps", "variance_maps", "combine", "pool", "pool_maps", "fdr_threshold",
@@ -605,7 +605,7 @@ def _combine_blocks(run: Callable[[slice], dict[str, np.ndarray]], ncol: int) ->
             for key, vals in parts.items()}
 
 
-def write_pooled(result: PooledMaps, out, fdr_q: float = 0.05, *, overwrite: bool = False) -> dict[str, Any]:
+def write_pooled(result: PooledMaps, out, fdr_q: float = 0.05, *, overwrite: bool = False) -> PooledRecord:
     """Images of every map the method made, a table of peaks and the provenance, written to folder ``out``.
 
     The folder appears whole or not at all (written beside its place, then renamed); it may not lie in
@@ -619,7 +619,7 @@ def write_pooled(result: PooledMaps, out, fdr_q: float = 0.05, *, overwrite: boo
         return _write_pooled(result, folder, fdr_q)
 
 
-def _write_pooled(result: PooledMaps, folder, fdr_q: float) -> dict[str, Any]:
+def _write_pooled(result: PooledMaps, folder, fdr_q: float) -> PooledRecord:
     written: list[str] = []
     for key in ("z", "p", "effect", "variance", "tau2", "i2", "n_studies"):
         if getattr(result, key) is None:
@@ -635,13 +635,14 @@ def _write_pooled(result: PooledMaps, folder, fdr_q: float) -> dict[str, Any]:
     from ..formats import sha256_file
 
     files = written + ["peaks.tsv"]
-    prov = dict(result.provenance, fdr={"q": fdr_q, "z_threshold": thr if np.isfinite(thr) else None,
-                                         "n_tested": int(np.isfinite(result.z).sum())}, files=files,
-                file_sha256={f: sha256_file(str(folder / f)) for f in files},
-                sources=_sources(result.selection) if result.selection is not None else [])
-    # strict JSON: no NaN or Infinity (a value nothing gave is null)
-    (folder / "pooled.json").write_text(json.dumps(_strict(prov), indent=1, default=str, allow_nan=False))
-    return prov
+    record = PooledRecord(
+        result.provenance.get("method", result.method), dict(result.provenance),
+        fdr={"q": fdr_q, "z_threshold": thr if np.isfinite(thr) else None, "n_tested": int(np.isfinite(result.z).sum())},
+        files=files, file_sha256={f: sha256_file(str(folder / f)) for f in files},
+        sources=_sources(result.selection) if result.selection is not None else [],
+        variance_sources=result.provenance.get("variance_sources") or [])
+    record.write(folder)
+    return record
 
 
 _INTENTS = {"z": ("NIFTI_INTENT_ZSCORE",), "p": ("NIFTI_INTENT_PVAL",)}
@@ -658,20 +659,7 @@ def _write_map(result: PooledMaps, key: str, folder) -> list[str]:
     return fs.target.write_image(fs.unmask(row), folder, f"pooled_stat-{key}", _INTENTS.get(key))
 
 
-def _strict(obj: Any) -> Any:
-    """The record with every non-finite number as None (JSON has no NaN or Infinity)."""
-    if isinstance(obj, dict):
-        return {k: _strict(v) for k, v in obj.items()}
-    if isinstance(obj, (list, tuple)):
-        return [_strict(v) for v in obj]
-    if isinstance(obj, (float, np.floating)):
-        return float(obj) if np.isfinite(obj) else None
-    if isinstance(obj, np.integer):
-        return int(obj)
-    return obj
-
-
-def _sources(sel: Selection) -> list[dict[str, Any]]:
+def _sources(sel: Selection) -> list[PooledSource]:
     """Each map's source file (path, sha256) and the store row it was read from (row hash)."""
     if sel.store is None:
         return []
@@ -679,46 +667,23 @@ def _sources(sel: Selection) -> list[dict[str, Any]]:
 
     roots = {r["dataset"]: r["root"] for r in sel.store.sql("SELECT dataset, root FROM datasets").to_pylist()}
     rows = sel.meta.get("feature_row_sha256")
-    return [{"map_id": m.map_id, "path": os.path.join(roots.get(m.dataset, ""), m.relpath), "sha256": m.sha256,
-             "row_sha256": None if rows is None else rows.iloc[i]}
+    return [PooledSource(m.map_id, os.path.join(roots.get(m.dataset, ""), m.relpath), m.sha256,
+                         None if rows is None else rows.iloc[i])
             for i, m in enumerate(sel.meta.itertuples(index=False))]
 
 
 def verify_pooled(folder) -> list[str]:
-    """What changed since ``write_pooled`` wrote ``folder``: its files, the source maps, the store's rows."""
+    """What changed since ``write_pooled`` wrote ``folder``: its files and the source maps."""
     import os
     from pathlib import Path
 
     from ..formats import sha256_file
 
-    from ..formats import nesting_depth
-
     folder = Path(os.fspath(folder))
-    record = folder / "pooled.json"
-    # a pooled record someone sent is untrusted input: bounded, its types checked before use
-    try:
-        if record.stat().st_size > _RECORD_LIMIT:
-            raise ValueError(f"larger than {_RECORD_LIMIT >> 20} MiB")
-        prov = json.loads(record.read_text())
-        if not isinstance(prov, dict) or nesting_depth(prov, 16) > 16:
-            raise ValueError("not an object, or nested deeper than 16 levels")
-    except RecursionError as exc:
-        raise ParameterError(f"{folder}: pooled.json is nested too deeply; give a folder 'mapstore pool' wrote") from exc
-    except (OSError, ValueError) as exc:
-        if folder.name.endswith(".partial"):
-            raise ParameterError(f"{folder}: the unfinished folder of an interrupted run, not a result; run it "
-                                 "again (the next run removes it)") from exc
-        raise ParameterError(f"{folder}: no readable pooled.json ({exc}); give a folder 'mapstore pool' wrote") from exc
-    files = prov.get("file_sha256") or {}
-    lists = [prov.get("sources") or [], prov.get("variance_sources") or []]
-    sources = [s for part in lists if isinstance(part, list) for s in part]
-    if not isinstance(files, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in files.items()) \
-            or not all(isinstance(part, list) for part in lists) or not all(isinstance(s, dict) for s in sources):
-        raise ParameterError(f"{folder}: a malformed pooled.json (file_sha256 must map names to hashes, sources be "
-                             "objects); give a folder 'mapstore pool' wrote")
+    record = PooledRecord.read(folder)
     changes = []
     base = os.path.realpath(folder)
-    for name, sha in files.items():
+    for name, sha in record.file_sha256.items():
         p = folder / name
         if "/" in name or "\\" in name or name in ("", ".", "..") or not p.is_file():
             changes.append(f"output file missing: {name}")
@@ -727,20 +692,17 @@ def verify_pooled(folder) -> list[str]:
         elif sha256_file(str(p)) != sha:
             changes.append(f"output file changed: {name}")
     hashed: dict[str, str] = {}
-    for s in sources:
-        p = Path(str(s.get("path")))
+    for s in record.sources + record.variance_sources:
+        p = Path(s.path)
         if not p.is_file():
             changes.append(f"source missing: {p}")
             continue
         key = os.path.realpath(p)
-        if key not in hashed and s.get("sha256"):
+        if key not in hashed and s.sha256:
             hashed[key] = digest_map(str(p)).sha256 if foreign_format(str(p)) else sha256_file(str(p))
-        if s.get("sha256") and hashed[key] != s["sha256"]:
+        if s.sha256 and hashed[key] != s.sha256:
             changes.append(f"source changed: {p}")
     return changes
-
-
-_RECORD_LIMIT = 256 << 20  # bytes of a pooled.json
 
 
 def _ahead(items):
