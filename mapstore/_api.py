@@ -9,7 +9,8 @@ from pathlib import Path
 
 import pyarrow as pa
 
-from .errors import FeatureError, ParameterError, StoreClosed
+from ._params import TOP_K
+from .errors import FeatureError, StoreClosed
 from .store import Catalog, release_lease, take_lease
 
 if TYPE_CHECKING:  # the stages load when a method first needs them: opening a store for SQL stays light
@@ -222,8 +223,7 @@ class Store:
 
         from .features import most_similar
 
-        if not isinstance(k, int) or isinstance(k, bool) or k < 1:
-            raise ParameterError(f"k must be a positive integer, got {k!r}")
+        TOP_K.check("k", k, "Store.similar")
         fs = self.features(features)
         exclude = None
         if isinstance(query, str) and not os.path.exists(query):

@@ -15,7 +15,10 @@ import click
 
 from ._version import __version__
 from .errors import MapstoreError, ParameterError
-from .statkinds import LEVEL_CHOICES, POOL_DEFAULT, POOL_METHODS, POOLABLE
+from ._params import (AGREEMENT, CHECK_COVERAGE, DEMO_SCALE, BACKGROUND, EXPORT_FORMAT, FDR_Q, FEATURE_STAT, JOBS, LEVEL, MAP_MB_LIMIT, MIN_COVERAGE, MIN_STUDIES,
+                      MIN_SUBJECTS, MIN_VOXELS, MISSING, NEAR_COPY, P_SIDE, PER_SUBJECT_RULE, POOL_METHOD,
+                      READ_TIMEOUT, RESAMPLE_METHOD, TOP_K)
+from .statkinds import POOL_DEFAULT, POOLABLE
 
 # Each command imports the stage it runs when it runs: `mapstore --help` (and a typo) never pays for
 # numpy, pyarrow, DuckDB or scikit-learn.
@@ -64,7 +67,7 @@ def schema_text(name: str) -> str:
 
 
 def text_table(*args, **kwargs) -> str:
-    from .formats._text import text_table as run
+    from .formats import text_table as run
 
     return run(*args, **kwargs)
 
@@ -89,7 +92,7 @@ def _target(path: str | None, option: str) -> None:
                                  "exist; create it first", param_hint=option)
 
 
-LEVEL_OPTION = click.option("--level", "level", multiple=True, type=click.Choice(LEVEL_CHOICES), default=("subject",),
+LEVEL_OPTION = click.option("--level", "level", multiple=True, type=LEVEL.click_type(), default=("subject",),
                             show_default=True, help="Whom the maps summarise (repeatable): subject takes one "
                             "person's maps (run, session, subject level); group, any, or a level by name.")
 STORE_OPTION = click.option("--store", "store", required=True, type=click.Path(file_okay=False),
@@ -198,11 +201,11 @@ def write_table(table, fmt: str, out: str | None) -> None:
                    "(repeatable).")
 @click.option("--origins", type=click.Path(dir_okay=False),
               help="Mapping file setting study, site and lab per dataset or subject.")
-@click.option("--jobs", type=click.IntRange(min=1), default=None, help="Processes (default: all cores).")
+@click.option("--jobs", type=JOBS.click_type(), default=None, help="Processes (default: all cores).")
 @click.option("--prune", is_flag=True, help="Drop datasets from earlier runs not under these ROOTs.")
-@click.option("--read-timeout", type=click.FloatRange(min=0, min_open=True), default=60.0, show_default=True,
+@click.option("--read-timeout", type=READ_TIMEOUT.click_type(), default=60.0, show_default=True,
               help="Seconds a file's read may make no progress before the file is skipped (read-timeout).")
-@click.option("--max-map-mb", type=click.IntRange(min=1), default=4096, show_default=True,
+@click.option("--max-map-mb", type=MAP_MB_LIMIT.click_type(), default=4096, show_default=True,
               help="Refuse a map whose header declares more voxel data than this (MiB), before reading it.")
 @click.option("--dask", "dask_address", help="Run the crawl on this Dask scheduler (e.g. tcp://host:8786); "
               "workers must see the datasets and the store at the same paths.")
@@ -253,14 +256,14 @@ def sql_cmd(store, query, fmt, out) -> None:
 @click.option("--mask", default="brain", show_default=True,
               help="brain (MNI152 brain mask; on a surface: the cortex, medial wall out), all (surfaces), "
                    "intersection, coverage:FRACTION, or a mask image.")
-@click.option("--method", type=click.Choice(["linear", "nearest", "cubic"]), default="linear", show_default=True,
+@click.option("--method", type=RESAMPLE_METHOD.click_type(), default="linear", show_default=True,
               help="Interpolation when a map is resampled onto the grid.")
-@click.option("--stat", type=click.Choice(["native", "z"]), default="native", show_default=True,
+@click.option("--stat", type=FEATURE_STAT.click_type(), default="native", show_default=True,
               help="Keep each map's stat, or convert t and p maps to z.")
-@click.option("--p-sided", type=click.Choice(["one", "two"]), default="one", show_default=True,
+@click.option("--p-sided", type=P_SIDE.click_type(), default="one", show_default=True,
               help="How p maps were computed (for --stat z).")
 @click.option("--zero-as-missing", is_flag=True, help="Treat every exact zero in the maps as missing.")
-@click.option("--background", type=click.Choice(["auto", "keep"]), default="auto", show_default=True,
+@click.option("--background", type=BACKGROUND.click_type(), default="auto", show_default=True,
               help="Where a map's model left no mask: auto makes a zero background (exact zeros reaching "
                    "the volume's edge) missing; keep counts it as data.")
 @click.option("--model-maps", is_flag=True, help="Also take model maps (a stat without a contrast).")
@@ -273,7 +276,7 @@ def sql_cmd(store, query, fmt, out) -> None:
 @click.option("--subjects-dir", type=click.Path(exists=True, file_okay=False),
               help="FreeSurfer subjects folder: each subject's surf/?h.sphere.reg takes its space-fsnative maps "
                    "onto fsaverage.")
-@click.option("--jobs", type=click.IntRange(min=1), default=None, help="Processes (default: all cores).")
+@click.option("--jobs", type=JOBS.click_type(), default=None, help="Processes (default: all cores).")
 @click.option("--dask", "dask_address", help="Run on this Dask scheduler (e.g. tcp://host:8786).")
 @click.option("--list", "list_only", is_flag=True, help="List the store's feature sets and stop.")
 def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing, background, model_maps, where,
@@ -365,7 +368,7 @@ def labels_cmd(store, vocab, inherit) -> None:
 @click.option("--task", "tasks", multiple=True, help="Keep maps of this task (repeatable).")
 @click.option("--stat", "stats", multiple=True, help="Keep maps of this stat (repeatable).")
 @click.option("--features", "feature_set", help="Feature set name (default: the default set).")
-@click.option("--min-coverage", type=click.FloatRange(0, 1), help="Drop maps covering less of the mask.")
+@click.option("--min-coverage", type=MIN_COVERAGE.click_type(), help="Drop maps covering less of the mask.")
 @click.option("--y-from", "--target", "y_from", default=None,
               help="What y is made from: contrast (default without labels options), study-contrast (each study's names apart), "
                    "concept (one per map), concepts (multi-label), or a maps or participants column.")
@@ -382,21 +385,21 @@ def labels_cmd(store, vocab, inherit) -> None:
               help="Add this participants.tsv column to meta.parquet (repeatable; personal data; default: none).")
 @click.option("--one-stat/--every-stat", default=True, show_default=True,
               help="One stat per subject and contrast (z, else t, F, p, effect, variance), or every stat.")
-@click.option("--per-subject", type=click.Choice(["contrast", "one", "map"]), default="contrast", show_default=True,
+@click.option("--per-subject", type=PER_SUBJECT_RULE.click_type(), default="contrast", show_default=True,
               help="One map per subject and contrast (subject-level map, else first session and run), one per "
                    "subject, or every map.")
 @LEVEL_OPTION
 @click.option("--allow-unseen", is_flag=True, help="Accept test classes training never saw (recorded in the "
               "manifest).")
-@click.option("--near-copy-r", type=click.FloatRange(0, 1, min_open=True), default=None,
+@click.option("--near-copy-r", type=NEAR_COPY.click_type(), default=None,
               help="Refuse maps on both sides whose rows correlate at least this much (default: 0.9).")
 @click.option("--with-broader", is_flag=True, help="Count inherited broader concepts as labels.")
-@click.option("--missing", type=click.Choice(["common", "zero", "keep"]), default="common", show_default=True,
+@click.option("--missing", type=MISSING.click_type(), default="common", show_default=True,
               help="Voxels some selected map has no value for: keep only voxels every map covers (common), "
                    "fill 0, or keep NaN.")
-@click.option("--min-voxels", type=click.IntRange(min=1), help="With --missing common, refuse when fewer remain "
+@click.option("--min-voxels", type=MIN_VOXELS.click_type(), help="With --missing common, refuse when fewer remain "
               "(default: 1% of the mask).")
-@click.option("--format", "fmt", type=click.Choice(["npy", "parquet", "zarr"]), default="npy", show_default=True,
+@click.option("--format", "fmt", type=EXPORT_FORMAT.click_type(), default="npy", show_default=True,
               help="X as a memory-mappable .npy, one Parquet table, or a Zarr v3 array (chunks of rows).")
 @click.option("--overwrite", is_flag=True, help="Replace an existing export folder.")
 def export_cmd(store, out, where, concepts, tasks, stats, feature_set, min_coverage, y_from, group_by, scheme,
@@ -446,7 +449,7 @@ def schema_cmd(name) -> None:
 @STORE_OPTION
 @click.argument("query")
 @click.option("--features", "feature_set", help="Feature set name (default: the default set).")
-@click.option("-k", "k", type=click.IntRange(min=1), default=10, show_default=True, help="How many maps to list.")
+@click.option("-k", "k", type=TOP_K.click_type(), default=10, show_default=True, help="How many maps to list.")
 @click.option("--absolute", is_flag=True, help="Rank by absolute r (a sign-flipped map counts as similar).")
 @click.option("--stat", help="A new map's statistic (t, z, p, F, effect, ...), when the set converts to z.")
 @click.option("--dof", type=float, help="A new t or F map's degrees of freedom.")
@@ -478,16 +481,16 @@ def similar_cmd(store, query, feature_set, k, absolute, stat, dof, fmt) -> None:
               help="Which maps to pool (repeatable): of each subject's maps of a contrast, the first of these it "
                    "has; a study's maps must be one stat.")
 @click.option("--features", "feature_set", help="Feature set name (default: the default set).")
-@click.option("--method", type=click.Choice(POOL_METHODS), default=POOL_DEFAULT, show_default=True,
+@click.option("--method", type=POOL_METHOD.click_type(), default=POOL_DEFAULT, show_default=True,
               help="How study maps are combined, voxel by voxel: stouffer (each study's one-sample z; holds its "
                    "false-positive rate on null studies), fixed or random effects of effect maps (random: "
                    "DerSimonian-Laird; random-hksj: with the Hartung-Knapp-Sidik-Jonkman variance and a t "
                    "reference; random-reml: restricted maximum likelihood).")
-@click.option("--min-subjects", type=click.IntRange(min=2), default=3, show_default=True,
+@click.option("--min-subjects", type=MIN_SUBJECTS.click_type(), default=3, show_default=True,
               help="A study's map is missing where fewer of its subjects have a value.")
-@click.option("--min-studies", type=click.IntRange(min=1), default=2, show_default=True,
+@click.option("--min-studies", type=MIN_STUDIES.click_type(), default=2, show_default=True,
               help="The pooled map is missing where fewer studies have a value.")
-@click.option("--fdr", "fdr_q", type=click.FloatRange(0, 1, min_open=True, max_open=True), default=0.05,
+@click.option("--fdr", "fdr_q", type=FDR_Q.click_type(), default=0.05,
               show_default=True, help="False discovery rate for the threshold (Benjamini-Hochberg).")
 @click.option("--leave-one-out", is_flag=True, help="Also say how much each study moves the result.")
 @click.option("--use-variance", is_flag=True,
@@ -587,9 +590,9 @@ def verify_cmd(manifest) -> None:
 @cli.command("check")
 @STORE_OPTION
 @click.option("--features", "feature_set", help="Feature set for coverage and value checks (default: the default set).")
-@click.option("--min-coverage", type=click.FloatRange(0, 1), default=0.8, show_default=True,
+@click.option("--min-coverage", type=CHECK_COVERAGE.click_type(), default=0.8, show_default=True,
               help="Report maps covering less of the mask.")
-@click.option("--min-agreement", type=click.FloatRange(-1, 1), default=0.2, show_default=True,
+@click.option("--min-agreement", type=AGREEMENT.click_type(), default=0.2, show_default=True,
               help="Flag concepts whose per-study mean maps correlate less across studies.")
 @click.option("--html", "html_out", type=click.Path(dir_okay=False), help="Write an HTML report with pictures.")
 @click.option("--format", "fmt", type=click.Choice(["summary", "table", "json"]), default="summary",
@@ -620,7 +623,7 @@ def check_cmd(store, feature_set, min_coverage, min_agreement, html_out, fmt, fa
 
 @cli.command("demo")
 @click.argument("folder", type=click.Path(file_okay=False))
-@click.option("--scale", type=click.FloatRange(0.1, 1.0), default=1.0, show_default=True,
+@click.option("--scale", type=DEMO_SCALE.click_type(), default=1.0, show_default=True,
               help="Fraction of the demo's subjects to generate.")
 def demo_cmd(folder, scale) -> None:
     """Generate the invented demo consortium in FOLDER and run the whole job on it.

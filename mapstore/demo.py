@@ -19,6 +19,8 @@ from typing import Any, Callable
 
 import numpy as np
 
+from ._params import DEMO_SCALE, declared
+
 __all__ = ["CONCEPTS", "STUDIES", "SURFACE_STUDIES", "GRIDS", "make_demo", "run_demo", "demo_decoder", "DemoSummary",
            "demo_vocabulary", "demo_rules"]
 
@@ -417,13 +419,14 @@ def make_demo(root: str | os.PathLike[str], *, scale: float = 1.0) -> DemoSummar
                        str(vocab), str(rules), str(overrides))
 
 
+@declared(scale=DEMO_SCALE)
 def run_demo(folder: str | os.PathLike[str], *, scale: float = 1.0, say: Callable[[str], Any] = print) -> None:
     """Write the invented consortium into ``folder`` and run the whole job on it (index, features, labels,
     export, cross-study decoding, a surface set, check, pooling), telling ``say`` what it does."""
     from ._api import open_store
     from .analyses import pool, write_pooled
     from .features import build_features
-    from .formats._text import text_table
+    from .formats import text_table
     from .indexing import index
     from .labels import label_store
 

@@ -35,6 +35,7 @@ from .._version import __version__
 from ..errors import ParameterError, PoolError
 from ..select import Selection, map_levels
 from ._record import PooledRecord, PooledSource
+from .._params import FDR_Q, MIN_STUDIES, MIN_SUBJECTS, POOL_METHOD, declared
 from ..statkinds import POOL_DEFAULT, POOL_METHODS, POOLABLE
 
 __all__ = ["StudyMaps", "PooledMaps", "one_sample", "study_maps", "variance_maps", "combine", "pool", "pool_maps", "fdr_threshold",
@@ -332,6 +333,7 @@ def _effects(sums, shift: np.ndarray, method: str, max_iter: int = 100,
     return out
 
 
+@declared(method=POOL_METHOD)
 def combine(z: np.ndarray | None = None, *, effect: np.ndarray | None = None, variance: np.ndarray | None = None,
             n: np.ndarray | None = None, method: str = "random") -> dict[str, np.ndarray]:
     """Combine study maps (rows: studies, columns: voxels) voxel by voxel, NaN-aware.
@@ -352,8 +354,6 @@ def combine(z: np.ndarray | None = None, *, effect: np.ndarray | None = None, va
     """
     from scipy import stats
 
-    if method not in METHODS:
-        raise ParameterError(f"method must be one of {list(METHODS)}, got {method!r}")
     if method in _EFFECT_METHODS:
         if effect is None or variance is None:
             raise ParameterError(f"method {method!r} needs effect and variance maps")
@@ -428,6 +428,7 @@ def fdr_threshold(z: np.ndarray, q: float = 0.05) -> float:
     return float(stats.norm.isf(p[below[-1]]))
 
 
+@declared(method=POOL_METHOD, min_subjects=MIN_SUBJECTS, min_studies=MIN_STUDIES)
 def pool(sel: Selection, method: str = DEFAULT_METHOD, *, min_subjects: int = 3, min_studies: int = 2,
          leave_one_out: bool = False, use_variance: bool = False) -> PooledMaps:
     """Do the studies of a selection agree, and where?  Study-level one-sample maps of the selection's
@@ -454,10 +455,6 @@ def pool(sel: Selection, method: str = DEFAULT_METHOD, *, min_subjects: int = 3,
     >>> res = pool(sel)  # doctest: +SKIP
     >>> res.peaks(3), res.provenance["left_out"]  # doctest: +SKIP
     """
-    if method not in METHODS:
-        raise ParameterError(f"method must be one of {list(METHODS)}, got {method!r}")
-    if not isinstance(min_studies, int) or min_studies < 1:
-        raise ParameterError(f"min_studies must be a positive integer, got {min_studies!r}")
     levels = set(map_levels(sel.meta)) if len(sel) else set()
     group = levels == {"group"}
     if "group" in levels and not group:
@@ -605,6 +602,7 @@ def _combine_blocks(run: Callable[[slice], dict[str, np.ndarray]], ncol: int) ->
             for key, vals in parts.items()}
 
 
+@declared(fdr_q=FDR_Q)
 def write_pooled(result: PooledMaps, out, fdr_q: float = 0.05, *, overwrite: bool = False) -> PooledRecord:
     """Images of every map the method made, a table of peaks and the provenance, written to folder ``out``.
 
@@ -766,6 +764,7 @@ def _streamed_sums(sel: Selection, variance: Selection, rows: int, shift: np.nda
     return sums
 
 
+@declared(method=POOL_METHOD)
 def pool_maps(sel: Selection, method: str = "stouffer", *, variance: Selection | None = None,
               n: np.ndarray | None = None, rows: int | None = None) -> PooledMaps:
     """Combine given study-level maps (one row of ``sel`` per study: z maps for ``stouffer``,
@@ -787,8 +786,6 @@ def _pool_maps(sel: Selection, method: str, variance: Selection | None, n: np.nd
     from scipy import stats
 
     rows = rows or max(4, (16 << 20) // (4 * max(1, len(sel.voxels))))
-    if method not in METHODS:
-        raise ParameterError(f"method must be one of {list(METHODS)}, got {method!r}")
     ncol = len(sel.voxels)
     info: dict[str, Any] = {}
     if method in _EFFECT_METHODS:

@@ -24,6 +24,7 @@ from ..errors import OutputPlaceError
 from .._version import __version__
 from ..analyses import combine
 from ..features import pair_correlation
+from .._params import AGREEMENT, CHECK_COVERAGE, declared
 from ..statkinds import STAT_KINDS, known_stats
 from ._figures import FIGURE_CSS, Scale, compose, figure_html, histograms_html, matrix_html, png_bytes, stack_rgb
 
@@ -210,6 +211,7 @@ def _html_table(table: pa.Table, level_col: str | None = None) -> str:
 
 # --- checks -------------------------------------------------------------------------------
 
+@declared(min_coverage=CHECK_COVERAGE, min_agreement=AGREEMENT)
 def check_store(store, features: str | None = None, *, min_coverage: float = 0.8,
                 pictures: bool = True, max_rows_for_pictures: int = 400,
                 min_agreement: float = CONCEPT_AGREEMENT) -> CheckReport:

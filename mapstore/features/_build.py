@@ -36,10 +36,11 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..statkinds import convertible_to_z
-from .._params import positive_int, resolve_jobs
+from .._params import (BACKGROUND, BATCH_SIZE, FEATURE_STAT, JOBS, P_SIDE, RESAMPLE_METHOD, declared,
+                       resolve_jobs)
 from .._runner import run as run_units
 from .._version import __version__
-from ..errors import FeatureError, MapstoreError, ParameterError, QueryError, StoreFull
+from ..errors import FeatureError, MapstoreError, QueryError, StoreFull
 from ..store import (
     FPROBLEMS_SCHEMA,
     ROWS_SCHEMA,
@@ -57,7 +58,6 @@ from ..store import (
     write_parquet_atomic,
 )
 from ..targets import (
-    METHODS,
     BuildSettings,
     Mask,
     SourceMap,
@@ -220,6 +220,8 @@ def _left_out(r: dict[str, Any], kinds: tuple[str, ...], stat: str) -> str | Non
     return None
 
 
+@declared(method=RESAMPLE_METHOD, stat=FEATURE_STAT, p_sided=P_SIDE, background=BACKGROUND, jobs=JOBS,
+          batch_size=BATCH_SIZE)
 def build_features(
     store: str | os.PathLike[str],
     name: str | None = None,
@@ -307,7 +309,6 @@ def build_features(
         Progress bar (default: when standard error is a terminal).
     """
     t0 = time.perf_counter()
-    _check_options(method, stat, p_sided, background, batch_size)
     jobs = resolve_jobs(jobs)
     if progress is None:
         progress = sys.stderr.isatty()
@@ -369,19 +370,6 @@ def build_features(
                            f". The failures are recorded: mapstore sql --store {store_path} "
                            "\"SELECT * FROM feature_problems\"", report=report)
     return report
-
-
-def _check_options(method: str, stat: str, p_sided: str, background: str, batch_size: int | None) -> None:
-    if method not in METHODS:
-        raise ParameterError(f"method must be one of {list(METHODS)}, got {method!r}")
-    if stat not in ("native", "z"):
-        raise ParameterError(f"stat must be 'native' or 'z', got {stat!r}")
-    if p_sided not in ("one", "two"):
-        raise ParameterError(f"p_sided must be 'one' or 'two', got {p_sided!r}")
-    if background not in ("auto", "keep"):
-        raise ParameterError(f"background must be 'auto' or 'keep', got {background!r}")
-    if batch_size is not None:
-        positive_int("batch_size", batch_size)
 
 
 def _set_name(name: str) -> str:

@@ -4,6 +4,7 @@ deadline, mesh files, user-written YAML/JSON files and the JSON Schemas they are
 from __future__ import annotations
 
 from ._html import html_table
+from ._text import text_table
 from ._regex import safe_regex
 from ._hashing import ReadDeadline, ReadTimeout, digest_file, sha256_file
 from ._foreign import (
@@ -79,6 +80,7 @@ __all__ = [
     "schema_text",
     "sha256_file",
     "html_table",
+    "text_table",
     "surface_format",
     "surface_grid_id",
     "UserFile",

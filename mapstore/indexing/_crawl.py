@@ -35,7 +35,7 @@ from ._names import EntityParser, NameRules
 from ._walk import walk_dataset
 from ..store import Problem, inside, lies_within
 from .._version import __version__
-from .._params import positive_int, resolve_jobs
+from .._params import JOBS, MAP_MB_LIMIT, READ_TIMEOUT, declared, resolve_jobs
 from .._runner import die_once_for_tests, run as run_units
 from ..errors import HeaderError, MapstoreError, NoDatasetsFound, ParameterError, StoreFull
 from ..labels import refresh_labels
@@ -1071,6 +1071,7 @@ class _Previous:
         return cls(parts, tables["datasets"], tables["participants"], tables["problems"], store)
 
 
+@declared(jobs=JOBS, read_timeout=READ_TIMEOUT, max_map_mb=MAP_MB_LIMIT)
 def index(
     roots: Iterable[str | os.PathLike[str]],
     store: str | os.PathLike[str],
@@ -1135,9 +1136,6 @@ def index(
     if not roots:
         raise ParameterError("index needs at least one ROOT folder")
     jobs = resolve_jobs(jobs)
-    positive_int("max_map_mb", max_map_mb)
-    if read_timeout is not None and not (isinstance(read_timeout, (int, float)) and read_timeout > 0):
-        raise ParameterError(f"read_timeout must be a positive number of seconds or None, got {read_timeout!r}")
     if overrides is not None:  # the earlier name of ``origins``
         if origins is not None:
             raise ParameterError("give origins= only (overrides= is its earlier name)")

@@ -37,6 +37,7 @@ import numpy as np
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from .._params import EXPORT_FORMAT, EXPORT_FORMATS, NEAR_COPY, SEED, declared
 from .._version import __version__
 from ..features import NEAR_COPY_R
 from ..errors import ExportError, ParameterError
@@ -51,7 +52,7 @@ __all__ = ["ExportReport", "VerifyReport", "export_selection", "verify", "json_s
 
 BLOCK_ROWS = 64
 DATA_FILES = ("X.npy", "table.parquet", "X.zarr")
-FORMATS = ("npy", "parquet", "zarr")
+FORMATS = EXPORT_FORMATS
 
 
 @dataclass
@@ -83,6 +84,7 @@ def _row_hash(row: np.ndarray) -> str:
     return hashlib.sha256(np.ascontiguousarray(row, dtype=np.float32).tobytes()).hexdigest()
 
 
+@declared(seed=SEED, fmt=EXPORT_FORMAT, near_copy_r=NEAR_COPY)
 def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str = "leave-one-group-out",
                      seed: int = 0, allow_leak: bool = False, fmt: str = "npy", overwrite: bool = False,
                      near_copy_r: float | None = None, allow_unseen: bool = False,
@@ -94,8 +96,6 @@ def export_selection(sel: Selection, out: str | os.PathLike[str], *, scheme: str
     unless named; the manifest lists the ones that did.
     """
     t0 = time.perf_counter()
-    if fmt not in FORMATS:
-        raise ParameterError(f"fmt must be one of {list(FORMATS)}, got {fmt!r}")
     if fmt == "zarr":
         try:
             import zarr  # noqa: F401

@@ -15,6 +15,7 @@ from typing import Any
 
 import numpy as np
 
+from .._params import MIN_COVERAGE, MIN_VOXELS, MISSING, MISSING_POLICIES, PER_SUBJECT_RULE, declared
 from ..statkinds import LEVEL_CHOICES, LEVELS, STAT_PREFERENCE, SUBJECT_LEVELS
 from ..errors import ParameterError, QueryError
 from ..features import NEAR_COPY_R, STORE_FLOOR, find_copies
@@ -24,7 +25,6 @@ from ._splits import assign_folds, check_classes, check_leakage, copy_groups, fo
 __all__ = ["Selection", "select", "GROUP_COLUMNS", "MISSING_POLICIES", "check_folds", "align_columns"]
 
 # what X does with voxels some selected map has no value for (NaN in the feature set)
-MISSING_POLICIES = ("common", "zero", "keep")
 
 GROUP_COLUMNS = {"study": "study", "site": "site", "lab": "lab", "subject": "participant",
                  "participant": "participant", "dataset": "dataset"}
@@ -456,7 +456,6 @@ def _sql_list(values) -> str:
 
 # one stat per contrast: the first of these a contrast has (z and t carry the same evidence)
 STAT_ORDER = STAT_PREFERENCE
-PER_SUBJECT = ("contrast", "one", "map")
 
 
 def _one_per(df, per_subject: str, one_stat: bool):
@@ -506,6 +505,7 @@ def _one_per(df, per_subject: str, one_stat: bool):
     return df[keep].reset_index(drop=True), dropped
 
 
+@declared(missing=MISSING, min_voxels=MIN_VOXELS, min_coverage=MIN_COVERAGE, per_subject=PER_SUBJECT_RULE)
 def select(store, where: str | None = None, *, concepts: list[str] | None = None, task: list[str] | None = None,
            stat: list[str] | None = None, features: str | None = None, min_coverage: float | None = None,
            y_from: str = "contrast", group_by: str = "study", with_broader: bool = False,
@@ -518,10 +518,8 @@ def select(store, where: str | None = None, *, concepts: list[str] | None = None
         warnings.warn("select(target=...) is now select(y_from=...); target goes in the next release",
                       DeprecationWarning, stacklevel=3)
         y_from = target
-    _check_select_options(missing, min_voxels, group_by, min_coverage, concepts=concepts, task=task, stat=stat)
+    _check_select_options(group_by, concepts=concepts, task=task, stat=stat)
     levels = resolve_levels(level)
-    if per_subject not in PER_SUBJECT:
-        raise ParameterError(f"per_subject must be one of {list(PER_SUBJECT)}, got {per_subject!r}")
     fs = store.features(features)
     cat = store.catalog
     lab = _labels(cat, with_broader)
@@ -598,17 +596,10 @@ def _take_levels(df, levels: tuple[str, ...]):
     return df[keep].reset_index(drop=True), dropped
 
 
-def _check_select_options(missing: str, min_voxels: int | None, group_by: str, min_coverage: float | None,
-                          **lists: list[str] | None) -> None:
-    if missing not in MISSING_POLICIES:
-        raise ParameterError(f"missing must be one of {list(MISSING_POLICIES)}, got {missing!r}")
-    if min_voxels is not None and (not isinstance(min_voxels, int) or min_voxels < 1):
-        raise ParameterError(f"min_voxels must be a positive integer, got {min_voxels!r}")
+def _check_select_options(group_by: str, **lists: list[str] | None) -> None:
     if not isinstance(group_by, str) or not group_by:
         raise ParameterError(f"group_by must be a unit ({', '.join(sorted(GROUP_COLUMNS))}), a column or "
                              f"metadata:KEY, got {group_by!r}")
-    if min_coverage is not None and not 0 <= min_coverage <= 1:
-        raise ParameterError(f"min_coverage must be in [0, 1], got {min_coverage!r}")
     for name, val in lists.items():
         if val is not None and (isinstance(val, str) or not all(isinstance(v, str) for v in val)):
             raise ParameterError(f"{name} must be a list of strings, got {val!r}")

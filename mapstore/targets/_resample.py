@@ -23,6 +23,7 @@ from typing import Any, NamedTuple
 
 import numpy as np
 
+from .._params import RESAMPLE_METHOD, RESAMPLE_METHODS
 from ..errors import GridError
 
 __all__ = ["GridLike", "METHODS", "resample"]
@@ -35,7 +36,7 @@ class GridLike(NamedTuple):
     affine_array: np.ndarray
 
 
-METHODS = ("linear", "nearest", "cubic")
+METHODS = RESAMPLE_METHODS
 
 
 _ORDER = {"nearest": 0, "linear": 1, "cubic": 3}
@@ -105,8 +106,7 @@ def resample(data: np.ndarray, src_affine: np.ndarray, grid: Any, method: str = 
     -------
     ndarray of shape ``grid.shape``, float32, NaN outside the source's field of view.
     """
-    if method not in _ORDER:
-        raise GridError(f"method must be one of {list(METHODS)}, got {method!r}")
+    RESAMPLE_METHOD.check("method", method, "resample")
     data = np.asarray(data)
     if data.ndim != 3:
         raise GridError(f"expected a 3-D volume, got shape {data.shape}")
