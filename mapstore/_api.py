@@ -31,9 +31,14 @@ class Store:
 
     Examples
     --------
+    ``store_path`` is a store the demo's maps were indexed into (``mapstore demo`` writes one):
+
     >>> import mapstore
-    >>> store = mapstore.open("my-store")                       # doctest: +SKIP
-    >>> store.sql("SELECT stat, count(*) FROM maps GROUP BY stat").to_pandas()  # doctest: +SKIP
+    >>> store = mapstore.open(store_path)
+    >>> store.sql("SELECT count(DISTINCT study) AS studies, count(*) AS maps FROM maps").to_pylist()
+    [{'studies': 7, 'maps': 90}]
+    >>> store.features().unit
+    'voxels'
     """
 
     def __init__(self, path: str | os.PathLike[str]) -> None:
@@ -137,7 +142,7 @@ class Store:
                with_broader: bool = False, missing: str = "common", min_voxels: int | None = None,
                one_stat: bool = True, per_subject: str = "contrast", level: str | list[str] = "subject",
                target: str | None = None) -> Selection:
-        """Choose maps for a decoder: returns a :class:`~mapstore.query.Selection`.
+        """Choose maps for a decoder: returns a :class:`~mapstore.select.Selection`.
 
         Parameters
         ----------
@@ -184,9 +189,19 @@ class Store:
 
         Examples
         --------
-        >>> sel = store.select(concepts=["reading", "listening"], y_from="concept")  # doctest: +SKIP
-        >>> from sklearn.model_selection import cross_val_score                     # doctest: +SKIP
-        >>> cross_val_score(model, sel.X, sel.y, cv=sel.splits("leave-one-group-out"))  # doctest: +SKIP
+        Decode two concepts across studies, each study held out in turn:
+
+        >>> import mapstore
+        >>> from sklearn.linear_model import LogisticRegression
+        >>> from sklearn.model_selection import cross_val_score
+        >>> store = mapstore.open(store_path)
+        >>> sel = store.select(concepts=["reading", "listening"], y_from="concept", stat=["t", "z"])
+        >>> sorted(set(sel.y)), sel.meta["study"].nunique()
+        (['listening', 'reading'], 5)
+        >>> scores = cross_val_score(LogisticRegression(max_iter=200), sel.X, sel.y,
+        ...                          cv=sel.splits("leave-one-group-out"))
+        >>> len(scores)
+        5
         """
         from .select import select
 

@@ -68,11 +68,12 @@ class Param:
             return False
         if self.kind is int and not isinstance(value, numbers.Integral):
             return False
-        if value != value:  # NaN
+        v = float(value)
+        if v != v:  # NaN
             return False
-        if self.low is not None and (value < self.low or (self.low_open and value == self.low)):
+        if self.low is not None and (v < self.low or (self.low_open and v == self.low)):
             return False
-        return not (self.high is not None and (value > self.high or (self.high_open and value == self.high)))
+        return not (self.high is not None and (v > self.high or (self.high_open and v == self.high)))
 
     def check(self, name: str, value: Any, caller: str) -> Any:
         """``value`` if it fits the declaration; else ParameterError in the one form."""

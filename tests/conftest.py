@@ -1,4 +1,5 @@
-"""Shared fixtures: a small invented demo tree and store, and tiny NIfTI writers."""
+"""Shared helpers: tiny NIfTI writers and derivative folders (the demo tree and store are in the
+repository's top-level conftest.py, shared with the docstring examples)."""
 
 from __future__ import annotations
 
@@ -9,25 +10,8 @@ import nibabel as nib
 import numpy as np
 import pytest
 
-import mapstore
-from mapstore.demo import make_demo
 
 NIBABEL_DATA = Path(nib.__file__).parent / "tests" / "data"
-
-
-@pytest.fixture(scope="session")
-def demo_tree(tmp_path_factory) -> Path:
-    root = tmp_path_factory.mktemp("demo") / "data"
-    make_demo(root, scale=0.25)
-    return root
-
-
-@pytest.fixture(scope="session")
-def demo_store(demo_tree, tmp_path_factory) -> Path:
-    store = tmp_path_factory.mktemp("demostore") / "store"
-    mapstore.index([demo_tree], store, rules=demo_tree / "name-rules.json",
-                   origins=demo_tree / "origins.json", progress=False)
-    return store
 
 
 @pytest.fixture

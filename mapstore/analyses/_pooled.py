@@ -44,7 +44,7 @@ __all__ = ["StudyMaps", "PooledMaps", "one_sample", "study_maps", "variance_maps
 METHODS = POOL_METHODS
 _EFFECT_METHODS = ("fixed", "random", "random-hksj", "random-reml")
 # the default: the one whose false-positive rate on simulated null studies holds its nominal level
-# (tests/test_pool_null.py; tests/benchmarks/bench_pool_null.py; BENCHMARKS.md)
+# (tests/analyses/test_pool_null.py; tests/benchmarks/bench_pool_null.py; BENCHMARKS.md)
 DEFAULT_METHOD = POOL_DEFAULT
 # the most extreme z a method carries: the z of the smallest positive double as a one-sided p (p = 0
 # written by a tool, a z of +-inf) -- the value p_to_z gives p = 0
@@ -449,11 +449,17 @@ def pool(sel: Selection, method: str = DEFAULT_METHOD, *, min_subjects: int = 3,
 
     Examples
     --------
-    >>> import mapstore  # doctest: +SKIP
-    >>> from mapstore.analyses import pool  # doctest: +SKIP
-    >>> sel = mapstore.open("store").select(concepts=["reading"], missing="keep")  # doctest: +SKIP
-    >>> res = pool(sel)  # doctest: +SKIP
-    >>> res.peaks(3), res.provenance["left_out"]  # doctest: +SKIP
+    Do the demo's reading studies agree, and where?  (Its studies have two subjects each at this size.)
+
+    >>> import mapstore
+    >>> from mapstore.analyses import pool
+    >>> sel = mapstore.open(store_path).select(concepts=["reading"], stat=["t", "z"], missing="keep")
+    >>> res = pool(sel, min_subjects=2)
+    >>> res.method, res.studies
+    ('stouffer', ['emberlight', 'inkwell', 'slatecount'])
+    >>> top = res.peaks(1)[0]
+    >>> top["mm"], top["n_studies"]
+    ([-47.0, 13.0, 21.0], 3)
     """
     levels = set(map_levels(sel.meta)) if len(sel) else set()
     group = levels == {"group"}

@@ -259,7 +259,7 @@ def build_features(
         ``fsaverage5`` makes a surface set: both hemispheres of nilearn's fsaverage5 in one
         row (left vertices, then right), surface maps resampled between fsaverage densities
         by nearest vertex on the sphere, volume maps projected (``projection``).  A JSON mesh
-        description (:func:`mapstore.surface.mesh_from_description`: GIFTI surfaces per
+        description (:func:`mapstore.targets.mesh_from_description`: GIFTI surfaces per
         hemisphere, e.g. fsLR or another fsaverage density) makes a surface set on that mesh.
         A CIFTI-2 file (``.dscalar.nii``) makes a grayordinate set on its brain models.
     mask : str, path or ndarray, default="brain"
@@ -286,7 +286,7 @@ def build_features(
         SQL predicate over ``maps`` (aliased ``m``) choosing which maps to include.
     projection : dict, optional
         Surface sets: ``nilearn.surface.vol_to_surf`` parameters for volume maps (default
-        :data:`mapstore.surface.DEFAULT_PROJECTION`: five depths between the white and pial
+        :data:`mapstore.targets.DEFAULT_PROJECTION`: five depths between the white and pial
         surfaces, linear interpolation); recorded in every row's feature key.
     volumes : bool, default=True
         Surface sets: project volume maps onto the mesh (False leaves them out).

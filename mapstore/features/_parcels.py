@@ -1,7 +1,7 @@
 """Parcel sets and data-driven parcellations: fewer, coarser features for cross-study decoders.
 
 ``build_parcels`` reduces every row of a source feature set (volume or surface) to one value
-per parcel of an atlas (:mod:`mapstore.atlas`) into a new feature set of its own::
+per parcel of an atlas (:func:`mapstore.targets.load_atlas`) into a new feature set of its own::
 
     features/<name>/set.json      "geometry": "parcels", "parcels": atlas, reducer, source set
     features/<name>/weights.npz   the atlas on the source mask (features x parcels, sparse)

@@ -235,7 +235,7 @@ class FeatureSet:
         return np.rint(np.nan_to_num(col[idx].astype(np.float64), nan=1.0) * self.n_voxels).astype(np.int64)
 
     def sketches(self, map_ids) -> np.ndarray:
-        """(n, SKETCH_BITS / 8) uint8 sign sketches of rows (:mod:`mapstore.copies`), recorded at build time."""
+        """(n, SKETCH_BITS / 8) uint8 sign sketches of rows (:mod:`mapstore.features._copies`), recorded at build time."""
         map_ids = list(map_ids)
         sketches = self._column("sketch")
         col = sketches.to_pylist() if sketches is not None else [None] * len(self)

@@ -1,6 +1,6 @@
 """Files of a described mesh: GIFTI or FreeSurfer surfaces and per-vertex data, read, hashed and checked.
 
-A mesh description (:func:`mapstore.surface.mesh_from_description`) names these files; this module
+A mesh description (:func:`mapstore.targets.mesh_from_description`) names these files; this module
 reads one file at a time and says what is wrong with it, naming the file.  Formats are told apart
 by their first bytes: GIFTI XML, a FreeSurfer triangle surface (``lh.pial``), FreeSurfer morph data
 (``lh.sulc``), or a FreeSurfer ASCII label (``lh.cortex.label``).

@@ -257,7 +257,7 @@ class Selection:
         ``scheme`` is one of :data:`SCHEMES` (see :func:`parse_scheme`).  Raises
         :class:`~mapstore.errors.LeakageError` if a participant, an identical file, an identical
         feature row or a near-copy (absolute r >= ``near_copy_r`` on the voxels both maps cover; default
-        :data:`mapstore.copies.NEAR_COPY_R`) would sit on both sides of a split, unless
+        :data:`mapstore.features.NEAR_COPY_R`) would sit on both sides of a split, unless
         ``allow_leak`` (then a warning); and :class:`~mapstore.errors.UnseenClassError` if a test
         side holds a class its training side never saw, unless ``allow_unseen``.
         """

@@ -232,7 +232,7 @@ def check_leakage(splits, participants: np.ndarray, sha256: np.ndarray, map_ids:
     """Refuse splits that put one participant, one identical file or two copies of a map on both sides.
 
     ``copies`` are (i, j, kind, r) pairs of positions whose feature rows are identical or
-    near-copies (see :mod:`mapstore.copies`); maps joined by them form a group, and a group with
+    near-copies (see :mod:`mapstore.features._copies`); maps joined by them form a group, and a group with
     members on both sides of a split leaks (copies need not be listed pair by pair: a star is enough).
     """
     problems: list[str] = []

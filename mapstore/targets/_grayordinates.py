@@ -221,7 +221,7 @@ class GrayordinateTarget(MeshedTarget):
 def grayordinate_target(path: str, mesh: SurfaceTarget | None = None) -> GrayordinateTarget:
     """A target from a CIFTI-2 file's brain models (``.dscalar.nii``, ``.dtseries.nii``, ...).
 
-    ``mesh`` (see :func:`mapstore.surface.mesh_from_description`) gives the cortex's surfaces,
+    ``mesh`` (see :func:`mapstore.targets.mesh_from_description`) gives the cortex's surfaces,
     whose vertex counts must be the template's.
     """
     import nibabel as nib
