@@ -20,14 +20,17 @@ def demo_tree(tmp_path_factory) -> Path:
     return root
 
 
-@pytest.fixture(scope="session")
-def demo_store(demo_tree, tmp_path_factory) -> Path:
+def _indexed_demo(demo_tree: Path, store: Path) -> Path:
     import mapstore
 
-    store = tmp_path_factory.mktemp("demostore") / "store"
     mapstore.index([demo_tree], store, rules=demo_tree / "name-rules.json",
                    origins=demo_tree / "origins.json", progress=False)
     return store
+
+
+@pytest.fixture(scope="session")
+def demo_store(demo_tree, tmp_path_factory) -> Path:
+    return _indexed_demo(demo_tree, tmp_path_factory.mktemp("demostore") / "store")
 
 
 @pytest.fixture(scope="session")
@@ -35,9 +38,7 @@ def example_store(demo_tree, tmp_path_factory) -> Path:
     """The demo indexed, resampled onto MNI152 3 mm and labelled with its concepts."""
     import mapstore
 
-    store = tmp_path_factory.mktemp("examplestore") / "store"
-    mapstore.index([demo_tree], store, rules=demo_tree / "name-rules.json",
-                   origins=demo_tree / "origins.json", progress=False)
+    store = _indexed_demo(demo_tree, tmp_path_factory.mktemp("examplestore") / "store")
     mapstore.build_features(store, grid="MNI152-3mm", progress=False)
     mapstore.label(store, demo_tree / "concepts.json")
     return store

@@ -150,10 +150,10 @@ def _check_rebuild_fields(man: ExportManifest, mpath: Path) -> None:
 def _rebuild(man: ExportManifest, sources, out, store_path: Path, given: Path, rules, origins) -> RebuildReport:
     index(sources, store_path, rules=rules, origins=origins, progress=False)
     settings = man.feature_settings
-    build_features(store_path, settings["name"], **_build_arguments(man), method=settings["method"],
-                   stat=settings["stat"], p_sided=settings["p_sided"], zero_as_missing=settings["zero_as_missing"],
-                   background=settings["background"], model_maps="model" in settings.get("kinds", ["contrast"]),
-                   progress=False)
+    build = {"method": settings["method"], "stat": settings["stat"], "p_sided": settings["p_sided"],
+             "zero_as_missing": settings["zero_as_missing"], "background": settings["background"],
+             "model_maps": "model" in settings.get("kinds", ["contrast"])}
+    build_features(store_path, settings["name"], **{**build, **_build_arguments(man)}, progress=False)
     if man.vocabulary_content:
         vocab = given / "vocabulary-from-manifest.json"
         vocab.write_text(json.dumps(man.vocabulary_content))

@@ -341,8 +341,8 @@ class Target(abc.ABC):
     # -- rebuilding from a shared manifest ------------------------------------------------------
     @classmethod
     def rebuild_arguments(cls, grid: Any, mask: Any, settings: dict[str, Any]) -> dict[str, Any]:
-        """The feature-build arguments (``grid``, ``mask`` and any of this kind's own) that remake a set
-        from an export manifest's records: ``grid`` (the set's ``grid`` document), ``mask`` (its mask
+        """The feature-build arguments (``grid``, ``mask``, and any the kind records differently from how
+        it is asked for, e.g. a surface's ``method``) that remake a set from an export manifest's records: ``grid`` (the set's ``grid`` document), ``mask`` (its mask
         record) and ``settings`` (its ``set.json``), all untrusted.  The default refuses in one line."""
         raise ParameterError(f"a {cls.kind} set cannot be rebuilt from a manifest alone (it depends on files on "
                              "the machine that built it); build the set yourself and export again")

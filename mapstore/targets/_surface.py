@@ -237,7 +237,8 @@ class SurfaceTarget(MeshedTarget):
             raise ParameterError(f"the export's feature set used mask {mask_name!r}: only the mesh's cortex or all "
                                  "of it can be rebuilt from a manifest")
         proj = settings.get("projection")
-        out: dict[str, Any] = {"grid": name, "mask": mask_name.rsplit("-", 1)[1]}
+        # the recorded method (nearest-vertex) is what prepare() makes of any asked-for method
+        out: dict[str, Any] = {"grid": name, "mask": mask_name.rsplit("-", 1)[1], "method": "linear"}
         if isinstance(proj, dict) and proj.get("volumes") != "left out":
             out["projection"] = proj
         else:

@@ -340,6 +340,10 @@ def test_surface_selection_export_and_leakage_guard(pooled, tmp_path):
     assert verify(Path(rep.out) / "manifest.json").ok
     man = json.loads((Path(rep.out) / "manifest.json").read_text())
     assert man["feature_settings"]["geometry"] == "surface"
+    # the surface set is remade from the manifest alone, row for row
+    again = mapstore.rebuild(Path(rep.out) / "manifest.json", [pooled["surface"], pooled["vol"], pooled["coarse"]],
+                             tmp_path / "again")
+    assert again.ok, again.summary()
     # X's columns say where they are without mapstore: hemisphere and vertex, and a mask per hemisphere
     # that nibabel reads with the mesh's vertex count
     cols = pq.read_table(Path(rep.out) / "columns.parquet").to_pandas()
