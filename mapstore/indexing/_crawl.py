@@ -107,19 +107,22 @@ class IndexReport:
     passed_over: dict[str, int] = field(default_factory=dict)  # image files no naming took, by name ending
     n_notes: int = 0  # caveats (info rows of problems), and the passed-over files' rows
     note_codes: dict[str, int] = field(default_factory=dict)
+    n_touched: int = 0  # of the unchanged: read again (new size or time) and found the same content
 
     @property
     def n_passed_over(self) -> int:
         return sum(self.passed_over.values())
 
     def summary(self) -> str:
-        rate = (self.n_new + self.n_changed) / self.seconds if self.seconds > 0 else 0.0
+        read = self.n_new + self.n_changed + self.n_touched
+        rate = read / self.seconds if self.seconds > 0 else 0.0
+        touched = f" ({self.n_touched} touched: new timestamps, same content)" if self.n_touched else ""
         lines = [
             f"store: {self.store}",
             f"datasets: {self.n_datasets}   maps: {self.n_maps}   "
-            f"(new {self.n_new}, changed {self.n_changed}, unchanged {self.n_unchanged}, removed {self.n_removed})",
-            f"read {self.n_new + self.n_changed} file{'' if self.n_new + self.n_changed == 1 else 's'} in "
-            f"{self.seconds:.2f} s ({rate:,.0f} maps/s)",
+            f"(new {self.n_new}, changed {self.n_changed}, unchanged {self.n_unchanged}{touched}, "
+            f"removed {self.n_removed})",
+            f"read {read} file{'' if read == 1 else 's'} in {self.seconds:.2f} s ({rate:,.0f} maps/s)",
         ]
         if self.n_kept_datasets:
             lines.append(f"kept {self.n_kept_datasets} dataset(s) from earlier runs, not under these roots")
@@ -405,8 +408,9 @@ class _UnitResult:
     problems: list[Problem]
     new: int
     changed: int
-    unchanged: int
+    unchanged: int  # touched ones included
     reused: bool
+    touched: int = 0  # read again for a new size or time, content the same
 
 
 # problems that may go away without a file changing: a unit that had one is always crawled again
@@ -491,7 +495,7 @@ def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
     if any(p.level == _NOT_REUSED_LEVEL for p in problems) or rows.native:
         digest = None  # a native map's registration may change outside the unit's files
     part = _write_part(unit, table, problems, digest)
-    return _UnitResult(part, problems, rows.new, rows.changed, rows.unchanged, False)
+    return _UnitResult(part, problems, rows.new, rows.changed, rows.unchanged + rows.touched, False, rows.touched)
 
 
 class _RowBuilder:
@@ -532,7 +536,7 @@ class _RowBuilder:
         self.sidx: list[int] = []
         self.origins: dict[str | None, dict[str, Any]] = {}
         self.mask_sha: dict[str, str | None] = {}
-        self.new = self.changed = self.unchanged = 0
+        self.new = self.changed = self.unchanged = self.touched = 0
         self.native = 0  # native-space maps: their registration lives outside the unit's files
         self.registrations = RegistrationFinder(unit.ds.root, unit.ds.source_roots, unit.transforms)
         self.layouts = LayoutReader(unit.ds.root, unit.ds.key, jsons, unit.ds.index_root)
@@ -577,6 +581,8 @@ class _RowBuilder:
         hdr = res[0]
         if old is None:
             self.new += 1
+        elif res[1] == pcol["sha256"][old]:  # a new time (a copy, a restore, a touch), the same content
+            self.touched += 1
         else:
             self.changed += 1
         key = id(hdr)  # probe_file shares one dict per distinct header
@@ -1289,11 +1295,13 @@ def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: lis
     new = sum(r.new for r in results)
     changed = sum(r.changed for r in results)
     unchanged = sum(r.unchanged for r in results)
+    touched = sum(r.touched for r in results)
     before = sum(d.get("n_maps") or 0 for d in prev.datasets if d["dataset"] not in kept_keys)
     return IndexReport(store=str(store), n_datasets=len(ds_rows), n_maps=total, n_new=new, n_changed=changed,
                        n_unchanged=unchanged, n_removed=max(0, before - changed - unchanged),
                        n_problems=sum(codes.values()), n_kept_datasets=len(plan.kept), seconds=0.0,
-                       problem_codes=codes, passed_over=passed, n_notes=sum(notes.values()), note_codes=notes)
+                       problem_codes=codes, passed_over=passed, n_notes=sum(notes.values()), note_codes=notes,
+                       n_touched=touched)
 
 
 def _relabel(store: Path, head: Head) -> None:

@@ -137,6 +137,14 @@ def test_incremental_reindex(tmp_path):
     assert changed["sha256"] != next(r for r in ids1 if r["relpath"] == changed["relpath"])["sha256"]
     assert changed["map_id"] == map_id_for("alpha", changed["relpath"])  # id survives the change
     assert rows["sub-01/func/sub-01_task-go_contrast-a_stat-t_statmap.nii.gz"]["site"] == "S1"
+    # a new timestamp on the same bytes (a copy, a restore, a touch) is not a change: the file is read
+    # again, its content found the same, and the summary says so
+    g = ds / "sub-01" / "func" / "sub-01_task-go_contrast-b_stat-t_statmap.nii.gz"
+    st = os.stat(g)
+    os.utime(g, ns=(st.st_atime_ns, st.st_mtime_ns + 10**9))
+    r4 = mapstore.index([tmp_path / "src"], store, progress=False)
+    assert (r4.n_new, r4.n_changed, r4.n_unchanged, r4.n_touched, r4.n_removed) == (0, 0, 4, 1, 0)
+    assert "unchanged 4 (1 touched: new timestamps, same content)" in r4.summary() and "read 1 file " in r4.summary()
 
 
 def test_map_ids_survive_moving_the_data(tmp_path):
