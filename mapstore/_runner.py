@@ -7,7 +7,9 @@ cluster; results come back as they finish (or in order), with one progress bar.
 from __future__ import annotations
 
 import contextlib
+import functools
 import gc
+import os
 import sys
 from concurrent.futures import ProcessPoolExecutor, as_completed
 from typing import Any, Callable, Iterator, Sequence, TypeVar
@@ -21,8 +23,11 @@ R = TypeVar("R")
 
 
 @contextlib.contextmanager
-def process_pool(workers: int) -> Iterator[ProcessPoolExecutor]:
+def process_pool(workers: int, preload: Sequence[str] = ()) -> Iterator[ProcessPoolExecutor]:
     """A ``ProcessPoolExecutor`` of forked workers (on Linux), closed on exit.
+
+    ``preload`` names modules the workers will import: the parent imports them before the fork, so
+    each is imported once, not once per worker (and again by the parent later).
 
     Forked workers inherit the parent's heap.  Garbage left there (a notebook's old DuckDB
     connections, say) would be collected in the child, where destructors of objects that
@@ -32,6 +37,12 @@ def process_pool(workers: int) -> Iterator[ProcessPoolExecutor]:
     import multiprocessing
 
     ctx = multiprocessing.get_context("fork") if sys.platform == "linux" else None
+    if ctx is not None:
+        import importlib
+
+        for name in preload:
+            with contextlib.suppress(ImportError):  # an optional library that is not installed
+                importlib.import_module(name)
     gc.collect()
     gc.freeze()
     try:
@@ -39,6 +50,17 @@ def process_pool(workers: int) -> Iterator[ProcessPoolExecutor]:
             yield pool
     finally:
         gc.unfreeze()
+
+
+def _recording(fn: Callable[[T], R], path: str, inherited: list[str], unit: T) -> R:
+    """Test hook (``MAPSTORE_TEST_WORKER_IMPORTS=FILE``): run ``fn`` in a worker and append to FILE the
+    modules the worker imported beyond what it inherited from the fork."""
+    try:
+        return fn(unit)
+    finally:
+        new = sorted(set(sys.modules) - set(inherited))
+        with open(path, "a", encoding="utf-8") as fh:
+            fh.write("\n".join(new) + "\n")
 
 
 def die_once_for_tests() -> None:
@@ -77,11 +99,12 @@ def dask_client(scheduler: Any):
 
 def run(fn: Callable[[T], R], units: Sequence[T], *, jobs: int = 1, scheduler: Any = None,
         progress: bool = False, desc: str = "", weight: Callable[[T], int] = lambda u: 1,
-        ordered: bool = False, unit: str = "item") -> Iterator[R]:
+        ordered: bool = False, unit: str = "item", preload: Sequence[str] = ()) -> Iterator[R]:
     """Run ``fn`` over ``units``; yield the results as they finish (``ordered``: in order).
 
     ``scheduler`` (a Dask Client or address) sends the units to a cluster; else ``jobs > 1``
-    uses a local process pool; else they run here.  ``weight`` sizes the progress bar's steps.
+    uses a local process pool (of forks of this process, after it imported ``preload``); else they run
+    here.  ``weight`` sizes the progress bar's steps.
     On a cluster a unit whose worker dies is run again by Dask, so ``fn`` must be safe to repeat.
     """
     bar = None
@@ -107,8 +130,10 @@ def run(fn: Callable[[T], R], units: Sequence[T], *, jobs: int = 1, scheduler: A
                 if owned:
                     client.close()
         elif jobs > 1 and len(units) > 1:
-            with process_pool(min(jobs, len(units))) as pool:
-                futs = [pool.submit(fn, u) for u in units]
+            with process_pool(min(jobs, len(units)), preload) as pool:
+                record = os.environ.get("MAPSTORE_TEST_WORKER_IMPORTS")
+                task = functools.partial(_recording, fn, record, sorted(sys.modules)) if record else fn
+                futs = [pool.submit(task, u) for u in units]
                 index = {f: i for i, f in enumerate(futs)}
                 for fut in (futs if ordered else as_completed(futs)):
                     res = fut.result()

@@ -322,7 +322,8 @@ def build_features(
         BuildSettings(method, stat, p_sided, zero_as_missing, background, projection), volumes)
     store_path = cat.path
     set_dir = store_path / "features" / name
-    run = dict(jobs=jobs, scheduler=scheduler, progress=progress)
+    # scipy (the zero background's components, sparse resampling) and zlib-ng imported once, before the fork
+    run = dict(jobs=jobs, scheduler=scheduler, progress=progress, preload=WORKER_IMPORTS)
     with write_lock(store_path):
         head = read_head(store_path)
         kinds = ("contrast", "model") if model_maps else ("contrast",)
@@ -501,6 +502,9 @@ class Built:
     paths: dict[str, int]
     created: list[Path]  # what this run wrote, removed if the disk fills
     snap: str  # names this run's rows, problems and copies tables
+
+
+WORKER_IMPORTS = ("scipy.ndimage", "scipy.sparse", "zlib_ng")  # what a batch imports beyond this module's imports
 
 
 def _run_batches(batches: list[Batch], run: dict[str, Any], store_path: Path, set_dir: Path, name: str) -> Built:
