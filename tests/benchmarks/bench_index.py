@@ -4,7 +4,9 @@ Generates a tree of small valid statistic maps (10 studies), then measures in on
 
 * mapstore index, cold (fresh store) and warm (nothing changed);
 * the baseline: a pybids BIDSLayout per dataset + nibabel header of each map;
-* the floor: reading and gunzipping every file once.
+* the floor: reading and gunzipping every file once;
+* what users run: ``mapstore index`` as a command in a fresh process (start-up and imports included)
+  against the baseline as a script in a fresh process, minimum of 3 interleaved rounds.
 
 Prints maps/s, ratios and peak memory.  Usage::
 
@@ -111,12 +113,36 @@ def ours(root: Path, store: Path, jobs: int | None) -> tuple[float, float, int, 
     return float(cold), float(warm), int(n), max(peak, before)
 
 
+def whole_commands(root: Path, store: Path, jobs: int | None, rounds: int, with_baseline: bool
+                   ) -> tuple[float, float | None]:
+    """Seconds of ``mapstore index`` on a fresh store and of the baseline script, each in a fresh process,
+    the minimum of ``rounds`` interleaved rounds."""
+    import shutil
+
+    cmd = [sys.executable, "-m", "mapstore.cli", "index", str(root), "--store", str(store)]
+    cmd += ["--jobs", str(jobs)] if jobs else []
+    base = (f"import sys; sys.path.insert(0, {str(Path(__file__).resolve().parent)!r}); from pathlib import Path; "
+            f"from bench_index import baseline; baseline(Path({str(root)!r}))")
+    ours, theirs = [], []
+    for _ in range(rounds):
+        shutil.rmtree(store, ignore_errors=True)
+        t = time.perf_counter()
+        subprocess.run(cmd, check=True, capture_output=True)
+        ours.append(time.perf_counter() - t)
+        if with_baseline:
+            t = time.perf_counter()
+            subprocess.run([sys.executable, "-c", base], check=True, capture_output=True)
+            theirs.append(time.perf_counter() - t)
+    return min(ours), (min(theirs) if theirs else None)
+
+
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--maps", type=int, default=10_000)
     ap.add_argument("--jobs", type=int, default=None)
     ap.add_argument("--workdir", type=Path, default=None)
     ap.add_argument("--skip-baseline", action="store_true")
+    ap.add_argument("--rounds", type=int, default=3, help="rounds of the whole-command comparison (0: skip it)")
     args = ap.parse_args()
     work = Path(args.workdir or tempfile.mkdtemp(prefix="mapstore-bench-"))
     root = work / "tree"
@@ -145,6 +171,12 @@ def main() -> None:
         assert n_base == n, (n_base, n)
         print(f"baseline (pybids layout + nibabel):    {n / t_base:10,.0f} maps/s  ({t_base:.2f} s)")
         print(f"ratio mapstore cold / baseline speed:  {t_base / cold:10.1f}x  (target >= 50x)")
+    if args.rounds:
+        t_cmd, t_script = whole_commands(root, work / "store-command", args.jobs, args.rounds, not args.skip_baseline)
+        print(f"whole command 'mapstore index', cold:  {n / t_cmd:10,.0f} maps/s  ({t_cmd:.2f} s, start-up included)")
+        if t_script is not None:
+            print(f"baseline as a script, fresh process:   {n / t_script:10,.0f} maps/s  ({t_script:.2f} s)")
+            print(f"ratio whole command / baseline speed:  {t_script / t_cmd:10.1f}x  (target >= 25x)")
     t_ours, t_nib = header_parsers(files)
     k = min(len(files), 5000)
     print(f"header facts, {k} prefixes: mapstore parse_header {t_ours / k * 1e6:.1f} us each, nibabel "

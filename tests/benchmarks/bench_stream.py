@@ -74,7 +74,7 @@ RUNS = {
             "shape=(n, fs.n_voxels))\nfor idx, X, _ in sel.blocks(rows=64):\n    out[idx[0]:idx[-1] + 1] = X\n"
             "out.flush()\n"),
     "zarr": ("import zarr\ng = zarr.open_group({out!r} + '/X.zarr', mode='w', zarr_format=3)\n"
-             "a = g.create_array('X', shape=(n, fs.n_voxels), dtype='float32', chunks=(64, fs.n_voxels), "
+             "a = g.create_array('X', shape=(n, fs.n_voxels), dtype='float32', chunks=(16, fs.n_voxels), "
              "fill_value=np.nan, dimension_names=('map', 'column'), compressors=[zarr.codecs.ZstdCodec(level=1)])\n"
              "for idx, X, _ in sel.blocks(rows=64):\n    a[idx[0]:idx[-1] + 1] = X\n"),
 }
