@@ -120,8 +120,11 @@ def run_batch(b: Batch) -> BatchResult:
                          "vmin": float(vals.min()) if vals.size else None,
                          "vmax": float(vals.max()) if vals.size else None,
                          "vmean": float(vals.mean(dtype=np.float64)) if vals.size else None,
-                         "missing_from": row.missing_from, "p_clipped": row.p_clipped,
-                         "sketch": sketcher.sketch(vec[None, :])[0].tobytes()})
+                         "missing_from": row.missing_from, "p_clipped": row.p_clipped})
+    if out.rows:  # every row's sketch in one product with the set's projection (built once a batch)
+        sketches = sketcher.sketch(arr[[r["row"] for r in out.rows]])
+        for r, sk in zip(out.rows, sketches):
+            r["sketch"] = sk.tobytes()
     write_shard(shard_path, arr)
     return out
 

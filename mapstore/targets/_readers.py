@@ -48,6 +48,29 @@ def gunzip(raw: bytes, limit: int | None = None) -> bytes:
     return bytes(out)
 
 
+class _Digest:
+    """The SHA-256 of a file's bytes, computed in a thread beside other work when the bytes are many."""
+
+    _THREAD_FROM = 1 << 20  # below a MiB a thread costs more than it saves
+
+    def __init__(self, data: bytes) -> None:
+        self._hash = hashlib.sha256()
+        self._thread = None
+        if len(data) < self._THREAD_FROM:
+            self._hash.update(data)
+        else:
+            import threading
+
+            self._thread = threading.Thread(target=self._hash.update, args=(data,), daemon=True)
+            self._thread.start()
+
+    def hexdigest(self) -> str:
+        if self._thread is not None:
+            self._thread.join()
+            self._thread = None
+        return self._hash.hexdigest()
+
+
 def read_volume(path: str, expect_sha256: str | None = None, dtype=np.float32, map_index: int | None = None
                 ) -> tuple[np.ndarray, HeaderFacts]:
     """Read a 3-D NIfTI volume as scaled float32 (or ``dtype``), optionally checking the file's SHA-256.
@@ -65,19 +88,23 @@ def read_volume(path: str, expect_sha256: str | None = None, dtype=np.float32, m
         raise GridError(f"{path}: file is gone since it was indexed; re-run 'mapstore index'") from exc
     except OSError as exc:
         raise GridError(f"{path}: cannot read ({exc.strerror})") from exc
-    if expect_sha256 is not None:
-        got = hashlib.sha256(raw).hexdigest()
-        if got != expect_sha256:
-            raise GridError(f"{path}: content changed since it was indexed (sha256 {got[:12]}... != "
-                            f"{expect_sha256[:12]}...); re-run 'mapstore index'")
+    # the hash runs beside the inflate (both release the GIL); a changed file is refused either way
+    hashing = _Digest(raw) if expect_sha256 is not None else None
     try:
         facts = parse_header(path, header_prefix(path, raw[:4096]))
         # inflate only what the header says the map holds (plus a byte): never a bomb's whole stream
         body = gunzip(raw, facts.vox_offset + facts.data_nbytes + 1) if raw[:2] == b"\x1f\x8b" else raw
     except HeaderError as exc:
-        raise GridError(str(exc)) from exc
+        error: GridError | None = GridError(str(exc))
     except (OSError, EOFError, ValueError) as exc:
-        raise GridError(f"{path}: gzip stream is corrupt ({exc}); re-create the file") from exc
+        error = GridError(f"{path}: gzip stream is corrupt ({exc}); re-create the file")
+    else:
+        error = None
+    if hashing is not None and hashing.hexdigest() != expect_sha256:
+        raise GridError(f"{path}: content changed since it was indexed (sha256 {hashing.hexdigest()[:12]}... != "
+                        f"{expect_sha256[:12]}...); re-run 'mapstore index'")
+    if error is not None:
+        raise error
     if facts.n_volumes != 1 and map_index is None:
         raise GridError(f"{path}: has {facts.n_volumes} volumes; a statistic map must be one 3-D volume "
                         "(split it, or keep only the map you need)")
