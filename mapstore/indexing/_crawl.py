@@ -480,13 +480,18 @@ def _run_unit(unit: _Unit) -> _UnitResult:
 
 def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
     fingerprint = hashlib.sha256(unit.inputs.encode())
+    prev_part = unit.prev_part
+    if not unit.rules.rules and prev_part is not None and prev_part.digest is not None:
+        # a warm run: the walk's listing (a scandir and a stat per file) decides before anything is parsed
+        listing = fingerprint.copy()
+        walk_dataset(unit.ds, unit.parser, unit.rules, unit.top, unit.root_maps, listing, unit.ds.exclude,
+                     listing_only=True)
+        if prev_part.digest == listing.hexdigest() and _part_files_exist(unit):
+            return _UnitResult(prev_part, _read_problems(unit.store, prev_part), 0, 0, prev_part.rows, True)
     maps, jsons, problems = walk_dataset(unit.ds, unit.parser, unit.rules, unit.top, unit.root_maps, fingerprint,
                                          unit.ds.exclude)
     digest = None if unit.rules.rules or any(p.level == _NOT_REUSED_LEVEL for p in problems) \
         else fingerprint.hexdigest()
-    prev_part = unit.prev_part
-    if digest is not None and prev_part is not None and prev_part.digest == digest and _part_files_exist(unit):
-        return _UnitResult(prev_part, _read_problems(unit.store, prev_part), 0, 0, prev_part.rows, True)
     rows = _RowBuilder(unit, jsons, problems, deadline)
     for m in maps:
         rows.add(m)

@@ -40,7 +40,7 @@ def _written_twice(ds: DatasetInfo, maps: list[MapFile]) -> list[Problem]:
 
 def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
                  top: Iterable[str] | None = None, root_maps: bool = True, fingerprint: Any = None,
-                 skip_folders: Iterable[str] | None = None
+                 skip_folders: Iterable[str] | None = None, listing_only: bool = False
                  ) -> tuple[list[MapFile], dict[str, list[str]], list[Problem]]:
     """List the statistic maps and JSON sidecars of one dataset (or of part of it).
 
@@ -49,8 +49,10 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
     like statistic maps but lack entities).  ``top`` limits the walk to some
     top-level folders and ``root_maps`` says whether maps lying in the root
     count; root-level sidecars are always collected, as inheritance needs them.
-    ``fingerprint`` (a hashlib object) is fed the path, size and mtime of every map, sidecar
-    and model file found: equal digests mean the walk found the same files unchanged.
+    ``fingerprint`` (a hashlib object) is fed the path, size and mtime of every file the walk visits
+    (one ``stat`` each, cached by ``os.scandir``): equal digests mean the walk found the same files
+    unchanged.  ``listing_only`` feeds the fingerprint and nothing else (no name is parsed, nothing
+    collected): what a warm run compares before it does any other work.
     ``skip_folders`` (relative paths) are not entered: datasets of their own nested in this one.
     """
     w = _Walk(ds, parser, rules, root_maps, fingerprint)
@@ -75,6 +77,8 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
             w.problems.append(Problem(folder, "unreadable-folder", f"cannot list folder ({exc.strerror})",
                                       "check permissions", "error", ds.key))
             continue
+        if fingerprint is not None:  # sorted: the digest does not depend on the order the folder lists in
+            entries.sort(key=lambda e: e.name)
         lowered = {e.name.lower() for e in entries}
         digits = [e.name for e in entries if e.name.isdigit() and _is_dir(e)]
         if len(digits) >= 2:  # folders named by subject number, side by side
@@ -85,6 +89,12 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
                 continue
             relpath = f"{rel}/{name}" if rel else name
             is_dir = _is_dir(e)
+            if fingerprint is not None and not is_dir:
+                _feed(fingerprint, e, relpath)
+            if listing_only:
+                if is_dir and relpath not in skip and (rel or (name not in SKIP_DIRS and (only is None or name in only))):
+                    stack.append(relpath)
+                continue
             low = name.lower()
             if is_dir and low.endswith(MAP_EXTENSIONS) and "_stat-" in name:
                 w.problems.append(Problem(e.path, "not-a-regular-file", "a folder named like a statistic map; it "
@@ -118,9 +128,16 @@ def walk_dataset(ds: DatasetInfo, parser: EntityParser, rules: NameRules,
             w.problems.append(Problem(example, "unread-format", f"{n} image file(s) in a format not read as maps "
                                       f"(*{ending}, a compressed MINC file); passed over", "uncompress it (gunzip) "
                                       "and index again", "warning", ds.key, count=n))
-    if fingerprint is not None:
-        fingerprint.update("".join(f"{m.relpath}\0{m.nbytes}\0{m.mtime_ns}\n" for m in w.maps).encode())
     return w.maps, w.jsons, w.problems
+
+
+def _feed(fingerprint: Any, e: os.DirEntry, relpath: str) -> None:
+    """A file's path, size and time into a walk's fingerprint (a file that cannot be stat'ed as itself)."""
+    try:
+        st = e.stat()
+        fingerprint.update(f"{relpath}\0{st.st_size}\0{st.st_mtime_ns}\n".encode())
+    except OSError:
+        fingerprint.update(f"{relpath}\0?\n".encode())
 
 
 def unmatched_problem(ds: DatasetInfo, ending: str, n: int, example: str,
@@ -161,7 +178,7 @@ class _Walk:
     def companion(self, e: os.DirEntry, rel: str, relpath: str) -> None:
         """A sidecar or a model file (mask, design): listed for inheritance and model lookups."""
         try:
-            st = _stat_entry(e)
+            _stat_entry(e)
         except _NotRegular as exc:
             self.problems.append(Problem(e.path, "not-a-regular-file", f"a {exc}, not a regular file; it was "
                                          "not opened (opening it could block)", "replace it with the file itself",
@@ -170,8 +187,6 @@ class _Walk:
         except OSError:
             return  # a dangling or looping link to a sidecar: nothing to read
         self.jsons.setdefault(rel, []).append(e.name)
-        if self.fingerprint is not None:
-            self.fingerprint.update(f"{relpath}\0{st.st_size}\0{st.st_mtime_ns}\n".encode())
 
     def map(self, e: os.DirEntry, relpath: str) -> None:
         """A NIfTI, GIFTI or CIFTI file: a statistic map by its BIDS name or by a name rule, or nothing."""

@@ -382,3 +382,21 @@ def test_index_takes_origins_under_one_name(tmp_path):
     with pytest.raises(ParameterError, match="give origins= only"):
         mapstore.index([tmp_path], tmp_path / "store", origins=tmp_path / "a.yaml", overrides=tmp_path / "b.yaml")
     assert not (tmp_path / "store").exists()
+
+
+def test_a_warm_run_decides_from_the_listing_before_parsing_a_name(tmp_path, monkeypatch):
+    """Nothing changed: the walk's listing (path, size and time of every file) equals the last run's, and the
+    parts are kept without a name parsed; a new file anywhere in the dataset makes the walk parse again."""
+    from mapstore.indexing import _walk
+
+    ds = _small_tree(tmp_path)
+    store = tmp_path / "store"
+    mapstore.index([tmp_path / "src"], store, progress=False, jobs=1)
+    parsed = []
+    real = _walk._Walk.map
+    monkeypatch.setattr(_walk._Walk, "map", lambda self, e, rel: (parsed.append(rel), real(self, e, rel))[1])
+    warm = mapstore.index([tmp_path / "src"], store, progress=False, jobs=1)
+    assert (warm.n_unchanged, warm.n_new, warm.n_changed) == (4, 0, 0) and parsed == []
+    (ds / "sub-01" / "func" / "notes.txt").write_text("a file no rule takes")
+    again = mapstore.index([tmp_path / "src"], store, progress=False, jobs=1)
+    assert (again.n_unchanged, again.n_new, again.n_changed) == (4, 0, 0) and len(parsed) == 4
