@@ -106,7 +106,28 @@ def run_child(code: str) -> tuple[str, int]:
     return "\n".join(lines[:-1]), int(lines[-1].split()[1])
 
 
-def workload_a(work: Path, n_maps: int, skip_baseline: bool) -> dict:
+def whole_commands(root: Path, store: Path, rounds: int, with_baseline: bool) -> tuple[float, float | None]:
+    """Seconds of ``mapstore index`` + ``mapstore features`` as commands on a fresh store, and of the hand
+    loop as a script, each in fresh processes (start-up and imports included), minimum of ``rounds``
+    interleaved rounds."""
+    loop = (f"import sys, warnings; warnings.filterwarnings('ignore'); "
+            f"sys.path.insert(0, {str(Path(__file__).resolve().parent)!r}); from pathlib import Path; "
+            f"from bench_features import hand_loop; hand_loop(Path({str(root)!r}))")
+    ours, theirs = [], []
+    for _ in range(rounds):
+        shutil.rmtree(store, ignore_errors=True)
+        t = time.perf_counter()
+        for cmd in (["index", str(root), "--store", str(store)], ["features", "--store", str(store)]):
+            subprocess.run([sys.executable, "-m", "mapstore.cli", *cmd], check=True, capture_output=True)
+        ours.append(time.perf_counter() - t)
+        if with_baseline:
+            t = time.perf_counter()
+            subprocess.run([sys.executable, "-c", loop], check=True, capture_output=True)
+            theirs.append(time.perf_counter() - t)
+    return min(ours), (min(theirs) if theirs else None)
+
+
+def workload_a(work: Path, n_maps: int, skip_baseline: bool, rounds: int = 3) -> dict:
     root = work / "A" / "tree"
     if not root.exists():
         print(f"making {n_maps} full-size maps on 3 grids ...", flush=True)
@@ -148,6 +169,13 @@ def workload_a(work: Path, n_maps: int, skip_baseline: bool) -> dict:
         print(f"(b) hand loop, pybids + NiftiMasker:  {tb:8.2f} s   {n / tb:8.1f} maps/s")
         print(f"ratio (b) / (a):                     {tb / (ti + tf):8.2f}x  (target >= 8x)")
         res["b_per_map"] = tb / n
+    if rounds:
+        t_cmd, t_loop = whole_commands(root, work / "A" / "store-command", rounds, not skip_baseline)
+        print(f"whole commands index + features:     {t_cmd:8.2f} s   (fresh processes, start-up included)")
+        print(f"ratio whole commands / floor:        {t_cmd / t_floor:8.2f}x")
+        if t_loop is not None:
+            print(f"hand loop as a script:               {t_loop:8.2f} s")
+            print(f"ratio hand loop / whole commands:    {t_loop / t_cmd:8.2f}x")
     return res
 
 
@@ -239,11 +267,12 @@ def main() -> None:
     ap.add_argument("--rss", default="500,2000", help="build sizes whose peak RSS is compared")
     ap.add_argument("--workdir", type=Path, default=None)
     ap.add_argument("--skip-baseline", action="store_true")
+    ap.add_argument("--rounds", type=int, default=3, help="rounds of the whole-command comparison (0: skip it)")
     args = ap.parse_args()
     work = Path(args.workdir or tempfile.mkdtemp(prefix="mapstore-bench-features-"))
     work.mkdir(parents=True, exist_ok=True)
     print(f"workdir: {work}")
-    a = workload_a(work, args.maps, args.skip_baseline)
+    a = workload_a(work, args.maps, args.skip_baseline, args.rounds)
     if args.rows:
         workload_b(work, args.rows, [int(x) for x in args.rss.split(",") if x], a.get("b_per_map"))
     print(f"\nthis script's own peak RSS: {resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024:.0f} MB")
