@@ -4,6 +4,9 @@ from __future__ import annotations
 
 import gzip
 import json
+import shutil
+import subprocess
+import sys
 import time
 from pathlib import Path
 
@@ -35,3 +38,29 @@ def bench_dataset(root: Path, name: str, dof: int) -> Path:
         "Name": name, "BIDSVersion": "1.9.0", "DatasetType": "derivative", "GeneratedBy": [{"Name": "bench"}]}))
     (ds / "task-go_statmap.json").write_text(json.dumps({"DegreesOfFreedom": dof}))
     return ds
+
+
+def whole_commands(commands: list[list[str]], store: Path, baseline: str | None, rounds: int
+                   ) -> tuple[float, float | None]:
+    """What users run, timed: ``mapstore`` ``commands`` one after the other on a fresh ``store`` and the
+    ``baseline`` script, each in fresh processes (start-up and imports included); the minimum of
+    ``rounds`` interleaved rounds of each."""
+    ours, theirs = [], []
+    for _ in range(rounds):
+        shutil.rmtree(store, ignore_errors=True)
+        t = time.perf_counter()
+        for cmd in commands:
+            subprocess.run([sys.executable, "-m", "mapstore.cli", *cmd], check=True, capture_output=True)
+        ours.append(time.perf_counter() - t)
+        if baseline is not None:
+            t = time.perf_counter()
+            subprocess.run([sys.executable, "-c", baseline], check=True, capture_output=True)
+            theirs.append(time.perf_counter() - t)
+    return min(ours), (min(theirs) if theirs else None)
+
+
+def script_calling(module: str, function: str, *args: str) -> str:
+    """A one-line script that calls ``function`` of a benchmark ``module`` with path arguments."""
+    return (f"import sys, warnings; warnings.filterwarnings('ignore'); "
+            f"sys.path.insert(0, {str(Path(__file__).resolve().parent)!r}); from pathlib import Path; "
+            f"from {module} import {function}; {function}({', '.join(f'Path({a!r})' for a in args)})")

@@ -37,7 +37,7 @@ HERE = Path(__file__).resolve().parent
 sys.path.insert(0, str(HERE.parent.parent))
 
 sys.path.insert(0, str(HERE))
-from _common import bench_dataset, floor, pybids_stat_config  # noqa: E402
+from _common import bench_dataset, floor, pybids_stat_config, script_calling, whole_commands  # noqa: E402
 
 from mapstore.demo import GRIDS, _axes, _blob, _smooth_noise  # noqa: E402
 
@@ -106,27 +106,6 @@ def run_child(code: str) -> tuple[str, int]:
     return "\n".join(lines[:-1]), int(lines[-1].split()[1])
 
 
-def whole_commands(root: Path, store: Path, rounds: int, with_baseline: bool) -> tuple[float, float | None]:
-    """Seconds of ``mapstore index`` + ``mapstore features`` as commands on a fresh store, and of the hand
-    loop as a script, each in fresh processes (start-up and imports included), minimum of ``rounds``
-    interleaved rounds."""
-    loop = (f"import sys, warnings; warnings.filterwarnings('ignore'); "
-            f"sys.path.insert(0, {str(Path(__file__).resolve().parent)!r}); from pathlib import Path; "
-            f"from bench_features import hand_loop; hand_loop(Path({str(root)!r}))")
-    ours, theirs = [], []
-    for _ in range(rounds):
-        shutil.rmtree(store, ignore_errors=True)
-        t = time.perf_counter()
-        for cmd in (["index", str(root), "--store", str(store)], ["features", "--store", str(store)]):
-            subprocess.run([sys.executable, "-m", "mapstore.cli", *cmd], check=True, capture_output=True)
-        ours.append(time.perf_counter() - t)
-        if with_baseline:
-            t = time.perf_counter()
-            subprocess.run([sys.executable, "-c", loop], check=True, capture_output=True)
-            theirs.append(time.perf_counter() - t)
-    return min(ours), (min(theirs) if theirs else None)
-
-
 def workload_a(work: Path, n_maps: int, skip_baseline: bool, rounds: int = 3) -> dict:
     root = work / "A" / "tree"
     if not root.exists():
@@ -170,7 +149,10 @@ def workload_a(work: Path, n_maps: int, skip_baseline: bool, rounds: int = 3) ->
         print(f"ratio (b) / (a):                     {tb / (ti + tf):8.2f}x  (target >= 8x)")
         res["b_per_map"] = tb / n
     if rounds:
-        t_cmd, t_loop = whole_commands(root, work / "A" / "store-command", rounds, not skip_baseline)
+        store_c = work / "A" / "store-command"
+        t_cmd, t_loop = whole_commands([["index", str(root), "--store", str(store_c)], ["features", "--store", str(store_c)]],
+                                       store_c, None if skip_baseline else script_calling("bench_features", "hand_loop", str(root)),
+                                       rounds)
         print(f"whole commands index + features:     {t_cmd:8.2f} s   (fresh processes, start-up included)")
         print(f"ratio whole commands / floor:        {t_cmd / t_floor:8.2f}x")
         if t_loop is not None:

@@ -28,7 +28,7 @@ import nibabel as nib
 import numpy as np
 
 sys.path.insert(0, str(Path(__file__).resolve().parent))
-from _common import bench_dataset, floor, pybids_stat_config  # noqa: E402
+from _common import bench_dataset, floor, pybids_stat_config, script_calling, whole_commands  # noqa: E402
 
 
 def make_tree(root: Path, n_maps: int, n_studies: int = 10) -> list[Path]:
@@ -113,29 +113,6 @@ def ours(root: Path, store: Path, jobs: int | None) -> tuple[float, float, int, 
     return float(cold), float(warm), int(n), max(peak, before)
 
 
-def whole_commands(root: Path, store: Path, jobs: int | None, rounds: int, with_baseline: bool
-                   ) -> tuple[float, float | None]:
-    """Seconds of ``mapstore index`` on a fresh store and of the baseline script, each in a fresh process,
-    the minimum of ``rounds`` interleaved rounds."""
-    import shutil
-
-    cmd = [sys.executable, "-m", "mapstore.cli", "index", str(root), "--store", str(store)]
-    cmd += ["--jobs", str(jobs)] if jobs else []
-    base = (f"import sys; sys.path.insert(0, {str(Path(__file__).resolve().parent)!r}); from pathlib import Path; "
-            f"from bench_index import baseline; baseline(Path({str(root)!r}))")
-    ours, theirs = [], []
-    for _ in range(rounds):
-        shutil.rmtree(store, ignore_errors=True)
-        t = time.perf_counter()
-        subprocess.run(cmd, check=True, capture_output=True)
-        ours.append(time.perf_counter() - t)
-        if with_baseline:
-            t = time.perf_counter()
-            subprocess.run([sys.executable, "-c", base], check=True, capture_output=True)
-            theirs.append(time.perf_counter() - t)
-    return min(ours), (min(theirs) if theirs else None)
-
-
 def main() -> None:
     ap = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     ap.add_argument("--maps", type=int, default=10_000)
@@ -172,7 +149,10 @@ def main() -> None:
         print(f"baseline (pybids layout + nibabel):    {n / t_base:10,.0f} maps/s  ({t_base:.2f} s)")
         print(f"ratio mapstore cold / baseline speed:  {t_base / cold:10.1f}x  (target >= 50x)")
     if args.rounds:
-        t_cmd, t_script = whole_commands(root, work / "store-command", args.jobs, args.rounds, not args.skip_baseline)
+        cmd = ["index", str(root), "--store", str(work / "store-command")] + (["--jobs", str(args.jobs)] if args.jobs else [])
+        t_cmd, t_script = whole_commands([cmd], work / "store-command",
+                                         None if args.skip_baseline else script_calling("bench_index", "baseline", str(root)),
+                                         args.rounds)
         print(f"whole command 'mapstore index', cold:  {n / t_cmd:10,.0f} maps/s  ({t_cmd:.2f} s, start-up included)")
         if t_script is not None:
             print(f"baseline as a script, fresh process:   {n / t_script:10,.0f} maps/s  ({t_script:.2f} s)")
