@@ -154,12 +154,11 @@ def _parquet_ok(t) -> bool:
 
 
 def write_table(table, fmt: str, out: str | None) -> None:
-    import pyarrow.csv as pacsv
-    import pyarrow.parquet as pq
-
     import pyarrow as pa
 
     if fmt == "parquet":
+        import pyarrow.parquet as pq
+
         if not out:
             raise click.UsageError("--format parquet needs --out FILE")
         try:
@@ -172,6 +171,8 @@ def write_table(table, fmt: str, out: str | None) -> None:
         return
     if fmt == "csv":
         import io
+
+        import pyarrow.csv as pacsv
 
         buf = io.BytesIO()
         flat = table

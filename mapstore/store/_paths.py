@@ -15,7 +15,7 @@ from typing import Any
 
 from ..errors import StoreCorrupt
 
-__all__ = ["relative_path", "inside_store", "regular_file", "store_file", "plain_name", "check_types"]
+__all__ = ["RealPaths", "relative_path", "inside_store", "regular_file", "store_file", "plain_name", "check_types"]
 
 _REMEDY = "the store was damaged or crafted; restore it from a backup, or index the datasets again into a new store"
 
@@ -42,10 +42,33 @@ def plain_name(value: Any, record: str) -> str:
     return value
 
 
-def inside_store(store: Path, path: Path, record: str) -> Path:
-    """``path`` if its real path (symlinks followed) is inside the store's real path, else StoreCorrupt."""
-    root = os.path.realpath(store)
-    real = os.path.realpath(path)
+class RealPaths:
+    """Real paths of many files in few folders, one ``realpath`` per folder: a catalog of a hundred
+    datasets has a hundred parts side by side, and resolving each one's folders again would cost more
+    than the query that reads them."""
+
+    def __init__(self) -> None:
+        self._folders: dict[str, str] = {}
+
+    def __call__(self, path: str | os.PathLike[str]) -> str:
+        folder, name = os.path.split(os.path.abspath(path))
+        real = self._folders.get(folder)
+        if real is None:
+            real = self._folders[folder] = os.path.realpath(folder)
+        try:
+            if stat.S_ISLNK(os.lstat(path).st_mode):
+                return os.path.realpath(path)  # a link may lead anywhere: follow it all the way
+        except FileNotFoundError:
+            pass
+        return os.path.join(real, name)
+
+
+def inside_store(store: Path, path: Path, record: str, real_paths: RealPaths | None = None) -> Path:
+    """``path`` if its real path (symlinks followed) is inside the store's real path, else StoreCorrupt.
+    Pass one ``real_paths`` to many calls to resolve each folder once."""
+    real_of = real_paths or os.path.realpath
+    root = real_of(store)
+    real = real_of(path)
     if real != root and not real.startswith(root.rstrip(os.sep) + os.sep):
         raise StoreCorrupt(f"{record}: {path} leads outside the store (to {real}); {_REMEDY}")
     return path
@@ -63,11 +86,12 @@ def regular_file(path: Path, record: str) -> Path:
     return path
 
 
-def store_file(store: Path, rel: Any, record: str, must_exist: bool = False, folder: bool = False) -> Path:
+def store_file(store: Path, rel: Any, record: str, must_exist: bool = False, folder: bool = False,
+               real_paths: RealPaths | None = None) -> Path:
     """The store file (or ``folder``) a record names, proven inside the store and, when it exists, a
     regular file (a folder)."""
     path = store / relative_path(rel, record)
-    inside_store(store, path, record)
+    inside_store(store, path, record, real_paths)
     try:
         if folder:
             if not stat.S_ISDIR(os.stat(path).st_mode):

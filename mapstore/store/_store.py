@@ -29,10 +29,9 @@ from pathlib import Path
 from typing import Any, Iterator
 
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from ._atomic import _fsync_dir, checkpoint, write_json_atomic
-from ._paths import inside_store, regular_file, store_file
+from ._paths import RealPaths, inside_store, regular_file, store_file
 from ._tables import (
     COPIES_SCHEMA,
     DATASETS_SCHEMA,
@@ -240,6 +239,8 @@ def _exchange(a: Path, b: Path) -> bool:
 def write_parquet_atomic(table: pa.Table, path: Path, row_group_size: int | None = None) -> None:
     checkpoint()
     tmp = path.with_name(f".{path.name}.{uuid.uuid4().hex}.tmp")
+    import pyarrow.parquet as pq  # not at import: a query needs only DuckDB
+
     pq.write_table(table, tmp, compression="zstd", row_group_size=row_group_size)
     with open(tmp, "rb") as fh:
         os.fsync(fh.fileno())
@@ -452,11 +453,12 @@ class Catalog:
                                 "again with mapstore.open()")
         raise StoreCorrupt(f"{p}: catalog file missing; re-run 'mapstore index'")
 
-    def connection(self):
-        """A DuckDB connection with one view per table; file access limited to this store."""
-        if self._con is None:
-            import duckdb
+    def connection(self, tables: "set[str] | None" = None):
+        """A DuckDB connection with a view per table named in ``tables`` (every table when None), made
+        on first use; file access limited to this store."""
+        import duckdb
 
+        if self._con is None:
             con = duckdb.connect(":memory:")
             con.execute("SET parquet_metadata_cache = true")
             # a query that spills writes into a folder of its own, removed with the connection
@@ -466,14 +468,18 @@ class Catalog:
             # restricted before any view binds to a file (a view reads its Parquet footers)
             con.execute(f"SET allowed_directories = [{_sql_str(str(self.path) + os.sep)}]")
             con.execute("SET enable_external_access = false")
+            con.execute("SET lock_configuration = true")
+            self._con, self._made = con, set()
+        # a view binds to its files when made (reads their footers): a query makes only the ones it reads
+        wanted = set(VIEWS) if tables is None else {n for t in tables for n in VIEWS.get(t, ())}
+        for group in dict.fromkeys(VIEWS[n][0] for n in wanted if n not in self._made):
             try:
-                self._views(con)
+                self._views(self._con, group)
             except duckdb.IOException as exc:  # a view binds to its files: a part may be gone
                 self._io_error(exc)
             except duckdb.Error as exc:  # a damaged file (not Parquet, cut short)
                 self._damaged(exc)
-            con.execute("SET lock_configuration = true")
-            self._con = con
+            self._made |= {n for n, made_by in VIEWS.items() if made_by[0] == group}
         return self._con
 
     def _io_error(self, exc: Exception) -> None:
@@ -490,25 +496,29 @@ class Catalog:
         raise StoreCorrupt(f"{where}: a store file is damaged ({text}); re-run 'mapstore index' (a catalog "
                            "file), 'mapstore labels' (labels) or 'mapstore features' (a feature set's rows)") from exc
 
-    def _views(self, con) -> None:
-        """One view per table, reading the snapshot's files at query time."""
+    def _views(self, con, group: str) -> None:
+        """The views of one group (see ``VIEWS``), reading the snapshot's files at query time."""
         views = _ViewBuilder(con, self)
-        manifest = self.manifest()
-        views.files("maps", MAPS_SCHEMA, [self.path / p.maps for p in manifest.parts])
-        # the maps of one contrast of one model (effect, variance, t, z, p): names equal but for stat-<x>
-        con.execute("CREATE VIEW map_families AS SELECT md5(dataset || '/' || regexp_replace(relpath, "
-                    "'_stat-[^_/]+', '') || '#' || coalesce(CAST(map_index AS VARCHAR), ''))[:16] AS family, "
-                    "map_id, stat, dataset, sub, ses, run, task, contrast, relpath FROM maps")
-        snap = self.path / self.head.catalog if self.head.catalog else None
-        for name, schema in (("datasets", DATASETS_SCHEMA), ("problems", PROBLEMS_SCHEMA),
-                             ("participants", PARTICIPANTS_SCHEMA)):
-            f = snap / f"{name}.parquet" if snap else None
-            if f is not None and not f.exists() and name != "participants":
+        if group == "features":
+            self._feature_views(views)
+        elif group == "maps":
+            manifest = self.manifest()
+            views.files("maps", MAPS_SCHEMA, [self.path / p.maps for p in manifest.parts])
+            # the maps of one contrast of one model (effect, variance, t, z, p): names equal but for stat-<x>
+            con.execute("CREATE VIEW map_families AS SELECT md5(dataset || '/' || regexp_replace(relpath, "
+                        "'_stat-[^_/]+', '') || '#' || coalesce(CAST(map_index AS VARCHAR), ''))[:16] AS family, "
+                        "map_id, stat, dataset, sub, ses, run, task, contrast, relpath FROM maps")
+        elif group == "labels":
+            labels = self.head.labels and self.path / self.head.labels.table
+            views.files("labels", LABELS_SCHEMA, [labels] if labels else [])
+        else:
+            schema = {"datasets": DATASETS_SCHEMA, "problems": PROBLEMS_SCHEMA,
+                      "participants": PARTICIPANTS_SCHEMA}[group]
+            snap = self.path / self.head.catalog if self.head.catalog else None
+            f = snap / f"{group}.parquet" if snap else None
+            if f is not None and not f.exists() and group != "participants":
                 self._raise_missing(f)
-            views.files(name, schema, [f] if f is not None and f.exists() else [], loose=name == "participants")
-        labels = self.head.labels and self.path / self.head.labels.table
-        views.files("labels", LABELS_SCHEMA, [labels] if labels else [])
-        self._feature_views(views)
+            views.files(group, schema, [f] if f is not None and f.exists() else [], loose=group == "participants")
 
     def _feature_views(self, views: "_ViewBuilder") -> None:
         """Views over every feature set: rows (``features``), failures, copies, and one row per set."""
@@ -552,7 +562,7 @@ class Catalog:
     def _run(self, query: str, fetch):
         import duckdb
 
-        con = self.connection()
+        con = self.connection(set())
         try:
             statements = con.extract_statements(query)
         except duckdb.Error as exc:
@@ -566,6 +576,7 @@ class Catalog:
             raise QueryError(f"only read-only queries (SELECT, WITH ... SELECT) are allowed, "
                              f"got a {kind.name} statement; the catalog is changed by "
                              "'mapstore index', 'features' and 'labels'")
+        self.connection(_tables_read(query))
         try:
             return fetch(con.sql(query))  # DuckDB runs the query (and opens the files) in fetch
         except duckdb.IOException as exc:
@@ -576,6 +587,23 @@ class Catalog:
             raise QueryError(f"{str(exc).splitlines()[0]}") from exc
         except duckdb.Error as exc:
             raise QueryError(_one_line(exc, self.path)) from exc
+
+
+# each view, and the group of views made together (the first name) with the views it reads
+VIEWS: dict[str, tuple[str, ...]] = {
+    "maps": ("maps",), "map_families": ("maps",), "datasets": ("datasets",), "problems": ("problems",),
+    "participants": ("participants",), "labels": ("labels",), "features": ("features",),
+    "feature_problems": ("features",), "feature_copies": ("features",), "feature_sets": ("features",)}
+
+
+def _tables_read(query: str) -> set[str] | None:
+    """The views ``query`` may read (every word naming one: a name in a string or a comment only makes one
+    view too many), or None (all of them) when it may list or inspect the database."""
+    words = set(re.findall(r"[a-z_][a-z0-9_]*", query.lower()))
+    if words & {"show", "pragma", "describe", "summarize", "information_schema", "pg_catalog", "sqlite_master"} \
+            or "duckdb_" in query.lower():
+        return None
+    return (words & set(VIEWS)) or None
 
 
 def _one_line(exc: Exception, store: Path) -> str:
@@ -650,6 +678,7 @@ class _ViewBuilder:
     def __init__(self, con, cat: Catalog) -> None:
         self.con = con
         self.cat = cat
+        self.real_paths = RealPaths()
 
     @staticmethod
     def _empty(schema: pa.Schema) -> str:
@@ -674,7 +703,7 @@ class _ViewBuilder:
         proven a regular file inside the store first."""
         for f in files:
             with contextlib.suppress(FileNotFoundError):  # a missing file is named by the query's error
-                regular_file(inside_store(self.cat.path, f, "a catalog table"), "a catalog table")
+                regular_file(inside_store(self.cat.path, f, "a catalog table", self.real_paths), "a catalog table")
         lst = "[" + ", ".join(_sql_str(str(f)) for f in files) + "]"
         if loose:  # participants: columns vary by store; every file's columns, whatever they are
             return f"read_parquet({lst}, union_by_name = true)"
@@ -709,6 +738,8 @@ def collect_feature_garbage(store: Path, set_dir: Path, current: str, previous: 
         if entry.get("rows"):
             keep_tables.add(Path(entry["rows"]).name)
     keep_tables = {t for t in keep_tables if (set_dir / t).exists()}
+    import pyarrow.parquet as pq
+
     used: set[str] = set()
     for t in keep_tables:
         used |= set(pq.read_table(set_dir / t, columns=["shard"])["shard"].to_pylist())

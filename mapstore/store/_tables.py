@@ -345,15 +345,16 @@ class CatalogManifest:
     @classmethod
     def read(cls, store: Path, snapshot: str) -> "CatalogManifest":
         """The manifest of ``snapshot`` (a store-relative folder)."""
-        from ._paths import store_file
+        from ._paths import RealPaths, store_file
 
-        f = store_file(store, f"{snapshot}/{cls.FILE}", f"HEAD catalog {snapshot}")
+        real_paths = RealPaths()
+        f = store_file(store, f"{snapshot}/{cls.FILE}", f"HEAD catalog {snapshot}", real_paths=real_paths)
         try:
             manifest = cls.from_json(json.loads(f.read_text()), str(f))
             for i, p in enumerate(manifest.parts):
                 for k in ("maps", "problems"):
                     if getattr(p, k):
-                        store_file(store, getattr(p, k), f"{f} part {i}.{k}")
+                        store_file(store, getattr(p, k), f"{f} part {i}.{k}", real_paths=real_paths)
             return manifest
         except FileNotFoundError:
             raise

@@ -40,23 +40,38 @@ def bench_dataset(root: Path, name: str, dof: int) -> Path:
     return ds
 
 
-def whole_commands(commands: list[list[str]], store: Path, baseline: str | None, rounds: int
-                   ) -> tuple[float, float | None]:
+def whole_commands(commands: list[list[str]], store: Path, baseline: str | None, rounds: int,
+                   each: list[float] | None = None) -> tuple[float, float | None]:
     """What users run, timed: ``mapstore`` ``commands`` one after the other on a fresh ``store`` and the
     ``baseline`` script, each in fresh processes (start-up and imports included); the minimum of
-    ``rounds`` interleaved rounds of each."""
+    ``rounds`` interleaved rounds of each.  ``each`` (a list) receives each command's minimum."""
     ours, theirs = [], []
+    per: list[list[float]] = [[] for _ in commands]
     for _ in range(rounds):
         shutil.rmtree(store, ignore_errors=True)
         t = time.perf_counter()
-        for cmd in commands:
+        for k, cmd in enumerate(commands):
+            started = time.perf_counter()
             subprocess.run([sys.executable, "-m", "mapstore.cli", *cmd], check=True, capture_output=True)
+            per[k].append(time.perf_counter() - started)
         ours.append(time.perf_counter() - t)
         if baseline is not None:
             t = time.perf_counter()
             subprocess.run([sys.executable, "-c", baseline], check=True, capture_output=True)
             theirs.append(time.perf_counter() - t)
+    if each is not None:
+        each[:] = [min(times) for times in per]
     return min(ours), (min(theirs) if theirs else None)
+
+
+def command_seconds(command: list[str], rounds: int) -> float:
+    """The minimum over ``rounds`` of one ``mapstore`` command as a fresh process."""
+    times = []
+    for _ in range(rounds):
+        t = time.perf_counter()
+        subprocess.run([sys.executable, "-m", "mapstore.cli", *command], check=True, capture_output=True)
+        times.append(time.perf_counter() - t)
+    return min(times)
 
 
 def script_calling(module: str, function: str, *args: str) -> str:

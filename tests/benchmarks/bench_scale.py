@@ -7,7 +7,8 @@ For each tree size (tiny valid maps in 10 studies, generated here and removed af
 * mapstore index, cold, with --jobs 1 and --jobs 2 (fresh store each, own process, peak RSS);
 * warm re-index (nothing changed, --jobs 2);
 * a fresh process that opens the store and runs a filtered query returning ~1% of the maps
-  (time after imports, and peak RSS).
+  (time after Python, pyarrow and DuckDB are imported, and peak RSS), and `mapstore sql` counting
+  as a whole command against DuckDB alone counting from the same files.
 
 ``--catalog-rows N`` writes a synthetic catalog of N rows straight into a store (rows generated,
 no files), then measures open + filtered query and the catalog's size on disk.  Usage::
@@ -73,14 +74,38 @@ def index_run(root: Path, store: Path, jobs: int, runs: int = 1) -> dict:
 
 
 def query_run(store: Path, where: str) -> dict:
-    code = ("import json, time, mapstore\n"
+    """Open + one query in a fresh process, timed after Python, pyarrow and DuckDB are imported (what
+    any program reading the catalog pays first), and the same query on the first open's warm store."""
+    code = ("import json, time, pyarrow, duckdb\n"
             "rss0 = _peak()\n"
             "t = time.perf_counter()\n"
+            "import mapstore\n"
             f"st = mapstore.open({str(store)!r})\n"
             f"n = st.sql(\"SELECT map_id, relpath, sub, contrast, sha256 FROM maps WHERE {where}\").num_rows\n"
             "took = time.perf_counter() - t\n"
-            "print(json.dumps({'seconds': took, 'rows': n, 'peak': _peak(), 'after_import': rss0}))\n")
+            "t = time.perf_counter()\n"
+            f"c = st.sql(\"SELECT count(*) AS n FROM maps WHERE {where}\")['n'][0].as_py()\n"
+            "count = time.perf_counter() - t\n"
+            "print(json.dumps({'seconds': took, 'rows': n, 'count': count, 'peak': _peak(), 'after_import': rss0}))\n")
     return _child(code)
+
+
+def count_commands(store: Path, where: str, rounds: int = 3) -> tuple[float, float]:
+    """``mapstore sql`` counting the maps of ``where`` as a whole command (start-up included) against
+    DuckDB alone counting them from the catalog's files in a fresh process; minimum of interleaved rounds."""
+    parts = sorted(str(f) for f in (store / "catalog" / "parts").glob("*.parquet"))
+    baseline = (f"import duckdb\nprint(duckdb.sql(\"SELECT count(*) FROM read_parquet({parts!r}) "
+                f"WHERE {where}\").fetchall())\n")
+    ours, theirs = [], []
+    for _ in range(rounds):
+        t = time.perf_counter()
+        subprocess.run([sys.executable, "-m", "mapstore.cli", "sql", "--store", str(store),
+                        f"SELECT count(*) FROM maps WHERE {where}"], check=True, capture_output=True)
+        ours.append(time.perf_counter() - t)
+        t = time.perf_counter()
+        subprocess.run([sys.executable, "-c", baseline], check=True, capture_output=True)
+        theirs.append(time.perf_counter() - t)
+    return min(ours), min(theirs)
 
 
 def scale_series(sizes: list[int], work: Path) -> None:
@@ -260,9 +285,13 @@ def main() -> None:
             q2 = query_run(store, "task = 'go' AND contrast = 'c03' AND sub = '00042'")
             print(f"synthetic catalog: {args.catalog_rows:,} rows written in {took:.0f} s, "
                   f"{size / 1e6:,.0f} MB on disk ({size / args.catalog_rows:.1f} bytes/row)")
-            print(f"open + query by dataset and subject: {q['seconds']:.2f} s, {q['rows']} rows, peak RSS "
-                  f"{q['peak']:.0f} MB (after imports {q['after_import']:.0f} MB)")
-            print(f"open + query across all datasets (task, contrast, subject): {q2['seconds']:.2f} s, "
+            print(f"open + query by dataset and subject: {q['seconds']:.3f} s, {q['rows']} rows, peak RSS "
+                  f"{q['peak']:.0f} MB (after imports {q['after_import']:.0f} MB); a count on the open store "
+                  f"{q['count']:.3f} s")
+            ours, duck = count_commands(store, f"dataset = 'study042'")
+            print(f"whole command 'mapstore sql' counting one dataset's maps: {ours:.2f} s; DuckDB alone "
+                  f"(import, read the parts, count) {duck:.2f} s: {ours / duck:.2f}x")
+            print(f"open + query across all datasets (task, contrast, subject): {q2['seconds']:.3f} s, "
                   f"{q2['rows']} rows, peak RSS {q2['peak']:.0f} MB")
         if args.feature_rows:
             store = work / "synthetic-features"

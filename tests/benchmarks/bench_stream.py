@@ -111,13 +111,15 @@ def run(kind: str, store: Path, rows: int, out: Path) -> dict:
 
 def measure(kind: str, code: str) -> dict:
     """Run ``code`` (which sets ``t0``, and may set ``extra``) in a fresh process: its seconds since ``t0``,
-    its own peak RSS, and ``extra``."""
+    the whole process's seconds (``wall``), its own peak RSS, and ``extra``."""
     code += ("\nres = {'seconds': time.perf_counter() - t0, 'rss_mb': peak_mb()}\n"
              "res.update(globals().get('extra', {}))\nprint(json.dumps(res))\n")
+    started = time.perf_counter()
     done = subprocess.run([sys.executable, "-c", code], capture_output=True, text=True)
+    wall = time.perf_counter() - started  # the whole process: start-up and imports included
     if done.returncode:
         sys.exit(f"{kind} failed:\n{done.stderr[-3000:]}")
-    return json.loads(done.stdout.strip().splitlines()[-1])
+    return {**json.loads(done.stdout.strip().splitlines()[-1]), "wall": wall}
 
 
 def main() -> None:

@@ -412,3 +412,22 @@ def test_index_repairs_a_damaged_catalog_part(built, tmp_path):
         mapstore.open(store).sql("SELECT count(*) FROM maps")
     mapstore.index([built[1]], store, progress=False, jobs=1)
     assert mapstore.open(store).sql("SELECT count(*) AS n FROM maps")["n"][0].as_py() == 4
+
+
+def test_a_query_reads_only_the_views_it_names(built, tmp_path):
+    """A damaged feature rows table fails the queries over feature sets, in one message naming it, and no
+    others: a count over maps needs only the catalog's files (and opening all of them costs time)."""
+    store = _copy(built, tmp_path)
+    head = json.loads((store / "HEAD").read_text())
+    rows = store / head["features"]["default"]["rows"]
+    rows.write_bytes(b"garbage")
+    s = mapstore.open(store)
+    assert s.sql("SELECT count(*) AS n FROM maps WHERE stat = 't'")["n"][0].as_py() == 4
+    assert s.sql("SELECT count(*) AS n FROM map_families")["n"][0].as_py() == 4
+    with pytest.raises(StoreCorrupt, match=rows.name):
+        s.sql("SELECT count(*) FROM features")
+    # listing the database makes every view, so the listing is whole (or names the damaged file)
+    with pytest.raises(StoreCorrupt, match=rows.name):
+        mapstore.open(store).sql("SHOW TABLES")
+    names = mapstore.open(built[2]).sql("SHOW TABLES")["name"].to_pylist()
+    assert {"maps", "map_families", "features", "feature_sets", "labels", "participants"} <= set(names)
