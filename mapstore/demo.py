@@ -13,6 +13,8 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import resource
+import time
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any, Callable
@@ -430,8 +432,10 @@ def run_demo(folder: str | os.PathLike[str], *, scale: float = 1.0, say: Callabl
     from .indexing import index
     from .labels import label_store
 
+    started = time.perf_counter()
     base = Path(folder).absolute()
     data, store = base / "data", base / "store"
+    say(f"the demo takes about 3 minutes on two cores and writes about 1 GB into {base}")
     say(f"writing the invented consortium to {data} ...")
     summary = make_demo(data, scale=scale)
     say(f"  {summary.studies} studies by {summary.labs} labs, {summary.maps} statistic maps, "
@@ -467,7 +471,7 @@ def run_demo(folder: str | os.PathLike[str], *, scale: float = 1.0, say: Callabl
     say(f"\nexporting t and z maps of {len(concepts)} concepts, leave-one-study-out, to {out} ...")
     say(st.export(out, sel, scheme="leave-one-group-out", overwrite=True).summary())
     say("\ncross-study decoding (scikit-learn LogisticRegression, trained on the other studies):")
-    say(text_table(demo_decoder(out)))
+    say(text_table(demo_decoder(out, say=say)))
     say("(chance: 1 / the number of concepts trained on; majority: share of the held-out study's "
         "most common concept)")
     say("\npooling volume and surface studies on fsaverage5 (surface maps as they are, volume t and z maps "
@@ -480,12 +484,16 @@ def run_demo(folder: str | os.PathLike[str], *, scale: float = 1.0, say: Callabl
     sout = base / "export-surface-leave-one-study-out"
     say(st.export(sout, ssel, scheme="leave-one-group-out", overwrite=True).summary())
     say("\ncross-study decoding on the cortical surface (every study, the surface one included):")
-    say(text_table(demo_decoder(sout)))
+    say(text_table(demo_decoder(sout, say=say)))
     say("\nchecking the store (grids, space, coverage, stat types, metadata) ...")
     report = st.check()  # type: ignore[assignment]
     html_path = report.write_html(base / "check-report.html", command=f"mapstore demo {folder}")  # type: ignore[attr-defined]
     say(report.summary())
     say(f"report with pictures: {html_path}")
+    say(f"checking the surface set too (every study drawn on {sreport.grid}, the surface study included) ...")
+    shtml = st.check(features=sreport.name).write_html(base / "check-report-surface.html",  # type: ignore[attr-defined]
+                                                       command=f"mapstore demo {folder}")
+    say(f"report with pictures on the cortical surface: {shtml}")
 
     pooled = base / "pooled-reading"
     say(f"\ndo the studies agree on 'reading', and where? (each study's t and z maps, one map per study, "
@@ -502,23 +510,43 @@ def run_demo(folder: str | os.PathLike[str], *, scale: float = 1.0, say: Callabl
     say(f"\ntry: mapstore sql --store {store} \"SELECT concept, count(*) FROM labels GROUP BY ALL\"")
     say(f"     mapstore verify {out}")
     say(f"     mapstore verify {pooled}")
+    say("\n" + closing_line(base, time.perf_counter() - started))
 
 
-def demo_decoder(export_dir: Path):
-    """Leave-one-study-out accuracy of a plain logistic regression on an export, per held-out study."""
+def closing_line(folder: Path, seconds: float) -> str:
+    """How long the run took, what it left on disk and the most memory one of its processes held."""
+    size = sum(f.stat().st_size for f in folder.rglob("*") if f.is_file() and not f.is_symlink())
+    # ru_maxrss is in KiB on Linux: this process's peak, and the largest of the workers it waited for
+    peak = max(resource.getrusage(resource.RUSAGE_SELF).ru_maxrss,
+               resource.getrusage(resource.RUSAGE_CHILDREN).ru_maxrss) / 1024
+    minutes, secs = divmod(round(seconds), 60)
+    took = f"{minutes} min {secs} s" if minutes else f"{secs} s"
+    written = f"{size / 1e9:.2f} GB" if size >= 1e9 else f"{size / 1e6:,.0f} MB"
+    return (f"done in {took}; {written} written under {folder} (delete the folder to free it); "
+            f"peak memory of one process {peak:,.0f} MB")
+
+
+def demo_decoder(export_dir: Path, say: Callable[[str], Any] | None = None):
+    """Leave-one-study-out accuracy of a plain logistic regression on an export, per held-out study;
+    ``say`` hears about each fold as it is fitted."""
     import numpy as np
     import pyarrow as pa
-    import pyarrow.parquet as pq
     from sklearn.linear_model import LogisticRegression
     from sklearn.pipeline import make_pipeline
     from sklearn.preprocessing import FunctionTransformer, StandardScaler
 
     X = np.load(export_dir / "X.npy", mmap_mode="r")
     y = np.load(export_dir / "y.npy")
-    meta = pq.read_table(export_dir / "meta.parquet").to_pandas()
+    from .store import read_parquet
+
+    meta = read_parquet(export_dir / "meta.parquet").to_pandas()
     rows = []
-    for fold in sorted(meta["fold"].unique()):
+    folds = sorted(meta["fold"].unique())
+    for k, fold in enumerate(folds, 1):
         test = (meta["fold"] == fold).to_numpy()
+        if say is not None:
+            say(f"  fitting fold {k}/{len(folds)}: trained on {int((~test).sum())} maps, holding out "
+                f"{meta.loc[test, 'study'].iloc[0]} ({int(test.sum())} maps) ...")
         # X holds the voxels every map covers (missing="common"); maps are z-scored one by one
         prep = FunctionTransformer(lambda a: StandardScaler().fit_transform(np.asarray(a).T).T)
         model = make_pipeline(prep, LogisticRegression(max_iter=300, C=0.01))

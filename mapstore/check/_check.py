@@ -25,6 +25,7 @@ from .._version import __version__
 from ..analyses import combine
 from ..features import pair_correlation
 from .._params import AGREEMENT, CHECK_COVERAGE, declared
+from ..formats import html_table
 from ..statkinds import STAT_KINDS, known_stats
 from ._figures import FIGURE_CSS, Scale, compose, figure_html, histograms_html, matrix_html, png_bytes, stack_rgb
 
@@ -163,7 +164,18 @@ class CheckReport:
                      "var d=document.body.dataset;d.brokenImages=b;d.findingsTop="
                      "Math.round(document.getElementById('findings').getBoundingClientRect().top);"
                      "d.firstPictureTop=im.length?Math.round(im[0].getBoundingClientRect().top):-1;"
-                     "d.pageWidth=document.documentElement.scrollWidth;});</script>")
+                     "d.pageWidth=document.documentElement.scrollWidth;"
+                     # the smallest label on a picture, panels whose edge marks sit above and below them, and
+                     # concept figures whose summary table stands beside the matrix
+                     "var px=1e9;document.querySelectorAll('.axis span,.ticks span,.mark').forEach(function(e){"
+                     "px=Math.min(px,parseFloat(getComputedStyle(e).fontSize));});d.smallestLabelPx=Math.round(px);"
+                     "var n=0,ok=0;document.querySelectorAll('.column').forEach(function(c){var t=c.querySelector("
+                     "'.mark.top'),b=c.querySelector('.mark.bottom'),i=c.querySelector('img');if(!t||!b||!i)return;"
+                     "n++;var r=i.getBoundingClientRect();if(t.getBoundingClientRect().bottom<=r.top+1&&"
+                     "b.getBoundingClientRect().top>=r.bottom-1)ok++;});d.markedPanels=n;d.marksAround=ok;"
+                     "var m=0,s=0;document.querySelectorAll('.beside').forEach(function(x){m++;var a=x.children[0]"
+                     ".getBoundingClientRect(),c=x.children[1].getBoundingClientRect();if(c.left>=a.right&&"
+                     "Math.abs(c.top-a.top)<60)s++;});d.besides=m;d.besideOk=s;});</script>")
         parts.append("</body></html>")
         if not path.parent.is_dir():
             raise OutputPlaceError(f"{path}: --html names a file in a folder that does not exist; create "
@@ -287,7 +299,33 @@ def _study_table(store, fs, report) -> None:
                      "string_agg(DISTINCT m.space, ', ' ORDER BY m.space) AS spaces, "
                      "min(m.dof) AS dof_min, max(m.dof) AS dof_max, count(*) AS maps" + cover +
                      " GROUP BY m.study ORDER BY m.study")
+    if fs is not None:
+        rows = _explain_absent(store, fs, rows)
     report.add_table("studies", "the studies (one row each)", rows)
+
+
+def _explain_absent(store, fs, rows: pa.Table) -> pa.Table:
+    """A ``note`` column saying why a study has no row in the checked set (blank coverage, no pictures):
+    the sets that hold its maps instead, or why its maps failed."""
+    notes = []
+    for r in rows.to_pylist():
+        if r.get("mean_coverage") is not None:
+            notes.append("")
+            continue
+        study = _lit(r["study"])
+        other = [x["feature_set"] for x in store.sql(
+            "SELECT DISTINCT f.feature_set FROM features f JOIN maps m USING (map_id) WHERE m.study = " + study +
+            " ORDER BY 1").to_pylist()]
+        failed = store.sql("SELECT p.reason, count(*) AS n FROM feature_problems p JOIN maps m USING (map_id) "
+                           f"WHERE m.study = {study} AND p.feature_set = {_lit(fs.name)} GROUP BY ALL "
+                           "ORDER BY n DESC LIMIT 1").to_pylist()
+        note = f"no map in set {fs.name!r}"
+        if failed:
+            note += f" ({failed[0]['n']} failed: {failed[0]['reason']})"
+        if other:
+            note += "; its maps are in " + ", ".join(repr(o) for o in other) + " (check that set with --features)"
+        notes.append(note)
+    return rows.append_column("note", pa.array(notes, pa.string())) if any(notes) else rows
 
 
 _SET_COLUMNS = ("map_id", "dataset", "relpath", "study", "participant", "entities", "stat")
@@ -557,12 +595,16 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
         mean_r = float(np.mean(finite)) if finite else float("nan")
         pooled = combine(effect=np.stack([means[s] for s in names]), variance=np.stack([variances[s] for s in names]),
                          method="random")
-        i2 = pooled["i2"][np.isfinite(pooled["i2"])]
-        zmax = pooled["z"][np.isfinite(pooled["z"])]
+        z, i2 = pooled["z"], pooled["i2"]
+        zmax = z[np.isfinite(z)]
+        # heterogeneity where the studies show the concept: over null voxels I^2 is 0 almost everywhere
+        # (Q below its degrees of freedom), so a median over the whole mask says nothing
+        strong = np.isfinite(z) & np.isfinite(i2) & (np.abs(np.nan_to_num(z)) >= _STRONG_Z)
         summary.append({"concept": concept, "studies": len(names), "maps": sum(len(v) for v in studies.values()),
                         "mean_cross_study_r": round(mean_r, 3), "min_r": round(min(finite), 3) if finite else None,
                         "pooled_max_z": round(float(zmax.max()), 2) if zmax.size else None,
-                        "median_I2": round(float(np.median(i2)), 3) if i2.size else None})
+                        "voxels_pooled_z_3": int(strong.sum()),
+                        "median_I2_there": round(float(np.median(i2[strong])), 3) if strong.sum() >= 10 else None})
         if not finite or mean_r < min_agreement:
             add(Finding("warning", "concepts", "low-concept-agreement", concept,
                         f"concept {concept!r}: the mean maps of its {len(names)} studies correlate at r = {mean_r:.2f} "
@@ -577,11 +619,17 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
                 if row["concept"] == concept:
                     i, j = names.index(str(row["study_a"])), names.index(str(row["study_b"]))
                     r[i, j] = r[j, i] = row["r_of_means"]
-            matrices[concept] = matrix_html(names, r)
+            row = summary[-1]
+            # the concept's figures in one place: the matrix, and beside it the concept's agreement figures
+            matrices[concept] = (
+                "<div class='beside'>" + matrix_html(names, r)
+                + html_table(f"concept {concept!r} across its studies", [k for k in row if k != "concept"],
+                             [[("-" if v is None else v) for k, v in row.items() if k != "concept"]]) + "</div>")
     if summary:
         report.add_table("concept-agreement", "concept agreement across studies (mean of each study's standardised "
-                         "maps; pooled by random effects: the largest pooled z and the median I^2, the share of "
-                         "variation between studies)", pa.Table.from_pylist(summary))
+                         f"maps; pooled by random effects: the largest pooled z, the voxels where |z| >= {_STRONG_Z:g}, "
+                         "and there the median I^2, the share of the variation that lies between studies; blank "
+                         "with fewer than 10 such voxels)", pa.Table.from_pylist(summary))
         report.add_table("concept-agreement-pairs", "concept agreement, study x study (r of the study means)",
                          pa.Table.from_pylist(rows))
     if pictures and tiles:
@@ -613,7 +661,7 @@ class _Drawer:
         zoom = max(1, min(round(self._HEIGHT / tallest), 1100 // max(wide, 1)))
         drawn, headers = [], []
         for (name, _), panels in zip(rows, drawn_rows[1:]):
-            headers = [(p.label, p.left, p.right) for p in panels]
+            headers = [(p.label, p.left, p.right, p.top, p.bottom) for p in panels]
             drawn.append((name, [compose(p.values, bg, ins, scale, grey, zoom)  # type: ignore[arg-type]
                                  for p, bg, ins in zip(panels, backgrounds, inside)]))
         png = png_bytes(stack_rgb([rgbs for _, rgbs in drawn]))
@@ -806,9 +854,9 @@ def _coverage_pictures(fs, rows, stat_of, report, max_rows) -> None:
                 samples[key].append(vals if vals.size <= 5000 else rng.choice(vals, 5000, replace=False))
     frac = counts / max(len(pick), 1)
     drawer = _Drawer(fs)
-    scale = Scale("sequential", 0.0, 1.0, "fraction of the maps with a value (red: none, blue: all)")
+    scale = Scale("sequential", 0.0, 1.0, "fraction of the maps with a value (red: none, blue: all)", opacity=0.5)
     note = (f"{drawer.base.picture_caption.capitalize()}. Background: the {drawer.base.background_name}, darker "
-            "outside the set's mask.")
+            "outside the set's mask; the colours are drawn at half strength so its anatomy shows through.")
     png, figure = drawer.draw([(f"all {len(pick)} maps", frac)], scale, note=note)
     report.add_picture("coverage", f"coverage over {len(pick)} maps ({drawer.base.picture_caption})", png, figure)
     if per_study:
@@ -824,6 +872,7 @@ def _coverage_pictures(fs, rows, stat_of, report, max_rows) -> None:
 
 
 _HIST_MAPS = 6  # maps per study and stat in the value histograms
+_STRONG_Z = 3.0  # |pooled z| where a concept's heterogeneity across studies is summarised
 
 
 def report_json(report: CheckReport) -> str:

@@ -12,7 +12,7 @@ from dataclasses import dataclass
 
 import numpy as np
 
-__all__ = ["Scale", "png_bytes", "compose", "figure_html", "histograms_html", "matrix_html", "stack_rgb"]
+__all__ = ["Scale", "png_bytes", "compose", "figure_html", "histogram_ranges", "histograms_html", "matrix_html", "stack_rgb"]
 
 # sequential ramp: 0 = red (none), 0.5 = yellow, 1 = blue (all)
 _RAMP = np.array([[180, 20, 30], [235, 110, 40], [250, 200, 60], [150, 200, 150], [40, 130, 200]],
@@ -26,12 +26,14 @@ _OUTSIDE = 0.55  # background brightness outside the set's mask (a surface's med
 @dataclass(frozen=True)
 class Scale:
     """What a figure's colours mean: ``sequential`` from vmin to vmax, or ``diverging`` around 0 (values
-    fade into the background as they near 0); ``label`` names the quantity and its unit."""
+    fade into the background as they near 0); ``label`` names the quantity and its unit; ``opacity`` below 1
+    lets the anatomy show through colours that fill the whole brain (coverage)."""
 
     kind: str
     vmin: float
     vmax: float
     label: str
+    opacity: float = 1.0
 
     def ramp(self) -> np.ndarray:
         return _RAMP if self.kind == "sequential" else _DIVERGING
@@ -88,6 +90,7 @@ def compose(values: np.ndarray, background: np.ndarray, inside: np.ndarray, scal
         alpha = np.clip(np.abs(np.nan_to_num(v)) / top * 1.5 - 0.3, 0, 1)[..., None] * shown[..., None]
     else:
         alpha = shown[..., None].astype(np.float64)
+    alpha = alpha * scale.opacity
     rgb = rgb * (1 - alpha) + colour * alpha
     if zoom > 1:
         rgb = np.repeat(np.repeat(rgb, zoom, axis=0), zoom, axis=1)
@@ -127,35 +130,59 @@ def colourbar_html(scale: Scale) -> str:
             f"<div class='cbar-label'>{html.escape(scale.label)}</div></div>")
 
 
-def figure_html(rows: list[tuple[str, list[np.ndarray]]], headers: list[tuple[str, str, str]], scale: Scale,
+def figure_html(rows: list[tuple[str, list[np.ndarray]]], headers: list[tuple[str, ...]], scale: Scale,
                 note: str = "") -> str:
     """Rows of panels, each row labelled (a study), each column headed by what it shows and the marks at
-    its sides (``L``/``R``); the colour bar and a note beneath."""
-    head = "<tr><th></th>" + "".join(f"<th>{html.escape(label)}</th>" for label, _, _ in headers) + "</tr>"
+    its edges (``(label, left, right[, top, bottom])``: ``L``/``R`` at the sides, ``A``/``P`` or ``S``/``I``
+    above and below); the colour bar and a note beneath."""
+    head = "<tr><th></th>" + "".join(f"<th>{html.escape(h[0])}</th>" for h in headers) + "</tr>"
     body = []
     for name, panels in rows:
         cells = []
-        for (label, left, right), rgb in zip(headers, panels):
-            cells.append(f"<td><div class='panel'><span class='mark'>{html.escape(left)}</span>"
-                         f"{_img(rgb, f'{name}: {label}')}<span class='mark'>{html.escape(right)}</span></div></td>")
+        for header, rgb in zip(headers, panels):
+            label, left, right, top, bottom = (tuple(header) + ("", ""))[:5]
+            mark = "<span class='mark {}'>{}</span>".format
+            picture = (f"<div class='column'>{mark('top', html.escape(top)) if top else ''}"
+                       f"{_img(rgb, f'{name}: {label}')}{mark('bottom', html.escape(bottom)) if bottom else ''}</div>")
+            cells.append(f"<td><div class='panel'>{mark('left', html.escape(left))}{picture}"
+                         f"{mark('right', html.escape(right))}</div></td>")
         body.append(f"<tr><th class='rowname'>{html.escape(name)}</th>{''.join(cells)}</tr>")
     note_html = f"<p class='note'>{html.escape(note)}</p>" if note else ""
     return f"<table class='panels'>{head}{''.join(body)}</table>{colourbar_html(scale)}{note_html}"
 
 
+def histogram_ranges(samples: dict[tuple[str, str], np.ndarray], spread: float = 8.0
+                     ) -> dict[str, tuple[float, float, bool]]:
+    """Per stat, the range its histograms share: every value's (min to max over every study), unless that
+    is more than ``spread`` times as wide as the middle 99% (a few extreme values would squeeze the rest
+    into a bar or two); then the middle 99%, with ``clipped`` True (the cells say how many values lie
+    beyond)."""
+    out = {}
+    for t in sorted({t for _, t in samples}):
+        allv = np.concatenate([v for (_, tt), v in samples.items() if tt == t and v.size])
+        if not allv.size:
+            out[t] = (0.0, 1.0, False)
+            continue
+        lo, hi = float(allv.min()), float(allv.max())
+        plo, phi = (float(x) for x in np.percentile(allv, [0.5, 99.5]))
+        clipped = phi > plo and (hi - lo) > spread * (phi - plo)
+        if clipped:
+            lo, hi = plo, phi
+        out[t] = (lo, hi if hi > lo else lo + 1.0, clipped)
+    return out
+
+
 def histograms_html(samples: dict[tuple[str, str], np.ndarray], bins: int = 40) -> str:
     """Per study (rows) and stat (columns), the distribution of the stored values of a sample of maps, on
-    one range per stat (its 0.5th to 99.5th percentile over every study): a study on another scale or
-    with flipped signs stands out.  The median is marked, the range written beneath."""
+    one range per stat (see :func:`histogram_ranges`): a study on another scale or with flipped signs
+    stands out.  The median is marked; the range, 0 and the median are written beneath; values beyond a
+    clipped range are counted in the cell and drawn in the end bars in another colour."""
     studies = sorted({s for s, _ in samples})
     stats = sorted({t for _, t in samples})
-    w, h = 200, 64
-    ranges = {}
-    for t in stats:
-        allv = np.concatenate([v for (s, tt), v in samples.items() if tt == t and v.size])
-        lo, hi = (np.percentile(allv, [0.5, 99.5]) if allv.size else (0.0, 1.0))
-        ranges[t] = (float(lo), float(hi) if hi > lo else float(lo) + 1.0)
-    head = "<tr><th></th>" + "".join(f"<th>{html.escape(t)}</th>" for t in stats) + "</tr>"
+    w, h = 240, 70
+    ranges = histogram_ranges(samples)
+    head = "<tr><th></th>" + "".join(
+        f"<th>{html.escape(t)}{' (middle 99% of values)' if ranges[t][2] else ''}</th>" for t in stats) + "</tr>"
     body = []
     for s in studies:
         cells = []
@@ -164,21 +191,30 @@ def histograms_html(samples: dict[tuple[str, str], np.ndarray], bins: int = 40) 
             if v is None or not v.size:
                 cells.append("<td class='empty'>-</td>")
                 continue
-            lo, hi = ranges[t]
+            lo, hi, clipped = ranges[t]
+            below, above = int((v < lo).sum()), int((v > hi).sum())
             counts, _ = np.histogram(np.clip(v, lo, hi), bins=bins, range=(lo, hi))
             top = counts.max() or 1
             bw = w / bins
-            bars = "".join(f"<rect x='{i * bw:.1f}' y='{h - c / top * (h - 4):.1f}' width='{bw - 0.5:.1f}' "
-                           f"height='{c / top * (h - 4):.1f}'/>" for i, c in enumerate(counts) if c)
+
+            def bar(i: int, c: int) -> str:
+                beyond = " class='beyond'" if (i == 0 and below) or (i == bins - 1 and above) else ""
+                return (f"<rect{beyond} x='{i * bw:.1f}' y='{h - c / top * (h - 4):.1f}' "
+                        f"width='{bw - 0.5:.1f}' height='{c / top * (h - 4):.1f}'/>")
+
+            bars = "".join(bar(i, c) for i, c in enumerate(counts) if c)
             med = float(np.median(v))
             mx = (min(max(med, lo), hi) - lo) / (hi - lo) * w
             zero = f"<line class='zero' x1='{(0 - lo) / (hi - lo) * w:.1f}' x2='{(0 - lo) / (hi - lo) * w:.1f}' " \
                    f"y1='0' y2='{h}'/>" if lo < 0 < hi else ""
+            beyond = (f"<div class='beyond'>{below:,} below, {above:,} above the range (in the end bars)</div>"
+                      if below or above else "")
             svg = (f"<svg width='{w}' height='{h}' viewBox='0 0 {w} {h}' role='img'><title>{html.escape(s)}, "
-                   f"{html.escape(t)}: median {_number(med)}</title><g class='bars'>{bars}</g>{zero}"
+                   f"{html.escape(t)}: median {_number(med)}, values {_number(float(v.min()))} to "
+                   f"{_number(float(v.max()))}</title><g class='bars'>{bars}</g>{zero}"
                    f"<line class='median' x1='{mx:.1f}' x2='{mx:.1f}' y1='0' y2='{h}'/></svg>")
             cells.append(f"<td>{svg}<div class='axis'><span>{_number(lo)}</span><span>median {_number(med)}"
-                         f"</span><span>{_number(hi)}</span></div></td>")
+                         f"</span><span>{_number(hi)}</span></div>{beyond}</td>")
         body.append(f"<tr><th class='rowname'>{html.escape(s)}</th>{''.join(cells)}</tr>")
     return f"<table class='hist'>{head}{''.join(body)}</table>"
 
@@ -208,12 +244,14 @@ FIGURE_CSS = (
     "table.panels td,table.panels th,table.hist td,table.hist th{border:none;padding:2px 6px;font-size:85%}"
     "th.rowname{text-align:right;white-space:nowrap}"
     ".panel{display:flex;align-items:center;gap:2px}.panel img{border:none;margin:0}"
-    ".mark{font-size:80%;font-weight:bold;color:#333;width:1em;text-align:center}"
+    ".mark{font-size:100%;font-weight:bold;color:#333;width:1em;text-align:center}"
+    ".column{display:flex;flex-direction:column;align-items:center}.mark.top,.mark.bottom{width:auto;line-height:1.1}"
     ".cbar{margin:.4em 0 1em 9em;width:240px}.cbar img{border:none;margin:0}"
-    ".ticks{display:flex;justify-content:space-between;font-size:80%}.cbar-label{font-size:85%;color:#333}"
+    ".ticks{display:flex;justify-content:space-between;font-size:95%}.cbar-label{font-size:95%;color:#333}"
     "p.note{color:#444;font-size:90%;max-width:60em}"
     "table.hist svg .bars{fill:#5a7fb0}table.hist svg .median{stroke:#c03020;stroke-width:1.5}"
     "table.hist svg .zero{stroke:#888;stroke-dasharray:2,2}"
-    ".axis{display:flex;justify-content:space-between;font-size:75%;color:#444;width:200px}"
+    ".axis{display:flex;justify-content:space-between;font-size:95%;color:#222;width:240px}"
+    "table.hist svg .beyond{fill:#d08a2a}.beyond{font-size:85%;color:#8a4a00;width:240px}"
     "table.matrix td,table.matrix th{border:1px solid #ccc;padding:4px 8px;text-align:center;font-size:85%}"
-    "td.diag{background:#eee}")
+    "td.diag{background:#eee}.beside{display:flex;gap:2em;align-items:flex-start;flex-wrap:wrap}")

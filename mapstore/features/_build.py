@@ -33,7 +33,6 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.parquet as pq
 
 from ..statkinds import convertible_to_z
 from .._params import (BACKGROUND, BATCH_SIZE, FEATURE_STAT, JOBS, P_SIDE, RESAMPLE_METHOD, declared,
@@ -42,6 +41,7 @@ from .._runner import run as run_units
 from .._version import __version__
 from ..errors import FeatureError, MapstoreError, QueryError, StoreFull
 from ..store import (
+    read_parquet,
     FPROBLEMS_SCHEMA,
     ROWS_SCHEMA,
     Catalog,
@@ -116,11 +116,10 @@ class FeatureReport:
 
 
 def library_versions() -> dict[str, str]:
-    import nibabel
-    import scipy
+    from importlib.metadata import version  # the installed versions, without importing scipy and nibabel
 
-    return {"mapstore": __version__, "numpy": np.__version__, "scipy": scipy.__version__,
-            "nibabel": nibabel.__version__}
+    return {"mapstore": __version__, "numpy": np.__version__, "scipy": version("scipy"),
+            "nibabel": version("nibabel")}
 
 
 def spec_id(spec: FeatureSetSpec, projection: dict[str, Any] | None = None) -> str:
@@ -340,13 +339,19 @@ def build_features(
             kept, todo, dropped = _plan_rows(rows_sel, spec, old_rows, batch_n, set_dir, mk, target, settings)
             built = _run_batches(todo, run, store_path, set_dir, name)
             new_rows, problems = built.rows, coverage_problems + built.problems
-            rows_table, entry = write_tables(store_path, name, kept, built, problems, dropped, existing)
-            head.features[name] = dataclasses.replace(entry, n_rows=rows_table.num_rows, spec_id=spec.spec_id,
-                                                      catalog=head.catalog)
-            if head.default_features is None or name == DEFAULT_SET:
-                head.default_features = name
-            commit_head(store_path, head, {"event": "features", "set": name, "built": len(new_rows),
-                                           "rows": rows_table.num_rows})
+            default = name if head.default_features is None or name == DEFAULT_SET else head.default_features
+            if (existing is not None and not todo and not dropped and not problems and existing.catalog == head.catalog
+                    and existing.spec_id == spec.spec_id and existing.n_rows == kept.num_rows
+                    and default == head.default_features):
+                # nothing changed (a warm run): the set's tables and HEAD stay as they are
+                rows_table, entry = kept, existing
+            else:
+                rows_table, entry = write_tables(store_path, name, kept, built, problems, dropped, existing)
+                head.features[name] = dataclasses.replace(entry, n_rows=rows_table.num_rows, spec_id=spec.spec_id,
+                                                          catalog=head.catalog)
+                head.default_features = default
+                commit_head(store_path, head, {"event": "features", "set": name, "built": len(new_rows),
+                                               "rows": rows_table.num_rows})
         except BaseException as exc:
             try:
                 named = read_head(store_path).features.get(name) is not None
@@ -435,7 +440,7 @@ def _previous_rows(store_path: Path, name: str, existing: FeatureEntry | None, s
         raise FeatureError(f"feature set {name!r} exists with other settings (grid "
                            f"{old.grid['name']}, mask {old.mask['name']}, method "
                            f"{old.method}, stat {old.stat}); choose another name")
-    return conform(pq.read_table(store_path / existing.rows), ROWS_SCHEMA)
+    return conform(read_parquet(store_path / existing.rows), ROWS_SCHEMA)
 
 
 def _write_set_files(set_dir: Path, spec: FeatureSetSpec, mk: Mask, fresh: bool) -> None:
@@ -444,7 +449,12 @@ def _write_set_files(set_dir: Path, spec: FeatureSetSpec, mk: Mask, fresh: bool)
         tmp = set_dir / f".mask.{uuid.uuid4().hex}.npy"
         np.save(tmp, mk.indices)
         os.replace(tmp, set_dir / "mask.npy")
-    spec.write(set_dir)
+    try:  # the same spec again (a warm run) leaves the file alone
+        same = json.loads((set_dir / "set.json").read_text()) == json.loads(json.dumps(spec.to_json()))
+    except (OSError, ValueError):
+        same = False
+    if not same:
+        spec.write(set_dir)
 
 
 def _plan_rows(rows_sel: list[dict[str, Any]], spec: FeatureSetSpec, old_rows: pa.Table, batch_n: int,
@@ -467,7 +477,10 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: FeatureSetSpec, old_rows: p
     have = {k: i for k, i in have.items() if sound.get(shard_of[i], 0) > row_of[i] >= 0}
     keep_idx = [have[(m, it.key)] for m, it in wanted.items() if (m, it.key) in have]
     todo = [it for m, it in wanted.items() if (m, it.key) not in have]
-    kept = old_rows.take(pa.array(sorted(keep_idx), pa.int64())) if keep_idx else old_rows.slice(0, 0)
+    if len(keep_idx) == old_rows.num_rows:  # nothing changed (a warm run): no take, whose index array
+        kept = old_rows                     # would be pyarrow's first conversion, which imports pandas
+    else:
+        kept = old_rows.take(pa.array(sorted(keep_idx), pa.int64())) if keep_idx else old_rows.slice(0, 0)
     seed = Sketcher.for_set(mk.sha256, mk.n_voxels).seed
     batches = [Batch(str(set_dir), f"shard-{file_slug(ds)}-{new_snapshot_id()}-{i:05d}.npy", items, target,
                      settings, sketch_seed=seed, sketch=spec.sketch)
@@ -541,7 +554,7 @@ def write_tables(store_path: Path, name: str, kept: pa.Table, built: Built, prob
         # copies among all the set's rows, from the sketches (new shards are in place already)
         if copies is None and not new_rows and not dropped and existing and existing.copies and \
                 (store_path / existing.copies).exists():
-            copies = pq.read_table(store_path / existing.copies)  # same rows: same pairs
+            copies = read_parquet(store_path / existing.copies)  # same rows: same pairs
         if copies is None:
             copies = find_copies(FeatureSet(store_path, name, entry))
         write_parquet_atomic(copies, store_path / rel["copies"])

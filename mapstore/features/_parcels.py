@@ -32,7 +32,6 @@ from typing import Any
 
 import numpy as np
 import pyarrow as pa
-import pyarrow.parquet as pq
 from sklearn.base import BaseEstimator, TransformerMixin
 from sklearn.utils.validation import check_is_fitted, validate_data
 
@@ -52,6 +51,7 @@ from ._build import (
     write_tables,
 )
 from ..store import (
+    read_parquet,
     collect_feature_garbage,
     ROWS_SCHEMA,
     Catalog,
@@ -187,7 +187,7 @@ def _previous(store_path: Path, name: str, existing, spec: FeatureSetSpec) -> pa
     if old.spec_id != spec.spec_id:
         raise FeatureError(f"feature set {name!r} exists with other settings (atlas, reducer or source set); "
                            "choose another name")
-    return conform(pq.read_table(store_path / existing.rows), ROWS_SCHEMA)
+    return conform(read_parquet(store_path / existing.rows), ROWS_SCHEMA)
 
 
 def _write_set_files(set_dir: Path, spec: FeatureSetSpec, at: Atlas, fs: FeatureSet) -> None:

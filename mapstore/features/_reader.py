@@ -11,7 +11,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from ..errors import FeatureError, StoreCorrupt
-from ..store import FeatureEntry, FeatureSetSpec, plain_name, regular_file, store_file
+from ..store import FeatureEntry, FeatureSetSpec, plain_name, read_parquet, regular_file, store_file
 from ..targets import Target, target_of_set
 from ._copies import SKETCH_BITS, Sketcher
 
@@ -222,7 +222,7 @@ class FeatureSet:
         if self._copies_path is None:
             return None
         try:
-            return pq.read_table(self._copies_path)
+            return read_parquet(self._copies_path)
         except (OSError, pa.ArrowException) as exc:
             raise FeatureError(f"{self._copies_path}: unreadable ({exc}); rebuild with 'mapstore features "
                                f"--name {self.name}'") from exc

@@ -54,6 +54,7 @@ from ..formats import (
     surface_grid_id,
 )
 from ..store import (
+    read_parquet,
     DATASETS_SCHEMA,
     MAPS_SCHEMA,
     MAPS_SCHEMA_ID,
@@ -891,7 +892,7 @@ def _problems_table(problems: list[Problem]) -> pa.Table:
 def _read_problems(store: str, part: CatalogPart) -> list[Problem]:
     if not part.problems:
         return []
-    rows = pq.read_table(os.path.join(store, part.problems)).to_pylist()
+    rows = read_parquet(os.path.join(store, part.problems)).to_pylist()
     return [Problem(r["path"], r["code"], r["reason"], r["remedy"], r["level"], r["dataset"], r["stage"],
                     count=r.get("count") or 1) for r in rows]
 
@@ -1072,7 +1073,7 @@ class _Previous:
         for name in ("datasets", "participants", "problems"):
             f = snap / f"{name}.parquet"
             try:
-                tables[name] = pq.read_table(f).to_pylist() if f.exists() else []
+                tables[name] = read_parquet(f).to_pylist() if f.exists() else []
             except (OSError, pa.ArrowException):
                 tables[name] = []  # unreadable: the crawl rebuilds what it covers
         try:

@@ -199,12 +199,15 @@ def coverage_fraction(mask: str) -> float | None:
 @dataclass(frozen=True)
 class Panel:
     """One drawn view of a row: a 2-D picture (NaN: no value), what it shows (``axial z = 12 mm``, ``left
-    lateral``) and the marks at its left and right edges (``L``/``R``, ``P``/``A``)."""
+    lateral``) and the marks at its edges (``L``/``R``, ``P``/``A`` at the sides; ``A``/``P``, ``S``/``I`` at
+    the top and bottom)."""
 
     values: np.ndarray
     label: str
     left: str = ""
     right: str = ""
+    top: str = ""
+    bottom: str = ""
 
 
 class Target(abc.ABC):

@@ -351,9 +351,10 @@ def slice_panels(vol: np.ndarray, affine: np.ndarray, focus: tuple[int, int, int
             ras = np.flip(ras, axis=ax)
             c[ax] = ras.shape[ax] - 1 - c[ax]
     cx, cy, cz = c
-    return [Panel(ras[:, :, cz].T[::-1], f"axial z = {mm[2]:.0f} mm", "L", "R"),
-            Panel(ras[:, cy, :].T[::-1], f"coronal y = {mm[1]:.0f} mm", "L", "R"),
-            Panel(ras[cx, :, :].T[::-1], f"sagittal x = {mm[0]:.0f} mm", "P", "A")]
+    # rows reversed: an axial slice's top row is its most anterior, the others' their most superior
+    return [Panel(ras[:, :, cz].T[::-1], f"axial z = {mm[2]:.0f} mm", "L", "R", "A", "P"),
+            Panel(ras[:, cy, :].T[::-1], f"coronal y = {mm[1]:.0f} mm", "L", "R", "S", "I"),
+            Panel(ras[cx, :, :].T[::-1], f"sagittal x = {mm[0]:.0f} mm", "P", "A", "S", "I")]
 
 
 def slice_views(vol: np.ndarray, affine: np.ndarray, scale: int = 2,

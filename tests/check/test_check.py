@@ -88,7 +88,10 @@ def test_clean_demo_store_has_no_errors_beyond_planted_files(demo_store, tmp_pat
                                                            "USING (map_id)").to_pylist()}
     assert all(f"<th class='rowname'>{s} (" in text for s in studies), studies
     assert "fraction of the maps with a value" in text and "class='ticks'" in text
-    assert "axial z = " in text and "<span class='mark'>L</span>" in text
+    assert "axial z = " in text and "<span class='mark left'>L</span>" in text
+    # the axial view's top is anterior; the coronal and sagittal views' top is superior
+    assert "<span class='mark top'>A</span>" in text and "<span class='mark bottom'>P</span>" in text
+    assert "<span class='mark top'>S</span>" in text and "<span class='mark bottom'>I</span>" in text
 
 
 def test_png_decodes_with_pillow(rng):

@@ -44,6 +44,12 @@ def test_the_report_renders_with_every_picture_and_findings_first(demo_store, de
     assert facts.get("broken-images") == "0", body
     assert 0 <= int(facts["findings-top"]) < int(facts["first-picture-top"]), facts
     assert int(facts["page-width"]) <= 1400, facts  # readable at 1,400 px: nothing runs off to the side
+    # labels on the pictures (ticks, ranges, marks) are readable: 11 px or more as the browser draws them
+    assert int(facts["smallest-label-px"]) >= 11, facts
+    # every slice carries its A/P or S/I marks above and below the picture, as drawn
+    assert int(facts["marked-panels"]) >= 3 and facts["marks-around"] == facts["marked-panels"], facts
+    # each concept's agreement figures stand beside its study x study matrix, not pages away
+    assert int(facts["besides"]) >= 1 and facts["beside-ok"] == facts["besides"], facts
     assert text.count("<img") >= 3 and "id='finding-1'" in text
     # the pictures say what they show: rows named by study, planes in millimetres with L/R marks, colour
     # bars with their range and unit; per-study value histograms; each concept's agreement as a matrix
@@ -54,10 +60,14 @@ def test_the_report_renders_with_every_picture_and_findings_first(demo_store, de
     concept = concept[:concept.index("</section>")]
     assert [s for s in re.findall(r"<th class='rowname'>([^<]+)</th>", concept)] == reading
     assert re.search(r"axial z = -?\d+ mm", concept) and re.search(r"sagittal x = -?\d+ mm", concept)
-    assert "<span class='mark'>L</span>" in concept and "<span class='mark'>R</span>" in concept
+    assert "<span class='mark left'>L</span>" in concept and "<span class='mark right'>R</span>" in concept
     assert "SD units" in concept and len(re.findall(r"<div class='ticks'>(<span>[^<]+</span>){3}</div>", concept)) == 1
     assert "id='values-by-study'" in text and text.count("<svg") >= len(reading)
     assert "id='agreement:reading'" in text and "class='matrix'" in text
+    agreement = text[text.index("id='agreement:reading'"):]
+    assert "concept &#x27;reading&#x27; across its studies" in agreement[:agreement.index("</section>")]
+    # coverage is drawn at half strength: the template shows through (the colours are not the ramp's own)
+    assert "so its anatomy shows through" in text
 
 
 def test_slices_are_labelled_in_millimetres_and_read_left_to_right():
@@ -101,3 +111,26 @@ def test_a_lateral_surface_view_shows_no_medial_wall():
     assert set(wall) == {"left lateral", "left medial", "right lateral", "right medial"}
     assert wall["left lateral"] == 0 and wall["right lateral"] == 0, wall
     assert wall["left medial"] > 0.03 and wall["right medial"] > 0.03, wall
+
+
+def test_histograms_span_every_value_or_say_how_many_lie_beyond():
+    """A t map spanning -3.4..4.2 is drawn over -3.4..4.2 (not its middle 99%); a study with a few
+    values a thousand times larger clips the shared range to the middle 99% and counts what lies beyond."""
+    import numpy as np
+
+    from mapstore.check._figures import histogram_ranges, histograms_html
+
+    rng = np.random.default_rng(0)
+    t = np.clip(rng.normal(size=4000), -3.4, 4.2)
+    t[:2] = [-3.4, 4.2]
+    lo, hi, clipped = histogram_ranges({("a", "t"): t})["t"]
+    assert (lo, hi, clipped) == (-3.4, 4.2, False)
+    page = histograms_html({("a", "t"): t})
+    assert ">-3.4<" in page and ">4.2<" in page and "above the range" not in page
+    wild = np.r_[rng.normal(size=3997), 1e3, 2e3, -5e3]
+    lo, hi, clipped = histogram_ranges({("a", "t"): t, ("b", "t"): wild})["t"]
+    assert clipped and -5 < lo < -2 and 2 < hi < 5
+    page = histograms_html({("a", "t"): t, ("b", "t"): wild})
+    assert "middle 99% of values" in page and "class='beyond'" in page
+    below, above = int((wild < lo).sum()), int((wild > hi).sum())
+    assert f"{below:,} below, {above:,} above the range" in page

@@ -83,8 +83,11 @@ def test_surface_study_pools_with_the_volume_studies(demo_store, demo_tree, tmp_
     sel = st.select(concepts=["visual-motion", "hand-movement", "listening", "reading", "arithmetic"],
                     y_from="concept", stat=["t", "z"], group_by="study", features=rep.name, missing="zero")
     st.export(tmp_path / "x", sel)
-    table = demo_decoder(tmp_path / "x").to_pylist()
+    said: list[str] = []
+    table = demo_decoder(tmp_path / "x", say=said.append).to_pylist()
     by_study = {r["held_out_study"]: r for r in table}
+    # a line as each fold starts: the demo's longest steps are never silent
+    assert [line.split(":")[0].strip() for line in said] == [f"fitting fold {k}/7" for k in range(1, 8)]
     assert "driftwood" in by_study and len(by_study) == 7  # the surface study is one of the held-out studies
     assert by_study["driftwood"]["accuracy"] > by_study["driftwood"]["chance"]
     mean = sum(r["accuracy"] for r in table) / len(table)
@@ -109,3 +112,15 @@ def test_a_subjects_t_z_and_effect_maps_are_one_model_s(demo_tree):
                   for s in ("t", "beta", "variance"))
     inside = v2 > 0
     assert np.corrcoef(t2[inside], (e2 / np.sqrt(v2))[inside])[0, 1] > 0.999  # the effect is stored as int16
+
+
+def test_the_closing_line_says_time_disk_and_memory(tmp_path):
+    from mapstore.demo import closing_line
+
+    (tmp_path / "a").write_bytes(b"x" * 3_000_000)
+    (tmp_path / "sub").mkdir()
+    (tmp_path / "sub" / "b").write_bytes(b"x" * 1_000_000)
+    line = closing_line(tmp_path, 125.4)
+    assert line.startswith("done in 2 min 5 s; 4 MB written under ")
+    peak = int(line.rsplit("process ", 1)[1].split()[0].replace(",", ""))
+    assert 20 < peak < 100_000  # MB: this test process holds numpy at least

@@ -34,3 +34,31 @@ def test_workers_import_no_heavy_library(demo_tree, tmp_path):
         got = {m for m in Path(f"{out}.{command}").read_text().split() if m}
         heavy = sorted(m for m in got if m.split(".")[0] in HEAVY)
         assert not heavy, f"{command} workers imported {json.dumps(heavy)}"
+
+
+WARM = """
+import sys, mapstore
+store = sys.argv[1]
+rep = mapstore.build_features(store, progress=False, jobs=1)
+print(rep.n_built, rep.n_unchanged, " ".join(m for m in ("pandas", "pyarrow.compute", "scipy", "nibabel", "nilearn",
+                                                          "sklearn") if m in sys.modules))
+"""
+
+
+def test_a_warm_features_run_reads_its_records_and_writes_nothing(demo_store, tmp_path):
+    """Nothing changed: the run reads HEAD, the catalog's rows and its own rows table, writes no file, and
+    imports none of the libraries building a row needs (the whole command's cost is start-up)."""
+    import shutil
+
+    store = tmp_path / "store"
+    shutil.copytree(demo_store, store)
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[2])}
+    run = lambda: subprocess.run([sys.executable, "-c", WARM, str(store)], check=True, env=env, timeout=600,  # noqa: E731
+                                 capture_output=True, text=True).stdout.split()
+    first = run()  # builds the set (or settles one another checkout built)
+    before = {p: p.stat().st_mtime_ns for p in store.rglob("*") if p.is_file() and "leases" not in p.parts}
+    got = run()
+    assert got[0] == "0" and int(got[1]) == int(first[0]) + int(first[1]) > 0
+    assert got[2:] == [], f"a warm run imported {got[2:]}"
+    after = {p: p.stat().st_mtime_ns for p in store.rglob("*") if p.is_file() and "leases" not in p.parts}
+    assert after == before
