@@ -5,9 +5,13 @@ Decode concepts across studies
 Decode concepts across studies from a mapstore store (run `mapstore demo DIR` first)::
 
     python examples/decode_across_studies.py DIR/store
+
+The weights are written into ``DIR/example-outputs`` (beside the store, never into it), and drawn
+there with nilearn when matplotlib is installed (``pip install 'mapstore[plot]'``).
 """
 
 import sys
+from pathlib import Path
 
 import numpy as np
 
@@ -35,5 +39,14 @@ for study, s in zip(sorted(set(sel.groups)), scores):
 model.fit(sel.X, sel.y)
 coef = model[-1].coef_[list(model[-1].classes_).index("reading")]
 img = sel.to_image(coef)  # back onto the grid; voxels outside X's columns are NaN
-img.to_filename("reading-weights.nii.gz")
-print("wrote reading-weights.nii.gz")
+out = Path(sys.argv[1]).absolute().parent / "example-outputs"
+out.mkdir(exist_ok=True)
+img.to_filename(out / "reading-weights.nii.gz")
+print(f"wrote {out / 'reading-weights.nii.gz'}")
+try:
+    from nilearn import plotting
+
+    plotting.plot_stat_map(img, title="weights for 'reading'", output_file=str(out / "reading-weights.png"))
+    print(f"drew {out / 'reading-weights.png'}")
+except ImportError:
+    print("to draw it: pip install 'mapstore[plot]'")

@@ -6,9 +6,12 @@ An encoding model: maps predicted from their concepts, scored per voxel on held-
 (run `mapstore demo DIR` first)::
 
     python examples/encoding_model.py DIR/store
+
+The R^2 image is written into ``DIR/example-outputs`` (beside the store, never into it).
 """
 
 import sys
+from pathlib import Path
 
 import numpy as np
 
@@ -22,5 +25,7 @@ scores = encoding_scores(sel)  # concept indicators in, maps out; RidgeCV; leave
 print(scores.summary())
 top = np.argsort(-np.nan_to_num(scores.r2, nan=-np.inf))[:5]
 print("best-predicted columns (R^2):", ", ".join(f"{scores.r2[j]:.2f}" for j in top))
-scores.to_image("r2").to_filename("encoding-r2.nii.gz")
-print("wrote encoding-r2.nii.gz")
+out = Path(sys.argv[1]).absolute().parent / "example-outputs"
+out.mkdir(exist_ok=True)
+scores.to_image("r2").to_filename(out / "encoding-r2.nii.gz")
+print(f"wrote {out / 'encoding-r2.nii.gz'}")

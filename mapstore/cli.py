@@ -8,6 +8,7 @@ cannot read or write), 2 a usage error, 3 ``check`` or ``verify`` ran and found 
 from __future__ import annotations
 
 import json
+import re
 import sys
 from pathlib import Path
 
@@ -81,8 +82,9 @@ FINDINGS_EXIT = 3  # check found something at --fail-on, or verify found a chang
 
 
 def _plural(n: int, one: str, many: str | None = None) -> str:
-    """``1 study``, ``3 studies``: counts said as a person would."""
-    return f"{n:,} {one if n == 1 else many or one + 's'}"
+    from .formats import plural
+
+    return plural(n, one, many)
 
 
 def _target(path: str | None, option: str) -> None:
@@ -124,7 +126,18 @@ def cli() -> None:
       mapstore export --store DIR --concept reading --out OUT    X, y, groups, splits, manifest
       mapstore check --store DIR --html check.html               findings and a report
       mapstore pool --store DIR --concept reading --out OUT      do the studies agree, and where?
-      mapstore demo FOLDER                                       all of it on invented data
+    \b
+    Around it:
+      verify OUT        has anything an export or a pooled map came from changed since?
+      rebuild MANIFEST  make a colleague's export again from their manifest and your copies
+      sql               read-only SQL over the catalog's views (maps, labels, features, ...)
+      similar           the stored maps most like a new map
+      parcels           reduce a feature set to one value per parcel of an atlas
+      mesh              describe a FreeSurfer subject's surfaces as a mesh for --grid or --mesh
+      schema            the JSON Schemas of the files mapstore reads and writes
+      demo FOLDER       all of it on invented data (about 3 minutes)
+
+    Exit codes: 0 done; 1 failed; 2 the command line is wrong; 3 check or verify found something.
     """
 
 
@@ -195,7 +208,7 @@ def write_table(table, fmt: str, out: str | None) -> None:
 
 
 @cli.command("index")
-@click.argument("roots", nargs=-1, required=True, type=click.Path(exists=False))
+@click.argument("roots", nargs=-1, required=True, type=click.Path(exists=True))
 @STORE_OPTION
 @click.option("--rules", multiple=True,
               help="Name-rules file for maps without BIDS statmap names, or a built-in preset: fsl-feat, spm "
@@ -247,8 +260,8 @@ def sql_cmd(store, query, fmt, out) -> None:
 
 @cli.command("features")
 @STORE_OPTION
-@click.option("--features", "--name", "name",
-              help="Feature set name (default: 'default' for the default settings).")
+@click.option("--name", "name", help="Name of the feature set made (default: 'default' for the default settings).")
+@click.option("--features", "name", hidden=True)  # the name it had; elsewhere --features is a set read
 @click.option("--grid", default="MNI152-2mm", show_default=True,
               help="MNI152-1mm|MNI152-2mm|MNI152-3mm, a reference image, or a JSON {shape, affine} file; "
                    "fsaverage5 or a JSON mesh description (GIFTI surfaces per hemisphere) for a surface set "
@@ -286,7 +299,7 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
 
     \b
     Example:
-      mapstore features --store pooled --grid MNI152-3mm --stat z --features z3
+      mapstore features --store pooled --grid MNI152-3mm --stat z --name z3
     """
     if list_only:
         click.echo(text_table(open_store(store).sql("SELECT * FROM feature_sets")))
@@ -308,16 +321,21 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
 @STORE_OPTION
 @click.option("--atlas", required=True, help="A label image or a 4-D probabilistic atlas (NIfTI) for a volume "
               "set; LEFT.gii,RIGHT.gii label files for a surface set; store:NAME for a stored parcellation.")
-@click.option("--features", "--source", "source", help="The voxel or surface set to reduce (default: the default set).")
-@click.option("--name", help="Name of the parcel set (default: SOURCE-ATLAS).")
-def parcels_cmd(store, atlas, source, name) -> None:
+@click.option("--from", "source", help="The voxel or surface set to reduce (default: the default set).")
+@click.option("--features", "--source", "old_source", hidden=True)
+@click.option("--name", help="Name of the new parcel set (default: FROM-ATLAS).")
+def parcels_cmd(store, atlas, source, old_source, name) -> None:
     """Reduce a feature set to one value per parcel of an atlas (a new feature set).
 
     \b
     Example:
-      mapstore parcels --store pooled --atlas atlas.nii.gz --features default
+      mapstore parcels --store pooled --atlas atlas.nii.gz --from default
     """
     from .features import build_parcels
+
+    if old_source:  # --features names the set a command reads everywhere else; here the input is --from
+        click.echo("note: 'parcels --features' is now 'parcels --from' (the set reduced)", err=True)
+        source = source or old_source
 
     if "," in atlas and not atlas.startswith("store:"):
         left, right = atlas.split(",", 1)
@@ -346,17 +364,22 @@ def mesh_cmd(subject_dir, out, space) -> None:
 
 @cli.command("labels")
 @STORE_OPTION
-@click.option("--vocab", required=True, type=click.Path(dir_okay=False),
+@click.option("--vocab", required=True, type=click.Path(exists=True, dir_okay=False),
               help="Concept vocabulary (YAML or JSON; its schema: 'mapstore schema vocabulary').")
-@click.option("--with-broader/--direct-only", "inherit", default=None,
-              help="Also label maps with broader concepts (default: as the vocabulary says).")
-def labels_cmd(store, vocab, inherit) -> None:
+@click.option("--inherit/--direct-only", "inherit", default=None,
+              help="Also write inherited labels, the broader concepts of each concept a map is labelled with "
+                   "(default: as the vocabulary says); 'export --with-inherited' selects by them.")
+@click.option("--with-broader", "old_inherit", flag_value=True, default=None, hidden=True)
+def labels_cmd(store, vocab, inherit, old_inherit) -> None:
     """Label the store's maps with concepts from a vocabulary.
 
     \b
     Example:
       mapstore labels --store pooled --vocab concepts.yaml
     """
+    if old_inherit:
+        click.echo("note: 'labels --with-broader' is now 'labels --inherit'", err=True)
+        inherit = True if inherit is None else inherit
     report = label_store(store, vocab, inherit_broader=inherit)
     click.echo(report.summary())
 
@@ -394,7 +417,9 @@ def labels_cmd(store, vocab, inherit) -> None:
               "manifest).")
 @click.option("--near-copy-r", type=NEAR_COPY.click_type(), default=None,
               help="Refuse maps on both sides whose rows correlate at least this much (default: 0.9).")
-@click.option("--with-broader", is_flag=True, help="Count inherited broader concepts as labels.")
+@click.option("--with-inherited", "--with-broader", "with_broader", is_flag=True,
+              help="Take maps whose inherited labels (written by 'labels --inherit') name a --concept, as well "
+                   "as maps labelled with it directly.")
 @click.option("--missing", type=MISSING.click_type(), default="common", show_default=True,
               help="Voxels some selected map has no value for: keep only voxels every map covers (common), "
                    "fill 0, or keep NaN.")
@@ -531,8 +556,8 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
     if sel.dropped:
         click.echo("  not pooled: " + "; ".join(f"{why} x{n}" for why, n in sel.dropped.items()))
     for p in res.peaks(5, threshold=thr):
-        click.echo(f"  peak z {p['z']:.2f} at {p.get('mm', p['position'])} ({p['n_studies']} studies)")
-    click.echo(f"wrote {len(prov.files)} files to {out}")
+        click.echo(f"  peak z {p['z']:.2f} at {p.get('mm', p['position'])} ({_plural(p['n_studies'], 'study', 'studies')})")
+    click.echo(f"wrote {_plural(len(prov.files), 'file')} to {out}")
 
 
 @cli.command("rebuild")
@@ -649,6 +674,45 @@ def _written_path(argv: list[str]) -> str | None:
     return None
 
 
+def _command_of(argv: list[str]) -> click.Command | None:
+    return next((cli.commands[a] for a in argv if a in cli.commands), None)
+
+
+_DECLARED = re.compile(r"^[a-z_]+: ([a-z][a-z_]*) (must|is|are|gives|given)\b")
+_NAMED = re.compile(r"\b([a-z][a-z0-9]*(?:_[a-z0-9]+)*)(=True\b|=False\b|=|\b)")
+
+
+def cli_words(message: str, command: click.Command) -> str:
+    """A message of the Python API said in ``command``'s words: a parameter's name becomes its option
+    (``group_by 'scanner'`` -> ``--group-by 'scanner'``, ``with_broader=True`` -> ``--with-inherited``,
+    ``select: min_coverage must`` -> ``--min-coverage must``)."""
+    flags: dict[str, str] = {}
+    for p in command.params:
+        if isinstance(p, click.Option):
+            long = [o for o in p.opts if o.startswith("--")]
+            for o in long:
+                flags.setdefault(o[2:].replace("-", "_"), long[0])
+            if p.name and long:
+                flags.setdefault(p.name, long[0])
+    head = _DECLARED.match(message)
+    if head and head.group(1) in flags:  # "function: name must ..." -> "--name must ..."
+        message = message[message.index(": ") + 2:]
+
+    def option(m: re.Match) -> str:
+        name, tail = m.group(1), m.group(2)
+        flag = flags.get(name)
+        # plain words are options only when written as code would (with "_" or "="), never "store" in prose
+        if flag is None or (tail == "" and "_" not in name):
+            return m.group(0)
+        if tail == "=True":
+            return flag
+        if tail == "=False":
+            return "--no-" + flag[2:] if name != "with_broader" else f"without {flag}"
+        return flag + (" " if tail == "=" else "")
+
+    return _NAMED.sub(option, message)
+
+
 def main(argv: list[str] | None = None) -> int:
     """Entry point: run the CLI and turn mapstore errors into messages and exit codes."""
     try:
@@ -656,13 +720,19 @@ def main(argv: list[str] | None = None) -> int:
     except click.exceptions.Abort:
         click.echo("aborted", err=True)
         return 1
+    except click.UsageError as exc:  # one line, in the command's words, and where its help is
+        where = exc.ctx.command_path if exc.ctx is not None else "mapstore"
+        text = " ".join(exc.format_message().split())
+        click.echo(f"error: {where}: {text} (see '{where} --help')", err=True)
+        return 2
     except click.ClickException as exc:
         exc.show()
         return exc.exit_code
     except MapstoreError as exc:
         if getattr(exc, "report", None) is not None:
             click.echo(exc.report.summary())  # type: ignore[attr-defined]
-        click.echo(f"error: {exc}", err=True)
+        command = _command_of(argv if argv is not None else sys.argv[1:])
+        click.echo(f"error: {cli_words(str(exc), command) if command is not None else exc}", err=True)
         return getattr(exc, "exit_code", 1)
     except KeyboardInterrupt:
         click.echo("interrupted", err=True)

@@ -428,7 +428,7 @@ def run_demo(folder: str | os.PathLike[str], *, scale: float = 1.0, say: Callabl
     from ._api import open_store
     from .analyses import pool, write_pooled
     from .features import build_features
-    from .formats import text_table
+    from .formats import plural, text_table
     from .indexing import index
     from .labels import label_store
 
@@ -438,8 +438,8 @@ def run_demo(folder: str | os.PathLike[str], *, scale: float = 1.0, say: Callabl
     say(f"the demo takes about 3 minutes on two cores and writes about 1 GB into {base}")
     say(f"writing the invented consortium to {data} ...")
     summary = make_demo(data, scale=scale)
-    say(f"  {summary.studies} studies by {summary.labs} labs, {summary.maps} statistic maps, "
-        f"{len(summary.planted_problems)} planted problem files")
+    say(f"  {plural(summary.studies, 'study', 'studies')} by {plural(summary.labs, 'lab')}, "
+        f"{plural(summary.maps, 'statistic map')}, {plural(len(summary.planted_problems), 'planted problem file')}")
     say(f"indexing into {store} ...")
     report = index([data], store, rules=summary.rules, origins=summary.overrides)
     say(report.summary())
@@ -503,10 +503,10 @@ def run_demo(folder: str | os.PathLike[str], *, scale: float = 1.0, say: Callabl
     res = pool(rsel, "stouffer", min_subjects=max(2, min(3, fewest)))  # a small demo has 2 subjects a study
     prov = write_pooled(res, pooled, overwrite=True)
     thr = prov.fdr["z_threshold"]
-    say(f"  {len(res.studies)} studies; FDR 0.05 over {prov.fdr['n_tested']:,} voxels: "
+    say(f"  {plural(len(res.studies), 'study', 'studies')}; FDR 0.05 over {prov.fdr['n_tested']:,} voxels: "
         + (f"z >= {thr:.2f}" if thr is not None else "no voxel survives"))
     for p in res.peaks(3, threshold=thr):
-        say(f"  peak z {p['z']:.1f} at {p.get('mm', p['position'])} mm ({p['n_studies']} studies)")
+        say(f"  peak z {p['z']:.1f} at {p.get('mm', p['position'])} mm ({plural(p['n_studies'], 'study', 'studies')})")
     say(f"\ntry: mapstore sql --store {store} \"SELECT concept, count(*) FROM labels GROUP BY ALL\"")
     say(f"     mapstore verify {out}")
     say(f"     mapstore verify {pooled}")

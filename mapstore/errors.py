@@ -4,6 +4,11 @@ Every error the tool raises on purpose derives from :class:`MapstoreError`, so t
 CLI can turn it into a clean message with no traceback.  Leaves also inherit the
 matching builtin (a missing store is a ``FileNotFoundError``), so callers can catch
 either.  Messages name the file or store concerned and, where one exists, the remedy.
+
+Exit codes by kind: 2 when the command line is wrong (an option or value the command does not
+take, a path it names that is not there, an output it names where mapstore never writes); 1 for
+anything else (a file's content, the store's state, the machine); 3 when ``check`` or ``verify``
+found what they look for.
 """
 
 from __future__ import annotations
@@ -73,11 +78,15 @@ class HeaderError(MapstoreError, ValueError):
 
 
 class StoreNotFound(MapstoreError, FileNotFoundError):
-    """No mapstore store exists at the given path."""
+    """No mapstore store exists at the given path (a usage error, exit 2: the path named is wrong)."""
+
+    exit_code = 2
 
 
 class NoCatalog(StoreNotFound):
     """The store exists but nothing has been indexed into it yet."""
+
+    exit_code = 1
 
 
 class NoDatasetsFound(MapstoreError, FileNotFoundError):
@@ -163,7 +172,9 @@ class ExportError(MapstoreError, OSError):
 
 class OutputPlaceError(ExportError):
     """An output would land where mapstore never writes: a source dataset, a store, or a folder it did
-    not write (with overwrite)."""
+    not write (with overwrite).  A usage error (exit 2): the output named is wrong."""
+
+    exit_code = 2
 
 
 class PoolError(MapstoreError, ValueError):

@@ -116,7 +116,7 @@ class PooledMaps:
         flat_of = {int(c): j for j, c in enumerate(fs.mask_indices[self.selection.voxels])}
         out = []
         for i, flat in enumerate(top):
-            peak: dict[str, Any] = {"position": target.position(int(flat)), "z": float(full[flat])}
+            peak: dict[str, Any] = {"position": target.position(int(flat)), "index": int(flat), "z": float(full[flat])}
             if mm is not None:
                 peak["mm"] = [round(float(c), 2) for c in mm[i]]
             j = flat_of.get(int(flat))
@@ -623,6 +623,11 @@ def write_pooled(result: PooledMaps, out, fdr_q: float = 0.05, *, overwrite: boo
         return _write_pooled(result, folder, fdr_q)
 
 
+def _cell(v: Any) -> str:
+    """A coordinate as text: millimetres to 0.01, indices and names as they are."""
+    return f"{float(v):.2f}" if isinstance(v, (float, np.floating)) else str(v)
+
+
 def _write_pooled(result: PooledMaps, folder, fdr_q: float) -> PooledRecord:
     written: list[str] = []
     for key in ("z", "p", "effect", "variance", "tau2", "i2", "n_studies"):
@@ -631,11 +636,16 @@ def _write_pooled(result: PooledMaps, folder, fdr_q: float) -> PooledRecord:
         written += _write_map(result, key, folder)
     thr = result.fdr(fdr_q)
     peaks = result.peaks(20, threshold=thr if np.isfinite(thr) else None)
+    # one column per coordinate, as the target says where a position is (i, j, k and x, y, z in mm on a
+    # grid; hemisphere and vertex on a mesh): any table reader splits nothing
+    target = result.selection.feature_set.target if result.selection is not None else None
+    where = target.position_columns(np.array([p["index"] for p in peaks], dtype=np.int64)) if target and peaks else {}
+    names = list(where) or ["position"]
     with open(folder / "peaks.tsv", "w", encoding="utf-8") as fh:
-        fh.write("z\tn_studies\tposition\tmm\n")
-        for p in peaks:
-            fh.write(f"{p['z']:.4f}\t{p['n_studies']}\t{','.join(map(str, p['position']))}\t"
-                     f"{','.join(map(str, p.get('mm', [])))}\n")
+        fh.write("\t".join(["z", "n_studies", *names]) + "\n")
+        for i, p in enumerate(peaks):
+            cells = [_cell(where[c][i]) for c in names] if where else [str(p["index"])]
+            fh.write("\t".join([f"{p['z']:.4f}", str(p["n_studies"]), *cells]) + "\n")
     from ..formats import sha256_file
 
     files = written + ["peaks.tsv"]

@@ -600,11 +600,15 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
         # heterogeneity where the studies show the concept: over null voxels I^2 is 0 almost everywhere
         # (Q below its degrees of freedom), so a median over the whole mask says nothing
         strong = np.isfinite(z) & np.isfinite(i2) & (np.abs(np.nan_to_num(z)) >= _STRONG_Z)
+        # a study's variance is its maps' spread: with a handful of maps it is too rough to weigh studies
+        # by (a study of three maps can look a hundred times surer than it is), so nothing is shown
+        weighed = min(len(studies[s]) for s in names) >= _MIN_MAPS_TO_WEIGH
         summary.append({"concept": concept, "studies": len(names), "maps": sum(len(v) for v in studies.values()),
                         "mean_cross_study_r": round(mean_r, 3), "min_r": round(min(finite), 3) if finite else None,
-                        "pooled_max_z": round(float(zmax.max()), 2) if zmax.size else None,
-                        "voxels_pooled_z_3": int(strong.sum()),
-                        "median_I2_there": round(float(np.median(i2[strong])), 3) if strong.sum() >= 10 else None})
+                        "pooled_max_z": round(float(zmax.max()), 2) if zmax.size and weighed else None,
+                        "voxels_pooled_z_3": int(strong.sum()) if weighed else None,
+                        "median_I2_there": round(float(np.median(i2[strong])), 3)
+                        if weighed and strong.sum() >= 10 else None})
         if not finite or mean_r < min_agreement:
             add(Finding("warning", "concepts", "low-concept-agreement", concept,
                         f"concept {concept!r}: the mean maps of its {len(names)} studies correlate at r = {mean_r:.2f} "
@@ -629,7 +633,9 @@ def _check_concepts(store, fs, maps, add, report, pictures: bool, min_agreement:
         report.add_table("concept-agreement", "concept agreement across studies (mean of each study's standardised "
                          f"maps; pooled by random effects: the largest pooled z, the voxels where |z| >= {_STRONG_Z:g}, "
                          "and there the median I^2, the share of the variation that lies between studies; blank "
-                         "with fewer than 10 such voxels)", pa.Table.from_pylist(summary))
+                         f"when a study has fewer than {_MIN_MAPS_TO_WEIGH} maps of the concept, or with fewer than 10 "
+                         "such voxels; 'mapstore pool' weighs studies by their own variance maps)",
+                         pa.Table.from_pylist(summary))
         report.add_table("concept-agreement-pairs", "concept agreement, study x study (r of the study means)",
                          pa.Table.from_pylist(rows))
     if pictures and tiles:
@@ -873,6 +879,7 @@ def _coverage_pictures(fs, rows, stat_of, report, max_rows) -> None:
 
 _HIST_MAPS = 6  # maps per study and stat in the value histograms
 _STRONG_Z = 3.0  # |pooled z| where a concept's heterogeneity across studies is summarised
+_MIN_MAPS_TO_WEIGH = 10  # maps a study needs for its spread to weigh it in the check's pooled summary
 
 
 def report_json(report: CheckReport) -> str:

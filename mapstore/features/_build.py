@@ -70,6 +70,7 @@ from ..targets import (
 from ._copies import Sketcher, find_copies, sketch_kind
 from ._reader import FeatureSet
 from ._rows import Batch, run_batch
+from ..formats import plural
 
 __all__ = ["FeatureReport", "build_features", "DEFAULT_SET", "feature_key", "spec_id"]
 
@@ -102,7 +103,7 @@ class FeatureReport:
     def summary(self) -> str:
         rate = self.n_built / self.seconds if self.seconds > 0 else 0.0
         lines = [f"feature set {self.name!r}: grid {self.grid}, mask {self.mask} ({self.n_features:,} {self.unit})",
-                 f"built {self.n_built} rows ({rate:,.1f} maps/s), kept {self.n_unchanged} unchanged, "
+                 f"built {plural(self.n_built, 'row')} ({rate:,.1f} maps/s), kept {self.n_unchanged:,} unchanged, "
                  f"removed {self.n_removed} stale, {self.n_problems} failed in {self.seconds:.1f} s"]
         for why, n in self.left_out.items():
             lines.append(f"left out {n} {why}")

@@ -8,7 +8,7 @@ from typing import TYPE_CHECKING
 
 if TYPE_CHECKING:
     from ._html import html_table  # noqa: F401
-    from ._text import text_table  # noqa: F401
+    from ._text import plural, text_table  # noqa: F401
     from ._regex import safe_regex  # noqa: F401
     from ._hashing import ReadDeadline, ReadTimeout, digest_file, sha256_file  # noqa: F401
     from ._foreign import DATA_EXTENSIONS, FOREIGN_EXTENSIONS, ForeignFacts, afni_brick, afni_extension, data_file, digest_map, foreign_format, read_foreign_header, read_foreign_volume  # noqa: F401
@@ -22,6 +22,7 @@ if TYPE_CHECKING:
 _HOME = {
     'html_table': '_html',
     'text_table': '_text',
+    'plural': '_text',
     'safe_regex': '_regex',
     'ReadDeadline': '_hashing',
     'ReadTimeout': '_hashing',
@@ -81,6 +82,7 @@ def __dir__() -> list[str]:
     return sorted(set(globals()) | set(_HOME))
 
 __all__ = [
+    "plural",
     "afni_brick",
     "afni_extension",
     "DATA_EXTENSIONS",

@@ -31,3 +31,12 @@ def text_table(table, max_rows: int | None = None, width: int = 40) -> str:
     out.append(f"({table.num_rows} row{'s' if table.num_rows != 1 else ''}"
                + (f", first {shown} shown" if shown < table.num_rows else "") + ")")
     return "\n".join(out)
+
+
+def plural(n: int, one: str, many: str | None = None) -> str:
+    """A count said as a person would.
+
+    >>> plural(1, "study"), plural(3, "study", "studies"), plural(1200, "map")
+    ('1 study', '3 studies', '1,200 maps')
+    """
+    return f"{n:,} {one if n == 1 else many or one + 's'}"

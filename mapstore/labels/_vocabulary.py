@@ -32,7 +32,7 @@ from typing import Any
 
 import pyarrow as pa
 
-from ..formats import check_user_doc, format_key_path, load_user_file, safe_regex
+from ..formats import check_user_doc, format_key_path, load_user_file, plural, safe_regex
 from ..errors import VocabularyError
 from ..store import LABELS_SCHEMA, LabelsEntry, arrow_to_json_schema
 from ..store import (
@@ -219,7 +219,7 @@ class LabelReport:
         if self.unmatched_contrasts:
             lines.append(f"{len(self.unmatched_contrasts)} contrast(s) no rule matched:")
             for u in self.unmatched_contrasts[:10]:
-                lines.append(f"  {u['dataset']}: task {u['task']}, contrast {u['contrast']} ({u['maps']} maps)")
+                lines.append(f"  {u['dataset']}: task {u['task']}, contrast {u['contrast']} ({plural(u['maps'], 'map')})")
             if len(self.unmatched_contrasts) > 10:
                 lines.append("  ...")
         if self.unused_rules:

@@ -27,6 +27,7 @@ from __future__ import annotations
 import hashlib
 import json
 import os
+import warnings
 import time
 from concurrent.futures import ThreadPoolExecutor
 from dataclasses import dataclass, field
@@ -47,6 +48,7 @@ from ._manifest import MANIFEST_FORMAT, ExportManifest, ManifestSource, _regular
 from ._query import Selection
 from ._splits import fold_vector, parse_scheme
 from ..store import OUTPUT_MARKER, Catalog, check_output, checkpoint, output_folder
+from ..formats import plural
 
 __all__ = ["ExportReport", "VerifyReport", "export_selection", "verify", "json_schemas"]
 
@@ -74,8 +76,8 @@ class ExportReport:
         voxel_line = (f"\nmissing values: {m['policy']}; {m['dropped_voxels']:,} of {m['mask_voxels']:,} mask {self.unit} "
                       f"dropped ({m['reason']})" if m.get("dropped_voxels") else
                       f"\nmissing values: {m['policy']} ({m['reason']})" if m else "")
-        return (f"exported {self.n_maps} maps x {self.n_features:,} {self.unit} to {self.out} in {self.seconds:.1f} s\n"
-                f"scheme {self.scheme}: {self.n_splits} split(s); dropped: {d}"
+        return (f"exported {plural(self.n_maps, 'map')} x {self.n_features:,} {self.unit} to {self.out} in {self.seconds:.1f} s\n"
+                f"scheme {self.scheme}: {plural(self.n_splits, 'split')}; dropped: {d}"
                 + voxel_line
                 + (f"\nWARNING: {len(self.leaks)} leak(s) accepted with --allow-leak" if self.leaks else ""))
 
@@ -294,6 +296,31 @@ def _write_zarr(tmp: Path, sel: Selection, rows: _Rows, meta_t: pa.Table) -> Non
             arr[start:start + len(block)] = block
             buf, spare = spare, buf
             checkpoint()
+    # what a reader needs beside X, inside the store, as coordinates of its rows and columns: xarray's
+    # X carries them, and nobody has to join files by row order
+    coords = ["voxel"]
+    for name, values in (("y", sel.y), ("group", sel.groups),
+                         ("fold", meta_t["fold"].to_numpy() if "fold" in meta_t.column_names else None)):
+        if values is None:
+            continue
+        values = np.asarray(values)
+        if values.dtype.kind in "biuf":
+            data, attrs = values.astype(np.float64 if name == "y" else np.int64), {}
+        else:  # text (class names, study names) as codes, the names in the attributes
+            names, data = np.unique(values.astype(str), return_inverse=True)
+            data, attrs = data.astype(np.int32), {"names": names.tolist(), "codes": "index into names"}
+        a = group.create_array(name, shape=data.shape, dtype=data.dtype, dimension_names=("map",))
+        a[:] = data
+        a.attrs.update(attrs)
+        coords.append(name)
+    if sel.Y is not None:  # multi-label indicators: a data variable (map x concept), concepts named
+        Y = group.create_array("Y", shape=sel.Y.shape, dtype="uint8", dimension_names=("map", "concept"))
+        Y[:] = np.asarray(sel.Y, dtype=np.uint8)
+        Y.attrs["concepts"] = list(sel.concepts)
+    arr.attrs["coordinates"] = " ".join(coords)
+    with warnings.catch_warnings():  # zarr notes consolidated metadata is an extension of format 3
+        warnings.simplefilter("ignore")
+        zarr.consolidate_metadata(str(tmp / "X.zarr"))  # one read opens it (xarray warns without)
     _write_side_files(tmp, sel, meta_t)
 
 

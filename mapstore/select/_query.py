@@ -21,6 +21,7 @@ from ..errors import ParameterError, QueryError
 from ..features import NEAR_COPY_R, STORE_FLOOR, find_copies
 from ..labels import load_vocabulary
 from ._splits import assign_folds, check_classes, check_leakage, copy_groups, fold_vector
+from ..formats import plural
 
 __all__ = ["Selection", "select", "GROUP_COLUMNS", "MISSING_POLICIES", "check_folds", "align_columns"]
 
@@ -89,7 +90,7 @@ class Selection:
         target = f"y: {len(set(map(str, self.y)))} classes" if self.y is not None and self.y.dtype.kind == "O" \
             else "y: numeric" if self.y is not None else f"Y: {len(self.concepts)} concepts"
         cols = f"{len(self._voxels):,} columns" if self._voxels is not None else "columns not read yet"
-        return (f"Selection({len(self)} maps of {studies} studies, feature set {self.feature_set.name!r}, {cols}, "
+        return (f"Selection({plural(len(self), 'map')} of {plural(studies, 'study', 'studies')}, feature set {self.feature_set.name!r}, {cols}, "
                 f"y from {self.y_from!r} ({target}), groups by {self.group_by!r}, missing={self.missing!r})")
 
     @property

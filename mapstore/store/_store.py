@@ -131,6 +131,10 @@ def ensure_store(path: str | os.PathLike[str]) -> Path:
 def _check_store(p: Path) -> None:
     marker = p / "store.json"
     if not marker.exists():
+        if p.is_dir() and any(p.iterdir()):  # a folder of something else (data?): never suggest a store in it
+            raise StoreNotFound(f"{p}: a folder, but not a mapstore store (no store.json); give the folder "
+                                "'mapstore index' made as --store, or index into a new folder beside it: "
+                                f"mapstore index {p} --store {p.parent / (p.name + '-store')}")
         raise StoreNotFound(f"{p}: no mapstore store here (no store.json); run 'mapstore index ROOT "
                             f"--store {p}' first")
     try:

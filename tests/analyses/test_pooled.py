@@ -227,8 +227,17 @@ def test_the_pool_command_writes_maps_and_peaks(shared, tmp_path, capsys):
     assert code == 0 and "pooled 40 maps of 4 studies (stouffer)" in text and "peak z" in text
     assert {p.name for p in out.iterdir()} >= {"pooled_stat-z.nii.gz", "pooled_stat-p.nii.gz", "peaks.tsv",
                                                "pooled.json"}
-    first = (out / "peaks.tsv").read_text().splitlines()[1].split("\t")
-    assert np.abs(np.array(first[2].split(","), dtype=int) - peak).max() <= 1
+    import pandas as pd
+
+    peaks = pd.read_csv(out / "peaks.tsv", sep="\t")  # a plain table: one column per coordinate
+    assert list(peaks.columns) == ["z", "n_studies", "i", "j", "k", "x_mm", "y_mm", "z_mm"]
+    assert np.abs(peaks.loc[0, ["i", "j", "k"]].to_numpy(int) - peak).max() <= 1
+    # the millimetres are the grid's affine applied to i, j, k (nibabel's apply_affine)
+    import nibabel as nib
+
+    aff = nib.load(str(out / "pooled_stat-z.nii.gz")).affine
+    np.testing.assert_allclose(peaks[["x_mm", "y_mm", "z_mm"]].to_numpy(),
+                               nib.affines.apply_affine(aff, peaks[["i", "j", "k"]].to_numpy()), atol=0.006)
 
 
 def test_streaming_combination_of_given_maps_equals_combine(shared):

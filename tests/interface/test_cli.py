@@ -29,7 +29,7 @@ def test_sql_formats(demo_store, tmp_path):
 
 
 def test_user_errors_exit_cleanly(tmp_path, capsys):
-    assert main(["sql", "--store", str(tmp_path / "nothing"), "SELECT 1"]) == 1
+    assert main(["sql", "--store", str(tmp_path / "nothing"), "SELECT 1"]) == 2  # the path named is wrong
     err = capsys.readouterr().err
     assert "no such store" in err and "Traceback" not in err
     assert main(["index", str(tmp_path), "--store", str(tmp_path / "s"), "--rules", str(tmp_path / "no.json")]) == 1
@@ -101,14 +101,13 @@ def test_ordinary_mistakes_are_one_line_without_traceback(demo_store, tmp_path, 
         (["labels", "--store", str(empty), "--vocab", str(grid)], 1, "the store has no catalog yet"),
         (["features", "--store", str(empty)], 1, "the store has no catalog yet"),
         (["export", "--store", str(empty), "--out", str(tmp_path / "e")], 1, "the store has no catalog yet"),
-        (["sql", "--store", str(tmp_path / "nowhere"), "SELECT 1"], 1, "no such store"),
-        (["export", "--store", str(tmp_path / "nowhere"), "--out", str(tmp_path / "e")], 1, "no such store"),
-        (["check", "--store", str(tmp_path / "nowhere")], 1, "no such store"),
+        (["sql", "--store", str(tmp_path / "nowhere"), "SELECT 1"], 2, "no such store"),
+        (["export", "--store", str(tmp_path / "nowhere"), "--out", str(tmp_path / "e")], 2, "no such store"),
+        (["check", "--store", str(tmp_path / "nowhere")], 2, "no such store"),
         (["verify", str(tmp_path / "nothing")], 2, "does not exist"),
-        (["index", str(tmp_path / "missing-root"), "--store", str(tmp_path / "s2")], 1,
-         "no BIDS derivative dataset found"),
+        (["index", str(tmp_path / "missing-root"), "--store", str(tmp_path / "s2")], 2, "does not exist"),
         (["sql", "--store", str(demo_store), "SELEC nonsense"], 1, "SQL does not parse"),
-        (["labels", "--store", str(demo_store), "--vocab", str(tmp_path / "none.yaml")], 1, "file not found"),
+        (["labels", "--store", str(demo_store), "--vocab", str(tmp_path / "none.yaml")], 2, "does not exist"),
         (["index", str(src), "--store", str(tmp_path / "s3"), "--rules", str(grid)], 1,
          "expected an object with a 'rules' list"),
     ]
@@ -150,8 +149,12 @@ def test_the_store_comes_from_the_environment_and_the_set_option_has_one_name(de
     assert main(["sql", "SELECT count(*) AS n FROM maps"]) == 0
     assert "(1 row)" in capsys.readouterr().out
     runner = CliRunner()
-    for cmd in ("features", "parcels", "export", "check", "similar"):
+    for cmd in ("export", "check", "similar", "pool"):  # the set a command reads
         assert "--features" in runner.invoke(cli, [cmd, "--help"]).output, cmd
+    for cmd in ("features", "parcels"):  # a command that makes a set names it --name (parcels reads --from)
+        assert "--name" in runner.invoke(cli, [cmd, "--help"]).output, cmd
+        assert "--features" not in runner.invoke(cli, [cmd, "--help"]).output, cmd
+    assert "--from" in runner.invoke(cli, ["parcels", "--help"]).output
     assert "Exit 3 when a finding" in runner.invoke(cli, ["check", "--help"]).output
     assert "map_families" in runner.invoke(cli, ["sql", "--help"]).output
 

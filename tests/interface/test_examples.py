@@ -24,4 +24,9 @@ def test_example_runs_on_the_demo(script, demo_store, demo_tree, tmp_path):
     out = subprocess.run([sys.executable, str(script), str(store)], capture_output=True, text=True, timeout=600,
                          cwd=tmp_path)
     assert out.returncode == 0, out.stdout + out.stderr
+    # an example writes only into the folder it names beside the store: nothing lands where it was run
+    assert sorted(p.name for p in tmp_path.iterdir()) in (["store"], ["example-outputs", "store"]), out.stdout
+    if script.name == "decode_across_studies.py":  # drawn with nilearn (matplotlib from the plot extra)
+        png = tmp_path / "example-outputs" / "reading-weights.png"
+        assert png.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
     assert out.stdout.strip(), "the example printed nothing"

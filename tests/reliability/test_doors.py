@@ -72,10 +72,10 @@ def test_no_output_lands_in_a_source_or_a_store(small):
                 report.write_html(place / "report.html" if place.is_dir() else place)
     st.close()
     assert (_tree(small["src"]), _tree(small["store"])) == before
-    # the CLI says it in one line, exit 1
+    # the CLI says it in one line, exit 2 (the output named is wrong)
     out = subprocess.run([sys.executable, "-m", "mapstore.cli", "export", "--store", str(small["store"]), "--out",
                           str(small["store"]), "--overwrite"], capture_output=True, text=True)
-    assert out.returncode == 1 and len(out.stderr.strip().splitlines()) == 1 and "store" in out.stderr
+    assert out.returncode == 2 and len(out.stderr.strip().splitlines()) == 1 and "store" in out.stderr
     assert (_tree(small["src"]), _tree(small["store"])) == before
 
 

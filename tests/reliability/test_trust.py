@@ -239,7 +239,7 @@ def test_sources_are_refused_as_outputs_by_any_spelling(built, tmp_path, capsys)
     for out in spellings:
         code = main(["export", "--store", str(store), "--out", str(out)])
         err = capsys.readouterr().err
-        assert code == 1 and "inside the source dataset" in err, (out, err)
+        assert code == 2 and "inside the source dataset" in err, (out, err)
         code = main(["index", str(ds), "--store", str(out)])
         err = capsys.readouterr().err
         assert code == 2 and "lies inside the dataset" in err, (out, err)
@@ -249,7 +249,7 @@ def test_sources_are_refused_as_outputs_by_any_spelling(built, tmp_path, capsys)
     mapstore.index([alias], store2, progress=False, jobs=1)
     mapstore.build_features(store2, grid="MNI152-3mm", progress=False, jobs=1)
     code = main(["export", "--store", str(store2), "--out", str(ds / "real-out")])
-    assert code == 1 and "inside the source dataset" in capsys.readouterr().err
+    assert code == 2 and "inside the source dataset" in capsys.readouterr().err
     assert not (ds / "real-out").exists()
 
 

@@ -324,10 +324,22 @@ def test_a_zarr_export_is_read_by_zarr_and_dask_and_verified(store, tmp_path):
     assert arr.metadata.zarr_format == 3 and arr.chunks[1] == arr.shape[1]
     np.testing.assert_array_equal(arr[:], sel.X)
     np.testing.assert_array_equal(da.from_zarr(f"{out}/X.zarr", component="X").compute(), sel.X)
-    ds = xr.open_zarr(f"{out}/X.zarr", consolidated=False)
+    import warnings
+
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")  # consolidated metadata: xarray opens it without a warning
+        ds = xr.open_zarr(f"{out}/X.zarr")
     assert ds["X"].dims == ("map", "column")
     np.testing.assert_array_equal(ds["X"].values, sel.X)
+    # the columns' voxels and the rows' y, group and fold are coordinates of X, not loose arrays
+    assert {"voxel", "y", "group", "fold"} <= set(ds["X"].coords)
     np.testing.assert_array_equal(ds["voxel"].values, np.load(f"{out}/voxels.npy"))
+    names = np.array(ds["y"].attrs["names"])
+    np.testing.assert_array_equal(names[ds["y"].values], np.load(f"{out}/y.npy"))
+    np.testing.assert_array_equal(np.array(ds["group"].attrs["names"])[ds["group"].values], np.load(f"{out}/groups.npy"))
+    import pyarrow.parquet as pq
+
+    np.testing.assert_array_equal(ds["fold"].values, pq.read_table(f"{out}/meta.parquet")["fold"].to_numpy())
     assert verify(out).ok
     arr = zarr.open_array(f"{out}/X.zarr", path="X", mode="r+")
     arr[3, 5] = arr[3, 5] + 1  # a changed value is found
