@@ -9,6 +9,7 @@ import html
 import struct
 import zlib
 from dataclasses import dataclass
+from typing import Sequence
 
 import numpy as np
 
@@ -130,7 +131,7 @@ def colourbar_html(scale: Scale) -> str:
             f"<div class='cbar-label'>{html.escape(scale.label)}</div></div>")
 
 
-def figure_html(rows: list[tuple[str, list[np.ndarray]]], headers: list[tuple[str, ...]], scale: Scale,
+def figure_html(rows: list[tuple[str, list[np.ndarray]]], headers: Sequence[tuple[str, ...]], scale: Scale,
                 note: str = "") -> str:
     """Rows of panels, each row labelled (a study), each column headed by what it shows and the marks at
     its edges (``(label, left, right[, top, bottom])``: ``L``/``R`` at the sides, ``A``/``P`` or ``S``/``I``

@@ -402,14 +402,15 @@ class Catalog:
                                 f"{self.path}' first")
         self.head = head if head is not None else read_head(self.path)
         self._given: dict[str, pa.Table] = {}
-        self._con = None
+        self._con: Any = None  # a duckdb connection, made on the first query
+        self._made: set[str] = set()  # the views made on it
         self._scratch = ""
 
     def close(self) -> None:
         """Close the DuckDB connection (opened again on the next query)."""
         if self._con is not None:
             self._con.close()
-            self._con = None
+            self._con, self._made = None, set()
             shutil.rmtree(self._scratch, ignore_errors=True)
 
     def index_inputs(self) -> dict[str, Any] | None:

@@ -288,7 +288,7 @@ def main() -> None:
             print(f"open + query by dataset and subject: {q['seconds']:.3f} s, {q['rows']} rows, peak RSS "
                   f"{q['peak']:.0f} MB (after imports {q['after_import']:.0f} MB); a count on the open store "
                   f"{q['count']:.3f} s")
-            ours, duck = count_commands(store, f"dataset = 'study042'")
+            ours, duck = count_commands(store, "dataset = 'study042'")
             print(f"whole command 'mapstore sql' counting one dataset's maps: {ours:.2f} s; DuckDB alone "
                   f"(import, read the parts, count) {duck:.2f} s: {ours / duck:.2f}x")
             print(f"open + query across all datasets (task, contrast, subject): {q2['seconds']:.3f} s, "
