@@ -16,7 +16,7 @@ from typing import Any
 from ._api import open_store
 from .errors import ExportError, ParameterError
 from .features import build_features
-from .indexing import builtin_rules, index
+from .indexing import builtin_rules, fetch_files, index
 from .labels import label_store
 from .select import ExportManifest, read_manifest
 from .store import check_output
@@ -69,11 +69,14 @@ def _write_given(folder: Path, kind: str, i: int, given: dict[str, Any]) -> str:
 
 
 def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[str]], out: str | os.PathLike[str], *,
-            store: str | os.PathLike[str] | None = None, rules=None, origins=None) -> RebuildReport:
+            store: str | os.PathLike[str] | None = None, rules=None, origins=None, fetch: bool = False
+            ) -> RebuildReport:
     """Rebuild the export ``manifest`` describes from the datasets under ``sources`` into ``out``.
 
     The name rules and origins the first index used are taken from the manifest, which keeps their
-    content; ``rules`` and ``origins`` (files or preset names) replace them when given.
+    content; ``rules`` and ``origins`` (files or preset names) replace them when given.  In datasets
+    shared through git-annex, the manifest's maps whose content is not fetched are named (with
+    ``fetch`` False) or fetched, and nothing else.
     """
     mpath, man = read_manifest(manifest)
     if man.datasets is None or "grid" not in man.feature_settings:
@@ -104,12 +107,25 @@ def rebuild(manifest: str | os.PathLike[str], sources: list[str | os.PathLike[st
                      for i, r in enumerate(kept["rules"])]
         if origins is None and kept.get("origins"):
             origins = _write_given(given, "origins", 0, kept["origins"])
-        report = _rebuild(man, sources, out, store_path, given, rules, origins)
+        report = _rebuild(man, sources, out, store_path, given, rules, origins, fetch)
         if store is None:
             (store_path.parent / "DONE").write_text("")  # a finished rebuild's store: kept for the user
         return report
     finally:
         shutil.rmtree(given, ignore_errors=True)
+
+
+def _not_fetched(man: ExportManifest, store_path: Path) -> list[str]:
+    """Paths of the manifest's source maps that the new catalog holds as not present."""
+    names = {k: v["name"] for k, v in (man.datasets or {}).items()}
+    wanted = {(names.get(s.dataset), s.relpath) for s in man.sources}
+    st = open_store(store_path)
+    try:
+        rows = st.sql("SELECT d.name, d.root, m.relpath FROM maps m JOIN datasets d USING (dataset) "
+                      "WHERE m.content = 'not-present'").to_pylist()
+    finally:
+        st.close()
+    return sorted(os.path.join(r["root"], r["relpath"]) for r in rows if (r["name"], r["relpath"]) in wanted)
 
 
 def _remove_leftovers() -> None:
@@ -147,8 +163,19 @@ def _check_rebuild_fields(man: ExportManifest, mpath: Path) -> None:
              f"index_inputs.rules[{i}] must name a preset or hold content")
 
 
-def _rebuild(man: ExportManifest, sources, out, store_path: Path, given: Path, rules, origins) -> RebuildReport:
+def _rebuild(man: ExportManifest, sources, out, store_path: Path, given: Path, rules, origins,
+             fetch: bool = False) -> RebuildReport:
     index(sources, store_path, rules=rules, origins=origins, progress=False)
+    absent = _not_fetched(man, store_path)
+    if absent and not fetch:
+        raise ExportError(f"{len(absent)} source map(s) of the manifest are annexed and not fetched (e.g. "
+                          f"{absent[0]}); fetch them ('datalad get' or 'git annex get' on them), or rebuild "
+                          "with --fetch, which fetches just these")
+    if absent:
+        problems = fetch_files(absent)
+        if problems:
+            raise ExportError(f"{problems[0].path}: {problems[0].reason}; {problems[0].remedy}")
+        index(sources, store_path, rules=rules, origins=origins, progress=False)
     settings = man.feature_settings
     build = {"method": settings["method"], "stat": settings["stat"], "p_sided": settings["p_sided"],
              "zero_as_missing": settings["zero_as_missing"], "background": settings["background"],

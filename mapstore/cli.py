@@ -223,10 +223,13 @@ def write_table(table, fmt: str, out: str | None) -> None:
               help="Refuse a map whose header declares more voxel data than this (MiB), before reading it.")
 @click.option("--dask", "dask_address", help="Run the crawl on this Dask scheduler (e.g. tcp://host:8786); "
               "workers must see the datasets and the store at the same paths.")
+@click.option("--fetch", is_flag=True, help="In git-annex (DataLad) datasets, fetch the content of the maps "
+              "the names take, and nothing else, before reading them (subdatasets installed first).")
 @click.option("--transforms", multiple=True, type=click.Path(file_okay=False),
               help="Folder of registrations of native-space maps to a template (BIDS files named like _from-<space>_to-"
                    "<template>_mode-image_xfm.h5/.txt/.mat files); repeatable.")
-def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_address, transforms, max_map_mb) -> None:
+def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_address, fetch, transforms,
+              max_map_mb) -> None:
     """Crawl ROOTs (derivative datasets, raw datasets with derivatives/, or folders of them).
 
     \b
@@ -235,7 +238,7 @@ def index_cmd(roots, store, rules, origins, jobs, prune, read_timeout, dask_addr
     """
     report = run_index(roots, store, rules=list(rules) or None, origins=origins, jobs=jobs, prune=prune,
                        scheduler=dask_address, read_timeout=read_timeout, transforms=list(transforms),
-                       max_map_mb=max_map_mb)
+                       max_map_mb=max_map_mb, fetch=fetch)
     click.echo(report.summary())
 
 
@@ -571,7 +574,9 @@ def pool_cmd(store, out, concepts, tasks, where, stats, feature_set, method, min
               "(repeatable; files or presets).")
 @click.option("--origins", type=click.Path(dir_okay=False),
               help="Origins file to index with instead of the one the manifest kept.")
-def rebuild_cmd(manifest, sources, out, store, rules, origins) -> None:
+@click.option("--fetch", is_flag=True, help="Fetch the manifest's maps that are annexed and not fetched (and "
+              "nothing else); without it they are named.")
+def rebuild_cmd(manifest, sources, out, store, rules, origins, fetch) -> None:
     """Rebuild an export from its MANIFEST and the source datasets; exit 3 if X is not the same, row by row.
 
     \b
@@ -580,7 +585,8 @@ def rebuild_cmd(manifest, sources, out, store, rules, origins) -> None:
     """
     from ._rebuild import rebuild
 
-    report = rebuild(manifest, list(sources), out, store=store, rules=list(rules) or None, origins=origins)
+    report = rebuild(manifest, list(sources), out, store=store, rules=list(rules) or None, origins=origins,
+                     fetch=fetch)
     click.echo(report.summary())
     if not report.ok:
         raise click.exceptions.Exit(FINDINGS_EXIT)

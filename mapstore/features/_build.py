@@ -177,7 +177,7 @@ def _select_maps(cat: Catalog, where: str | None, kinds: tuple[str, ...], target
     A surface set takes a hemisphere pair as one map, under the left file's id (the right file
     is its ``linked_map``); an unpaired hemisphere comes alone, the other half missing.
     """
-    q = ("SELECT m.map_id, m.dataset, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, "
+    q = ("SELECT m.map_id, m.dataset, m.stat, m.sha256, m.dof, m.relpath, d.root, m.map_kind, m.n_volumes, m.content, "
          "m.model_mask, m.model_mask_sha256, m.geometry, m.hemi, m.space, m.sub, m.space_kind, m.registration, "
          "m.dof_numerator, m.map_index, ")
     second = target.second_halves("m")
@@ -337,9 +337,9 @@ def build_features(
         old_rows = _previous_rows(store_path, name, existing, spec)
         try:
             _write_set_files(set_dir, spec, mk, fresh=not existing)
-            kept, todo, dropped = _plan_rows(rows_sel, spec, old_rows, batch_n, set_dir, mk, target, settings)
+            kept, todo, dropped, absent = _plan_rows(rows_sel, spec, old_rows, batch_n, set_dir, mk, target, settings)
             built = _run_batches(todo, run, store_path, set_dir, name)
-            new_rows, problems = built.rows, coverage_problems + built.problems
+            new_rows, problems = built.rows, coverage_problems + absent + built.problems
             default = name if head.default_features is None or name == DEFAULT_SET else head.default_features
             if (existing is not None and not todo and not dropped and not problems and existing.catalog == head.catalog
                     and existing.spec_id == spec.spec_id and existing.n_rows == kept.num_rows
@@ -460,8 +460,9 @@ def _write_set_files(set_dir: Path, spec: FeatureSetSpec, mk: Mask, fresh: bool)
 
 def _plan_rows(rows_sel: list[dict[str, Any]], spec: FeatureSetSpec, old_rows: pa.Table, batch_n: int,
                set_dir: Path, mk: Mask, target: Target, settings: BuildSettings
-               ) -> tuple[pa.Table, list[Batch], int]:
-    """Rows kept as they are, batches of maps to build (one dataset each), and how many rows go."""
+               ) -> tuple[pa.Table, list[Batch], int, list[Problem]]:
+    """Rows kept as they are, batches of maps to build (one dataset each), how many rows go, and the
+    annexed maps not fetched that have no row (a problem each)."""
     wanted: dict[str, SourceMap] = {}
     dataset_of: dict[str, str] = {}
     for r in rows_sel:
@@ -478,6 +479,14 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: FeatureSetSpec, old_rows: p
     have = {k: i for k, i in have.items() if sound.get(shard_of[i], 0) > row_of[i] >= 0}
     keep_idx = [have[(m, it.key)] for m, it in wanted.items() if (m, it.key) in have]
     todo = [it for m, it in wanted.items() if (m, it.key) not in have]
+    # an annexed map not fetched keeps a row built from the same content (its key names it), and
+    # has none built until it is fetched
+    gone = {r["map_id"]: r for r in rows_sel if r.get("content") == "not-present"}
+    absent = [Problem(os.path.join(gone[it.map_id]["root"], gone[it.map_id]["relpath"]), "not-present",
+                      "an annexed map whose content is not fetched: no row until it is",
+                      "fetch it ('mapstore index --fetch', or 'datalad get' on it), index, then build again",
+                      "warning", stage="features", map_id=it.map_id) for it in todo if it.map_id in gone]
+    todo = [it for it in todo if it.map_id not in gone]
     if len(keep_idx) == old_rows.num_rows:  # nothing changed (a warm run): no take, whose index array
         kept = old_rows                     # would be pyarrow's first conversion, which imports pandas
     else:
@@ -486,7 +495,7 @@ def _plan_rows(rows_sel: list[dict[str, Any]], spec: FeatureSetSpec, old_rows: p
     batches = [Batch(str(set_dir), f"shard-{file_slug(ds)}-{new_snapshot_id()}-{i:05d}.npy", items, target,
                      settings, sketch_seed=seed, sketch=spec.sketch)
                for ds, items, i in _per_dataset(todo, dataset_of, batch_n)]
-    return kept, batches, old_rows.num_rows - kept.num_rows
+    return kept, batches, old_rows.num_rows - kept.num_rows, absent
 
 
 def _sound_shards(set_dir: Path, rows: pa.Table, n_voxels: int) -> dict[str, int]:

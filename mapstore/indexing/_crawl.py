@@ -18,6 +18,7 @@ import operator
 import os
 import re
 import shutil
+import subprocess
 import sys
 import time
 from dataclasses import dataclass, field
@@ -33,6 +34,7 @@ from ._datasets import DatasetInfo, find_datasets, top_folders
 from ._metadata import MetadataOverrides, ModelFiles, SidecarResolver, read_participants
 from ._names import EntityParser, NameRules
 from ._walk import walk_dataset
+from ._annex import fetch_files, uninstalled_subdatasets
 from ..store import Problem, inside, lies_within
 from .._version import __version__
 from .._params import JOBS, MAP_MB_LIMIT, READ_TIMEOUT, declared, resolve_jobs
@@ -109,13 +111,16 @@ class IndexReport:
     n_notes: int = 0  # caveats (info rows of problems), and the passed-over files' rows
     note_codes: dict[str, int] = field(default_factory=dict)
     n_touched: int = 0  # of the unchanged: read again (new size or time) and found the same content
+    n_not_present: int = 0  # annexed maps whose content is not fetched (rows from their keys)
+    n_no_sha256: int = 0  # of those, keys of a backend that names no SHA-256 (DataLad's default MD5E)
+    n_unread: int = 0  # of the new and changed maps, the ones not present (nothing was read)
 
     @property
     def n_passed_over(self) -> int:
         return sum(self.passed_over.values())
 
     def summary(self) -> str:
-        read = self.n_new + self.n_changed + self.n_touched
+        read = self.n_new + self.n_changed + self.n_touched - self.n_unread
         rate = read / self.seconds if self.seconds > 0 else 0.0
         touched = f" ({self.n_touched} touched: new timestamps, same content)" if self.n_touched else ""
         lines = [
@@ -125,6 +130,13 @@ class IndexReport:
             f"removed {self.n_removed})",
             f"read {read} file{'' if read == 1 else 's'} in {self.seconds:.2f} s ({rate:,.0f} maps/s)",
         ]
+        if self.n_not_present:
+            known = "the SHA-256 and size" if not self.n_no_sha256 else \
+                "the size (and, for SHA256 keys, the SHA-256)" if self.n_no_sha256 < self.n_not_present else \
+                "the size (their keys' backend names no SHA-256: the hash comes with the content)"
+            lines.append(f"not present: {self.n_not_present} annexed map(s) whose content is not fetched; their rows "
+                         f"hold {known} their git-annex keys give, and header facts once fetched (index --fetch "
+                         "gets just the maps)")
         if self.n_kept_datasets:
             lines.append(f"kept {self.n_kept_datasets} dataset(s) from earlier runs, not under these roots")
         if self.passed_over:
@@ -412,6 +424,7 @@ class _UnitResult:
     unchanged: int  # touched ones included
     reused: bool
     touched: int = 0  # read again for a new size or time, content the same
+    unread: int = 0  # of the new and changed: annexed maps not fetched, rows from their keys
 
 
 # problems that may go away without a file changing: a unit that had one is always crawled again
@@ -428,7 +441,7 @@ def _previous_rows(unit: _Unit) -> pa.Table | None:
         return None
     import pyarrow.compute as pc
 
-    cols = ["relpath", "dataset", "map_index", "map_name", *_HEADER_COLUMNS]
+    cols = ["relpath", "dataset", "map_index", "map_name", "annex_key", *_HEADER_COLUMNS]
     try:
         t = pa.concat_tables([_read_columns(f, cols) for f in files])
     except (OSError, pa.ArrowException):
@@ -501,7 +514,8 @@ def _crawl_unit(unit: _Unit, deadline: ReadDeadline) -> _UnitResult:
     if any(p.level == _NOT_REUSED_LEVEL for p in problems) or rows.native:
         digest = None  # a native map's registration may change outside the unit's files
     part = _write_part(unit, table, problems, digest)
-    return _UnitResult(part, problems, rows.new, rows.changed, rows.unchanged + rows.touched, False, rows.touched)
+    return _UnitResult(part, problems, rows.new, rows.changed, rows.unchanged + rows.touched, False, rows.touched,
+                       rows.unread)
 
 
 class _RowBuilder:
@@ -523,7 +537,7 @@ class _RowBuilder:
         pt = self.prev_table
         self.pcol = {c: pt[c].to_pylist() for c in ("relpath", "nbytes", "mtime_ns", "sha256", "intent_code",
                                                     "intent_p1", "descrip", "geometry", "structures", "n_volumes",
-                                                    "map_index", "map_name")
+                                                    "map_index", "map_name", "annex_key")
                      } if pt is not None and pt.num_rows else {}
         self.prev = {r: i for i, r in enumerate(self.pcol.get("relpath", []))}
         # the map names of the previous rows of files of several maps, by file
@@ -542,7 +556,7 @@ class _RowBuilder:
         self.sidx: list[int] = []
         self.origins: dict[str | None, dict[str, Any]] = {}
         self.mask_sha: dict[str, str | None] = {}
-        self.new = self.changed = self.unchanged = self.touched = 0
+        self.new = self.changed = self.unchanged = self.touched = self.absent = self.unread = 0
         self.native = 0  # native-space maps: their registration lives outside the unit's files
         self.registrations = RegistrationFinder(unit.ds.root, unit.ds.source_roots, unit.transforms)
         self.layouts = LayoutReader(unit.ds.root, unit.ds.key, jsons, unit.ds.index_root)
@@ -554,6 +568,8 @@ class _RowBuilder:
         be read).  The position is >= 0 in ``headers``, or -1 - i for row i of the previous table."""
         pcol = self.pcol
         old = self.prev.get(m.relpath)
+        if not m.present:
+            return self._not_present(m, old)
         # an AFNI bucket's sub-bricks take their statistics from its header: read again
         if old is not None and pcol["nbytes"][old] == m.nbytes and pcol["mtime_ns"][old] == m.mtime_ns \
                 and m.entities.get("extension") != ".head" and not (
@@ -585,6 +601,13 @@ class _RowBuilder:
                                          res.stage))
             return None
         hdr = res[0]
+        if m.annex is not None and m.annex.sha256 and res[1] != m.annex.sha256:
+            # git-annex fetched (or someone replaced) content that is not what the key names
+            self.problems.append(Problem(m.path, "annex-content-mismatch", f"its content's SHA-256 {res[1][:12]}... "
+                                         f"is not the one its git-annex key names ({m.annex.sha256[:12]}...); it "
+                                         "was not indexed", "fetch it again ('git annex fsck' on it finds and drops "
+                                         "bad copies), then index again", "error", self.ds.key))
+            return None
         if old is None:
             self.new += 1
         elif res[1] == pcol["sha256"][old]:  # a new time (a copy, a restore, a touch), the same content
@@ -597,6 +620,39 @@ class _RowBuilder:
             pos = self.header_pos[key] = len(self.headers)
             self.headers.append(hdr)
         return (*res, pos)
+
+    def _not_present(self, m, old: int | None) -> tuple[dict[str, Any], str, int, int] | None:
+        """An annexed map whose content is not fetched: a row from its key (sha256 and size where the
+        key gives them), with the header facts of the last read of the same content when there was one."""
+        pcol, key = self.pcol, m.annex
+        self.absent += 1
+        # the same content as the last read: its key then, or the SHA-256 its key names
+        same = old is not None and pcol["sha256"][old] is not None and (
+            pcol["annex_key"][old] == key.key or (bool(key.sha256) and pcol["sha256"][old] == key.sha256))
+        if old is None:
+            self.new += 1
+        elif same:
+            self.unchanged += 1
+        else:
+            self.changed += 1
+        self.unread += not same
+        if same:
+            n = pcol["n_volumes"][old] or 1  # the same content was read before: its facts still hold
+            names = self.prev_names.get(m.relpath, {})
+            return ({"intent_code": pcol["intent_code"][old], "intent_p1": pcol["intent_p1"][old],
+                     "descrip": pcol["descrip"][old], "geometry": pcol["geometry"][old], "n_volumes": n,
+                     "_map_names": [names.get(i, "") for i in range(n)],
+                     "_hemi": _SIDE.get(pcol["structures"][old] or "")}, pcol["sha256"][old],
+                    pcol["nbytes"][old], -1 - old)
+        low = m.relpath.lower()
+        geometry = "grayordinates" if ".dscalar.nii" in low or ".dtseries.nii" in low else \
+            "surface" if low.endswith(".gii") else "volume"
+        hdr: dict[str, Any] = {"geometry": geometry}
+        pos = self.header_pos.get(geometry)
+        if pos is None:
+            pos = self.header_pos[geometry] = len(self.headers)
+            self.headers.append(hdr)
+        return self.headers[pos], key.sha256 or "", key.size if key.size is not None else m.nbytes, pos
 
     def _model_mask(self, m, surface: bool = False) -> tuple[str | None, str | None]:
         rel = m.extras.get("mask") or self.model.mask_for(m.relpath, m.entities, surface)
@@ -723,7 +779,8 @@ class _RowBuilder:
             map_id=map_id_for(ds.key, m.relpath), dataset=ds.key, relpath=m.relpath,
             suffix=get("suffix"), extension=get("extension"),
             entities=json.dumps({k: v for k, v in ents.items() if k not in ("suffix", "extension")}, sort_keys=True),
-            named_by=m.named_by, sha256=sha, nbytes=nbytes, mtime_ns=m.mtime_ns, dof=dof, dof_source=dof_source,
+            named_by=m.named_by, sha256=sha or None, nbytes=nbytes, mtime_ns=m.mtime_ns, dof=dof, dof_source=dof_source,
+            content="present" if m.present else "not-present", annex_key=m.annex.key if m.annex else None,
             model_mask=mask_rel, model_mask_sha256=msha, linked_map=None, space_kind=kind,
             dof_numerator=(descrip_f_dof(hdr.get("descrip")) or (None,))[0] if get("stat") == "F" else None,
             registration=registration_json(reg or ({"missing": why} if kind == "native" and volume else None)))
@@ -1098,6 +1155,7 @@ def index(
     transforms: Iterable[str | os.PathLike[str]] = (),
     overrides: str | os.PathLike[str] | None = None,
     max_map_mb: int = MAX_MAP_MB,
+    fetch: bool = False,
 ) -> IndexReport:
     """Crawl derivative datasets and publish a new catalog snapshot in ``store``.
 
@@ -1138,6 +1196,12 @@ def index(
         datasets its ``SourceDatasets`` names.
     overrides : path, optional
         The earlier name of ``origins``, still accepted.
+    fetch : bool, default=False
+        In datasets shared through git-annex (DataLad datasets), fetch the content of the files the
+        name rules and presets take as maps, and nothing else (never the series, masks or other files
+        beside them), in batches with ``git annex get``, which checks each file against its key;
+        subdatasets not installed are installed first.  Without it, a map whose content is not
+        fetched is a row marked ``content = 'not-present'`` with the SHA-256 and size its key gives.
 
     Returns
     -------
@@ -1160,10 +1224,16 @@ def index(
             raise ParameterError(f"transforms folder {t} does not exist; give a folder holding the registrations "
                                  "(sub-<label>_..._from-<space>_to-<template>_mode-image_xfm.h5 files)")
     store_path = Path(store).expanduser().absolute()
-    datasets, problems = _find(roots, store_path)  # type: ignore[arg-type]
-    store_path = ensure_store(store_path)
     if progress is None:
         progress = sys.stderr.isatty()
+    fetched: list[Problem] = []
+    if fetch:
+        fetched += install_subdatasets(roots, say=_say if progress else None)  # type: ignore[arg-type]
+    datasets, problems = _find(roots, store_path)  # type: ignore[arg-type]
+    if fetch:
+        fetched += fetch_maps(datasets, name_rules, say=_say if progress else None)
+    problems += fetched + _not_installed(roots, datasets)  # type: ignore[arg-type]
+    store_path = ensure_store(store_path)
     with write_lock(store_path):
         head = read_head(store_path)
         prev = _Previous.load(store_path, head)
@@ -1185,12 +1255,81 @@ def index(
     return report
 
 
+def _say(text: str) -> None:
+    print(text, file=sys.stderr, flush=True)
+
+
+def fetch_maps(datasets: list[DatasetInfo], rules: NameRules, say=None) -> list[Problem]:
+    """Fetch the annexed content of every file the walk takes as a map (nothing else) in ``datasets``."""
+    parser = EntityParser()
+    problems: list[Problem] = []
+    for ds in datasets:
+        maps, _, _ = walk_dataset(ds, parser, rules, skip_folders=ds.exclude)
+        absent = [m.path for m in maps if not m.present]
+        if absent:
+            if say is not None:
+                say(f"{ds.name}: fetching {len(absent):,} annexed map(s) ...")
+            problems += fetch_files(absent, say, ds.key)
+    return problems
+
+
+def install_subdatasets(roots: list[Path], say=None) -> list[Problem]:
+    """Install the subdatasets not installed under ``roots`` (``git submodule update --init``), so their
+    maps can be found; a problem for each that cannot be."""
+    problems: list[Problem] = []
+    pending = [str(r) for r in roots]
+    while pending:
+        root = pending.pop()
+        for sub in uninstalled_subdatasets(root):
+            if say is not None:
+                say(f"installing the subdataset {sub} ...")
+            why = _install(root, sub)
+            if why:
+                problems.append(Problem(sub, "subdataset-not-installed", f"a subdataset that could not be installed "
+                                        f"({why})", "install it ('datalad get -n' on it), then index again",
+                                        "error", ""))
+            else:
+                pending.append(sub)
+    return problems
+
+
+def _install(root: str, sub: str) -> str:
+    """Install one subdataset (its tree, no annexed content): through DataLad where it is installed (it
+    also sets the clone up for git-annex), else as a git submodule; the reason it failed, or ''."""
+    try:
+        import datalad.api as dl
+    except ImportError:
+        run = subprocess.run(["git", "-C", root, "submodule", "update", "--init", "--", os.path.relpath(sub, root)],
+                             capture_output=True, text=True)
+        return (run.stderr.strip().splitlines() or ["failed"])[-1] if run.returncode else ""
+    try:
+        dl.get(sub, dataset=root, get_data=False, result_renderer="disabled", on_failure="stop")
+    except Exception as exc:  # noqa: BLE001 - DataLad raises its own kinds; the reason becomes a problem row
+        return str(exc).strip().splitlines()[0] if str(exc).strip() else type(exc).__name__
+    return ""
+
+
+def _not_installed(roots: list[Path], datasets: list[DatasetInfo]) -> list[Problem]:
+    """A note per subdataset still not installed under the roots: its maps are not in the catalog."""
+    out = []
+    for root in {str(r) for r in roots} | {d.root for d in datasets}:
+        for sub in uninstalled_subdatasets(root):
+            out.append(Problem(sub, "subdataset-not-installed", "a subdataset that is not installed (an empty "
+                               "folder): maps in it are not in the catalog", "index with --fetch (installs it "
+                               "and fetches its maps), or install it ('datalad get -n' on it)", "warning", ""))
+    return out
+
+
 def _find(roots: list[Path], store_path: Path) -> tuple[list[DatasetInfo], list[Problem]]:
     """The datasets under ``roots``; refuses a store inside one of them."""
     datasets, problems = find_datasets(roots)
     if not datasets:
         why = "; ".join(f"{p.path}: {p.reason}" for p in problems if p.level == "error" or
                         p.code == "no-derivatives") or "no dataset_description.json or sub-* folders"
+        subs = [s for r in roots for s in uninstalled_subdatasets(str(r))]
+        if subs:
+            why += (f"; {len(subs)} subdataset(s) not installed (e.g. {subs[0]}): index with --fetch, which "
+                    "installs them and fetches their maps, or install them ('datalad get -n')")
         raise NoDatasetsFound(f"no BIDS derivative dataset found under {', '.join(map(str, roots))} ({why}); "
                               "give a derivative dataset, a raw dataset with derivatives/, or a folder of them. "
                               "Nothing was written.")
@@ -1303,11 +1442,22 @@ def _publish(store: Path, head: Head, prev: _Previous, plan: _Plan, results: lis
     unchanged = sum(r.unchanged for r in results)
     touched = sum(r.touched for r in results)
     before = sum(d.get("n_maps") or 0 for d in prev.datasets if d["dataset"] not in kept_keys)
+    not_present = no_sha = 0
+    for r in results:
+        if r.part is not None:
+            try:
+                t = read_parquet(store / r.part.maps, columns=["content", "sha256"])
+            except (KeyError, ValueError, OSError):  # a part written before the column
+                continue
+            for c, h in zip(t["content"].to_pylist(), t["sha256"].to_pylist()):
+                not_present += c == "not-present"
+                no_sha += c == "not-present" and h is None
     return IndexReport(store=str(store), n_datasets=len(ds_rows), n_maps=total, n_new=new, n_changed=changed,
                        n_unchanged=unchanged, n_removed=max(0, before - changed - unchanged),
                        n_problems=sum(codes.values()), n_kept_datasets=len(plan.kept), seconds=0.0,
                        problem_codes=codes, passed_over=passed, n_notes=sum(notes.values()), note_codes=notes,
-                       n_touched=touched)
+                       n_touched=touched, n_not_present=not_present, n_no_sha256=no_sha,
+                       n_unread=sum(r.unread for r in results))
 
 
 # what a unit imports beyond this module's imports: pyarrow's first conversion of Python values imports

@@ -57,6 +57,8 @@ class MapFile:
     mtime_ns: int
     named_by: str  # "bids" or "rule:<n>"
     extras: dict[str, str] = field(default_factory=dict)  # from a name rule: mask, dof_file (relpaths)
+    annex: Any = None  # the git-annex key (an AnnexKey) of an annexed file
+    present: bool = True  # False: an annexed file whose content is not fetched (size from the key)
 
 
 def _slug(text: str) -> str:

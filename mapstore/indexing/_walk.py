@@ -17,6 +17,7 @@ from ._layouts import subject_from_path
 
 from ._names import COMPANION_SUFFIXES, DATA_HALVES, EntityParser, MAP_EXTENSIONS, NameRules, OTHER_IMAGE_EXTENSIONS, STAT_SUFFIX, _fix_labels, name_ending, split_map_name, suggested_rule
 from ._datasets import DatasetInfo, MapFile, SKIP_DIRS, _is_dir
+from ._annex import POINTER_MAX, annex_key_of, pointer_key, repository_of
 
 __all__ = ['unmatched_problem', 'walk_dataset']
 
@@ -169,6 +170,21 @@ class _Walk:
         self.unmatched: dict[str, list[Any]] = {}  # by name ending (_beta.nii.gz): [count, first path, entities]
         self.other: dict[str, list[Any]] = {}  # image files of formats not read, by extension: [count, first path]
         self.digit_dirs: set[str] = set()  # folders named by a number beside others so named (subject numbers)
+        self._annexed: bool | None = None  # the dataset's repository uses git-annex (asked when first needed)
+
+    @property
+    def annexed(self) -> bool:
+        if self._annexed is None:
+            repo = repository_of(os.path.join(self.ds.root, "_"))
+            git = os.path.join(repo, ".git") if repo else ""
+            if git and os.path.isfile(git):  # a submodule's .git file: "gitdir: <path>"
+                try:
+                    line = open(git, encoding="utf-8").readline().strip()
+                    git = os.path.join(repo, line.split(":", 1)[1].strip()) if line.startswith("gitdir:") else ""
+                except OSError:
+                    git = ""
+            self._annexed = bool(git) and os.path.isdir(os.path.join(git, "annex"))
+        return self._annexed
 
     def other_image(self, e: os.DirEntry, relpath: str, ext: str | None = None) -> None:
         ext = ext or next(x for x in OTHER_IMAGE_EXTENSIONS if e.name.lower().endswith(x))
@@ -205,11 +221,25 @@ class _Walk:
                     seen[2] = self.parser.parse(relpath)
                 seen[0] += 1
                 return
-        st = self._stat(e)
+        key = annex_key_of(e.path) if e.is_symlink() else None
+        st = self._stat(e, annexed=key is not None)
+        present = st is not None
         if st is None:
-            return
-        size, mtime = st.st_size, st.st_mtime_ns
-        if ext.lower() in DATA_EXTENSIONS:  # a two-file format: its size and time are both files'
+            if key is None:
+                return
+            try:  # an annexed map not fetched: what the key says stands in for the file
+                mtime = os.lstat(e.path).st_mtime_ns
+            except OSError:
+                return
+            size = key.size or 0
+        else:
+            size, mtime = st.st_size, st.st_mtime_ns
+            if key is None and size <= POINTER_MAX and self.annexed:  # an unlocked file not fetched
+                key = pointer_key(e.path, size)
+                if key is not None:
+                    present, size = False, key.size or 0
+        annex: dict[str, Any] = {"annex": key, "present": present}
+        if ext.lower() in DATA_EXTENSIONS and present:  # a two-file format: its size and time are both files'
             half = data_file(e.path)
             try:
                 dst = os.stat(half) if half else None
@@ -234,7 +264,7 @@ class _Walk:
                 self.problems.append(Problem(e.path, "contrast-from-desc", f"a {ents['stat']} map with no contrast- "
                                              f"entity: its desc-{ents['desc']} is taken as the contrast",
                                              f"name it with contrast-{ents['desc']} to say so", "info", ds.key))
-            self.maps.append(MapFile(ds, relpath, e.path, ents, size, mtime, "bids"))
+            self.maps.append(MapFile(ds, relpath, e.path, ents, size, mtime, "bids", **annex))
             return
         idx, ents, groups = hit
         base = self.parser.parse(relpath)
@@ -244,11 +274,11 @@ class _Walk:
         self._subject(base, relpath)
         if idx < 0:  # an AFNI bucket no rule names: its header says what it holds
             base.pop("stat", None)
-            self.maps.append(MapFile(ds, relpath, e.path, base, size, mtime, "afni"))
+            self.maps.append(MapFile(ds, relpath, e.path, base, size, mtime, "afni", **annex))
             return
         extras, probs = self.rules.extras(ds.root, idx, groups, base, e.path, ds.key)
         self.problems.extend(probs)
-        self.maps.append(MapFile(ds, relpath, e.path, base, size, mtime, f"rule:{idx}", extras))
+        self.maps.append(MapFile(ds, relpath, e.path, base, size, mtime, f"rule:{idx}", extras, **annex))
 
     def _subject(self, ents: dict[str, str], relpath: str) -> None:
         """A subject named by a folder outside BIDS (``subj07/``, ``s07/``, a number among numbers)."""
@@ -260,8 +290,9 @@ class _Walk:
             if sub:
                 ents["sub"] = sub
 
-    def _stat(self, e: os.DirEntry) -> os.stat_result | None:
-        """The map's stat; only a regular file passes (anything else becomes a problem, unopened)."""
+    def _stat(self, e: os.DirEntry, annexed: bool = False) -> os.stat_result | None:
+        """The map's stat; only a regular file passes (anything else becomes a problem, unopened, but an
+        ``annexed`` link whose content is not fetched: its key says what it is)."""
         key = self.ds.key
         try:
             return _stat_entry(e)
@@ -270,6 +301,8 @@ class _Walk:
                                          "not opened (opening it could block the crawl)", "replace it with the map "
                                          "file itself, or remove it", "error", key))
         except FileNotFoundError:
+            if annexed:
+                return None
             self.problems.append(Problem(e.path, "dangling-symlink",
                                          "symbolic link to a file that is not there (an unfetched annexed file?)",
                                          "fetch the file content (for example 'datalad get' or "

@@ -47,6 +47,7 @@ from ..features import FeatureSet
 from ._manifest import MANIFEST_FORMAT, ExportManifest, ManifestSource, _regular, read_manifest
 from ._query import Selection
 from ._splits import fold_vector, parse_scheme
+from ..indexing import POINTER_MAX, annex_key_of, pointer_key
 from ..store import OUTPUT_MARKER, Catalog, check_output, checkpoint, output_folder
 from ..formats import plural
 
@@ -438,6 +439,9 @@ class VerifyReport:
     n_sources: int
     n_rows: int
     changes: list[str]
+    # sources whose annexed content is not fetched but whose git-annex key names the recorded content:
+    # nothing says they changed, and their bytes cannot be checked until they are fetched
+    not_present: list[str] = field(default_factory=list)
 
     @property
     def ok(self) -> bool:
@@ -446,11 +450,16 @@ class VerifyReport:
     def summary(self) -> str:
         head = (f"{self.manifest}: {self.n_sources} source files, {self.n_rows} store rows and "
                 "the exported files checked")
+        absent = ""
+        if self.not_present:
+            absent = (f"\n{len(self.not_present)} source(s) not present (annexed content not fetched; the key names "
+                      "the recorded content): fetch them to check their bytes\n  " + "\n  ".join(self.not_present[:10]))
         if self.ok:
-            return head + "\nall hashes match: the export is reproducible from these sources and this store"
+            return (head + "\nall hashes match" + (" (where the content is present)" if absent else "")
+                    + ": the export is reproducible from these sources and this store" + absent)
         shown = "\n  ".join(self.changes[:30])
         more = f"\n  ... and {len(self.changes) - 30} more" if len(self.changes) > 30 else ""
-        return head + f"\n{len(self.changes)} change(s):\n  {shown}{more}"
+        return head + f"\n{len(self.changes)} change(s):\n  {shown}{more}" + absent
 
 
 def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
@@ -469,18 +478,28 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
         elif sha256_file(str(p)) != sha:
             changes.append(f"export file changed: {name}")
     hashed: dict[str, str] = {}  # a file that several entries name is hashed once
+    not_present: list[str] = []
     for s in man.sources:
         p = Path(s.path)
+        key = annex_key_of(str(p)) if p.is_symlink() and not p.exists() else \
+            pointer_key(str(p), p.stat().st_size) if p.is_file() and not p.is_symlink() else None
+        if key is not None and (not p.exists() or p.stat().st_size <= POINTER_MAX):
+            if key.sha256 == s.sha256:
+                not_present.append(str(p))
+            else:
+                changes.append(f"source changed: {p} (not present; its git-annex key {key.key} names other "
+                               "content than the export recorded)")
+            continue
         if not p.exists():
             changes.append(f"source missing: {p}")
             continue
         if not _regular(p):  # a FIFO would hang the hash, a device never end it
             changes.append(f"source is not a regular file (a FIFO, device or folder): {p}")
             continue
-        key = os.path.realpath(p)
-        if key not in hashed:
-            hashed[key] = digest_map(str(p)).sha256 if foreign_format(str(p)) else sha256_file(str(p))
-        got = hashed[key]
+        real = os.path.realpath(p)
+        if real not in hashed:
+            hashed[real] = digest_map(str(p)).sha256 if foreign_format(str(p)) else sha256_file(str(p))
+        got = hashed[real]
         if got != s.sha256:
             changes.append(f"source changed: {p} (sha256 {s.sha256[:12]}... -> {got[:12]}...)")
     n_rows = 0
@@ -492,7 +511,7 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
         fs = FeatureSet(cat.path, name, cat.head.features[name])
     except Exception as exc:  # noqa: BLE001 - any failure to open is reported, not raised
         changes.append(f"store or feature set unavailable: {exc}")
-        return VerifyReport(str(mpath), len(man.sources), 0, changes)
+        return VerifyReport(str(mpath), len(man.sources), 0, changes, not_present)
     if fs.spec.spec_id != man.set_spec_id:
         changes.append(f"feature set {fs.name!r} now has other settings (spec {fs.spec.spec_id} != "
                        f"{man.set_spec_id})")
@@ -512,7 +531,7 @@ def verify(manifest_path: str | os.PathLike[str]) -> VerifyReport:
             if _row_hash(row) != s.row_sha256:
                 changes.append(f"store row changed: {s.map_id} ({s.relpath})")
     changes += _check_data_file(folder, man)
-    return VerifyReport(str(mpath), len(man.sources), n_rows, changes)
+    return VerifyReport(str(mpath), len(man.sources), n_rows, changes, not_present)
 
 
 _BLOCK_LIMIT = 1 << 30  # bytes of one block of exported rows read at once

@@ -59,6 +59,9 @@ MAPS_SCHEMA = pa.schema([
     # the file's format: nifti1, nifti2, gifti, cifti2, or one read through nibabel (nifti1-pair, analyze,
     # afni, mgh, minc1, minc2)
     ("file_format", _s),
+    # 'present', or 'not-present': an annexed file whose content is not fetched (sha256 and nbytes from
+    # its git-annex key where the key gives them; header facts come when the content does); the key
+    ("content", _s), ("annex_key", _s),
 ])
 DATASETS_SCHEMA = pa.schema([
     ("dataset", _s), ("name", _s), ("study", _s), ("root", _s), ("dataset_type", _s),
