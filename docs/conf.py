@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import os
 import sys
 from pathlib import Path
 
@@ -38,23 +39,33 @@ numpydoc_show_class_members = False
 numpydoc_validation_checks: set[str] = set()
 default_role = "literal"  # `name` in docstrings is code, as it reads in the terminal
 
-# examples/ rendered as a gallery, not run here: each script runs in the tests (tests/test_examples.py)
-# on the demo store, which needs a path argument a docs build does not have
+# examples/ as a gallery. Each takes a store; with MAPSTORE_GALLERY_STORE set (the docs test sets it to the
+# labelled demo store) the build runs them on it and shows what they print; without it, code only
+_GALLERY_STORE = os.environ.get("MAPSTORE_GALLERY_STORE")
+
+
+sys.path.insert(0, str(Path(__file__).resolve().parent))
+from gallery_argv import StoreArgument  # noqa: E402
+
+
 sphinx_gallery_conf = {
     "examples_dirs": str(ROOT / "examples"),
     "gallery_dirs": "auto_examples",
-    "plot_gallery": "False",
-    "filename_pattern": r"^$",
+    "plot_gallery": "True" if _GALLERY_STORE else "False",
+    "filename_pattern": r"\.py$" if _GALLERY_STORE else r"^$",
+    "reset_argv": StoreArgument(),
     "download_all_examples": False,
     "remove_config_comments": True,
     "show_signature": False,
+    "image_scrapers": (),  # the examples print; what they draw they write beside the store
 }
 
 intersphinx_mapping = {}  # offline builds: no inventories fetched
 
 html_theme = "furo"
 html_title = f"mapstore {version}"
-html_static_path: list[str] = []
+html_static_path = ["_static"]
+html_css_files = ["mapstore.css"]  # long code lines wrap instead of running off the page
 
 
 def _write_schema_page(app) -> None:

@@ -5,7 +5,7 @@ A participant variable across sites
 Predict a participant variable (age) from maps, leave-one-site-out (run `mapstore demo DIR` first).
 
 Participant metadata is personal data under the studies' ethics approval: keep its exports where that
-approval allows.::
+approval allows. Run it as::
 
     python examples/participant_age_across_sites.py DIR/store
 """

@@ -111,8 +111,9 @@ def uninstalled_subdatasets(root: str) -> list[str]:
     out: list[str] = []
     f = os.path.join(root, ".gitmodules")
     try:
-        text = open(f, encoding="utf-8").read(1 << 20)
-    except OSError:
+        with open(f, encoding="utf-8") as fh:
+            text = fh.read(1 << 20)  # bounded: a file of a dataset, not of ours
+    except (OSError, UnicodeDecodeError):
         return out
     for rel in re.findall(r"^\s*path\s*=\s*(.+?)\s*$", text, re.MULTILINE):
         sub = os.path.join(root, rel)

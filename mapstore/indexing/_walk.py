@@ -1,6 +1,7 @@
 """The walk of one dataset: every file visited once, maps taken by the name rules, the rest reported.
 
-Nothing here opens a NIfTI file.
+Nothing here reads a map: in a git-annex repository a map file of at most 1 KiB is read only to see
+whether it is the pointer an unlocked file holds until its content is fetched.
 """
 
 from __future__ import annotations
@@ -179,7 +180,8 @@ class _Walk:
             git = os.path.join(repo, ".git") if repo else ""
             if git and os.path.isfile(git):  # a submodule's .git file: "gitdir: <path>"
                 try:
-                    line = open(git, encoding="utf-8").readline().strip()
+                    with open(git, encoding="utf-8") as fh:
+                        line = fh.readline(4096).strip()
                     git = os.path.join(repo, line.split(":", 1)[1].strip()) if line.startswith("gitdir:") else ""
                 except OSError:
                     git = ""

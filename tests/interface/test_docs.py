@@ -57,11 +57,18 @@ def test_readme_stays_a_quick_start():
     assert words <= 900, f"README.md has {words} words: move detail to docs/"
 
 
-def test_the_documentation_builds_without_warnings(tmp_path):
-    """Sphinx with numpydoc, the click CLI reference and the examples gallery; -W: a warning fails."""
+def test_the_documentation_builds_without_warnings(example_store, tmp_path):
+    """Sphinx with numpydoc, the click CLI reference and the examples gallery, whose examples run on the
+    labelled demo store at build time and show what they print; -W: a warning fails."""
+    import os
+    import shutil
+
+    store = tmp_path / "gallery" / "store"
+    shutil.copytree(example_store, store)
+    env = {**os.environ, "MAPSTORE_GALLERY_STORE": str(store)}
     done = subprocess.run([sys.executable, "-m", "sphinx", "-W", "--keep-going", "-q", "-b", "html",
                            "-d", str(tmp_path / "doctrees"), str(DOCS), str(tmp_path / "html")],
-                          capture_output=True, text=True, timeout=600)
+                          capture_output=True, text=True, timeout=900, env=env)
     assert done.returncode == 0, done.stderr[-4000:]
     cli = (tmp_path / "html" / "cli.html").read_text(encoding="utf-8")
     from mapstore.cli import cli as group
@@ -73,4 +80,24 @@ def test_the_documentation_builds_without_warnings(tmp_path):
     assert "mapstore.analyses.pool" in api and "Selection.blocks" in api
     gallery = tmp_path / "html" / "auto_examples"
     assert {p.stem for p in gallery.glob("*.html")} >= {p.stem for p in (ROOT / "examples").glob("*.py")}
+    # the examples ran: their pages show what they printed
+    decode = (gallery / "decode_across_studies.html").read_text(encoding="utf-8")
+    assert "held-out" in decode and "sphx-glr-script-out" in decode
+    assert "white-space: pre-wrap" in (tmp_path / "html" / "_static" / "mapstore.css").read_text()
+    # code fits the page as a browser lays it out: no code block scrolls sideways at a laptop's width
+    from ..check.test_report import _chromium
+
+    browser = _chromium()
+    for page in (tmp_path / "html" / "quickstart.html", gallery / "decode_across_studies.html"):
+        probe = page.with_name("probe-" + page.name)  # beside the page: its styles load as they do for it
+        probe.write_text(page.read_text(encoding="utf-8").replace("</body>", (
+            "<script>window.addEventListener('load',function(){var w=0;document.querySelectorAll('pre')"
+            ".forEach(function(p){w=Math.max(w,p.scrollWidth-p.clientWidth);});"
+            "document.body.dataset.overflow=w;document.body.dataset.blocks=document.querySelectorAll('pre')"
+            ".length;});</script></body>")), encoding="utf-8")
+        out = subprocess.run([browser, "--headless", "--no-sandbox", "--disable-gpu", "--virtual-time-budget=5000",
+                              "--window-size=1100,900", "--dump-dom", probe.as_uri()],
+                             capture_output=True, text=True, timeout=120)
+        facts = dict(re.findall(r'data-([a-z]+)="(\d+)"', re.search(r"<body([^>]*)>", out.stdout).group(1)))
+        assert int(facts["blocks"]) > 0 and facts["overflow"] == "0", (page.name, facts)
     assert "catalog-parts" in (tmp_path / "html" / "formats.html").read_text(encoding="utf-8")
