@@ -10,6 +10,7 @@ from __future__ import annotations
 import json
 import re
 import sys
+import time
 from pathlib import Path
 
 import click
@@ -313,10 +314,19 @@ def features_cmd(store, name, grid, mask, method, stat, p_sided, zero_as_missing
             proj = json.loads(projection)
         except ValueError as exc:
             raise click.BadParameter(f"not JSON ({exc})", param_hint="--projection") from exc
-    report = build_features(store, name, grid=grid, mask=mask, method=method, stat=stat,
-                            p_sided=p_sided, zero_as_missing=zero_as_missing, background=background,
-                            model_maps=model_maps, where=where, projection=proj, volumes=not no_volumes,
-                            mesh=mesh, subjects_dir=subjects_dir, jobs=jobs, scheduler=dask_address)
+    settings = dict(grid=grid, mask=mask, method=method, stat=stat, p_sided=p_sided, zero_as_missing=zero_as_missing,
+                    background=background, model_maps=model_maps, where=where, projection=proj,
+                    volumes=not no_volumes, mesh=mesh, subjects_dir=subjects_dir)
+    started = time.perf_counter()
+    from ._warm import build_settings, settings_digest, unchanged
+
+    same = unchanged(store, settings_digest(__version__, build_settings(name, **settings)))
+    if same is not None:  # the last build with these settings, on this catalog, left nothing to do
+        click.echo("\n".join([same["head_line"], f"built 0 rows (0.0 maps/s), kept {same['n_rows']:,} unchanged, "
+                              f"removed 0 stale, 0 failed in {time.perf_counter() - started:.1f} s",
+                              *(f"left out {n} {why}" for why, n in same["left_out"].items())]))
+        return
+    report = build_features(store, name, **settings, jobs=jobs, scheduler=dask_address)
     click.echo(report.summary())
 
 

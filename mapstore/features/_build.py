@@ -38,9 +38,11 @@ from ..statkinds import convertible_to_z
 from .._params import (BACKGROUND, BATCH_SIZE, FEATURE_STAT, JOBS, P_SIDE, RESAMPLE_METHOD, declared,
                        resolve_jobs)
 from .._runner import run as run_units
+from .._warm import build_settings, remember, settings_digest
 from .._version import __version__
 from ..errors import FeatureError, MapstoreError, QueryError, StoreFull
 from ..store import (
+    write_json_atomic,
     read_parquet,
     FPROBLEMS_SCHEMA,
     ROWS_SCHEMA,
@@ -312,6 +314,10 @@ def build_features(
     jobs = resolve_jobs(jobs)
     if progress is None:
         progress = sys.stderr.isatty()
+    digest = settings_digest(__version__, build_settings(
+        name, grid=grid, mask=mask, method=method, stat=stat, p_sided=p_sided, zero_as_missing=zero_as_missing,
+        background=background, model_maps=model_maps, where=where, projection=projection, volumes=volumes,
+        mesh=mesh, subjects_dir=subjects_dir))
     target = resolve_target(grid, mesh)
     cat = Catalog(store)
     cat.require_catalog()
@@ -364,6 +370,13 @@ def build_features(
                 _raise_if_full(exc, store_path, [])
             raise
         collect_feature_garbage(store_path, set_dir, entry.rows, existing.rows if existing else None)
+        if not problems:  # nothing to retry: the same settings on the same catalog have nothing to do
+            shards = sorted(set(rows_table["shard"].to_pylist()))
+            remember(store_path, digest, {
+                "name": name, "catalog": head.catalog, "rows": entry.rows, "n_rows": rows_table.num_rows,
+                "shards": {f: (set_dir / "shards" / f).stat().st_size for f in shards},
+                "head_line": f"feature set {name!r}: grid {target.name}, mask {mk.name} ({mk.n_voxels:,} {target.unit})",
+                "left_out": left_out}, write_json_atomic)
 
     report = FeatureReport(name=name, n_features=mk.n_voxels, grid=target.name, mask=mk.name,
                            n_built=len(new_rows), n_unchanged=kept.num_rows, n_removed=dropped,

@@ -517,7 +517,11 @@ class Catalog:
             self._feature_views(views)
         elif group == "maps":
             manifest = self.manifest()
-            views.files("maps", MAPS_SCHEMA, [self.path / p.maps for p in manifest.parts])
+            files = [self.path / p.maps for p in manifest.parts]
+            if any(p.schema != MAPS_SCHEMA_ID for p in manifest.parts) and "maps" not in self._given:
+                views.older_files("maps", MAPS_SCHEMA, files)  # parts an earlier mapstore wrote
+            else:
+                views.files("maps", MAPS_SCHEMA, files)
             # the maps of one contrast of one model (effect, variance, t, z, p): names equal but for stat-<x>
             con.execute("CREATE VIEW map_families AS SELECT md5(dataset || '/' || regexp_replace(relpath, "
                         "'_stat-[^_/]+', '') || '#' || coalesce(CAST(map_index AS VARCHAR), ''))[:16] AS family, "
@@ -730,6 +734,15 @@ class _ViewBuilder:
             self.con.execute(f'CREATE VIEW "{name}" AS {self._empty(schema)}')
         else:
             self.con.execute(f'CREATE VIEW "{name}" AS SELECT * FROM {self._source(files, loose)}')
+
+    def older_files(self, name: str, schema: pa.Schema, files: list[Path]) -> None:
+        """A view over files written with earlier versions of ``schema``: every column of the current one,
+        null where a file predates it (until the next index writes the part again)."""
+        source = self._source(files, loose=True)
+        have = {r[0] for r in self.con.execute(f"DESCRIBE SELECT * FROM {source}").fetchall()}
+        cols = ", ".join(f'"{f.name}"' if f.name in have else f'NULL::{_duck_type(f.type)} AS "{f.name}"'
+                         for f in schema)
+        self.con.execute(f'CREATE VIEW "{name}" AS SELECT {cols} FROM {source}')
 
     def per_set(self, name: str, schema: pa.Schema, files: list[tuple[str, Path]], exclude: tuple[str, ...] = ()
                 ) -> None:

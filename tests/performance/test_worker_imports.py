@@ -62,3 +62,46 @@ def test_a_warm_features_run_reads_its_records_and_writes_nothing(demo_store, tm
     assert got[2:] == [], f"a warm run imported {got[2:]}"
     after = {p: p.stat().st_mtime_ns for p in store.rglob("*") if p.is_file() and "leases" not in p.parts}
     assert after == before
+
+
+CLI_WARM = """
+import sys
+from mapstore.cli import main
+code = main(["features", "--store", sys.argv[1], "--grid", "MNI152-3mm"])
+print("IMPORTED", " ".join(m for m in ("numpy", "pyarrow", "duckdb", "scipy", "nibabel") if m in sys.modules))
+sys.exit(code)
+"""
+
+
+def test_a_warm_features_command_answers_from_its_record_and_any_change_runs_the_build(demo_store, tmp_path):
+    """The same settings on the same catalog: the command answers without importing numpy, pyarrow or
+    DuckDB. A missing shard, a new catalog snapshot or other settings: the build runs and decides."""
+    import shutil
+
+    import mapstore
+
+    store = tmp_path / "store"
+    shutil.copytree(demo_store, store)
+    env = {**os.environ, "PYTHONPATH": str(Path(__file__).resolve().parents[2])}
+
+    def run() -> tuple[str, list[str]]:
+        out = subprocess.run([sys.executable, "-c", CLI_WARM, str(store)], check=True, env=env, timeout=600,
+                             capture_output=True, text=True).stdout
+        return out, out.split("IMPORTED", 1)[1].split()
+
+    first, imported = run()
+    assert "built 0 rows" not in first and "numpy" in imported  # the first build reads and writes
+    again, imported = run()
+    assert imported == [], imported
+    n = mapstore.open(store).sql("SELECT count(*) AS n FROM features")["n"][0].as_py()
+    assert f"built 0 rows (0.0 maps/s), kept {n:,} unchanged" in again
+    assert again.splitlines()[0] == first.splitlines()[0]  # the set, grid and mask said alike
+    shard = next((store / "features").glob("*/shards/shard-*.npy"))
+    shard.unlink()  # a shard gone: the build runs and makes its rows again
+    repaired, imported = run()
+    assert "numpy" in imported and "built 0 rows" not in repaired
+    assert run()[1] == []
+    mapstore.index([mapstore.open(store).sql("SELECT root FROM datasets")["root"][0].as_py()], store,
+                   progress=False, jobs=1)  # a new catalog snapshot (nothing changed in it): the build decides
+    _, imported = run()
+    assert "numpy" in imported

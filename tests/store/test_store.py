@@ -229,3 +229,27 @@ def test_close_closes_and_refresh_moves_to_the_newest_snapshot(demo_store, demo_
     with pytest.raises(StoreClosed, match="closed; open it again"):
         st.sql("SELECT 1")
     st.close()  # closing twice is harmless
+
+
+def test_parts_an_earlier_mapstore_wrote_read_with_the_columns_added_since_as_null(demo_store, tmp_path):
+    """A store indexed before a maps column existed answers queries naming it (null) and builds features,
+    until the next index writes its parts again."""
+    import pyarrow.parquet as pq
+
+    store = tmp_path / "store"
+    shutil.copytree(demo_store, store)
+    head = json.loads((store / "HEAD").read_text())
+    manifest = store / head["catalog"] / "parts.json"
+    doc = json.loads(manifest.read_text())
+    for part in doc["parts"]:
+        part["schema"] = "an-earlier-one"
+        f = store / part["maps"]
+        t = pq.read_table(f)
+        pq.write_table(t.drop_columns(["content", "annex_key"]), f)  # as an earlier version wrote it
+    manifest.write_text(json.dumps(doc))
+    st = mapstore.open(store)
+    rows = st.sql("SELECT count(*) AS n, count(content) AS c, count(level) AS l FROM maps").to_pylist()[0]
+    assert rows["n"] > 0 and rows["c"] == 0 and rows["l"] == rows["n"]
+    st.close()
+    rep = mapstore.build_features(store, grid="MNI152-3mm", progress=False, jobs=1)
+    assert rep.n_built > 0
