@@ -83,6 +83,10 @@ def unchanged(store: str | os.PathLike[str], digest: str | None) -> dict[str, An
                 return None
         if not os.path.isfile(os.path.join(root, rec["rows"])):
             return None
+        # what the command prints from it: of the types a build writes, or the build decides
+        if not (isinstance(rec["head_line"], str) and isinstance(rec["n_rows"], int) and isinstance(rec["left_out"], dict)
+                and all(isinstance(k, str) and isinstance(v, int) for k, v in rec["left_out"].items())):
+            return None
         return rec
     except (OSError, ValueError, KeyError, TypeError, AttributeError):
         return None  # no record, or not one to trust: the build decides

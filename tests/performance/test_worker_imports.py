@@ -105,3 +105,9 @@ def test_a_warm_features_command_answers_from_its_record_and_any_change_runs_the
                    progress=False, jobs=1)  # a new catalog snapshot (nothing changed in it): the build decides
     _, imported = run()
     assert "numpy" in imported
+    # a record that is damaged, or crafted with other types, is not one to answer from: the build runs
+    records = store / "features" / "unchanged.json"
+    for text in ("not json", json.dumps({k: {**v, "left_out": 5} for k, v in json.loads(records.read_text()).items()})):
+        records.write_text(text)
+        out, imported = run()
+        assert "numpy" in imported and "feature set" in out
