@@ -382,6 +382,9 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
     fs = sel.feature_set
     head = store.catalog.head
     ds = {r["dataset"]: r["root"] for r in store.sql("SELECT dataset, root FROM datasets").to_pylist()}
+    # a source in an annexed dataset: its key, what a colleague fetches
+    annexed = store.sql("SELECT map_id, annex_key FROM maps WHERE annex_key IS NOT NULL")
+    keys = dict(zip(annexed["map_id"].to_pylist(), annexed["annex_key"].to_pylist()))
     sources = []
     for r, h, xh in zip(sel.meta.itertuples(index=False), row_hashes, x_hashes):
         index = getattr(r, "map_index", None)
@@ -389,7 +392,7 @@ def _manifest(sel: Selection, scheme: str, seed: int, allow_leak: bool, leaks: l
             r.map_id, r.dataset, r.relpath, os.path.join(ds.get(r.dataset, ""), r.relpath), r.sha256,
             r.feature_key, h, xh, getattr(r, "stat", None), _number(getattr(r, "dof", None)),
             # one map of a file of several (NaN in pandas: none)
-            int(index) if index is not None and index == index else None))
+            int(index) if index is not None and index == index else None, keys.get(r.map_id)))
     return ExportManifest(
         store=str(store.path), feature_settings=fs.spec.to_json(), query=sel.query, y_from=sel.y_from,
         group_by=sel.group_by, scheme=scheme, seed=seed, shape=[len(sel), len(sel.voxels)], sources=sources,
@@ -651,7 +654,7 @@ def json_schemas() -> dict[str, dict[str, Any]]:
                 "required": ["map_id", "dataset", "relpath", "path", "sha256", "feature_key", "row_sha256"],
                 "properties": {**{k: {"type": "string"} for k in
                                   ("map_id", "dataset", "relpath", "path", "sha256", "feature_key", "row_sha256",
-                                   "x_sha256")}, "map_index": {"type": "integer", "minimum": 0}}}},
+                                   "x_sha256", "annex_key")}, "map_index": {"type": "integer", "minimum": 0}}}},
             "missing": {"type": "object", "required": ["policy", "mask_voxels", "kept_voxels"],
                         "properties": {"policy": {"enum": ["common", "zero", "keep"]},
                                        "mask_voxels": {"type": "integer"}, "kept_voxels": {"type": "integer"},

@@ -45,6 +45,7 @@ class ManifestSource:
     stat: str | None = None
     dof: float | None = None
     map_index: int | None = None  # the map's position in a file of several maps
+    annex_key: str | None = None  # the git-annex key of a source in an annexed dataset (what to fetch)
 
     @property
     def x_hash(self) -> str:
@@ -52,8 +53,9 @@ class ManifestSource:
 
     def to_json(self) -> dict[str, Any]:
         doc = dataclasses.asdict(self)
-        if self.map_index is None:
-            del doc["map_index"]
+        for k in ("map_index", "annex_key"):  # written only where they say something
+            if doc[k] is None:
+                del doc[k]
         return doc
 
     @classmethod
@@ -63,7 +65,7 @@ class ManifestSource:
         for k in ("map_id", "dataset", "path", "sha256", "feature_key", "row_sha256", "relpath"):
             if not isinstance(doc.get(k), str):
                 raise bad(f"sources[{i}].{k} is {type(doc.get(k)).__name__}, not text")
-        for k in ("x_sha256", "stat"):
+        for k in ("x_sha256", "stat", "annex_key"):
             if doc.get(k) is not None and not isinstance(doc[k], str):
                 raise bad(f"sources[{i}].{k} must be text")
         if doc.get("dof") is not None and (isinstance(doc["dof"], bool) or not isinstance(doc["dof"], (int, float))):

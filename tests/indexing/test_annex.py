@@ -12,6 +12,7 @@ import json
 import os
 import shutil
 import subprocess
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -129,6 +130,10 @@ def test_dropped_content_leaves_rows_valid_and_verify_says_fetch_to_check(origin
     assert rep.n_not_present == 2 and rep.n_unchanged == 2  # the keys name the content read before
     again = mapstore.build_features(store, grid="MNI152-3mm", progress=False, jobs=1)
     assert again.n_built == 0 and again.n_unchanged == 2
+    # the manifest names each source's content by its key too: what a colleague fetches
+    sources = json.loads((Path(out) / "manifest.json").read_text())["sources"]
+    assert {s["relpath"]: s["annex_key"].split("--")[1].split(".")[0] == s["sha256"] for s in sources} == \
+        {m: True for m in MAPS}
     ver = mapstore.select.verify(out)
     assert ver.ok and len(ver.not_present) == 2 and "fetch them to check" in ver.summary()
     assert "change" not in ver.summary().split("checked")[1]
