@@ -575,13 +575,7 @@ class _RowBuilder:
                 and m.entities.get("extension") != ".head" and not (
                     pcol["map_index"][old] is not None and pcol["geometry"][old] in (None, "volume")):
             self.unchanged += 1
-            n = pcol["n_volumes"][old] or 1
-            names = self.prev_names.get(m.relpath, {})
-            return ({"intent_code": pcol["intent_code"][old], "intent_p1": pcol["intent_p1"][old],
-                     "descrip": pcol["descrip"][old], "geometry": pcol["geometry"][old], "n_volumes": n,
-                     "_map_names": [names.get(i, "") for i in range(n)],
-                     "_hemi": _SIDE.get(pcol["structures"][old] or "")}, pcol["sha256"][old], pcol["nbytes"][old],
-                    -1 - old)
+            return self._previous(m, old)
         try:
             with self.deadline.armed():
                 limit = self.unit.max_map_bytes or MAX_MAP_MB << 20
@@ -621,6 +615,17 @@ class _RowBuilder:
             self.headers.append(hdr)
         return (*res, pos)
 
+    def _previous(self, m, old: int) -> tuple[dict[str, Any], str, int, int]:
+        """The header facts, sha256 and size row ``old`` of the previous part holds for map ``m``."""
+        pcol = self.pcol
+        n = pcol["n_volumes"][old] or 1
+        names = self.prev_names.get(m.relpath, {})
+        return ({"intent_code": pcol["intent_code"][old], "intent_p1": pcol["intent_p1"][old],
+                 "descrip": pcol["descrip"][old], "geometry": pcol["geometry"][old], "n_volumes": n,
+                 "_map_names": [names.get(i, "") for i in range(n)],
+                 "_hemi": _SIDE.get(pcol["structures"][old] or "")}, pcol["sha256"][old], pcol["nbytes"][old],
+                -1 - old)
+
     def _not_present(self, m, old: int | None) -> tuple[dict[str, Any], str, int, int] | None:
         """An annexed map whose content is not fetched: a row from its key (sha256 and size where the
         key gives them), with the header facts of the last read of the same content when there was one."""
@@ -636,14 +641,8 @@ class _RowBuilder:
         else:
             self.changed += 1
         self.unread += not same
-        if same:
-            n = pcol["n_volumes"][old] or 1  # the same content was read before: its facts still hold
-            names = self.prev_names.get(m.relpath, {})
-            return ({"intent_code": pcol["intent_code"][old], "intent_p1": pcol["intent_p1"][old],
-                     "descrip": pcol["descrip"][old], "geometry": pcol["geometry"][old], "n_volumes": n,
-                     "_map_names": [names.get(i, "") for i in range(n)],
-                     "_hemi": _SIDE.get(pcol["structures"][old] or "")}, pcol["sha256"][old],
-                    pcol["nbytes"][old], -1 - old)
+        if same:  # the same content was read before: its facts still hold
+            return self._previous(m, old)
         low = m.relpath.lower()
         geometry = "grayordinates" if ".dscalar.nii" in low or ".dtseries.nii" in low else \
             "surface" if low.endswith(".gii") else "volume"
